@@ -1,0 +1,3 @@
+"""Client library and command line of Midstream."""
+
+__all__: list[str] = []

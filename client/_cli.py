@@ -1,0 +1,70 @@
+"""The ``midstream`` command line: one dispatcher over per-command modules.
+
+Each command lives in its own ``_cmd_<name>`` module exposing ``register(subparsers)``, which adds
+a parser whose ``handler`` default takes the parsed arguments and returns an exit code. Only this
+module and the command modules print; library code logs or returns.
+
+Exit codes: 0 success, 1 a Midstream error (one line on stderr naming what was wrong), 2 bad
+command-line usage (argparse), 3 the server could not be reached, 130 interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import logging
+import sys
+from collections.abc import Callable, Sequence
+
+from midstream._errors import MidstreamError, UnavailableError
+
+#: Command modules in the order ``--help`` lists them.
+_COMMAND_MODULES: tuple[str, ...] = (
+    "midstream.client._cmd_corpus",
+)
+
+Handler = Callable[[argparse.Namespace], int]
+
+EXIT_OK = 0
+EXIT_ERROR = 1
+EXIT_UNAVAILABLE = 3
+EXIT_INTERRUPTED = 130
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """Build the full argument parser (every command registered)."""
+    parser = argparse.ArgumentParser(
+        prog="midstream",
+        description="Streaming disfluency and utterance-function tagging of recogniser words.",
+    )
+    parser.add_argument(
+        "-v", "--verbose", action="count", default=0,
+        help="more log output (-v info, -vv debug; debug may include transcript words)",
+    )
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    for name in _COMMAND_MODULES:
+        importlib.import_module(name).register(sub)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Entry point of the ``midstream`` console script."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    level = {0: logging.WARNING, 1: logging.INFO}.get(args.verbose, logging.DEBUG)
+    logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    handler: Handler = args.handler
+    try:
+        return handler(args)
+    except UnavailableError as exc:
+        print(f"midstream: {exc}", file=sys.stderr)
+        return EXIT_UNAVAILABLE
+    except MidstreamError as exc:
+        print(f"midstream: {exc}", file=sys.stderr)
+        return EXIT_ERROR
+    except KeyboardInterrupt:
+        return EXIT_INTERRUPTED
+
+
+if __name__ == "__main__":
+    sys.exit(main())

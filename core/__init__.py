@@ -1,0 +1,53 @@
+"""Midstream: streaming disfluency and utterance-function tagging over recogniser words.
+
+The root package holds the domain types and the exception tree shared by every layer:
+``midstream.corpora`` reads annotated conversations, ``midstream.models`` tags them,
+``midstream.server`` serves the models over gRPC and ``midstream.client`` talks to it.
+"""
+
+from midstream._errors import (
+    CorpusNotFoundError,
+    EventError,
+    InputError,
+    LimitExceededError,
+    MidstreamError,
+    ModelError,
+    NotFoundError,
+    TranscriptFormatError,
+    UnavailableError,
+)
+from midstream._types import (
+    REMOVED_FROM_CLEAN_TEXT,
+    Conversation,
+    DisfluencyLabel,
+    HypothesisDiff,
+    Repair,
+    Utterance,
+    UtteranceFunction,
+    UtteranceHypothesis,
+    Word,
+    WordHypothesis,
+)
+
+__all__ = [
+    "REMOVED_FROM_CLEAN_TEXT",
+    "Conversation",
+    "CorpusNotFoundError",
+    "DisfluencyLabel",
+    "EventError",
+    "HypothesisDiff",
+    "InputError",
+    "LimitExceededError",
+    "MidstreamError",
+    "ModelError",
+    "NotFoundError",
+    "Repair",
+    "TranscriptFormatError",
+    "UnavailableError",
+    "Utterance",
+    "UtteranceFunction",
+    "UtteranceHypothesis",
+    "Word",
+    "WordHypothesis",
+]
+__version__ = "0.1.0"
