@@ -196,3 +196,18 @@ class HypothesisDiff:
 
     def __bool__(self) -> bool:
         return bool(self.words or self.utterances or self.withdrawn_word_ids)
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class HypothesisUpdate:
+    """One published update of a conversation: a diff with its place in the sequence.
+
+    ``seq`` counts a conversation's updates from 1 without gaps; ``server_time`` is Unix time in
+    seconds when the server published it. ``conversation_final`` is set on the update that
+    finalised everything when the conversation ended.
+    """
+
+    seq: int
+    server_time: float
+    diff: HypothesisDiff
+    conversation_final: bool = False
