@@ -16,6 +16,13 @@ from midstream._errors import (
     TranscriptFormatError,
     UnavailableError,
 )
+from midstream._schemes import (
+    SWBD42_CLASSES,
+    MappingRow,
+    coarse_function,
+    mapping_rows,
+    swbd42_class,
+)
 from midstream._types import (
     REMOVED_FROM_CLEAN_TEXT,
     Conversation,
@@ -32,6 +39,7 @@ from midstream._types import (
 
 __all__ = [
     "REMOVED_FROM_CLEAN_TEXT",
+    "SWBD42_CLASSES",
     "Conversation",
     "CorpusNotFoundError",
     "DisfluencyLabel",
@@ -40,6 +48,7 @@ __all__ = [
     "HypothesisUpdate",
     "InputError",
     "LimitExceededError",
+    "MappingRow",
     "MidstreamError",
     "ModelError",
     "NotFoundError",
@@ -51,5 +60,8 @@ __all__ = [
     "UtteranceHypothesis",
     "Word",
     "WordHypothesis",
+    "coarse_function",
+    "mapping_rows",
+    "swbd42_class",
 ]
 __version__ = "0.1.0"
