@@ -1,0 +1,238 @@
+"""The one adapter over python-crfsuite: load a linear-chain CRF from bytes, tag, train.
+
+No other module imports ``pycrfsuite``. Model bytes are checked here before they reach C code
+(a corrupt or truncated model file must give a :class:`~midstream.ModelError`, not a crash).
+
+Thread safety: a :class:`CrfTagger` keeps crfsuite's hidden per-sequence state (``set()`` then
+``tag()`` / ``marginal()``); every public method runs that whole sequence under one lock, so a
+tagger may be shared between threads, but calls are serialised. For parallel decoding give each
+thread its own tagger (``CrfTagger.from_bytes`` is cheap).
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+import struct
+import tempfile
+import threading
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from multiprocessing.connection import Connection
+from typing import Any
+
+import pycrfsuite
+from midstream._errors import InputError, ModelError
+
+__all__ = ["CrfTagger", "ItemFeatures", "TrainingOptions", "train_crf"]
+
+#: Features of one item (one word): attribute name to value (1.0 for an indicator).
+ItemFeatures = Mapping[str, float]
+
+# crfsuite's model header (crfsuite/lib/crf/src/crf1m_model.c): 4-byte magic "lCRF", then a
+# little-endian uint32 holding the whole file's size, then the 4-byte model type "FOMC".
+_MAGIC = b"lCRF"
+_MODEL_TYPE = b"FOMC"
+_HEADER_SIZE = 48
+
+
+def _check_model_bytes(data: bytes) -> None:
+    if len(data) < _HEADER_SIZE:
+        raise ModelError(f"CRF model truncated: {len(data)} bytes, header alone is {_HEADER_SIZE}")
+    if data[:4] != _MAGIC:
+        raise ModelError(f"not a CRF model: magic {data[:4]!r}, expected {_MAGIC!r}")
+    (size,) = struct.unpack_from("<I", data, 4)
+    if size != len(data):
+        raise ModelError(
+            f"CRF model truncated or padded: header says {size} bytes, got {len(data)}"
+        )
+    if data[8:12] != _MODEL_TYPE:
+        raise ModelError(f"unknown CRF model type {data[8:12]!r}, expected {_MODEL_TYPE!r}")
+    # Then version, three counts and five section offsets; an offset past the end would make
+    # crfsuite read out of bounds.
+    offsets = struct.unpack_from("<5I", data, 28)
+    if any(not _HEADER_SIZE <= offset <= size for offset in offsets):
+        raise ModelError(f"CRF model corrupt: section offsets {offsets} outside {size} bytes")
+
+
+class CrfTagger:
+    """A trained linear-chain CRF, loaded from bytes.
+
+    Examples
+    --------
+    >>> model = train_crf([[{"w=a": 1.0}, {"w=b": 1.0}]] * 3, [["x", "y"]] * 3,
+    ...                   max_iterations=20)
+    >>> tagger = CrfTagger.from_bytes(model)
+    >>> tagger.tag([{"w=a": 1.0}, {"w=b": 1.0}])
+    ['x', 'y']
+    """
+
+    def __init__(self, tagger: Any, data: bytes) -> None:
+        # Private: use from_bytes, which checks the bytes first.
+        self._tagger = tagger
+        # crfsuite reads the model in place: keep the buffer alive as long as the tagger.
+        self._data = data
+        self._labels: tuple[str, ...] = tuple(tagger.labels())
+        self._lock = threading.Lock()
+
+    @classmethod
+    def from_bytes(cls, data: bytes) -> CrfTagger:
+        """Load a model from the bytes crfsuite wrote (checked before they reach C)."""
+        data = bytes(data)
+        _check_model_bytes(data)
+        tagger = pycrfsuite.Tagger()
+        try:
+            tagger.open_inmemory(data)
+        except (ValueError, OSError) as exc:
+            raise ModelError(f"CRF model rejected by crfsuite: {exc}") from exc
+        return cls(tagger, data)
+
+    @property
+    def labels(self) -> tuple[str, ...]:
+        """The labels the model can predict, in the model's order."""
+        return self._labels
+
+    @property
+    def model_bytes(self) -> bytes:
+        return self._data
+
+    def tag(self, xseq: Sequence[ItemFeatures]) -> list[str]:
+        """Most probable label sequence (Viterbi) for ``xseq``."""
+        if not xseq:
+            return []
+        with self._lock:
+            self._tagger.set(_items(xseq))
+            return list(self._tagger.tag())
+
+    def tag_with_confidence(self, xseq: Sequence[ItemFeatures]) -> tuple[list[str], list[float]]:
+        """Viterbi labels and, for each, its marginal probability at that position."""
+        if not xseq:
+            return [], []
+        with self._lock:
+            self._tagger.set(_items(xseq))
+            labels: list[str] = list(self._tagger.tag())
+            confidences = [
+                float(self._tagger.marginal(label, t)) for t, label in enumerate(labels)
+            ]
+        return labels, confidences
+
+    def marginals(self, xseq: Sequence[ItemFeatures]) -> list[dict[str, float]]:
+        """Marginal probability of every label at every position."""
+        if not xseq:
+            return []
+        with self._lock:
+            self._tagger.set(_items(xseq))
+            return [
+                {label: float(self._tagger.marginal(label, t)) for label in self._labels}
+                for t in range(len(xseq))
+            ]
+
+
+def _items(xseq: Sequence[ItemFeatures]) -> list[dict[str, float]]:
+    # pycrfsuite accepts dicts of str to float; a Mapping that is not a dict is copied.
+    return [x if isinstance(x, dict) else dict(x) for x in xseq]
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class TrainingOptions:
+    """Hyper-parameters of L-BFGS training with elastic-net regularisation (see :func:`train_crf`).
+
+    ``c1`` weighs the L1 term (drives weights to exactly zero, shrinking the model), ``c2`` the
+    L2 term; ``min_freq`` drops attributes seen fewer times in the training data.
+    """
+
+    c1: float = 0.1
+    c2: float = 0.01
+    min_freq: int = 1
+    max_iterations: int = 200
+    all_possible_transitions: bool = True
+
+
+def train_crf(
+    xseqs: Sequence[Sequence[ItemFeatures]],
+    yseqs: Sequence[Sequence[str]],
+    *,
+    c1: float = 0.1,
+    c2: float = 0.01,
+    min_freq: int = 1,
+    max_iterations: int = 200,
+    all_possible_transitions: bool = True,
+) -> bytes:
+    """Train a CRF in a child process and return the model bytes.
+
+    crfsuite's training holds the GIL for its whole run; a child process keeps the caller's
+    threads (progress bars, servers) responsive. The child is forked so the training set need
+    not be pickled; training is started from the command line or tests, never from a threaded
+    server.
+
+    Raises
+    ------
+    InputError
+        Sequences and label sequences differ in number or length, or there is no data.
+    ModelError
+        crfsuite failed to train.
+    """
+    if len(xseqs) != len(yseqs):
+        raise InputError(f"{len(xseqs)} feature sequences but {len(yseqs)} label sequences")
+    for i, (x, y) in enumerate(zip(xseqs, yseqs, strict=True)):
+        if len(x) != len(y):
+            raise InputError(f"sequence {i}: {len(x)} items but {len(y)} labels")
+    if not any(xseqs):
+        raise InputError("no training data")
+    options = TrainingOptions(
+        c1=c1, c2=c2, min_freq=min_freq, max_iterations=max_iterations,
+        all_possible_transitions=all_possible_transitions,
+    )
+    method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
+    context = multiprocessing.get_context(method)
+    receiver, sender = context.Pipe(duplex=False)
+    process = context.Process(  # type: ignore[attr-defined]
+        target=_train_child, args=(sender, xseqs, yseqs, options), daemon=True
+    )
+    process.start()
+    sender.close()
+    try:
+        result = receiver.recv()
+    except EOFError as exc:
+        process.join()
+        raise ModelError(f"CRF training process died (exit code {process.exitcode})") from exc
+    finally:
+        receiver.close()
+    process.join()
+    if isinstance(result, str):
+        raise ModelError(f"CRF training failed: {result}")
+    assert isinstance(result, bytes)
+    _check_model_bytes(result)
+    return result
+
+
+def _train_child(
+    sender: Connection,
+    xseqs: Sequence[Sequence[ItemFeatures]],
+    yseqs: Sequence[Sequence[str]],
+    options: TrainingOptions,
+) -> None:
+    try:
+        trainer = pycrfsuite.Trainer(verbose=False)
+        for x, y in zip(xseqs, yseqs, strict=True):
+            if x:
+                trainer.append(_items(x), list(y))
+        trainer.select("lbfgs")
+        trainer.set_params(
+            {
+                "c1": options.c1,
+                "c2": options.c2,
+                "feature.minfreq": options.min_freq,
+                "max_iterations": options.max_iterations,
+                "feature.possible_transitions": options.all_possible_transitions,
+            }
+        )
+        with tempfile.TemporaryDirectory(prefix="midstream-crf-") as folder:
+            path = os.path.join(folder, "model.crfsuite")
+            trainer.train(path)
+            with open(path, "rb") as handle:
+                sender.send(handle.read())
+    except Exception as exc:  # reported to the parent, which raises ModelError
+        sender.send(f"{type(exc).__name__}: {exc}")
+    finally:
+        sender.close()
