@@ -1,0 +1,291 @@
+"""Conversion between wire messages and domain types, shared by the server and the client.
+
+Hand-written (unlike the ``*_pb2`` modules beside it). Generated protobuf types never travel
+further than the module that calls these functions: the servicer and the client library convert
+at their edge and hand domain dataclasses inward.
+
+The functions are pure and check only what the *shape* of a message can get wrong (an enum value
+this version does not know, a oneof left empty). Semantic checks of caller input (empty text,
+times going backwards, limits) belong to the server's edge validation, which names the limit.
+
+Examples
+--------
+>>> from midstream import DisfluencyLabel, WordHypothesis
+>>> state = WordHypothesis(word_id="w1", speaker="A", label=DisfluencyLabel.FILLER,
+...                        confidence=0.9, revision=0, final=False)
+>>> word_state_from_wire(word_state_to_wire(state)) == state
+True
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+
+from midstream._errors import EventError
+from midstream._types import (
+    DisfluencyLabel,
+    HypothesisDiff,
+    HypothesisUpdate,
+    UtteranceFunction,
+    UtteranceHypothesis,
+    Word,
+    WordHypothesis,
+)
+from midstream.wire import midstream_pb2 as pb
+
+__all__ = [
+    "diff_from_wire",
+    "function_from_wire",
+    "function_to_wire",
+    "hint_from_wire",
+    "hint_to_wire",
+    "label_from_wire",
+    "label_to_wire",
+    "snapshot_from_wire",
+    "snapshot_to_wire",
+    "spoken_word_from_wire",
+    "spoken_word_to_wire",
+    "update_from_wire",
+    "update_to_wire",
+    "utterance_state_from_wire",
+    "utterance_state_to_wire",
+    "word_state_from_wire",
+    "word_state_to_wire",
+]
+
+_LABEL_TO_WIRE: dict[DisfluencyLabel, pb.WordRole] = {
+    DisfluencyLabel.FLUENT: pb.WORD_ROLE_FLUENT,
+    DisfluencyLabel.FILLER: pb.WORD_ROLE_FILLER,
+    DisfluencyLabel.EDIT_TERM: pb.WORD_ROLE_EDIT_TERM,
+    DisfluencyLabel.DISCOURSE_MARKER: pb.WORD_ROLE_DISCOURSE_MARKER,
+    DisfluencyLabel.REPARANDUM: pb.WORD_ROLE_REPARANDUM,
+    DisfluencyLabel.REPAIR: pb.WORD_ROLE_REPAIR,
+    DisfluencyLabel.RESTART: pb.WORD_ROLE_RESTART,
+}
+_LABEL_FROM_WIRE: dict[int, DisfluencyLabel] = {int(v): k for k, v in _LABEL_TO_WIRE.items()}
+
+_FUNCTION_TO_WIRE: dict[UtteranceFunction, pb.Function] = {
+    UtteranceFunction.STATEMENT: pb.FUNCTION_STATEMENT,
+    UtteranceFunction.QUESTION: pb.FUNCTION_QUESTION,
+    UtteranceFunction.ANSWER: pb.FUNCTION_ANSWER,
+    UtteranceFunction.AGREEMENT: pb.FUNCTION_AGREEMENT,
+    UtteranceFunction.ACKNOWLEDGEMENT: pb.FUNCTION_ACKNOWLEDGEMENT,
+    UtteranceFunction.CLARIFICATION_REQUEST: pb.FUNCTION_CLARIFICATION_REQUEST,
+    UtteranceFunction.OTHER: pb.FUNCTION_OTHER,
+}
+_FUNCTION_FROM_WIRE: dict[int, UtteranceFunction] = {
+    int(v): k for k, v in _FUNCTION_TO_WIRE.items()
+}
+
+
+def label_to_wire(label: DisfluencyLabel) -> pb.WordRole:
+    """The wire role of a disfluency label."""
+    return _LABEL_TO_WIRE[label]
+
+
+def label_from_wire(role: int) -> DisfluencyLabel:
+    """The disfluency label of a wire role.
+
+    Raises
+    ------
+    EventError
+        For ``WORD_ROLE_UNSPECIFIED`` or a value this version does not know.
+    """
+    try:
+        return _LABEL_FROM_WIRE[int(role)]
+    except KeyError:
+        raise EventError(f"field 'role': unknown word role {int(role)}") from None
+
+
+def function_to_wire(function: UtteranceFunction) -> pb.Function:
+    """The wire value of a coarse utterance function."""
+    return _FUNCTION_TO_WIRE[function]
+
+
+def function_from_wire(value: int) -> UtteranceFunction:
+    """The coarse utterance function of a wire value.
+
+    Raises
+    ------
+    EventError
+        For ``FUNCTION_UNSPECIFIED`` or a value this version does not know.
+    """
+    try:
+        return _FUNCTION_FROM_WIRE[int(value)]
+    except KeyError:
+        raise EventError(f"field 'function': unknown utterance function {int(value)}") from None
+
+
+# --- ingest ------------------------------------------------------------------------------------
+
+
+def spoken_word_from_wire(message: pb.SpokenWord) -> tuple[str, Word]:
+    """``(word_id, Word)`` of a spoken word, text as sent (the engine normalises it).
+
+    Absent optional fields (times, confidence) become ``None``; nothing is validated here.
+    """
+    word = Word(
+        text=message.text,
+        speaker=message.speaker,
+        start=message.start_s if message.HasField("start_s") else None,
+        end=message.end_s if message.HasField("end_s") else None,
+        confidence=message.confidence if message.HasField("confidence") else None,
+    )
+    return message.word_id, word
+
+
+def spoken_word_to_wire(word_id: str, word: Word) -> pb.SpokenWord:
+    """The wire form of one recogniser word (``fragment`` has no wire field and is dropped)."""
+    message = pb.SpokenWord(word_id=word_id, speaker=word.speaker, text=word.text)
+    if word.start is not None:
+        message.start_s = word.start
+    if word.end is not None:
+        message.end_s = word.end
+    if word.confidence is not None:
+        message.confidence = word.confidence
+    return message
+
+
+def hint_from_wire(message: pb.SpeakerHint) -> tuple[str, bool]:
+    """``(speaker, turn_end)`` of a speaker hint.
+
+    Raises
+    ------
+    EventError
+        When the kind is unspecified or unknown.
+    """
+    if message.kind == pb.HINT_KIND_TURN_END:
+        return message.speaker, True
+    if message.kind == pb.HINT_KIND_UTTERANCE_END:
+        return message.speaker, False
+    raise EventError(f"field 'hint.kind': unknown or unspecified hint kind {int(message.kind)}")
+
+
+def hint_to_wire(speaker: str, *, turn_end: bool) -> pb.SpeakerHint:
+    """The wire form of an utterance-end (``turn_end=False``) or turn-end hint."""
+    kind = pb.HINT_KIND_TURN_END if turn_end else pb.HINT_KIND_UTTERANCE_END
+    return pb.SpeakerHint(speaker=speaker, kind=kind)
+
+
+# --- hypotheses --------------------------------------------------------------------------------
+
+
+def word_state_to_wire(state: WordHypothesis) -> pb.WordState:
+    """The wire form of a word hypothesis (``reparandum_of=None`` becomes ``repaired_by=""``)."""
+    return pb.WordState(
+        word_id=state.word_id,
+        speaker=state.speaker,
+        role=label_to_wire(state.label),
+        confidence=state.confidence,
+        revision=state.revision,
+        final=state.final,
+        repaired_by=state.reparandum_of or "",
+        interruption_point=state.interruption_point,
+    )
+
+
+def word_state_from_wire(message: pb.WordState) -> WordHypothesis:
+    """The word hypothesis of a wire word state."""
+    return WordHypothesis(
+        word_id=message.word_id,
+        speaker=message.speaker,
+        label=label_from_wire(message.role),
+        confidence=message.confidence,
+        revision=message.revision,
+        final=message.final,
+        reparandum_of=message.repaired_by or None,
+        interruption_point=message.interruption_point,
+    )
+
+
+def utterance_state_to_wire(state: UtteranceHypothesis) -> pb.UtteranceState:
+    """The wire form of an utterance hypothesis."""
+    return pb.UtteranceState(
+        utterance_id=state.utterance_id,
+        speaker=state.speaker,
+        word_ids=state.word_ids,
+        clean_text=state.clean_text,
+        function=function_to_wire(state.function),
+        fine_class=state.fine_class,
+        confidence=state.confidence,
+        revision=state.revision,
+        final=state.final,
+    )
+
+
+def utterance_state_from_wire(message: pb.UtteranceState) -> UtteranceHypothesis:
+    """The utterance hypothesis of a wire utterance state."""
+    return UtteranceHypothesis(
+        utterance_id=message.utterance_id,
+        speaker=message.speaker,
+        word_ids=tuple(message.word_ids),
+        clean_text=message.clean_text,
+        function=function_from_wire(message.function),
+        fine_class=message.fine_class,
+        confidence=message.confidence,
+        revision=message.revision,
+        final=message.final,
+    )
+
+
+def update_to_wire(update: HypothesisUpdate) -> pb.Update:
+    """The wire form of one published update."""
+    diff = update.diff
+    return pb.Update(
+        seq=update.seq,
+        server_time=update.server_time,
+        words=[word_state_to_wire(w) for w in diff.words],
+        utterances=[utterance_state_to_wire(u) for u in diff.utterances],
+        withdrawn_word_ids=diff.withdrawn_word_ids,
+        conversation_final=update.conversation_final,
+    )
+
+
+def diff_from_wire(message: pb.Update | pb.TagTranscriptReply) -> HypothesisDiff:
+    """The diff carried by an update (or the final states of a batch reply)."""
+    withdrawn: Iterable[str] = (
+        message.withdrawn_word_ids if isinstance(message, pb.Update) else ()
+    )
+    return HypothesisDiff(
+        words=tuple(word_state_from_wire(w) for w in message.words),
+        utterances=tuple(utterance_state_from_wire(u) for u in message.utterances),
+        withdrawn_word_ids=tuple(withdrawn),
+    )
+
+
+def update_from_wire(message: pb.Update) -> HypothesisUpdate:
+    """The published update of a wire update."""
+    return HypothesisUpdate(
+        seq=message.seq,
+        server_time=message.server_time,
+        diff=diff_from_wire(message),
+        conversation_final=message.conversation_final,
+    )
+
+
+def snapshot_to_wire(
+    seq: int,
+    words: Iterable[WordHypothesis],
+    utterances: Iterable[UtteranceHypothesis],
+    *,
+    conversation_final: bool,
+) -> pb.Snapshot:
+    """The wire form of a whole current state as of ``seq``."""
+    return pb.Snapshot(
+        seq=seq,
+        words=[word_state_to_wire(w) for w in words],
+        utterances=[utterance_state_to_wire(u) for u in utterances],
+        conversation_final=conversation_final,
+    )
+
+
+def snapshot_from_wire(
+    message: pb.Snapshot,
+) -> tuple[int, tuple[WordHypothesis, ...], tuple[UtteranceHypothesis, ...], bool]:
+    """``(seq, words, utterances, conversation_final)`` of a wire snapshot."""
+    return (
+        message.seq,
+        tuple(word_state_from_wire(w) for w in message.words),
+        tuple(utterance_state_from_wire(u) for u in message.utterances),
+        message.conversation_final,
+    )

@@ -1,0 +1,60 @@
+"""Round trips of the hand-written wire conversion shared by server and client."""
+
+from __future__ import annotations
+
+import pytest
+from midstream import (
+    DisfluencyLabel,
+    EventError,
+    HypothesisDiff,
+    HypothesisUpdate,
+    UtteranceFunction,
+    UtteranceHypothesis,
+    Word,
+    WordHypothesis,
+)
+from midstream.wire import _convert as cv
+from midstream.wire import midstream_pb2 as pb
+
+
+@pytest.mark.parametrize("label", list(DisfluencyLabel))
+def test_every_label_round_trips(label: DisfluencyLabel) -> None:
+    assert cv.label_from_wire(cv.label_to_wire(label)) is label
+
+
+@pytest.mark.parametrize("function", list(UtteranceFunction))
+def test_every_function_round_trips(function: UtteranceFunction) -> None:
+    assert cv.function_from_wire(cv.function_to_wire(function)) is function
+
+
+def test_unspecified_enums_are_refused_naming_the_field() -> None:
+    with pytest.raises(EventError, match="role"):
+        cv.label_from_wire(pb.WORD_ROLE_UNSPECIFIED)
+    with pytest.raises(EventError, match="function"):
+        cv.function_from_wire(99)
+    with pytest.raises(EventError, match=r"hint\.kind"):
+        cv.hint_from_wire(pb.SpeakerHint(speaker="A"))
+
+
+def test_spoken_word_keeps_absent_optionals_absent() -> None:
+    word = Word(text="Uh,", speaker="A", start=0.0, end=None, confidence=0.5)
+    message = cv.spoken_word_to_wire("w1", word)
+    assert message.HasField("start_s") and not message.HasField("end_s")
+    assert cv.spoken_word_from_wire(message) == ("w1", word)
+
+
+def test_update_round_trips() -> None:
+    word = WordHypothesis(word_id="w1", speaker="A", label=DisfluencyLabel.REPARANDUM,
+                          confidence=0.75, revision=2, final=True, reparandum_of="w3",
+                          interruption_point=True)
+    utt = UtteranceHypothesis(utterance_id="u1", speaker="A", word_ids=("w1", "w3"),
+                              clean_text="i went", function=UtteranceFunction.STATEMENT,
+                              fine_class="sd", confidence=0.5, revision=1, final=False)
+    update = HypothesisUpdate(seq=7, server_time=1.5e9,
+                              diff=HypothesisDiff(words=(word,), utterances=(utt,),
+                                                  withdrawn_word_ids=("w2",)),
+                              conversation_final=True)
+    assert cv.update_from_wire(cv.update_to_wire(update)) == update
+    snap = cv.snapshot_to_wire(7, [word], [utt], conversation_final=False)
+    assert cv.snapshot_from_wire(snap) == (7, (word,), (utt,), False)
+    assert cv.hint_from_wire(cv.hint_to_wire("B", turn_end=True)) == ("B", True)
