@@ -130,6 +130,11 @@ class Conversation:
 
     ``labels`` is ``None`` when the conversation carries no disfluency annotation at all: it
     must then never be scored as if every word were fluent.
+
+    ``interruption_points`` lists the words after which a speaker broke off, for corpora that
+    mark interruption points without the full repair structure (MRDA's `` - ``); it is empty
+    where a corpus marks none, and ``repairs`` carries the interruption points of full
+    annotations.
     """
 
     id: str
@@ -139,6 +144,7 @@ class Conversation:
     labels: tuple[DisfluencyLabel, ...] | None = None
     repairs: tuple[Repair, ...] = ()
     unbalanced_brackets: int = 0
+    interruption_points: tuple[int, ...] = ()
 
     @property
     def speakers(self) -> tuple[str, ...]:
