@@ -21,10 +21,12 @@ from dataclasses import dataclass
 from multiprocessing.connection import Connection
 from typing import Any
 
+import numpy as np
+import numpy.typing as npt
 import pycrfsuite
 from midstream._errors import InputError, ModelError
 
-__all__ = ["CrfTagger", "ItemFeatures", "TrainingOptions", "train_crf"]
+__all__ = ["CrfTagger", "CrfWeights", "ItemFeatures", "TrainingOptions", "train_crf"]
 
 #: Features of one item (one word): attribute name to value (1.0 for an indicator).
 ItemFeatures = Mapping[str, float]
@@ -53,6 +55,22 @@ def _check_model_bytes(data: bytes) -> None:
     offsets = struct.unpack_from("<5I", data, 28)
     if any(not _HEADER_SIZE <= offset <= size for offset in offsets):
         raise ModelError(f"CRF model corrupt: section offsets {offsets} outside {size} bytes")
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class CrfWeights:
+    """A linear-chain CRF's parameters as arrays, for decoders that score words themselves.
+
+    The score of a label sequence ``y`` for items with attribute sets ``A_t`` is
+    ``sum_t sum_{a in A_t} state[a, y_t] + sum_{t>0} transitions[y_{t-1}, y_t]`` (crfsuite's
+    first-order CRF has no start or end transitions). Attributes with no non-zero weight are
+    left out.
+    """
+
+    labels: tuple[str, ...]
+    attributes: dict[str, int]
+    state: npt.NDArray[np.float64]
+    transitions: npt.NDArray[np.float64]
 
 
 class CrfTagger:
@@ -95,6 +113,29 @@ class CrfTagger:
     @property
     def model_bytes(self) -> bytes:
         return self._data
+
+    def weights(self) -> CrfWeights:
+        """The model's weights as arrays (reads crfsuite's dump; a fraction of a second)."""
+        with self._lock:
+            info = self._tagger.info()
+        index = {label: k for k, label in enumerate(self._labels)}
+        transitions = np.zeros((len(self._labels), len(self._labels)))
+        for (source, target), weight in info.transitions.items():
+            transitions[index[source], index[target]] = weight
+        attributes: dict[str, int] = {}
+        rows: list[int] = []
+        cols: list[int] = []
+        values: list[float] = []
+        for (attribute, label), weight in info.state_features.items():
+            row = attributes.setdefault(attribute, len(attributes))
+            rows.append(row)
+            cols.append(index[label])
+            values.append(weight)
+        state = np.zeros((len(attributes), len(self._labels)))
+        state[rows, cols] = values
+        return CrfWeights(
+            labels=self._labels, attributes=attributes, state=state, transitions=transitions
+        )
 
     def tag(self, xseq: Sequence[ItemFeatures]) -> list[str]:
         """Most probable label sequence (Viterbi) for ``xseq``."""
