@@ -1,3 +1,11 @@
-"""Midstream's tagging models: features, the CRF adapter, incremental decoding, training."""
+"""Midstream's tagging models: features, the CRF adapter, incremental decoding, training.
 
-__all__: list[str] = []
+``ModelBundle`` loads the word tagger (disfluency roles and utterance ends) and the
+utterance-function tagger; ``ConversationEngine`` turns one conversation's recogniser events
+into hypothesis diffs.
+"""
+
+from midstream.models._bundle import ModelBundle, ModelInfo
+from midstream.models._engine import ConversationEngine, EngineConfig
+
+__all__ = ["ConversationEngine", "EngineConfig", "ModelBundle", "ModelInfo"]

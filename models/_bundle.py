@@ -1,0 +1,136 @@
+"""Loaded models as one unit: the word tagger and the utterance-function tagger.
+
+A :class:`ModelBundle` is immutable once loaded; the server swaps whole bundles on reload, so a
+live conversation keeps the bundle it started with. The models inside are shared by every
+engine the bundle makes: they are read-only, and every engine of a server runs on the one
+event-loop thread, so their calls never interleave.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+from midstream._errors import ModelError, NotFoundError
+from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
+from midstream.models._decoder import ChannelDecoder, DecoderConfig
+from midstream.models._engine import ConversationEngine, EngineConfig
+from midstream.models._functions import FunctionTagger
+from midstream.models._wordmodel import WordModel
+
+#: Largest model file read (explicit limit; the shipped models are a few MB).
+MAX_MODEL_BYTES = 256 * 1024 * 1024
+#: When a folder holds function models of several schemes, the first found here serves: the
+#: fine scheme gives both a fine class and (by summing marginals) a coarse function.
+_SCHEME_PREFERENCE = ("swbd42", "coarse")
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ModelInfo:
+    """What one loaded model is: kind, file name, format, labels, checksum, provenance."""
+
+    kind: str
+    name: str
+    format_version: int
+    labels: tuple[str, ...]
+    sha256: str
+    training_summary: Mapping[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class _Loaded:
+    artifact: ModelArtifact
+    info: ModelInfo
+
+
+class ModelBundle:
+    """The models one engine needs, loaded and checked.
+
+    Use :meth:`load_default` or :meth:`load_directory`; the constructor only stores.
+    """
+
+    def __init__(self, *, word_model: WordModel, function_tagger: FunctionTagger,
+                 infos: tuple[ModelInfo, ...], decoder: DecoderConfig | None = None,
+                 engine: EngineConfig | None = None) -> None:
+        self._word_model = word_model
+        self._function_tagger = function_tagger
+        self._infos = infos
+        self._decoder = decoder or DecoderConfig()
+        self._engine = engine or EngineConfig()
+
+    @classmethod
+    def load_default(cls) -> ModelBundle:
+        """The models shipped inside the package (``midstream/models/weights``)."""
+        return cls.load_directory(Path(str(resources.files("midstream.models") / "weights")))
+
+    @classmethod
+    def load_directory(cls, path: Path) -> ModelBundle:
+        """Load every ``.msm`` model in a folder: one word model and a function model.
+
+        Raises
+        ------
+        NotFoundError
+            The folder does not exist.
+        ModelError
+            A file is corrupt, truncated, of a newer format or of an unexpected kind, or the
+            folder lacks a word model or a function model.
+        """
+        if not path.is_dir():
+            raise NotFoundError(f"model folder {path} does not exist")
+        loaded = [_load(file) for file in sorted(path.glob("*.msm"))]
+        words = [m for m in loaded if m.artifact.kind == "words"]
+        functions = [m for m in loaded if m.artifact.kind == "utterance_functions"]
+        if len(words) != 1:
+            raise ModelError(f"{path}: expected exactly one word model (.msm of kind 'words'), "
+                             f"found {len(words)}")
+        if not functions:
+            raise ModelError(f"{path}: no utterance-function model (.msm of kind "
+                             "'utterance_functions') found")
+        by_scheme = {m.artifact.features.get("scheme"): m for m in functions}
+        chosen = next((by_scheme[s] for s in _SCHEME_PREFERENCE if s in by_scheme), functions[0])
+        word_model = WordModel.from_artifact(words[0].artifact)
+        function_tagger = FunctionTagger.from_artifact(chosen.artifact)
+        return cls(word_model=word_model, function_tagger=function_tagger,
+                   infos=(words[0].info, chosen.info))
+
+    def describe(self) -> tuple[ModelInfo, ...]:
+        """The models in this bundle, word model first."""
+        return self._infos
+
+    def new_engine(self) -> ConversationEngine:
+        """A fresh engine for one conversation (cheap: models are shared)."""
+        word_model, decoder = self._word_model, self._decoder
+        return ConversationEngine(
+            new_decoder=lambda: ChannelDecoder(word_model, decoder),
+            function_tagger=self._function_tagger, config=self._engine)
+
+    @property
+    def function_tagger(self) -> FunctionTagger:
+        return self._function_tagger
+
+    @property
+    def word_model(self) -> WordModel:
+        return self._word_model
+
+
+def _load(path: Path) -> _Loaded:
+    try:
+        size = path.stat().st_size
+        if size > MAX_MODEL_BYTES:
+            raise ModelError(f"{path}: {size} bytes exceeds the model size limit "
+                             f"{MAX_MODEL_BYTES}")
+        data = path.read_bytes()
+    except OSError as exc:
+        raise ModelError(f"{path}: cannot read model file: {exc.strerror}") from exc
+    artifact = ModelArtifact.from_bytes(data, source=str(path))
+    summary = dict(artifact.metadata)
+    summary.setdefault("hyper_parameters", dict(artifact.hyper_parameters))
+    info = ModelInfo(kind=artifact.kind, name=path.name, format_version=FORMAT_VERSION,
+                     labels=artifact.labels, sha256=hashlib.sha256(data).hexdigest(),
+                     training_summary=summary)
+    return _Loaded(artifact=artifact, info=info)
+

@@ -1,0 +1,396 @@
+"""The conversation engine: recogniser events in, hypothesis diffs out.
+
+One :class:`ConversationEngine` serves one conversation. Each speaker has a channel whose
+:class:`~midstream.models._decoder.ChannelDecoder` labels words and utterance ends as they
+arrive; the engine turns the decoder's token states into :class:`~midstream.WordHypothesis`
+values, splits each channel's open words into utterances at the currently hypothesised ends,
+labels every utterance whose cleaned words changed with the utterance-function tagger, and
+returns only what changed.
+
+Utterance ids are ``"<speaker>.<n>"``, numbered per speaker from 1. When a revised utterance
+end merges two tentative utterances, the later id is published once with no words and
+``final=True``: that utterance was dissolved.
+
+Memory is bounded however long the conversation runs: the decoders keep a bounded window,
+the engine keeps only open (non-final) words and utterances, a bounded number of recent word
+ids (to refuse duplicates) and a bounded context of final utterances. An engine is not safe to
+share between threads or tasks; create one per conversation.
+"""
+
+from __future__ import annotations
+
+from collections import OrderedDict, deque
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+
+from midstream._errors import EventError
+from midstream._types import (
+    REMOVED_FROM_CLEAN_TEXT,
+    DisfluencyLabel,
+    HypothesisDiff,
+    UtteranceFunction,
+    UtteranceHypothesis,
+    Word,
+    WordHypothesis,
+)
+from midstream.corpora._normalise import normalise_token
+from midstream.models._decoder import ChannelDecoder, TokenState
+from midstream.models._functions import FunctionGuess, FunctionTagger, UtteranceView
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class EngineConfig:
+    """Tuning of the conversation engine.
+
+    Parameters
+    ----------
+    confidence_step
+        An utterance whose function is unchanged is republished only when its confidence moved by
+        at least this much (common practice, no source: it keeps diffs small).
+    max_utterance_words
+        A channel's run of final words with no utterance end is closed as an (incomplete)
+        utterance at this length, so an utterance never grows without bound.
+    remembered_word_ids
+        How many recent word ids are remembered to refuse duplicates (an id older than this and
+        already final is forgotten).
+    """
+
+    confidence_step: float = 0.05
+    max_utterance_words: int = 80
+    remembered_word_ids: int = 4096
+
+
+@dataclass(slots=True)
+class _Slot:
+    """One word the engine has not forgotten yet."""
+
+    word_id: str
+    speaker: str
+    key: int
+    text: str
+    label: DisfluencyLabel = DisfluencyLabel.FLUENT
+    ends_utterance: bool = False
+    final: bool = False
+    published: WordHypothesis | None = None
+
+
+@dataclass(slots=True)
+class _OpenUtterance:
+    index: int
+    word_ids: tuple[str, ...] = ()
+    view: UtteranceView | None = None
+    published: UtteranceHypothesis | None = None
+
+
+@dataclass(slots=True)
+class _Channel:
+    speaker: str
+    decoder: ChannelDecoder
+    next_key: int = 0
+    slots: dict[int, _Slot] = field(default_factory=dict)
+    #: Keys of the words since the last final utterance end, in order.
+    open_keys: list[int] = field(default_factory=list)
+    #: Index of the first open utterance (1-based per speaker).
+    base_index: int = 1
+    utterances: list[_OpenUtterance] = field(default_factory=list)
+
+
+class ConversationEngine:
+    """Incremental tagging of one conversation.
+
+    Parameters
+    ----------
+    new_decoder
+        Makes a fresh channel decoder for each new speaker.
+    function_tagger
+        Labels the function of (partial) utterances.
+    config
+        Engine tuning; see :class:`EngineConfig`.
+    """
+
+    def __init__(self, *, new_decoder: Callable[[], ChannelDecoder],
+                 function_tagger: FunctionTagger, config: EngineConfig | None = None) -> None:
+        self._new_decoder = new_decoder
+        self._functions = function_tagger
+        self._config = config or EngineConfig()
+        self._channels: dict[str, _Channel] = {}
+        self._by_id: dict[str, _Slot] = {}
+        self._recent_ids: OrderedDict[str, None] = OrderedDict()
+        self._context: deque[UtteranceView] = deque(maxlen=max(function_tagger.context, 1))
+        self._last_speaker: str | None = None
+        self._finished = False
+
+    @property
+    def finished(self) -> bool:
+        """True once :meth:`finish` ran; every later event raises :class:`EventError`."""
+        return self._finished
+
+    # -- events ---------------------------------------------------------------------------
+
+    def add_word(self, word_id: str, word: Word) -> HypothesisDiff:
+        """Add a newly recognised word; returns what changed.
+
+        Raises
+        ------
+        EventError
+            The id was used before, the text has no speech content, or the engine finished.
+        """
+        self._check_open()
+        if word_id in self._by_id or word_id in self._recent_ids:
+            raise EventError(f"word id {word_id!r} was already used in this conversation")
+        token = normalise_token(word.text) if word.text.strip() else None
+        if token is None:
+            raise EventError(f"word {word_id!r}: text has no speech content")
+        channel = self._channel(word.speaker)
+        key = channel.next_key
+        channel.next_key += 1
+        slot = _Slot(word_id=word_id, speaker=word.speaker, key=key, text=token.text)
+        channel.slots[key] = slot
+        channel.open_keys.append(key)
+        self._by_id[word_id] = slot
+        self._remember(word_id)
+        after_other = self._last_speaker is not None and self._last_speaker != word.speaker
+        self._last_speaker = word.speaker
+        clean = _clean_word(word, token.text, token.fragment)
+        states = channel.decoder.append(key, clean, after_other_speaker=after_other)
+        return self._apply(channel, states)
+
+    def replace_word(self, word_id: str, word: Word) -> HypothesisDiff:
+        """The recogniser revised a recent word (same id, new text or times).
+
+        Raises
+        ------
+        EventError
+            Unknown or final word, a different speaker, no speech content, or engine finished.
+        """
+        self._check_open()
+        slot = self._open_slot(word_id, "replace")
+        if word.speaker != slot.speaker:
+            raise EventError(
+                f"word {word_id!r}: a replacement cannot move the word from speaker "
+                f"{slot.speaker!r} to {word.speaker!r}")
+        token = normalise_token(word.text) if word.text.strip() else None
+        if token is None:
+            raise EventError(f"word {word_id!r}: replacement text has no speech content")
+        slot.text = token.text
+        channel = self._channels[slot.speaker]
+        states = channel.decoder.replace(slot.key, _clean_word(word, token.text, token.fragment))
+        return self._apply(channel, states)
+
+    def withdraw_word(self, word_id: str) -> HypothesisDiff:
+        """The recogniser withdrew a recent word.
+
+        Raises
+        ------
+        EventError
+            Unknown or final word, or the engine finished.
+        """
+        self._check_open()
+        slot = self._open_slot(word_id, "withdraw")
+        channel = self._channels[slot.speaker]
+        states = channel.decoder.withdraw(slot.key)
+        del channel.slots[slot.key]
+        channel.open_keys.remove(slot.key)
+        del self._by_id[word_id]
+        return self._apply(channel, states, withdrawn=(word_id,))
+
+    def hint(self, speaker: str, *, turn_end: bool) -> HypothesisDiff:
+        """The caller says the speaker's utterance (or turn) ended after the last word sent.
+
+        Both hints close the open utterance and finalise its words; a turn end also means the
+        next word of this speaker follows another speaker. A hint for a speaker with no words
+        changes nothing.
+        """
+        self._check_open()
+        channel = self._channels.get(speaker)
+        if channel is None or not channel.open_keys:
+            return HypothesisDiff()
+        states = channel.decoder.close_utterance()
+        if turn_end and self._last_speaker == speaker:
+            self._last_speaker = None
+        return self._apply(channel, states, close_all=True)
+
+    def finish(self) -> HypothesisDiff:
+        """End of conversation: every word and utterance becomes final."""
+        self._check_open()
+        diffs = [self._apply(channel, channel.decoder.finish(), close_all=True)
+                 for channel in self._channels.values()]
+        self._finished = True
+        return _merge(diffs)
+
+    # -- internals ------------------------------------------------------------------------
+
+    def _check_open(self) -> None:
+        if self._finished:
+            raise EventError("the conversation has ended: no more events are accepted")
+
+    def _channel(self, speaker: str) -> _Channel:
+        channel = self._channels.get(speaker)
+        if channel is None:
+            channel = _Channel(speaker=speaker, decoder=self._new_decoder())
+            self._channels[speaker] = channel
+        return channel
+
+    def _open_slot(self, word_id: str, action: str) -> _Slot:
+        slot = self._by_id.get(word_id)
+        if slot is None:
+            if word_id in self._recent_ids:
+                raise EventError(f"cannot {action} word {word_id!r}: it is already final")
+            raise EventError(f"cannot {action} word {word_id!r}: no such word was sent")
+        if slot.final:
+            raise EventError(f"cannot {action} word {word_id!r}: it is already final")
+        return slot
+
+    def _remember(self, word_id: str) -> None:
+        self._recent_ids[word_id] = None
+        while len(self._recent_ids) > self._config.remembered_word_ids:
+            self._recent_ids.popitem(last=False)
+
+    def _apply(self, channel: _Channel, states: Iterable[TokenState], *,
+               withdrawn: tuple[str, ...] = (), close_all: bool = False) -> HypothesisDiff:
+        words: list[WordHypothesis] = []
+        for state in states:
+            slot = channel.slots.get(state.key)
+            if slot is None:
+                continue
+            slot.label = state.label
+            slot.ends_utterance = state.ends_utterance
+            slot.final = slot.final or state.final
+            onset = channel.slots.get(state.reparandum_onset_key) \
+                if state.reparandum_onset_key is not None else None
+            previous = slot.published
+            hypothesis = WordHypothesis(
+                word_id=slot.word_id, speaker=slot.speaker, label=state.label,
+                confidence=state.confidence,
+                revision=0 if previous is None else previous.revision + 1,
+                final=slot.final,
+                reparandum_of=onset.word_id if onset is not None else None,
+                interruption_point=state.interruption_point,
+            )
+            if previous is None or _word_changed(previous, hypothesis):
+                slot.published = hypothesis
+                words.append(hypothesis)
+        utterances = self._resegment(channel, close_all=close_all)
+        return HypothesisDiff(words=tuple(words), utterances=tuple(utterances),
+                              withdrawn_word_ids=withdrawn)
+
+    def _groups(self, channel: _Channel, close_all: bool) -> list[list[int]]:
+        """Split the channel's open words at the currently hypothesised utterance ends."""
+        groups: list[list[int]] = []
+        current: list[int] = []
+        for key in channel.open_keys:
+            current.append(key)
+            if channel.slots[key].ends_utterance:
+                groups.append(current)
+                current = []
+        if current:
+            groups.append(current)
+        if close_all:
+            return groups
+        # A run of final words with no end in sight is closed at the documented length.
+        limit = self._config.max_utterance_words
+        if groups and len(groups[0]) >= limit and all(
+                channel.slots[k].final for k in groups[0][:limit]):
+            head = groups[0]
+            groups[0:1] = [head[:limit], head[limit:]] if len(head) > limit else [head]
+        return groups
+
+    def _resegment(self, channel: _Channel, *, close_all: bool) -> list[UtteranceHypothesis]:
+        groups = self._groups(channel, close_all)
+        limit = self._config.max_utterance_words
+        published: list[UtteranceHypothesis] = []
+        old = channel.utterances
+        new: list[_OpenUtterance] = []
+        for position, keys in enumerate(groups):
+            slots = [channel.slots[k] for k in keys]
+            ended = slots[-1].ends_utterance or close_all or len(keys) >= limit
+            final = ended and all(s.final for s in slots) or close_all
+            entry = old[position] if position < len(old) else _OpenUtterance(
+                index=channel.base_index + position)
+            word_ids = tuple(s.word_id for s in slots)
+            clean = tuple(s.text for s in slots if s.label not in REMOVED_FROM_CLEAN_TEXT)
+            view = UtteranceView(speaker=channel.speaker, words=clean,
+                                 removed=len(slots) - len(clean), complete=ended)
+            if entry.view != view or entry.word_ids != word_ids or (
+                    final and not (entry.published and entry.published.final)):
+                guess = self._functions.label_partial(list(self._context), view) if clean \
+                    else _EMPTY_GUESS
+                hypothesis = self._utterance(entry, channel.speaker, word_ids, clean, guess, final)
+                if entry.published is None or _utterance_changed(
+                        entry.published, hypothesis, self._config.confidence_step):
+                    entry.published = hypothesis
+                    published.append(hypothesis)
+                entry.view, entry.word_ids = view, word_ids
+            new.append(entry)
+        for gone in old[len(new):]:
+            if gone.published is not None:
+                published.append(self._dissolved(gone, channel.speaker))
+        # Final leading utterances leave the open region and become context.
+        while new and new[0].published is not None and new[0].published.final:
+            done = new.pop(0)
+            for word_id in done.word_ids:
+                slot = self._by_id.pop(word_id, None)
+                if slot is not None:
+                    channel.slots.pop(slot.key, None)
+            del channel.open_keys[:len(done.word_ids)]
+            channel.base_index += 1
+            if done.view is not None and done.view.words:
+                self._context.append(done.view)
+        channel.utterances = new
+        return published
+
+    def _utterance(self, entry: _OpenUtterance, speaker: str, word_ids: tuple[str, ...],
+                   clean: tuple[str, ...], guess: FunctionGuess,
+                   final: bool) -> UtteranceHypothesis:
+        previous = entry.published
+        return UtteranceHypothesis(
+            utterance_id=f"{speaker}.{entry.index}", speaker=speaker, word_ids=word_ids,
+            clean_text=" ".join(clean), function=guess.function, fine_class=guess.label,
+            confidence=guess.function_confidence,
+            revision=0 if previous is None else previous.revision + 1, final=final,
+        )
+
+    @staticmethod
+    def _dissolved(entry: _OpenUtterance, speaker: str) -> UtteranceHypothesis:
+        previous = entry.published
+        assert previous is not None
+        return UtteranceHypothesis(
+            utterance_id=previous.utterance_id, speaker=speaker, word_ids=(), clean_text="",
+            function=previous.function, fine_class=previous.fine_class, confidence=0.0,
+            revision=previous.revision + 1, final=True,
+        )
+
+
+#: An utterance of nothing but disfluent words has no function to learn from.
+_EMPTY_GUESS = FunctionGuess(label="other", confidence=1.0, function=UtteranceFunction.OTHER,
+                             function_confidence=1.0)
+
+
+def _clean_word(word: Word, text: str, fragment: bool) -> Word:
+    return Word(text=text, speaker=word.speaker, start=word.start, end=word.end,
+                confidence=word.confidence, fragment=fragment)
+
+
+def _word_changed(old: WordHypothesis, new: WordHypothesis) -> bool:
+    return (old.label != new.label or old.final != new.final
+            or old.reparandum_of != new.reparandum_of
+            or old.interruption_point != new.interruption_point
+            or old.confidence != new.confidence)
+
+
+def _utterance_changed(old: UtteranceHypothesis, new: UtteranceHypothesis, step: float) -> bool:
+    return (old.function != new.function or old.fine_class != new.fine_class
+            or old.word_ids != new.word_ids or old.clean_text != new.clean_text
+            or old.final != new.final or abs(old.confidence - new.confidence) >= step)
+
+
+def _merge(diffs: Iterable[HypothesisDiff]) -> HypothesisDiff:
+    words: list[WordHypothesis] = []
+    utterances: list[UtteranceHypothesis] = []
+    withdrawn: list[str] = []
+    for diff in diffs:
+        words.extend(diff.words)
+        utterances.extend(diff.utterances)
+        withdrawn.extend(diff.withdrawn_word_ids)
+    return HypothesisDiff(words=tuple(words), utterances=tuple(utterances),
+                          withdrawn_word_ids=tuple(withdrawn))
