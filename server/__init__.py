@@ -1,3 +1,12 @@
-"""The gRPC service that adapts Midstream's models to the network."""
+"""The gRPC service that adapts Midstream's models to the network.
 
-__all__: list[str] = []
+:class:`MidstreamServer` owns one grpc.aio server (with health, reflection and optional
+Prometheus metrics) configured by :class:`ServerConfig` and its explicit :class:`ServerLimits`;
+:func:`status_code` is the one mapping from Midstream errors to gRPC status codes.
+"""
+
+from midstream.server._app import MidstreamServer
+from midstream.server._config import ServerConfig, ServerLimits
+from midstream.server._status import status_code
+
+__all__ = ["MidstreamServer", "ServerConfig", "ServerLimits", "status_code"]

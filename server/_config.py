@@ -1,0 +1,92 @@
+"""Configuration of the server: where it listens, what it loads, and its explicit limits.
+
+Both classes are frozen keyword-only dataclasses; constructing one opens nothing. Every limit
+and its default is listed (with the status code a violation gets) in ``docs/limits.md``.
+Environment variables are never read here: ``midstream serve`` reads them and passes values in.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ServerLimits:
+    """Explicit limits of one server; the defaults are documented in ``docs/limits.md``.
+
+    Units are in the names: ``_chars`` counts Unicode code points, ``_bytes`` bytes, ``_s``
+    seconds; everything else counts items.
+
+    Examples
+    --------
+    >>> ServerLimits(idle_timeout_s=5.0).idle_timeout_s
+    5.0
+    """
+
+    max_word_chars: int = 100
+    """Longest word text accepted, before normalisation."""
+    max_id_chars: int = 128
+    """Longest word id, speaker name or conversation id."""
+    max_words_per_message: int = 512
+    """Most words in one ``WordBatch``."""
+    max_live_conversations: int = 256
+    """Most conversations being ingested at once (ended ones do not count)."""
+    max_speakers_per_conversation: int = 16
+    """Most distinct speakers in one conversation."""
+    replay_updates: int = 4096
+    """Updates kept per conversation for followers to resume from."""
+    history_revisions: int = 65536
+    """Published word and utterance states kept per conversation for ``GetRevisions``."""
+    snapshot_states: int = 20000
+    """Latest word and utterance states kept per conversation for snapshots; oldest go first."""
+    max_followers_per_conversation: int = 32
+    """Most ``Follow`` streams on one conversation at once."""
+    follower_queue: int = 1024
+    """Messages one follower may have waiting before it is told it lagged."""
+    max_message_bytes: int = 4 * 1024 * 1024
+    """Largest gRPC message received or sent."""
+    idle_timeout_s: float = 300.0
+    """A ``Converse`` stream silent this long has its conversation finished."""
+    ended_retention_s: float = 600.0
+    """How long an ended conversation stays for late followers and ``GetRevisions``."""
+    max_ended_conversations: int = 1024
+    """Most ended conversations kept at once; the oldest-ended go first."""
+    max_transcript_items: int = 200_000
+    """Most items in one ``TagTranscript`` request."""
+
+    def __post_init__(self) -> None:
+        for name in (
+            "max_word_chars", "max_id_chars", "max_words_per_message", "max_live_conversations",
+            "max_speakers_per_conversation", "replay_updates", "history_revisions",
+            "snapshot_states", "max_followers_per_conversation", "follower_queue",
+            "max_message_bytes", "max_ended_conversations", "max_transcript_items",
+        ):
+            if getattr(self, name) < 1:
+                raise ValueError(f"ServerLimits.{name} must be at least 1")
+        if not self.idle_timeout_s > 0 or not self.ended_retention_s >= 0:
+            raise ValueError("ServerLimits: idle_timeout_s must be > 0, ended_retention_s >= 0")
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ServerConfig:
+    """Where and how one server runs.
+
+    ``port=0`` picks a free port (read it from :attr:`MidstreamServer.port` after ``start``).
+    ``models_dir=None`` serves the shipped default models. ``metrics_port=None`` serves no
+    metrics; ``0`` picks a free port. ``token`` (never shown in the repr) makes every call but
+    the health check require ``authorization: Bearer <token>`` metadata. ``require_tls`` refuses
+    to start without ``tls_cert`` and ``tls_key``. ``grace_s`` bounds a graceful stop.
+    """
+
+    host: str = "127.0.0.1"
+    port: int = 50051
+    models_dir: Path | None = None
+    metrics_host: str = "127.0.0.1"
+    metrics_port: int | None = None
+    tls_cert: Path | None = None
+    tls_key: Path | None = None
+    require_tls: bool = False
+    token: str | None = field(default=None, repr=False)
+    grace_s: float = 10.0
+    limits: ServerLimits = field(default_factory=ServerLimits)

@@ -1,0 +1,162 @@
+"""Validation of caller input at the edge, before anything reaches an engine.
+
+Every check raises a Midstream error whose message names the field (and the limit with its
+value) so a caller can fix the request; the status code follows from the error kind
+(``midstream.server._status``). Messages never quote word text: it may be sensitive and error
+messages end up in logs and metrics.
+
+:class:`SpeakerTimeline` is per conversation and bounded by the number of speakers.
+"""
+
+from __future__ import annotations
+
+import math
+import unicodedata
+
+from midstream._errors import EventError, LimitExceededError
+from midstream._types import Word
+from midstream.server._config import ServerLimits
+from midstream.server._status import FieldLimitError
+
+
+def check_id(value: str, field: str, limits: ServerLimits) -> None:
+    """Check a word id or speaker name: non-empty, bounded, printable.
+
+    Raises
+    ------
+    EventError
+        When empty or holding a control character.
+    FieldLimitError
+        When longer than ``max_id_chars``.
+    """
+    if not value.strip():
+        raise EventError(f"field {field!r} is empty")
+    if len(value) > limits.max_id_chars:
+        raise FieldLimitError(
+            "max_id_chars", limits.max_id_chars,
+            f"field {field!r} is {len(value)} characters long; "
+            f"limit max_id_chars is {limits.max_id_chars}",
+        )
+    if any(unicodedata.category(c) == "Cc" for c in value):
+        raise EventError(f"field {field!r} contains a control character")
+
+
+def _has_speech_characters(text: str) -> bool:
+    # Letters, digits, marks or symbols: anything but separators, controls and punctuation-free
+    # emptiness. Category "C*" is control/format/unassigned, "Z*" separators.
+    return any(unicodedata.category(c)[0] not in "CZ" for c in text)
+
+
+def check_word(word_id: str, word: Word, limits: ServerLimits) -> None:
+    """Check one recogniser word on its own (no conversation state).
+
+    Raises
+    ------
+    EventError
+        Empty or whitespace/control-only text, a non-finite or negative time, ``end`` before
+        ``start``, a confidence outside ``[0, 1]``.
+    FieldLimitError
+        Text longer than ``max_word_chars``, an id longer than ``max_id_chars``.
+    """
+    check_id(word_id, "word_id", limits)
+    where = f"word {word_id!r}"
+    check_id(word.speaker, f"speaker of {where}", limits)
+    if not word.text:
+        raise EventError(f"field 'text' of {where} is empty")
+    if len(word.text) > limits.max_word_chars:
+        raise FieldLimitError(
+            "max_word_chars", limits.max_word_chars,
+            f"field 'text' of {where} is {len(word.text)} characters long; "
+            f"limit max_word_chars is {limits.max_word_chars}",
+        )
+    if not _has_speech_characters(word.text):
+        raise EventError(f"field 'text' of {where} holds only whitespace or control characters")
+    for name, value in (("start_s", word.start), ("end_s", word.end)):
+        if value is not None and (not math.isfinite(value) or value < 0):
+            raise EventError(f"field {name!r} of {where} must be a finite number >= 0, not {value}")
+    if word.start is not None and word.end is not None and word.end < word.start:
+        raise EventError(
+            f"field 'end_s' of {where} ({word.end}) is before its 'start_s' ({word.start})"
+        )
+    if word.confidence is not None and not 0.0 <= word.confidence <= 1.0:
+        # NaN fails both comparisons and lands here too.
+        raise EventError(
+            f"field 'confidence' of {where} must be in [0, 1], not {word.confidence}"
+        )
+
+
+def check_batch_size(count: int, limits: ServerLimits) -> None:
+    """Check the number of words in one ``WordBatch``.
+
+    Raises
+    ------
+    EventError
+        For an empty batch.
+    FieldLimitError
+        For more than ``max_words_per_message`` words.
+    """
+    if count == 0:
+        raise EventError("field 'words' of the word batch is empty")
+    if count > limits.max_words_per_message:
+        raise FieldLimitError(
+            "max_words_per_message", limits.max_words_per_message,
+            f"the word batch holds {count} words; "
+            f"limit max_words_per_message is {limits.max_words_per_message}",
+        )
+
+
+class SpeakerTimeline:
+    """Per-conversation checks that need memory: speaker count and time order per speaker.
+
+    Memory is bounded by ``max_speakers_per_conversation`` entries. Not thread-safe.
+    """
+
+    def __init__(self, limits: ServerLimits) -> None:
+        self._limits = limits
+        self._last_start: dict[str, float] = {}
+        self._speakers: dict[str, None] = {}
+
+    @property
+    def speakers(self) -> tuple[str, ...]:
+        """Speakers in order of first appearance."""
+        return tuple(self._speakers)
+
+    def check_speaker(self, speaker: str) -> None:
+        """Check that ``speaker`` is known or may still join.
+
+        Raises
+        ------
+        LimitExceededError
+            When a new speaker would exceed ``max_speakers_per_conversation``.
+        """
+        limit = self._limits.max_speakers_per_conversation
+        if speaker not in self._speakers and len(self._speakers) >= limit:
+            raise LimitExceededError(
+                "max_speakers_per_conversation", limit,
+                f"a new speaker would be number {len(self._speakers) + 1}; "
+                f"limit max_speakers_per_conversation is {limit}",
+            )
+
+    def check_new_word(self, word_id: str, word: Word) -> None:
+        """Check a new word against its speaker's earlier words (start times never go back).
+
+        Raises
+        ------
+        EventError
+            When the word starts before the speaker's previous word started.
+        LimitExceededError
+            When its speaker would be one too many.
+        """
+        self.check_speaker(word.speaker)
+        last = self._last_start.get(word.speaker)
+        if word.start is not None and last is not None and word.start < last:
+            raise EventError(
+                f"field 'start_s' of word {word_id!r} ({word.start}) goes back before the "
+                f"previous start of speaker {word.speaker!r} ({last})"
+            )
+
+    def record(self, word: Word) -> None:
+        """Remember an accepted word (after the engine took it)."""
+        self._speakers.setdefault(word.speaker)
+        if word.start is not None:
+            self._last_start[word.speaker] = word.start

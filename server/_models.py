@@ -1,0 +1,70 @@
+"""What the server needs of the models, and how it loads them.
+
+The server depends on the conversation engine only through the two protocols below, which
+``midstream.models.ModelBundle`` and its engines satisfy; loading goes through
+``ModelBundle.load_default`` / ``ModelBundle.load_directory``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Protocol
+
+from midstream._types import HypothesisDiff, Word
+
+
+class ModelInfoLike(Protocol):
+    """One model's description (``midstream.models.ModelInfo``)."""
+
+    @property
+    def kind(self) -> str: ...
+    @property
+    def name(self) -> str: ...
+    @property
+    def format_version(self) -> int: ...
+    @property
+    def labels(self) -> Sequence[str]: ...
+    @property
+    def sha256(self) -> str: ...
+    @property
+    def training_summary(self) -> Mapping[str, object]: ...
+
+
+class Engine(Protocol):
+    """The conversation engine: one per conversation, not thread-safe.
+
+    Every method raises :class:`~midstream.EventError` for an event that breaks the protocol
+    (duplicate or unknown word id, correcting a final word, events after ``finish``, text with
+    no speech content) and returns only what changed.
+    """
+
+    def add_word(self, word_id: str, word: Word) -> HypothesisDiff: ...
+    def replace_word(self, word_id: str, word: Word) -> HypothesisDiff: ...
+    def withdraw_word(self, word_id: str) -> HypothesisDiff: ...
+    def hint(self, speaker: str, *, turn_end: bool) -> HypothesisDiff: ...
+    def finish(self) -> HypothesisDiff: ...
+
+
+class Bundle(Protocol):
+    """A loaded set of models that makes engines (``midstream.models.ModelBundle``)."""
+
+    def describe(self) -> tuple[ModelInfoLike, ...]: ...
+    def new_engine(self) -> Engine: ...
+
+
+def load_bundle(directory: Path | None) -> Bundle:
+    """Load the models in ``directory``, or the shipped default models when it is ``None``.
+
+    Blocking file I/O: call it off the event loop.
+
+    Raises
+    ------
+    ModelError
+        When a model file is missing, corrupt, truncated, of the wrong kind or a newer format.
+    """
+    from midstream.models import ModelBundle  # noqa: PLC0415 - the models load only on demand
+
+    if directory is None:
+        return ModelBundle.load_default()
+    return ModelBundle.load_directory(directory)

@@ -1,0 +1,353 @@
+"""The ``midstream.v1.Midstream`` service: converts wire messages and drives sessions.
+
+Generated protobuf types stop here: requests are converted to domain types with
+``midstream.wire._convert`` and checked by ``midstream.server._limits`` before a session or
+engine sees them. Every Midstream error an RPC raises is reported through one function
+(:func:`midstream.server._status.status_code`).
+
+A ``Converse`` stream is one RPC, so a refused event cannot be answered and then carried on
+from: the caller gets every update published up to the bad event, then the error status; the
+conversation is finished (all words final) and followers get the final update and ``ended``
+with ``END_REASON_REJECTED`` (see ``docs/service.md``).
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import logging
+import time
+from collections.abc import AsyncIterator
+from pathlib import Path
+from typing import Any, NoReturn
+
+import grpc
+from midstream._errors import EventError, MidstreamError, UnavailableError
+from midstream._types import HypothesisDiff, UtteranceHypothesis, WordHypothesis
+from midstream.server._config import ServerLimits
+from midstream.server._limits import SpeakerTimeline, check_batch_size, check_id, check_word
+from midstream.server._metrics import ServerMetrics
+from midstream.server._models import Bundle, load_bundle
+from midstream.server._session import Session, SessionRegistry
+from midstream.server._status import FieldLimitError, ProtocolStateError, status_code
+from midstream.wire import _convert as cv
+from midstream.wire import midstream_pb2 as pb
+from midstream.wire import midstream_pb2_grpc as pb_grpc
+
+_log = logging.getLogger(__name__)
+
+# Items of a TagTranscript request between two returns to the event loop, so one long batch
+# does not starve live streams (decodes themselves are never split).
+_BATCH_SLICE = 256
+
+
+class _Timeout:
+    """Marker: nothing arrived within the idle timeout."""
+
+
+class _Stopped:
+    """Marker: the conversation was finished by the server (shutdown) while waiting."""
+
+
+_TIMEOUT = _Timeout()
+_STOPPED = _Stopped()
+
+
+class MidstreamServicer(pb_grpc.MidstreamServicer):
+    """Implements every RPC of the service over one :class:`SessionRegistry`.
+
+    Use from the server's event loop only.
+    """
+
+    def __init__(self, bundle: Bundle, limits: ServerLimits, metrics: ServerMetrics) -> None:
+        self.bundle = bundle
+        self._limits = limits
+        self._metrics = metrics
+        self.registry = SessionRegistry(limits, metrics)
+        self.stopping = asyncio.Event()
+
+    async def _fail(self, context: grpc.aio.ServicerContext[Any, Any],
+                    error: MidstreamError) -> NoReturn:
+        code = status_code(error)
+        self._metrics.errors.labels(code=code.name).inc()
+        _log.info("RPC refused with %s: %s", code.name, error)
+        await context.abort(code, str(error))
+        raise AssertionError("abort returned")  # pragma: no cover - abort always raises
+
+    # --- Converse ------------------------------------------------------------------------
+
+    async def _next(self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
+                    stop: asyncio.Future[object]) -> object:
+        """The next event, ``grpc.aio.EOF``, or a marker for an idle timeout or a stop."""
+        read: asyncio.Future[object] = asyncio.ensure_future(context.read())
+        try:
+            done, _ = await asyncio.wait(
+                {read, stop}, timeout=self._limits.idle_timeout_s,
+                return_when=asyncio.FIRST_COMPLETED,
+            )
+        finally:
+            if not read.done():
+                read.cancel()
+        if stop in done:
+            return _STOPPED
+        if read in done:
+            return read.result()
+        return _TIMEOUT
+
+    async def Converse(  # noqa: N802 - the generated servicer's name
+        self, request_iterator: AsyncIterator[pb.ClientEvent],
+        context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
+    ) -> AsyncIterator[pb.ServerMessage]:
+        stop_waiter: asyncio.Future[object] = asyncio.ensure_future(self.stopping.wait())
+        try:
+            first = await self._next(context, stop_waiter)
+            if not isinstance(first, pb.ClientEvent):
+                if first is _STOPPED:
+                    await self._fail(context, UnavailableError("the server is shutting down"))
+                if first is _TIMEOUT:
+                    await self._fail(context, ProtocolStateError(
+                        f"no 'open' event within idle_timeout_s "
+                        f"({self._limits.idle_timeout_s} s)"))
+                await self._fail(context, ProtocolStateError(
+                    "the stream ended before its first event, which must be 'open'"))
+            if first.WhichOneof("event") != "open":
+                await self._fail(context, ProtocolStateError(
+                    f"the first event must be 'open', not {first.WhichOneof('event')!r}"))
+            if self.stopping.is_set():
+                await self._fail(context, UnavailableError("the server is shutting down"))
+            try:
+                session = self.registry.open(first.open.conversation_id, self.bundle)
+            except MidstreamError as exc:
+                await self._fail(context, exc)
+            yield pb.ServerMessage(welcome=pb.Welcome(
+                conversation_id=session.id, next_seq=session.seq + 1))
+            async for message in self._converse(session, context, stop_waiter):
+                yield message
+        finally:
+            stop_waiter.cancel()
+
+    async def _converse(
+        self, session: Session,
+        context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
+        stop_waiter: asyncio.Future[object],
+    ) -> AsyncIterator[pb.ServerMessage]:
+        sent = 0  # the last sequence number the caller was given
+        ended_waiter: asyncio.Future[object] = asyncio.ensure_future(session.ended.wait())
+        try:
+            while True:
+                event = await self._next(context, ended_waiter)
+                if event is _STOPPED or not session.live:
+                    # Finished by the server (shutdown): hand over the rest and the end.
+                    for message in (*session.since(sent), session.closing_messages[-1]):
+                        yield message
+                    return
+                if isinstance(event, _Timeout) or event is grpc.aio.EOF:
+                    reason = (pb.END_REASON_IDLE_TIMEOUT if isinstance(event, _Timeout)
+                              else pb.END_REASON_CLOSED)
+                    self.registry.close(session, reason)
+                    for message in (*session.since(sent), session.closing_messages[-1]):
+                        yield message
+                    return
+                assert isinstance(event, pb.ClientEvent)
+                try:
+                    closing = self._apply(session, event, time.monotonic())
+                except MidstreamError as exc:
+                    self.registry.close(session, pb.END_REASON_REJECTED)
+                    for message in session.since(sent):
+                        yield message
+                    await self._fail(context, exc)
+                for message in session.since(sent):
+                    sent = message.update.seq
+                    yield message
+                if closing:
+                    self.registry.close(session, pb.END_REASON_CLOSED)
+                    for message in (*session.since(sent), session.closing_messages[-1]):
+                        yield message
+                    await self._after_close(context, session)
+                    return
+        finally:
+            ended_waiter.cancel()
+            if session.live:
+                # Cancelled or the caller went away mid-stream: finalise for the followers.
+                self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
+
+    async def _after_close(self, context: grpc.aio.ServicerContext[pb.ClientEvent,
+                                                                  pb.ServerMessage],
+                           session: Session) -> None:
+        """Wait for the caller's half-close; any further event is refused."""
+        stop_waiter: asyncio.Future[object] = asyncio.ensure_future(self.stopping.wait())
+        try:
+            event = await self._next(context, stop_waiter)
+        finally:
+            stop_waiter.cancel()
+        if isinstance(event, pb.ClientEvent):
+            await self._fail(context, ProtocolStateError(
+                f"event {event.WhichOneof('event')!r} after 'close': conversation "
+                f"{session.id} has ended"))
+
+    def _apply(self, session: Session, event: pb.ClientEvent, received: float) -> bool:
+        """Apply one event; return whether it was ``close``. Never awaits."""
+        kind = event.WhichOneof("event")
+        if kind == "words":
+            check_batch_size(len(event.words.words), self._limits)
+            words = [cv.spoken_word_from_wire(w) for w in event.words.words]
+            for word_id, word in words:
+                check_word(word_id, word, self._limits)
+            session.add_words(words, received)
+        elif kind == "replace":
+            word_id, word = cv.spoken_word_from_wire(event.replace.word)
+            check_word(word_id, word, self._limits)
+            session.replace_word(word_id, word, received)
+        elif kind == "withdraw":
+            check_id(event.withdraw.word_id, "withdraw.word_id", self._limits)
+            session.withdraw_word(event.withdraw.word_id, received)
+        elif kind == "hint":
+            speaker, turn_end = cv.hint_from_wire(event.hint)
+            session.hint(speaker, turn_end=turn_end, received=received)
+        elif kind == "close":
+            return True
+        elif kind == "open":
+            raise ProtocolStateError(f"'open' may only be the first event (conversation "
+                                     f"{session.id} is already open)")
+        else:
+            raise EventError("the event is empty: set one of words, replace, withdraw, hint, "
+                             "close")
+        return False
+
+    # --- Follow, list, revisions ---------------------------------------------------------
+
+    async def Follow(  # noqa: N802
+        self, request: pb.FollowRequest,
+        context: grpc.aio.ServicerContext[pb.FollowRequest, pb.ServerMessage],
+    ) -> AsyncIterator[pb.ServerMessage]:
+        try:
+            session = self.registry.get(request.conversation_id)
+            from_seq = request.from_seq if request.HasField("from_seq") else None
+            backlog, follower = session.follow(from_seq)
+        except MidstreamError as exc:
+            await self._fail(context, exc)
+        if follower is None:
+            for message in backlog:
+                yield message
+            return
+        try:
+            async for message in follower.messages(backlog):
+                yield message
+        finally:
+            session.unfollow(follower)
+
+    async def ListConversations(  # noqa: N802
+        self, request: pb.ListConversationsRequest,
+        context: grpc.aio.ServicerContext[pb.ListConversationsRequest,
+                                          pb.ListConversationsReply],
+    ) -> pb.ListConversationsReply:
+        return pb.ListConversationsReply(
+            conversations=[s.summary() for s in self.registry.sessions()])
+
+    async def GetRevisions(  # noqa: N802
+        self, request: pb.GetRevisionsRequest,
+        context: grpc.aio.ServicerContext[pb.GetRevisionsRequest, pb.GetRevisionsReply],
+    ) -> pb.GetRevisionsReply:
+        try:
+            session = self.registry.get(request.conversation_id)
+        except MidstreamError as exc:
+            await self._fail(context, exc)
+        kept, truncated = session.revisions()
+        revisions = []
+        for seq, when, state in kept:
+            if isinstance(state, WordHypothesis):
+                revisions.append(pb.Revision(seq=seq, server_time=when,
+                                             word=cv.word_state_to_wire(state)))
+            else:
+                revisions.append(pb.Revision(seq=seq, server_time=when,
+                                             utterance=cv.utterance_state_to_wire(state)))
+        return pb.GetRevisionsReply(conversation_id=session.id, revisions=revisions,
+                                    truncated=truncated)
+
+    # --- batch -----------------------------------------------------------------------------
+
+    async def TagTranscript(  # noqa: N802
+        self, request: pb.TagTranscriptRequest,
+        context: grpc.aio.ServicerContext[pb.TagTranscriptRequest, pb.TagTranscriptReply],
+    ) -> pb.TagTranscriptReply:
+        try:
+            words, utterances = await self._tag(request)
+        except MidstreamError as exc:
+            await self._fail(context, exc)
+        return pb.TagTranscriptReply(
+            words=[cv.word_state_to_wire(w) for w in words],
+            utterances=[cv.utterance_state_to_wire(u) for u in utterances],
+        )
+
+    async def _tag(self, request: pb.TagTranscriptRequest,
+                   ) -> tuple[list[WordHypothesis], list[UtteranceHypothesis]]:
+        limit = self._limits.max_transcript_items
+        if len(request.items) > limit:
+            raise FieldLimitError(
+                "max_transcript_items", limit,
+                f"the transcript holds {len(request.items)} items; "
+                f"limit max_transcript_items is {limit}",
+            )
+        engine = self.bundle.new_engine()
+        timeline = SpeakerTimeline(self._limits)
+        words: dict[str, WordHypothesis] = {}
+        utterances: dict[str, UtteranceHypothesis] = {}
+
+        def keep(diff: HypothesisDiff) -> None:
+            for word in diff.words:
+                words[word.word_id] = word
+            for utterance in diff.utterances:
+                utterances[utterance.utterance_id] = utterance
+
+        for index, item in enumerate(request.items):
+            if index and index % _BATCH_SLICE == 0:
+                await asyncio.sleep(0)
+            kind = item.WhichOneof("item")
+            if kind == "word":
+                word_id, word = cv.spoken_word_from_wire(item.word)
+                check_word(word_id, word, self._limits)
+                timeline.check_new_word(word_id, word)
+                keep(engine.add_word(word_id, word))
+                timeline.record(word)
+            elif kind == "hint":
+                speaker, turn_end = cv.hint_from_wire(item.hint)
+                check_id(speaker, "hint.speaker", self._limits)
+                timeline.check_speaker(speaker)
+                keep(engine.hint(speaker, turn_end=turn_end))
+            else:
+                raise EventError("the item is empty: set word or hint")
+        keep(engine.finish())
+        return list(words.values()), list(utterances.values())
+
+    # --- models ----------------------------------------------------------------------------
+
+    def _describe(self) -> pb.DescribeModelsReply:
+        return pb.DescribeModelsReply(models=[
+            pb.ModelDescription(
+                kind=info.kind, name=info.name, format_version=info.format_version,
+                labels=list(info.labels), sha256=info.sha256,
+                training_summary_json=json.dumps(dict(info.training_summary), sort_keys=True),
+            )
+            for info in self.bundle.describe()
+        ])
+
+    async def DescribeModels(  # noqa: N802
+        self, request: pb.DescribeModelsRequest,
+        context: grpc.aio.ServicerContext[pb.DescribeModelsRequest, pb.DescribeModelsReply],
+    ) -> pb.DescribeModelsReply:
+        return self._describe()
+
+    async def ReloadModels(  # noqa: N802
+        self, request: pb.ReloadModelsRequest,
+        context: grpc.aio.ServicerContext[pb.ReloadModelsRequest, pb.DescribeModelsReply],
+    ) -> pb.DescribeModelsReply:
+        try:
+            if not request.directory:
+                raise EventError("field 'directory' is empty")
+            bundle = await asyncio.to_thread(load_bundle, Path(request.directory))
+        except MidstreamError as exc:
+            await self._fail(context, exc)
+        # Live sessions keep the engine they were opened with; new ones use this bundle.
+        self.bundle = bundle
+        _log.info("models reloaded from %s", request.directory)
+        return self._describe()

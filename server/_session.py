@@ -1,0 +1,454 @@
+"""Per-conversation state: sequence numbers, what was published, the replay buffer, followers.
+
+One :class:`Session` per conversation owns its engine while the conversation is live. Every
+method runs synchronously on the event loop thread and never awaits, so an engine call, the
+update it produces and its delivery to every follower's queue happen as one step: no follower
+can register between an update and its delivery, and none can miss or see one twice.
+
+Memory is bounded per conversation by :class:`~midstream.server.ServerLimits`: the replay buffer
+(``replay_updates`` updates), the revision history (``history_revisions`` states), the latest
+states for snapshots (``snapshot_states``) and each follower's queue (``follower_queue``).
+
+A follower whose queue fills is never waited for: its queue is dropped and, when it reads
+again, it gets a ``gap`` (``LAGGED``) and a snapshot of the state at that moment, then live
+updates. The ingesting caller is therefore never slowed by a follower.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import secrets
+import time
+from collections import OrderedDict, deque
+from collections.abc import AsyncIterator, Iterable
+from typing import TypeVar
+
+from midstream._errors import EventError, LimitExceededError, NotFoundError
+from midstream._types import (
+    HypothesisDiff,
+    HypothesisUpdate,
+    UtteranceHypothesis,
+    Word,
+    WordHypothesis,
+)
+from midstream.server._config import ServerLimits
+from midstream.server._limits import SpeakerTimeline, check_id
+from midstream.server._metrics import ServerMetrics
+from midstream.server._models import Bundle, Engine
+from midstream.server._status import ConflictError, PositionError
+from midstream.wire import _convert as cv
+from midstream.wire import midstream_pb2 as pb
+
+_log = logging.getLogger(__name__)
+
+State = WordHypothesis | UtteranceHypothesis
+_S = TypeVar("_S", WordHypothesis, UtteranceHypothesis)
+
+
+def merge_diffs(diffs: Iterable[HypothesisDiff]) -> HypothesisDiff:
+    """One diff with the latest state of everything the given diffs (in order) touched."""
+    words: dict[str, WordHypothesis] = {}
+    utterances: dict[str, UtteranceHypothesis] = {}
+    withdrawn: dict[str, None] = {}
+    for diff in diffs:
+        for word in diff.words:
+            withdrawn.pop(word.word_id, None)
+            words[word.word_id] = word
+        for utterance in diff.utterances:
+            utterances[utterance.utterance_id] = utterance
+        for word_id in diff.withdrawn_word_ids:
+            words.pop(word_id, None)
+            withdrawn[word_id] = None
+    return HypothesisDiff(
+        words=tuple(words.values()), utterances=tuple(utterances.values()),
+        withdrawn_word_ids=tuple(withdrawn),
+    )
+
+
+class Follower:
+    """One ``Follow`` stream's bounded queue; filled by the session, drained by the stream."""
+
+    def __init__(self, session: Session, capacity: int) -> None:
+        self._session = session
+        self._capacity = capacity
+        self._queue: deque[pb.ServerMessage] = deque()
+        self._wake = asyncio.Event()
+        self._lagged_from: int | None = None
+        self.delivered_seq = 0
+
+    def offer(self, message: pb.ServerMessage, seq: int) -> None:
+        """Queue an update, or mark the follower lagged when its queue is full."""
+        if self._lagged_from is not None:
+            return
+        if len(self._queue) >= self._capacity:
+            # Drop what is queued: the snapshot sent on catching up replaces all of it.
+            first = self._queue[0].update.seq if self._queue else seq
+            self._queue.clear()
+            self._lagged_from = first
+            _log.info("follower of conversation %s lagged at seq %d", self._session.id, first)
+        else:
+            self._queue.append(message)
+        self._wake.set()
+
+    def push_end(self, message: pb.ServerMessage) -> None:
+        """Queue the ``ended`` message; never dropped (it is the last one)."""
+        self._queue.append(message)
+        self._wake.set()
+
+    async def messages(self, backlog: list[pb.ServerMessage]) -> AsyncIterator[pb.ServerMessage]:
+        """The messages for this follower: ``backlog`` first, then live ones until ``ended``."""
+        for message in backlog:
+            yield message
+            if message.HasField("ended"):
+                return
+        while True:
+            if self._lagged_from is not None:
+                # Build both before yielding so that nothing published in between is lost.
+                gap = pb.ServerMessage(gap=pb.Gap(
+                    first_missing=self._lagged_from, oldest_kept=self._session.oldest_kept,
+                    reason=pb.GAP_REASON_LAGGED,
+                ))
+                snapshot = self._session.snapshot_message()
+                self._lagged_from = None
+                yield gap
+                yield snapshot
+                continue
+            if self._queue:
+                message = self._queue.popleft()
+                yield message
+                if message.HasField("ended"):
+                    return
+                continue
+            self._wake.clear()
+            await self._wake.wait()
+
+
+class Session:
+    """One conversation: its engine while live, and what it published.
+
+    Not thread-safe: use it from the event loop thread only.
+    """
+
+    def __init__(self, conversation_id: str, engine: Engine, limits: ServerLimits,
+                 metrics: ServerMetrics) -> None:
+        self.id = conversation_id
+        self.started_at = time.time()
+        self.limits = limits
+        self.timeline = SpeakerTimeline(limits)
+        self.word_count = 0
+        self.seq = 0
+        self.end_reason: pb.EndReason | None = None
+        self.ended_at: float | None = None
+        self.ended = asyncio.Event()
+        self.closing_messages: tuple[pb.ServerMessage, ...] = ()
+        self._engine: Engine | None = engine
+        self._metrics = metrics
+        self._replay: deque[pb.ServerMessage] = deque(maxlen=limits.replay_updates)
+        self._words: OrderedDict[str, WordHypothesis] = OrderedDict()
+        self._utterances: OrderedDict[str, UtteranceHypothesis] = OrderedDict()
+        self._revisions: deque[tuple[int, float, State]] = deque(maxlen=limits.history_revisions)
+        self.revisions_truncated = False
+        self._followers: set[Follower] = set()
+
+    # --- ingest ---------------------------------------------------------------------------
+
+    @property
+    def live(self) -> bool:
+        return self._engine is not None
+
+    def _engine_or_error(self) -> Engine:
+        if self._engine is None:
+            raise EventError(f"conversation {self.id} has ended; no more events are taken")
+        return self._engine
+
+    def add_words(self, words: list[tuple[str, Word]], received: float) -> pb.ServerMessage | None:
+        """Give validated words to the engine; publish one update for the whole batch.
+
+        On an engine error the words before the bad one stay applied and their update is
+        published before the error propagates.
+        """
+        engine = self._engine_or_error()
+        diffs: list[HypothesisDiff] = []
+        try:
+            for word_id, word in words:
+                self.timeline.check_new_word(word_id, word)
+                diffs.append(engine.add_word(word_id, word))
+                self.timeline.record(word)
+                self.word_count += 1
+                self._metrics.words.inc()
+        finally:
+            message = self._publish(merge_diffs(diffs), received) if diffs else None
+        return message
+
+    def replace_word(self, word_id: str, word: Word, received: float) -> pb.ServerMessage | None:
+        """The recogniser revised a word (same id, new text or times)."""
+        engine = self._engine_or_error()
+        self.timeline.check_speaker(word.speaker)
+        diff = engine.replace_word(word_id, word)
+        self.timeline.record(word)
+        return self._publish(diff, received)
+
+    def withdraw_word(self, word_id: str, received: float) -> pb.ServerMessage | None:
+        """The recogniser withdrew a word."""
+        diff = self._engine_or_error().withdraw_word(word_id)
+        return self._publish(diff, received)
+
+    def hint(self, speaker: str, *, turn_end: bool, received: float) -> pb.ServerMessage | None:
+        """An utterance or turn of ``speaker`` ended."""
+        engine = self._engine_or_error()
+        check_id(speaker, "hint.speaker", self.limits)
+        self.timeline.check_speaker(speaker)
+        return self._publish(engine.hint(speaker, turn_end=turn_end), received)
+
+    def finish(self, reason: pb.EndReason) -> tuple[pb.ServerMessage, ...]:
+        """Finalise everything and end the conversation; idempotent.
+
+        Returns the final update and the ``ended`` message (also queued to every follower).
+        The first call's reason wins.
+        """
+        if self._engine is None:
+            return self.closing_messages
+        engine, self._engine = self._engine, None
+        try:
+            diff = engine.finish()
+        except EventError:
+            # The engine already ended (it should not have): publish the final mark anyway so
+            # followers are not left waiting.
+            _log.exception("engine of conversation %s refused finish", self.id)
+            diff = HypothesisDiff()
+        final = self._publish(diff, None, final=True)
+        assert final is not None  # a final update is always published
+        self.end_reason = reason
+        self.ended_at = time.time()
+        ended = pb.ServerMessage(ended=pb.Ended(reason=reason, last_seq=self.seq))
+        for follower in self._followers:
+            follower.push_end(ended)
+        self._followers.clear()
+        self.closing_messages = (final, ended)
+        self.ended.set()
+        _log.info("conversation %s ended (%s) after %d words, %d updates",
+                  self.id, pb.EndReason.Name(reason), self.word_count, self.seq)
+        return self.closing_messages
+
+    def _publish(self, diff: HypothesisDiff, received: float | None, *,
+                 final: bool = False) -> pb.ServerMessage | None:
+        if not diff and not final:
+            return None
+        self.seq += 1
+        now = time.time()
+        update = HypothesisUpdate(seq=self.seq, server_time=now, diff=diff,
+                                  conversation_final=final)
+        message = pb.ServerMessage(update=cv.update_to_wire(update))
+        self._replay.append(message)
+        revised = 0
+        for word in diff.words:
+            self._keep(self._words, word.word_id, word)
+            self._remember(now, word)
+            revised += word.revision > 0
+        for utterance in diff.utterances:
+            self._keep(self._utterances, utterance.utterance_id, utterance)
+            self._remember(now, utterance)
+            revised += utterance.revision > 0
+        for word_id in diff.withdrawn_word_ids:
+            self._words.pop(word_id, None)
+        for follower in self._followers:
+            follower.offer(message, self.seq)
+        if revised:
+            self._metrics.revisions.inc(revised)
+        if received is not None:
+            self._metrics.latency.observe(time.monotonic() - received)
+        return message
+
+    def _keep(self, table: OrderedDict[str, _S], key: str, state: _S) -> None:
+        table[key] = state
+        if len(table) > self.limits.snapshot_states:
+            table.popitem(last=False)
+
+    def _remember(self, now: float, state: State) -> None:
+        if len(self._revisions) == self._revisions.maxlen:
+            self.revisions_truncated = True
+        self._revisions.append((self.seq, now, state))
+
+    # --- reading ---------------------------------------------------------------------------
+
+    @property
+    def oldest_kept(self) -> int:
+        """The oldest sequence number still in the replay buffer (``seq + 1`` when empty)."""
+        return self._replay[0].update.seq if self._replay else self.seq + 1
+
+    def since(self, seq: int) -> list[pb.ServerMessage]:
+        """Updates in the replay buffer after ``seq``, oldest first."""
+        newer: list[pb.ServerMessage] = []
+        for message in reversed(self._replay):
+            if message.update.seq <= seq:
+                break
+            newer.append(message)
+        newer.reverse()
+        return newer
+
+    def snapshot_message(self) -> pb.ServerMessage:
+        """The whole kept state as of the current sequence number."""
+        return pb.ServerMessage(snapshot=cv.snapshot_to_wire(
+            self.seq, self._words.values(), self._utterances.values(),
+            conversation_final=not self.live,
+        ))
+
+    def revisions(self) -> tuple[list[tuple[int, float, State]], bool]:
+        """Every kept published state with its sequence number and time, and ``truncated``."""
+        return list(self._revisions), self.revisions_truncated
+
+    def follow(self, from_seq: int | None) -> tuple[list[pb.ServerMessage], Follower | None]:
+        """Register a follower; return what it must be sent first and its live queue.
+
+        ``from_seq=None`` starts with a snapshot. A position still in the replay buffer replays
+        from there; an older one gets ``gap`` (``EVICTED``) and a snapshot. On an ended
+        conversation the backlog ends with ``ended`` and no follower is registered.
+
+        Raises
+        ------
+        PositionError
+            When ``from_seq`` is beyond the next sequence number.
+        EventError
+            When ``from_seq`` is 0 (sequence numbers count from 1).
+        LimitExceededError
+            When ``max_followers_per_conversation`` followers are already attached.
+        """
+        if from_seq is not None and from_seq < 1:
+            raise EventError("field 'from_seq' must be at least 1 (sequence numbers count from 1)")
+        if from_seq is not None and from_seq > self.seq + 1:
+            raise PositionError(
+                f"field 'from_seq' ({from_seq}) is beyond the next sequence number "
+                f"({self.seq + 1}) of conversation {self.id}"
+            )
+        limit = self.limits.max_followers_per_conversation
+        if self.live and len(self._followers) >= limit:
+            raise LimitExceededError(
+                "max_followers_per_conversation", limit,
+                f"conversation {self.id} already has {limit} followers; "
+                f"limit max_followers_per_conversation is {limit}",
+            )
+        backlog: list[pb.ServerMessage] = []
+        if from_seq is None:
+            backlog.append(self.snapshot_message())
+        elif from_seq < self.oldest_kept:
+            backlog.append(pb.ServerMessage(gap=pb.Gap(
+                first_missing=from_seq, oldest_kept=self.oldest_kept,
+                reason=pb.GAP_REASON_EVICTED,
+            )))
+            backlog.append(self.snapshot_message())
+        else:
+            backlog.extend(m for m in self._replay if m.update.seq >= from_seq)
+        if not self.live:
+            backlog.append(self.closing_messages[-1])
+            return backlog, None
+        follower = Follower(self, self.limits.follower_queue)
+        self._followers.add(follower)
+        return backlog, follower
+
+    def unfollow(self, follower: Follower) -> None:
+        """Forget a follower whose stream ended; idempotent."""
+        self._followers.discard(follower)
+
+    @property
+    def follower_count(self) -> int:
+        return len(self._followers)
+
+    def summary(self) -> pb.ConversationSummary:
+        return pb.ConversationSummary(
+            conversation_id=self.id, speakers=self.timeline.speakers, words=self.word_count,
+            last_seq=self.seq, started_at=self.started_at, ended=not self.live,
+        )
+
+
+class SessionRegistry:
+    """Every live and recently ended conversation of one server.
+
+    Ended conversations stay ``ended_retention_s`` seconds (at most ``max_ended_conversations``
+    of them) so late followers and ``GetRevisions`` still find them; they are dropped lazily
+    whenever the registry is touched.
+    """
+
+    def __init__(self, limits: ServerLimits, metrics: ServerMetrics) -> None:
+        self._limits = limits
+        self._metrics = metrics
+        self._live: dict[str, Session] = {}
+        self._ended: OrderedDict[str, Session] = OrderedDict()
+
+    def open(self, conversation_id: str, bundle: Bundle) -> Session:
+        """Start a conversation with a fresh engine from ``bundle``.
+
+        An empty id gets an unguessable one (``secrets.token_urlsafe``).
+
+        Raises
+        ------
+        ConflictError
+            When the id names a live or kept conversation.
+        LimitExceededError
+            When ``max_live_conversations`` conversations are live.
+        """
+        self.purge()
+        if conversation_id:
+            check_id(conversation_id, "open.conversation_id", self._limits)
+            if conversation_id in self._live or conversation_id in self._ended:
+                raise ConflictError(f"conversation id {conversation_id!r} is already in use")
+        else:
+            conversation_id = secrets.token_urlsafe(18)
+        limit = self._limits.max_live_conversations
+        if len(self._live) >= limit:
+            raise LimitExceededError(
+                "max_live_conversations", limit,
+                f"{limit} conversations are live; limit max_live_conversations is {limit}",
+            )
+        session = Session(conversation_id, bundle.new_engine(), self._limits, self._metrics)
+        self._live[conversation_id] = session
+        self._metrics.live.set(len(self._live))
+        _log.info("conversation %s opened", conversation_id)
+        return session
+
+    def close(self, session: Session, reason: pb.EndReason) -> tuple[pb.ServerMessage, ...]:
+        """Finish ``session`` (if live) and move it to the kept ended conversations."""
+        messages = session.finish(reason)
+        if self._live.pop(session.id, None) is not None:
+            self._ended[session.id] = session
+            while len(self._ended) > self._limits.max_ended_conversations:
+                self._ended.popitem(last=False)
+            self._metrics.live.set(len(self._live))
+        return messages
+
+    def close_all(self, reason: pb.EndReason) -> None:
+        """Finish every live conversation (graceful shutdown)."""
+        for session in list(self._live.values()):
+            self.close(session, reason)
+
+    def get(self, conversation_id: str) -> Session:
+        """A live or kept conversation.
+
+        Raises
+        ------
+        NotFoundError
+            When no such conversation is live or still kept.
+        """
+        self.purge()
+        session = self._live.get(conversation_id) or self._ended.get(conversation_id)
+        if session is None:
+            raise NotFoundError(f"no live or kept conversation with id {conversation_id!r}")
+        return session
+
+    def sessions(self) -> list[Session]:
+        """Live conversations, then kept ended ones, oldest first in each."""
+        self.purge()
+        return [*self._live.values(), *self._ended.values()]
+
+    @property
+    def live_count(self) -> int:
+        return len(self._live)
+
+    def purge(self) -> None:
+        """Drop ended conversations kept longer than ``ended_retention_s``."""
+        cutoff = time.time() - self._limits.ended_retention_s
+        while self._ended:
+            oldest = next(iter(self._ended.values()))
+            if oldest.ended_at is not None and oldest.ended_at > cutoff:
+                break
+            self._ended.popitem(last=False)

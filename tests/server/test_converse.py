@@ -1,0 +1,53 @@
+"""Converse: the ingest protocol, sequence numbers, final updates and ending."""
+
+from __future__ import annotations
+
+import grpc
+import pytest
+from server_kit import (  # noqa: F401 - fixtures are found by name
+    CLOSE,
+    Running,
+    open_event,
+    running_fixture,
+    spoken,
+    start_server_fixture,
+    words_event,
+)
+
+from midstream import DisfluencyLabel
+from midstream.wire import _convert as cv
+from midstream.wire import midstream_pb2 as pb
+
+
+async def test_words_in_updates_out_then_final_and_ended(running: Running) -> None:
+    events = [
+        open_event(),
+        words_event(spoken("w1", "I", start=0.0), spoken("w2", "i", start=0.3)),
+        words_event(spoken("w3", "went", start=0.6)),
+        CLOSE,
+    ]
+    replies = [m async for m in running.stub.Converse(iter(events))]
+    kinds = [m.WhichOneof("body") for m in replies]
+    assert kinds == ["welcome", "update", "update", "update", "ended"]
+    welcome = replies[0].welcome
+    assert len(welcome.conversation_id) >= 20 and welcome.next_seq == 1
+    updates = [cv.update_from_wire(m.update) for m in replies[1:4]]
+    assert [u.seq for u in updates] == [1, 2, 3]
+    # One update for the whole two-word batch, holding the revised first word.
+    first = {w.word_id: w for w in updates[0].diff.words}
+    assert first["w1"].label is DisfluencyLabel.REPARANDUM and first["w1"].revision == 1
+    assert first["w1"].reparandum_of == "w2"
+    assert updates[2].conversation_final
+    assert all(w.final for w in updates[2].diff.words)
+    assert {w.word_id for w in updates[2].diff.words} == {"w1", "w2", "w3"}
+    assert replies[4].ended.reason == pb.END_REASON_CLOSED
+    assert replies[4].ended.last_seq == 3
+
+
+async def test_caller_chosen_id_is_kept_and_cannot_be_reused(running: Running) -> None:
+    replies = [m async for m in running.stub.Converse(iter([open_event("call-7"), CLOSE]))]
+    assert replies[0].welcome.conversation_id == "call-7"
+    with pytest.raises(grpc.aio.AioRpcError) as info:
+        _ = [m async for m in running.stub.Converse(iter([open_event("call-7"), CLOSE]))]
+    assert info.value.code() == grpc.StatusCode.ALREADY_EXISTS
+    assert "call-7" in (info.value.details() or "")
