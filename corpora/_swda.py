@@ -47,7 +47,7 @@ How the reader resolves what the markup leaves open:
 from __future__ import annotations
 
 import re
-from collections.abc import Iterable, Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from enum import Enum
 from functools import lru_cache
@@ -381,7 +381,7 @@ def split_numbers(root: Path, split: str) -> tuple[int, ...]:
     for number, line in enumerate(path.read_text(encoding="ascii", errors="replace").splitlines(),
                                   start=1):
         entry = line.strip()
-        if not entry:
+        if not entry or entry.startswith("#"):
             continue
         if not entry.isdigit():
             raise TranscriptFormatError(f"expected a conversation number, got {entry!r}",
@@ -398,23 +398,26 @@ def read_swda(root: Path, *, split: str | None = None) -> Iterator[Conversation]
     root : Path
         The ``swda`` folder (holding ``sw00utt`` ... and ``splits/``).
     split : str or None
-        Read only the conversations listed in ``root/splits/<split>.txt``, in that order; ``None``
-        reads every conversation in the folder, by conversation number.
+        Read only the conversations listed in ``root/splits/<split>.txt`` (blank lines and ``#``
+        comments skipped), in that order; ``None`` reads every conversation in the folder, by
+        conversation number.
 
-    Yields
-    ------
-    Conversation
-        With id ``sw<number>``, corpus ``"swda"``, speakers ``"A"`` and ``"B"`` and no word times.
+    Returns
+    -------
+    Iterator[Conversation]
+        Read lazily, one file per step. Each has id ``sw<number>``, corpus ``"swda"``,
+        speakers ``"A"`` and ``"B"`` and no word times.
 
     Raises
     ------
     CorpusNotFoundError
-        When the folder, the split file or a conversation the split lists is missing.
+        When the folder, the split file or a conversation the split lists is missing (raised by
+        the call itself, before iteration).
     TranscriptFormatError
         When a file does not parse (file and line named).
     """
     files = conversation_files(root)
-    numbers: Iterable[int] = sorted(files) if split is None else split_numbers(root, split)
+    numbers: Sequence[int] = sorted(files) if split is None else split_numbers(root, split)
     if split is not None:
         missing = [n for n in numbers if n not in files]
         if missing:
@@ -422,7 +425,10 @@ def read_swda(root: Path, *, split: str | None = None) -> Iterator[Conversation]
                 f"split {split!r} lists {len(missing)} conversation(s) not under {root}, "
                 f"first sw{missing[0]}"
             )
-    for number in numbers:
-        path = files[number]
-        text = path.read_text(encoding="latin-1")
-        yield parse_conversation(text, conversation_id=f"sw{number}", source=str(path))
+    # Checked above, before the first conversation is asked for; reading is lazy.
+    return (_read_file(files[number], number) for number in numbers)
+
+
+def _read_file(path: Path, number: int) -> Conversation:
+    text = path.read_text(encoding="latin-1")
+    return parse_conversation(text, conversation_id=f"sw{number}", source=str(path))
