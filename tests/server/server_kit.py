@@ -193,7 +193,7 @@ class Running:
     def __init__(self, server: MidstreamServer, channel: grpc.aio.Channel) -> None:
         self.server = server
         self.channel = channel
-        self.stub = pb_grpc.MidstreamStub(channel)
+        self.stub = pb_grpc.MidstreamStub(channel)  # type: ignore[no-untyped-call]
 
 
 ServerFactory = Callable[..., Awaitable[Running]]
@@ -246,3 +246,45 @@ def open_event(conversation_id: str = "") -> pb.ClientEvent:
 
 
 CLOSE = pb.ClientEvent(close=pb.CloseConversation())
+
+
+class Caller:
+    """The ingesting side of one ``Converse`` stream, driven event by event."""
+
+    def __init__(self, stub: pb_grpc.MidstreamStub) -> None:
+        self.call = stub.Converse()
+        self.updates: list[pb.Update] = []
+
+    async def open(self, conversation_id: str = "") -> str:
+        await self.call.write(open_event(conversation_id))
+        message = await self.call.read()
+        assert message.WhichOneof("body") == "welcome"
+        return str(message.welcome.conversation_id)
+
+    async def send(self, event: pb.ClientEvent) -> pb.Update:
+        """Send an event that changes something and read its update."""
+        await self.call.write(event)
+        message = await self.call.read()
+        assert message.WhichOneof("body") == "update", message
+        update: pb.Update = message.update
+        self.updates.append(update)
+        return update
+
+    async def close(self) -> pb.Ended:
+        """Send ``close``, collect the final update, return ``ended``."""
+        await self.call.write(CLOSE)
+        await self.call.done_writing()
+        final = await self.call.read()
+        self.updates.append(final.update)
+        assert final.update.conversation_final
+        ended: pb.Ended = (await self.call.read()).ended
+        return ended
+
+
+async def follow_all(stub: pb_grpc.MidstreamStub, conversation_id: str,
+                     from_seq: int | None = None) -> list[pb.ServerMessage]:
+    """Every message of a ``Follow`` stream until it ends."""
+    request = pb.FollowRequest(conversation_id=conversation_id)
+    if from_seq is not None:
+        request.from_seq = from_seq
+    return [m async for m in stub.Follow(request)]

@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import grpc
 import pytest
+from midstream import DisfluencyLabel
+from midstream.wire import _convert as cv
+from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,
     Running,
@@ -13,10 +16,6 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
     start_server_fixture,
     words_event,
 )
-
-from midstream import DisfluencyLabel
-from midstream.wire import _convert as cv
-from midstream.wire import midstream_pb2 as pb
 
 
 async def test_words_in_updates_out_then_final_and_ended(running: Running) -> None:

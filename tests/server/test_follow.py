@@ -1,0 +1,176 @@
+"""Follow: identical sequences for every subscriber, lossless resume, gaps, snapshots."""
+
+from __future__ import annotations
+
+import asyncio
+
+import grpc
+import pytest
+from grpc_health.v1 import health_pb2, health_pb2_grpc
+from grpc_reflection.v1alpha import reflection_pb2, reflection_pb2_grpc
+from midstream.server import ServerLimits
+from midstream.wire import midstream_pb2 as pb
+from server_kit import (  # noqa: F401 - fixtures are found by name
+    Caller,
+    Running,
+    ServerFactory,
+    follow_all,
+    running_fixture,
+    spoken,
+    start_server_fixture,
+    words_event,
+)
+
+
+def _updates(messages: list[pb.ServerMessage]) -> list[pb.Update]:
+    return [m.update for m in messages if m.WhichOneof("body") == "update"]
+
+
+async def _stream_words(caller: Caller, count: int, offset: int = 0) -> None:
+    for i in range(offset, offset + count):
+        speaker = "AB"[i % 2]
+        await caller.send(words_event(spoken(f"w{i}", ["so", "uh", "we", "we"][i % 4],
+                                             speaker=speaker, start=float(i))))
+
+
+async def test_two_followers_and_the_caller_see_identical_sequences(running: Running) -> None:
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    followers = [asyncio.create_task(follow_all(running.stub, conversation, from_seq=1))
+                 for _ in range(2)]
+    await asyncio.sleep(0.2)  # both registered before the first word
+    await _stream_words(caller, 30)
+    ended = await caller.close()
+    seen = [await asyncio.wait_for(f, 10) for f in followers]
+    for messages in seen:
+        assert _updates(messages) == caller.updates
+        assert messages[-1].ended.reason == pb.END_REASON_CLOSED
+        assert messages[-1].ended.last_seq == ended.last_seq == len(caller.updates)
+    assert [u.seq for u in caller.updates] == list(range(1, len(caller.updates) + 1))
+
+
+async def test_resume_from_last_seq_misses_and_repeats_nothing(running: Running) -> None:
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    await _stream_words(caller, 5)
+    first = running.stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=1))
+    got = [(await first.read()).update for _ in range(3)]
+    first.cancel()  # the follower disconnects mid-stream
+    await _stream_words(caller, 5, offset=5)
+    resumed = running.stub.Follow(
+        pb.FollowRequest(conversation_id=conversation, from_seq=got[-1].seq + 1))
+    await _stream_words(caller, 5, offset=10)
+    await caller.close()
+    got += _updates([m async for m in resumed])
+    assert got == caller.updates
+
+
+async def test_absent_position_gives_snapshot_then_live(running: Running) -> None:
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    await _stream_words(caller, 6)
+    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation))
+    snapshot = (await follower.read()).snapshot
+    assert snapshot.seq == 6
+    assert sorted(w.word_id for w in snapshot.words) == [f"w{i}" for i in range(6)]
+    assert not snapshot.conversation_final
+    await _stream_words(caller, 1, offset=6)
+    assert (await follower.read()).update == caller.updates[-1]
+    follower.cancel()
+    await caller.close()
+
+
+async def test_evicted_position_gives_gap_and_snapshot(start_server: ServerFactory) -> None:
+    running = await start_server(limits=ServerLimits(replay_updates=10, idle_timeout_s=5))
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    await _stream_words(caller, 15)
+    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=2))
+    gap = (await follower.read()).gap
+    assert (gap.first_missing, gap.oldest_kept, gap.reason) == (2, 6, pb.GAP_REASON_EVICTED)
+    snapshot = (await follower.read()).snapshot
+    assert snapshot.seq == 15
+    await _stream_words(caller, 1, offset=15)
+    assert (await follower.read()).update.seq == 16  # then live, without a hole
+    follower.cancel()
+    await caller.close()
+
+
+async def test_bad_positions_and_unknown_conversations_are_refused(running: Running) -> None:
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    await _stream_words(caller, 3)
+    cases = [
+        (pb.FollowRequest(conversation_id=conversation, from_seq=5),
+         grpc.StatusCode.OUT_OF_RANGE, "from_seq"),
+        (pb.FollowRequest(conversation_id=conversation, from_seq=0),
+         grpc.StatusCode.INVALID_ARGUMENT, "from_seq"),
+        (pb.FollowRequest(conversation_id="nope"), grpc.StatusCode.NOT_FOUND, "nope"),
+    ]
+    for request, code, named in cases:
+        with pytest.raises(grpc.aio.AioRpcError) as info:
+            _ = [m async for m in running.stub.Follow(request)]
+        assert info.value.code() == code
+        assert named in (info.value.details() or "")
+    # The next sequence number itself is a valid place to start: live updates only.
+    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=4))
+    await _stream_words(caller, 1, offset=3)
+    assert (await follower.read()).update.seq == 4
+    follower.cancel()
+    await caller.close()
+
+
+async def test_ended_conversation_stays_for_late_followers(running: Running) -> None:
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    await _stream_words(caller, 4)
+    await caller.close()
+    late = await follow_all(running.stub, conversation, from_seq=1)
+    assert _updates(late) == caller.updates
+    assert late[-1].ended.reason == pb.END_REASON_CLOSED
+    listed = await running.stub.ListConversations(pb.ListConversationsRequest())
+    (summary,) = [c for c in listed.conversations if c.conversation_id == conversation]
+    assert summary.ended and summary.words == 4 and summary.last_seq == len(caller.updates)
+    assert list(summary.speakers) == ["A", "B"]
+
+
+async def test_revisions_list_every_published_state(running: Running) -> None:
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    # "we we": the first copy is revised to a reparandum by the second.
+    await caller.send(words_event(spoken("a", "we", start=0.0)))
+    await caller.send(words_event(spoken("b", "we", start=0.5)))
+    await caller.close()
+    reply = await running.stub.GetRevisions(pb.GetRevisionsRequest(conversation_id=conversation))
+    history = [(r.seq, r.word.revision, r.word.role, r.word.final) for r in reply.revisions
+               if r.WhichOneof("state") == "word" and r.word.word_id == "a"]
+    assert history == [
+        (1, 0, pb.WORD_ROLE_FLUENT, False),
+        (2, 1, pb.WORD_ROLE_REPARANDUM, False),
+        (3, 1, pb.WORD_ROLE_REPARANDUM, True),
+    ]
+    assert not reply.truncated
+    assert all(r.server_time > 0 for r in reply.revisions)
+
+
+async def test_revision_history_is_bounded_and_says_so(start_server: ServerFactory) -> None:
+    running = await start_server(limits=ServerLimits(history_revisions=8))
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    await _stream_words(caller, 10)
+    await caller.close()
+    reply = await running.stub.GetRevisions(pb.GetRevisionsRequest(conversation_id=conversation))
+    assert len(reply.revisions) == 8 and reply.truncated
+    assert reply.revisions[-1].seq == len(caller.updates)
+
+
+async def test_health_serving_and_reflection_lists_the_service(running: Running) -> None:
+    health = health_pb2_grpc.HealthStub(running.channel)
+    for service in ("", "midstream.v1.Midstream"):
+        reply = await health.Check(health_pb2.HealthCheckRequest(service=service))
+        assert reply.status == health_pb2.HealthCheckResponse.SERVING
+    reflect = reflection_pb2_grpc.ServerReflectionStub(running.channel)
+    request = reflection_pb2.ServerReflectionRequest(list_services="")
+    replies = [r async for r in reflect.ServerReflectionInfo(iter([request]))]
+    names = {s.name for s in replies[0].list_services_response.service}
+    assert {"midstream.v1.Midstream", "grpc.health.v1.Health"} <= names
