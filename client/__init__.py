@@ -1,3 +1,56 @@
-"""Client library and command line of Midstream."""
+"""Client library and command line of Midstream.
 
-__all__: list[str] = []
+:class:`Client` is the asyncio client (an async context manager owning one channel);
+:class:`SyncClient` wraps it for scripts. Everything they return is a domain type of
+:mod:`midstream` or one of the result types here; failures raise :class:`midstream.MidstreamError`
+subclasses mapped from gRPC status codes.
+"""
+
+from midstream.client._client import Client, ConversationStream, RetryPolicy
+from midstream.client._inputs import TimedEvent, parse_ctm, parse_jsonl_events, read_events
+from midstream.client._results import (
+    AddWord,
+    ConversationSummary,
+    Ended,
+    EndReason,
+    Gap,
+    GapReason,
+    ModelInfo,
+    Reconnected,
+    ReplaceWord,
+    Revision,
+    RevisionHistory,
+    Snapshot,
+    SpeakerHint,
+    TaggedTranscript,
+    Welcome,
+    WithdrawWord,
+)
+from midstream.client._sync import SyncClient
+
+__all__ = [
+    "AddWord",
+    "Client",
+    "ConversationStream",
+    "ConversationSummary",
+    "EndReason",
+    "Ended",
+    "Gap",
+    "GapReason",
+    "ModelInfo",
+    "Reconnected",
+    "ReplaceWord",
+    "RetryPolicy",
+    "Revision",
+    "RevisionHistory",
+    "Snapshot",
+    "SpeakerHint",
+    "SyncClient",
+    "TaggedTranscript",
+    "TimedEvent",
+    "Welcome",
+    "WithdrawWord",
+    "parse_ctm",
+    "parse_jsonl_events",
+    "read_events",
+]

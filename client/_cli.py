@@ -21,6 +21,11 @@ from midstream._errors import MidstreamError, UnavailableError
 #: Command modules in the order ``--help`` lists them.
 _COMMAND_MODULES: tuple[str, ...] = (
     "midstream.client._cmd_corpus",
+    "midstream.client._cmd_tag",
+    "midstream.client._cmd_replay",
+    "midstream.client._cmd_subscribe",
+    "midstream.client._cmd_inspect",
+    "midstream.client._cmd_demo",
 )
 
 Handler = Callable[[argparse.Namespace], int]

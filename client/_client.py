@@ -1,0 +1,468 @@
+"""The asyncio client of a Midstream server.
+
+::
+
+    async with Client("localhost:50551") as client:
+        async with client.converse() as stream:
+            await stream.send_words([AddWord(word_id="w1", word=Word(text="uh", speaker="A"))])
+            await stream.close()
+            async for event in stream:          # Welcome, HypothesisUpdate..., Ended
+                ...
+
+A :class:`Client` owns one gRPC channel; open it with ``async with`` (or :meth:`Client.connect`)
+and close it with :meth:`Client.close` (idempotent). One client may serve many concurrent
+conversations and calls from tasks of the same event loop; it is not thread-safe (use
+:class:`midstream.client.SyncClient` from threads or scripts).
+
+Every failed call raises a :class:`midstream.MidstreamError` mapped from its gRPC status in
+:mod:`midstream.client._status` (``raise ... from`` the gRPC error); no protobuf type is returned.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import logging
+from collections.abc import AsyncGenerator, AsyncIterator, Iterable, Sequence
+from dataclasses import dataclass
+from types import TracebackType
+from typing import Any, Self
+
+import grpc
+import grpc.aio
+from midstream._errors import MidstreamError, UnavailableError
+from midstream._types import HypothesisUpdate, Word
+from midstream.client._results import (
+    AddWord,
+    ConversationSummary,
+    Ended,
+    EndReason,
+    Gap,
+    GapReason,
+    InputEvent,
+    ModelInfo,
+    Reconnected,
+    ReplaceWord,
+    Revision,
+    RevisionHistory,
+    ServerEvent,
+    Snapshot,
+    SpeakerHint,
+    TaggedTranscript,
+    Welcome,
+    WithdrawWord,
+)
+from midstream.client._status import RETRYABLE, error_from_rpc, error_from_status
+from midstream.wire import _convert, midstream_pb2_grpc
+from midstream.wire import midstream_pb2 as pb
+
+_log = logging.getLogger(__name__)
+
+_GAP_REASONS = {
+    pb.GAP_REASON_EVICTED: GapReason.EVICTED,
+    pb.GAP_REASON_LAGGED: GapReason.LAGGED,
+}
+_END_REASONS = {
+    pb.END_REASON_CLOSED: EndReason.CLOSED,
+    pb.END_REASON_IDLE_TIMEOUT: EndReason.IDLE_TIMEOUT,
+    pb.END_REASON_CALLER_VANISHED: EndReason.CALLER_VANISHED,
+    pb.END_REASON_SERVER_SHUTDOWN: EndReason.SERVER_SHUTDOWN,
+    pb.END_REASON_REJECTED: EndReason.REJECTED,
+}
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class RetryPolicy:
+    """How a follower reconnects after losing its stream.
+
+    Attempt ``n`` (from 1) waits ``min(max_backoff, initial_backoff * multiplier ** (n - 1))``
+    seconds first; after ``max_attempts`` consecutive failures the last error is raised. A
+    message received resets the count. Values are common practice, no source.
+    """
+
+    max_attempts: int = 5
+    initial_backoff: float = 0.2
+    max_backoff: float = 5.0
+    multiplier: float = 2.0
+
+    def delay(self, attempt: int) -> float:
+        """Seconds to wait before attempt ``attempt`` (counted from 1)."""
+        return float(min(self.max_backoff, self.initial_backoff * self.multiplier ** (attempt - 1)))
+
+
+def _server_event(message: pb.ServerMessage) -> ServerEvent:
+    """The typed form of one server message (raises ``EventError`` for an empty oneof)."""
+    body = message.WhichOneof("body")
+    if body == "update":
+        return _convert.update_from_wire(message.update)
+    if body == "welcome":
+        return Welcome(conversation_id=message.welcome.conversation_id,
+                       next_seq=message.welcome.next_seq)
+    if body == "snapshot":
+        seq, words, utterances, final = _convert.snapshot_from_wire(message.snapshot)
+        return Snapshot(seq=seq, words=words, utterances=utterances, conversation_final=final)
+    if body == "gap":
+        return Gap(first_missing=message.gap.first_missing, oldest_kept=message.gap.oldest_kept,
+                   reason=_GAP_REASONS.get(message.gap.reason, GapReason.UNKNOWN))
+    if body == "ended":
+        return Ended(reason=_END_REASONS.get(message.ended.reason, EndReason.UNKNOWN),
+                     last_seq=message.ended.last_seq)
+    raise MidstreamError("the server sent a message with no body (a newer protocol?)")
+
+
+def _model_info(message: pb.ModelDescription) -> ModelInfo:
+    try:
+        summary = json.loads(message.training_summary_json) if message.training_summary_json else {}
+    except json.JSONDecodeError:
+        summary = {"unparsed": message.training_summary_json}
+    return ModelInfo(kind=message.kind, name=message.name, format_version=message.format_version,
+                     labels=tuple(message.labels), sha256=message.sha256,
+                     training_summary=summary if isinstance(summary, dict) else {"value": summary})
+
+
+def _client_event(event: InputEvent) -> pb.ClientEvent:
+    if isinstance(event, AddWord):
+        words = [_convert.spoken_word_to_wire(event.word_id, event.word)]
+        return pb.ClientEvent(words=pb.WordBatch(words=words))
+    if isinstance(event, ReplaceWord):
+        spoken = _convert.spoken_word_to_wire(event.word_id, event.word)
+        return pb.ClientEvent(replace=pb.ReplaceWord(word=spoken))
+    if isinstance(event, WithdrawWord):
+        return pb.ClientEvent(withdraw=pb.WithdrawWord(word_id=event.word_id))
+    return pb.ClientEvent(hint=_convert.hint_to_wire(event.speaker, turn_end=event.turn_end))
+
+
+class Client:
+    """A connection to one Midstream server.
+
+    Parameters
+    ----------
+    target
+        ``host:port`` of the server.
+    token
+        Sent as ``authorization: Bearer <token>`` metadata on every call when given.
+    tls
+        Use TLS with the system's root certificates (or ``root_certificates``).
+    root_certificates
+        PEM bytes of the CA to trust instead of the system's.
+    timeout
+        Seconds a unary call (listing, batch tagging, revisions, models) may take.
+    retry
+        How :meth:`follow` reconnects after a lost stream.
+    """
+
+    def __init__(self, target: str, *, token: str | None = None, tls: bool = False,
+                 root_certificates: bytes | None = None, timeout: float = 60.0,
+                 retry: RetryPolicy | None = None) -> None:
+        self.target = target
+        self._token = token
+        self._tls = tls
+        self._root_certificates = root_certificates
+        self._timeout = timeout
+        self._retry = retry or RetryPolicy()
+        self._channel: grpc.aio.Channel | None = None
+        self._stub: Any = None
+
+    def __repr__(self) -> str:
+        state = "open" if self._channel is not None else "closed"
+        return f"Client({self.target!r}, tls={self._tls}, {state})"
+
+    # --- lifecycle ----------------------------------------------------------------------------
+
+    async def connect(self) -> None:
+        """Open the channel (no network traffic yet: the first call connects)."""
+        if self._channel is not None:
+            return
+        if self._tls:
+            credentials = grpc.ssl_channel_credentials(root_certificates=self._root_certificates)
+            self._channel = grpc.aio.secure_channel(self.target, credentials)
+        else:
+            self._channel = grpc.aio.insecure_channel(self.target)
+        # The generated stub carries no annotations.
+        self._stub = midstream_pb2_grpc.MidstreamStub(self._channel)  # type: ignore[no-untyped-call]
+
+    async def close(self) -> None:
+        """Close the channel, cancelling calls still running. Safe to call twice."""
+        channel, self._channel, self._stub = self._channel, None, None
+        if channel is not None:
+            await channel.close()
+
+    async def __aenter__(self) -> Self:
+        await self.connect()
+        return self
+
+    async def __aexit__(self, exc_type: type[BaseException] | None,
+                        exc: BaseException | None, tb: TracebackType | None) -> None:
+        await self.close()
+
+    def _require_stub(self) -> Any:
+        if self._stub is None:
+            raise UnavailableError(
+                f"client for {self.target} is not connected: use 'async with Client(...)' "
+                "or 'await client.connect()' first")
+        return self._stub
+
+    def _metadata(self) -> tuple[tuple[str, str], ...]:
+        return (("authorization", f"Bearer {self._token}"),) if self._token else ()
+
+    def _error(self, exc: grpc.RpcError, method: str = "") -> MidstreamError:
+        return error_from_rpc(exc, target=self.target, method=method)
+
+    # --- streams ------------------------------------------------------------------------------
+
+    def converse(self, conversation_id: str | None = None) -> ConversationStream:
+        """A stream that ingests one conversation; use it as an async context manager.
+
+        ``conversation_id`` asks for a caller-chosen id; ``None`` lets the server assign one
+        (read it from :attr:`ConversationStream.conversation_id`).
+        """
+        return ConversationStream(self, conversation_id or "")
+
+    async def follow(self, conversation_id: str, *,
+                     from_seq: int | None = None) -> AsyncGenerator[ServerEvent, None]:
+        """Yield a conversation's updates as its ingesting caller sees them, until it ends.
+
+        Without ``from_seq`` the server starts with a :class:`Snapshot` of the current state.
+        After a lost connection the follower reconnects with the next seq it has not seen,
+        yields :class:`Reconnected`, and the server answers with the missed updates or, when
+        they fell out of its buffer, with a :class:`Gap` and a :class:`Snapshot`: a gap is
+        never silent. Gives up after the client's :class:`RetryPolicy` and raises the mapped
+        error (:class:`midstream.UnavailableError` for a vanished server).
+        """
+        stub = self._require_stub()
+        next_seq = from_seq
+        attempt = 0
+        while True:
+            request = pb.FollowRequest(conversation_id=conversation_id)
+            if next_seq is not None:
+                request.from_seq = next_seq
+            call = stub.Follow(request, metadata=self._metadata())
+            try:
+                async for message in call:
+                    attempt = 0
+                    event = _server_event(message)
+                    if isinstance(event, HypothesisUpdate | Snapshot):
+                        next_seq = event.seq + 1
+                    yield event
+                    if isinstance(event, Ended):
+                        return
+                # The server closed the stream cleanly without an end notice: it has nothing more.
+                return
+            except grpc.RpcError as exc:
+                code = exc.code() if isinstance(exc, grpc.aio.AioRpcError) else None
+                if code not in RETRYABLE or attempt >= self._retry.max_attempts:
+                    raise self._error(exc) from exc
+                attempt += 1
+                _log.info("follow %s: stream lost (%s); reconnect attempt %d from seq %s",
+                          conversation_id, code, attempt, next_seq)
+                await asyncio.sleep(self._retry.delay(attempt))
+                yield Reconnected(from_seq=next_seq, attempt=attempt)
+            finally:
+                call.cancel()
+
+    # --- unary calls --------------------------------------------------------------------------
+
+    async def tag_transcript(self, events: Iterable[AddWord | SpeakerHint]) -> TaggedTranscript:
+        """Tag a whole transcript in one call; every hypothesis returned is final."""
+        items = []
+        for event in events:
+            if isinstance(event, AddWord):
+                items.append(pb.TranscriptItem(
+                    word=_convert.spoken_word_to_wire(event.word_id, event.word)))
+            else:
+                items.append(pb.TranscriptItem(
+                    hint=_convert.hint_to_wire(event.speaker, turn_end=event.turn_end)))
+        reply = await self._unary("TagTranscript", pb.TagTranscriptRequest(items=items))
+        diff = _convert.diff_from_wire(reply)
+        return TaggedTranscript(words=diff.words, utterances=diff.utterances)
+
+    async def revisions(self, conversation_id: str) -> RevisionHistory:
+        """Every state each word and utterance of a conversation had, in seq order."""
+        reply = await self._unary("GetRevisions",
+                                  pb.GetRevisionsRequest(conversation_id=conversation_id))
+        revisions = []
+        for item in reply.revisions:
+            kind = item.WhichOneof("state")
+            state = (_convert.word_state_from_wire(item.word) if kind == "word"
+                     else _convert.utterance_state_from_wire(item.utterance))
+            revisions.append(Revision(seq=item.seq, server_time=item.server_time, state=state))
+        return RevisionHistory(conversation_id=reply.conversation_id or conversation_id,
+                               revisions=tuple(revisions), truncated=reply.truncated)
+
+    async def list_conversations(self) -> tuple[ConversationSummary, ...]:
+        """Live and recently ended conversations the server keeps."""
+        reply = await self._unary("ListConversations", pb.ListConversationsRequest())
+        return tuple(
+            ConversationSummary(conversation_id=c.conversation_id, speakers=tuple(c.speakers),
+                                words=c.words, last_seq=c.last_seq, started_at=c.started_at,
+                                ended=c.ended)
+            for c in reply.conversations)
+
+    async def describe_models(self) -> tuple[ModelInfo, ...]:
+        """The models in service."""
+        reply = await self._unary("DescribeModels", pb.DescribeModelsRequest())
+        return tuple(_model_info(m) for m in reply.models)
+
+    async def reload_models(self, directory: str) -> tuple[ModelInfo, ...]:
+        """Load models from ``directory`` *on the server*; live streams keep going.
+
+        Raises :class:`midstream.ModelError` when a model fails to load (the old ones stay).
+        """
+        reply = await self._unary("ReloadModels", pb.ReloadModelsRequest(directory=directory))
+        return tuple(_model_info(m) for m in reply.models)
+
+    async def _unary(self, method: str, request: Any) -> Any:
+        stub = self._require_stub()
+        try:
+            return await getattr(stub, method)(request, timeout=self._timeout,
+                                               metadata=self._metadata())
+        except grpc.RpcError as exc:
+            raise self._error(exc, method) from exc
+
+
+class ConversationStream:
+    """One ingesting conversation; obtained from :meth:`Client.converse`.
+
+    ``async with`` opens it and waits for the server's :class:`Welcome` (so
+    :attr:`conversation_id` is known before the first word). Send with :meth:`send_words` and
+    friends, end with :meth:`close`, and read with ``async for``: the welcome first, then one
+    :class:`midstream.HypothesisUpdate` per event that changed a hypothesis, then
+    :class:`Ended`. Sending and reading may run in two tasks of one event loop; two tasks must
+    not send at once.
+
+    Leaving the ``async with`` block normally closes the conversation and drains the remaining
+    updates; leaving it by an exception cancels the call (the server then ends the conversation
+    as abandoned by its caller).
+    """
+
+    def __init__(self, client: Client, conversation_id: str) -> None:
+        self._client = client
+        self._requested_id = conversation_id
+        self._call: Any = None
+        self._welcome: Welcome | None = None
+        self._welcome_pending = True
+        self._closed = False
+        self._ended = False
+
+    @property
+    def conversation_id(self) -> str:
+        """The conversation's id (assigned by the server unless the caller chose one)."""
+        if self._welcome is None:
+            raise UnavailableError("the conversation is not open yet: use 'async with'")
+        return self._welcome.conversation_id
+
+    @property
+    def welcome(self) -> Welcome:
+        if self._welcome is None:
+            raise UnavailableError("the conversation is not open yet: use 'async with'")
+        return self._welcome
+
+    async def __aenter__(self) -> Self:
+        stub = self._client._require_stub()
+        self._call = stub.Converse(metadata=self._client._metadata())
+        opening = pb.ClientEvent(open=pb.OpenConversation(conversation_id=self._requested_id))
+        await self._write(opening)
+        first = await self._read()
+        if not isinstance(first, Welcome):
+            self._call.cancel()
+            raise MidstreamError(
+                f"server {self._client.target}: expected a welcome, got {type(first).__name__}")
+        self._welcome = first
+        return self
+
+    async def __aexit__(self, exc_type: type[BaseException] | None,
+                        exc: BaseException | None, tb: TracebackType | None) -> None:
+        if self._call is None:
+            return
+        if exc is not None:
+            self._call.cancel()
+            return
+        try:
+            await self.close()
+            async for _ in self:
+                pass
+        finally:
+            self._call.cancel()
+
+    async def send(self, event: InputEvent) -> None:
+        """Send one input event (a word, a replacement, a withdrawal or a hint)."""
+        await self._write(_client_event(event))
+
+    async def send_words(self, words: Sequence[AddWord]) -> None:
+        """Send new words as one batch, in the order a recogniser gave them."""
+        if not words:
+            return
+        batch = [_convert.spoken_word_to_wire(w.word_id, w.word) for w in words]
+        await self._write(pb.ClientEvent(words=pb.WordBatch(words=batch)))
+
+    async def replace_word(self, word_id: str, word: Word) -> None:
+        """The recogniser revised word ``word_id``: new text and times."""
+        await self.send(ReplaceWord(word_id=word_id, word=word))
+
+    async def withdraw_word(self, word_id: str) -> None:
+        """The recogniser withdrew word ``word_id``."""
+        await self.send(WithdrawWord(word_id=word_id))
+
+    async def hint(self, speaker: str, *, turn_end: bool = False) -> None:
+        """The speaker's utterance (``turn_end``: turn) ended after their last word."""
+        await self.send(SpeakerHint(speaker=speaker, turn_end=turn_end))
+
+    async def close(self) -> None:
+        """No more words: ask the server to finalise everything. Idempotent.
+
+        Updates keep arriving on the stream until :class:`Ended`.
+        """
+        if self._closed or self._call is None:
+            return
+        self._closed = True
+        await self._write(pb.ClientEvent(close=pb.CloseConversation()))
+        try:
+            await self._call.done_writing()
+        except grpc.RpcError as exc:
+            raise self._client._error(exc) from exc
+
+    def __aiter__(self) -> AsyncIterator[ServerEvent]:
+        return self._events()
+
+    async def _events(self) -> AsyncIterator[ServerEvent]:
+        if self._welcome is not None and self._welcome_pending:
+            self._welcome_pending = False
+            yield self._welcome
+        while not self._ended:
+            event = await self._read()
+            if event is None:
+                return
+            yield event
+
+    async def _write(self, message: pb.ClientEvent) -> None:
+        if self._call is None:
+            raise UnavailableError("the conversation is not open yet: use 'async with'")
+        try:
+            await self._call.write(message)
+        except grpc.RpcError as exc:
+            raise self._client._error(exc) from exc
+        except asyncio.InvalidStateError as exc:
+            # grpc.aio raises this when writing to a call the server already finished.
+            raise await self._failure() from exc
+
+    async def _read(self) -> ServerEvent | None:
+        try:
+            message = await self._call.read()
+        except grpc.RpcError as exc:
+            raise self._client._error(exc) from exc
+        if message is grpc.aio.EOF:
+            code = await self._call.code()
+            if code is not grpc.StatusCode.OK:
+                raise await self._failure()
+            self._ended = True
+            return None
+        event = _server_event(message)
+        if isinstance(event, Ended):
+            self._ended = True
+        return event
+
+    async def _failure(self) -> MidstreamError:
+        """The mapped error of a call the server already finished with a status."""
+        code = await self._call.code()
+        details = await self._call.details()
+        return error_from_status(code, details, target=self._client.target)

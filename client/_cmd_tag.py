@@ -1,0 +1,83 @@
+"""``midstream tag``: stream words to a server and print the live hypotheses.
+
+Reads JSON Lines word events (``docs/word-events.md``) or NIST CTM from a file or, by default,
+standard input as lines arrive, so a recogniser's output can be piped straight in::
+
+    my-recogniser | midstream tag --server 127.0.0.1:50051
+    midstream tag call.ctm --json > updates.jsonl
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import sys
+from collections.abc import AsyncIterable, Iterable
+
+from midstream.client._common import (
+    add_input_options,
+    add_server_options,
+    client_from_args,
+    load_input,
+    stream_lines,
+)
+from midstream.client._inputs import TimedEvent
+from midstream.client._output import Printer, lines_from_thread
+from midstream.client._records import GoldWord
+from midstream.client._results import Welcome
+from midstream.client._streaming import Pacing, stream_conversation
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "tag", help="stream words (JSONL or CTM, file or stdin) and print live hypotheses",
+        description="Stream recogniser words to a server and print its live hypotheses: a "
+                    "line per utterance redrawn as labels change on a terminal, one line per "
+                    "finished utterance otherwise, or JSON Lines with --json.")
+    add_input_options(parser, stdin=True)
+    add_server_options(parser)
+    parser.add_argument("--json", action="store_true",
+                        help="print every server event as a JSON line")
+    parser.add_argument("--clean", action="store_true",
+                        help="show clean text (fillers, editing terms, reparanda, restarts "
+                             "removed) instead of marked words")
+    parser.add_argument("--rates", action="store_true",
+                        help="finish with per-speaker disfluency rates per 100 words "
+                             "(automatic estimates for research, not a diagnosis)")
+    parser.add_argument("--speed", type=float, default=0.0,
+                        help="real-time factor for a file's word times (0: no waiting; "
+                             "standard input is always sent as it arrives)")
+    parser.add_argument("--id", dest="conversation_id", default=None,
+                        help="ask for this conversation id (default: the server assigns one)")
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    return asyncio.run(_run(args))
+
+
+async def _run(args: argparse.Namespace) -> int:
+    printer = Printer(sys.stdout, json_lines=args.json, live=sys.stdout.isatty(),
+                      clean=args.clean, rates=args.rates)
+    events: Iterable[TimedEvent] | AsyncIterable[TimedEvent]
+    gold: dict[str, GoldWord] | None = None
+    pacing = Pacing()
+    if args.input == "-":
+        events = lines_from_thread(stream_lines(sys.stdin, "<stdin>", args.format))
+    else:
+        loaded = load_input(args)
+        events, gold = loaded.events, loaded.gold
+        pacing = Pacing(speed=max(args.speed, 0.0))
+
+    def welcome(message: Welcome) -> None:
+        if not args.json:
+            conversation = message.conversation_id
+            print(f"conversation {conversation}: follow it with "
+                  f"'midstream subscribe {conversation}'", file=sys.stderr, flush=True)
+
+    async with client_from_args(args) as client:
+        await stream_conversation(client, events, pacing=pacing, gold=gold,
+                                  conversation_id=args.conversation_id, on_welcome=welcome,
+                                  on_word=printer.word, on_event=printer.event)
+    printer.finish()
+    return 0

@@ -1,0 +1,143 @@
+"""Pieces the client commands share: server options, input loading, corpus conversations.
+
+Environment variables are read here only when a command runs (this is an entry point):
+``MIDSTREAM_SERVER`` (default server), ``MIDSTREAM_TOKEN`` (bearer token) and
+``MIDSTREAM_CORPORA`` (where ``--corpus`` names are looked up when relative and missing).
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TextIO
+
+from midstream._errors import CorpusNotFoundError, InputError
+from midstream._types import Conversation
+from midstream.client._client import Client
+from midstream.client._inputs import CtmParser, JsonlEventParser, TimedEvent, read_events
+from midstream.client._records import GoldWord
+from midstream.client._results import AddWord
+from midstream.corpora import read_corpus
+
+#: Where the commands look for a server unless told (``midstream serve`` listens here by default).
+DEFAULT_TARGET = "127.0.0.1:50051"
+
+
+def add_server_options(parser: argparse.ArgumentParser) -> None:
+    """``--server``, ``--token`` and ``--tls`` for commands that talk to a server."""
+    parser.add_argument("--server", metavar="HOST:PORT", default=None,
+                        help=f"the server (default $MIDSTREAM_SERVER or {DEFAULT_TARGET})")
+    parser.add_argument("--token", default=None,
+                        help="bearer token the server requires (default $MIDSTREAM_TOKEN)")
+    parser.add_argument("--tls", action="store_true", help="connect with TLS")
+
+
+def client_from_args(args: argparse.Namespace) -> Client:
+    target = args.server or os.environ.get("MIDSTREAM_SERVER") or DEFAULT_TARGET
+    token = args.token or os.environ.get("MIDSTREAM_TOKEN") or None
+    return Client(target, token=token, tls=bool(args.tls))
+
+
+def add_input_options(parser: argparse.ArgumentParser, *, stdin: bool) -> None:
+    """The input argument and ``--format`` (and corpus selection) of tag and replay."""
+    parser.add_argument(
+        "input", nargs="?" if stdin else None, default="-" if stdin else None,
+        help="word events: a .jsonl or .ctm file" + (", or - for standard input (default)"
+                                                      if stdin else ", or a corpus folder"))
+    parser.add_argument("--format", choices=("auto", "jsonl", "ctm", "corpus"), default="auto",
+                        help="input format (auto: from the file name; a folder is a corpus)")
+    parser.add_argument("--split", default=None,
+                        help="corpus split to read the conversation from (e.g. val)")
+    parser.add_argument("--conversation", metavar="ID", default=None,
+                        help="which corpus conversation to send (default: the first)")
+
+
+@dataclass(slots=True, kw_only=True)
+class LoadedInput:
+    """Events to send, in order, and the gold annotation of their words when known."""
+
+    source: str
+    events: list[TimedEvent]
+    gold: dict[str, GoldWord] = field(default_factory=dict)
+
+
+def conversation_events(conversation: Conversation) -> LoadedInput:
+    """The words of an annotated conversation as events, with their gold annotation.
+
+    Word ids are ``w<index>`` (the index into the conversation's words, from 0); an utterance
+    function or label the corpus does not annotate stays ``None`` in the gold.
+    """
+    utterance_of: dict[int, int] = {}
+    for position, unit in enumerate(conversation.utterances):
+        for index in unit.words:
+            utterance_of[index] = position
+    events: list[TimedEvent] = []
+    gold: dict[str, GoldWord] = {}
+    for index, word in enumerate(conversation.words):
+        word_id = f"w{index}"
+        number = utterance_of.get(index)
+        utterance = conversation.utterances[number] if number is not None else None
+        gold[word_id] = GoldWord(
+            label=conversation.labels[index] if conversation.labels is not None else None,
+            utterance=number,
+            function=utterance.function if utterance is not None else None,
+            fine_class=utterance.fine_class if utterance is not None else None)
+        arrival = word.end if word.end is not None else word.start
+        events.append(TimedEvent(event=AddWord(word_id=word_id, word=word), time=arrival,
+                                 line=index + 1))
+    return LoadedInput(source=f"{conversation.corpus}:{conversation.id}", events=events,
+                       gold=gold)
+
+
+def read_conversation(folder: Path, *, split: str | None, conversation_id: str | None
+                      ) -> Conversation:
+    """One conversation of a corpus folder (the first of the split unless ``conversation_id``).
+
+    Raises
+    ------
+    CorpusNotFoundError
+        When the folder is no corpus.
+    InputError
+        When the split holds no conversation with that id.
+    """
+    if not folder.is_dir():
+        raise CorpusNotFoundError(f"{folder}: no such corpus folder")
+    wanted = conversation_id
+    for conversation in read_corpus(folder, split=split):
+        if wanted is None or conversation.id == wanted or _short_id(conversation.id) == wanted:
+            return conversation
+    where = f"split {split!r} of {folder}" if split else str(folder)
+    if wanted is None:
+        raise InputError(f"{where}: holds no conversation")
+    raise InputError(f"{where}: no conversation {wanted!r}")
+
+
+def _short_id(conversation_id: str) -> str:
+    # SwDA ids may carry a prefix ("sw_0001_4325" vs "4325"); let users type the number.
+    return conversation_id.rsplit("_", 1)[-1]
+
+
+def load_input(args: argparse.Namespace) -> LoadedInput:
+    """The events named by the input options of a command (a file or a corpus conversation)."""
+    path = Path(args.input)
+    if args.format == "corpus" or (args.format == "auto" and path.is_dir()):
+        conversation = read_conversation(path, split=args.split,
+                                         conversation_id=args.conversation)
+        return conversation_events(conversation)
+    return LoadedInput(source=str(path), events=read_events(path, args.format))
+
+
+def stream_lines(handle: TextIO, source: str, fmt: str) -> Iterator[TimedEvent]:
+    """Parse events from an open text stream line by line, as they arrive (for pipes)."""
+    if fmt == "auto":
+        fmt = "jsonl"
+    if fmt not in ("jsonl", "ctm"):
+        raise InputError(f"{source}: standard input must be jsonl or ctm, not {fmt!r}")
+    parser = CtmParser(source) if fmt == "ctm" else JsonlEventParser(source)
+    for number, raw in enumerate(handle, start=1):
+        event = parser.parse_line(raw, number)
+        if event is not None:
+            yield event

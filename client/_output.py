@@ -1,0 +1,125 @@
+"""How the streaming commands print what the server says (only command modules call this).
+
+:class:`Printer` chooses one of three renderings: JSON Lines of every event (``--json``), a
+live terminal view that redraws open utterances (stdout a TTY), or one line per finished
+utterance (anything else, e.g. a log file). ``--clean`` prints clean text instead of marked
+words; ``--rates`` ends with per-speaker disfluency rates and their caution.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import threading
+from collections.abc import AsyncIterator, Iterator
+from typing import TextIO
+
+from midstream.client._inputs import TimedEvent
+from midstream.client._records import SentWord, dumps, event_record
+from midstream.client._results import Ended, Gap, Reconnected, ServerEvent, Snapshot
+from midstream.client._view import (
+    RATES_CAUTION,
+    Board,
+    TerminalView,
+    disfluency_rates,
+    rates_table,
+    utterance_line,
+)
+
+
+class Printer:
+    """Render server events to ``out`` in the chosen mode; also keeps the :class:`Board`."""
+
+    def __init__(self, out: TextIO, *, json_lines: bool, live: bool, clean: bool,
+                 rates: bool, quiet: bool = False) -> None:
+        self.out = out
+        self.board = Board()
+        self._json = json_lines
+        self._clean = clean
+        self._rates = rates
+        self._quiet = quiet
+        self._view = TerminalView(out, self.board, clean=clean) if live and not json_lines \
+            else None
+        self._printed: set[str] = set()
+
+    def word(self, word: SentWord) -> None:
+        self.board.note_text(word.word_id, word.text)
+
+    def event(self, event: ServerEvent, sent: int | None = None) -> None:
+        changed, _ = self.board.apply(event)
+        if self._json:
+            print(dumps(event_record(event)), file=self.out, flush=True)
+            return
+        if isinstance(event, Gap):
+            self._note(f"[gap: updates from {event.first_missing} are lost "
+                       f"({event.reason.value}); a snapshot follows]")
+        elif isinstance(event, Reconnected):
+            self._note(f"[reconnected, attempt {event.attempt}, from seq {event.from_seq}]")
+        elif isinstance(event, Snapshot):
+            self._note(f"[snapshot as of seq {event.seq}]")
+        if self._quiet:
+            return
+        if self._view is not None:
+            self._view.refresh(changed)
+        else:
+            for utterance_id in changed:
+                utterance = self.board.utterances[utterance_id]
+                if utterance.final and utterance_id not in self._printed:
+                    self._printed.add(utterance_id)
+                    print(utterance_line(self.board, utterance, clean=self._clean),
+                          file=self.out, flush=True)
+        if isinstance(event, Ended):
+            self._note(f"[conversation ended: {event.reason.value}, last seq {event.last_seq}]")
+
+    def _note(self, text: str) -> None:
+        if not self._json:
+            print(text, file=self.out, flush=True)
+
+    def finish(self) -> None:
+        """Print the closing summary (rates) once the conversation has ended."""
+        if self._rates:
+            words = [w for w in self.board.words.values() if w.word_id not in self.board.withdrawn]
+            text = rates_table(disfluency_rates(words))
+            if self._json:
+                # Keep stdout pure JSON Lines: the rates go there as one record, caution included.
+                rows = [{"speaker": r.speaker, "words": r.words,
+                         "per_100": {label.value: round(r.per_100(label), 3) for label in r.counts},
+                         "disfluent_per_100": round(r.disfluent_per_100, 3)}
+                        for r in disfluency_rates(words)]
+                print(dumps({"type": "rates", "speakers": rows, "caution": RATES_CAUTION}),
+                      file=self.out, flush=True)
+            else:
+                print(text, file=self.out, flush=True)
+
+
+async def lines_from_thread(iterator: Iterator[TimedEvent], *, bound: int = 256
+                            ) -> AsyncIterator[TimedEvent]:
+    """Run a blocking event iterator (a pipe) in a daemon thread and yield its events.
+
+    The queue holds at most ``bound`` events: the reading thread blocks when the server is
+    slower than the pipe. A daemon thread never keeps the process alive on a stuck pipe.
+    Errors from the iterator (a bad line) are re-raised here.
+    """
+    loop = asyncio.get_running_loop()
+    queue: asyncio.Queue[tuple[str, object]] = asyncio.Queue(maxsize=bound)
+
+    def pump() -> None:
+        try:
+            for item in iterator:
+                asyncio.run_coroutine_threadsafe(queue.put(("event", item)), loop).result()
+            asyncio.run_coroutine_threadsafe(queue.put(("end", None)), loop).result()
+        except BaseException as exc:  # handed over to the event loop, which re-raises it
+            # RuntimeError: the loop is gone (the command ended first); nothing is left to tell.
+            with contextlib.suppress(RuntimeError):
+                asyncio.run_coroutine_threadsafe(queue.put(("error", exc)), loop).result()
+
+    threading.Thread(target=pump, name="midstream-input", daemon=True).start()
+    while True:
+        kind, value = await queue.get()
+        if kind == "end":
+            return
+        if kind == "error":
+            assert isinstance(value, BaseException)
+            raise value
+        assert isinstance(value, TimedEvent)
+        yield value
