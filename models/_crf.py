@@ -16,7 +16,7 @@ import os
 import struct
 import tempfile
 import threading
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from multiprocessing.connection import Connection
 from typing import Any
@@ -26,10 +26,22 @@ import numpy.typing as npt
 import pycrfsuite
 from midstream._errors import InputError, ModelError
 
-__all__ = ["CrfTagger", "CrfWeights", "ItemFeatures", "TrainingOptions", "train_crf"]
+__all__ = [
+    "CrfTagger",
+    "CrfWeights",
+    "ItemFeatures",
+    "TrainingOptions",
+    "TrainingPairs",
+    "train_crf",
+    "train_crf_from",
+]
+
 
 #: Features of one item (one word): attribute name to value (1.0 for an indicator).
 ItemFeatures = Mapping[str, float]
+
+#: A zero-argument callable yielding (features, labels) sequence pairs; called in the child.
+TrainingPairs = Callable[[], Iterable[tuple[Sequence[ItemFeatures | str], Sequence[str]]]]
 
 # crfsuite's model header (crfsuite/lib/crf/src/crf1m_model.c): 4-byte magic "lCRF", then a
 # little-endian uint32 holding the whole file's size, then the 4-byte model type "FOMC".
@@ -220,6 +232,33 @@ def train_crf(
             raise InputError(f"sequence {i}: {len(x)} items but {len(y)} labels")
     if not any(xseqs):
         raise InputError("no training data")
+    return train_crf_from(
+        lambda: zip(xseqs, yseqs, strict=True),
+        c1=c1, c2=c2, min_freq=min_freq, max_iterations=max_iterations,
+        all_possible_transitions=all_possible_transitions,
+    )
+
+
+def train_crf_from(
+    pairs: TrainingPairs,
+    *,
+    c1: float = 0.1,
+    c2: float = 0.01,
+    min_freq: int = 1,
+    max_iterations: int = 200,
+    all_possible_transitions: bool = True,
+) -> bytes:
+    """Like :func:`train_crf`, but the training pairs are produced inside the child process.
+
+    ``pairs()`` is called in the child, so a large training set is built there, streamed
+    into crfsuite and never held as Python objects in the caller. An item may be a mapping of
+    attribute to value or an attribute name (value 1.0).
+
+    Raises
+    ------
+    ModelError
+        crfsuite failed, or ``pairs()`` raised or yielded no data (message says which).
+    """
     options = TrainingOptions(
         c1=c1, c2=c2, min_freq=min_freq, max_iterations=max_iterations,
         all_possible_transitions=all_possible_transitions,
@@ -228,7 +267,7 @@ def train_crf(
     context = multiprocessing.get_context(method)
     receiver, sender = context.Pipe(duplex=False)
     process = context.Process(  # type: ignore[attr-defined]
-        target=_train_child, args=(sender, xseqs, yseqs, options), daemon=True
+        target=_train_child, args=(sender, pairs, options), daemon=True
     )
     process.start()
     sender.close()
@@ -247,17 +286,18 @@ def train_crf(
     return result
 
 
-def _train_child(
-    sender: Connection,
-    xseqs: Sequence[Sequence[ItemFeatures]],
-    yseqs: Sequence[Sequence[str]],
-    options: TrainingOptions,
-) -> None:
+def _train_child(sender: Connection, pairs: TrainingPairs, options: TrainingOptions) -> None:
     try:
         trainer = pycrfsuite.Trainer(verbose=False)
-        for x, y in zip(xseqs, yseqs, strict=True):
+        count = 0
+        for x, y in pairs():
+            if len(x) != len(y):
+                raise InputError(f"sequence {count}: {len(x)} items but {len(y)} labels")
             if x:
-                trainer.append(_items(x), list(y))
+                trainer.append(list(x), list(y))
+                count += 1
+        if not count:
+            raise InputError("no training data")
         trainer.select("lbfgs")
         trainer.set_params(
             {

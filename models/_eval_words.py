@@ -1,0 +1,243 @@
+"""Evaluating the word model by replaying annotated conversations word by word.
+
+Every speaker channel is fed to a :class:`~midstream.models._decoder.ChannelDecoder` one word at
+a time, and every state the decoder reports is recorded with the step (the channel position of
+the newest word) at which it was said. Scores use only what the stream had said at each moment;
+no gold boundary is ever given to the decoder.
+
+Reported keys (all in ``[0, 1]`` unless a unit is named):
+
+``disfluency.<label>.{precision,recall,f1}``
+    word-level scores of each :class:`~midstream.DisfluencyLabel` on the final streaming output
+    (the positive class is the label; gold from the corpus annotation).
+``disfluency.reparandum_no_fragments.f1``
+    reparandum F1 with word fragments left out (recognisers rarely emit fragments).
+``disfluency.offline.reparandum.f1``
+    the same model decoding each whole channel at once (crfsuite's own Viterbi).
+``incremental.edit_overhead``
+    share of label edits that were unnecessary (Baumann, Buß & Schlangen, Dialogue & Discourse
+    2011): each word's first label and every change count as an edit; one per word is necessary.
+``incremental.time_to_detection_words.median`` and ``incremental.detection_rate``
+    for gold repairs with an onset: words of the channel from the repair onset until the
+    reparandum's first word was first labelled reparandum (negative: before the onset arrived),
+    and the share of such reparanda ever so labelled.
+``incremental.final_decision_delay_words.mean``
+    words that arrived after a word before it became final.
+``incremental.reparandum_f1_at_delay.{0,1,2}``
+    reparandum F1 of the labels as they stood ``d`` words after each word arrived.
+``segmentation.{precision,recall,f1}``
+    utterance ends (the last word of each gold utterance in its speaker's channel), final output.
+
+Disfluency metrics use disfluency-annotated conversations only; segmentation uses all.
+"""
+
+from __future__ import annotations
+
+import statistics
+import sys
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+
+from midstream._types import Conversation, DisfluencyLabel
+from midstream.models._decoder import ChannelDecoder, DecoderConfig
+from midstream.models._features import tokens_from_words
+from midstream.models._wordmodel import WordModel
+from midstream.models._wordtags import ChannelSequence, channel_sequences, decode_tag
+
+__all__ = ["BinaryCounts", "evaluate_words", "offline_scores"]
+
+_DELAYS = (0, 1, 2)
+
+
+@dataclass(slots=True)
+class BinaryCounts:
+    """True positives, false positives and false negatives of one binary decision."""
+
+    tp: int = 0
+    fp: int = 0
+    fn: int = 0
+
+    def add(self, predicted: bool, gold: bool) -> None:
+        if predicted and gold:
+            self.tp += 1
+        elif predicted:
+            self.fp += 1
+        elif gold:
+            self.fn += 1
+
+    @property
+    def precision(self) -> float:
+        return self.tp / (self.tp + self.fp) if self.tp + self.fp else 0.0
+
+    @property
+    def recall(self) -> float:
+        return self.tp / (self.tp + self.fn) if self.tp + self.fn else 0.0
+
+    @property
+    def f1(self) -> float:
+        denominator = 2 * self.tp + self.fp + self.fn
+        return 2 * self.tp / denominator if denominator else 0.0
+
+
+@dataclass(slots=True)
+class _Tally:
+    labels: dict[DisfluencyLabel, BinaryCounts] = field(
+        default_factory=lambda: {label: BinaryCounts() for label in DisfluencyLabel}
+    )
+    no_fragments: BinaryCounts = field(default_factory=BinaryCounts)
+    offline: BinaryCounts = field(default_factory=BinaryCounts)
+    at_delay: dict[int, BinaryCounts] = field(
+        default_factory=lambda: {d: BinaryCounts() for d in _DELAYS}
+    )
+    segmentation: BinaryCounts = field(default_factory=BinaryCounts)
+    edits: int = 0
+    edited_words: int = 0
+    detection_delays: list[int] = field(default_factory=list)
+    gold_repairs: int = 0
+    final_delays: list[int] = field(default_factory=list)
+
+
+def _gold_labels(channel: ChannelSequence) -> list[DisfluencyLabel] | None:
+    if channel.tags is None:
+        return None
+    return [decode_tag(t)[1] for t in channel.tags]
+
+
+def _replay(
+    channel: ChannelSequence, model: WordModel, config: DecoderConfig, tally: _Tally,
+    conversation: Conversation,
+) -> None:
+    decoder = ChannelDecoder(model, config)
+    n = len(channel.words)
+    history: list[list[tuple[int, DisfluencyLabel]]] = [[] for _ in range(n)]
+    final_label: list[DisfluencyLabel | None] = [None] * n
+    final_end = [False] * n
+    final_step = [n - 1] * n
+
+    def record(states: Iterable[object], step: int) -> None:
+        for state in states:
+            assert hasattr(state, "key")
+            key: int = state.key
+            steps = history[key]
+            if not steps or steps[-1][1] != state.label:
+                steps.append((step, state.label))
+            if state.final:
+                final_label[key] = state.label
+                final_end[key] = state.ends_utterance
+                final_step[key] = step
+
+    for position, word in enumerate(channel.words):
+        record(
+            decoder.append(position, word,
+                           after_other_speaker=channel.after_other_speaker[position]),
+            position,
+        )
+    record(decoder.finish(), n - 1)
+
+    for position in range(n):
+        tally.segmentation.add(final_end[position], channel.ends[position])
+    gold = _gold_labels(channel)
+    if gold is None:
+        return
+    predicted = final_label
+    for position in range(n):
+        label = predicted[position]
+        assert label is not None, "decoder left a word without a final state"
+        for name, counts in tally.labels.items():
+            counts.add(label == name, gold[position] == name)
+        is_rep = gold[position] == DisfluencyLabel.REPARANDUM
+        if not channel.words[position].fragment:
+            tally.no_fragments.add(label == DisfluencyLabel.REPARANDUM, is_rep)
+        for d in _DELAYS:
+            step = position + d
+            at = [lab for s, lab in history[position] if s <= step]
+            tally.at_delay[d].add(bool(at) and at[-1] == DisfluencyLabel.REPARANDUM, is_rep)
+        tally.edits += len(history[position])
+        tally.edited_words += 1
+        tally.final_delays.append(final_step[position] - position)
+    offline = model.tag_tokens(tokens_from_words(channel.words, channel.after_other_speaker))
+    for position, tag in enumerate(offline):
+        tally.offline.add(
+            decode_tag(tag)[1] == DisfluencyLabel.REPARANDUM,
+            gold[position] == DisfluencyLabel.REPARANDUM,
+        )
+    # Time to detection, over the gold repairs of this channel that have an onset.
+    where = {index: position for position, index in enumerate(channel.indices)}
+    for repair in conversation.repairs:
+        if repair.repair_onset is None or repair.reparandum[0] not in where:
+            continue
+        onset = where.get(repair.repair_onset)
+        if onset is None:
+            continue
+        tally.gold_repairs += 1
+        first = where[repair.reparandum[0]]
+        detected = [s for s, lab in history[first] if lab == DisfluencyLabel.REPARANDUM]
+        if detected:
+            tally.detection_delays.append(detected[0] - onset)
+
+
+def evaluate_words(
+    conversations: Iterable[Conversation],
+    model: WordModel,
+    *,
+    config: DecoderConfig = DecoderConfig(),
+    progress: bool = False,
+) -> dict[str, float]:
+    """Replay every conversation's channels and score them (keys in the module docstring)."""
+    from tqdm import tqdm
+
+    tally = _Tally()
+    conversations = list(conversations)
+    for conversation in tqdm(conversations, desc="evaluate words", file=sys.stderr,
+                             disable=not progress):
+        for channel in channel_sequences(conversation):
+            _replay(channel, model, config, tally, conversation)
+    result: dict[str, float] = {}
+    for label, counts in tally.labels.items():
+        result[f"disfluency.{label.value}.precision"] = counts.precision
+        result[f"disfluency.{label.value}.recall"] = counts.recall
+        result[f"disfluency.{label.value}.f1"] = counts.f1
+    result["disfluency.reparandum_no_fragments.f1"] = tally.no_fragments.f1
+    result["disfluency.offline.reparandum.f1"] = tally.offline.f1
+    overhead = tally.edits - tally.edited_words
+    result["incremental.edit_overhead"] = overhead / tally.edits if tally.edits else 0.0
+    result["incremental.time_to_detection_words.median"] = (
+        float(statistics.median(tally.detection_delays)) if tally.detection_delays
+        else float("nan")
+    )
+    result["incremental.detection_rate"] = (
+        len(tally.detection_delays) / tally.gold_repairs if tally.gold_repairs else 0.0
+    )
+    result["incremental.final_decision_delay_words.mean"] = (
+        statistics.fmean(tally.final_delays) if tally.final_delays else float("nan")
+    )
+    for d, counts in tally.at_delay.items():
+        result[f"incremental.reparandum_f1_at_delay.{d}"] = counts.f1
+    result["segmentation.precision"] = tally.segmentation.precision
+    result["segmentation.recall"] = tally.segmentation.recall
+    result["segmentation.f1"] = tally.segmentation.f1
+    return result
+
+
+def offline_scores(conversations: Sequence[Conversation], model: WordModel) -> dict[str, float]:
+    """Quick offline scores (whole channels at once) used by cross-validation."""
+    reparandum = BinaryCounts()
+    filler = BinaryCounts()
+    segmentation = BinaryCounts()
+    for conversation in conversations:
+        for channel in channel_sequences(conversation):
+            tokens = tokens_from_words(channel.words, channel.after_other_speaker)
+            tags = [decode_tag(t) for t in model.tag_tokens(tokens)]
+            gold = _gold_labels(channel)
+            for position, (_, label, ends) in enumerate(tags):
+                segmentation.add(ends, channel.ends[position])
+                if gold is not None:
+                    reparandum.add(label == DisfluencyLabel.REPARANDUM,
+                                   gold[position] == DisfluencyLabel.REPARANDUM)
+                    filler.add(label == DisfluencyLabel.FILLER,
+                               gold[position] == DisfluencyLabel.FILLER)
+    return {
+        "reparandum_f1": reparandum.f1,
+        "filler_f1": filler.f1,
+        "segmentation_f1": segmentation.f1,
+    }

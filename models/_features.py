@@ -1,0 +1,215 @@
+"""Word features for the disfluency and utterance-end CRF: a window of words in, names out.
+
+Only what a live recogniser gives is used: lower-case words, the fragment flag, optional times
+and confidence, and whether the other speaker spoke in between. No punctuation, capitals or gold
+boundaries.
+
+The features of word ``i`` read at most :attr:`FeatureConfig.left` words to its left and
+:attr:`FeatureConfig.right` words to its right. They are produced in *pieces*: piece ``k`` holds
+the features whose right-most word read is ``i + k``. The streaming decoder adds piece ``k`` of
+word ``i`` when word ``i + k`` arrives, so a new word costs one word's worth of feature work
+however long the speaker talks; training joins all pieces of every word. Both go through
+:func:`feature_piece`, so identical windows give identical features.
+
+Every feature is an indicator (value 1.0); names are short strings with an ``=``-separated value.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Final
+
+from midstream._types import Word
+
+__all__ = ["FeatureConfig", "Token", "feature_piece", "features_at", "tokens_from_words"]
+
+#: Pause buckets in seconds (common practice, no source: 0.1 s is inter-word jitter,
+#: about 0.5 s a noticeable pause, 1.5 s a long one).
+_PAUSE_EDGES: Final = (0.1, 0.3, 0.5, 1.0, 1.5)
+#: Pause (seconds) that counts as a gap for the position feature (common practice, no source).
+GAP_SECONDS: Final = 0.5
+_CONFIDENCE_EDGES: Final = (0.3, 0.5, 0.7, 0.9)
+
+
+@dataclass(frozen=True, slots=True)
+class Token:
+    """What the features read of one word of a speaker channel."""
+
+    text: str
+    fragment: bool = False
+    start: float | None = None
+    end: float | None = None
+    confidence: float | None = None
+    after_other_speaker: bool = False
+
+
+def tokens_from_words(words: Sequence[Word], after_other: Sequence[bool]) -> list[Token]:
+    """Tokens of one channel's words (``after_other[k]``: another speaker spoke before word k)."""
+    return [token_of(w, a) for w, a in zip(words, after_other, strict=True)]
+
+
+def token_of(word: Word, after_other_speaker: bool = False) -> Token:
+    return Token(
+        text=word.text,
+        fragment=word.fragment,
+        start=word.start,
+        end=word.end,
+        confidence=word.confidence,
+        after_other_speaker=after_other_speaker,
+    )
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class FeatureConfig:
+    """Which features to compute; stored in the model file so decoding matches training.
+
+    ``lexicon`` maps words to an interregnum class learned from training data (``"F"`` filled
+    pause, ``"E"`` editing term, ``"D"`` discourse marker). ``right`` is how many words to the
+    right a feature may read (the decoder cannot finalise a word before that many have followed);
+    ``left`` bounds the left context (the position feature counts back at most that far).
+    """
+
+    right: int = 5
+    left: int = 8
+    lexicon: Mapping[str, str] = field(default_factory=dict, repr=False)
+
+    def to_json(self) -> dict[str, Any]:
+        return {"right": self.right, "left": self.left, "lexicon": dict(self.lexicon)}
+
+    @classmethod
+    def from_json(cls, data: Mapping[str, Any]) -> FeatureConfig:
+        return cls(
+            right=int(data["right"]),
+            left=int(data["left"]),
+            lexicon={str(k): str(v) for k, v in dict(data["lexicon"]).items()},
+        )
+
+
+def _bucket(value: float, edges: Sequence[float]) -> int:
+    for k, edge in enumerate(edges):
+        if value < edge:
+            return k
+    return len(edges)
+
+
+def _pause(before: Token, after: Token) -> float | None:
+    if before.end is None or after.start is None:
+        return None
+    return after.start - before.end
+
+
+def _is_gap(tokens: Sequence[Token], i: int) -> bool:
+    """Whether a gap (other speaker, long pause) comes right before token ``i``."""
+    token = tokens[i]
+    if token.after_other_speaker:
+        return True
+    pause = _pause(tokens[i - 1], token) if i > 0 else None
+    return pause is not None and pause >= GAP_SECONDS
+
+
+def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig) -> list[str]:
+    """Features of token ``i`` whose right-most token read is ``i + k``.
+
+    Reads only ``tokens[i - config.left : i + k + 1]``; ``i - 1 < 0`` means the channel (or
+    the window the caller kept) starts at ``i``. Requires ``0 <= k <= config.right`` and
+    ``i + k < len(tokens)``.
+    """
+    lex = config.lexicon
+    t0 = tokens[i]
+    w0 = "<frag>" if t0.fragment else t0.text
+    out: list[str] = []
+    if k == 0:
+        wm1 = tokens[i - 1].text if i >= 1 else "<s>"
+        wm2 = tokens[i - 2].text if i >= 2 else "<s>"
+        out += [
+            "b",
+            "w=" + w0,
+            "w-1=" + wm1,
+            "w-2=" + wm2,
+            "w-1w=" + wm1 + "|" + w0,
+            "w-2w-1w=" + wm2 + "|" + wm1 + "|" + w0,
+            "lx=" + lex.get(t0.text, "-"),
+            "lx-1=" + (lex.get(wm1, "-") if i >= 1 else "<s>"),
+        ]
+        if t0.fragment:
+            out.append("frag")
+            out.append("fp=" + t0.text[:2])
+        if t0.after_other_speaker:
+            out.append("oth")
+        if i >= 1:
+            pause = _pause(tokens[i - 1], t0)
+            if pause is not None:
+                out.append(f"pb={_bucket(pause, _PAUSE_EDGES)}")
+        if t0.confidence is not None:
+            out.append(f"cf={_bucket(t0.confidence, _CONFIDENCE_EDGES)}")
+        # Words since the last gap, counted back at most config.left words.
+        since = 0
+        j = i
+        while j > 0 and since < config.left and not _is_gap(tokens, j):
+            since += 1
+            j -= 1
+        out.append(f"pos={min(since, 6) if since < config.left else 'far'}")
+        # Repetition of earlier words: the second copy of a repeat (repair onset or later).
+        for b in range(1, config.right + 1):
+            if i - b < 0:
+                break
+            if tokens[i - b].text == t0.text:
+                out.append(f"lm{b}")
+                if i - b - 1 >= 0 and i >= 1 and tokens[i - b - 1].text == tokens[i - 1].text:
+                    out.append(f"lbm{b}")
+        return out
+
+    tk = tokens[i + k]
+    wk = "<frag>" if tk.fragment else tk.text
+    if k == 1:
+        out += [
+            "w+1=" + wk,
+            "ww+1=" + w0 + "|" + wk,
+            "lx+1=" + lex.get(tk.text, "-"),
+        ]
+        if tk.after_other_speaker:
+            out.append("oth+1")
+        pause = _pause(t0, tk)
+        if pause is not None:
+            out.append(f"pa={_bucket(pause, _PAUSE_EDGES)}")
+        if tk.fragment:
+            out.append("frag+1")
+    elif k == 2:
+        w1 = tokens[i + 1].text
+        out += ["w+2=" + wk, "w+1w+2=" + w1 + "|" + wk, "lx+2=" + lex.get(tk.text, "-")]
+    # Exact and rough copies ending at or starting from i that reach i + k.
+    if not t0.fragment and tk.text == t0.text:
+        out.append(f"m0_{k}")
+        if all(tokens[i + b].text != t0.text for b in range(1, k)):
+            out.append(f"m0first={k}")
+            out.append("m0w=" + w0)
+            if all(lex.get(tokens[i + b].text, "-") in "FE" for b in range(1, k)) and k > 1:
+                out.append("mskip")
+    for a in (1, 2):
+        if i - a >= 0 and tokens[i - a].text == tk.text:
+            out.append(f"m{a}_{k}")
+    # Left copy: tokens[i-a .. i] equals tokens[i+k-a .. i+k] for a = 0, 1 (and 2).
+    if tk.text == t0.text and i >= 1 and tokens[i - 1].text == tokens[i + k - 1].text and k > 1:
+        if i >= 2 and k > 2 and tokens[i - 2].text == tokens[i + k - 2].text:
+            out.append(f"lc{k}_3")
+        else:
+            out.append(f"lc{k}_2")
+    # Forward copy: tokens[i .. i+n-1] equals tokens[i+d .. i+d+n-1] with d + n - 1 = k, n >= 2.
+    for n in (2, 3):
+        d = k - n + 1
+        if d >= n and all(tokens[i + b].text == tokens[i + d + b].text for b in range(n)):
+            out.append(f"fc{d}_{n}")
+    # A broken-off word that the speaker then says in full.
+    if t0.fragment and len(t0.text) > 1 and tk.text.startswith(t0.text.rstrip("-")):
+        out.append(f"fpre{k}")
+    return out
+
+
+def features_at(tokens: Sequence[Token], i: int, config: FeatureConfig) -> list[str]:
+    """All features of token ``i`` given the tokens known so far (all pieces joined)."""
+    last = min(config.right, len(tokens) - 1 - i)
+    out: list[str] = []
+    for k in range(last + 1):
+        out += feature_piece(tokens, i, k, config)
+    return out

@@ -1,0 +1,105 @@
+"""The trained word model: CRF weights, feature configuration and tag bookkeeping in one object.
+
+A :class:`WordModel` is immutable after loading and safe to share between threads and sessions;
+each speaker channel gets its own :class:`~midstream.models._decoder.ChannelDecoder` over it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from importlib import resources
+from pathlib import Path
+
+import numpy as np
+import numpy.typing as npt
+
+from midstream._errors import ModelError
+from midstream._types import DisfluencyLabel
+from midstream.models._artifact import ModelArtifact, load_artifact
+from midstream.models._crf import CrfTagger
+from midstream.models._features import FeatureConfig, Token, features_at
+from midstream.models._lattice import decode_lattice
+from midstream.models._wordtags import END_SUFFIX, TAG_LABEL, decode_tag
+
+__all__ = ["WordModel", "default_words_model_path"]
+
+FloatArray = npt.NDArray[np.float64]
+
+
+def default_words_model_path() -> Path:
+    """Where the shipped word model lives (inside the installed package)."""
+    return Path(str(resources.files("midstream.models") / "weights" / "words.msm"))
+
+
+class WordModel:
+    """Disfluency and utterance-end CRF ready for decoding.
+
+    Use :meth:`from_artifact` or :meth:`load`. ``tags`` are the CRF's internal tags; the
+    arrays map them to published labels and utterance-end flags.
+    """
+
+    def __init__(self, artifact: ModelArtifact, tagger: CrfTagger) -> None:
+        self.artifact = artifact
+        self.tagger = tagger
+        try:
+            self.config = FeatureConfig.from_json(artifact.features)
+        except (KeyError, TypeError, ValueError) as exc:
+            raise ModelError(f"word model's feature configuration is malformed: {exc}") from exc
+        weights = tagger.weights()
+        self.tags: tuple[str, ...] = weights.labels
+        unknown = [t for t in self.tags if t.removesuffix(END_SUFFIX) not in TAG_LABEL]
+        if unknown:
+            raise ModelError(f"word model has unknown tags {unknown}")
+        self.attributes = weights.attributes
+        self.state = weights.state
+        self.transitions = weights.transitions
+        self.exp_transitions: FloatArray = np.exp(weights.transitions)
+        decoded = [decode_tag(t) for t in self.tags]
+        self.tag_base: tuple[str, ...] = tuple(d[0] for d in decoded)
+        self.tag_label: tuple[DisfluencyLabel, ...] = tuple(d[1] for d in decoded)
+        self.tag_ends: tuple[bool, ...] = tuple(d[2] for d in decoded)
+        self.end_mask: FloatArray = np.array([1.0 if e else 0.0 for e in self.tag_ends])
+        if not self.end_mask.any():
+            raise ModelError("word model has no utterance-end tag")
+        self.labels: tuple[DisfluencyLabel, ...] = tuple(DisfluencyLabel)
+        # (tags x labels) and (tags x 2) 0/1 matrices summing tag marginals into label ones.
+        self.label_groups: FloatArray = np.array(
+            [[1.0 if lab == t else 0.0 for t in self.labels] for lab in self.tag_label]
+        )
+        self.zero: FloatArray = np.zeros(len(self.tags))
+
+    @classmethod
+    def from_artifact(cls, artifact: ModelArtifact) -> WordModel:
+        if artifact.kind != "words":
+            raise ModelError(f"model kind is {artifact.kind!r}, expected 'words'")
+        return cls(artifact, CrfTagger.from_bytes(artifact.crf))
+
+    @classmethod
+    def load(cls, path: Path | None = None) -> WordModel:
+        """Load a ``.msm`` word model (the shipped one when ``path`` is None)."""
+        path = default_words_model_path() if path is None else path
+        return cls.from_artifact(load_artifact(path, expected_kind="words"))
+
+    def score(self, features: Sequence[str]) -> FloatArray:
+        """State scores of one word's features (unknown features weigh nothing)."""
+        get = self.attributes.get
+        rows = [r for r in map(get, features) if r is not None]
+        if not rows:
+            return self.zero.copy()
+        result: FloatArray = self.state[rows].sum(axis=0)
+        return result
+
+    def tag_tokens(self, tokens: Sequence[Token]) -> list[str]:
+        """Decode a whole channel at once (offline), with crfsuite's own Viterbi."""
+        xseq = [dict.fromkeys(features_at(tokens, i, self.config), 1.0)
+                for i in range(len(tokens))]
+        return self.tagger.tag(xseq)
+
+    def decode_tokens(self, tokens: Sequence[Token]) -> tuple[list[int], FloatArray]:
+        """Decode a whole channel at once with the numpy lattice (tag indices, marginals)."""
+        if not tokens:
+            return [], np.zeros((0, len(self.tags)))
+        emissions = np.stack(
+            [self.score(features_at(tokens, i, self.config)) for i in range(len(tokens))]
+        )
+        return decode_lattice(emissions, self.exp_transitions)
