@@ -1,0 +1,75 @@
+"""Invented conversations and tiny function models for fast tests (demo data, not a corpus).
+
+The conversations follow a few fixed exchanges (question then answer, opinion then agreement,
+statement then backchannel) with seeded variation, so a CRF trained on a handful of them in well
+under a second learns the patterns the tests rely on.
+"""
+
+from __future__ import annotations
+
+import random
+
+from midstream import Conversation, DisfluencyLabel, Utterance, Word
+from midstream._schemes import coarse_function
+from midstream.models._artifact import ModelArtifact
+from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
+
+F = DisfluencyLabel.FLUENT
+FILLER = DisfluencyLabel.FILLER
+REP = DisfluencyLabel.REPARANDUM
+
+_NOUNS = ("kids", "dogs", "cars", "books", "plans", "tickets", "friends", "bikes")
+
+# (speaker offset, fine class, words with optional "uh" filler marks)
+_EXCHANGES: tuple[tuple[tuple[int, str, str], ...], ...] = (
+    ((0, "qy", "do you have {n}"), (1, "ny", "yes"), (1, "sd", "we have two {n}"),
+     (0, "b", "uh-huh")),
+    ((0, "sv", "i think {n} are great"), (1, "aa", "yeah"), (1, "sv", "i think so too")),
+    ((0, "qw", "what kind of {n} do you like"), (1, "sd", "we like old {n}"),
+     (0, "b", "uh-huh")),
+    ((0, "sd", "we bought new {n} last year"), (1, "b", "uh-huh"),
+     (0, "sd", "they cost a lot")),
+    ((0, "qy", "are your {n} old"), (1, "nn", "no"), (1, "sd", "they are new {n}")),
+)
+
+
+def invented_conversation(seed: int, *, annotated: bool = True) -> Conversation:
+    """One invented two-speaker conversation of several exchanges."""
+    rng = random.Random(seed)
+    words: list[Word] = []
+    labels: list[DisfluencyLabel] = []
+    utterances: list[Utterance] = []
+    for _ in range(6):
+        exchange = rng.choice(_EXCHANGES)
+        first = rng.randint(0, 1)
+        for offset, fine, text in exchange:
+            speaker = "AB"[(first + offset) % 2]
+            indices: list[int] = []
+            tokens = text.format(n=rng.choice(_NOUNS)).split()
+            if len(tokens) > 2 and rng.random() < 0.3:
+                # A filler and a repeated first word (reparandum) in front.
+                for token, label in (("uh", FILLER), (tokens[0], REP)):
+                    indices.append(len(words))
+                    words.append(Word(text=token, speaker=speaker))
+                    labels.append(label)
+            for token in tokens:
+                indices.append(len(words))
+                words.append(Word(text=token, speaker=speaker))
+                labels.append(F)
+            utterances.append(Utterance(speaker=speaker, words=tuple(indices),
+                                        function=coarse_function("swbd42", fine),
+                                        fine_tag=fine, fine_class=fine))
+    return Conversation(id=f"demo{seed:03d}", corpus="demo", words=tuple(words),
+                        utterances=tuple(utterances),
+                        labels=tuple(labels) if annotated else None)
+
+
+def invented_corpus(n: int, start: int = 0) -> list[Conversation]:
+    return [invented_conversation(seed) for seed in range(start, start + n)]
+
+
+def tiny_model(scheme: str = "swbd42", *, augment: float = 0.5) -> ModelArtifact:
+    """A function model trained on 20 invented conversations (about a second)."""
+    options = FunctionTrainingOptions(scheme=scheme, c1=0.01, c2=0.01, min_freq=1,
+                                      max_iterations=60, augment=augment)
+    return train_function_model(invented_corpus(20), options)
