@@ -22,7 +22,13 @@ from pathlib import Path
 from typing import Any, NoReturn
 
 import grpc
-from midstream._errors import EventError, MidstreamError, UnavailableError
+from midstream._errors import (
+    EventError,
+    MidstreamError,
+    ModelError,
+    NotFoundError,
+    UnavailableError,
+)
 from midstream._types import HypothesisDiff, UtteranceHypothesis, WordHypothesis
 from midstream.server._config import ServerLimits
 from midstream.server._limits import SpeakerTimeline, check_batch_size, check_id, check_word
@@ -70,7 +76,9 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     error: MidstreamError) -> NoReturn:
         code = status_code(error)
         self._metrics.errors.labels(code=code.name).inc()
-        _log.info("RPC refused with %s: %s", code.name, error)
+        # The message may quote caller input (an engine's), so it stays below INFO.
+        _log.info("RPC refused with %s (%s)", code.name, type(error).__name__)
+        _log.debug("refusal detail: %s", error)
         await context.abort(code, str(error))
         raise AssertionError("abort returned")  # pragma: no cover - abort always raises
 
@@ -344,7 +352,12 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         try:
             if not request.directory:
                 raise EventError("field 'directory' is empty")
-            bundle = await asyncio.to_thread(load_bundle, Path(request.directory))
+            try:
+                bundle = await asyncio.to_thread(load_bundle, Path(request.directory))
+            except (ModelError, NotFoundError) as exc:
+                # Whatever went wrong, the request cannot succeed as the server stands:
+                # FAILED_PRECONDITION, and the models in service keep serving.
+                raise ModelError(f"models not reloaded, the ones in service stay: {exc}") from exc
         except MidstreamError as exc:
             await self._fail(context, exc)
         # Live sessions keep the engine they were opened with; new ones use this bundle.

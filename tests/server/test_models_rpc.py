@@ -1,0 +1,73 @@
+"""TagTranscript agrees with streaming; DescribeModels and ReloadModels keep serving on failure."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import grpc
+import pytest
+from midstream.wire import _convert as cv
+from midstream.wire import midstream_pb2 as pb
+from server_kit import (  # noqa: F401 - fixtures are found by name
+    CLOSE,
+    Running,
+    open_event,
+    running_fixture,
+    spoken,
+    start_server_fixture,
+    words_event,
+)
+
+
+def _final_by_id(messages: list[pb.ServerMessage]) -> tuple[dict[str, pb.WordState],
+                                                            dict[str, pb.UtteranceState]]:
+    words: dict[str, pb.WordState] = {}
+    utterances: dict[str, pb.UtteranceState] = {}
+    for message in messages:
+        for word in message.update.words:
+            words[word.word_id] = word
+        for utterance in message.update.utterances:
+            utterances[utterance.utterance_id] = utterance
+    return words, utterances
+
+
+async def test_transcript_matches_the_stream_word_for_word(running: Running) -> None:
+    texts = ["so", "uh", "we", "we", "went", "to", "um", "to", "the", "the", "shop"]
+    spoken_words = [spoken(f"w{i}", t, speaker="AB"[i // 6], start=float(i))
+                    for i, t in enumerate(texts)]
+    items = [pb.TranscriptItem(word=w) for w in spoken_words[:6]]
+    items.append(pb.TranscriptItem(hint=cv.hint_to_wire("A", turn_end=True)))
+    items += [pb.TranscriptItem(word=w) for w in spoken_words[6:]]
+    reply = await running.stub.TagTranscript(pb.TagTranscriptRequest(items=items))
+    events = [open_event(), words_event(*spoken_words[:6]),
+              pb.ClientEvent(hint=cv.hint_to_wire("A", turn_end=True))]
+    events += [words_event(w) for w in spoken_words[6:]] + [CLOSE]
+    streamed_words, streamed_utterances = _final_by_id(
+        [m async for m in running.stub.Converse(iter(events))])
+    assert [w.word_id for w in reply.words] == [f"w{i}" for i in range(len(texts))]
+    assert all(w.final for w in reply.words) and all(u.final for u in reply.utterances)
+    assert {w.word_id: w for w in reply.words} == streamed_words
+    assert {u.utterance_id: u for u in reply.utterances} == streamed_utterances
+
+
+async def test_describe_and_failed_reload_keep_the_models(running: Running,
+                                                          tmp_path: Path) -> None:
+    before = await running.stub.DescribeModels(pb.DescribeModelsRequest())
+    assert [m.kind for m in before.models] == ["words"]
+    assert json.loads(before.models[0].training_summary_json) == {}
+    (tmp_path / "words.msm").write_bytes(b"not a model at all")
+    cases = [str(tmp_path), str(tmp_path / "missing")]
+    for directory in cases:
+        with pytest.raises(grpc.aio.AioRpcError) as info:
+            await running.stub.ReloadModels(pb.ReloadModelsRequest(directory=directory))
+        assert info.value.code() == grpc.StatusCode.FAILED_PRECONDITION
+        assert "the ones in service stay" in (info.value.details() or "")
+    with pytest.raises(grpc.aio.AioRpcError) as info:
+        await running.stub.ReloadModels(pb.ReloadModelsRequest())
+    assert info.value.code() == grpc.StatusCode.INVALID_ARGUMENT
+    assert await running.stub.DescribeModels(pb.DescribeModelsRequest()) == before
+    # Still serving conversations with the old models.
+    replies = [m async for m in running.stub.Converse(iter([
+        open_event(), words_event(spoken("w1", "hello")), CLOSE]))]
+    assert replies[-1].ended.reason == pb.END_REASON_CLOSED
