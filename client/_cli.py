@@ -26,6 +26,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "midstream.client._cmd_subscribe",
     "midstream.client._cmd_inspect",
     "midstream.client._cmd_demo",
+    "midstream.client._cmd_serve",
 )
 
 Handler = Callable[[argparse.Namespace], int]

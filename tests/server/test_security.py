@@ -63,7 +63,7 @@ async def test_tls_serves_secure_callers_only(start_server: ServerFactory,
 
 
 async def test_required_tls_without_certificate_refuses_to_start() -> None:
-    server = MidstreamServer(ServerConfig(port=0, require_tls=True), bundle=FakeBundle())  # type: ignore[arg-type]
+    server = MidstreamServer(ServerConfig(port=0, require_tls=True), bundle=FakeBundle())
     with pytest.raises(InputError, match="require-tls"):
         await server.start()
     await server.stop(0)
@@ -88,7 +88,7 @@ def _every_rpc(stub: pb_grpc.MidstreamStub, metadata: tuple[tuple[str, str], ...
 async def _outcome(call: object) -> grpc.StatusCode:
     try:
         if hasattr(call, "__aiter__"):
-            _ = [m async for m in call]  # type: ignore[attr-defined]
+            _ = [m async for m in call]
         else:
             await call  # type: ignore[misc]
     except grpc.aio.AioRpcError as exc:

@@ -1,0 +1,116 @@
+"""``midstream serve``: run the streaming gRPC service until SIGTERM or Ctrl-C.
+
+::
+
+    midstream serve                                   # shipped models, 127.0.0.1:50051
+    midstream serve --port 0 --metrics-port 9464      # any free port; Prometheus metrics
+    MIDSTREAM_TOKEN=... midstream serve --host 0.0.0.0 --tls-cert c.pem --tls-key k.pem \\
+        --require-tls --token-env
+
+The first line on standard output names the address (``serving on HOST:PORT``), so a script
+started with ``--port 0`` can read the port. SIGTERM (and SIGINT) drain: health turns
+NOT_SERVING, every live conversation is finished and its caller and followers get the final
+update and ``ended`` within ``--grace`` seconds, then the process exits 0. This module is an
+entry point: it is the only place the token's environment variable is read.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import os
+import signal
+import sys
+from pathlib import Path
+
+from midstream._errors import InputError
+from midstream.server import MidstreamServer, ServerConfig, ServerLimits
+
+_TOKEN_ENV = "MIDSTREAM_TOKEN"
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    defaults = ServerLimits()
+    parser = subparsers.add_parser(
+        "serve", help="run the streaming gRPC service",
+        description="Serve the tagging models over gRPC (Converse, Follow, TagTranscript, ...) "
+                    "until SIGTERM or Ctrl-C, which drain live conversations first. Limits are "
+                    "listed in docs/limits.md.")
+    parser.add_argument("--host", default="127.0.0.1",
+                        help="address to listen on (default 127.0.0.1; 0.0.0.0 for all)")
+    parser.add_argument("--port", type=int, default=50051,
+                        help="gRPC port (default 50051; 0 picks a free one)")
+    parser.add_argument("--models", type=Path, default=None, metavar="DIR",
+                        help="folder of .msm model files (default: the shipped models)")
+    parser.add_argument("--metrics-port", type=int, default=None, metavar="N",
+                        help="serve Prometheus metrics over HTTP on this port (default: off)")
+    parser.add_argument("--metrics-host", default="127.0.0.1",
+                        help="address of the metrics endpoint (default 127.0.0.1)")
+    parser.add_argument("--tls-cert", type=Path, default=None, metavar="FILE",
+                        help="PEM certificate chain; with --tls-key turns TLS on")
+    parser.add_argument("--tls-key", type=Path, default=None, metavar="FILE",
+                        help="PEM private key of --tls-cert")
+    parser.add_argument("--require-tls", action="store_true",
+                        help="refuse to start unless --tls-cert and --tls-key are given")
+    token = parser.add_mutually_exclusive_group()
+    token.add_argument("--token-env", nargs="?", const=_TOKEN_ENV, default=None, metavar="VAR",
+                       help=f"require 'authorization: Bearer <token>' on every call, the token "
+                            f"read from environment variable VAR (default {_TOKEN_ENV})")
+    token.add_argument("--token", default=None,
+                       help="the bearer token itself (visible to other local users in the "
+                            "process list: prefer --token-env)")
+    parser.add_argument("--grace", type=float, default=10.0, metavar="S",
+                        help="seconds a shutdown waits for streams to drain (default 10)")
+    parser.add_argument("--idle-timeout", type=float, default=defaults.idle_timeout_s,
+                        metavar="S",
+                        help="finish a conversation whose caller sent nothing for S seconds "
+                             f"(default {defaults.idle_timeout_s:g})")
+    parser.set_defaults(handler=run)
+
+
+def _token(args: argparse.Namespace) -> str | None:
+    if args.token is not None:
+        if not args.token:
+            raise InputError("--token is empty")
+        return str(args.token)
+    if args.token_env is None:
+        return None
+    value = os.environ.get(args.token_env, "")
+    if not value:
+        raise InputError(f"--token-env: environment variable {args.token_env} is unset or empty")
+    return value
+
+
+def run(args: argparse.Namespace) -> int:
+    if args.grace < 0 or args.idle_timeout <= 0:
+        raise InputError("--grace must be >= 0 and --idle-timeout > 0")
+    config = ServerConfig(
+        host=args.host, port=args.port, models_dir=args.models,
+        metrics_host=args.metrics_host, metrics_port=args.metrics_port,
+        tls_cert=args.tls_cert, tls_key=args.tls_key, require_tls=args.require_tls,
+        token=_token(args), grace_s=args.grace,
+        limits=ServerLimits(idle_timeout_s=args.idle_timeout),
+    )
+    return asyncio.run(_serve(config))
+
+
+async def _serve(config: ServerConfig) -> int:
+    server = MidstreamServer(config)
+    await server.start()
+    print(f"serving on {config.host}:{server.port}", flush=True)
+    if server.metrics_port is not None:
+        print(f"metrics on http://{config.metrics_host}:{server.metrics_port}/metrics",
+              flush=True)
+    stop = asyncio.Event()
+    loop = asyncio.get_running_loop()
+    for signum in (signal.SIGTERM, signal.SIGINT):
+        loop.add_signal_handler(signum, stop.set)
+    try:
+        await stop.wait()
+    finally:
+        for signum in (signal.SIGTERM, signal.SIGINT):
+            loop.remove_signal_handler(signum)
+        print("draining: finishing live conversations", file=sys.stderr, flush=True)
+        await server.stop(config.grace_s)
+    print("stopped", file=sys.stderr, flush=True)
+    return 0
