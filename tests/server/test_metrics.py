@@ -1,0 +1,61 @@
+"""Prometheus metrics: served over HTTP from the server's own registry."""
+
+from __future__ import annotations
+
+import asyncio
+import urllib.request
+
+import grpc
+import pytest
+from prometheus_client.parser import text_string_to_metric_families
+from server_kit import (  # noqa: F401 - fixtures are found by name
+    Caller,
+    ServerFactory,
+    spoken,
+    start_server_fixture,
+    words_event,
+)
+
+
+def _scrape(port: int) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}/metrics", timeout=5) as reply:
+        text = reply.read().decode()
+    return {(s.name, tuple(sorted(s.labels.items()))): s.value
+            for family in text_string_to_metric_families(text) for s in family.samples}
+
+
+async def test_metrics_count_words_latency_revisions_live_and_errors(
+    start_server: ServerFactory,
+) -> None:
+    running = await start_server(metrics_port=0)
+    port = running.server.metrics_port
+    assert port
+    caller = Caller(running.stub)
+    await caller.open()
+    await caller.send(words_event(spoken("w1", "we", start=0.0), spoken("w2", "we", start=1.0)))
+    await caller.send(words_event(spoken("w3", "went", start=2.0)))
+    during = await asyncio.to_thread(_scrape, port)
+    assert during[("midstream_words_total", ())] == 3
+    assert during[("midstream_live_conversations", ())] == 1
+    assert during[("midstream_update_latency_seconds_count", ())] == 2
+    assert during[("midstream_revisions_total", ())] >= 1  # "we we": the first is revised
+    await caller.call.write(words_event(spoken("w4", "")))
+    with pytest.raises(grpc.aio.AioRpcError):
+        while True:
+            await caller.call.read()
+    after = await asyncio.to_thread(_scrape, port)
+    assert after[("midstream_live_conversations", ())] == 0
+    assert after[("midstream_errors_total", (("code", "INVALID_ARGUMENT"),))] == 1
+
+
+async def test_two_servers_keep_separate_counts(start_server: ServerFactory) -> None:
+    first = await start_server(metrics_port=0)
+    second = await start_server(metrics_port=0)
+    caller = Caller(first.stub)
+    await caller.open()
+    await caller.send(words_event(spoken("w1", "so")))
+    assert first.server.metrics_port and second.server.metrics_port
+    assert (await asyncio.to_thread(_scrape, first.server.metrics_port))[
+        ("midstream_words_total", ())] == 1
+    assert (await asyncio.to_thread(_scrape, second.server.metrics_port))[
+        ("midstream_words_total", ())] == 0
