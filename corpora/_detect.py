@@ -144,16 +144,16 @@ def read_corpus(path: Path, *, split: str | None = None) -> Iterator[Conversatio
         if split is not None:
             split_names(path, split)  # fail early, with the held-back message
         return read_swda(path, split=split)
-    names = None if split is None else split_names(path, split)
-    if kind is CorpusKind.MRDA:
-        return read_mrda(path, ids=names)
-    if kind is CorpusKind.MAPTASK:
-        return read_maptask(path, ids=names)
     if path.is_file():
         if split is not None:
             raise CorpusNotFoundError(f"{path}: a single file has no splits; put it in a folder "
                                       "with splits/<split>.txt listing conversation ids")
         return read_jsonl(path)
+    names = None if split is None else split_names(path, split)
+    if kind is CorpusKind.MRDA:
+        return read_mrda(path, ids=names)
+    if kind is CorpusKind.MAPTASK:
+        return read_maptask(path, ids=names)
     return _read_jsonl_folder(path, None if names is None else frozenset(names))
 
 
