@@ -5,12 +5,14 @@ from __future__ import annotations
 import contextlib
 import io
 import json
+import re
 from pathlib import Path
 
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from midstream import (
+    REMOVED_FROM_CLEAN_TEXT,
     Conversation,
     DisfluencyLabel,
     InputError,
@@ -231,3 +233,18 @@ def test_a_real_meeting_round_trips(mrda_dir: Path) -> None:
     buffer = io.StringIO()
     write_jsonl([meeting], buffer)
     assert list(read_jsonl(io.StringIO(buffer.getvalue()))) == [meeting]
+
+
+def test_the_examples_in_the_format_docs_parse() -> None:
+    # docs/formats.md shows hand-written files; they must read as documented.
+    docs = Path(__file__).resolve().parents[2] / "docs" / "formats.md"
+    blocks = re.findall(r"```json\n(.*?)```", docs.read_text(encoding="utf-8"), flags=re.S)
+    files = [b for b in blocks if b.startswith(HEADER.strip()) and b.count("\n") > 1]
+    assert len(files) == 2
+    (words_only,) = read_jsonl(io.StringIO(files[0]))
+    assert words_only.speakers == ("A", "B") and words_only.labels is None
+    (question,) = read_jsonl(io.StringIO(files[1]))
+    clean = [w.text for w, label in zip(question.words, question.labels or (), strict=True)
+             if label not in REMOVED_FROM_CLEAN_TEXT]
+    assert clean == ["who", "wrote", "it"]
+    assert question.repairs == (Repair(reparandum=(1,), interregnum=(2,), repair_onset=3),)
