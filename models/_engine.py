@@ -125,6 +125,11 @@ class ConversationEngine:
         """True once :meth:`finish` ran; every later event raises :class:`EventError`."""
         return self._finished
 
+    @property
+    def open_word_count(self) -> int:
+        """Words the engine still holds: not yet in a final utterance (bounded by the config)."""
+        return len(self._by_id)
+
     # -- events ---------------------------------------------------------------------------
 
     def add_word(self, word_id: str, word: Word) -> HypothesisDiff:
@@ -304,7 +309,7 @@ class ConversationEngine:
         for position, keys in enumerate(groups):
             slots = [channel.slots[k] for k in keys]
             ended = slots[-1].ends_utterance or close_all or len(keys) >= limit
-            final = ended and all(s.final for s in slots) or close_all
+            final = (ended and all(s.final for s in slots)) or close_all
             entry = old[position] if position < len(old) else _OpenUtterance(
                 index=channel.base_index + position)
             word_ids = tuple(s.word_id for s in slots)
@@ -315,7 +320,8 @@ class ConversationEngine:
                     final and not (entry.published and entry.published.final)):
                 guess = self._functions.label_partial(list(self._context), view) if clean \
                     else _EMPTY_GUESS
-                hypothesis = self._utterance(entry, channel.speaker, word_ids, clean, guess, final)
+                hypothesis = self._utterance(entry, speaker=channel.speaker, word_ids=word_ids,
+                                             clean=clean, guess=guess, final=final)
                 if entry.published is None or _utterance_changed(
                         entry.published, hypothesis, self._config.confidence_step):
                     entry.published = hypothesis
@@ -339,7 +345,7 @@ class ConversationEngine:
         channel.utterances = new
         return published
 
-    def _utterance(self, entry: _OpenUtterance, speaker: str, word_ids: tuple[str, ...],
+    def _utterance(self, entry: _OpenUtterance, *, speaker: str, word_ids: tuple[str, ...],
                    clean: tuple[str, ...], guess: FunctionGuess,
                    final: bool) -> UtteranceHypothesis:
         previous = entry.published

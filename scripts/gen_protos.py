@@ -17,7 +17,7 @@ import sys
 import tempfile
 from pathlib import Path
 
-from grpc_tools import protoc  # type: ignore[import-untyped]
+from grpc_tools import protoc
 
 REPO = Path(__file__).resolve().parent.parent
 PROTO_ROOT = REPO / "protos"
