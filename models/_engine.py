@@ -156,7 +156,7 @@ class ConversationEngine:
         self._remember(word_id)
         after_other = self._last_speaker is not None and self._last_speaker != word.speaker
         self._last_speaker = word.speaker
-        clean = _clean_word(word, token.text, token.fragment)
+        clean = _clean_word(word, token.text, token.fragment or word.fragment)
         states = channel.decoder.append(key, clean, after_other_speaker=after_other)
         return self._apply(channel, states)
 
@@ -179,7 +179,7 @@ class ConversationEngine:
             raise EventError(f"word {word_id!r}: replacement text has no speech content")
         slot.text = token.text
         channel = self._channels[slot.speaker]
-        states = channel.decoder.replace(slot.key, _clean_word(word, token.text, token.fragment))
+        states = channel.decoder.replace(slot.key, _clean_word(word, token.text, token.fragment or word.fragment))
         return self._apply(channel, states)
 
     def withdraw_word(self, word_id: str) -> HypothesisDiff:
