@@ -179,7 +179,8 @@ class ConversationEngine:
             raise EventError(f"word {word_id!r}: replacement text has no speech content")
         slot.text = token.text
         channel = self._channels[slot.speaker]
-        states = channel.decoder.replace(slot.key, _clean_word(word, token.text, token.fragment or word.fragment))
+        clean = _clean_word(word, token.text, token.fragment or word.fragment)
+        states = channel.decoder.replace(slot.key, clean)
         return self._apply(channel, states)
 
     def withdraw_word(self, word_id: str) -> HypothesisDiff:
