@@ -8,8 +8,9 @@ orchestrators can probe without the secret; it reveals only SERVING / NOT_SERVIN
 
 from __future__ import annotations
 
+import asyncio
 import hmac
-from collections.abc import Awaitable, Callable
+from collections.abc import AsyncIterator, Awaitable, Callable
 from typing import TYPE_CHECKING, Any, TypeAlias
 
 import grpc
@@ -23,11 +24,32 @@ else:
     _Handler = grpc.RpcMethodHandler
 
 
+async def drain_requests(requests: AsyncIterator[Any], *, seconds: float = 0.25,
+                         limit: int = 64) -> None:
+    """Read (and drop) what a caller already sent, briefly, before ending its call.
+
+    A grpc.aio client still writing a request stream when the server ends the call sometimes
+    sees ``INTERNAL: Internal error from Core`` instead of the status the server sent. Reading
+    the messages already in flight (bounded in time and count) lets the real status arrive.
+    """
+    count = 0
+    try:
+        async with asyncio.timeout(seconds):
+            async for _ in requests:
+                count += 1
+                if count >= limit:
+                    return
+    except (TimeoutError, grpc.aio.AioRpcError, grpc.RpcError):
+        return
+
+
 def _refusal(handler: _Handler, metrics: ServerMetrics) -> _Handler:
     """A handler of the same shape as ``handler`` that only refuses the call."""
 
-    async def refuse(_request: Any, context: grpc.aio.ServicerContext[Any, Any]) -> None:
+    async def refuse(request: Any, context: grpc.aio.ServicerContext[Any, Any]) -> None:
         metrics.errors.labels(code=grpc.StatusCode.UNAUTHENTICATED.name).inc()
+        if handler.request_streaming:
+            await drain_requests(request)
         await context.abort(grpc.StatusCode.UNAUTHENTICATED,
                             "missing or wrong bearer token in 'authorization' metadata")
 

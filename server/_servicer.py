@@ -45,6 +45,11 @@ _log = logging.getLogger(__name__)
 # Items of a TagTranscript request between two returns to the event loop, so one long batch
 # does not starve live streams (decodes themselves are never split).
 _BATCH_SLICE = 256
+# How long and how many in-flight events a refused Converse call reads before its status.
+_DRAIN_S = 0.25
+_DRAIN_MESSAGES = 64
+# How long an end of the request stream waits to tell a cancellation from a half-close.
+_CANCEL_SETTLE_S = 0.05
 
 
 class _Timeout:
@@ -57,6 +62,16 @@ class _Stopped:
 
 _TIMEOUT = _Timeout()
 _STOPPED = _Stopped()
+
+
+async def _vanished(context: grpc.aio.ServicerContext[Any, Any]) -> bool:
+    """Whether an end of the request stream was a cancellation rather than a half-close.
+
+    grpc.aio reports both as ``EOF`` from ``read()``; the cancellation shows on the context (or
+    cancels this task) a moment later.
+    """
+    await asyncio.sleep(_CANCEL_SETTLE_S)
+    return context.cancelled() or context.done()
 
 
 class MidstreamServicer(pb_grpc.MidstreamServicer):
@@ -81,6 +96,24 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         _log.debug("refusal detail: %s", error)
         await context.abort(code, str(error))
         raise AssertionError("abort returned")  # pragma: no cover - abort always raises
+
+    async def _refuse_stream(
+        self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
+        error: MidstreamError,
+    ) -> NoReturn:
+        """End a Converse call with an error, after briefly reading events still in flight.
+
+        See :func:`midstream.server._auth.drain_requests` for why (a client-side race).
+        """
+        try:
+            async with asyncio.timeout(_DRAIN_S):
+                for _ in range(_DRAIN_MESSAGES):
+                    event: object = await context.read()
+                    if event is grpc.aio.EOF:
+                        break
+        except (TimeoutError, grpc.RpcError):
+            pass
+        await self._fail(context, error)
 
     # --- Converse ------------------------------------------------------------------------
 
@@ -119,14 +152,14 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                 await self._fail(context, ProtocolStateError(
                     "the stream ended before its first event, which must be 'open'"))
             if first.WhichOneof("event") != "open":
-                await self._fail(context, ProtocolStateError(
+                await self._refuse_stream(context, ProtocolStateError(
                     f"the first event must be 'open', not {first.WhichOneof('event')!r}"))
             if self.stopping.is_set():
-                await self._fail(context, UnavailableError("the server is shutting down"))
+                await self._refuse_stream(context, UnavailableError("the server is shutting down"))
             try:
                 session = self.registry.open(first.open.conversation_id, self.bundle)
             except MidstreamError as exc:
-                await self._fail(context, exc)
+                await self._refuse_stream(context, exc)
             yield pb.ServerMessage(welcome=pb.Welcome(
                 conversation_id=session.id, next_seq=session.seq + 1))
             async for message in self._converse(session, context, stop_waiter):
@@ -149,6 +182,9 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     for message in (*session.since(sent), session.closing_messages[-1]):
                         yield message
                     return
+                if event is grpc.aio.EOF and await _vanished(context):
+                    self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
+                    return
                 if isinstance(event, _Timeout) or event is grpc.aio.EOF:
                     reason = (pb.END_REASON_IDLE_TIMEOUT if isinstance(event, _Timeout)
                               else pb.END_REASON_CLOSED)
@@ -163,7 +199,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     self.registry.close(session, pb.END_REASON_REJECTED)
                     for message in session.since(sent):
                         yield message
-                    await self._fail(context, exc)
+                    await self._refuse_stream(context, exc)
                 for message in session.since(sent):
                     sent = message.update.seq
                     yield message
@@ -189,7 +225,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         finally:
             stop_waiter.cancel()
         if isinstance(event, pb.ClientEvent):
-            await self._fail(context, ProtocolStateError(
+            await self._refuse_stream(context, ProtocolStateError(
                 f"event {event.WhichOneof('event')!r} after 'close': conversation "
                 f"{session.id} has ended"))
 

@@ -1,11 +1,8 @@
-"""Server test kit: fixtures, event builders and a small deterministic engine.
+"""Server test kit: fixtures that start real servers on the real engine, and event builders.
 
-It follows the engine contract (``midstream.server._models.Engine``) with trivial rules so a
-test can predict every update: "uh"/"um" are fillers, an immediately repeated word turns the
-first copy into a reparandum (a revision) and the second into the repair onset, a word becomes
-final three words later or at a hint, and an utterance is a speaker's words between hints.
-Tagging quality is tested against the real models elsewhere; this double only lets the server
-tests run before and independently of trained models.
+The models are the shipped ones (``models/weights``) when they load; otherwise tiny models are
+trained once per test session from a few SwDA train conversations, in a separate process (the
+CRF trainer forks, which must not happen in a process already running gRPC).
 
 Test modules import the fixtures they use (``from server_kit import running_fixture``): a
 second ``conftest.py`` would clash with ``tests/conftest.py`` under mypy.
@@ -13,172 +10,19 @@ second ``conftest.py`` would clash with ``tests/conftest.py`` under mypy.
 
 from __future__ import annotations
 
+import subprocess
+import sys
 from collections.abc import AsyncIterator, Awaitable, Callable
-from dataclasses import dataclass, field, replace
+from pathlib import Path
 from typing import Any
 
 import grpc
 import pytest
-from midstream import (
-    REMOVED_FROM_CLEAN_TEXT,
-    DisfluencyLabel,
-    EventError,
-    HypothesisDiff,
-    UtteranceFunction,
-    UtteranceHypothesis,
-    Word,
-    WordHypothesis,
-)
+from midstream import ModelError, NotFoundError
+from midstream.models import ModelBundle
 from midstream.server import MidstreamServer, ServerConfig, ServerLimits
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
-
-_FILLERS = frozenset({"uh", "um"})
-_QUESTION_STARTS = frozenset({"what", "do", "is", "how", "why"})
-_FINAL_AFTER = 3
-
-
-@dataclass
-class _Utterance:
-    utterance_id: str
-    word_ids: list[str] = field(default_factory=list)
-    revision: int = -1
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class FakeModelInfo:
-    kind: str
-    name: str
-    format_version: int = 1
-    labels: tuple[str, ...] = ()
-    sha256: str = "0" * 64
-    training_summary: dict[str, object] = field(default_factory=dict)
-
-
-class FakeEngine:
-    def __init__(self) -> None:
-        self._states: dict[str, WordHypothesis] = {}
-        self._text: dict[str, str] = {}
-        self._open: dict[str, list[str]] = {}
-        self._utterances: dict[str, _Utterance] = {}
-        self._count = 0
-        self._finished = False
-
-    @staticmethod
-    def _normalise(word_id: str, text: str) -> str:
-        clean = "".join(c for c in text.lower() if c.isalnum() or c in "'-")
-        if not clean:
-            raise EventError(f"word {word_id!r} has no speech content")
-        return clean
-
-    def _check_open(self) -> None:
-        if self._finished:
-            raise EventError("the conversation has finished")
-
-    def _known_open(self, word_id: str) -> WordHypothesis:
-        state = self._states.get(word_id)
-        if state is None:
-            raise EventError(f"unknown word id {word_id!r}")
-        if state.final:
-            raise EventError(f"word {word_id!r} is final")
-        return state
-
-    def _utterance_state(self, speaker: str, *, final: bool) -> UtteranceHypothesis:
-        utt = self._utterances[speaker]
-        utt.revision += 1
-        kept = [self._text[w] for w in utt.word_ids
-                if self._states[w].label not in REMOVED_FROM_CLEAN_TEXT]
-        question = bool(kept) and kept[0] in _QUESTION_STARTS
-        return UtteranceHypothesis(
-            utterance_id=utt.utterance_id, speaker=speaker, word_ids=tuple(utt.word_ids),
-            clean_text=" ".join(kept),
-            function=UtteranceFunction.QUESTION if question else UtteranceFunction.STATEMENT,
-            fine_class="qy" if question else "sd", confidence=0.8, revision=utt.revision,
-            final=final,
-        )
-
-    def add_word(self, word_id: str, word: Word) -> HypothesisDiff:
-        self._check_open()
-        if word_id in self._states:
-            raise EventError(f"duplicate word id {word_id!r}")
-        text = self._normalise(word_id, word.text)
-        changed: dict[str, WordHypothesis] = {}
-        opened = self._open.setdefault(word.speaker, [])
-        label = DisfluencyLabel.FILLER if text in _FILLERS else DisfluencyLabel.FLUENT
-        if opened and self._text[opened[-1]] == text:
-            previous = self._states[opened[-1]]
-            changed[previous.word_id] = self._states[previous.word_id] = replace(
-                previous, label=DisfluencyLabel.REPARANDUM, reparandum_of=word_id,
-                interruption_point=True, revision=previous.revision + 1)
-            label = DisfluencyLabel.REPAIR
-        self._text[word_id] = text
-        changed[word_id] = self._states[word_id] = WordHypothesis(
-            word_id=word_id, speaker=word.speaker, label=label, confidence=0.9, revision=0,
-            final=False)
-        opened.append(word_id)
-        while len(opened) > _FINAL_AFTER:
-            old = opened.pop(0)
-            changed[old] = self._states[old] = replace(self._states[old], final=True)
-        if word.speaker not in self._utterances:
-            self._count += 1
-            self._utterances[word.speaker] = _Utterance(f"u{self._count}")
-        self._utterances[word.speaker].word_ids.append(word_id)
-        return HypothesisDiff(words=tuple(changed.values()),
-                              utterances=(self._utterance_state(word.speaker, final=False),))
-
-    def replace_word(self, word_id: str, word: Word) -> HypothesisDiff:
-        self._check_open()
-        state = self._known_open(word_id)
-        text = self._normalise(word_id, word.text)
-        self._text[word_id] = text
-        label = DisfluencyLabel.FILLER if text in _FILLERS else DisfluencyLabel.FLUENT
-        self._states[word_id] = replace(state, label=label, revision=state.revision + 1)
-        return HypothesisDiff(words=(self._states[word_id],),
-                              utterances=(self._utterance_state(state.speaker, final=False),))
-
-    def withdraw_word(self, word_id: str) -> HypothesisDiff:
-        self._check_open()
-        state = self._known_open(word_id)
-        self._open[state.speaker].remove(word_id)
-        self._utterances[state.speaker].word_ids.remove(word_id)
-        del self._states[word_id]
-        return HypothesisDiff(withdrawn_word_ids=(word_id,),
-                              utterances=(self._utterance_state(state.speaker, final=False),))
-
-    def _close_speaker(self, speaker: str) -> HypothesisDiff:
-        words = []
-        for word_id in self._open.pop(speaker, []):
-            words.append(replace(self._states[word_id], final=True))
-            self._states[word_id] = words[-1]
-        if speaker not in self._utterances:
-            return HypothesisDiff(words=tuple(words))
-        utterance = self._utterance_state(speaker, final=True)
-        del self._utterances[speaker]
-        return HypothesisDiff(words=tuple(words), utterances=(utterance,))
-
-    def hint(self, speaker: str, *, turn_end: bool) -> HypothesisDiff:
-        self._check_open()
-        return self._close_speaker(speaker)
-
-    def finish(self) -> HypothesisDiff:
-        self._check_open()
-        self._finished = True
-        diffs = [self._close_speaker(s) for s in list(self._open)]
-        return HypothesisDiff(words=tuple(w for d in diffs for w in d.words),
-                              utterances=tuple(u for d in diffs for u in d.utterances))
-
-
-class FakeBundle:
-    def __init__(self, name: str = "fake") -> None:
-        self.name = name
-
-    def describe(self) -> tuple[FakeModelInfo, ...]:
-        return (FakeModelInfo(kind="words", name=self.name,
-                              labels=tuple(DisfluencyLabel)),)
-
-    def new_engine(self) -> FakeEngine:
-        return FakeEngine()
-
 
 # --- fixtures ----------------------------------------------------------------------------------
 
@@ -199,16 +43,63 @@ class Running:
 ServerFactory = Callable[..., Awaitable[Running]]
 
 
+_TRAIN = """
+import itertools, sys
+from pathlib import Path
+from midstream.corpora import read_corpus
+from midstream.models._artifact import save_artifact
+from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
+from midstream.models._train_words import WordTrainingConfig, train_word_artifact
+swda, out = Path(sys.argv[1]), Path(sys.argv[2])
+conversations = list(itertools.islice(read_corpus(swda, split="train"), 12))
+save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=30)),
+              out / "words.msm")
+save_artifact(train_function_model(conversations, FunctionTrainingOptions(max_iterations=30)),
+              out / "functions.msm")
+"""
+
+_MODELS: list[Path] = []  # once per session, whichever test module asks first
+
+
+@pytest.fixture(name="models_dir")
+def models_dir_fixture(request: pytest.FixtureRequest,
+                       tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A folder of models: the shipped weights if they load, else tiny ones trained now."""
+    if not _MODELS:
+        shipped = Path(__file__).resolve().parents[2] / "models" / "weights"
+        try:
+            ModelBundle.load_directory(shipped)
+            _MODELS.append(shipped)
+        except (ModelError, NotFoundError):
+            swda: Path = request.getfixturevalue("swda_dir")
+            out = tmp_path_factory.mktemp("tiny-models")
+            subprocess.run([sys.executable, "-c", _TRAIN, str(swda), str(out)], check=True,
+                           timeout=600, capture_output=True)
+            _MODELS.append(out)
+    return _MODELS[0]
+
+
+_BUNDLES: dict[Path, ModelBundle] = {}
+
+
+@pytest.fixture(name="bundle")
+def bundle_fixture(models_dir: Path) -> ModelBundle:
+    """The loaded models (immutable, so one load serves every test)."""
+    if models_dir not in _BUNDLES:
+        _BUNDLES[models_dir] = ModelBundle.load_directory(models_dir)
+    return _BUNDLES[models_dir]
+
+
 @pytest.fixture(name="start_server")
-async def start_server_fixture() -> AsyncIterator[ServerFactory]:
-    """Start servers on port 0: ``await start_server(limits=..., bundle=..., **config)``."""
+async def start_server_fixture(bundle: ModelBundle) -> AsyncIterator[ServerFactory]:
+    """Start servers on port 0: ``await start_server(limits=..., given=bundle, **config)``."""
     started: list[Running] = []
 
-    async def start(*, limits: ServerLimits = TEST_LIMITS, bundle: object | None = None,
+    async def start(*, limits: ServerLimits = TEST_LIMITS, given: ModelBundle | None = None,
                     **config: Any) -> Running:
         server = MidstreamServer(
             ServerConfig(host="127.0.0.1", port=0, grace_s=2.0, limits=limits, **config),
-            bundle=bundle if bundle is not None else FakeBundle(),  # type: ignore[arg-type]
+            bundle=given if given is not None else bundle,
         )
         await server.start()
         channel = grpc.aio.insecure_channel(f"127.0.0.1:{server.port}")

@@ -4,12 +4,13 @@ from __future__ import annotations
 
 import grpc
 import pytest
-from midstream import DisfluencyLabel
 from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,
     Running,
+    bundle_fixture,
+    models_dir_fixture,
     open_event,
     running_fixture,
     spoken,
@@ -32,13 +33,14 @@ async def test_words_in_updates_out_then_final_and_ended(running: Running) -> No
     assert len(welcome.conversation_id) >= 20 and welcome.next_seq == 1
     updates = [cv.update_from_wire(m.update) for m in replies[1:4]]
     assert [u.seq for u in updates] == [1, 2, 3]
-    # One update for the whole two-word batch, holding the revised first word.
-    first = {w.word_id: w for w in updates[0].diff.words}
-    assert first["w1"].label is DisfluencyLabel.REPARANDUM and first["w1"].revision == 1
-    assert first["w1"].reparandum_of == "w2"
+    # One update for the whole two-word batch, holding both new words.
+    assert {"w1", "w2"} <= {w.word_id for w in updates[0].diff.words}
+    assert "w3" in {w.word_id for w in updates[1].diff.words}
+    assert not any(u.conversation_final for u in updates[:2])
+    latest = {w.word_id: w for u in updates for w in u.diff.words}
     assert updates[2].conversation_final
-    assert all(w.final for w in updates[2].diff.words)
-    assert {w.word_id for w in updates[2].diff.words} == {"w1", "w2", "w3"}
+    assert sorted(latest) == ["w1", "w2", "w3"] and all(w.final for w in latest.values())
+    assert all(u.final for u in updates[2].diff.utterances)
     assert replies[4].ended.reason == pb.END_REASON_CLOSED
     assert replies[4].ended.last_seq == 3
 

@@ -14,7 +14,9 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
     Caller,
     Running,
     ServerFactory,
+    bundle_fixture,
     follow_all,
+    models_dir_fixture,
     running_fixture,
     spoken,
     start_server_fixture,
@@ -137,20 +139,25 @@ async def test_ended_conversation_stays_for_late_followers(running: Running) -> 
 async def test_revisions_list_every_published_state(running: Running) -> None:
     caller = Caller(running.stub)
     conversation = await caller.open()
-    # "we we": the first copy is revised to a reparandum by the second.
-    await caller.send(words_event(spoken("a", "we", start=0.0)))
-    await caller.send(words_event(spoken("b", "we", start=0.5)))
+    await _stream_words(caller, 12)
     await caller.close()
     reply = await running.stub.GetRevisions(pb.GetRevisionsRequest(conversation_id=conversation))
-    history = [(r.seq, r.word.revision, r.word.role, r.word.final) for r in reply.revisions
-               if r.WhichOneof("state") == "word" and r.word.word_id == "a"]
-    assert history == [
-        (1, 0, pb.WORD_ROLE_FLUENT, False),
-        (2, 1, pb.WORD_ROLE_REPARANDUM, False),
-        (3, 1, pb.WORD_ROLE_REPARANDUM, True),
-    ]
+    published: list[tuple[int, float, str, object]] = [
+        (u.seq, u.server_time, "word", w) for u in caller.updates for w in u.words]
+    published += [(u.seq, u.server_time, "utterance", x)
+                  for u in caller.updates for x in u.utterances]
+    kept = [(r.seq, r.server_time, r.WhichOneof("state"), getattr(r, r.WhichOneof("state")))
+            for r in reply.revisions]
+    assert sorted(kept, key=lambda k: (k[0], k[2])) == sorted(published,
+                                                              key=lambda k: (k[0], k[2]))
     assert not reply.truncated
-    assert all(r.server_time > 0 for r in reply.revisions)
+    by_word: dict[str, list[pb.WordState]] = {}
+    for revision in reply.revisions:
+        if revision.WhichOneof("state") == "word":
+            by_word.setdefault(revision.word.word_id, []).append(revision.word)
+    for states in by_word.values():
+        assert states[-1].final
+        assert [s.revision for s in states] == sorted(s.revision for s in states)
 
 
 async def test_revision_history_is_bounded_and_says_so(start_server: ServerFactory) -> None:

@@ -12,6 +12,8 @@ from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,
     Running,
+    bundle_fixture,
+    models_dir_fixture,
     open_event,
     running_fixture,
     spoken,
@@ -54,8 +56,9 @@ async def test_transcript_matches_the_stream_word_for_word(running: Running) -> 
 async def test_describe_and_failed_reload_keep_the_models(running: Running,
                                                           tmp_path: Path) -> None:
     before = await running.stub.DescribeModels(pb.DescribeModelsRequest())
-    assert [m.kind for m in before.models] == ["words"]
-    assert json.loads(before.models[0].training_summary_json) == {}
+    assert [m.kind for m in before.models] == ["words", "utterance_functions"]
+    assert all(json.loads(m.training_summary_json) for m in before.models)
+    assert all(len(m.sha256) == 64 and m.labels for m in before.models)
     (tmp_path / "words.msm").write_bytes(b"not a model at all")
     cases = [str(tmp_path), str(tmp_path / "missing")]
     for directory in cases:

@@ -13,16 +13,18 @@ import pytest
 from grpc_health.v1 import health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection_pb2, reflection_pb2_grpc
 from midstream import InputError
+from midstream.models import ModelBundle
 from midstream.server import MidstreamServer, ServerConfig
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,
     Caller,
-    FakeBundle,
     Running,
     ServerFactory,
+    bundle_fixture,
     follow_all,
+    models_dir_fixture,
     open_event,
     running_fixture,
     spoken,
@@ -62,8 +64,8 @@ async def test_tls_serves_secure_callers_only(start_server: ServerFactory,
     assert info.value.code() == grpc.StatusCode.UNAVAILABLE
 
 
-async def test_required_tls_without_certificate_refuses_to_start() -> None:
-    server = MidstreamServer(ServerConfig(port=0, require_tls=True), bundle=FakeBundle())
+async def test_required_tls_without_certificate_refuses_to_start(bundle: ModelBundle) -> None:
+    server = MidstreamServer(ServerConfig(port=0, require_tls=True), bundle=bundle)
     with pytest.raises(InputError, match="require-tls"):
         await server.start()
     await server.stop(0)

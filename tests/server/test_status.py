@@ -18,6 +18,7 @@ from midstream import (
     UnavailableError,
     Word,
 )
+from midstream.models import ModelBundle
 from midstream.server import ServerLimits, status_code
 from midstream.server._metrics import ServerMetrics
 from midstream.server._session import Session
@@ -28,7 +29,7 @@ from midstream.server._status import (
     ProtocolStateError,
 )
 from midstream.wire import midstream_pb2 as pb
-from server_kit import FakeEngine
+from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures
 
 EXPECTED = {
     MidstreamError: grpc.StatusCode.UNKNOWN,
@@ -72,9 +73,11 @@ def test_every_error_class_maps_to_its_specific_code(kind: type[MidstreamError])
         assert status_code(_instance(kind)) != grpc.StatusCode.UNKNOWN
 
 
-async def test_a_slow_follower_gets_gap_and_snapshot_and_never_slows_ingest() -> None:
+async def test_a_slow_follower_gets_gap_and_snapshot_and_never_slows_ingest(
+    bundle: ModelBundle,
+) -> None:
     limits = ServerLimits(follower_queue=4)
-    session = Session("c1", FakeEngine(), limits, ServerMetrics())
+    session = Session("c1", bundle.new_engine(), limits, ServerMetrics())
     backlog, follower = session.follow(1)
     assert follower is not None and backlog == []
     for i in range(10):  # nobody reads: the queue fills after four updates
