@@ -41,7 +41,7 @@ __all__ = [
 ItemFeatures = Mapping[str, float]
 
 #: A zero-argument callable yielding (features, labels) sequence pairs; called in the child.
-TrainingPairs = Callable[[], Iterable[tuple[Sequence[ItemFeatures | str], Sequence[str]]]]
+TrainingPairs = Callable[[], Iterable[tuple[Sequence[ItemFeatures | Sequence[str]], Sequence[str]]]]
 
 # crfsuite's model header (crfsuite/lib/crf/src/crf1m_model.c): 4-byte magic "lCRF", then a
 # little-endian uint32 holding the whole file's size, then the 4-byte model type "FOMC".
@@ -252,7 +252,7 @@ def train_crf_from(
 
     ``pairs()`` is called in the child, so a large training set is built there, streamed
     into crfsuite and never held as Python objects in the caller. An item may be a mapping of
-    attribute to value or an attribute name (value 1.0).
+    attribute to value or a sequence of attribute names (each valued 1.0).
 
     Raises
     ------

@@ -19,10 +19,9 @@ from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
-
 from midstream._errors import EventError
 from midstream._types import DisfluencyLabel, Word
-from midstream.models._features import Token, feature_piece, token_of
+from midstream.models._features import Token, feature_piece, features_at, token_of
 from midstream.models._lattice import decode_lattice
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import INTERREGNUM_TAGS, IP_TAGS
@@ -80,13 +79,12 @@ class TokenState:
 class _Entry:
     __slots__ = (
         "boundary_confidence", "confidence", "ends", "final", "key", "label", "link",
-        "pieces", "published", "revision", "score", "tag",
+        "published", "revision", "score", "tag",
     )
 
     def __init__(self, key: int, size: int) -> None:
         self.key = key
         self.score: FloatArray = np.zeros(size)
-        self.pieces = 0  # feature pieces 0 .. pieces-1 are in score
         self.tag = -1
         self.label = DisfluencyLabel.FLUENT
         self.ends = False
@@ -124,9 +122,16 @@ class ChannelDecoder:
         """Keys of the words whose state may still change, oldest first."""
         return tuple(e.key for e in self._entries[self._first_open :])
 
+    @property
+    def held_words(self) -> int:
+        """Words the decoder holds (open ones and finalised left context); bounded."""
+        return len(self._entries)
+
     # -- events --------------------------------------------------------------------------
 
-    def append(self, key: int, word: Word, *, after_other_speaker: bool = False) -> list[TokenState]:
+    def append(
+        self, key: int, word: Word, *, after_other_speaker: bool = False
+    ) -> list[TokenState]:
         """Add the next word of this channel; return the states that changed.
 
         ``after_other_speaker``: another speaker's word came between the previous word of this
@@ -144,8 +149,15 @@ class ChannelDecoder:
         self._entries.append(_Entry(key, len(self._model.tags)))
         self._tokens.append(token_of(word, after_other_speaker))
         last = len(self._entries) - 1
+        owners: list[_Entry] = []
+        pieces: list[list[str]] = []
         for k in range(min(self._right, last) + 1):
-            self._add_piece(last - k, k)
+            entry = self._entries[last - k]
+            if not entry.final:
+                owners.append(entry)
+                pieces.append(feature_piece(self._tokens, last - k, k, self._model.config))
+        for entry, row in zip(owners, self._model.score_pieces(pieces), strict=True):
+            entry.score += row
         return self._update(close=False)
 
     def replace(self, key: int, word: Word) -> list[TokenState]:
@@ -200,21 +212,12 @@ class ChannelDecoder:
                 return position
         raise EventError(f"word {key}: not an open word of this channel (final or unknown)")
 
-    def _add_piece(self, i: int, k: int) -> None:
-        entry = self._entries[i]
-        if entry.final:
-            return
-        piece = feature_piece(self._tokens, i, k, self._model.config)
-        entry.score += self._model.score(piece)
-        entry.pieces = k + 1
-
     def _rescore_open(self) -> None:
         last = len(self._entries) - 1
+        config = self._model.config
         for i in range(self._first_open, last + 1):
-            entry = self._entries[i]
-            entry.score[:] = 0.0
-            for k in range(min(self._right, last - i) + 1):
-                self._add_piece(i, k)
+            features = features_at(self._tokens[: last + 1], i, config)
+            self._entries[i].score = self._model.score(features)
 
     def _update(self, *, close: bool) -> list[TokenState]:
         model = self._model
@@ -228,33 +231,33 @@ class ChannelDecoder:
             first=window[0].tag if anchor is not None else None,
             last_mask=model.end_mask if close else None,
         )
-        label_probs = marginals @ model.label_groups
-        end_probs = marginals @ model.end_mask
+        label_probs = (marginals @ model.label_groups).tolist()
+        end_probs = (marginals @ model.end_mask).tolist()
         offset = 1 if anchor is not None else 0
         n_open = len(self._entries) - start
         n_final = n_open if close else max(0, n_open - self._config.lag)
-        for j, entry in enumerate(window[offset:], start=offset):
+        for j in range(offset, len(window)):
+            entry = window[j]
             tag = path[j]
             entry.tag = tag
             entry.label = model.tag_label[tag]
             entry.ends = model.tag_ends[tag]
-            entry.confidence = float(label_probs[j, model.labels.index(entry.label)])
-            p_end = float(end_probs[j])
+            entry.confidence = label_probs[j][model.tag_label_index[tag]]
+            p_end = end_probs[j]
             entry.boundary_confidence = p_end if entry.ends else 1.0 - p_end
         self._link(window, path)
         changed: list[TokenState] = []
         for j, entry in enumerate(self._entries[start:]):
             if j < n_final:
                 entry.final = True
-            state = self._state_of(entry)
-            if self._differs(entry.published, state):
+            if self._differs(entry):
                 entry.revision += 1
                 state = TokenState(
-                    key=state.key, label=state.label, confidence=state.confidence,
-                    ends_utterance=state.ends_utterance,
-                    boundary_confidence=state.boundary_confidence, final=state.final,
-                    revision=entry.revision, reparandum_onset_key=state.reparandum_onset_key,
-                    interruption_point=state.interruption_point,
+                    key=entry.key, label=entry.label, confidence=entry.confidence,
+                    ends_utterance=entry.ends, boundary_confidence=entry.boundary_confidence,
+                    final=entry.final, revision=entry.revision,
+                    reparandum_onset_key=entry.link,
+                    interruption_point=model.tag_ip[entry.tag],
                 )
                 entry.published = state
                 changed.append(state)
@@ -284,29 +287,17 @@ class ChannelDecoder:
             if tag not in INTERREGNUM_TAGS:
                 next_onset = entry.key
 
-    def _state_of(self, entry: _Entry) -> TokenState:
-        return TokenState(
-            key=entry.key,
-            label=entry.label,
-            confidence=entry.confidence,
-            ends_utterance=entry.ends,
-            boundary_confidence=entry.boundary_confidence,
-            final=entry.final,
-            revision=max(entry.revision, 0),
-            reparandum_onset_key=entry.link,
-            interruption_point=self._model.tag_base[entry.tag] in IP_TAGS,
-        )
-
-    def _differs(self, old: TokenState | None, new: TokenState) -> bool:
+    def _differs(self, entry: _Entry) -> bool:
+        old = entry.published
         if old is None:
             return True
         step = self._config.confidence_step
         return (
-            old.label != new.label
-            or old.ends_utterance != new.ends_utterance
-            or old.final != new.final
-            or old.reparandum_onset_key != new.reparandum_onset_key
-            or old.interruption_point != new.interruption_point
-            or abs(old.confidence - new.confidence) > step
-            or abs(old.boundary_confidence - new.boundary_confidence) > step
+            old.label != entry.label
+            or old.ends_utterance != entry.ends
+            or old.final != entry.final
+            or old.reparandum_onset_key != entry.link
+            or old.interruption_point != self._model.tag_ip[entry.tag]
+            or abs(old.confidence - entry.confidence) > step
+            or abs(old.boundary_confidence - entry.boundary_confidence) > step
         )

@@ -39,10 +39,11 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 
 from midstream._types import Conversation, DisfluencyLabel
-from midstream.models._decoder import ChannelDecoder, DecoderConfig
+from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models._features import tokens_from_words
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import ChannelSequence, channel_sequences, decode_tag
+from tqdm import tqdm
 
 __all__ = ["BinaryCounts", "evaluate_words", "offline_scores"]
 
@@ -114,10 +115,9 @@ def _replay(
     final_end = [False] * n
     final_step = [n - 1] * n
 
-    def record(states: Iterable[object], step: int) -> None:
+    def record(states: Iterable[TokenState], step: int) -> None:
         for state in states:
-            assert hasattr(state, "key")
-            key: int = state.key
+            key = state.key
             steps = history[key]
             if not steps or steps[-1][1] != state.label:
                 steps.append((step, state.label))
@@ -180,12 +180,11 @@ def evaluate_words(
     conversations: Iterable[Conversation],
     model: WordModel,
     *,
-    config: DecoderConfig = DecoderConfig(),
+    config: DecoderConfig | None = None,
     progress: bool = False,
 ) -> dict[str, float]:
     """Replay every conversation's channels and score them (keys in the module docstring)."""
-    from tqdm import tqdm
-
+    config = DecoderConfig() if config is None else config
     tally = _Tally()
     conversations = list(conversations)
     for conversation in tqdm(conversations, desc="evaluate words", file=sys.stderr,

@@ -14,6 +14,9 @@ __all__ = ["decode_lattice"]
 
 FloatArray = npt.NDArray[np.float64]
 
+#: Longest lattice decoded without rescaling at every step (positions).
+_UNSCALED_MAX = 16
+
 
 def decode_lattice(
     emissions: FloatArray,
@@ -47,29 +50,33 @@ def decode_lattice(
         potentials[0, first] = 1.0
     if last_mask is not None:
         potentials[n - 1] = potentials[n - 1] * last_mask
+    # Scaling keeps products in range; windows this short cannot underflow without it
+    # (every factor is at least exp(-(score range)) and float64 reaches exp(-708)).
+    scale = n > _UNSCALED_MAX
+    transitions = exp_transitions / exp_transitions.max()
     columns = np.arange(size)
-    # Viterbi (max-product) and forward (sum-product) in one sweep.
-    best = potentials[0] / potentials[0].max()
-    alpha = np.empty((n, size))
-    alpha[0] = potentials[0] / potentials[0].sum()
+    best = potentials[0]
     pointers = []
     for t in range(1, n):
-        scores = best[:, None] * exp_transitions
+        scores = best[:, None] * transitions
         pointer = scores.argmax(axis=0)
         best = scores[pointer, columns] * potentials[t]
-        best /= best.max()
+        if scale:
+            best = best / best.max()
         pointers.append(pointer)
-        forward = (alpha[t - 1] @ exp_transitions) * potentials[t]
-        alpha[t] = forward / forward.sum()
     path = [int(best.argmax())]
     for pointer in reversed(pointers):
         path.append(int(pointer[path[-1]]))
     path.reverse()
+    alpha = np.empty((n, size))
+    alpha[0] = potentials[0]
     beta = np.empty((n, size))
     beta[n - 1] = 1.0
-    for t in range(n - 2, -1, -1):
-        backward = exp_transitions @ (beta[t + 1] * potentials[t + 1])
-        beta[t] = backward / backward.sum()
+    for t in range(1, n):
+        forward = (alpha[t - 1] @ transitions) * potentials[t]
+        alpha[t] = forward / forward.sum() if scale else forward
+        backward = transitions @ (beta[n - t] * potentials[n - t])
+        beta[n - 1 - t] = backward / backward.sum() if scale else backward
     marginals = alpha * beta
     marginals /= marginals.sum(axis=1, keepdims=True)
     return path, marginals

@@ -18,16 +18,19 @@ import random
 import sys
 import time
 from collections import Counter
-from collections.abc import Callable, Iterable, Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
 from midstream._errors import InputError
 from midstream._types import Conversation, DisfluencyLabel
 from midstream.models._artifact import ModelArtifact
-from midstream.models._crf import train_crf_from
+from midstream.models._crf import TrainingPairs, train_crf_from
+from midstream.models._eval_words import offline_scores
 from midstream.models._features import FeatureConfig, features_at, tokens_from_words
+from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import ChannelSequence, channel_sequences, chunk_at_ends
+from tqdm import tqdm
 
 __all__ = [
     "WordTrainingConfig",
@@ -92,13 +95,13 @@ def build_lexicon(conversations: Iterable[Conversation]) -> dict[str, str]:
             if cls is not None:
                 by_class[cls][word.text] += 1
     lexicon: dict[str, str] = {}
-    for word, total in totals.items():
+    for text, total in totals.items():
         if total < _LEXICON_MIN_COUNT:
             continue
-        shares = {c: by_class[c][word] / total for c in _LEXICON_MIN_SHARE}
+        shares = {c: by_class[c][text] / total for c in _LEXICON_MIN_SHARE}
         best = max(shares, key=shares.__getitem__)
         if shares[best] >= _LEXICON_MIN_SHARE[best]:
-            lexicon[word] = best
+            lexicon[text] = best
     return dict(sorted(lexicon.items()))
 
 
@@ -116,8 +119,8 @@ def training_pairs(
 
 def _pairs_factory(
     conversations: Sequence[Conversation], features: FeatureConfig, chunk_length: int
-) -> Callable[[], Iterator[tuple[list[list[str]], list[str]]]]:
-    def pairs() -> Iterator[tuple[list[list[str]], list[str]]]:
+) -> TrainingPairs:
+    def pairs() -> Iterator[tuple[Sequence[list[str]], Sequence[str]]]:
         for tags, xs in training_pairs(conversations, features, chunk_length):
             yield xs, tags
 
@@ -211,11 +214,6 @@ def cross_validate_words(
     Folds are drawn from (a seeded random subset of) the given training conversations; scoring
     decodes held-out folds offline (whole channels) for speed.
     """
-    from tqdm import tqdm
-
-    from midstream.models._eval_words import offline_scores
-    from midstream.models._wordmodel import WordModel
-
     annotated = [c for c in conversations if c.disfluency_annotated]
     if len(annotated) < folds:
         raise InputError(f"{len(annotated)} annotated conversations, fewer than {folds} folds")
@@ -230,14 +228,14 @@ def cross_validate_words(
                disable=not progress)
     for point in grid:
         config = replace(base, **point)
-        sums = Counter[str]()
+        sums: dict[str, float] = {}
         for k in range(folds):
             held = fold_of[k]
             train = list(itertools.chain.from_iterable(fold_of[j] for j in range(folds) if j != k))
             model = WordModel.from_artifact(train_word_artifact(train, config))
             scores = offline_scores(held, model)
             for name, value in scores.items():
-                sums[name] += value / folds
+                sums[name] = sums.get(name, 0.0) + value / folds
             bar.update(1)
         result = CvResult(
             config=config,

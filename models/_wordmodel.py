@@ -12,14 +12,13 @@ from pathlib import Path
 
 import numpy as np
 import numpy.typing as npt
-
 from midstream._errors import ModelError
 from midstream._types import DisfluencyLabel
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
 from midstream.models._features import FeatureConfig, Token, features_at
 from midstream.models._lattice import decode_lattice
-from midstream.models._wordtags import END_SUFFIX, TAG_LABEL, decode_tag
+from midstream.models._wordtags import END_SUFFIX, IP_TAGS, TAG_LABEL, decode_tag
 
 __all__ = ["WordModel", "default_words_model_path"]
 
@@ -51,7 +50,8 @@ class WordModel:
         if unknown:
             raise ModelError(f"word model has unknown tags {unknown}")
         self.attributes = weights.attributes
-        self.state = weights.state
+        # One all-zero row appended: the padding row of score_pieces.
+        self.state: FloatArray = np.vstack([weights.state, np.zeros((1, len(weights.labels)))])
         self.transitions = weights.transitions
         self.exp_transitions: FloatArray = np.exp(weights.transitions)
         decoded = [decode_tag(t) for t in self.tags]
@@ -66,6 +66,10 @@ class WordModel:
         self.label_groups: FloatArray = np.array(
             [[1.0 if lab == t else 0.0 for t in self.labels] for lab in self.tag_label]
         )
+        self.tag_label_index: tuple[int, ...] = tuple(
+            self.labels.index(lab) for lab in self.tag_label
+        )
+        self.tag_ip: tuple[bool, ...] = tuple(b in IP_TAGS for b in self.tag_base)
         self.zero: FloatArray = np.zeros(len(self.tags))
 
     @classmethod
@@ -87,6 +91,20 @@ class WordModel:
         if not rows:
             return self.zero.copy()
         result: FloatArray = self.state[rows].sum(axis=0)
+        return result
+
+    def score_pieces(self, pieces: Sequence[Sequence[str]]) -> FloatArray:
+        """State scores of several feature lists at once, one row each (one gather, one sum)."""
+        get = self.attributes.get
+        # The all-zero last row pads every piece, so reduceat never sees an empty segment.
+        pad = len(self.state) - 1
+        rows: list[int] = []
+        starts: list[int] = []
+        for piece in pieces:
+            starts.append(len(rows))
+            rows.extend(r for r in map(get, piece) if r is not None)
+            rows.append(pad)
+        result: FloatArray = np.add.reduceat(self.state[rows], starts, axis=0)
         return result
 
     def tag_tokens(self, tokens: Sequence[Token]) -> list[str]:

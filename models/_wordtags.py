@@ -24,6 +24,7 @@ A tag followed by ``/end`` marks a word after which an utterance ends (``fl/end`
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import Final
@@ -31,9 +32,9 @@ from typing import Final
 from midstream._types import Conversation, DisfluencyLabel, Word
 
 __all__ = [
-    "ChannelSequence",
     "END_SUFFIX",
     "TAG_LABEL",
+    "ChannelSequence",
     "channel_sequences",
     "chunk_at_ends",
     "decode_tag",
@@ -120,7 +121,7 @@ def channel_sequences(conversation: Conversation) -> list[ChannelSequence]:
     result = []
     for speaker in conversation.speakers:
         indices = [i for i, w in enumerate(conversation.words) if w.speaker == speaker]
-        after_other = [False] + [b - a > 1 for a, b in zip(indices, indices[1:], strict=False)]
+        after_other = [False] + [b - a > 1 for a, b in itertools.pairwise(indices)]
         ends = [i in ends_at for i in indices]
         if indices:
             # A channel's last word ends whatever utterance it is in.

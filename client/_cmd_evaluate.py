@@ -1,0 +1,74 @@
+"""``midstream evaluate``: score models on unseen annotated conversations, replayed word by word.
+
+::
+
+    midstream evaluate ../shared/corpora/swda --split val
+    midstream evaluate ../shared/corpora/swda --split val --model words.msm --json
+    midstream evaluate calls.jsonl --functions-model functions.msm
+
+Every speaker channel is streamed one word at a time through the word model's incremental
+decoder and scored on what the stream said at each moment (keys documented in
+:mod:`midstream.models._eval_words`). With ``--functions-model`` the utterance-function
+figures (``utterance_functions.*``) are merged into the same report.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+from pathlib import Path
+
+from midstream._errors import InputError
+from midstream.corpora import read_corpus
+from midstream.models._decoder import DecoderConfig
+from midstream.models._eval_functions import evaluate_functions
+from midstream.models._eval_words import evaluate_words
+from midstream.models._functions import FunctionTagger
+from midstream.models._wordmodel import WordModel
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "evaluate", help="score models on annotated conversations, streamed word by word",
+        description="Replay annotated conversations word by word through the models and "
+                    "print disfluency, incremental and segmentation figures.")
+    parser.add_argument("corpus", type=Path, help="a corpus folder or a .jsonl file")
+    parser.add_argument("--split", default=None, help="read only this split, e.g. val")
+    parser.add_argument("--model", type=Path, default=None,
+                        help="word model (.msm); default: the shipped one")
+    parser.add_argument("--functions-model", type=Path, default=None,
+                        help="also score this utterance-function model (.msm)")
+    parser.add_argument("--lag", type=int, default=DecoderConfig().lag,
+                        help="words before a word's label becomes final")
+    parser.add_argument("--limit", type=int, default=0,
+                        help="evaluate only the first N conversations (0: all)")
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    if args.lag < 0:
+        raise InputError(f"--lag must be >= 0, got {args.lag}")
+    model = WordModel.load(args.model)
+    conversations = list(read_corpus(args.corpus, split=args.split))
+    if args.limit:
+        conversations = conversations[: args.limit]
+    if not conversations:
+        raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
+    figures = evaluate_words(conversations, model, config=DecoderConfig(lag=args.lag),
+                             progress=True)
+    if args.functions_model is not None:
+        tagger = FunctionTagger.load(args.functions_model)
+        figures.update(evaluate_functions(conversations, tagger))
+    if args.json:
+        clean = {k: (None if isinstance(v, float) and math.isnan(v) else v)
+                 for k, v in figures.items()}
+        json.dump(clean, sys.stdout, indent=2, sort_keys=True)
+        sys.stdout.write("\n")
+    else:
+        width = max(len(k) for k in figures)
+        for key in sorted(figures):
+            print(f"{key:<{width}}  {figures[key]:.4f}")
+    return 0

@@ -1,0 +1,128 @@
+"""``midstream train``: train a model on annotated conversations and write a ``.msm`` file.
+
+::
+
+    midstream train words ../shared/corpora/swda --split train --out words.msm
+    midstream train words ../shared/corpora/swda --split train --out words.msm \\
+        --c1 0.05 0.2 --c2 0.01 0.1 --cv-folds 3 --cv-subset 120
+    midstream train functions ../shared/corpora/swda --split train --out functions.msm
+
+One sub-command per model: ``words`` (disfluency roles and utterance ends, this module) and
+``functions`` (utterance functions, options from
+:mod:`midstream.client._cmd_train_functions`). Given several ``--c1``/``--c2``/``--min-freq``
+values, ``words`` compares every combination by cross-validation grouped by conversation on a
+seeded random subset (``--cv-subset``) of the corpus given, which must be the training split;
+the best is then trained on all of it. Progress goes to stderr.
+"""
+
+from __future__ import annotations
+
+import argparse
+import itertools
+import shlex
+import sys
+import time
+from pathlib import Path
+
+from midstream._errors import InputError
+from midstream.client import _cmd_train_functions as functions
+from midstream.corpora import read_corpus
+from midstream.models._artifact import save_artifact
+from midstream.models._train_words import (
+    WordTrainingConfig,
+    cross_validate_words,
+    train_word_artifact,
+)
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "train", help="train a model (words or functions) on annotated conversations",
+        description="Train a model on annotated conversations and write a .msm model file.")
+    tasks = parser.add_subparsers(dest="train_task", required=True, metavar="MODEL")
+    words = tasks.add_parser(
+        "words", help="the disfluency and utterance-end CRF",
+        description="Train the word CRF (disfluency roles crossed with utterance ends) on the "
+                    "disfluency-annotated conversations of a corpus.")
+    words.add_argument("corpus", type=Path, help="a corpus folder or a .jsonl file")
+    words.add_argument("--split", default=None, help="read only this split, e.g. train")
+    words.add_argument("--out", type=Path, required=True, help="model file to write (.msm)")
+    defaults = WordTrainingConfig()
+    words.add_argument("--c1", type=float, nargs="+", default=[defaults.c1],
+                       help="L1 weight(s); several values are compared by cross-validation")
+    words.add_argument("--c2", type=float, nargs="+", default=[defaults.c2],
+                       help="L2 weight(s); several values are compared by cross-validation")
+    words.add_argument("--min-freq", type=int, nargs="+", default=[defaults.min_freq],
+                       help="drop features seen fewer times (several: compared by CV)")
+    words.add_argument("--max-iterations", type=int, default=defaults.max_iterations,
+                       help="L-BFGS iterations")
+    words.add_argument("--cv-folds", type=int, default=3,
+                       help="folds for comparing several hyper-parameter values")
+    words.add_argument("--cv-subset", type=int, default=120,
+                       help="conversations drawn for cross-validation (0: all)")
+    words.add_argument("--seed", type=int, default=0, help="seed of the cross-validation draw")
+    words.set_defaults(handler=run_words)
+    _register_functions(tasks)
+
+
+def _register_functions(tasks: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = tasks.add_parser(
+        "functions", help="the utterance-function CRF",
+        description="Train the utterance-function CRF and write a .msm model file.")
+    parser.add_argument("corpus", type=Path, help="a corpus folder or a .jsonl file")
+    parser.add_argument("--split", default=None, help="read only this split, e.g. train")
+    parser.add_argument("--out", type=Path, required=True, help="model file to write (.msm)")
+    functions.add_training_arguments(parser)
+    parser.set_defaults(handler=functions.run)
+
+
+def run_words(args: argparse.Namespace) -> int:
+    if args.cv_folds < 2:
+        raise InputError(f"--cv-folds must be at least 2, got {args.cv_folds}")
+    conversations = list(read_corpus(args.corpus, split=args.split))
+    if not conversations:
+        raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
+    base = WordTrainingConfig(c1=args.c1[0], c2=args.c2[0], min_freq=args.min_freq[0],
+                              max_iterations=args.max_iterations)
+    grid = [{"c1": c1, "c2": c2, "min_freq": m}
+            for c1, c2, m in itertools.product(args.c1, args.c2, args.min_freq)]
+    chosen = base
+    metadata: dict[str, object] = {
+        "created_by": "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
+        "corpus": args.corpus.name,
+        "split": args.split,
+        "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+    }
+    if len(grid) > 1:
+        results = cross_validate_words(
+            conversations, base, grid=grid, folds=args.cv_folds,
+            subset=args.cv_subset or None, seed=args.seed, progress=True)
+        for result in results:
+            c = result.config
+            print(f"cv c1={c.c1} c2={c.c2} min_freq={c.min_freq}: "
+                  f"reparandum_f1={result.reparandum_f1:.4f} filler_f1={result.filler_f1:.4f} "
+                  f"segmentation_f1={result.segmentation_f1:.4f}", flush=True)
+        best = max(results, key=lambda r: r.objective)
+        chosen = best.config
+        print(f"chosen c1={chosen.c1} c2={chosen.c2} min_freq={chosen.min_freq}", flush=True)
+        metadata["cross_validation"] = {
+            "folds": args.cv_folds,
+            "subset": args.cv_subset,
+            "seed": args.seed,
+            "objective": "mean of offline reparandum F1 and utterance-end F1",
+            "results": [
+                {"c1": r.config.c1, "c2": r.config.c2, "min_freq": r.config.min_freq,
+                 "reparandum_f1": round(r.reparandum_f1, 4), "filler_f1": round(r.filler_f1, 4),
+                 "segmentation_f1": round(r.segmentation_f1, 4)}
+                for r in results
+            ],
+        }
+    print(f"training on {len(conversations)} conversations "
+          f"(c1={chosen.c1} c2={chosen.c2} min_freq={chosen.min_freq})", file=sys.stderr,
+          flush=True)
+    artifact = train_word_artifact(conversations, chosen, metadata=metadata)
+    save_artifact(artifact, args.out)
+    summary = artifact.metadata.get("training_data", {})
+    print(f"wrote {args.out} ({args.out.stat().st_size:,} bytes; "
+          f"{summary.get('words', 0):,} words, {summary.get('training_seconds', 0)} s)")
+    return 0

@@ -1,0 +1,154 @@
+"""The streaming channel decoder and the lattice under it."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+from midstream import DisfluencyLabel, Word
+from midstream._errors import EventError
+from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
+from midstream.models._features import tokens_from_words
+from midstream.models._lattice import decode_lattice
+from midstream.models._wordmodel import WordModel
+from midstream.models._wordtags import channel_sequences
+from word_kit import invented_conversation, tiny_model
+
+
+@pytest.fixture(scope="module")
+def model() -> WordModel:
+    return tiny_model()
+
+
+def _words(text: str, speaker: str = "A") -> list[Word]:
+    return [Word(text=t, speaker=speaker) for t in text.split()]
+
+
+def _stream(decoder: ChannelDecoder, words: list[Word]) -> dict[int, list[TokenState]]:
+    seen: dict[int, list[TokenState]] = {}
+    for key, word in enumerate(words):
+        for state in decoder.append(key, word):
+            seen.setdefault(state.key, []).append(state)
+    for state in decoder.finish():
+        seen.setdefault(state.key, []).append(state)
+    return seen
+
+
+def test_lattice_matches_brute_force() -> None:
+    rng = np.random.default_rng(0)
+    size = 3
+    for trial in range(60):
+        n = int(rng.integers(1, 6))
+        emissions = rng.normal(0, 3, (n, size))
+        transitions = rng.normal(0, 2, (size, size))
+        first = int(rng.integers(size)) if trial % 2 else None
+        path, marginals = decode_lattice(emissions, np.exp(transitions), first=first)
+        scores = {}
+        for labels in itertools.product(range(size), repeat=n):
+            if first is not None and labels[0] != first:
+                continue
+            scores[labels] = sum(emissions[t, y] for t, y in enumerate(labels)) + sum(
+                transitions[a, b] for a, b in itertools.pairwise(labels))
+        assert tuple(path) == max(scores, key=scores.__getitem__)
+        z = sum(np.exp(s) for s in scores.values())
+        for t in range(n):
+            for y in range(size):
+                expected = sum(np.exp(s) for ls, s in scores.items() if ls[t] == y) / z
+                assert marginals[t, y] == pytest.approx(expected, abs=1e-9)
+
+
+def test_numpy_decoding_agrees_with_crfsuite(model: WordModel) -> None:
+    for seed in (100, 101):
+        for channel in channel_sequences(invented_conversation(seed)):
+            tokens = tokens_from_words(channel.words, channel.after_other_speaker)
+            path, _ = model.decode_tokens(tokens)
+            assert [model.tags[k] for k in path] == model.tag_tokens(tokens)
+
+
+def test_every_word_ends_final_exactly_once(model: WordModel) -> None:
+    words = _words("i think i think uh that we went to the store last week it was nice")
+    seen = _stream(ChannelDecoder(model), words)
+    assert sorted(seen) == list(range(len(words)))
+    for states in seen.values():
+        assert [s.final for s in states].count(True) == 1
+        assert states[-1].final
+        assert [s.revision for s in states] == list(range(len(states)))
+        assert all(0.0 <= s.confidence <= 1.0 and 0.0 <= s.boundary_confidence <= 1.0
+                   for s in states)
+
+
+def test_a_word_is_final_once_lag_words_follow(model: WordModel) -> None:
+    decoder = ChannelDecoder(model, DecoderConfig(lag=3))
+    finals = []
+    for key, word in enumerate(_words("we went to the store last week")):
+        finals += [s.key for s in decoder.append(key, word) if s.final]
+        assert len(decoder.open_keys) <= 3
+    assert finals == [0, 1, 2, 3]
+
+
+def test_repetition_is_labelled_and_linked(model: WordModel) -> None:
+    words = _words("the kids the kids like to play outside")
+    seen = _stream(ChannelDecoder(model), words)
+    final = {k: states[-1] for k, states in seen.items()}
+    assert final[0].label == DisfluencyLabel.REPARANDUM
+    assert final[1].label == DisfluencyLabel.REPARANDUM
+    assert final[1].interruption_point
+    assert final[0].reparandum_onset_key == 2 and final[1].reparandum_onset_key == 2
+    assert final[2].label == DisfluencyLabel.REPAIR
+    # Before the repeat arrived, the first words were not yet reparandum.
+    assert seen[0][0].label != DisfluencyLabel.REPARANDUM
+
+
+def test_close_utterance_finalises_and_ends(model: WordModel) -> None:
+    decoder = ChannelDecoder(model)
+    for key, word in enumerate(_words("we went to the")):
+        decoder.append(key, word)
+    states = decoder.close_utterance()
+    assert {s.key for s in states} == {0, 1, 2, 3}
+    assert all(s.final for s in states)
+    assert [s for s in states if s.key == 3][0].ends_utterance
+    assert decoder.open_keys == ()
+    assert decoder.close_utterance() == []
+
+
+def test_memory_is_bounded_however_long_the_speaker_talks(model: WordModel) -> None:
+    decoder = ChannelDecoder(model, DecoderConfig(lag=6))
+    words = _words("we went to the store last week and it was a really nice day " * 300)
+    for key, word in enumerate(words):
+        decoder.append(key, word)
+        assert decoder.held_words <= model.config.left + 6 + 1
+
+
+def test_replace_and_withdraw_open_words(model: WordModel) -> None:
+    decoder = ChannelDecoder(model)
+    for key, word in enumerate(_words("the kids the")):
+        decoder.append(key, word)
+    states = decoder.replace(2, Word(text="dogs", speaker="A"))
+    assert all(s.key in (0, 1, 2) for s in states)
+    decoder.withdraw(2)
+    assert decoder.open_keys == (0, 1)
+    with pytest.raises(EventError, match="not an open word"):
+        decoder.withdraw(2)
+
+
+def test_protocol_errors(model: WordModel) -> None:
+    decoder = ChannelDecoder(model, DecoderConfig(lag=1))
+    for key, word in enumerate(_words("we went to")):
+        decoder.append(key, word)
+    with pytest.raises(EventError, match="already final"):
+        decoder.replace(0, Word(text="you", speaker="A"))
+    with pytest.raises(EventError, match="already final"):
+        decoder.withdraw(1)
+    with pytest.raises(EventError, match="key already used"):
+        decoder.append(2, Word(text="x", speaker="A"))
+    decoder.finish()
+    with pytest.raises(EventError, match="finished"):
+        decoder.append(9, Word(text="x", speaker="A"))
+
+
+def test_decoder_config_limits() -> None:
+    with pytest.raises(ValueError, match="lag"):
+        DecoderConfig(lag=-1)
+    with pytest.raises(ValueError, match="confidence_step"):
+        DecoderConfig(confidence_step=2.0)

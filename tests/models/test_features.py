@@ -1,0 +1,81 @@
+"""Word features: what they read, and that streaming pieces equal whole-sequence features."""
+
+from __future__ import annotations
+
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from midstream.models._features import FeatureConfig, Token, feature_piece, features_at
+
+CONFIG = FeatureConfig(lexicon={"uh": "F", "um": "F", "mean": "E", "well": "D"})
+
+_token = st.builds(
+    Token,
+    text=st.sampled_from(["i", "the", "uh", "think", "a", "mean", "well", "s-", "go"]),
+    fragment=st.booleans(),
+    start=st.none() | st.floats(0, 100),
+    end=st.none() | st.floats(0, 100),
+    confidence=st.none() | st.floats(0, 1),
+    after_other_speaker=st.booleans(),
+)
+
+
+def _tokens(text: str) -> list[Token]:
+    return [Token(text=w) for w in text.split()]
+
+
+@settings(max_examples=150, deadline=None)
+@given(tokens=st.lists(_token, min_size=1, max_size=30), data=st.data())
+def test_identical_windows_give_identical_features(tokens: list[Token], data: st.DataObject) -> None:
+    i = data.draw(st.integers(0, len(tokens) - 1))
+    lo = max(0, i - CONFIG.left)
+    hi = i + CONFIG.right + 1
+    assert features_at(tokens[lo:hi], i - lo, CONFIG) == features_at(tokens, i, CONFIG)
+
+
+@settings(max_examples=150, deadline=None)
+@given(tokens=st.lists(_token, min_size=1, max_size=30), data=st.data())
+def test_a_piece_reads_nothing_right_of_its_word(tokens: list[Token], data: st.DataObject) -> None:
+    # What the streaming decoder computes when word i + k arrives must equal what training
+    # computes with the whole channel known.
+    i = data.draw(st.integers(0, len(tokens) - 1))
+    k = data.draw(st.integers(0, min(CONFIG.right, len(tokens) - 1 - i)))
+    copy = list(tokens)
+    assert feature_piece(tokens[: i + k + 1], i, k, CONFIG) == feature_piece(tokens, i, k, CONFIG)
+    assert tokens == copy
+
+
+def test_repetition_marks_the_reparandum_not_the_repair() -> None:
+    tokens = _tokens("so i think i think it works")
+    first_think = features_at(tokens, 2, CONFIG)
+    second_think = features_at(tokens, 4, CONFIG)
+    assert "m0_2" in first_think and "lc2_2" in first_think
+    assert "m0_2" not in second_think and "lm2" in second_think
+    first_i = features_at(tokens, 1, CONFIG)
+    assert "fc2_2" in first_i  # "i think" comes again two words later
+
+
+def test_interregnum_between_copies() -> None:
+    tokens = _tokens("the uh the dog")
+    assert "mskip" in features_at(tokens, 0, CONFIG)
+    assert "lx+1=F" in features_at(tokens, 0, CONFIG)
+
+
+def test_times_and_confidence_only_when_given() -> None:
+    bare = features_at(_tokens("hello there"), 1, CONFIG)
+    assert not any(f.startswith(("pb=", "pa=", "cf=")) for f in bare)
+    timed = [Token(text="hello", start=0.0, end=0.4), Token(text="there", start=1.6, end=2.0,
+                                                            confidence=0.95)]
+    features = features_at(timed, 1, CONFIG)
+    assert "pb=4" in features  # 1.2 s: at least 1.0 s, under 1.5 s
+    assert "cf=4" in features
+    assert "pos=0" in features  # a pause of at least GAP_SECONDS resets the position count
+
+
+def test_fragment_prefix_matches_the_completed_word() -> None:
+    tokens = [Token(text="s-", fragment=True), Token(text="said")]
+    features = features_at(tokens, 0, CONFIG)
+    assert "frag" in features and "fpre1" in features
+
+
+def test_config_round_trips_through_json() -> None:
+    assert FeatureConfig.from_json(CONFIG.to_json()) == CONFIG
