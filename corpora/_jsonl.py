@@ -147,6 +147,11 @@ def _lines(stream: IO[bytes] | IO[str], source: str) -> Iterator[_Line]:
         if not raw:
             return
         number += 1
+        # Checked before decoding: a cut-off overlong line may end inside a character.
+        if len(raw) > MAX_LINE_BYTES or (isinstance(raw, str) and len(
+                raw.encode("utf-8", "surrogatepass")) > MAX_LINE_BYTES):
+            raise TranscriptFormatError(f"line longer than the limit of {MAX_LINE_BYTES} bytes",
+                                        source=source, line=number)
         if isinstance(raw, bytes):
             try:
                 text = raw.decode("utf-8")
@@ -155,10 +160,6 @@ def _lines(stream: IO[bytes] | IO[str], source: str) -> Iterator[_Line]:
                                             source=source, line=number) from None
         else:
             text = raw
-        if len(raw) > MAX_LINE_BYTES or (len(text.encode("utf-8", "surrogatepass"))
-                                         > MAX_LINE_BYTES):
-            raise TranscriptFormatError(f"line longer than the limit of {MAX_LINE_BYTES} bytes",
-                                        source=source, line=number)
         if not text.strip():
             continue
         try:

@@ -218,6 +218,15 @@ def test_line_length_limit(monkeypatch: pytest.MonkeyPatch) -> None:
         _read(HEADER + line)
 
 
+def test_overlong_line_of_multibyte_characters_is_a_length_error(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(jsonl_module, "MAX_LINE_BYTES", 80)
+    line = json.dumps({"conversation": "c", "speaker": "A", "text": "é" * 100},
+                      ensure_ascii=False) + "\n"
+    with pytest.raises(TranscriptFormatError, match="longer than the limit"):
+        list(read_jsonl(io.BytesIO((HEADER + line).encode("utf-8"))))
+
+
 def test_word_limit(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(jsonl_module, "MAX_WORDS", 2)
     line = '{"conversation": "c", "speaker": "A", "text": "x"}\n'

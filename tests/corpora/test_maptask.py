@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import contextlib
 import re
+import tempfile
 from functools import cache
 from pathlib import Path
 
@@ -20,7 +21,7 @@ from midstream import (
 )
 from midstream._types import Conversation
 from midstream.corpora import read_corpus
-from midstream.corpora._maptask import parse_transcript_line, read_maptask
+from midstream.corpora._maptask import parse_transcript_line, read_maptask, read_moves
 
 MOVE_LABELS = {"instruct", "explain", "check", "align", "query_yn", "query_w", "acknowledge",
                "clarify", "reply_y", "reply_n", "reply_w", "ready", "uncodable"}
@@ -166,3 +167,12 @@ def test_transcript_line_parser_never_crashes(line: str) -> None:
 def test_transcript_line_parser_on_random_bytes(data: bytes) -> None:
     with contextlib.suppress(TranscriptFormatError):
         parse_transcript_line(data.decode("utf-8", errors="replace"))
+
+
+@given(st.binary(max_size=300))
+def test_moves_file_of_random_bytes(data: bytes) -> None:
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "d.g.moves.xml"
+        path.write_bytes(data)
+        with contextlib.suppress(TranscriptFormatError):
+            assert all(move.label for move in read_moves(path))
