@@ -65,6 +65,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         metavar="S",
                         help="finish a conversation whose caller sent nothing for S seconds "
                              f"(default {defaults.idle_timeout_s:g})")
+    parser.add_argument("--max-live-conversations", type=int,
+                        default=defaults.max_live_conversations, metavar="N",
+                        help="most conversations ingested at once "
+                             f"(default {defaults.max_live_conversations})")
     parser.set_defaults(handler=run)
 
 
@@ -82,14 +86,16 @@ def _token(args: argparse.Namespace) -> str | None:
 
 
 def run(args: argparse.Namespace) -> int:
-    if args.grace < 0 or args.idle_timeout <= 0:
-        raise InputError("--grace must be >= 0 and --idle-timeout > 0")
+    if args.grace < 0 or args.idle_timeout <= 0 or args.max_live_conversations < 1:
+        raise InputError("--grace must be >= 0, --idle-timeout > 0 and "
+                         "--max-live-conversations >= 1")
     config = ServerConfig(
         host=args.host, port=args.port, models_dir=args.models,
         metrics_host=args.metrics_host, metrics_port=args.metrics_port,
         tls_cert=args.tls_cert, tls_key=args.tls_key, require_tls=args.require_tls,
         token=_token(args), grace_s=args.grace,
-        limits=ServerLimits(idle_timeout_s=args.idle_timeout),
+        limits=ServerLimits(idle_timeout_s=args.idle_timeout,
+                            max_live_conversations=args.max_live_conversations),
     )
     return asyncio.run(_serve(config))
 
