@@ -27,6 +27,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "midstream.client._cmd_inspect",
     "midstream.client._cmd_demo",
     "midstream.client._cmd_serve",
+    "midstream.client._cmd_bench",
 )
 
 Handler = Callable[[argparse.Namespace], int]

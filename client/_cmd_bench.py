@@ -1,0 +1,255 @@
+"""``midstream bench``: load a server with many live conversations and measure it.
+
+::
+
+    midstream bench --target 10.0.0.5:50051 --conversations 500 --corpus corpora/swda
+    midstream bench --spawn --conversations 200 --seconds 30 --json     # a local server
+    midstream bench --smoke --spawn                                     # a few seconds
+
+Each simulated conversation streams real transcript words (a corpus split, ``val`` by default)
+one per event at ``--rate`` words per second. The report gives the words per second achieved,
+the latency from sending a word to its first hypothesis (p50/p95/p99), errors by status code,
+and, when the server is local (``--server-pid`` or ``--spawn``), its CPU use and resident
+memory per live conversation. ``--baseline`` sends a trivial ``DescribeModels`` call at the same
+rate instead of words, to compare tagging with the bare transport round trip.
+
+Latencies include the load generator's own delays: when its CPU use nears 100 % (shown in the
+report), the figures describe the generator, not the server; run it on another core or host.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import json
+import math
+import os
+import selectors
+import shutil
+import signal
+import subprocess
+import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+from midstream._errors import CorpusNotFoundError, InputError, UnavailableError
+from midstream.client._common import DEFAULT_TARGET
+from midstream.client._load import LoadConfig, ProcessProbe, WordScript, run_load
+from midstream.corpora import read_corpus
+
+#: Words read from the corpus for the script (enough that conversations rarely repeat).
+_SCRIPT_WORDS = 50_000
+#: Seconds a spawned server may take to load its models and bind.
+_SPAWN_TIMEOUT_S = 120.0
+#: What --smoke runs: a few conversations for a few seconds.
+_SMOKE = {"conversations": 4, "seconds": 2.0, "ramp": 0.2, "channels": 1}
+
+
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "bench", help="load a server with concurrent conversations and measure latency",
+        description="Stream corpus words over N concurrent conversations at a fixed rate and "
+                    "report words/s, word-to-hypothesis latency percentiles, errors by status "
+                    "and (local servers) CPU and memory per conversation.")
+    parser.add_argument("--target", "--server", dest="server", metavar="HOST:PORT",
+                        default=None,
+                        help=f"the server (default $MIDSTREAM_SERVER or {DEFAULT_TARGET}; "
+                             "ignored with --spawn)")
+    parser.add_argument("--token", default=None,
+                        help="bearer token the server requires (default $MIDSTREAM_TOKEN)")
+    parser.add_argument("--tls", action="store_true", help="connect with TLS")
+    parser.add_argument("--tls-ca", type=Path, default=None, metavar="FILE",
+                        help="PEM CA certificates to trust with --tls (default: system roots)")
+    parser.add_argument("--conversations", "-n", type=int, default=100, metavar="N",
+                        help="concurrent conversations (default 100)")
+    parser.add_argument("--rate", type=float, default=3.0, metavar="R",
+                        help="words per second per conversation (default 3)")
+    parser.add_argument("--seconds", type=float, default=60.0, metavar="T",
+                        help="seconds of sending once all conversations are open (default 60)")
+    parser.add_argument("--ramp", type=float, default=None, metavar="S",
+                        help="seconds over which conversations open (default min(10, N/100))")
+    parser.add_argument("--channels", type=int, default=4,
+                        help="gRPC connections the conversations share (default 4)")
+    parser.add_argument("--corpus", type=Path, default=None, metavar="DIR",
+                        help="corpus folder the words come from (default "
+                             "$MIDSTREAM_CORPORA/swda)")
+    parser.add_argument("--split", default="val", help="corpus split (default val)")
+    parser.add_argument("--baseline", action="store_true",
+                        help="send DescribeModels calls at the same rate instead of words "
+                             "(the transport round trip)")
+    local = parser.add_mutually_exclusive_group()
+    local.add_argument("--server-pid", type=int, default=None, metavar="PID",
+                       help="process id of a local server: report its CPU and memory")
+    local.add_argument("--spawn", action="store_true",
+                       help="start 'midstream serve' on a free local port for the run")
+    parser.add_argument("--models", type=Path, default=None, metavar="DIR",
+                        help="with --spawn: the server's model folder (default: shipped)")
+    parser.add_argument("--server-cpu", type=int, default=None, metavar="CORE",
+                        help="with --spawn: pin the server to this CPU core")
+    parser.add_argument("--client-cpu", type=int, default=None, metavar="CORE",
+                        help="pin this load generator to this CPU core")
+    parser.add_argument("--seed", type=int, default=0, help="seed of the send phases")
+    parser.add_argument("--smoke", action="store_true",
+                        help="a run of a few seconds (4 conversations, 2 s) to check the setup")
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+    parser.set_defaults(handler=run)
+
+
+def load_script(corpus: Path | None, split: str) -> tuple[WordScript, str]:
+    """The word script from a corpus split, and a description of where it came from.
+
+    Raises
+    ------
+    CorpusNotFoundError
+        When no corpus is given and ``$MIDSTREAM_CORPORA/swda`` does not exist.
+    """
+    if corpus is None:
+        root = os.environ.get("MIDSTREAM_CORPORA")
+        if not root or not (Path(root) / "swda").is_dir():
+            raise CorpusNotFoundError(
+                "no corpus to take words from: give --corpus DIR (e.g. a SwDA folder) or set "
+                "MIDSTREAM_CORPORA to a folder holding swda/")
+        corpus = Path(root) / "swda"
+    if not corpus.exists():
+        raise CorpusNotFoundError(f"{corpus}: no such corpus folder")
+    transcripts: list[list[tuple[str, str]]] = []
+    total = 0
+    for conversation in read_corpus(corpus, split=split):
+        words = [(w.speaker, w.text) for w in conversation.words if w.text]
+        if words:
+            transcripts.append(words)
+            total += len(words)
+        if total >= _SCRIPT_WORDS:
+            break
+    if not transcripts:
+        raise InputError(f"{corpus} split {split!r}: holds no words")
+    return WordScript(transcripts), f"{corpus} ({split}, {len(transcripts)} conversations, " \
+                                    f"{total} words)"
+
+
+@contextmanager
+def spawn_server(*, models: Path | None, cpu: int | None, live: int,
+                 token: str | None) -> Iterator[tuple[str, int]]:
+    """Run ``midstream serve`` on a free local port; yield its (target, pid); stop it after.
+
+    Raises
+    ------
+    UnavailableError
+        When the server exits or does not report its address in time.
+    """
+    command = [sys.executable, "-m", "midstream.client._cli", "serve", "--host", "127.0.0.1",
+               "--port", "0", "--grace", "5", "--max-live-conversations", str(live)]
+    if models is not None:
+        command += ["--models", str(models)]
+    env = dict(os.environ)
+    if token:
+        env["MIDSTREAM_BENCH_TOKEN"] = token
+        command += ["--token-env", "MIDSTREAM_BENCH_TOKEN"]
+    if cpu is not None:
+        # taskset pins before Python starts, so every thread the server makes inherits it.
+        taskset = shutil.which("taskset")
+        if taskset is None:
+            raise InputError("--server-cpu needs the 'taskset' program (util-linux)")
+        command = [taskset, "-c", str(cpu), *command]
+    process = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
+                               env=env)
+    try:
+        assert process.stdout is not None
+        with selectors.DefaultSelector() as selector:
+            selector.register(process.stdout, selectors.EVENT_READ)
+            if not selector.select(timeout=_SPAWN_TIMEOUT_S):
+                raise UnavailableError(f"the spawned server did not start within "
+                                       f"{_SPAWN_TIMEOUT_S:g} s")
+        line = process.stdout.readline().decode("utf-8", "replace").strip()
+        if not line.startswith("serving on "):
+            code = process.wait(timeout=10)
+            raise UnavailableError(f"the spawned server exited ({code}) before serving; run "
+                                   f"'{' '.join(command)}' by hand to see why")
+        yield line.removeprefix("serving on "), process.pid
+    finally:
+        if process.poll() is None:
+            process.send_signal(signal.SIGTERM)
+            try:
+                process.wait(timeout=30)
+            except subprocess.TimeoutExpired:
+                process.kill()
+                process.wait()
+        if process.stdout is not None:
+            process.stdout.close()
+
+
+def run(args: argparse.Namespace) -> int:
+    if args.smoke:
+        args.conversations = min(args.conversations, int(_SMOKE["conversations"]))
+        args.seconds = min(args.seconds, float(_SMOKE["seconds"]))
+        args.ramp = _SMOKE["ramp"] if args.ramp is None else args.ramp
+        args.channels = min(args.channels, int(_SMOKE["channels"]))
+    ramp = args.ramp if args.ramp is not None else min(10.0, args.conversations / 100)
+    token = args.token or os.environ.get("MIDSTREAM_TOKEN") or None
+    script, source = load_script(args.corpus, args.split)
+    if args.client_cpu is not None:
+        try:
+            os.sched_setaffinity(0, {args.client_cpu})
+        except OSError as exc:
+            raise InputError(f"--client-cpu {args.client_cpu}: {exc.strerror}") from None
+
+    def configure(target: str) -> LoadConfig:
+        return LoadConfig(target=target, conversations=args.conversations, rate=args.rate,
+                          seconds=args.seconds, ramp_s=ramp, channels=args.channels,
+                          workload="describe" if args.baseline else "converse", token=token,
+                          tls=bool(args.tls), tls_ca=args.tls_ca, seed=args.seed)
+
+    if args.spawn:
+        if args.tls:
+            raise InputError("--spawn starts a plain local server: drop --tls")
+        with spawn_server(models=args.models, cpu=args.server_cpu,
+                          live=max(256, args.conversations), token=token) as (target, pid):
+            config = configure(target)
+            result = asyncio.run(run_load(config, script, probe=ProcessProbe(pid)))
+    else:
+        config = configure(args.server or os.environ.get("MIDSTREAM_SERVER") or DEFAULT_TARGET)
+        probe = ProcessProbe(args.server_pid) if args.server_pid is not None else None
+        if probe is not None:
+            probe.sample()  # fail now, not after the run, when the pid is wrong
+        result = asyncio.run(run_load(config, script, probe=probe))
+    summary = result.summary()
+    summary["corpus"] = source
+    if args.json:
+        print(json.dumps(summary, sort_keys=True))
+    else:
+        _print(summary)
+    if summary["opened"] == 0:
+        raise UnavailableError(f"no conversation could be opened on {config.target}: "
+                               f"{summary['errors']}")
+    return 0
+
+
+def _ms(value: float) -> str:
+    return f"{value:.1f}" if math.isfinite(value) else "-"
+
+
+def _print(s: dict[str, Any]) -> None:
+    what = "DescribeModels calls" if s["workload"] == "describe" else "words"
+    print(f"target {s['target']}: {s['opened']}/{s['conversations']} conversations open, "
+          f"{s['rate_per_conversation']:g} {what}/s each, {s['measured_s']:.1f} s")
+    print(f"  words from   {s['corpus']}")
+    print(f"  offered      {s['offered_wps']:.1f} {what}/s")
+    print(f"  achieved     {s['achieved_wps']:.1f} {what}/s answered in the window "
+          f"({s['words_answered']} of {s['words_sent']} answered in all)")
+    lat = s["latency_ms"]
+    print(f"  latency ms   p50 {_ms(lat['p50'])}  p95 {_ms(lat['p95'])}  p99 {_ms(lat['p99'])}  "
+          f"max {_ms(lat['max'])}   (word sent -> its first hypothesis)")
+    lag = s["send_lag_ms"]
+    print(f"  send lag ms  p99 {_ms(lag['p99'])}   load generator CPU "
+          f"{s['client_cpu_percent']:.0f} %")
+    errors = ", ".join(f"{k} {v}" for k, v in s["errors"].items()) or "none"
+    print(f"  errors       {errors}")
+    server = s["server"]
+    if server is not None:
+        print(f"  server       CPU {server['cpu_percent']:.0f} %, RSS "
+              f"{server['rss_before_bytes'] / 2**20:.1f} -> "
+              f"{server['rss_after_bytes'] / 2**20:.1f} MiB, "
+              f"{server['bytes_per_open_conversation'] / 1024:.1f} KiB per open conversation, "
+              f"{server['bytes_per_conversation_after'] / 1024:.1f} KiB after sending")

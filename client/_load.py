@@ -1,0 +1,425 @@
+"""A load generator for a Midstream server: many concurrent conversations at a fixed word rate.
+
+:func:`run_load` opens ``conversations`` ``Converse`` streams over a few channels, and each sends
+one word per event at ``rate`` words per second for ``seconds`` seconds, taken from real
+transcripts (:class:`WordScript`). For every word it times the interval from just before the
+write to the first update naming that word's id (the word's first hypothesis), and it counts
+errors by gRPC status code. The ``describe`` workload sends a trivial ``DescribeModels`` call at
+the same rate instead: the transport round trip against which tagging is compared.
+
+:class:`ProcessProbe` reads a local server's CPU time and resident memory from ``/proc``.
+
+This module talks protobuf directly (the :class:`~midstream.client.Client` converts every
+update to domain types, which would make the generator, not the server, the bottleneck). It
+imports no model code. Use from one event loop; nothing here is thread-safe.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import math
+import os
+import random
+import time
+from collections import Counter
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+import grpc
+import grpc.aio
+from midstream._errors import InputError
+from midstream.wire import midstream_pb2 as pb
+from midstream.wire import midstream_pb2_grpc as pb_grpc
+
+Workload = Literal["converse", "describe"]
+
+#: Percentiles reported, in percent.
+PERCENTILES: tuple[int, ...] = (50, 95, 99)
+#: Status name counted for a conversation that never got its ``welcome`` in time.
+OPEN_TIMEOUT = "OPEN_TIMEOUT"
+#: Seconds a conversation waits for updates of its last words after it stopped sending.
+_SETTLE_S = 5.0
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class LoadConfig:
+    """One load run.
+
+    ``rate`` is words per second per conversation; ``seconds`` is how long each conversation
+    sends after all are open; ``ramp_s`` spreads the opening of the conversations (seconds).
+    ``channels`` is how many HTTP/2 connections carry the streams.
+    """
+
+    target: str
+    conversations: int
+    rate: float = 3.0
+    seconds: float = 60.0
+    ramp_s: float = 5.0
+    channels: int = 4
+    workload: Workload = "converse"
+    token: str | None = field(default=None, repr=False)
+    tls: bool = False
+    tls_ca: Path | None = None
+    seed: int = 0
+
+    def __post_init__(self) -> None:
+        if self.conversations < 1:
+            raise InputError(f"conversations must be at least 1, got {self.conversations}")
+        if not self.rate > 0 or not math.isfinite(self.rate):
+            raise InputError(f"rate must be a positive number of words/s, got {self.rate}")
+        if not self.seconds > 0 or not math.isfinite(self.seconds):
+            raise InputError(f"seconds must be above 0, got {self.seconds}")
+        if self.ramp_s < 0 or self.channels < 1:
+            raise InputError("ramp_s must be >= 0 and channels >= 1")
+
+
+class WordScript:
+    """The words each simulated conversation speaks: real transcripts, cycled.
+
+    Parameters
+    ----------
+    transcripts
+        Conversations as ``(speaker, text)`` sequences, in speaking order.
+
+    Examples
+    --------
+    >>> script = WordScript([[("A", "uh"), ("A", "yes")], [("B", "so")]])
+    >>> [script.word(1, k) for k in range(3)]
+    [('B', 'so'), ('A', 'uh'), ('A', 'yes')]
+    """
+
+    def __init__(self, transcripts: Sequence[Sequence[tuple[str, str]]]) -> None:
+        # One flat ring: conversation i starts at its own offset so that concurrent
+        # conversations are not in lock-step on the same words.
+        self._words = [word for transcript in transcripts for word in transcript]
+        if not self._words:
+            raise InputError("the word script is empty: the transcripts hold no words")
+        self._starts = [0]
+        for transcript in transcripts[:-1]:
+            self._starts.append(self._starts[-1] + len(transcript))
+
+    @property
+    def total_words(self) -> int:
+        return len(self._words)
+
+    def word(self, conversation: int, index: int) -> tuple[str, str]:
+        """The ``index``-th (speaker, text) of simulated conversation ``conversation``."""
+        start = self._starts[conversation % len(self._starts)]
+        return self._words[(start + index) % len(self._words)]
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class ProcessSample:
+    """CPU seconds (user + system) and resident set size (bytes) of a process at a moment."""
+
+    wall: float
+    cpu_s: float
+    rss_bytes: int
+
+
+class ProcessProbe:
+    """Reads a local process's CPU time and RSS from ``/proc`` (Linux only)."""
+
+    def __init__(self, pid: int) -> None:
+        self.pid = pid
+        self._tick = os.sysconf("SC_CLK_TCK")
+        self._page = os.sysconf("SC_PAGE_SIZE")
+
+    def sample(self) -> ProcessSample:
+        """The process's counters now.
+
+        Raises
+        ------
+        InputError
+            When the process does not exist or ``/proc`` cannot be read.
+        """
+        try:
+            stat = Path(f"/proc/{self.pid}/stat").read_text(encoding="ascii")
+            statm = Path(f"/proc/{self.pid}/statm").read_text(encoding="ascii")
+        except OSError as exc:
+            raise InputError(f"cannot read /proc/{self.pid}: {exc.strerror} (is the server "
+                             "process local and alive?)") from None
+        # Fields after the parenthesised command name, which may itself hold spaces.
+        fields = stat[stat.rindex(")") + 2:].split()
+        utime, stime = int(fields[11]), int(fields[12])
+        return ProcessSample(wall=time.perf_counter(), cpu_s=(utime + stime) / self._tick,
+                             rss_bytes=int(statm.split()[1]) * self._page)
+
+
+@dataclass(slots=True, kw_only=True)
+class LoadResult:
+    """What one load run measured; latencies in seconds."""
+
+    config: LoadConfig
+    opened: int = 0
+    words_sent: int = 0
+    words_answered: int = 0
+    answered_in_window: int = 0
+    measured_s: float = 0.0
+    latencies: list[float] = field(default_factory=list)
+    send_lag: list[float] = field(default_factory=list)
+    errors: Counter[str] = field(default_factory=Counter)
+    client_cpu_s: float = 0.0
+    server_before: ProcessSample | None = None
+    server_open: ProcessSample | None = None
+    server_after: ProcessSample | None = None
+
+    @property
+    def achieved_wps(self) -> float:
+        """Words (or calls) answered within the sending window, per second, all conversations.
+
+        Answers that arrive after the window (a server catching up) do not count.
+        """
+        return self.answered_in_window / self.measured_s if self.measured_s > 0 else 0.0
+
+    def summary(self) -> dict[str, Any]:
+        """Every figure as plain JSON-ready values (times in ms, memory in bytes)."""
+        config = self.config
+        out: dict[str, Any] = {
+            "target": config.target,
+            "workload": config.workload,
+            "conversations": config.conversations,
+            "rate_per_conversation": config.rate,
+            "offered_wps": config.conversations * config.rate,
+            "seconds": config.seconds,
+            "channels": config.channels,
+            "opened": self.opened,
+            "words_sent": self.words_sent,
+            "words_answered": self.words_answered,
+            "answered_in_window": self.answered_in_window,
+            "measured_s": round(self.measured_s, 3),
+            "achieved_wps": round(self.achieved_wps, 2),
+            "latency_ms": _distribution(self.latencies),
+            "send_lag_ms": _distribution(self.send_lag),
+            "errors": dict(sorted(self.errors.items())),
+            "error_count": sum(self.errors.values()),
+            "client_cpu_percent": round(100 * self.client_cpu_s / self.measured_s, 1)
+            if self.measured_s > 0 else 0.0,
+        }
+        out["server"] = self._server_summary()
+        return out
+
+    def _server_summary(self) -> dict[str, Any] | None:
+        before, opened, after = self.server_before, self.server_open, self.server_after
+        if before is None or opened is None or after is None:
+            return None
+        window = after.wall - opened.wall
+        live = max(self.opened, 1)
+        return {
+            "cpu_percent": round(100 * (after.cpu_s - opened.cpu_s) / window, 1)
+            if window > 0 else 0.0,
+            "rss_before_bytes": before.rss_bytes,
+            "rss_open_bytes": opened.rss_bytes,
+            "rss_after_bytes": after.rss_bytes,
+            # Right after opening (no words yet) and at the end of the window (every
+            # conversation holding the words it was sent): RSS growth over live conversations.
+            "bytes_per_open_conversation": round((opened.rss_bytes - before.rss_bytes) / live),
+            "bytes_per_conversation_after": round((after.rss_bytes - before.rss_bytes) / live),
+        }
+
+
+def _distribution(values: Sequence[float]) -> dict[str, float]:
+    """p50/p95/p99/max/mean in milliseconds (nearest-rank percentiles); zeros when empty."""
+    keys = [f"p{p}" for p in PERCENTILES] + ["max", "mean"]
+    if not values:
+        return dict.fromkeys(keys, 0.0)
+    ordered = sorted(values)
+    out = {}
+    for p in PERCENTILES:
+        rank = max(1, math.ceil(p / 100 * len(ordered)))
+        out[f"p{p}"] = round(1000 * ordered[rank - 1], 3)
+    out["max"] = round(1000 * ordered[-1], 3)
+    out["mean"] = round(1000 * sum(ordered) / len(ordered), 3)
+    return out
+
+
+class _Run:
+    """Shared state of one run: the clock, the measured window and the tallies."""
+
+    def __init__(self, config: LoadConfig, script: WordScript, result: LoadResult) -> None:
+        self.config = config
+        self.script = script
+        self.result = result
+        self.metadata: tuple[tuple[str, str], ...] = (
+            (("authorization", f"Bearer {config.token}"),) if config.token else ())
+        self.all_open = asyncio.Event()
+        # Set once start and stop are known; conversations wait on this, not on all_open.
+        self.go = asyncio.Event()
+        self.opening = config.conversations
+        self.start = 0.0  # loop time when sending starts (all conversations open)
+        self.stop = 0.0
+
+    def opened_one(self) -> None:
+        self.opening -= 1
+        if self.opening == 0:
+            self.all_open.set()
+
+    def error(self, name: str) -> None:
+        self.result.errors[name] += 1
+
+
+def _channel(config: LoadConfig, index: int) -> grpc.aio.Channel:
+    options: list[tuple[str, Any]] = [
+        # Separate connections, not one shared subchannel, so streams spread over them.
+        ("grpc.use_local_subchannel_pool", 1),
+        ("grpc.channel_id", index),
+        ("grpc.max_receive_message_length", 64 * 1024 * 1024),
+    ]
+    if not config.tls:
+        return grpc.aio.insecure_channel(config.target, options=options)
+    roots = None
+    if config.tls_ca is not None:
+        try:
+            roots = config.tls_ca.read_bytes()
+        except OSError as exc:
+            raise InputError(f"{config.tls_ca}: cannot read the CA certificates: "
+                             f"{exc.strerror}") from None
+    credentials = grpc.ssl_channel_credentials(root_certificates=roots)
+    return grpc.aio.secure_channel(config.target, credentials, options=options)
+
+
+async def _converse(run: _Run, stub: pb_grpc.MidstreamStub, number: int) -> None:
+    """One simulated conversation: open, send at the rate, close, read everything."""
+    config, result = run.config, run.result
+    loop = asyncio.get_running_loop()
+    pending: dict[str, float] = {}
+    call = stub.Converse(metadata=run.metadata)
+    opened = False
+    reader: asyncio.Task[None] | None = None
+
+    async def read_updates() -> None:
+        while True:
+            message = await call.read()
+            if message is grpc.aio.EOF:
+                return
+            if message.WhichOneof("body") != "update":
+                continue
+            now = loop.time()
+            for state in message.update.words:
+                sent = pending.pop(state.word_id, None)
+                if sent is not None:
+                    result.words_answered += 1
+                    result.latencies.append(now - sent)
+                    if now <= run.stop:
+                        result.answered_in_window += 1
+
+    try:
+        await call.write(pb.ClientEvent(open=pb.OpenConversation()))
+        welcome = await call.read()
+        if welcome is grpc.aio.EOF or welcome.WhichOneof("body") != "welcome":
+            raise grpc.aio.AioRpcError(grpc.StatusCode.UNKNOWN, grpc.aio.Metadata(),
+                                       grpc.aio.Metadata(), details="no welcome")
+        opened = True
+        result.opened += 1
+        run.opened_one()
+        reader = asyncio.ensure_future(read_updates())
+        await run.go.wait()
+        interval = 1 / config.rate
+        # A random phase so conversations do not all send in the same millisecond.
+        due = run.start + random.Random(config.seed * 100003 + number).random() * interval
+        index = 0
+        while due < run.stop:
+            delay = due - loop.time()
+            if delay > 0:
+                await asyncio.sleep(delay)
+            speaker, text = run.script.word(number, index)
+            word_id = f"w{index}"
+            event = pb.ClientEvent(words=pb.WordBatch(words=[
+                pb.SpokenWord(word_id=word_id, speaker=speaker, text=text)]))
+            sent = loop.time()
+            result.send_lag.append(max(0.0, sent - due))
+            pending[word_id] = sent
+            await call.write(event)
+            result.words_sent += 1
+            index += 1
+            due += interval
+        await call.write(pb.ClientEvent(close=pb.CloseConversation()))
+        await call.done_writing()
+        await asyncio.wait_for(reader, timeout=_SETTLE_S + config.seconds)
+    except grpc.aio.AioRpcError as exc:
+        run.error(exc.code().name)
+    except TimeoutError:
+        run.error("DEADLINE_EXCEEDED")
+    finally:
+        if reader is not None and not reader.done():
+            reader.cancel()
+        if not opened:
+            run.opened_one()
+        call.cancel()
+
+
+async def _describe(run: _Run, stub: pb_grpc.MidstreamStub, number: int) -> None:
+    """The baseline: one trivial unary call per would-be word, at the same rate."""
+    config, result = run.config, run.result
+    loop = asyncio.get_running_loop()
+    result.opened += 1
+    run.opened_one()
+    await run.go.wait()
+    interval = 1 / config.rate
+    due = run.start + random.Random(config.seed * 100003 + number).random() * interval
+    while due < run.stop:
+        delay = due - loop.time()
+        if delay > 0:
+            await asyncio.sleep(delay)
+        sent = loop.time()
+        result.send_lag.append(max(0.0, sent - due))
+        result.words_sent += 1
+        try:
+            await stub.DescribeModels(pb.DescribeModelsRequest(), metadata=run.metadata)
+        except grpc.aio.AioRpcError as exc:
+            run.error(exc.code().name)
+        else:
+            now = loop.time()
+            result.words_answered += 1
+            result.latencies.append(now - sent)
+            if now <= run.stop:
+                result.answered_in_window += 1
+        due += interval
+
+
+async def run_load(config: LoadConfig, script: WordScript, *,
+                   probe: ProcessProbe | None = None) -> LoadResult:
+    """Run one load test and return its measurements.
+
+    The conversations are opened over ``config.ramp_s`` seconds; sending starts once all are
+    open (or failed to open), runs ``config.seconds`` seconds, then every conversation closes
+    and waits up to a few seconds for the updates of its last words. ``probe`` samples a local
+    server before opening, once all are open and at the end of the sending window.
+    """
+    result = LoadResult(config=config)
+    run = _Run(config, script, result)
+    loop = asyncio.get_running_loop()
+    channels = [_channel(config, i) for i in range(config.channels)]
+    try:
+        stubs = [pb_grpc.MidstreamStub(c) for c in channels]  # type: ignore[no-untyped-call]
+        result.server_before = probe.sample() if probe is not None else None
+        body = _converse if config.workload == "converse" else _describe
+        tasks = []
+        spacing = config.ramp_s / config.conversations
+        for number in range(config.conversations):
+            tasks.append(asyncio.ensure_future(
+                body(run, stubs[number % len(stubs)], number)))
+            if spacing > 0:
+                await asyncio.sleep(spacing)
+        try:
+            async with asyncio.timeout(config.ramp_s + 30.0):
+                await run.all_open.wait()
+        except TimeoutError:
+            result.errors[OPEN_TIMEOUT] += run.opening
+            run.all_open.set()
+        result.server_open = probe.sample() if probe is not None else None
+        cpu = time.process_time()
+        run.start = loop.time()
+        run.stop = run.start + config.seconds
+        run.go.set()
+        await asyncio.sleep(config.seconds)
+        result.measured_s = loop.time() - run.start
+        result.client_cpu_s = time.process_time() - cpu
+        result.server_after = probe.sample() if probe is not None else None
+        await asyncio.gather(*tasks, return_exceptions=False)
+    finally:
+        for channel in channels:
+            await channel.close()
+    return result
