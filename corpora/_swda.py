@@ -65,6 +65,8 @@ _CONTINUATION = re.compile(r"^\+[@*]*$")
 _HEADER_END = re.compile(r"^[ \t]*=+[ \t]*$", re.MULTILINE)
 _LINE = re.compile(r"^\s*(?P<tag>\S+)\s+[@*]*(?P<speaker>[AB])\.\d+\s+utt\d+\s*:(?P<text>.*)$")
 _FILE_NAME = re.compile(r"^sw_\d+_(\d+)\.utt$")
+#: A split names a file in ``splits/``; anything else (a path) is refused.
+_SPLIT_NAME = re.compile(r"[A-Za-z0-9_-]{1,64}")
 
 # One lexer pass over a line's text, as strings (findall is much faster than match objects).
 # Alternatives are tried in order at each position, so multi-character marks come before words.
@@ -370,10 +372,12 @@ def split_numbers(root: Path, split: str) -> tuple[int, ...]:
     Raises
     ------
     CorpusNotFoundError
-        When the split file does not exist.
+        When the split is not a plain name or its file does not exist.
     TranscriptFormatError
         When a line is not a conversation number.
     """
+    if not _SPLIT_NAME.fullmatch(split):
+        raise CorpusNotFoundError(f"split {split!r} is not a plain name (letters, digits, _ -)")
     path = root / "splits" / f"{split}.txt"
     if not path.is_file():
         raise CorpusNotFoundError(f"split {split!r} not found: no file {path}")
