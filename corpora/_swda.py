@@ -32,7 +32,9 @@ How the reader resolves what the markup leaves open:
   with nothing open, a ``[`` still open when its slash unit ends (``/``, ``-/``) or when its
   speaker starts a new utterance or the conversation ends, and a ``[ ... ]`` without ``+``. An
   unclosed bracket is closed at those points so it cannot label the rest of the conversation; if
-  it had its ``+`` its repair (or restart) is kept.
+  it had its ``+`` its repair (or restart) is kept. (A bracket a transcriber carried over a ``/``
+  thus counts twice: closed at the slash, then its ``]`` as stray.) An unclosed ``{F ...`` span
+  likewise ends with its slash unit.
 - A conversation with no ``{F}``/``{E}``/``{D}``/``{C}``/``{A}`` markup and no bracketed repair is
   unannotated (``labels=None``): part of ``sw13utt`` was never marked for disfluencies, and a
   stray bracket or ``{faint}`` comment there does not make it annotated.
