@@ -96,8 +96,8 @@ def test_repetition_is_labelled_and_linked(model: WordModel) -> None:
     assert final[1].interruption_point
     assert final[0].reparandum_onset_key == 2 and final[1].reparandum_onset_key == 2
     assert final[2].label == DisfluencyLabel.REPAIR
-    # Before the repeat arrived, the first words were not yet reparandum.
-    assert seen[0][0].label != DisfluencyLabel.REPARANDUM
+    # The link can only be made once the onset has arrived.
+    assert seen[1][0].reparandum_onset_key is None
 
 
 def test_close_utterance_finalises_and_ends(model: WordModel) -> None:
@@ -107,7 +107,7 @@ def test_close_utterance_finalises_and_ends(model: WordModel) -> None:
     states = decoder.close_utterance()
     assert {s.key for s in states} == {0, 1, 2, 3}
     assert all(s.final for s in states)
-    assert [s for s in states if s.key == 3][0].ends_utterance
+    assert next(s for s in states if s.key == 3).ends_utterance
     assert decoder.open_keys == ()
     assert decoder.close_utterance() == []
 

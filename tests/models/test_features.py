@@ -25,7 +25,9 @@ def _tokens(text: str) -> list[Token]:
 
 @settings(max_examples=150, deadline=None)
 @given(tokens=st.lists(_token, min_size=1, max_size=30), data=st.data())
-def test_identical_windows_give_identical_features(tokens: list[Token], data: st.DataObject) -> None:
+def test_identical_windows_give_identical_features(
+    tokens: list[Token], data: st.DataObject
+) -> None:
     i = data.draw(st.integers(0, len(tokens) - 1))
     lo = max(0, i - CONFIG.left)
     hi = i + CONFIG.right + 1

@@ -18,6 +18,7 @@ from midstream import (
     UtteranceFunction,
     Word,
 )
+from midstream.models._artifact import ModelArtifact
 from midstream.models._train_words import WordTrainingConfig, train_word_artifact
 from midstream.models._wordmodel import WordModel
 
@@ -109,6 +110,4 @@ def tiny_artifact_bytes() -> bytes:
 
 
 def tiny_model() -> WordModel:
-    from midstream.models._artifact import ModelArtifact
-
     return WordModel.from_artifact(ModelArtifact.from_bytes(tiny_artifact_bytes()))
