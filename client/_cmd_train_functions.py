@@ -1,0 +1,131 @@
+"""Options and handler of ``midstream train functions`` (the utterance-function CRF).
+
+::
+
+    midstream train functions ../shared/corpora/swda --split train --scheme swbd42 \\
+        --augment 0.5 --c1 0.1 0.3 --c2 0.01 --cv-folds 3 --cv-subset 300 \\
+        --out functions-swbd42.msm
+    midstream train functions my_calls.jsonl --scheme coarse --out functions-coarse.msm
+
+``midstream train`` (:mod:`midstream.client._cmd_train`) registers the sub-command with
+:func:`add_training_arguments` and :func:`run`. The corpus is anything
+:func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of
+your own transcripts). Given several ``--c1``/``--c2`` values, the combinations are compared by
+conversation-grouped cross-validation on the first ``--cv-subset`` conversations (by id) of the
+corpus given, which must be the training split; the best is then trained on all of it. The score
+of a combination is the mean of its gold-segmentation accuracy in the model's own scheme and its
+coarse accuracy after three received words.
+"""
+
+from __future__ import annotations
+
+import argparse
+import itertools
+import shlex
+import sys
+import time
+from collections.abc import Sequence
+from typing import TextIO
+
+from midstream._errors import InputError
+from midstream._types import Conversation
+from midstream.corpora import read_corpus
+from midstream.models._artifact import ModelArtifact, save_artifact
+from midstream.models._eval_functions import evaluate_functions
+from midstream.models._functions import SCHEMES, FunctionTagger
+from midstream.models._train_functions import (
+    FunctionTrainingOptions,
+    Scorer,
+    cross_validate,
+    train_function_model,
+)
+
+
+def add_training_arguments(parser: argparse.ArgumentParser) -> None:
+    """Add the function model's training options to ``parser``."""
+    defaults = FunctionTrainingOptions()
+    parser.add_argument("--scheme", choices=SCHEMES, default=defaults.scheme,
+                        help="label set: coarse functions, or SWBD-DAMSL 42 classes (SwDA only)")
+    parser.add_argument("--c1", type=float, nargs="+", default=[defaults.c1],
+                        help="L1 weight(s); several values are compared by cross-validation")
+    parser.add_argument("--c2", type=float, nargs="+", default=[defaults.c2],
+                        help="L2 weight(s); several values are compared by cross-validation")
+    parser.add_argument("--min-freq", type=int, default=defaults.min_freq,
+                        help="drop features seen fewer times in training")
+    parser.add_argument("--max-iterations", type=int, default=defaults.max_iterations)
+    parser.add_argument("--augment", type=float, default=defaults.augment,
+                        help="share of utterances cut to a random prefix in an augmented copy")
+    parser.add_argument("--seed", type=int, default=defaults.seed)
+    parser.add_argument("--cv-folds", type=int, default=3,
+                        help="folds for comparing several --c1/--c2 values")
+    parser.add_argument("--cv-subset", type=int, default=300,
+                        help="conversations (first by id) used for cross-validation (0: all)")
+
+
+def _cv_score(scheme: str) -> Scorer:
+    def score(tagger: FunctionTagger, held: Sequence[Conversation]) -> dict[str, float]:
+        figures = evaluate_functions(held, tagger)
+        own = figures[f"utterance_functions.gold_segmentation.{scheme}.accuracy"]
+        early = figures["utterance_functions.accuracy_after_words.3"]
+        return {"accuracy": own, "after_3": early, "score": (own + early) / 2}
+    return score
+
+
+def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversation],
+                    *, out: TextIO | None = None) -> ModelArtifact:
+    """Choose hyper-parameters (if several are given) and train on ``conversations``.
+
+    Cross-validation progress goes to ``out`` (standard output when ``None``).
+    """
+    out = out if out is not None else sys.stdout
+    if not conversations:
+        raise InputError("the corpus holds no conversations to train on")
+    base = FunctionTrainingOptions(
+        scheme=args.scheme, c1=args.c1[0], c2=args.c2[0], min_freq=args.min_freq,
+        max_iterations=args.max_iterations, augment=args.augment, seed=args.seed)
+    grid = list(itertools.product(args.c1, args.c2))
+    chosen = base
+    cv: dict[str, object] = {}
+    if len(grid) > 1:
+        if args.cv_folds < 2:
+            raise InputError(f"--cv-folds must be at least 2, got {args.cv_folds}")
+        subset = sorted(conversations, key=lambda c: c.id)
+        if args.cv_subset:
+            subset = subset[:args.cv_subset]
+        score = _cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
+        best = -1.0
+        for c1, c2 in grid:
+            options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2})
+            figures = cross_validate(subset, options, folds=args.cv_folds, score=score)
+            print(f"cv c1={c1} c2={c2}: " + " ".join(
+                f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
+            cv[f"c1={c1},c2={c2}"] = {k: round(v, 4) for k, v in figures.items()}
+            if figures["score"] > best:
+                best, chosen = figures["score"], options
+        print(f"chosen c1={chosen.c1} c2={chosen.c2}", file=out, flush=True)
+    command = "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:])
+    artifact = train_function_model(conversations, chosen, command=command)
+    if cv:
+        metadata = dict(artifact.metadata)
+        metadata["cross_validation"] = {"folds": args.cv_folds,
+                                        "subset": args.cv_subset, "grid": cv}
+        artifact = ModelArtifact(kind=artifact.kind, labels=artifact.labels, crf=artifact.crf,
+                                 features=artifact.features,
+                                 hyper_parameters=artifact.hyper_parameters, metadata=metadata)
+    return artifact
+
+
+def _fields(options: FunctionTrainingOptions) -> dict[str, object]:
+    return {name: getattr(options, name) for name in options.__dataclass_fields__}
+
+
+def run(args: argparse.Namespace) -> int:
+    """Handler of ``midstream train functions``: read, choose, train, write ``args.out``."""
+    started = time.monotonic()
+    conversations = list(read_corpus(args.corpus, split=args.split))
+    artifact = train_from_args(args, conversations)
+    save_artifact(artifact, args.out)
+    size = args.out.stat().st_size
+    print(f"wrote {args.out} ({size / 1e6:.1f} MB, {len(artifact.labels)} labels, "
+          f"{time.monotonic() - started:.0f} s)")
+    return 0

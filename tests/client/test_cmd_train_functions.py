@@ -1,0 +1,68 @@
+"""``midstream train functions`` end to end on invented transcripts in JSON Lines."""
+
+from __future__ import annotations
+
+import dataclasses
+import sys
+from pathlib import Path
+
+import pytest
+from midstream.client._cli import main
+from midstream.corpora import write_jsonl
+from midstream.models._artifact import load_artifact
+from midstream.models._functions import FunctionTagger, UtteranceView
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))
+from function_kit import invented_corpus
+
+
+@pytest.fixture
+def transcripts(tmp_path: Path) -> Path:
+    path = tmp_path / "calls.jsonl"
+    with path.open("w", encoding="utf-8") as stream:
+        write_jsonl(invented_corpus(12), stream)
+    return path
+
+
+def test_trains_a_coarse_model_users_can_load(transcripts: Path, tmp_path: Path,
+                                              capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "functions.msm"
+    code = main(["train", "functions", str(transcripts), "--scheme", "coarse",
+                 "--min-freq", "1", "--max-iterations", "40", "--augment", "0.5",
+                 "--out", str(out)])
+    assert code == 0
+    assert f"wrote {out}" in capsys.readouterr().out
+    artifact = load_artifact(out, expected_kind="utterance_functions")
+    assert artifact.hyper_parameters["augment"] == 0.5
+    tagger = FunctionTagger.from_artifact(artifact)
+    question = UtteranceView(speaker="A", words=("do", "you", "have", "kids"))
+    guess = tagger.label_partial([question], UtteranceView(speaker="B", words=("yes",)))
+    assert guess.function.value == "answer"
+
+
+def test_several_weights_are_chosen_by_cross_validation(
+        transcripts: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "functions.msm"
+    code = main(["train", "functions", str(transcripts), "--scheme", "swbd42",
+                 "--c1", "0.01", "5.0", "--min-freq", "1", "--max-iterations", "30",
+                 "--cv-folds", "2", "--cv-subset", "0", "--out", str(out)])
+    assert code == 0
+    printed = capsys.readouterr().out
+    assert "cv c1=0.01" in printed and "cv c1=5.0" in printed and "chosen c1=" in printed
+    grid = load_artifact(out).metadata["cross_validation"]["grid"]
+    assert set(grid) == {"c1=0.01,c2=0.01", "c1=5.0,c2=0.01"}
+
+
+def test_swbd42_on_other_labels_is_a_one_line_error(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    conversations = invented_corpus(3)
+    path = tmp_path / "odd.jsonl"
+    odd = [dataclasses.replace(c, utterances=tuple(
+        dataclasses.replace(u, fine_class="instruct") for u in c.utterances))
+        for c in conversations]
+    with path.open("w", encoding="utf-8") as stream:
+        write_jsonl(odd, stream)
+    code = main(["train", "functions", str(path), "--scheme", "swbd42",
+                 "--out", str(tmp_path / "x.msm")])
+    assert code == 1
+    assert "instruct" in capsys.readouterr().err
