@@ -32,7 +32,7 @@ _SETTINGS = settings(max_examples=60, deadline=None,
 _PIECES = st.sampled_from([
     b"\t", b"\n", b"\r\n", b"\r", b" ", b"\x00", b"\xff", b"\xc3", b"\xe2\x80", b"{", b"}",
     b"[", b"]", b"\"", b"/", b",", b":", b"-", b"+", b"#", b";;", b"1e999", b"NaN", b"-0.5",
-    b"g", b"f", b"A", b"B.1", b"<move", b"/>", b"<?xml version='1.0' encoding='bogus'?>",
+    b"g", b"f", b"A", b"B.1", b"<move", b"/>", b"<?xml version='1.0'?>",
     b"&#0;", b"{D", b"{F uh }", b"[ i, + i ]", b"sd", b"qy^d",
 ])
 _BYTES = st.one_of(
@@ -178,3 +178,14 @@ def test_undecodable_transcript_is_a_format_error(tmp_path: Path, reader: str) -
         moves, transcript = _write_maptask(tmp_path, latin1)
         with pytest.raises(TranscriptFormatError, match=r"q0\.txt"):
             read_maptask_dialogue(moves, transcript)
+
+
+# Known failure, reported to the corpora owner: an XML declaration naming an encoding Python
+# does not know makes ElementTree raise LookupError, which read_moves does not catch.
+@pytest.mark.xfail(strict=True, raises=LookupError,
+                   reason="read_moves lets LookupError escape for an unknown XML encoding")
+def test_moves_file_with_unknown_encoding_is_a_format_error(tmp_path: Path) -> None:
+    path = tmp_path / "q0.g.moves.xml"
+    path.write_bytes(b"<?xml version='1.0' encoding='bogus'?><moves/>")
+    with pytest.raises(TranscriptFormatError, match=r"q0\.g\.moves\.xml"):
+        read_moves(path)
