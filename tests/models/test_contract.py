@@ -1,0 +1,151 @@
+"""The contract every Midstream tagger keeps, run against each tagger through a small adapter.
+
+A tagger adapter says how to build the tagger from model bytes, how to tag a conversation and
+how to stream one; the checks are shared: inputs are not mutated, model bytes round-trip to
+identical output, unseen words and missing times do not crash, decoding is deterministic, and a
+final streamed label never changes. Add another tagger by adding an adapter to ``ADAPTERS``.
+"""
+
+from __future__ import annotations
+
+import copy
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from midstream import Conversation, Word
+from midstream._errors import EventError
+from midstream.models._artifact import ModelArtifact
+from midstream.models._decoder import ChannelDecoder, DecoderConfig
+from midstream.models._wordmodel import WordModel
+from midstream.models._wordtags import channel_sequences
+from word_kit import invented_conversation, tiny_artifact_bytes
+
+
+@dataclass(frozen=True, slots=True)
+class Adapter:
+    """How the shared checks drive one kind of tagger."""
+
+    name: str
+    model_bytes: Callable[[], bytes]
+    load: Callable[[bytes], object]
+    tag: Callable[[object, Conversation], list[object]]
+
+
+def _load_words(data: bytes) -> object:
+    return WordModel.from_artifact(ModelArtifact.from_bytes(data, expected_kind="words"))
+
+
+def _tag_words(model: object, conversation: Conversation) -> list[object]:
+    assert isinstance(model, WordModel)
+    out: list[object] = []
+    for channel in channel_sequences(conversation):
+        decoder = ChannelDecoder(model)
+        for key, word in enumerate(channel.words):
+            out += decoder.append(key, word,
+                                  after_other_speaker=channel.after_other_speaker[key])
+        out += decoder.finish()
+    return out
+
+
+ADAPTERS = [Adapter("words", tiny_artifact_bytes, _load_words, _tag_words)]
+
+
+@pytest.fixture(params=ADAPTERS, ids=lambda a: a.name)
+def adapter(request: pytest.FixtureRequest) -> Adapter:
+    result: Adapter = request.param
+    return result
+
+
+def test_inputs_are_not_mutated(adapter: Adapter) -> None:
+    conversation = invented_conversation(500)
+    before = copy.deepcopy(conversation)
+    adapter.tag(adapter.load(adapter.model_bytes()), conversation)
+    assert conversation == before
+
+
+def test_model_bytes_round_trip_to_identical_output(adapter: Adapter) -> None:
+    data = adapter.model_bytes()
+    artifact = ModelArtifact.from_bytes(data)
+    again = ModelArtifact.from_bytes(artifact.to_bytes())
+    assert again.to_bytes() == data
+    conversation = invented_conversation(501)
+    assert adapter.tag(adapter.load(data), conversation) == adapter.tag(
+        adapter.load(again.to_bytes()), conversation)
+
+
+def test_deterministic(adapter: Adapter) -> None:
+    model = adapter.load(adapter.model_bytes())
+    conversation = invented_conversation(502)
+    assert adapter.tag(model, conversation) == adapter.tag(model, conversation)
+
+
+def test_unseen_words_and_missing_or_present_times(adapter: Adapter) -> None:
+    model = adapter.load(adapter.model_bytes())
+    strange = Conversation(
+        id="strange", corpus="invented",
+        words=tuple(Word(text=t, speaker="A") for t in
+                    ("zyzzyva", "qwfp", "zyzzyva", "", "ünïcode", "a" * 200)),
+        utterances=(), labels=None)
+    assert len(adapter.tag(model, strange)) >= len(strange.words)
+    timed = invented_conversation(503, times=True)
+    assert adapter.tag(model, timed)
+
+
+# -- the streaming decoder's finality guarantee ------------------------------------------
+
+_VOCAB = ["i", "the", "uh", "think", "we", "went", "to", "store", "kids", "mean", "well"]
+
+_event = st.one_of(
+    st.tuples(st.just("append"), st.sampled_from(_VOCAB), st.booleans()),
+    st.tuples(st.just("replace"), st.sampled_from(_VOCAB), st.integers(0, 8)),
+    st.tuples(st.just("withdraw"), st.just(""), st.integers(0, 8)),
+    st.tuples(st.just("close"), st.just(""), st.just(0)),
+)
+
+
+@settings(max_examples=60, deadline=None)
+@given(events=st.lists(_event, max_size=60), lag=st.integers(0, 7))
+def test_a_final_label_never_changes(events: Sequence[tuple[str, str, object]],
+                                     lag: int) -> None:
+    model = _load_words(tiny_artifact_bytes())
+    assert isinstance(model, WordModel)
+    decoder = ChannelDecoder(model, DecoderConfig(lag=lag))
+    final: set[int] = set()
+    reported: set[int] = set()
+    withdrawn: set[int] = set()
+    next_key = 0
+
+    def check(states: list[object]) -> None:
+        for state in states:
+            key = state.key
+            assert key not in final, f"word {key} reported again after it was final"
+            assert key not in withdrawn
+            reported.add(key)
+            if state.final:
+                final.add(key)
+
+    for kind, text, arg in events:
+        if kind == "append":
+            check(decoder.append(next_key, Word(text=text, speaker="A"),
+                                 after_other_speaker=bool(arg)))
+            next_key += 1
+        elif kind == "close":
+            check(decoder.close_utterance())
+        else:
+            key = next_key - 1 - int(str(arg)) if next_key else -1
+            is_open = key in decoder.open_keys
+            try:
+                if kind == "replace":
+                    check(decoder.replace(key, Word(text=text, speaker="A")))
+                else:
+                    check(decoder.withdraw(key))
+                    withdrawn.add(key)
+            except EventError:
+                assert not is_open
+            else:
+                assert is_open
+    check(decoder.finish())
+    assert final == set(range(next_key)) - withdrawn
