@@ -97,7 +97,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.set_defaults(handler=run)
 
 
-def load_script(corpus: Path | None, split: str) -> tuple[WordScript, str]:
+def load_script(corpus: Path | None, split: str, *, limit: int = _SCRIPT_WORDS
+                ) -> tuple[WordScript, str]:
     """The word script from a corpus split, and a description of where it came from.
 
     Raises
@@ -121,7 +122,7 @@ def load_script(corpus: Path | None, split: str) -> tuple[WordScript, str]:
         if words:
             transcripts.append(words)
             total += len(words)
-        if total >= _SCRIPT_WORDS:
+        if total >= limit:
             break
     if not transcripts:
         raise InputError(f"{corpus} split {split!r}: holds no words")
@@ -188,7 +189,8 @@ def run(args: argparse.Namespace) -> int:
         args.channels = min(args.channels, int(_SMOKE["channels"]))
     ramp = args.ramp if args.ramp is not None else min(10.0, args.conversations / 100)
     token = args.token or os.environ.get("MIDSTREAM_TOKEN") or None
-    script, source = load_script(args.corpus, args.split)
+    script, source = load_script(args.corpus, args.split,
+                                 limit=2_000 if args.smoke else _SCRIPT_WORDS)
     if args.client_cpu is not None:
         try:
             os.sched_setaffinity(0, {args.client_cpu})

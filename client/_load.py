@@ -4,7 +4,9 @@
 one word per event at ``rate`` words per second for ``seconds`` seconds, taken from real
 transcripts (:class:`WordScript`). For every word it times the interval from just before the
 write to the first update naming that word's id (the word's first hypothesis), and it counts
-errors by gRPC status code. The ``describe`` workload sends a trivial ``DescribeModels`` call at
+errors by gRPC status code (plus ``OPEN_TIMEOUT`` and ``SETTLE_TIMEOUT``, the generator's own:
+a conversation not opened in time, or one whose last updates had not arrived 10 s after the
+window). The ``describe`` workload sends a trivial ``DescribeModels`` call at
 the same rate instead: the transport round trip against which tagging is compared.
 
 :class:`ProcessProbe` reads a local server's CPU time and resident memory from ``/proc``.
@@ -39,8 +41,10 @@ Workload = Literal["converse", "describe"]
 PERCENTILES: tuple[int, ...] = (50, 95, 99)
 #: Status name counted for a conversation that never got its ``welcome`` in time.
 OPEN_TIMEOUT = "OPEN_TIMEOUT"
+#: Counted for a conversation whose updates had not all come back in time after the window.
+SETTLE_TIMEOUT = "SETTLE_TIMEOUT"
 #: Seconds a conversation waits for updates of its last words after it stopped sending.
-_SETTLE_S = 5.0
+_SETTLE_S = 10.0
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -337,11 +341,11 @@ async def _converse(run: _Run, stub: pb_grpc.MidstreamStub, number: int) -> None
             due += interval
         await call.write(pb.ClientEvent(close=pb.CloseConversation()))
         await call.done_writing()
-        await asyncio.wait_for(reader, timeout=_SETTLE_S + config.seconds)
+        await asyncio.wait_for(reader, timeout=_SETTLE_S)
     except grpc.aio.AioRpcError as exc:
         run.error(exc.code().name)
     except TimeoutError:
-        run.error("DEADLINE_EXCEEDED")
+        run.error(SETTLE_TIMEOUT)
     finally:
         if reader is not None and not reader.done():
             reader.cancel()
@@ -419,6 +423,119 @@ async def run_load(config: LoadConfig, script: WordScript, *,
         result.client_cpu_s = time.process_time() - cpu
         result.server_after = probe.sample() if probe is not None else None
         await asyncio.gather(*tasks, return_exceptions=False)
+    finally:
+        for channel in channels:
+            await channel.close()
+    return result
+
+
+@dataclass(slots=True, kw_only=True)
+class HoldResult:
+    """Server memory with ``opened`` conversations live and idle, each after a few words."""
+
+    conversations: int
+    words_each: int
+    opened: int = 0
+    errors: Counter[str] = field(default_factory=Counter)
+    before: ProcessSample | None = None
+    held: ProcessSample | None = None
+
+    def summary(self) -> dict[str, Any]:
+        """The figures as JSON-ready values (memory in bytes)."""
+        out: dict[str, Any] = {
+            "conversations": self.conversations, "words_each": self.words_each,
+            "opened": self.opened, "errors": dict(sorted(self.errors.items())),
+            "error_count": sum(self.errors.values()),
+        }
+        if self.before is not None and self.held is not None:
+            delta = self.held.rss_bytes - self.before.rss_bytes
+            out |= {"rss_before_bytes": self.before.rss_bytes,
+                    "rss_held_bytes": self.held.rss_bytes, "rss_delta_bytes": delta,
+                    "bytes_per_conversation": round(delta / max(self.opened, 1))}
+        return out
+
+
+async def hold_conversations(config: LoadConfig, script: WordScript, *, words_each: int,
+                             probe: ProcessProbe, warm_up: int = 8,
+                             settle_s: float = 2.0) -> HoldResult:
+    """Open ``config.conversations`` conversations, send each a few words, and hold them idle.
+
+    Each conversation sends ``words_each`` words one event at a time, waiting for each word's
+    update, then stays open without sending. Once all are idle (and ``settle_s`` seconds more,
+    for the server to finish its work) the server's RSS is sampled; then all are closed.
+    ``warm_up`` conversations are run to the end first, so allocations made once per server
+    (first stream, first decode) are not charged to the measured ones. ``config.rate``,
+    ``seconds`` and ``workload`` are not used.
+    """
+    result = HoldResult(conversations=config.conversations, words_each=words_each)
+    channels = [_channel(config, i) for i in range(config.channels)]
+    metadata: tuple[tuple[str, str], ...] = (
+        (("authorization", f"Bearer {config.token}"),) if config.token else ())
+    release = asyncio.Event()
+    idle = 0
+    all_idle = asyncio.Event()
+
+    async def one(stub: pb_grpc.MidstreamStub, number: int, *, hold: bool) -> None:
+        nonlocal idle
+        call = stub.Converse(metadata=metadata)
+        counted = False
+        try:
+            await call.write(pb.ClientEvent(open=pb.OpenConversation()))
+            welcome = await call.read()
+            if welcome is grpc.aio.EOF or welcome.WhichOneof("body") != "welcome":
+                raise grpc.aio.AioRpcError(grpc.StatusCode.UNKNOWN, grpc.aio.Metadata(),
+                                           grpc.aio.Metadata(), details="no welcome")
+            if hold:
+                result.opened += 1
+            for index in range(words_each):
+                speaker, text = script.word(number, index)
+                await call.write(pb.ClientEvent(words=pb.WordBatch(words=[
+                    pb.SpokenWord(word_id=f"w{index}", speaker=speaker, text=text)])))
+                message = await call.read()
+                if message is grpc.aio.EOF:
+                    raise grpc.aio.AioRpcError(grpc.StatusCode.UNKNOWN, grpc.aio.Metadata(),
+                                               grpc.aio.Metadata(), details="stream ended")
+            if hold:
+                idle += 1
+                counted = True
+                if idle == config.conversations:
+                    all_idle.set()
+                await release.wait()
+            await call.write(pb.ClientEvent(close=pb.CloseConversation()))
+            await call.done_writing()
+            while await call.read() is not grpc.aio.EOF:
+                pass
+        except grpc.aio.AioRpcError as exc:
+            if hold:
+                result.errors[exc.code().name] += 1
+        finally:
+            if hold and not counted:
+                idle += 1
+                if idle == config.conversations:
+                    all_idle.set()
+            call.cancel()
+
+    try:
+        stubs = [pb_grpc.MidstreamStub(c) for c in channels]  # type: ignore[no-untyped-call]
+        await asyncio.gather(*(one(stubs[0], -1 - i, hold=False) for i in range(warm_up)))
+        await asyncio.sleep(settle_s)
+        result.before = probe.sample()
+        spacing = config.ramp_s / config.conversations
+        tasks = []
+        for number in range(config.conversations):
+            tasks.append(asyncio.ensure_future(one(stubs[number % len(stubs)], number,
+                                                   hold=True)))
+            if spacing > 0:
+                await asyncio.sleep(spacing)
+        try:
+            async with asyncio.timeout(config.ramp_s + 60.0):
+                await all_idle.wait()
+        except TimeoutError:
+            result.errors[OPEN_TIMEOUT] += config.conversations - idle
+        await asyncio.sleep(settle_s)
+        result.held = probe.sample()
+        release.set()
+        await asyncio.gather(*tasks)
     finally:
         for channel in channels:
             await channel.close()

@@ -1,0 +1,86 @@
+"""What the service and memory benchmark scripts share: paths, models, the machine, a server.
+
+Not a benchmark itself. The scripts import it from their own folder.
+"""
+
+from __future__ import annotations
+
+import os
+import platform
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any
+
+REPO = Path(__file__).resolve().parent.parent
+WEIGHTS = REPO / "models" / "weights"
+
+# Trains small real models from a few SwDA train conversations, in its own process (the CRF
+# trainer forks, which must not happen in a process that already runs gRPC).
+_TRAIN_TINY = """
+import itertools, sys
+from pathlib import Path
+from midstream.corpora import read_corpus
+from midstream.models._artifact import save_artifact
+from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
+from midstream.models._train_words import WordTrainingConfig, train_word_artifact
+swda, out = Path(sys.argv[1]), Path(sys.argv[2])
+conversations = list(itertools.islice(read_corpus(swda, split="train"), 12))
+save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=30)),
+              out / "words.msm")
+save_artifact(train_function_model(conversations, FunctionTrainingOptions(max_iterations=30)),
+              out / "functions.msm")
+"""
+
+
+def corpora_root() -> Path:
+    """``$MIDSTREAM_CORPORA`` or ``../shared/corpora`` beside the checkout."""
+    override = os.environ.get("MIDSTREAM_CORPORA")
+    return Path(override) if override else REPO.parent / "shared" / "corpora"
+
+
+def models_folder(given: Path | None, tiny: Path | None) -> tuple[Path, str]:
+    """The model folder to serve, and how it was chosen.
+
+    ``given`` wins; else the shipped weights when present; else tiny models trained into
+    ``tiny`` (once: an existing folder with both files is reused).
+    """
+    if given is not None:
+        return given, f"models from {given}"
+    if any(WEIGHTS.glob("*.msm")):
+        return WEIGHTS, "the shipped models (models/weights)"
+    if tiny is None:
+        raise SystemExit("no shipped models in models/weights: pass --models DIR, or "
+                         "--train-tiny DIR to train small ones from SwDA train")
+    if not ((tiny / "words.msm").is_file() and (tiny / "functions.msm").is_file()):
+        tiny.mkdir(parents=True, exist_ok=True)
+        subprocess.run([sys.executable, "-c", _TRAIN_TINY, str(corpora_root() / "swda"),
+                        str(tiny)], check=True)
+    return tiny, (f"tiny models trained on 12 SwDA train conversations ({tiny}); "
+                  "the shipped models were not available")
+
+
+def machine() -> dict[str, Any]:
+    """The machine and its load, for the report."""
+    model = "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text(encoding="utf-8").splitlines():
+            if line.startswith("model name"):
+                model = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    return {
+        "nproc": os.cpu_count(),
+        "cpus_usable": len(os.sched_getaffinity(0)),
+        "cpu_model": model,
+        "python": platform.python_version(),
+        "platform": platform.platform(),
+        "loadavg": os.getloadavg(),
+    }
+
+
+def pin_self(core: int | None) -> None:
+    """Pin this process to one core (the load generator's), when the machine has it."""
+    if core is not None and core in os.sched_getaffinity(0):
+        os.sched_setaffinity(0, {core})

@@ -1,0 +1,206 @@
+"""Find how many live conversations one server core carries at a word rate, within a latency budget.
+
+The server (``midstream serve``) runs pinned to one core and this load generator on another.
+For each step N (default 100, 250, 500, 1000, 1500) a fresh server gets N concurrent
+conversations of SwDA val words at ``--rate`` words/s each for ``--seconds`` seconds; a step
+passes when the p99 latency from a word's send to its first hypothesis is within ``--p99-ms``
+and nothing failed. Stepping stops at the first failure. Two baselines are measured in the
+same run, so the headline figures are ratios, not machine-dependent times:
+
+* transport: the same N callers making one trivial ``DescribeModels`` call per would-be word
+  on the same server (what a round trip through gRPC costs without tagging);
+* engine: the conversation engine alone, in this process on the server's core, fed the same
+  words (how many words/s the models manage without the service around them).
+
+    .venv/bin/python scripts/bench_service.py                       # full: 60 s per step
+    .venv/bin/python scripts/bench_service.py --quick               # 15 s steps
+    .venv/bin/python scripts/bench_service.py --smoke --json out.json
+
+Absolute figures depend on the machine and on what else runs on it (see the load average
+printed first); compare ratios.
+"""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import json
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+from _benchkit import corpora_root, machine, models_folder, pin_self
+from midstream._types import Word
+from midstream.client._cmd_bench import load_script, spawn_server
+from midstream.client._load import LoadConfig, ProcessProbe, WordScript, run_load
+from midstream.models import ModelBundle
+
+_FULL_STEPS: tuple[int, ...] = (100, 250, 500, 1000, 1500)
+_QUICK_STEPS: tuple[int, ...] = (50, 100, 250, 500, 1000)
+
+
+def engine_rate(models: Path, script: WordScript, *, words: int, conversations: int = 50
+                ) -> dict[str, Any]:
+    """Words per CPU second of the engine alone, interleaving ``conversations`` engines."""
+    bundle = ModelBundle.load_directory(models)
+    engines = [bundle.new_engine() for _ in range(conversations)]
+    feed = []
+    for index in range(words):
+        number = index % conversations
+        speaker, text = script.word(number, index // conversations)
+        feed.append((engines[number], f"w{index}", Word(text=text, speaker=speaker)))
+    cpu = time.process_time()
+    wall = time.perf_counter()
+    for engine, word_id, word in feed:
+        engine.add_word(word_id, word)
+    cpu = time.process_time() - cpu
+    wall = time.perf_counter() - wall
+    return {"words": words, "conversations": conversations, "cpu_s": round(cpu, 3),
+            "wall_s": round(wall, 3), "words_per_cpu_s": round(words / cpu, 1),
+            "cpu_ms_per_word": round(1000 * cpu / words, 4)}
+
+
+def one_step(args: argparse.Namespace, models: Path, script: WordScript, n: int
+             ) -> dict[str, Any]:
+    """One step: a fresh pinned server, the tagging load, then the transport baseline."""
+    ramp = min(10.0, n / 100)
+    with spawn_server(models=models, cpu=args.server_core, live=max(256, n),
+                      token=None) as (target, pid):
+        probe = ProcessProbe(pid)
+        load = asyncio.run(run_load(LoadConfig(
+            target=target, conversations=n, rate=args.rate, seconds=args.seconds, ramp_s=ramp,
+            channels=args.channels), script, probe=probe)).summary()
+        base = asyncio.run(run_load(LoadConfig(
+            target=target, conversations=n, rate=args.rate, seconds=args.baseline_seconds,
+            ramp_s=0.0, channels=args.channels, workload="describe"), script,
+            probe=probe)).summary()
+    server = load["server"]
+    answered = max(load["answered_in_window"], 1)
+    cpu_per_word = server["cpu_percent"] / 100 * load["measured_s"] / answered
+    base_answered = max(base["answered_in_window"], 1)
+    base_cpu_per_call = base["server"]["cpu_percent"] / 100 * base["measured_s"] / base_answered
+    passed = (load["latency_ms"]["p99"] <= args.p99_ms and load["error_count"] == 0
+              and load["opened"] == n and load["words_answered"] == load["words_sent"])
+    return {"conversations": n, "passed": passed, "load": load, "baseline": base,
+            "server_cpu_ms_per_word": round(1000 * cpu_per_word, 4),
+            "server_cpu_ms_per_baseline_call": round(1000 * base_cpu_per_call, 4),
+            "p99_ratio_to_baseline": round(load["latency_ms"]["p99"]
+                                           / max(base["latency_ms"]["p99"], 1e-3), 2),
+            "p50_ratio_to_baseline": round(load["latency_ms"]["p50"]
+                                           / max(base["latency_ms"]["p50"], 1e-3), 2)}
+
+
+def table(steps: list[dict[str, Any]]) -> list[str]:
+    """The steps as a Markdown table."""
+    lines = [
+        "| N | offered w/s | achieved w/s | p50 ms | p95 ms | p99 ms | errors | server CPU % "
+        "| server CPU ms/word | KiB/conv (open) | baseline p50 / p99 ms | p99 / baseline p99 "
+        "| generator CPU % | meets p99 |",
+        "|" + "---|" * 14,
+    ]
+    for s in steps:
+        load, base, server = s["load"], s["baseline"], s["load"]["server"]
+        lat, blat = load["latency_ms"], base["latency_ms"]
+        errors = ", ".join(f"{k} {v}" for k, v in load["errors"].items()) or "0"
+        lines.append(
+            f"| {s['conversations']} | {load['offered_wps']:.0f} | {load['achieved_wps']:.0f} "
+            f"| {lat['p50']:.1f} | {lat['p95']:.1f} | {lat['p99']:.1f} | {errors} "
+            f"| {server['cpu_percent']:.0f} | {s['server_cpu_ms_per_word']:.3f} "
+            f"| {server['bytes_per_open_conversation'] / 1024:.1f} "
+            f"| {blat['p50']:.1f} / {blat['p99']:.1f} | {s['p99_ratio_to_baseline']:.1f}x "
+            f"| {load['client_cpu_percent']:.0f} | {'yes' if s['passed'] else 'no'} |")
+    return lines
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--models", type=Path, default=None,
+                        help="model folder (default: the shipped models)")
+    parser.add_argument("--train-tiny", type=Path, default=None, metavar="DIR",
+                        help="when no models are shipped, train small ones into DIR")
+    parser.add_argument("--corpus", type=Path, default=None,
+                        help="corpus of the words (default $MIDSTREAM_CORPORA/swda or "
+                             "../shared/corpora/swda)")
+    parser.add_argument("--split", default="val")
+    parser.add_argument("--steps", default=None,
+                        help="comma-separated conversation counts (default "
+                             f"{','.join(map(str, _FULL_STEPS))})")
+    parser.add_argument("--rate", type=float, default=3.0, help="words/s per conversation")
+    parser.add_argument("--seconds", type=float, default=60.0, help="seconds per step")
+    parser.add_argument("--baseline-seconds", type=float, default=20.0)
+    parser.add_argument("--p99-ms", type=float, default=50.0, help="latency budget (p99)")
+    parser.add_argument("--channels", type=int, default=4)
+    parser.add_argument("--server-core", type=int, default=0)
+    parser.add_argument("--client-core", type=int, default=1)
+    parser.add_argument("--engine-words", type=int, default=20_000)
+    parser.add_argument("--all-steps", action="store_true",
+                        help="run every step even after one fails")
+    parser.add_argument("--quick", action="store_true",
+                        help=f"15 s steps {','.join(map(str, _QUICK_STEPS))}, 10 s baselines")
+    parser.add_argument("--smoke", action="store_true",
+                        help="one 2 s step of 4 conversations (checks the setup)")
+    parser.add_argument("--json", type=Path, default=None, metavar="FILE",
+                        help="also write every figure to FILE as JSON")
+    args = parser.parse_args()
+    steps = _FULL_STEPS
+    if args.quick:
+        steps, args.seconds, args.baseline_seconds = _QUICK_STEPS, 15.0, 10.0
+    if args.smoke:
+        steps, args.seconds, args.baseline_seconds, args.engine_words = (4,), 2.0, 2.0, 400
+    if args.steps:
+        steps = tuple(int(s) for s in args.steps.split(","))
+
+    models, models_note = models_folder(args.models, args.train_tiny)
+    corpus = args.corpus or corpora_root() / "swda"
+    script, source = load_script(corpus, args.split,
+                                 limit=2_000 if args.smoke else 50_000)
+    info = machine()
+    print(f"machine: {info['nproc']} CPUs ({info['cpu_model']}), Python {info['python']}, "
+          f"load average {' '.join(f'{x:.2f}' for x in info['loadavg'])}")
+    print(f"models: {models_note}")
+    print(f"words: {source}")
+
+    # The engine baseline runs on the core the server will use, before any server starts.
+    pin_self(args.server_core)
+    engine = engine_rate(models, script, words=args.engine_words)
+    print(f"engine alone: {engine['words_per_cpu_s']:,.0f} words per CPU second "
+          f"({engine['cpu_ms_per_word']:.3f} ms/word, {engine['conversations']} interleaved "
+          f"conversations)")
+    pin_self(args.client_core)
+
+    results: list[dict[str, Any]] = []
+    for n in steps:
+        print(f"step: {n} conversations x {args.rate:g} words/s for {args.seconds:g} s ...",
+              file=sys.stderr, flush=True)
+        results.append(one_step(args, models, script, n))
+        if not results[-1]["passed"] and not args.all_steps:
+            break
+    passing = [s["conversations"] for s in results if s["passed"]]
+    largest = max(passing) if passing else 0
+    print()
+    print("\n".join(table(results)))
+    print()
+    best = next((s for s in results if s["conversations"] == largest), results[0])
+    service_ratio = best["server_cpu_ms_per_word"] / max(engine["cpu_ms_per_word"], 1e-9)
+    transport_ratio = best["server_cpu_ms_per_word"] / max(
+        best["server_cpu_ms_per_baseline_call"], 1e-9)
+    print(f"largest N meeting p99 <= {args.p99_ms:g} ms at {args.rate:g} words/s with no "
+          f"errors: {largest}" + (" (none of the steps)" if not passing else ""))
+    print(f"server CPU per word / engine CPU per word: {service_ratio:.2f}x "
+          f"(at N={best['conversations']})")
+    print(f"server CPU per word / server CPU per DescribeModels call: {transport_ratio:.2f}x")
+    if args.json is not None:
+        args.json.write_text(json.dumps({
+            "machine": info, "models": models_note, "words": source, "rate": args.rate,
+            "seconds": args.seconds, "p99_budget_ms": args.p99_ms, "engine": engine,
+            "steps": results, "largest_passing": largest,
+            "service_to_engine_cpu_ratio": round(service_ratio, 3),
+            "service_to_transport_cpu_ratio": round(transport_ratio, 3),
+            "argv": sys.argv[1:],
+        }, indent=2, sort_keys=True), encoding="utf-8")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
