@@ -86,10 +86,21 @@ def _token(args: argparse.Namespace) -> str | None:
 
 
 def run(args: argparse.Namespace) -> int:
+    return asyncio.run(serve(build_config(args)))
+
+
+def build_config(args: argparse.Namespace) -> ServerConfig:
+    """The server configuration the parsed arguments ask for (reads the token variable).
+
+    Raises
+    ------
+    InputError
+        A negative grace, a non-positive idle timeout or live limit, an empty or unset token.
+    """
     if args.grace < 0 or args.idle_timeout <= 0 or args.max_live_conversations < 1:
         raise InputError("--grace must be >= 0, --idle-timeout > 0 and "
                          "--max-live-conversations >= 1")
-    config = ServerConfig(
+    return ServerConfig(
         host=args.host, port=args.port, models_dir=args.models,
         metrics_host=args.metrics_host, metrics_port=args.metrics_port,
         tls_cert=args.tls_cert, tls_key=args.tls_key, require_tls=args.require_tls,
@@ -97,10 +108,10 @@ def run(args: argparse.Namespace) -> int:
         limits=ServerLimits(idle_timeout_s=args.idle_timeout,
                             max_live_conversations=args.max_live_conversations),
     )
-    return asyncio.run(_serve(config))
 
 
-async def _serve(config: ServerConfig) -> int:
+async def serve(config: ServerConfig) -> int:
+    """Serve until SIGTERM or SIGINT, then drain within ``config.grace_s``; returns 0."""
     server = MidstreamServer(config)
     await server.start()
     print(f"serving on {config.host}:{server.port}", flush=True)

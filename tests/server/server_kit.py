@@ -142,8 +142,9 @@ CLOSE = pb.ClientEvent(close=pb.CloseConversation())
 class Caller:
     """The ingesting side of one ``Converse`` stream, driven event by event."""
 
-    def __init__(self, stub: pb_grpc.MidstreamStub) -> None:
-        self.call = stub.Converse()
+    def __init__(self, stub: pb_grpc.MidstreamStub,
+                 metadata: tuple[tuple[str, str], ...] = ()) -> None:
+        self.call = stub.Converse(metadata=metadata)
         self.updates: list[pb.Update] = []
 
     async def open(self, conversation_id: str = "") -> str:

@@ -1,0 +1,100 @@
+"""``midstream serve`` in a subprocess: SIGTERM drains live conversations before exiting."""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import os
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+import grpc
+import pytest
+from midstream import InputError
+from midstream.client import _cmd_serve
+from midstream.server import ServerConfig
+from midstream.wire import midstream_pb2 as pb
+from midstream.wire import midstream_pb2_grpc as pb_grpc
+from server_kit import (  # noqa: F401 - fixtures are found by name
+    Caller,
+    models_dir_fixture,
+    spoken,
+    words_event,
+)
+
+
+def _serve(*args: str, env: dict[str, str] | None = None) -> subprocess.Popen[str]:
+    return subprocess.Popen(
+        [sys.executable, "-m", "midstream.client._cli", "serve", "--port", "0", *args],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        env={**os.environ, **(env or {})},
+    )
+
+
+async def test_sigterm_finalises_every_conversation_before_exit(models_dir: Path) -> None:
+    process = _serve("--models", str(models_dir), "--grace", "5", "--token-env",
+                     env={"MIDSTREAM_TOKEN": "t0ken"})
+    try:
+        assert process.stdout is not None
+        line = await asyncio.wait_for(asyncio.to_thread(process.stdout.readline), 60)
+        assert line.startswith("serving on 127.0.0.1:"), line
+        port = int(line.rsplit(":", 1)[1])
+        auth = (("authorization", "Bearer t0ken"),)
+        async with grpc.aio.insecure_channel(f"127.0.0.1:{port}") as channel:
+            stub = pb_grpc.MidstreamStub(channel)  # type: ignore[no-untyped-call]
+            caller = Caller(stub, auth)
+            conversation = await caller.open()
+            for i, text in enumerate(["well", "i", "i", "think", "so"]):
+                await caller.send(words_event(spoken(f"w{i}", text, start=float(i))))
+            request = pb.FollowRequest(conversation_id=conversation, from_seq=1)
+            follow_call = stub.Follow(request, metadata=auth)
+            seen: list[pb.ServerMessage] = [await follow_call.read() for _ in caller.updates]
+            process.send_signal(signal.SIGTERM)
+            final = await asyncio.wait_for(caller.call.read(), 10)
+            ended = await caller.call.read()
+            assert final.update.conversation_final
+            assert ended.ended.reason == pb.END_REASON_SERVER_SHUTDOWN
+            while (message := await follow_call.read()) is not grpc.aio.EOF:
+                seen.append(message)
+        assert [m.update for m in seen[:-1]] == [*caller.updates, final.update]
+        assert seen[-1].ended.reason == pb.END_REASON_SERVER_SHUTDOWN
+        finals = {w.word_id: w.final for m in seen[:-1] for w in m.update.words}
+        assert len(finals) == 5 and all(finals.values())
+        _, stderr = await asyncio.to_thread(process.communicate, timeout=15)
+        assert process.returncode == 0, stderr
+        assert "draining" in stderr
+    finally:
+        if process.poll() is None:
+            process.kill()
+        process.communicate()
+
+
+def _config(*argv: str) -> ServerConfig:
+    # The command's own parser, without importing every other command.
+    parser = argparse.ArgumentParser(prog="midstream")
+    _cmd_serve.register(parser.add_subparsers())
+    return _cmd_serve.build_config(parser.parse_args(["serve", "--port", "0", *argv]))
+
+
+async def test_require_tls_without_certificate_refuses_to_start(models_dir: Path) -> None:
+    config = _config("--models", str(models_dir), "--require-tls")
+    with pytest.raises(InputError, match="refusing to start without TLS"):
+        await _cmd_serve.serve(config)
+
+
+@pytest.mark.parametrize("flags", [["--token-env"], ["--token-env", "NO_SUCH_VARIABLE_SET"],
+                                   ["--token", ""]])
+def test_token_must_be_given_and_non_empty(flags: list[str],
+                                           monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("MIDSTREAM_TOKEN", raising=False)
+    with pytest.raises(InputError, match="empty"):
+        _config(*flags)
+
+
+def test_token_is_read_from_the_named_variable(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("OUR_TOKEN", "abc")
+    config = _config("--token-env", "OUR_TOKEN", "--idle-timeout", "7")
+    assert config.token == "abc" and config.limits.idle_timeout_s == 7
+    assert "abc" not in repr(config)
