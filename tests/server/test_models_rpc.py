@@ -11,6 +11,7 @@ from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,
+    Caller,
     Running,
     bundle_fixture,
     models_dir_fixture,
@@ -71,6 +72,24 @@ async def test_describe_and_failed_reload_keep_the_models(running: Running,
     assert info.value.code() == grpc.StatusCode.INVALID_ARGUMENT
     assert await running.stub.DescribeModels(pb.DescribeModelsRequest()) == before
     # Still serving conversations with the old models.
+    replies = [m async for m in running.stub.Converse(iter([
+        open_event(), words_event(spoken("w1", "hello")), CLOSE]))]
+    assert replies[-1].ended.reason == pb.END_REASON_CLOSED
+
+
+async def test_reload_swaps_models_for_new_conversations_only(running: Running,
+                                                              models_dir: Path) -> None:
+    caller = Caller(running.stub)
+    await caller.open()
+    await caller.send(words_event(spoken("w1", "well", start=0.0)))
+    before = running.server.servicer.bundle
+    reply = await running.stub.ReloadModels(pb.ReloadModelsRequest(directory=str(models_dir)))
+    assert running.server.servicer.bundle is not before
+    assert reply == await running.stub.DescribeModels(pb.DescribeModelsRequest())
+    assert {m.name for m in reply.models} == {p.name for p in models_dir.glob("*.msm")}
+    # The live conversation keeps its engine and goes on; a new one runs on the new bundle.
+    await caller.send(words_event(spoken("w2", "yes", start=1.0)))
+    assert (await caller.close()).reason == pb.END_REASON_CLOSED
     replies = [m async for m in running.stub.Converse(iter([
         open_event(), words_event(spoken("w1", "hello")), CLOSE]))]
     assert replies[-1].ended.reason == pb.END_REASON_CLOSED
