@@ -18,7 +18,7 @@ from hypothesis import strategies as st
 from midstream import Conversation, Word
 from midstream._errors import EventError
 from midstream.models._artifact import ModelArtifact
-from midstream.models._decoder import ChannelDecoder, DecoderConfig
+from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import channel_sequences
 from word_kit import invented_conversation, tiny_artifact_bytes
@@ -118,7 +118,7 @@ def test_a_final_label_never_changes(events: Sequence[tuple[str, str, object]],
     withdrawn: set[int] = set()
     next_key = 0
 
-    def check(states: list[object]) -> None:
+    def check(states: list[TokenState]) -> None:
         for state in states:
             key = state.key
             assert key not in final, f"word {key} reported again after it was final"

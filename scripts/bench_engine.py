@@ -1,0 +1,174 @@
+"""Per-word cost of the streaming word decoder, against two baselines measured in the same run.
+
+For utterances of 10, 100 and 1,000 words streamed through one channel decoder (utterances
+closed one after another, as the engine does), every ``append`` is timed. On the very same
+windows the decoder decodes, two baselines run:
+
+- *floor*: python-crfsuite tagging the window (Viterbi plus marginals) with every feature
+  precomputed, i.e. the C library alone, no feature work and no bookkeeping;
+- *naive*: python-crfsuite re-tagging the whole utterance so far on every word (features
+  precomputed), what a decoder without a bounded window would pay.
+
+Figures are CPU time of this thread (``time.thread_time_ns``) because the machine may be
+shared; wall-clock medians are printed beside them. Targets (project targets, no source):
+median decoder cost at most 150 us per word, and the 1,000-word over 10-word ratio at most 1.3.
+
+    .venv/bin/python scripts/bench_engine.py [--model words.msm] [--words 3000]
+    .venv/bin/python scripts/bench_engine.py --smoke      # seconds, for CI
+
+Words come from SwDA's val split when the corpora are found (``$MIDSTREAM_CORPORA`` or
+``../shared/corpora``), otherwise from invented sentences.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import random
+import statistics
+import sys
+import time
+from collections.abc import Sequence
+from pathlib import Path
+
+from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceFunction, Word
+from midstream.corpora import read_corpus
+from midstream.models._decoder import ChannelDecoder, DecoderConfig
+from midstream.models._features import Token, features_at, token_of
+from midstream.models._train_words import WordTrainingConfig, train_word_artifact
+from midstream.models._wordmodel import WordModel, default_words_model_path
+
+_REPO = Path(__file__).resolve().parent.parent
+_SENTENCES = (
+    "we went to the store last week", "i think that is a good idea", "uh the kids like to play",
+    "my brother my brother lives in texas", "it was a really nice day",
+)
+
+
+def _invented_words(n: int, seed: int = 0) -> list[str]:
+    rng = random.Random(seed)
+    out: list[str] = []
+    while len(out) < n:
+        out += rng.choice(_SENTENCES).split()
+    return out[:n]
+
+
+def _corpus_words(n: int) -> list[str] | None:
+    root = Path(os.environ.get("MIDSTREAM_CORPORA", _REPO.parent / "shared" / "corpora"))
+    if not (root / "swda").is_dir():
+        return None
+    out: list[str] = []
+    for conversation in read_corpus(root / "swda", split="val"):
+        out += [w.text for w in conversation.words if w.speaker == conversation.speakers[0]]
+        if len(out) >= n:
+            return out[:n]
+    return out or None
+
+
+def _tiny_model() -> WordModel:
+    # Invented demo data: only for timing when no trained model is at hand.
+    conversations = []
+    for seed in range(6):
+        rng = random.Random(seed)
+        words: list[Word] = []
+        utterances = []
+        for turn in range(20):
+            speaker = "AB"[turn % 2]
+            start = len(words)
+            words += [Word(text=t, speaker=speaker) for t in rng.choice(_SENTENCES).split()]
+            utterances.append(Utterance(speaker=speaker, words=tuple(range(start, len(words))),
+                                        function=UtteranceFunction.STATEMENT, fine_tag="sd",
+                                        fine_class="sd"))
+        labels = tuple(DisfluencyLabel.FILLER if w.text == "uh" else DisfluencyLabel.FLUENT
+                       for w in words)
+        conversations.append(Conversation(id=f"demo{seed}", corpus="demo", words=tuple(words),
+                                          utterances=tuple(utterances), labels=labels))
+    config = WordTrainingConfig(max_iterations=30, min_freq=1)
+    return WordModel.from_artifact(train_word_artifact(conversations, config))
+
+
+def _percentile(values: Sequence[int], q: float) -> float:
+    ordered = sorted(values)
+    return ordered[min(len(ordered) - 1, int(q * len(ordered)))] / 1000.0
+
+
+def _run(model: WordModel, texts: Sequence[str], length: int,
+         lag: int) -> dict[str, list[int]]:
+    """Stream ``texts`` as utterances of ``length`` words; time decoder and baselines."""
+    decoder = ChannelDecoder(model, DecoderConfig(lag=lag))
+    words = [Word(text=t, speaker="A") for t in texts]
+    tokens: list[Token] = [token_of(w) for w in words]
+    # Features precomputed for the baselines, on the decoder's view (all words so far).
+    cpu: dict[str, list[int]] = {"decoder": [], "floor": [], "naive": [], "decoder_wall": []}
+    utterance_start = 0
+    for key, word in enumerate(words):
+        wall0 = time.perf_counter_ns()
+        cpu0 = time.thread_time_ns()
+        decoder.append(key, word)
+        cpu["decoder"].append(time.thread_time_ns() - cpu0)
+        cpu["decoder_wall"].append(time.perf_counter_ns() - wall0)
+        # The same window the decoder just decoded: its held open words plus one before.
+        window = min(len(decoder.open_keys) + 1, key + 1)
+        lo = max(0, key + 1 - window - model.config.left)
+        known = tokens[lo : key + 1]
+        xseq = [dict.fromkeys(features_at(known, i, model.config), 1.0)
+                for i in range(len(known) - window, len(known))]
+        cpu0 = time.thread_time_ns()
+        model.tagger.tag_with_confidence(xseq)
+        cpu["floor"].append(time.thread_time_ns() - cpu0)
+        prefix = tokens[utterance_start : key + 1]
+        full = [dict.fromkeys(features_at(prefix, i, model.config), 1.0)
+                for i in range(len(prefix))] if length <= 100 or key % 10 == 0 else None
+        if full is not None:
+            cpu0 = time.thread_time_ns()
+            model.tagger.tag_with_confidence(full)
+            cpu["naive"].append(time.thread_time_ns() - cpu0)
+        if key + 1 - utterance_start >= length:
+            decoder.close_utterance()
+            utterance_start = key + 1
+    return cpu
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--model", type=Path, default=None,
+                        help="word model (.msm); default: the shipped one")
+    parser.add_argument("--words", type=int, default=3000, help="words per utterance length")
+    parser.add_argument("--lag", type=int, default=DecoderConfig().lag)
+    parser.add_argument("--smoke", action="store_true", help="a few hundred words, for CI")
+    args = parser.parse_args(argv)
+    n_words = 300 if args.smoke else args.words
+    path = args.model or default_words_model_path()
+    if path.exists() and not args.smoke:
+        model, source = WordModel.load(path), str(path)
+    else:
+        model, source = _tiny_model(), "tiny model on invented data"
+    texts = (None if args.smoke else _corpus_words(max(n_words, 1000))) or _invented_words(
+        max(n_words, 1000))
+    lengths = (10, 100, 1000)
+    print(f"model: {source}; {len(texts)} words per run; lag {args.lag}; CPU time per word (us)")
+    header = (f"{'utterance':>9} {'decoder':>8} {'p99':>8} {'wall':>8} {'floor':>8} "
+              f"{'naive':>8} {'dec/floor':>9} {'naive/dec':>9}")
+    print(header)
+    medians: dict[int, float] = {}
+    for length in lengths:
+        runs = max(n_words, length)
+        times = _run(model, texts[:runs] if len(texts) >= runs else
+                     (list(texts) * (runs // len(texts) + 1))[:runs], length, args.lag)
+        decoder = _percentile(times["decoder"], 0.5)
+        medians[length] = decoder
+        floor = _percentile(times["floor"], 0.5)
+        naive = _percentile(times["naive"], 0.5)
+        print(f"{length:>9} {decoder:>8.1f} {_percentile(times['decoder'], 0.99):>8.1f} "
+              f"{_percentile(times['decoder_wall'], 0.5):>8.1f} {floor:>8.1f} {naive:>8.1f} "
+              f"{decoder / floor:>9.2f} {naive / decoder:>9.2f}")
+    ratio = medians[1000] / medians[10]
+    print(f"ratio decoder median 1000-word / 10-word utterances: {ratio:.2f} (target <= 1.3)")
+    print(f"decoder median at 1000 words: {medians[1000]:.1f} us (target <= 150 us)")
+    mean_cpu = statistics.fmean([medians[k] for k in lengths])
+    print(f"mean of medians: {mean_cpu:.1f} us")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
