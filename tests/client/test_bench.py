@@ -1,0 +1,197 @@
+"""Smoke tests of the load generator, ``midstream bench`` and the benchmark scripts.
+
+They run for seconds against real servers with real models and check that the output is
+well formed (every key present, every number finite) and that the run did what it says (every
+word sent got a hypothesis, no errors); they never assert on timings.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any
+
+import pytest
+from client_kit import REPO, Served, models_dir, served
+from midstream._errors import InputError
+from midstream.client._cli import main
+from midstream.client._load import LoadConfig, ProcessProbe, WordScript, _distribution
+
+__all__ = ["models_dir", "served"]  # fixtures used here, re-exported for pytest
+
+_LOAD_KEYS = {
+    "target", "workload", "conversations", "rate_per_conversation", "offered_wps", "seconds",
+    "channels", "opened", "words_sent", "words_answered", "answered_in_window", "measured_s",
+    "achieved_wps", "latency_ms", "send_lag_ms", "errors", "error_count",
+    "client_cpu_percent", "server", "corpus",
+}
+_DISTRIBUTION_KEYS = {"p50", "p95", "p99", "max", "mean"}
+_SERVER_KEYS = {"cpu_percent", "rss_before_bytes", "rss_open_bytes", "rss_after_bytes",
+                "bytes_per_open_conversation", "bytes_per_conversation_after"}
+
+
+def _finite_numbers(value: Any) -> list[float]:
+    """Every number inside a JSON value."""
+    if isinstance(value, bool):
+        return []
+    if isinstance(value, int | float):
+        return [float(value)]
+    if isinstance(value, dict):
+        return [n for v in value.values() for n in _finite_numbers(v)]
+    if isinstance(value, list):
+        return [n for v in value for n in _finite_numbers(v)]
+    return []
+
+
+def _check_load(summary: dict[str, Any], *, local: bool) -> None:
+    assert summary.keys() >= _LOAD_KEYS
+    assert summary["latency_ms"].keys() == _DISTRIBUTION_KEYS
+    assert all(math.isfinite(n) for n in _finite_numbers(summary))
+    assert summary["opened"] == summary["conversations"]
+    assert summary["error_count"] == 0, summary["errors"]
+    assert summary["words_sent"] > 0
+    # Every word sent gets a hypothesis naming it (the Converse contract in midstream.proto).
+    assert summary["words_answered"] == summary["words_sent"]
+    assert summary["latency_ms"]["p50"] <= summary["latency_ms"]["p99"] \
+        <= summary["latency_ms"]["max"]
+    if local:
+        assert summary["server"].keys() == _SERVER_KEYS
+        assert summary["server"]["rss_before_bytes"] > 0
+    else:
+        assert summary["server"] is None
+
+
+def _bench(argv: list[str], capsys: pytest.CaptureFixture[str]) -> dict[str, Any]:
+    assert main(["bench", "--smoke", "--json", *argv]) == 0
+    out: dict[str, Any] = json.loads(capsys.readouterr().out)
+    return out
+
+
+@pytest.mark.corpus
+def test_bench_against_a_running_server(served: Served, swda_dir: Path,
+                                        capsys: pytest.CaptureFixture[str]) -> None:
+    summary = _bench(["--target", served.target, "--corpus", str(swda_dir)], capsys)
+    _check_load(summary, local=False)
+    assert summary["workload"] == "converse"
+    assert summary["conversations"] == 4
+
+
+@pytest.mark.corpus
+def test_bench_baseline_and_server_pid(served: Served, swda_dir: Path,
+                                       capsys: pytest.CaptureFixture[str]) -> None:
+    # The served fixture runs in this process, so its pid is ours.
+    summary = _bench(["--target", served.target, "--corpus", str(swda_dir), "--baseline",
+                      "--server-pid", str(os.getpid())], capsys)
+    _check_load(summary, local=True)
+    assert summary["workload"] == "describe"
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_spawns_its_own_server(models_dir: Path, swda_dir: Path,
+                                     capsys: pytest.CaptureFixture[str]) -> None:
+    summary = _bench(["--spawn", "--models", str(models_dir), "--corpus", str(swda_dir)],
+                     capsys)
+    _check_load(summary, local=True)
+
+
+@pytest.mark.corpus
+def test_human_report_names_latency_and_errors(served: Served, swda_dir: Path,
+                                               capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["bench", "--smoke", "--target", served.target, "--corpus",
+                 str(swda_dir)]) == 0
+    out = capsys.readouterr().out
+    assert "latency ms   p50" in out
+    assert "errors       none" in out
+
+
+def test_no_corpus_is_a_clear_error(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                    capsys: pytest.CaptureFixture[str]) -> None:
+    monkeypatch.setenv("MIDSTREAM_CORPORA", str(tmp_path))
+    assert main(["bench", "--smoke", "--target", "127.0.0.1:9"]) == 1
+    assert "--corpus" in capsys.readouterr().err
+
+
+def test_unreachable_server_is_reported_not_hung(swda_dir: Path,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    # Port 9 (discard) has no gRPC server: every open fails with UNAVAILABLE, exit code 3.
+    assert main(["bench", "--smoke", "--target", "127.0.0.1:9", "--corpus",
+                 str(swda_dir)]) == 3
+    captured = capsys.readouterr()
+    assert "UNAVAILABLE" in captured.err
+
+
+@pytest.mark.parametrize("field, value", [("conversations", 0), ("rate", 0.0),
+                                          ("rate", math.inf), ("seconds", -1.0),
+                                          ("channels", 0)])
+def test_load_config_refuses_bad_values(field: str, value: float) -> None:
+    with pytest.raises(InputError):
+        LoadConfig(**{"target": "x:1", "conversations": 1, field: value})  # type: ignore[arg-type]
+
+
+def test_word_script_cycles_from_each_conversation_offset() -> None:
+    script = WordScript([[("A", "a"), ("B", "b")], [("A", "c")]])
+    assert [script.word(0, k) for k in range(4)] == [("A", "a"), ("B", "b"), ("A", "c"),
+                                                     ("A", "a")]
+    assert script.word(1, 0) == ("A", "c")
+    assert script.word(2, 1) == ("B", "b")  # conversation 2 reuses transcript 0's offset
+    with pytest.raises(InputError):
+        WordScript([[], []])
+
+
+def test_percentiles_are_nearest_rank() -> None:
+    # Nearest-rank definition (common practice, no source): p-th percentile of n sorted values
+    # is the value at rank ceil(p/100 * n).
+    values = [k / 1000 for k in range(1, 101)]  # 1 .. 100 ms
+    assert _distribution(values) == {"p50": 50.0, "p95": 95.0, "p99": 99.0, "max": 100.0,
+                                     "mean": 50.5}
+    assert _distribution([]) == dict.fromkeys(("p50", "p95", "p99", "max", "mean"), 0.0)
+
+
+def test_process_probe_reads_proc() -> None:
+    sample = ProcessProbe(os.getpid()).sample()
+    assert sample.rss_bytes > 1024 * 1024
+    assert sample.cpu_s > 0
+    with pytest.raises(InputError, match="/proc/"):
+        ProcessProbe(2**22 + 12345).sample()
+
+
+def _script(name: str, *argv: str, tmp_path: Path) -> dict[str, Any]:
+    out = tmp_path / f"{name}.json"
+    done = subprocess.run([sys.executable, str(REPO / "scripts" / name), "--smoke", "--json",
+                           str(out), *argv], capture_output=True, text=True, timeout=240,
+                          check=False)
+    assert done.returncode == 0, done.stderr
+    result: dict[str, Any] = json.loads(out.read_text(encoding="utf-8"))
+    assert all(math.isfinite(n) for n in _finite_numbers(result))
+    assert {"nproc", "cpu_model", "python", "loadavg"} <= result["machine"].keys()
+    return result
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_service_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
+    result = _script("bench_service.py", "--models", str(models_dir), "--corpus",
+                     str(swda_dir), tmp_path=tmp_path)
+    assert result["engine"]["words_per_cpu_s"] > 0
+    (step,) = result["steps"]
+    _check_load(step["load"] | {"corpus": ""}, local=True)
+    assert step["baseline"]["workload"] == "describe"
+    assert step["baseline"]["words_answered"] == step["baseline"]["words_sent"] > 0
+    assert result["largest_passing"] in (0, step["conversations"])
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_memory_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
+    result = _script("bench_memory.py", "--models", str(models_dir), "--corpus",
+                     str(swda_dir), tmp_path=tmp_path)
+    assert result["service"]["opened"] == 20
+    assert result["service"]["error_count"] == 0
+    assert result["service"]["rss_held_bytes"] > 0
+    # Twenty engines holding five words each allocate something: the measure is not empty.
+    assert result["engine"]["bytes_per_engine"] > 0
