@@ -71,18 +71,21 @@ _FILE_NAME = re.compile(r"^sw_\d+_(\d+)\.utt$")
 _SPLIT_NAME = re.compile(r"[A-Za-z0-9_-]{1,64}")
 
 # One lexer pass over a line's text, as strings (findall is much faster than match objects).
-# Alternatives are tried in order at each position, so multi-character marks come before words.
-# Comments and ``<<`` spans a transcriber left unterminated run to the end of the line. Characters
-# no alternative matches (a lone ">") are skipped.
+# Alternatives are tried in order at each position, so multi-character marks come before words;
+# comments and non-speech match outside the group and come back as "". Comments and ``<<`` spans
+# a transcriber left unterminated run to the end of the line. Characters no alternative matches
+# (a lone "<" or ">") are skipped.
 _TOKEN = re.compile(
     r"""
       \*\[\[.*?(?:\]\]|$)         # *[[transcriber comment]] ("[[" without "*" is two brackets)
     | <<[^>]*(?:>>|$)             # <<long pause>>
     | <[^<>]*>                    # <laughter>, <Very faint>
-    | \{[FEDCA](?![^\s,}])        # {F {E {D {C {A
-    | \{[^{}]*\}?                 # {faint}: an untyped brace is a comment
-    | -/ | [\[\]{}+/<]
-    | [^\s\[\]{}+/<>-]+(?:-(?!/)[^\s\[\]{}+/<>-]*)* | -
+    | \{(?![FEDCA](?![^\s,}]))[^{}]*\}?  # {faint}: an untyped brace is a comment
+    | (                           # the one group: what findall returns ("" for the above)
+        \{[FEDCA](?![^\s,}])     # {F {E {D {C {A
+      | -/ | [\[\]{}+/]
+      | [^\s\[\]{}+/<>-]+(?:-(?!/)[^\s\[\]{}+/<>-]*)* | -
+      )
     """,
     re.VERBOSE,
 )
@@ -98,8 +101,6 @@ class _Mark(Enum):
     CURLY = "{"
 
 
-#: First characters of tokens that are never words: comments, non-speech, untyped braces.
-_SKIP_START = frozenset("*<{")
 FLUENT = DisfluencyLabel.FLUENT
 
 _CURLY_OPEN = {
@@ -174,7 +175,7 @@ class _Builder:
         for token in _TOKEN.findall(text):
             mark = _MARKS.get(token)
             if mark is None:
-                if token[0] in _SKIP_START and not (token[0] == "*" and token[:3] != "*[["):
+                if not token:  # a comment or non-speech span
                     continue
                 word = _word(token, speaker)
                 if word is None:
