@@ -75,8 +75,7 @@ class CrfWeights:
 
     The score of a label sequence ``y`` for items with attribute sets ``A_t`` is
     ``sum_t sum_{a in A_t} state[a, y_t] + sum_{t>0} transitions[y_{t-1}, y_t]`` (crfsuite's
-    first-order CRF has no start or end transitions). Attributes with no non-zero weight are
-    left out.
+    first-order CRF has no start or end transitions). Attributes without a weight are left out.
     """
 
     labels: tuple[str, ...]
@@ -127,26 +126,34 @@ class CrfTagger:
         return self._data
 
     def weights(self) -> CrfWeights:
-        """The model's weights as arrays (reads crfsuite's dump; a fraction of a second)."""
-        with self._lock:
-            info = self._tagger.info()
+        """The model's weights as arrays, read straight from the checked model bytes."""
+        label_names, attribute_names, features = _read_features(self._data)
         index = {label: k for k, label in enumerate(self._labels)}
+        try:
+            label_index = np.array([index[name] for name in label_names], dtype=np.int64)
+        except KeyError as exc:
+            raise ModelError(f"CRF model corrupt: label {exc} not known to crfsuite") from exc
+        kinds, sources, targets, values = (
+            features["type"], features["src"], features["dst"], features["w"]
+        )
+        state = kinds == _STATE_FEATURE
+        transition = kinds == _TRANSITION_FEATURE
+        if (sources[state] >= len(attribute_names)).any() or (
+            targets.max(initial=0) >= len(label_names)
+            or (sources[transition] >= len(label_names)).any()
+        ):
+            raise ModelError("CRF model corrupt: a feature refers past its string tables")
         transitions = np.zeros((len(self._labels), len(self._labels)))
-        for (source, target), weight in info.transitions.items():
-            transitions[index[source], index[target]] = weight
-        attributes: dict[str, int] = {}
-        rows: list[int] = []
-        cols: list[int] = []
-        values: list[float] = []
-        for (attribute, label), weight in info.state_features.items():
-            row = attributes.setdefault(attribute, len(attributes))
-            rows.append(row)
-            cols.append(index[label])
-            values.append(weight)
-        state = np.zeros((len(attributes), len(self._labels)))
-        state[rows, cols] = values
+        transitions[label_index[sources[transition]], label_index[targets[transition]]] = (
+            values[transition]
+        )
+        # Keep only attributes that carry a weight, renumbered densely.
+        used, rows = np.unique(sources[state], return_inverse=True)
+        matrix = np.zeros((len(used), len(self._labels)))
+        matrix[rows, label_index[targets[state]]] = values[state]
+        attributes = {attribute_names[int(k)]: row for row, k in enumerate(used.tolist())}
         return CrfWeights(
-            labels=self._labels, attributes=attributes, state=state, transitions=transitions
+            labels=self._labels, attributes=attributes, state=matrix, transitions=transitions
         )
 
     def tag(self, xseq: Sequence[ItemFeatures]) -> list[str]:
@@ -179,6 +186,45 @@ class CrfTagger:
                 {label: float(self._tagger.marginal(label, t)) for label in self._labels}
                 for t in range(len(xseq))
             ]
+
+
+# crfsuite's feature chunk ("FEAT", size, count) then 20-byte records (crf1d_model.c).
+_FEATURE_RECORD = np.dtype([("type", "<u4"), ("src", "<u4"), ("dst", "<u4"), ("w", "<f8")])
+_STATE_FEATURE = 0
+_TRANSITION_FEATURE = 1
+
+
+def _read_features(data: bytes) -> tuple[list[str], list[str], npt.NDArray[np.void]]:
+    """Label names, attribute names and feature records of checked crfsuite model bytes."""
+    offsets = struct.unpack_from("<3I", data, 28)
+    features_at, labels_at, attributes_at = offsets
+    if features_at + 12 > len(data):
+        raise ModelError("CRF model corrupt: feature chunk outside the file")
+    magic, _size, count = struct.unpack_from("<4sII", data, features_at)
+    if magic != b"FEAT" or features_at + 12 + count * _FEATURE_RECORD.itemsize > len(data):
+        raise ModelError("CRF model corrupt: bad feature chunk")
+    features = np.frombuffer(data, _FEATURE_RECORD, count, features_at + 12)
+    return _read_strings(data, labels_at), _read_strings(data, attributes_at), features
+
+
+def _read_strings(data: bytes, start: int) -> list[str]:
+    """The id-ordered keys of a constant-quark database (crfsuite's cqdb.c layout)."""
+    if start + 24 > len(data):
+        raise ModelError("CRF model corrupt: string table outside the file")
+    magic, _size, _flag, _order, count, backward = struct.unpack_from("<4sIIIII", data, start)
+    if magic != b"CQDB" or start + backward + 4 * count > len(data):
+        raise ModelError("CRF model corrupt: bad string table")
+    names: list[str] = []
+    for k, offset in enumerate(np.frombuffer(data, "<u4", count, start + backward).tolist()):
+        at = start + offset
+        if offset == 0 or at + 8 > len(data):
+            raise ModelError(f"CRF model corrupt: string {k} missing")
+        value, size = struct.unpack_from("<iI", data, at)
+        if value != k or size == 0 or at + 8 + size > len(data):
+            raise ModelError(f"CRF model corrupt: string {k} malformed")
+        # Keys are stored with their terminating NUL.
+        names.append(data[at + 8 : at + 7 + size].decode("utf-8", errors="replace"))
+    return names
 
 
 def _items(xseq: Sequence[ItemFeatures]) -> list[dict[str, float]]:

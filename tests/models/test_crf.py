@@ -81,3 +81,18 @@ def test_artifact_checks(model_bytes: bytes) -> None:
     flipped[-100] ^= 0xFF
     with pytest.raises(ModelError, match="checksum"):
         ModelArtifact.from_bytes(bytes(flipped))
+
+
+def test_weights_read_from_bytes_match_crfsuites_own_dump(model_bytes: bytes) -> None:
+    # crfsuite's dump (through python-crfsuite's info()) is the outside reference here.
+    tagger = CrfTagger.from_bytes(model_bytes)
+    weights = tagger.weights()
+    info = tagger._tagger.info()
+    column = {label: k for k, label in enumerate(weights.labels)}
+    assert len(weights.attributes) == len({a for a, _ in info.state_features})
+    for (attribute, label), value in info.state_features.items():
+        row = weights.attributes[attribute]
+        assert weights.state[row, column[label]] == pytest.approx(value, abs=1e-6)
+    for (source, target), value in info.transitions.items():
+        assert weights.transitions[column[source], column[target]] == pytest.approx(
+            value, abs=1e-6)
