@@ -10,6 +10,7 @@ second ``conftest.py`` would clash with ``tests/conftest.py`` under mypy.
 
 from __future__ import annotations
 
+import asyncio
 import subprocess
 import sys
 from collections.abc import AsyncIterator, Awaitable, Callable
@@ -180,3 +181,11 @@ async def follow_all(stub: pb_grpc.MidstreamStub, conversation_id: str,
     if from_seq is not None:
         request.from_seq = from_seq
     return [m async for m in stub.Follow(request)]
+
+
+async def until_followers(running: Running, conversation_id: str, count: int) -> None:
+    """Wait (at most five seconds) until ``count`` followers are attached to a conversation."""
+    session = running.server.servicer.registry.get(conversation_id)
+    async with asyncio.timeout(5):
+        while session.follower_count < count:
+            await asyncio.sleep(0.01)

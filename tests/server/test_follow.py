@@ -20,6 +20,7 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
     running_fixture,
     spoken,
     start_server_fixture,
+    until_followers,
     words_event,
 )
 
@@ -40,7 +41,7 @@ async def test_two_followers_and_the_caller_see_identical_sequences(running: Run
     conversation = await caller.open()
     followers = [asyncio.create_task(follow_all(running.stub, conversation, from_seq=1))
                  for _ in range(2)]
-    await asyncio.sleep(0.2)  # both registered before the first word
+    await until_followers(running, conversation, 2)  # both attached before the first word
     await _stream_words(caller, 30)
     ended = await caller.close()
     seen = [await asyncio.wait_for(f, 10) for f in followers]

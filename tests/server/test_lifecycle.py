@@ -23,6 +23,7 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
     running_fixture,
     spoken,
     start_server_fixture,
+    until_followers,
     words_event,
 )
 
@@ -35,7 +36,7 @@ async def _watched(running: Running, words: int = 2) -> Followed:
     for i in range(words):
         await caller.send(words_event(spoken(f"w{i}", "so", start=float(i), speaker="AB"[i % 2])))
     follower = asyncio.create_task(follow_all(running.stub, conversation, from_seq=1))
-    await asyncio.sleep(0.1)
+    await until_followers(running, conversation, 1)
     return caller, follower
 
 
@@ -111,7 +112,7 @@ async def test_caller_vanishing_with_its_connection(start_server: ServerFactory)
     await caller.send(words_event(spoken("w0", "so", start=0.0)))
     await caller.send(words_event(spoken("w1", "we", start=1.0, speaker="B")))
     follower = asyncio.create_task(follow_all(running.stub, conversation, from_seq=1))
-    await asyncio.sleep(0.1)
+    await until_followers(running, conversation, 1)
     await own.close(grace=None)  # the whole connection goes, mid-stream
     await _ended_with(follower, caller, pb.END_REASON_CALLER_VANISHED, running)
 

@@ -21,6 +21,7 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
     running_fixture,
     spoken,
     start_server_fixture,
+    until_followers,
     words_event,
 )
 
@@ -99,7 +100,7 @@ async def test_refused_event_finalises_the_conversation_for_followers(running: R
     conversation = await caller.open()
     await caller.send(words_event(spoken("w1", "so", start=0.0)))
     follower = asyncio.create_task(follow_all(running.stub, conversation, from_seq=1))
-    await asyncio.sleep(0.1)
+    await until_followers(running, conversation, 1)
     await caller.call.write(_word(confidence=2.0))
     final = await caller.call.read()
     assert final.update.conversation_final and all(w.final for w in final.update.words)
