@@ -38,8 +38,8 @@ class ServerLimits:
     """Updates kept per conversation for followers to resume from."""
     history_revisions: int = 65536
     """Published word and utterance states kept per conversation for ``GetRevisions``."""
-    snapshot_states: int = 20000
-    """Latest word and utterance states kept per conversation for snapshots; oldest go first."""
+    snapshot_states: int = 10000
+    """Latest word states, and latest utterance states, kept per conversation for snapshots."""
     max_followers_per_conversation: int = 32
     """Most ``Follow`` streams on one conversation at once."""
     follower_queue: int = 1024
@@ -52,7 +52,7 @@ class ServerLimits:
     """How long an ended conversation stays for late followers and ``GetRevisions``."""
     max_ended_conversations: int = 1024
     """Most ended conversations kept at once; the oldest-ended go first."""
-    max_transcript_items: int = 200_000
+    max_transcript_items: int = 50_000
     """Most items in one ``TagTranscript`` request."""
 
     def __post_init__(self) -> None:

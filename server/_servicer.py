@@ -34,7 +34,7 @@ from midstream.server._config import ServerLimits
 from midstream.server._limits import SpeakerTimeline, check_batch_size, check_id, check_word
 from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Bundle, load_bundle
-from midstream.server._session import Session, SessionRegistry
+from midstream.server._session import Session, SessionRegistry, message_budget
 from midstream.server._status import FieldLimitError, ProtocolStateError, status_code
 from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
@@ -44,7 +44,7 @@ _log = logging.getLogger(__name__)
 
 # Items of a TagTranscript request between two returns to the event loop, so one long batch
 # does not starve live streams (decodes themselves are never split).
-_BATCH_SLICE = 256
+_BATCH_SLICE = 16
 # How long and how many in-flight events a refused Converse call reads before its status.
 _DRAIN_S = 0.25
 _DRAIN_MESSAGES = 64
@@ -297,14 +297,22 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         except MidstreamError as exc:
             await self._fail(context, exc)
         kept, truncated = session.revisions()
-        revisions = []
-        for seq, when, state in kept:
+        revisions: list[pb.Revision] = []
+        room = message_budget(self._limits)
+        # Newest first, so that when the reply must be cut to fit one message the oldest go.
+        for seq, when, state in reversed(kept):
             if isinstance(state, WordHypothesis):
-                revisions.append(pb.Revision(seq=seq, server_time=when,
-                                             word=cv.word_state_to_wire(state)))
+                revision = pb.Revision(seq=seq, server_time=when,
+                                       word=cv.word_state_to_wire(state))
             else:
-                revisions.append(pb.Revision(seq=seq, server_time=when,
-                                             utterance=cv.utterance_state_to_wire(state)))
+                revision = pb.Revision(seq=seq, server_time=when,
+                                       utterance=cv.utterance_state_to_wire(state))
+            room -= revision.ByteSize() + 6
+            if room < 0:
+                truncated = True
+                break
+            revisions.append(revision)
+        revisions.reverse()
         return pb.GetRevisionsReply(conversation_id=session.id, revisions=revisions,
                                     truncated=truncated)
 
@@ -318,10 +326,17 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             words, utterances = await self._tag(request)
         except MidstreamError as exc:
             await self._fail(context, exc)
-        return pb.TagTranscriptReply(
+        reply = pb.TagTranscriptReply(
             words=[cv.word_state_to_wire(w) for w in words],
             utterances=[cv.utterance_state_to_wire(u) for u in utterances],
         )
+        size, limit = reply.ByteSize(), self._limits.max_message_bytes
+        if size > limit:
+            await self._fail(context, FieldLimitError(
+                "max_message_bytes", limit,
+                f"the reply would be {size} bytes; limit max_message_bytes is {limit}: "
+                "send the transcript in parts"))
+        return reply
 
     async def _tag(self, request: pb.TagTranscriptRequest,
                    ) -> tuple[list[WordHypothesis], list[UtteranceHypothesis]]:

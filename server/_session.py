@@ -46,6 +46,11 @@ State = WordHypothesis | UtteranceHypothesis
 _S = TypeVar("_S", WordHypothesis, UtteranceHypothesis)
 
 
+def message_budget(limits: ServerLimits) -> int:
+    """Bytes a reply built from kept state may use: the message limit less room for framing."""
+    return int(limits.max_message_bytes * 0.9)
+
+
 def merge_diffs(diffs: Iterable[HypothesisDiff]) -> HypothesisDiff:
     """One diff with the latest state of everything the given diffs (in order) touched."""
     words: dict[str, WordHypothesis] = {}
@@ -288,9 +293,28 @@ class Session:
         return newer
 
     def snapshot_message(self) -> pb.ServerMessage:
-        """The whole kept state as of the current sequence number."""
-        return pb.ServerMessage(snapshot=cv.snapshot_to_wire(
-            self.seq, self._words.values(), self._utterances.values(),
+        """The whole kept state as of the current sequence number.
+
+        When the kept states would not fit in one message (``max_message_bytes``), the oldest
+        are left out: a snapshot favours what is still changing.
+        """
+        words = [cv.word_state_to_wire(w) for w in self._words.values()]
+        utterances = [cv.utterance_state_to_wire(u) for u in self._utterances.values()]
+        budget = message_budget(self.limits)
+        # Repeated fields cost their size plus a few bytes of framing each.
+        word_sizes = deque(m.ByteSize() + 6 for m in words)
+        utterance_sizes = deque(m.ByteSize() + 6 for m in utterances)
+        total = sum(word_sizes) + sum(utterance_sizes)
+        first_word = first_utterance = 0
+        while total > budget and (word_sizes or utterance_sizes):
+            if utterance_sizes and (not word_sizes or utterance_sizes[0] >= word_sizes[0]):
+                total -= utterance_sizes.popleft()
+                first_utterance += 1
+            else:
+                total -= word_sizes.popleft()
+                first_word += 1
+        return pb.ServerMessage(snapshot=pb.Snapshot(
+            seq=self.seq, words=words[first_word:], utterances=utterances[first_utterance:],
             conversation_final=not self.live,
         ))
 

@@ -154,3 +154,27 @@ async def test_transcript_limits_and_validation(start_server: ServerFactory) -> 
         await running.stub.TagTranscript(pb.TagTranscriptRequest(items=bad))
     assert info.value.code() == INVALID
     assert "goes back" in (info.value.details() or "")
+
+
+async def test_replies_built_from_kept_state_fit_one_message(start_server: ServerFactory) -> None:
+    limit = 4096
+    running = await start_server(limits=ServerLimits(max_message_bytes=limit))
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    for i in range(60):
+        await caller.send(words_event(spoken(f"w{i}", "so", start=float(i))))
+    revisions = await running.stub.GetRevisions(
+        pb.GetRevisionsRequest(conversation_id=conversation))
+    assert revisions.ByteSize() <= limit and revisions.truncated
+    assert revisions.revisions[-1].seq == caller.updates[-1].seq  # the newest are kept
+    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation))
+    snapshot = (await follower.read()).snapshot
+    assert snapshot.ByteSize() <= limit and snapshot.seq == caller.updates[-1].seq
+    assert "w59" in {w.word_id for w in snapshot.words}
+    follower.cancel()
+    await caller.close()
+    items = [pb.TranscriptItem(word=spoken(f"w{i}", "so")) for i in range(150)]
+    with pytest.raises(grpc.aio.AioRpcError) as info:
+        await running.stub.TagTranscript(pb.TagTranscriptRequest(items=items))
+    assert info.value.code() == INVALID
+    assert "max_message_bytes is 4096" in (info.value.details() or "")
