@@ -1,8 +1,9 @@
 """A thin synchronous wrapper over :class:`~midstream.client.Client` for scripts.
 
-Each method runs the asynchronous one to completion on a private event loop that lives as long
-as the wrapper (a gRPC asyncio channel belongs to the loop that made it). Use it from one thread;
-inside ``async`` code use :class:`~midstream.client.Client` itself.
+Each method runs the asynchronous one to completion on a private event loop in a daemon thread
+that lives as long as the wrapper (a gRPC asyncio channel belongs to the loop that made it), so
+the caller's own event loop, if any, is never touched. Use one wrapper from one thread at a
+time; inside ``async`` code use :class:`~midstream.client.Client` itself.
 
 Examples
 --------
@@ -17,10 +18,12 @@ Examples
 from __future__ import annotations
 
 import asyncio
+import threading
 from collections.abc import Coroutine, Iterable, Iterator
 from types import TracebackType
 from typing import Any, Self, TypeVar
 
+from midstream._errors import UnavailableError
 from midstream.client._client import Client, RetryPolicy
 from midstream.client._results import (
     AddWord,
@@ -43,25 +46,33 @@ class SyncClient:
                  retry: RetryPolicy | None = None) -> None:
         self._client = Client(target, token=token, tls=tls, root_certificates=root_certificates,
                               timeout=timeout, retry=retry)
-        self._runner: asyncio.Runner | None = None
+        self._loop: asyncio.AbstractEventLoop | None = None
+        self._thread: threading.Thread | None = None
 
     def __repr__(self) -> str:
         return f"Sync{self._client!r}"
 
     def connect(self) -> None:
         """Start the private loop and open the channel."""
-        if self._runner is None:
-            self._runner = asyncio.Runner()
-        self._runner.run(self._client.connect())
+        if self._loop is None:
+            self._loop = asyncio.new_event_loop()
+            self._thread = threading.Thread(target=self._loop.run_forever,
+                                            name="midstream-sync-client", daemon=True)
+            self._thread.start()
+        self._run(self._client.connect())
 
     def close(self) -> None:
         """Close the channel and the loop. Safe to call twice."""
-        runner, self._runner = self._runner, None
-        if runner is not None:
-            try:
-                runner.run(self._client.close())
-            finally:
-                runner.close()
+        loop, thread = self._loop, self._thread
+        if loop is None or thread is None:
+            return
+        try:
+            self._run(self._client.close())
+        finally:
+            self._loop = self._thread = None
+            loop.call_soon_threadsafe(loop.stop)
+            thread.join()
+            loop.close()
 
     def __enter__(self) -> Self:
         self.connect()
@@ -72,11 +83,11 @@ class SyncClient:
         self.close()
 
     def _run(self, coroutine: Coroutine[Any, Any, _T]) -> _T:
-        if self._runner is None:
+        if self._loop is None:
             coroutine.close()
-            self.connect()
-        assert self._runner is not None
-        return self._runner.run(coroutine)
+            raise UnavailableError(f"{self!r} is not connected: use 'with SyncClient(...)' or "
+                                   "call connect() first")
+        return asyncio.run_coroutine_threadsafe(coroutine, self._loop).result()
 
     def tag_transcript(self, events: Iterable[AddWord | SpeakerHint]) -> TaggedTranscript:
         """See :meth:`Client.tag_transcript`."""
@@ -113,5 +124,5 @@ class SyncClient:
                 except StopAsyncIteration:
                     return
         finally:
-            if self._runner is not None:
-                self._runner.run(events.aclose())
+            if self._loop is not None:
+                self._run(events.aclose())

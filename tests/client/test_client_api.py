@@ -1,0 +1,158 @@
+"""The async client and its sync wrapper against a real server with real models."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from client_kit import CuttingProxy, Served, free_port, models_dir, served
+from midstream import (
+    EventError,
+    HypothesisUpdate,
+    ModelError,
+    NotFoundError,
+    UnavailableError,
+    Word,
+    WordHypothesis,
+)
+from midstream.client import (
+    AddWord,
+    Client,
+    Ended,
+    EndReason,
+    Reconnected,
+    RetryPolicy,
+    Snapshot,
+    SyncClient,
+    Welcome,
+)
+from midstream.client._demo_script import demo_events
+from midstream.client._results import ServerEvent
+
+__all__ = ["models_dir", "served"]  # fixtures used by this module
+
+pytestmark = pytest.mark.corpus
+
+
+async def _stream_demo(client: Client, conversation_id: str | None = None
+                       ) -> tuple[str, list[ServerEvent]]:
+    async with client.converse(conversation_id) as stream:
+        for timed in demo_events():
+            await stream.send(timed.event)
+        await stream.close()
+        events = [event async for event in stream]
+    return stream.conversation_id, events
+
+
+async def test_converse_yields_welcome_updates_in_sequence_then_ended(served: Served) -> None:
+    async with Client(served.target) as client:
+        conversation_id, events = await _stream_demo(client, "bike-shop-1")
+    assert conversation_id == "bike-shop-1"
+    assert events[0] == Welcome(conversation_id="bike-shop-1", next_seq=1)
+    updates = [e for e in events if isinstance(e, HypothesisUpdate)]
+    assert [u.seq for u in updates] == list(range(1, len(updates) + 1))
+    assert updates[-1].conversation_final
+    assert events[-1] == Ended(reason=EndReason.CLOSED, last_seq=updates[-1].seq)
+    # Every word sent got a hypothesis, and every one is final at the end.
+    latest: dict[str, WordHypothesis] = {}
+    for update in updates:
+        latest.update((w.word_id, w) for w in update.diff.words)
+    sent = {t.event.word_id for t in demo_events() if isinstance(t.event, AddWord)}
+    assert set(latest) == sent
+    assert all(w.final for w in latest.values())
+
+
+async def test_follow_sees_the_callers_sequence_and_resumes_after_a_cut(served: Served) -> None:
+    async with Client(served.target) as client:
+        conversation_id, events = await _stream_demo(client)
+    caller = [e for e in events if isinstance(e, HypothesisUpdate)]
+
+    proxy = CuttingProxy(served.server.port)
+    port = await proxy.start()
+    retry = RetryPolicy(max_attempts=5, initial_backoff=0.05)
+    followed: list[ServerEvent] = []
+    try:
+        async with Client(f"127.0.0.1:{port}", retry=retry) as follower:
+            async for event in follower.follow(conversation_id, from_seq=1):
+                followed.append(event)
+                if len(followed) == 10:
+                    proxy.cut()
+    finally:
+        await proxy.stop()
+    reconnects = [e for e in followed if isinstance(e, Reconnected)]
+    assert len(reconnects) >= 1 and proxy.connections >= 2
+    updates = [e for e in followed if isinstance(e, HypothesisUpdate)]
+    # Resumed from the next unseen seq: nothing missing, nothing twice, no gap needed.
+    assert updates == caller
+    assert isinstance(followed[-1], Ended)
+
+
+async def test_follow_without_position_starts_with_a_snapshot(served: Served) -> None:
+    async with Client(served.target) as client:
+        conversation_id, _ = await _stream_demo(client)
+        followed = [e async for e in client.follow(conversation_id)]
+    assert isinstance(followed[0], Snapshot) and followed[0].conversation_final
+    assert isinstance(followed[-1], Ended)
+
+
+async def test_follow_gives_up_after_bounded_retries_and_says_each_one() -> None:
+    retry = RetryPolicy(max_attempts=3, initial_backoff=0.01, max_backoff=0.02)
+    seen: list[ServerEvent] = []
+    async with Client(f"127.0.0.1:{free_port()}", retry=retry) as client:
+        with pytest.raises(UnavailableError, match=r"127\.0\.0\.1"):
+            async for event in client.follow("anything"):
+                seen.append(event)
+    assert seen == [Reconnected(from_seq=None, attempt=n) for n in (1, 2, 3)]
+
+
+async def test_batch_listing_revisions_and_models(served: Served) -> None:
+    async with Client(served.target) as client:
+        conversation_id, events = await _stream_demo(client)
+        history = await client.revisions(conversation_id)
+        listed = {c.conversation_id: c for c in await client.list_conversations()}
+        models = await client.describe_models()
+    updates = [e for e in events if isinstance(e, HypothesisUpdate)]
+    assert listed[conversation_id].ended
+    assert listed[conversation_id].last_seq == updates[-1].seq
+    assert {m.kind for m in models} == {"words", "utterance_functions"}
+    # The history holds exactly the states the stream published, seq by seq.
+    published = [(u.seq, s) for u in updates for s in (*u.diff.words, *u.diff.utterances)]
+    assert sorted(((r.seq, r.state) for r in history.revisions), key=lambda p: p[0]) == sorted(
+        published, key=lambda p: p[0])
+
+
+async def test_errors_are_midstream_errors(served: Served, tmp_path: Path) -> None:
+    async with Client(served.target) as client:
+        with pytest.raises(NotFoundError, match="nope"):
+            await client.revisions("nope")
+        (tmp_path / "broken.msm").write_bytes(b"not a model at all")
+        with pytest.raises(ModelError):
+            await client.reload_models(str(tmp_path))
+        with pytest.raises(EventError):
+            async with client.converse() as stream:
+                await stream.send_words([AddWord(word_id="a", word=Word(text="hi",
+                                                                        speaker="A"))])
+                await stream.withdraw_word("never-sent")
+                async for _ in stream:
+                    pass
+
+
+async def test_client_lifecycle_is_explicit() -> None:
+    client = Client("127.0.0.1:1")
+    with pytest.raises(UnavailableError, match="not connected"):
+        await client.list_conversations()
+    await client.connect()
+    await client.close()
+    await client.close()  # idempotent
+
+
+def test_sync_client_wraps_the_async_one(served: Served) -> None:
+    events = [t.event for t in demo_events() if isinstance(t.event, AddWord)]
+    with SyncClient(served.target) as client:
+        tagged = client.tag_transcript(events)
+        conversation_id = client.list_conversations()[0].conversation_id
+        followed = list(client.follow(conversation_id, from_seq=1))
+    assert len(tagged.words) == len(events) and all(w.final for w in tagged.words)
+    assert isinstance(followed[-1], Ended)
+    with pytest.raises(UnavailableError, match="not connected"):
+        client.describe_models()
