@@ -162,7 +162,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                 await self._refuse_stream(context, exc)
             yield pb.ServerMessage(welcome=pb.Welcome(
                 conversation_id=session.id, next_seq=session.seq + 1))
-            async for message in self._converse(session, context, stop_waiter):
+            async for message in self._converse(session, context):
                 yield message
         finally:
             stop_waiter.cancel()
@@ -170,8 +170,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     async def _converse(
         self, session: Session,
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
-        stop_waiter: asyncio.Future[object],
     ) -> AsyncIterator[pb.ServerMessage]:
+        # A server stop finishes every session, so waiting on this session's end covers it.
         sent = 0  # the last sequence number the caller was given
         ended_waiter: asyncio.Future[object] = asyncio.ensure_future(session.ended.wait())
         try:
