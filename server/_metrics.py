@@ -9,7 +9,8 @@ Names and meanings (documented in ``docs/service.md``):
 ``midstream_live_conversations``
     Conversations being ingested now.
 ``midstream_revisions_total``
-    Published word and utterance states that revised an earlier one (``revision > 0``).
+    Published word and utterance states whose revision count went up (a label or confidence
+    changed); a state turning final without changing is not counted.
 ``midstream_errors_total{code}``
     RPCs ended with a non-OK status, by gRPC status code name.
 

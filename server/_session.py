@@ -248,13 +248,16 @@ class Session:
         self._replay.append(message)
         revised = 0
         for word in diff.words:
+            # A revision is a state whose revision count went up (not a word turning final).
+            before = self._words.get(word.word_id)
+            revised += word.revision > (before.revision if before is not None else 0)
             self._keep(self._words, word.word_id, word)
             self._remember(now, word)
-            revised += word.revision > 0
         for utterance in diff.utterances:
+            previous = self._utterances.get(utterance.utterance_id)
+            revised += utterance.revision > (previous.revision if previous is not None else 0)
             self._keep(self._utterances, utterance.utterance_id, utterance)
             self._remember(now, utterance)
-            revised += utterance.revision > 0
         for word_id in diff.withdrawn_word_ids:
             self._words.pop(word_id, None)
         for follower in self._followers:
