@@ -36,7 +36,7 @@ class ServerLimits:
     """Most distinct speakers in one conversation."""
     replay_updates: int = 4096
     """Updates kept per conversation for followers to resume from."""
-    history_revisions: int = 65536
+    history_revisions: int = 32768
     """Published word and utterance states kept per conversation for ``GetRevisions``."""
     snapshot_states: int = 10000
     """Latest word states, and latest utterance states, kept per conversation for snapshots."""
@@ -50,7 +50,7 @@ class ServerLimits:
     """A ``Converse`` stream silent this long has its conversation finished."""
     ended_retention_s: float = 600.0
     """How long an ended conversation stays for late followers and ``GetRevisions``."""
-    max_ended_conversations: int = 1024
+    max_ended_conversations: int = 256
     """Most ended conversations kept at once; the oldest-ended go first."""
     max_transcript_items: int = 50_000
     """Most items in one ``TagTranscript`` request."""
