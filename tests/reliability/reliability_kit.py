@@ -12,9 +12,11 @@ second ``conftest.py`` would clash with ``tests/conftest.py`` under mypy.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import subprocess
 import sys
-from collections.abc import AsyncIterator, Awaitable, Callable
+import threading
+from collections.abc import AsyncIterator, Awaitable, Callable, Iterator
 from pathlib import Path
 from typing import Any
 
@@ -152,3 +154,27 @@ async def refusal(stub: pb_grpc.MidstreamStub,
     except grpc.aio.AioRpcError as exc:
         return exc
     raise AssertionError("the stream ended without an error status")
+
+
+@contextlib.contextmanager
+def served_in_thread(bundle: ModelBundle, limits: ServerLimits = SMALL_LIMITS,
+                     **config: Any) -> Iterator[MidstreamServer]:
+    """A server on port 0 running on its own event loop in a daemon thread.
+
+    For synchronous callers (Hypothesis examples, the blocking gRPC client): the test's thread
+    makes calls while the server loop serves them. The server is stopped on exit.
+    """
+    loop = asyncio.new_event_loop()
+    server = MidstreamServer(
+        ServerConfig(host="127.0.0.1", port=0, grace_s=1.0, limits=limits, **config),
+        bundle=bundle)
+    thread = threading.Thread(target=loop.run_forever, daemon=True)
+    thread.start()
+    try:
+        asyncio.run_coroutine_threadsafe(server.start(), loop).result(WAIT_S)
+        yield server
+    finally:
+        asyncio.run_coroutine_threadsafe(server.stop(0), loop).result(WAIT_S)
+        loop.call_soon_threadsafe(loop.stop)
+        thread.join(WAIT_S)
+        loop.close()
