@@ -10,6 +10,7 @@ import asyncio
 
 import grpc
 import pytest
+from grpc_health.v1 import health_pb2, health_pb2_grpc
 from midstream.server import ServerLimits
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
@@ -122,7 +123,11 @@ async def test_stop_with_grace_finalises_and_delivers_everything(
 ) -> None:
     running = await start_server(limits=ServerLimits(idle_timeout_s=30))
     watched = [await _watched(running, words=3) for _ in range(2)]
+    health = health_pb2_grpc.HealthStub(running.channel).Watch(
+        health_pb2.HealthCheckRequest(service="midstream.v1.Midstream"))
+    assert (await health.read()).status == health_pb2.HealthCheckResponse.SERVING
     stopping = asyncio.create_task(running.server.stop(5))
+    assert (await health.read()).status == health_pb2.HealthCheckResponse.NOT_SERVING
     for caller, follower in watched:
         final = await asyncio.wait_for(caller.call.read(), 5)
         ended = await caller.call.read()
