@@ -46,7 +46,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                     "disfluency-annotated conversations of a corpus.")
     words.add_argument("corpus", type=Path, help="a corpus folder or a .jsonl file")
     words.add_argument("--split", default=None, help="read only this split, e.g. train")
-    words.add_argument("--out", type=Path, required=True, help="model file to write (.msm)")
+    words.add_argument("--out", type=Path, default=None,
+                       help="model file to write (.msm); required unless --cv-only")
     defaults = WordTrainingConfig()
     words.add_argument("--c1", type=float, nargs="+", default=[defaults.c1],
                        help="L1 weight(s); several values are compared by cross-validation")
@@ -54,6 +55,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                        help="L2 weight(s); several values are compared by cross-validation")
     words.add_argument("--min-freq", type=int, nargs="+", default=[defaults.min_freq],
                        help="drop features seen fewer times (several: compared by CV)")
+    words.add_argument("--restart-span", type=int, nargs="+", default=[defaults.restart_span],
+                       help="words back the phrase-restart features look (0: off; several: "
+                            "compared by CV)")
+    words.add_argument("--cv-only", action="store_true",
+                       help="print the cross-validation results and stop (no model written)")
     words.add_argument("--max-iterations", type=int, default=defaults.max_iterations,
                        help="L-BFGS iterations")
     words.add_argument("--cv-folds", type=int, default=3,
@@ -77,15 +83,19 @@ def _register_functions(tasks: argparse._SubParsersAction[argparse.ArgumentParse
 
 
 def run_words(args: argparse.Namespace) -> int:
+    if args.out is None and not args.cv_only:
+        raise InputError("--out is required (the model file to write) unless --cv-only")
     if args.cv_folds < 2:
         raise InputError(f"--cv-folds must be at least 2, got {args.cv_folds}")
     conversations = list(read_corpus(args.corpus, split=args.split))
     if not conversations:
         raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
     base = WordTrainingConfig(c1=args.c1[0], c2=args.c2[0], min_freq=args.min_freq[0],
-                              max_iterations=args.max_iterations)
-    grid = [{"c1": c1, "c2": c2, "min_freq": m}
-            for c1, c2, m in itertools.product(args.c1, args.c2, args.min_freq)]
+                              max_iterations=args.max_iterations,
+                              restart_span=args.restart_span[0])
+    grid = [{"c1": c1, "c2": c2, "min_freq": m, "restart_span": r}
+            for c1, c2, m, r in itertools.product(args.c1, args.c2, args.min_freq,
+                                                  args.restart_span)]
     chosen = base
     metadata: dict[str, object] = {
         "created_by": "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
@@ -93,18 +103,22 @@ def run_words(args: argparse.Namespace) -> int:
         "split": args.split,
         "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
     }
-    if len(grid) > 1:
+    if len(grid) > 1 or args.cv_only:
         results = cross_validate_words(
             conversations, base, grid=grid, folds=args.cv_folds,
             subset=args.cv_subset or None, seed=args.seed, progress=True)
         for result in results:
             c = result.config
-            print(f"cv c1={c.c1} c2={c.c2} min_freq={c.min_freq}: "
+            print(f"cv c1={c.c1} c2={c.c2} min_freq={c.min_freq} "
+                  f"restart_span={c.restart_span}: "
                   f"reparandum_f1={result.reparandum_f1:.4f} filler_f1={result.filler_f1:.4f} "
                   f"segmentation_f1={result.segmentation_f1:.4f}", flush=True)
+        if args.cv_only:
+            return 0
         best = max(results, key=lambda r: r.objective)
         chosen = best.config
-        print(f"chosen c1={chosen.c1} c2={chosen.c2} min_freq={chosen.min_freq}", flush=True)
+        print(f"chosen c1={chosen.c1} c2={chosen.c2} min_freq={chosen.min_freq} "
+              f"restart_span={chosen.restart_span}", flush=True)
         metadata["cross_validation"] = {
             "folds": args.cv_folds,
             "subset": args.cv_subset,
@@ -112,6 +126,7 @@ def run_words(args: argparse.Namespace) -> int:
             "objective": "mean of offline reparandum F1 and utterance-end F1",
             "results": [
                 {"c1": r.config.c1, "c2": r.config.c2, "min_freq": r.config.min_freq,
+                 "restart_span": r.config.restart_span,
                  "reparandum_f1": round(r.reparandum_f1, 4), "filler_f1": round(r.filler_f1, 4),
                  "segmentation_f1": round(r.segmentation_f1, 4)}
                 for r in results

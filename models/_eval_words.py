@@ -28,7 +28,8 @@ Reported keys (all in ``[0, 1]`` unless a unit is named):
 ``segmentation.{precision,recall,f1}``
     utterance ends (the last word of each gold utterance in its speaker's channel), final output.
 
-Disfluency metrics use disfluency-annotated conversations only; segmentation uses all.
+Disfluency metrics use disfluency-annotated conversations only (NaN when there is none);
+segmentation uses all.
 """
 
 from __future__ import annotations
@@ -212,6 +213,9 @@ def evaluate_words(
     )
     for d, counts in tally.at_delay.items():
         result[f"incremental.reparandum_f1_at_delay.{d}"] = counts.f1
+    if not tally.edited_words:
+        # No disfluency-annotated conversation: these figures are unknown, not zero.
+        result = {k: float("nan") for k in result}
     result["segmentation.precision"] = tally.segmentation.precision
     result["segmentation.recall"] = tally.segmentation.recall
     result["segmentation.f1"] = tally.segmentation.f1

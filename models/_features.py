@@ -67,15 +67,25 @@ class FeatureConfig:
     ``lexicon`` maps words to an interregnum class learned from training data (``"F"`` filled
     pause, ``"E"`` editing term, ``"D"`` discourse marker). ``right`` is how many words to the
     right a feature may read (the decoder cannot finalise a word before that many have followed);
-    ``left`` bounds the left context (the position feature counts back at most that far).
+    ``left`` bounds the left context (the position feature counts back at most that far);
+    ``restart_span`` (0: off) how far back the phrase-restart features look for the word that
+    follows an interruption point. Requires ``restart_span <= left``.
     """
 
     right: int = 5
     left: int = 8
     lexicon: Mapping[str, str] = field(default_factory=dict, repr=False)
+    restart_span: int = 0
+
+    def __post_init__(self) -> None:
+        if self.right < 0 or self.left < self.right + 1:
+            raise ValueError(f"need 0 <= right < left, got right={self.right} left={self.left}")
+        if not 0 <= self.restart_span <= self.left:
+            raise ValueError(f"restart_span must be in [0, left], got {self.restart_span}")
 
     def to_json(self) -> dict[str, Any]:
-        return {"right": self.right, "left": self.left, "lexicon": dict(self.lexicon)}
+        return {"right": self.right, "left": self.left, "lexicon": dict(self.lexicon),
+                "restart_span": self.restart_span}
 
     @classmethod
     def from_json(cls, data: Mapping[str, Any]) -> FeatureConfig:
@@ -83,6 +93,8 @@ class FeatureConfig:
             right=int(data["right"]),
             left=int(data["left"]),
             lexicon={str(k): str(v) for k, v in dict(data["lexicon"]).items()},
+            # Absent in models trained before the phrase-restart features existed.
+            restart_span=int(data.get("restart_span", 0)),
         )
 
 
@@ -189,6 +201,20 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
     for a in (1, 2):
         if i - a >= 0 and tokens[i - a].text == tk.text:
             out.append(f"m{a}_{k}")
+    span = config.restart_span
+    if span:
+        for a in range(3, span + 1):
+            if i - a >= 0 and tokens[i - a].text == tk.text:
+                out.append(f"m{a}_{k}")
+        # The first word after i that is no filled pause or editing term restarts a phrase
+        # that began a words back: i is then likely the last word of a reparandum.
+        if lex.get(tk.text, "-") not in "FE" and all(
+            lex.get(tokens[i + b].text, "-") in "FE" for b in range(1, k)
+        ):
+            for a in range(span + 1):
+                if i - a >= 0 and tokens[i - a].text == tk.text:
+                    out.append(f"nx{a}")
+                    break
     # Left copy: tokens[i-a .. i] equals tokens[i+k-a .. i+k] for a = 0, 1 (and 2).
     if tk.text == t0.text and i >= 1 and tokens[i - 1].text == tokens[i + k - 1].text and k > 1:
         if i >= 2 and k > 2 and tokens[i - 2].text == tokens[i + k - 2].text:

@@ -32,7 +32,9 @@ def decode_lattice(
     emissions
         ``(n, L)`` state scores (log potentials) of ``n`` positions.
     exp_transitions
-        ``(L, L)`` ``exp`` of the transition weights, from row label to column label.
+        ``(L, L)`` ``exp`` of the transition weights, from row label to column label, up to
+        one constant factor (which changes neither path nor marginals); keep its largest
+        entry near 1 so that short windows need no rescaling.
     first
         If given, position 0's label is fixed to this index (a finalised left context).
     last_mask
@@ -53,7 +55,7 @@ def decode_lattice(
     # Scaling keeps products in range; windows this short cannot underflow without it
     # (every factor is at least exp(-(score range)) and float64 reaches exp(-708)).
     scale = n > _UNSCALED_MAX
-    transitions = exp_transitions / exp_transitions.max()
+    transitions = exp_transitions
     columns = np.arange(size)
     best = potentials[0]
     pointers = []

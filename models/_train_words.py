@@ -58,7 +58,8 @@ class WordTrainingConfig:
     """Hyper-parameters of the word CRF.
 
     ``c1``/``c2``: L1/L2 regularisation; ``min_freq``: attributes seen fewer times are dropped;
-    ``chunk_length``: longest training sequence (words); ``right``/``left``: feature context.
+    ``chunk_length``: longest training sequence (words); ``right``/``left``/``restart_span``:
+    feature context (see :class:`~midstream.models._features.FeatureConfig`).
     """
 
     c1: float = 0.1
@@ -68,6 +69,7 @@ class WordTrainingConfig:
     chunk_length: int = 60
     right: int = 5
     left: int = 8
+    restart_span: int = 5
 
 
 def annotated_channels(conversations: Iterable[Conversation]) -> Iterator[ChannelSequence]:
@@ -146,7 +148,8 @@ def train_word_artifact(
     if not annotated:
         raise InputError("no disfluency-annotated conversations to train the word model on")
     features = FeatureConfig(right=config.right, left=config.left,
-                             lexicon=build_lexicon(annotated))
+                             lexicon=build_lexicon(annotated),
+                             restart_span=config.restart_span)
     started = time.monotonic()
     crf = train_crf_from(
         _pairs_factory(annotated, features, config.chunk_length),
@@ -179,6 +182,7 @@ def train_word_artifact(
             "min_freq": config.min_freq,
             "max_iterations": config.max_iterations,
             "chunk_length": config.chunk_length,
+            "restart_span": config.restart_span,
         },
         metadata={"training_data": summary, **(metadata or {})},
     )

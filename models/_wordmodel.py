@@ -53,7 +53,10 @@ class WordModel:
         # One all-zero row appended: the padding row of score_pieces.
         self.state: FloatArray = np.vstack([weights.state, np.zeros((1, len(weights.labels)))])
         self.transitions = weights.transitions
-        self.exp_transitions: FloatArray = np.exp(weights.transitions)
+        # Scaled so the largest entry is 1 (see decode_lattice).
+        self.exp_transitions: FloatArray = np.exp(
+            weights.transitions - weights.transitions.max()
+        )
         decoded = [decode_tag(t) for t in self.tags]
         self.tag_base: tuple[str, ...] = tuple(d[0] for d in decoded)
         self.tag_label: tuple[DisfluencyLabel, ...] = tuple(d[1] for d in decoded)

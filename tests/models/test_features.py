@@ -6,7 +6,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from midstream.models._features import FeatureConfig, Token, feature_piece, features_at
 
-CONFIG = FeatureConfig(lexicon={"uh": "F", "um": "F", "mean": "E", "well": "D"})
+CONFIG = FeatureConfig(lexicon={"uh": "F", "um": "F", "mean": "E", "well": "D"},
+                       restart_span=5)
 
 _token = st.builds(
     Token,
@@ -54,6 +55,14 @@ def test_repetition_marks_the_reparandum_not_the_repair() -> None:
     assert "m0_2" not in second_think and "lm2" in second_think
     first_i = features_at(tokens, 1, CONFIG)
     assert "fc2_2" in first_i  # "i think" comes again two words later
+
+
+def test_phrase_restart_marks_the_interruption_point() -> None:
+    tokens = _tokens("i give them a uh i give them")
+    assert "nx3" in features_at(tokens, 3, CONFIG)  # "a": the next content word is "i"
+    assert not any(f.startswith("nx") for f in features_at(tokens, 7, CONFIG))
+    off = FeatureConfig(lexicon=CONFIG.lexicon)
+    assert not any(f.startswith("nx") for f in features_at(tokens, 3, off))
 
 
 def test_interregnum_between_copies() -> None:
