@@ -14,13 +14,16 @@ from collections.abc import Iterable, Sequence
 
 # The object-oriented API without pyplot: no global figure state and no display backend, as
 # matplotlib's own guide to embedding in a web server recommends.
+import numpy as np
+from matplotlib.colors import ListedColormap
 from matplotlib.figure import Figure
 from matplotlib.patches import Patch
+from matplotlib.ticker import MaxNLocator
 from midstream._types import DisfluencyLabel
 from midstream.client._analysis import Analysis, WordTimeline
 
 #: Words drawn in the revision timeline; a longer conversation shows its first ones (and says so).
-MAX_TIMELINE_WORDS = 200
+MAX_TIMELINE_WORDS = 120
 #: Rows of the per-word table; words whose label changed come first.
 MAX_TABLE_WORDS = 400
 
@@ -46,39 +49,57 @@ td.num { text-align: right; }
 
 def _png(figure: Figure) -> str:
     buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=90, bbox_inches="tight")
+    figure.savefig(buffer, format="png", dpi=80)
     data = base64.b64encode(buffer.getvalue()).decode("ascii")
     return f'<img alt="" src="data:image/png;base64,{data}">'
 
 
 def timeline_figure(words: Sequence[WordTimeline]) -> Figure:
-    """Each word a row; its bar runs from its first to its final update, coloured by label."""
+    """Each word a row, each update a column, coloured by the word's label at that update.
+
+    One image for the whole grid (not a bar per change): a long conversation draws as fast as
+    a short one. Black ticks mark the updates where a word's label changed; white is before a
+    word's first publication.
+    """
     shown = list(words[:MAX_TIMELINE_WORDS])
-    figure = Figure(figsize=(10, max(3.0, 0.12 * len(shown) + 1.5)))
-    axes = figure.subplots()
-    last_seq = max((c.seq for w in shown for c in w.changes), default=1)
+    labels = list(_COLOURS)
+    index = {label: i for i, label in enumerate(labels)}
+    first = min((c.seq for w in shown for c in w.changes), default=1)
+    last = max((c.seq for w in shown for c in w.changes), default=1)
+    grid = np.full((max(len(shown), 1), last - first + 1), np.nan)
+    ticks_x: list[int] = []
+    ticks_y: list[int] = []
     for row, word in enumerate(shown):
+        previous = None
         for change, following in zip(word.changes, [*word.changes[1:], None], strict=True):
-            end = following.seq if following is not None else (
-                change.seq + 0.5 if change.final else last_seq + 1)
-            axes.barh(row, max(end - change.seq, 0.5), left=change.seq, height=0.8,
-                      color=_COLOURS[change.label], edgecolor="none")
-        moments = [c.seq for prev, c in zip(word.changes, word.changes[1:], strict=False)
-                   if c.label != prev.label]
-        if moments:
-            axes.plot(moments, [row] * len(moments), "k|", markersize=6)
-    axes.set_ylim(len(shown) - 0.5, -0.5)
+            stop = following.seq if following is not None else last + 1
+            grid[row, change.seq - first:stop - first] = index[change.label]
+            if previous is not None and change.label != previous:
+                ticks_x.append(change.seq)
+                ticks_y.append(row)
+            previous = change.label
+    figure = Figure(figsize=(10, max(3.0, 0.1 * len(shown) + 1.5)))
+    figure.subplots_adjust(left=0.14, right=0.98)
+    axes = figure.subplots()
+    colours = ListedColormap([_COLOURS[label] for label in labels]).with_extremes(bad="white")
+    axes.imshow(np.ma.masked_invalid(grid), aspect="auto", interpolation="nearest",
+                cmap=colours, vmin=-0.5, vmax=len(labels) - 0.5,
+                extent=(first - 0.5, last + 0.5, len(shown) - 0.5, -0.5))
+    if ticks_x:
+        axes.scatter(ticks_x, ticks_y, marker="|", color="black", s=30, linewidths=1)
     axes.set_yticks(range(len(shown)))
     axes.set_yticklabels([f"{w.speaker}:{w.text}"[:18] for w in shown], fontsize=5)
     axes.set_xlabel("update (seq)")
+    axes.set_ylabel("word (in order sent)")
     axes.set_title("Revision timeline: label of each word over time (ticks: label changed)")
     handles = [Patch(color=colour, label=label.value) for label, colour in _COLOURS.items()]
-    axes.legend(handles=handles, fontsize=7, loc="lower right")
+    axes.legend(handles=handles, fontsize=7, loc="upper right")
     return figure
 
 
 def confusion_figure(labels: Sequence[DisfluencyLabel], matrix: Sequence[Sequence[int]]) -> Figure:
     figure = Figure(figsize=(6.5, 5.5))
+    figure.subplots_adjust(left=0.25, bottom=0.25)
     axes = figure.subplots()
     axes.imshow(matrix, cmap="Blues")
     names = [label.value for label in labels]
@@ -100,9 +121,11 @@ def confusion_figure(labels: Sequence[DisfluencyLabel], matrix: Sequence[Sequenc
 
 def accuracy_figure(curve: Sequence[tuple[int, float, int]]) -> Figure:
     figure = Figure(figsize=(7, 3.5))
+    figure.subplots_adjust(bottom=0.15)
     axes = figure.subplots()
     axes.plot([k for k, _, _ in curve], [a for _, a, _ in curve], "o-")
     axes.set_ylim(0, 1)
+    axes.xaxis.set_major_locator(MaxNLocator(integer=True))
     axes.set_xlabel("words of the utterance seen")
     axes.set_ylabel("function accuracy")
     axes.set_title("Utterance function right while the utterance grows (against gold)")

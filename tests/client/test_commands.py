@@ -1,0 +1,195 @@
+"""Every client command run in-process (``_cli.main``) against a real server and real models."""
+
+from __future__ import annotations
+
+import io
+import json
+import sys
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pytest
+from client_kit import (  # noqa: F401 - fixtures are found by name
+    CTM_TEXT,
+    Served,
+    free_port,
+    models_dir,
+    served,
+    shipped_weights,
+)
+from midstream import DisfluencyLabel, Word
+from midstream.client import AddWord, SyncClient
+from midstream.client._cli import main
+from midstream.client._records import read_log
+from midstream.client._view import RATES_CAUTION
+
+pytestmark = pytest.mark.corpus
+
+
+@pytest.fixture
+def ctm_file(tmp_path: Path) -> Path:
+    path = tmp_path / "call7.ctm"
+    path.write_text(CTM_TEXT, encoding="utf-8")
+    return path
+
+
+def _run(argv: list[str], capsys: pytest.CaptureFixture[str]) -> tuple[int, str, str]:
+    code = main(argv)
+    captured = capsys.readouterr()
+    return code, captured.out, captured.err
+
+
+def test_tag_prints_finished_utterances_clean_text_and_rates(
+        served: Served, ctm_file: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    code, out, err = _run(["tag", str(ctm_file), "--server", served.target, "--rates"], capsys)
+    assert code == 0, err
+    lines = [line for line in out.splitlines() if " | " in line]
+    # Every word of the CTM appears once in the utterance lines, in speaker order.
+    words = " ".join(line.rsplit(" | ", 1)[1] for line in lines).split()
+    assert [w.split("/")[0] for w in words] == [line.split()[4] for line in
+                                                CTM_TEXT.splitlines()[1:]]
+    assert RATES_CAUTION in out
+    assert "midstream subscribe" in err  # tells the user how to follow it
+
+    code, out, _ = _run(["tag", str(ctm_file), "--server", served.target, "--clean"], capsys)
+    assert code == 0
+    clean = " ".join(line.rsplit(" | ", 1)[1] for line in out.splitlines() if " | " in line)
+    assert "repair" in clean.split()
+
+
+def test_tag_reads_jsonl_from_stdin_and_prints_json_lines(
+        served: Served, capsys: pytest.CaptureFixture[str],
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    events = "\n".join(json.dumps(e) for e in [
+        {"speaker": "A", "text": "so", "id": "a1"},
+        {"speaker": "A", "text": "um", "id": "a2"},
+        {"speaker": "A", "text": "what", "id": "a3"},
+        {"kind": "replace", "id": "a3", "speaker": "A", "text": "when"},
+        {"speaker": "A", "text": "time", "id": "a4"},
+        {"kind": "turn_end", "speaker": "A"},
+        {"speaker": "B", "text": "noon", "id": "b1"},
+    ]) + "\n"
+    monkeypatch.setattr(sys, "stdin", io.StringIO(events))
+    code, out, err = _run(["tag", "--server", served.target, "--json", "--rates"], capsys)
+    assert code == 0, err
+    records = [json.loads(line) for line in out.splitlines()]
+    kinds = [r["type"] for r in records]
+    assert kinds[0] == "update" and kinds[-2:] == ["ended", "rates"]
+    assert records[-1]["caution"] == RATES_CAUTION
+    updates = [r for r in records if r["type"] == "update"]
+    assert [u["seq"] for u in updates] == list(range(1, len(updates) + 1))
+    final = {w["id"]: w for u in updates for w in u["words"]}
+    assert set(final) == {"a1", "a2", "a3", "a4", "b1"}
+    assert all(w["final"] for w in final.values())
+
+
+def test_bad_input_lines_exit_1_naming_file_line_and_field(
+        served: Served, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    bad_ctm = tmp_path / "bad.ctm"
+    bad_ctm.write_text("call A 0.1 0.2 fine\ncall A 0.4 long word\n", encoding="utf-8")
+    code, _, err = _run(["tag", str(bad_ctm), "--server", served.target], capsys)
+    assert code == 1
+    assert err.strip() == f"midstream: {bad_ctm}:2: field 'duration': not a number: 'long'"
+
+    bad_jsonl = tmp_path / "bad.jsonl"
+    bad_jsonl.write_text('{"speaker": "A", "text": "hi"}\n{"speaker": "A"}\n', encoding="utf-8")
+    code, _, err = _run(["replay", str(bad_jsonl), "--server", served.target, "--speed", "0",
+                         "--no-progress"], capsys)
+    assert code == 1
+    assert f"{bad_jsonl}:2: field 'text'" in err and len(err.strip().splitlines()) == 1
+
+
+def test_an_unreachable_server_exits_3_naming_it(ctm_file: Path,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    target = f"127.0.0.1:{free_port()}"
+    code, _, err = _run(["tag", str(ctm_file), "--server", target], capsys)
+    assert code == 3
+    assert target in err and len(err.strip().splitlines()) == 1
+
+
+def test_replayed_swda_conversation_ends_on_the_batch_labels_and_reports(
+        served: Served, swda_dir: Path, tmp_path: Path,
+        capsys: pytest.CaptureFixture[str]) -> None:
+    # sw4802: the shortest disfluency-annotated SwDA val conversation (737 words).
+    log_path, html_path = tmp_path / "sw4802.jsonl", tmp_path / "sw4802.html"
+    code, _, err = _run(["replay", str(swda_dir), "--split", "val", "--conversation", "sw4802",
+                         "--speed", "0", "--log", str(log_path), "--no-progress",
+                         "--server", served.target], capsys)
+    assert code == 0, err
+    log = read_log(log_path)
+    assert log.has_gold and len(log.words) == 737
+
+    # The stream's final labels equal one TagTranscript call over the same words.
+    words = [AddWord(word_id=w.word_id, word=Word(text=w.text, speaker=w.speaker, start=w.start,
+                                                  end=w.end)) for w in log.words]
+    with SyncClient(served.target) as client:
+        batch = client.tag_transcript(words)
+    streamed: dict[str, DisfluencyLabel] = {}
+    for event, _ in log.events:
+        for word in getattr(getattr(event, "diff", None), "words", ()):
+            streamed[word.word_id] = word.label
+    assert streamed == {w.word_id: w.label for w in batch.words}
+
+    code, out, err = _run(["inspect", str(log_path), "--html", str(html_path)], capsys)
+    assert code == 0, err
+    assert "why final:" in out and "accuracy against gold" in out
+
+    page = _Page()
+    page.feed(html_path.read_text(encoding="utf-8"))
+    # Revision timeline, confusion matrix, function accuracy against words seen.
+    assert len(page.images) == 3
+    assert all(src.startswith("data:image/png;base64,") for src in page.images)
+    assert {"Revision timeline", "Confusion matrix", "Words", "Utterances"} <= set(page.headings)
+    assert page.tables >= 5
+
+    # Follow the same (ended) conversation from another terminal: the same updates.
+    code, out, _ = _run(["subscribe", log.conversation_id, "--from-seq", "1", "--json",
+                         "--server", served.target], capsys)
+    assert code == 0
+    followed = [json.loads(line) for line in out.splitlines()]
+    logged = [e for e, _ in log.events if type(e).__name__ == "HypothesisUpdate"]
+    assert [r["seq"] for r in followed if r["type"] == "update"] == [
+        e.seq for e in logged]  # type: ignore[attr-defined]
+
+    # And inspect it live, through GetRevisions.
+    code, out, _ = _run(["inspect", "--conversation", log.conversation_id,
+                         "--server", served.target, "--changed"], capsys)
+    assert code == 0
+    assert out.startswith(f"conversation {log.conversation_id}")
+
+
+def test_inspect_needs_exactly_one_source(capsys: pytest.CaptureFixture[str]) -> None:
+    code, _, err = _run(["inspect"], capsys)
+    assert code == 1 and "either a revision log" in err
+
+
+def test_demo_runs_on_the_shipped_models(capsys: pytest.CaptureFixture[str]) -> None:
+    shipped_weights()
+    code, out, err = _run(["demo", "--no-pause", "--rates"], capsys)
+    assert code == 0, err
+    assert "bicycle" in out or "bike" in out
+    assert RATES_CAUTION in out
+    assert "conversation ended: closed" in out
+
+
+class _Page(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.images: list[str] = []
+        self.headings: list[str] = []
+        self.tables = 0
+        self._in_heading = False
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        if tag == "img":
+            self.images.append(dict(attrs).get("src") or "")
+        elif tag == "table":
+            self.tables += 1
+        self._in_heading = tag in ("h1", "h2")
+
+    def handle_endtag(self, tag: str) -> None:
+        self._in_heading = False
+
+    def handle_data(self, data: str) -> None:
+        if self._in_heading:
+            self.headings.append(data.strip())
