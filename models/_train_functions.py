@@ -69,8 +69,8 @@ class FunctionTrainingOptions:
     c1: float = 0.1
     c2: float = 0.01
     min_freq: int = 2
-    max_iterations: int = 150
-    augment: float = 0.0
+    max_iterations: int = 100
+    augment: float = 0.5
     config: FunctionFeatureConfig = field(default_factory=FunctionFeatureConfig)
     coarse_from: str = "sum"
     seed: int = 0
