@@ -1,0 +1,214 @@
+"""Run every benchmark and write ``docs/benchmarks.md`` from their output.
+
+Runs, one after another (never two at once: they would measure each other):
+``scripts/bench_engine.py`` (the word decoder's per-word cost, its own baselines),
+``scripts/bench_service.py`` (live conversations per server core, transport and engine
+baselines) and ``scripts/bench_memory.py`` (memory per idle live conversation, engine alone),
+then writes the Markdown page with the machine, its load, the exact commands and the tables.
+
+    .venv/bin/python scripts/bench_report.py                         # full: about 15 minutes
+    .venv/bin/python scripts/bench_report.py --quick --out /tmp/b.md  # shorter steps
+    .venv/bin/python scripts/bench_report.py --reuse /tmp/bench       # rewrite from saved output
+
+Every run's raw output is kept in ``--work`` (JSON and text), so the page can be rewritten
+without measuring again (``--reuse``).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any
+
+from _benchkit import REPO, machine, models_folder
+from bench_service import table as service_table
+
+_SCRIPTS = REPO / "scripts"
+
+
+def _run(command: list[str], log: Path) -> str:
+    print("running:", " ".join(command), file=sys.stderr, flush=True)
+    done = subprocess.run(command, capture_output=True, text=True, check=False, cwd=REPO)
+    log.write_text(done.stdout + ("\n--- stderr ---\n" + done.stderr if done.stderr else ""),
+                   encoding="utf-8")
+    if done.returncode != 0:
+        raise SystemExit(f"{command[1]} failed ({done.returncode}); see {log}")
+    return done.stdout
+
+
+def _shown(command: list[str]) -> str:
+    """A command as a reader types it from the repository root."""
+    parts = [".venv/bin/python"] + [str(Path(p).relative_to(REPO)) if p.startswith(str(REPO))
+                                    else p for p in command[1:]]
+    return " ".join(parts)
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--models", type=Path, default=None)
+    parser.add_argument("--train-tiny", type=Path, default=None, metavar="DIR")
+    parser.add_argument("--quick", action="store_true")
+    parser.add_argument("--smoke", action="store_true",
+                        help="every script in its smoke mode (seconds; checks the pipeline)")
+    parser.add_argument("--steps", default=None, help="passed to bench_service.py")
+    parser.add_argument("--work", type=Path, default=Path("/tmp/midstream-bench"))
+    parser.add_argument("--reuse", type=Path, default=None, metavar="DIR",
+                        help="write the page from the output saved in DIR; measure nothing")
+    parser.add_argument("--out", type=Path, default=REPO / "docs" / "benchmarks.md")
+    args = parser.parse_args()
+
+    work = args.reuse or args.work
+    work.mkdir(parents=True, exist_ok=True)
+    commands_file = work / "commands.json"
+    if args.reuse is None:
+        before = machine()
+        models, _ = models_folder(args.models, args.train_tiny)
+        model_args = ["--models", str(models)]
+        engine_cmd = [sys.executable, str(_SCRIPTS / "bench_engine.py"),
+                      "--model", str(models / "words.msm")]
+        service_cmd = [sys.executable, str(_SCRIPTS / "bench_service.py"), *model_args,
+                       "--json", str(work / "service.json")]
+        if args.quick:
+            service_cmd.append("--quick")
+        if args.steps:
+            service_cmd += ["--steps", args.steps]
+        memory_cmd = [sys.executable, str(_SCRIPTS / "bench_memory.py"), *model_args,
+                      "--json", str(work / "memory.json")]
+        if args.smoke:
+            for command in (engine_cmd, service_cmd, memory_cmd):
+                command.append("--smoke")
+        if (_SCRIPTS / "bench_engine.py").exists():
+            _run(engine_cmd, work / "engine.txt")
+        _run(service_cmd, work / "service.txt")
+        _run(memory_cmd, work / "memory.txt")
+        commands_file.write_text(json.dumps({
+            "engine": _shown(engine_cmd), "service": _shown(service_cmd),
+            "memory": _shown(memory_cmd), "machine_before": before,
+            "machine_after": machine()}, indent=2), encoding="utf-8")
+    commands = json.loads(commands_file.read_text(encoding="utf-8"))
+    service = json.loads((work / "service.json").read_text(encoding="utf-8"))
+    memory = json.loads((work / "memory.json").read_text(encoding="utf-8"))
+    engine_text = ((work / "engine.txt").read_text(encoding="utf-8")
+                   if (work / "engine.txt").exists() else "")
+    args.out.write_text(render(commands, service, memory, engine_text), encoding="utf-8")
+    print(f"wrote {args.out}", file=sys.stderr)
+    return 0
+
+
+def _engine_section(text: str) -> list[str]:
+    if not text:
+        return ["`scripts/bench_engine.py` was not found in this checkout; nothing measured.", ""]
+    body = text.split("\n--- stderr ---\n", maxsplit=1)[0].rstrip()
+    return ["```", body, "```", ""]
+
+
+def _load(info: dict[str, Any]) -> str:
+    return " / ".join(f"{x:.2f}" for x in info["loadavg"])
+
+
+def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, Any],
+           engine_text: str) -> str:
+    """The benchmarks page."""
+    m0, m1 = commands["machine_before"], commands["machine_after"]
+    eng = service["engine"]
+    steps = service["steps"]
+    largest = service["largest_passing"]
+    best = next((s for s in steps if s["conversations"] == largest), steps[0])
+    held, alone = memory["service"], memory["engine"]
+    per_conv = held.get("bytes_per_conversation", 0)
+    lines = [
+        "# Benchmarks",
+        "",
+        "Generated by `scripts/bench_report.py` from the output of the benchmark scripts; do "
+        "not edit by hand. **Absolute times depend on the machine and on whatever else ran on "
+        "it; the headline figures are ratios against baselines measured in the same run.**",
+        "",
+        "## Machine",
+        "",
+        f"- {m0['nproc']} CPUs: {m0['cpu_model']}; Python {m0['python']}; {m0['platform']}",
+        f"- load average (1 / 5 / 15 min) before the run: {_load(m0)}; after: {_load(m1)}. "
+        "The machine is shared with other developers' jobs: a load above the number of CPUs "
+        "means the pinned server core was shared too, so absolute figures are pessimistic.",
+        f"- models: {service['models']}",
+        f"- words: {service['words']}",
+        "",
+        "## Headline",
+        "",
+        "| measure | result | target (project brief, no source) |",
+        "|---|---|---|",
+        f"| largest N with p99 word→hypothesis ≤ {service['p99_budget_ms']:g} ms at "
+        f"{service['rate']:g} words/s for {service['seconds']:g} s, no errors, server on one "
+        f"core | **{largest}** conversations ({largest * service['rate']:g} words/s) | 1,000 |",
+        f"| server CPU per word ÷ engine-alone CPU per word (N={best['conversations']}) "
+        f"| {service['service_to_engine_cpu_ratio']:.2f}x | - |",
+        f"| server CPU per word ÷ server CPU per trivial RPC (DescribeModels) "
+        f"| {service['service_to_transport_cpu_ratio']:.2f}x | - |",
+        f"| p99 latency ÷ p99 of the trivial RPC at the same N and rate "
+        f"(N={best['conversations']}) "
+        f"| {best['p99_ratio_to_baseline']:.2f}x | - |",
+        f"| whole engine alone (both CRFs, bookkeeping), words per CPU second "
+        f"| {eng['words_per_cpu_s']:,.0f} | 10,000 |",
+        f"| memory per idle live conversation (server RSS growth ÷ N, N={held['opened']}, "
+        f"{held['words_each']} words each) | {per_conv / 1024:.1f} KiB | ≤ 50 KiB |",
+        f"| of which the engine alone (tracemalloc) | {alone['bytes_per_engine'] / 1024:.1f} KiB "
+        f"| - |",
+        "",
+        "## Live conversations per server core",
+        "",
+        f"`{commands['service']}`",
+        "",
+        "The server runs pinned to core 0 (`taskset -c 0`), the load generator on core 1. Each "
+        "step starts a fresh server, opens N conversations, then each sends one SwDA val word "
+        f"per event at {service['rate']:g} words/s. Latency is from just before a word is "
+        "written to the first update naming it. *Baseline*: the same N callers each making one "
+        "`DescribeModels` call per would-be word on the same server (a round trip with no "
+        "tagging). *Server CPU ms/word* is the server's CPU time over the window divided by the "
+        "words answered in it. *Generator CPU* near 100 % would mean the load generator, not "
+        "the server, limited the step. Stepping stops at the first step that misses the budget.",
+        "",
+        *service_table(steps),
+        "",
+        f"Engine alone (this process, pinned to the server's core, {eng['conversations']} "
+        f"interleaved conversations, {eng['words']:,} words): "
+        f"{eng['cpu_ms_per_word']:.3f} ms CPU per word = {eng['words_per_cpu_s']:,.0f} words "
+        "per CPU second.",
+        "",
+        "## Memory per idle live conversation",
+        "",
+        f"`{commands['memory']}`",
+        "",
+        "| measure | conversations | words each | per conversation |",
+        "|---|---|---|---|",
+        f"| server RSS growth ÷ live idle conversations | {held['opened']} | "
+        f"{held['words_each']} | {per_conv / 1024:.1f} KiB |",
+        f"| engine alone (tracemalloc, Python heap) | {alone['conversations']} | "
+        f"{alone['words_each']} | {alone['bytes_per_engine'] / 1024:.1f} KiB |",
+        "",
+        f"Errors while holding: {held['errors'] or 'none'}. RSS counts pages, so small N is "
+        "noisy; the server figure includes gRPC stream state and buffers, the session, its "
+        "replay buffer and history.",
+        "",
+        "## Word decoder alone",
+        "",
+        f"`{commands['engine']}` (owned by the word-model work; its output verbatim):",
+        "",
+        *_engine_section(engine_text),
+        "## Reproduce",
+        "",
+        "```",
+        ".venv/bin/python scripts/bench_report.py            # everything, writes this page",
+        commands["engine"],
+        commands["service"],
+        commands["memory"],
+        "midstream bench --target HOST:PORT --conversations 500 --corpus DIR   # any server",
+        "```",
+        "",
+    ]
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":
+    sys.exit(main())
