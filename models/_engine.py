@@ -7,9 +7,10 @@ values, splits each channel's open words into utterances at the currently hypoth
 labels every utterance whose cleaned words changed with the utterance-function tagger, and
 returns only what changed.
 
-Utterance ids are ``"<speaker>.<n>"``, numbered per speaker from 1. When a revised utterance
-end merges two tentative utterances, the later id is published once with no words and
-``final=True``: that utterance was dissolved.
+Utterance ids are ``"<speaker>.<n>"``, numbered per speaker from 1 in order of creation and
+never reused. When a revised utterance end merges two tentative utterances (or the only word of
+an utterance is withdrawn), the later id is published once with no words and ``final=True``:
+that utterance was dissolved, and its number is skipped from then on.
 
 Memory is bounded however long the conversation runs: the decoders keep a bounded window,
 the engine keeps only open (non-final) words and utterances, a bounded number of recent word
@@ -90,8 +91,8 @@ class _Channel:
     slots: dict[int, _Slot] = field(default_factory=dict)
     #: Keys of the words since the last final utterance end, in order.
     open_keys: list[int] = field(default_factory=list)
-    #: Index of the first open utterance (1-based per speaker).
-    base_index: int = 1
+    #: Number of the next utterance this speaker starts (1-based; never reused).
+    next_index: int = 1
     utterances: list[_OpenUtterance] = field(default_factory=list)
 
 
@@ -311,8 +312,11 @@ class ConversationEngine:
             slots = [channel.slots[k] for k in keys]
             ended = slots[-1].ends_utterance or close_all or len(keys) >= limit
             final = (ended and all(s.final for s in slots)) or close_all
-            entry = old[position] if position < len(old) else _OpenUtterance(
-                index=channel.base_index + position)
+            if position < len(old):
+                entry = old[position]
+            else:
+                entry = _OpenUtterance(index=channel.next_index)
+                channel.next_index += 1
             word_ids = tuple(s.word_id for s in slots)
             clean = tuple(s.text for s in slots if s.label not in REMOVED_FROM_CLEAN_TEXT)
             view = UtteranceView(speaker=channel.speaker, words=clean,
@@ -340,7 +344,6 @@ class ConversationEngine:
                 if slot is not None:
                     channel.slots.pop(slot.key, None)
             del channel.open_keys[:len(done.word_ids)]
-            channel.base_index += 1
             if done.view is not None and done.view.words:
                 self._context.append(done.view)
         channel.utterances = new

@@ -110,10 +110,8 @@ def test_hostile_event_streams_keep_the_engine_promises(
             words[word.word_id] = word
         for utterance in diff.utterances:
             before = utterances.get(utterance.utterance_id)
-            # The reuse of a dissolved utterance's id is the known fault pinned below; any
-            # other change to a final utterance fails here.
-            assert before is None or not before.final or not before.word_ids, \
-                "a final utterance changed"
+            # Dissolved utterances (final, no words) included: their ids are never reused.
+            assert before is None or not before.final, "a final utterance changed"
             utterances[utterance.utterance_id] = utterance
         for word_id in diff.withdrawn_word_ids:
             assert word_id in words and not words[word_id].final, "withdrew a final word"
@@ -128,13 +126,7 @@ def test_hostile_event_streams_keep_the_engine_promises(
     assert _run(bundle, events).diffs == outcome.diffs
 
 
-# Known fault, reported to the engine's owner: utterance ids are positional
-# (``base_index + position``), so when the last open utterance dissolves (its only word
-# withdrawn, or a revised end merges it into the one before) it is published final and empty,
-# and the next utterance of that speaker gets the same id: subscribers see a final utterance
-# change. strict=True makes this test fail once ids are never reused; then remove the marker
-# and the allowance for dissolved utterances in both fuzz tests.
-@pytest.mark.xfail(strict=True, reason="a dissolved utterance's id is reused by the next one")
+# Utterance ids are never reused: a dissolved utterance's number is skipped from then on.
 def test_a_dissolved_utterance_id_is_never_reused(bundle: ModelBundle) -> None:
     engine = bundle.new_engine()
     diffs = [engine.add_word("w0", Word(text="i", speaker="A")), engine.withdraw_word("w0")]

@@ -134,11 +134,8 @@ def _check_states(updates: list[pb.Update]) -> None:
             words[word.word_id] = word
         for utterance in update.utterances:
             before_u = utterances.get(utterance.utterance_id)
-            # Known engine fault (pinned in test_fuzz_engine.py): the id of a dissolved
-            # utterance (final, no words) is given again to the next one. Only that case is
-            # let through here; a final utterance with words must never change.
-            assert before_u is None or not before_u.final or not before_u.word_ids, \
-                "a final utterance changed"
+            # Dissolved utterances (final, no words) included: their ids are never reused.
+            assert before_u is None or not before_u.final, "a final utterance changed"
             utterances[utterance.utterance_id] = utterance
         for word_id in update.withdrawn_word_ids:
             assert not words.pop(word_id).final, "a final word was withdrawn"
