@@ -56,8 +56,9 @@ def _train_tiny(swda: Path, folder: Path) -> Path:
     return folder
 
 
-@pytest.fixture(scope="session")
-def models_dir(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory) -> Path:
+@pytest.fixture(name="models_dir", scope="session")
+def models_dir_fixture(request: pytest.FixtureRequest,
+                       tmp_path_factory: pytest.TempPathFactory) -> Path:
     """The shipped models, or tiny real ones trained from SwDA train when none are shipped."""
     if any(WEIGHTS.glob("*.msm")):
         return WEIGHTS
@@ -77,8 +78,8 @@ class Served:
         return f"127.0.0.1:{self.server.port}"
 
 
-@pytest.fixture(scope="module")
-def served(models_dir: Path) -> Iterator[Served]:
+@pytest.fixture(name="served", scope="module")
+def served_fixture(models_dir: Path) -> Iterator[Served]:
     """A real server with real models on a free loopback port, for one test module."""
     weights = models_dir
     loop = asyncio.new_event_loop()
@@ -170,3 +171,8 @@ class CuttingProxy:
         if self._server is not None:
             self._server.close()
             await self._server.wait_closed()
+
+
+# Older spellings that other test modules import (``from client_kit import served``).
+models_dir = models_dir_fixture
+served = served_fixture

@@ -5,7 +5,13 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
-from client_kit import CuttingProxy, Served, free_port, models_dir, served
+from client_kit import (  # noqa: F401 - fixtures are found by name
+    CuttingProxy,
+    Served,
+    free_port,
+    models_dir_fixture,
+    served_fixture,
+)
 from midstream import (
     EventError,
     HypothesisUpdate,
@@ -28,8 +34,6 @@ from midstream.client import (
 )
 from midstream.client._demo_script import demo_events
 from midstream.client._results import ServerEvent
-
-__all__ = ["models_dir", "served"]  # fixtures used by this module
 
 pytestmark = pytest.mark.corpus
 

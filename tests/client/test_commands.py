@@ -13,11 +13,11 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
     CTM_TEXT,
     Served,
     free_port,
-    models_dir,
-    served,
+    models_dir_fixture,
+    served_fixture,
     shipped_weights,
 )
-from midstream import DisfluencyLabel, Word
+from midstream import DisfluencyLabel, HypothesisUpdate, Word
 from midstream.client import AddWord, SyncClient
 from midstream.client._cli import main
 from midstream.client._records import read_log
@@ -147,9 +147,8 @@ def test_replayed_swda_conversation_ends_on_the_batch_labels_and_reports(
                          "--server", served.target], capsys)
     assert code == 0
     followed = [json.loads(line) for line in out.splitlines()]
-    logged = [e for e, _ in log.events if type(e).__name__ == "HypothesisUpdate"]
-    assert [r["seq"] for r in followed if r["type"] == "update"] == [
-        e.seq for e in logged]  # type: ignore[attr-defined]
+    logged = [e.seq for e, _ in log.events if isinstance(e, HypothesisUpdate)]
+    assert [r["seq"] for r in followed if r["type"] == "update"] == logged
 
     # And inspect it live, through GetRevisions.
     code, out, _ = _run(["inspect", "--conversation", log.conversation_id,
