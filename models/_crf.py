@@ -187,6 +187,27 @@ class CrfTagger:
                 for t in range(len(xseq))
             ]
 
+    def tag_with_marginals(self, xseq: Sequence[ItemFeatures],
+                           position: int = -1) -> tuple[list[str], dict[str, float]]:
+        """Viterbi labels, and the marginal of every label at one ``position`` only.
+
+        One ``set()`` for both, and marginals for a single item: the utterance-function tagger
+        needs every label's probability only for the utterance it is labelling (the last).
+
+        Raises
+        ------
+        IndexError
+            ``position`` is outside ``xseq``.
+        """
+        if not xseq:
+            return [], {}
+        t = range(len(xseq))[position]
+        with self._lock:
+            self._tagger.set(_items(xseq))
+            labels: list[str] = list(self._tagger.tag())
+            marginals = {label: float(self._tagger.marginal(label, t)) for label in self._labels}
+        return labels, marginals
+
 
 # crfsuite's feature chunk ("FEAT", size, count) then 20-byte records (crf1d_model.c).
 _FEATURE_RECORD = np.dtype([("type", "<u4"), ("src", "<u4"), ("dst", "<u4"), ("w", "<f8")])

@@ -474,8 +474,7 @@ class FunctionTagger:
             previous = view
         # The current utterance changes with every word: not worth caching.
         xseq.append(utterance_features(current, previous, self._config))
-        labels, _ = self._crf.tag_with_confidence(xseq)
-        marginals = self._crf.marginals(xseq)[-1]
+        labels, marginals = self._crf.tag_with_marginals(xseq)
         return self._guess(labels[-1], marginals)
 
     def label_conversation(self, utterances: Sequence[UtteranceView]) -> list[FunctionGuess]:
