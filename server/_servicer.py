@@ -35,7 +35,12 @@ from midstream.server._limits import SpeakerTimeline, check_batch_size, check_id
 from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Bundle, load_bundle
 from midstream.server._session import Session, SessionRegistry, message_budget
-from midstream.server._status import FieldLimitError, ProtocolStateError, status_code
+from midstream.server._status import (
+    FieldLimitError,
+    InternalError,
+    ProtocolStateError,
+    status_code,
+)
 from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
@@ -96,6 +101,12 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         _log.debug("refusal detail: %s", error)
         await context.abort(code, str(error))
         raise AssertionError("abort returned")  # pragma: no cover - abort always raises
+
+    @staticmethod
+    def _log_internal(where: str, error: Exception) -> None:
+        # Only the type at ERROR: an engine's message or traceback may quote words.
+        _log.error("internal error in %s (%s)", where, type(error).__name__)
+        _log.debug("internal error detail", exc_info=error)
 
     async def _refuse_stream(
         self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
@@ -200,6 +211,13 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     for message in session.since(sent):
                         yield message
                     await self._refuse_stream(context, exc)
+                except Exception as exc:  # a bug must not leave followers hanging
+                    self._log_internal(session.id, exc)
+                    self.registry.close(session, pb.END_REASON_UNSPECIFIED)
+                    for message in session.since(sent):
+                        yield message
+                    await self._fail(context, InternalError(
+                        f"internal error; conversation {session.id} was finished"))
                 for message in session.since(sent):
                     sent = message.update.seq
                     yield message
@@ -326,6 +344,9 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             words, utterances = await self._tag(request)
         except MidstreamError as exc:
             await self._fail(context, exc)
+        except Exception as exc:  # report INTERNAL without logging words
+            self._log_internal("(transcript)", exc)
+            await self._fail(context, InternalError("internal error while tagging"))
         reply = pb.TagTranscriptReply(
             words=[cv.word_state_to_wire(w) for w in words],
             utterances=[cv.utterance_state_to_wire(u) for u in utterances],

@@ -217,10 +217,12 @@ class Session:
         engine, self._engine = self._engine, None
         try:
             diff = engine.finish()
-        except EventError:
-            # The engine already ended (it should not have): publish the final mark anyway so
-            # followers are not left waiting.
-            _log.exception("engine of conversation %s refused finish", self.id)
+        except Exception as exc:  # whatever broke, followers get the end
+            # Publish the final mark anyway so followers are not left waiting. Only the type is
+            # logged: an engine's message may quote words.
+            _log.error("engine of conversation %s failed to finish (%s)", self.id,
+                       type(exc).__name__)
+            _log.debug("engine failure detail", exc_info=True)
             diff = HypothesisDiff()
         final = self._publish(diff, None, final=True)
         assert final is not None  # a final update is always published

@@ -15,7 +15,8 @@ The server refines the root tree with four kinds whose status code differs from 
     │   └── FieldLimitError                 INVALID_ARGUMENT     (a field too long/many)
     ├── ModelError                          FAILED_PRECONDITION
     ├── NotFoundError                       NOT_FOUND
-    └── UnavailableError                    UNAVAILABLE
+    ├── UnavailableError                    UNAVAILABLE
+    └── InternalError                       INTERNAL             (a server or engine fault)
 
 Examples
 --------
@@ -70,11 +71,17 @@ _CODES: tuple[tuple[type[MidstreamError], grpc.StatusCode], ...] = (
 )
 
 
+class InternalError(MidstreamError):
+    """A fault of the server or the engine rather than of the caller's input."""
+
+
 def status_code(error: MidstreamError) -> grpc.StatusCode:
     """The gRPC status code a Midstream error is reported with.
 
     ``UNKNOWN`` only for a bare :class:`~midstream.MidstreamError` (a kind nobody refined).
     """
+    if isinstance(error, InternalError):
+        return grpc.StatusCode.INTERNAL
     for kind, code in _CODES:
         if isinstance(error, kind):
             return code

@@ -7,12 +7,13 @@ import logging
 import shutil
 import subprocess
 from pathlib import Path
+from typing import Any
 
 import grpc
 import pytest
 from grpc_health.v1 import health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection_pb2, reflection_pb2_grpc
-from midstream import InputError
+from midstream import HypothesisDiff, InputError, Word
 from midstream.models import ModelBundle
 from midstream.server import MidstreamServer, ServerConfig
 from midstream.wire import midstream_pb2 as pb
@@ -29,6 +30,7 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
     running_fixture,
     spoken,
     start_server_fixture,
+    until_followers,
     words_event,
 )
 
@@ -155,3 +157,58 @@ async def test_no_transcript_words_in_logs_at_info(running: Running,
     for record in info:
         for word in secret_words:
             assert word not in record.getMessage().lower()
+
+
+class _BrokenEngine:
+    """The real engine, except that the word "boom" makes it fail like a bug would."""
+
+    def __init__(self, inner: Any) -> None:
+        self._inner = inner
+
+    def add_word(self, word_id: str, word: Word) -> HypothesisDiff:
+        if word.text == "boom":
+            raise RuntimeError("engine bug while tagging 'zanzibar'")
+        result: HypothesisDiff = self._inner.add_word(word_id, word)
+        return result
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._inner, name)
+
+
+class _BrokenBundle:
+    def __init__(self, inner: ModelBundle) -> None:
+        self._inner = inner
+
+    def describe(self) -> Any:
+        return self._inner.describe()
+
+    def new_engine(self) -> _BrokenEngine:
+        return _BrokenEngine(self._inner.new_engine())
+
+
+async def test_engine_fault_is_internal_finishes_the_conversation_and_logs_no_words(
+    start_server: ServerFactory, bundle: ModelBundle, caplog: pytest.LogCaptureFixture,
+) -> None:
+    caplog.set_level(logging.INFO)
+    running = await start_server(given=_BrokenBundle(bundle))
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    await caller.send(words_event(spoken("w1", "zanzibar", start=0.0)))
+    follower = asyncio.create_task(follow_all(running.stub, conversation, from_seq=1))
+    await until_followers(running, conversation, 1)
+    await caller.call.write(words_event(spoken("w2", "boom", start=1.0)))
+    final = await caller.call.read()
+    assert final.update.conversation_final
+    with pytest.raises(grpc.aio.AioRpcError) as info:
+        await caller.call.read()
+    assert info.value.code() == grpc.StatusCode.INTERNAL
+    seen = await asyncio.wait_for(follower, 5)
+    assert seen[-1].ended.reason == pb.END_REASON_UNSPECIFIED
+    assert all(w.final for w in seen[-2].update.words)
+    with pytest.raises(grpc.aio.AioRpcError) as info:
+        await running.stub.TagTranscript(pb.TagTranscriptRequest(
+            items=[pb.TranscriptItem(word=spoken("t1", "boom"))]))
+    assert info.value.code() == grpc.StatusCode.INTERNAL
+    errors = [r for r in caplog.records if r.levelno >= logging.INFO]
+    assert any("RuntimeError" in r.getMessage() for r in errors)
+    assert not any("zanzibar" in r.getMessage() for r in errors)

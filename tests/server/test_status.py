@@ -25,6 +25,7 @@ from midstream.server._session import Session
 from midstream.server._status import (
     ConflictError,
     FieldLimitError,
+    InternalError,
     PositionError,
     ProtocolStateError,
 )
@@ -45,6 +46,7 @@ EXPECTED = {
     ModelError: grpc.StatusCode.FAILED_PRECONDITION,
     NotFoundError: grpc.StatusCode.NOT_FOUND,
     UnavailableError: grpc.StatusCode.UNAVAILABLE,
+    InternalError: grpc.StatusCode.INTERNAL,
 }
 
 
