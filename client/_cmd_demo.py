@@ -19,7 +19,6 @@ from midstream.client._output import Printer
 from midstream.client._records import SentWord
 from midstream.client._results import ServerEvent
 from midstream.client._streaming import Pacing, stream_conversation
-from midstream.server import MidstreamServer, ServerConfig
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -45,6 +44,9 @@ def run(args: argparse.Namespace) -> int:
 
 
 async def _run(args: argparse.Namespace) -> int:
+    # The server and its models load only for the demo, not for every command's start-up.
+    from midstream.server import MidstreamServer, ServerConfig  # noqa: PLC0415
+
     live = sys.stdout.isatty()
     printer = Printer(sys.stdout, json_lines=False, live=live, clean=args.clean,
                       rates=args.rates)

@@ -17,7 +17,6 @@ from midstream._errors import InputError
 from midstream.client._analysis import Analysis, analyse, log_from_history
 from midstream.client._common import add_server_options, client_from_args
 from midstream.client._records import read_log
-from midstream.client._report import render_report
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -45,6 +44,9 @@ def run(args: argparse.Namespace) -> int:
     analysis = analyse(read_log(args.log)) if args.log is not None else asyncio.run(_live(args))
     _print_timeline(analysis, words=set(args.word or ()), changed_only=args.changed)
     if args.html is not None:
+        # matplotlib takes seconds to import: only a report pays for it, not every command.
+        from midstream.client._report import render_report  # noqa: PLC0415
+
         try:
             args.html.write_text(render_report(analysis), encoding="utf-8")
         except OSError as exc:

@@ -6,7 +6,7 @@ import json
 from pathlib import Path
 
 import pytest
-from hypothesis import given
+from hypothesis import given, settings
 from hypothesis import strategies as st
 from midstream import TranscriptFormatError, Word
 from midstream.client import AddWord, ReplaceWord, SpeakerHint, WithdrawWord
@@ -152,6 +152,7 @@ def _jsonl_lines(draw: st.DrawFn) -> str:
     return json.dumps(record)
 
 
+@settings(max_examples=60, deadline=None)
 @given(st.lists(_jsonl_lines(), max_size=8))
 def test_jsonl_parser_parses_or_raises_format_error(lines: list[str]) -> None:
     parser = JsonlEventParser("prop.jsonl")
@@ -171,6 +172,7 @@ _ctm_field = st.one_of(st.text(max_size=10), st.floats().map(str), st.integers()
                        st.sampled_from(["A", "B", "call", "0.5", "-1", "inf", "nan", "1e309"]))
 
 
+@settings(max_examples=60, deadline=None)
 @given(st.lists(st.lists(_ctm_field, max_size=7).map(" ".join) | st.text(max_size=40),
                 max_size=8))
 def test_ctm_parser_parses_or_raises_format_error(lines: list[str]) -> None:
@@ -188,6 +190,7 @@ def test_ctm_parser_parses_or_raises_format_error(lines: list[str]) -> None:
             assert 0.0 <= word.start <= word.end
 
 
+@settings(max_examples=60, deadline=None)
 @given(st.lists(st.tuples(st.sampled_from(["A", "B", "spk_3"]),
                           st.text(alphabet="abcdefghij'-", min_size=1, max_size=8),
                           st.floats(0, 1e4), st.floats(0, 10),
