@@ -64,7 +64,8 @@ class Printer:
         else:
             for utterance_id in changed:
                 utterance = self.board.utterances[utterance_id]
-                if utterance.final and utterance_id not in self._printed:
+                # An utterance the tagger dissolved (its words moved elsewhere) ends empty.
+                if utterance.final and utterance_id not in self._printed and utterance.word_ids:
                     self._printed.add(utterance_id)
                     print(utterance_line(self.board, utterance, clean=self._clean),
                           file=self.out, flush=True)

@@ -130,33 +130,36 @@ class TerminalView:
         self._printed: set[str] = set()
 
     def refresh(self, changed: Iterable[str]) -> None:
+        """Redraw after an update that changed the utterances ``changed``."""
         for utterance_id in changed:
             if utterance_id not in self._open and utterance_id not in self._printed:
                 self._open.append(utterance_id)
         if self._drawn:
             self._out.write(f"\x1b[{self._drawn}A")
-        lines: list[str] = []
+        finished: list[str] = []
+        live: list[str] = []
         still_open: list[str] = []
         for utterance_id in self._open:
             utterance = self._board.utterances[utterance_id]
             line = utterance_line(self._board, utterance, clean=self._clean)[: self._width]
-            if utterance.final:
-                # Finished: print it above the live area, never to be redrawn.
-                self._out.write(f"\x1b[2K{line}\n")
-                self._printed.add(utterance_id)
-            else:
+            if not utterance.final:
                 still_open.append(utterance_id)
-                lines.append(line)
-        for line in lines:
+                live.append(line)
+                continue
+            self._printed.add(utterance_id)
+            # An utterance the tagger dissolved (its words moved elsewhere) ends empty.
+            if utterance.word_ids:
+                finished.append(line)
+        # Finished lines go above the live area and are never redrawn.
+        for line in (*finished, *live):
             self._out.write(f"\x1b[2K{line}\n")
-        # Erase lines left over from a taller previous drawing.
-        leftover = self._drawn - len(lines) - (len(self._open) - len(still_open))
-        for _ in range(max(0, leftover)):
-            self._out.write("\x1b[2K\n")
+        leftover = self._drawn - len(finished) - len(live)
         if leftover > 0:
+            # Erase what remains of a taller previous drawing, then return above it.
+            self._out.write("\x1b[2K\n" * leftover)
             self._out.write(f"\x1b[{leftover}A")
         self._open = still_open
-        self._drawn = len(lines)
+        self._drawn = len(live)
         self._out.flush()
 
 
