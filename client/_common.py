@@ -17,7 +17,13 @@ from typing import TextIO
 from midstream._errors import CorpusNotFoundError, InputError
 from midstream._types import Conversation
 from midstream.client._client import Client
-from midstream.client._inputs import CtmParser, JsonlEventParser, TimedEvent, read_events
+from midstream.client._inputs import (
+    MAX_LINE_CHARS,
+    CtmParser,
+    JsonlEventParser,
+    TimedEvent,
+    read_events,
+)
 from midstream.client._records import GoldWord
 from midstream.client._results import AddWord
 from midstream.corpora import read_corpus
@@ -115,15 +121,28 @@ def read_conversation(folder: Path, *, split: str | None, conversation_id: str |
     raise InputError(f"{where}: no conversation {wanted!r}")
 
 
+def _is_transcript_file(path: Path) -> bool:
+    """Whether a ``.jsonl`` file is Midstream's annotated transcript format (its header line)."""
+    if path.suffix.lower() != ".jsonl" or not path.is_file():
+        return False
+    try:
+        with path.open(encoding="utf-8") as handle:
+            first = handle.readline(MAX_LINE_CHARS)
+    except (OSError, UnicodeDecodeError):
+        return False
+    return '"midstream-transcript"' in first and '"format"' in first
+
+
 def _short_id(conversation_id: str) -> str:
-    # SwDA ids may carry a prefix ("sw_0001_4325" vs "4325"); let users type the number.
-    return conversation_id.rsplit("_", 1)[-1]
+    # Let users type a SwDA conversation's number ("4802") for its id ("sw4802").
+    return conversation_id.lstrip("abcdefghijklmnopqrstuvwxyz_")
 
 
 def load_input(args: argparse.Namespace) -> LoadedInput:
     """The events named by the input options of a command (a file or a corpus conversation)."""
     path = Path(args.input)
-    if args.format == "corpus" or (args.format == "auto" and path.is_dir()):
+    if args.format == "corpus" or (args.format == "auto" and (
+            path.is_dir() or _is_transcript_file(path))):
         conversation = read_conversation(path, split=args.split,
                                          conversation_id=args.conversation)
         return conversation_events(conversation)
