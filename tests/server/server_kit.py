@@ -52,10 +52,10 @@ from midstream.models._artifact import save_artifact
 from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
 from midstream.models._train_words import WordTrainingConfig, train_word_artifact
 swda, out = Path(sys.argv[1]), Path(sys.argv[2])
-conversations = list(itertools.islice(read_corpus(swda, split="train"), 12))
-save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=30)),
+conversations = list(itertools.islice(read_corpus(swda, split="train"), 8))
+save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=25)),
               out / "words.msm")
-save_artifact(train_function_model(conversations, FunctionTrainingOptions(max_iterations=30)),
+save_artifact(train_function_model(conversations, FunctionTrainingOptions(max_iterations=25)),
               out / "functions.msm")
 """
 

@@ -128,6 +128,7 @@ async def test_stop_with_grace_finalises_and_delivers_everything(
     assert (await health.read()).status == health_pb2.HealthCheckResponse.SERVING
     stopping = asyncio.create_task(running.server.stop(5))
     assert (await health.read()).status == health_pb2.HealthCheckResponse.NOT_SERVING
+    health.cancel()  # an open health watch would hold the stop for the whole grace period
     for caller, follower in watched:
         final = await asyncio.wait_for(caller.call.read(), 5)
         ended = await caller.call.read()

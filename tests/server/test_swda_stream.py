@@ -24,8 +24,8 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
 async def test_swda_val_conversation_streamed_equals_tagged_transcript(
     running: Running, swda_dir: Path,
 ) -> None:
-    # The shortest val conversation keeps the test quick; val, never test (held back).
-    conversation = min(read_corpus(swda_dir, split="val"), key=lambda c: len(c.words))
+    # The first val conversation (val, never test) short enough to keep the test quick.
+    conversation = next(c for c in read_corpus(swda_dir, split="val") if len(c.words) <= 800)
     spoken = [cv.spoken_word_to_wire(f"w{i}", w) for i, w in enumerate(conversation.words)]
     assert len(spoken) >= 50
     events = [open_event(), *(words_event(w) for w in spoken), CLOSE]
