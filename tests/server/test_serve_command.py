@@ -12,9 +12,9 @@ from pathlib import Path
 
 import grpc
 import pytest
-from midstream import InputError
+from midstream import InputError, ModelError, NotFoundError
 from midstream.client import _cmd_serve
-from midstream.server import ServerConfig
+from midstream.server import MidstreamServer, ServerConfig
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 from server_kit import (  # noqa: F401 - fixtures are found by name
@@ -98,3 +98,20 @@ def test_token_is_read_from_the_named_variable(monkeypatch: pytest.MonkeyPatch) 
     config = _config("--token-env", "OUR_TOKEN", "--idle-timeout", "7")
     assert config.token == "abc" and config.limits.idle_timeout_s == 7
     assert "abc" not in repr(config)
+
+
+async def test_default_config_serves_the_shipped_models_or_says_they_are_missing() -> None:
+    # No flags means the shipped models: they start the server when present and give one clear
+    # error naming the folder when not (never a crash or a half-started server).
+    shipped = Path(__file__).resolve().parents[2] / "models" / "weights"
+    server = MidstreamServer(_config())
+    if list(shipped.glob("*.msm")):
+        await server.start()
+        try:
+            assert server.port > 0
+        finally:
+            await server.stop(0)
+    else:
+        with pytest.raises((NotFoundError, ModelError), match="weights"):
+            await server.start()
+        await server.stop(0)
