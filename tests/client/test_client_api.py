@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import pytest
@@ -15,6 +16,7 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
 from midstream import (
     EventError,
     HypothesisUpdate,
+    InputError,
     ModelError,
     NotFoundError,
     UnavailableError,
@@ -34,6 +36,7 @@ from midstream.client import (
 )
 from midstream.client._demo_script import demo_events
 from midstream.client._results import ServerEvent
+from midstream.server import MidstreamServer, ServerConfig
 
 pytestmark = pytest.mark.corpus
 
@@ -160,3 +163,21 @@ def test_sync_client_wraps_the_async_one(served: Served) -> None:
     assert isinstance(followed[-1], Ended)
     with pytest.raises(UnavailableError, match="not connected"):
         client.describe_models()
+
+
+async def test_the_token_is_sent_and_a_missing_one_is_named(models_dir: Path) -> None:
+    server = MidstreamServer(ServerConfig(host="127.0.0.1", port=0, models_dir=models_dir,
+                                          token="s3cret", grace_s=0.5))
+    await server.start()
+    try:
+        target = f"127.0.0.1:{server.port}"
+        async with Client(target, token="s3cret") as client:
+            assert await client.describe_models()
+        async with Client(target) as client:
+            with pytest.raises(InputError, match="UNAUTHENTICATED"):
+                await client.list_conversations()
+        async with Client(target, token="wrong") as client:
+            with pytest.raises(InputError, match=re.escape(target)):
+                await client.list_conversations()
+    finally:
+        await server.stop(0.5)
