@@ -80,7 +80,6 @@ class Follower:
         self._queue: deque[pb.ServerMessage] = deque()
         self._wake = asyncio.Event()
         self._lagged_from: int | None = None
-        self.delivered_seq = 0
 
     def offer(self, message: pb.ServerMessage, seq: int) -> None:
         """Queue an update, or mark the follower lagged when its queue is full."""
