@@ -174,6 +174,8 @@ def test_random_streams_over_grpc_keep_every_promise(stub: pb_grpc.MidstreamStub
     if code == grpc.StatusCode.OK:
         assert [e.reason for e in ended] == [pb.END_REASON_CLOSED]
     # The caller's own stream carries `ended` only when the conversation closed normally.
+    # At most 40 events make at most 41 updates, all still in the replay buffer (50 updates
+    # under SMALL_LIMITS), so the late follower gets every one rather than a gap.
     late = list(stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=1),
                             timeout=WAIT_S))
     assert [m.update for m in late[:-1]] == updates
