@@ -119,6 +119,11 @@ class MidstreamServer:
                 ("grpc.max_send_message_length", limits.max_message_bytes),
                 # Two servers on one port would split traffic unpredictably.
                 ("grpc.so_reuseport", 0),
+                # Ping idle connections so a peer that vanished without closing (a dead network)
+                # is noticed within about 80 s, before the idle timeout (common practice, no
+                # source).
+                ("grpc.keepalive_time_ms", 60_000),
+                ("grpc.keepalive_timeout_ms", 20_000),
             ],
         )
         self._servicer = MidstreamServicer(bundle, limits, self.metrics)
