@@ -70,7 +70,10 @@ async def _run(args: argparse.Namespace) -> int:
         pacing = Pacing(speed=max(args.speed, 0.0))
 
     def welcome(message: Welcome) -> None:
-        if not args.json:
+        if args.json:
+            # The first record names the conversation, so the output is a log inspect can read.
+            printer.event(message)
+        else:
             conversation = message.conversation_id
             print(f"conversation {conversation}: follow it with "
                   f"'midstream subscribe {conversation}'", file=sys.stderr, flush=True)

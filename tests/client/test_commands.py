@@ -74,7 +74,7 @@ def test_tag_reads_jsonl_from_stdin_and_prints_json_lines(
     assert code == 0, err
     records = [json.loads(line) for line in out.splitlines()]
     kinds = [r["type"] for r in records]
-    assert kinds[0] == "update" and kinds[-2:] == ["ended", "rates"]
+    assert kinds[:2] == ["welcome", "update"] and kinds[-2:] == ["ended", "rates"]
     assert records[-1]["caution"] == RATES_CAUTION
     updates = [r for r in records if r["type"] == "update"]
     assert [u["seq"] for u in updates] == list(range(1, len(updates) + 1))
