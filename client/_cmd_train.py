@@ -82,6 +82,22 @@ def _register_functions(tasks: argparse._SubParsersAction[argparse.ArgumentParse
     parser.set_defaults(handler=functions.run)
 
 
+def _command_line(args: argparse.Namespace) -> str:
+    """The effective command, defaults spelled out, to reproduce a model exactly."""
+    parts = ["midstream", "train", "words", str(args.corpus)]
+    if args.split is not None:
+        parts += ["--split", args.split]
+    for flag, values in (("--c1", args.c1), ("--c2", args.c2), ("--min-freq", args.min_freq),
+                         ("--restart-span", args.restart_span)):
+        parts += [flag, *(str(v) for v in values)]
+    parts += ["--max-iterations", str(args.max_iterations)]
+    if len(args.c1) * len(args.c2) * len(args.min_freq) * len(args.restart_span) > 1:
+        parts += ["--cv-folds", str(args.cv_folds), "--cv-subset", str(args.cv_subset),
+                  "--seed", str(args.seed)]
+    parts += ["--out", str(args.out)]
+    return " ".join(shlex.quote(p) for p in parts)
+
+
 def run_words(args: argparse.Namespace) -> int:
     if args.out is None and not args.cv_only:
         raise InputError("--out is required (the model file to write) unless --cv-only")
@@ -98,7 +114,7 @@ def run_words(args: argparse.Namespace) -> int:
                                                   args.restart_span)]
     chosen = base
     metadata: dict[str, object] = {
-        "created_by": "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
+        "created_by": _command_line(args),
         "corpus": args.corpus.name,
         "split": args.split,
         "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
