@@ -12,15 +12,19 @@ from pathlib import Path
 
 import grpc
 import pytest
-from midstream import InputError, ModelError, NotFoundError
+from midstream import InputError, ModelError, NotFoundError, UnavailableError
 from midstream.client import _cmd_serve
+from midstream.models import ModelBundle
 from midstream.server import MidstreamServer, ServerConfig
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 from server_kit import (  # noqa: F401 - fixtures are found by name
     Caller,
+    ServerFactory,
+    bundle_fixture,
     models_dir_fixture,
     spoken,
+    start_server_fixture,
     words_event,
 )
 
@@ -115,3 +119,13 @@ async def test_default_config_serves_the_shipped_models_or_says_they_are_missing
         with pytest.raises((NotFoundError, ModelError), match="weights"):
             await server.start()
         await server.stop(0)
+
+
+async def test_a_port_in_use_is_a_clear_error(start_server: ServerFactory,
+                                              bundle: ModelBundle) -> None:
+    running = await start_server()
+    taken = running.server.port
+    second = MidstreamServer(ServerConfig(port=taken), bundle=bundle)
+    with pytest.raises(UnavailableError, match=f"cannot listen on 127.0.0.1:{taken}"):
+        await second.start()
+    await second.stop(0)
