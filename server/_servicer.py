@@ -406,7 +406,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             pb.ModelDescription(
                 kind=info.kind, name=info.name, format_version=info.format_version,
                 labels=list(info.labels), sha256=info.sha256,
-                training_summary_json=json.dumps(dict(info.training_summary), sort_keys=True),
+                training_summary_json=json.dumps(dict(info.training_summary), sort_keys=True,
+                                                 default=str),
             )
             for info in self.bundle.describe()
         ])
