@@ -456,8 +456,8 @@ class HoldResult:
 
 
 async def hold_conversations(config: LoadConfig, script: WordScript, *, words_each: int,
-                             probe: ProcessProbe, warm_up: int = 8,
-                             settle_s: float = 2.0) -> HoldResult:
+                             probe: ProcessProbe, warm_up: int = 8, settle_s: float = 2.0,
+                             bare: bool = False) -> HoldResult:
     """Open ``config.conversations`` conversations, send each a few words, and hold them idle.
 
     Each conversation sends ``words_each`` words one event at a time, waiting for each word's
@@ -466,6 +466,10 @@ async def hold_conversations(config: LoadConfig, script: WordScript, *, words_ea
     ``warm_up`` conversations are run to the end first, so allocations made once per server
     (first stream, first decode) are not charged to the measured ones. ``config.rate``,
     ``seconds`` and ``workload`` are not used.
+
+    ``bare=True`` is the transport baseline: each stream is started but sends nothing (no
+    ``open``, so no session and no engine exist), measuring what an open gRPC stream and its
+    waiting handler cost. The server's ``idle_timeout_s`` must outlast the hold.
     """
     result = HoldResult(conversations=config.conversations, words_each=words_each)
     channels = [_channel(config, i) for i in range(config.channels)]
@@ -480,6 +484,15 @@ async def hold_conversations(config: LoadConfig, script: WordScript, *, words_ea
         call = stub.Converse(metadata=metadata)
         counted = False
         try:
+            if bare and hold:
+                await call.wait_for_connection()
+                result.opened += 1
+                idle += 1
+                counted = True
+                if idle == config.conversations:
+                    all_idle.set()
+                await release.wait()
+                return
             await call.write(pb.ClientEvent(open=pb.OpenConversation()))
             welcome = await call.read()
             if welcome is grpc.aio.EOF or welcome.WhichOneof("body") != "welcome":

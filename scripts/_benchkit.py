@@ -70,7 +70,15 @@ def machine() -> dict[str, Any]:
                 break
     except OSError:
         pass
+    pressure = None
+    try:
+        # "some avg60": share of the last minute in which a runnable task waited for a CPU.
+        first = Path("/proc/pressure/cpu").read_text(encoding="ascii").splitlines()[0]
+        pressure = float(first.split()[2].removeprefix("avg60="))
+    except (OSError, IndexError, ValueError):
+        pass
     return {
+        "cpu_pressure_avg60": pressure,
         "nproc": os.cpu_count(),
         "cpus_usable": len(os.sched_getaffinity(0)),
         "cpu_model": model,

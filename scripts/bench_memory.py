@@ -5,6 +5,9 @@ SwDA val words (one event each, waiting for its update) and then left open and i
 server's resident set growth divided by N is the memory one idle live conversation costs,
 transport included (stream state, buffers, the session, its replay buffer and history).
 
+Transport baseline, in the same run: N gRPC streams on another fresh server that send nothing
+(no ``open``: no session, no engine), so the difference is what the conversation itself costs.
+
 Engine alone, in the same run: N conversation engines in this process, each fed the same
 words, measured with ``tracemalloc`` (Python allocations only; the CRF library's C state is
 shared by every engine, not per conversation). The difference between the two is what the
@@ -92,12 +95,18 @@ def main() -> int:
     print(f"models: {models_note}")
 
     pin_self(args.client_core)
-    with spawn_server(models=models, cpu=args.server_core,
-                      live=max(256, args.conversations + 16), token=None) as (target, pid):
-        held = asyncio.run(hold_conversations(
-            LoadConfig(target=target, conversations=args.conversations,
-                       ramp_s=min(10.0, args.conversations / 200), channels=args.channels),
-            script, words_each=args.words, probe=ProcessProbe(pid))).summary()
+
+    def hold(*, bare: bool) -> dict[str, Any]:
+        # A fresh server each time: RSS rarely shrinks, so one measure would hide the next.
+        with spawn_server(models=models, cpu=args.server_core,
+                          live=max(256, args.conversations + 16), token=None) as (target, pid):
+            return asyncio.run(hold_conversations(
+                LoadConfig(target=target, conversations=args.conversations,
+                           ramp_s=min(10.0, args.conversations / 200), channels=args.channels),
+                script, words_each=args.words, probe=ProcessProbe(pid), bare=bare)).summary()
+
+    held = hold(bare=False)
+    bare = hold(bare=True)
     engine = engine_memory(models, script, conversations=args.conversations,
                            words_each=args.words)
     service = held.get("bytes_per_conversation", 0)
@@ -108,16 +117,21 @@ def main() -> int:
           f"| {service:,} | {service / 1024:.1f} |")
     print(f"| engine alone (tracemalloc) | {engine['conversations']} | {args.words} "
           f"| {engine['bytes_per_engine']:,} | {engine['bytes_per_engine'] / 1024:.1f} |")
+    bare_bytes = bare.get("bytes_per_conversation", 0)
+    print(f"| baseline: open gRPC stream, no conversation | {bare['opened']} | 0 "
+          f"| {bare_bytes:,} | {bare_bytes / 1024:.1f} |")
     print()
-    errors = held["error_count"]
-    print(f"errors: {held['errors'] or 'none'}")
+    errors = held["error_count"] + bare["error_count"]
+    print(f"errors: {held['errors'] or 'none'}; baseline {bare['errors'] or 'none'}")
     print(f"target <= {TARGET_BYTES // 1024} KiB per idle live conversation: "
           f"{'met' if service <= TARGET_BYTES and not errors else 'NOT met'} "
           f"({service / TARGET_BYTES:.2f} of the target); the engine is "
-          f"{engine['bytes_per_engine'] / max(service, 1):.0%} of the service's figure")
+          f"{engine['bytes_per_engine'] / max(service, 1):.0%} and a bare stream "
+          f"{bare_bytes / max(service, 1):.0%} of the service's figure")
     if args.json is not None:
         args.json.write_text(json.dumps({
             "machine": info, "models": models_note, "words": source, "service": held,
+            "bare_stream": bare,
             "engine": engine, "target_bytes": TARGET_BYTES, "argv": sys.argv[1:],
         }, indent=2, sort_keys=True), encoding="utf-8")
     return 0

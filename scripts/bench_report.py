@@ -119,6 +119,8 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
     best = next((s for s in steps if s["conversations"] == largest), steps[0])
     held, alone = memory["service"], memory["engine"]
     per_conv = held.get("bytes_per_conversation", 0)
+    bare = memory["bare_stream"]
+    bare_bytes = bare.get("bytes_per_conversation", 0)
     lines = [
         "# Benchmarks",
         "",
@@ -129,9 +131,13 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "## Machine",
         "",
         f"- {m0['nproc']} CPUs: {m0['cpu_model']}; Python {m0['python']}; {m0['platform']}",
-        f"- load average (1 / 5 / 15 min) before the run: {_load(m0)}; after: {_load(m1)}. "
-        "The machine is shared with other developers' jobs: a load above the number of CPUs "
-        "means the pinned server core was shared too, so absolute figures are pessimistic.",
+        f"- load average (1 / 5 / 15 min) before the run: {_load(m0)}; after: {_load(m1)}; "
+        f"CPU pressure (share of the last minute some runnable task waited for a CPU, "
+        f"/proc/pressure/cpu) before: {m0.get('cpu_pressure_avg60')}%, after: "
+        f"{m1.get('cpu_pressure_avg60')}%. The machine is shared with other developers' jobs: "
+        "a load above the number of CPUs means the pinned server core (and the load "
+        "generator's) was shared too, so measured latencies and capacities are pessimistic; "
+        "CPU time per word is less affected.",
         f"- models: {service['models']}",
         f"- words: {service['words']}",
         "",
@@ -155,6 +161,12 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         f"{held['words_each']} words each) | {per_conv / 1024:.1f} KiB | ≤ 50 KiB |",
         f"| of which the engine alone (tracemalloc) | {alone['bytes_per_engine'] / 1024:.1f} KiB "
         f"| - |",
+        f"| baseline: an open gRPC stream with no conversation | {bare_bytes / 1024:.1f} KiB "
+        f"| - |",
+        f"| projection from server CPU time (not measured latency): words/s per free core "
+        f"(N={service['projected_from_step']}) | {service['projected_words_per_core']:,.0f} "
+        f"= {service['projected_conversations_per_core']:,.0f} conversations at "
+        f"{service['rate']:g} words/s | 3,000 words/s |",
         "",
         "## Live conversations per server core",
         "",
@@ -186,6 +198,8 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         f"{held['words_each']} | {per_conv / 1024:.1f} KiB |",
         f"| engine alone (tracemalloc, Python heap) | {alone['conversations']} | "
         f"{alone['words_each']} | {alone['bytes_per_engine'] / 1024:.1f} KiB |",
+        f"| baseline: open gRPC stream, no `open` (no session, no engine) | {bare['opened']} "
+        f"| 0 | {bare_bytes / 1024:.1f} KiB |",
         "",
         f"Errors while holding: {held['errors'] or 'none'}. RSS counts pages, so small N is "
         "noisy; the server figure includes gRPC stream state and buffers, the session, its "
@@ -196,6 +210,28 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         f"`{commands['engine']}` (owned by the word-model work; its output verbatim):",
         "",
         *_engine_section(engine_text),
+        "## Benchmark your own deployment",
+        "",
+        "`midstream bench` is the same load generator as a command. Point it at any server; "
+        "give `--server-pid` when the server runs on the same host to get its CPU and memory, "
+        "or `--spawn` to start a local `midstream serve` for the run:",
+        "",
+        "```",
+        "midstream bench --target HOST:PORT --conversations 500 --rate 3 --seconds 60 \\",
+        "    --corpus ../shared/corpora/swda --split val \\",
+        "    [--token T | --tls --tls-ca ca.pem] [--json]",
+        "midstream bench --spawn --models DIR --server-cpu 0 --client-cpu 1 -n 200",
+        "midstream bench --baseline ...      # DescribeModels at the same rate: transport only",
+        "midstream bench --smoke --spawn     # a few seconds, checks the setup",
+        "```",
+        "",
+        "It reports words/s achieved, p50/p95/p99 latency from a word's send to its first "
+        "hypothesis, errors by gRPC status (plus `OPEN_TIMEOUT` / `SETTLE_TIMEOUT`, the "
+        "generator's own), the generator's CPU use (near 100 %: the figures describe the "
+        "generator, move it to another core or host) and, for a local server, its CPU use and "
+        "RSS growth per open conversation. `midstream serve --max-live-conversations N` raises "
+        "the server's limit (default 256) for runs above it.",
+        "",
         "## Reproduce",
         "",
         "```",

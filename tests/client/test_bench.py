@@ -183,6 +183,7 @@ def test_bench_service_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -
     assert step["baseline"]["workload"] == "describe"
     assert step["baseline"]["words_answered"] == step["baseline"]["words_sent"] > 0
     assert result["largest_passing"] in (0, step["conversations"])
+    assert result["projected_words_per_core"] > 0
 
 
 @pytest.mark.corpus
@@ -195,3 +196,5 @@ def test_bench_memory_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) ->
     assert result["service"]["rss_held_bytes"] > 0
     # Twenty engines holding five words each allocate something: the measure is not empty.
     assert result["engine"]["bytes_per_engine"] > 0
+    assert result["bare_stream"]["opened"] == 20
+    assert result["bare_stream"]["error_count"] == 0
