@@ -292,6 +292,8 @@ def parse_log(lines: Iterable[str], source: str) -> RevisionLog:
                     gold=reader.gold(record.get("gold"))))
             except (ValueError, TypeError) as exc:
                 raise reader.error(f"bad word record: {exc}") from None
+        elif kind == "rates":
+            continue  # a summary ``--rates`` printed at the end; nothing to inspect
         elif kind in _EVENT_TYPES:
             sent = record.get("sent")
             event = reader.event(record, kind)

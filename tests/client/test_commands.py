@@ -58,7 +58,7 @@ def test_tag_prints_finished_utterances_clean_text_and_rates(
 
 
 def test_tag_reads_jsonl_from_stdin_and_prints_json_lines(
-        served: Served, capsys: pytest.CaptureFixture[str],
+        served: Served, capsys: pytest.CaptureFixture[str], tmp_path: Path,
         monkeypatch: pytest.MonkeyPatch) -> None:
     events = "\n".join(json.dumps(e) for e in [
         {"speaker": "A", "text": "so", "id": "a1"},
@@ -81,6 +81,14 @@ def test_tag_reads_jsonl_from_stdin_and_prints_json_lines(
     final = {w["id"]: w for u in updates for w in u["words"]}
     assert set(final) == {"a1", "a2", "a3", "a4", "b1"}
     assert all(w["final"] for w in final.values())
+
+    # The piped output is a log `inspect` reads.
+    saved = tmp_path / "piped.jsonl"
+    saved.write_text(out, encoding="utf-8")
+    code, out, err = _run(["inspect", str(saved)], capsys)
+    assert code == 0, err
+    assert out.startswith(f"conversation {records[0]['conversation_id']}")
+    assert "why final: " in out
 
 
 def test_bad_input_lines_exit_1_naming_file_line_and_field(
