@@ -10,6 +10,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from midstream._errors import InputError
+
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class ServerLimits:
@@ -63,9 +65,13 @@ class ServerLimits:
             "max_message_bytes", "max_ended_conversations", "max_transcript_items",
         ):
             if getattr(self, name) < 1:
-                raise ValueError(f"ServerLimits.{name} must be at least 1")
-        if not self.idle_timeout_s > 0 or not self.ended_retention_s >= 0:
-            raise ValueError("ServerLimits: idle_timeout_s must be > 0, ended_retention_s >= 0")
+                raise InputError(f"ServerLimits.{name} must be at least 1, not "
+                                 f"{getattr(self, name)}")
+        if not self.idle_timeout_s > 0:
+            raise InputError(f"ServerLimits.idle_timeout_s must be > 0, not {self.idle_timeout_s}")
+        if not self.ended_retention_s >= 0:
+            raise InputError("ServerLimits.ended_retention_s must be >= 0, not "
+                             f"{self.ended_retention_s}")
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

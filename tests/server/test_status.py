@@ -98,3 +98,10 @@ async def test_a_slow_follower_gets_gap_and_snapshot_and_never_slows_ingest(
     assert (await anext(stream)).ended.reason == pb.END_REASON_CLOSED
     with pytest.raises(StopAsyncIteration):
         await asyncio.wait_for(anext(stream), 1)
+
+
+@pytest.mark.parametrize("field", ["max_word_chars", "follower_queue", "replay_updates",
+                                   "idle_timeout_s", "ended_retention_s"])
+def test_nonsense_limits_are_refused_naming_the_field(field: str) -> None:
+    with pytest.raises(InputError, match=f"ServerLimits.{field} must be"):
+        ServerLimits(**{field: -1})
