@@ -16,6 +16,7 @@ import asyncio
 import os
 import socket
 import threading
+import warnings
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -62,8 +63,14 @@ def models_dir_fixture(request: pytest.FixtureRequest,
     """The shipped models, or tiny real ones trained from SwDA train when none are shipped."""
     if any(WEIGHTS.glob("*.msm")):
         return WEIGHTS
+    # Every module that imports this fixture gets its own copy of it, so the session's models
+    # are kept in one folder of the session's temporary directory and trained only once.
+    folder = tmp_path_factory.getbasetemp() / "tiny-models"
+    if (folder / "functions.msm").exists():
+        return folder
     swda: Path = request.getfixturevalue("swda_dir")
-    return _train_tiny(swda, tmp_path_factory.mktemp("tiny-models"))
+    folder.mkdir(exist_ok=True)
+    return _train_tiny(swda, folder)
 
 
 @dataclass
@@ -95,6 +102,25 @@ def served_fixture(models_dir: Path) -> Iterator[Served]:
         loop.call_soon_threadsafe(loop.stop)
         thread.join(timeout=10)
         loop.close()
+
+
+@pytest.fixture(name="no_stray_loop")
+def no_stray_loop_fixture() -> None:
+    """Close the idle event loop an earlier async test left current in this thread.
+
+    pytest-asyncio leaves a fresh, unclosed loop set after an async test; a later sync test
+    whose code calls ``asyncio.run`` (every command does) replaces it, and its garbage collection
+    then warns of an unclosed loop, failing whichever test runs at that moment.
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)
+        try:
+            stray = asyncio.get_event_loop_policy().get_event_loop()
+        except RuntimeError:
+            return
+    if not stray.is_running() and not stray.is_closed():
+        stray.close()
+    asyncio.set_event_loop(None)
 
 
 def free_port() -> int:

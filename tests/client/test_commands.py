@@ -14,6 +14,7 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
     Served,
     free_port,
     models_dir_fixture,
+    no_stray_loop_fixture,
     served_fixture,
     shipped_weights,
 )
@@ -23,7 +24,7 @@ from midstream.client._cli import main
 from midstream.client._records import read_log
 from midstream.client._view import RATES_CAUTION
 
-pytestmark = pytest.mark.corpus
+pytestmark = [pytest.mark.corpus, pytest.mark.usefixtures("no_stray_loop")]
 
 
 @pytest.fixture
