@@ -9,7 +9,7 @@ a fixed time against one server (spawned here, or ``--target``), and checks each
 - a follower attached to every ``--follow-every``-th conversation sees exactly the caller's
   updates;
 - the server's resident memory (``VmRSS`` in ``/proc/<pid>/status``) stays within 10 % of its
-  level at the end of the warm-up. The warm-up lasts until every stream slot has finished its
+  peak during the warm-up. The warm-up lasts until every stream slot has finished its
   first conversation and the ended ones have been let go (``--ended-retention``): before that,
   memory grows by design, since a live conversation keeps its replay buffer and revisions.
 
@@ -334,18 +334,22 @@ def report(args: argparse.Namespace, totals: Totals, rss: list[tuple[float, int]
         print(f"  word -> its first state p50 {cuts[49] * 1000:.1f} ms, "
               f"p95 {cuts[94] * 1000:.1f} ms, p99 {cuts[98] * 1000:.1f} ms")
     if rss:
-        after = [kib for t, kib in rss if t >= warmup]
-        before = [kib for t, kib in rss if t < warmup]
-        base = before[-1] if before else rss[0][1]
+        after = [(t, kib) for t, kib in rss if t >= warmup]
+        before = [kib for t, kib in rss if t < warmup] or [rss[0][1]]
         if after:
-            peak = max(after)
+            # The baseline is the peak of the warm-up, not its last sample: with every stream
+            # slot busy, RSS rises and falls as the live conversations grow and end, and a
+            # leak shows as later peaks climbing above the first ones.
+            base = max(before)
+            peak = max(kib for _, kib in after)
             growth = (peak - base) / base
-            print(f"  server RSS              {rss[0][1] / 1024:.0f} MiB at start, "
-                  f"{base / 1024:.0f} MiB after {warmup:.0f} s warm-up, peak "
-                  f"{peak / 1024:.0f} MiB after ({growth:+.1%}), {after[-1] / 1024:.0f} MiB "
-                  f"at the end ({len(rss)} samples)")
+            print(f"  server RSS              {rss[0][1] / 1024:.0f} MiB at start, peak "
+                  f"{base / 1024:.0f} MiB in the {warmup:.0f} s warm-up; after it "
+                  f"{min(kib for _, kib in after) / 1024:.0f}-{peak / 1024:.0f} MiB "
+                  f"(peak {growth:+.1%}), trend {_slope(after) * 60 / 1024:+.1f} MiB/min, "
+                  f"{after[-1][1] / 1024:.0f} MiB at the end ({len(rss)} samples)")
             if growth > args.rss_tolerance:
-                totals.violations.append(f"server RSS grew {growth:.1%} after warm-up "
+                totals.violations.append(f"server RSS peak grew {growth:.1%} after warm-up "
                                          f"(limit {args.rss_tolerance:.0%})")
         else:
             totals.violations.append(
@@ -362,6 +366,16 @@ def report(args: argparse.Namespace, totals: Totals, rss: list[tuple[float, int]
         return 1
     print("no violations")
     return 0
+
+
+def _slope(samples: list[tuple[float, int]]) -> float:
+    """Least-squares slope of (seconds, KiB) samples in KiB per second (0 for one sample)."""
+    if len(samples) < 2:
+        return 0.0
+    mean_t = statistics.fmean(t for t, _ in samples)
+    mean_k = statistics.fmean(k for _, k in samples)
+    spread = sum((t - mean_t) ** 2 for t, _ in samples)
+    return sum((t - mean_t) * (k - mean_k) for t, k in samples) / spread if spread else 0.0
 
 
 def _parser() -> argparse.ArgumentParser:
