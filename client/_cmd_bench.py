@@ -43,6 +43,9 @@ from midstream.corpora import read_corpus
 _SCRIPT_WORDS = 50_000
 #: Seconds a spawned server may take to load its models and bind.
 _SPAWN_TIMEOUT_S = 120.0
+#: Above these the report warns that the generator, not the server, may set the latencies.
+_LAG_WARN_MS = 20.0
+_CPU_WARN_PERCENT = 90.0
 #: What --smoke runs: a few conversations for a few seconds.
 _SMOKE = {"conversations": 4, "seconds": 2.0, "ramp": 0.2, "channels": 1}
 
@@ -246,6 +249,9 @@ def _print(s: dict[str, Any]) -> None:
     lag = s["send_lag_ms"]
     print(f"  send lag ms  p99 {_ms(lag['p99'])}   load generator CPU "
           f"{s['client_cpu_percent']:.0f} %")
+    if lag["p99"] > _LAG_WARN_MS or s["client_cpu_percent"] > _CPU_WARN_PERCENT:
+        print(f"  warning      the load generator fell behind its schedule (send lag p99 "
+              f"{lag['p99']:.0f} ms) or ran out of CPU: latencies include its own delays")
     errors = ", ".join(f"{k} {v}" for k, v in s["errors"].items()) or "none"
     print(f"  errors       {errors}")
     server = s["server"]

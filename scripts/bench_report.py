@@ -65,7 +65,7 @@ def main() -> int:
     commands_file = work / "commands.json"
     if args.reuse is None:
         before = machine()
-        models, _ = models_folder(args.models, args.train_tiny)
+        models, models_note = models_folder(args.models, args.train_tiny)
         model_args = ["--models", str(models)]
         engine_cmd = [sys.executable, str(_SCRIPTS / "bench_engine.py"),
                       "--model", str(models / "words.msm")]
@@ -86,7 +86,7 @@ def main() -> int:
         _run(memory_cmd, work / "memory.txt")
         commands_file.write_text(json.dumps({
             "engine": _shown(engine_cmd), "service": _shown(service_cmd),
-            "memory": _shown(memory_cmd), "machine_before": before,
+            "memory": _shown(memory_cmd), "machine_before": before, "models": models_note,
             "machine_after": machine()}, indent=2), encoding="utf-8")
     commands = json.loads(commands_file.read_text(encoding="utf-8"))
     service = json.loads((work / "service.json").read_text(encoding="utf-8"))
@@ -138,7 +138,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "a load above the number of CPUs means the pinned server core (and the load "
         "generator's) was shared too, so measured latencies and capacities are pessimistic; "
         "CPU time per word is less affected.",
-        f"- models: {service['models']}",
+        f"- models: {commands.get('models', service['models'])}",
         f"- words: {service['words']}",
         "",
         "## Headline",
@@ -178,8 +178,12 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "written to the first update naming it. *Baseline*: the same N callers each making one "
         "`DescribeModels` call per would-be word on the same server (a round trip with no "
         "tagging). *Server CPU ms/word* is the server's CPU time over the window divided by the "
-        "words answered in it. *Generator CPU* near 100 % would mean the load generator, not "
-        "the server, limited the step. Stepping stops at the first step that misses the budget.",
+        "words answered in it. *Generator CPU* near 100 %, or a *generator send lag* (how late "
+        "the generator wrote words against its schedule) well above a few ms, means the load "
+        "generator itself was short of CPU: its stalls are then inside the latencies, which "
+        "no longer describe the server alone. Stepping goes on while the server keeps up (no "
+        "errors, at least 90 % of the offered words answered in the window), so CPU figures "
+        "exist at real load even when the latency budget is missed.",
         "",
         *service_table(steps),
         "",

@@ -4,8 +4,9 @@ The server (``midstream serve``) runs pinned to one core and this load generator
 For each step N (default 100, 250, 500, 1000, 1500) a fresh server gets N concurrent
 conversations of SwDA val words at ``--rate`` words/s each for ``--seconds`` seconds; a step
 passes when the p99 latency from a word's send to its first hypothesis is within ``--p99-ms``
-and nothing failed. Stepping stops at the first failure. Two baselines are measured in the
-same run, so the headline figures are ratios, not machine-dependent times:
+and nothing failed. Stepping goes on while the server keeps up (no errors, 90 % of the offered
+words answered within the window) and stops at the first step where it does not. Two baselines
+are measured in the same run, so the headline figures are ratios, not machine-dependent times:
 
 * transport: the same N callers making one trivial ``DescribeModels`` call per would-be word
   on the same server (what a round trip through gRPC costs without tagging);
@@ -38,6 +39,8 @@ from midstream.models import ModelBundle
 
 _FULL_STEPS: tuple[int, ...] = (100, 250, 500, 1000, 1500)
 _QUICK_STEPS: tuple[int, ...] = (50, 100, 250, 500, 1000)
+#: A step "keeps up" when this share of the offered words is answered within the window.
+_KEEPS_UP = 0.9
 
 
 def engine_rate(models: Path, script: WordScript, *, words: int, conversations: int = 50
@@ -96,8 +99,8 @@ def table(steps: list[dict[str, Any]]) -> list[str]:
     lines = [
         "| N | offered w/s | achieved w/s | p50 ms | p95 ms | p99 ms | errors | server CPU % "
         "| server CPU ms/word | KiB/conv (open) | baseline p50 / p99 ms | p99 / baseline p99 "
-        "| generator CPU % | meets p99 |",
-        "|" + "---|" * 14,
+        "| generator CPU % | generator send lag p99 ms | meets p99 |",
+        "|" + "---|" * 15,
     ]
     for s in steps:
         load, base, server = s["load"], s["baseline"], s["load"]["server"]
@@ -109,7 +112,8 @@ def table(steps: list[dict[str, Any]]) -> list[str]:
             f"| {server['cpu_percent']:.0f} | {s['server_cpu_ms_per_word']:.3f} "
             f"| {server['bytes_per_open_conversation'] / 1024:.1f} "
             f"| {blat['p50']:.1f} / {blat['p99']:.1f} | {s['p99_ratio_to_baseline']:.1f}x "
-            f"| {load['client_cpu_percent']:.0f} | {'yes' if s['passed'] else 'no'} |")
+            f"| {load['client_cpu_percent']:.0f} | {load['send_lag_ms']['p99']:.1f} "
+            f"| {'yes' if s['passed'] else 'no'} |")
     return lines
 
 
@@ -175,7 +179,12 @@ def main() -> int:
         print(f"step: {n} conversations x {args.rate:g} words/s for {args.seconds:g} s ...",
               file=sys.stderr, flush=True)
         results.append(one_step(args, models, script, n))
-        if not results[-1]["passed"] and not args.all_steps:
+        load = results[-1]["load"]
+        keeps_up = (load["error_count"] == 0
+                    and load["achieved_wps"] >= _KEEPS_UP * load["offered_wps"])
+        # Past a missed budget, go on while the server keeps up: its CPU figures at real load
+        # stay useful on a machine whose other jobs set the latency tails.
+        if not (results[-1]["passed"] or keeps_up or args.all_steps):
             break
     passing = [s["conversations"] for s in results if s["passed"]]
     largest = max(passing) if passing else 0
