@@ -75,8 +75,11 @@ async def _run(args: argparse.Namespace) -> int:
             printer.event(message)
         else:
             conversation = message.conversation_id
+            # A server-chosen id may start with "-"; "--" keeps argparse from taking it for an
+            # option when the user pastes the command.
+            separator = "-- " if conversation.startswith("-") else ""
             print(f"conversation {conversation}: follow it with "
-                  f"'midstream subscribe {conversation}'", file=sys.stderr, flush=True)
+                  f"'midstream subscribe {separator}{conversation}'", file=sys.stderr, flush=True)
 
     async with client_from_args(args) as client:
         await stream_conversation(client, events, pacing=pacing, gold=gold,

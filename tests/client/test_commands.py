@@ -152,15 +152,16 @@ def test_replayed_swda_conversation_ends_on_the_batch_labels_and_reports(
     assert page.tables >= 5
 
     # Follow the same (ended) conversation from another terminal: the same updates.
-    code, out, _ = _run(["subscribe", log.conversation_id, "--from-seq", "1", "--json",
-                         "--server", served.target], capsys)
+    # "--": a server-chosen id may start with a dash.
+    code, out, _ = _run(["subscribe", "--from-seq", "1", "--json", "--server", served.target,
+                         "--", log.conversation_id], capsys)
     assert code == 0
     followed = [json.loads(line) for line in out.splitlines()]
     logged = [e.seq for e, _ in log.events if isinstance(e, HypothesisUpdate)]
     assert [r["seq"] for r in followed if r["type"] == "update"] == logged
 
     # And inspect it live, through GetRevisions.
-    code, out, _ = _run(["inspect", "--conversation", log.conversation_id,
+    code, out, _ = _run(["inspect", f"--conversation={log.conversation_id}",
                          "--server", served.target, "--changed"], capsys)
     assert code == 0
     assert out.startswith(f"conversation {log.conversation_id}")

@@ -40,11 +40,11 @@ def _session(server: subprocess.Popen[str]) -> None:
                                 check=False)
         assert tagged.returncode == 0, tagged.stderr
         assert "| " in tagged.stdout
-        conversation = re.search(r"midstream subscribe ([A-Za-z0-9_-]+)", tagged.stderr)
+        conversation = re.search(r"midstream subscribe (?:-- )?([A-Za-z0-9_-]+)'", tagged.stderr)
         assert conversation, tagged.stderr
 
-        followed = subprocess.run([*_CLI, "subscribe", conversation.group(1), "--from-seq", "1",
-                                   "--json", "--server", target],
+        followed = subprocess.run([*_CLI, "subscribe", "--from-seq", "1", "--json",
+                                   "--server", target, "--", conversation.group(1)],
                                   capture_output=True, text=True, timeout=60, check=False)
         assert followed.returncode == 0, followed.stderr
         records = [json.loads(line) for line in followed.stdout.splitlines()]
