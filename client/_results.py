@@ -116,10 +116,11 @@ class Ended:
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class Reconnected:
-    """A follower lost its connection and resumed (client-side notice, not a server message).
+    """A follower lost its connection and is reconnecting (a client-side notice).
 
-    ``from_seq`` is the first seq asked for again (``None``: a fresh snapshot was asked for);
-    ``attempt`` counts the consecutive attempts it took, from 1.
+    Yielded after the back-off wait, just before the new ``Follow`` call. ``from_seq`` is the
+    first seq it asks for (``None``: a fresh snapshot); ``attempt`` counts consecutive
+    attempts from 1.
     """
 
     from_seq: int | None
