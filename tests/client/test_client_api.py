@@ -28,6 +28,8 @@ from midstream.client import (
     Client,
     Ended,
     EndReason,
+    Gap,
+    GapReason,
     Reconnected,
     RetryPolicy,
     Snapshot,
@@ -36,7 +38,7 @@ from midstream.client import (
 )
 from midstream.client._demo_script import demo_events
 from midstream.client._results import ServerEvent
-from midstream.server import MidstreamServer, ServerConfig
+from midstream.server import MidstreamServer, ServerConfig, ServerLimits
 
 pytestmark = pytest.mark.corpus
 
@@ -181,3 +183,24 @@ async def test_the_token_is_sent_and_a_missing_one_is_named(models_dir: Path) ->
                 await client.list_conversations()
     finally:
         await server.stop(0.5)
+
+
+async def test_a_follower_asking_for_evicted_updates_is_told_of_the_gap(models_dir: Path) -> None:
+    limits = ServerLimits(replay_updates=10)
+    server = MidstreamServer(ServerConfig(host="127.0.0.1", port=0, models_dir=models_dir,
+                                          limits=limits, grace_s=0.5))
+    await server.start()
+    try:
+        async with Client(f"127.0.0.1:{server.port}") as client:
+            conversation_id, events = await _stream_demo(client)
+            followed = [e async for e in client.follow(conversation_id, from_seq=1)]
+    finally:
+        await server.stop(0.5)
+    last = max(e.seq for e in events if isinstance(e, HypothesisUpdate))
+    gap, snapshot = followed[0], followed[1]
+    assert isinstance(gap, Gap) and gap.reason is GapReason.EVICTED and gap.first_missing == 1
+    assert isinstance(snapshot, Snapshot) and snapshot.conversation_final
+    # After the snapshot, only what the buffer still held: the last updates, in order.
+    after = [e.seq for e in followed if isinstance(e, HypothesisUpdate)]
+    assert after == list(range(snapshot.seq + 1, last + 1))
+    assert isinstance(followed[-1], Ended)
