@@ -13,7 +13,6 @@ tested against the real engine, never a double; the demo test needs the shipped 
 from __future__ import annotations
 
 import asyncio
-import os
 import socket
 import threading
 import warnings
@@ -30,16 +29,6 @@ from midstream.server import MidstreamServer, ServerConfig
 
 REPO = Path(__file__).resolve().parents[2]
 WEIGHTS = REPO / "models" / "weights"
-
-
-def shipped_weights() -> Path:
-    """The shipped model folder; fails under ``CI=true`` and skips elsewhere when missing."""
-    if any(WEIGHTS.glob("*.msm")):
-        return WEIGHTS
-    message = f"no shipped models in {WEIGHTS}"
-    if os.environ.get("CI") == "true":
-        pytest.fail(message)
-    pytest.skip(message)
 
 
 def _train_tiny(swda: Path, folder: Path) -> Path:
