@@ -7,7 +7,7 @@ Test modules import what they use (``from client_kit import served``): a second
 
 The models are the shipped ones in ``models/weights``. Until those exist, :func:`models_dir`
 trains tiny real ones (15 SwDA train conversations, a few seconds) so the client is always
-tested against the real engine, never a double; the demo test needs the shipped ones.
+tested against the real engine, never a double.
 """
 
 from __future__ import annotations
