@@ -325,8 +325,9 @@ def report(args: argparse.Namespace, totals: Totals, rss: list[tuple[float, int]
            warmup: float, elapsed: float) -> int:
     print(f"soak: {elapsed:.0f} s, {args.concurrency} streams at once, cycling over "
           f"{args.conversations} SwDA conversations (val, then train)")
-    print(f"  conversations finished  {totals.conversations} "
-          f"({totals.cut_short} cut short at the deadline, {totals.followed} also followed)")
+    print(f"  conversations checked   {totals.conversations} "
+          f"({totals.cut_short} of them cut short at the deadline, {totals.followed} also "
+          "followed)")
     print(f"  words sent              {totals.words} ({totals.words / elapsed:.0f} words/s)")
     print(f"  updates received        {totals.updates}")
     if totals.latencies:

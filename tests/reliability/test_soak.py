@@ -29,8 +29,8 @@ def test_short_soak_passes(models_dir: Path, swda_dir: Path) -> None:
         capture_output=True, text=True, timeout=180, check=False)
     assert done.returncode == 0, done.stdout + done.stderr
     assert "no violations" in done.stdout
-    finished = re.search(r"conversations finished\s+(\d+) \(\d+ cut short at the deadline, "
-                         r"(\d+) also followed\)", done.stdout)
+    finished = re.search(r"conversations checked\s+(\d+) \(\d+ of them cut short at the "
+                         r"deadline, (\d+) also followed\)", done.stdout)
     assert finished is not None, done.stdout
     assert int(finished[1]) >= 4 and int(finished[2]) >= 1
     words = re.search(r"words sent\s+(\d+)", done.stdout)
