@@ -60,7 +60,9 @@ class UtteranceView:
     removed
         How many words were removed as filler, editing term, reparandum or restart.
     complete
-        ``False`` while the utterance may still grow, and for an abandoned one.
+        ``False`` while the utterance may still grow; ``True`` once it has ended (an abandoned
+        utterance too: a live stream cannot tell abandoned from ended, so training does not
+        either).
     """
 
     speaker: str
@@ -270,6 +272,8 @@ def clean_view(conversation: Conversation, utterance: Utterance,
         if word.fragment or not word.text:
             continue
         kept.append(word.text)
+    # A whole utterance counts as complete even when the corpus marks it abandoned (see
+    # UtteranceView.complete).
     whole = upto is None or upto >= len(utterance.words)
     return UtteranceView(speaker=utterance.speaker, words=tuple(kept), removed=removed,
                          complete=whole)
