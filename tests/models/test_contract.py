@@ -9,16 +9,19 @@ final streamed label never changes. Add another tagger by adding an adapter to `
 from __future__ import annotations
 
 import copy
+import functools
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import pytest
+from function_kit import tiny_model as tiny_function_model
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from midstream import Conversation, Word
+from midstream import Conversation, Utterance, UtteranceFunction, Word
 from midstream._errors import EventError
 from midstream.models._artifact import ModelArtifact
 from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
+from midstream.models._functions import FunctionTagger, clean_view
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import channel_sequences
 from word_kit import invented_conversation, tiny_artifact_bytes
@@ -50,7 +53,37 @@ def _tag_words(model: object, conversation: Conversation) -> list[object]:
     return out
 
 
-ADAPTERS = [Adapter("words", tiny_artifact_bytes, _load_words, _tag_words)]
+@functools.cache
+def _function_model_bytes() -> bytes:
+    return tiny_function_model("swbd42").to_bytes()
+
+
+def _load_functions(data: bytes) -> object:
+    artifact = ModelArtifact.from_bytes(data, expected_kind="utterance_functions")
+    return FunctionTagger.from_artifact(artifact)
+
+
+def _tag_functions(model: object, conversation: Conversation) -> list[object]:
+    # Whole-chain labels, then every utterance replayed word by word as a stream would.
+    assert isinstance(model, FunctionTagger)
+    utterances = conversation.utterances or (
+        (Utterance(speaker=conversation.words[0].speaker,
+                   words=tuple(range(len(conversation.words))),
+                   function=UtteranceFunction.OTHER, fine_tag="", fine_class=""),)
+        if conversation.words else ())
+    views = [clean_view(conversation, u) for u in utterances]
+    out: list[object] = list(model.label_conversation(views))
+    for i, utterance in enumerate(utterances):
+        context = views[max(0, i - model.context):i]
+        out += [model.label_partial(context, clean_view(conversation, utterance, upto=k))
+                for k in range(1, len(utterance.words) + 1)]
+    return out
+
+
+ADAPTERS = [
+    Adapter("words", tiny_artifact_bytes, _load_words, _tag_words),
+    Adapter("functions", _function_model_bytes, _load_functions, _tag_functions),
+]
 
 
 @pytest.fixture(params=ADAPTERS, ids=lambda a: a.name)
