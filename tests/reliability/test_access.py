@@ -18,13 +18,13 @@ import math
 import shutil
 import string
 import subprocess
+import sys
 from pathlib import Path
 
 import grpc
 import pytest
 from midstream import Word
 from midstream.client import AddWord, Client
-from midstream.client._cli import main as cli_main
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 from reliability_kit import (  # noqa: F401 - fixtures are found by name
@@ -142,10 +142,13 @@ async def _follow_all(client: Client, conversation: str) -> list[object]:
     return [event async for event in client.follow(conversation, from_seq=1)]
 
 
-def test_serve_require_tls_without_certificate_refuses_to_start(
-    capsys: pytest.CaptureFixture[str], models_dir: Path,
-) -> None:
+def test_serve_require_tls_without_certificate_refuses_to_start(models_dir: Path) -> None:
     # The documented switch: `midstream serve --require-tls` never falls back to plaintext.
-    code = cli_main(["serve", "--port", "0", "--models", str(models_dir), "--require-tls"])
-    assert code != 0
-    assert "TLS is required (--require-tls)" in capsys.readouterr().err
+    # Run as its own process, as a user runs it (it owns its event loop and logging setup).
+    done = subprocess.run(
+        [sys.executable, "-m", "midstream.client._cli", "serve", "--port", "0", "--models",
+         str(models_dir), "--require-tls"],
+        capture_output=True, text=True, timeout=60, check=False)
+    assert done.returncode != 0
+    assert "TLS is required (--require-tls)" in done.stderr
+    assert "serving on" not in done.stdout
