@@ -20,6 +20,8 @@ from pathlib import Path
 
 import grpc
 import pytest
+from midstream import HypothesisUpdate, NotFoundError
+from midstream.client import Client, Reconnected, RetryPolicy
 from midstream.server import ServerLimits
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
@@ -257,6 +259,59 @@ async def test_followers_get_a_clear_answer_across_a_server_restart(
         await _drain(first.stub.Follow(pb.FollowRequest(conversation_id=conversation),
                                        wait_for_ready=True, timeout=WAIT_S))
     assert info.value.code() == grpc.StatusCode.NOT_FOUND
+
+
+async def _serve_process(models_dir: Path, port: int = 0,
+                         ) -> tuple[asyncio.subprocess.Process, int]:
+    """``midstream serve`` in its own process; returns it and the port it listens on."""
+    process = await asyncio.create_subprocess_exec(
+        sys.executable, "-m", "midstream.client._cli", "serve", "--port", str(port),
+        "--models", str(models_dir), stdout=asyncio.subprocess.PIPE)
+    assert process.stdout is not None
+    line = (await asyncio.wait_for(process.stdout.readline(), 60)).decode()
+    assert line.startswith("serving on "), line
+    return process, int(line.rsplit(":", 1)[1])
+
+
+async def test_client_follower_across_a_killed_server_gets_not_found(models_dir: Path) -> None:
+    # The server process dies without a goodbye (SIGKILL): no `ended` reaches the follower,
+    # whose client library reconnects. A new server on the same port does not know the
+    # conversation, and the follower must be told so (NotFoundError), not retry for ever.
+    first, port = await _serve_process(models_dir)
+    second: asyncio.subprocess.Process | None = None
+    target = f"127.0.0.1:{port}"
+    try:
+        async with grpc.aio.insecure_channel(target) as channel, Client(
+                target, retry=RetryPolicy(max_attempts=30, initial_backoff=0.2,
+                                          max_backoff=1.0)) as client:
+            call, conversation = await _open(
+                pb_grpc.MidstreamStub(channel))  # type: ignore[no-untyped-call]
+            for i in range(3):
+                await _send(call, _word(i))
+            seen: list[object] = []
+
+            async def follow() -> None:
+                async for event in client.follow(conversation, from_seq=1):
+                    seen.append(event)
+
+            follower = asyncio.create_task(follow())
+            async with asyncio.timeout(WAIT_S):
+                while len(seen) < 3:
+                    await asyncio.sleep(0.05)
+            first.kill()
+            await first.wait()
+            # The ingesting caller learns at once that its server is gone.
+            assert await asyncio.wait_for(call.code(), WAIT_S) == grpc.StatusCode.UNAVAILABLE
+            second, _ = await _serve_process(models_dir, port)
+            with pytest.raises(NotFoundError, match=conversation):
+                await asyncio.wait_for(follower, 60)
+    finally:
+        for process in (first, second):
+            if process is not None and process.returncode is None:
+                process.kill()
+                await process.wait()
+    assert [e.seq for e in seen[:3] if isinstance(e, HypothesisUpdate)] == [1, 2, 3]
+    assert any(isinstance(e, Reconnected) and e.from_seq == 4 for e in seen)
 
 
 # --- model reload failure under a live stream -------------------------------------------------
