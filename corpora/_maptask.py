@@ -30,6 +30,7 @@ from midstream._errors import CorpusNotFoundError, TranscriptFormatError
 from midstream._schemes import coarse_function
 from midstream._types import Conversation, Utterance, Word
 from midstream.corpora._normalise import normalise_token
+from midstream.corpora._text import read_lines
 
 _HEADER_LINES = 3
 _SPEAKERS = ("g", "f")
@@ -76,6 +77,10 @@ def read_moves(path: Path) -> tuple[Move, ...]:
         line = exc.position[0] if exc.position else None
         raise TranscriptFormatError(f"not well-formed XML: {exc}", source=str(path),
                                     line=line) from None
+    except LookupError as exc:
+        # The XML declaration names an encoding Python does not know.
+        raise TranscriptFormatError(f"unknown text encoding: {exc}", source=str(path),
+                                    line=1) from None
     moves = []
     for element in root.iter("move"):
         label = element.get("label", "")
@@ -120,34 +125,33 @@ def read_maptask_dialogue(moves_dir: Path, transcript: Path) -> Conversation:
     taken = dict.fromkeys(_SPEAKERS, 0)
     words: list[Word] = []
     utterances: list[Utterance] = []
-    with transcript.open(encoding="utf-8") as handle:
-        for number, line in enumerate(handle, start=1):
-            if number <= _HEADER_LINES or not line.strip():
-                continue
-            speaker, text = parse_transcript_line(line, source=str(transcript), number=number)
-            index = taken[speaker]
-            if index >= len(moves[speaker]):
-                raise TranscriptFormatError(
-                    f"more {speaker!r} lines than moves in {name}.{speaker}.moves.xml "
-                    f"({len(moves[speaker])})", source=str(transcript), line=number)
-            taken[speaker] += 1
-            move = moves[speaker][index]
-            first = len(words)
-            for raw in text.split():
-                token = normalise_token(raw)
-                if token is not None:
-                    words.append(Word(text=token.text, speaker=speaker,
-                                      fragment=token.fragment))
-            if len(words) == first:
-                continue
-            utterances.append(Utterance(
-                speaker=speaker,
-                words=tuple(range(first, len(words))),
-                function=coarse_function("maptask", move.label),
-                fine_tag=move.fine_tag,
-                fine_class=move.label,
-                complete=not move.abandoned,
-            ))
+    for number, line in enumerate(read_lines(transcript), start=1):
+        if number <= _HEADER_LINES or not line.strip():
+            continue
+        speaker, text = parse_transcript_line(line, source=str(transcript), number=number)
+        index = taken[speaker]
+        if index >= len(moves[speaker]):
+            raise TranscriptFormatError(
+                f"more {speaker!r} lines than moves in {name}.{speaker}.moves.xml "
+                f"({len(moves[speaker])})", source=str(transcript), line=number)
+        taken[speaker] += 1
+        move = moves[speaker][index]
+        first = len(words)
+        for raw in text.split():
+            token = normalise_token(raw)
+            if token is not None:
+                words.append(Word(text=token.text, speaker=speaker,
+                                  fragment=token.fragment))
+        if len(words) == first:
+            continue
+        utterances.append(Utterance(
+            speaker=speaker,
+            words=tuple(range(first, len(words))),
+            function=coarse_function("maptask", move.label),
+            fine_tag=move.fine_tag,
+            fine_class=move.label,
+            complete=not move.abandoned,
+        ))
     for speaker in _SPEAKERS:
         if taken[speaker] != len(moves[speaker]):
             raise TranscriptFormatError(

@@ -40,6 +40,7 @@ from midstream._errors import CorpusNotFoundError, TranscriptFormatError
 from midstream._schemes import coarse_function
 from midstream._types import Conversation, Utterance, Word
 from midstream.corpora._normalise import normalise_token
+from midstream.corpora._text import read_lines
 
 #: Columns of a ``.dadb`` line (corpora README; the last five hold adjacency pairs and comments).
 _COLUMNS = 14
@@ -246,11 +247,10 @@ def read_mrda_meeting(dadb: Path, trans: Path) -> Conversation:
         line (the message names file, line and segment).
     """
     texts: dict[str, str] = {}
-    with trans.open(encoding="utf-8") as handle:
-        for number, line in enumerate(handle, start=1):
-            if line.strip():
-                segment_id, text = parse_trans_line(line, source=str(trans), number=number)
-                texts[segment_id] = text
+    for number, line in enumerate(read_lines(trans), start=1):
+        if line.strip():
+            segment_id, text = parse_trans_line(line, source=str(trans), number=number)
+            texts[segment_id] = text
 
     # Words are gathered per segment first, then sorted by time across speakers; each word
     # remembers its segment part so utterances can be rebuilt from the sorted order.
@@ -259,59 +259,58 @@ def read_mrda_meeting(dadb: Path, trans: Path) -> Conversation:
     part_words: list[list[int]] = []  # sequence numbers of each part's words
     interrupted_after: set[int] = set()  # sequence numbers followed by " - "
     sequence = 0
-    with dadb.open(encoding="utf-8") as handle:
-        for number, line in enumerate(handle, start=1):
-            if not line.strip():
+    for number, line in enumerate(read_lines(dadb), start=1):
+        if not line.strip():
+            continue
+        segment = parse_dadb_line(line, source=str(dadb), number=number)
+        if not segment.words:
+            continue
+        if segment.segment_id not in texts:
+            raise TranscriptFormatError(
+                f"segment {segment.segment_id!r} has no line in {trans.name}",
+                source=str(dadb), line=number, field="segment id")
+        raw_words = [raw for raw, _, _ in segment.words]
+        marks = _align_marks(raw_words, texts[segment.segment_id])
+        originals = segment.original_label.split("|")
+        normalised = segment.label.split("|")
+        if marks.aligned and len(marks.pipes) + 1 == len(normalised) == len(originals):
+            bounds = [0, *marks.pipes, len(raw_words)]
+        else:
+            # The transcript's pipes cannot be placed: keep the segment whole, under the
+            # act that is not a floor mechanism (the segment's substance), if any.
+            main = next((i for i, act in enumerate(normalised)
+                         if mrda_class(act) not in {"fg", "fh", "h"}), 0)
+            originals = [originals[min(main, len(originals) - 1)]]
+            normalised = [normalised[main]]
+            bounds = [0, len(raw_words)]
+        last_start = segment.start
+        positions: dict[int, int] = {}  # segment word position -> sequence number
+        for position, (raw, start, end) in enumerate(segment.words):
+            kept = _keep(raw)
+            if start is not None:
+                last_start = start
+            if kept is None:
                 continue
-            segment = parse_dadb_line(line, source=str(dadb), number=number)
-            if not segment.words:
+            text, fragment = kept
+            word = Word(text=text, speaker=segment.speaker, start=start, end=end,
+                        fragment=fragment)
+            pending.append((last_start, sequence, word))
+            positions[position] = sequence
+            sequence += 1
+        for position in marks.interruptions:
+            # A " - " after a dropped token belongs to the last kept word before it.
+            kept_before = [s for p, s in positions.items() if p <= position]
+            if kept_before:
+                interrupted_after.add(max(kept_before))
+        for index, (original, label) in enumerate(zip(originals, normalised, strict=True)):
+            members = [positions[p] for p in range(bounds[index], bounds[index + 1])
+                       if p in positions]
+            if not members:
                 continue
-            if segment.segment_id not in texts:
-                raise TranscriptFormatError(
-                    f"segment {segment.segment_id!r} has no line in {trans.name}",
-                    source=str(dadb), line=number, field="segment id")
-            raw_words = [raw for raw, _, _ in segment.words]
-            marks = _align_marks(raw_words, texts[segment.segment_id])
-            originals = segment.original_label.split("|")
-            normalised = segment.label.split("|")
-            if marks.aligned and len(marks.pipes) + 1 == len(normalised) == len(originals):
-                bounds = [0, *marks.pipes, len(raw_words)]
-            else:
-                # The transcript's pipes cannot be placed: keep the segment whole, under the
-                # act that is not a floor mechanism (the segment's substance), if any.
-                main = next((i for i, act in enumerate(normalised)
-                             if mrda_class(act) not in {"fg", "fh", "h"}), 0)
-                originals = [originals[min(main, len(originals) - 1)]]
-                normalised = [normalised[main]]
-                bounds = [0, len(raw_words)]
-            last_start = segment.start
-            positions: dict[int, int] = {}  # segment word position -> sequence number
-            for position, (raw, start, end) in enumerate(segment.words):
-                kept = _keep(raw)
-                if start is not None:
-                    last_start = start
-                if kept is None:
-                    continue
-                text, fragment = kept
-                word = Word(text=text, speaker=segment.speaker, start=start, end=end,
-                            fragment=fragment)
-                pending.append((last_start, sequence, word))
-                positions[position] = sequence
-                sequence += 1
-            for position in marks.interruptions:
-                # A " - " after a dropped token belongs to the last kept word before it.
-                kept_before = [s for p, s in positions.items() if p <= position]
-                if kept_before:
-                    interrupted_after.add(max(kept_before))
-            for index, (original, label) in enumerate(zip(originals, normalised, strict=True)):
-                members = [positions[p] for p in range(bounds[index], bounds[index + 1])
-                           if p in positions]
-                if not members:
-                    continue
-                last = index == len(normalised) - 1
-                complete = _disruption(label) is None and not (last and marks.trailing_off)
-                parts.append((segment, original, label, complete))
-                part_words.append(members)
+            last = index == len(normalised) - 1
+            complete = _disruption(label) is None and not (last and marks.trailing_off)
+            parts.append((segment, original, label, complete))
+            part_words.append(members)
 
     pending.sort(key=lambda item: (item[0], item[1]))
     index_of = {seq: index for index, (_, seq, _) in enumerate(pending)}

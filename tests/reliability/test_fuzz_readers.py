@@ -161,12 +161,7 @@ def _write_maptask(folder: Path, transcript: bytes) -> tuple[Path, Path]:
     return moves, path
 
 
-# Known failure, reported to the corpora owner: both readers open their text files as UTF-8
-# without turning a decoding failure into a format error, so a Latin-1 byte escapes as
-# UnicodeDecodeError. strict=True makes this test fail once the readers are fixed, so the
-# marker is removed then.
-@pytest.mark.xfail(strict=True, raises=UnicodeDecodeError,
-                   reason="MRDA and Map Task readers let UnicodeDecodeError escape")
+# A Latin-1 byte in a UTF-8 transcript is a format error naming the file, never a crash.
 @pytest.mark.parametrize("reader", ["mrda", "maptask"])
 def test_undecodable_transcript_is_a_format_error(tmp_path: Path, reader: str) -> None:
     latin1 = "caf\u00e9 fa\u00e7ade\n".encode("latin-1")
@@ -180,10 +175,7 @@ def test_undecodable_transcript_is_a_format_error(tmp_path: Path, reader: str) -
             read_maptask_dialogue(moves, transcript)
 
 
-# Known failure, reported to the corpora owner: an XML declaration naming an encoding Python
-# does not know makes ElementTree raise LookupError, which read_moves does not catch.
-@pytest.mark.xfail(strict=True, raises=LookupError,
-                   reason="read_moves lets LookupError escape for an unknown XML encoding")
+# An XML declaration naming an encoding Python does not know is a format error too.
 def test_moves_file_with_unknown_encoding_is_a_format_error(tmp_path: Path) -> None:
     path = tmp_path / "q0.g.moves.xml"
     path.write_bytes(b"<?xml version='1.0' encoding='bogus'?><moves/>")
