@@ -28,6 +28,8 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "midstream.client._cmd_demo",
     "midstream.client._cmd_serve",
     "midstream.client._cmd_bench",
+    "midstream.client._cmd_train",
+    "midstream.client._cmd_evaluate",
 )
 
 Handler = Callable[[argparse.Namespace], int]
