@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import re
 from pathlib import Path
 
@@ -72,27 +73,48 @@ async def test_converse_yields_welcome_updates_in_sequence_then_ended(served: Se
 
 
 async def test_follow_sees_the_callers_sequence_and_resumes_after_a_cut(served: Served) -> None:
-    async with Client(served.target) as client:
-        conversation_id, events = await _stream_demo(client)
-    caller = [e for e in events if isinstance(e, HypothesisUpdate)]
-
+    events = [t.event for t in demo_events()]
+    half = len(events) // 2
     proxy = CuttingProxy(served.server.port)
     port = await proxy.start()
     retry = RetryPolicy(max_attempts=5, initial_backoff=0.05)
+    caller: list[ServerEvent] = []
     followed: list[ServerEvent] = []
+    following = asyncio.Event()
     try:
-        async with Client(f"127.0.0.1:{port}", retry=retry) as follower:
-            async for event in follower.follow(conversation_id, from_seq=1):
-                followed.append(event)
-                if len(followed) == 10:
-                    proxy.cut()
+        async with (Client(served.target) as client,
+                    Client(f"127.0.0.1:{port}", retry=retry) as follower,
+                    client.converse() as stream):
+            for event in events[:half]:
+                await stream.send(event)
+
+            async def read() -> None:
+                caller.extend([e async for e in stream])
+
+            async def follow() -> None:
+                async for event in follower.follow(stream.conversation_id, from_seq=1):
+                    followed.append(event)
+                    if isinstance(event, HypothesisUpdate) and event.seq >= 5:
+                        following.set()
+
+            reader = asyncio.create_task(read())
+            watcher = asyncio.create_task(follow())
+            await asyncio.wait_for(following.wait(), 30)
+            # Cut while the conversation is live: the follower's stream cannot have ended.
+            proxy.cut()
+            for event in events[half:]:
+                await stream.send(event)
+            await stream.close()
+            await asyncio.wait_for(reader, 30)
+            await asyncio.wait_for(watcher, 30)
     finally:
         await proxy.stop()
     reconnects = [e for e in followed if isinstance(e, Reconnected)]
     assert len(reconnects) >= 1 and proxy.connections >= 2
-    updates = [e for e in followed if isinstance(e, HypothesisUpdate)]
     # Resumed from the next unseen seq: nothing missing, nothing twice, no gap needed.
-    assert updates == caller
+    updates = [e for e in followed if isinstance(e, HypothesisUpdate)]
+    assert updates == [e for e in caller if isinstance(e, HypothesisUpdate)]
+    assert not any(isinstance(e, Gap) for e in followed)
     assert isinstance(followed[-1], Ended)
 
 
