@@ -4,12 +4,13 @@ Layout (all integers little-endian)::
 
     offset  size  field
     0       8     magic b"\\x89MSM\\r\\n\\x1a\\n" (catches text-mode and truncating transfers)
-    8       4     format version (uint32), currently 1
+    8       4     format version (uint32), currently 2
     12      4     metadata length M in bytes (uint32)
     16      8     payload length P in bytes (uint64)
     24      32    SHA-256 of metadata + payload
     56      M     metadata, UTF-8 JSON object
-    56+M    P     payload: the crfsuite model bytes
+    56+M    P     payload: the crfsuite model bytes, zlib-compressed from version 2 on
+                  (version 1 stored them raw; both are read)
 
 The metadata names the model's ``kind`` (``"words"`` or ``"utterance_functions"``), its label
 set, feature configuration, a training-data summary, hyper-parameters and the command that
@@ -21,6 +22,7 @@ from __future__ import annotations
 import hashlib
 import json
 import struct
+import zlib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -41,7 +43,12 @@ ModelKind = Literal["words", "utterance_functions"]
 MODEL_KINDS: Final[frozenset[str]] = frozenset({"words", "utterance_functions"})
 
 MAGIC: Final = b"\x89MSM\r\n\x1a\n"
-FORMAT_VERSION: Final = 1
+FORMAT_VERSION: Final = 2
+#: Versions this Midstream reads: 1 (raw payload) and 2 (zlib payload, which keeps the shipped
+#: models well under their size budget: crfsuite's string tables compress about 2.3 times).
+READABLE_VERSIONS: Final = frozenset({1, 2})
+#: Largest decompressed payload accepted (explicit limit against a corrupt or hostile file).
+MAX_PAYLOAD_BYTES: Final = 1024 * 1024 * 1024
 _HEADER = struct.Struct("<8sIIQ32s")
 #: Metadata is a small JSON object; anything larger is a corrupt length field (explicit limit).
 MAX_METADATA_BYTES: Final = 16 * 1024 * 1024
@@ -76,9 +83,10 @@ class ModelArtifact:
             sort_keys=True,
             ensure_ascii=False,
         ).encode("utf-8")
-        digest = hashlib.sha256(meta + self.crf).digest()
-        header = _HEADER.pack(MAGIC, FORMAT_VERSION, len(meta), len(self.crf), digest)
-        return header + meta + self.crf
+        payload = zlib.compress(self.crf, 6)
+        digest = hashlib.sha256(meta + payload).digest()
+        header = _HEADER.pack(MAGIC, FORMAT_VERSION, len(meta), len(payload), digest)
+        return header + meta + payload
 
     @classmethod
     def from_bytes(
@@ -99,11 +107,12 @@ class ModelArtifact:
         magic, version, meta_len, payload_len, digest = _HEADER.unpack_from(data, 0)
         if magic != MAGIC:
             raise ModelError(f"{source}: not a Midstream model file (wrong magic bytes)")
-        if version != FORMAT_VERSION:
+        if version not in READABLE_VERSIONS:
             newer = "newer" if version > FORMAT_VERSION else "unknown"
             raise ModelError(
                 f"{source}: {newer} model format version {version}; this Midstream reads "
-                f"version {FORMAT_VERSION} only"
+                f"versions {', '.join(map(str, sorted(READABLE_VERSIONS)))} "
+                f"(writes version {FORMAT_VERSION})"
             )
         if meta_len > MAX_METADATA_BYTES:
             raise ModelError(f"{source}: metadata length {meta_len} exceeds {MAX_METADATA_BYTES}")
@@ -139,11 +148,25 @@ class ModelArtifact:
         return cls(
             kind=kind,
             labels=tuple(labels),
-            crf=bytes(body[meta_len:]),
+            crf=_payload(bytes(body[meta_len:]), version, source),
             features=sections["features"],
             hyper_parameters=sections["hyper_parameters"],
             metadata=sections["metadata"],
         )
+
+
+def _payload(stored: bytes, version: int, source: str) -> bytes:
+    if version == 1:
+        return stored
+    inflater = zlib.decompressobj()
+    try:
+        crf = inflater.decompress(stored, MAX_PAYLOAD_BYTES)
+    except zlib.error as exc:
+        raise ModelError(f"{source}: model payload does not decompress: {exc}") from exc
+    if inflater.unconsumed_tail or not inflater.eof:
+        raise ModelError(f"{source}: model payload is truncated or larger than "
+                         f"{MAX_PAYLOAD_BYTES} bytes")
+    return crf
 
 
 def save_artifact(artifact: ModelArtifact, path: Path) -> None:

@@ -73,7 +73,7 @@ def test_artifact_checks(model_bytes: bytes) -> None:
     with pytest.raises(ModelError, match="magic"):
         ModelArtifact.from_bytes(b"\x00" * 8 + data[8:])
     newer = data[:8] + struct.pack("<I", FORMAT_VERSION + 1) + data[12:]
-    with pytest.raises(ModelError, match=f"reads version {FORMAT_VERSION}"):
+    with pytest.raises(ModelError, match=f"newer model format version {FORMAT_VERSION + 1}"):
         ModelArtifact.from_bytes(newer)
     with pytest.raises(ModelError, match="expected 'utterance_functions'"):
         ModelArtifact.from_bytes(data, expected_kind="utterance_functions")
