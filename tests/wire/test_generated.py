@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -19,8 +20,6 @@ def test_generated_code_is_current() -> None:
 
 def test_stale_code_is_detected(tmp_path: Path) -> None:
     # A check that cannot fail proves nothing: edit a copy of the tree and expect a failure.
-    import shutil
-
     copy = tmp_path / "repo"
     shutil.copytree(REPO / "protos", copy / "protos")
     shutil.copytree(REPO / "scripts", copy / "scripts")
