@@ -105,27 +105,33 @@ def _gold_labels(channel: ChannelSequence) -> list[DisfluencyLabel] | None:
     return [decode_tag(t)[1] for t in channel.tags]
 
 
-def _replay(
-    channel: ChannelSequence, model: WordModel, config: DecoderConfig, tally: _Tally,
-    conversation: Conversation,
-) -> None:
+@dataclass(slots=True)
+class _Stream:
+    """What streaming one channel said: label changes per word and the final states."""
+
+    history: list[list[tuple[int, DisfluencyLabel]]]
+    final_label: list[DisfluencyLabel | None]
+    final_end: list[bool]
+    final_step: list[int]
+
+
+def _stream_channel(channel: ChannelSequence, model: WordModel,
+                    config: DecoderConfig) -> _Stream:
     decoder = ChannelDecoder(model, config)
     n = len(channel.words)
-    history: list[list[tuple[int, DisfluencyLabel]]] = [[] for _ in range(n)]
-    final_label: list[DisfluencyLabel | None] = [None] * n
-    final_end = [False] * n
-    final_step = [n - 1] * n
+    stream = _Stream(history=[[] for _ in range(n)], final_label=[None] * n,
+                     final_end=[False] * n, final_step=[n - 1] * n)
 
     def record(states: Iterable[TokenState], step: int) -> None:
         for state in states:
             key = state.key
-            steps = history[key]
+            steps = stream.history[key]
             if not steps or steps[-1][1] != state.label:
                 steps.append((step, state.label))
             if state.final:
-                final_label[key] = state.label
-                final_end[key] = state.ends_utterance
-                final_step[key] = step
+                stream.final_label[key] = state.label
+                stream.final_end[key] = state.ends_utterance
+                stream.final_step[key] = step
 
     for position, word in enumerate(channel.words):
         record(
@@ -134,6 +140,34 @@ def _replay(
             position,
         )
     record(decoder.finish(), n - 1)
+    return stream
+
+
+def streaming_final_labels(conversation: Conversation, model: WordModel,
+                           config: DecoderConfig | None = None) -> list[DisfluencyLabel]:
+    """The final label of every word of ``conversation`` (conversation order), as scored.
+
+    This is exactly what :func:`evaluate_words` scores: each speaker channel streamed word by
+    word through a :class:`ChannelDecoder`.
+    """
+    labels: list[DisfluencyLabel | None] = [None] * len(conversation.words)
+    for channel in channel_sequences(conversation):
+        stream = _stream_channel(channel, model, config or DecoderConfig())
+        for position, index in enumerate(channel.indices):
+            labels[index] = stream.final_label[position]
+    if any(label is None for label in labels):
+        raise AssertionError("a word was left without a final label")
+    return [label for label in labels if label is not None]
+
+
+def _replay(
+    channel: ChannelSequence, model: WordModel, config: DecoderConfig, tally: _Tally,
+    conversation: Conversation,
+) -> None:
+    n = len(channel.words)
+    stream = _stream_channel(channel, model, config)
+    history, final_label = stream.history, stream.final_label
+    final_end, final_step = stream.final_end, stream.final_step
 
     for position in range(n):
         tally.segmentation.add(final_end[position], channel.ends[position])

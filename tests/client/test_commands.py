@@ -18,12 +18,15 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
     no_stray_loop_fixture,
     served_fixture,
 )
-from midstream import DisfluencyLabel, HypothesisUpdate, Word
+from midstream import DisfluencyLabel, HypothesisUpdate
 from midstream.client import AddWord, SyncClient
 from midstream.client._cli import main
 from midstream.client._demo_script import demo_events
 from midstream.client._records import read_log
 from midstream.client._view import RATES_CAUTION
+from midstream.corpora import read_corpus
+from midstream.models import ModelBundle
+from midstream.models._eval_words import streaming_final_labels
 
 pytestmark = [pytest.mark.corpus, pytest.mark.usefixtures("no_stray_loop")]
 
@@ -118,7 +121,7 @@ def test_an_unreachable_server_exits_3_naming_it(ctm_file: Path,
 
 
 def test_replayed_swda_conversation_ends_on_the_batch_labels_and_reports(
-        served: Served, swda_dir: Path, tmp_path: Path,
+        served: Served, swda_dir: Path, tmp_path: Path, models_dir: Path,
         capsys: pytest.CaptureFixture[str]) -> None:
     # sw4802: the shortest disfluency-annotated SwDA val conversation (737 words).
     log_path, html_path = tmp_path / "sw4802.jsonl", tmp_path / "sw4802.html"
@@ -129,9 +132,11 @@ def test_replayed_swda_conversation_ends_on_the_batch_labels_and_reports(
     log = read_log(log_path)
     assert log.has_gold and len(log.words) == 737
 
-    # The stream's final labels equal one TagTranscript call over the same words.
-    words = [AddWord(word_id=w.word_id, word=Word(text=w.text, speaker=w.speaker, start=w.start,
-                                                  end=w.end)) for w in log.words]
+    # The stream's final labels equal one TagTranscript call over the same words (fragments
+    # included: they travel as "s-")...
+    (gold,) = [c for c in read_corpus(swda_dir, split="val") if c.id == "sw4802"]
+    assert [w.word_id for w in log.words] == [f"w{i}" for i in range(len(gold.words))]
+    words = [AddWord(word_id=f"w{i}", word=w) for i, w in enumerate(gold.words)]
     with SyncClient(served.target) as client:
         batch = client.tag_transcript(words)
     streamed: dict[str, DisfluencyLabel] = {}
@@ -139,6 +144,10 @@ def test_replayed_swda_conversation_ends_on_the_batch_labels_and_reports(
         for word in getattr(getattr(event, "diff", None), "words", ()):
             streamed[word.word_id] = word.label
     assert streamed == {w.word_id: w.label for w in batch.words}
+
+    # ... and equal the final labels `midstream evaluate` scores for this conversation.
+    scored = streaming_final_labels(gold, ModelBundle.load_directory(models_dir).word_model)
+    assert [streamed[w.word_id] for w in log.words] == scored
 
     code, out, err = _run(["inspect", str(log_path), "--html", str(html_path)], capsys)
     assert code == 0, err

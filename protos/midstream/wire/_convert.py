@@ -135,8 +135,14 @@ def spoken_word_from_wire(message: pb.SpokenWord) -> tuple[str, Word]:
 
 
 def spoken_word_to_wire(word_id: str, word: Word) -> pb.SpokenWord:
-    """The wire form of one recogniser word (``fragment`` has no wire field and is dropped)."""
-    message = pb.SpokenWord(word_id=word_id, speaker=word.speaker, text=word.text)
+    """The wire form of one recogniser word.
+
+    A fragment travels in the transcription convention, a trailing hyphen (``"s-"``), which the
+    server's normalisation reads back as a fragment: streamed and locally decoded words then get
+    the same features.
+    """
+    text = word.text + "-" if word.fragment and not word.text.endswith("-") else word.text
+    message = pb.SpokenWord(word_id=word_id, speaker=word.speaker, text=text)
     if word.start is not None:
         message.start_s = word.start
     if word.end is not None:
