@@ -8,8 +8,11 @@
 
 Every speaker channel is streamed one word at a time through the word model's incremental
 decoder and scored on what the stream said at each moment (keys documented in
-:mod:`midstream.models._eval_words`). With ``--functions-model`` the utterance-function
-figures (``utterance_functions.*``) are merged into the same report.
+:mod:`midstream.models._eval_words`). The utterance-function figures (``utterance_functions.*``,
+from the shipped function model unless ``--functions-model`` names another, skipped with
+``--words-only``) are merged into the same report, including
+``utterance_functions.predicted_segmentation.word_accuracy``: whole conversations replayed
+through the conversation engine, as a live caller would see them.
 """
 
 from __future__ import annotations
@@ -22,7 +25,9 @@ from pathlib import Path
 
 from midstream._errors import InputError
 from midstream.corpora import read_corpus
+from midstream.models._bundle import ModelBundle, default_functions_model_path
 from midstream.models._decoder import DecoderConfig
+from midstream.models._eval_engine import evaluate_engine
 from midstream.models._eval_functions import evaluate_functions
 from midstream.models._eval_words import evaluate_words
 from midstream.models._functions import FunctionTagger
@@ -39,7 +44,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("--model", type=Path, default=None,
                         help="word model (.msm); default: the shipped one")
     parser.add_argument("--functions-model", type=Path, default=None,
-                        help="also score this utterance-function model (.msm)")
+                        help="utterance-function model (.msm); default: the shipped one")
+    parser.add_argument("--words-only", action="store_true",
+                        help="score the word model only (no utterance functions)")
     parser.add_argument("--lag", type=int, default=DecoderConfig().lag,
                         help="words before a word's label becomes final")
     parser.add_argument("--limit", type=int, default=0,
@@ -59,9 +66,12 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
     figures = evaluate_words(conversations, model, config=DecoderConfig(lag=args.lag),
                              progress=True)
-    if args.functions_model is not None:
-        tagger = FunctionTagger.load(args.functions_model)
+    if not args.words_only:
+        tagger = FunctionTagger.load(args.functions_model or default_functions_model_path())
         figures.update(evaluate_functions(conversations, tagger))
+        bundle = ModelBundle(word_model=model, function_tagger=tagger, infos=(),
+                             decoder=DecoderConfig(lag=args.lag))
+        figures.update(evaluate_engine(conversations, bundle))
     if args.json:
         clean = {k: (None if isinstance(v, float) and math.isnan(v) else v)
                  for k, v in figures.items()}

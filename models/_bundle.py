@@ -117,6 +117,16 @@ class ModelBundle:
         return self._word_model
 
 
+def default_functions_model_path() -> Path:
+    """The shipped utterance-function model the default bundle serves."""
+    folder = Path(str(resources.files("midstream.models") / "weights"))
+    for scheme in _SCHEME_PREFERENCE:
+        path = folder / f"functions-{scheme}.msm"
+        if path.exists():
+            return path
+    raise NotFoundError(f"no shipped utterance-function model in {folder}")
+
+
 def _load(path: Path) -> _Loaded:
     try:
         size = path.stat().st_size
