@@ -120,6 +120,12 @@ class ConversationEngine:
         self._context: deque[UtteranceView] = deque(maxlen=max(function_tagger.context, 1))
         self._last_speaker: str | None = None
         self._finished = False
+        # An utterance of nothing but disfluent words ("uh") has no words to label: it is
+        # published as the scheme's abandoned/uninterpretable class, coarse "other".
+        fine = "%" if function_tagger.scheme == "swbd42" else UtteranceFunction.OTHER.value
+        self._empty_guess = FunctionGuess(label=fine, confidence=1.0,
+                                          function=UtteranceFunction.OTHER,
+                                          function_confidence=1.0)
 
     @property
     def finished(self) -> bool:
@@ -324,7 +330,7 @@ class ConversationEngine:
             if entry.view != view or entry.word_ids != word_ids or (
                     final and not (entry.published and entry.published.final)):
                 guess = self._functions.label_partial(list(self._context), view) if clean \
-                    else _EMPTY_GUESS
+                    else self._empty_guess
                 hypothesis = self._utterance(entry, speaker=channel.speaker, word_ids=word_ids,
                                              clean=clean, guess=guess, final=final)
                 if entry.published is None or _utterance_changed(
@@ -371,9 +377,6 @@ class ConversationEngine:
         )
 
 
-#: An utterance of nothing but disfluent words has no function to learn from.
-_EMPTY_GUESS = FunctionGuess(label="other", confidence=1.0, function=UtteranceFunction.OTHER,
-                             function_confidence=1.0)
 
 
 def _clean_word(word: Word, text: str, fragment: bool) -> Word:
