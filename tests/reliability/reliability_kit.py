@@ -6,27 +6,54 @@ are trained once per test session from a few SwDA train conversations, in a sepa
 use the models are therefore marked ``corpus``.
 
 Test modules import the fixtures they use by name (``from reliability_kit import ...``): a
-second ``conftest.py`` would clash with ``tests/conftest.py`` under mypy.
+second ``conftest.py`` would clash with ``tests/conftest.py`` under mypy. The model fixtures,
+the server handle and the wire-event builders are the server suite's own (``server_kit``, on
+pytest's ``pythonpath``); only the defaults for these tests differ.
 """
 
 from __future__ import annotations
 
 import asyncio
 import contextlib
-import subprocess
-import sys
 import threading
-from collections.abc import AsyncIterator, Awaitable, Callable, Iterator
+from collections.abc import AsyncIterator, Iterator
 from pathlib import Path
 from typing import Any
 
 import grpc
 import pytest
-from midstream import ModelError, NotFoundError
 from midstream.models import ModelBundle
 from midstream.server import MidstreamServer, ServerConfig, ServerLimits
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
+from server_kit import (
+    CLOSE,
+    Running,
+    ServerFactory,
+    bundle_fixture,
+    models_dir_fixture,
+    open_event,
+    spoken,
+    words_event,
+)
+
+# What the reliability tests import from here (server_kit's names are re-exported).
+__all__ = [
+    "CLOSE",
+    "REPO",
+    "SMALL_LIMITS",
+    "WAIT_S",
+    "Running",
+    "ServerFactory",
+    "bundle_fixture",
+    "models_dir_fixture",
+    "open_event",
+    "refusal",
+    "served_in_thread",
+    "spoken",
+    "start_server_fixture",
+    "words_event",
+]
 
 REPO = Path(__file__).resolve().parents[2]
 
@@ -36,64 +63,6 @@ SMALL_LIMITS = ServerLimits(idle_timeout_s=1.0, ended_retention_s=60.0, replay_u
 
 #: Every wait in these tests is bounded: a hang fails the test instead of stalling CI.
 WAIT_S = 10.0
-
-_TRAIN = """
-import itertools, sys
-from pathlib import Path
-from midstream.corpora import read_corpus
-from midstream.models._artifact import save_artifact
-from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
-from midstream.models._train_words import WordTrainingConfig, train_word_artifact
-swda, out = Path(sys.argv[1]), Path(sys.argv[2])
-conversations = list(itertools.islice(read_corpus(swda, split="train"), 12))
-save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=30)),
-              out / "words.msm")
-save_artifact(train_function_model(conversations, FunctionTrainingOptions(max_iterations=30)),
-              out / "functions.msm")
-"""
-
-_MODELS: list[Path] = []  # once per session, whichever test asks first
-
-
-def train_tiny_models(swda: Path, out: Path) -> Path:
-    """Train tiny real models from 12 SwDA train conversations into ``out`` (a subprocess)."""
-    out.mkdir(parents=True, exist_ok=True)
-    subprocess.run([sys.executable, "-c", _TRAIN, str(swda), str(out)], check=True,
-                   timeout=600, capture_output=True)
-    return out
-
-
-@pytest.fixture(name="models_dir")
-def models_dir_fixture(request: pytest.FixtureRequest,
-                       tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """A folder of models: the shipped weights if they load, else tiny ones trained now."""
-    if not _MODELS:
-        shipped = REPO / "models" / "weights"
-        try:
-            ModelBundle.load_directory(shipped)
-            _MODELS.append(shipped)
-        except (ModelError, NotFoundError):
-            swda: Path = request.getfixturevalue("swda_dir")
-            _MODELS.append(train_tiny_models(swda, tmp_path_factory.mktemp("tiny-models")))
-    return _MODELS[0]
-
-
-@pytest.fixture(name="bundle")
-def bundle_fixture(models_dir: Path) -> ModelBundle:
-    return ModelBundle.load_directory(models_dir)
-
-
-class Running:
-    """A started server with a connected stub; stopped by the fixture."""
-
-    def __init__(self, server: MidstreamServer, channel: grpc.aio.Channel) -> None:
-        self.server = server
-        self.channel = channel
-        self.stub = pb_grpc.MidstreamStub(channel)  # type: ignore[no-untyped-call]
-
-
-ServerFactory = Callable[..., Awaitable[Running]]
-
 
 @pytest.fixture(name="start_server")
 async def start_server_fixture(bundle: ModelBundle) -> AsyncIterator[ServerFactory]:
@@ -116,27 +85,6 @@ async def start_server_fixture(bundle: ModelBundle) -> AsyncIterator[ServerFacto
     for running in started:
         await running.server.stop(0)
         await running.channel.close()
-
-
-def spoken(word_id: str, text: str, speaker: str = "A", start: float | None = None,
-           **extra: Any) -> pb.SpokenWord:
-    """A wire word; ``start`` also sets ``end_s`` 0.2 s later."""
-    word = pb.SpokenWord(word_id=word_id, speaker=speaker, text=text, **extra)
-    if start is not None:
-        word.start_s = start
-        word.end_s = start + 0.2
-    return word
-
-
-def words_event(*words: pb.SpokenWord) -> pb.ClientEvent:
-    return pb.ClientEvent(words=pb.WordBatch(words=list(words)))
-
-
-def open_event(conversation_id: str = "") -> pb.ClientEvent:
-    return pb.ClientEvent(open=pb.OpenConversation(conversation_id=conversation_id))
-
-
-CLOSE = pb.ClientEvent(close=pb.CloseConversation())
 
 
 async def refusal(stub: pb_grpc.MidstreamStub,
