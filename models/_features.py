@@ -70,12 +70,17 @@ class FeatureConfig:
     ``left`` bounds the left context (the position feature counts back at most that far);
     ``restart_span`` (0: off) how far back the phrase-restart features look for the word that
     follows an interruption point. Requires ``restart_span <= left``.
+
+    ``tag_bias`` maps internal CRF tags to a constant added to their state score at decoding
+    (not a feature: it shifts the decision threshold between tags after training, chosen by
+    cross-validation on the training split; empty means the trained weights alone decide).
     """
 
     right: int = 5
     left: int = 8
     lexicon: Mapping[str, str] = field(default_factory=dict, repr=False)
     restart_span: int = 0
+    tag_bias: Mapping[str, float] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         if self.right < 0 or self.left < self.right + 1:
@@ -84,8 +89,12 @@ class FeatureConfig:
             raise ValueError(f"restart_span must be in [0, left], got {self.restart_span}")
 
     def to_json(self) -> dict[str, Any]:
-        return {"right": self.right, "left": self.left, "lexicon": dict(self.lexicon),
-                "restart_span": self.restart_span}
+        data: dict[str, Any] = {"right": self.right, "left": self.left,
+                                 "lexicon": dict(self.lexicon),
+                                 "restart_span": self.restart_span}
+        if self.tag_bias:
+            data["tag_bias"] = dict(self.tag_bias)
+        return data
 
     @classmethod
     def from_json(cls, data: Mapping[str, Any]) -> FeatureConfig:
@@ -95,6 +104,7 @@ class FeatureConfig:
             lexicon={str(k): str(v) for k, v in dict(data["lexicon"]).items()},
             # Absent in models trained before the phrase-restart features existed.
             restart_span=int(data.get("restart_span", 0)),
+            tag_bias={str(k): float(v) for k, v in dict(data.get("tag_bias", {})).items()},
         )
 
 

@@ -6,7 +6,7 @@ each speaker channel gets its own :class:`~midstream.models._decoder.ChannelDeco
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from importlib import resources
 from pathlib import Path
 
@@ -52,6 +52,8 @@ class WordModel:
         self.attributes = weights.attributes
         # One all-zero row appended: the padding row of score_pieces.
         self.state: FloatArray = np.vstack([weights.state, np.zeros((1, len(weights.labels)))])
+        if self.config.tag_bias:
+            self._apply_bias(self.config.tag_bias)
         self.transitions = weights.transitions
         # Scaled so the largest entry is 1 (see decode_lattice).
         self.exp_transitions: FloatArray = np.exp(
@@ -74,6 +76,18 @@ class WordModel:
         )
         self.tag_ip: tuple[bool, ...] = tuple(b in IP_TAGS for b in self.tag_base)
         self.zero: FloatArray = np.zeros(len(self.tags))
+
+    def _apply_bias(self, bias: Mapping[str, float]) -> None:
+        unknown = sorted(set(bias) - set(self.tags))
+        if unknown:
+            raise ModelError(f"word model's tag_bias names unknown tags {unknown}")
+        # Every word carries the always-on feature "b", so its row is the per-tag bias: adding
+        # there shifts every state score at once and costs nothing per word.
+        row = self.attributes.get("b")
+        if row is None:
+            raise ModelError("word model has no always-on feature 'b' to carry tag_bias")
+        for tag, value in bias.items():
+            self.state[row, self.tags.index(tag)] += value
 
     @classmethod
     def from_artifact(cls, artifact: ModelArtifact) -> WordModel:
@@ -111,7 +125,13 @@ class WordModel:
         return result
 
     def tag_tokens(self, tokens: Sequence[Token]) -> list[str]:
-        """Decode a whole channel at once (offline), with crfsuite's own Viterbi."""
+        """Decode a whole channel at once (offline), with crfsuite's own Viterbi.
+
+        With a ``tag_bias`` the numpy lattice decodes instead, since crfsuite knows nothing of it.
+        """
+        if self.config.tag_bias:
+            path, _ = self.decode_tokens(tokens)
+            return [self.tags[k] for k in path]
         xseq = [dict.fromkeys(features_at(tokens, i, self.config), 1.0)
                 for i in range(len(tokens))]
         return self.tagger.tag(xseq)

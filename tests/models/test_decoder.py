@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 
 import numpy as np
 import pytest
 from midstream import DisfluencyLabel, Word
-from midstream._errors import EventError
+from midstream._errors import EventError, ModelError
 from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models._features import tokens_from_words
 from midstream.models._lattice import decode_lattice
@@ -152,3 +153,16 @@ def test_decoder_config_limits() -> None:
         DecoderConfig(lag=-1)
     with pytest.raises(ValueError, match="confidence_step"):
         DecoderConfig(confidence_step=2.0)
+
+
+def test_tag_bias_shifts_decoding_towards_the_biased_tag(model: WordModel) -> None:
+    features = dict(model.artifact.features)
+    features["tag_bias"] = {"rp": 50.0}
+    biased = WordModel.from_artifact(dataclasses.replace(model.artifact, features=features))
+    tokens = tokens_from_words(_words("i think i think that we went"), [False] * 7)
+    # A bias far above any trained weight decides every word but the channel's last.
+    assert {biased.tags[k] for k in biased.decode_tokens(tokens)[0][:-1]} == {"rp"}
+    assert biased.tag_tokens(tokens) == [biased.tags[k] for k in biased.decode_tokens(tokens)[0]]
+    with pytest.raises(ModelError, match="unknown tags"):
+        features["tag_bias"] = {"nope": 1.0}
+        WordModel.from_artifact(dataclasses.replace(model.artifact, features=features))

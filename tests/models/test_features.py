@@ -90,3 +90,10 @@ def test_fragment_prefix_matches_the_completed_word() -> None:
 
 def test_config_round_trips_through_json() -> None:
     assert FeatureConfig.from_json(CONFIG.to_json()) == CONFIG
+
+
+def test_tag_bias_round_trips_through_json() -> None:
+    config = FeatureConfig(lexicon={"uh": "F"}, tag_bias={"rp": 0.5})
+    assert FeatureConfig.from_json(config.to_json()) == config
+    # Models written before the field existed read as "no bias".
+    assert FeatureConfig.from_json({"right": 5, "left": 8, "lexicon": {}}).tag_bias == {}
