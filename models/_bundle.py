@@ -20,6 +20,7 @@ from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
 from midstream.models._decoder import ChannelDecoder, DecoderConfig
 from midstream.models._engine import ConversationEngine, EngineConfig
 from midstream.models._functions import FunctionTagger
+from midstream.models._lattice import warm_up as warm_up_kernels
 from midstream.models._wordmodel import WordModel
 
 #: Largest model file read (explicit limit; the shipped models are a few MB).
@@ -100,6 +101,15 @@ class ModelBundle:
     def describe(self) -> tuple[ModelInfo, ...]:
         """The models in this bundle, word model first."""
         return self._infos
+
+    @staticmethod
+    def warm_up() -> None:
+        """Compile the decoding kernels now (or load them from their disk cache).
+
+        Otherwise the first word decoded in this process pays for it: seconds on a fresh
+        install, a fraction of a second afterwards.
+        """
+        warm_up_kernels()
 
     def new_engine(self) -> ConversationEngine:
         """A fresh engine for one conversation (cheap: models are shared)."""

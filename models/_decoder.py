@@ -22,7 +22,7 @@ import numpy.typing as npt
 from midstream._errors import EventError
 from midstream._types import DisfluencyLabel, Word
 from midstream.models._features import Token, feature_piece, features_at, token_of
-from midstream.models._lattice import decode_lattice
+from midstream.models._lattice import accumulate_rows, decode_window
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import INTERREGNUM_TAGS, IP_TAGS
 
@@ -79,12 +79,11 @@ class TokenState:
 class _Entry:
     __slots__ = (
         "boundary_confidence", "confidence", "ends", "final", "key", "label", "link",
-        "published", "revision", "score", "tag",
+        "published", "revision", "tag",
     )
 
-    def __init__(self, key: int, size: int) -> None:
+    def __init__(self, key: int) -> None:
         self.key = key
-        self.score: FloatArray = np.zeros(size)
         self.tag = -1
         self.label = DisfluencyLabel.FLUENT
         self.ends = False
@@ -114,6 +113,9 @@ class ChannelDecoder:
         self._keep = max(model.config.left, 1)
         self._entries: list[_Entry] = []
         self._tokens: list[Token] = []
+        # State scores of the held words, row k for self._entries[k]: one preallocated block
+        # (the decoder holds at most keep + lag + 1 words), so a new word allocates nothing.
+        self._scores: FloatArray = np.zeros((self._keep + config.lag + 2, len(model.tags)))
         self._first_open = 0
         self._finished = False
 
@@ -146,18 +148,22 @@ class ChannelDecoder:
             raise EventError(f"word {key}: channel already finished")
         if any(e.key == key for e in self._entries):
             raise EventError(f"word {key}: key already used in this channel")
-        self._entries.append(_Entry(key, len(self._model.tags)))
+        self._entries.append(_Entry(key))
         self._tokens.append(token_of(word, after_other_speaker))
         last = len(self._entries) - 1
-        owners: list[_Entry] = []
-        pieces: list[list[str]] = []
+        self._reserve(last + 1)
+        self._scores[last] = 0.0
+        rows: list[int] = []
+        targets: list[int] = []
+        model = self._model
         for k in range(min(self._right, last) + 1):
-            entry = self._entries[last - k]
-            if not entry.final:
-                owners.append(entry)
-                pieces.append(feature_piece(self._tokens, last - k, k, self._model.config))
-        for entry, row in zip(owners, self._model.score_pieces(pieces), strict=True):
-            entry.score += row
+            if not self._entries[last - k].final:
+                found = model.rows(feature_piece(self._tokens, last - k, k, model.config))
+                rows += found
+                targets += [last - k] * len(found)
+        if rows:
+            accumulate_rows(self._scores, model.state, np.array(rows, dtype=np.int64),
+                            np.array(targets, dtype=np.int64))
         return self._update(close=False)
 
     def replace(self, key: int, word: Word) -> list[TokenState]:
@@ -184,6 +190,8 @@ class ChannelDecoder:
         position = self._open_position(key)
         del self._entries[position]
         del self._tokens[position]
+        held = len(self._entries)
+        self._scores[position:held] = self._scores[position + 1 : held + 1]
         self._rescore_open()
         if self._first_open >= len(self._entries):
             return []
@@ -212,43 +220,53 @@ class ChannelDecoder:
                 return position
         raise EventError(f"word {key}: not an open word of this channel (final or unknown)")
 
+    def _reserve(self, rows: int) -> None:
+        if rows > len(self._scores):
+            grown = np.zeros((2 * rows, self._scores.shape[1]))
+            grown[: len(self._scores)] = self._scores
+            self._scores = grown
+
     def _rescore_open(self) -> None:
         last = len(self._entries) - 1
-        config = self._model.config
+        model = self._model
         for i in range(self._first_open, last + 1):
-            features = features_at(self._tokens[: last + 1], i, config)
-            self._entries[i].score = self._model.score(features)
+            rows = model.rows(features_at(self._tokens[: last + 1], i, model.config))
+            self._scores[i] = model.state[rows].sum(axis=0) if rows else 0.0
 
     def _update(self, *, close: bool) -> list[TokenState]:
         model = self._model
         start = self._first_open
-        anchor = start - 1 if start > 0 else None
-        window = self._entries[anchor if anchor is not None else start :]
-        emissions = np.stack([e.score for e in window])
-        path, marginals = decode_lattice(
-            emissions,
-            model.exp_transitions,
-            first=window[0].tag if anchor is not None else None,
+        lo = start - 1 if start > 0 else start
+        held = len(self._entries)
+        result = decode_window(
+            self._scores, lo, held, model.exp_transitions,
+            first=self._entries[lo].tag if start > 0 else -1,
             last_mask=model.end_mask if close else None,
+            tag_group=model.tag_group, tag_end=model.tag_end,
         )
-        label_probs = (marginals @ model.label_groups).tolist()
-        end_probs = (marginals @ model.end_mask).tolist()
-        offset = 1 if anchor is not None else 0
-        n_open = len(self._entries) - start
+        path = result.path
+        offset = start - lo
+        n_open = held - start
         n_final = n_open if close else max(0, n_open - self._config.lag)
+        tag_label = model.tag_label
+        tag_ends = model.tag_ends
+        window = self._entries[lo:]
         for j in range(offset, len(window)):
             entry = window[j]
             tag = path[j]
             entry.tag = tag
-            entry.label = model.tag_label[tag]
-            entry.ends = model.tag_ends[tag]
-            entry.confidence = label_probs[j][model.tag_label_index[tag]]
-            p_end = end_probs[j]
-            entry.boundary_confidence = p_end if entry.ends else 1.0 - p_end
+            entry.label = tag_label[tag]
+            ends = tag_ends[tag]
+            entry.ends = ends
+            entry.confidence = result.confidence[j]
+            p_end = result.end_probability[j]
+            entry.boundary_confidence = p_end if ends else 1.0 - p_end
         self._link(window, path)
         changed: list[TokenState] = []
-        for j, entry in enumerate(self._entries[start:]):
-            if j < n_final:
+        tag_ip = model.tag_ip
+        for j in range(offset, len(window)):
+            entry = window[j]
+            if j - offset < n_final:
                 entry.final = True
             if self._differs(entry):
                 entry.revision += 1
@@ -257,7 +275,7 @@ class ChannelDecoder:
                     ends_utterance=entry.ends, boundary_confidence=entry.boundary_confidence,
                     final=entry.final, revision=entry.revision,
                     reparandum_onset_key=entry.link,
-                    interruption_point=model.tag_ip[entry.tag],
+                    interruption_point=tag_ip[entry.tag],
                 )
                 entry.published = state
                 changed.append(state)
@@ -266,6 +284,7 @@ class ChannelDecoder:
         if drop > 0:
             del self._entries[:drop]
             del self._tokens[:drop]
+            self._scores[: held - drop] = self._scores[drop:held]
             self._first_open -= drop
         return changed
 

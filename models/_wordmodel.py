@@ -23,6 +23,7 @@ from midstream.models._wordtags import END_SUFFIX, IP_TAGS, TAG_LABEL, decode_ta
 __all__ = ["WordModel", "default_words_model_path"]
 
 FloatArray = npt.NDArray[np.float64]
+IntArray = npt.NDArray[np.int64]
 
 
 def default_words_model_path() -> Path:
@@ -50,15 +51,13 @@ class WordModel:
         if unknown:
             raise ModelError(f"word model has unknown tags {unknown}")
         self.attributes = weights.attributes
-        # One all-zero row appended: the padding row of score_pieces.
-        self.state: FloatArray = np.vstack([weights.state, np.zeros((1, len(weights.labels)))])
+        self.state: FloatArray = np.ascontiguousarray(weights.state, dtype=np.float64)
         if self.config.tag_bias:
             self._apply_bias(self.config.tag_bias)
         self.transitions = weights.transitions
-        # Scaled so the largest entry is 1 (see decode_lattice).
-        self.exp_transitions: FloatArray = np.exp(
-            weights.transitions - weights.transitions.max()
-        )
+        # Scaled so the largest entry is 1: Viterbi products stay well inside float range.
+        self.exp_transitions: FloatArray = np.ascontiguousarray(
+            np.exp(weights.transitions - weights.transitions.max()))
         decoded = [decode_tag(t) for t in self.tags]
         self.tag_base: tuple[str, ...] = tuple(d[0] for d in decoded)
         self.tag_label: tuple[DisfluencyLabel, ...] = tuple(d[1] for d in decoded)
@@ -67,14 +66,13 @@ class WordModel:
         if not self.end_mask.any():
             raise ModelError("word model has no utterance-end tag")
         self.labels: tuple[DisfluencyLabel, ...] = tuple(DisfluencyLabel)
-        # (tags x labels) and (tags x 2) 0/1 matrices summing tag marginals into label ones.
-        self.label_groups: FloatArray = np.array(
-            [[1.0 if lab == t else 0.0 for t in self.labels] for lab in self.tag_label]
-        )
         self.tag_label_index: tuple[int, ...] = tuple(
             self.labels.index(lab) for lab in self.tag_label
         )
         self.tag_ip: tuple[bool, ...] = tuple(b in IP_TAGS for b in self.tag_base)
+        # The same facts as arrays, for the compiled window decoder.
+        self.tag_group: IntArray = np.array(self.tag_label_index, dtype=np.int64)
+        self.tag_end: npt.NDArray[np.bool_] = np.array(self.tag_ends, dtype=np.bool_)
         self.zero: FloatArray = np.zeros(len(self.tags))
 
     def _apply_bias(self, bias: Mapping[str, float]) -> None:
@@ -101,27 +99,17 @@ class WordModel:
         path = default_words_model_path() if path is None else path
         return cls.from_artifact(load_artifact(path, expected_kind="words"))
 
+    def rows(self, features: Sequence[str]) -> list[int]:
+        """Rows of :attr:`state` of the features the model knows (unknown ones weigh nothing)."""
+        get = self.attributes.get
+        return [r for r in map(get, features) if r is not None]
+
     def score(self, features: Sequence[str]) -> FloatArray:
         """State scores of one word's features (unknown features weigh nothing)."""
-        get = self.attributes.get
-        rows = [r for r in map(get, features) if r is not None]
+        rows = self.rows(features)
         if not rows:
             return self.zero.copy()
         result: FloatArray = self.state[rows].sum(axis=0)
-        return result
-
-    def score_pieces(self, pieces: Sequence[Sequence[str]]) -> FloatArray:
-        """State scores of several feature lists at once, one row each (one gather, one sum)."""
-        get = self.attributes.get
-        # The all-zero last row pads every piece, so reduceat never sees an empty segment.
-        pad = len(self.state) - 1
-        rows: list[int] = []
-        starts: list[int] = []
-        for piece in pieces:
-            starts.append(len(rows))
-            rows.extend(r for r in map(get, piece) if r is not None)
-            rows.append(pad)
-        result: FloatArray = np.add.reduceat(self.state[rows], starts, axis=0)
         return result
 
     def tag_tokens(self, tokens: Sequence[Token]) -> list[str]:

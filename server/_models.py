@@ -65,6 +65,8 @@ def load_bundle(directory: Path | None) -> Bundle:
     """
     from midstream.models import ModelBundle  # noqa: PLC0415 - the models load only on demand
 
-    if directory is None:
-        return ModelBundle.load_default()
-    return ModelBundle.load_directory(directory)
+    bundle = (ModelBundle.load_default() if directory is None
+              else ModelBundle.load_directory(directory))
+    # Here, off the event loop, rather than inside the first live word's latency.
+    bundle.warm_up()
+    return bundle

@@ -11,7 +11,7 @@ from midstream import DisfluencyLabel, Word
 from midstream._errors import EventError, ModelError
 from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models._features import tokens_from_words
-from midstream.models._lattice import decode_lattice
+from midstream.models._lattice import decode_lattice, decode_window
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import channel_sequences
 from word_kit import invented_conversation, tiny_model
@@ -166,3 +166,24 @@ def test_tag_bias_shifts_decoding_towards_the_biased_tag(model: WordModel) -> No
     with pytest.raises(ModelError, match="unknown tags"):
         features["tag_bias"] = {"nope": 1.0}
         WordModel.from_artifact(dataclasses.replace(model.artifact, features=features))
+
+
+def test_window_summary_sums_the_marginals_of_each_label_group() -> None:
+    rng = np.random.default_rng(1)
+    size = 6
+    groups = np.array([0, 0, 1, 2, 2, 2], dtype=np.int64)
+    ends = np.array([False, True, False, False, True, True])
+    for trial in range(30):
+        scores = rng.normal(0, 3, (9, size))
+        transitions = np.exp(rng.normal(0, 2, (size, size)))
+        lo, hi = int(rng.integers(0, 4)), int(rng.integers(5, 10))
+        first = int(rng.integers(size)) if trial % 2 else -1
+        mask = np.array([0.0, 1.0, 0.0, 0.0, 1.0, 1.0]) if trial % 3 == 0 else None
+        result = decode_window(scores, lo, hi, transitions, first=first, last_mask=mask,
+                               tag_group=groups, tag_end=ends)
+        path, marginals = decode_lattice(scores[lo:hi], transitions,
+                                         first=None if first < 0 else first, last_mask=mask)
+        assert result.path == path
+        for t, tag in enumerate(path):
+            assert result.confidence[t] == pytest.approx(marginals[t, groups == groups[tag]].sum())
+            assert result.end_probability[t] == pytest.approx(marginals[t, ends].sum())
