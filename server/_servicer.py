@@ -69,6 +69,75 @@ _TIMEOUT = _Timeout()
 _STOPPED = _Stopped()
 
 
+class _EventReader:
+    """Reads a Converse stream's events until a stop signal or an idle timeout interrupts.
+
+    Every word arrives as one event, so this runs thousands of times a second: rather than a
+    wait with a timeout per read (a timer, callbacks and bookkeeping each time), one watchdog
+    timer per stream re-arms itself only when it fires, and the stop signal cancels the pending
+    read through a callback. :meth:`next` returns the event, ``grpc.aio.EOF``, ``_TIMEOUT``
+    or ``_STOPPED``. Use as a context manager (or call :meth:`close`) to drop the timer.
+    """
+
+    def __init__(self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
+                 stop: asyncio.Future[object], idle_timeout_s: float) -> None:
+        self._context = context
+        self._stop = stop
+        self._idle_timeout_s = idle_timeout_s
+        self._loop = asyncio.get_running_loop()
+        self._last_event = self._loop.time()
+        self._pending: asyncio.Future[object] | None = None
+        self._reason: object | None = _STOPPED if stop.done() else None
+        self._timer = self._loop.call_later(idle_timeout_s, self._check_idle)
+        stop.add_done_callback(self._on_stop)
+
+    def __enter__(self) -> _EventReader:
+        return self
+
+    def __exit__(self, *_: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        self._timer.cancel()
+        self._stop.remove_done_callback(self._on_stop)
+
+    def _interrupt(self, reason: object) -> None:
+        if self._reason is None:
+            self._reason = reason
+        if self._pending is not None and not self._pending.done():
+            self._pending.cancel()
+
+    def _on_stop(self, _: object) -> None:
+        self._interrupt(_STOPPED)
+
+    def _check_idle(self) -> None:
+        idle_for = self._loop.time() - self._last_event
+        if idle_for >= self._idle_timeout_s and self._pending is not None:
+            self._interrupt(_TIMEOUT)
+        else:
+            self._timer = self._loop.call_later(
+                max(self._idle_timeout_s - idle_for, 0.001), self._check_idle)
+
+    async def next(self) -> object:
+        if self._reason is not None:
+            return self._reason
+        read: asyncio.Future[object] = asyncio.ensure_future(self._context.read())
+        self._pending = read
+        try:
+            event = await read
+        except asyncio.CancelledError:
+            task = asyncio.current_task()
+            # Our own interruption cancelled the read; a cancellation of this task propagates.
+            if self._reason is not None and read.cancelled() and not (
+                    task is not None and task.cancelling()):
+                return self._reason
+            raise
+        finally:
+            self._pending = None
+        self._last_event = self._loop.time()
+        return event
+
+
 async def _vanished(context: grpc.aio.ServicerContext[Any, Any]) -> bool:
     """Whether an end of the request stream was a cancellation rather than a half-close.
 
@@ -128,23 +197,9 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
 
     # --- Converse ------------------------------------------------------------------------
 
-    async def _next(self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
-                    stop: asyncio.Future[object]) -> object:
-        """The next event, ``grpc.aio.EOF``, or a marker for an idle timeout or a stop."""
-        read: asyncio.Future[object] = asyncio.ensure_future(context.read())
-        try:
-            done, _ = await asyncio.wait(
-                {read, stop}, timeout=self._limits.idle_timeout_s,
-                return_when=asyncio.FIRST_COMPLETED,
-            )
-        finally:
-            if not read.done():
-                read.cancel()
-        if stop in done:
-            return _STOPPED
-        if read in done:
-            return read.result()
-        return _TIMEOUT
+    def _reader(self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
+                stop: asyncio.Future[object]) -> _EventReader:
+        return _EventReader(context, stop, self._limits.idle_timeout_s)
 
     async def Converse(  # noqa: N802 - the generated servicer's name
         self, request_iterator: AsyncIterator[pb.ClientEvent],
@@ -152,7 +207,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     ) -> AsyncIterator[pb.ServerMessage]:
         stop_waiter: asyncio.Future[object] = asyncio.ensure_future(self.stopping.wait())
         try:
-            first = await self._next(context, stop_waiter)
+            with self._reader(context, stop_waiter) as reader:
+                first = await reader.next()
             if not isinstance(first, pb.ClientEvent):
                 if first is _STOPPED:
                     await self._fail(context, UnavailableError("the server is shutting down"))
@@ -185,9 +241,10 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         # A server stop finishes every session, so waiting on this session's end covers it.
         sent = 0  # the last sequence number the caller was given
         ended_waiter: asyncio.Future[object] = asyncio.ensure_future(session.ended.wait())
+        reader = self._reader(context, ended_waiter)
         try:
             while True:
-                event = await self._next(context, ended_waiter)
+                event = await reader.next()
                 if event is _STOPPED or not session.live:
                     # Finished by the server (shutdown): hand over the rest and the end.
                     for message in (*session.since(sent), session.closing_messages[-1]):
@@ -228,6 +285,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     await self._after_close(context, session)
                     return
         finally:
+            reader.close()
             ended_waiter.cancel()
             if session.live:
                 # Cancelled or the caller went away mid-stream: finalise for the followers.
@@ -239,7 +297,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         """Wait for the caller's half-close; any further event is refused."""
         stop_waiter: asyncio.Future[object] = asyncio.ensure_future(self.stopping.wait())
         try:
-            event = await self._next(context, stop_waiter)
+            with self._reader(context, stop_waiter) as reader:
+                event = await reader.next()
         finally:
             stop_waiter.cancel()
         if isinstance(event, pb.ClientEvent):
