@@ -112,6 +112,7 @@ class ChannelDecoder:
         # Finalised words kept as feature context; one more as the lattice's fixed left end.
         self._keep = max(model.config.left, 1)
         self._entries: list[_Entry] = []
+        self._keys: set[int] = set()  # of self._entries, for the duplicate check
         self._tokens: list[Token] = []
         # State scores of the held words, row k for self._entries[k]: one preallocated block
         # (the decoder holds at most keep + lag + 1 words), so a new word allocates nothing.
@@ -146,9 +147,10 @@ class ChannelDecoder:
         """
         if self._finished:
             raise EventError(f"word {key}: channel already finished")
-        if any(e.key == key for e in self._entries):
+        if key in self._keys:
             raise EventError(f"word {key}: key already used in this channel")
         self._entries.append(_Entry(key))
+        self._keys.add(key)
         self._tokens.append(token_of(word, after_other_speaker))
         last = len(self._entries) - 1
         self._reserve(last + 1)
@@ -190,6 +192,7 @@ class ChannelDecoder:
         position = self._open_position(key)
         del self._entries[position]
         del self._tokens[position]
+        self._keys.discard(key)
         held = len(self._entries)
         self._scores[position:held] = self._scores[position + 1 : held + 1]
         self._rescore_open()
@@ -282,6 +285,8 @@ class ChannelDecoder:
         self._first_open = start + n_final
         drop = self._first_open - self._keep
         if drop > 0:
+            for entry in self._entries[:drop]:
+                self._keys.discard(entry.key)
             del self._entries[:drop]
             del self._tokens[:drop]
             self._scores[: held - drop] = self._scores[drop:held]
