@@ -14,12 +14,18 @@ Feature values are recogniser-style text only: lower case, no punctuation, no ti
 
 from __future__ import annotations
 
+import functools
 import itertools
+import math
+import operator
 from collections import OrderedDict
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Hashable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Generic, TypeVar
 
+import numpy as np
+import numpy.typing as npt
 from midstream._errors import InputError, ModelError
 from midstream._schemes import coarse_function
 from midstream._types import (
@@ -33,6 +39,8 @@ from midstream.models._crf import CrfTagger
 
 #: Feature-dictionary type the CRF adapter takes: attribute name to value.
 Features = dict[str, float]
+
+FloatArray = npt.NDArray[np.float64]
 
 #: How many preceding utterances :meth:`FunctionTagger.label_partial` decodes with the current
 #: one (common practice, no source: enough for question-answer-acknowledgement chains).
@@ -173,10 +181,32 @@ def utterance_features(view: UtteranceView, previous: UtteranceView | None,
     >>> f["w0=do"], f["b=<s>|do"], f["len=3"], f["prev=none"]
     (1.0, 1.0, 1.0, 1.0)
     """
+    feats = _shape_features(view, config)
+    head = view.words[:MAX_FEATURE_WORDS]
+    feats.update(dict.fromkeys(_ngram_names(head, closed=len(view.words) <= MAX_FEATURE_WORDS,
+                                            trigrams=config.trigrams), 1.0))
+    _add_word_features(feats, view.words)
+    if previous is None:
+        feats["prev=none"] = 1.0
+        return feats
+    changed = previous.speaker != view.speaker
+    _add_previous_features(feats, previous, changed=changed, config=config)
+    if changed and config.previous:
+        _add_pair_features(feats, previous.words, view.words)
+    return feats
+
+
+# utterance_features in parts, so the tagger's per-word path can build only what a new word
+# changes: the word n-grams come from a cache extended word by word, and the previous
+# utterance's features are folded into the cached decoding of the context. Every n-gram name
+# has "=" second ("w=", "b=", "t="), and no other feature name does but "x=...", so the
+# n-grams never share a name with another part; the other parts' prefixes differ too.
+
+
+def _shape_features(view: UtteranceView, config: FunctionFeatureConfig) -> Features:
+    """Bias, length, removed count, emptiness and completeness features (first in the dict)."""
     feats: Features = {"bias": 1.0}
-    words = view.words
-    n = len(words)
-    head = words[:MAX_FEATURE_WORDS]
+    n = len(view.words)
     feats[f"len={_length_bucket(n)}"] = 1.0
     feats[f"rm={_removed_bucket(view.removed)}"] = 1.0
     if n == 0:
@@ -186,14 +216,42 @@ def utterance_features(view: UtteranceView, previous: UtteranceView | None,
             feats["only_disfluent"] = 1.0
     if config.complete_flag and not view.complete:
         feats["incomplete"] = 1.0
-    for w in head:
-        feats[f"w={w}"] = 1.0
-    padded = (_BOS, *head, _EOS) if n <= MAX_FEATURE_WORDS else (_BOS, *head)
-    for a, b in itertools.pairwise(padded):
-        feats[f"b={a}|{b}"] = 1.0
-    if config.trigrams:
-        for a, b, c in zip(padded, padded[1:], padded[2:], strict=False):
-            feats[f"t={a}|{b}|{c}"] = 1.0
+    return feats
+
+
+def _ngram_names(head: Sequence[str], *, closed: bool, trigrams: bool) -> list[str]:
+    """Word unigram, bigram and trigram names of ``head``, with an end marker when ``closed``."""
+    padded = (_BOS, *head, _EOS) if closed else (_BOS, *head)
+    names = [f"w={w}" for w in head]
+    names.extend(f"b={a}|{b}" for a, b in itertools.pairwise(padded))
+    if trigrams:
+        names.extend(f"t={a}|{b}|{c}"
+                     for a, b, c in zip(padded, padded[1:], padded[2:], strict=False))
+    return names
+
+
+def _open_ngram_names(head: Sequence[str], *, trigrams: bool) -> list[str]:
+    """The n-gram names :func:`_ngram_names` adds for the last word of ``head`` (non-empty)."""
+    last = head[-1]
+    before = head[-2] if len(head) > 1 else _BOS
+    names = [f"w={last}", f"b={before}|{last}"]
+    if trigrams and len(head) > 1:
+        names.append(f"t={head[-3] if len(head) > 2 else _BOS}|{before}|{last}")
+    return names
+
+
+def _closing_ngram_names(head: Sequence[str], *, trigrams: bool) -> list[str]:
+    """The n-gram names :func:`_ngram_names` adds for the end marker of a closed ``head``."""
+    last = head[-1] if head else _BOS
+    names = [f"b={last}|{_EOS}"]
+    if trigrams and head:
+        names.append(f"t={head[-2] if len(head) > 1 else _BOS}|{last}|{_EOS}")
+    return names
+
+
+def _add_word_features(feats: Features, words: tuple[str, ...]) -> None:
+    """First and last words and word pairs of the utterance."""
+    n = len(words)
     if n:
         first = words[0]
         feats[f"w0={first}"] = 1.0
@@ -205,10 +263,11 @@ def utterance_features(view: UtteranceView, previous: UtteranceView | None,
             feats[f"only={first}"] = 1.0
         if n > 2:
             feats[f"t0={first}|{words[1]}|{words[2]}"] = 1.0
-    if previous is None:
-        feats["prev=none"] = 1.0
-        return feats
-    changed = previous.speaker != view.speaker
+
+
+def _add_previous_features(feats: Features, previous: UtteranceView, *, changed: bool,
+                           config: FunctionFeatureConfig) -> None:
+    """The previous utterance's features: all of them depend on it and the speaker change only."""
     feats["spk=change" if changed else "spk=same"] = 1.0
     if config.previous:
         pw = previous.words
@@ -224,13 +283,17 @@ def utterance_features(view: UtteranceView, previous: UtteranceView | None,
             feats[f"p{tag}empty"] = 1.0
         if not previous.complete:
             feats[f"p{tag}incomplete"] = 1.0
-        if changed and n:
-            # "yeah" after a question is an answer, after an opinion an agreement, after a
-            # statement a backchannel: the pair carries what neither word does alone.
-            feats[f"x={pw[0] if pn else '-'}|{words[0]}"] = 1.0
-            if n <= 2:
-                feats[f"xs={pw[0] if pn else '-'}|{'_'.join(words)}"] = 1.0
-    return feats
+
+
+def _add_pair_features(feats: Features, previous: tuple[str, ...],
+                       words: tuple[str, ...]) -> None:
+    """Previous first word with this first word, across a change of speaker."""
+    if words:
+        # "yeah" after a question is an answer, after an opinion an agreement, after a
+        # statement a backchannel: the pair carries what neither word does alone.
+        feats[f"x={previous[0] if previous else '-'}|{words[0]}"] = 1.0
+        if len(words) <= 2:
+            feats[f"xs={previous[0] if previous else '-'}|{'_'.join(words)}"] = 1.0
 
 
 def sequence_features(views: Sequence[UtteranceView],
@@ -316,16 +379,97 @@ class _FeatureCache:
         return feats
 
 
+_K = TypeVar("_K", bound=Hashable)
+_V = TypeVar("_V")
+
+
+class _Lru(Generic[_K, _V]):
+    """A bounded least-recently-used map.
+
+    Every step is one operation on the underlying ``OrderedDict`` (atomic under the GIL), and a
+    key evicted between a lookup and its refresh is tolerated, so threads sharing one map at
+    worst recompute an entry; they never see a torn one (values are never changed in place).
+    """
+
+    __slots__ = ("_items", "_size")
+
+    def __init__(self, size: int) -> None:
+        self._size = size
+        self._items: OrderedDict[_K, _V] = OrderedDict()
+
+    def __len__(self) -> int:
+        return len(self._items)
+
+    def get(self, key: _K) -> _V | None:
+        value = self._items.get(key)
+        if value is not None:
+            try:  # noqa: SIM105 (contextlib.suppress costs more, and this runs per word)
+                self._items.move_to_end(key)
+            except KeyError:
+                pass  # evicted by another thread since the lookup: the value is still good
+        return value
+
+    def put(self, key: _K, value: _V) -> None:
+        self._items[key] = value
+        while len(self._items) > self._size:
+            try:
+                self._items.popitem(last=False)
+            except KeyError:
+                break  # emptied by another thread meanwhile
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class _Carry:
+    """crfsuite's recursions over a window of final context utterances, one step short.
+
+    ``forward[j]`` is ``sum_i alpha[i] * exp(T[i, j])`` with ``alpha`` the scaled forward
+    vector of the window's last position, ``best[j]`` is ``max_i viterbi[i] + T[i, j]``: what
+    the next position's recursions combine with its state scores. ``same`` and ``other`` are
+    the model rows of the features a following utterance takes from the window's last one,
+    when its speaker is the same or another.
+    """
+
+    forward: tuple[float, ...]
+    best: tuple[float, ...]
+    same: tuple[int, ...]
+    other: tuple[int, ...]
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class _Grams:
+    """Model rows of the n-grams of an utterance's leading words, without the end marker.
+
+    Unigram, bigram and trigram rows apart, each in the order :func:`utterance_features` adds
+    their names, repeats left out (a repeated name is one attribute). The entry of
+    ``head + (word,)`` is this one plus the n-grams ending at ``word``.
+    """
+
+    unigrams: tuple[int, ...]
+    bigrams: tuple[int, ...]
+    trigrams: tuple[int, ...]
+
+
+#: Distinct context windows whose decoding :class:`FunctionTagger` keeps (a live conversation
+#: uses one at a time; twice the server's default ``max_live_conversations``, so conversations
+#: interleaving on one tagger do not evict each other). Documented limit.
+WINDOW_CACHE_SIZE = 512
+
+#: Leading-word sequences of current utterances whose n-gram rows :class:`FunctionTagger`
+#: keeps (about two open utterances per live conversation). An entry holds at most
+#: ``3 * MAX_FEATURE_WORDS`` row numbers. Documented limit.
+NGRAM_CACHE_SIZE = 1024
+
+
 def check_view(view: object) -> UtteranceView:
     """Return ``view`` if it is a well-formed :class:`UtteranceView`, else raise InputError."""
     if not isinstance(view, UtteranceView):
         raise InputError(f"expected an UtteranceView, got {type(view).__name__}")
-    if not isinstance(view.words, tuple) or not all(isinstance(w, str) for w in view.words):
+    words = view.words
+    if not isinstance(words, tuple) or not all(map(isinstance, words, itertools.repeat(str))):
         raise InputError("UtteranceView.words must be a tuple of strings")
     if view.removed < 0:
         raise InputError(f"UtteranceView.removed must be >= 0, got {view.removed}")
     return view
-
 
 
 #: Label schemes a function model is trained on.
@@ -349,10 +493,27 @@ def _coarse_of(scheme: str, label: str) -> UtteranceFunction:
 class FunctionTagger:
     """Labels utterances with their function from a trained CRF.
 
-    Build it with :meth:`from_artifact` (or :meth:`load`). The tagger keeps a small bounded cache
-    of feature dictionaries of recent (final) context utterances. It is not safe to share between
-    threads that tag at the same time without the CRF adapter's lock serialising them; give each
-    session its own tagger when decoding in parallel (creating one from an artifact is cheap).
+    Build it with :meth:`from_artifact` (or :meth:`load`).
+
+    :meth:`label_partial` does not call crfsuite: it needs only the last position's Viterbi
+    label and marginals, and both come from the forward recursions alone (crfsuite's backward
+    vector at the last position is its scale factor, which the marginal divides out again). The
+    tagger reads the CRF's weights once and repeats crfsuite's own arithmetic step for step (the
+    same operations in the same order, the C library's ``exp``), so labels and marginals are
+    crfsuite's to the last bit. What does not change from word to word is cached, each cache a
+    bounded LRU: the recursions over a window of final context utterances (keyed by the views'
+    values, and by their ids in front of that, :data:`WINDOW_CACHE_SIZE` windows each), the
+    context utterances' state scores (``WINDOW_CACHE_SIZE * (context + 1)``), and the n-gram
+    rows of a growing utterance's leading words (:data:`NGRAM_CACHE_SIZE`), so a call costs the
+    new word's features and one step of the recursions. In the rare case crfsuite's ``exp``
+    would overflow, the call is handed to crfsuite so that even then the result is its own.
+
+    Sharing: the weights are never written after construction and cache entries never change
+    after insertion, so one tagger may serve any number of engines and sessions, interleaved on
+    one event loop (a call never awaits) or on several threads (a race can at worst make one
+    of them recompute an evicted entry). The cache sizes bound the memory however many
+    conversations use the tagger. :meth:`label_conversation` calls crfsuite, whose adapter
+    serialises calls with a lock.
     """
 
     def __init__(self, crf: CrfTagger, *, scheme: str, config: FunctionFeatureConfig,
@@ -369,8 +530,36 @@ class FunctionTagger:
         self._context = context
         self._coarse_from = coarse_from
         self._coarse = {label: _coarse_of(scheme, label) for label in crf.labels}
-        # Enough for the context window of a few concurrent utterance chains.
-        self._cache = _FeatureCache(size=8 * (context + 2))
+        weights = crf.weights()
+        self._attributes = weights.attributes
+        # One all-zero last row, gathered when an utterance has no known attribute at all.
+        self._state: FloatArray = np.vstack([weights.state, np.zeros((1, len(crf.labels)))])
+        self._pad = len(self._state) - 1
+        self._transitions: FloatArray = weights.transitions
+        # Exponentiated one by one with the C library's exp, as crfsuite does.
+        self._exp_transitions: FloatArray = np.array(
+            [[math.exp(w) for w in row] for row in weights.transitions.tolist()]).reshape(
+            weights.transitions.shape)
+        self._functions = tuple(UtteranceFunction)
+        # Label index -> coarse function index (enum order), for summing marginals by group.
+        self._group_of = tuple(self._functions.index(self._coarse[label])
+                               for label in crf.labels)
+        # A function no label maps to can never be chosen.
+        self._no_sums = tuple(0.0 if k in self._group_of else -math.inf
+                              for k in range(len(self._functions)))
+        self._opening = self._rows({"prev=none": 1.0})
+        self._shapes: dict[tuple[int, int, bool], tuple[int, ...]] = {}
+        self._carries: _Lru[tuple[UtteranceView, ...], _Carry] = _Lru(WINDOW_CACHE_SIZE)
+        # The same windows keyed by the views' ids: hashing a tuple of ints is far cheaper than
+        # hashing the views' fields on every word. Each entry holds its views, so while it lives
+        # no other object can carry those ids.
+        self._recent: _Lru[tuple[int, ...], tuple[tuple[UtteranceView, ...], _Carry]] = _Lru(
+            WINDOW_CACHE_SIZE)
+        self._states: _Lru[tuple[UtteranceView | None, UtteranceView], list[float]] = _Lru(
+            WINDOW_CACHE_SIZE * (context + 1))
+        self._grams: _Lru[tuple[str, ...], _Grams] = _Lru(NGRAM_CACHE_SIZE)
+        # Only the crfsuite path (overflow fallback, tests, benchmark baseline) uses this one.
+        self._feature_cache = _FeatureCache(size=8 * (context + 2))
 
     @classmethod
     def from_artifact(cls, artifact: ModelArtifact, *, context: int = DEFAULT_CONTEXT,
@@ -447,13 +636,246 @@ class FunctionTagger:
         return FunctionGuess(label=label, confidence=confidence, function=function,
                              function_confidence=sums.get(function, 0.0))
 
+    def _guess_at(self, k: int, probs: list[float]) -> FunctionGuess:
+        """:meth:`_guess` for label index ``k`` and the marginals of all labels in model order."""
+        label = self._crf.labels[k]
+        confidence = probs[k]
+        if self._scheme == "coarse":
+            return FunctionGuess(label=label, confidence=confidence,
+                                 function=self._coarse[label], function_confidence=confidence)
+        # Added in label order from 0.0, as _guess adds them.
+        sums = list(self._no_sums)
+        for group, p in zip(self._group_of, probs, strict=True):
+            sums[group] += p
+        if self._coarse_from == "label":
+            group = self._group_of[k]
+        else:
+            # max keeps the first of equal sums: ties go to the earlier function in enum order.
+            group = max(range(len(sums)), key=sums.__getitem__)
+        return FunctionGuess(label=label, confidence=confidence, function=self._functions[group],
+                             function_confidence=sums[group])
+
+    # --- crfsuite's arithmetic, step for step ---------------------------------------------
+    #
+    # crfsuite sums an item's state scores attribute by attribute in the order the item lists
+    # them (here the feature dictionary's order), each from 0.0; a gather of those rows summed
+    # along the first axis adds them in that order too. Its vector sums run left to right, its
+    # exp is the C library's (math.exp), and it scales by multiplying with 1 / sum.
+
+    def _rows(self, features: Iterable[str]) -> tuple[int, ...]:
+        """Model rows of the known attributes among ``features``, in their order."""
+        get = self._attributes.get
+        return tuple(r for r in map(get, features) if r is not None)
+
+    def _state_scores(self, rows: Sequence[int]) -> list[float]:
+        """crfsuite's state scores of an item with the attributes of ``rows`` (in that order)."""
+        gathered = self._state.take(rows if rows else [self._pad], axis=0)
+        scores: list[float] = np.add.reduce(gathered, axis=0).tolist()
+        return scores
+
+    def _push_forward(self, alpha: list[float]) -> tuple[float, ...]:
+        """``sum_i alpha[i] * exp(T[i, j])`` for every ``j``, summed over ``i`` in order."""
+        products = np.asarray(alpha)[:, None] * self._exp_transitions
+        return tuple(np.add.reduce(products, axis=0).tolist())
+
+    def _push_best(self, viterbi: list[float]) -> tuple[float, ...]:
+        """``max_i viterbi[i] + T[i, j]`` for every ``j``."""
+        return tuple((np.asarray(viterbi)[:, None] + self._transitions).max(axis=0).tolist())
+
+    @staticmethod
+    def _scaled(forward: list[float]) -> tuple[list[float], float]:
+        """The forward vector times crfsuite's scale factor, and the factor."""
+        total = functools.reduce(operator.add, forward, 0.0)
+        scale = 1.0 / total if total != 0.0 else 1.0
+        return [f * scale for f in forward], scale
+
+    # --- label_partial -----------------------------------------------------------------------
+
+    def _context_scores(self, previous: UtteranceView | None,
+                        view: UtteranceView) -> list[float]:
+        """State scores of a final context utterance (cached by value)."""
+        key = (previous, view)
+        scores = self._states.get(key)
+        if scores is None:
+            scores = self._state_scores(self._rows(utterance_features(view, previous,
+                                                                      self._config)))
+            self._states.put(key, scores)
+        return scores
+
+    def _window_carry(self, window: tuple[UtteranceView, ...]) -> _Carry:
+        """The recursions over ``window`` (non-empty, final views), from the cache if there.
+
+        Raises
+        ------
+        InputError
+            A view of the window is malformed.
+        OverflowError
+            crfsuite's exp overflows on these views' scores.
+        """
+        try:
+            carry = self._carries.get(window)
+        except TypeError:
+            # Unhashable fields: say which view is malformed, else name the problem.
+            for view in window:
+                check_view(view)
+            raise InputError("UtteranceView fields must be hashable (speaker a string, "
+                             "words a tuple of strings)") from None
+        if carry is not None:
+            # Equal to views checked when the entry was made, so well-formed too.
+            return carry
+        for view in window:
+            check_view(view)
+        previous: UtteranceView | None = None
+        alpha: list[float] = []
+        viterbi: list[float] = []
+        for view in window:
+            scores = self._context_scores(previous, view)
+            exps = map(math.exp, scores)
+            if previous is None:
+                forward, viterbi = list(exps), scores
+            else:
+                forward = list(map(operator.mul, self._push_forward(alpha), exps))
+                viterbi = list(map(operator.add, self._push_best(viterbi), scores))
+            alpha, _ = self._scaled(forward)
+            previous = view
+        assert previous is not None
+        follow: dict[bool, tuple[int, ...]] = {}
+        for changed in (False, True):
+            feats: Features = {}
+            _add_previous_features(feats, previous, changed=changed, config=self._config)
+            follow[changed] = self._rows(feats)
+        carry = _Carry(forward=self._push_forward(alpha), best=self._push_best(viterbi),
+                       same=follow[False], other=follow[True])
+        self._carries.put(window, carry)
+        return carry
+
+    def _carry(self, window: tuple[UtteranceView, ...]) -> _Carry:
+        ids = tuple(map(id, window))
+        recent = self._recent.get(ids)
+        if recent is not None:
+            return recent[1]
+        carry = self._window_carry(window)
+        self._recent.put(ids, (window, carry))
+        return carry
+
+    def _grams_of(self, head: tuple[str, ...]) -> _Grams:
+        """The n-gram rows of ``head`` (without the end marker), from the cache if there."""
+        grams = self._grams.get(head)
+        if grams is not None:
+            return grams
+        get = self._attributes.get
+        trigrams = self._config.trigrams
+        parent = self._grams.get(head[:-1]) if head else None
+        if parent is not None:
+            names = _open_ngram_names(head, trigrams=trigrams)
+            unigrams, bigrams, tri = parent.unigrams, parent.bigrams, parent.trigrams
+            row = get(names[0])
+            if row is not None and row not in unigrams:
+                unigrams = (*unigrams, row)
+            row = get(names[1])
+            if row is not None and row not in bigrams:
+                bigrams = (*bigrams, row)
+            if len(names) > 2:
+                row = get(names[2])
+                if row is not None and row not in tri:
+                    tri = (*tri, row)
+        else:
+            names = _ngram_names(head, closed=False, trigrams=trigrams)
+            n = len(head)
+            # Unigrams, bigrams, then trigrams, as _ngram_names lists them; dict.fromkeys keeps
+            # first occurrences in order, as the feature dictionary does.
+            unigrams, bigrams, tri = (
+                tuple(dict.fromkeys(r for r in map(get, part) if r is not None))
+                for part in (names[:n], names[n:2 * n], names[2 * n:]))
+        grams = _Grams(unigrams=unigrams, bigrams=bigrams, trigrams=tri)
+        self._grams.put(head, grams)
+        return grams
+
+    def _shape_rows(self, view: UtteranceView) -> tuple[int, ...]:
+        # The shape features depend on these alone (length and removed buckets end at 20 and
+        # 3), so the table stays small.
+        key = (min(len(view.words), 20), min(view.removed, 3), view.complete)
+        rows = self._shapes.get(key)
+        if rows is None:
+            rows = self._rows(_shape_features(view, self._config))
+            self._shapes[key] = rows
+        return rows
+
+    def _current_rows(self, view: UtteranceView, follow: tuple[int, ...],
+                      pair_with: UtteranceView | None) -> list[int]:
+        """Rows of ``utterance_features(view, previous)`` in its order, built word by word.
+
+        ``follow`` are the rows of the previous utterance's features (or of "no previous"),
+        ``pair_with`` the previous utterance when the pairs of first words are on.
+        """
+        words = view.words
+        head = words[:MAX_FEATURE_WORDS]
+        grams = self._grams_of(head)
+        get = self._attributes.get
+        rows = list(self._shape_rows(view))
+        rows.extend(grams.unigrams)
+        rows.extend(grams.bigrams)
+        closing = (_closing_ngram_names(head, trigrams=self._config.trigrams)
+                   if len(words) <= MAX_FEATURE_WORDS else ())
+        if closing:
+            row = get(closing[0])
+            if row is not None and row not in grams.bigrams:
+                rows.append(row)
+        rows.extend(grams.trigrams)
+        if len(closing) > 1:
+            row = get(closing[1])
+            if row is not None and row not in grams.trigrams:
+                rows.append(row)
+        feats: Features = {}
+        _add_word_features(feats, words)
+        rows.extend(r for r in map(get, feats) if r is not None)
+        rows.extend(follow)
+        if pair_with is not None:
+            pairs: Features = {}
+            _add_pair_features(pairs, pair_with.words, words)
+            rows.extend(r for r in map(get, pairs) if r is not None)
+        return rows
+
+    def _decode_partial(self, context: Sequence[UtteranceView],
+                        current: UtteranceView) -> tuple[int, list[float]]:
+        """Index of the last position's Viterbi label and every label's marginal there.
+
+        Raises
+        ------
+        InputError
+            A view is malformed.
+        OverflowError
+            crfsuite's exp overflows on these views' scores.
+        """
+        window = tuple(context[-self._context:]) if self._context else ()
+        check_view(current)
+        if window:
+            previous = window[-1]
+            carry = self._carry(window)
+            changed = previous.speaker != current.speaker
+            follow = carry.other if changed else carry.same
+            pair_with = previous if changed and self._config.previous else None
+            scores = self._state_scores(self._current_rows(current, follow, pair_with))
+            forward = list(map(operator.mul, carry.forward, map(math.exp, scores)))
+            viterbi = list(map(operator.add, carry.best, scores))
+        else:
+            scores = self._state_scores(self._current_rows(current, self._opening, None))
+            forward = list(map(math.exp, scores))
+            viterbi = scores
+        alpha, scale = self._scaled(forward)
+        # At the last position crfsuite's backward vector is the scale factor, and its marginal
+        # is alpha * beta / scale; its Viterbi takes the first of equal final scores, as max does.
+        probs = [a * scale / scale for a in alpha]
+        return max(range(len(viterbi)), key=viterbi.__getitem__), probs
+
     def label_partial(self, context: Sequence[UtteranceView],
                       current: UtteranceView) -> FunctionGuess:
         """The function of ``current`` (possibly still growing) after ``context``.
 
         Only the last :attr:`context` utterances of ``context`` are decoded with ``current``, so
         the cost per call is bounded however long the conversation. Context utterances should be
-        final: their feature dictionaries are cached.
+        final: the decoding of a window of them is cached (keyed by their values, so a changed
+        view is simply another window).
 
         Parameters
         ----------
@@ -467,6 +889,19 @@ class FunctionTagger:
         InputError
             An argument is not a well-formed :class:`UtteranceView`.
         """
+        try:
+            k, probs = self._decode_partial(context, current)
+        except OverflowError:
+            return self._guess(*self._label_partial_crfsuite(context, current))
+        return self._guess_at(k, probs)
+
+    def _label_partial_crfsuite(self, context: Sequence[UtteranceView],
+                                current: UtteranceView) -> tuple[str, dict[str, float]]:
+        """The Viterbi label and marginals of ``current`` decoded by crfsuite over the window.
+
+        What :meth:`label_partial` must equal (the overflow fallback, tests, benchmark
+        baseline).
+        """
         window = list(context[-self._context:]) if self._context else []
         for view in window:
             check_view(view)
@@ -474,12 +909,11 @@ class FunctionTagger:
         xseq: list[Features] = []
         previous: UtteranceView | None = None
         for view in window:
-            xseq.append(self._cache.get(previous, view, self._config))
+            xseq.append(self._feature_cache.get(previous, view, self._config))
             previous = view
-        # The current utterance changes with every word: not worth caching.
         xseq.append(utterance_features(current, previous, self._config))
         labels, marginals = self._crf.tag_with_marginals(xseq)
-        return self._guess(labels[-1], marginals)
+        return labels[-1], marginals
 
     def label_conversation(self, utterances: Sequence[UtteranceView]) -> list[FunctionGuess]:
         """Labels of a whole chain of utterances, decoded jointly (batch use, evaluation).
