@@ -14,15 +14,13 @@ Feature values are recogniser-style text only: lower case, no punctuation, no ti
 
 from __future__ import annotations
 
-import functools
 import itertools
 import math
-import operator
 from collections import OrderedDict
-from collections.abc import Hashable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Hashable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Generic, TypeVar
+from typing import Generic, NamedTuple, TypeVar
 
 import numpy as np
 import numpy.typing as npt
@@ -424,29 +422,36 @@ class _Carry:
 
     ``forward[j]`` is ``sum_i alpha[i] * exp(T[i, j])`` with ``alpha`` the scaled forward
     vector of the window's last position, ``best[j]`` is ``max_i viterbi[i] + T[i, j]``: what
-    the next position's recursions combine with its state scores. ``same`` and ``other`` are
+    the next position's recursions combine with its state scores (both read-only). ``same`` and
+    ``other`` are
     the model rows of the features a following utterance takes from the window's last one,
     when its speaker is the same or another.
     """
 
-    forward: tuple[float, ...]
-    best: tuple[float, ...]
+    forward: FloatArray
+    best: FloatArray
     same: tuple[int, ...]
     other: tuple[int, ...]
 
 
-@dataclass(frozen=True, slots=True, kw_only=True)
-class _Grams:
-    """Model rows of the n-grams of an utterance's leading words, without the end marker.
+class _Words(NamedTuple):
+    """Model rows of the features of an utterance that depend on its words alone.
 
-    Unigram, bigram and trigram rows apart, each in the order :func:`utterance_features` adds
-    their names, repeats left out (a repeated name is one attribute). The entry of
-    ``head + (word,)`` is this one plus the n-grams ending at ``word``.
+    ``unigrams``, ``bigrams`` and ``trigrams`` are the rows of the word n-grams without the end
+    marker, each in the order :func:`utterance_features` adds their names, repeats left out (a
+    repeated name is one attribute): what the entry of ``words + (word,)`` extends; ``lead``
+    the rows of the first word, pair and triple features (``w0``, ``b0``, ``t0``; ``None`` if
+    unknown or absent), which stop changing after three words. ``rows``
+    are the rows of an utterance of exactly these words, in feature order: n-grams with the end
+    marker's, then first and last words. (A named tuple: built once per word, and cheaper to
+    build than a dataclass.)
     """
 
     unigrams: tuple[int, ...]
     bigrams: tuple[int, ...]
     trigrams: tuple[int, ...]
+    lead: tuple[int | None, int | None, int | None]
+    rows: tuple[int, ...]
 
 
 #: Distinct context windows whose decoding :class:`FunctionTagger` keeps (a live conversation
@@ -454,9 +459,9 @@ class _Grams:
 #: interleaving on one tagger do not evict each other). Documented limit.
 WINDOW_CACHE_SIZE = 512
 
-#: Leading-word sequences of current utterances whose n-gram rows :class:`FunctionTagger`
-#: keeps (about two open utterances per live conversation). An entry holds at most
-#: ``3 * MAX_FEATURE_WORDS`` row numbers. Documented limit.
+#: Word sequences of current utterances whose feature rows :class:`FunctionTagger` keeps
+#: (about two open utterances per live conversation). An entry holds at most
+#: ``6 * MAX_FEATURE_WORDS + 10`` row numbers. Documented limit.
 NGRAM_CACHE_SIZE = 1024
 
 
@@ -488,6 +493,22 @@ def _coarse_of(scheme: str, label: str) -> UtteranceFunction:
         except ValueError:
             raise ModelError(f"coarse function model has unknown label {label!r}") from None
     return coarse_function("swbd42", label)
+
+
+def _exp_like_c() -> Callable[[FloatArray], FloatArray]:
+    """An elementwise exp with the C library's results, as crfsuite's arithmetic needs.
+
+    numpy's float64 exp is the C library's except on CPUs where numpy brings a vectorised one
+    of its own; a probe tells, and then every value goes through :func:`math.exp` (a few
+    microseconds more per call).
+    """
+    probe = np.linspace(-60.0, 60.0, 4099)
+    if np.exp(probe).tolist() == [math.exp(x) for x in probe.tolist()]:
+        return np.exp
+
+    def exp_each(values: FloatArray) -> FloatArray:
+        return np.array([math.exp(x) for x in values.tolist()])
+    return exp_each
 
 
 class FunctionTagger:
@@ -541,12 +562,12 @@ class FunctionTagger:
             [[math.exp(w) for w in row] for row in weights.transitions.tolist()]).reshape(
             weights.transitions.shape)
         self._functions = tuple(UtteranceFunction)
-        # Label index -> coarse function index (enum order), for summing marginals by group.
-        self._group_of = tuple(self._functions.index(self._coarse[label])
-                               for label in crf.labels)
-        # A function no label maps to can never be chosen.
-        self._no_sums = tuple(0.0 if k in self._group_of else -math.inf
-                              for k in range(len(self._functions)))
+        # Label index -> coarse function index (enum order), for summing marginals by group;
+        # a function no label maps to can never be chosen.
+        self._group_of = np.array([self._functions.index(self._coarse[label])
+                                   for label in crf.labels], dtype=np.intp)
+        self._groups = sorted(set(self._group_of.tolist()))
+        self._exp = _exp_like_c()
         self._opening = self._rows({"prev=none": 1.0})
         self._shapes: dict[tuple[int, int, bool], tuple[int, ...]] = {}
         self._carries: _Lru[tuple[UtteranceView, ...], _Carry] = _Lru(WINDOW_CACHE_SIZE)
@@ -555,9 +576,9 @@ class FunctionTagger:
         # no other object can carry those ids.
         self._recent: _Lru[tuple[int, ...], tuple[tuple[UtteranceView, ...], _Carry]] = _Lru(
             WINDOW_CACHE_SIZE)
-        self._states: _Lru[tuple[UtteranceView | None, UtteranceView], list[float]] = _Lru(
+        self._states: _Lru[tuple[UtteranceView | None, UtteranceView], FloatArray] = _Lru(
             WINDOW_CACHE_SIZE * (context + 1))
-        self._grams: _Lru[tuple[str, ...], _Grams] = _Lru(NGRAM_CACHE_SIZE)
+        self._words: _Lru[tuple[str, ...], _Words] = _Lru(NGRAM_CACHE_SIZE)
         # Only the crfsuite path (overflow fallback, tests, benchmark baseline) uses this one.
         self._feature_cache = _FeatureCache(size=8 * (context + 2))
 
@@ -636,22 +657,20 @@ class FunctionTagger:
         return FunctionGuess(label=label, confidence=confidence, function=function,
                              function_confidence=sums.get(function, 0.0))
 
-    def _guess_at(self, k: int, probs: list[float]) -> FunctionGuess:
+    def _guess_at(self, k: int, probs: FloatArray) -> FunctionGuess:
         """:meth:`_guess` for label index ``k`` and the marginals of all labels in model order."""
         label = self._crf.labels[k]
-        confidence = probs[k]
+        confidence = float(probs[k])
         if self._scheme == "coarse":
             return FunctionGuess(label=label, confidence=confidence,
                                  function=self._coarse[label], function_confidence=confidence)
-        # Added in label order from 0.0, as _guess adds them.
-        sums = list(self._no_sums)
-        for group, p in zip(self._group_of, probs, strict=True):
-            sums[group] += p
+        # bincount adds in label order from 0.0, as _guess does.
+        sums: list[float] = np.bincount(self._group_of, weights=probs).tolist()
         if self._coarse_from == "label":
-            group = self._group_of[k]
+            group = int(self._group_of[k])
         else:
             # max keeps the first of equal sums: ties go to the earlier function in enum order.
-            group = max(range(len(sums)), key=sums.__getitem__)
+            group = max(self._groups, key=sums.__getitem__)
         return FunctionGuess(label=label, confidence=confidence, function=self._functions[group],
                              function_confidence=sums[group])
 
@@ -667,38 +686,45 @@ class FunctionTagger:
         get = self._attributes.get
         return tuple(r for r in map(get, features) if r is not None)
 
-    def _state_scores(self, rows: Sequence[int]) -> list[float]:
+    def _state_scores(self, rows: Sequence[int]) -> FloatArray:
         """crfsuite's state scores of an item with the attributes of ``rows`` (in that order)."""
         gathered = self._state.take(rows if rows else [self._pad], axis=0)
-        scores: list[float] = np.add.reduce(gathered, axis=0).tolist()
+        scores: FloatArray = np.add.reduce(gathered, axis=0)
         return scores
 
-    def _push_forward(self, alpha: list[float]) -> tuple[float, ...]:
-        """``sum_i alpha[i] * exp(T[i, j])`` for every ``j``, summed over ``i`` in order."""
-        products = np.asarray(alpha)[:, None] * self._exp_transitions
-        return tuple(np.add.reduce(products, axis=0).tolist())
-
-    def _push_best(self, viterbi: list[float]) -> tuple[float, ...]:
-        """``max_i viterbi[i] + T[i, j]`` for every ``j``."""
-        return tuple((np.asarray(viterbi)[:, None] + self._transitions).max(axis=0).tolist())
+    def _push(self, alpha: FloatArray, viterbi: FloatArray) -> tuple[FloatArray, FloatArray]:
+        """``sum_i alpha[i] * exp(T[i, j])`` (over ``i`` in order) and ``max_i viterbi[i] +
+        T[i, j]`` for every ``j``: the recursions up to the next position's state scores."""
+        forward: FloatArray = np.add.reduce(alpha[:, None] * self._exp_transitions, axis=0)
+        best: FloatArray = (viterbi[:, None] + self._transitions).max(axis=0)
+        return forward, best
 
     @staticmethod
-    def _scaled(forward: list[float]) -> tuple[list[float], float]:
-        """The forward vector times crfsuite's scale factor, and the factor."""
-        total = functools.reduce(operator.add, forward, 0.0)
-        scale = 1.0 / total if total != 0.0 else 1.0
-        return [f * scale for f in forward], scale
+    def _scale(forward: FloatArray) -> float:
+        """crfsuite's scale factor of a forward vector: 1 / its sum added left to right.
+
+        Raises
+        ------
+        OverflowError
+            The sum is not finite: an exp overflowed (numpy's warns, math.exp raises at once).
+        """
+        # accumulate adds strictly left to right (a plain sum may pair terms up).
+        total = float(np.add.accumulate(forward)[-1])
+        if not total < math.inf:
+            raise OverflowError("forward vector overflowed")
+        return 1.0 / total if total != 0.0 else 1.0
 
     # --- label_partial -----------------------------------------------------------------------
 
     def _context_scores(self, previous: UtteranceView | None,
-                        view: UtteranceView) -> list[float]:
-        """State scores of a final context utterance (cached by value)."""
+                        view: UtteranceView) -> FloatArray:
+        """State scores of a final context utterance (cached by value, read-only)."""
         key = (previous, view)
         scores = self._states.get(key)
         if scores is None:
             scores = self._state_scores(self._rows(utterance_features(view, previous,
                                                                       self._config)))
+            scores.flags.writeable = False
             self._states.put(key, scores)
         return scores
 
@@ -726,17 +752,16 @@ class FunctionTagger:
         for view in window:
             check_view(view)
         previous: UtteranceView | None = None
-        alpha: list[float] = []
-        viterbi: list[float] = []
+        alpha = viterbi = self._state[self._pad]
         for view in window:
             scores = self._context_scores(previous, view)
-            exps = map(math.exp, scores)
             if previous is None:
-                forward, viterbi = list(exps), scores
+                forward, viterbi = self._exp(scores), scores
             else:
-                forward = list(map(operator.mul, self._push_forward(alpha), exps))
-                viterbi = list(map(operator.add, self._push_best(viterbi), scores))
-            alpha, _ = self._scaled(forward)
+                forward, best = self._push(alpha, viterbi)
+                forward = forward * self._exp(scores)
+                viterbi = best + scores
+            alpha = forward * self._scale(forward)
             previous = view
         assert previous is not None
         follow: dict[bool, tuple[int, ...]] = {}
@@ -744,8 +769,10 @@ class FunctionTagger:
             feats: Features = {}
             _add_previous_features(feats, previous, changed=changed, config=self._config)
             follow[changed] = self._rows(feats)
-        carry = _Carry(forward=self._push_forward(alpha), best=self._push_best(viterbi),
-                       same=follow[False], other=follow[True])
+        forward, best = self._push(alpha, viterbi)
+        forward.flags.writeable = False
+        best.flags.writeable = False
+        carry = _Carry(forward=forward, best=best, same=follow[False], other=follow[True])
         self._carries.put(window, carry)
         return carry
 
@@ -758,38 +785,68 @@ class FunctionTagger:
         self._recent.put(ids, (window, carry))
         return carry
 
-    def _grams_of(self, head: tuple[str, ...]) -> _Grams:
-        """The n-gram rows of ``head`` (without the end marker), from the cache if there."""
-        grams = self._grams.get(head)
-        if grams is not None:
-            return grams
+    def _words_of(self, words: tuple[str, ...]) -> _Words:
+        """The word-dependent rows of ``words`` (at most MAX_FEATURE_WORDS), cached.
+
+        A growing utterance finds its previous words' entry and adds the n-grams ending at the
+        new word instead of rebuilding every name.
+        """
+        entry = self._words.get(words)
+        if entry is not None:
+            return entry
         get = self._attributes.get
         trigrams = self._config.trigrams
-        parent = self._grams.get(head[:-1]) if head else None
+        parent = self._words.get(words[:-1]) if words else None
         if parent is not None:
-            names = _open_ngram_names(head, trigrams=trigrams)
             unigrams, bigrams, tri = parent.unigrams, parent.bigrams, parent.trigrams
-            row = get(names[0])
-            if row is not None and row not in unigrams:
-                unigrams = (*unigrams, row)
-            row = get(names[1])
-            if row is not None and row not in bigrams:
-                bigrams = (*bigrams, row)
-            if len(names) > 2:
-                row = get(names[2])
-                if row is not None and row not in tri:
-                    tri = (*tri, row)
+            new = [get(name) for name in _open_ngram_names(words, trigrams=trigrams)]
+            if new[0] is not None and new[0] not in unigrams:
+                unigrams = (*unigrams, new[0])
+            if new[1] is not None and new[1] not in bigrams:
+                bigrams = (*bigrams, new[1])
+            if len(new) > 2 and new[2] is not None and new[2] not in tri:
+                tri = (*tri, new[2])
         else:
-            names = _ngram_names(head, closed=False, trigrams=trigrams)
-            n = len(head)
+            names = _ngram_names(words, closed=False, trigrams=trigrams)
+            n = len(words)
             # Unigrams, bigrams, then trigrams, as _ngram_names lists them; dict.fromkeys keeps
             # first occurrences in order, as the feature dictionary does.
             unigrams, bigrams, tri = (
                 tuple(dict.fromkeys(r for r in map(get, part) if r is not None))
                 for part in (names[:n], names[n:2 * n], names[2 * n:]))
-        grams = _Grams(unigrams=unigrams, bigrams=bigrams, trigrams=tri)
-        self._grams.put(head, grams)
-        return grams
+        # The end marker's n-grams come last among the bigrams and the trigrams.
+        closing = [get(name) for name in _closing_ngram_names(words, trigrams=trigrams)]
+        end_bigram = (closing[0],) if closing[0] is not None and closing[0] not in bigrams else ()
+        end_trigram = (
+            (closing[1],) if len(closing) > 1 and closing[1] is not None
+            and closing[1] not in tri else ())
+        if parent is not None and len(words) > 3:
+            # What _add_word_features adds, in its order: w0, wl, b0, bl, t0.
+            lead = parent.lead
+            w0, b0, t0 = lead
+            tail = (w0, get(f"wl={words[-1]}"), b0, get(f"bl={words[-2]}|{words[-1]}"), t0)
+            word_rows = tuple(r for r in tail if r is not None)
+        else:
+            feats: Features = {}
+            _add_word_features(feats, words)
+            word_rows = self._rows(feats)
+            lead = (get(f"w0={words[0]}") if words else None,
+                    get(f"b0={words[0]}|{words[1]}") if len(words) > 1 else None,
+                    get(f"t0={words[0]}|{words[1]}|{words[2]}") if len(words) > 2 else None)
+        rows = (*unigrams, *bigrams, *end_bigram, *tri, *end_trigram, *word_rows)
+        entry = _Words(unigrams=unigrams, bigrams=bigrams, trigrams=tri, lead=lead, rows=rows)
+        self._words.put(words, entry)
+        return entry
+
+    def _word_rows(self, words: tuple[str, ...]) -> tuple[int, ...]:
+        """Rows of the features of an utterance that depend on its words alone, in order."""
+        if len(words) <= MAX_FEATURE_WORDS:
+            return self._words_of(words).rows
+        # Past the limit the n-grams stop growing and lose their end marker.
+        head = self._words_of(words[:MAX_FEATURE_WORDS])
+        feats: Features = {}
+        _add_word_features(feats, words)
+        return (*head.unigrams, *head.bigrams, *head.trigrams, *self._rows(feats))
 
     def _shape_rows(self, view: UtteranceView) -> tuple[int, ...]:
         # The shape features depend on these alone (length and removed buckets end at 20 and
@@ -801,43 +858,8 @@ class FunctionTagger:
             self._shapes[key] = rows
         return rows
 
-    def _current_rows(self, view: UtteranceView, follow: tuple[int, ...],
-                      pair_with: UtteranceView | None) -> list[int]:
-        """Rows of ``utterance_features(view, previous)`` in its order, built word by word.
-
-        ``follow`` are the rows of the previous utterance's features (or of "no previous"),
-        ``pair_with`` the previous utterance when the pairs of first words are on.
-        """
-        words = view.words
-        head = words[:MAX_FEATURE_WORDS]
-        grams = self._grams_of(head)
-        get = self._attributes.get
-        rows = list(self._shape_rows(view))
-        rows.extend(grams.unigrams)
-        rows.extend(grams.bigrams)
-        closing = (_closing_ngram_names(head, trigrams=self._config.trigrams)
-                   if len(words) <= MAX_FEATURE_WORDS else ())
-        if closing:
-            row = get(closing[0])
-            if row is not None and row not in grams.bigrams:
-                rows.append(row)
-        rows.extend(grams.trigrams)
-        if len(closing) > 1:
-            row = get(closing[1])
-            if row is not None and row not in grams.trigrams:
-                rows.append(row)
-        feats: Features = {}
-        _add_word_features(feats, words)
-        rows.extend(r for r in map(get, feats) if r is not None)
-        rows.extend(follow)
-        if pair_with is not None:
-            pairs: Features = {}
-            _add_pair_features(pairs, pair_with.words, words)
-            rows.extend(r for r in map(get, pairs) if r is not None)
-        return rows
-
     def _decode_partial(self, context: Sequence[UtteranceView],
-                        current: UtteranceView) -> tuple[int, list[float]]:
+                        current: UtteranceView) -> tuple[int, FloatArray]:
         """Index of the last position's Viterbi label and every label's marginal there.
 
         Raises
@@ -849,24 +871,33 @@ class FunctionTagger:
         """
         window = tuple(context[-self._context:]) if self._context else ()
         check_view(current)
+        words = current.words
+        # The rows of utterance_features(current, previous), in its order.
+        rows = self._shape_rows(current) + self._word_rows(words)
         if window:
             previous = window[-1]
             carry = self._carry(window)
-            changed = previous.speaker != current.speaker
-            follow = carry.other if changed else carry.same
-            pair_with = previous if changed and self._config.previous else None
-            scores = self._state_scores(self._current_rows(current, follow, pair_with))
-            forward = list(map(operator.mul, carry.forward, map(math.exp, scores)))
-            viterbi = list(map(operator.add, carry.best, scores))
+            if previous.speaker != current.speaker:
+                rows += carry.other
+                if self._config.previous:
+                    pairs: Features = {}
+                    _add_pair_features(pairs, previous.words, words)
+                    rows += self._rows(pairs)
+            else:
+                rows += carry.same
+            scores = self._state_scores(rows)
+            forward = carry.forward * self._exp(scores)
+            viterbi = carry.best + scores
         else:
-            scores = self._state_scores(self._current_rows(current, self._opening, None))
-            forward = list(map(math.exp, scores))
+            scores = self._state_scores(rows + self._opening)
+            forward = self._exp(scores)
             viterbi = scores
-        alpha, scale = self._scaled(forward)
-        # At the last position crfsuite's backward vector is the scale factor, and its marginal
-        # is alpha * beta / scale; its Viterbi takes the first of equal final scores, as max does.
-        probs = [a * scale / scale for a in alpha]
-        return max(range(len(viterbi)), key=viterbi.__getitem__), probs
+        scale = self._scale(forward)
+        # At the last position crfsuite's backward vector is the scale factor and its marginal
+        # alpha * beta / scale, alpha the scaled forward vector; its Viterbi takes the first of
+        # equal final scores, as argmax does.
+        probs: FloatArray = forward * scale * scale / scale
+        return int(viterbi.argmax()), probs
 
     def label_partial(self, context: Sequence[UtteranceView],
                       current: UtteranceView) -> FunctionGuess:

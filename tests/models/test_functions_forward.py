@@ -1,0 +1,282 @@
+"""label_partial's own forward step against crfsuite: same labels, same marginals, any caching.
+
+``FunctionTagger.label_partial`` no longer calls crfsuite; it repeats crfsuite's forward and
+Viterbi arithmetic from the model's weights and caches what does not change from word to word.
+Here every result is compared with crfsuite itself (``CrfTagger.tag_with_marginals`` over the
+same window, features from ``sequence_features``), over SwDA validation prefixes (the corpus
+annotation gives realistic views) and over invented views built to hit the corners: repeated
+n-grams, words that look like the begin/end markers or contain the n-gram separator, empty
+and over-long utterances, speaker changes, unknown words.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+
+import pytest
+from function_kit import invented_conversation, tiny_model
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from midstream import InputError
+from midstream.corpora import read_corpus
+from midstream.models._artifact import ModelArtifact, load_artifact
+from midstream.models._crf import CrfTagger
+from midstream.models._functions import (
+    MAX_FEATURE_WORDS,
+    NGRAM_CACHE_SIZE,
+    WINDOW_CACHE_SIZE,
+    FunctionGuess,
+    FunctionTagger,
+    UtteranceView,
+    clean_view,
+    conversation_views,
+    sequence_features,
+)
+
+SHIPPED = Path(__file__).resolve().parents[2] / "models" / "weights" / "functions-swbd42.msm"
+
+#: The agreement the contract asks for (crfsuite's own arithmetic repeated: in practice the
+#: values are bit for bit the same).
+TOLERANCE = 1e-9
+
+
+@pytest.fixture(scope="module")
+def shipped() -> ModelArtifact:
+    return load_artifact(SHIPPED, expected_kind="utterance_functions")
+
+
+@pytest.fixture(scope="module")
+def tiny_fine() -> ModelArtifact:
+    return tiny_model("swbd42")
+
+
+@pytest.fixture(scope="module")
+def tiny_coarse() -> ModelArtifact:
+    return tiny_model("coarse")
+
+
+def crfsuite_reference(crf: CrfTagger, tagger: FunctionTagger,
+                       context: Sequence[UtteranceView],
+                       current: UtteranceView) -> tuple[str, dict[str, float]]:
+    """What the tagger decoded through crfsuite before: the window plus current, last item."""
+    window = list(context[-tagger.context:]) if tagger.context else []
+    labels, marginals = crf.tag_with_marginals(
+        sequence_features([*window, current], tagger.config))
+    return labels[-1], marginals
+
+
+def assert_agrees(tagger: FunctionTagger, crf: CrfTagger, context: Sequence[UtteranceView],
+                  current: UtteranceView) -> None:
+    label, marginals = crfsuite_reference(crf, tagger, context, current)
+    k, probs = tagger._decode_partial(context, current)
+    assert tagger.labels[k] == label
+    assert list(tagger.labels) == list(marginals)
+    for name, p in zip(tagger.labels, probs.tolist(), strict=True):
+        assert abs(p - marginals[name]) <= TOLERANCE, (name, p, marginals[name])
+    guess = tagger.label_partial(context, current)
+    assert_same_guess(guess, tagger._guess(label, marginals))
+
+
+def assert_same_guess(got: FunctionGuess, want: FunctionGuess) -> None:
+    assert (got.label, got.function) == (want.label, want.function)
+    assert abs(got.confidence - want.confidence) <= TOLERANCE
+    assert abs(got.function_confidence - want.function_confidence) <= TOLERANCE
+
+
+def streamed_calls(views: Sequence[UtteranceView], context: int
+                   ) -> Iterator[tuple[list[UtteranceView], UtteranceView]]:
+    """(context, prefix) pairs as a stream makes them: every cleaned prefix of every utterance."""
+    for i, view in enumerate(views):
+        window = list(views[max(0, i - context):i])
+        for n in range(len(view.words) + 1):
+            yield window, view.prefix(n)
+
+
+# --- SwDA validation prefixes ----------------------------------------------------------------
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_shipped_model_agrees_with_crfsuite_on_swda_val_prefixes(
+        swda_dir: Path, shipped: ModelArtifact) -> None:
+    # The shipped 42-class model over every word-by-word prefix of the first 6 validation
+    # conversations (views cleaned with the corpus's gold disfluency annotation), about 8,000
+    # calls: what the engine asks after each word.
+    tagger = FunctionTagger.from_artifact(shipped)
+    crf = CrfTagger.from_bytes(shipped.crf)
+    calls = 0
+    for n, conversation in enumerate(read_corpus(swda_dir, split="val")):
+        if n == 6:
+            break
+        views = conversation_views(conversation)
+        for i, utterance in enumerate(conversation.utterances):
+            context = views[max(0, i - tagger.context):i]
+            for k in range(1, len(utterance.words) + 1):
+                assert_agrees(tagger, crf, context, clean_view(conversation, utterance, upto=k))
+                calls += 1
+    assert calls > 5000
+
+
+@pytest.mark.corpus
+def test_tiny_models_agree_with_crfsuite_on_swda_val_prefixes(
+        swda_dir: Path, tiny_fine: ModelArtifact, tiny_coarse: ModelArtifact) -> None:
+    # Models trained on invented data see SwDA words mostly as unknown: the context and the
+    # shape features carry the decision, another corner of the arithmetic.
+    conversation = next(iter(read_corpus(swda_dir, split="val")))
+    views = conversation_views(conversation)[:60]
+    for artifact in (tiny_fine, tiny_coarse):
+        tagger = FunctionTagger.from_artifact(artifact)
+        crf = CrfTagger.from_bytes(artifact.crf)
+        for context, current in streamed_calls(views, tagger.context):
+            assert_agrees(tagger, crf, context, current)
+
+
+# --- invented views ---------------------------------------------------------------------------
+
+# Words the n-gram bookkeeping could confuse: marker look-alikes, the separator, repeats.
+_VOCABULARY = ("do", "you", "have", "kids", "yes", "yeah", "uh-huh", "we", "i", "think",
+               "<s>", "</s>", "a|b", "a", "b", "=", "zyzzyva")
+
+_views = st.builds(
+    UtteranceView,
+    speaker=st.sampled_from(("A", "B")),
+    words=st.one_of(
+        st.lists(st.sampled_from(_VOCABULARY), max_size=8).map(tuple),
+        st.lists(st.sampled_from(_VOCABULARY[:6]), min_size=MAX_FEATURE_WORDS - 1,
+                 max_size=MAX_FEATURE_WORDS + 3).map(tuple)),
+    removed=st.integers(min_value=0, max_value=4),
+    complete=st.booleans(),
+)
+
+
+@pytest.fixture(scope="module")
+def three_taggers(shipped: ModelArtifact, tiny_fine: ModelArtifact, tiny_coarse: ModelArtifact
+                  ) -> list[tuple[FunctionTagger, CrfTagger]]:
+    # Shared by all examples, so their caches fill up across examples as in a long session.
+    return [(FunctionTagger.from_artifact(a), CrfTagger.from_bytes(a.crf))
+            for a in (shipped, tiny_fine, tiny_coarse)]
+
+
+@settings(max_examples=120, deadline=None)
+@given(context=st.lists(_views, max_size=6), current=_views)
+def test_invented_views_agree_with_crfsuite(
+        context: list[UtteranceView], current: UtteranceView,
+        three_taggers: list[tuple[FunctionTagger, CrfTagger]]) -> None:
+    for tagger, crf in three_taggers:
+        assert_agrees(tagger, crf, context, current)
+        # Word by word, as a stream grows the utterance (the n-gram rows are then extended
+        # from the previous prefix's entry rather than built afresh).
+        for n in range(len(current.words) + 1):
+            assert_agrees(tagger, crf, context, current.prefix(n))
+
+
+def test_other_context_lengths_agree_with_crfsuite(tiny_fine: ModelArtifact) -> None:
+    views = conversation_views(invented_conversation(60))
+    crf = CrfTagger.from_bytes(tiny_fine.crf)
+    for context in (0, 1, 7):
+        tagger = FunctionTagger.from_artifact(tiny_fine, context=context)
+        for window, current in streamed_calls(views, context + 2):
+            assert_agrees(tagger, crf, window, current)
+
+
+def test_coarse_from_label_setting_agrees_with_crfsuite(tiny_fine: ModelArtifact) -> None:
+    tagger = FunctionTagger.from_artifact(tiny_fine, coarse_from="label")
+    crf = CrfTagger.from_bytes(tiny_fine.crf)
+    for context, current in streamed_calls(conversation_views(invented_conversation(61)), 4):
+        assert_agrees(tagger, crf, context, current)
+
+
+# --- caches -------------------------------------------------------------------------------
+
+
+def test_caches_never_change_an_answer(tiny_fine: ModelArtifact) -> None:
+    # Two conversations interleaved word by word on one tagger (two engines sharing it), views
+    # rebuilt as equal but new objects, and the same calls replayed backwards, all give what a
+    # fresh tagger gives for each call alone.
+    shared = FunctionTagger.from_artifact(tiny_fine)
+    first = list(streamed_calls(conversation_views(invented_conversation(62)), 4))
+    second = list(streamed_calls(conversation_views(invented_conversation(63)), 4))
+    interleaved = [call for pair in zip(first, second, strict=False) for call in pair]
+    rebuilt = [([UtteranceView(speaker=v.speaker, words=tuple(v.words), removed=v.removed,
+                               complete=v.complete) for v in context], current)
+               for context, current in first]
+    for calls in (interleaved, rebuilt, list(reversed(interleaved))):
+        for context, current in calls:
+            alone = FunctionTagger.from_artifact(tiny_fine).label_partial(context, current)
+            assert shared.label_partial(context, current) == alone
+
+
+def test_caches_stay_within_their_documented_sizes(tiny_fine: ModelArtifact) -> None:
+    # More distinct windows and word sequences than the caches hold (bounded memory however
+    # many conversations share the tagger).
+    tagger = FunctionTagger.from_artifact(tiny_fine)
+    views = [UtteranceView(speaker="AB"[i % 2], words=("we", "have", f"w{i}"))
+             for i in range(WINDOW_CACHE_SIZE + 40)]
+    for i in range(1, len(views)):
+        tagger.label_partial(views[max(0, i - 4):i], views[i])
+    for i in range(NGRAM_CACHE_SIZE // 3 + 20):
+        tagger.label_partial([], UtteranceView(speaker="A", words=("x", "y", f"z{i}")))
+    assert len(tagger._carries) <= WINDOW_CACHE_SIZE
+    assert len(tagger._recent) <= WINDOW_CACHE_SIZE
+    assert len(tagger._states) <= WINDOW_CACHE_SIZE * (tagger.context + 1)
+    assert len(tagger._words) <= NGRAM_CACHE_SIZE
+    # Still right after evictions.
+    crf = CrfTagger.from_bytes(tiny_fine.crf)
+    assert_agrees(tagger, crf, views[:4], views[4])
+
+
+def test_threads_sharing_a_tagger_get_the_single_threaded_answers(
+        tiny_fine: ModelArtifact) -> None:
+    calls = [call for seed in range(64, 68)
+             for call in streamed_calls(conversation_views(invented_conversation(seed)), 4)]
+    expected = [FunctionTagger.from_artifact(tiny_fine).label_partial(c, v) for c, v in calls]
+    shared = FunctionTagger.from_artifact(tiny_fine)
+    results: dict[int, list[FunctionGuess]] = {}
+
+    def work(worker: int) -> None:
+        order = calls if worker % 2 == 0 else list(reversed(calls))
+        got = [shared.label_partial(c, v) for c, v in order]
+        results[worker] = got if worker % 2 == 0 else list(reversed(got))
+
+    threads = [threading.Thread(target=work, args=(w,)) for w in range(4)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    assert all(results[w] == expected for w in range(4))
+
+
+# --- errors and the fallback -----------------------------------------------------------------
+
+
+def test_malformed_context_views_are_refused_with_input_error(
+        tiny_fine: ModelArtifact) -> None:
+    tagger = FunctionTagger.from_artifact(tiny_fine)
+    current = UtteranceView(speaker="B", words=("yes",))
+    listed = UtteranceView(speaker="A", words=["do", "you"])  # type: ignore[arg-type]
+    with pytest.raises(InputError, match="tuple of strings"):
+        tagger.label_partial([listed], current)
+    odd_speaker = UtteranceView(speaker=["A"], words=("do",))  # type: ignore[arg-type]
+    with pytest.raises(InputError, match="hashable"):
+        tagger.label_partial([odd_speaker], current)
+    with pytest.raises(InputError, match="removed"):
+        tagger.label_partial([UtteranceView(speaker="A", words=("do",), removed=-2)], current)
+    with pytest.raises(InputError, match="UtteranceView"):
+        tagger.label_partial(["do you"], current)  # type: ignore[list-item]
+
+
+def test_an_overflowing_exp_hands_the_call_to_crfsuite(
+        tiny_fine: ModelArtifact, monkeypatch: pytest.MonkeyPatch) -> None:
+    # No trained model comes near exp's range (scores past 709); the fallback is wired so that
+    # even then the answer is crfsuite's.
+    tagger = FunctionTagger.from_artifact(tiny_fine)
+    views = conversation_views(invented_conversation(69))
+    expected = tagger.label_partial(views[:3], views[3])
+
+    def overflow(values: object) -> object:
+        raise OverflowError("math range error")
+
+    monkeypatch.setattr(tagger, "_exp", overflow)
+    assert tagger.label_partial(views[:3], views[3]) == expected
