@@ -407,6 +407,10 @@ class _Lru(Generic[_K, _V]):
                 pass  # evicted by another thread since the lookup: the value is still good
         return value
 
+    def peek(self, key: _K) -> _V | None:
+        """The value of ``key`` without refreshing it (for an entry about to be superseded)."""
+        return self._items.get(key)
+
     def put(self, key: _K, value: _V) -> None:
         self._items[key] = value
         while len(self._items) > self._size:
@@ -576,7 +580,8 @@ class FunctionTagger:
         # no other object can carry those ids.
         self._recent: _Lru[tuple[int, ...], tuple[tuple[UtteranceView, ...], _Carry]] = _Lru(
             WINDOW_CACHE_SIZE)
-        self._states: _Lru[tuple[UtteranceView | None, UtteranceView], FloatArray] = _Lru(
+        self._states: _Lru[tuple[int, int], tuple[UtteranceView | None, UtteranceView,
+                                                  FloatArray, FloatArray]] = _Lru(
             WINDOW_CACHE_SIZE * (context + 1))
         self._words: _Lru[tuple[str, ...], _Words] = _Lru(NGRAM_CACHE_SIZE)
         # Only the crfsuite path (overflow fallback, tests, benchmark baseline) uses this one.
@@ -696,7 +701,7 @@ class FunctionTagger:
         """``sum_i alpha[i] * exp(T[i, j])`` (over ``i`` in order) and ``max_i viterbi[i] +
         T[i, j]`` for every ``j``: the recursions up to the next position's state scores."""
         forward: FloatArray = np.add.reduce(alpha[:, None] * self._exp_transitions, axis=0)
-        best: FloatArray = (viterbi[:, None] + self._transitions).max(axis=0)
+        best: FloatArray = np.maximum.reduce(viterbi[:, None] + self._transitions, axis=0)
         return forward, best
 
     @staticmethod
@@ -717,16 +722,27 @@ class FunctionTagger:
     # --- label_partial -----------------------------------------------------------------------
 
     def _context_scores(self, previous: UtteranceView | None,
-                        view: UtteranceView) -> FloatArray:
-        """State scores of a final context utterance (cached by value, read-only)."""
-        key = (previous, view)
-        scores = self._states.get(key)
-        if scores is None:
-            scores = self._state_scores(self._rows(utterance_features(view, previous,
-                                                                      self._config)))
-            scores.flags.writeable = False
-            self._states.put(key, scores)
-        return scores
+                        view: UtteranceView) -> tuple[FloatArray, FloatArray]:
+        """State scores of a final context utterance and their exps (cached, read-only).
+
+        Keyed by the two views' ids, each entry holding the views so the ids stay theirs: a
+        window's utterances are hashed by value only when the window itself is new.
+
+        Raises
+        ------
+        OverflowError
+            crfsuite's exp overflows on these scores.
+        """
+        key = (id(previous), id(view))
+        entry = self._states.get(key)
+        if entry is not None:
+            return entry[2], entry[3]
+        scores = self._state_scores(self._rows_of(view, previous))
+        exps = self._exp(scores)
+        scores.flags.writeable = False
+        exps.flags.writeable = False
+        self._states.put(key, (previous, view, scores, exps))
+        return scores, exps
 
     def _window_carry(self, window: tuple[UtteranceView, ...]) -> _Carry:
         """The recursions over ``window`` (non-empty, final views), from the cache if there.
@@ -754,25 +770,22 @@ class FunctionTagger:
         previous: UtteranceView | None = None
         alpha = viterbi = self._state[self._pad]
         for view in window:
-            scores = self._context_scores(previous, view)
+            scores, exps = self._context_scores(previous, view)
             if previous is None:
-                forward, viterbi = self._exp(scores), scores
+                forward, viterbi = exps, scores
             else:
-                forward, best = self._push(alpha, viterbi)
-                forward = forward * self._exp(scores)
-                viterbi = best + scores
+                forward, viterbi = self._push(alpha, viterbi)
+                forward *= exps
+                viterbi += scores
             alpha = forward * self._scale(forward)
             previous = view
         assert previous is not None
-        follow: dict[bool, tuple[int, ...]] = {}
-        for changed in (False, True):
-            feats: Features = {}
-            _add_previous_features(feats, previous, changed=changed, config=self._config)
-            follow[changed] = self._rows(feats)
         forward, best = self._push(alpha, viterbi)
         forward.flags.writeable = False
         best.flags.writeable = False
-        carry = _Carry(forward=forward, best=best, same=follow[False], other=follow[True])
+        carry = _Carry(forward=forward, best=best,
+                       same=self._follow_rows(previous, changed=False),
+                       other=self._follow_rows(previous, changed=True))
         self._carries.put(window, carry)
         return carry
 
@@ -796,7 +809,7 @@ class FunctionTagger:
             return entry
         get = self._attributes.get
         trigrams = self._config.trigrams
-        parent = self._words.get(words[:-1]) if words else None
+        parent = self._words.peek(words[:-1]) if words else None
         if parent is not None:
             unigrams, bigrams, tri = parent.unigrams, parent.bigrams, parent.trigrams
             new = [get(name) for name in _open_ngram_names(words, trigrams=trigrams)]
@@ -848,6 +861,29 @@ class FunctionTagger:
         _add_word_features(feats, words)
         return (*head.unigrams, *head.bigrams, *head.trigrams, *self._rows(feats))
 
+    def _follow_rows(self, previous: UtteranceView, *, changed: bool) -> tuple[int, ...]:
+        """Rows of the features an utterance takes from ``previous``, in order."""
+        feats: Features = {}
+        _add_previous_features(feats, previous, changed=changed, config=self._config)
+        return self._rows(feats)
+
+    def _pair_rows(self, previous: UtteranceView, words: tuple[str, ...]) -> tuple[int, ...]:
+        pairs: Features = {}
+        _add_pair_features(pairs, previous.words, words)
+        return self._rows(pairs)
+
+    def _rows_of(self, view: UtteranceView,
+                 previous: UtteranceView | None) -> tuple[int, ...]:
+        """Rows of ``utterance_features(view, previous)`` in its order, from the caches."""
+        rows = self._shape_rows(view) + self._word_rows(view.words)
+        if previous is None:
+            return rows + self._opening
+        changed = previous.speaker != view.speaker
+        rows += self._follow_rows(previous, changed=changed)
+        if changed and self._config.previous:
+            rows += self._pair_rows(previous, view.words)
+        return rows
+
     def _shape_rows(self, view: UtteranceView) -> tuple[int, ...]:
         # The shape features depend on these alone (length and removed buckets end at 20 and
         # 3), so the table stays small.
@@ -880,9 +916,7 @@ class FunctionTagger:
             if previous.speaker != current.speaker:
                 rows += carry.other
                 if self._config.previous:
-                    pairs: Features = {}
-                    _add_pair_features(pairs, previous.words, words)
-                    rows += self._rows(pairs)
+                    rows += self._pair_rows(previous, words)
             else:
                 rows += carry.same
             scores = self._state_scores(rows)

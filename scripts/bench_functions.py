@@ -87,6 +87,9 @@ def main() -> int:
     artifact = load_artifact(args.model, expected_kind="utterance_functions")
 
     calls: list[Call] = []
+    # Calls that open an utterance meet a new context window (one per utterance); the rest
+    # reuse it.
+    opening: list[bool] = []
     for n, conversation in enumerate(read_corpus(corpora / "swda", split="val")):
         if n >= args.conversations:
             break
@@ -95,6 +98,7 @@ def main() -> int:
             context = views[max(0, i - tagger.context):i]
             for k in range(1, len(utterance.words) + 1):
                 calls.append((context, clean_view(conversation, utterance, upto=k)))
+                opening.append(k == 1)
 
     new: list[float] = []
     old: list[float] = []
@@ -116,6 +120,11 @@ def main() -> int:
           f"load {load_seconds:.3f} s")
     print(f"calls (one per received word): {len(calls)} x {args.rounds} rounds")
     print(line("label_partial (numpy forward step, cached context)", new))
+    firsts = [c for c, first in zip(new, opening * args.rounds, strict=True) if first]
+    others = [c for c, first in zip(new, opening * args.rounds, strict=True) if not first]
+    print(f"  of which the first word of an utterance (new context window): median "
+          f"{statistics.median(firsts):.1f} us/call over {len(firsts)} calls; later words: "
+          f"median {statistics.median(others):.1f} us/call over {len(others)} calls")
     print(line("baseline: crfsuite over the window (the old path)", old))
     print(line("baseline: current utterance's features alone", features))
     print(f"old/new: {statistics.median(old) / statistics.median(new):.1f}x median, "
