@@ -78,6 +78,7 @@ class _Slot:
 @dataclass(slots=True)
 class _OpenUtterance:
     index: int
+    keys: tuple[int, ...] = ()
     word_ids: tuple[str, ...] = ()
     view: UtteranceView | None = None
     published: UtteranceHypothesis | None = None
@@ -262,7 +263,9 @@ class ConversationEngine:
     def _apply(self, channel: _Channel, states: Iterable[TokenState], *,
                withdrawn: tuple[str, ...] = (), close_all: bool = False) -> HypothesisDiff:
         words: list[WordHypothesis] = []
+        changed: set[int] = set()
         for state in states:
+            changed.add(state.key)
             slot = channel.slots.get(state.key)
             if slot is None:
                 continue
@@ -283,7 +286,7 @@ class ConversationEngine:
             if previous is None or _word_changed(previous, hypothesis):
                 slot.published = hypothesis
                 words.append(hypothesis)
-        utterances = self._resegment(channel, close_all=close_all)
+        utterances = self._resegment(channel, close_all=close_all, changed=changed)
         return HypothesisDiff(words=tuple(words), utterances=tuple(utterances),
                               withdrawn_word_ids=withdrawn)
 
@@ -308,13 +311,25 @@ class ConversationEngine:
             groups[0:1] = [head[:limit], head[limit:]] if len(head) > limit else [head]
         return groups
 
-    def _resegment(self, channel: _Channel, *, close_all: bool) -> list[UtteranceHypothesis]:
+    def _resegment(self, channel: _Channel, *, close_all: bool,
+                   changed: set[int]) -> list[UtteranceHypothesis]:
+        """Regroup the channel's open words and relabel the utterances that changed.
+
+        ``changed`` holds the keys whose word state the decoder just revised. An utterance with
+        the same words as before, none of them revised, cannot have changed (its words, labels,
+        end and finality all come from those states), so it is skipped without rebuilding.
+        """
         groups = self._groups(channel, close_all)
         limit = self._config.max_utterance_words
         published: list[UtteranceHypothesis] = []
         old = channel.utterances
         new: list[_OpenUtterance] = []
-        for position, keys in enumerate(groups):
+        for position, key_list in enumerate(groups):
+            keys = tuple(key_list)
+            if (not close_all and position < len(old) and old[position].keys == keys
+                    and old[position].published is not None and changed.isdisjoint(keys)):
+                new.append(old[position])
+                continue
             slots = [channel.slots[k] for k in keys]
             ended = slots[-1].ends_utterance or close_all or len(keys) >= limit
             final = (ended and all(s.final for s in slots)) or close_all
@@ -338,6 +353,7 @@ class ConversationEngine:
                     entry.published = hypothesis
                     published.append(hypothesis)
                 entry.view, entry.word_ids = view, word_ids
+            entry.keys = keys
             new.append(entry)
         for gone in old[len(new):]:
             if gone.published is not None:
