@@ -527,18 +527,23 @@ class FunctionTagger:
     same operations in the same order, the C library's ``exp``), so labels and marginals are
     crfsuite's to the last bit. What does not change from word to word is cached, each cache a
     bounded LRU: the recursions over a window of final context utterances (keyed by the views'
-    values, and by their ids in front of that, :data:`WINDOW_CACHE_SIZE` windows each), the
-    context utterances' state scores (``WINDOW_CACHE_SIZE * (context + 1)``), and the n-gram
-    rows of a growing utterance's leading words (:data:`NGRAM_CACHE_SIZE`), so a call costs the
-    new word's features and one step of the recursions. In the rare case crfsuite's ``exp``
-    would overflow, the call is handed to crfsuite so that even then the result is its own.
+    ids, each entry holding its views so the ids stay theirs, and behind that by the views'
+    values; :data:`WINDOW_CACHE_SIZE` windows each), the context utterances' state scores
+    (``WINDOW_CACHE_SIZE * (context + 1)`` entries of two vectors), and the feature rows of a
+    growing utterance's words (:data:`NGRAM_CACHE_SIZE`), so a call costs the new word's
+    features, one gather of weight rows and one step of the recursions; the first call after a
+    new context window also runs the recursions over the window. In the rare case ``exp`` would
+    overflow (state scores past 709, which no regularised model reaches), the call is handed to
+    crfsuite so that even then the result is its own.
 
     Sharing: the weights are never written after construction and cache entries never change
     after insertion, so one tagger may serve any number of engines and sessions, interleaved on
-    one event loop (a call never awaits) or on several threads (a race can at worst make one
-    of them recompute an evicted entry). The cache sizes bound the memory however many
-    conversations use the tagger. :meth:`label_conversation` calls crfsuite, whose adapter
-    serialises calls with a lock.
+    one event loop (a call never awaits, so no other call runs in the middle of one) or on
+    several threads (shared arrays are only read, every intermediate is the calling thread's
+    own, and a race on a cache can at worst make a thread recompute an entry another evicted;
+    threads gain nothing in speed, the GIL being held for most of a call). The cache sizes bound the
+    memory however many conversations use the tagger, a few megabytes at most.
+    :meth:`label_conversation` calls crfsuite, whose adapter serialises calls with a lock.
     """
 
     def __init__(self, crf: CrfTagger, *, scheme: str, config: FunctionFeatureConfig,
@@ -930,7 +935,9 @@ class FunctionTagger:
         # At the last position crfsuite's backward vector is the scale factor and its marginal
         # alpha * beta / scale, alpha the scaled forward vector; its Viterbi takes the first of
         # equal final scores, as argmax does.
-        probs: FloatArray = forward * scale * scale / scale
+        probs: FloatArray = forward * scale
+        probs *= scale
+        probs /= scale
         return int(viterbi.argmax()), probs
 
     def label_partial(self, context: Sequence[UtteranceView],
