@@ -195,9 +195,9 @@ def utterance_features(view: UtteranceView, previous: UtteranceView | None,
 
 
 # utterance_features in parts, so the tagger's per-word path can build only what a new word
-# changes: the word n-grams come from a cache extended word by word, and the previous
-# utterance's features are folded into the cached decoding of the context. Every n-gram name
-# has "=" second ("w=", "b=", "t="), and no other feature name does but "x=...", so the
+# changes: the word-dependent rows come from a cache extended word by word, and the rows taken
+# from the previous utterance are kept with the cached decoding of the context. Every n-gram
+# name has "=" second ("w=", "b=", "t="), and no other feature name does but "x=...", so the
 # n-grams never share a name with another part; the other parts' prefixes differ too.
 
 
@@ -426,10 +426,9 @@ class _Carry:
 
     ``forward[j]`` is ``sum_i alpha[i] * exp(T[i, j])`` with ``alpha`` the scaled forward
     vector of the window's last position, ``best[j]`` is ``max_i viterbi[i] + T[i, j]``: what
-    the next position's recursions combine with its state scores (both read-only). ``same`` and
-    ``other`` are
-    the model rows of the features a following utterance takes from the window's last one,
-    when its speaker is the same or another.
+    the next position's recursions combine with its state scores (both read-only). ``same``
+    and ``other`` are the model rows of the features a following utterance takes from the
+    window's last one, when its speaker is the same or another.
     """
 
     forward: FloatArray
@@ -443,12 +442,12 @@ class _Words(NamedTuple):
 
     ``unigrams``, ``bigrams`` and ``trigrams`` are the rows of the word n-grams without the end
     marker, each in the order :func:`utterance_features` adds their names, repeats left out (a
-    repeated name is one attribute): what the entry of ``words + (word,)`` extends; ``lead``
-    the rows of the first word, pair and triple features (``w0``, ``b0``, ``t0``; ``None`` if
-    unknown or absent), which stop changing after three words. ``rows``
-    are the rows of an utterance of exactly these words, in feature order: n-grams with the end
-    marker's, then first and last words. (A named tuple: built once per word, and cheaper to
-    build than a dataclass.)
+    repeated name is one attribute): what the entry of ``words + (word,)`` extends. ``lead``
+    are the rows of the first word, pair and triple features (``w0``, ``b0``, ``t0``; ``None``
+    if unknown or absent), which stop changing after three words; ``rows`` the rows of an
+    utterance of exactly these words, in feature order: n-grams with the end marker's, then
+    first and last words. (A named tuple: built once per word, and cheaper to build than a
+    dataclass.)
     """
 
     unigrams: tuple[int, ...]
@@ -541,7 +540,7 @@ class FunctionTagger:
     one event loop (a call never awaits, so no other call runs in the middle of one) or on
     several threads (shared arrays are only read, every intermediate is the calling thread's
     own, and a race on a cache can at worst make a thread recompute an entry another evicted;
-    threads gain nothing in speed, the GIL being held for most of a call). The cache sizes bound the
+    threads gain no speed, the GIL being held for most of a call). The cache sizes bound the
     memory however many conversations use the tagger, a few megabytes at most.
     :meth:`label_conversation` calls crfsuite, whose adapter serialises calls with a lock.
     """
