@@ -924,13 +924,21 @@ class FunctionTagger:
             else:
                 rows += carry.same
             scores = self._state_scores(rows)
-            forward = carry.forward * self._exp(scores)
+            exps = self._exp(scores)
+            forward = carry.forward * exps
             viterbi = carry.best + scores
         else:
+            previous = None
             scores = self._state_scores(rows + self._opening)
-            forward = self._exp(scores)
+            exps = forward = self._exp(scores)
             viterbi = scores
         scale = self._scale(forward)
+        if current.complete:
+            # A finished utterance is about to become context (the engine passes the very view
+            # it labelled last): its state scores after this predecessor are then at hand.
+            scores.flags.writeable = False
+            exps.flags.writeable = False
+            self._states.put((id(previous), id(current)), (previous, current, scores, exps))
         # At the last position crfsuite's backward vector is the scale factor and its marginal
         # alpha * beta / scale, alpha the scaled forward vector; its Viterbi takes the first of
         # equal final scores, as argmax does.

@@ -102,7 +102,10 @@ def main() -> int:
         for i, utterance in enumerate(conversation.utterances):
             context = views[max(0, i - tagger.context):i]
             for k in range(1, len(utterance.words) + 1):
-                calls.append((context, clean_view(conversation, utterance, upto=k)))
+                # After the last word, the view that then becomes context, as the engine does.
+                last = k == len(utterance.words)
+                calls.append((context, views[i] if last else
+                              clean_view(conversation, utterance, upto=k)))
                 opening.append(k == 1)
 
     new: list[float] = []
