@@ -16,6 +16,7 @@ from one place. The :class:`~midstream.models._wordmodel.WordModel` under it may
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 import numpy.typing as npt
@@ -53,8 +54,7 @@ class DecoderConfig:
             raise ValueError(f"confidence_step must be in [0, 1], got {self.confidence_step}")
 
 
-@dataclass(frozen=True, slots=True, kw_only=True)
-class TokenState:
+class TokenState(NamedTuple):
     """What the decoder currently says about one word.
 
     ``confidence`` is the CRF marginal probability of ``label`` (summed over the internal tags
@@ -63,6 +63,10 @@ class TokenState:
     ``reparandum_onset_key`` links a reparandum word to the repair onset that replaces it
     (``None`` for restarts, other labels, or while the onset has not arrived).
     ``interruption_point`` is true on the last word of a reparandum or restart.
+
+    A named tuple rather than a frozen dataclass: the decoder makes a few per word, and a frozen
+    dataclass's field-by-field ``__init__`` cost more than the rest of publishing them.
+    Build it with keywords.
     """
 
     key: int
@@ -77,22 +81,15 @@ class TokenState:
 
 
 class _Entry:
-    __slots__ = (
-        "boundary_confidence", "confidence", "ends", "final", "key", "label", "link",
-        "published", "revision", "tag",
-    )
+    """A held word: its key, current tag, finality and what was last published about it."""
+
+    __slots__ = ("final", "key", "published", "tag")
 
     def __init__(self, key: int) -> None:
         self.key = key
         self.tag = -1
-        self.label = DisfluencyLabel.FLUENT
-        self.ends = False
-        self.confidence = 0.0
-        self.boundary_confidence = 0.0
-        self.link: int | None = None
         self.final = False
         self.published: TokenState | None = None
-        self.revision = -1
 
 
 class ChannelDecoder:
@@ -248,40 +245,49 @@ class ChannelDecoder:
             tag_group=model.tag_group, tag_end=model.tag_end,
         )
         path = result.path
+        confidence = result.confidence
+        end_probability = result.end_probability
         offset = start - lo
         n_open = held - start
         n_final = n_open if close else max(0, n_open - self._config.lag)
+        window = self._entries[lo:]
+        links = self._links(window, path)
         tag_label = model.tag_label
         tag_ends = model.tag_ends
-        window = self._entries[lo:]
+        tag_ip = model.tag_ip
+        step = self._config.confidence_step
+        changed: list[TokenState] = []
+        # One pass: take the new tag, and publish the words whose state moved (label, end,
+        # finality, link, interruption point, or a confidence by more than the step).
         for j in range(offset, len(window)):
             entry = window[j]
             tag = path[j]
             entry.tag = tag
-            entry.label = tag_label[tag]
+            label = tag_label[tag]
             ends = tag_ends[tag]
-            entry.ends = ends
-            entry.confidence = result.confidence[j]
-            p_end = result.end_probability[j]
-            entry.boundary_confidence = p_end if ends else 1.0 - p_end
-        self._link(window, path)
-        changed: list[TokenState] = []
-        tag_ip = model.tag_ip
-        for j in range(offset, len(window)):
-            entry = window[j]
-            if j - offset < n_final:
+            p_end = end_probability[j]
+            boundary = p_end if ends else 1.0 - p_end
+            link = links[j]
+            ip = tag_ip[tag]
+            final = j - offset < n_final
+            if final:
                 entry.final = True
-            if self._differs(entry):
-                entry.revision += 1
-                state = TokenState(
-                    key=entry.key, label=entry.label, confidence=entry.confidence,
-                    ends_utterance=entry.ends, boundary_confidence=entry.boundary_confidence,
-                    final=entry.final, revision=entry.revision,
-                    reparandum_onset_key=entry.link,
-                    interruption_point=tag_ip[entry.tag],
-                )
-                entry.published = state
-                changed.append(state)
+            old = entry.published
+            if old is not None and (
+                old.label == label and old.ends_utterance == ends and old.final == final
+                and old.reparandum_onset_key == link and old.interruption_point == ip
+                and abs(old.confidence - confidence[j]) <= step
+                and abs(old.boundary_confidence - boundary) <= step
+            ):
+                continue
+            state = TokenState(
+                key=entry.key, label=label, confidence=confidence[j], ends_utterance=ends,
+                boundary_confidence=boundary, final=final,
+                revision=0 if old is None else old.revision + 1,
+                reparandum_onset_key=link, interruption_point=ip,
+            )
+            entry.published = state
+            changed.append(state)
         self._first_open = start + n_final
         drop = self._first_open - self._keep
         if drop > 0:
@@ -293,35 +299,24 @@ class ChannelDecoder:
             self._first_open -= drop
         return changed
 
-    def _link(self, window: list[_Entry], path: list[int]) -> None:
-        """Link reparandum words to the repair onset after their interruption point."""
+    def _links(self, window: list[_Entry], path: list[int]) -> list[int | None]:
+        """For each window position, the key of the repair onset its reparandum word links to.
+
+        ``None`` for restarts, other labels, and reparanda whose onset has not arrived yet.
+        """
         base = self._model.tag_base
+        links: list[int | None] = [None] * len(window)
         target: int | None = None
         # Walk right to left, remembering the first word after the nearest interregnum.
         next_onset: int | None = None
         for j in range(len(window) - 1, -1, -1):
             tag = base[path[j]]
-            entry = window[j]
             if tag in IP_TAGS:
                 target = next_onset if tag == "rp.ip" else None
             elif tag not in _REPARANDUM_TAGS:
                 target = None
-            if not entry.final:
-                entry.link = target if tag in _REPARANDUM_TAGS else None
+            if tag in _REPARANDUM_TAGS:
+                links[j] = target
             if tag not in INTERREGNUM_TAGS:
-                next_onset = entry.key
-
-    def _differs(self, entry: _Entry) -> bool:
-        old = entry.published
-        if old is None:
-            return True
-        step = self._config.confidence_step
-        return (
-            old.label != entry.label
-            or old.ends_utterance != entry.ends
-            or old.final != entry.final
-            or old.reparandum_onset_key != entry.link
-            or old.interruption_point != self._model.tag_ip[entry.tag]
-            or abs(old.confidence - entry.confidence) > step
-            or abs(old.boundary_confidence - entry.boundary_confidence) > step
-        )
+                next_onset = window[j].key
+        return links
