@@ -25,7 +25,7 @@ import sys
 from pathlib import Path
 
 from midstream._errors import InputError
-from midstream.server import MidstreamServer, ServerConfig, ServerLimits
+from midstream.server import MidstreamServer, ServerConfig, ServerLimits, run_server_loop
 
 _TOKEN_ENV = "MIDSTREAM_TOKEN"
 
@@ -87,7 +87,7 @@ def _token(args: argparse.Namespace) -> str | None:
 
 
 def run(args: argparse.Namespace) -> int:
-    return asyncio.run(serve(build_config(args)))
+    return run_server_loop(serve(build_config(args)))
 
 
 def build_config(args: argparse.Namespace) -> ServerConfig:

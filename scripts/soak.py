@@ -43,6 +43,7 @@ from pathlib import Path
 import grpc
 from midstream import Conversation, MidstreamError
 from midstream.corpora import read_corpus
+from midstream.server import run_server_loop
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 
@@ -427,7 +428,7 @@ def _parser() -> argparse.ArgumentParser:
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
     if args.serve:
-        return asyncio.run(_serve(args.models, args.ended_retention, args.max_live))
+        return run_server_loop(_serve(args.models, args.ended_retention, args.max_live))
     if args.short:
         args.conversations, args.duration, args.concurrency = 20, 10.0, 4
         args.max_words, args.follow_every = 150, 2
