@@ -19,20 +19,26 @@ from __future__ import annotations
 
 import argparse
 import itertools
+import math
 import shlex
 import sys
 import time
+from dataclasses import replace
 from pathlib import Path
 
 from midstream._errors import InputError
+from midstream._types import Conversation
 from midstream.client import _cmd_train_functions as functions
 from midstream.corpora import read_corpus
 from midstream.models._artifact import save_artifact
 from midstream.models._train_words import (
+    BIAS_CANDIDATES,
     WordTrainingConfig,
     cross_validate_words,
     train_word_artifact,
+    tune_tag_bias,
 )
+from midstream.models._wordtags import TAG_LABEL
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -58,6 +64,13 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     words.add_argument("--restart-span", type=int, nargs="+", default=[defaults.restart_span],
                        help="words back the phrase-restart features look (0: off; several: "
                             "compared by CV)")
+    words.add_argument("--tag-bias", default=None, metavar="TAG=VALUE[,TAG=VALUE...]",
+                       help="constant added to a disfluency tag's score at decoding, stored in "
+                            "the model (e.g. rp.ip=0.3; tags: " + ", ".join(sorted(TAG_LABEL))
+                            + ")")
+    words.add_argument("--tune-bias", action="store_true",
+                       help="choose the reparandum/repair tag bias by cross-validation "
+                            "(--cv-folds, --cv-subset, --seed) before training")
     words.add_argument("--cv-only", action="store_true",
                        help="print the cross-validation results and stop (no model written)")
     words.add_argument("--max-iterations", type=int, default=defaults.max_iterations,
@@ -91,11 +104,67 @@ def _command_line(args: argparse.Namespace) -> str:
                          ("--restart-span", args.restart_span)):
         parts += [flag, *(str(v) for v in values)]
     parts += ["--max-iterations", str(args.max_iterations)]
-    if len(args.c1) * len(args.c2) * len(args.min_freq) * len(args.restart_span) > 1:
+    if args.tag_bias is not None:
+        parts += ["--tag-bias", args.tag_bias]
+    if args.tune_bias:
+        parts += ["--tune-bias"]
+    if args.tune_bias or len(args.c1) * len(args.c2) * len(args.min_freq) * len(
+            args.restart_span) > 1:
         parts += ["--cv-folds", str(args.cv_folds), "--cv-subset", str(args.cv_subset),
                   "--seed", str(args.seed)]
     parts += ["--out", str(args.out)]
     return " ".join(shlex.quote(p) for p in parts)
+
+
+def parse_tag_bias(text: str) -> tuple[tuple[str, float], ...]:
+    """``rp.ip=0.3,rp=0.1`` as sorted (tag, value) pairs.
+
+    Raises
+    ------
+    InputError
+        An item is not ``TAG=NUMBER``, names an unknown tag, or repeats one.
+    """
+    pairs: dict[str, float] = {}
+    for item in text.split(","):
+        tag, sep, value = item.strip().partition("=")
+        tag = tag.strip()
+        if not sep or not tag:
+            raise InputError(f"--tag-bias: {item!r} is not TAG=VALUE")
+        if tag not in TAG_LABEL:
+            raise InputError(f"--tag-bias: unknown tag {tag!r}; known: "
+                             + ", ".join(sorted(TAG_LABEL)))
+        if tag in pairs:
+            raise InputError(f"--tag-bias: tag {tag!r} given twice")
+        try:
+            number = float(value)
+        except ValueError:
+            raise InputError(f"--tag-bias: {value!r} (tag {tag}) is not a number") from None
+        if not math.isfinite(number):
+            raise InputError(f"--tag-bias: {value!r} (tag {tag}) is not a finite number")
+        pairs[tag] = number
+    return tuple(sorted(pairs.items()))
+
+
+def _tune_bias(args: argparse.Namespace, conversations: list[Conversation],
+               chosen: WordTrainingConfig, metadata: dict[str, object]) -> WordTrainingConfig:
+    results = tune_tag_bias(conversations, chosen, BIAS_CANDIDATES, folds=args.cv_folds,
+                            subset=args.cv_subset or None, seed=args.seed, progress=True)
+    for result in results:
+        shown = ",".join(f"{t}={v:g}" for t, v in result.bias) or "none"
+        print(f"bias {shown}: reparandum_no_fragments precision={result.precision:.4f} "
+              f"recall={result.recall:.4f} f1={result.f1:.4f}", flush=True)
+    best = max(results, key=lambda r: r.f1)
+    bias = tuple((t, v) for t, v in best.bias if v != 0.0)
+    print("chosen bias " + (",".join(f"{t}={v:g}" for t, v in bias) or "none"), flush=True)
+    metadata["bias_cross_validation"] = {
+        "folds": args.cv_folds,
+        "subset": args.cv_subset,
+        "seed": args.seed,
+        "objective": "held-out reparandum F1 without fragments, counts pooled over folds",
+        "results": [{"bias": dict(r.bias), "precision": round(r.precision, 4),
+                     "recall": round(r.recall, 4), "f1": round(r.f1, 4)} for r in results],
+    }
+    return replace(chosen, tag_bias=bias)
 
 
 def run_words(args: argparse.Namespace) -> int:
@@ -103,12 +172,16 @@ def run_words(args: argparse.Namespace) -> int:
         raise InputError("--out is required (the model file to write) unless --cv-only")
     if args.cv_folds < 2:
         raise InputError(f"--cv-folds must be at least 2, got {args.cv_folds}")
+    if args.tag_bias is not None and args.tune_bias:
+        raise InputError("--tag-bias and --tune-bias exclude each other")
+    tag_bias = () if args.tag_bias is None else parse_tag_bias(args.tag_bias)
     conversations = list(read_corpus(args.corpus, split=args.split))
     if not conversations:
         raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
     base = WordTrainingConfig(c1=args.c1[0], c2=args.c2[0], min_freq=args.min_freq[0],
                               max_iterations=args.max_iterations,
-                              restart_span=args.restart_span[0])
+                              restart_span=args.restart_span[0],
+                              tag_bias=tag_bias)
     grid = [{"c1": c1, "c2": c2, "min_freq": m, "restart_span": r}
             for c1, c2, m, r in itertools.product(args.c1, args.c2, args.min_freq,
                                                   args.restart_span)]
@@ -119,7 +192,7 @@ def run_words(args: argparse.Namespace) -> int:
         "split": args.split,
         "created_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
     }
-    if len(grid) > 1 or args.cv_only:
+    if len(grid) > 1 or (args.cv_only and not args.tune_bias):
         results = cross_validate_words(
             conversations, base, grid=grid, folds=args.cv_folds,
             subset=args.cv_subset or None, seed=args.seed, progress=True)
@@ -129,7 +202,7 @@ def run_words(args: argparse.Namespace) -> int:
                   f"restart_span={c.restart_span}: "
                   f"reparandum_f1={result.reparandum_f1:.4f} filler_f1={result.filler_f1:.4f} "
                   f"segmentation_f1={result.segmentation_f1:.4f}", flush=True)
-        if args.cv_only:
+        if args.cv_only and not args.tune_bias:
             return 0
         best = max(results, key=lambda r: r.objective)
         chosen = best.config
@@ -148,6 +221,10 @@ def run_words(args: argparse.Namespace) -> int:
                 for r in results
             ],
         }
+    if args.tune_bias:
+        chosen = _tune_bias(args, conversations, chosen, metadata)
+        if args.cv_only:
+            return 0
     print(f"training on {len(conversations)} conversations "
           f"(c1={chosen.c1} c2={chosen.c2} min_freq={chosen.min_freq})", file=sys.stderr,
           flush=True)

@@ -200,6 +200,9 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
     elif k == 2:
         w1 = tokens[i + 1].text
         out += ["w+2=" + wk, "w+1w+2=" + w1 + "|" + wk, "lx+2=" + lex.get(tk.text, "-")]
+    elif tk.text in lex:
+        # A filled pause or editing term further ahead: an interruption point may lie between.
+        out.append(f"lx+{k}=" + lex[tk.text])
     # Exact and rough copies ending at or starting from i that reach i + k.
     if not t0.fragment and tk.text == t0.text:
         out.append(f"m0_{k}")
@@ -211,6 +214,10 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
     for a in (1, 2):
         if i - a >= 0 and tokens[i - a].text == tk.text:
             out.append(f"m{a}_{k}")
+    # A word right after i recurs at i + k: i may precede a repeated stretch too.
+    for a in (1, 2):
+        if k > a + 1 and tokens[i + a].text == tk.text:
+            out.append(f"n{a}m{k}")
     span = config.restart_span
     if span:
         for a in range(3, span + 1):
@@ -225,6 +232,13 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
                 if i - a >= 0 and tokens[i - a].text == tk.text:
                     out.append(f"nx{a}")
                     break
+    # The word that resumes after a filled pause or editing term, paired with the word before
+    # them: a substitution ("and uh but", "a i mean the") shows in the pair.
+    if k >= 2 and lex.get(tk.text, "-") not in "FE" and all(
+        lex.get(tokens[i + b].text, "-") in "FE" for b in range(1, k)
+    ):
+        out.append("wi=" + w0 + "|" + wk)
+        out.append("lxi=" + lex.get(t0.text, "-") + "|" + lex.get(tk.text, "-"))
     # Left copy: tokens[i-a .. i] equals tokens[i+k-a .. i+k] for a = 0, 1 (and 2).
     if tk.text == t0.text and i >= 1 and tokens[i - 1].text == tokens[i + k - 1].text and k > 1:
         if i >= 2 and k > 2 and tokens[i - 2].text == tokens[i + k - 2].text:
@@ -236,6 +250,26 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
         d = k - n + 1
         if d >= n and all(tokens[i + b].text == tokens[i + d + b].text for b in range(n)):
             out.append(f"fc{d}_{n}")
+    if k >= 2:
+        if tk.fragment:
+            out.append(f"frag+{k}")
+        # Rough copy of a phrase that began before i: the bigram at i-a (a >= 2) recurs
+        # ending at i + k, exactly or with its middle word of a trigram substituted.
+        back = tokens[i + k - 1].text
+        reach = min(max(span, 2), config.left)
+        for a in range(2, reach + 1):
+            if i - a < 0:
+                break
+            if tokens[i - a].text == back and tokens[i - a + 1].text == tk.text:
+                out.append(f"bg{a}_{k}")
+        if k >= 3:
+            first = tokens[i + k - 2].text
+            for a in range(2, reach + 1):
+                if i - a < 0:
+                    break
+                if (tokens[i - a].text == first and tokens[i - a + 2].text == tk.text
+                        and tokens[i - a + 1].text != back):
+                    out.append(f"sb{a}_{k}")
     # A broken-off word that the speaker then says in full.
     if t0.fragment and len(t0.text) > 1 and tk.text.startswith(t0.text.rstrip("-")):
         out.append(f"fpre{k}")

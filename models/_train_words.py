@@ -22,22 +22,37 @@ from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
+import numpy as np
+import numpy.typing as npt
 from midstream._errors import InputError
 from midstream._types import Conversation, DisfluencyLabel
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import TrainingPairs, train_crf_from
-from midstream.models._eval_words import offline_scores
+from midstream.models._eval_words import BinaryCounts, offline_scores
 from midstream.models._features import FeatureConfig, features_at, tokens_from_words
 from midstream.models._wordmodel import WordModel
-from midstream.models._wordtags import ChannelSequence, channel_sequences, chunk_at_ends
+from midstream.models._wordtags import (
+    END_SUFFIX,
+    TAG_LABEL,
+    ChannelSequence,
+    channel_sequences,
+    chunk_at_ends,
+)
 from tqdm import tqdm
 
 __all__ = [
+    "BIAS_CANDIDATES",
+    "BiasResult",
+    "HeldOutChannel",
     "WordTrainingConfig",
     "build_lexicon",
     "cross_validate_words",
+    "expand_tag_bias",
+    "held_out_channels",
+    "sweep_tag_bias",
     "train_word_artifact",
     "training_pairs",
+    "tune_tag_bias",
 ]
 
 _log = logging.getLogger(__name__)
@@ -70,6 +85,7 @@ class WordTrainingConfig:
     right: int = 5
     left: int = 8
     restart_span: int = 5
+    tag_bias: tuple[tuple[str, float], ...] = ()
 
 
 def annotated_channels(conversations: Iterable[Conversation]) -> Iterator[ChannelSequence]:
@@ -163,6 +179,9 @@ def train_word_artifact(
     for channel in annotated_channels(annotated):
         assert channel.tags is not None
         tag_counts.update(channel.tags)
+    if config.tag_bias:
+        features = replace(features,
+                           tag_bias=expand_tag_bias(dict(config.tag_bias), tuple(tag_counts)))
     summary = {
         "conversations": len(annotated),
         "conversations_skipped_unannotated": len(conversations) - len(annotated),
@@ -183,6 +202,7 @@ def train_word_artifact(
             "max_iterations": config.max_iterations,
             "chunk_length": config.chunk_length,
             "restart_span": config.restart_span,
+            "tag_bias": dict(config.tag_bias),
         },
         metadata={"training_data": summary, **(metadata or {})},
     )
@@ -203,6 +223,20 @@ class CvResult:
         return (self.reparandum_f1 + self.segmentation_f1) / 2
 
 
+def _folds(conversations: Sequence[Conversation], folds: int, subset: int | None,
+           seed: int) -> list[list[Conversation]]:
+    """Annotated conversations of a seeded random subset, dealt into ``folds`` groups."""
+    annotated = [c for c in conversations if c.disfluency_annotated]
+    if len(annotated) < folds:
+        raise InputError(f"{len(annotated)} annotated conversations, fewer than {folds} folds")
+    rng = random.Random(seed)
+    pool = sorted(annotated, key=lambda c: c.id)
+    rng.shuffle(pool)
+    if subset is not None:
+        pool = pool[:subset]
+    return [pool[k::folds] for k in range(folds)]
+
+
 def cross_validate_words(
     conversations: Sequence[Conversation],
     base: WordTrainingConfig,
@@ -218,15 +252,7 @@ def cross_validate_words(
     Folds are drawn from (a seeded random subset of) the given training conversations; scoring
     decodes held-out folds offline (whole channels) for speed.
     """
-    annotated = [c for c in conversations if c.disfluency_annotated]
-    if len(annotated) < folds:
-        raise InputError(f"{len(annotated)} annotated conversations, fewer than {folds} folds")
-    rng = random.Random(seed)
-    pool = sorted(annotated, key=lambda c: c.id)
-    rng.shuffle(pool)
-    if subset is not None:
-        pool = pool[:subset]
-    fold_of = [pool[k::folds] for k in range(folds)]
+    fold_of = _folds(conversations, folds, subset, seed)
     results = []
     bar = tqdm(total=len(grid) * folds, desc="cross-validation", file=sys.stderr,
                disable=not progress)
@@ -251,3 +277,151 @@ def cross_validate_words(
         results.append(result)
     bar.close()
     return results
+
+
+FloatArray = npt.NDArray[np.float64]
+BoolArray = npt.NDArray[np.bool_]
+
+
+#: Tag biases ``--tune-bias`` compares: a raised last reparandum word moves the interruption
+#: point's threshold, the others follow it a little (grid: common practice, no source).
+BIAS_CANDIDATES: tuple[dict[str, float], ...] = tuple(
+    {"rp": rp, "rp.ip": ip}
+    for rp in (-0.3, -0.2, -0.1, 0.0, 0.1) for ip in (0.0, 0.2, 0.4, 0.6, 0.8, 1.0)
+)
+
+
+def expand_tag_bias(bias: dict[str, float], tags: Sequence[str]) -> dict[str, float]:
+    """Per-tag bias of ``tags`` from a bias per disfluency tag (``rp`` also biases ``rp/end``).
+
+    Raises
+    ------
+    InputError
+        A key is no disfluency tag of :mod:`~midstream.models._wordtags`.
+    """
+    unknown = sorted(set(bias) - set(TAG_LABEL))
+    if unknown:
+        raise InputError(f"tag bias names unknown tags {unknown}; known: {sorted(TAG_LABEL)}")
+    expanded = {tag: bias[base] for tag in tags
+                if (base := tag.removesuffix(END_SUFFIX)) in bias and bias[base] != 0.0}
+    return dict(sorted(expanded.items()))
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class HeldOutChannel:
+    """A held-out channel's unbiased state scores and the gold facts the bias sweep scores.
+
+    ``emissions``: ``(n, tags)`` state scores of the fold model; ``reparandum``: gold
+    reparandum words; ``counted``: words that count for the score (not fragments).
+    """
+
+    emissions: FloatArray
+    reparandum: BoolArray
+    counted: BoolArray
+
+
+def held_out_channels(conversations: Sequence[Conversation],
+                      model: WordModel) -> list[HeldOutChannel]:
+    """State scores of every annotated channel of ``conversations`` under ``model``.
+
+    ``model`` must carry no tag bias (the sweep adds its own).
+    """
+    if model.config.tag_bias:
+        raise ValueError("held_out_channels needs a model without tag bias")
+    result = []
+    for channel in annotated_channels(conversations):
+        assert channel.tags is not None
+        if not channel.words:
+            continue
+        tokens = tokens_from_words(channel.words, channel.after_other_speaker)
+        emissions = np.stack([model.score(features_at(tokens, i, model.config))
+                              for i in range(len(tokens))])
+        result.append(HeldOutChannel(
+            emissions=emissions,
+            reparandum=np.array([TAG_LABEL[t.removesuffix(END_SUFFIX)]
+                                 == DisfluencyLabel.REPARANDUM for t in channel.tags]),
+            counted=np.array([not w.fragment for w in channel.words]),
+        ))
+    return result
+
+
+def _viterbi(emissions: FloatArray, transitions: FloatArray) -> npt.NDArray[np.intp]:
+    n, size = emissions.shape
+    best = emissions[0]
+    pointers = np.empty((n, size), dtype=np.intp)
+    columns = np.arange(size)
+    for t in range(1, n):
+        scores = best[:, None] + transitions
+        pointer = scores.argmax(axis=0)
+        pointers[t] = pointer
+        best = scores[pointer, columns] + emissions[t]
+    path = np.empty(n, dtype=np.intp)
+    path[-1] = int(best.argmax())
+    for t in range(n - 1, 0, -1):
+        path[t - 1] = pointers[t, path[t]]
+    return path
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class BiasResult:
+    """Held-out reparandum scores (fragments left out, counts pooled over folds) of one bias."""
+
+    bias: tuple[tuple[str, float], ...]
+    precision: float
+    recall: float
+    f1: float
+
+
+def sweep_tag_bias(
+    folds: Sequence[tuple[WordModel, Sequence[HeldOutChannel]]],
+    candidates: Sequence[dict[str, float]],
+) -> list[BiasResult]:
+    """Viterbi-decode every fold's held-out channels under each candidate bias and score it.
+
+    A candidate maps disfluency tags (``rp``, ``ro``...) to the constant added to their state
+    scores, as :class:`~midstream.models._features.FeatureConfig` ``tag_bias`` does at decoding.
+    """
+    results = []
+    for candidate in candidates:
+        counts = BinaryCounts()
+        for model, channels in folds:
+            bias = expand_tag_bias(candidate, model.tags)
+            vector = np.array([bias.get(t, 0.0) for t in model.tags])
+            reparandum = np.array([lab == DisfluencyLabel.REPARANDUM for lab in model.tag_label])
+            for channel in channels:
+                path = _viterbi(channel.emissions + vector, model.transitions)
+                predicted = reparandum[path][channel.counted]
+                gold = channel.reparandum[channel.counted]
+                counts.tp += int((predicted & gold).sum())
+                counts.fp += int((predicted & ~gold).sum())
+                counts.fn += int((~predicted & gold).sum())
+        results.append(BiasResult(bias=tuple(sorted(candidate.items())),
+                                  precision=counts.precision, recall=counts.recall,
+                                  f1=counts.f1))
+    return results
+
+
+def tune_tag_bias(
+    conversations: Sequence[Conversation],
+    config: WordTrainingConfig,
+    candidates: Sequence[dict[str, float]],
+    *,
+    folds: int,
+    subset: int | None,
+    seed: int = 0,
+    progress: bool = True,
+) -> list[BiasResult]:
+    """Score each candidate tag bias by cross-validation grouped by conversation.
+
+    One model per fold is trained (without bias) on the other folds of (a seeded random subset
+    of) ``conversations``; its held-out fold is decoded offline under every candidate.
+    """
+    fold_of = _folds(conversations, folds, subset, seed)
+    trained = []
+    unbiased = replace(config, tag_bias=())
+    for k in tqdm(range(folds), desc="bias cross-validation", file=sys.stderr,
+                  disable=not progress):
+        train = list(itertools.chain.from_iterable(fold_of[j] for j in range(folds) if j != k))
+        model = WordModel.from_artifact(train_word_artifact(train, unbiased))
+        trained.append((model, held_out_channels(fold_of[k], model)))
+    return sweep_tag_bias(trained, candidates)

@@ -97,3 +97,35 @@ def test_tag_bias_round_trips_through_json() -> None:
     assert FeatureConfig.from_json(config.to_json()) == config
     # Models written before the field existed read as "no bias".
     assert FeatureConfig.from_json({"right": 5, "left": 8, "lexicon": {}}).tag_bias == {}
+
+
+def test_a_phrase_begun_before_the_word_recurring_marks_a_rough_copy() -> None:
+    tokens = _tokens("it was true it was truly awful")
+    true = features_at(tokens, 2, CONFIG)
+    assert "bg2_2" in true  # "it was" (2 back) recurs ending 2 ahead
+    tokens = _tokens("we are fortunate we were fortunate")
+    assert "sb2_3" in features_at(tokens, 2, CONFIG)  # "we are fortunate" / "we were fortunate"
+    assert not any(f.startswith("sb") for f in features_at(_tokens("we are fortunate we are "
+                                                                   "fortunate"), 2, CONFIG))
+
+
+def test_the_word_resuming_after_an_interregnum_pairs_with_the_last_before_it() -> None:
+    tokens = _tokens("and uh but then")
+    features = features_at(tokens, 0, CONFIG)
+    assert "wi=and|but" in features
+    assert "lxi=-|-" in features
+    # Without a filled pause or editing term between, the pair is the ordinary bigram.
+    assert not any(f.startswith("wi=") for f in features_at(_tokens("and but then"), 0, CONFIG))
+
+
+def test_a_word_after_the_current_one_recurring_ahead() -> None:
+    tokens = _tokens("she was there was so")
+    assert "n1m3" in features_at(tokens, 0, CONFIG)  # "was" at +1 recurs at +3
+
+
+def test_far_interregnum_and_fragment_cues() -> None:
+    tokens = [Token(text="the"), Token(text="fact"), Token(text="that"), Token(text="uh"),
+              Token(text="w-", fragment=True)]
+    features = features_at(tokens, 0, CONFIG)
+    assert "lx+3=F" in features
+    assert "frag+4" in features
