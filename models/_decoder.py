@@ -109,11 +109,12 @@ class ChannelDecoder:
         # Finalised words kept as feature context; one more as the lattice's fixed left end.
         self._keep = max(model.config.left, 1)
         self._entries: list[_Entry] = []
-        self._keys: set[int] = set()  # of self._entries, for the duplicate check
+        self._top_key = -1  # the largest key seen: larger ones skip the duplicate scan
         self._tokens: list[Token] = []
-        # State scores of the held words, row k for self._entries[k]: one preallocated block
-        # (the decoder holds at most keep + lag + 1 words), so a new word allocates nothing.
-        self._scores: FloatArray = np.zeros((self._keep + config.lag + 2, len(model.tags)))
+        # State scores of the held words, row k for self._entries[k], in one block that grows
+        # by doubling to at most keep + lag + 1 rows and then allocates nothing more. It starts
+        # small: an idle conversation's few words should not pay for a full window.
+        self._scores: FloatArray = np.zeros((8, len(model.tags)))
         self._first_open = 0
         self._finished = False
 
@@ -144,10 +145,10 @@ class ChannelDecoder:
         """
         if self._finished:
             raise EventError(f"word {key}: channel already finished")
-        if key in self._keys:
+        if key <= self._top_key and any(e.key == key for e in self._entries):
             raise EventError(f"word {key}: key already used in this channel")
+        self._top_key = max(self._top_key, key)
         self._entries.append(_Entry(key))
-        self._keys.add(key)
         self._tokens.append(token_of(word, after_other_speaker))
         last = len(self._entries) - 1
         self._reserve(last + 1)
@@ -189,7 +190,6 @@ class ChannelDecoder:
         position = self._open_position(key)
         del self._entries[position]
         del self._tokens[position]
-        self._keys.discard(key)
         held = len(self._entries)
         self._scores[position:held] = self._scores[position + 1 : held + 1]
         self._rescore_open()
@@ -291,8 +291,6 @@ class ChannelDecoder:
         self._first_open = start + n_final
         drop = self._first_open - self._keep
         if drop > 0:
-            for entry in self._entries[:drop]:
-                self._keys.discard(entry.key)
             del self._entries[:drop]
             del self._tokens[:drop]
             self._scores[: held - drop] = self._scores[drop:held]
