@@ -166,9 +166,18 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
         if t0.confidence is not None:
             out.append(f"cf={_bucket(t0.confidence, _CONFIDENCE_EDGES)}")
         # Words since the last gap, counted back at most config.left words.
+        # (The gap test of _is_gap, inlined: this loop runs for every word.)
         since = 0
         j = i
-        while j > 0 and since < config.left and not _is_gap(tokens, j):
+        left = config.left
+        while j > 0 and since < left:
+            tj = tokens[j]
+            if tj.after_other_speaker:
+                break
+            before = tokens[j - 1]
+            if (before.end is not None and tj.start is not None
+                    and tj.start - before.end >= GAP_SECONDS):
+                break
             since += 1
             j -= 1
         out.append(f"pos={min(since, 6) if since < config.left else 'far'}")
@@ -183,12 +192,19 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
         return out
 
     tk = tokens[i + k]
-    wk = "<frag>" if tk.fragment else tk.text
+    text0 = t0.text
+    textk = tk.text
+    wk = "<frag>" if tk.fragment else textk
+    lexk = lex.get(textk, "-")
+    # The words strictly between i and i + k, and whether all are filled pauses or editing
+    # terms: several features below ask, so it is worked out once.
+    between = [tokens[i + b].text for b in range(1, k)]
+    only_fe = all(lex.get(w, "-") in "FE" for w in between)
     if k == 1:
         out += [
             "w+1=" + wk,
             "ww+1=" + w0 + "|" + wk,
-            "lx+1=" + lex.get(tk.text, "-"),
+            "lx+1=" + lexk,
         ]
         if tk.after_other_speaker:
             out.append("oth+1")
@@ -198,50 +214,45 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
         if tk.fragment:
             out.append("frag+1")
     elif k == 2:
-        w1 = tokens[i + 1].text
-        out += ["w+2=" + wk, "w+1w+2=" + w1 + "|" + wk, "lx+2=" + lex.get(tk.text, "-")]
-    elif tk.text in lex:
+        out += ["w+2=" + wk, "w+1w+2=" + between[0] + "|" + wk, "lx+2=" + lexk]
+    elif textk in lex:
         # A filled pause or editing term further ahead: an interruption point may lie between.
-        out.append(f"lx+{k}=" + lex[tk.text])
+        out.append(f"lx+{k}=" + lex[textk])
     # Exact and rough copies ending at or starting from i that reach i + k.
-    if not t0.fragment and tk.text == t0.text:
+    if not t0.fragment and textk == text0:
         out.append(f"m0_{k}")
-        if all(tokens[i + b].text != t0.text for b in range(1, k)):
+        if text0 not in between:
             out.append(f"m0first={k}")
             out.append("m0w=" + w0)
-            if all(lex.get(tokens[i + b].text, "-") in "FE" for b in range(1, k)) and k > 1:
+            if only_fe and k > 1:
                 out.append("mskip")
     for a in (1, 2):
-        if i - a >= 0 and tokens[i - a].text == tk.text:
+        if i - a >= 0 and tokens[i - a].text == textk:
             out.append(f"m{a}_{k}")
     # A word right after i recurs at i + k: i may precede a repeated stretch too.
     for a in (1, 2):
-        if k > a + 1 and tokens[i + a].text == tk.text:
+        if k > a + 1 and between[a - 1] == textk:
             out.append(f"n{a}m{k}")
     span = config.restart_span
     if span:
         for a in range(3, span + 1):
-            if i - a >= 0 and tokens[i - a].text == tk.text:
+            if i - a >= 0 and tokens[i - a].text == textk:
                 out.append(f"m{a}_{k}")
         # The first word after i that is no filled pause or editing term restarts a phrase
         # that began a words back: i is then likely the last word of a reparandum.
-        if lex.get(tk.text, "-") not in "FE" and all(
-            lex.get(tokens[i + b].text, "-") in "FE" for b in range(1, k)
-        ):
+        if lexk not in "FE" and only_fe:
             for a in range(span + 1):
-                if i - a >= 0 and tokens[i - a].text == tk.text:
+                if i - a >= 0 and tokens[i - a].text == textk:
                     out.append(f"nx{a}")
                     break
     # The word that resumes after a filled pause or editing term, paired with the word before
     # them: a substitution ("and uh but", "a i mean the") shows in the pair.
-    if k >= 2 and lex.get(tk.text, "-") not in "FE" and all(
-        lex.get(tokens[i + b].text, "-") in "FE" for b in range(1, k)
-    ):
+    if k >= 2 and lexk not in "FE" and only_fe:
         out.append("wi=" + w0 + "|" + wk)
-        out.append("lxi=" + lex.get(t0.text, "-") + "|" + lex.get(tk.text, "-"))
+        out.append("lxi=" + lex.get(text0, "-") + "|" + lexk)
     # Left copy: tokens[i-a .. i] equals tokens[i+k-a .. i+k] for a = 0, 1 (and 2).
-    if tk.text == t0.text and i >= 1 and tokens[i - 1].text == tokens[i + k - 1].text and k > 1:
-        if i >= 2 and k > 2 and tokens[i - 2].text == tokens[i + k - 2].text:
+    if textk == text0 and i >= 1 and k > 1 and tokens[i - 1].text == between[-1]:
+        if i >= 2 and k > 2 and tokens[i - 2].text == between[-2]:
             out.append(f"lc{k}_3")
         else:
             out.append(f"lc{k}_2")
@@ -255,23 +266,23 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
             out.append(f"frag+{k}")
         # Rough copy of a phrase that began before i: the bigram at i-a (a >= 2) recurs
         # ending at i + k, exactly or with its middle word of a trigram substituted.
-        back = tokens[i + k - 1].text
+        back = between[-1]
         reach = min(max(span, 2), config.left)
         for a in range(2, reach + 1):
             if i - a < 0:
                 break
-            if tokens[i - a].text == back and tokens[i - a + 1].text == tk.text:
+            if tokens[i - a].text == back and tokens[i - a + 1].text == textk:
                 out.append(f"bg{a}_{k}")
         if k >= 3:
-            first = tokens[i + k - 2].text
+            first = between[-2]
             for a in range(2, reach + 1):
                 if i - a < 0:
                     break
-                if (tokens[i - a].text == first and tokens[i - a + 2].text == tk.text
+                if (tokens[i - a].text == first and tokens[i - a + 2].text == textk
                         and tokens[i - a + 1].text != back):
                     out.append(f"sb{a}_{k}")
     # A broken-off word that the speaker then says in full.
-    if t0.fragment and len(t0.text) > 1 and tk.text.startswith(t0.text.rstrip("-")):
+    if t0.fragment and len(text0) > 1 and textk.startswith(text0.rstrip("-")):
         out.append(f"fpre{k}")
     return out
 
