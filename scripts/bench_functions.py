@@ -21,6 +21,7 @@ import argparse
 import os
 import statistics
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 from midstream.corpora import read_corpus
@@ -37,33 +38,30 @@ REPO = Path(__file__).resolve().parent.parent
 Call = tuple[list[UtteranceView], UtteranceView]
 
 
-def _time_new(tagger: FunctionTagger, calls: list[Call]
-              ) -> tuple[list[float], float, list[str]]:
+def _label_new(tagger: FunctionTagger, context: list[UtteranceView],
+               current: UtteranceView) -> str:
+    return tagger.label_partial(context, current).label
+
+
+def _label_crfsuite(tagger: FunctionTagger, context: list[UtteranceView],
+                    current: UtteranceView) -> str:
+    # The old label_partial was this plus building the guess from the marginals' dict.
+    label, marginals = tagger._label_partial_crfsuite(context, current)
+    tagger._guess(label, marginals)
+    return label
+
+
+def _time(label: Callable[[FunctionTagger, list[UtteranceView], UtteranceView], str],
+          tagger: FunctionTagger, calls: list[Call]) -> tuple[list[float], float, list[str]]:
+    """Wall time of each call (us), CPU time of all, and the labels, of one labelling path."""
     clock = time.perf_counter_ns
     costs: list[float] = []
     labels: list[str] = []
     cpu = time.thread_time()
     for context, current in calls:
         started = clock()
-        guess = tagger.label_partial(context, current)
+        labels.append(label(tagger, context, current))
         costs.append((clock() - started) / 1e3)
-        labels.append(guess.label)
-    return costs, time.thread_time() - cpu, labels
-
-
-def _time_crfsuite(tagger: FunctionTagger, calls: list[Call]
-                   ) -> tuple[list[float], float, list[str]]:
-    clock = time.perf_counter_ns
-    costs: list[float] = []
-    labels: list[str] = []
-    cpu = time.thread_time()
-    for context, current in calls:
-        started = clock()
-        # The old label_partial was this plus building the guess from the marginals' dict.
-        label, marginals = tagger._label_partial_crfsuite(context, current)
-        tagger._guess(label, marginals)
-        costs.append((clock() - started) / 1e3)
-        labels.append(label)
     return costs, time.thread_time() - cpu, labels
 
 
@@ -114,10 +112,11 @@ def main() -> int:
     features: list[float] = []
     differ = 0
     for _ in range(args.rounds):
-        costs, cpu, new_labels = _time_new(FunctionTagger.from_artifact(artifact), calls)
+        costs, cpu, new_labels = _time(_label_new, FunctionTagger.from_artifact(artifact), calls)
         new.extend(costs)
         new_cpu += cpu
-        costs, cpu, old_labels = _time_crfsuite(FunctionTagger.from_artifact(artifact), calls)
+        costs, cpu, old_labels = _time(_label_crfsuite, FunctionTagger.from_artifact(artifact),
+                                       calls)
         old.extend(costs)
         old_cpu += cpu
         features.extend(_time_features(tagger, calls))
