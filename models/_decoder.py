@@ -230,8 +230,7 @@ class ChannelDecoder:
         last = len(self._entries) - 1
         model = self._model
         for i in range(self._first_open, last + 1):
-            rows = model.rows(features_at(self._tokens[: last + 1], i, model.config))
-            self._scores[i] = model.state[rows].sum(axis=0) if rows else 0.0
+            self._scores[i] = model.score(features_at(self._tokens[: last + 1], i, model.config))
 
     def _update(self, *, close: bool) -> list[TokenState]:
         model = self._model

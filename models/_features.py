@@ -121,15 +121,6 @@ def _pause(before: Token, after: Token) -> float | None:
     return after.start - before.end
 
 
-def _is_gap(tokens: Sequence[Token], i: int) -> bool:
-    """Whether a gap (other speaker, long pause) comes right before token ``i``."""
-    token = tokens[i]
-    if token.after_other_speaker:
-        return True
-    pause = _pause(tokens[i - 1], token) if i > 0 else None
-    return pause is not None and pause >= GAP_SECONDS
-
-
 def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig) -> list[str]:
     """Features of token ``i`` whose right-most token read is ``i + k``.
 
@@ -166,7 +157,7 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
         if t0.confidence is not None:
             out.append(f"cf={_bucket(t0.confidence, _CONFIDENCE_EDGES)}")
         # Words since the last gap, counted back at most config.left words.
-        # (The gap test of _is_gap, inlined: this loop runs for every word.)
+        # A gap is another speaker or a pause of at least GAP_SECONDS before the word.
         since = 0
         j = i
         left = config.left

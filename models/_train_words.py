@@ -30,6 +30,7 @@ from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import TrainingPairs, train_crf_from
 from midstream.models._eval_words import BinaryCounts, offline_scores
 from midstream.models._features import FeatureConfig, features_at, tokens_from_words
+from midstream.models._lattice import decode_lattice
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import (
     END_SUFFIX,
@@ -345,23 +346,6 @@ def held_out_channels(conversations: Sequence[Conversation],
     return result
 
 
-def _viterbi(emissions: FloatArray, transitions: FloatArray) -> npt.NDArray[np.intp]:
-    n, size = emissions.shape
-    best = emissions[0]
-    pointers = np.empty((n, size), dtype=np.intp)
-    columns = np.arange(size)
-    for t in range(1, n):
-        scores = best[:, None] + transitions
-        pointer = scores.argmax(axis=0)
-        pointers[t] = pointer
-        best = scores[pointer, columns] + emissions[t]
-    path = np.empty(n, dtype=np.intp)
-    path[-1] = int(best.argmax())
-    for t in range(n - 1, 0, -1):
-        path[t - 1] = pointers[t, path[t]]
-    return path
-
-
 @dataclass(frozen=True, slots=True, kw_only=True)
 class BiasResult:
     """Held-out reparandum scores (fragments left out, counts pooled over folds) of one bias."""
@@ -389,7 +373,7 @@ def sweep_tag_bias(
             vector = np.array([bias.get(t, 0.0) for t in model.tags])
             reparandum = np.array([lab == DisfluencyLabel.REPARANDUM for lab in model.tag_label])
             for channel in channels:
-                path = _viterbi(channel.emissions + vector, model.transitions)
+                path, _ = decode_lattice(channel.emissions + vector, model.exp_transitions)
                 predicted = reparandum[path][channel.counted]
                 gold = channel.reparandum[channel.counted]
                 counts.tp += int((predicted & gold).sum())

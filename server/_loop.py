@@ -1,10 +1,11 @@
 """Which event loop the server runs on.
 
 The service spends most of its CPU moving one small message in and one out per word. uvloop's
-loop does the same work with about a fifth less CPU than the standard loop (measured with a
-bare gRPC echo stream at 200 conversations x 3 messages/s on one core: 245 vs 303 us of server
-CPU per message), so the server runs on it where it is installed (not on Windows, where the
-standard loop remains).
+loop did the same work with about a fifth less CPU than the standard loop in a one-off
+measurement while this was written (a bare gRPC echo stream, 200 streams x 3 messages/s, server
+on one core: 245 vs 303 us of server CPU per message; that script was not kept, so treat the
+figure as indicative), so the server runs on it where it is installed (not on Windows, where
+the standard loop remains).
 """
 
 from __future__ import annotations
