@@ -68,6 +68,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                        help="constant added to a disfluency tag's score at decoding, stored in "
                             "the model (e.g. rp.ip=0.3; tags: " + ", ".join(sorted(TAG_LABEL))
                             + ")")
+    words.add_argument("--no-word-classes", action="store_true",
+                       help="leave out the closed-class substitution features")
     words.add_argument("--tune-bias", action="store_true",
                        help="choose the reparandum/repair tag bias by cross-validation "
                             "(--cv-folds, --cv-subset, --seed) before training")
@@ -104,6 +106,8 @@ def _command_line(args: argparse.Namespace) -> str:
                          ("--restart-span", args.restart_span)):
         parts += [flag, *(str(v) for v in values)]
     parts += ["--max-iterations", str(args.max_iterations)]
+    if args.no_word_classes:
+        parts += ["--no-word-classes"]
     if args.tag_bias is not None:
         parts += ["--tag-bias", args.tag_bias]
     if args.tune_bias:
@@ -181,7 +185,8 @@ def run_words(args: argparse.Namespace) -> int:
     base = WordTrainingConfig(c1=args.c1[0], c2=args.c2[0], min_freq=args.min_freq[0],
                               max_iterations=args.max_iterations,
                               restart_span=args.restart_span[0],
-                              tag_bias=tag_bias)
+                              tag_bias=tag_bias,
+                              word_classes=not args.no_word_classes)
     grid = [{"c1": c1, "c2": c2, "min_freq": m, "restart_span": r}
             for c1, c2, m, r in itertools.product(args.c1, args.c2, args.min_freq,
                                                   args.restart_span)]

@@ -30,6 +30,8 @@ _PAUSE_EDGES: Final = (0.1, 0.3, 0.5, 1.0, 1.5)
 #: Pause (seconds) that counts as a gap for the position feature (common practice, no source).
 GAP_SECONDS: Final = 0.5
 _CONFIDENCE_EDGES: Final = (0.3, 0.5, 0.7, 0.9)
+#: How far back the same-class feature looks for the word a repair substitutes.
+_CLASS_REACH: Final = 3
 
 
 @dataclass(frozen=True, slots=True)
@@ -71,6 +73,10 @@ class FeatureConfig:
     ``restart_span`` (0: off) how far back the phrase-restart features look for the word that
     follows an interruption point. Requires ``restart_span <= left``.
 
+    ``word_classes`` maps closed-class words to a group letter (see
+    :mod:`~midstream.models._wordclasses`); empty turns the word-class features off (models
+    trained before they existed).
+
     ``tag_bias`` maps internal CRF tags to a constant added to their state score at decoding
     (not a feature: it shifts the decision threshold between tags after training, chosen by
     cross-validation on the training split; empty means the trained weights alone decide).
@@ -81,6 +87,7 @@ class FeatureConfig:
     lexicon: Mapping[str, str] = field(default_factory=dict, repr=False)
     restart_span: int = 0
     tag_bias: Mapping[str, float] = field(default_factory=dict)
+    word_classes: Mapping[str, str] = field(default_factory=dict, repr=False)
 
     def __post_init__(self) -> None:
         if self.right < 0 or self.left < self.right + 1:
@@ -94,6 +101,8 @@ class FeatureConfig:
                                  "restart_span": self.restart_span}
         if self.tag_bias:
             data["tag_bias"] = dict(self.tag_bias)
+        if self.word_classes:
+            data["word_classes"] = dict(self.word_classes)
         return data
 
     @classmethod
@@ -105,6 +114,9 @@ class FeatureConfig:
             # Absent in models trained before the phrase-restart features existed.
             restart_span=int(data.get("restart_span", 0)),
             tag_bias={str(k): float(v) for k, v in dict(data.get("tag_bias", {})).items()},
+            # Absent in models trained before the word-class features existed.
+            word_classes={str(k): str(v)
+                          for k, v in dict(data.get("word_classes", {})).items()},
         )
 
 
@@ -180,6 +192,21 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
                 out.append(f"lm{b}")
                 if i - b - 1 >= 0 and i >= 1 and tokens[i - b - 1].text == tokens[i - 1].text:
                     out.append(f"lbm{b}")
+        classes = config.word_classes
+        if classes:
+            c0 = classes.get(t0.text, "-")
+            cm1 = classes.get(wm1, "-") if i >= 1 else "<s>"
+            cm2 = classes.get(wm2, "-") if i >= 2 else "<s>"
+            out += ["c=" + c0, "c-1c=" + cm1 + "|" + c0, "c-2c-1c=" + cm2 + "|" + cm1 + "|" + c0]
+            # A different word of the same closed class shortly before: a substitution's repair.
+            if c0 != "-" and not t0.fragment:
+                for b in range(1, _CLASS_REACH + 1):
+                    if i - b < 0:
+                        break
+                    tb = tokens[i - b].text
+                    if tb != t0.text and classes.get(tb) == c0:
+                        out.append(f"cb{b}=" + c0)
+                        break
         return out
 
     tk = tokens[i + k]
@@ -272,6 +299,25 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
                 if (tokens[i - a].text == first and tokens[i - a + 2].text == textk
                         and tokens[i - a + 1].text != back):
                     out.append(f"sb{a}_{k}")
+    classes = config.word_classes
+    if classes:
+        # A different word of the same closed class follows: "a- the", "he uh she", "is- was".
+        c0 = classes.get(text0, "-")
+        ck = classes.get(textk, "-")
+        if c0 != "-" and ck == c0 and textk != text0 and not t0.fragment:
+            out.append(f"cs{k}=" + c0)
+            if k >= 2 and only_fe:
+                out.append("csi=" + c0)
+        if k == 1:
+            out.append("cc+1=" + c0 + "|" + ck)
+        elif k >= 3:
+            # The class pattern of words i, i+1 comes again at i+k-1, i+k but the words differ.
+            d = k - 1
+            c1 = classes.get(between[0], "-")
+            cd = classes.get(between[-1], "-")
+            if ((c0 != "-" or c1 != "-") and cd == c0 and ck == c1
+                    and (between[-1] != text0 or textk != between[0])):
+                out.append(f"cp{d}")
     # A broken-off word that the speaker then says in full.
     if t0.fragment and len(text0) > 1 and textk.startswith(text0.rstrip("-")):
         out.append(f"fpre{k}")

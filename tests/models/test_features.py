@@ -5,13 +5,15 @@ from __future__ import annotations
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from midstream.models._features import FeatureConfig, Token, feature_piece, features_at
+from midstream.models._wordclasses import CLOSED_CLASSES
 
 CONFIG = FeatureConfig(lexicon={"uh": "F", "um": "F", "mean": "E", "well": "D"},
-                       restart_span=5)
+                       restart_span=5, word_classes=dict(CLOSED_CLASSES))
 
 _token = st.builds(
     Token,
-    text=st.sampled_from(["i", "the", "uh", "think", "a", "mean", "well", "s-", "go"]),
+    text=st.sampled_from(["i", "the", "uh", "think", "a", "mean", "well", "s-", "go", "she",
+                          "is", "was"]),
     fragment=st.booleans(),
     start=st.none() | st.floats(0, 100),
     end=st.none() | st.floats(0, 100),
@@ -129,3 +131,29 @@ def test_far_interregnum_and_fragment_cues() -> None:
     features = features_at(tokens, 0, CONFIG)
     assert "lx+3=F" in features
     assert "frag+4" in features
+
+
+def test_a_same_class_word_after_the_word_marks_a_substitution() -> None:
+    # "a- the": no word is copied, but a determiner follows a determiner (Shriberg's
+    # reparandum/repair structure with a substituted word; classes: plain English grammar).
+    tokens = _tokens("i want a the blue one")
+    a = features_at(tokens, 2, CONFIG)
+    assert "cs1=D" in a
+    assert "cb1=D" in features_at(tokens, 3, CONFIG)  # the repair side sees it too
+    # After an interregnum as well, and the class pattern of a two-word stretch recurring.
+    assert "csi=P" in features_at(_tokens("he uh she left"), 0, CONFIG)
+    assert "cp2" in features_at(_tokens("he is she was here"), 0, CONFIG)
+    # The same word again is a copy, not a substitution; open-class words have no class.
+    assert not any(f.startswith("cs") for f in features_at(_tokens("a a blue"), 0, CONFIG))
+    assert not any(f.startswith("cs") for f in features_at(_tokens("blue green"), 0, CONFIG))
+
+
+def test_word_classes_are_off_for_models_trained_without_them() -> None:
+    # A model file written before the word-class features existed has no table: its features
+    # must stay exactly what it was trained on.
+    old = FeatureConfig.from_json({"right": 5, "left": 8, "lexicon": {}})
+    assert old.word_classes == {}
+    tokens = _tokens("i want a the blue one")
+    assert not any(f.startswith(("c=", "c-1c", "cs", "cb", "cc+", "cp"))
+                   for i in range(len(tokens)) for f in features_at(tokens, i, old))
+    assert FeatureConfig.from_json(CONFIG.to_json()).word_classes == CONFIG.word_classes
