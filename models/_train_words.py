@@ -31,6 +31,7 @@ from midstream.models._crf import TrainingPairs, train_crf_from
 from midstream.models._eval_words import BinaryCounts, offline_scores
 from midstream.models._features import FeatureConfig, features_at, tokens_from_words
 from midstream.models._lattice import decode_lattice
+from midstream.models._wordclasses import CLOSED_CLASSES
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import (
     END_SUFFIX,
@@ -75,7 +76,8 @@ class WordTrainingConfig:
 
     ``c1``/``c2``: L1/L2 regularisation; ``min_freq``: attributes seen fewer times are dropped;
     ``chunk_length``: longest training sequence (words); ``right``/``left``/``restart_span``:
-    feature context (see :class:`~midstream.models._features.FeatureConfig`).
+    feature context (see :class:`~midstream.models._features.FeatureConfig`);
+    ``word_classes``: use the closed-class substitution features.
     """
 
     c1: float = 0.1
@@ -87,6 +89,7 @@ class WordTrainingConfig:
     left: int = 8
     restart_span: int = 5
     tag_bias: tuple[tuple[str, float], ...] = ()
+    word_classes: bool = True
 
 
 def annotated_channels(conversations: Iterable[Conversation]) -> Iterator[ChannelSequence]:
@@ -166,7 +169,8 @@ def train_word_artifact(
         raise InputError("no disfluency-annotated conversations to train the word model on")
     features = FeatureConfig(right=config.right, left=config.left,
                              lexicon=build_lexicon(annotated),
-                             restart_span=config.restart_span)
+                             restart_span=config.restart_span,
+                             word_classes=dict(CLOSED_CLASSES) if config.word_classes else {})
     started = time.monotonic()
     crf = train_crf_from(
         _pairs_factory(annotated, features, config.chunk_length),
@@ -204,6 +208,7 @@ def train_word_artifact(
             "chunk_length": config.chunk_length,
             "restart_span": config.restart_span,
             "tag_bias": dict(config.tag_bias),
+            "word_classes": config.word_classes,
         },
         metadata={"training_data": summary, **(metadata or {})},
     )
@@ -288,7 +293,7 @@ BoolArray = npt.NDArray[np.bool_]
 #: point's threshold, the others follow it a little (grid: common practice, no source).
 BIAS_CANDIDATES: tuple[dict[str, float], ...] = tuple(
     {"rp": rp, "rp.ip": ip}
-    for rp in (-0.3, -0.2, -0.1, 0.0, 0.1) for ip in (0.0, 0.2, 0.4, 0.6, 0.8, 1.0)
+    for rp in (-0.5, -0.4, -0.3, -0.2, -0.1, 0.0, 0.1) for ip in (0.0, 0.2, 0.4, 0.6, 0.8, 1.0)
 )
 
 
