@@ -34,6 +34,7 @@ from midstream._types import (
 )
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
+from midstream.models._lattice import chain_end_step, exp_into
 
 #: Feature-dictionary type the CRF adapter takes: attribute name to value.
 Features = dict[str, float]
@@ -498,20 +499,32 @@ def _coarse_of(scheme: str, label: str) -> UtteranceFunction:
     return coarse_function("swbd42", label)
 
 
-def _exp_like_c() -> Callable[[FloatArray], FloatArray]:
+def _exp_like_c() -> tuple[Callable[[FloatArray], FloatArray], bool]:
     """An elementwise exp with the C library's results, as crfsuite's arithmetic needs.
 
     numpy's float64 exp is the C library's except on CPUs where numpy brings a vectorised one
-    of its own; a probe tells, and then every value goes through :func:`math.exp` (a few
-    microseconds more per call).
+    of its own; the compiled kernels call the C library's unless numba was given a vector
+    library of its own. A probe tells: the second value says whether the compiled kernels'
+    exp passed it (they are used only then), and the first is numpy's exp if that passed, else
+    the compiled one, else :func:`math.exp` value by value (a few microseconds more per call).
     """
     probe = np.linspace(-60.0, 60.0, 4099)
-    if np.exp(probe).tolist() == [math.exp(x) for x in probe.tolist()]:
-        return np.exp
+    expected = [math.exp(x) for x in probe.tolist()]
+    compiled = np.empty_like(probe)
+    exp_into(probe, compiled)
+    compiled_like_c = compiled.tolist() == expected
+    if np.exp(probe).tolist() == expected:
+        return np.exp, compiled_like_c
+    if compiled_like_c:
+        def exp_compiled(values: FloatArray) -> FloatArray:
+            out = np.empty_like(values)
+            exp_into(values, out)
+            return out
+        return exp_compiled, True
 
     def exp_each(values: FloatArray) -> FloatArray:
         return np.array([math.exp(x) for x in values.tolist()])
-    return exp_each
+    return exp_each, False
 
 
 class FunctionTagger:
@@ -524,7 +537,10 @@ class FunctionTagger:
     vector at the last position is its scale factor, which the marginal divides out again). The
     tagger reads the CRF's weights once and repeats crfsuite's own arithmetic step for step (the
     same operations in the same order, the C library's ``exp``), so labels and marginals are
-    crfsuite's to the last bit. What does not change from word to word is cached, each cache a
+    crfsuite's to the last bit. The per-word step (state scores, the last position's recursions,
+    marginals and coarse sums) runs as one compiled kernel where its ``exp`` passes a probe
+    against the C library's (else in numpy, the same arithmetic). What does not change from
+    word to word is cached, each cache a
     bounded LRU: the recursions over a window of final context utterances (keyed by the views'
     ids, each entry holding its views so the ids stay theirs, and behind that by the views'
     values; :data:`WINDOW_CACHE_SIZE` windows each), the context utterances' state scores
@@ -570,12 +586,20 @@ class FunctionTagger:
             [[math.exp(w) for w in row] for row in weights.transitions.tolist()]).reshape(
             weights.transitions.shape)
         self._functions = tuple(UtteranceFunction)
+        self._label_names: tuple[str, ...] = tuple(crf.labels)
         # Label index -> coarse function index (enum order), for summing marginals by group;
         # a function no label maps to can never be chosen.
         self._group_of = np.array([self._functions.index(self._coarse[label])
                                    for label in crf.labels], dtype=np.intp)
         self._groups = sorted(set(self._group_of.tolist()))
-        self._exp = _exp_like_c()
+        self._exp, self._compiled = _exp_like_c()
+        # The compiled last step's fixed inputs, and the width of its work rows (the group
+        # sums share them, and there may be more functions than labels).
+        self._group_of_rows = self._group_of.astype(np.int64)
+        self._group_list: list[int] = self._group_of.tolist()
+        self._group_rows = np.array(self._groups, dtype=np.int64)
+        self._work_width = max(len(crf.labels), self._groups[-1] + 1)
+        self._no_carry: FloatArray = np.empty(0)
         self._opening = self._rows({"prev=none": 1.0})
         self._shapes: dict[tuple[int, int, bool], tuple[int, ...]] = {}
         self._carries: _Lru[tuple[UtteranceView, ...], _Carry] = _Lru(WINDOW_CACHE_SIZE)
@@ -666,22 +690,17 @@ class FunctionTagger:
         return FunctionGuess(label=label, confidence=confidence, function=function,
                              function_confidence=sums.get(function, 0.0))
 
-    def _guess_at(self, k: int, probs: FloatArray) -> FunctionGuess:
-        """:meth:`_guess` for label index ``k`` and the marginals of all labels in model order."""
-        label = self._crf.labels[k]
-        confidence = float(probs[k])
-        if self._scheme == "coarse":
-            return FunctionGuess(label=label, confidence=confidence,
-                                 function=self._coarse[label], function_confidence=confidence)
+    def _group_at(self, k: int, probs: FloatArray) -> tuple[int, float]:
+        """The coarse function (enum index) and its confidence, for label ``k`` and marginals
+        ``probs`` of a fine model, as :meth:`_guess` chooses them."""
         # bincount adds in label order from 0.0, as _guess does.
         sums: list[float] = np.bincount(self._group_of, weights=probs).tolist()
         if self._coarse_from == "label":
-            group = int(self._group_of[k])
+            group = self._group_list[k]
         else:
             # max keeps the first of equal sums: ties go to the earlier function in enum order.
             group = max(self._groups, key=sums.__getitem__)
-        return FunctionGuess(label=label, confidence=confidence, function=self._functions[group],
-                             function_confidence=sums[group])
+        return group, sums[group]
 
     # --- crfsuite's arithmetic, step for step ---------------------------------------------
     #
@@ -909,6 +928,22 @@ class FunctionTagger:
         OverflowError
             crfsuite's exp overflows on these views' scores.
         """
+        k, _, _, _, probs = self._last_step(context, current)
+        return k, probs
+
+    def _last_step(self, context: Sequence[UtteranceView], current: UtteranceView
+                   ) -> tuple[int, float, int, float, FloatArray]:
+        """The last position's Viterbi label, its marginal, the coarse function :meth:`_guess`
+        would choose (enum index; fine models only, else meaningless) with its confidence, and
+        every label's marginal.
+
+        Raises
+        ------
+        InputError
+            A view is malformed.
+        OverflowError
+            crfsuite's exp overflows on these views' scores.
+        """
         window = tuple(context[-self._context:]) if self._context else ()
         check_view(current)
         words = current.words
@@ -923,19 +958,49 @@ class FunctionTagger:
                     rows += self._pair_rows(previous, words)
             else:
                 rows += carry.same
-            scores = self._state_scores(rows)
-            exps = self._exp(scores)
-            forward = carry.forward * exps
-            viterbi = carry.best + scores
+            carry_forward, carry_best = carry.forward, carry.best
         else:
             previous = None
-            scores = self._state_scores(rows + self._opening)
-            exps = forward = self._exp(scores)
-            viterbi = scores
-        scale = self._scale(forward)
+            rows += self._opening
+            carry_forward = carry_best = self._no_carry
+        if not self._compiled:
+            return self._last_step_numpy(rows, carry_forward, carry_best, previous, current)
+        size = len(self._label_names)
+        out = np.empty((4, self._work_width))
+        k, confidence, group, group_confidence = chain_end_step(
+            self._state, np.array(rows, dtype=np.int64), carry_forward=carry_forward,
+            carry_best=carry_best, group_of=self._group_of_rows, groups=self._group_rows,
+            sums=out[3], out=out)
+        if k < 0:
+            raise OverflowError("forward vector overflowed")
         if current.complete:
             # A finished utterance is about to become context (the engine passes the very view
             # it labelled last): its state scores after this predecessor are then at hand.
+            scores = out[0, :size]
+            exps = out[1, :size]
+            scores.flags.writeable = False
+            exps.flags.writeable = False
+            self._states.put((id(previous), id(current)), (previous, current, scores, exps))
+        if self._coarse_from == "label":
+            group = self._group_list[k]
+            group_confidence = float(out[3, group])
+        return k, confidence, group, group_confidence, out[2, :size]
+
+    def _last_step_numpy(self, rows: tuple[int, ...], carry_forward: FloatArray,
+                         carry_best: FloatArray, previous: UtteranceView | None,
+                         current: UtteranceView) -> tuple[int, float, int, float, FloatArray]:
+        """:meth:`_last_step`'s arithmetic in numpy, where the compiled exp is not the C
+        library's."""
+        scores = self._state_scores(rows)
+        exps = self._exp(scores)
+        if len(carry_forward):
+            forward = carry_forward * exps
+            viterbi = carry_best + scores
+        else:
+            forward = exps
+            viterbi = scores
+        scale = self._scale(forward)
+        if current.complete:
             scores.flags.writeable = False
             exps.flags.writeable = False
             self._states.put((id(previous), id(current)), (previous, current, scores, exps))
@@ -945,7 +1010,9 @@ class FunctionTagger:
         probs: FloatArray = forward * scale
         probs *= scale
         probs /= scale
-        return int(viterbi.argmax()), probs
+        k = int(viterbi.argmax())
+        group, group_confidence = self._group_at(k, probs)
+        return k, float(probs[k]), group, group_confidence, probs
 
     def label_partial(self, context: Sequence[UtteranceView],
                       current: UtteranceView) -> FunctionGuess:
@@ -969,10 +1036,15 @@ class FunctionTagger:
             An argument is not a well-formed :class:`UtteranceView`.
         """
         try:
-            k, probs = self._decode_partial(context, current)
+            k, confidence, group, group_confidence, _ = self._last_step(context, current)
         except OverflowError:
             return self._guess(*self._label_partial_crfsuite(context, current))
-        return self._guess_at(k, probs)
+        label = self._label_names[k]
+        if self._scheme == "coarse":
+            return FunctionGuess(label=label, confidence=confidence,
+                                 function=self._coarse[label], function_confidence=confidence)
+        return FunctionGuess(label=label, confidence=confidence, function=self._functions[group],
+                             function_confidence=group_confidence)
 
     def _label_partial_crfsuite(self, context: Sequence[UtteranceView],
                                 current: UtteranceView) -> tuple[str, dict[str, float]]:

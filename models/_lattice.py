@@ -7,6 +7,10 @@ arrays, which made the lattice the largest part of the per-word cost. Compiled l
 same arithmetic in a few microseconds. Work is done in probability space, normalised at every
 position, so lattices of any length neither overflow nor underflow.
 
+:func:`chain_end_step` is the utterance-function tagger's per-word step (state scores, forward
+and Viterbi at the last position of a chain, marginals): crfsuite's operations in crfsuite's
+order, so its results are crfsuite's bits, where numpy's calls cost several times as much.
+
 This is the one module that uses numba. Kernels are compiled on first use and cached on disk
 beside this file (``cache=True``); :func:`warm_up` does that ahead of time so the first live
 word does not pay for it.
@@ -14,13 +18,22 @@ word does not pay for it.
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numba
 import numpy as np
 import numpy.typing as npt
 
-__all__ = ["WindowResult", "accumulate_rows", "decode_lattice", "decode_window", "warm_up"]
+__all__ = [
+    "WindowResult",
+    "accumulate_rows",
+    "chain_end_step",
+    "decode_lattice",
+    "decode_window",
+    "exp_into",
+    "warm_up",
+]
 
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
@@ -169,6 +182,69 @@ def _accumulate(scores: Any, state: Any, rows: Any, targets: Any) -> None:  # pr
             scores[target, j] += state[row, j]
 
 
+# crfsuite's arithmetic at the last position of a chain, for the utterance-function tagger. Every
+# operation is crfsuite's, in its order: state scores summed attribute row by attribute row,
+# the C library's exp (numba calls it; no fast-math, so nothing is reassociated or fused),
+# vector sums left to right, scaling by multiplying with 1 / sum. The caller checks once that
+# this exp gives the C library's bits (:func:`exp_into`), so the results are crfsuite's.
+@_jit
+def _chain_end_step(  # noqa: PLR0917
+    state: Any, rows: Any, carry_forward: Any, carry_best: Any, group_of: Any,
+        groups: Any, sums: Any, out: Any) -> Any:  # pragma: no cover
+    size = state.shape[1]
+    scores = out[0]
+    exps = out[1]
+    probs = out[2]
+    if rows.shape[0] == 0:
+        for j in range(size):
+            scores[j] = 0.0
+    else:
+        row = rows[0]
+        for j in range(size):
+            scores[j] = state[row, j]
+        for k in range(1, rows.shape[0]):
+            row = rows[k]
+            for j in range(size):
+                scores[j] += state[row, j]
+    for j in range(size):
+        exps[j] = math.exp(scores[j])
+    chained = carry_forward.shape[0] == size
+    # probs holds the unscaled forward vector until the scale is known.
+    for j in range(size):
+        probs[j] = carry_forward[j] * exps[j] if chained else exps[j]
+    total = probs[0]
+    for j in range(1, size):
+        total += probs[j]
+    if not total < math.inf:
+        return -1, 0.0, -1, 0.0
+    scale = 1.0 / total if total != 0.0 else 1.0
+    best = 0
+    top = carry_best[0] + scores[0] if chained else scores[0]
+    for j in range(size):
+        p = probs[j] * scale
+        p *= scale
+        probs[j] = p / scale
+        value = carry_best[j] + scores[j] if chained else scores[j]
+        if value > top:
+            top = value
+            best = j
+    for g in range(sums.shape[0]):
+        sums[g] = 0.0
+    for j in range(size):
+        sums[group_of[j]] += probs[j]
+    group = groups[0]
+    for g in groups:
+        if sums[g] > sums[group]:
+            group = g
+    return best, probs[best], group, sums[group]
+
+
+@_jit
+def _exp_into(values: Any, out: Any) -> None:  # pragma: no cover
+    for j in range(values.shape[0]):
+        out[j] = math.exp(values[j])
+
+
 def decode_lattice(
     emissions: FloatArray,
     exp_transitions: FloatArray,
@@ -251,6 +327,52 @@ def accumulate_rows(scores: FloatArray, state: FloatArray, rows: IntArray,
     _accumulate(scores, state, rows, targets)
 
 
+def chain_end_step(
+    state: FloatArray,
+    rows: IntArray,
+    *,
+    carry_forward: FloatArray,
+    carry_best: FloatArray,
+    group_of: IntArray,
+    groups: IntArray,
+    sums: FloatArray,
+    out: FloatArray,
+) -> tuple[int, float, int, float]:
+    """crfsuite's forward and Viterbi step at the last position of a chain, and its marginals.
+
+    Parameters
+    ----------
+    state
+        ``(A, L)`` state weights, one row per attribute.
+    rows
+        The rows of the position's attributes, in the order crfsuite sums them (may be empty).
+    carry_forward, carry_best
+        ``sum_i alpha[i] * exp(T[i, j])`` and ``max_i viterbi[i] + T[i, j]`` from the
+        positions before (``(L,)`` each), or both empty when the position opens the chain.
+    group_of, groups, sums
+        ``group_of[j]`` is the group of label ``j``; ``groups`` the groups that occur, in
+        ascending order; ``sums`` (at least ``max(groups) + 1`` long) receives each group's
+        summed marginals, added in label order from 0.0.
+    out
+        ``(3, L)``; receives the state scores, their exps and the marginals, in that order.
+
+    Returns
+    -------
+    label, confidence, group, group_confidence
+        The Viterbi label (the first of equal scores) and its marginal, and the group with the
+        largest summed marginal (the first of equal sums) and that sum. ``label`` is -1 when a
+        vector sum is not finite (an exp overflowed): crfsuite's own arithmetic would overflow.
+    """
+    result: tuple[int, float, int, float] = _chain_end_step(
+        state, rows, carry_forward, carry_best, group_of, groups, sums, out)
+    return result
+
+
+def exp_into(values: FloatArray, out: FloatArray) -> None:
+    """``out[j] = exp(values[j])`` with the exp :func:`chain_end_step` uses (C library's)."""
+    _exp_into(values, out)
+
+
 def warm_up() -> None:
     """Compile (or load from the disk cache) every kernel now rather than on the first word."""
     scores = np.zeros((2, 2))
@@ -260,3 +382,14 @@ def warm_up() -> None:
                   tag_group=np.zeros(2, dtype=np.int64), tag_end=np.ones(2, dtype=np.bool_))
     accumulate_rows(scores, transitions, np.zeros(1, dtype=np.int64),
                     np.zeros(1, dtype=np.int64))
+    ints = np.zeros(1, dtype=np.int64)
+    # Carried vectors come from a cache as read-only arrays, a type of their own to numba;
+    # a chain's first position passes a writable empty one.
+    carried = np.ones(2)
+    carried.flags.writeable = False
+    for carry in (np.zeros(0), carried):
+        out = np.zeros((4, 2))
+        chain_end_step(transitions, ints, carry_forward=carry, carry_best=carry,
+                       group_of=np.zeros(2, dtype=np.int64), groups=ints, sums=out[3],
+                       out=out)
+    exp_into(np.zeros(2), np.zeros(2))

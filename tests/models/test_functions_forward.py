@@ -280,3 +280,40 @@ def test_an_overflowing_exp_hands_the_call_to_crfsuite(
 
     monkeypatch.setattr(tagger, "_exp", overflow)
     assert tagger.label_partial(views[:3], views[3]) == expected
+
+
+def test_an_overflow_in_the_compiled_step_hands_the_call_to_crfsuite(
+        tiny_fine: ModelArtifact) -> None:
+    # Weights far past exp's range in the tagger's own copy only (crfsuite keeps the trained
+    # ones): the compiled step must notice the overflow and hand the call over.
+    tagger = FunctionTagger.from_artifact(tiny_fine)
+    views = conversation_views(invented_conversation(69))
+    expected = tagger.label_partial(views[:3], views[3])
+    tagger._state = tagger._state * 1e4
+    with pytest.raises(OverflowError):
+        tagger._decode_partial(views[:3], views[3])
+    assert tagger.label_partial(views[:3], views[3]) == expected
+
+
+# --- the compiled step against the numpy one ---------------------------------------------------
+
+
+def test_compiled_and_numpy_steps_give_the_same_bits(
+        shipped: ModelArtifact, tiny_fine: ModelArtifact, tiny_coarse: ModelArtifact) -> None:
+    # The compiled last step serves where its exp passed the probe against the C library's,
+    # the numpy step elsewhere; both repeat crfsuite's arithmetic, so they agree to the bit.
+    views = conversation_views(invented_conversation(71))
+    for artifact, coarse_from in ((shipped, "sum"), (tiny_fine, "sum"), (tiny_fine, "label"),
+                                  (tiny_coarse, "sum")):
+        compiled = FunctionTagger.from_artifact(artifact, coarse_from=coarse_from)
+        if not compiled._compiled:
+            pytest.skip("the compiled exp is not the C library's here: the numpy step serves")
+        stepwise = FunctionTagger.from_artifact(artifact, coarse_from=coarse_from)
+        stepwise._compiled = False
+        for context, current in streamed_calls(views, 4):
+            k, probs = compiled._decode_partial(context, current)
+            k_numpy, probs_numpy = stepwise._decode_partial(context, current)
+            assert k == k_numpy
+            assert probs.tobytes() == probs_numpy.tobytes()
+            assert compiled.label_partial(context, current) == stepwise.label_partial(
+                context, current)
