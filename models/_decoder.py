@@ -16,6 +16,7 @@ from one place. The :class:`~midstream.models._wordmodel.WordModel` under it may
 from __future__ import annotations
 
 from dataclasses import dataclass
+from itertools import repeat
 from typing import NamedTuple
 
 import numpy as np
@@ -106,6 +107,8 @@ class ChannelDecoder:
         self._model = model
         self._config = config
         self._right = model.config.right
+        self._reparandum_tags = frozenset(
+            k for k, b in enumerate(model.tag_base) if b in _REPARANDUM_TAGS)
         # Finalised words kept as feature context; one more as the lattice's fixed left end.
         self._keep = max(model.config.left, 1)
         self._entries: list[_Entry] = []
@@ -153,15 +156,20 @@ class ChannelDecoder:
         last = len(self._entries) - 1
         self._reserve(last + 1)
         self._scores[last] = 0.0
-        rows: list[int] = []
+        names: list[str] = []
         targets: list[int] = []
         model = self._model
+        config = model.config
+        entries = self._entries
+        tokens = self._tokens
         for k in range(min(self._right, last) + 1):
-            if not self._entries[last - k].final:
-                found = model.rows(feature_piece(self._tokens, last - k, k, model.config))
-                rows += found
-                targets += [last - k] * len(found)
-        if rows:
+            if not entries[last - k].final:
+                piece = feature_piece(tokens, last - k, k, config)
+                names += piece
+                targets += [last - k] * len(piece)
+        if names:
+            # One lookup for all pieces; unknown features (row -1) weigh nothing.
+            rows = list(map(model.attributes.get, names, repeat(-1)))
             accumulate_rows(self._scores, model.state, np.array(rows, dtype=np.int64),
                             np.array(targets, dtype=np.int64))
         return self._update(close=False)
@@ -301,8 +309,10 @@ class ChannelDecoder:
 
         ``None`` for restarts, other labels, and reparanda whose onset has not arrived yet.
         """
-        base = self._model.tag_base
         links: list[int | None] = [None] * len(window)
+        if self._reparandum_tags.isdisjoint(path):
+            return links  # the usual case: no reparandum in the window
+        base = self._model.tag_base
         target: int | None = None
         # Walk right to left, remembering the first word after the nearest interregnum.
         next_onset: int | None = None

@@ -294,9 +294,10 @@ class ConversationEngine:
         """Split the channel's open words at the currently hypothesised utterance ends."""
         groups: list[list[int]] = []
         current: list[int] = []
+        slots = channel.slots
         for key in channel.open_keys:
             current.append(key)
-            if channel.slots[key].ends_utterance:
+            if slots[key].ends_utterance:
                 groups.append(current)
                 current = []
         if current:
@@ -330,16 +331,17 @@ class ConversationEngine:
                     and old[position].published is not None and changed.isdisjoint(keys)):
                 new.append(old[position])
                 continue
+            # List comprehensions rather than generators: this runs on every word.
             slots = [channel.slots[k] for k in keys]
             ended = slots[-1].ends_utterance or close_all or len(keys) >= limit
-            final = (ended and all(s.final for s in slots)) or close_all
+            final = (ended and all([s.final for s in slots])) or close_all
             if position < len(old):
                 entry = old[position]
             else:
                 entry = _OpenUtterance(index=channel.next_index)
                 channel.next_index += 1
-            word_ids = tuple(s.word_id for s in slots)
-            clean = tuple(s.text for s in slots if s.label not in REMOVED_FROM_CLEAN_TEXT)
+            word_ids = tuple([s.word_id for s in slots])
+            clean = tuple([s.text for s in slots if s.label not in REMOVED_FROM_CLEAN_TEXT])
             view = UtteranceView(speaker=channel.speaker, words=clean,
                                  removed=len(slots) - len(clean), complete=ended)
             if entry.view != view or entry.word_ids != word_ids or (

@@ -177,6 +177,8 @@ def _accumulate(scores: Any, state: Any, rows: Any, targets: Any) -> None:  # pr
     size = scores.shape[1]
     for k in range(rows.shape[0]):
         row = rows[k]
+        if row < 0:
+            continue
         target = targets[k]
         for j in range(size):
             scores[target, j] += state[row, j]
@@ -323,7 +325,8 @@ def decode_window(
 
 def accumulate_rows(scores: FloatArray, state: FloatArray, rows: IntArray,
                     targets: IntArray) -> None:
-    """``scores[targets[k]] += state[rows[k]]`` for every ``k``, in place."""
+    """``scores[targets[k]] += state[rows[k]]`` for every ``k`` in order, in place; a negative
+    row (an unknown feature) adds nothing."""
     _accumulate(scores, state, rows, targets)
 
 
