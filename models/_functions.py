@@ -976,8 +976,9 @@ class FunctionTagger:
         if current.complete:
             # A finished utterance is about to become context (the engine passes the very view
             # it labelled last): its state scores after this predecessor are then at hand.
-            scores = out[0, :size]
-            exps = out[1, :size]
+            # Copies, so the cache holds two vectors rather than the whole work block.
+            scores = out[0, :size].copy()
+            exps = out[1, :size].copy()
             scores.flags.writeable = False
             exps.flags.writeable = False
             self._states.put((id(previous), id(current)), (previous, current, scores, exps))
