@@ -98,8 +98,11 @@ def invented_conversation(seed: int, *, annotated: bool = True,
     )
 
 
-#: Small, fast settings for test models (not the shipped model's).
-TINY = WordTrainingConfig(c1=0.05, c2=0.01, min_freq=1, max_iterations=60)
+#: Small, fast settings for test models (not the shipped model's). Eight invented conversations
+#: are too few to weigh the word-class features against the copy features (with them, "the kids
+#: the kids" came out a restart), so test models leave them out; the shipped-model tests and the
+#: feature tests cover them.
+TINY = WordTrainingConfig(c1=0.05, c2=0.01, min_freq=1, max_iterations=60, word_classes=False)
 
 
 @functools.cache
