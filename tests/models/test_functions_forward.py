@@ -272,14 +272,19 @@ def test_an_overflowing_exp_hands_the_call_to_crfsuite(
     # No trained model comes near exp's range (scores past 709); the fallback is wired so that
     # even then the answer is crfsuite's.
     tagger = FunctionTagger.from_artifact(tiny_fine)
+    tagger._compiled = False  # the numpy step, which calls _exp (the compiled one: next test)
     views = conversation_views(invented_conversation(69))
     expected = tagger.label_partial(views[:3], views[3])
+    calls = 0
 
     def overflow(values: object) -> object:
+        nonlocal calls
+        calls += 1
         raise OverflowError("math range error")
 
     monkeypatch.setattr(tagger, "_exp", overflow)
     assert tagger.label_partial(views[:3], views[3]) == expected
+    assert calls > 0  # the overflow did happen, so crfsuite's answer came from the fallback
 
 
 def test_an_overflow_in_the_compiled_step_hands_the_call_to_crfsuite(
