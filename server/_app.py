@@ -175,7 +175,7 @@ class MidstreamServer:
         grace = self.config.grace_s if grace is None else grace
         assert self._health is not None and self._servicer is not None
         await self._health.enter_graceful_shutdown()
-        self._servicer.stopping.set()
+        self._servicer.begin_stopping()
         live = self._servicer.registry.live_count
         self._servicer.registry.close_all(pb.END_REASON_SERVER_SHUTDOWN)
         _log.info("stopping: finished %d live conversations, grace %.1f s", live, grace)

@@ -111,15 +111,19 @@ class SpeakerTimeline:
     Memory is bounded by ``max_speakers_per_conversation`` entries. Not thread-safe.
     """
 
+    # One per live conversation: no per-instance __dict__.
+    __slots__ = ("_last_start", "_limits")
+
     def __init__(self, limits: ServerLimits) -> None:
         self._limits = limits
-        self._last_start: dict[str, float] = {}
-        self._speakers: dict[str, None] = {}
+        # Speaker -> start of their latest timed word (None until one has a time), in order of
+        # first appearance (assigning to a present key keeps its place).
+        self._last_start: dict[str, float | None] = {}
 
     @property
     def speakers(self) -> tuple[str, ...]:
         """Speakers in order of first appearance."""
-        return tuple(self._speakers)
+        return tuple(self._last_start)
 
     def check_speaker(self, speaker: str) -> None:
         """Check that ``speaker`` is known or may still join.
@@ -130,10 +134,10 @@ class SpeakerTimeline:
             When a new speaker would exceed ``max_speakers_per_conversation``.
         """
         limit = self._limits.max_speakers_per_conversation
-        if speaker not in self._speakers and len(self._speakers) >= limit:
+        if speaker not in self._last_start and len(self._last_start) >= limit:
             raise LimitExceededError(
                 "max_speakers_per_conversation", limit,
-                f"a new speaker would be number {len(self._speakers) + 1}; "
+                f"a new speaker would be number {len(self._last_start) + 1}; "
                 f"limit max_speakers_per_conversation is {limit}",
             )
 
@@ -157,6 +161,7 @@ class SpeakerTimeline:
 
     def record(self, word: Word) -> None:
         """Remember an accepted word (after the engine took it)."""
-        self._speakers.setdefault(word.speaker)
         if word.start is not None:
             self._last_start[word.speaker] = word.start
+        else:
+            self._last_start.setdefault(word.speaker, None)

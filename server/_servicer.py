@@ -77,10 +77,16 @@ class _EventReader:
     timer per stream re-arms itself only when it fires, and the stop signal cancels the pending
     read through a callback. :meth:`next` returns the event, ``grpc.aio.EOF``, ``_TIMEOUT``
     or ``_STOPPED``. Use as a context manager (or call :meth:`close`) to drop the timer.
+    ``stop`` is shared with other streams (a session's end, the server stopping): the reader
+    only adds and removes a callback, never cancels it.
     """
 
+    # One per open stream: no per-instance __dict__.
+    __slots__ = ("_context", "_idle_timeout_s", "_last_event", "_loop", "_pending", "_reason",
+                 "_stop", "_timer")
+
     def __init__(self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
-                 stop: asyncio.Future[object], idle_timeout_s: float) -> None:
+                 stop: asyncio.Future[None], idle_timeout_s: float) -> None:
         self._context = context
         self._stop = stop
         self._idle_timeout_s = idle_timeout_s
@@ -159,7 +165,28 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self._limits = limits
         self._metrics = metrics
         self.registry = SessionRegistry(limits, metrics)
-        self.stopping = asyncio.Event()
+        self._stopping = False
+        # One future for every stream waiting on a stop, made on first use (on the loop):
+        # a wait task per stream cost about a kilobyte each for the whole conversation.
+        self._stop_signal: asyncio.Future[None] | None = None
+
+    @property
+    def stopping(self) -> bool:
+        """Whether :meth:`begin_stopping` was called."""
+        return self._stopping
+
+    def begin_stopping(self) -> None:
+        """Refuse new conversations and interrupt streams that wait outside one; idempotent."""
+        self._stopping = True
+        if self._stop_signal is not None and not self._stop_signal.done():
+            self._stop_signal.set_result(None)
+
+    def _stopped(self) -> asyncio.Future[None]:
+        if self._stop_signal is None:
+            self._stop_signal = asyncio.get_running_loop().create_future()
+            if self._stopping:
+                self._stop_signal.set_result(None)
+        return self._stop_signal
 
     async def _fail(self, context: grpc.aio.ServicerContext[Any, Any],
                     error: MidstreamError) -> NoReturn:
@@ -198,41 +225,37 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     # --- Converse ------------------------------------------------------------------------
 
     def _reader(self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
-                stop: asyncio.Future[object]) -> _EventReader:
+                stop: asyncio.Future[None]) -> _EventReader:
         return _EventReader(context, stop, self._limits.idle_timeout_s)
 
     async def Converse(  # noqa: N802 - the generated servicer's name
         self, request_iterator: AsyncIterator[pb.ClientEvent],
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
-        stop_waiter: asyncio.Future[object] = asyncio.ensure_future(self.stopping.wait())
-        try:
-            with self._reader(context, stop_waiter) as reader:
-                first = await reader.next()
-            if not isinstance(first, pb.ClientEvent):
-                if first is _STOPPED:
-                    await self._fail(context, UnavailableError("the server is shutting down"))
-                if first is _TIMEOUT:
-                    await self._fail(context, ProtocolStateError(
-                        f"no 'open' event within idle_timeout_s "
-                        f"({self._limits.idle_timeout_s} s)"))
+        with self._reader(context, self._stopped()) as reader:
+            first = await reader.next()
+        if not isinstance(first, pb.ClientEvent):
+            if first is _STOPPED:
+                await self._fail(context, UnavailableError("the server is shutting down"))
+            if first is _TIMEOUT:
                 await self._fail(context, ProtocolStateError(
-                    "the stream ended before its first event, which must be 'open'"))
-            if first.WhichOneof("event") != "open":
-                await self._refuse_stream(context, ProtocolStateError(
-                    f"the first event must be 'open', not {first.WhichOneof('event')!r}"))
-            if self.stopping.is_set():
-                await self._refuse_stream(context, UnavailableError("the server is shutting down"))
-            try:
-                session = self.registry.open(first.open.conversation_id, self.bundle)
-            except MidstreamError as exc:
-                await self._refuse_stream(context, exc)
-            yield pb.ServerMessage(welcome=pb.Welcome(
-                conversation_id=session.id, next_seq=session.seq + 1))
-            async for message in self._converse(session, context):
-                yield message
-        finally:
-            stop_waiter.cancel()
+                    f"no 'open' event within idle_timeout_s "
+                    f"({self._limits.idle_timeout_s} s)"))
+            await self._fail(context, ProtocolStateError(
+                "the stream ended before its first event, which must be 'open'"))
+        if first.WhichOneof("event") != "open":
+            await self._refuse_stream(context, ProtocolStateError(
+                f"the first event must be 'open', not {first.WhichOneof('event')!r}"))
+        if self._stopping:
+            await self._refuse_stream(context, UnavailableError("the server is shutting down"))
+        try:
+            session = self.registry.open(first.open.conversation_id, self.bundle)
+        except MidstreamError as exc:
+            await self._refuse_stream(context, exc)
+        yield pb.ServerMessage(welcome=pb.Welcome(
+            conversation_id=session.id, next_seq=session.seq + 1))
+        async for message in self._converse(session, context):
+            yield message
 
     async def _converse(
         self, session: Session,
@@ -240,8 +263,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     ) -> AsyncIterator[pb.ServerMessage]:
         # A server stop finishes every session, so waiting on this session's end covers it.
         sent = 0  # the last sequence number the caller was given
-        ended_waiter: asyncio.Future[object] = asyncio.ensure_future(session.ended.wait())
-        reader = self._reader(context, ended_waiter)
+        reader = self._reader(context, session.ended_signal())
         try:
             while True:
                 event = await reader.next()
@@ -286,7 +308,6 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     return
         finally:
             reader.close()
-            ended_waiter.cancel()
             if session.live:
                 # Cancelled or the caller went away mid-stream: finalise for the followers.
                 self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
@@ -295,12 +316,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                                                                   pb.ServerMessage],
                            session: Session) -> None:
         """Wait for the caller's half-close; any further event is refused."""
-        stop_waiter: asyncio.Future[object] = asyncio.ensure_future(self.stopping.wait())
-        try:
-            with self._reader(context, stop_waiter) as reader:
-                event = await reader.next()
-        finally:
-            stop_waiter.cancel()
+        with self._reader(context, self._stopped()) as reader:
+            event = await reader.next()
         if isinstance(event, pb.ClientEvent):
             await self._refuse_stream(context, ProtocolStateError(
                 f"event {event.WhichOneof('event')!r} after 'close': conversation "

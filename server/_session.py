@@ -9,6 +9,12 @@ Memory is bounded per conversation by :class:`~midstream.server.ServerLimits`: t
 (``replay_updates`` updates), the revision history (``history_revisions`` states), the latest
 states for snapshots (``snapshot_states``) and each follower's queue (``follower_queue``).
 
+The replay buffer keeps the domain updates, whose word and utterance states are the same objects
+the revision history and the snapshot tables hold, and builds wire messages only when they are
+sent: a wire message costs about 1.5 KB of protobuf arena however small its content (measured
+with ``mallinfo2`` on protobuf 7.36 while this was written), which was the largest part of what
+an idle conversation kept.
+
 A follower whose queue fills is never waited for: its queue is dropped and, when it reads
 again, it gets a ``gap`` (``LAGGED``) and a snapshot of the state at that moment, then live
 updates. The ingesting caller is therefore never slowed by a follower.
@@ -51,6 +57,10 @@ def message_budget(limits: ServerLimits) -> int:
     return int(limits.max_message_bytes * 0.9)
 
 
+def _to_wire(update: HypothesisUpdate) -> pb.ServerMessage:
+    return pb.ServerMessage(update=cv.update_to_wire(update))
+
+
 def merge_diffs(diffs: Iterable[HypothesisDiff]) -> HypothesisDiff:
     """One diff with the latest state of everything the given diffs (in order) touched."""
     words: dict[str, WordHypothesis] = {}
@@ -73,6 +83,8 @@ def merge_diffs(diffs: Iterable[HypothesisDiff]) -> HypothesisDiff:
 
 class Follower:
     """One ``Follow`` stream's bounded queue; filled by the session, drained by the stream."""
+
+    __slots__ = ("_capacity", "_lagged_from", "_queue", "_session", "_wake")
 
     def __init__(self, session: Session, capacity: int) -> None:
         self._session = session
@@ -134,6 +146,13 @@ class Session:
     Not thread-safe: use it from the event loop thread only.
     """
 
+    # Thousands may be live at once: no per-instance __dict__.
+    __slots__ = (
+        "_ended", "_engine", "_followers", "_metrics", "_replay", "_revisions", "_shared_wire",
+        "_utterances", "_words", "closing_messages", "end_reason", "ended_at", "id", "limits",
+        "revisions_truncated", "seq", "started_at", "timeline", "word_count",
+    )
+
     def __init__(self, conversation_id: str, engine: Engine, limits: ServerLimits,
                  metrics: ServerMetrics) -> None:
         self.id = conversation_id
@@ -144,16 +163,21 @@ class Session:
         self.seq = 0
         self.end_reason: pb.EndReason | None = None
         self.ended_at: float | None = None
-        self.ended = asyncio.Event()
         self.closing_messages: tuple[pb.ServerMessage, ...] = ()
         self._engine: Engine | None = engine
         self._metrics = metrics
-        self._replay: deque[pb.ServerMessage] = deque(maxlen=limits.replay_updates)
+        # Made on first use (see ended_signal): most conversations never need one.
+        self._ended: asyncio.Future[None] | None = None
+        self._replay: deque[HypothesisUpdate] = deque(maxlen=limits.replay_updates)
+        # The wire form of the latest update when followers were sent it, so the caller is
+        # sent the same message rather than a second conversion; dropped once sent.
+        self._shared_wire: pb.ServerMessage | None = None
         self._words: OrderedDict[str, WordHypothesis] = OrderedDict()
         self._utterances: OrderedDict[str, UtteranceHypothesis] = OrderedDict()
         self._revisions: deque[tuple[int, float, State]] = deque(maxlen=limits.history_revisions)
         self.revisions_truncated = False
-        self._followers: set[Follower] = set()
+        # A dict rather than a set: an empty set costs over 200 bytes, an empty dict 64.
+        self._followers: dict[Follower, None] = {}
 
     # --- ingest ---------------------------------------------------------------------------
 
@@ -161,12 +185,25 @@ class Session:
     def live(self) -> bool:
         return self._engine is not None
 
+    def ended_signal(self) -> asyncio.Future[None]:
+        """A future that is done once the conversation has ended; one per session.
+
+        Waiters add a done callback (or await it) instead of each running a task; never cancel
+        it. Call from the event loop that serves the session.
+        """
+        if self._ended is None:
+            self._ended = asyncio.get_running_loop().create_future()
+            if not self.live:
+                self._ended.set_result(None)
+        return self._ended
+
     def _engine_or_error(self) -> Engine:
         if self._engine is None:
             raise EventError(f"conversation {self.id} has ended; no more events are taken")
         return self._engine
 
-    def add_words(self, words: list[tuple[str, Word]], received: float) -> pb.ServerMessage | None:
+    def add_words(self, words: list[tuple[str, Word]], received: float,
+                  ) -> HypothesisUpdate | None:
         """Give validated words to the engine; publish one update for the whole batch.
 
         On an engine error the words before the bad one stay applied and their update is
@@ -182,10 +219,11 @@ class Session:
                 self.word_count += 1
                 self._metrics.words.inc()
         finally:
-            message = self._publish(merge_diffs(diffs), received) if diffs else None
-        return message
+            update = self._publish(merge_diffs(diffs), received) if diffs else None
+        return update
 
-    def replace_word(self, word_id: str, word: Word, received: float) -> pb.ServerMessage | None:
+    def replace_word(self, word_id: str, word: Word, received: float,
+                     ) -> HypothesisUpdate | None:
         """The recogniser revised a word (same id, new text or times)."""
         engine = self._engine_or_error()
         self.timeline.check_speaker(word.speaker)
@@ -193,12 +231,13 @@ class Session:
         self.timeline.record(word)
         return self._publish(diff, received)
 
-    def withdraw_word(self, word_id: str, received: float) -> pb.ServerMessage | None:
+    def withdraw_word(self, word_id: str, received: float) -> HypothesisUpdate | None:
         """The recogniser withdrew a word."""
         diff = self._engine_or_error().withdraw_word(word_id)
         return self._publish(diff, received)
 
-    def hint(self, speaker: str, *, turn_end: bool, received: float) -> pb.ServerMessage | None:
+    def hint(self, speaker: str, *, turn_end: bool, received: float,
+             ) -> HypothesisUpdate | None:
         """An utterance or turn of ``speaker`` ended."""
         engine = self._engine_or_error()
         check_id(speaker, "hint.speaker", self.limits)
@@ -223,8 +262,10 @@ class Session:
                        type(exc).__name__)
             _log.debug("engine failure detail", exc_info=True)
             diff = HypothesisDiff()
-        final = self._publish(diff, None, final=True)
-        assert final is not None  # a final update is always published
+        final_update = self._publish(diff, None, final=True)
+        assert final_update is not None  # a final update is always published
+        final = self._wire(final_update)
+        self._shared_wire = None
         self.end_reason = reason
         self.ended_at = time.time()
         ended = pb.ServerMessage(ended=pb.Ended(reason=reason, last_seq=self.seq))
@@ -232,21 +273,21 @@ class Session:
             follower.push_end(ended)
         self._followers.clear()
         self.closing_messages = (final, ended)
-        self.ended.set()
+        if self._ended is not None and not self._ended.done():
+            self._ended.set_result(None)
         _log.info("conversation %s ended (%s) after %d words, %d updates",
                   self.id, pb.EndReason.Name(reason), self.word_count, self.seq)
         return self.closing_messages
 
     def _publish(self, diff: HypothesisDiff, received: float | None, *,
-                 final: bool = False) -> pb.ServerMessage | None:
+                 final: bool = False) -> HypothesisUpdate | None:
         if not diff and not final:
             return None
         self.seq += 1
         now = time.time()
         update = HypothesisUpdate(seq=self.seq, server_time=now, diff=diff,
                                   conversation_final=final)
-        message = pb.ServerMessage(update=cv.update_to_wire(update))
-        self._replay.append(message)
+        self._replay.append(update)
         revised = 0
         for word in diff.words:
             # A revision is a state whose revision count went up (not a word turning final).
@@ -261,13 +302,15 @@ class Session:
             self._remember(now, utterance)
         for word_id in diff.withdrawn_word_ids:
             self._words.pop(word_id, None)
-        for follower in self._followers:
-            follower.offer(message, self.seq)
+        if self._followers:
+            message = self._shared_wire = _to_wire(update)
+            for follower in self._followers:
+                follower.offer(message, self.seq)
         if revised:
             self._metrics.revisions.inc(revised)
         if received is not None:
             self._metrics.latency.observe(time.monotonic() - received)
-        return message
+        return update
 
     def _keep(self, table: OrderedDict[str, _S], key: str, state: _S) -> None:
         table[key] = state
@@ -284,17 +327,24 @@ class Session:
     @property
     def oldest_kept(self) -> int:
         """The oldest sequence number still in the replay buffer (``seq + 1`` when empty)."""
-        return self._replay[0].update.seq if self._replay else self.seq + 1
+        return self._replay[0].seq if self._replay else self.seq + 1
 
     def since(self, seq: int) -> list[pb.ServerMessage]:
-        """Updates in the replay buffer after ``seq``, oldest first."""
-        newer: list[pb.ServerMessage] = []
-        for message in reversed(self._replay):
-            if message.update.seq <= seq:
+        """Updates in the replay buffer after ``seq``, oldest first, as wire messages."""
+        newer: list[HypothesisUpdate] = []
+        for update in reversed(self._replay):
+            if update.seq <= seq:
                 break
-            newer.append(message)
-        newer.reverse()
-        return newer
+            newer.append(update)
+        messages = [self._wire(update) for update in reversed(newer)]
+        self._shared_wire = None
+        return messages
+
+    def _wire(self, update: HypothesisUpdate) -> pb.ServerMessage:
+        shared = self._shared_wire
+        if shared is not None and shared.update.seq == update.seq:
+            return shared
+        return _to_wire(update)
 
     def snapshot_message(self) -> pb.ServerMessage:
         """The whole kept state as of the current sequence number.
@@ -366,17 +416,17 @@ class Session:
             )))
             backlog.append(self.snapshot_message())
         else:
-            backlog.extend(m for m in self._replay if m.update.seq >= from_seq)
+            backlog.extend(self._wire(u) for u in self._replay if u.seq >= from_seq)
         if not self.live:
             backlog.append(self.closing_messages[-1])
             return backlog, None
         follower = Follower(self, self.limits.follower_queue)
-        self._followers.add(follower)
+        self._followers[follower] = None
         return backlog, follower
 
     def unfollow(self, follower: Follower) -> None:
         """Forget a follower whose stream ended; idempotent."""
-        self._followers.discard(follower)
+        self._followers.pop(follower, None)
 
     @property
     def follower_count(self) -> int:
