@@ -27,8 +27,8 @@ import logging
 import secrets
 import time
 from collections import OrderedDict, deque
-from collections.abc import AsyncIterator, Iterable
-from typing import TypeVar
+from collections.abc import AsyncIterator, Iterable, Iterator
+from typing import Generic, TypeVar
 
 from midstream._errors import EventError, LimitExceededError, NotFoundError
 from midstream._types import (
@@ -50,11 +50,61 @@ _log = logging.getLogger(__name__)
 
 State = WordHypothesis | UtteranceHypothesis
 _S = TypeVar("_S", WordHypothesis, UtteranceHypothesis)
+_T = TypeVar("_T")
 
 
 def message_budget(limits: ServerLimits) -> int:
     """Bytes a reply built from kept state may use: the message limit less room for framing."""
     return int(limits.max_message_bytes * 0.9)
+
+
+class _Recent(Generic[_T]):
+    """The newest ``capacity`` items appended, oldest first.
+
+    A ``deque(maxlen=...)`` allocates a 64-slot block (over 500 bytes) when made, and a session
+    has two; this list grows with its content instead. Evicted slots are cleared at once, and
+    the list is compacted when more than half of it is evicted slots, so it holds at most about
+    twice ``capacity`` slots and appending stays amortised O(1).
+    """
+
+    __slots__ = ("_head", "_items", "capacity")
+
+    def __init__(self, capacity: int) -> None:
+        self.capacity = capacity
+        self._items: list[_T | None] = []
+        self._head = 0  # index of the oldest kept item
+
+    def append(self, item: _T) -> None:
+        items = self._items
+        items.append(item)
+        if len(items) - self._head > self.capacity:
+            items[self._head] = None  # release the evicted item now
+            self._head += 1
+            if self._head * 2 > len(items):
+                del items[:self._head]
+                self._head = 0
+
+    def __len__(self) -> int:
+        return len(self._items) - self._head
+
+    def oldest(self) -> _T:
+        """The oldest kept item; raises ``IndexError`` when empty."""
+        if self._head >= len(self._items):
+            raise IndexError("no items")
+        return self._kept(self._head)
+
+    def _kept(self, index: int) -> _T:
+        item = self._items[index]
+        assert item is not None  # only evicted slots (before _head) hold None
+        return item
+
+    def __iter__(self) -> Iterator[_T]:
+        for index in range(self._head, len(self._items)):
+            yield self._kept(index)
+
+    def __reversed__(self) -> Iterator[_T]:
+        for index in range(len(self._items) - 1, self._head - 1, -1):
+            yield self._kept(index)
 
 
 def _to_wire(update: HypothesisUpdate) -> pb.ServerMessage:
@@ -168,13 +218,13 @@ class Session:
         self._metrics = metrics
         # Made on first use (see ended_signal): most conversations never need one.
         self._ended: asyncio.Future[None] | None = None
-        self._replay: deque[HypothesisUpdate] = deque(maxlen=limits.replay_updates)
+        self._replay: _Recent[HypothesisUpdate] = _Recent(limits.replay_updates)
         # The wire form of the latest update when followers were sent it, so the caller is
         # sent the same message rather than a second conversion; dropped once sent.
         self._shared_wire: pb.ServerMessage | None = None
         self._words: OrderedDict[str, WordHypothesis] = OrderedDict()
         self._utterances: OrderedDict[str, UtteranceHypothesis] = OrderedDict()
-        self._revisions: deque[tuple[int, float, State]] = deque(maxlen=limits.history_revisions)
+        self._revisions: _Recent[tuple[int, float, State]] = _Recent(limits.history_revisions)
         self.revisions_truncated = False
         # A dict rather than a set: an empty set costs over 200 bytes, an empty dict 64.
         self._followers: dict[Follower, None] = {}
@@ -318,7 +368,7 @@ class Session:
             table.popitem(last=False)
 
     def _remember(self, now: float, state: State) -> None:
-        if len(self._revisions) == self._revisions.maxlen:
+        if len(self._revisions) == self._revisions.capacity:
             self.revisions_truncated = True
         self._revisions.append((self.seq, now, state))
 
@@ -327,7 +377,7 @@ class Session:
     @property
     def oldest_kept(self) -> int:
         """The oldest sequence number still in the replay buffer (``seq + 1`` when empty)."""
-        return self._replay[0].seq if self._replay else self.seq + 1
+        return self._replay.oldest().seq if self._replay else self.seq + 1
 
     def since(self, seq: int) -> list[pb.ServerMessage]:
         """Updates in the replay buffer after ``seq``, oldest first, as wire messages."""
