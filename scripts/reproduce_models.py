@@ -9,6 +9,7 @@ writing to a scratch folder, then evaluates shipped and retrained models on SwDA
 Usage::
 
     python scripts/reproduce_models.py [--corpora DIR] [--work DIR] [--tolerance 0.01]
+                                       [--only words|utterance_functions]
 """
 
 from __future__ import annotations
@@ -71,6 +72,8 @@ def main() -> int:
     parser.add_argument("--corpora", type=Path, default=Path(default))
     parser.add_argument("--work", type=Path, default=None)
     parser.add_argument("--tolerance", type=float, default=0.01)
+    parser.add_argument("--only", choices=sorted(HEADLINES), default=None,
+                        help="retrain only the model of this kind (the other is not touched)")
     args = parser.parse_args()
     corpus = args.corpora / "swda"
     work = args.work or Path(tempfile.mkdtemp(prefix="midstream-reproduce-"))
@@ -79,6 +82,8 @@ def main() -> int:
     words_shipped = next(m for m in shipped if load_artifact(m).kind == "words")
     failures = 0
     for model in shipped:
+        if args.only is not None and load_artifact(model).kind != args.only:
+            continue
         out = work / model.name
         command = training_command(model, corpus, out)
         print("$", shlex.join(command[2:]), flush=True)
