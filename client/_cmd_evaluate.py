@@ -47,8 +47,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help="utterance-function model (.msm); default: the shipped one")
     parser.add_argument("--words-only", action="store_true",
                         help="score the word model only (no utterance functions)")
-    parser.add_argument("--lag", type=int, default=DecoderConfig().lag,
-                        help="words before a word's label becomes final")
+    parser.add_argument("--lag", type=int, default=None,
+                        help="words before a word's label becomes final (default: one more "
+                             "than the words the model's features read to the right)")
     parser.add_argument("--limit", type=int, default=0,
                         help="evaluate only the first N conversations (0: all)")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
@@ -56,7 +57,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 
 def run(args: argparse.Namespace) -> int:
-    if args.lag < 0:
+    if args.lag is not None and args.lag < 0:
         raise InputError(f"--lag must be >= 0, got {args.lag}")
     model = WordModel.load(args.model)
     conversations = list(read_corpus(args.corpus, split=args.split))

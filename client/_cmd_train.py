@@ -68,6 +68,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                        help="constant added to a disfluency tag's score at decoding, stored in "
                             "the model (e.g. rp.ip=0.3; tags: " + ", ".join(sorted(TAG_LABEL))
                             + ")")
+    words.add_argument("--right", type=int, default=defaults.right,
+                       help="words to the right a feature may read; the server's decoder keeps "
+                            "a word open until that many more have arrived")
     words.add_argument("--no-word-classes", action="store_true",
                        help="leave out the closed-class substitution features")
     words.add_argument("--tune-bias", action="store_true",
@@ -106,6 +109,8 @@ def _command_line(args: argparse.Namespace) -> str:
                          ("--restart-span", args.restart_span)):
         parts += [flag, *(str(v) for v in values)]
     parts += ["--max-iterations", str(args.max_iterations)]
+    if args.right != WordTrainingConfig().right:
+        parts += ["--right", str(args.right)]
     if args.no_word_classes:
         parts += ["--no-word-classes"]
     if args.tag_bias is not None:
@@ -186,7 +191,9 @@ def run_words(args: argparse.Namespace) -> int:
                               max_iterations=args.max_iterations,
                               restart_span=args.restart_span[0],
                               tag_bias=tag_bias,
-                              word_classes=not args.no_word_classes)
+                              word_classes=not args.no_word_classes,
+                              right=args.right, left=max(WordTrainingConfig().left,
+                                                         args.right + 1))
     grid = [{"c1": c1, "c2": c2, "min_freq": m, "restart_span": r}
             for c1, c2, m, r in itertools.product(args.c1, args.c2, args.min_freq,
                                                   args.restart_span)]

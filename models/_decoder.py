@@ -40,16 +40,17 @@ class DecoderConfig:
     """How the channel decoder trades latency for stability.
 
     ``lag``: open words at most; the oldest becomes final when a newer word would exceed it
-    (words, default 6: the features read 5 words to the right, so a word is final only once
-    its features are complete). ``confidence_step``: a changed confidence is reported only when
+    (words; ``None``, the default, means one more than the words the model's features read to
+    the right, so a word is final only once its features are complete: 6 for a model that
+    reads 5). ``confidence_step``: a changed confidence is reported only when
     it moved by more than this (probability, default 0.05; common practice, no source).
     """
 
-    lag: int = 6
+    lag: int | None = None
     confidence_step: float = 0.05
 
     def __post_init__(self) -> None:
-        if self.lag < 0:
+        if self.lag is not None and self.lag < 0:
             raise ValueError(f"lag must be >= 0, got {self.lag}")
         if not 0.0 <= self.confidence_step <= 1.0:
             raise ValueError(f"confidence_step must be in [0, 1], got {self.confidence_step}")
@@ -107,6 +108,7 @@ class ChannelDecoder:
         self._model = model
         self._config = config
         self._right = model.config.right
+        self._lag = config.lag if config.lag is not None else model.config.right + 1
         self._reparandum_tags = frozenset(
             k for k, b in enumerate(model.tag_base) if b in _REPARANDUM_TAGS)
         # Finalised words kept as feature context; one more as the lattice's fixed left end.
@@ -256,7 +258,7 @@ class ChannelDecoder:
         end_probability = result.end_probability
         offset = start - lo
         n_open = held - start
-        n_final = n_open if close else max(0, n_open - self._config.lag)
+        n_final = n_open if close else max(0, n_open - self._lag)
         window = self._entries[lo:]
         links = self._links(window, path)
         tag_label = model.tag_label

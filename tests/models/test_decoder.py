@@ -9,12 +9,14 @@ import numpy as np
 import pytest
 from midstream import DisfluencyLabel, Word
 from midstream._errors import EventError, ModelError
+from midstream.models._artifact import ModelArtifact
 from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models._features import tokens_from_words
 from midstream.models._lattice import decode_lattice, decode_window
+from midstream.models._train_words import train_word_artifact
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import channel_sequences
-from word_kit import invented_conversation, tiny_model
+from word_kit import TINY, invented_conversation, tiny_model
 
 
 @pytest.fixture(scope="module")
@@ -187,3 +189,21 @@ def test_window_summary_sums_the_marginals_of_each_label_group() -> None:
         for t, tag in enumerate(path):
             assert result.confidence[t] == pytest.approx(marginals[t, groups == groups[tag]].sum())
             assert result.end_probability[t] == pytest.approx(marginals[t, ends].sum())
+
+
+def test_by_default_a_word_stays_open_until_its_features_are_complete() -> None:
+    # A word's features read `right` words ahead; finalising it earlier would fix a label the
+    # model never saw its full evidence for. The default lag follows the model.
+    conversations = [invented_conversation(seed) for seed in range(4)]
+    for right in (3, 6):
+        config = dataclasses.replace(TINY, right=right, left=8)
+        model = WordModel.from_artifact(
+            ModelArtifact.from_bytes(train_word_artifact(conversations, config).to_bytes()))
+        decoder = ChannelDecoder(model)
+        words = _words("we went to the store last week and it was nice")
+        final_at = None
+        for key, word in enumerate(words):
+            if any(s.key == 0 and s.final for s in decoder.append(key, word)):
+                final_at = key
+                break
+        assert final_at == right + 1  # right + 1 newer words had arrived
