@@ -6,12 +6,29 @@ marked ``corpus`` fail under ``CI=true`` when the corpora are missing and skip e
 
 from __future__ import annotations
 
+import asyncio
 import os
 from pathlib import Path
 
 import pytest
 
 _REPO = Path(__file__).resolve().parent.parent
+
+
+@pytest.fixture(autouse=True, scope="session")
+def no_implicit_event_loop() -> None:
+    """Mark the main thread as having no current event loop, for the whole session.
+
+    pytest-asyncio 1.3.0 saves "the current loop" before each async test with
+    ``asyncio.get_event_loop()``, which on the main thread *creates* a loop when none was ever
+    set, and then leaves that loop current without closing it (pytest-asyncio issue #724, fixed
+    upstream by PR #1430). The next ``asyncio.run`` in a sync test (every client command makes
+    one) replaces it; the orphan is freed at some later garbage collection and its
+    "unclosed event loop" ResourceWarning, an error here, fails whichever test is running.
+    With the loop explicitly unset, ``get_event_loop()`` raises instead of creating one, so
+    there is nothing to leak; loops made by tests and by library code are closed by them.
+    """
+    asyncio.set_event_loop(None)
 
 
 def corpora_root() -> Path:

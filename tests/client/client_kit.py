@@ -16,7 +16,6 @@ import asyncio
 import os
 import socket
 import threading
-import warnings
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -103,25 +102,6 @@ def served_fixture(models_dir: Path) -> Iterator[Served]:
         loop.call_soon_threadsafe(loop.stop)
         thread.join(timeout=10)
         loop.close()
-
-
-@pytest.fixture(name="no_stray_loop")
-def no_stray_loop_fixture() -> None:
-    """Close the idle event loop an earlier async test left current in this thread.
-
-    pytest-asyncio leaves a fresh, unclosed loop set after an async test; a later sync test
-    whose code calls ``asyncio.run`` (every command does) replaces it, and its garbage collection
-    then warns of an unclosed loop, failing whichever test runs at that moment.
-    """
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", DeprecationWarning)
-        try:
-            stray = asyncio.get_event_loop_policy().get_event_loop()
-        except RuntimeError:
-            return
-    if not stray.is_running() and not stray.is_closed():
-        stray.close()
-    asyncio.set_event_loop(None)
 
 
 def free_port() -> int:

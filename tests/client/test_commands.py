@@ -15,7 +15,6 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
     Served,
     free_port,
     models_dir_fixture,
-    no_stray_loop_fixture,
     served_fixture,
 )
 from midstream import DisfluencyLabel, HypothesisUpdate
@@ -28,7 +27,7 @@ from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
 from midstream.models._eval_words import streaming_final_labels
 
-pytestmark = [pytest.mark.corpus, pytest.mark.usefixtures("no_stray_loop")]
+pytestmark = pytest.mark.corpus
 
 
 @pytest.fixture
