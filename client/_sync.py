@@ -59,20 +59,31 @@ class SyncClient:
             self._thread = threading.Thread(target=self._loop.run_forever,
                                             name="midstream-sync-client", daemon=True)
             self._thread.start()
-        self._run(self._client.connect())
+        try:
+            self._run(self._client.connect())
+        except BaseException:
+            # ``with`` never calls __exit__ when __enter__ raises: without this, every failed
+            # connect would leave a thread spinning an unclosed loop for the process's life.
+            self._stop_loop()
+            raise
 
     def close(self) -> None:
         """Close the channel and the loop. Safe to call twice."""
-        loop, thread = self._loop, self._thread
-        if loop is None or thread is None:
+        if self._loop is None:
             return
         try:
             self._run(self._client.close())
         finally:
-            self._loop = self._thread = None
-            loop.call_soon_threadsafe(loop.stop)
-            thread.join()
-            loop.close()
+            self._stop_loop()
+
+    def _stop_loop(self) -> None:
+        loop, thread = self._loop, self._thread
+        self._loop = self._thread = None
+        if loop is None or thread is None:
+            return
+        loop.call_soon_threadsafe(loop.stop)
+        thread.join()
+        loop.close()
 
     def __enter__(self) -> Self:
         self.connect()

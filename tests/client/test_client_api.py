@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import re
+import threading
 from pathlib import Path
 
 import pytest
@@ -187,6 +188,17 @@ def test_sync_client_wraps_the_async_one(served: Served) -> None:
     assert isinstance(followed[-1], Ended)
     with pytest.raises(UnavailableError, match="not connected"):
         client.describe_models()
+
+
+def test_a_sync_client_that_fails_to_connect_leaves_no_loop_running() -> None:
+    # Certificates given as text, not bytes: the channel cannot be made, so __enter__ raises
+    # and ``with`` never calls __exit__; the wrapper must still stop and close its own loop.
+    before = set(threading.enumerate())
+    bad = SyncClient("127.0.0.1:1", tls=True, root_certificates="not bytes")  # type: ignore[arg-type]
+    with pytest.raises(TypeError, match="bytes"), bad:
+        pass
+    assert not [t for t in set(threading.enumerate()) - before
+                if t.name == "midstream-sync-client"]
 
 
 async def test_the_token_is_sent_and_a_missing_one_is_named(models_dir: Path) -> None:
