@@ -2,13 +2,17 @@
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import grpc
 import pytest
 from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,
+    TEST_LIMITS,
     Running,
+    ServerFactory,
     bundle_fixture,
     models_dir_fixture,
     open_event,
@@ -19,7 +23,13 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
 )
 
 
-async def test_words_in_updates_out_then_final_and_ended(running: Running) -> None:
+async def test_words_in_updates_out_then_final_and_ended(start_server: ServerFactory) -> None:
+    # The exact list of replies holds only while no idle timeout intervenes. The server starts
+    # its idle clock when an event is read, so its own work on that event and the update's
+    # write count towards the caller's idleness; the kit's one-second timeout was reachable on
+    # a loaded two-core machine, ending the stream early with fewer updates. Idle ends have
+    # their own tests (test_lifecycle).
+    running = await start_server(limits=replace(TEST_LIMITS, idle_timeout_s=60.0))
     events = [
         open_event(),
         words_event(spoken("w1", "I", start=0.0), spoken("w2", "i", start=0.3)),
