@@ -82,8 +82,8 @@ class _EventReader:
     """
 
     # One per open stream: no per-instance __dict__.
-    __slots__ = ("_context", "_idle_timeout_s", "_last_event", "_loop", "_pending", "_reason",
-                 "_stop", "_timer")
+    __slots__ = ("_context", "_idle_timeout_s", "_loop", "_pending", "_reason", "_stop",
+                 "_timer", "_waiting_since")
 
     def __init__(self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
                  stop: asyncio.Future[None], idle_timeout_s: float) -> None:
@@ -91,7 +91,9 @@ class _EventReader:
         self._stop = stop
         self._idle_timeout_s = idle_timeout_s
         self._loop = asyncio.get_running_loop()
-        self._last_event = self._loop.time()
+        # The caller is idle only while the server waits for its next event: time the server
+        # spends on an event (or writing its update) never counts against the caller.
+        self._waiting_since = self._loop.time()
         self._pending: asyncio.Future[object] | None = None
         self._reason: object | None = _STOPPED if stop.done() else None
         self._timer = self._loop.call_later(idle_timeout_s, self._check_idle)
@@ -117,7 +119,7 @@ class _EventReader:
         self._interrupt(_STOPPED)
 
     def _check_idle(self) -> None:
-        idle_for = self._loop.time() - self._last_event
+        idle_for = self._loop.time() - self._waiting_since
         if idle_for >= self._idle_timeout_s and self._pending is not None:
             self._interrupt(_TIMEOUT)
         else:
@@ -127,6 +129,7 @@ class _EventReader:
     async def next(self) -> object:
         if self._reason is not None:
             return self._reason
+        self._waiting_since = self._loop.time()
         read: asyncio.Future[object] = asyncio.ensure_future(self._context.read())
         self._pending = read
         try:
@@ -140,7 +143,6 @@ class _EventReader:
             raise
         finally:
             self._pending = None
-        self._last_event = self._loop.time()
         return event
 
 

@@ -7,11 +7,14 @@ follower receives the final update and ``ended`` with the reason.
 from __future__ import annotations
 
 import asyncio
+import time
+from typing import Any
 
 import grpc
 import pytest
 from grpc_health.v1 import health_pb2, health_pb2_grpc
 from midstream.server import ServerLimits
+from midstream.server._session import Session
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 from server_kit import (  # noqa: F401 - fixtures are found by name
@@ -103,6 +106,28 @@ async def test_silent_caller_times_out(running: Running) -> None:
     assert final.update.conversation_final
     assert ended.ended.reason == pb.END_REASON_IDLE_TIMEOUT
     await _ended_with(follower, caller, pb.END_REASON_IDLE_TIMEOUT, running)
+
+
+async def test_time_the_server_spends_on_an_event_is_not_the_callers_idleness(
+        start_server: ServerFactory, monkeypatch: pytest.MonkeyPatch) -> None:
+    # docs/service.md: a conversation times out after no event for idle_timeout_s. A caller who
+    # answers at once must not be timed out because the server was slow with its last event.
+    running = await start_server(limits=ServerLimits(idle_timeout_s=0.5))
+    real = Session.add_words
+
+    def slow(self: Session, *args: Any, **kwargs: Any) -> Any:
+        time.sleep(0.8)  # blocks the server's loop longer than the idle timeout
+        return real(self, *args, **kwargs)
+
+    caller = Caller(running.stub)
+    await caller.open()
+    monkeypatch.setattr(Session, "add_words", slow)
+    await caller.send(words_event(spoken("w0", "so", start=0.0)))
+    monkeypatch.setattr(Session, "add_words", real)
+    await asyncio.sleep(0.2)  # the caller thinks a moment: well within the timeout
+    await caller.send(words_event(spoken("w1", "we", start=1.0)))
+    ended = await caller.close()
+    assert ended.reason == pb.END_REASON_CLOSED
 
 
 async def test_caller_vanishing_with_its_connection(start_server: ServerFactory) -> None:
