@@ -23,6 +23,7 @@ import os
 import signal
 import sys
 from pathlib import Path
+from typing import Final
 
 from midstream._errors import InputError
 from midstream.server import MidstreamServer, ServerConfig, ServerLimits, run_server_loop
@@ -70,7 +71,37 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         default=defaults.max_live_conversations, metavar="N",
                         help="most conversations ingested at once "
                              f"(default {defaults.max_live_conversations})")
+    parser.add_argument("--gc-thresholds", default=_GC_THRESHOLDS, metavar="G0,G1,G2",
+                        help="the garbage collector's thresholds once serving (default "
+                             f"{_GC_THRESHOLDS}; Python's own are 700,10,10)")
     parser.set_defaults(handler=run)
+
+
+#: Collector thresholds while serving. With Python's defaults (700,10,10) the per-word objects
+#: of a few hundred live conversations trigger a collection every few words and a full one
+#: every few seconds, which showed as p99 spikes of 100-400 ms at 200-300 conversations on
+#: one core; these thresholds cut them to 20-35 ms (docs/benchmarks.md). Garbage without
+#: reference cycles is still freed at once by reference counting; the collector only finds
+#: cycles, and with these thresholds finds them later (after 50,000 new objects, not 700).
+_GC_THRESHOLDS: Final = "50000,50,1000"
+
+
+def parse_gc_thresholds(text: str) -> tuple[int, int, int]:
+    """``G0,G1,G2`` as three positive integers.
+
+    Raises
+    ------
+    InputError
+        Not three comma-separated positive integers.
+    """
+    parts = text.split(",")
+    try:
+        values = tuple(int(p) for p in parts)
+    except ValueError:
+        values = ()
+    if len(values) != 3 or min(values) < 1:
+        raise InputError(f"--gc-thresholds: {text!r} is not three positive integers G0,G1,G2")
+    return values[0], values[1], values[2]
 
 
 def _token(args: argparse.Namespace) -> str | None:
@@ -87,7 +118,8 @@ def _token(args: argparse.Namespace) -> str | None:
 
 
 def run(args: argparse.Namespace) -> int:
-    return run_server_loop(serve(build_config(args)))
+    config = build_config(args)
+    return run_server_loop(serve(config, gc_thresholds=parse_gc_thresholds(args.gc_thresholds)))
 
 
 def build_config(args: argparse.Namespace) -> ServerConfig:
@@ -111,14 +143,21 @@ def build_config(args: argparse.Namespace) -> ServerConfig:
     )
 
 
-async def serve(config: ServerConfig) -> int:
-    """Serve until SIGTERM or SIGINT, then drain within ``config.grace_s``; returns 0."""
+async def serve(config: ServerConfig, *, gc_thresholds: tuple[int, int, int] | None = None
+                ) -> int:
+    """Serve until SIGTERM or SIGINT, then drain within ``config.grace_s``; returns 0.
+
+    ``gc_thresholds``: the collector's thresholds once the models are loaded (``None``: leave
+    them as they are).
+    """
     server = MidstreamServer(config)
     await server.start()
     # The models' hundreds of thousands of feature-table objects never die: moving everything
     # alive now out of the collector's sight spares every full collection from walking them
     # again, which otherwise shows up as latency spikes under load.
     gc.freeze()
+    if gc_thresholds is not None:
+        gc.set_threshold(*gc_thresholds)
     print(f"serving on {config.host}:{server.port}", flush=True)
     if server.metrics_port is not None:
         print(f"metrics on http://{config.metrics_host}:{server.metrics_port}/metrics",

@@ -129,3 +129,10 @@ async def test_a_port_in_use_is_a_clear_error(start_server: ServerFactory,
     with pytest.raises(UnavailableError, match=f"cannot listen on 127.0.0.1:{taken}"):
         await second.start()
     await second.stop(0)
+
+
+def test_gc_thresholds_are_three_positive_integers() -> None:
+    assert _cmd_serve.parse_gc_thresholds("50000,50,1000") == (50000, 50, 1000)
+    for bad in ("", "700,10", "700,10,10,10", "a,b,c", "0,10,10", "-1,10,10"):
+        with pytest.raises(InputError, match="--gc-thresholds"):
+            _cmd_serve.parse_gc_thresholds(bad)
