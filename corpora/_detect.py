@@ -56,7 +56,7 @@ def _has(folder: Path, pattern: str) -> bool:
     return next(folder.glob(pattern), None) is not None
 
 
-def detect_kind(path: Path) -> CorpusKind:
+def detect_kind(path: Path | str) -> CorpusKind:
     """The kind of corpus at ``path`` (a folder, or a ``.jsonl`` file).
 
     Raises
@@ -73,6 +73,7 @@ def detect_kind(path: Path) -> CorpusKind:
     ...     detect_kind(Path(folder)).value
     'jsonl'
     """
+    path = Path(path)
     if path.is_file():
         if path.suffix == ".jsonl":
             return CorpusKind.JSONL
@@ -112,7 +113,7 @@ def split_names(root: Path, split: str) -> tuple[str, ...]:
     return tuple(name for line in lines if (name := line.strip()) and not name.startswith("#"))
 
 
-def read_corpus(path: Path, *, split: str | None = None) -> Iterator[Conversation]:
+def read_corpus(path: Path | str, *, split: str | None = None) -> Iterator[Conversation]:
     """Read every conversation of the corpus at ``path``, or of one split of it.
 
     The kind is found by :func:`detect_kind`; the split is checked before anything is read, so
@@ -120,7 +121,7 @@ def read_corpus(path: Path, *, split: str | None = None) -> Iterator[Conversatio
 
     Parameters
     ----------
-    path : Path
+    path : Path or str
         A corpus folder, a folder of ``.jsonl`` files, or one ``.jsonl`` file.
     split : str, optional
         ``"train"``, ``"val"`` (or another list in ``splits/``); everything when ``None``.
@@ -132,6 +133,7 @@ def read_corpus(path: Path, *, split: str | None = None) -> Iterator[Conversatio
     TranscriptFormatError
         While iterating, when a file does not parse.
     """
+    path = Path(path)
     kind = detect_kind(path)
     if kind is CorpusKind.DISFL_QA:
         if split == "test":

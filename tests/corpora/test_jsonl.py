@@ -23,7 +23,7 @@ from midstream import (
     Word,
 )
 from midstream.corpora import _jsonl as jsonl_module
-from midstream.corpora import read_jsonl, write_jsonl
+from midstream.corpora import read_corpus, read_jsonl, write_jsonl
 from midstream.corpora._mrda import read_mrda
 
 HEADER = '{"format": "midstream-transcript", "version": 1}\n'
@@ -143,6 +143,9 @@ def test_a_hand_written_file_of_words_and_times(tmp_path: Path) -> None:
                                                                       ("um", 0.21, 0.5)]
     assert conversation.labels is None and conversation.utterances == ()
     assert conversation.corpus == "jsonl"
+    # The corpus reader takes the path as a string as well as a Path.
+    assert list(read_corpus(str(path))) == [conversation]
+    assert list(read_corpus(str(tmp_path))) == [conversation]
 
 
 def test_utterances_and_labels_by_hand() -> None:
