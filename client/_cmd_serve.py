@@ -78,9 +78,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 
 #: Collector thresholds while serving. With Python's defaults (700,10,10) the per-word objects
-#: of a few hundred live conversations trigger a collection every few words and a full one
-#: every few seconds, which showed as p99 spikes of 100-400 ms at 200-300 conversations on
-#: one core; these thresholds cut them to 20-35 ms (docs/benchmarks.md). Garbage without
+#: of a few hundred live conversations set collections off often; at 200 and 300 conversations
+#: on one core the p99 latency was 97 and 231 ms, and 22 and 35 ms with these thresholds (one
+#: 40 s bench_service run each; docs/benchmarks.md has the full run). Garbage without
 #: reference cycles is still freed at once by reference counting; the collector only finds
 #: cycles, and with these thresholds finds them later (after 50,000 new objects, not 700).
 _GC_THRESHOLDS: Final = "50000,50,1000"

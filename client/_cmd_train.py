@@ -181,6 +181,8 @@ def run_words(args: argparse.Namespace) -> int:
         raise InputError("--out is required (the model file to write) unless --cv-only")
     if args.cv_folds < 2:
         raise InputError(f"--cv-folds must be at least 2, got {args.cv_folds}")
+    if args.right < 0:
+        raise InputError(f"--right must be >= 0, got {args.right}")
     if args.tag_bias is not None and args.tune_bias:
         raise InputError("--tag-bias and --tune-bias exclude each other")
     tag_bias = () if args.tag_bias is None else parse_tag_bias(args.tag_bias)

@@ -919,15 +919,8 @@ class FunctionTagger:
 
     def _decode_partial(self, context: Sequence[UtteranceView],
                         current: UtteranceView) -> tuple[int, FloatArray]:
-        """Index of the last position's Viterbi label and every label's marginal there.
-
-        Raises
-        ------
-        InputError
-            A view is malformed.
-        OverflowError
-            crfsuite's exp overflows on these views' scores.
-        """
+        """Index of the last position's Viterbi label and every label's marginal there: the
+        part of :meth:`_last_step` (same errors) that the exactness tests compare."""
         k, _, _, _, probs = self._last_step(context, current)
         return k, probs
 

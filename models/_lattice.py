@@ -357,7 +357,8 @@ def chain_end_step(
         ascending order; ``sums`` (at least ``max(groups) + 1`` long) receives each group's
         summed marginals, added in label order from 0.0.
     out
-        ``(3, L)``; receives the state scores, their exps and the marginals, in that order.
+        At least ``(3, L)``; rows 0, 1 and 2 receive the state scores, their exps and the
+        marginals in their first ``L`` places (``sums`` may be a further row of it).
 
     Returns
     -------

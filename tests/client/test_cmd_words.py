@@ -56,3 +56,5 @@ def test_missing_out_is_a_clear_error(transcripts: Path,
                                       capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["train", "words", str(transcripts)]) == 1
     assert "--out is required" in capsys.readouterr().err
+    assert main(["train", "words", str(transcripts), "--right", "-1", "--out", "x.msm"]) == 1
+    assert "--right must be >= 0, got -1" in capsys.readouterr().err
