@@ -506,7 +506,8 @@ class SessionRegistry:
     def open(self, conversation_id: str, bundle: Bundle) -> Session:
         """Start a conversation with a fresh engine from ``bundle``.
 
-        An empty id gets an unguessable one (``secrets.token_urlsafe``).
+        An empty id gets an unguessable one (``secrets.token_urlsafe``), never starting with
+        ``-`` so it can be given to the command line as it is.
 
         Raises
         ------
@@ -522,6 +523,9 @@ class SessionRegistry:
                 raise ConflictError(f"conversation id {conversation_id!r} is already in use")
         else:
             conversation_id = secrets.token_urlsafe(18)
+            while conversation_id.startswith("-"):
+                # `midstream subscribe -x...` would read it as an option; one draw in 64.
+                conversation_id = secrets.token_urlsafe(18)
         limit = self._limits.max_live_conversations
         if len(self._live) >= limit:
             raise LimitExceededError(

@@ -52,6 +52,8 @@ async def test_server_assigned_ids_are_unguessable(start_server: ServerFactory) 
     assert len(set(ids)) == len(ids)
     # At least 128 bits: 22 or more characters of a 64-symbol alphabet (6 bits each).
     assert all(len(i) >= 22 and set(i) <= _URLSAFE for i in ids)
+    # Usable as a command-line argument: none looks like an option (1 in 64 would by chance).
+    assert not any(i.startswith("-") for i in ids)
     # Characters spread over the whole alphabet: pooled entropy near log2(64) = 6 bits.
     counts = collections.Counter("".join(ids))
     total = sum(counts.values())
