@@ -49,13 +49,18 @@ class ServerLimits:
     max_message_bytes: int = 4 * 1024 * 1024
     """Largest gRPC message received or sent."""
     idle_timeout_s: float = 300.0
-    """A ``Converse`` stream silent this long has its conversation finished."""
+    """A ``Converse`` stream (or ``ConverseMany`` channel) silent this long has its conversation
+    finished."""
     ended_retention_s: float = 600.0
     """How long an ended conversation stays for late followers and ``GetRevisions``."""
     max_ended_conversations: int = 256
     """Most ended conversations kept at once; the oldest-ended go first."""
     max_transcript_items: int = 50_000
     """Most items in one ``TagTranscript`` request."""
+    max_channels_per_stream: int = 1024
+    """Most conversations open at once on one ``ConverseMany`` stream."""
+    max_events_per_frame: int = 1024
+    """Most channel events in one ``ConverseMany`` request frame."""
 
     def __post_init__(self) -> None:
         for name in (
@@ -63,6 +68,7 @@ class ServerLimits:
             "max_speakers_per_conversation", "replay_updates", "history_revisions",
             "snapshot_states", "max_followers_per_conversation", "follower_queue",
             "max_message_bytes", "max_ended_conversations", "max_transcript_items",
+            "max_channels_per_stream", "max_events_per_frame",
         ):
             if getattr(self, name) < 1:
                 raise InputError(f"ServerLimits.{name} must be at least 1, not "

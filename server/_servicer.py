@@ -31,7 +31,9 @@ from midstream._errors import (
 )
 from midstream._types import HypothesisDiff, UtteranceHypothesis, WordHypothesis
 from midstream.server._config import ServerLimits
-from midstream.server._limits import SpeakerTimeline, check_batch_size, check_id, check_word
+from midstream.server._ingest import apply_event, caller_vanished
+from midstream.server._limits import SpeakerTimeline, check_id, check_word
+from midstream.server._many import ManyStream
 from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Bundle, load_bundle
 from midstream.server._session import Session, SessionRegistry, message_budget
@@ -50,11 +52,9 @@ _log = logging.getLogger(__name__)
 # Items of a TagTranscript request between two returns to the event loop, so one long batch
 # does not starve live streams (decodes themselves are never split).
 _BATCH_SLICE = 16
-# How long and how many in-flight events a refused Converse call reads before its status.
+# How long and how many in-flight requests a refused ingest call reads before its status.
 _DRAIN_S = 0.25
 _DRAIN_MESSAGES = 64
-# How long an end of the request stream waits to tell a cancellation from a half-close.
-_CANCEL_SETTLE_S = 0.05
 
 
 class _Timeout:
@@ -146,16 +146,6 @@ class _EventReader:
         return event
 
 
-async def _vanished(context: grpc.aio.ServicerContext[Any, Any]) -> bool:
-    """Whether an end of the request stream was a cancellation rather than a half-close.
-
-    grpc.aio reports both as ``EOF`` from ``read()``; the cancellation shows on the context (or
-    cancels this task) a moment later.
-    """
-    await asyncio.sleep(_CANCEL_SETTLE_S)
-    return context.cancelled() or context.done()
-
-
 class MidstreamServicer(pb_grpc.MidstreamServicer):
     """Implements every RPC of the service over one :class:`SessionRegistry`.
 
@@ -173,6 +163,14 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self._stop_signal: asyncio.Future[None] | None = None
 
     @property
+    def limits(self) -> ServerLimits:
+        return self._limits
+
+    @property
+    def metrics(self) -> ServerMetrics:
+        return self._metrics
+
+    @property
     def stopping(self) -> bool:
         """Whether :meth:`begin_stopping` was called."""
         return self._stopping
@@ -183,7 +181,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if self._stop_signal is not None and not self._stop_signal.done():
             self._stop_signal.set_result(None)
 
-    def _stopped(self) -> asyncio.Future[None]:
+    def stop_signal(self) -> asyncio.Future[None]:
+        """A future done once :meth:`begin_stopping` was called; shared, never cancel it."""
         if self._stop_signal is None:
             self._stop_signal = asyncio.get_running_loop().create_future()
             if self._stopping:
@@ -201,16 +200,15 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         raise AssertionError("abort returned")  # pragma: no cover - abort always raises
 
     @staticmethod
-    def _log_internal(where: str, error: Exception) -> None:
+    def log_internal(where: str, error: Exception) -> None:
+        """Log a fault by its type only; the detail (which may quote words) at DEBUG."""
         # Only the type at ERROR: an engine's message or traceback may quote words.
         _log.error("internal error in %s (%s)", where, type(error).__name__)
         _log.debug("internal error detail", exc_info=error)
 
-    async def _refuse_stream(
-        self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
-        error: MidstreamError,
-    ) -> NoReturn:
-        """End a Converse call with an error, after briefly reading events still in flight.
+    async def refuse_stream(self, context: grpc.aio.ServicerContext[Any, Any],
+                            error: MidstreamError) -> NoReturn:
+        """End an ingest call with an error, after briefly reading requests still in flight.
 
         See :func:`midstream.server._auth.drain_requests` for why (a client-side race).
         """
@@ -234,7 +232,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self, request_iterator: AsyncIterator[pb.ClientEvent],
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
-        with self._reader(context, self._stopped()) as reader:
+        with self._reader(context, self.stop_signal()) as reader:
             first = await reader.next()
         if not isinstance(first, pb.ClientEvent):
             if first is _STOPPED:
@@ -246,14 +244,14 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             await self._fail(context, ProtocolStateError(
                 "the stream ended before its first event, which must be 'open'"))
         if first.WhichOneof("event") != "open":
-            await self._refuse_stream(context, ProtocolStateError(
+            await self.refuse_stream(context, ProtocolStateError(
                 f"the first event must be 'open', not {first.WhichOneof('event')!r}"))
         if self._stopping:
-            await self._refuse_stream(context, UnavailableError("the server is shutting down"))
+            await self.refuse_stream(context, UnavailableError("the server is shutting down"))
         try:
             session = self.registry.open(first.open.conversation_id, self.bundle)
         except MidstreamError as exc:
-            await self._refuse_stream(context, exc)
+            await self.refuse_stream(context, exc)
         yield pb.ServerMessage(welcome=pb.Welcome(
             conversation_id=session.id, next_seq=session.seq + 1))
         async for message in self._converse(session, context):
@@ -274,7 +272,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     for message in (*session.since(sent), session.closing_messages[-1]):
                         yield message
                     return
-                if event is grpc.aio.EOF and await _vanished(context):
+                if event is grpc.aio.EOF and await caller_vanished(context):
                     self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
                     return
                 if isinstance(event, _Timeout) or event is grpc.aio.EOF:
@@ -286,14 +284,14 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     return
                 assert isinstance(event, pb.ClientEvent)
                 try:
-                    closing = self._apply(session, event, time.monotonic())
+                    closing = apply_event(session, event, time.monotonic(), self._limits)
                 except MidstreamError as exc:
                     self.registry.close(session, pb.END_REASON_REJECTED)
                     for message in session.since(sent):
                         yield message
-                    await self._refuse_stream(context, exc)
+                    await self.refuse_stream(context, exc)
                 except Exception as exc:  # a bug must not leave followers hanging
-                    self._log_internal(session.id, exc)
+                    self.log_internal(session.id, exc)
                     self.registry.close(session, pb.END_REASON_UNSPECIFIED)
                     for message in session.since(sent):
                         yield message
@@ -318,41 +316,19 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                                                                   pb.ServerMessage],
                            session: Session) -> None:
         """Wait for the caller's half-close; any further event is refused."""
-        with self._reader(context, self._stopped()) as reader:
+        with self._reader(context, self.stop_signal()) as reader:
             event = await reader.next()
         if isinstance(event, pb.ClientEvent):
-            await self._refuse_stream(context, ProtocolStateError(
+            await self.refuse_stream(context, ProtocolStateError(
                 f"event {event.WhichOneof('event')!r} after 'close': conversation "
                 f"{session.id} has ended"))
 
-    def _apply(self, session: Session, event: pb.ClientEvent, received: float) -> bool:
-        """Apply one event; return whether it was ``close``. Never awaits."""
-        kind = event.WhichOneof("event")
-        if kind == "words":
-            check_batch_size(len(event.words.words), self._limits)
-            words = [cv.spoken_word_from_wire(w) for w in event.words.words]
-            for word_id, word in words:
-                check_word(word_id, word, self._limits)
-            session.add_words(words, received)
-        elif kind == "replace":
-            word_id, word = cv.spoken_word_from_wire(event.replace.word)
-            check_word(word_id, word, self._limits)
-            session.replace_word(word_id, word, received)
-        elif kind == "withdraw":
-            check_id(event.withdraw.word_id, "withdraw.word_id", self._limits)
-            session.withdraw_word(event.withdraw.word_id, received)
-        elif kind == "hint":
-            speaker, turn_end = cv.hint_from_wire(event.hint)
-            session.hint(speaker, turn_end=turn_end, received=received)
-        elif kind == "close":
-            return True
-        elif kind == "open":
-            raise ProtocolStateError(f"'open' may only be the first event (conversation "
-                                     f"{session.id} is already open)")
-        else:
-            raise EventError("the event is empty: set one of words, replace, withdraw, hint, "
-                             "close")
-        return False
+    async def ConverseMany(  # noqa: N802
+        self, request_iterator: AsyncIterator[pb.ClientFrame],
+        context: grpc.aio.ServicerContext[pb.ClientFrame, pb.ServerFrame],
+    ) -> AsyncIterator[pb.ServerFrame]:
+        async for frame in ManyStream(self, context).run():
+            yield frame
 
     # --- Follow, list, revisions ---------------------------------------------------------
 
@@ -423,7 +399,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         except MidstreamError as exc:
             await self._fail(context, exc)
         except Exception as exc:  # report INTERNAL without logging words
-            self._log_internal("(transcript)", exc)
+            self.log_internal("(transcript)", exc)
             await self._fail(context, InternalError("internal error while tagging"))
         reply = pb.TagTranscriptReply(
             words=[cv.word_state_to_wire(w) for w in words],

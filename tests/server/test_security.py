@@ -77,6 +77,7 @@ def _every_rpc(stub: pb_grpc.MidstreamStub, metadata: tuple[tuple[str, str], ...
                ) -> dict[str, object]:
     return {
         "Converse": stub.Converse(iter([open_event(), CLOSE]), metadata=metadata),
+        "ConverseMany": stub.ConverseMany(iter([pb.ClientFrame()]), metadata=metadata),
         "Follow": stub.Follow(pb.FollowRequest(conversation_id="x"), metadata=metadata),
         "ListConversations": stub.ListConversations(pb.ListConversationsRequest(),
                                                     metadata=metadata),
@@ -126,7 +127,8 @@ async def test_right_token_is_let_through(start_server: ServerFactory) -> None:
     codes = {name: await _outcome(call)
              for name, call in _every_rpc(running.stub, metadata).items()}
     assert codes == {
-        "Converse": grpc.StatusCode.OK, "Follow": grpc.StatusCode.NOT_FOUND,
+        "Converse": grpc.StatusCode.OK, "ConverseMany": grpc.StatusCode.OK,
+        "Follow": grpc.StatusCode.NOT_FOUND,
         "ListConversations": grpc.StatusCode.OK, "TagTranscript": grpc.StatusCode.OK,
         "GetRevisions": grpc.StatusCode.NOT_FOUND, "DescribeModels": grpc.StatusCode.OK,
         "ReloadModels": grpc.StatusCode.FAILED_PRECONDITION,

@@ -146,6 +146,44 @@ class ClientEvent(_message.Message):
     close: CloseConversation
     def __init__(self, open: _Optional[_Union[OpenConversation, _Mapping]] = ..., words: _Optional[_Union[WordBatch, _Mapping]] = ..., replace: _Optional[_Union[ReplaceWord, _Mapping]] = ..., withdraw: _Optional[_Union[WithdrawWord, _Mapping]] = ..., hint: _Optional[_Union[SpeakerHint, _Mapping]] = ..., close: _Optional[_Union[CloseConversation, _Mapping]] = ...) -> None: ...
 
+class ChannelEvent(_message.Message):
+    __slots__ = ("channel", "event")
+    CHANNEL_FIELD_NUMBER: _ClassVar[int]
+    EVENT_FIELD_NUMBER: _ClassVar[int]
+    channel: int
+    event: ClientEvent
+    def __init__(self, channel: _Optional[int] = ..., event: _Optional[_Union[ClientEvent, _Mapping]] = ...) -> None: ...
+
+class ClientFrame(_message.Message):
+    __slots__ = ("events",)
+    EVENTS_FIELD_NUMBER: _ClassVar[int]
+    events: _containers.RepeatedCompositeFieldContainer[ChannelEvent]
+    def __init__(self, events: _Optional[_Iterable[_Union[ChannelEvent, _Mapping]]] = ...) -> None: ...
+
+class ChannelError(_message.Message):
+    __slots__ = ("code", "message")
+    CODE_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    code: str
+    message: str
+    def __init__(self, code: _Optional[str] = ..., message: _Optional[str] = ...) -> None: ...
+
+class ChannelReply(_message.Message):
+    __slots__ = ("channel", "message", "error")
+    CHANNEL_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    ERROR_FIELD_NUMBER: _ClassVar[int]
+    channel: int
+    message: ServerMessage
+    error: ChannelError
+    def __init__(self, channel: _Optional[int] = ..., message: _Optional[_Union[ServerMessage, _Mapping]] = ..., error: _Optional[_Union[ChannelError, _Mapping]] = ...) -> None: ...
+
+class ServerFrame(_message.Message):
+    __slots__ = ("replies",)
+    REPLIES_FIELD_NUMBER: _ClassVar[int]
+    replies: _containers.RepeatedCompositeFieldContainer[ChannelReply]
+    def __init__(self, replies: _Optional[_Iterable[_Union[ChannelReply, _Mapping]]] = ...) -> None: ...
+
 class WordState(_message.Message):
     __slots__ = ("word_id", "speaker", "role", "confidence", "revision", "final", "repaired_by", "interruption_point")
     WORD_ID_FIELD_NUMBER: _ClassVar[int]

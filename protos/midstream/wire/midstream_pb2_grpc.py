@@ -39,6 +39,11 @@ class MidstreamStub:
                 request_serializer=midstream_dot_wire_dot_midstream__pb2.ClientEvent.SerializeToString,
                 response_deserializer=midstream_dot_wire_dot_midstream__pb2.ServerMessage.FromString,
                 _registered_method=True)
+        self.ConverseMany = channel.stream_stream(
+                '/midstream.v1.Midstream/ConverseMany',
+                request_serializer=midstream_dot_wire_dot_midstream__pb2.ClientFrame.SerializeToString,
+                response_deserializer=midstream_dot_wire_dot_midstream__pb2.ServerFrame.FromString,
+                _registered_method=True)
         self.Follow = channel.unary_stream(
                 '/midstream.v1.Midstream/Follow',
                 request_serializer=midstream_dot_wire_dot_midstream__pb2.FollowRequest.SerializeToString,
@@ -77,6 +82,15 @@ class MidstreamServicer:
     def Converse(self, request_iterator, context):
         """Ingest one conversation: the first event must be `open`; the server answers with `welcome`,
         then one `update` per event that changed a hypothesis, and `ended` after `close`.
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
+    def ConverseMany(self, request_iterator, context):
+        """Ingest many conversations over one stream, each on a caller-numbered channel. Every
+        channel follows the `Converse` protocol; the server answers each request frame with at most
+        one reply frame (split only when it would exceed the message size limit).
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
@@ -133,6 +147,11 @@ def add_MidstreamServicer_to_server(servicer, server):
                     servicer.Converse,
                     request_deserializer=midstream_dot_wire_dot_midstream__pb2.ClientEvent.FromString,
                     response_serializer=midstream_dot_wire_dot_midstream__pb2.ServerMessage.SerializeToString,
+            ),
+            'ConverseMany': grpc.stream_stream_rpc_method_handler(
+                    servicer.ConverseMany,
+                    request_deserializer=midstream_dot_wire_dot_midstream__pb2.ClientFrame.FromString,
+                    response_serializer=midstream_dot_wire_dot_midstream__pb2.ServerFrame.SerializeToString,
             ),
             'Follow': grpc.unary_stream_rpc_method_handler(
                     servicer.Follow,
@@ -192,6 +211,33 @@ class Midstream:
             '/midstream.v1.Midstream/Converse',
             midstream_dot_wire_dot_midstream__pb2.ClientEvent.SerializeToString,
             midstream_dot_wire_dot_midstream__pb2.ServerMessage.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def ConverseMany(request_iterator,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.stream_stream(
+            request_iterator,
+            target,
+            '/midstream.v1.Midstream/ConverseMany',
+            midstream_dot_wire_dot_midstream__pb2.ClientFrame.SerializeToString,
+            midstream_dot_wire_dot_midstream__pb2.ServerFrame.FromString,
             options,
             channel_credentials,
             insecure,
