@@ -5,6 +5,7 @@
     midstream bench --target 10.0.0.5:50051 --conversations 500 --corpus corpora/swda
     midstream bench --spawn --conversations 200 --seconds 30 --json     # a local server
     midstream bench --smoke --spawn                                     # a few seconds
+    midstream bench --spawn --multiplex -n 1000 --channels 4            # 4 multiplexed streams
 
 Each simulated conversation streams real transcript words (a corpus split, ``val`` by default)
 one per event at ``--rate`` words per second. The report gives the words per second achieved,
@@ -12,6 +13,10 @@ the latency from sending a word to its first hypothesis (p50/p95/p99), errors by
 and, when the server is local (``--server-pid`` or ``--spawn``), its CPU use and resident
 memory per live conversation. ``--baseline`` sends a trivial ``DescribeModels`` call at the same
 rate instead of words, to compare tagging with the bare transport round trip.
+
+``--multiplex`` carries the conversations over one ``ConverseMany`` stream per channel, each
+sending one frame every ``--tick-ms`` with every word due on it; latency is then timed from each
+word's scheduled time (the wait for the next frame included), not from the write.
 
 Latencies include the load generator's own delays: when its CPU use nears 100 % (shown in the
 report), the figures describe the generator, not the server; run it on another core or host.
@@ -36,7 +41,13 @@ from typing import Any
 
 from midstream._errors import CorpusNotFoundError, InputError, UnavailableError
 from midstream.client._common import DEFAULT_TARGET
-from midstream.client._load import LoadConfig, ProcessProbe, WordScript, run_load
+from midstream.client._load import (
+    DEFAULT_TICK_S,
+    LoadConfig,
+    ProcessProbe,
+    WordScript,
+    run_load,
+)
 from midstream.corpora import read_corpus
 
 #: Words read from the corpus for the script (enough that conversations rarely repeat).
@@ -81,7 +92,15 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("--split", default="val", help="corpus split (default val)")
     parser.add_argument("--baseline", action="store_true",
                         help="send DescribeModels calls at the same rate instead of words "
-                             "(the transport round trip)")
+                             "(the transport round trip); with --multiplex, one call per "
+                             "stream per frame that has words due")
+    parser.add_argument("--multiplex", action="store_true",
+                        help="carry the conversations over one ConverseMany stream per "
+                             "channel, sending one frame of every word due per tick; latency "
+                             "is then timed from each word's scheduled time")
+    parser.add_argument("--tick-ms", type=float, default=1000 * DEFAULT_TICK_S, metavar="MS",
+                        help="with --multiplex: milliseconds between two frames of a stream "
+                             f"(default {1000 * DEFAULT_TICK_S:g})")
     local = parser.add_mutually_exclusive_group()
     local.add_argument("--server-pid", type=int, default=None, metavar="PID",
                        help="process id of a local server: report its CPU and memory")
@@ -204,7 +223,8 @@ def run(args: argparse.Namespace) -> int:
         return LoadConfig(target=target, conversations=args.conversations, rate=args.rate,
                           seconds=args.seconds, ramp_s=ramp, channels=args.channels,
                           workload="describe" if args.baseline else "converse", token=token,
-                          tls=bool(args.tls), tls_ca=args.tls_ca, seed=args.seed)
+                          tls=bool(args.tls), tls_ca=args.tls_ca, seed=args.seed,
+                          multiplex=bool(args.multiplex), tick_s=args.tick_ms / 1000)
 
     if args.spawn:
         if args.tls:
@@ -239,13 +259,17 @@ def _print(s: dict[str, Any]) -> None:
     what = "DescribeModels calls" if s["workload"] == "describe" else "words"
     print(f"target {s['target']}: {s['opened']}/{s['conversations']} conversations open, "
           f"{s['rate_per_conversation']:g} {what}/s each, {s['measured_s']:.1f} s")
+    if s["multiplex"]:
+        print(f"  carried by   {s['channels']} ConverseMany streams, one frame per "
+              f"{s['tick_ms']:g} ms tick each")
     print(f"  words from   {s['corpus']}")
     print(f"  offered      {s['offered_wps']:.1f} {what}/s")
     print(f"  achieved     {s['achieved_wps']:.1f} {what}/s answered in the window "
           f"({s['words_answered']} of {s['words_sent']} answered in all)")
     lat = s["latency_ms"]
     print(f"  latency ms   p50 {_ms(lat['p50'])}  p95 {_ms(lat['p95'])}  p99 {_ms(lat['p99'])}  "
-          f"max {_ms(lat['max'])}   (word sent -> its first hypothesis)")
+          f"max {_ms(lat['max'])}   (word "
+          f"{'scheduled' if s['multiplex'] else 'sent'} -> its first hypothesis)")
     lag = s["send_lag_ms"]
     print(f"  send lag ms  p99 {_ms(lag['p99'])}   load generator CPU "
           f"{s['client_cpu_percent']:.0f} %")

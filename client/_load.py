@@ -9,6 +9,13 @@ a conversation not opened in time, or one whose last updates had not arrived 10 
 window). The ``describe`` workload sends a trivial ``DescribeModels`` call at
 the same rate instead: the transport round trip against which tagging is compared.
 
+With ``multiplex`` the conversations ride ``ConverseMany`` streams instead, one per channel:
+every ``tick_s`` each stream sends one frame holding every word that fell due on it since the
+last frame. Latency is then timed from each word's *scheduled* time, not from the frame's
+write, so the wait for the next tick is inside the figure. The ``describe`` workload then makes
+one ``DescribeModels`` call per stream per tick that has words due, timed the same way: the
+transport round trip of the frames.
+
 :class:`ProcessProbe` reads a local server's CPU time and resident memory from ``/proc``.
 
 This module talks protobuf directly (the :class:`~midstream.client.Client` converts every
@@ -19,12 +26,13 @@ imports no model code. Use from one event loop; nothing here is thread-safe.
 from __future__ import annotations
 
 import asyncio
+import heapq
 import math
 import os
 import random
 import time
 from collections import Counter
-from collections.abc import Sequence
+from collections.abc import AsyncIterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
@@ -45,6 +53,9 @@ OPEN_TIMEOUT = "OPEN_TIMEOUT"
 SETTLE_TIMEOUT = "SETTLE_TIMEOUT"
 #: Seconds a conversation waits for updates of its last words after it stopped sending.
 _SETTLE_S = 10.0
+#: Default seconds between two frames of a multiplexed stream (common practice for audio
+#: front ends is 10-20 ms packets, from memory; a word due just after a frame waits this long).
+DEFAULT_TICK_S = 0.01
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -53,7 +64,9 @@ class LoadConfig:
 
     ``rate`` is words per second per conversation; ``seconds`` is how long each conversation
     sends after all are open; ``ramp_s`` spreads the opening of the conversations (seconds).
-    ``channels`` is how many HTTP/2 connections carry the streams.
+    ``channels`` is how many HTTP/2 connections carry the streams. ``multiplex`` carries the
+    conversations over one ``ConverseMany`` stream per channel, sending a frame every
+    ``tick_s`` seconds.
     """
 
     target: str
@@ -67,6 +80,8 @@ class LoadConfig:
     tls: bool = False
     tls_ca: Path | None = None
     seed: int = 0
+    multiplex: bool = False
+    tick_s: float = DEFAULT_TICK_S
 
     def __post_init__(self) -> None:
         if self.conversations < 1:
@@ -77,6 +92,8 @@ class LoadConfig:
             raise InputError(f"seconds must be above 0, got {self.seconds}")
         if self.ramp_s < 0 or self.channels < 1:
             raise InputError("ramp_s must be >= 0 and channels >= 1")
+        if not 0 < self.tick_s <= 1:
+            raise InputError(f"tick_s must be above 0 and at most 1 second, got {self.tick_s}")
 
 
 class WordScript:
@@ -189,6 +206,8 @@ class LoadResult:
             "offered_wps": config.conversations * config.rate,
             "seconds": config.seconds,
             "channels": config.channels,
+            "multiplex": config.multiplex,
+            "tick_ms": round(1000 * config.tick_s, 3) if config.multiplex else None,
             "opened": self.opened,
             "words_sent": self.words_sent,
             "words_answered": self.words_answered,
@@ -383,6 +402,187 @@ async def _describe(run: _Run, stub: pb_grpc.MidstreamStub, number: int) -> None
         due += interval
 
 
+class _Schedule:
+    """When each word of a set of conversations falls due, earliest first.
+
+    A heap of (due time, conversation, word index), so a tick costs O(words due * log n).
+    """
+
+    def __init__(self, run: _Run, numbers: Sequence[int]) -> None:
+        config = run.config
+        self._interval = 1 / config.rate
+        self._stop = run.stop
+        # The same random phases as the one-stream-per-conversation mode.
+        firsts = ((run.start + random.Random(config.seed * 100003 + number).random()
+                   * self._interval, number, 0) for number in numbers)
+        self._heap = [first for first in firsts if first[0] < self._stop]
+        heapq.heapify(self._heap)
+
+    def __bool__(self) -> bool:
+        return bool(self._heap)
+
+    def due(self, now: float) -> list[tuple[float, int, int]]:
+        """Every (due time, conversation, word index) due by ``now``; schedules the next."""
+        heap, out = self._heap, []
+        while heap and heap[0][0] <= now:
+            due, number, index = heapq.heappop(heap)
+            out.append((due, number, index))
+            if due + self._interval < self._stop:
+                heapq.heappush(heap, (due + self._interval, number, index + 1))
+        return out
+
+
+async def _ticks(run: _Run) -> AsyncIterator[float]:
+    """Tick times from the start of sending, every ``tick_s``, without drift, until stop."""
+    loop = asyncio.get_running_loop()
+    tick = run.start
+    while tick < run.stop + run.config.tick_s:
+        delay = tick - loop.time()
+        if delay > 0:
+            await asyncio.sleep(delay)
+        yield loop.time()
+        tick += run.config.tick_s
+
+
+async def _multiplexed(run: _Run, stub: pb_grpc.MidstreamStub, numbers: list[int]) -> None:
+    """Conversations ``numbers`` over one ConverseMany stream: frames of due words per tick."""
+    config, result = run.config, run.result
+    loop = asyncio.get_running_loop()
+    call = stub.ConverseMany(metadata=run.metadata)
+    # Channel numbers count from 1 in opening order, as the protocol asks.
+    channel_of = {number: index + 1 for index, number in enumerate(numbers)}
+    unanswered = set(channel_of.values())  # opens not yet answered
+    live: set[int] = set()
+    pending: dict[tuple[int, str], float] = {}  # (channel, word id) -> scheduled time
+    reader: asyncio.Task[None] | None = None
+
+    def answered(channel: int, *, ok: bool) -> None:
+        if channel in unanswered:
+            unanswered.discard(channel)
+            run.opened_one()
+            if ok:
+                result.opened += 1
+                live.add(channel)
+
+    async def read_replies() -> None:
+        while True:
+            frame = await call.read()
+            if frame is grpc.aio.EOF:
+                return
+            now = loop.time()
+            for reply in frame.replies:
+                channel = reply.channel
+                if reply.WhichOneof("body") == "error":
+                    run.error(reply.error.code)
+                    answered(channel, ok=False)
+                    continue
+                message = reply.message
+                kind = message.WhichOneof("body")
+                if kind == "update":
+                    for state in message.update.words:
+                        due = pending.pop((channel, state.word_id), None)
+                        if due is not None:
+                            result.words_answered += 1
+                            result.latencies.append(now - due)
+                            if now <= run.stop:
+                                result.answered_in_window += 1
+                elif kind == "welcome":
+                    answered(channel, ok=True)
+                elif kind == "ended":
+                    live.discard(channel)
+
+    try:
+        reader = asyncio.ensure_future(read_replies())
+        # Open at the same moments the one-stream-per-conversation mode would, in frames.
+        spacing = config.ramp_s / config.conversations
+        opening = [(number * spacing, channel_of[number]) for number in numbers]
+        began = loop.time()
+        while opening:
+            now = loop.time() - began
+            due_now = [c for at, c in opening if at <= now]
+            opening = [(at, c) for at, c in opening if at > now]
+            if due_now:
+                await call.write(pb.ClientFrame(events=[
+                    pb.ChannelEvent(channel=c, event=pb.ClientEvent(open=pb.OpenConversation()))
+                    for c in due_now]))
+            if opening:
+                await asyncio.sleep(max(opening[0][0] - (loop.time() - began), config.tick_s))
+        await run.go.wait()
+        schedule = _Schedule(run, [n for n in numbers if channel_of[n] in live])
+        async for now in _ticks(run):
+            due_words = schedule.due(now)
+            if not due_words:
+                if not schedule:
+                    break
+                continue
+            events = []
+            for due, number, index in due_words:
+                speaker, text = run.script.word(number, index)
+                channel, word_id = channel_of[number], f"w{index}"
+                pending[(channel, word_id)] = due
+                events.append(pb.ChannelEvent(channel=channel, event=pb.ClientEvent(
+                    words=pb.WordBatch(words=[
+                        pb.SpokenWord(word_id=word_id, speaker=speaker, text=text)]))))
+            sent = loop.time()
+            result.send_lag.extend(max(0.0, sent - due) for due, _, _ in due_words)
+            result.words_sent += len(events)
+            await call.write(pb.ClientFrame(events=events))
+        await call.write(pb.ClientFrame(events=[
+            pb.ChannelEvent(channel=c, event=pb.ClientEvent(close=pb.CloseConversation()))
+            for c in sorted(live)]))
+        await call.done_writing()
+        try:
+            await asyncio.wait_for(reader, timeout=_SETTLE_S)
+        except TimeoutError:
+            result.errors[SETTLE_TIMEOUT] += max(len(live), 1)
+    except grpc.aio.AioRpcError as exc:
+        # The stream failed: every conversation still on it failed with it.
+        result.errors[exc.code().name] += max(len(live) + len(unanswered), 1)
+    finally:
+        for channel in list(unanswered):
+            answered(channel, ok=False)
+        if reader is not None and not reader.done():
+            reader.cancel()
+        call.cancel()
+
+
+async def _describe_ticks(run: _Run, stub: pb_grpc.MidstreamStub, numbers: list[int]) -> None:
+    """The multiplexed baseline: one DescribeModels call per tick with words due."""
+    result = run.result
+    loop = asyncio.get_running_loop()
+    for _ in numbers:
+        result.opened += 1
+        run.opened_one()
+    await run.go.wait()
+
+    async def one_call(dues: list[float]) -> None:
+        sent = loop.time()
+        result.send_lag.extend(max(0.0, sent - due) for due in dues)
+        result.words_sent += len(dues)
+        try:
+            await stub.DescribeModels(pb.DescribeModelsRequest(), metadata=run.metadata)
+        except grpc.aio.AioRpcError as exc:
+            result.errors[exc.code().name] += len(dues)
+            return
+        now = loop.time()
+        result.words_answered += len(dues)
+        result.latencies.extend(now - due for due in dues)
+        if now <= run.stop:
+            result.answered_in_window += len(dues)
+
+    schedule = _Schedule(run, numbers)
+    calls: set[asyncio.Task[None]] = set()
+    async for now in _ticks(run):
+        dues = [due for due, _, _ in schedule.due(now)]
+        if dues:
+            task = asyncio.ensure_future(one_call(dues))
+            calls.add(task)
+            task.add_done_callback(calls.discard)
+        elif not schedule:
+            break
+    await asyncio.gather(*calls)
+
+
 async def run_load(config: LoadConfig, script: WordScript, *,
                    probe: ProcessProbe | None = None) -> LoadResult:
     """Run one load test and return its measurements.
@@ -399,14 +599,21 @@ async def run_load(config: LoadConfig, script: WordScript, *,
     try:
         stubs = [pb_grpc.MidstreamStub(c) for c in channels]  # type: ignore[no-untyped-call]
         result.server_before = probe.sample() if probe is not None else None
-        body = _converse if config.workload == "converse" else _describe
         tasks = []
-        spacing = config.ramp_s / config.conversations
-        for number in range(config.conversations):
-            tasks.append(asyncio.ensure_future(
-                body(run, stubs[number % len(stubs)], number)))
-            if spacing > 0:
-                await asyncio.sleep(spacing)
+        if config.multiplex:
+            streams = _multiplexed if config.workload == "converse" else _describe_ticks
+            for index, stub in enumerate(stubs):
+                numbers = list(range(index, config.conversations, len(stubs)))
+                if numbers:
+                    tasks.append(asyncio.ensure_future(streams(run, stub, numbers)))
+        else:
+            body = _converse if config.workload == "converse" else _describe
+            spacing = config.ramp_s / config.conversations
+            for number in range(config.conversations):
+                tasks.append(asyncio.ensure_future(
+                    body(run, stubs[number % len(stubs)], number)))
+                if spacing > 0:
+                    await asyncio.sleep(spacing)
         try:
             async with asyncio.timeout(config.ramp_s + 30.0):
                 await run.all_open.wait()

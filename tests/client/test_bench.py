@@ -7,6 +7,7 @@ word sent got a hypothesis, no errors); they never assert on timings.
 
 from __future__ import annotations
 
+import asyncio
 import json
 import math
 import os
@@ -19,7 +20,14 @@ import pytest
 from client_kit import REPO, Served, models_dir, served
 from midstream._errors import InputError
 from midstream.client._cli import main
-from midstream.client._load import LoadConfig, ProcessProbe, WordScript, _distribution
+from midstream.client._cmd_bench import load_script
+from midstream.client._load import (
+    LoadConfig,
+    ProcessProbe,
+    WordScript,
+    _distribution,
+    run_load,
+)
 
 __all__ = ["models_dir", "served"]  # fixtures used here, re-exported for pytest
 
@@ -100,6 +108,40 @@ def test_bench_spawns_its_own_server(models_dir: Path, swda_dir: Path,
 
 
 @pytest.mark.corpus
+def test_bench_multiplexed_streams(served: Served, swda_dir: Path,
+                                   capsys: pytest.CaptureFixture[str]) -> None:
+    summary = _bench(["--target", served.target, "--corpus", str(swda_dir), "--multiplex",
+                      "-n", "6", "--channels", "2", "--tick-ms", "20"], capsys)
+    # --smoke keeps at most 4 conversations and one channel.
+    _check_load(summary, local=False)
+    assert summary["workload"] == "converse" and summary["multiplex"] is True
+    assert summary["tick_ms"] == 20.0 and summary["channels"] == 1
+    # Every conversation sent words, in frames: 4 x 3 words/s x 2 s, give or take a phase.
+    assert summary["words_sent"] >= 4 * 5
+
+
+@pytest.mark.corpus
+def test_bench_multiplexed_baseline(served: Served, swda_dir: Path,
+                                    capsys: pytest.CaptureFixture[str]) -> None:
+    summary = _bench(["--target", served.target, "--corpus", str(swda_dir), "--multiplex",
+                      "--baseline"], capsys)
+    _check_load(summary, local=False)
+    assert summary["workload"] == "describe" and summary["multiplex"] is True
+
+
+@pytest.mark.corpus
+def test_multiplexed_load_spreads_over_streams(served: Served, swda_dir: Path) -> None:
+    # Seven conversations over three streams (3, 2, 2): all open, every word answered.
+    script, _ = load_script(swda_dir, "val", limit=2_000)
+    result = asyncio.run(run_load(LoadConfig(
+        target=served.target, conversations=7, seconds=1.5, ramp_s=0.1, channels=3,
+        multiplex=True), script))
+    summary = result.summary()
+    _check_load(summary | {"corpus": ""}, local=False)
+    assert summary["opened"] == 7
+
+
+@pytest.mark.corpus
 def test_human_report_names_latency_and_errors(served: Served, swda_dir: Path,
                                                capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["bench", "--smoke", "--target", served.target, "--corpus",
@@ -127,7 +169,7 @@ def test_unreachable_server_is_reported_not_hung(swda_dir: Path,
 
 @pytest.mark.parametrize("field, value", [("conversations", 0), ("rate", 0.0),
                                           ("rate", math.inf), ("seconds", -1.0),
-                                          ("channels", 0)])
+                                          ("channels", 0), ("tick_s", 0.0), ("tick_s", 2.0)])
 def test_load_config_refuses_bad_values(field: str, value: float) -> None:
     with pytest.raises(InputError):
         LoadConfig(**{"target": "x:1", "conversations": 1, field: value})  # type: ignore[arg-type]
