@@ -9,6 +9,11 @@ then writes the Markdown page with the machine, its load, the exact commands and
     .venv/bin/python scripts/bench_report.py                         # full: about 15 minutes
     .venv/bin/python scripts/bench_report.py --quick --out /tmp/b.md  # shorter steps
     .venv/bin/python scripts/bench_report.py --reuse /tmp/bench       # rewrite from saved output
+    .venv/bin/python scripts/bench_report.py --multiplex              # also the ConverseMany sweep
+
+``--multiplex`` runs ``bench_service.py`` a second time with ``--multiplex`` (the conversations
+carried over a few ``ConverseMany`` streams) and adds its table; ``--reuse`` shows it whenever
+the saved output holds it.
 
 Every run's raw output is kept in ``--work`` (JSON and text), so the page can be rewritten
 without measuring again (``--reuse``).
@@ -54,6 +59,10 @@ def main() -> int:
     parser.add_argument("--smoke", action="store_true",
                         help="every script in its smoke mode (seconds; checks the pipeline)")
     parser.add_argument("--steps", default=None, help="passed to bench_service.py")
+    parser.add_argument("--multiplex", action="store_true",
+                        help="also run bench_service.py --multiplex (ConverseMany streams)")
+    parser.add_argument("--multiplex-steps", default=None,
+                        help="passed as --steps to bench_service.py --multiplex")
     parser.add_argument("--work", type=Path, default=Path("/tmp/midstream-bench"))
     parser.add_argument("--reuse", type=Path, default=None, metavar="DIR",
                         help="write the page from the output saved in DIR; measure nothing")
@@ -77,15 +86,25 @@ def main() -> int:
             service_cmd += ["--steps", args.steps]
         memory_cmd = [sys.executable, str(_SCRIPTS / "bench_memory.py"), *model_args,
                       "--json", str(work / "memory.json")]
+        multiplex_cmd = [sys.executable, str(_SCRIPTS / "bench_service.py"), *model_args,
+                         "--multiplex", "--json", str(work / "service_multiplex.json")]
+        if args.quick:
+            multiplex_cmd.append("--quick")
+        if args.multiplex_steps:
+            multiplex_cmd += ["--steps", args.multiplex_steps]
         if args.smoke:
-            for command in (engine_cmd, service_cmd, memory_cmd):
+            for command in (engine_cmd, service_cmd, memory_cmd, multiplex_cmd):
                 command.append("--smoke")
+        (work / "service_multiplex.json").unlink(missing_ok=True)
         if (_SCRIPTS / "bench_engine.py").exists():
             _run(engine_cmd, work / "engine.txt")
         _run(service_cmd, work / "service.txt")
         _run(memory_cmd, work / "memory.txt")
+        if args.multiplex:
+            _run(multiplex_cmd, work / "service_multiplex.txt")
         commands_file.write_text(json.dumps({
             "engine": _shown(engine_cmd), "service": _shown(service_cmd),
+            "service_multiplex": _shown(multiplex_cmd) if args.multiplex else None,
             "memory": _shown(memory_cmd), "machine_before": before, "models": models_note,
             "report": _shown([sys.executable, str(Path(__file__).resolve()), *sys.argv[1:]]),
             "machine_after": machine()}, indent=2), encoding="utf-8")
@@ -94,7 +113,11 @@ def main() -> int:
     memory = json.loads((work / "memory.json").read_text(encoding="utf-8"))
     engine_text = ((work / "engine.txt").read_text(encoding="utf-8")
                    if (work / "engine.txt").exists() else "")
-    args.out.write_text(render(commands, service, memory, engine_text), encoding="utf-8")
+    multiplexed_file = work / "service_multiplex.json"
+    multiplexed = (json.loads(multiplexed_file.read_text(encoding="utf-8"))
+                   if multiplexed_file.exists() else None)
+    args.out.write_text(render(commands, service, memory, engine_text, multiplexed),
+                        encoding="utf-8")
     print(f"wrote {args.out}", file=sys.stderr)
     return 0
 
@@ -110,9 +133,31 @@ def _load(info: dict[str, Any]) -> str:
     return " / ".join(f"{x:.2f}" for x in info["loadavg"])
 
 
+def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[str]:
+    """The ConverseMany sweep: its command, how it differs, its table."""
+    largest = service["largest_passing"]
+    return [
+        "## Live conversations per server core, multiplexed (ConverseMany)",
+        "",
+        f"`{command or 'scripts/bench_service.py --multiplex'}`",
+        "",
+        f"The same steps, but the conversations ride {service.get('channels', 4)} "
+        f"`ConverseMany` streams (one per connection): every {service.get('tick_ms', 10):g} ms "
+        "each stream sends one frame holding every word that fell due on it, and the server "
+        "answers each frame with one reply frame. Latency is from each word's *scheduled* "
+        "time (so the wait for the next frame is inside it) to the first update naming it. "
+        "*Baseline*: one `DescribeModels` call per frame, timed the same way. Largest N "
+        f"meeting p99 ≤ {service['p99_budget_ms']:g} ms with no errors: **{largest}** "
+        f"({largest * service['rate']:g} words/s).",
+        "",
+        *service_table(service["steps"]),
+        "",
+    ]
+
+
 def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, Any],
-           engine_text: str) -> str:
-    """The benchmarks page."""
+           engine_text: str, multiplexed: dict[str, Any] | None = None) -> str:
+    """The benchmarks page; ``multiplexed`` is ``bench_service.py --multiplex`` output."""
     m0, m1 = commands["machine_before"], commands["machine_after"]
     eng = service["engine"]
     steps = service["steps"]
@@ -158,6 +203,11 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         f"| largest N with p99 word→hypothesis ≤ {service['p99_budget_ms']:g} ms at "
         f"{service['rate']:g} words/s for {service['seconds']:g} s, no errors, server on one "
         f"core | **{largest}** conversations ({largest * service['rate']:g} words/s) | 1,000 |",
+        *([f"| the same, conversations multiplexed over "
+           f"{multiplexed.get('channels', 4)} `ConverseMany` streams "
+           f"| **{multiplexed['largest_passing']}** conversations "
+           f"({multiplexed['largest_passing'] * multiplexed['rate']:g} words/s) | 1,000 |"]
+          if multiplexed else []),
         f"| p99 latency ÷ p99 of the trivial RPC at the same N and rate, at the largest N "
         f"the server kept up with (N={steady['conversations']}) "
         f"| {steady['p99_ratio_to_baseline']:.2f}x | - |",
@@ -202,6 +252,8 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         f"{eng['cpu_ms_per_word']:.3f} ms CPU per word = {eng['words_per_cpu_s']:,.0f} words "
         "per CPU second.",
         "",
+        *(_multiplexed_section(commands.get("service_multiplex"), multiplexed)
+          if multiplexed else []),
         "## Memory per idle live conversation",
         "",
         f"`{commands['memory']}`",
@@ -236,6 +288,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "    [--token T | --tls --tls-ca ca.pem] [--json]",
         "midstream bench --spawn --models DIR --server-cpu 0 --client-cpu 1 -n 200",
         "midstream bench --baseline ...      # DescribeModels at the same rate: transport only",
+        "midstream bench --multiplex ...     # conversations over a few ConverseMany streams",
         "midstream bench --smoke --spawn     # a few seconds, checks the setup",
         "```",
         "",
@@ -253,6 +306,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         + "   # everything, writes this page",
         commands["engine"],
         commands["service"],
+        *([commands["service_multiplex"]] if commands.get("service_multiplex") else []),
         commands["memory"],
         "midstream bench --target HOST:PORT --conversations 500 --corpus DIR   # any server",
         "```",

@@ -16,6 +16,12 @@ are measured in the same run, so the headline figures are ratios, not machine-de
     .venv/bin/python scripts/bench_service.py                       # full: 60 s per step
     .venv/bin/python scripts/bench_service.py --quick               # 15 s steps
     .venv/bin/python scripts/bench_service.py --smoke --json out.json
+    .venv/bin/python scripts/bench_service.py --multiplex --steps 500,1000,1200
+
+``--multiplex`` carries each step's conversations over one ``ConverseMany`` stream per channel
+(``midstream bench --multiplex``): one frame per stream every ``--tick-ms`` with every word due,
+latency timed from each word's scheduled time; the transport baseline is then one
+``DescribeModels`` call per frame, timed the same way.
 
 Absolute figures depend on the machine and on what else runs on it (see the load average
 printed first); compare ratios.
@@ -34,11 +40,19 @@ from typing import Any
 from _benchkit import corpora_root, machine, models_folder, pin_self
 from midstream._types import Word
 from midstream.client._cmd_bench import load_script, spawn_server
-from midstream.client._load import LoadConfig, ProcessProbe, WordScript, run_load
+from midstream.client._load import (
+    DEFAULT_TICK_S,
+    LoadConfig,
+    ProcessProbe,
+    WordScript,
+    run_load,
+)
 from midstream.models import ModelBundle
 
 _FULL_STEPS: tuple[int, ...] = (100, 250, 500, 1000, 1500)
 _QUICK_STEPS: tuple[int, ...] = (50, 100, 250, 500, 1000)
+_MULTIPLEX_STEPS: tuple[int, ...] = (500, 1000, 1200, 1500)
+_MULTIPLEX_QUICK_STEPS: tuple[int, ...] = (250, 500, 1000, 1200)
 #: A step "keeps up" when this share of the offered words is answered within the window.
 _KEEPS_UP = 0.9
 
@@ -74,12 +88,13 @@ def one_step(args: argparse.Namespace, models: Path, script: WordScript, n: int
     with spawn_server(models=models, cpu=args.server_core, live=max(256, n),
                       token=None) as (target, pid):
         probe = ProcessProbe(pid)
+        mode = {"multiplex": args.multiplex, "tick_s": args.tick_ms / 1000}
         load = asyncio.run(run_load(LoadConfig(
             target=target, conversations=n, rate=args.rate, seconds=args.seconds, ramp_s=ramp,
-            channels=args.channels), script, probe=probe)).summary()
+            channels=args.channels, **mode), script, probe=probe)).summary()
         base = asyncio.run(run_load(LoadConfig(
             target=target, conversations=n, rate=args.rate, seconds=args.baseline_seconds,
-            ramp_s=0.0, channels=args.channels, workload="describe"), script,
+            ramp_s=0.0, channels=args.channels, workload="describe", **mode), script,
             probe=probe)).summary()
     server = load["server"]
     answered = max(load["answered_in_window"], 1)
@@ -141,6 +156,11 @@ def main() -> int:
     parser.add_argument("--baseline-seconds", type=float, default=20.0)
     parser.add_argument("--p99-ms", type=float, default=50.0, help="latency budget (p99)")
     parser.add_argument("--channels", type=int, default=4)
+    parser.add_argument("--multiplex", action="store_true",
+                        help="carry the conversations over one ConverseMany stream per channel "
+                             f"(default steps {','.join(map(str, _MULTIPLEX_STEPS))})")
+    parser.add_argument("--tick-ms", type=float, default=1000 * DEFAULT_TICK_S,
+                        help="with --multiplex: milliseconds between two frames of a stream")
     parser.add_argument("--server-core", type=int, default=0)
     parser.add_argument("--client-core", type=int, default=1)
     parser.add_argument("--engine-words", type=int, default=20_000)
@@ -153,9 +173,10 @@ def main() -> int:
     parser.add_argument("--json", type=Path, default=None, metavar="FILE",
                         help="also write every figure to FILE as JSON")
     args = parser.parse_args()
-    steps = _FULL_STEPS
+    steps = _MULTIPLEX_STEPS if args.multiplex else _FULL_STEPS
     if args.quick:
-        steps, args.seconds, args.baseline_seconds = _QUICK_STEPS, 15.0, 10.0
+        args.seconds, args.baseline_seconds = 15.0, 10.0
+        steps = _MULTIPLEX_QUICK_STEPS if args.multiplex else _QUICK_STEPS
     if args.smoke:
         steps, args.seconds, args.baseline_seconds, args.engine_words = (4,), 2.0, 2.0, 400
     if args.steps:
@@ -171,6 +192,9 @@ def main() -> int:
           f"(some, avg60) {info['cpu_pressure_avg60']}%")
     print(f"models: {models_note}")
     print(f"words: {source}")
+    if args.multiplex:
+        print(f"transport: {args.channels} ConverseMany streams, a frame every "
+              f"{args.tick_ms:g} ms each; latency from each word's scheduled time")
 
     # The engine baseline runs on the core the server will use, before any server starts.
     pin_self(args.server_core)
@@ -203,7 +227,8 @@ def main() -> int:
     transport_ratio = busiest["server_cpu_ms_per_word"] / max(
         busiest["server_cpu_ms_per_baseline_call"], 1e-9)
     print(f"largest N meeting p99 <= {args.p99_ms:g} ms at {args.rate:g} words/s with no "
-          f"errors: {largest}" + (" (none of the steps)" if not passing else ""))
+          f"errors{' (multiplexed)' if args.multiplex else ''}: {largest}"
+          + (" (none of the steps)" if not passing else ""))
     per_core = 1000 / max(busiest["server_cpu_ms_per_word"], 1e-9)
     print(f"projection from server CPU time (N={busiest['conversations']}): "
           f"{per_core:,.0f} words/s = {per_core / args.rate:,.0f} conversations at "
@@ -218,6 +243,8 @@ def main() -> int:
             "machine": info, "models": models_note, "words": source, "rate": args.rate,
             "seconds": args.seconds, "p99_budget_ms": args.p99_ms, "engine": engine,
             "steps": results, "largest_passing": largest,
+            "multiplex": args.multiplex, "tick_ms": args.tick_ms if args.multiplex else None,
+            "channels": args.channels,
             "service_to_engine_cpu_ratio": round(service_ratio, 3),
             "projected_words_per_core": round(per_core, 1),
             "projected_conversations_per_core": round(per_core / args.rate, 1),

@@ -230,6 +230,20 @@ def test_bench_service_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -
 
 @pytest.mark.corpus
 @pytest.mark.slow
+def test_bench_service_multiplexed_smoke(models_dir: Path, swda_dir: Path,
+                                         tmp_path: Path) -> None:
+    result = _script("bench_service.py", "--models", str(models_dir), "--corpus",
+                     str(swda_dir), "--multiplex", tmp_path=tmp_path)
+    assert result["multiplex"] is True and result["tick_ms"] > 0
+    (step,) = result["steps"]
+    _check_load(step["load"] | {"corpus": ""}, local=True)
+    assert step["load"]["multiplex"] is True
+    assert step["baseline"]["workload"] == "describe" and step["baseline"]["multiplex"] is True
+    assert step["baseline"]["words_answered"] == step["baseline"]["words_sent"] > 0
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
 def test_bench_memory_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
     result = _script("bench_memory.py", "--models", str(models_dir), "--corpus",
                      str(swda_dir), tmp_path=tmp_path)
