@@ -6,7 +6,7 @@
 subclasses mapped from gRPC status codes.
 """
 
-from midstream.client._client import Client, ConversationStream, RetryPolicy
+from midstream.client._client import Client, ConversationStream, MultiplexedStream, RetryPolicy
 from midstream.client._inputs import TimedEvent, parse_ctm, parse_jsonl_events, read_events
 from midstream.client._results import (
     AddWord,
@@ -38,6 +38,7 @@ __all__ = [
     "Gap",
     "GapReason",
     "ModelInfo",
+    "MultiplexedStream",
     "Reconnected",
     "ReplaceWord",
     "RetryPolicy",

@@ -9,6 +9,16 @@
             async for event in stream:          # Welcome, HypothesisUpdate..., Ended
                 ...
 
+Callers that carry many conversations at once (a gateway) can send them over one stream,
+one message per flush rather than one per event::
+
+    async with client.converse_many() as mux:
+        channel = mux.open()
+        mux.send_words(channel, [AddWord(word_id="w1", word=Word(text="uh", speaker="A"))])
+        await mux.flush()
+        async for channel, event in mux:        # Welcome, updates, Ended, or a refusal error
+            ...
+
 A :class:`Client` owns one gRPC channel; open it with ``async with`` (or :meth:`Client.connect`)
 and close it with :meth:`Client.close` (idempotent). One client may serve many concurrent
 conversations and calls from tasks of the same event loop; it is not thread-safe (use
@@ -30,7 +40,7 @@ from typing import Any, Self
 
 import grpc
 import grpc.aio
-from midstream._errors import MidstreamError, UnavailableError
+from midstream._errors import InputError, MidstreamError, UnavailableError
 from midstream._types import HypothesisUpdate, Word
 from midstream.client._results import (
     AddWord,
@@ -57,6 +67,9 @@ from midstream.wire import _convert, midstream_pb2_grpc
 from midstream.wire import midstream_pb2 as pb
 
 _log = logging.getLogger(__name__)
+
+#: Events one ``ConverseMany`` frame may hold: the server's default ``max_events_per_frame``.
+DEFAULT_FRAME_EVENTS = 1024
 
 _GAP_REASONS = {
     pb.GAP_REASON_EVICTED: GapReason.EVICTED,
@@ -217,6 +230,16 @@ class Client:
         (read it from :attr:`ConversationStream.conversation_id`).
         """
         return ConversationStream(self, conversation_id or "")
+
+    def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS) -> MultiplexedStream:
+        """A stream that ingests many conversations, each on a channel; use ``async with``.
+
+        For callers carrying many conversations at once: events are queued and sent together
+        by :meth:`MultiplexedStream.flush`, one message per flush (``docs/service.md``).
+        ``frame_events`` caps the events queued between two flushes (the server's
+        ``max_events_per_frame``, 1024 unless configured otherwise).
+        """
+        return MultiplexedStream(self, frame_events=frame_events)
 
     async def follow(self, conversation_id: str, *,
                      from_seq: int | None = None) -> AsyncGenerator[ServerEvent, None]:
@@ -466,3 +489,150 @@ class ConversationStream:
         code = await self._call.code()
         details = await self._call.details()
         return error_from_status(code, details, target=self._client.target)
+
+
+class MultiplexedStream:
+    """Many ingesting conversations over one stream; obtained from :meth:`Client.converse_many`.
+
+    ``async with`` starts the call; leaving the block normally half-closes it (the server
+    finishes every open channel with ``ended`` ``CLOSED``) and drains the replies nobody read;
+    leaving it by an exception cancels the call (its conversations end as abandoned). Queue
+    events with the synchronous methods, send them with :meth:`flush`, and read
+    ``(channel, event)`` pairs with ``async for`` (from another task if need be). Two tasks must
+    not flush at once.
+    """
+
+    def __init__(self, client: Client, *, frame_events: int = DEFAULT_FRAME_EVENTS) -> None:
+        if frame_events < 1:
+            raise InputError(f"frame_events must be at least 1, not {frame_events}")
+        self._client = client
+        self._frame_events = frame_events
+        self._call: Any = None
+        self._queued: list[pb.ChannelEvent] = []
+        self._next_channel = 1
+        self._done_writing = False
+        self._finished = False  # the reply stream ended (or failed): nothing left to drain
+
+    async def __aenter__(self) -> Self:
+        stub = self._client._require_stub()
+        self._call = stub.ConverseMany(metadata=self._client._metadata())
+        return self
+
+    async def __aexit__(self, exc_type: type[BaseException] | None,
+                        exc: BaseException | None, tb: TracebackType | None) -> None:
+        if self._call is None:
+            return
+        if exc is not None:
+            self._call.cancel()
+            return
+        try:
+            if not self._finished:
+                await self.close()
+                async for _ in self:
+                    pass
+        finally:
+            self._call.cancel()
+
+    # --- queueing ---------------------------------------------------------------------------
+
+    def _queue(self, channel: int, event: pb.ClientEvent) -> None:
+        if self._done_writing:
+            raise UnavailableError("the multiplexed stream was closed: no more events")
+        if len(self._queued) >= self._frame_events:
+            raise InputError(f"{self._frame_events} events are queued (frame_events): flush "
+                             "before queueing more")
+        self._queued.append(pb.ChannelEvent(channel=channel, event=event))
+
+    def open(self, conversation_id: str | None = None) -> int:
+        """Queue the opening of a conversation; return its channel number.
+
+        Its :class:`~midstream.client.Welcome` (or an error) arrives on that channel.
+        """
+        channel = self._next_channel
+        self._queue(channel, pb.ClientEvent(open=pb.OpenConversation(
+            conversation_id=conversation_id or "")))
+        self._next_channel += 1
+        return channel
+
+    def send(self, channel: int, event: InputEvent) -> None:
+        """Queue one input event (a word, a replacement, a withdrawal or a hint)."""
+        self._queue(channel, _client_event(event))
+
+    def send_words(self, channel: int, words: Sequence[AddWord]) -> None:
+        """Queue new words of one channel as one batch, in the order a recogniser gave them."""
+        if words:
+            batch = [_convert.spoken_word_to_wire(w.word_id, w.word) for w in words]
+            self._queue(channel, pb.ClientEvent(words=pb.WordBatch(words=batch)))
+
+    def close_channel(self, channel: int) -> None:
+        """Queue the end of one conversation: its final update and ``Ended`` follow."""
+        self._queue(channel, pb.ClientEvent(close=pb.CloseConversation()))
+
+    @property
+    def queued(self) -> int:
+        """Events queued for the next :meth:`flush`."""
+        return len(self._queued)
+
+    # --- sending and reading ------------------------------------------------------------------
+
+    async def flush(self) -> None:
+        """Send every queued event as one frame (nothing when none is queued)."""
+        if not self._queued:
+            return
+        if self._call is None:
+            raise UnavailableError("the multiplexed stream is not open: use 'async with'")
+        frame = pb.ClientFrame(events=self._queued)
+        self._queued = []
+        try:
+            await self._call.write(frame)
+        except grpc.RpcError as exc:
+            raise self._client._error(exc, "ConverseMany") from exc
+        except asyncio.InvalidStateError as exc:
+            # grpc.aio raises this when writing to a call the server already finished.
+            raise await self._failure() from exc
+
+    async def close(self) -> None:
+        """Flush, then half-close: the server finishes every open channel. Idempotent."""
+        if self._done_writing or self._call is None:
+            return
+        await self.flush()
+        self._done_writing = True
+        try:
+            await self._call.done_writing()
+        except grpc.RpcError as exc:
+            raise self._client._error(exc, "ConverseMany") from exc
+
+    def __aiter__(self) -> AsyncIterator[tuple[int, ServerEvent | MidstreamError]]:
+        return self._replies()
+
+    async def _replies(self) -> AsyncIterator[tuple[int, ServerEvent | MidstreamError]]:
+        if self._call is None:
+            raise UnavailableError("the multiplexed stream is not open: use 'async with'")
+        target = self._client.target
+        while not self._finished:
+            try:
+                frame = await self._call.read()
+            except grpc.RpcError as exc:
+                self._finished = True
+                raise self._client._error(exc, "ConverseMany") from exc
+            if frame is grpc.aio.EOF:
+                self._finished = True
+                if await self._call.code() is not grpc.StatusCode.OK:
+                    raise await self._failure()
+                return
+            for reply in frame.replies:
+                if reply.WhichOneof("body") == "error":
+                    code = grpc.StatusCode.__members__.get(reply.error.code,
+                                                           grpc.StatusCode.UNKNOWN)
+                    yield reply.channel, error_from_status(
+                        code, f"channel {reply.channel}: {reply.error.message}",
+                        target=target, method="ConverseMany")
+                else:
+                    yield reply.channel, _server_event(reply.message)
+
+    async def _failure(self) -> MidstreamError:
+        """The mapped error of a call the server already finished with a status."""
+        code = await self._call.code()
+        details = await self._call.details()
+        return error_from_status(code, details, target=self._client.target,
+                                 method="ConverseMany")
