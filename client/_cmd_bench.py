@@ -257,6 +257,8 @@ def _ms(value: float) -> str:
 
 def _print(s: dict[str, Any]) -> None:
     what = "DescribeModels calls" if s["workload"] == "describe" else "words"
+    if s["workload"] == "describe" and s["multiplex"]:
+        what = "words (one DescribeModels call per frame)"
     print(f"target {s['target']}: {s['opened']}/{s['conversations']} conversations open, "
           f"{s['rate_per_conversation']:g} {what}/s each, {s['measured_s']:.1f} s")
     if s["multiplex"]:
