@@ -242,9 +242,8 @@ class ManyStream:
     def _flush(self, channel: _Channel) -> None:
         """Queue the channel's updates its caller has not been sent."""
         number, add = channel.number, self._out.replies.add
-        for message in channel.session.since(channel.sent):
-            channel.sent = message.update.seq
-            add(channel=number, message=message)
+        channel.sent = channel.session.since_into(
+            channel.sent, lambda: add(channel=number).message)
 
     def _finish(self, channel: _Channel, reason: pb.EndReason) -> None:
         """End the channel's conversation (if live), queue its last messages, forget it."""

@@ -27,7 +27,7 @@ import logging
 import secrets
 import time
 from collections import OrderedDict, deque
-from collections.abc import AsyncIterator, Iterable, Iterator
+from collections.abc import AsyncIterator, Callable, Iterable, Iterator
 from typing import Generic, TypeVar
 
 from midstream._errors import EventError, LimitExceededError, NotFoundError
@@ -389,6 +389,29 @@ class Session:
         messages = [self._wire(update) for update in reversed(newer)]
         self._shared_wire = None
         return messages
+
+    def since_into(self, seq: int, new_message: Callable[[], pb.ServerMessage]) -> int:
+        """Write the updates after ``seq`` (as :meth:`since`) into messages ``new_message`` makes.
+
+        For a caller that collects replies in a frame of its own: each update is built inside
+        the frame rather than built alone and copied in. Returns the last sequence number
+        written (``seq`` when there was none).
+        """
+        newer: list[HypothesisUpdate] = []
+        for update in reversed(self._replay):
+            if update.seq <= seq:
+                break
+            newer.append(update)
+        shared = self._shared_wire
+        self._shared_wire = None
+        for update in reversed(newer):
+            message = new_message()
+            if shared is not None and shared.update.seq == update.seq:
+                message.CopyFrom(shared)  # followers were sent this one: copy, not convert
+            else:
+                cv.update_into_wire(update, message.update)
+            seq = update.seq
+        return seq
 
     def _wire(self, update: HypothesisUpdate) -> pb.ServerMessage:
         shared = self._shared_wire

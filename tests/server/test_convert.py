@@ -58,3 +58,27 @@ def test_update_round_trips() -> None:
     snap = cv.snapshot_to_wire(7, [word], [utt], conversation_final=False)
     assert cv.snapshot_from_wire(snap) == (7, (word,), (utt,), False)
     assert cv.hint_from_wire(cv.hint_to_wire("B", turn_end=True)) == ("B", True)
+
+
+def test_update_built_in_place_matches_its_states_built_alone() -> None:
+    # The update is written in place (inside a reply frame); its states must be exactly what
+    # the standalone state conversions give, an unset repair link included.
+    words = (
+        WordHypothesis(word_id="w1", speaker="A", label=DisfluencyLabel.FILLER,
+                       confidence=0.9, revision=0, final=False),
+        WordHypothesis(word_id="w2", speaker="A", label=DisfluencyLabel.REPARANDUM,
+                       confidence=0.6, revision=3, final=True, reparandum_of="w4",
+                       interruption_point=True),
+    )
+    utt = UtteranceHypothesis(utterance_id="u1", speaker="A", word_ids=("w1", "w2"),
+                              clean_text="", function=UtteranceFunction.QUESTION,
+                              fine_class="qy", confidence=0.25, revision=0, final=True)
+    update = HypothesisUpdate(seq=3, server_time=2.0, diff=HypothesisDiff(
+        words=words, utterances=(utt,)))
+    frame = pb.ServerFrame()
+    cv.update_into_wire(update, frame.replies.add(channel=5).message.update)
+    built = frame.replies[0].message.update
+    assert list(built.words) == [cv.word_state_to_wire(w) for w in words]
+    assert list(built.utterances) == [cv.utterance_state_to_wire(utt)]
+    assert (built.seq, built.server_time, list(built.withdrawn_word_ids)) == (3, 2.0, [])
+    assert built == cv.update_to_wire(update)
