@@ -46,5 +46,5 @@ def test_text_needs_a_character_outside_control_and_separator_categories(char: s
 def test_blank_ids_and_speakers_are_refused_as_empty(value: str) -> None:
     with pytest.raises(EventError, match="is empty"):
         check_word(value, Word(text="yes", speaker="A"), _LIMITS)
-    with pytest.raises(EventError, match="speaker of word 'w1'.* is empty"):
+    with pytest.raises(EventError, match=r"speaker of word 'w1'.* is empty"):
         check_word("w1", Word(text="yes", speaker=value), _LIMITS)
