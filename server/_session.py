@@ -49,7 +49,6 @@ from midstream.wire import midstream_pb2 as pb
 _log = logging.getLogger(__name__)
 
 State = WordHypothesis | UtteranceHypothesis
-_S = TypeVar("_S", WordHypothesis, UtteranceHypothesis)
 _T = TypeVar("_T")
 
 
@@ -92,6 +91,12 @@ class _Recent(Generic[_T]):
         if self._head >= len(self._items):
             raise IndexError("no items")
         return self._kept(self._head)
+
+    def newest(self) -> _T:
+        """The newest kept item; raises ``IndexError`` when empty."""
+        if self._head >= len(self._items):
+            raise IndexError("no items")
+        return self._kept(-1)
 
     def _kept(self, index: int) -> _T:
         item = self._items[index]
@@ -331,46 +336,49 @@ class Session:
 
     def _publish(self, diff: HypothesisDiff, received: float | None, *,
                  final: bool = False) -> HypothesisUpdate | None:
+        # Runs once per word: the tables and limits are fetched once, not per state.
         if not diff and not final:
             return None
-        self.seq += 1
+        seq = self.seq = self.seq + 1
         now = time.time()
-        update = HypothesisUpdate(seq=self.seq, server_time=now, diff=diff,
-                                  conversation_final=final)
+        update = HypothesisUpdate(seq=seq, server_time=now, diff=diff, conversation_final=final)
         self._replay.append(update)
+        history = self._revisions
+        if len(history) + len(diff.words) + len(diff.utterances) > history.capacity:
+            # Some append below evicts the oldest kept revision.
+            self.revisions_truncated = True
+        remember, kept = history.append, self.limits.snapshot_states
         revised = 0
+        words = self._words
         for word in diff.words:
             # A revision is a state whose revision count went up (not a word turning final).
-            before = self._words.get(word.word_id)
+            word_id = word.word_id
+            before = words.get(word_id)
             revised += word.revision > (before.revision if before is not None else 0)
-            self._keep(self._words, word.word_id, word)
-            self._remember(now, word)
+            words[word_id] = word  # a known id keeps its place: the oldest are dropped first
+            if len(words) > kept:
+                words.popitem(last=False)
+            remember((seq, now, word))
+        utterances = self._utterances
         for utterance in diff.utterances:
-            previous = self._utterances.get(utterance.utterance_id)
+            utterance_id = utterance.utterance_id
+            previous = utterances.get(utterance_id)
             revised += utterance.revision > (previous.revision if previous is not None else 0)
-            self._keep(self._utterances, utterance.utterance_id, utterance)
-            self._remember(now, utterance)
+            utterances[utterance_id] = utterance
+            if len(utterances) > kept:
+                utterances.popitem(last=False)
+            remember((seq, now, utterance))
         for word_id in diff.withdrawn_word_ids:
-            self._words.pop(word_id, None)
+            words.pop(word_id, None)
         if self._followers:
             message = self._shared_wire = _to_wire(update)
             for follower in self._followers:
-                follower.offer(message, self.seq)
+                follower.offer(message, seq)
         if revised:
             self._metrics.revisions.inc(revised)
         if received is not None:
             self._metrics.latency.observe(time.monotonic() - received)
         return update
-
-    def _keep(self, table: OrderedDict[str, _S], key: str, state: _S) -> None:
-        table[key] = state
-        if len(table) > self.limits.snapshot_states:
-            table.popitem(last=False)
-
-    def _remember(self, now: float, state: State) -> None:
-        if len(self._revisions) == self._revisions.capacity:
-            self.revisions_truncated = True
-        self._revisions.append((self.seq, now, state))
 
     # --- reading ---------------------------------------------------------------------------
 
@@ -397,14 +405,19 @@ class Session:
         the frame rather than built alone and copied in. Returns the last sequence number
         written (``seq`` when there was none).
         """
-        newer: list[HypothesisUpdate] = []
-        for update in reversed(self._replay):
-            if update.seq <= seq:
-                break
-            newer.append(update)
+        if self.seq == seq + 1 and self._replay:
+            # The usual case, one update since the caller was last sent: the newest one.
+            newer = [self._replay.newest()]
+        else:
+            newer = []
+            for update in reversed(self._replay):
+                if update.seq <= seq:
+                    break
+                newer.append(update)
+            newer.reverse()
         shared = self._shared_wire
         self._shared_wire = None
-        for update in reversed(newer):
+        for update in newer:
             message = new_message()
             if shared is not None and shared.update.seq == update.seq:
                 message.CopyFrom(shared)  # followers were sent this one: copy, not convert

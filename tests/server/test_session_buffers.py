@@ -9,7 +9,12 @@ from collections import deque
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from midstream.server._session import _Recent
+from midstream import Word
+from midstream.models import ModelBundle
+from midstream.server import ServerLimits
+from midstream.server._metrics import ServerMetrics
+from midstream.server._session import Session, _Recent
+from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures by name
 
 
 class _Item:
@@ -27,7 +32,7 @@ def test_recent_keeps_what_a_bounded_deque_keeps(capacity: int, count: int) -> N
         assert list(recent) == list(reference)
         assert list(reversed(recent)) == list(reversed(reference))
         assert len(recent) == len(reference)
-        assert recent.oldest() == reference[0]
+        assert (recent.oldest(), recent.newest()) == (reference[0], reference[-1])
         # Bounded by about twice the capacity in slots, however many were appended.
         assert len(recent._items) <= 2 * capacity + 1
 
@@ -49,3 +54,24 @@ def test_oldest_of_an_empty_buffer_is_an_index_error() -> None:
     recent: _Recent[int] = _Recent(2)
     with pytest.raises(IndexError):
         recent.oldest()
+    with pytest.raises(IndexError):
+        recent.newest()
+
+
+_SPOKEN = ("so", "i", "uh", "i", "went", "to", "the", "the", "store", "yesterday")
+
+
+@pytest.mark.parametrize("capacity", range(1, 16))
+def test_history_says_truncated_from_the_first_state_it_drops(bundle: ModelBundle,
+                                                              capacity: int) -> None:
+    session = Session("c1", bundle.new_engine(),
+                      ServerLimits(history_revisions=capacity), ServerMetrics())
+    published = 0
+    for index, text in enumerate(_SPOKEN):
+        update = session.add_words([(f"w{index}", Word(text=text, speaker="A"))], 0.0)
+        assert update is not None
+        published += len(update.diff.words) + len(update.diff.utterances)
+        kept, truncated = session.revisions()
+        assert len(kept) == min(published, capacity)
+        assert truncated == (published > capacity)
+    assert published > capacity  # the words above did reach the bound
