@@ -11,6 +11,7 @@ from typing import Any
 
 import grpc
 from midstream._errors import EventError
+from midstream._types import Word
 from midstream.server._config import ServerLimits
 from midstream.server._limits import check_batch_size, check_id, check_word
 from midstream.server._session import Session
@@ -36,10 +37,14 @@ def apply_event(session: Session, event: pb.ClientEvent, received: float,
     """
     kind = event.WhichOneof("event")
     if kind == "words":
-        check_batch_size(len(event.words.words), limits)
-        words = [cv.spoken_word_from_wire(w) for w in event.words.words]
-        for word_id, word in words:
+        batch = event.words.words
+        check_batch_size(len(batch), limits)
+        # One pass (conversion never raises, so checking as it goes refuses the same word).
+        words: list[tuple[str, Word]] = []
+        for message in batch:
+            word_id, word = cv.spoken_word_from_wire(message)
             check_word(word_id, word, limits)
+            words.append((word_id, word))
         session.add_words(words, received)
     elif kind == "replace":
         word_id, word = cv.spoken_word_from_wire(event.replace.word)

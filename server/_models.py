@@ -36,7 +36,8 @@ class Engine(Protocol):
 
     Every method raises :class:`~midstream.EventError` for an event that breaks the protocol
     (duplicate or unknown word id, correcting a final word, events after ``finish``, text with
-    no speech content) and returns only what changed.
+    no speech content) and returns only what changed, naming each word and utterance at most
+    once per diff (the session publishes a one-word batch's diff without merging it).
     """
 
     def add_word(self, word_id: str, word: Word) -> HypothesisDiff: ...

@@ -265,16 +265,24 @@ class Session:
         published before the error propagates.
         """
         engine = self._engine_or_error()
+        timeline = self.timeline
         diffs: list[HypothesisDiff] = []
         try:
             for word_id, word in words:
-                self.timeline.check_new_word(word_id, word)
+                timeline.check_new_word(word_id, word)
                 diffs.append(engine.add_word(word_id, word))
-                self.timeline.record(word)
-                self.word_count += 1
-                self._metrics.words.inc()
+                timeline.record(word)
         finally:
-            update = self._publish(merge_diffs(diffs), received) if diffs else None
+            if diffs:
+                # Counted once per batch: the counter takes a lock on every call.
+                self.word_count += len(diffs)
+                self._metrics.words.inc(len(diffs))
+                # One diff needs no merging: an engine names each word and utterance at
+                # most once per diff (merging it would give the same diff, rebuilt).
+                update = self._publish(diffs[0] if len(diffs) == 1 else merge_diffs(diffs),
+                                       received)
+            else:
+                update = None
         return update
 
     def replace_word(self, word_id: str, word: Word, received: float,

@@ -13,7 +13,7 @@ from midstream import Word
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics
-from midstream.server._session import Session, _Recent
+from midstream.server._session import Session, _Recent, merge_diffs
 from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures by name
 
 
@@ -75,3 +75,13 @@ def test_history_says_truncated_from_the_first_state_it_drops(bundle: ModelBundl
         assert len(kept) == min(published, capacity)
         assert truncated == (published > capacity)
     assert published > capacity  # the words above did reach the bound
+
+
+def test_an_engine_diff_names_each_state_once_so_needs_no_merging(bundle: ModelBundle) -> None:
+    # The session publishes a one-word batch's diff as the engine returned it.
+    engine = bundle.new_engine()
+    diffs = [engine.add_word(f"w{i}", Word(text=text, speaker="AB"[i % 3 == 2]))
+             for i, text in enumerate(_SPOKEN * 3)]
+    diffs.append(engine.finish())
+    assert all(merge_diffs([diff]) == diff for diff in diffs)
+    assert any(len(diff.words) > 1 for diff in diffs)  # revisions did happen
