@@ -18,7 +18,7 @@ alternating passes, because the machine may be shared:
 * ``outside``: their difference, the layer this benchmark exists to watch.
 
     .venv/bin/python scripts/bench_ingest.py [--models models/weights] [--repeats 7]
-    .venv/bin/python scripts/bench_ingest.py --smoke                       # seconds
+    .venv/bin/python scripts/bench_ingest.py --smoke --json out.json       # seconds, for CI
     .venv/bin/python scripts/bench_ingest.py --profile                     # cProfile one pass
 """
 
@@ -27,13 +27,14 @@ from __future__ import annotations
 import argparse
 import asyncio
 import cProfile
+import json
 import pstats
 import statistics
 import time
 from pathlib import Path
 from typing import Any, cast
 
-from _benchkit import corpora_root, models_folder
+from _benchkit import corpora_root, machine, models_folder
 from midstream._types import Word
 from midstream.client._cmd_bench import load_script
 from midstream.models import ModelBundle
@@ -78,8 +79,9 @@ def engine_pass(bundle: ModelBundle, plan: Plan, conversations: int) -> float:
 
 
 async def server_pass(bundle: ModelBundle, frames: list[bytes], conversations: int,
-                      profile: cProfile.Profile | None = None) -> tuple[float, int]:
-    """CPU seconds of the frame path over the plan, and the reply bytes it produced."""
+                      profile: cProfile.Profile | None = None) -> tuple[float, int, float]:
+    """CPU seconds of the frame path over the plan, the reply bytes it produced, and the words
+    the server's own counter took in."""
     limits = ServerLimits(max_live_conversations=conversations,
                           max_channels_per_stream=conversations)
     servicer = MidstreamServicer(bundle, limits, ServerMetrics())
@@ -102,12 +104,17 @@ async def server_pass(bundle: ModelBundle, frames: list[bytes], conversations: i
         profile.disable()
     stream._end_all(pb.END_REASON_CLOSED)
     stream._frames()
-    return spent, sent
+    counted = servicer.metrics.registry.get_sample_value("midstream_words_total")
+    return spent, sent, counted or 0.0
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--models", type=Path, default=None)
+    parser.add_argument("--corpus", type=Path, default=None,
+                        help="SwDA folder (default $MIDSTREAM_CORPORA/swda or "
+                             "../shared/corpora/swda)")
+    parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
     parser.add_argument("--conversations", type=int, default=200)
     parser.add_argument("--words", type=int, default=60, help="words per conversation")
     parser.add_argument("--per-frame", type=int, default=30,
@@ -121,7 +128,7 @@ def main() -> None:
     folder, how = models_folder(args.models, None)
     bundle = ModelBundle.load_directory(folder)
     bundle.warm_up()
-    script, where = load_script(corpora_root() / "swda", "val",
+    script, where = load_script(args.corpus or corpora_root() / "swda", "val",
                                 limit=args.conversations * args.words * 4)
     per_conversation = [[script.word(c, k) for k in range(args.words)]
                         for c in range(args.conversations)]
@@ -138,16 +145,28 @@ def main() -> None:
         return
     engine_ms: list[float] = []
     server_ms: list[float] = []
-    reply_bytes = 0
+    reply_bytes, counted = 0, 0.0
     for _ in range(args.repeats):
         engine_ms.append(engine_pass(bundle, plan, args.conversations) * 1e3 / total)
-        spent, reply_bytes = asyncio.run(server_pass(bundle, frames, args.conversations))
+        spent, reply_bytes, counted = asyncio.run(
+            server_pass(bundle, frames, args.conversations))
         server_ms.append(spent * 1e3 / total)
+    if counted != total:
+        raise SystemExit(f"the server took in {counted:.0f} words of {total}: the pass is broken")
     engine, server = statistics.median(engine_ms), statistics.median(server_ms)
     print(f"reply bytes per word: {reply_bytes / total:.1f}")
     print(f"engine  ms/word: median {engine:.4f}  (runs {' '.join(f'{v:.4f}' for v in engine_ms)})")
     print(f"server  ms/word: median {server:.4f}  (runs {' '.join(f'{v:.4f}' for v in server_ms)})")
     print(f"outside ms/word: {server - engine:.4f}  (server / engine = {server / engine:.2f})")
+    if args.json is not None:
+        args.json.write_text(json.dumps({
+            "machine": machine(), "models": how, "words_from": where, "words": total,
+            "conversations": args.conversations, "per_frame": args.per_frame,
+            "reply_bytes_per_word": reply_bytes / total,
+            "engine_ms_per_word": engine, "server_ms_per_word": server,
+            "outside_ms_per_word": server - engine, "server_over_engine": server / engine,
+            "runs": {"engine_ms": engine_ms, "server_ms": server_ms},
+        }, indent=2), encoding="utf-8")
 
 
 if __name__ == "__main__":

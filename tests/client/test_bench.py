@@ -254,3 +254,13 @@ def test_bench_memory_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) ->
     assert result["engine"]["bytes_per_engine"] > 0
     assert result["bare_stream"]["opened"] == 20
     assert result["bare_stream"]["error_count"] == 0
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_ingest_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
+    result = _script("bench_ingest.py", "--models", str(models_dir), "--corpus",
+                     str(swda_dir), tmp_path=tmp_path)
+    # Twenty conversations of twenty words each, every one answered in a reply frame.
+    assert result["words"] == 400 and result["reply_bytes_per_word"] > 0
+    assert result["engine_ms_per_word"] > 0 and result["server_ms_per_word"] > 0
