@@ -282,6 +282,14 @@ class _Run:
     def error(self, name: str) -> None:
         self.result.errors[name] += 1
 
+    def answered(self, now: float, sent: float) -> None:
+        """A word sent (or due) at ``sent`` got its first hypothesis at ``now`` (loop time)."""
+        result = self.result
+        result.words_answered += 1
+        result.latencies.append(now - sent)
+        if now <= self.stop:
+            result.answered_in_window += 1
+
 
 def _channel(config: LoadConfig, index: int) -> grpc.aio.Channel:
     options: list[tuple[str, Any]] = [
@@ -323,10 +331,7 @@ async def _converse(run: _Run, stub: pb_grpc.MidstreamStub, number: int) -> None
             for state in message.update.words:
                 sent = pending.pop(state.word_id, None)
                 if sent is not None:
-                    result.words_answered += 1
-                    result.latencies.append(now - sent)
-                    if now <= run.stop:
-                        result.answered_in_window += 1
+                    run.answered(now, sent)
 
     try:
         await call.write(pb.ClientEvent(open=pb.OpenConversation()))
@@ -394,11 +399,7 @@ async def _describe(run: _Run, stub: pb_grpc.MidstreamStub, number: int) -> None
         except grpc.aio.AioRpcError as exc:
             run.error(exc.code().name)
         else:
-            now = loop.time()
-            result.words_answered += 1
-            result.latencies.append(now - sent)
-            if now <= run.stop:
-                result.answered_in_window += 1
+            run.answered(loop.time(), sent)
         due += interval
 
 
@@ -482,10 +483,7 @@ async def _multiplexed(run: _Run, stub: pb_grpc.MidstreamStub, numbers: list[int
                     for state in message.update.words:
                         due = pending.pop((channel, state.word_id), None)
                         if due is not None:
-                            result.words_answered += 1
-                            result.latencies.append(now - due)
-                            if now <= run.stop:
-                                result.answered_in_window += 1
+                            run.answered(now, due)
                 elif kind == "welcome":
                     answered(channel, ok=True)
                 elif kind == "ended":
@@ -565,10 +563,8 @@ async def _describe_ticks(run: _Run, stub: pb_grpc.MidstreamStub, numbers: list[
             result.errors[exc.code().name] += len(dues)
             return
         now = loop.time()
-        result.words_answered += len(dues)
-        result.latencies.extend(now - due for due in dues)
-        if now <= run.stop:
-            result.answered_in_window += len(dues)
+        for due in dues:
+            run.answered(now, due)
 
     schedule = _Schedule(run, numbers)
     calls: set[asyncio.Task[None]] = set()

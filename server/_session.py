@@ -395,14 +395,22 @@ class Session:
         """The oldest sequence number still in the replay buffer (``seq + 1`` when empty)."""
         return self._replay.oldest().seq if self._replay else self.seq + 1
 
-    def since(self, seq: int) -> list[pb.ServerMessage]:
-        """Updates in the replay buffer after ``seq``, oldest first, as wire messages."""
+    def _after(self, seq: int) -> list[HypothesisUpdate]:
+        """Updates in the replay buffer after ``seq``, oldest first."""
+        if self.seq == seq + 1 and self._replay:
+            # The usual case, one update since the caller was last sent: the newest one.
+            return [self._replay.newest()]
         newer: list[HypothesisUpdate] = []
         for update in reversed(self._replay):
             if update.seq <= seq:
                 break
             newer.append(update)
-        messages = [self._wire(update) for update in reversed(newer)]
+        newer.reverse()
+        return newer
+
+    def since(self, seq: int) -> list[pb.ServerMessage]:
+        """Updates in the replay buffer after ``seq``, oldest first, as wire messages."""
+        messages = [self._wire(update) for update in self._after(seq)]
         self._shared_wire = None
         return messages
 
@@ -413,19 +421,9 @@ class Session:
         the frame rather than built alone and copied in. Returns the last sequence number
         written (``seq`` when there was none).
         """
-        if self.seq == seq + 1 and self._replay:
-            # The usual case, one update since the caller was last sent: the newest one.
-            newer = [self._replay.newest()]
-        else:
-            newer = []
-            for update in reversed(self._replay):
-                if update.seq <= seq:
-                    break
-                newer.append(update)
-            newer.reverse()
         shared = self._shared_wire
         self._shared_wire = None
-        for update in newer:
+        for update in self._after(seq):
             message = new_message()
             if shared is not None and shared.update.seq == update.seq:
                 message.CopyFrom(shared)  # followers were sent this one: copy, not convert
