@@ -5,9 +5,10 @@ Each new word adds its features and the pieces of its neighbours' features that 
 word (its tag fixed) and at most :attr:`DecoderConfig.lag` open words. Cost per word therefore
 does not grow with how long the speaker talks, and memory holds at most ``left + lag + 1`` words.
 
-A word becomes *final* when ``lag`` newer words have arrived or its utterance is closed; a final
-state never changes again and the decoder forgets the word once it is no longer needed as left
-context (the caller keeps history).
+A word becomes *final* once its tag is settled (no later word can change the best path there),
+when ``lag`` newer words have arrived, or when its utterance is closed; a final state never
+changes again and the decoder forgets the word once it is no longer needed as left context
+(the caller keeps history).
 
 A :class:`ChannelDecoder` is not safe to share between threads or tasks: one per channel, used
 from one place. The :class:`~midstream.models._wordmodel.WordModel` under it may be shared.
@@ -28,25 +29,38 @@ from midstream.models._lattice import accumulate_rows, decode_window
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import INTERREGNUM_TAGS, IP_TAGS
 
-__all__ = ["ChannelDecoder", "DecoderConfig", "TokenState"]
+__all__ = ["DEFAULT_LAG", "ChannelDecoder", "DecoderConfig", "TokenState"]
 
 FloatArray = npt.NDArray[np.float64]
 
 _REPARANDUM_TAGS = frozenset({"rp", "rp.ip"})
+
+#: Open words a settling decoder holds at most (see :class:`DecoderConfig`).
+DEFAULT_LAG = 10
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class DecoderConfig:
     """How the channel decoder trades latency for stability.
 
-    ``lag``: open words at most; the oldest becomes final when a newer word would exceed it
-    (words; ``None``, the default, means one more than the words the model's features read to
-    the right, so a word is final only once its features are complete: 6 for a model that
-    reads 5). ``confidence_step``: a changed confidence is reported only when
-    it moved by more than this (probability, default 0.05; common practice, no source).
+    ``settle`` (default on): a word becomes final as soon as its tag is *settled*, that is when
+    the Viterbi back-pointers of every tag of the newest word with complete features meet at
+    or after it, so no later word can change the best path there (online Viterbi). The final
+    labels are then those of decoding the whole channel at once, except where ``lag`` forces
+    an earlier decision. Off: a word becomes final exactly when ``lag`` newer words arrived.
+
+    ``lag``: open words at most; the oldest becomes final when a newer word would exceed it,
+    settled or not (words). ``None``, the default, means :data:`DEFAULT_LAG` with ``settle``
+    and one more than the words the model's features read to the right without it (a word is
+    final only once its features are complete: 6 for a model that reads 5). It bounds the
+    memory and the per-word cost of a channel.
+
+    ``confidence_step``: a changed confidence is reported only when it moved by more than this
+    (probability, default 0.05; common practice, no source).
     """
 
     lag: int | None = None
+    settle: bool = True
     confidence_step: float = 0.05
 
     def __post_init__(self) -> None:
@@ -108,7 +122,9 @@ class ChannelDecoder:
         self._model = model
         self._config = config
         self._right = model.config.right
-        self._lag = config.lag if config.lag is not None else model.config.right + 1
+        self._settle = config.settle
+        self._lag = config.lag if config.lag is not None else (
+            DEFAULT_LAG if config.settle else model.config.right + 1)
         self._reparandum_tags = frozenset(
             k for k, b in enumerate(model.tag_base) if b in _REPARANDUM_TAGS)
         # Finalised words kept as feature context; one more as the lattice's fixed left end.
@@ -127,6 +143,11 @@ class ChannelDecoder:
     def open_keys(self) -> tuple[int, ...]:
         """Keys of the words whose state may still change, oldest first."""
         return tuple(e.key for e in self._entries[self._first_open :])
+
+    @property
+    def max_open(self) -> int:
+        """Open words at most: the configured or default ``lag``."""
+        return self._lag
 
     @property
     def held_words(self) -> int:
@@ -247,18 +268,20 @@ class ChannelDecoder:
         start = self._first_open
         lo = start - 1 if start > 0 else start
         held = len(self._entries)
+        # Rows up to held - 1 - right have all their feature pieces; only those can settle.
+        complete = held - 1 - self._right - lo if self._settle else -1
         result = decode_window(
             self._scores, lo, held, model.exp_transitions,
             first=self._entries[lo].tag if start > 0 else -1,
             last_mask=model.end_mask if close else None,
-            tag_group=model.tag_group, tag_end=model.tag_end,
+            tag_group=model.tag_group, tag_end=model.tag_end, settle_from=complete,
         )
         path = result.path
         confidence = result.confidence
         end_probability = result.end_probability
         offset = start - lo
         n_open = held - start
-        n_final = n_open if close else max(0, n_open - self._lag)
+        n_final = n_open if close else max(result.settled - offset + 1, n_open - self._lag, 0)
         window = self._entries[lo:]
         links = self._links(window, path)
         tag_label = model.tag_label

@@ -63,7 +63,8 @@ def _potentials(emissions: Any, first: int, last_mask: Any) -> Any:  # pragma: n
 
 
 @_jit
-def _viterbi(potentials: Any, exp_transitions: Any, path: Any) -> None:  # pragma: no cover
+def _viterbi(potentials: Any, exp_transitions: Any, path: Any,
+             settle_from: int) -> int:  # pragma: no cover
     n, size = potentials.shape
     best = potentials[0].copy()
     following = np.empty(size)
@@ -95,6 +96,27 @@ def _viterbi(potentials: Any, exp_transitions: Any, path: Any) -> None:  # pragm
     for t in range(n - 1, 0, -1):
         index = pointers[t, index]
         path[t - 1] = index
+    # Settled prefix: follow the back-pointers of every tag at position settle_from (the
+    # newest position whose state scores can no longer change). Once they all meet in one tag
+    # at some position, every path any later word can make passes through it, so that tag and
+    # everything before it is what the best path will say forever (online Viterbi).
+    if settle_from <= 0 or settle_from >= n:
+        return -1
+    alive = np.ones(size, dtype=np.bool_)
+    reached = np.zeros(size, dtype=np.bool_)
+    for t in range(settle_from, 0, -1):
+        reached[:] = False
+        count = 0
+        for j in range(size):
+            if alive[j]:
+                i = pointers[t, j]
+                if not reached[i]:
+                    reached[i] = True
+                    count += 1
+        if count == 1:
+            return t - 1
+        alive[:] = reached
+    return -1
 
 
 @_jit
@@ -144,21 +166,23 @@ def _marginals(potentials: Any, exp_transitions: Any, out: Any) -> None:  # prag
 @_jit
 def _decode(  # noqa: PLR0917
     emissions: Any, exp_transitions: Any, first: int, last_mask: Any, path: Any,
-            marginals: Any) -> None:  # pragma: no cover
+            marginals: Any, settle_from: int) -> int:  # pragma: no cover
     potentials = _potentials(emissions, first, last_mask)
-    _viterbi(potentials, exp_transitions, path)
+    settled = _viterbi(potentials, exp_transitions, path, settle_from)
     _marginals(potentials, exp_transitions, marginals)
+    return settled
 
 
 @_jit
 def _decode_window(  # noqa: PLR0917
     scores: Any, lo: int, hi: int, exp_transitions: Any, first: int,
                    last_mask: Any, tag_group: Any, tag_end: Any, path: Any, confidence: Any,
-                   end_probability: Any) -> None:  # pragma: no cover
+                   end_probability: Any, settle_from: int) -> int:  # pragma: no cover
     emissions = scores[lo:hi]
     n, size = emissions.shape
     marginals = np.empty((n, size))
-    _decode(emissions, exp_transitions, first, last_mask, path, marginals)
+    settled = _decode(emissions, exp_transitions, first, last_mask, path, marginals,
+                      settle_from)
     for t in range(n):
         group = tag_group[path[t]]
         same = 0.0
@@ -170,6 +194,7 @@ def _decode_window(  # noqa: PLR0917
                 ends += marginals[t, j]
         confidence[t] = same
         end_probability[t] = ends
+    return settled
 
 
 @_jit
@@ -279,20 +304,21 @@ def decode_lattice(
     marginals = np.empty((n, size))
     _decode(emissions, np.ascontiguousarray(exp_transitions, dtype=np.float64),
             -1 if first is None else first, _NO_MASK if last_mask is None else last_mask,
-            path, marginals)
+            path, marginals, -1)
     return path.tolist(), marginals
 
 
 class WindowResult:
     """Per-position outcome of :func:`decode_window`, as Python lists (cheap to read)."""
 
-    __slots__ = ("confidence", "end_probability", "path")
+    __slots__ = ("confidence", "end_probability", "path", "settled")
 
     def __init__(self, path: list[int], confidence: list[float],
-                 end_probability: list[float]) -> None:
+                 end_probability: list[float], settled: int) -> None:
         self.path = path
         self.confidence = confidence
         self.end_probability = end_probability
+        self.settled = settled
 
 
 def decode_window(
@@ -305,6 +331,7 @@ def decode_window(
     last_mask: FloatArray | None,
     tag_group: IntArray,
     tag_end: npt.NDArray[np.bool_],
+    settle_from: int = -1,
 ) -> WindowResult:
     """Decode rows ``lo:hi`` of ``scores`` and summarise each position for the decoder.
 
@@ -312,15 +339,20 @@ def decode_window(
     (as an index) of tag ``t``; the confidence of a position is the summed marginal of the tags
     sharing the label of its Viterbi tag. ``tag_end[t]`` flags utterance-end tags; the end
     probability is their summed marginal.
+
+    ``settle_from`` is the last position (relative to ``lo``) whose scores are complete, or -1.
+    ``settled`` in the result is the last position whose tag no later position can change:
+    the Viterbi back-pointers of every tag at ``settle_from`` meet there. -1 when they do not
+    meet (or no position was given).
     """
     n = hi - lo
     path = np.empty(n, dtype=np.int64)
     confidence = np.empty(n)
     end_probability = np.empty(n)
-    _decode_window(scores, lo, hi, exp_transitions, first,
-                   _NO_MASK if last_mask is None else last_mask, tag_group, tag_end,
-                   path, confidence, end_probability)
-    return WindowResult(path.tolist(), confidence.tolist(), end_probability.tolist())
+    settled = _decode_window(scores, lo, hi, exp_transitions, first,
+                             _NO_MASK if last_mask is None else last_mask, tag_group, tag_end,
+                             path, confidence, end_probability, settle_from)
+    return WindowResult(path.tolist(), confidence.tolist(), end_probability.tolist(), settled)
 
 
 def accumulate_rows(scores: FloatArray, state: FloatArray, rows: IntArray,

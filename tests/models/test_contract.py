@@ -140,12 +140,12 @@ _event = st.one_of(
 
 
 @settings(max_examples=60, deadline=None)
-@given(events=st.lists(_event, max_size=60), lag=st.integers(0, 7))
+@given(events=st.lists(_event, max_size=60), lag=st.integers(0, 24), settle=st.booleans())
 def test_a_final_label_never_changes(events: Sequence[tuple[str, str, object]],
-                                     lag: int) -> None:
+                                     lag: int, settle: bool) -> None:
     model = _load_words(tiny_artifact_bytes())
     assert isinstance(model, WordModel)
-    decoder = ChannelDecoder(model, DecoderConfig(lag=lag))
+    decoder = ChannelDecoder(model, DecoderConfig(lag=lag, settle=settle))
     final: set[int] = set()
     reported: set[int] = set()
     withdrawn: set[int] = set()

@@ -11,7 +11,7 @@ from midstream import DisfluencyLabel, Word
 from midstream._errors import EventError, ModelError
 from midstream.models._artifact import ModelArtifact
 from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
-from midstream.models._features import tokens_from_words
+from midstream.models._features import features_at, tokens_from_words
 from midstream.models._lattice import decode_lattice, decode_window
 from midstream.models._train_words import train_word_artifact
 from midstream.models._wordmodel import WordModel
@@ -191,19 +191,61 @@ def test_window_summary_sums_the_marginals_of_each_label_group() -> None:
             assert result.end_probability[t] == pytest.approx(marginals[t, ends].sum())
 
 
-def test_by_default_a_word_stays_open_until_its_features_are_complete() -> None:
+@pytest.mark.parametrize("settle", [False, True])
+def test_a_word_stays_open_until_its_features_are_complete(settle: bool) -> None:
     # A word's features read `right` words ahead; finalising it earlier would fix a label the
-    # model never saw its full evidence for. The default lag follows the model.
+    # model never saw its full evidence for. Without settling the default lag follows the
+    # model; settling never finalises before that either.
     conversations = [invented_conversation(seed) for seed in range(4)]
     for right in (3, 6):
         config = dataclasses.replace(TINY, right=right, left=8)
         model = WordModel.from_artifact(
             ModelArtifact.from_bytes(train_word_artifact(conversations, config).to_bytes()))
-        decoder = ChannelDecoder(model)
-        words = _words("we went to the store last week and it was nice")
+        decoder = ChannelDecoder(model, DecoderConfig(settle=settle))
+        words = _words("we went to the store last week and it was nice so we stayed there")
         final_at = None
         for key, word in enumerate(words):
             if any(s.key == 0 and s.final for s in decoder.append(key, word)):
                 final_at = key
                 break
-        assert final_at == right + 1  # right + 1 newer words had arrived
+        assert final_at is not None
+        if settle:
+            assert final_at >= right + 1
+        else:
+            assert final_at == right + 1  # right + 1 newer words had arrived
+
+
+def _offline_labels(model: WordModel, words: list[Word]) -> list[DisfluencyLabel]:
+    """Labels of crfsuite-style Viterbi over the whole channel, ending an utterance."""
+    tokens = tokens_from_words(words, [False] * len(words))
+    emissions = np.stack([model.score(features_at(tokens, i, model.config))
+                          for i in range(len(tokens))])
+    path, _ = decode_lattice(emissions, model.exp_transitions, last_mask=model.end_mask)
+    return [model.tag_label[t] for t in path]
+
+
+def test_settled_final_labels_are_those_of_decoding_the_whole_channel(model: WordModel) -> None:
+    # Online Viterbi: a word is final only once every path through the newest complete word
+    # agrees on it, so with no lag forcing a decision the stream ends where offline decoding
+    # of the whole channel does (what the offline figure of the evaluation measures).
+    rng = np.random.default_rng(3)
+    vocab = ["i", "the", "uh", "um", "think", "we", "went", "to", "store", "kids", "mean",
+             "well", "i", "i", "the", "you", "know", "yeah", "so", "it", "was"]
+    settled_early = total = 0
+    for _ in range(40):
+        words = [Word(text=str(rng.choice(vocab)), speaker="A")
+                 for _ in range(int(rng.integers(1, 80)))]
+        decoder = ChannelDecoder(model, DecoderConfig(lag=1000))
+        final: dict[int, DisfluencyLabel] = {}
+        for key, word in enumerate(words):
+            for state in decoder.append(key, word):
+                if state.final:
+                    final[state.key] = state.label
+        settled_early += len(final)
+        total += len(words)
+        for state in decoder.finish():
+            assert state.final
+            final[state.key] = state.label
+        assert [final[k] for k in range(len(words))] == _offline_labels(model, words)
+    assert settled_early > total / 2  # paths do meet: most words settle before the end
+
