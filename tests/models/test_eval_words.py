@@ -132,7 +132,6 @@ def test_shipped_model_meets_targets_on_swda_val(shipped_val_figures: dict[str, 
 
 @pytest.mark.corpus
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="shipped model reaches 0.77979 on SwDA val (model card)")
 def test_shipped_model_reparandum_target_on_swda_val(
     shipped_val_figures: dict[str, float],
 ) -> None:
