@@ -48,8 +48,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("--words-only", action="store_true",
                         help="score the word model only (no utterance functions)")
     parser.add_argument("--lag", type=int, default=None,
-                        help="words before a word's label becomes final (default: one more "
-                             "than the words the model's features read to the right)")
+                        help="open words at most: a word's label becomes final once settled "
+                             "(no later word can change it) or this many words late "
+                             "(default: the decoder's, 10)")
+    parser.add_argument("--no-settle", action="store_true",
+                        help="make every label final exactly --lag words late instead")
     parser.add_argument("--limit", type=int, default=0,
                         help="evaluate only the first N conversations (0: all)")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
@@ -65,13 +68,13 @@ def run(args: argparse.Namespace) -> int:
         conversations = conversations[: args.limit]
     if not conversations:
         raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
-    figures = evaluate_words(conversations, model, config=DecoderConfig(lag=args.lag),
-                             progress=True)
+    decoder = DecoderConfig(lag=args.lag, settle=not args.no_settle)
+    figures = evaluate_words(conversations, model, config=decoder, progress=True)
     if not args.words_only:
         tagger = FunctionTagger.load(args.functions_model or default_functions_model_path())
         figures.update(evaluate_functions(conversations, tagger))
         bundle = ModelBundle(word_model=model, function_tagger=tagger, infos=(),
-                             decoder=DecoderConfig(lag=args.lag))
+                             decoder=decoder)
         figures.update(evaluate_engine(conversations, bundle))
     if args.json:
         clean = {k: (None if isinstance(v, float) and math.isnan(v) else v)
