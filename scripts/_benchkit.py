@@ -88,7 +88,14 @@ def machine() -> dict[str, Any]:
     }
 
 
+#: The cores this process may use as started: checked against this, not against the current
+#: affinity, so pinning to one core and later to another works (the second check once failed
+#: silently and left the load generator on the server's core).
+_USABLE_CORES = frozenset(os.sched_getaffinity(0))
+
+
 def pin_self(core: int | None) -> None:
     """Pin this process to one core (the load generator's), when the machine has it."""
-    if core is not None and core in os.sched_getaffinity(0):
+    if core is not None and core in _USABLE_CORES:
         os.sched_setaffinity(0, {core})
+        assert os.sched_getaffinity(0) == {core}

@@ -32,6 +32,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import json
+import os
 import sys
 import time
 from pathlib import Path
@@ -203,6 +204,8 @@ def main() -> int:
           f"({engine['cpu_ms_per_word']:.3f} ms/word, {engine['conversations']} interleaved "
           f"conversations)")
     pin_self(args.client_core)
+    generator_cores = sorted(os.sched_getaffinity(0))
+    print(f"load generator on core(s) {generator_cores}, server on core {args.server_core}")
 
     results: list[dict[str, Any]] = []
     for n in steps:
@@ -244,7 +247,8 @@ def main() -> int:
             "seconds": args.seconds, "p99_budget_ms": args.p99_ms, "engine": engine,
             "steps": results, "largest_passing": largest,
             "multiplex": args.multiplex, "tick_ms": args.tick_ms if args.multiplex else None,
-            "channels": args.channels,
+            "channels": args.channels, "server_core": args.server_core,
+            "generator_cores": generator_cores,
             "service_to_engine_cpu_ratio": round(service_ratio, 3),
             "projected_words_per_core": round(per_core, 1),
             "projected_conversations_per_core": round(per_core / args.rate, 1),
