@@ -9,11 +9,12 @@ Memory is bounded per conversation by :class:`~midstream.server.ServerLimits`: t
 (``replay_updates`` updates), the revision history (``history_revisions`` states), the latest
 states for snapshots (``snapshot_states``) and each follower's queue (``follower_queue``).
 
-The replay buffer keeps the domain updates, whose word and utterance states are the same objects
-the revision history and the snapshot tables hold, and builds wire messages only when they are
-sent: a wire message costs about 1.5 KB of protobuf arena however small its content (measured
-with ``mallinfo2`` on protobuf 7.36 while this was written), which was the largest part of what
-an idle conversation kept.
+The replay buffer, the revision history and the snapshot tables keep published states as
+records of plain values (:mod:`~midstream.server._kept`), which the cycle collector stops
+tracking, so its pauses do not grow with the history the server keeps; records become objects
+again only when read. Wire messages are built only when sent: a wire message costs about 1.5 KB
+of protobuf arena however small its content (measured with ``mallinfo2`` on protobuf 7.36 while
+this was written), which was the largest part of what an idle conversation kept.
 
 A follower whose queue fills is never waited for: its queue is dropped and, when it reads
 again, it gets a ``gap`` (``LAGGED``) and a snapshot of the state at that moment, then live
@@ -39,6 +40,20 @@ from midstream._types import (
     WordHypothesis,
 )
 from midstream.server._config import ServerLimits
+from midstream.server._kept import (
+    UPDATE_SEQ,
+    UTTERANCE_REVISION,
+    WORD_REVISION,
+    UpdateRecord,
+    UtteranceRecord,
+    WordRecord,
+    pack_update,
+    pack_utterance,
+    pack_word,
+    unpack_update,
+    unpack_utterance,
+    unpack_word,
+)
 from midstream.server._limits import SpeakerTimeline, check_id
 from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Bundle, Engine
@@ -114,6 +129,13 @@ class _Recent(Generic[_T]):
 
 def _to_wire(update: HypothesisUpdate) -> pb.ServerMessage:
     return pb.ServerMessage(update=cv.update_to_wire(update))
+
+
+def _unpack_state(record: WordRecord | UtteranceRecord) -> State:
+    # The two record shapes differ in length (8 and 9 fields).
+    if len(record) == 8:
+        return unpack_word(record)
+    return unpack_utterance(record)
 
 
 def merge_diffs(diffs: Iterable[HypothesisDiff]) -> HypothesisDiff:
@@ -203,9 +225,9 @@ class Session:
 
     # Thousands may be live at once: no per-instance __dict__.
     __slots__ = (
-        "_ended", "_engine", "_followers", "_metrics", "_replay", "_revisions", "_shared_wire",
-        "_utterances", "_words", "closing_messages", "end_reason", "ended_at", "id", "limits",
-        "revisions_truncated", "seq", "started_at", "timeline", "word_count",
+        "_ended", "_engine", "_followers", "_metrics", "_newest", "_replay", "_revisions",
+        "_shared_wire", "_utterances", "_words", "closing_messages", "end_reason", "ended_at",
+        "id", "limits", "revisions_truncated", "seq", "started_at", "timeline", "word_count",
     )
 
     def __init__(self, conversation_id: str, engine: Engine, limits: ServerLimits,
@@ -223,13 +245,18 @@ class Session:
         self._metrics = metrics
         # Made on first use (see ended_signal): most conversations never need one.
         self._ended: asyncio.Future[None] | None = None
-        self._replay: _Recent[HypothesisUpdate] = _Recent(limits.replay_updates)
+        self._replay: _Recent[UpdateRecord] = _Recent(limits.replay_updates)
+        # The newest update as published, so the usual read (the one update since the caller
+        # was last sent) needs no record turned back into objects.
+        self._newest: HypothesisUpdate | None = None
         # The wire form of the latest update when followers were sent it, so the caller is
         # sent the same message rather than a second conversion; dropped once sent.
         self._shared_wire: pb.ServerMessage | None = None
-        self._words: OrderedDict[str, WordHypothesis] = OrderedDict()
-        self._utterances: OrderedDict[str, UtteranceHypothesis] = OrderedDict()
-        self._revisions: _Recent[tuple[int, float, State]] = _Recent(limits.history_revisions)
+        self._words: OrderedDict[str, WordRecord] = OrderedDict()
+        self._utterances: OrderedDict[str, UtteranceRecord] = OrderedDict()
+        # (seq, server time, record): one level of nesting, see midstream.server._kept.
+        self._revisions: _Recent[tuple[int, float, WordRecord | UtteranceRecord]] = _Recent(
+            limits.history_revisions)
         self.revisions_truncated = False
         # A dict rather than a set: an empty set costs over 200 bytes, an empty dict 64.
         self._followers: dict[Follower, None] = {}
@@ -349,8 +376,8 @@ class Session:
             return None
         seq = self.seq = self.seq + 1
         now = time.time()
-        update = HypothesisUpdate(seq=seq, server_time=now, diff=diff, conversation_final=final)
-        self._replay.append(update)
+        update = self._newest = HypothesisUpdate(seq=seq, server_time=now, diff=diff,
+                                                 conversation_final=final)
         history = self._revisions
         if len(history) + len(diff.words) + len(diff.utterances) > history.capacity:
             # Some append below evicts the oldest kept revision.
@@ -358,24 +385,32 @@ class Session:
         remember, kept = history.append, self.limits.snapshot_states
         revised = 0
         words = self._words
+        word_records: list[WordRecord] = []
         for word in diff.words:
             # A revision is a state whose revision count went up (not a word turning final).
             word_id = word.word_id
+            record = pack_word(word)
             before = words.get(word_id)
-            revised += word.revision > (before.revision if before is not None else 0)
-            words[word_id] = word  # a known id keeps its place: the oldest are dropped first
+            revised += word.revision > (before[WORD_REVISION] if before is not None else 0)
+            words[word_id] = record  # a known id keeps its place: the oldest are dropped first
             if len(words) > kept:
                 words.popitem(last=False)
-            remember((seq, now, word))
+            remember((seq, now, record))
+            word_records.append(record)
         utterances = self._utterances
+        utterance_records: list[UtteranceRecord] = []
         for utterance in diff.utterances:
             utterance_id = utterance.utterance_id
+            urecord = pack_utterance(utterance)
             previous = utterances.get(utterance_id)
-            revised += utterance.revision > (previous.revision if previous is not None else 0)
-            utterances[utterance_id] = utterance
+            revised += utterance.revision > (
+                previous[UTTERANCE_REVISION] if previous is not None else 0)
+            utterances[utterance_id] = urecord
             if len(utterances) > kept:
                 utterances.popitem(last=False)
-            remember((seq, now, utterance))
+            remember((seq, now, urecord))
+            utterance_records.append(urecord)
+        self._replay.append(pack_update(update, word_records, utterance_records))
         for word_id in diff.withdrawn_word_ids:
             words.pop(word_id, None)
         if self._followers:
@@ -393,18 +428,18 @@ class Session:
     @property
     def oldest_kept(self) -> int:
         """The oldest sequence number still in the replay buffer (``seq + 1`` when empty)."""
-        return self._replay.oldest().seq if self._replay else self.seq + 1
+        return self._replay.oldest()[UPDATE_SEQ] if self._replay else self.seq + 1
 
     def _after(self, seq: int) -> list[HypothesisUpdate]:
         """Updates in the replay buffer after ``seq``, oldest first."""
-        if self.seq == seq + 1 and self._replay:
+        if self.seq == seq + 1 and self._replay and self._newest is not None:
             # The usual case, one update since the caller was last sent: the newest one.
-            return [self._replay.newest()]
+            return [self._newest]
         newer: list[HypothesisUpdate] = []
-        for update in reversed(self._replay):
-            if update.seq <= seq:
+        for record in reversed(self._replay):
+            if record[UPDATE_SEQ] <= seq:
                 break
-            newer.append(update)
+            newer.append(unpack_update(record))
         newer.reverse()
         return newer
 
@@ -444,8 +479,9 @@ class Session:
         When the kept states would not fit in one message (``max_message_bytes``), the oldest
         are left out: a snapshot favours what is still changing.
         """
-        words = [cv.word_state_to_wire(w) for w in self._words.values()]
-        utterances = [cv.utterance_state_to_wire(u) for u in self._utterances.values()]
+        words = [cv.word_state_to_wire(unpack_word(w)) for w in self._words.values()]
+        utterances = [cv.utterance_state_to_wire(unpack_utterance(u))
+                      for u in self._utterances.values()]
         budget = message_budget(self.limits)
         # Repeated fields cost their size plus a few bytes of framing each.
         word_sizes = deque(m.ByteSize() + 6 for m in words)
@@ -466,7 +502,8 @@ class Session:
 
     def revisions(self) -> tuple[list[tuple[int, float, State]], bool]:
         """Every kept published state with its sequence number and time, and ``truncated``."""
-        return list(self._revisions), self.revisions_truncated
+        return [(seq, when, _unpack_state(record)) for seq, when, record in self._revisions
+                ], self.revisions_truncated
 
     def follow(self, from_seq: int | None) -> tuple[list[pb.ServerMessage], Follower | None]:
         """Register a follower; return what it must be sent first and its live queue.
@@ -508,7 +545,8 @@ class Session:
             )))
             backlog.append(self.snapshot_message())
         else:
-            backlog.extend(self._wire(u) for u in self._replay if u.seq >= from_seq)
+            backlog.extend(self._wire(unpack_update(r)) for r in self._replay
+                           if r[UPDATE_SEQ] >= from_seq)
         if not self.live:
             backlog.append(self.closing_messages[-1])
             return backlog, None

@@ -14,6 +14,7 @@ from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics
 from midstream.server._session import Session, _Recent, merge_diffs
+from midstream.wire import midstream_pb2 as pb
 from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures by name
 
 
@@ -85,3 +86,37 @@ def test_an_engine_diff_names_each_state_once_so_needs_no_merging(bundle: ModelB
     diffs.append(engine.finish())
     assert all(merge_diffs([diff]) == diff for diff in diffs)
     assert any(len(diff.words) > 1 for diff in diffs)  # revisions did happen
+
+
+def _kept_records(session: Session) -> list[tuple[object, ...]]:
+    return [*session._words.values(), *session._utterances.values(),
+            *(record for _, _, record in session._revisions), *session._replay]
+
+
+def test_kept_history_is_invisible_to_the_cycle_collector(bundle: ModelBundle) -> None:
+    # What a session keeps grows with the conversation; if the collector tracked it, every
+    # collection would walk it and the server's pauses would grow with its history.
+    session = Session("c1", bundle.new_engine(), ServerLimits(), ServerMetrics())
+    for index, text in enumerate(_SPOKEN * 4):
+        session.add_words([(f"w{index}", Word(text=text, speaker="AB"[index % 7 == 6]))], 0.0)
+    session.finish(pb.END_REASON_CLOSED)
+    records = _kept_records(session)
+    assert len(records) > 4 * len(_SPOKEN)
+    # An update record holds state records: those are untracked in the first pass, it in the
+    # second (as the young generations would do, one after the other).
+    gc.collect()
+    gc.collect()
+    assert not any(gc.is_tracked(record) for record in records)
+
+
+def test_reading_kept_records_gives_back_the_published_states(bundle: ModelBundle) -> None:
+    session = Session("c1", bundle.new_engine(), ServerLimits(), ServerMetrics())
+    published = []
+    for index, text in enumerate(_SPOKEN * 2):
+        update = session.add_words([(f"w{index}", Word(text=text, speaker="A"))], 0.0)
+        assert update is not None
+        published.append(update)
+    # Replayed from the kept records: equal to what was published, field by field.
+    assert session._after(0) == published
+    assert [state for _, _, state in session.revisions()[0]] == [
+        state for update in published for state in (*update.diff.words, *update.diff.utterances)]

@@ -1,0 +1,111 @@
+"""Published states as the session keeps them: tuples of plain values.
+
+Why not keep the :class:`~midstream.WordHypothesis` objects themselves: a live server keeps
+every conversation's replay buffer, revision history and latest states, about fourteen objects
+per word taken in, and Python's cycle collector walks every such object it tracks. With a few
+hundred conversations talking, that heap grows by tens of thousands of objects a second, and
+each collection of it stopped the event loop for longer as it grew: tens of milliseconds for the
+youngest generation, most of a second for a full one (``gc.callbacks`` timings of 700
+conversations x 120 words in-process, while this was written), which is what the p99 latency of
+a loaded server was made of.
+
+A tuple holding only strings, numbers, booleans and ``None`` cannot be part of a reference
+cycle, and the collector stops tracking it the first time it meets it. A tuple holding such
+tuples is untracked one collection later (the collector checks a tuple before the tuples inside
+it), so records nest at most one level: word ids are joined into one string, and an update
+record holds its states' records directly. Kept in this form, history is untracked by the time
+it leaves the young generations, however much of it the limits allow. Records are built once per
+published state and turned back into objects only when read: snapshots, replays to followers,
+``GetRevisions``.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Final, TypeAlias
+
+from midstream._types import (
+    DisfluencyLabel,
+    HypothesisDiff,
+    HypothesisUpdate,
+    UtteranceFunction,
+    UtteranceHypothesis,
+    WordHypothesis,
+)
+
+#: ``(word_id, speaker, label, confidence, revision, final, reparandum_of, interruption_point)``
+WordRecord: TypeAlias = tuple[str, str, str, float, int, bool, "str | None", bool]
+#: ``(utterance_id, speaker, word ids joined by ID_SEPARATOR, clean_text, function, fine_class,
+#: confidence, revision, final)``
+UtteranceRecord: TypeAlias = tuple[str, str, str, str, str, str, float, int, bool]
+#: ``(seq, server_time, conversation_final, withdrawn ids joined, number of word records, then
+#: the word records and the utterance records)``
+UpdateRecord: TypeAlias = tuple[Any, ...]
+
+#: Joins word ids in a record. Ids that reach a session hold no control character (the server
+#: refuses them at the edge), so it cannot occur inside one; packing checks anyway.
+ID_SEPARATOR: Final = "\x1f"
+#: Where a record keeps its revision count.
+WORD_REVISION: Final = 4
+UTTERANCE_REVISION: Final = 7
+#: Where an update record keeps its sequence number.
+UPDATE_SEQ: Final = 0
+_UPDATE_HEAD = 5
+
+# Value -> member by dict lookup: an enum call goes through its metaclass and costs more.
+_LABELS: Final = {label.value: label for label in DisfluencyLabel}
+_FUNCTIONS: Final = {function.value: function for function in UtteranceFunction}
+
+
+def pack_word(word: WordHypothesis) -> WordRecord:
+    return (word.word_id, word.speaker, word.label.value, float(word.confidence), word.revision,
+            word.final, word.reparandum_of, word.interruption_point)
+
+
+def unpack_word(record: WordRecord) -> WordHypothesis:
+    word_id, speaker, label, confidence, revision, final, reparandum_of, ip = record
+    return WordHypothesis(word_id=word_id, speaker=speaker, label=_LABELS[label],
+                          confidence=confidence, revision=revision, final=final,
+                          reparandum_of=reparandum_of, interruption_point=ip)
+
+
+def _join(ids: tuple[str, ...]) -> str:
+    joined = ID_SEPARATOR.join(ids)
+    if joined.count(ID_SEPARATOR) != max(len(ids) - 1, 0) or "" in ids:
+        raise ValueError(f"a word id is empty or holds {ID_SEPARATOR!r}: {ids!r}")
+    return joined
+
+
+def _split(joined: str) -> tuple[str, ...]:
+    return tuple(joined.split(ID_SEPARATOR)) if joined else ()
+
+
+def pack_utterance(utterance: UtteranceHypothesis) -> UtteranceRecord:
+    return (utterance.utterance_id, utterance.speaker, _join(utterance.word_ids),
+            utterance.clean_text, utterance.function.value, utterance.fine_class,
+            float(utterance.confidence), utterance.revision, utterance.final)
+
+
+def unpack_utterance(record: UtteranceRecord) -> UtteranceHypothesis:
+    (utterance_id, speaker, word_ids, clean_text, function, fine_class, confidence, revision,
+     final) = record
+    return UtteranceHypothesis(utterance_id=utterance_id, speaker=speaker,
+                               word_ids=_split(word_ids), clean_text=clean_text,
+                               function=_FUNCTIONS[function], fine_class=fine_class,
+                               confidence=confidence, revision=revision, final=final)
+
+
+def pack_update(update: HypothesisUpdate, words: list[WordRecord],
+                utterances: list[UtteranceRecord]) -> UpdateRecord:
+    """The record of ``update`` whose states the caller has already packed, in diff order."""
+    return (update.seq, update.server_time, update.conversation_final,
+            _join(update.diff.withdrawn_word_ids), len(words), *words, *utterances)
+
+
+def unpack_update(record: UpdateRecord) -> HypothesisUpdate:
+    seq, server_time, final, withdrawn, n_words = record[:_UPDATE_HEAD]
+    split = _UPDATE_HEAD + n_words
+    return HypothesisUpdate(
+        seq=seq, server_time=server_time, conversation_final=final,
+        diff=HypothesisDiff(words=tuple(map(unpack_word, record[_UPDATE_HEAD:split])),
+                            utterances=tuple(map(unpack_utterance, record[split:])),
+                            withdrawn_word_ids=_split(withdrawn)))
