@@ -19,9 +19,11 @@ from __future__ import annotations
 import argparse
 import asyncio
 import gc
+import logging
 import os
 import signal
 import sys
+import time
 from pathlib import Path
 from typing import Final
 
@@ -29,6 +31,7 @@ from midstream._errors import InputError
 from midstream.server import MidstreamServer, ServerConfig, ServerLimits, run_server_loop
 
 _TOKEN_ENV = "MIDSTREAM_TOKEN"
+_log = logging.getLogger(__name__)
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -73,17 +76,38 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              f"(default {defaults.max_live_conversations})")
     parser.add_argument("--gc-thresholds", default=_GC_THRESHOLDS, metavar="G0,G1,G2",
                         help="the garbage collector's thresholds once serving (default "
-                             f"{_GC_THRESHOLDS}; Python's own are 700,10,10)")
+                             f"{_GC_THRESHOLDS}: no automatic full collection; Python's own "
+                             "are 700,10,10)")
+    parser.add_argument("--full-collection-every", type=float, default=_FULL_COLLECTION_S,
+                        metavar="S",
+                        help="run a full garbage collection every S seconds, to free reference "
+                             f"cycles older collections would miss (default {_FULL_COLLECTION_S:g}"
+                             "; 0: never)")
     parser.set_defaults(handler=run)
 
 
-#: Collector thresholds while serving. With Python's defaults (700,10,10) the per-word objects
-#: of a few hundred live conversations set collections off often; at 200 and 300 conversations
-#: on one core the p99 latency was 97 and 231 ms, and 22 and 35 ms with these thresholds (one
-#: 40 s bench_service run each; docs/benchmarks.md has the full run). Garbage without
-#: reference cycles is still freed at once by reference counting; the collector only finds
-#: cycles, and with these thresholds finds them later (after 50,000 new objects, not 700).
-_GC_THRESHOLDS: Final = "50000,50,1000"
+#: Collector thresholds while serving. Everything the word path keeps long (history, replay,
+#: snapshots) is stored untracked (see midstream.server._kept), and the word path makes no
+#: reference cycles (every collection of scripts/bench_gc.py's run freed none), so collections
+#: only cost time. Young collections stay small (Python's 700,10) so each pause is short; an
+#: automatic full collection, which walks every live engine and session, never runs (threshold
+#: 1,000,000): with 700 live conversations in-process those took up to 0.25 s, and thresholds
+#: of 50000,50,1000 made every young collection 70-95 ms (scripts/bench_gc.py, 2026-12-03).
+#: Cycles from elsewhere (errors, ended streams) are freed by the periodic full collection.
+_GC_THRESHOLDS: Final = "700,10,1000000"
+#: Seconds between full collections (common practice, no source: rare enough that its pause,
+#: tenths of a second with a thousand live conversations, touches few words).
+_FULL_COLLECTION_S: Final = 600.0
+
+
+async def _collect_periodically(every_s: float) -> None:
+    """Run a full collection every ``every_s`` seconds until cancelled."""
+    while True:
+        await asyncio.sleep(every_s)
+        began = time.perf_counter()
+        freed = gc.collect()
+        _log.debug("full collection freed %d objects in %.1f ms", freed,
+                   (time.perf_counter() - began) * 1e3)
 
 
 def parse_gc_thresholds(text: str) -> tuple[int, int, int]:
@@ -119,7 +143,10 @@ def _token(args: argparse.Namespace) -> str | None:
 
 def run(args: argparse.Namespace) -> int:
     config = build_config(args)
-    return run_server_loop(serve(config, gc_thresholds=parse_gc_thresholds(args.gc_thresholds)))
+    if args.full_collection_every < 0:
+        raise InputError("--full-collection-every must be >= 0 (0: never)")
+    return run_server_loop(serve(config, gc_thresholds=parse_gc_thresholds(args.gc_thresholds),
+                                 full_collection_s=args.full_collection_every))
 
 
 def build_config(args: argparse.Namespace) -> ServerConfig:
@@ -143,12 +170,12 @@ def build_config(args: argparse.Namespace) -> ServerConfig:
     )
 
 
-async def serve(config: ServerConfig, *, gc_thresholds: tuple[int, int, int] | None = None
-                ) -> int:
+async def serve(config: ServerConfig, *, gc_thresholds: tuple[int, int, int] | None = None,
+                full_collection_s: float = 0.0) -> int:
     """Serve until SIGTERM or SIGINT, then drain within ``config.grace_s``; returns 0.
 
     ``gc_thresholds``: the collector's thresholds once the models are loaded (``None``: leave
-    them as they are).
+    them as they are). ``full_collection_s``: seconds between full collections (0: none).
     """
     server = MidstreamServer(config)
     await server.start()
@@ -163,6 +190,8 @@ async def serve(config: ServerConfig, *, gc_thresholds: tuple[int, int, int] | N
         print(f"metrics on http://{config.metrics_host}:{server.metrics_port}/metrics",
               flush=True)
     stop = asyncio.Event()
+    collector = (asyncio.create_task(_collect_periodically(full_collection_s))
+                 if full_collection_s > 0 else None)
     loop = asyncio.get_running_loop()
     for signum in (signal.SIGTERM, signal.SIGINT):
         loop.add_signal_handler(signum, stop.set)
@@ -171,6 +200,8 @@ async def serve(config: ServerConfig, *, gc_thresholds: tuple[int, int, int] | N
     finally:
         for signum in (signal.SIGTERM, signal.SIGINT):
             loop.remove_signal_handler(signum)
+        if collector is not None:
+            collector.cancel()
         print("draining: finishing live conversations", file=sys.stderr, flush=True)
         await server.stop(config.grace_s)
     print("stopped", file=sys.stderr, flush=True)

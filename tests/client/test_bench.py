@@ -264,3 +264,15 @@ def test_bench_ingest_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) ->
     # Twenty conversations of twenty words each, every one answered in a reply frame.
     assert result["words"] == 400 and result["reply_bytes_per_word"] > 0
     assert result["engine_ms_per_word"] > 0 and result["server_ms_per_word"] > 0
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_gc_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
+    result = _script("bench_gc.py", "--models", str(models_dir), "--corpus",
+                     str(swda_dir), tmp_path=tmp_path)
+    assert result["words"] == 400 and result["retained"]["per_word"] >= 0
+    # One pass per default threshold setting, each reporting the three generations.
+    assert [p["thresholds"] for p in result["passes"]] == [
+        [700, 10, 10], [50000, 50, 1000], [700, 10, 1000000]]
+    assert all(set(p["generations"]) == {"0", "1", "2"} for p in result["passes"])

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import gc
 import os
 import signal
 import subprocess
@@ -136,3 +137,38 @@ def test_gc_thresholds_are_three_positive_integers() -> None:
     for bad in ("", "700,10", "700,10,10,10", "a,b,c", "0,10,10", "-1,10,10"):
         with pytest.raises(InputError, match="--gc-thresholds"):
             _cmd_serve.parse_gc_thresholds(bad)
+
+
+def test_the_default_thresholds_leave_full_collections_to_the_timer() -> None:
+    g0, _, g2 = _cmd_serve.parse_gc_thresholds(_cmd_serve._GC_THRESHOLDS)
+    # Young collections stay small (short pauses); automatic full ones effectively never run.
+    assert g0 <= 1000 and g2 >= 100_000
+    assert _cmd_serve._FULL_COLLECTION_S > 0
+
+
+async def test_full_collections_run_on_the_timer_until_cancelled(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    runs: list[int] = []
+
+    def collect(*generation: int) -> int:
+        runs.append(len(generation))
+        return 0
+
+    monkeypatch.setattr(gc, "collect", collect)
+    task = asyncio.create_task(_cmd_serve._collect_periodically(0.01))
+    await asyncio.sleep(0.2)
+    task.cancel()
+    with pytest.raises(asyncio.CancelledError):
+        await task
+    count = len(runs)
+    assert count >= 3 and runs == [0] * count  # full collections: no generation argument
+    await asyncio.sleep(0.05)
+    assert len(runs) == count  # cancelled means stopped
+
+
+def test_a_negative_collection_period_is_refused() -> None:
+    parser = argparse.ArgumentParser()
+    _cmd_serve.register(parser.add_subparsers())
+    args = parser.parse_args(["serve", "--full-collection-every", "-1"])
+    with pytest.raises(InputError, match="--full-collection-every"):
+        _cmd_serve.run(args)
