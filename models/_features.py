@@ -214,10 +214,22 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
     textk = tk.text
     wk = "<frag>" if tk.fragment else textk
     lexk = lex.get(textk, "-")
-    # The words strictly between i and i + k, and whether all are filled pauses or editing
-    # terms: several features below ask, so it is worked out once.
-    between = [tokens[i + b].text for b in range(1, k)]
-    only_fe = all(lex.get(w, "-") in "FE" for w in between)
+    span = config.restart_span
+    reach = min(max(span, 2), config.left)
+    # Most pieces of k >= 2 fire nothing: every copy feature below needs textk to recur among
+    # the words up to i, or text0 among the words between, so those two memberships (C-speed
+    # scans of short lists) decide whether the loops run at all. Guarding a block by a
+    # condition it needs leaves the features and their order as they were.
+    between = [t.text for t in tokens[i + 1 : i + k]]
+    behind = [t.text for t in tokens[max(i - max(span, reach), 0) : i + 1]]
+    recurs = textk in behind
+    # Whether every word strictly between i and i + k is a filled pause or editing term:
+    # several features below ask, so it is worked out once.
+    only_fe = True
+    for w in between:
+        if lex.get(w, "-") not in "FE":
+            only_fe = False
+            break
     if k == 1:
         out += [
             "w+1=" + wk,
@@ -244,15 +256,16 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
             out.append("m0w=" + w0)
             if only_fe and k > 1:
                 out.append("mskip")
-    for a in (1, 2):
-        if i - a >= 0 and tokens[i - a].text == textk:
-            out.append(f"m{a}_{k}")
+    if recurs:
+        for a in (1, 2):
+            if i - a >= 0 and tokens[i - a].text == textk:
+                out.append(f"m{a}_{k}")
     # A word right after i recurs at i + k: i may precede a repeated stretch too.
-    for a in (1, 2):
-        if k > a + 1 and between[a - 1] == textk:
-            out.append(f"n{a}m{k}")
-    span = config.restart_span
-    if span:
+    if k > 2 and textk in between:
+        for a in (1, 2):
+            if k > a + 1 and between[a - 1] == textk:
+                out.append(f"n{a}m{k}")
+    if span and recurs:
         for a in range(3, span + 1):
             if i - a >= 0 and tokens[i - a].text == textk:
                 out.append(f"m{a}_{k}")
@@ -275,30 +288,35 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
         else:
             out.append(f"lc{k}_2")
     # Forward copy: tokens[i .. i+n-1] equals tokens[i+d .. i+d+n-1] with d + n - 1 = k, n >= 2.
-    for n in (2, 3):
-        d = k - n + 1
-        if d >= n and all(tokens[i + b].text == tokens[i + d + b].text for b in range(n)):
-            out.append(f"fc{d}_{n}")
+    if text0 in between:
+        for n in (2, 3):
+            d = k - n + 1
+            if d >= n:
+                for b in range(n):
+                    if tokens[i + b].text != tokens[i + d + b].text:
+                        break
+                else:
+                    out.append(f"fc{d}_{n}")
     if k >= 2:
         if tk.fragment:
             out.append(f"frag+{k}")
-        # Rough copy of a phrase that began before i: the bigram at i-a (a >= 2) recurs
-        # ending at i + k, exactly or with its middle word of a trigram substituted.
-        back = between[-1]
-        reach = min(max(span, 2), config.left)
-        for a in range(2, reach + 1):
-            if i - a < 0:
-                break
-            if tokens[i - a].text == back and tokens[i - a + 1].text == textk:
-                out.append(f"bg{a}_{k}")
-        if k >= 3:
-            first = between[-2]
+        if recurs:
+            # Rough copy of a phrase that began before i: the bigram at i-a (a >= 2) recurs
+            # ending at i + k, exactly or with its middle word of a trigram substituted.
+            back = between[-1]
             for a in range(2, reach + 1):
                 if i - a < 0:
                     break
-                if (tokens[i - a].text == first and tokens[i - a + 2].text == textk
-                        and tokens[i - a + 1].text != back):
-                    out.append(f"sb{a}_{k}")
+                if tokens[i - a].text == back and tokens[i - a + 1].text == textk:
+                    out.append(f"bg{a}_{k}")
+            if k >= 3:
+                first = between[-2]
+                for a in range(2, reach + 1):
+                    if i - a < 0:
+                        break
+                    if (tokens[i - a].text == first and tokens[i - a + 2].text == textk
+                            and tokens[i - a + 1].text != back):
+                        out.append(f"sb{a}_{k}")
     classes = config.word_classes
     if classes:
         # A different word of the same closed class follows: "a- the", "he uh she", "is- was".

@@ -157,3 +157,18 @@ def test_word_classes_are_off_for_models_trained_without_them() -> None:
     assert not any(f.startswith(("c=", "c-1c", "cs", "cb", "cc+", "cp"))
                    for i in range(len(tokens)) for f in features_at(tokens, i, old))
     assert FeatureConfig.from_json(CONFIG.to_json()).word_classes == CONFIG.word_classes
+
+
+def test_a_two_word_phrase_said_again_marks_a_forward_copy() -> None:
+    # "i went" at 0 comes again 3 words on; reaches its last word at 0 + 4.
+    tokens = _tokens("i went to i went home")
+    assert "fc3_2" in feature_piece(tokens, 0, 4, CONFIG)
+    assert not any(f.startswith("fc") for f in feature_piece(_tokens("i went to i came home"),
+                                                             0, 4, CONFIG))
+
+
+def test_copy_features_reach_back_as_far_as_the_restart_span() -> None:
+    # The word at +2 was said 5 words back (the span) and not 6 (beyond it).
+    assert "m5_2" in feature_piece(_tokens("so a b c d x y so"), 5, 2, CONFIG)
+    assert not any(f == "m6_2" for f in feature_piece(_tokens("so a b c d e x y so"), 6, 2,
+                                                      CONFIG))
