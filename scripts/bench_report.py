@@ -3,8 +3,10 @@
 Runs, one after another (never two at once: they would measure each other):
 ``scripts/bench_engine.py`` (the word decoder's per-word cost, its own baselines),
 ``scripts/bench_service.py`` (live conversations per server core, transport and engine
-baselines) and ``scripts/bench_memory.py`` (memory per idle live conversation, engine alone),
-then writes the Markdown page with the machine, its load, the exact commands and the tables.
+baselines), ``scripts/bench_memory.py`` (memory per idle live conversation, engine alone) and
+``scripts/bench_gc.py`` (cycle-collector pauses on the word path, Python's own thresholds as the
+baseline), then writes the Markdown page with the machine, its load, the exact commands and
+the tables.
 
     .venv/bin/python scripts/bench_report.py                         # full: about 15 minutes
     .venv/bin/python scripts/bench_report.py --quick --out /tmp/b.md  # shorter steps
@@ -86,6 +88,8 @@ def main() -> int:
             service_cmd += ["--steps", args.steps]
         memory_cmd = [sys.executable, str(_SCRIPTS / "bench_memory.py"), *model_args,
                       "--json", str(work / "memory.json")]
+        gc_cmd = [sys.executable, str(_SCRIPTS / "bench_gc.py"), *model_args,
+                  "--json", str(work / "gc.json")]
         multiplex_cmd = [sys.executable, str(_SCRIPTS / "bench_service.py"), *model_args,
                          "--multiplex", "--json", str(work / "service_multiplex.json")]
         if args.quick:
@@ -93,19 +97,21 @@ def main() -> int:
         if args.multiplex_steps:
             multiplex_cmd += ["--steps", args.multiplex_steps]
         if args.smoke:
-            for command in (engine_cmd, service_cmd, memory_cmd, multiplex_cmd):
+            for command in (engine_cmd, service_cmd, memory_cmd, multiplex_cmd, gc_cmd):
                 command.append("--smoke")
         (work / "service_multiplex.json").unlink(missing_ok=True)
         if (_SCRIPTS / "bench_engine.py").exists():
             _run(engine_cmd, work / "engine.txt")
         _run(service_cmd, work / "service.txt")
         _run(memory_cmd, work / "memory.txt")
+        _run(gc_cmd, work / "gc.txt")
         if args.multiplex:
             _run(multiplex_cmd, work / "service_multiplex.txt")
         commands_file.write_text(json.dumps({
             "engine": _shown(engine_cmd), "service": _shown(service_cmd),
             "service_multiplex": _shown(multiplex_cmd) if args.multiplex else None,
-            "memory": _shown(memory_cmd), "machine_before": before, "models": models_note,
+            "memory": _shown(memory_cmd), "gc": _shown(gc_cmd),
+            "machine_before": before, "models": models_note,
             "report": _shown([sys.executable, str(Path(__file__).resolve()), *sys.argv[1:]]),
             "machine_after": machine()}, indent=2), encoding="utf-8")
     commands = json.loads(commands_file.read_text(encoding="utf-8"))
@@ -116,7 +122,10 @@ def main() -> int:
     multiplexed_file = work / "service_multiplex.json"
     multiplexed = (json.loads(multiplexed_file.read_text(encoding="utf-8"))
                    if multiplexed_file.exists() else None)
-    args.out.write_text(render(commands, service, memory, engine_text, multiplexed),
+    gc_file = work / "gc.json"
+    collector = json.loads(gc_file.read_text(encoding="utf-8")) if gc_file.exists() else None
+    args.out.write_text(render(commands, service, memory, engine_text, multiplexed,
+                               collector=collector),
                         encoding="utf-8")
     print(f"wrote {args.out}", file=sys.stderr)
     return 0
@@ -155,9 +164,43 @@ def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[s
     ]
 
 
+def _collector_section(command: str | None, result: dict[str, Any]) -> list[str]:
+    """Cycle-collector pauses per threshold setting (``bench_gc.py`` output)."""
+    kept = result["retained"]
+    rows = []
+    for run in result["passes"]:
+        name = ",".join(map(str, run["thresholds"]))
+        for generation, g in run["generations"].items():
+            if g["collections"]:
+                rows.append(f"| {name} | {generation} | {g['collections']} | "
+                            f"{g['max_ms']:.1f} | {g['total_ms']:.0f} | {g['freed']} |")
+        rows.append(f"| {name} | all | | **{run['max_ms']:.1f}** | "
+                    f"{run['total_ms'] / result['words'] * 1e3:.1f} us per word | |")
+    return [
+        "## Cycle-collector pauses on the word path",
+        "",
+        f"`{command or 'scripts/bench_gc.py'}`",
+        "",
+        f"In-process (no network), {result['conversations']} live conversations on "
+        f"`ConverseMany` take {result['words']:,} SwDA val words; `gc.callbacks` time every "
+        "collection. A pause holds up every word in flight, so the longest pause bounds what "
+        "the collector adds to the latency tail. Baseline: Python's own thresholds "
+        "(700,10,10). `midstream serve` uses 700,10,1000000 and a full collection every "
+        "600 s. Objects the collector tracks that stay alive per word taken in: "
+        f"{kept['per_word']:.2f} (kept history is stored untracked).",
+        "",
+        "| thresholds | generation | collections | longest ms | total ms | objects freed |",
+        "|---|---|---|---|---|---|",
+        *rows,
+        "",
+    ]
+
+
 def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, Any],
-           engine_text: str, multiplexed: dict[str, Any] | None = None) -> str:
-    """The benchmarks page; ``multiplexed`` is ``bench_service.py --multiplex`` output."""
+           engine_text: str, multiplexed: dict[str, Any] | None = None, *,
+           collector: dict[str, Any] | None = None) -> str:
+    """The benchmarks page; ``multiplexed`` is ``bench_service.py --multiplex`` output,
+    ``collector`` is ``bench_gc.py`` output."""
     m0, m1 = commands["machine_before"], commands["machine_after"]
     eng = service["engine"]
     steps = service["steps"]
@@ -232,7 +275,8 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "",
         f"`{commands['service']}`",
         "",
-        "The server runs pinned to core 0 (`taskset -c 0`), the load generator on core 1. Each "
+        f"The server runs pinned to core {service.get('server_core', 0)} (`taskset`), the load "
+        f"generator on core(s) {service.get('generator_cores', '1 (not recorded)')}. Each "
         "step starts a fresh server, opens N conversations, then each sends one SwDA val word "
         f"per event at {service['rate']:g} words/s. Latency is from just before a word is "
         "written to the first update naming it. *Baseline*: the same N callers each making one "
@@ -271,6 +315,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "noisy; the server figure includes gRPC stream state and buffers, the session, its "
         "replay buffer and history.",
         "",
+        *(_collector_section(commands.get("gc"), collector) if collector else []),
         "## Word decoder alone",
         "",
         f"`{commands['engine']}` (owned by the word-model work; its output verbatim):",
@@ -308,6 +353,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         commands["service"],
         *([commands["service_multiplex"]] if commands.get("service_multiplex") else []),
         commands["memory"],
+        *([commands["gc"]] if commands.get("gc") else []),
         "midstream bench --target HOST:PORT --conversations 500 --corpus DIR   # any server",
         "```",
         "",
