@@ -92,7 +92,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 #: only cost time. Young collections stay small (Python's 700,10) so each pause is short; an
 #: automatic full collection, which walks every live engine and session, never runs (threshold
 #: 1,000,000): with 700 live conversations in-process those took up to 0.25 s, and thresholds
-#: of 50000,50,1000 made every young collection 70-95 ms (scripts/bench_gc.py, 2026-12-03).
+#: of 50000,50,1000 made young collections take up to about 0.1 s (scripts/bench_gc.py,
+#: 2026-12-03).
 #: Cycles from elsewhere (errors, ended streams) are freed by the periodic full collection.
 _GC_THRESHOLDS: Final = "700,10,1000000"
 #: Seconds between full collections (common practice, no source: rare enough that its pause,
