@@ -215,13 +215,14 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
     wk = "<frag>" if tk.fragment else textk
     lexk = lex.get(textk, "-")
     span = config.restart_span
+    # How far back the copy features look (restart_span <= left, so this covers the span too).
     reach = min(max(span, 2), config.left)
     # Most pieces of k >= 2 fire nothing: every copy feature below needs textk to recur among
     # the words up to i, or text0 among the words between, so those two memberships (C-speed
     # scans of short lists) decide whether the loops run at all. Guarding a block by a
     # condition it needs leaves the features and their order as they were.
     between = [t.text for t in tokens[i + 1 : i + k]]
-    behind = [t.text for t in tokens[max(i - max(span, reach), 0) : i + 1]]
+    behind = [t.text for t in tokens[max(i - reach, 0) : i + 1]]
     recurs = textk in behind
     # Whether every word strictly between i and i + k is a filled pause or editing term:
     # several features below ask, so it is worked out once.

@@ -5,6 +5,7 @@ Not a benchmark itself. The scripts import it from their own folder.
 
 from __future__ import annotations
 
+import argparse
 import os
 import platform
 import subprocess
@@ -31,6 +32,15 @@ save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iteratio
 save_artifact(train_function_model(conversations, FunctionTrainingOptions(max_iterations=30)),
               out / "functions.msm")
 """
+
+
+def source_arguments(parser: argparse.ArgumentParser) -> None:
+    """``--models``, ``--corpus`` and ``--json``, as the in-process benchmarks take them."""
+    parser.add_argument("--models", type=Path, default=None)
+    parser.add_argument("--corpus", type=Path, default=None,
+                        help="SwDA folder (default $MIDSTREAM_CORPORA/swda or "
+                             "../shared/corpora/swda)")
+    parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
 
 
 def corpora_root() -> Path:

@@ -2,7 +2,7 @@
 
 No network: as ``bench_ingest.py``, a servicer in this process takes ``ConverseMany`` request
 frames for ``--conversations`` live conversations (SwDA val words, channels in turn) and every
-reply frame is serialised. ``gc.callbacks`` time each collection. For each ``--thresholds``
+reply frame is serialised. ``gc.callbacks`` time each collection. For each ``--gc-thresholds``
 setting (``G0,G1,G2``, as ``midstream serve --gc-thresholds``) a fresh pass reports, per
 generation: collections, the longest and total pause, and the objects they freed (anything
 non-zero means the word path makes reference cycles, which only a collection can free). The
@@ -28,33 +28,19 @@ import collections
 import gc
 import json
 import time
-from pathlib import Path
-from typing import Any, cast
+from typing import Any
 
-from _benchkit import corpora_root, machine, models_folder
-from bench_ingest import _frame_bytes, _plan
+from _benchkit import corpora_root, machine, models_folder, source_arguments
+from bench_ingest import _frame_bytes, _plan, open_stream
+from midstream._errors import InputError
 from midstream.client._cmd_bench import load_script
+from midstream.client._cmd_serve import parse_gc_thresholds
 from midstream.models import ModelBundle
-from midstream.server import ServerLimits
 from midstream.server._many import ManyStream
-from midstream.server._metrics import ServerMetrics
-from midstream.server._servicer import MidstreamServicer
 from midstream.wire import midstream_pb2 as pb
 
 _DEFAULT = (700, 10, 10)
 _SETTINGS = "700,10,10 50000,50,1000 700,10,1000000"
-
-
-def _open(bundle: ModelBundle, conversations: int) -> ManyStream:
-    limits = ServerLimits(max_live_conversations=conversations,
-                          max_channels_per_stream=conversations)
-    servicer = MidstreamServicer(bundle, limits, ServerMetrics())
-    stream = ManyStream(servicer, cast(Any, None))  # _frame and _frames never use the context
-    stream._frame(pb.ClientFrame(events=[
-        pb.ChannelEvent(channel=c, event=pb.ClientEvent(open=pb.OpenConversation()))
-        for c in range(1, conversations + 1)]))
-    stream._frames()
-    return stream
 
 
 def _feed(stream: ManyStream, frames: list[bytes]) -> None:
@@ -67,7 +53,7 @@ def _feed(stream: ManyStream, frames: list[bytes]) -> None:
 async def retained(bundle: ModelBundle, frames: list[bytes], conversations: int,
                    words: int) -> dict[str, Any]:
     """Tracked objects alive per word after a pass, conversations still open, by type."""
-    stream = _open(bundle, conversations)
+    _, stream = open_stream(bundle, conversations)
     gc.collect()
     before = collections.Counter(type(o).__name__ for o in gc.get_objects())
     _feed(stream, frames)
@@ -83,7 +69,7 @@ async def retained(bundle: ModelBundle, frames: list[bytes], conversations: int,
 async def timed_pass(bundle: ModelBundle, frames: list[bytes], conversations: int,
                      thresholds: tuple[int, int, int]) -> dict[str, Any]:
     """Collections during one pass at ``thresholds``, per generation."""
-    stream = _open(bundle, conversations)
+    _, stream = open_stream(bundle, conversations)
     gc.collect()
     pauses: list[tuple[int, float, int]] = []
     began = [0.0]
@@ -120,29 +106,21 @@ async def timed_pass(bundle: ModelBundle, frames: list[bytes], conversations: in
             "total_ms": sum(p[1] for p in pauses) * 1e3}
 
 
-def _thresholds(text: str) -> tuple[int, int, int]:
-    values = tuple(int(v) for v in text.split(","))
-    if len(values) != 3 or min(values) < 1:
-        raise SystemExit(f"--thresholds: {text!r} is not G0,G1,G2 (positive integers)")
-    return values[0], values[1], values[2]
-
-
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--models", type=Path, default=None)
-    parser.add_argument("--corpus", type=Path, default=None,
-                        help="SwDA folder (default $MIDSTREAM_CORPORA/swda or "
-                             "../shared/corpora/swda)")
-    parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
+    source_arguments(parser)
     parser.add_argument("--conversations", type=int, default=700)
     parser.add_argument("--words", type=int, default=120, help="words per conversation")
-    parser.add_argument("--thresholds", default=_SETTINGS,
+    parser.add_argument("--gc-thresholds", default=_SETTINGS,
                         help=f"space-separated G0,G1,G2 settings (default {_SETTINGS!r})")
     parser.add_argument("--smoke", action="store_true")
     args = parser.parse_args()
     if args.smoke:
         args.conversations, args.words = 20, 20
-    settings = [_thresholds(t) for t in args.thresholds.split()]
+    try:
+        settings = [parse_gc_thresholds(t) for t in args.gc_thresholds.split()]
+    except InputError as exc:
+        raise SystemExit(str(exc)) from None
     folder, how = models_folder(args.models, None)
     bundle = ModelBundle.load_directory(folder)
     bundle.warm_up()

@@ -31,10 +31,9 @@ import json
 import pstats
 import statistics
 import time
-from pathlib import Path
 from typing import Any, cast
 
-from _benchkit import corpora_root, machine, models_folder
+from _benchkit import corpora_root, machine, models_folder, source_arguments
 from midstream._types import Word
 from midstream.client._cmd_bench import load_script
 from midstream.models import ModelBundle
@@ -78,10 +77,9 @@ def engine_pass(bundle: ModelBundle, plan: Plan, conversations: int) -> float:
     return spent
 
 
-async def server_pass(bundle: ModelBundle, frames: list[bytes], conversations: int,
-                      profile: cProfile.Profile | None = None) -> tuple[float, int, float]:
-    """CPU seconds of the frame path over the plan, the reply bytes it produced, and the words
-    the server's own counter took in."""
+def open_stream(bundle: ModelBundle, conversations: int
+                ) -> tuple[MidstreamServicer, ManyStream]:
+    """A servicer in this process and one ``ManyStream`` with channels 1..N open on it."""
     limits = ServerLimits(max_live_conversations=conversations,
                           max_channels_per_stream=conversations)
     servicer = MidstreamServicer(bundle, limits, ServerMetrics())
@@ -90,6 +88,14 @@ async def server_pass(bundle: ModelBundle, frames: list[bytes], conversations: i
         pb.ChannelEvent(channel=c, event=pb.ClientEvent(open=pb.OpenConversation()))
         for c in range(1, conversations + 1)]))
     stream._frames()
+    return servicer, stream
+
+
+async def server_pass(bundle: ModelBundle, frames: list[bytes], conversations: int,
+                      profile: cProfile.Profile | None = None) -> tuple[float, int, float]:
+    """CPU seconds of the frame path over the plan, the reply bytes it produced, and the words
+    the server's own counter took in."""
+    servicer, stream = open_stream(bundle, conversations)
     sent = 0
     parse, frame_of, replies = pb.ClientFrame.FromString, stream._frame, stream._frames
     if profile is not None:
@@ -110,11 +116,7 @@ async def server_pass(bundle: ModelBundle, frames: list[bytes], conversations: i
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--models", type=Path, default=None)
-    parser.add_argument("--corpus", type=Path, default=None,
-                        help="SwDA folder (default $MIDSTREAM_CORPORA/swda or "
-                             "../shared/corpora/swda)")
-    parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
+    source_arguments(parser)
     parser.add_argument("--conversations", type=int, default=200)
     parser.add_argument("--words", type=int, default=60, help="words per conversation")
     parser.add_argument("--per-frame", type=int, default=30,

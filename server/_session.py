@@ -432,7 +432,7 @@ class Session:
 
     def _after(self, seq: int) -> list[HypothesisUpdate]:
         """Updates in the replay buffer after ``seq``, oldest first."""
-        if self.seq == seq + 1 and self._replay and self._newest is not None:
+        if self.seq == seq + 1 and self._newest is not None:
             # The usual case, one update since the caller was last sent: the newest one.
             return [self._newest]
         newer: list[HypothesisUpdate] = []
