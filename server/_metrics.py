@@ -19,10 +19,14 @@ Safe to use from the event loop thread only (the HTTP exporter thread only reads
 
 from __future__ import annotations
 
+import bisect
 import threading
+from collections.abc import Iterator
 from wsgiref.simple_server import WSGIServer
 
-from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, start_http_server
+from prometheus_client import CollectorRegistry, Counter, Gauge, start_http_server
+from prometheus_client.core import CounterMetricFamily, HistogramMetricFamily
+from prometheus_client.registry import Collector
 
 # Per-word work is sub-millisecond; network and queuing push the tail into tens of ms.
 _LATENCY_BUCKETS = (0.0005, 0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.25, 0.5, 1.0)
@@ -33,20 +37,10 @@ class ServerMetrics:
 
     def __init__(self) -> None:
         self.registry = CollectorRegistry(auto_describe=True)
-        self.words = Counter(
-            "midstream_words", "Words taken in by Converse.", registry=self.registry
-        )
-        self.latency = Histogram(
-            "midstream_update_latency_seconds",
-            "Seconds from reading an event to its update being published.",
-            buckets=_LATENCY_BUCKETS, registry=self.registry,
-        )
+        self.tally = WordTally()
+        self.registry.register(self.tally)
         self.live = Gauge(
             "midstream_live_conversations", "Conversations being ingested.",
-            registry=self.registry,
-        )
-        self.revisions = Counter(
-            "midstream_revisions", "Published states that revised an earlier one.",
             registry=self.registry,
         )
         self.errors = Counter(
@@ -69,3 +63,45 @@ class ServerMetrics:
             server.shutdown()
             server.server_close()
             thread.join(timeout=5)
+
+
+class WordTally(Collector):
+    """The per-word counters: words, revisions and the update-latency histogram.
+
+    Every word adds to these, so they are plain numbers the event loop thread adds to without a
+    lock (prometheus_client's own metrics take a lock on every call: four per word, a few
+    per cent of the server's CPU at full load). The exporter thread reads them when scraped;
+    a scrape racing an update may miss that one update's share, never a count already made.
+    """
+
+    def __init__(self) -> None:
+        self.words = 0
+        self.revisions = 0
+        self.latency_sum = 0.0
+        # One count per bucket of _LATENCY_BUCKETS, then the overflow (+Inf) count.
+        self._latency_counts = [0] * (len(_LATENCY_BUCKETS) + 1)
+
+    def observe_latency(self, seconds: float) -> None:
+        """Count one update published ``seconds`` after its event was read."""
+        # bisect_left: a value equal to a bound belongs to that bound's bucket (le="bound").
+        self._latency_counts[bisect.bisect_left(_LATENCY_BUCKETS, seconds)] += 1
+        self.latency_sum += seconds
+
+    def describe(self) -> Iterator[CounterMetricFamily | HistogramMetricFamily]:
+        return self.collect()
+
+    def collect(self) -> Iterator[CounterMetricFamily | HistogramMetricFamily]:
+        counts = list(self._latency_counts)  # one atomic copy: the buckets agree with each other
+        cumulative, running = [], 0
+        for bound, count in zip((*map(str, _LATENCY_BUCKETS), "+Inf"), counts, strict=True):
+            running += count
+            cumulative.append((bound, running))
+        yield CounterMetricFamily("midstream_words", "Words taken in by Converse.",
+                                  value=self.words)
+        yield HistogramMetricFamily(
+            "midstream_update_latency_seconds",
+            "Seconds from reading an event to its update being published.",
+            buckets=cumulative, sum_value=self.latency_sum)
+        yield CounterMetricFamily("midstream_revisions",
+                                  "Published states that revised an earlier one.",
+                                  value=self.revisions)

@@ -301,9 +301,8 @@ class Session:
                 timeline.record(word)
         finally:
             if diffs:
-                # Counted once per batch: the counter takes a lock on every call.
                 self.word_count += len(diffs)
-                self._metrics.words.inc(len(diffs))
+                self._metrics.tally.words += len(diffs)
                 # One diff needs no merging: an engine names each word and utterance at
                 # most once per diff (merging it would give the same diff, rebuilt).
                 update = self._publish(diffs[0] if len(diffs) == 1 else merge_diffs(diffs),
@@ -417,10 +416,10 @@ class Session:
             message = self._shared_wire = _to_wire(update)
             for follower in self._followers:
                 follower.offer(message, seq)
-        if revised:
-            self._metrics.revisions.inc(revised)
+        tally = self._metrics.tally
+        tally.revisions += revised
         if received is not None:
-            self._metrics.latency.observe(time.monotonic() - received)
+            tally.observe_latency(time.monotonic() - received)
         return update
 
     # --- reading ---------------------------------------------------------------------------

@@ -7,6 +7,8 @@ import urllib.request
 
 import grpc
 import pytest
+from midstream.server._metrics import _LATENCY_BUCKETS, WordTally
+from prometheus_client import CollectorRegistry, Counter, Histogram
 from prometheus_client.parser import text_string_to_metric_families
 from server_kit import (  # noqa: F401 - fixtures are found by name
     Caller,
@@ -67,3 +69,31 @@ async def test_two_servers_keep_separate_counts(start_server: ServerFactory) -> 
         ("midstream_words_total", ())] == 1
     assert (await asyncio.to_thread(_scrape, second.server.metrics_port))[
         ("midstream_words_total", ())] == 0
+
+
+def test_word_tally_exposes_what_prometheus_clients_own_metrics_would() -> None:
+    # Reference: prometheus_client's Counter and Histogram, fed the same values, give the
+    # samples the lock-free tally must give (bucket bounds inclusive, cumulative, +Inf, sum).
+    reference = CollectorRegistry()
+    words = Counter("midstream_words", "w", registry=reference)
+    revisions = Counter("midstream_revisions", "r", registry=reference)
+    latency = Histogram("midstream_update_latency_seconds", "l", buckets=_LATENCY_BUCKETS,
+                        registry=reference)
+    tally = WordTally()
+    ours = CollectorRegistry()
+    ours.register(tally)
+    for seconds in (0.0, 0.0005, 0.00051, 0.003, 0.05, 0.7, 1.0, 3.5):
+        latency.observe(seconds)
+        tally.observe_latency(seconds)
+    words.inc(7)
+    tally.words += 7
+    revisions.inc(2)
+    tally.revisions += 2
+
+    def samples(registry: CollectorRegistry) -> dict[tuple[str, tuple[tuple[str, str], ...]],
+                                                      float]:
+        return {(s.name, tuple(sorted(s.labels.items()))): s.value
+                for family in registry.collect() for s in family.samples
+                if not s.name.endswith("_created")}
+
+    assert samples(ours) == pytest.approx(samples(reference))
