@@ -20,7 +20,7 @@ share between threads or tasks; create one per conversation.
 
 from __future__ import annotations
 
-from collections import OrderedDict, deque
+from collections import OrderedDict
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
@@ -118,7 +118,9 @@ class ConversationEngine:
         self._channels: dict[str, _Channel] = {}
         self._by_id: dict[str, _Slot] = {}
         self._recent_ids: OrderedDict[str, None] = OrderedDict()
-        self._context: deque[UtteranceView] = deque(maxlen=max(function_tagger.context, 1))
+        #: The final utterances the function tagger decodes the current ones after (its
+        #: context size, oldest first); rebuilt when one is added, read on every word.
+        self._window: tuple[UtteranceView, ...] = ()
         self._last_speaker: str | None = None
         self._finished = False
         # An utterance of nothing but disfluent words ("uh") has no words to label: it is
@@ -290,18 +292,20 @@ class ConversationEngine:
         return HypothesisDiff(words=tuple(words), utterances=tuple(utterances),
                               withdrawn_word_ids=withdrawn)
 
-    def _groups(self, channel: _Channel, close_all: bool) -> list[list[int]]:
+    def _groups(self, channel: _Channel, close_all: bool) -> list[tuple[int, ...]]:
         """Split the channel's open words at the currently hypothesised utterance ends."""
-        groups: list[list[int]] = []
-        current: list[int] = []
+        keys = channel.open_keys
+        if not keys:
+            return []
         slots = channel.slots
-        for key in channel.open_keys:
-            current.append(key)
-            if slots[key].ends_utterance:
-                groups.append(current)
-                current = []
-        if current:
-            groups.append(current)
+        # Runs on every word: one comprehension finds the ends, then tuples are sliced there.
+        cuts = [i + 1 for i, key in enumerate(keys) if slots[key].ends_utterance]
+        if not cuts or cuts[-1] != len(keys):
+            cuts.append(len(keys))
+        whole = tuple(keys)
+        starts = [0, *cuts[:-1]]
+        groups = [whole] if len(cuts) == 1 else [
+            whole[a:b] for a, b in zip(starts, cuts, strict=True)]
         if close_all:
             return groups
         # A run of final words with no end in sight is closed at the documented length.
@@ -325,17 +329,18 @@ class ConversationEngine:
         published: list[UtteranceHypothesis] = []
         old = channel.utterances
         new: list[_OpenUtterance] = []
-        for position, key_list in enumerate(groups):
-            keys = tuple(key_list)
-            if (not close_all and position < len(old) and old[position].keys == keys
+        n_old = len(old)
+        held = channel.slots
+        for position, keys in enumerate(groups):
+            if (not close_all and position < n_old and old[position].keys == keys
                     and old[position].published is not None and changed.isdisjoint(keys)):
                 new.append(old[position])
                 continue
             # List comprehensions rather than generators: this runs on every word.
-            slots = [channel.slots[k] for k in keys]
+            slots = [held[k] for k in keys]
             ended = slots[-1].ends_utterance or close_all or len(keys) >= limit
             final = (ended and all([s.final for s in slots])) or close_all
-            if position < len(old):
+            if position < n_old:
                 entry = old[position]
             else:
                 entry = _OpenUtterance(index=channel.next_index)
@@ -346,7 +351,7 @@ class ConversationEngine:
                                  removed=len(slots) - len(clean), complete=ended)
             if entry.view != view or entry.word_ids != word_ids or (
                     final and not (entry.published and entry.published.final)):
-                guess = self._functions.label_partial(list(self._context), view) if clean \
+                guess = self._functions.label_built(self._window, view) if clean \
                     else self._empty_guess
                 hypothesis = self._utterance(entry, speaker=channel.speaker, word_ids=word_ids,
                                              clean=clean, guess=guess, final=final)
@@ -369,7 +374,8 @@ class ConversationEngine:
                     channel.slots.pop(slot.key, None)
             del channel.open_keys[:len(done.word_ids)]
             if done.view is not None and done.view.words:
-                self._context.append(done.view)
+                size = self._functions.context
+                self._window = (*self._window, done.view)[-size:] if size else ()
         channel.utterances = new
         return published
 
@@ -398,6 +404,8 @@ class ConversationEngine:
 
 
 def _clean_word(word: Word, text: str, fragment: bool) -> Word:
+    if text == word.text and fragment == word.fragment:
+        return word  # the usual case: the recogniser's word is already clean (and immutable)
     return Word(text=text, speaker=word.speaker, start=word.start, end=word.end,
                 confidence=word.confidence, fragment=fragment)
 

@@ -921,24 +921,27 @@ class FunctionTagger:
                         current: UtteranceView) -> tuple[int, FloatArray]:
         """Index of the last position's Viterbi label and every label's marginal there: the
         part of :meth:`_last_step` (same errors) that the exactness tests compare."""
-        k, _, _, _, probs = self._last_step(context, current)
+        k, _, _, _, probs = self._last_step(self._window_of(context), check_view(current))
         return k, probs
 
-    def _last_step(self, context: Sequence[UtteranceView], current: UtteranceView
+    def _window_of(self, context: Sequence[UtteranceView]) -> tuple[UtteranceView, ...]:
+        """The last :attr:`context` views of ``context`` (the window decoded with an utterance)."""
+        return tuple(context[-self._context:]) if self._context else ()
+
+    def _last_step(self, window: tuple[UtteranceView, ...], current: UtteranceView
                    ) -> tuple[int, float, int, float, FloatArray]:
         """The last position's Viterbi label, its marginal, the coarse function :meth:`_guess`
         would choose (enum index; fine models only, else meaningless) with its confidence, and
-        every label's marginal.
+        every label's marginal, ``window`` being the context to decode with (at most
+        :attr:`context` views) and ``current`` a checked view.
 
         Raises
         ------
         InputError
-            A view is malformed.
+            A view of the window is malformed.
         OverflowError
             crfsuite's exp overflows on these views' scores.
         """
-        window = tuple(context[-self._context:]) if self._context else ()
-        check_view(current)
         words = current.words
         # The rows of utterance_features(current, previous), in its order.
         rows = self._shape_rows(current) + self._word_rows(words)
@@ -1029,10 +1032,23 @@ class FunctionTagger:
         InputError
             An argument is not a well-formed :class:`UtteranceView`.
         """
+        return self.label_built(self._window_of(context), check_view(current))
+
+    def label_built(self, window: tuple[UtteranceView, ...],
+                    current: UtteranceView) -> FunctionGuess:
+        """:meth:`label_partial` for callers that built the views themselves (the engine, on
+        every word): ``window`` is already the last :attr:`context` views and ``current`` is
+        not checked again.
+
+        Raises
+        ------
+        InputError
+            A view of a window not seen before is malformed.
+        """
         try:
-            k, confidence, group, group_confidence, _ = self._last_step(context, current)
+            k, confidence, group, group_confidence, _ = self._last_step(window, current)
         except OverflowError:
-            return self._guess(*self._label_partial_crfsuite(context, current))
+            return self._guess(*self._label_partial_crfsuite(window, current))
         label = self._label_names[k]
         if self._scheme == "coarse":
             return FunctionGuess(label=label, confidence=confidence,
