@@ -119,8 +119,10 @@ class ConversationEngine:
         self._by_id: dict[str, _Slot] = {}
         self._recent_ids: OrderedDict[str, None] = OrderedDict()
         #: The final utterances the function tagger decodes the current ones after (its
-        #: context size, oldest first); rebuilt when one is added, read on every word.
-        self._window: tuple[UtteranceView, ...] = ()
+        #: context size, oldest first), with their recursions: made when one is added, read on
+        #: every word (the tagger's shared cache of windows holds fewer than a busy server's
+        #: conversations).
+        self._window = function_tagger.context_window(())
         self._last_speaker: str | None = None
         self._finished = False
         # An utterance of nothing but disfluent words ("uh") has no words to label: it is
@@ -374,8 +376,8 @@ class ConversationEngine:
                     channel.slots.pop(slot.key, None)
             del channel.open_keys[:len(done.word_ids)]
             if done.view is not None and done.view.words:
-                size = self._functions.context
-                self._window = (*self._window, done.view)[-size:] if size else ()
+                self._window = self._functions.context_window(
+                    (*self._window.views, done.view))
         channel.utterances = new
         return published
 

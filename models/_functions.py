@@ -438,6 +438,20 @@ class _Carry:
     other: tuple[int, ...]
 
 
+@dataclass(frozen=True, slots=True)
+class ContextWindow:
+    """Final utterances to label the next ones after, with their recursions worked out.
+
+    Made by :meth:`FunctionTagger.context_window`; a caller that labels many utterances after the
+    same context (the engine, on every word) keeps one instead of having the tagger find the
+    window in its shared cache on every call. ``carry`` is ``None`` when the window is empty, or
+    when crfsuite's arithmetic overflows on it (labels are then crfsuite's own).
+    """
+
+    views: tuple[UtteranceView, ...]
+    carry: _Carry | None
+
+
 class _Words(NamedTuple):
     """Model rows of the features of an utterance that depend on its words alone.
 
@@ -547,7 +561,9 @@ class FunctionTagger:
     (``WINDOW_CACHE_SIZE * (context + 1)`` entries of two vectors), and the feature rows of a
     growing utterance's words (:data:`NGRAM_CACHE_SIZE`), so a call costs the new word's
     features, one gather of weight rows and one step of the recursions; the first call after a
-    new context window also runs the recursions over the window. In the rare case ``exp`` would
+    new context window also runs the recursions over the window. A caller labelling word after
+    word after the same context keeps the window (:meth:`context_window`) and calls
+    :meth:`label_built`, so no shared cache is searched on each word. In the rare case ``exp`` would
     overflow (state scores past 709, which no regularised model reaches), the call is handed to
     crfsuite so that even then the result is its own.
 
@@ -921,33 +937,45 @@ class FunctionTagger:
                         current: UtteranceView) -> tuple[int, FloatArray]:
         """Index of the last position's Viterbi label and every label's marginal there: the
         part of :meth:`_last_step` (same errors) that the exactness tests compare."""
-        k, _, _, _, probs = self._last_step(self._window_of(context), check_view(current))
+        k, _, _, _, probs = self._last_step(self.context_window(context), check_view(current))
         return k, probs
 
-    def _window_of(self, context: Sequence[UtteranceView]) -> tuple[UtteranceView, ...]:
-        """The last :attr:`context` views of ``context`` (the window decoded with an utterance)."""
-        return tuple(context[-self._context:]) if self._context else ()
-
-    def _last_step(self, window: tuple[UtteranceView, ...], current: UtteranceView
-                   ) -> tuple[int, float, int, float, FloatArray]:
-        """The last position's Viterbi label, its marginal, the coarse function :meth:`_guess`
-        would choose (enum index; fine models only, else meaningless) with its confidence, and
-        every label's marginal, ``window`` being the context to decode with (at most
-        :attr:`context` views) and ``current`` a checked view.
+    def context_window(self, context: Sequence[UtteranceView]) -> ContextWindow:
+        """The last :attr:`context` views of ``context`` with their recursions, for
+        :meth:`label_built`.
 
         Raises
         ------
         InputError
-            A view of the window is malformed.
+            A view of a window not seen before is malformed.
+        """
+        views = tuple(context[-self._context:]) if self._context else ()
+        if not views:
+            return ContextWindow(views, None)
+        try:
+            return ContextWindow(views, self._carry(views))
+        except OverflowError:
+            return ContextWindow(views, None)
+
+    def _last_step(self, window: ContextWindow, current: UtteranceView
+                   ) -> tuple[int, float, int, float, FloatArray]:
+        """The last position's Viterbi label, its marginal, the coarse function :meth:`_guess`
+        would choose (enum index; fine models only, else meaningless) with its confidence, and
+        every label's marginal, after ``window`` (``current`` a checked view).
+
+        Raises
+        ------
         OverflowError
             crfsuite's exp overflows on these views' scores.
         """
         words = current.words
         # The rows of utterance_features(current, previous), in its order.
         rows = self._shape_rows(current) + self._word_rows(words)
-        if window:
-            previous = window[-1]
-            carry = self._carry(window)
+        if window.views:
+            previous = window.views[-1]
+            carry = window.carry
+            if carry is None:
+                raise OverflowError("the context window's recursions overflowed")
             if previous.speaker != current.speaker:
                 rows += carry.other
                 if self._config.previous:
@@ -1032,23 +1060,16 @@ class FunctionTagger:
         InputError
             An argument is not a well-formed :class:`UtteranceView`.
         """
-        return self.label_built(self._window_of(context), check_view(current))
+        return self.label_built(self.context_window(context), check_view(current))
 
-    def label_built(self, window: tuple[UtteranceView, ...],
-                    current: UtteranceView) -> FunctionGuess:
-        """:meth:`label_partial` for callers that built the views themselves (the engine, on
-        every word): ``window`` is already the last :attr:`context` views and ``current`` is
-        not checked again.
-
-        Raises
-        ------
-        InputError
-            A view of a window not seen before is malformed.
+    def label_built(self, window: ContextWindow, current: UtteranceView) -> FunctionGuess:
+        """:meth:`label_partial` after a :meth:`context_window` the caller keeps, for callers
+        that built ``current`` themselves (the engine, on every word): it is not checked again.
         """
         try:
             k, confidence, group, group_confidence, _ = self._last_step(window, current)
         except OverflowError:
-            return self._guess(*self._label_partial_crfsuite(window, current))
+            return self._guess(*self._label_partial_crfsuite(window.views, current))
         label = self._label_names[k]
         if self._scheme == "coarse":
             return FunctionGuess(label=label, confidence=confidence,

@@ -208,6 +208,26 @@ def test_caches_never_change_an_answer(tiny_fine: ModelArtifact) -> None:
             assert shared.label_partial(context, current) == alone
 
 
+def test_a_kept_context_window_answers_as_crfsuite_after_the_shared_caches_moved_on(
+        tiny_fine: ModelArtifact) -> None:
+    # What the engine does: it keeps the window of its last final utterances and labels every
+    # word's growing utterance after it, while other conversations push the window out of the
+    # tagger's shared caches. Reference: crfsuite over the same window (crfsuite_reference).
+    tagger = FunctionTagger.from_artifact(tiny_fine)
+    crf = CrfTagger.from_bytes(tiny_fine.crf)
+    views = conversation_views(invented_conversation(64))
+    context, current = views[:6], views[6]
+    kept = tagger.context_window(context)
+    assert kept.views == tuple(context[-tagger.context:])
+    for i in range(WINDOW_CACHE_SIZE + 10):  # other conversations' windows evict this one
+        tagger.context_window([UtteranceView(speaker="A", words=("so", f"w{i}"))])
+    for n in range(1, len(current.words) + 1):
+        prefix = current.prefix(n)
+        label, marginals = crfsuite_reference(crf, tagger, context, prefix)
+        assert_same_guess(tagger.label_built(kept, prefix), tagger._guess(label, marginals))
+    assert tagger.context_window([]).views == ()
+
+
 def test_caches_stay_within_their_documented_sizes(tiny_fine: ModelArtifact) -> None:
     # More distinct windows and word sequences than the caches hold (bounded memory however
     # many conversations share the tagger).
