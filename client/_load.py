@@ -96,6 +96,11 @@ class LoadConfig:
             raise InputError(f"tick_s must be above 0 and at most 1 second, got {self.tick_s}")
 
 
+#: Words further into its transcript each lap of conversations starts (about five and a half
+#: minutes of speech at 3 words/s; a prime, so laps rarely land on each other).
+_LAP_STRIDE = 997
+
+
 class WordScript:
     """The words each simulated conversation speaks: real transcripts, cycled.
 
@@ -127,7 +132,11 @@ class WordScript:
 
     def word(self, conversation: int, index: int) -> tuple[str, str]:
         """The ``index``-th (speaker, text) of simulated conversation ``conversation``."""
-        start = self._starts[conversation % len(self._starts)]
+        lap, first = divmod(conversation, len(self._starts))
+        # Past the last transcript, conversations start further into theirs on every lap, so
+        # no two concurrent conversations speak the same words at the same time (which would
+        # let the server's shared caches serve both from one entry).
+        start = self._starts[first] + lap * _LAP_STRIDE
         return self._words[(start + index) % len(self._words)]
 
 

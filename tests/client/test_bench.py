@@ -180,9 +180,18 @@ def test_word_script_cycles_from_each_conversation_offset() -> None:
     assert [script.word(0, k) for k in range(4)] == [("A", "a"), ("B", "b"), ("A", "c"),
                                                      ("A", "a")]
     assert script.word(1, 0) == ("A", "c")
-    assert script.word(2, 1) == ("B", "b")  # conversation 2 reuses transcript 0's offset
     with pytest.raises(InputError):
         WordScript([[], []])
+
+
+def test_more_conversations_than_transcripts_do_not_speak_in_step() -> None:
+    # Conversations 0 and 2 both start in transcript 0, but the second lap starts further in:
+    # concurrent conversations never send the same words at the same moment.
+    script = WordScript([[("A", f"a{i}") for i in range(3000)], [("B", "b")]])
+    first = [script.word(0, k) for k in range(50)]
+    second = [script.word(2, k) for k in range(50)]
+    assert second[0][1].startswith("a") and second[0] != first[0]
+    assert not set(first) & set(second)
 
 
 def test_percentiles_are_nearest_rank() -> None:
