@@ -36,7 +36,7 @@ from midstream._types import (
 )
 from midstream.corpora._normalise import normalise_token
 from midstream.models._decoder import ChannelDecoder, TokenState
-from midstream.models._functions import FunctionGuess, FunctionTagger, UtteranceView
+from midstream.models._functions import FunctionGuess, FunctionTagger, UtteranceView, WordsMemo
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -123,6 +123,7 @@ class ConversationEngine:
         #: every word (the tagger's shared cache of windows holds fewer than a busy server's
         #: conversations).
         self._window = function_tagger.context_window(())
+        self._memo = WordsMemo()
         self._last_speaker: str | None = None
         self._finished = False
         # An utterance of nothing but disfluent words ("uh") has no words to label: it is
@@ -353,7 +354,7 @@ class ConversationEngine:
                                  removed=len(slots) - len(clean), complete=ended)
             if entry.view != view or entry.word_ids != word_ids or (
                     final and not (entry.published and entry.published.final)):
-                guess = self._functions.label_built(self._window, view) if clean \
+                guess = self._functions.label_built(self._window, view, self._memo) if clean \
                     else self._empty_guess
                 hypothesis = self._utterance(entry, speaker=channel.speaker, word_ids=word_ids,
                                              clean=clean, guess=guess, final=final)

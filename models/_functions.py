@@ -472,6 +472,32 @@ class _Words(NamedTuple):
     rows: tuple[int, ...]
 
 
+class WordsMemo:
+    """Feature rows of one caller's latest utterances (:meth:`FunctionTagger.label_built`).
+
+    Holds the entries of the last :data:`WORDS_MEMO_SIZE` word sequences labelled through it:
+    enough for an open utterance per speaker and the prefix it grows from. One per engine.
+    """
+
+    __slots__ = ("_entries",)
+
+    def __init__(self) -> None:
+        self._entries: dict[tuple[str, ...], _Words] = {}
+
+    def find(self, words: tuple[str, ...]) -> _Words | None:
+        return self._entries.get(words)
+
+    def keep(self, words: tuple[str, ...], entry: _Words) -> None:
+        entries = self._entries
+        entries[words] = entry
+        if len(entries) > WORDS_MEMO_SIZE:
+            del entries[next(iter(entries))]  # the oldest kept
+
+
+#: Word sequences a :class:`WordsMemo` keeps. Documented limit.
+WORDS_MEMO_SIZE = 4
+
+
 #: Distinct context windows whose decoding :class:`FunctionTagger` keeps (a live conversation
 #: uses one at a time; twice the server's default ``max_live_conversations``, so conversations
 #: interleaving on one tagger do not evict each other). Documented limit.
@@ -837,18 +863,35 @@ class FunctionTagger:
         self._recent.put(ids, (window, carry))
         return carry
 
-    def _words_of(self, words: tuple[str, ...]) -> _Words:
-        """The word-dependent rows of ``words`` (at most MAX_FEATURE_WORDS), cached.
+    def _words_of(self, words: tuple[str, ...], memo: WordsMemo | None = None) -> _Words:
+        """The word-dependent rows of ``words`` (at most MAX_FEATURE_WORDS), cached (in the
+        caller's ``memo`` first, then in the shared cache).
 
         A growing utterance finds its previous words' entry and adds the n-grams ending at the
         new word instead of rebuilding every name.
         """
+        if memo is not None:
+            entry = memo.find(words)
+            if entry is not None:
+                return entry
         entry = self._words.get(words)
-        if entry is not None:
-            return entry
+        if entry is None:
+            parent = None
+            if words:
+                head = words[:-1]
+                parent = memo.find(head) if memo is not None else None
+                if parent is None:
+                    parent = self._words.peek(head)
+            entry = self._build_words(words, parent)
+            self._words.put(words, entry)
+        if memo is not None:
+            memo.keep(words, entry)
+        return entry
+
+    def _build_words(self, words: tuple[str, ...], parent: _Words | None) -> _Words:
+        """The entry of ``words``, from its parent's (``words[:-1]``) when there is one."""
         get = self._attributes.get
         trigrams = self._config.trigrams
-        parent = self._words.peek(words[:-1]) if words else None
         if parent is not None:
             unigrams, bigrams, tri = parent.unigrams, parent.bigrams, parent.trigrams
             new = [get(name) for name in _open_ngram_names(words, trigrams=trigrams)]
@@ -886,16 +929,15 @@ class FunctionTagger:
                     get(f"b0={words[0]}|{words[1]}") if len(words) > 1 else None,
                     get(f"t0={words[0]}|{words[1]}|{words[2]}") if len(words) > 2 else None)
         rows = (*unigrams, *bigrams, *end_bigram, *tri, *end_trigram, *word_rows)
-        entry = _Words(unigrams=unigrams, bigrams=bigrams, trigrams=tri, lead=lead, rows=rows)
-        self._words.put(words, entry)
-        return entry
+        return _Words(unigrams=unigrams, bigrams=bigrams, trigrams=tri, lead=lead, rows=rows)
 
-    def _word_rows(self, words: tuple[str, ...]) -> tuple[int, ...]:
+    def _word_rows(self, words: tuple[str, ...],
+                   memo: WordsMemo | None = None) -> tuple[int, ...]:
         """Rows of the features of an utterance that depend on its words alone, in order."""
         if len(words) <= MAX_FEATURE_WORDS:
-            return self._words_of(words).rows
+            return self._words_of(words, memo).rows
         # Past the limit the n-grams stop growing and lose their end marker.
-        head = self._words_of(words[:MAX_FEATURE_WORDS])
+        head = self._words_of(words[:MAX_FEATURE_WORDS], memo)
         feats: Features = {}
         _add_word_features(feats, words)
         return (*head.unigrams, *head.bigrams, *head.trigrams, *self._rows(feats))
@@ -957,8 +999,8 @@ class FunctionTagger:
         except OverflowError:
             return ContextWindow(views, None)
 
-    def _last_step(self, window: ContextWindow, current: UtteranceView
-                   ) -> tuple[int, float, int, float, FloatArray]:
+    def _last_step(self, window: ContextWindow, current: UtteranceView,
+                   memo: WordsMemo | None = None) -> tuple[int, float, int, float, FloatArray]:
         """The last position's Viterbi label, its marginal, the coarse function :meth:`_guess`
         would choose (enum index; fine models only, else meaningless) with its confidence, and
         every label's marginal, after ``window`` (``current`` a checked view).
@@ -970,7 +1012,7 @@ class FunctionTagger:
         """
         words = current.words
         # The rows of utterance_features(current, previous), in its order.
-        rows = self._shape_rows(current) + self._word_rows(words)
+        rows = self._shape_rows(current) + self._word_rows(words, memo)
         if window.views:
             previous = window.views[-1]
             carry = window.carry
@@ -1062,12 +1104,16 @@ class FunctionTagger:
         """
         return self.label_built(self.context_window(context), check_view(current))
 
-    def label_built(self, window: ContextWindow, current: UtteranceView) -> FunctionGuess:
+    def label_built(self, window: ContextWindow, current: UtteranceView,
+                    memo: WordsMemo | None = None) -> FunctionGuess:
         """:meth:`label_partial` after a :meth:`context_window` the caller keeps, for callers
         that built ``current`` themselves (the engine, on every word): it is not checked again.
+        ``memo``, the caller's own, keeps the feature rows of its latest utterances, so a
+        growing utterance extends its previous words' rows even when other callers have pushed
+        them out of the shared cache.
         """
         try:
-            k, confidence, group, group_confidence, _ = self._last_step(window, current)
+            k, confidence, group, group_confidence, _ = self._last_step(window, current, memo)
         except OverflowError:
             return self._guess(*self._label_partial_crfsuite(window.views, current))
         label = self._label_names[k]

@@ -27,9 +27,11 @@ from midstream.models._functions import (
     MAX_FEATURE_WORDS,
     NGRAM_CACHE_SIZE,
     WINDOW_CACHE_SIZE,
+    WORDS_MEMO_SIZE,
     FunctionGuess,
     FunctionTagger,
     UtteranceView,
+    WordsMemo,
     clean_view,
     conversation_views,
     sequence_features,
@@ -226,6 +228,28 @@ def test_a_kept_context_window_answers_as_crfsuite_after_the_shared_caches_moved
         label, marginals = crfsuite_reference(crf, tagger, context, prefix)
         assert_same_guess(tagger.label_built(kept, prefix), tagger._guess(label, marginals))
     assert tagger.context_window([]).views == ()
+
+
+def test_a_callers_memo_keeps_answers_exact_and_stays_bounded(tiny_fine: ModelArtifact) -> None:
+    # An engine's own memo of feature rows: its utterances grow from their previous words'
+    # rows even when the shared cache has dropped them; the answers stay crfsuite's
+    # (crfsuite_reference) and the memo never holds more than its documented size.
+    tagger = FunctionTagger.from_artifact(tiny_fine)
+    crf = CrfTagger.from_bytes(tiny_fine.crf)
+    memo = WordsMemo()
+    views = conversation_views(invented_conversation(65))
+    kept = tagger.context_window(views[:3])
+    current = views[3]
+    for n in range(1, len(current.words) + 1):
+        for i in range(NGRAM_CACHE_SIZE + 5):  # other callers flood the shared cache
+            tagger._words_of(("flood", f"w{i}"))
+        prefix = current.prefix(n)
+        # The previous words' rows are still at hand for the new word to extend.
+        assert n == 1 or memo.find(prefix.words[:-1]) is not None
+        label, marginals = crfsuite_reference(crf, tagger, views[:3], prefix)
+        assert_same_guess(tagger.label_built(kept, prefix, memo),
+                          tagger._guess(label, marginals))
+        assert len(memo._entries) <= WORDS_MEMO_SIZE
 
 
 def test_caches_stay_within_their_documented_sizes(tiny_fine: ModelArtifact) -> None:
