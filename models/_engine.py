@@ -305,10 +305,8 @@ class ConversationEngine:
         cuts = [i + 1 for i, key in enumerate(keys) if slots[key].ends_utterance]
         if not cuts or cuts[-1] != len(keys):
             cuts.append(len(keys))
-        whole = tuple(keys)
-        starts = [0, *cuts[:-1]]
-        groups = [whole] if len(cuts) == 1 else [
-            whole[a:b] for a, b in zip(starts, cuts, strict=True)]
+        whole = tuple(keys)  # a full slice of a tuple is the tuple itself, not a copy
+        groups = [whole[a:b] for a, b in zip([0, *cuts[:-1]], cuts, strict=True)]
         if close_all:
             return groups
         # A run of final words with no end in sight is closed at the documented length.

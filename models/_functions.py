@@ -589,9 +589,9 @@ class FunctionTagger:
     features, one gather of weight rows and one step of the recursions; the first call after a
     new context window also runs the recursions over the window. A caller labelling word after
     word after the same context keeps the window (:meth:`context_window`) and calls
-    :meth:`label_built`, so no shared cache is searched on each word. In the rare case ``exp`` would
-    overflow (state scores past 709, which no regularised model reaches), the call is handed to
-    crfsuite so that even then the result is its own.
+    :meth:`label_built`, so no shared cache is searched on each word. In the rare case ``exp``
+    would overflow (state scores past 709, which no regularised model reaches), the call is
+    handed to crfsuite so that even then the result is its own.
 
     Sharing: the weights are never written after construction and cache entries never change
     after insertion, so one tagger may serve any number of engines and sessions, interleaved on
