@@ -375,8 +375,8 @@ class ConversationEngine:
                     channel.slots.pop(slot.key, None)
             del channel.open_keys[:len(done.word_ids)]
             if done.view is not None and done.view.words:
-                self._window = self._functions.context_window(
-                    (*self._window.views, done.view))
+                self._window = self._functions.extend_window(self._window, done.view,
+                                                             self._memo)
         channel.utterances = new
         return published
 

@@ -34,7 +34,7 @@ from midstream._types import (
 )
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
-from midstream.models._lattice import chain_end_step, exp_into
+from midstream.models._lattice import chain_carry, chain_end_step, exp_into
 
 #: Feature-dictionary type the CRF adapter takes: attribute name to value.
 Features = dict[str, float]
@@ -450,6 +450,11 @@ class ContextWindow:
 
     views: tuple[UtteranceView, ...]
     carry: _Carry | None
+    #: For each view, the model rows of its own features (shape and words) and of those it
+    #: takes from its predecessor in the window (``()`` for the first): what
+    #: :meth:`FunctionTagger.extend_window` sums a slid window from. Empty for a window made by
+    #: :meth:`FunctionTagger.context_window`.
+    rows: tuple[tuple[tuple[int, ...], tuple[int, ...]], ...] = ()
 
 
 class _Words(NamedTuple):
@@ -998,6 +1003,55 @@ class FunctionTagger:
             return ContextWindow(views, self._carry(views))
         except OverflowError:
             return ContextWindow(views, None)
+
+    def extend_window(self, window: ContextWindow, view: UtteranceView,
+                      memo: WordsMemo | None = None) -> ContextWindow:
+        """The window after ``view``, an utterance that just became final, joins ``window``.
+
+        For a caller that keeps its window and built ``view`` itself (the engine, once per final
+        utterance): the result equals :meth:`context_window` of the views, but it is summed from
+        rows the window keeps rather than from the shared caches, which a busy server's other
+        conversations have usually moved on from by the time a view is a window's oldest.
+        ``memo`` is the one ``view`` was labelled with.
+        """
+        if not self._context:
+            return window
+        if not self._compiled or (window.views and len(window.rows) != len(window.views)):
+            # numba's exp is not the C library's here, or the window was not made here.
+            return self.context_window((*window.views, view))
+        own = self._shape_rows(view) + self._word_rows(view.words, memo)
+        link: tuple[int, ...] = ()
+        if window.views:
+            previous = window.views[-1]
+            changed = previous.speaker != view.speaker
+            carry = window.carry
+            if carry is not None:
+                link = carry.other if changed else carry.same
+            else:
+                link = self._follow_rows(previous, changed=changed)
+            if changed and self._config.previous:
+                link += self._pair_rows(previous, view.words)
+        views = (*window.views, view)[-self._context:]
+        rows = (*window.rows, (own, link))[-self._context:]
+        # The oldest view opens the chain: it takes no features from the one before it.
+        flat = [*rows[0][0], *self._opening]
+        ends = [len(flat)]
+        for own_rows, link_rows in rows[1:]:
+            flat += own_rows
+            flat += link_rows
+            ends.append(len(flat))
+        size = len(self._label_names)
+        forward, best = np.empty(size), np.empty(size)
+        if not chain_carry(self._state, np.array(flat, dtype=np.int64),
+                           np.array(ends, dtype=np.int64), exp_transitions=self._exp_transitions,
+                           transitions=self._transitions, forward_out=forward, best_out=best):
+            return ContextWindow(views, None, rows)
+        forward.flags.writeable = False
+        best.flags.writeable = False
+        last = views[-1]
+        return ContextWindow(views, _Carry(
+            forward=forward, best=best, same=self._follow_rows(last, changed=False),
+            other=self._follow_rows(last, changed=True)), rows)
 
     def _last_step(self, window: ContextWindow, current: UtteranceView,
                    memo: WordsMemo | None = None) -> tuple[int, float, int, float, FloatArray]:

@@ -28,6 +28,7 @@ import numpy.typing as npt
 __all__ = [
     "WindowResult",
     "accumulate_rows",
+    "chain_carry",
     "chain_end_step",
     "decode_lattice",
     "decode_window",
@@ -266,6 +267,68 @@ def _chain_end_step(  # noqa: PLR0917
     return best, probs[best], group, sums[group]
 
 
+# crfsuite's forward and Viterbi recursions over a whole chain, one step short of a next position:
+# the same operations in the same order as FunctionTagger's numpy recursions (each state score
+# summed row by row from its first row, products summed over the previous label in label order,
+# scaling by 1 / the sum added left to right).
+@_jit
+def _chain_carry(  # noqa: PLR0917
+    state: Any, rows: Any, ends: Any, exp_transitions: Any, transitions: Any,
+        forward_out: Any, best_out: Any) -> bool:  # pragma: no cover
+    size = state.shape[1]
+    scores = np.empty(size)
+    alpha = np.empty(size)
+    viterbi = np.empty(size)
+    forward = np.empty(size)
+    start = 0
+    for position in range(ends.shape[0]):
+        stop = ends[position]
+        if stop == start:
+            for j in range(size):
+                scores[j] = 0.0
+        else:
+            row = rows[start]
+            for j in range(size):
+                scores[j] = state[row, j]
+            for k in range(start + 1, stop):
+                row = rows[k]
+                for j in range(size):
+                    scores[j] += state[row, j]
+        start = stop
+        if position == 0:
+            for j in range(size):
+                forward[j] = math.exp(scores[j])
+                viterbi[j] = scores[j]
+        else:
+            for j in range(size):
+                total = alpha[0] * exp_transitions[0, j]
+                top = viterbi[0] + transitions[0, j]
+                for i in range(1, size):
+                    total += alpha[i] * exp_transitions[i, j]
+                    top = max(top, viterbi[i] + transitions[i, j])
+                forward[j] = total * math.exp(scores[j])
+                best_out[j] = top + scores[j]
+            for j in range(size):
+                viterbi[j] = best_out[j]
+        total = forward[0]
+        for j in range(1, size):
+            total += forward[j]
+        if not total < math.inf:
+            return False
+        scale = 1.0 / total if total != 0.0 else 1.0
+        for j in range(size):
+            alpha[j] = forward[j] * scale
+    for j in range(size):
+        total = alpha[0] * exp_transitions[0, j]
+        top = viterbi[0] + transitions[0, j]
+        for i in range(1, size):
+            total += alpha[i] * exp_transitions[i, j]
+            top = max(top, viterbi[i] + transitions[i, j])
+        forward_out[j] = total
+        best_out[j] = top
+    return True
+
+
 @_jit
 def _exp_into(values: Any, out: Any) -> None:  # pragma: no cover
     for j in range(values.shape[0]):
@@ -404,6 +467,22 @@ def chain_end_step(
     return result
 
 
+def chain_carry(state: FloatArray, rows: IntArray, ends: IntArray, *,
+                exp_transitions: FloatArray, transitions: FloatArray,
+                forward_out: FloatArray, best_out: FloatArray) -> bool:
+    """crfsuite's recursions over a chain, up to the next position's state scores.
+
+    Position ``p`` of the chain has the attributes ``rows[ends[p - 1]:ends[p]]`` (``ends[-1]``
+    being 0), summed in that order. ``forward_out[j]`` receives ``sum_i alpha[i] *
+    exp_transitions[i, j]`` with ``alpha`` the scaled forward vector of the last position, and
+    ``best_out[j]`` ``max_i viterbi[i] + transitions[i, j]``. Returns False, leaving the outputs
+    meaningless, when a vector sum is not finite (an exp overflowed, as crfsuite's would).
+    """
+    done: bool = _chain_carry(state, rows, ends, exp_transitions, transitions,
+                              forward_out, best_out)
+    return done
+
+
 def exp_into(values: FloatArray, out: FloatArray) -> None:
     """``out[j] = exp(values[j])`` with the exp :func:`chain_end_step` uses (C library's)."""
     _exp_into(values, out)
@@ -429,3 +508,6 @@ def warm_up() -> None:
                        group_of=np.zeros(2, dtype=np.int64), groups=ints, sums=out[3],
                        out=out)
     exp_into(np.zeros(2), np.zeros(2))
+    chain_carry(transitions, np.zeros(2, dtype=np.int64), np.array([1, 2], dtype=np.int64),
+                exp_transitions=transitions, transitions=transitions,
+                forward_out=np.zeros(2), best_out=np.zeros(2))

@@ -28,6 +28,7 @@ from midstream.models._functions import (
     NGRAM_CACHE_SIZE,
     WINDOW_CACHE_SIZE,
     WORDS_MEMO_SIZE,
+    ContextWindow,
     FunctionGuess,
     FunctionTagger,
     UtteranceView,
@@ -250,6 +251,62 @@ def test_a_callers_memo_keeps_answers_exact_and_stays_bounded(tiny_fine: ModelAr
         assert_same_guess(tagger.label_built(kept, prefix, memo),
                           tagger._guess(label, marginals))
         assert len(memo._entries) <= WORDS_MEMO_SIZE
+
+
+def assert_same_window(got: ContextWindow, want: ContextWindow) -> None:
+    assert got.views == want.views
+    if want.carry is None:
+        assert got.carry is None
+        return
+    assert got.carry is not None
+    # Bit for bit: the same operations in the same order.
+    assert got.carry.forward.tolist() == want.carry.forward.tolist()
+    assert got.carry.best.tolist() == want.carry.best.tolist()
+    assert (got.carry.same, got.carry.other) == (want.carry.same, want.carry.other)
+
+
+def test_a_slid_window_is_the_window_of_its_views_and_labels_as_crfsuite(
+        tiny_fine: ModelArtifact, tiny_coarse: ModelArtifact) -> None:
+    # What the engine does when an utterance becomes final: the window it keeps slides on by
+    # that utterance, summed from the rows the window kept. It must be the window
+    # context_window makes of the same views, and what follows it must label as crfsuite does
+    # over those views (crfsuite_reference), at several context lengths.
+    views = conversation_views(invented_conversation(66))
+    for artifact, context in ((tiny_fine, 4), (tiny_coarse, 4), (tiny_fine, 1), (tiny_fine, 7),
+                              (tiny_fine, 0)):
+        tagger = FunctionTagger.from_artifact(artifact, context=context)
+        crf = CrfTagger.from_bytes(artifact.crf)
+        memo = WordsMemo()
+        window = tagger.context_window([])
+        for i, view in enumerate(views[:-1]):
+            tagger.label_built(window, view, memo)  # as the engine labels it before it is final
+            window = tagger.extend_window(window, view, memo)
+            assert_same_window(window, tagger.context_window(views[:i + 1]))
+            following = views[i + 1]
+            for n in (1, len(following.words)):
+                prefix = following.prefix(n)
+                label, marginals = crfsuite_reference(crf, tagger, views[:i + 1], prefix)
+                assert_same_guess(tagger.label_built(window, prefix, memo),
+                                  tagger._guess(label, marginals))
+
+
+@settings(max_examples=60, deadline=None)
+@given(views=st.lists(_views, min_size=1, max_size=9))
+def test_invented_views_slide_into_the_same_windows(
+        views: list[UtteranceView], three_taggers: list[tuple[FunctionTagger, CrfTagger]]) -> None:
+    # Any views, speakers changing or not, long and empty ones: sliding equals building afresh.
+    for tagger, _ in three_taggers:
+        window = tagger.context_window([])
+        for i, view in enumerate(views):
+            window = tagger.extend_window(window, view)
+            assert_same_window(window, tagger.context_window(views[:i + 1]))
+
+
+def test_a_window_not_made_by_sliding_still_slides(tiny_fine: ModelArtifact) -> None:
+    tagger = FunctionTagger.from_artifact(tiny_fine)
+    views = conversation_views(invented_conversation(67))
+    made = tagger.context_window(views[:5])  # keeps no rows: sliding falls back to building
+    assert_same_window(tagger.extend_window(made, views[5]), tagger.context_window(views[:6]))
 
 
 def test_caches_stay_within_their_documented_sizes(tiny_fine: ModelArtifact) -> None:
