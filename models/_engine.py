@@ -92,6 +92,10 @@ class _Channel:
     slots: dict[int, _Slot] = field(default_factory=dict)
     #: Keys of the words since the last final utterance end, in order.
     open_keys: list[int] = field(default_factory=list)
+    #: The open keys whose word is hypothesised to end an utterance: grouping reads this small
+    #: set on every word instead of every open word's slot (cold memory when many
+    #: conversations interleave).
+    ends: set[int] = field(default_factory=set)
     #: Number of the next utterance this speaker starts (1-based; never reused).
     next_index: int = 1
     utterances: list[_OpenUtterance] = field(default_factory=list)
@@ -210,6 +214,7 @@ class ConversationEngine:
         states = channel.decoder.withdraw(slot.key)
         del channel.slots[slot.key]
         channel.open_keys.remove(slot.key)
+        channel.ends.discard(slot.key)
         del self._by_id[word_id]
         return self._apply(channel, states, withdrawn=(word_id,))
 
@@ -276,6 +281,10 @@ class ConversationEngine:
                 continue
             slot.label = state.label
             slot.ends_utterance = state.ends_utterance
+            if state.ends_utterance:
+                channel.ends.add(state.key)
+            else:
+                channel.ends.discard(state.key)
             slot.final = slot.final or state.final
             onset = channel.slots.get(state.reparandum_onset_key) \
                 if state.reparandum_onset_key is not None else None
@@ -300,9 +309,9 @@ class ConversationEngine:
         keys = channel.open_keys
         if not keys:
             return []
-        slots = channel.slots
-        # Runs on every word: one comprehension finds the ends, then tuples are sliced there.
-        cuts = [i + 1 for i, key in enumerate(keys) if slots[key].ends_utterance]
+        # Runs on every word: the few ends are found in the key list (an identity scan), then
+        # tuples are sliced there.
+        cuts = sorted([keys.index(key) + 1 for key in channel.ends])
         if not cuts or cuts[-1] != len(keys):
             cuts.append(len(keys))
         whole = tuple(keys)  # a full slice of a tuple is the tuple itself, not a copy
@@ -373,6 +382,7 @@ class ConversationEngine:
                 slot = self._by_id.pop(word_id, None)
                 if slot is not None:
                     channel.slots.pop(slot.key, None)
+            channel.ends.difference_update(done.keys)
             del channel.open_keys[:len(done.word_ids)]
             if done.view is not None and done.view.words:
                 self._window = self._functions.extend_window(self._window, done.view,
