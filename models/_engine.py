@@ -46,8 +46,9 @@ class EngineConfig:
     Parameters
     ----------
     confidence_step
-        An utterance whose function is unchanged is republished only when its confidence moved by
-        at least this much (common practice, no source: it keeps diffs small).
+        A word or utterance whose other published fields are unchanged is republished only when
+        its confidence moved by at least this much since it was last published (common
+        practice, no source: it keeps diffs small).
     max_utterance_words
         A channel's run of final words with no utterance end is closed as an (incomplete)
         utterance at this length, so an utterance never grows without bound.
@@ -198,7 +199,8 @@ class ConversationEngine:
         channel = self._channels[slot.speaker]
         clean = _clean_word(word, token.text, token.fragment or word.fragment)
         states = channel.decoder.replace(slot.key, clean)
-        return self._apply(channel, states)
+        # The new text changes the word's utterance even when no tag moved.
+        return self._apply(channel, states, revised=slot.key)
 
     def withdraw_word(self, word_id: str) -> HypothesisDiff:
         """The recogniser withdrew a recent word.
@@ -271,35 +273,50 @@ class ConversationEngine:
             self._recent_ids.popitem(last=False)
 
     def _apply(self, channel: _Channel, states: Iterable[TokenState], *,
-               withdrawn: tuple[str, ...] = (), close_all: bool = False) -> HypothesisDiff:
+               withdrawn: tuple[str, ...] = (), close_all: bool = False,
+               revised: int | None = None) -> HypothesisDiff:
         words: list[WordHypothesis] = []
-        changed: set[int] = set()
+        # Keys whose label, end or finality moved (or whose text did: ``revised``): only their
+        # utterances can have changed.
+        changed: set[int] = set() if revised is None else {revised}
+        slots = channel.slots
+        step = self._config.confidence_step
         for state in states:
-            changed.add(state.key)
-            slot = channel.slots.get(state.key)
+            key = state.key
+            slot = slots.get(key)
             if slot is None:
                 continue
-            slot.label = state.label
-            slot.ends_utterance = state.ends_utterance
-            if state.ends_utterance:
-                channel.ends.add(state.key)
-            else:
-                channel.ends.discard(state.key)
-            slot.final = slot.final or state.final
-            onset = channel.slots.get(state.reparandum_onset_key) \
+            final = slot.final or state.final
+            if (slot.label is not state.label or slot.ends_utterance != state.ends_utterance
+                    or final != slot.final):
+                changed.add(key)
+                slot.label = state.label
+                slot.final = final
+                if slot.ends_utterance != state.ends_utterance:
+                    slot.ends_utterance = state.ends_utterance
+                    if state.ends_utterance:
+                        channel.ends.add(key)
+                    else:
+                        channel.ends.discard(key)
+            onset = slots.get(state.reparandum_onset_key) \
                 if state.reparandum_onset_key is not None else None
+            link = onset.word_id if onset is not None else None
             previous = slot.published
-            hypothesis = WordHypothesis(
+            # The decoder also reports a word when only its utterance-end decision moved; the
+            # word's own hypothesis is republished only when something it carries changed.
+            if previous is not None and (
+                    previous.label is state.label and previous.final == final
+                    and previous.reparandum_of == link
+                    and previous.interruption_point == state.interruption_point
+                    and abs(previous.confidence - state.confidence) < step):
+                continue
+            slot.published = hypothesis = WordHypothesis(
                 word_id=slot.word_id, speaker=slot.speaker, label=state.label,
                 confidence=state.confidence,
                 revision=0 if previous is None else previous.revision + 1,
-                final=slot.final,
-                reparandum_of=onset.word_id if onset is not None else None,
-                interruption_point=state.interruption_point,
+                final=final, reparandum_of=link, interruption_point=state.interruption_point,
             )
-            if previous is None or _word_changed(previous, hypothesis):
-                slot.published = hypothesis
-                words.append(hypothesis)
+            words.append(hypothesis)
         utterances = self._resegment(channel, close_all=close_all, changed=changed)
         return HypothesisDiff(words=tuple(words), utterances=tuple(utterances),
                               withdrawn_word_ids=withdrawn)
@@ -419,13 +436,6 @@ def _clean_word(word: Word, text: str, fragment: bool) -> Word:
         return word  # the usual case: the recogniser's word is already clean (and immutable)
     return Word(text=text, speaker=word.speaker, start=word.start, end=word.end,
                 confidence=word.confidence, fragment=fragment)
-
-
-def _word_changed(old: WordHypothesis, new: WordHypothesis) -> bool:
-    return (old.label != new.label or old.final != new.final
-            or old.reparandum_of != new.reparandum_of
-            or old.interruption_point != new.interruption_point
-            or old.confidence != new.confidence)
 
 
 def _utterance_changed(old: UtteranceHypothesis, new: UtteranceHypothesis, step: float) -> bool:

@@ -20,7 +20,7 @@ from midstream import (
     Word,
     WordHypothesis,
 )
-from midstream.models import ConversationEngine, ModelBundle, ModelInfo
+from midstream.models import ConversationEngine, EngineConfig, ModelBundle, ModelInfo
 from midstream.models._functions import FunctionTagger
 from midstream.models._train_words import WordTrainingConfig, train_word_artifact
 from midstream.models._wordmodel import WordModel
@@ -129,6 +129,39 @@ def test_withdrawn_word_disappears(bundle: ModelBundle) -> None:
     assert "w1" not in utterance_words
 
 
+def test_a_replaced_word_reaches_its_utterance_even_when_no_tag_moves(
+        bundle: ModelBundle) -> None:
+    # The recogniser corrects the last word of a fluent utterance: its tags may well stay as
+    # they were, but the utterance's clean text must follow the new text at once.
+    engine = bundle.new_engine()
+    for i, text in enumerate(["we", "have", "two", "dogs"]):
+        engine.add_word(f"w{i}", Word(text=text, speaker="A"))
+    diff = engine.replace_word("w3", Word(text="cats", speaker="A"))
+    assert [u.clean_text for u in diff.utterances if "w3" in u.word_ids] == ["we have two cats"]
+
+
+def test_a_word_is_republished_only_when_what_it_carries_changed(bundle: ModelBundle) -> None:
+    # The decoder reports a word again when only its utterance-end decision moved; subscribers
+    # must not get a revision that changes nothing but a confidence by less than the step
+    # (EngineConfig.confidence_step).
+    engine = bundle.new_engine()
+    step = EngineConfig().confidence_step
+    words = [(s, t) for s, t in _SAMPLE] * 6
+    latest: dict[str, WordHypothesis] = {}
+    revisions = 0
+    for diff in _stream(engine, words):
+        for word in diff.words:
+            before = latest.get(word.word_id)
+            if before is not None:
+                revisions += 1
+                assert (before.label != word.label or before.final != word.final
+                        or before.reparandum_of != word.reparandum_of
+                        or before.interruption_point != word.interruption_point
+                        or abs(before.confidence - word.confidence) >= step), (before, word)
+            latest[word.word_id] = word
+    assert revisions >= len(words)  # every word was at least made final once
+
+
 def test_hint_finalises_the_speakers_open_words(bundle: ModelBundle) -> None:
     engine = bundle.new_engine()
     diffs = [engine.add_word(f"w{i}", Word(text=t, speaker="A"))
@@ -171,16 +204,19 @@ def test_random_event_streams_keep_the_invariants(
     engine = bundle.new_engine()
     diffs: list[HypothesisDiff] = []
     added: dict[str, str] = {}
+    texts: dict[str, str] = {}
     withdrawn: set[str] = set()
     for n, (kind, a, b) in enumerate(events):
         try:
             if kind == "add":
                 diffs.append(engine.add_word(f"w{n}", Word(text=b, speaker=a)))
                 added[f"w{n}"] = a
+                texts[f"w{n}"] = b
             elif kind == "replace":
                 target = f"w{a}"
                 diffs.append(engine.replace_word(target, Word(text=b,
                                                               speaker=added.get(target, "A"))))
+                texts[target] = b
             elif kind == "withdraw":
                 diffs.append(engine.withdraw_word(f"w{a}"))
                 withdrawn.add(f"w{a}")
@@ -196,3 +232,10 @@ def test_random_event_streams_keep_the_invariants(
             if word.final:
                 final[word.word_id] = word.label
     assert set(final) == set(added) - withdrawn
+    # Each utterance's last published clean text is its words' latest texts (replacements
+    # included) less the disfluent ones.
+    utterances = {u.utterance_id: u for diff in diffs for u in diff.utterances}
+    for utterance in utterances.values():
+        expected = [texts[w] for w in utterance.word_ids
+                    if final[w] not in REMOVED_FROM_CLEAN_TEXT]
+        assert utterance.clean_text == " ".join(expected)
