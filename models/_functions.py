@@ -502,6 +502,11 @@ class WordsMemo:
 #: Word sequences a :class:`WordsMemo` keeps. Documented limit.
 WORDS_MEMO_SIZE = 4
 
+#: The longest word sequences a caller with a :class:`WordsMemo` shares with other callers
+#: through the tagger's cache (common practice, no source: short utterances recur across
+#: conversations, longer ones hardly ever).
+SHARED_WORDS = 3
+
 
 #: Distinct context windows whose decoding :class:`FunctionTagger` keeps (a live conversation
 #: uses one at a time; twice the server's default ``max_live_conversations``, so conversations
@@ -869,28 +874,34 @@ class FunctionTagger:
         return carry
 
     def _words_of(self, words: tuple[str, ...], memo: WordsMemo | None = None) -> _Words:
-        """The word-dependent rows of ``words`` (at most MAX_FEATURE_WORDS), cached (in the
-        caller's ``memo`` first, then in the shared cache).
+        """The word-dependent rows of ``words`` (at most MAX_FEATURE_WORDS), cached: in the
+        shared cache, or with a ``memo`` in it first and in the shared cache only up to
+        :data:`SHARED_WORDS` words.
 
         A growing utterance finds its previous words' entry and adds the n-grams ending at the
         new word instead of rebuilding every name.
         """
-        if memo is not None:
-            entry = memo.find(words)
-            if entry is not None:
-                return entry
-        entry = self._words.get(words)
+        if memo is None:
+            entry = self._words.get(words)
+            if entry is None:
+                entry = self._build_words(words, self._words.peek(words[:-1]) if words else None)
+                self._words.put(words, entry)
+            return entry
+        entry = memo.find(words)
+        if entry is not None:
+            return entry
+        # Longer sequences are one conversation's own: sharing them would only push out the
+        # short ones many conversations say ("uh-huh", "i know").
+        shared = len(words) <= SHARED_WORDS
+        entry = self._words.get(words) if shared else None
         if entry is None:
-            parent = None
-            if words:
-                head = words[:-1]
-                parent = memo.find(head) if memo is not None else None
-                if parent is None:
-                    parent = self._words.peek(head)
+            parent = memo.find(words[:-1]) if words else None
+            if parent is None and words:
+                parent = self._words.peek(words[:-1])
             entry = self._build_words(words, parent)
-            self._words.put(words, entry)
-        if memo is not None:
-            memo.keep(words, entry)
+            if shared:
+                self._words.put(words, entry)
+        memo.keep(words, entry)
         return entry
 
     def _build_words(self, words: tuple[str, ...], parent: _Words | None) -> _Words:
@@ -1093,10 +1104,11 @@ class FunctionTagger:
             sums=out[3], out=out)
         if k < 0:
             raise OverflowError("forward vector overflowed")
-        if current.complete:
-            # A finished utterance is about to become context (the engine passes the very view
-            # it labelled last): its state scores after this predecessor are then at hand.
-            # Copies, so the cache holds two vectors rather than the whole work block.
+        if current.complete and memo is None:
+            # A finished utterance is about to become context: its state scores after this
+            # predecessor are then at hand. (A caller with a memo of its own slides a window of
+            # its own, extend_window, which does not read them.) Copies, so the cache holds two
+            # vectors rather than the whole work block.
             scores = out[0, :size].copy()
             exps = out[1, :size].copy()
             scores.flags.writeable = False

@@ -26,6 +26,7 @@ from midstream.models._crf import CrfTagger
 from midstream.models._functions import (
     MAX_FEATURE_WORDS,
     NGRAM_CACHE_SIZE,
+    SHARED_WORDS,
     WINDOW_CACHE_SIZE,
     WORDS_MEMO_SIZE,
     ContextWindow,
@@ -251,6 +252,23 @@ def test_a_callers_memo_keeps_answers_exact_and_stays_bounded(tiny_fine: ModelAr
         assert_same_guess(tagger.label_built(kept, prefix, memo),
                           tagger._guess(label, marginals))
         assert len(memo._entries) <= WORDS_MEMO_SIZE
+
+
+def test_a_caller_with_a_memo_shares_only_short_word_sequences(
+        tiny_fine: ModelArtifact) -> None:
+    # An engine's long utterances are its own: they stay out of the cache other conversations
+    # use (so they cannot push out the short ones many conversations say), and the answers
+    # stay crfsuite's (crfsuite_reference).
+    tagger = FunctionTagger.from_artifact(tiny_fine)
+    crf = CrfTagger.from_bytes(tiny_fine.crf)
+    memo = WordsMemo()
+    words = ("so", "we", "went", "to", "the", "lake", "again")
+    for n in range(1, len(words) + 1):
+        prefix = UtteranceView(speaker="A", words=words[:n], complete=n == len(words))
+        label, marginals = crfsuite_reference(crf, tagger, [], prefix)
+        assert_same_guess(tagger.label_built(tagger.context_window([]), prefix, memo),
+                          tagger._guess(label, marginals))
+        assert (tagger._words.peek(words[:n]) is not None) == (n <= SHARED_WORDS)
 
 
 def assert_same_window(got: ContextWindow, want: ContextWindow) -> None:
