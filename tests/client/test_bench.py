@@ -223,6 +223,16 @@ def _script(name: str, *argv: str, tmp_path: Path) -> dict[str, Any]:
     return result
 
 
+def test_bench_engine_smoke(tmp_path: Path) -> None:
+    # Smoke mode times a tiny model on invented words: only the shape of the output is checked.
+    result = _script("bench_engine.py", tmp_path=tmp_path)
+    assert set(result["rows"]) == {"10", "100", "1000"}
+    assert all(row["decoder_us"] > 0 and row["floor_us"] > 0 and row["naive_us"] > 0
+               for row in result["rows"].values())
+    assert result["ratio_1000_over_10"] > 0 and len(result["round_ratios"]) == result["rounds"]
+    assert result["words_per_cpu_s"] > 0
+
+
 @pytest.mark.corpus
 @pytest.mark.slow
 def test_bench_service_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
