@@ -10,10 +10,10 @@ windows the decoder decodes, two baselines run:
   precomputed), what a decoder without a bounded window would pay.
 
 Figures are CPU time of this thread (``time.thread_time_ns``) because the machine may be
-shared; wall-clock medians are printed beside them. The three utterance lengths run in
-``--rounds`` interleaved rounds (their order rotated each round) and each row pools its rounds,
-so a busy spell of the machine weighs on every row alike rather than on whichever ran then; the
-spread of the ratio across rounds is printed too. Targets (project targets, no source):
+shared; wall-clock medians are printed beside them. The three lengths' decoders take the same
+words in turn, word by word (see ``_run``), so a busy spell of the machine weighs on every row
+alike; ``--rounds`` repeats the whole stream, the rows pool the rounds, and the spread of the
+ratio across rounds is printed too. Targets (project targets, no source):
 median decoder cost at most 150 us per word, and the 1,000-word over 10-word ratio at most 1.3.
 
     .venv/bin/python scripts/bench_engine.py [--model words.msm] [--words 3000]
@@ -98,50 +98,60 @@ def _percentile(values: Sequence[int], q: float) -> float:
     return ordered[min(len(ordered) - 1, int(q * len(ordered)))] / 1000.0
 
 
-def _run(model: WordModel, texts: Sequence[str], length: int,
-         config: DecoderConfig) -> dict[str, list[int]]:
-    """Stream ``texts`` as utterances of ``length`` words; time decoder and baselines.
+def _run(model: WordModel, texts: Sequence[str], lengths: Sequence[int],
+         config: DecoderConfig) -> dict[int, dict[str, list[int]]]:
+    """Stream ``texts`` as utterances of each of ``lengths`` words; time decoders and baselines.
 
-    The decoder streams every word first, timed word by word; the baselines then run over the
-    very windows it decoded, in passes of their own. Interleaving them word by word would let
-    each evict the other's working set from the CPU caches between calls and charge that to
-    whichever runs next.
+    One decoder per length, all fed the same word in turn, each ``append`` timed: a busy spell
+    of the machine then slows every length alike, where runs one after the other let it land on
+    whichever ran during it (the 1000/10 ratio of the same decoder ranged from 1.1 to 1.8 that
+    way). The baselines then run over the very windows each decoder decoded, in passes of their
+    own: interleaving them with the decoders word by word would let each evict the other's
+    working set from the CPU caches between calls and charge that to whichever runs next.
     """
-    decoder = ChannelDecoder(model, config)
     words = [Word(text=t, speaker="A") for t in texts]
     tokens: list[Token] = [token_of(w) for w in words]
-    cpu: dict[str, list[int]] = {"decoder": [], "floor": [], "naive": [], "decoder_wall": []}
-    windows: list[tuple[int, int, int]] = []  # (key, window size, utterance start)
-    utterance_start = 0
+    decoders = {length: ChannelDecoder(model, config) for length in lengths}
+    cpu: dict[int, dict[str, list[int]]] = {
+        length: {"decoder": [], "floor": [], "naive": [], "decoder_wall": []}
+        for length in lengths}
+    # (key, window size, utterance start) per length
+    windows: dict[int, list[tuple[int, int, int]]] = {length: [] for length in lengths}
+    starts = dict.fromkeys(lengths, 0)
     for key, word in enumerate(words):
-        wall0 = time.perf_counter_ns()
-        cpu0 = time.thread_time_ns()
-        decoder.append(key, word)
-        cpu["decoder"].append(time.thread_time_ns() - cpu0)
-        cpu["decoder_wall"].append(time.perf_counter_ns() - wall0)
-        # The same window the decoder just decoded: its held open words plus one before.
-        windows.append((key, min(len(decoder.open_keys) + 1, key + 1), utterance_start))
-        if key + 1 - utterance_start >= length:
-            decoder.close_utterance()
-            utterance_start = key + 1
-    # Features precomputed for the baselines, on the decoder's view (all words so far).
-    for key, window, _ in windows:
-        lo = max(0, key + 1 - window - model.config.left)
-        known = tokens[lo : key + 1]
-        xseq = [dict.fromkeys(features_at(known, i, model.config), 1.0)
-                for i in range(len(known) - window, len(known))]
-        cpu0 = time.thread_time_ns()
-        model.tagger.tag_with_confidence(xseq)
-        cpu["floor"].append(time.thread_time_ns() - cpu0)
-    for key, _, start in windows:
-        if length > 100 and key % 10:
-            continue  # every tenth word is enough for the slow baseline
-        prefix = tokens[start : key + 1]
-        full = [dict.fromkeys(features_at(prefix, i, model.config), 1.0)
-                for i in range(len(prefix))]
-        cpu0 = time.thread_time_ns()
-        model.tagger.tag_with_confidence(full)
-        cpu["naive"].append(time.thread_time_ns() - cpu0)
+        for length, decoder in decoders.items():
+            times = cpu[length]
+            wall0 = time.perf_counter_ns()
+            cpu0 = time.thread_time_ns()
+            decoder.append(key, word)
+            times["decoder"].append(time.thread_time_ns() - cpu0)
+            times["decoder_wall"].append(time.perf_counter_ns() - wall0)
+            # The same window the decoder just decoded: its held open words plus one before.
+            windows[length].append((key, min(len(decoder.open_keys) + 1, key + 1),
+                                    starts[length]))
+            if key + 1 - starts[length] >= length:
+                decoder.close_utterance()
+                starts[length] = key + 1
+    for length in lengths:
+        times = cpu[length]
+        # Features precomputed for the baselines, on the decoder's view (all words so far).
+        for key, window, _ in windows[length]:
+            lo = max(0, key + 1 - window - model.config.left)
+            known = tokens[lo : key + 1]
+            xseq = [dict.fromkeys(features_at(known, i, model.config), 1.0)
+                    for i in range(len(known) - window, len(known))]
+            cpu0 = time.thread_time_ns()
+            model.tagger.tag_with_confidence(xseq)
+            times["floor"].append(time.thread_time_ns() - cpu0)
+        for key, _, start in windows[length]:
+            if length > 100 and key % 10:
+                continue  # every tenth word is enough for the slow baseline
+            prefix = tokens[start : key + 1]
+            full = [dict.fromkeys(features_at(prefix, i, model.config), 1.0)
+                    for i in range(len(prefix))]
+            cpu0 = time.thread_time_ns()
+            model.tagger.tag_with_confidence(full)
+            times["naive"].append(time.thread_time_ns() - cpu0)
     return cpu
 
 
@@ -150,9 +160,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--model", type=Path, default=None,
                         help="word model (.msm); default: the shipped one")
     parser.add_argument("--words", type=int, default=3000,
-                        help="words per utterance length and round")
-    parser.add_argument("--rounds", type=int, default=5,
-                        help="interleaved rounds of the three utterance lengths")
+                        help="words per round (at least 1,000, the longest utterance)")
+    parser.add_argument("--rounds", type=int, default=3,
+                        help="times the whole stream is repeated")
     parser.add_argument("--lag", type=int, default=None,
                         help="most open words; default as served (see DecoderConfig)")
     parser.add_argument("--no-settle", action="store_true",
@@ -174,10 +184,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     # One untimed pass, so first-use costs (kernel dispatch for each window shape, allocator
     # growth) are not charged to whichever row happens to run first.
     config = DecoderConfig(lag=args.lag, settle=not args.no_settle)
-    _run(model, texts[:300], 10, config)
+    _run(model, texts[:300], (10,), config)
     lag = ChannelDecoder(model, config).max_open
     finality = "settled or" if config.settle else "exactly"
-    print(f"model: {source}; {len(texts)} words per run, {rounds} rounds; final {finality} "
+    print(f"model: {source}; {max(n_words, *lengths)} words per round, {rounds} rounds, the "
+          f"three lengths' decoders in turn; final {finality} "
           f"{lag} words late; CPU time per word (us)")
     header = (f"{'utterance':>9} {'decoder':>8} {'p99':>8} {'wall':>8} {'floor':>8} "
               f"{'naive':>8} {'dec/floor':>9} {'naive/dec':>9}")
@@ -186,17 +197,16 @@ def main(argv: Sequence[str] | None = None) -> int:
         length: {"decoder": [], "floor": [], "naive": [], "decoder_wall": []}
         for length in lengths}
     round_ratios: list[float] = []
-    for r in range(rounds):
-        order = lengths[r % len(lengths):] + lengths[:r % len(lengths)]
-        round_medians: dict[int, float] = {}
-        for length in order:
-            runs = max(n_words, length)
-            times = _run(model, texts[:runs] if len(texts) >= runs else
-                         (list(texts) * (runs // len(texts) + 1))[:runs], length, config)
+    runs = max(n_words, *lengths)
+    stream = texts[:runs] if len(texts) >= runs else (
+        list(texts) * (runs // len(texts) + 1))[:runs]
+    for _ in range(rounds):
+        measured = _run(model, stream, lengths, config)
+        for length, times in measured.items():
             for key, values in times.items():
                 pooled[length][key] += values
-            round_medians[length] = _percentile(times["decoder"], 0.5)
-        round_ratios.append(round_medians[1000] / round_medians[10])
+        round_ratios.append(_percentile(measured[1000]["decoder"], 0.5)
+                            / _percentile(measured[10]["decoder"], 0.5))
     medians: dict[int, float] = {}
     rows: dict[str, dict[str, float]] = {}
     spent_ns = 0
@@ -227,7 +237,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     print(f"decoder throughput: {throughput:,.0f} words per CPU second (target >= 10,000)")
     if args.json is not None:
         args.json.write_text(json.dumps({
-            "machine": machine(), "model": source, "words_per_run": len(texts),
+            "machine": machine(), "model": source, "words_per_round": max(n_words, *lengths),
             "rounds": rounds, "lag": lag, "settle": config.settle, "rows": rows,
             "ratio_1000_over_10": ratio, "round_ratios": round_ratios,
             "words_per_cpu_s": throughput,
