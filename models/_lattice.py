@@ -267,6 +267,22 @@ def _chain_end_step(  # noqa: PLR0917
     return best, probs[best], group, sums[group]
 
 
+@_jit
+def _push(  # noqa: PLR0917
+    alpha: Any, viterbi: Any, exp_transitions: Any, transitions: Any, forward_out: Any,
+        best_out: Any) -> None:  # pragma: no cover
+    # sum_i alpha[i] * exp(T[i, j]) (i in order) and max_i viterbi[i] + T[i, j], for every j.
+    size = alpha.shape[0]
+    for j in range(size):
+        total = alpha[0] * exp_transitions[0, j]
+        top = viterbi[0] + transitions[0, j]
+        for i in range(1, size):
+            total += alpha[i] * exp_transitions[i, j]
+            top = max(top, viterbi[i] + transitions[i, j])
+        forward_out[j] = total
+        best_out[j] = top
+
+
 # crfsuite's forward and Viterbi recursions over a whole chain, one step short of a next position:
 # the same operations in the same order as FunctionTagger's numpy recursions (each state score
 # summed row by row from its first row, products summed over the previous label in label order,
@@ -300,16 +316,10 @@ def _chain_carry(  # noqa: PLR0917
                 forward[j] = math.exp(scores[j])
                 viterbi[j] = scores[j]
         else:
+            _push(alpha, viterbi, exp_transitions, transitions, forward, best_out)
             for j in range(size):
-                total = alpha[0] * exp_transitions[0, j]
-                top = viterbi[0] + transitions[0, j]
-                for i in range(1, size):
-                    total += alpha[i] * exp_transitions[i, j]
-                    top = max(top, viterbi[i] + transitions[i, j])
-                forward[j] = total * math.exp(scores[j])
-                best_out[j] = top + scores[j]
-            for j in range(size):
-                viterbi[j] = best_out[j]
+                forward[j] *= math.exp(scores[j])
+                viterbi[j] = best_out[j] + scores[j]
         total = forward[0]
         for j in range(1, size):
             total += forward[j]
@@ -318,14 +328,7 @@ def _chain_carry(  # noqa: PLR0917
         scale = 1.0 / total if total != 0.0 else 1.0
         for j in range(size):
             alpha[j] = forward[j] * scale
-    for j in range(size):
-        total = alpha[0] * exp_transitions[0, j]
-        top = viterbi[0] + transitions[0, j]
-        for i in range(1, size):
-            total += alpha[i] * exp_transitions[i, j]
-            top = max(top, viterbi[i] + transitions[i, j])
-        forward_out[j] = total
-        best_out[j] = top
+    _push(alpha, viterbi, exp_transitions, transitions, forward_out, best_out)
     return True
 
 
