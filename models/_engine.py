@@ -287,17 +287,18 @@ class ConversationEngine:
             if slot is None:
                 continue
             final = slot.final or state.final
-            if (slot.label is not state.label or slot.ends_utterance != state.ends_utterance
-                    or final != slot.final):
+            ends = state.ends_utterance
+            if slot.ends_utterance != ends:
+                slot.ends_utterance = ends
+                if ends:
+                    channel.ends.add(key)
+                else:
+                    channel.ends.discard(key)
                 changed.add(key)
+            if slot.label is not state.label or final != slot.final:
                 slot.label = state.label
                 slot.final = final
-                if slot.ends_utterance != state.ends_utterance:
-                    slot.ends_utterance = state.ends_utterance
-                    if state.ends_utterance:
-                        channel.ends.add(key)
-                    else:
-                        channel.ends.discard(key)
+                changed.add(key)
             onset = slots.get(state.reparandum_onset_key) \
                 if state.reparandum_onset_key is not None else None
             link = onset.word_id if onset is not None else None
@@ -400,7 +401,7 @@ class ConversationEngine:
                 if slot is not None:
                     channel.slots.pop(slot.key, None)
             channel.ends.difference_update(done.keys)
-            del channel.open_keys[:len(done.word_ids)]
+            del channel.open_keys[:len(done.keys)]
             if done.view is not None and done.view.words:
                 self._window = self._functions.extend_window(self._window, done.view,
                                                              self._memo)

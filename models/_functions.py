@@ -972,11 +972,24 @@ class FunctionTagger:
     def _rows_of(self, view: UtteranceView,
                  previous: UtteranceView | None) -> tuple[int, ...]:
         """Rows of ``utterance_features(view, previous)`` in its order, from the caches."""
-        rows = self._shape_rows(view) + self._word_rows(view.words)
+        own = self._own_rows(view)
         if previous is None:
-            return rows + self._opening
+            return own + self._opening
+        return own + self._link_rows(previous, view, None)
+
+    def _own_rows(self, view: UtteranceView, memo: WordsMemo | None = None) -> tuple[int, ...]:
+        """Rows of the features of ``view`` that do not depend on its predecessor, in order."""
+        return self._shape_rows(view) + self._word_rows(view.words, memo)
+
+    def _link_rows(self, previous: UtteranceView, view: UtteranceView,
+                   carry: _Carry | None) -> tuple[int, ...]:
+        """Rows of the features ``view`` takes from ``previous``, in order; ``carry`` is the
+        window ending with ``previous`` when there is one (it holds the follow rows)."""
         changed = previous.speaker != view.speaker
-        rows += self._follow_rows(previous, changed=changed)
+        if carry is not None:
+            rows = carry.other if changed else carry.same
+        else:
+            rows = self._follow_rows(previous, changed=changed)
         if changed and self._config.previous:
             rows += self._pair_rows(previous, view.words)
         return rows
@@ -1030,18 +1043,8 @@ class FunctionTagger:
         if not self._compiled or (window.views and len(window.rows) != len(window.views)):
             # numba's exp is not the C library's here, or the window was not made here.
             return self.context_window((*window.views, view))
-        own = self._shape_rows(view) + self._word_rows(view.words, memo)
-        link: tuple[int, ...] = ()
-        if window.views:
-            previous = window.views[-1]
-            changed = previous.speaker != view.speaker
-            carry = window.carry
-            if carry is not None:
-                link = carry.other if changed else carry.same
-            else:
-                link = self._follow_rows(previous, changed=changed)
-            if changed and self._config.previous:
-                link += self._pair_rows(previous, view.words)
+        own = self._own_rows(view, memo)
+        link = self._link_rows(window.views[-1], view, window.carry) if window.views else ()
         views = (*window.views, view)[-self._context:]
         rows = (*window.rows, (own, link))[-self._context:]
         # The oldest view opens the chain: it takes no features from the one before it.
@@ -1075,20 +1078,14 @@ class FunctionTagger:
         OverflowError
             crfsuite's exp overflows on these views' scores.
         """
-        words = current.words
         # The rows of utterance_features(current, previous), in its order.
-        rows = self._shape_rows(current) + self._word_rows(words, memo)
+        rows = self._own_rows(current, memo)
         if window.views:
             previous = window.views[-1]
             carry = window.carry
             if carry is None:
                 raise OverflowError("the context window's recursions overflowed")
-            if previous.speaker != current.speaker:
-                rows += carry.other
-                if self._config.previous:
-                    rows += self._pair_rows(previous, words)
-            else:
-                rows += carry.same
+            rows += self._link_rows(previous, current, carry)
             carry_forward, carry_best = carry.forward, carry.best
         else:
             previous = None

@@ -210,6 +210,25 @@ def _accumulate(scores: Any, state: Any, rows: Any, targets: Any) -> None:  # pr
             scores[target, j] += state[row, j]
 
 
+@_jit
+def _sum_rows(state: Any, rows: Any, start: int, stop: int,
+              scores: Any) -> None:  # pragma: no cover
+    # crfsuite's state scores of an item: its attribute rows[start:stop] added row by row,
+    # from the first row (0.0 when it has none).
+    size = state.shape[1]
+    if stop == start:
+        for j in range(size):
+            scores[j] = 0.0
+        return
+    row = rows[start]
+    for j in range(size):
+        scores[j] = state[row, j]
+    for k in range(start + 1, stop):
+        row = rows[k]
+        for j in range(size):
+            scores[j] += state[row, j]
+
+
 # crfsuite's arithmetic at the last position of a chain, for the utterance-function tagger. Every
 # operation is crfsuite's, in its order: state scores summed attribute row by attribute row,
 # the C library's exp (numba calls it; no fast-math, so nothing is reassociated or fused),
@@ -223,17 +242,7 @@ def _chain_end_step(  # noqa: PLR0917
     scores = out[0]
     exps = out[1]
     probs = out[2]
-    if rows.shape[0] == 0:
-        for j in range(size):
-            scores[j] = 0.0
-    else:
-        row = rows[0]
-        for j in range(size):
-            scores[j] = state[row, j]
-        for k in range(1, rows.shape[0]):
-            row = rows[k]
-            for j in range(size):
-                scores[j] += state[row, j]
+    _sum_rows(state, rows, 0, rows.shape[0], scores)
     for j in range(size):
         exps[j] = math.exp(scores[j])
     chained = carry_forward.shape[0] == size
@@ -299,17 +308,7 @@ def _chain_carry(  # noqa: PLR0917
     start = 0
     for position in range(ends.shape[0]):
         stop = ends[position]
-        if stop == start:
-            for j in range(size):
-                scores[j] = 0.0
-        else:
-            row = rows[start]
-            for j in range(size):
-                scores[j] = state[row, j]
-            for k in range(start + 1, stop):
-                row = rows[k]
-                for j in range(size):
-                    scores[j] += state[row, j]
+        _sum_rows(state, rows, start, stop, scores)
         start = stop
         if position == 0:
             for j in range(size):

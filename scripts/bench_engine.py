@@ -98,6 +98,12 @@ def _percentile(values: Sequence[int], q: float) -> float:
     return ordered[min(len(ordered) - 1, int(q * len(ordered)))] / 1000.0
 
 
+def _no_times(lengths: Sequence[int]) -> dict[int, dict[str, list[int]]]:
+    """Empty lists of per-word CPU times (ns), per utterance length and measure."""
+    return {length: {"decoder": [], "floor": [], "naive": [], "decoder_wall": []}
+            for length in lengths}
+
+
 def _run(model: WordModel, texts: Sequence[str], lengths: Sequence[int],
          config: DecoderConfig) -> dict[int, dict[str, list[int]]]:
     """Stream ``texts`` as utterances of each of ``lengths`` words; time decoders and baselines.
@@ -112,9 +118,7 @@ def _run(model: WordModel, texts: Sequence[str], lengths: Sequence[int],
     words = [Word(text=t, speaker="A") for t in texts]
     tokens: list[Token] = [token_of(w) for w in words]
     decoders = {length: ChannelDecoder(model, config) for length in lengths}
-    cpu: dict[int, dict[str, list[int]]] = {
-        length: {"decoder": [], "floor": [], "naive": [], "decoder_wall": []}
-        for length in lengths}
+    cpu = _no_times(lengths)
     # (key, window size, utterance start) per length
     windows: dict[int, list[tuple[int, int, int]]] = {length: [] for length in lengths}
     starts = dict.fromkeys(lengths, 0)
@@ -186,18 +190,16 @@ def main(argv: Sequence[str] | None = None) -> int:
     config = DecoderConfig(lag=args.lag, settle=not args.no_settle)
     _run(model, texts[:300], (10,), config)
     lag = ChannelDecoder(model, config).max_open
+    runs = max(n_words, *lengths)
     finality = "settled or" if config.settle else "exactly"
-    print(f"model: {source}; {max(n_words, *lengths)} words per round, {rounds} rounds, the "
+    print(f"model: {source}; {runs} words per round, {rounds} rounds, the "
           f"three lengths' decoders in turn; final {finality} "
           f"{lag} words late; CPU time per word (us)")
     header = (f"{'utterance':>9} {'decoder':>8} {'p99':>8} {'wall':>8} {'floor':>8} "
               f"{'naive':>8} {'dec/floor':>9} {'naive/dec':>9}")
     print(header)
-    pooled: dict[int, dict[str, list[int]]] = {
-        length: {"decoder": [], "floor": [], "naive": [], "decoder_wall": []}
-        for length in lengths}
+    pooled = _no_times(lengths)
     round_ratios: list[float] = []
-    runs = max(n_words, *lengths)
     stream = texts[:runs] if len(texts) >= runs else (
         list(texts) * (runs // len(texts) + 1))[:runs]
     for _ in range(rounds):
@@ -219,11 +221,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         decoded += len(times["decoder"])
         floor = _percentile(times["floor"], 0.5)
         naive = _percentile(times["naive"], 0.5)
-        print(f"{length:>9} {decoder:>8.1f} {_percentile(times['decoder'], 0.99):>8.1f} "
+        p99 = _percentile(times["decoder"], 0.99)
+        print(f"{length:>9} {decoder:>8.1f} {p99:>8.1f} "
               f"{_percentile(times['decoder_wall'], 0.5):>8.1f} {floor:>8.1f} {naive:>8.1f} "
               f"{decoder / floor:>9.2f} {naive / decoder:>9.2f}")
         rows[str(length)] = {"decoder_us": decoder,
-                             "decoder_p99_us": _percentile(times["decoder"], 0.99),
+                             "decoder_p99_us": p99,
                              "floor_us": floor, "naive_us": naive}
     ratio = medians[1000] / medians[10]
     print(f"ratio decoder median 1000-word / 10-word utterances: {ratio:.2f} (target <= 1.3)")
@@ -237,7 +240,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     print(f"decoder throughput: {throughput:,.0f} words per CPU second (target >= 10,000)")
     if args.json is not None:
         args.json.write_text(json.dumps({
-            "machine": machine(), "model": source, "words_per_round": max(n_words, *lengths),
+            "machine": machine(), "model": source, "words_per_round": runs,
             "rounds": rounds, "lag": lag, "settle": config.settle, "rows": rows,
             "ratio_1000_over_10": ratio, "round_ratios": round_ratios,
             "words_per_cpu_s": throughput,
