@@ -76,8 +76,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              f"(default {defaults.max_live_conversations})")
     parser.add_argument("--gc-thresholds", default=_GC_THRESHOLDS, metavar="G0,G1,G2",
                         help="the garbage collector's thresholds once serving (default "
-                             f"{_GC_THRESHOLDS}: no automatic full collection; Python's own "
-                             "are 700,10,10)")
+                             f"{_GC_THRESHOLDS}: only young collections run by themselves; "
+                             "Python's own are 700,10,10)")
     parser.add_argument("--full-collection-every", type=float, default=_FULL_COLLECTION_S,
                         metavar="S",
                         help="run a full garbage collection every S seconds, to free reference "
@@ -88,14 +88,16 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 #: Collector thresholds while serving. Everything the word path keeps long (history, replay,
 #: snapshots) is stored untracked (see midstream.server._kept), and the word path makes no
-#: reference cycles (every collection of scripts/bench_gc.py's run freed none), so collections
-#: only cost time. Young collections stay small (Python's 700,10) so each pause is short; an
-#: automatic full collection, which walks every live engine and session, never runs (threshold
-#: 1,000,000): with 700 live conversations in-process those took up to 0.25 s, and thresholds
-#: of 50000,50,1000 made young collections take up to about 0.1 s (scripts/bench_gc.py,
-#: 2026-12-03).
-#: Cycles from elsewhere (errors, ended streams) are freed by the periodic full collection.
-_GC_THRESHOLDS: Final = "700,10,1000000"
+#: reference cycles (every collection of scripts/bench_gc.py's runs freed none), so collections
+#: only cost time. Only the youngest generation is collected automatically (Python's 700): an
+#: object that outlives one young collection is almost always a live conversation's state, which
+#: waits for that conversation's next word, so walking it again in older collections found
+#: nothing. With 1,000 live conversations in-process (scripts/bench_gc.py, 2026-12-03) Python's
+#: own thresholds paused up to 0.42 s (full collections), 700,10,1000000 up to 22-30 ms (middle
+#: generation) at 27-29 us of collector time per word, and 700,1000000,1000000 up to 4-16 ms at
+#: 13 us per word. Cycles that outlive a young collection (from errors, ended streams) are freed
+#: by the periodic full collection.
+_GC_THRESHOLDS: Final = "700,1000000,1000000"
 #: Seconds between full collections (common practice, no source: rare enough that its pause,
 #: tenths of a second with a thousand live conversations, touches few words).
 _FULL_COLLECTION_S: Final = 600.0

@@ -40,7 +40,7 @@ from midstream.server._many import ManyStream
 from midstream.wire import midstream_pb2 as pb
 
 _DEFAULT = (700, 10, 10)
-_SETTINGS = "700,10,10 50000,50,1000 700,10,1000000"
+_SETTINGS = "700,10,10 700,10,1000000 700,1000000,1000000"
 
 
 def _feed(stream: ManyStream, frames: list[bytes]) -> None:

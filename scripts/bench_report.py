@@ -32,6 +32,7 @@ from typing import Any
 
 from _benchkit import REPO, machine, models_folder
 from bench_service import table as service_table
+from midstream.client._cmd_serve import _FULL_COLLECTION_S, _GC_THRESHOLDS
 
 _SCRIPTS = REPO / "scripts"
 
@@ -185,8 +186,9 @@ def _collector_section(command: str | None, result: dict[str, Any]) -> list[str]
         f"`ConverseMany` take {result['words']:,} SwDA val words; `gc.callbacks` time every "
         "collection. A pause holds up every word in flight, so the longest pause bounds what "
         "the collector adds to the latency tail. Baseline: Python's own thresholds "
-        "(700,10,10). `midstream serve` uses 700,10,1000000 and a full collection every "
-        "600 s. Objects the collector tracks that stay alive per word taken in: "
+        f"(700,10,10). `midstream serve` uses {_GC_THRESHOLDS} and a full collection every "
+        f"{_FULL_COLLECTION_S:g} s. Objects the collector tracks that stay alive per word "
+        "taken in: "
         f"{kept['per_word']:.2f} (kept history is stored untracked).",
         "",
         "| thresholds | generation | collections | longest ms | total ms | objects freed |",

@@ -293,5 +293,5 @@ def test_bench_gc_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> Non
     assert result["words"] == 400 and result["retained"]["per_word"] >= 0
     # One pass per default threshold setting, each reporting the three generations.
     assert [p["thresholds"] for p in result["passes"]] == [
-        [700, 10, 10], [50000, 50, 1000], [700, 10, 1000000]]
+        [700, 10, 10], [700, 10, 1000000], [700, 1000000, 1000000]]
     assert all(set(p["generations"]) == {"0", "1", "2"} for p in result["passes"])
