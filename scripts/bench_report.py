@@ -66,6 +66,9 @@ def main() -> int:
                         help="also run bench_service.py --multiplex (ConverseMany streams)")
     parser.add_argument("--multiplex-steps", default=None,
                         help="passed as --steps to bench_service.py --multiplex")
+    parser.add_argument("--multiplex-channels", type=int, default=None, metavar="N",
+                        help="passed as --channels to bench_service.py --multiplex (streams "
+                             "the conversations share; its default is 4)")
     parser.add_argument("--work", type=Path, default=Path("/tmp/midstream-bench"))
     parser.add_argument("--reuse", type=Path, default=None, metavar="DIR",
                         help="write the page from the output saved in DIR; measure nothing")
@@ -97,6 +100,8 @@ def main() -> int:
             multiplex_cmd.append("--quick")
         if args.multiplex_steps:
             multiplex_cmd += ["--steps", args.multiplex_steps]
+        if args.multiplex_channels:
+            multiplex_cmd += ["--channels", str(args.multiplex_channels)]
         if args.smoke:
             for command in (engine_cmd, service_cmd, memory_cmd, multiplex_cmd, gc_cmd):
                 command.append("--smoke")
@@ -132,6 +137,10 @@ def main() -> int:
     return 0
 
 
+def _streams(count: int) -> str:
+    return "one `ConverseMany` stream" if count == 1 else f"{count} `ConverseMany` streams"
+
+
 def _engine_section(text: str) -> list[str]:
     if not text:
         return ["`scripts/bench_engine.py` was not found in this checkout; nothing measured.", ""]
@@ -151,8 +160,8 @@ def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[s
         "",
         f"`{command or 'scripts/bench_service.py --multiplex'}`",
         "",
-        f"The same steps, but the conversations ride {service.get('channels', 4)} "
-        f"`ConverseMany` streams (one per connection): every {service.get('tick_ms', 10):g} ms "
+        f"The same steps, but the conversations ride {_streams(service.get('channels', 4))} "
+        f"(one per connection): every {service.get('tick_ms', 10):g} ms "
         "each stream sends one frame holding every word that fell due on it, and the server "
         "answers each frame with one reply frame. Latency is from each word's *scheduled* "
         "time (so the wait for the next frame is inside it) to the first update naming it. "
@@ -249,7 +258,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         f"{service['rate']:g} words/s for {service['seconds']:g} s, no errors, server on one "
         f"core | **{largest}** conversations ({largest * service['rate']:g} words/s) | 1,000 |",
         *([f"| the same, conversations multiplexed over "
-           f"{multiplexed.get('channels', 4)} `ConverseMany` streams "
+           f"{_streams(multiplexed.get('channels', 4))} "
            f"| **{multiplexed['largest_passing']}** conversations "
            f"({multiplexed['largest_passing'] * multiplexed['rate']:g} words/s) | 1,000 |"]
           if multiplexed else []),
