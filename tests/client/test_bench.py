@@ -251,10 +251,15 @@ def test_bench_service_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -
 @pytest.mark.slow
 def test_bench_service_multiplexed_smoke(models_dir: Path, swda_dir: Path,
                                          tmp_path: Path) -> None:
+    # The same size twice: each run is reported, and the size counts only if both met.
     result = _script("bench_service.py", "--models", str(models_dir), "--corpus",
-                     str(swda_dir), "--multiplex", tmp_path=tmp_path)
+                     str(swda_dir), "--multiplex", "--steps", "4,4", "--all-steps",
+                     tmp_path=tmp_path)
     assert result["multiplex"] is True and result["tick_ms"] > 0
-    (step,) = result["steps"]
+    first, step = result["steps"]
+    met = sum(s["passed"] for s in (first, step))
+    assert result["runs"] == {"4": {"met": met, "of": 2}}
+    assert result["largest_passing"] == (4 if met == 2 else 0)
     _check_load(step["load"] | {"corpus": ""}, local=True)
     assert step["load"]["multiplex"] is True
     assert step["baseline"]["workload"] == "describe" and step["baseline"]["multiplex"] is True
