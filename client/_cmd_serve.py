@@ -74,6 +74,13 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         default=defaults.max_live_conversations, metavar="N",
                         help="most conversations ingested at once "
                              f"(default {defaults.max_live_conversations})")
+    parser.add_argument("--lag", type=int, default=None, metavar="N",
+                        help="open words at most: a word's label becomes final once settled "
+                             "(no later word can change it) or N words late (default: the "
+                             "decoder's, 10); smaller: final sooner, decided on fewer later "
+                             "words")
+    parser.add_argument("--no-settle", action="store_true",
+                        help="make every label final exactly --lag words late instead")
     parser.add_argument("--gc-thresholds", default=_GC_THRESHOLDS, metavar="G0,G1,G2",
                         help="the garbage collector's thresholds once serving (default "
                              f"{_GC_THRESHOLDS}: only young collections run by themselves; "
@@ -158,11 +165,14 @@ def build_config(args: argparse.Namespace) -> ServerConfig:
     Raises
     ------
     InputError
-        A negative grace, a non-positive idle timeout or live limit, an empty or unset token.
+        A negative grace or lag, a non-positive idle timeout or live limit, an empty or unset
+        token.
     """
     if args.grace < 0 or args.idle_timeout <= 0 or args.max_live_conversations < 1:
         raise InputError("--grace must be >= 0, --idle-timeout > 0 and "
                          "--max-live-conversations >= 1")
+    if args.lag is not None and args.lag < 0:
+        raise InputError(f"--lag must be >= 0, got {args.lag}")
     return ServerConfig(
         host=args.host, port=args.port, models_dir=args.models,
         metrics_host=args.metrics_host, metrics_port=args.metrics_port,
@@ -170,6 +180,7 @@ def build_config(args: argparse.Namespace) -> ServerConfig:
         token=_token(args), grace_s=args.grace,
         limits=ServerLimits(idle_timeout_s=args.idle_timeout,
                             max_live_conversations=args.max_live_conversations),
+        max_open_words=args.lag, settle=not args.no_settle,
     )
 
 

@@ -6,6 +6,7 @@ into hypothesis diffs.
 """
 
 from midstream.models._bundle import ModelBundle, ModelInfo
+from midstream.models._decoder import DecoderConfig
 from midstream.models._engine import ConversationEngine, EngineConfig
 
-__all__ = ["ConversationEngine", "EngineConfig", "ModelBundle", "ModelInfo"]
+__all__ = ["ConversationEngine", "DecoderConfig", "EngineConfig", "ModelBundle", "ModelInfo"]

@@ -14,6 +14,7 @@ Lifecycle::
 from __future__ import annotations
 
 import asyncio
+import functools
 import logging
 from types import TracebackType
 
@@ -24,7 +25,7 @@ from midstream._errors import InputError, UnavailableError
 from midstream.server._auth import BearerTokenInterceptor
 from midstream.server._config import ServerConfig
 from midstream.server._metrics import ServerMetrics
-from midstream.server._models import Bundle, load_bundle
+from midstream.server._models import Bundle, load_bundle, tune_bundle
 from midstream.server._servicer import MidstreamServicer
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
@@ -44,7 +45,8 @@ class MidstreamServer:
         Where to listen and the limits.
     bundle
         Models to serve; ``None`` loads ``config.models_dir`` (or the shipped models) in
-        :meth:`start`.
+        :meth:`start`. Either way ``config.max_open_words`` and ``config.settle`` apply, also
+        to models loaded later by ``ReloadModels``.
     """
 
     def __init__(self, config: ServerConfig, *, bundle: Bundle | None = None) -> None:
@@ -96,7 +98,8 @@ class MidstreamServer:
         Raises
         ------
         InputError
-            Inconsistent TLS settings, or TLS required but not configured.
+            Inconsistent TLS settings, TLS required but not configured, or decoder settings
+            for a given bundle that is not a ``ModelBundle``.
         ModelError
             When the models cannot be loaded.
         UnavailableError
@@ -105,9 +108,15 @@ class MidstreamServer:
         if self._server is not None:
             raise UnavailableError("the server was already started")
         credentials = self._credentials()
+        config = self.config
+        load = functools.partial(load_bundle, max_open_words=config.max_open_words,
+                                 settle=config.settle)
         bundle = self._bundle
         if bundle is None:
-            bundle = await asyncio.to_thread(load_bundle, self.config.models_dir)
+            bundle = await asyncio.to_thread(load, config.models_dir)
+        else:
+            bundle = tune_bundle(bundle, max_open_words=config.max_open_words,
+                                 settle=config.settle)
         limits = self.config.limits
         interceptors = []
         if self.config.token:
@@ -126,7 +135,7 @@ class MidstreamServer:
                 ("grpc.keepalive_timeout_ms", 20_000),
             ],
         )
-        self._servicer = MidstreamServicer(bundle, limits, self.metrics)
+        self._servicer = MidstreamServicer(bundle, limits, self.metrics, load=load)
         # The generated registration function carries no annotations.
         pb_grpc.add_MidstreamServicer_to_server(self._servicer, server)  # type: ignore[no-untyped-call]
         self._health = health.aio.HealthServicer()

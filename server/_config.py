@@ -85,7 +85,9 @@ class ServerConfig:
     """Where and how one server runs.
 
     ``port=0`` picks a free port (read it from :attr:`MidstreamServer.port` after ``start``).
-    ``models_dir=None`` serves the shipped default models. ``metrics_port=None`` serves no
+    ``models_dir=None`` serves the shipped default models. ``max_open_words`` and ``settle``
+    set when a word's label becomes final (see ``midstream.models.DecoderConfig``: ``lag`` and
+    ``settle``); ``None`` and ``True`` keep the decoder's defaults. ``metrics_port=None`` serves no
     metrics; ``0`` picks a free port. ``token`` (never shown in the repr) makes every call but
     the health check require ``authorization: Bearer <token>`` metadata. ``require_tls`` refuses
     to start without ``tls_cert`` and ``tls_key``. ``grace_s`` bounds a graceful stop.
@@ -102,3 +104,13 @@ class ServerConfig:
     token: str | None = field(default=None, repr=False)
     grace_s: float = 10.0
     limits: ServerLimits = field(default_factory=ServerLimits)
+    max_open_words: int | None = None
+    """A word's label is final once no later word can change it, or at the latest when this
+    many newer words of its speaker have arrived; ``None``: the decoder's default."""
+    settle: bool = True
+    """``False``: every label becomes final exactly ``max_open_words`` words late."""
+
+    def __post_init__(self) -> None:
+        if self.max_open_words is not None and self.max_open_words < 0:
+            raise InputError(f"ServerConfig.max_open_words must be >= 0, not "
+                             f"{self.max_open_words}")

@@ -11,6 +11,7 @@ from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Protocol
 
+from midstream._errors import InputError
 from midstream._types import HypothesisDiff, Word
 
 
@@ -54,10 +55,12 @@ class Bundle(Protocol):
     def new_engine(self) -> Engine: ...
 
 
-def load_bundle(directory: Path | None) -> Bundle:
+def load_bundle(directory: Path | None, *, max_open_words: int | None = None,
+                settle: bool = True) -> Bundle:
     """Load the models in ``directory``, or the shipped default models when it is ``None``.
 
-    Blocking file I/O: call it off the event loop.
+    ``max_open_words`` and ``settle`` are the decoder's ``lag`` and ``settle`` (see
+    :func:`tune_bundle`). Blocking file I/O: call it off the event loop.
 
     Raises
     ------
@@ -70,4 +73,25 @@ def load_bundle(directory: Path | None) -> Bundle:
               else ModelBundle.load_directory(directory))
     # Here, off the event loop, rather than inside the first live word's latency.
     bundle.warm_up()
-    return bundle
+    return tune_bundle(bundle, max_open_words=max_open_words, settle=settle)
+
+
+def tune_bundle(bundle: Bundle, *, max_open_words: int | None, settle: bool) -> Bundle:
+    """``bundle`` making engines whose decoders finalise words as asked.
+
+    The defaults (``None``, ``True``) leave any bundle as it is; other values need a
+    ``midstream.models.ModelBundle``.
+
+    Raises
+    ------
+    InputError
+        Other values for a bundle that is not a ``ModelBundle``.
+    """
+    if max_open_words is None and settle:
+        return bundle
+    from midstream.models import DecoderConfig, ModelBundle  # noqa: PLC0415 - as above
+
+    if not isinstance(bundle, ModelBundle):
+        raise InputError("max_open_words and settle need a midstream.models.ModelBundle, not "
+                         f"{type(bundle).__name__}")
+    return bundle.with_decoder(DecoderConfig(lag=max_open_words, settle=settle))

@@ -17,7 +17,7 @@ import asyncio
 import json
 import logging
 import time
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Callable
 from pathlib import Path
 from typing import Any, NoReturn
 
@@ -152,8 +152,10 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     Use from the server's event loop only.
     """
 
-    def __init__(self, bundle: Bundle, limits: ServerLimits, metrics: ServerMetrics) -> None:
+    def __init__(self, bundle: Bundle, limits: ServerLimits, metrics: ServerMetrics, *,
+                 load: Callable[[Path], Bundle] = load_bundle) -> None:
         self.bundle = bundle
+        self._load = load  # what ReloadModels loads with (the server's decoder settings)
         self._limits = limits
         self._metrics = metrics
         self.registry = SessionRegistry(limits, metrics)
@@ -480,7 +482,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             if not request.directory:
                 raise EventError("field 'directory' is empty")
             try:
-                bundle = await asyncio.to_thread(load_bundle, Path(request.directory))
+                bundle = await asyncio.to_thread(self._load, Path(request.directory))
             except (ModelError, NotFoundError) as exc:
                 # Whatever went wrong, the request cannot succeed as the server stands:
                 # FAILED_PRECONDITION, and the models in service keep serving.

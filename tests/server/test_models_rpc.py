@@ -13,6 +13,7 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,
     Caller,
     Running,
+    ServerFactory,
     bundle_fixture,
     models_dir_fixture,
     open_event,
@@ -93,3 +94,30 @@ async def test_reload_swaps_models_for_new_conversations_only(running: Running,
     replies = [m async for m in running.stub.Converse(iter([
         open_event(), words_event(spoken("w1", "hello")), CLOSE]))]
     assert replies[-1].ended.reason == pb.END_REASON_CLOSED
+
+
+async def _final_after(caller: Caller, words: int) -> list[int]:
+    """For each of ``words`` words sent one by one, how many words had been sent when it was
+    first published final (0: not yet)."""
+    final_at = [0] * words
+    for sent in range(1, words + 1):
+        update = await caller.send(words_event(spoken(f"w{sent}", "so", start=float(sent))))
+        for word in update.words:
+            index = int(word.word_id[1:]) - 1
+            if word.final and not final_at[index]:
+                final_at[index] = sent
+    return final_at
+
+
+async def test_decoder_settings_hold_for_live_and_reloaded_models(start_server: ServerFactory,
+                                                                  models_dir: Path) -> None:
+    # --lag 2 --no-settle: every word is final exactly when the second newer word arrives
+    # (DecoderConfig's contract), also on models loaded later by ReloadModels.
+    running = await start_server(max_open_words=2, settle=False)
+    for reload in (False, True):
+        if reload:
+            await running.stub.ReloadModels(pb.ReloadModelsRequest(directory=str(models_dir)))
+        caller = Caller(running.stub)
+        await caller.open()
+        assert await _final_after(caller, 5) == [3, 4, 5, 0, 0]
+        await caller.close()

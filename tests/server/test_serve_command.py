@@ -192,6 +192,19 @@ async def test_full_collections_run_on_the_timer_until_cancelled(
     assert len(runs) == count  # cancelled means stopped
 
 
+def test_decoder_flags_reach_the_server_config() -> None:
+    parser = argparse.ArgumentParser()
+    _cmd_serve.register(parser.add_subparsers())
+    config = _cmd_serve.build_config(parser.parse_args(["serve", "--lag", "2", "--no-settle"]))
+    assert (config.max_open_words, config.settle) == (2, False)
+    default = _cmd_serve.build_config(parser.parse_args(["serve"]))
+    assert (default.max_open_words, default.settle) == (None, True)
+    with pytest.raises(InputError, match="--lag must be >= 0"):
+        _cmd_serve.build_config(parser.parse_args(["serve", "--lag", "-1"]))
+    with pytest.raises(InputError, match="max_open_words must be >= 0"):
+        ServerConfig(max_open_words=-1)
+
+
 def test_a_negative_collection_period_is_refused() -> None:
     parser = argparse.ArgumentParser()
     _cmd_serve.register(parser.add_subparsers())
