@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import dataclasses
 import gc
 import logging
 import os
@@ -74,6 +75,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         default=defaults.max_live_conversations, metavar="N",
                         help="most conversations ingested at once "
                              f"(default {defaults.max_live_conversations})")
+    parser.add_argument("--limit", action="append", default=[], metavar="NAME=VALUE",
+                        help="set any server limit of docs/limits.md, e.g. --limit "
+                             "max_channels_per_stream=2048 (repeatable; applied after "
+                             "--idle-timeout and --max-live-conversations)")
     parser.add_argument("--lag", type=int, default=None, metavar="N",
                         help="open words at most: a word's label becomes final once settled "
                              "(no later word can change it) or N words late (default: the "
@@ -138,6 +143,34 @@ def parse_gc_thresholds(text: str) -> tuple[int, int, int]:
     return values[0], values[1], values[2]
 
 
+def parse_limits(items: list[str]) -> dict[str, int | float]:
+    """``NAME=VALUE`` items as ``ServerLimits`` keyword arguments (values checked there).
+
+    Raises
+    ------
+    InputError
+        An item without ``=``, a name that is no limit, or a value not of the limit's type.
+    """
+    defaults = ServerLimits()
+    names = [f.name for f in dataclasses.fields(ServerLimits)]
+    values: dict[str, int | float] = {}
+    for item in items:
+        name, sep, text = item.partition("=")
+        name = name.strip()
+        if not sep:
+            raise InputError(f"--limit {item!r}: expected NAME=VALUE")
+        if name not in names:
+            raise InputError(f"--limit {item!r}: {name!r} is no server limit; the limits are "
+                             f"{', '.join(names)}")
+        kind = type(getattr(defaults, name))
+        try:
+            values[name] = kind(text.strip())
+        except ValueError:
+            raise InputError(f"--limit {item!r}: {name} takes a "
+                             f"{'whole number' if kind is int else 'number'}") from None
+    return values
+
+
 def _token(args: argparse.Namespace) -> str | None:
     if args.token is not None:
         if not args.token:
@@ -165,8 +198,8 @@ def build_config(args: argparse.Namespace) -> ServerConfig:
     Raises
     ------
     InputError
-        A negative grace or lag, a non-positive idle timeout or live limit, an empty or unset
-        token.
+        A negative grace or lag, a non-positive idle timeout or live limit, a malformed or
+        out-of-range ``--limit``, an empty or unset token.
     """
     if args.grace < 0 or args.idle_timeout <= 0 or args.max_live_conversations < 1:
         raise InputError("--grace must be >= 0, --idle-timeout > 0 and "
@@ -178,8 +211,9 @@ def build_config(args: argparse.Namespace) -> ServerConfig:
         metrics_host=args.metrics_host, metrics_port=args.metrics_port,
         tls_cert=args.tls_cert, tls_key=args.tls_key, require_tls=args.require_tls,
         token=_token(args), grace_s=args.grace,
-        limits=ServerLimits(idle_timeout_s=args.idle_timeout,
-                            max_live_conversations=args.max_live_conversations),
+        limits=ServerLimits(**{"idle_timeout_s": args.idle_timeout,
+                               "max_live_conversations": args.max_live_conversations,
+                               **parse_limits(args.limit)}),
         max_open_words=args.lag, settle=not args.no_settle,
     )
 

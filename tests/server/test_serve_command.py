@@ -205,6 +205,25 @@ def test_decoder_flags_reach_the_server_config() -> None:
         ServerConfig(max_open_words=-1)
 
 
+def test_any_limit_can_be_set_by_name() -> None:
+    parser = argparse.ArgumentParser()
+    _cmd_serve.register(parser.add_subparsers())
+    config = _cmd_serve.build_config(parser.parse_args([
+        "serve", "--max-live-conversations", "1000", "--limit", "max_channels_per_stream=2048",
+        "--limit", "idle_timeout_s=2.5", "--limit", "history_revisions = 8192"]))
+    assert config.limits.max_channels_per_stream == 2048
+    assert config.limits.idle_timeout_s == 2.5  # --limit applies after --idle-timeout
+    assert config.limits.history_revisions == 8192
+    assert config.limits.max_live_conversations == 1000
+    for bad, message in (("max_channels_per_stream", "expected NAME=VALUE"),
+                         ("max_channel=3", "is no server limit; the limits are max_word_chars"),
+                         ("replay_updates=1.5", "replay_updates takes a whole number"),
+                         ("idle_timeout_s=soon", "idle_timeout_s takes a number"),
+                         ("replay_updates=0", "replay_updates must be at least 1")):
+        with pytest.raises(InputError, match=message):
+            _cmd_serve.build_config(parser.parse_args(["serve", "--limit", bad]))
+
+
 def test_a_negative_collection_period_is_refused() -> None:
     parser = argparse.ArgumentParser()
     _cmd_serve.register(parser.add_subparsers())
