@@ -107,12 +107,6 @@ class _Recent(Generic[_T]):
             raise IndexError("no items")
         return self._kept(self._head)
 
-    def newest(self) -> _T:
-        """The newest kept item; raises ``IndexError`` when empty."""
-        if self._head >= len(self._items):
-            raise IndexError("no items")
-        return self._kept(-1)
-
     def _kept(self, index: int) -> _T:
         item = self._items[index]
         assert item is not None  # only evicted slots (before _head) hold None
