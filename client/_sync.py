@@ -18,16 +18,23 @@ Examples
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import threading
-from collections.abc import Coroutine, Iterable, Iterator
+from collections.abc import Coroutine, Iterable, Iterator, Sequence
 from types import TracebackType
-from typing import Any, Self, TypeVar
+from typing import Any, Self, TypeVar, cast
 
-from midstream._errors import UnavailableError
-from midstream.client._client import Client, RetryPolicy
+from midstream._errors import InputError, MidstreamError, UnavailableError
+from midstream.client._client import (
+    DEFAULT_FRAME_EVENTS,
+    Client,
+    MultiplexedStream,
+    RetryPolicy,
+)
 from midstream.client._results import (
     AddWord,
     ConversationSummary,
+    InputEvent,
     ModelInfo,
     RevisionHistory,
     ServerEvent,
@@ -36,6 +43,12 @@ from midstream.client._results import (
 )
 
 _T = TypeVar("_T")
+Reply = tuple[int, ServerEvent | MidstreamError]
+
+#: Replies read ahead of the caller by default (see :meth:`SyncClient.converse_many`).
+DEFAULT_BUFFER = 1024
+_END = object()  # the reply stream ended normally
+_NOTHING = object()  # no reply within the timeout
 
 
 class SyncClient:
@@ -120,6 +133,18 @@ class SyncClient:
         """See :meth:`Client.reload_models`."""
         return self._run(self._client.reload_models(directory))
 
+    def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
+                      buffer: int = DEFAULT_BUFFER) -> SyncMultiplexedStream:
+        """See :meth:`Client.converse_many`; use the result with ``with``.
+
+        ``buffer``: replies read ahead of the caller at most; when that many wait unread, the
+        stream stops reading and gRPC's flow control holds the server back.
+        """
+        if buffer < 1:
+            raise InputError(f"buffer must be at least 1, not {buffer}")
+        return SyncMultiplexedStream(self, self._client.converse_many(frame_events=frame_events),
+                                     buffer)
+
     def follow(self, conversation_id: str, *, from_seq: int | None = None
                ) -> Iterator[ServerEvent]:
         """See :meth:`Client.follow`; blocks between events."""
@@ -137,3 +162,130 @@ class SyncClient:
         finally:
             if self._loop is not None:
                 self._run(events.aclose())
+
+
+class SyncMultiplexedStream:
+    """The blocking form of :class:`~midstream.client.MultiplexedStream`.
+
+    ``with`` opens the call. Queue events with :meth:`open`, :meth:`send`, :meth:`send_words`
+    and :meth:`close_channel`, send them with :meth:`flush`, read ``(channel, event)`` pairs
+    with :meth:`replies`. A background task on the wrapper's loop reads replies as they come
+    into a bounded buffer, so the caller may send for a while before reading; read between
+    flushes all the same: once the buffer and the transport's windows are full the server stops
+    taking frames and :meth:`flush` blocks until replies are read. Leaving the block
+    normally half-closes the call (the server finishes every open channel) and discards the
+    replies not read; leaving it by an exception cancels the call.
+    """
+
+    def __init__(self, owner: SyncClient, stream: MultiplexedStream, buffer: int) -> None:
+        self._owner = owner
+        self._stream = stream
+        self._buffer = buffer
+        self._queue: asyncio.Queue[object] | None = None
+        self._reader: asyncio.Task[None] | None = None
+        self._getter: asyncio.Future[object] | None = None
+        self._ended = False
+
+    def __enter__(self) -> Self:
+        self._owner._run(self._start())
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        try:
+            if exc is None and not self._ended:
+                self.close()
+                for _ in self.replies():  # until the server ends the stream
+                    pass
+        finally:
+            self._owner._run(self._stop(exc_type, exc, tb))
+
+    async def _start(self) -> None:
+        await self._stream.__aenter__()
+        self._queue = asyncio.Queue(self._buffer)
+        self._reader = asyncio.create_task(self._pump())
+
+    async def _pump(self) -> None:
+        assert self._queue is not None
+        end: object = _END
+        try:
+            async for reply in self._stream:
+                await self._queue.put(reply)
+        except MidstreamError as exc:
+            end = exc
+        await self._queue.put(end)
+
+    async def _stop(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                    tb: TracebackType | None) -> None:
+        for task in (self._getter, self._reader):
+            if task is not None and not task.done():
+                task.cancel()
+                with contextlib.suppress(asyncio.CancelledError):
+                    await task
+        await self._stream.__aexit__(exc_type, exc, tb)
+
+    # --- queueing (the caller's thread; nothing else touches the queue between flushes) ------
+
+    def open(self, conversation_id: str | None = None) -> int:
+        """See :meth:`MultiplexedStream.open`."""
+        return self._stream.open(conversation_id)
+
+    def send(self, channel: int, event: InputEvent) -> None:
+        """See :meth:`MultiplexedStream.send`."""
+        self._stream.send(channel, event)
+
+    def send_words(self, channel: int, words: Sequence[AddWord]) -> None:
+        """See :meth:`MultiplexedStream.send_words`."""
+        self._stream.send_words(channel, words)
+
+    def close_channel(self, channel: int) -> None:
+        """See :meth:`MultiplexedStream.close_channel`."""
+        self._stream.close_channel(channel)
+
+    @property
+    def queued(self) -> int:
+        """Events queued for the next :meth:`flush`."""
+        return self._stream.queued
+
+    # --- sending and reading ------------------------------------------------------------------
+
+    def flush(self) -> None:
+        """See :meth:`MultiplexedStream.flush`; blocks until the frame is handed to gRPC."""
+        self._owner._run(self._stream.flush())
+
+    def close(self) -> None:
+        """See :meth:`MultiplexedStream.close`."""
+        self._owner._run(self._stream.close())
+
+    def replies(self, timeout: float | None = None) -> Iterator[Reply]:
+        """``(channel, event)`` pairs in arrival order, blocking between them.
+
+        Ends when the server ends the stream, or, with ``timeout``, when no reply came within
+        ``timeout`` seconds (the stream stays open: call again later). A failure of the whole
+        stream is raised once the replies before it were taken.
+        """
+        while not self._ended:
+            item = self._owner._run(self._next(timeout))
+            if item is _NOTHING:
+                return
+            if item is _END:
+                self._ended = True
+                return
+            if isinstance(item, MidstreamError):
+                self._ended = True
+                raise item
+            yield cast(Reply, item)
+
+    async def _next(self, timeout: float | None) -> object:
+        # The pending get survives a timeout (it is not cancelled, so no reply is lost in the
+        # race between a timeout and an arriving reply); the next call waits on it again.
+        if self._queue is None:
+            raise UnavailableError("the multiplexed stream is not open: use 'with'")
+        if self._getter is None:
+            self._getter = asyncio.ensure_future(self._queue.get())
+        done, _ = await asyncio.wait((self._getter,), timeout=timeout)
+        if not done:
+            return _NOTHING
+        item = self._getter.result()
+        self._getter = None
+        return item

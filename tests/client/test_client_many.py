@@ -12,7 +12,15 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
     served_fixture,
 )
 from midstream import EventError, HypothesisUpdate, InputError, MidstreamError, Word
-from midstream.client import AddWord, Client, Ended, EndReason, MultiplexedStream, Welcome
+from midstream.client import (
+    AddWord,
+    Client,
+    Ended,
+    EndReason,
+    MultiplexedStream,
+    SyncClient,
+    Welcome,
+)
 from midstream.client._demo_script import demo_events
 from midstream.client._results import ServerEvent
 
@@ -107,3 +115,48 @@ async def test_queue_bound_and_a_refused_frame(served: Served) -> None:
             await mux.flush()
             with pytest.raises(EventError, match="max_events_per_frame"):
                 await _by_channel(mux)
+
+
+def test_the_sync_wrapper_carries_many_conversations(served: Served) -> None:
+    events = [timed.event for timed in demo_events()]
+    word = Word(text="so", speaker="A")
+    with SyncClient(served.target) as client:
+        with pytest.raises(InputError, match="buffer"):
+            client.converse_many(buffer=0)
+        # A small buffer: the reader stops at two unread replies and resumes as they are taken.
+        with client.converse_many(buffer=2) as mux:
+            first, second, bad = mux.open(), mux.open("sync-many-2"), mux.open()
+            mux.flush()
+            for event in events:
+                mux.send(first, event)
+                mux.send(second, event)
+                mux.flush()
+            mux.send_words(bad, [AddWord(word_id="w1", word=word)])
+            mux.send_words(bad, [AddWord(word_id="w1", word=word)])  # a duplicate word id
+            mux.flush()
+            # Nothing more is coming until the stream is closed: a timeout ends the iteration.
+            early = list(mux.replies(timeout=2.0))
+            assert list(mux.replies(timeout=0.05)) == []
+            mux.close()
+            got: dict[int, list[Received]] = {}
+            for channel, event in [*early, *mux.replies()]:
+                got.setdefault(channel, []).append(event)
+    for channel in (first, second):
+        assert isinstance(got[channel][0], Welcome)
+        ended = got[channel][-1]
+        assert isinstance(ended, Ended) and ended.reason is EndReason.CLOSED
+    assert _timeless(got[first][1:]) == _timeless(got[second][1:])
+    refusal = next(e for e in got[bad] if isinstance(e, MidstreamError))
+    assert isinstance(refusal, EventError) and "channel 3" in str(refusal)
+    assert isinstance(got[bad][-1], Ended) and got[bad][-1].reason is EndReason.REJECTED
+
+
+def test_leaving_the_sync_wrapper_early_discards_unread_replies(served: Served) -> None:
+    with SyncClient(served.target) as client:
+        with client.converse_many(buffer=1) as mux:
+            channel = mux.open()
+            mux.send_words(channel, [AddWord(word_id=f"w{i}", word=Word(text="so", speaker="A"))
+                                     for i in range(20)])
+            mux.flush()
+        # The block closed the call and drained it; the client still works.
+        assert client.describe_models()
