@@ -139,8 +139,8 @@ def test_the_sync_wrapper_carries_many_conversations(served: Served) -> None:
             assert list(mux.replies(timeout=0.05)) == []
             mux.close()
             got: dict[int, list[Received]] = {}
-            for channel, event in [*early, *mux.replies()]:
-                got.setdefault(channel, []).append(event)
+            for number, received in [*early, *mux.replies()]:
+                got.setdefault(number, []).append(received)
     for channel in (first, second):
         assert isinstance(got[channel][0], Welcome)
         ended = got[channel][-1]
@@ -148,7 +148,8 @@ def test_the_sync_wrapper_carries_many_conversations(served: Served) -> None:
     assert _timeless(got[first][1:]) == _timeless(got[second][1:])
     refusal = next(e for e in got[bad] if isinstance(e, MidstreamError))
     assert isinstance(refusal, EventError) and "channel 3" in str(refusal)
-    assert isinstance(got[bad][-1], Ended) and got[bad][-1].reason is EndReason.REJECTED
+    ended = got[bad][-1]
+    assert isinstance(ended, Ended) and ended.reason is EndReason.REJECTED
 
 
 def test_leaving_the_sync_wrapper_early_discards_unread_replies(served: Served) -> None:
