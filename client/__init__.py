@@ -26,7 +26,7 @@ from midstream.client._results import (
     Welcome,
     WithdrawWord,
 )
-from midstream.client._sync import SyncClient, SyncMultiplexedStream
+from midstream.client._sync import SyncClient, SyncConversation, SyncMultiplexedStream
 
 __all__ = [
     "AddWord",
@@ -47,6 +47,7 @@ __all__ = [
     "Snapshot",
     "SpeakerHint",
     "SyncClient",
+    "SyncConversation",
     "SyncMultiplexedStream",
     "TaggedTranscript",
     "TimedEvent",

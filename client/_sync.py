@@ -20,14 +20,15 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import threading
-from collections.abc import Coroutine, Iterable, Iterator, Sequence
+from collections.abc import AsyncIterator, Coroutine, Iterable, Iterator, Sequence
 from types import TracebackType
-from typing import Any, Self, TypeVar, cast
+from typing import Any, Generic, Protocol, Self, TypeVar, cast
 
 from midstream._errors import InputError, MidstreamError, UnavailableError
 from midstream.client._client import (
     DEFAULT_FRAME_EVENTS,
     Client,
+    ConversationStream,
     MultiplexedStream,
     RetryPolicy,
 )
@@ -43,7 +44,19 @@ from midstream.client._results import (
 )
 
 _T = TypeVar("_T")
+_Item = TypeVar("_Item")
+_Yielded_co = TypeVar("_Yielded_co", covariant=True)
 Reply = tuple[int, ServerEvent | MidstreamError]
+
+
+class _Stream(Protocol[_Yielded_co]):
+    """What :class:`_ReadAhead` needs of an async stream of the client."""
+
+    async def __aenter__(self) -> Any: ...
+    async def __aexit__(self, exc_type: type[BaseException] | None,
+                        exc: BaseException | None, tb: TracebackType | None) -> None: ...
+    def __aiter__(self) -> AsyncIterator[_Yielded_co]: ...
+    async def close(self) -> None: ...
 
 #: Replies read ahead of the caller by default (see :meth:`SyncClient.converse_many`).
 DEFAULT_BUFFER = 1024
@@ -133,6 +146,14 @@ class SyncClient:
         """See :meth:`Client.reload_models`."""
         return self._run(self._client.reload_models(directory))
 
+    def converse(self, conversation_id: str | None = None, *,
+                 buffer: int = DEFAULT_BUFFER) -> SyncConversation:
+        """See :meth:`Client.converse`; use the result with ``with``. ``buffer`` as for
+        :meth:`converse_many`."""
+        if buffer < 1:
+            raise InputError(f"buffer must be at least 1, not {buffer}")
+        return SyncConversation(self, self._client.converse(conversation_id), buffer)
+
     def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
                       buffer: int = DEFAULT_BUFFER) -> SyncMultiplexedStream:
         """See :meth:`Client.converse_many`; use the result with ``with``.
@@ -164,20 +185,15 @@ class SyncClient:
                 self._run(events.aclose())
 
 
-class SyncMultiplexedStream:
-    """The blocking form of :class:`~midstream.client.MultiplexedStream`.
+class _ReadAhead(Generic[_Item]):
+    """A stream whose replies a task on the wrapper's loop reads ahead into a bounded buffer.
 
-    ``with`` opens the call. Queue events with :meth:`open`, :meth:`send`, :meth:`send_words`
-    and :meth:`close_channel`, send them with :meth:`flush`, read ``(channel, event)`` pairs
-    with :meth:`replies`. A background task on the wrapper's loop reads replies as they come
-    into a bounded buffer, so the caller may send for a while before reading; read between
-    flushes all the same: once the buffer and the transport's windows are full the server stops
-    taking frames and :meth:`flush` blocks until replies are read. Leaving the block
-    normally half-closes the call (the server finishes every open channel) and discards the
-    replies not read; leaving it by an exception cancels the call.
+    The subclasses give the blocking methods; this holds the reading: the task puts each reply
+    in an ``asyncio.Queue`` of ``buffer`` items and waits when it is full (so gRPC's flow
+    control holds the server back), and :meth:`_items` takes them from the caller's thread.
     """
 
-    def __init__(self, owner: SyncClient, stream: MultiplexedStream, buffer: int) -> None:
+    def __init__(self, owner: SyncClient, stream: _Stream[_Item], buffer: int) -> None:
         self._owner = owner
         self._stream = stream
         self._buffer = buffer
@@ -194,8 +210,8 @@ class SyncMultiplexedStream:
                  tb: TracebackType | None) -> None:
         try:
             if exc is None and not self._ended:
-                self.close()
-                for _ in self.replies():  # until the server ends the stream
+                self._owner._run(self._stream.close())
+                for _ in self._items(None):  # until the server ends the stream
                     pass
         finally:
             self._owner._run(self._stop(exc_type, exc, tb))
@@ -209,8 +225,8 @@ class SyncMultiplexedStream:
         assert self._queue is not None
         end: object = _END
         try:
-            async for reply in self._stream:
-                await self._queue.put(reply)
+            async for item in self._stream:
+                await self._queue.put(item)
         except MidstreamError as exc:
             end = exc
         await self._queue.put(end)
@@ -224,46 +240,7 @@ class SyncMultiplexedStream:
                     await task
         await self._stream.__aexit__(exc_type, exc, tb)
 
-    # --- queueing (the caller's thread; nothing else touches the queue between flushes) ------
-
-    def open(self, conversation_id: str | None = None) -> int:
-        """See :meth:`MultiplexedStream.open`."""
-        return self._stream.open(conversation_id)
-
-    def send(self, channel: int, event: InputEvent) -> None:
-        """See :meth:`MultiplexedStream.send`."""
-        self._stream.send(channel, event)
-
-    def send_words(self, channel: int, words: Sequence[AddWord]) -> None:
-        """See :meth:`MultiplexedStream.send_words`."""
-        self._stream.send_words(channel, words)
-
-    def close_channel(self, channel: int) -> None:
-        """See :meth:`MultiplexedStream.close_channel`."""
-        self._stream.close_channel(channel)
-
-    @property
-    def queued(self) -> int:
-        """Events queued for the next :meth:`flush`."""
-        return self._stream.queued
-
-    # --- sending and reading ------------------------------------------------------------------
-
-    def flush(self) -> None:
-        """See :meth:`MultiplexedStream.flush`; blocks until the frame is handed to gRPC."""
-        self._owner._run(self._stream.flush())
-
-    def close(self) -> None:
-        """See :meth:`MultiplexedStream.close`."""
-        self._owner._run(self._stream.close())
-
-    def replies(self, timeout: float | None = None) -> Iterator[Reply]:
-        """``(channel, event)`` pairs in arrival order, blocking between them.
-
-        Ends when the server ends the stream, or, with ``timeout``, when no reply came within
-        ``timeout`` seconds (the stream stays open: call again later). A failure of the whole
-        stream is raised once the replies before it were taken.
-        """
+    def _items(self, timeout: float | None) -> Iterator[_Item]:
         while not self._ended:
             item = self._owner._run(self._next(timeout))
             if item is _NOTHING:
@@ -274,13 +251,13 @@ class SyncMultiplexedStream:
             if isinstance(item, MidstreamError):
                 self._ended = True
                 raise item
-            yield cast(Reply, item)
+            yield cast(_Item, item)
 
     async def _next(self, timeout: float | None) -> object:
         # The pending get survives a timeout (it is not cancelled, so no reply is lost in the
         # race between a timeout and an arriving reply); the next call waits on it again.
         if self._queue is None:
-            raise UnavailableError("the multiplexed stream is not open: use 'with'")
+            raise UnavailableError("the stream is not open: use 'with'")
         if self._getter is None:
             self._getter = asyncio.ensure_future(self._queue.get())
         done, _ = await asyncio.wait((self._getter,), timeout=timeout)
@@ -289,3 +266,104 @@ class SyncMultiplexedStream:
         item = self._getter.result()
         self._getter = None
         return item
+
+
+class SyncConversation(_ReadAhead[ServerEvent]):
+    """The blocking form of :class:`~midstream.client.ConversationStream`.
+
+    ``with`` opens the conversation and waits for its welcome. Send with :meth:`send_words` and
+    friends; read with :meth:`events` (the welcome first, then one update per event that
+    changed a hypothesis, then :class:`~midstream.client.Ended`). Events are read ahead into a
+    bounded buffer as for :class:`SyncMultiplexedStream`. Leaving the block normally closes the
+    conversation and discards events not read; leaving it by an exception cancels the call.
+    """
+
+    def __init__(self, owner: SyncClient, stream: ConversationStream, buffer: int) -> None:
+        super().__init__(owner, stream, buffer)
+        self._conversation = stream
+
+    @property
+    def conversation_id(self) -> str:
+        """See :attr:`ConversationStream.conversation_id`."""
+        return self._conversation.conversation_id
+
+    def send(self, event: InputEvent) -> None:
+        """See :meth:`ConversationStream.send`."""
+        self._owner._run(self._conversation.send(event))
+
+    def send_words(self, words: Sequence[AddWord]) -> None:
+        """See :meth:`ConversationStream.send_words`."""
+        self._owner._run(self._conversation.send_words(words))
+
+    def hint(self, speaker: str, *, turn_end: bool = False) -> None:
+        """See :meth:`ConversationStream.hint`."""
+        self._owner._run(self._conversation.hint(speaker, turn_end=turn_end))
+
+    def close(self) -> None:
+        """See :meth:`ConversationStream.close`."""
+        self._owner._run(self._conversation.close())
+
+    def events(self, timeout: float | None = None) -> Iterator[ServerEvent]:
+        """Events in arrival order, blocking between them; ends as :meth:`SyncMultiplexedStream.
+        replies` does (the stream's end, or ``timeout`` seconds without an event)."""
+        return self._items(timeout)
+
+
+class SyncMultiplexedStream(_ReadAhead[Reply]):
+    """The blocking form of :class:`~midstream.client.MultiplexedStream`.
+
+    ``with`` opens the call. Queue events with :meth:`open`, :meth:`send`, :meth:`send_words`
+    and :meth:`close_channel`, send them with :meth:`flush`, read ``(channel, event)`` pairs
+    with :meth:`replies`. A background task on the wrapper's loop reads replies as they come
+    into a bounded buffer, so the caller may send for a while before reading; read between
+    flushes all the same: once the buffer and the transport's windows are full the server stops
+    taking frames and :meth:`flush` blocks until replies are read. Leaving the block normally
+    half-closes the call (the server finishes every open channel) and discards the replies not
+    read; leaving it by an exception cancels the call.
+    """
+
+    def __init__(self, owner: SyncClient, stream: MultiplexedStream, buffer: int) -> None:
+        super().__init__(owner, stream, buffer)
+        self._many = stream
+
+    # --- queueing (the caller's thread; nothing else touches the queue between flushes) ------
+
+    def open(self, conversation_id: str | None = None) -> int:
+        """See :meth:`MultiplexedStream.open`."""
+        return self._many.open(conversation_id)
+
+    def send(self, channel: int, event: InputEvent) -> None:
+        """See :meth:`MultiplexedStream.send`."""
+        self._many.send(channel, event)
+
+    def send_words(self, channel: int, words: Sequence[AddWord]) -> None:
+        """See :meth:`MultiplexedStream.send_words`."""
+        self._many.send_words(channel, words)
+
+    def close_channel(self, channel: int) -> None:
+        """See :meth:`MultiplexedStream.close_channel`."""
+        self._many.close_channel(channel)
+
+    @property
+    def queued(self) -> int:
+        """Events queued for the next :meth:`flush`."""
+        return self._many.queued
+
+    # --- sending and reading ------------------------------------------------------------------
+
+    def flush(self) -> None:
+        """See :meth:`MultiplexedStream.flush`; blocks until the frame is handed to gRPC."""
+        self._owner._run(self._many.flush())
+
+    def close(self) -> None:
+        """See :meth:`MultiplexedStream.close`."""
+        self._owner._run(self._many.close())
+
+    def replies(self, timeout: float | None = None) -> Iterator[Reply]:
+        """``(channel, event)`` pairs in arrival order, blocking between them.
+
+        Ends when the server ends the stream, or, with ``timeout``, when no reply came within
+        ``timeout`` seconds (the stream stays open: call again later). A failure of the whole
+        stream is raised once the replies before it were taken.
+        """
+        return self._items(timeout)

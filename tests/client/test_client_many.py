@@ -161,3 +161,29 @@ def test_leaving_the_sync_wrapper_early_discards_unread_replies(served: Served) 
             mux.flush()
         # The block closed the call and drained it; the client still works.
         assert client.describe_models()
+
+
+def test_the_sync_conversation_yields_what_converse_yields(served: Served) -> None:
+    events = [timed.event for timed in demo_events()]
+    with SyncClient(served.target) as client:
+        with pytest.raises(InputError, match="buffer"):
+            client.converse(buffer=0)
+        # A buffer of two: the reader waits for the caller, which reads only at the end.
+        with client.converse("sync-one", buffer=2) as conversation:
+            assert conversation.conversation_id == "sync-one"
+            for event in events:
+                conversation.send(event)
+            conversation.close()
+            got: list[Received] = list(conversation.events())
+        with client.converse("sync-two") as conversation:
+            conversation.send(events[0])
+            # Welcome and one update, then a quiet spell ends the iteration; the stream stays
+            # open and the block closes it, discarding what follows.
+            early = list(conversation.events(timeout=1.0))
+    assert isinstance(got[0], Welcome) and got[0].conversation_id == "sync-one"
+    ended = got[-1]
+    assert isinstance(ended, Ended) and ended.reason is EndReason.CLOSED
+    updates = [e for e in got if isinstance(e, HypothesisUpdate)]
+    assert [u.seq for u in updates] == list(range(1, len(updates) + 1))
+    assert ended.last_seq == updates[-1].seq and updates[-1].conversation_final
+    assert [type(e) for e in early] == [Welcome, HypothesisUpdate]
