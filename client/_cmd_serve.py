@@ -85,7 +85,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              "decoder's, 10); smaller: final sooner, decided on fewer later "
                              "words")
     parser.add_argument("--no-settle", action="store_true",
-                        help="make every label final exactly --lag words late instead")
+                        help="make every label final exactly --lag words late instead "
+                             "(without --lag: once its features are complete, one word more "
+                             "than the model reads to the right)")
     parser.add_argument("--gc-thresholds", default=_GC_THRESHOLDS, metavar="G0,G1,G2",
                         help="the garbage collector's thresholds once serving (default "
                              f"{_GC_THRESHOLDS}: only young collections run by themselves; "
