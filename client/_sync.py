@@ -58,6 +58,7 @@ class _Stream(Protocol[_Yielded_co]):
     def __aiter__(self) -> AsyncIterator[_Yielded_co]: ...
     async def close(self) -> None: ...
 
+
 #: Replies read ahead of the caller by default (see :meth:`SyncClient.converse_many`).
 DEFAULT_BUFFER = 1024
 _END = object()  # the reply stream ended normally
@@ -150,8 +151,6 @@ class SyncClient:
                  buffer: int = DEFAULT_BUFFER) -> SyncConversation:
         """See :meth:`Client.converse`; use the result with ``with``. ``buffer`` as for
         :meth:`converse_many`."""
-        if buffer < 1:
-            raise InputError(f"buffer must be at least 1, not {buffer}")
         return SyncConversation(self, self._client.converse(conversation_id), buffer)
 
     def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
@@ -161,8 +160,6 @@ class SyncClient:
         ``buffer``: replies read ahead of the caller at most; when that many wait unread, the
         stream stops reading and gRPC's flow control holds the server back.
         """
-        if buffer < 1:
-            raise InputError(f"buffer must be at least 1, not {buffer}")
         return SyncMultiplexedStream(self, self._client.converse_many(frame_events=frame_events),
                                      buffer)
 
@@ -194,6 +191,8 @@ class _ReadAhead(Generic[_Item]):
     """
 
     def __init__(self, owner: SyncClient, stream: _Stream[_Item], buffer: int) -> None:
+        if buffer < 1:
+            raise InputError(f"buffer must be at least 1, not {buffer}")
         self._owner = owner
         self._stream = stream
         self._buffer = buffer
@@ -304,8 +303,11 @@ class SyncConversation(_ReadAhead[ServerEvent]):
         self._owner._run(self._conversation.close())
 
     def events(self, timeout: float | None = None) -> Iterator[ServerEvent]:
-        """Events in arrival order, blocking between them; ends as :meth:`SyncMultiplexedStream.
-        replies` does (the stream's end, or ``timeout`` seconds without an event)."""
+        """Events in arrival order, blocking between them.
+
+        Ends when the server ends the stream, or, with ``timeout``, when no event came within
+        ``timeout`` seconds (the stream stays open: call again later).
+        """
         return self._items(timeout)
 
 

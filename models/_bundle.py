@@ -102,11 +102,6 @@ class ModelBundle:
         """The models in this bundle, word model first."""
         return self._infos
 
-    @property
-    def decoder(self) -> DecoderConfig:
-        """How this bundle's engines trade a word's finality against its stability."""
-        return self._decoder
-
     def with_decoder(self, decoder: DecoderConfig) -> ModelBundle:
         """The same loaded models, making engines whose decoders use ``decoder`` (cheap)."""
         return ModelBundle(word_model=self._word_model, function_tagger=self._function_tagger,
