@@ -36,7 +36,8 @@ from midstream._types import (
 )
 from midstream.corpora._normalise import normalise_token
 from midstream.models._decoder import ChannelDecoder, TokenState
-from midstream.models._functions import FunctionGuess, FunctionTagger, UtteranceView, WordsMemo
+from midstream.models._functions import FunctionGuess, FunctionTagger, WordsMemo
+from midstream.models._views import UtteranceView
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

@@ -35,6 +35,7 @@ from midstream._types import (
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
 from midstream.models._lattice import chain_carry, chain_end_step, exp_into
+from midstream.models._views import UtteranceView, check_view
 
 #: Feature-dictionary type the CRF adapter takes: attribute name to value.
 Features = dict[str, float]
@@ -52,37 +53,6 @@ MAX_FEATURE_WORDS = 40
 
 _BOS = "<s>"
 _EOS = "</s>"
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class UtteranceView:
-    """One utterance as the function tagger sees it.
-
-    Parameters
-    ----------
-    speaker
-        Speaker id; only equality with the previous utterance's speaker is used.
-    words
-        The cleaned words, lower case, in order (disfluent words already removed).
-    removed
-        How many words were removed as filler, editing term, reparandum or restart.
-    complete
-        ``False`` while the utterance may still grow; ``True`` once it has ended (an abandoned
-        utterance too: a live stream cannot tell abandoned from ended, so training does not
-        either).
-    """
-
-    speaker: str
-    words: tuple[str, ...]
-    removed: int = 0
-    complete: bool = True
-
-    def prefix(self, n: int) -> UtteranceView:
-        """The view after only the first ``n`` cleaned words (incomplete when ``n`` is short)."""
-        if n >= len(self.words):
-            return self
-        return UtteranceView(speaker=self.speaker, words=self.words[:n], removed=self.removed,
-                             complete=False)
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -517,18 +487,6 @@ WINDOW_CACHE_SIZE = 512
 #: (about two open utterances per live conversation). An entry holds at most
 #: ``6 * MAX_FEATURE_WORDS + 10`` row numbers. Documented limit.
 NGRAM_CACHE_SIZE = 1024
-
-
-def check_view(view: object) -> UtteranceView:
-    """Return ``view`` if it is a well-formed :class:`UtteranceView`, else raise InputError."""
-    if not isinstance(view, UtteranceView):
-        raise InputError(f"expected an UtteranceView, got {type(view).__name__}")
-    words = view.words
-    if not isinstance(words, tuple) or not all(map(isinstance, words, itertools.repeat(str))):
-        raise InputError("UtteranceView.words must be a tuple of strings")
-    if view.removed < 0:
-        raise InputError(f"UtteranceView.removed must be >= 0, got {view.removed}")
-    return view
 
 
 #: Label schemes a function model is trained on.

@@ -28,11 +28,11 @@ from midstream.models._functions import (
     Features,
     FunctionFeatureConfig,
     FunctionTagger,
-    UtteranceView,
     clean_view,
     conversation_views,
     utterance_features,
 )
+from midstream.models._views import UtteranceView
 
 _log = logging.getLogger(__name__)
 

@@ -26,12 +26,8 @@ from pathlib import Path
 
 from midstream.corpora import read_corpus
 from midstream.models._artifact import load_artifact
-from midstream.models._functions import (
-    FunctionTagger,
-    UtteranceView,
-    clean_view,
-    utterance_features,
-)
+from midstream.models._functions import FunctionTagger, clean_view, utterance_features
+from midstream.models._views import UtteranceView
 
 REPO = Path(__file__).resolve().parent.parent
 

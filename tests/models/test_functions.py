@@ -19,7 +19,6 @@ from midstream.models._functions import (
     MAX_FEATURE_WORDS,
     FunctionFeatureConfig,
     FunctionTagger,
-    UtteranceView,
     clean_view,
     conversation_views,
     sequence_features,
@@ -31,6 +30,7 @@ from midstream.models._train_functions import (
     conversation_folds,
     train_function_model,
 )
+from midstream.models._views import UtteranceView
 
 
 @pytest.fixture(scope="module")

@@ -32,12 +32,12 @@ from midstream.models._functions import (
     ContextWindow,
     FunctionGuess,
     FunctionTagger,
-    UtteranceView,
     WordsMemo,
     clean_view,
     conversation_views,
     sequence_features,
 )
+from midstream.models._views import UtteranceView
 
 SHIPPED = Path(__file__).resolve().parents[2] / "models" / "weights" / "functions-swbd42.msm"
 
