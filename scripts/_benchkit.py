@@ -13,6 +13,8 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from midstream._build import build_name
+
 REPO = Path(__file__).resolve().parent.parent
 WEIGHTS = REPO / "models" / "weights"
 
@@ -93,6 +95,7 @@ def machine() -> dict[str, Any]:
         "cpus_usable": len(os.sched_getaffinity(0)),
         "cpu_model": model,
         "python": platform.python_version(),
+        "build": build_name(),
         "platform": platform.platform(),
         "loadavg": os.getloadavg(),
     }

@@ -90,7 +90,8 @@ def main() -> int:
     script, source = load_script(args.corpus or corpora_root() / "swda", args.split,
                                  limit=2_000 if args.smoke else 20_000)
     info = machine()
-    print(f"machine: {info['nproc']} CPUs ({info['cpu_model']}), Python {info['python']}, "
+    print(f"machine: {info['nproc']} CPUs ({info['cpu_model']}), Python {info['python']} "
+          f"({info['build']} build), "
           f"load average {' '.join(f'{x:.2f}' for x in info['loadavg'])}")
     print(f"models: {models_note}")
 

@@ -239,7 +239,8 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "",
         "## Machine",
         "",
-        f"- {m0['nproc']} CPUs: {m0['cpu_model']}; Python {m0['python']}; {m0['platform']}",
+        f"- {m0['nproc']} CPUs: {m0['cpu_model']}; Python {m0['python']}, "
+        f"{m0.get('build', 'source')} build; {m0['platform']}",
         f"- load average (1 / 5 / 15 min) before the run: {_load(m0)}; after: {_load(m1)}; "
         f"CPU pressure (share of the last minute some runnable task waited for a CPU, "
         f"/proc/pressure/cpu) before: {m0.get('cpu_pressure_avg60')}%, after: "

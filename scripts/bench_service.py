@@ -199,7 +199,8 @@ def main() -> int:
     script, source = load_script(corpus, args.split,
                                  limit=2_000 if args.smoke else 50_000)
     info = machine()
-    print(f"machine: {info['nproc']} CPUs ({info['cpu_model']}), Python {info['python']}, "
+    print(f"machine: {info['nproc']} CPUs ({info['cpu_model']}), Python {info['python']} "
+          f"({info['build']} build), "
           f"load average {' '.join(f'{x:.2f}' for x in info['loadavg'])}, CPU pressure "
           f"(some, avg60) {info['cpu_pressure_avg60']}%")
     print(f"models: {models_note}")

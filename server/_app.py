@@ -21,6 +21,7 @@ from types import TracebackType
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection
+from midstream._build import build_name
 from midstream._errors import InputError, UnavailableError
 from midstream.server._auth import BearerTokenInterceptor
 from midstream.server._config import ServerConfig
@@ -164,8 +165,8 @@ class MidstreamServer:
                 await self.stop(0)
                 raise UnavailableError(f"cannot serve metrics on port "
                                        f"{self.config.metrics_port}: {exc}") from exc
-        _log.info("serving on %s:%d (%s)%s", self.config.host, port,
-                  "TLS" if credentials else "plaintext",
+        _log.info("serving on %s:%d (%s, %s build)%s", self.config.host, port,
+                  "TLS" if credentials else "plaintext", build_name(),
                   f", metrics on port {self._metrics_port}" if self._metrics_port else "")
 
     async def stop(self, grace: float | None = None) -> None:
