@@ -21,7 +21,7 @@ from types import TracebackType
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection
-from midstream._build import build_name
+from midstream._build import build_name, compiled_modules
 from midstream._errors import InputError, UnavailableError
 from midstream.server._auth import BearerTokenInterceptor
 from midstream.server._config import ServerConfig
@@ -165,8 +165,13 @@ class MidstreamServer:
                 await self.stop(0)
                 raise UnavailableError(f"cannot serve metrics on port "
                                        f"{self.config.metrics_port}: {exc}") from exc
+        build = build_name()
+        if build == "mixed":
+            _log.warning("only some per-word modules are compiled (%s): a stale or partial "
+                         "install; reinstall the compiled build or the plain one",
+                         ", ".join(compiled_modules()))
         _log.info("serving on %s:%d (%s, %s build)%s", self.config.host, port,
-                  "TLS" if credentials else "plaintext", build_name(),
+                  "TLS" if credentials else "plaintext", build,
                   f", metrics on port {self._metrics_port}" if self._metrics_port else "")
 
     async def stop(self, grace: float | None = None) -> None:
