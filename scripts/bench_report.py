@@ -361,6 +361,10 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "",
         "## Reproduce",
         "",
+        *(["This page measured the compiled build (README, \"The compiled build\"): install it, "
+           "or let `./scripts/test` leave one in `build/compiled` and run each command below "
+           "with `PYTHONPATH=build/compiled` in front.", ""]
+          if m0.get("build") == "compiled" else []),
         "```",
         commands.get("report", ".venv/bin/python scripts/bench_report.py")
         + "   # everything, writes this page",
