@@ -20,6 +20,9 @@ word's scheduled time (the wait for the next frame included), not from the write
 
 Latencies include the load generator's own delays: when its CPU use nears 100 % (shown in the
 report), the figures describe the generator, not the server; run it on another core or host.
+On a virtual machine they also include the hypervisor's: the report gives each CPU's steal time
+over the window (time the host ran other guests on it) and warns when it is large enough to
+move the tails.
 """
 
 from __future__ import annotations
@@ -43,6 +46,7 @@ from midstream._errors import CorpusNotFoundError, InputError, UnavailableError
 from midstream.client._common import DEFAULT_TARGET
 from midstream.client._load import (
     DEFAULT_TICK_S,
+    STEAL_NOTABLE_PERCENT,
     LoadConfig,
     ProcessProbe,
     WordScript,
@@ -278,6 +282,14 @@ def _print(s: dict[str, Any]) -> None:
     if lag["p99"] > _LAG_WARN_MS or s["client_cpu_percent"] > _CPU_WARN_PERCENT:
         print(f"  warning      the load generator fell behind its schedule (send lag p99 "
               f"{lag['p99']:.0f} ms) or ran out of CPU: latencies include its own delays")
+    steal = s["steal"]
+    if steal is not None:
+        cpus = ", ".join(f"cpu{n} {ms:.0f}" for n, ms in enumerate(steal["per_cpu_ms"]))
+        print(f"  steal ms     {cpus}   (this host's CPUs held by the hypervisor for other "
+              f"guests; at most {steal['max_percent']:.2f} % of the window)")
+        if steal["max_percent"] > STEAL_NOTABLE_PERCENT:
+            print("  warning      the hypervisor took CPU time from this machine during the "
+                  "window: latency tails include those stalls")
     errors = ", ".join(f"{k} {v}" for k, v in s["errors"].items()) or "none"
     print(f"  errors       {errors}")
     server = s["server"]

@@ -16,7 +16,10 @@ write, so the wait for the next tick is inside the figure. The ``describe`` work
 one ``DescribeModels`` call per stream per tick that has words due, timed the same way: the
 transport round trip of the frames.
 
-:class:`ProcessProbe` reads a local server's CPU time and resident memory from ``/proc``.
+:class:`ProcessProbe` reads a local server's CPU time and resident memory from ``/proc``;
+:func:`read_steal` reads how long a virtual machine's hypervisor kept each of this host's CPUs
+for other guests (steal time), which stalls the server and the generator alike and shows in the
+latency tails although neither did more work.
 
 This module talks protobuf directly (the :class:`~midstream.client.Client` converts every
 update to domain types, which would make the generator, not the server, the bottleneck). It
@@ -53,6 +56,11 @@ OPEN_TIMEOUT = "OPEN_TIMEOUT"
 SETTLE_TIMEOUT = "SETTLE_TIMEOUT"
 #: Seconds a conversation waits for updates of its last words after it stopped sending.
 _SETTLE_S = 10.0
+#: Steal time (share of the window, on any CPU) above which a run counts as disturbed by the
+#: hypervisor. Set from this project's own runs on a 2-CPU virtual machine (no source): windows
+#: at 0.05 % or less kept the tails of quiet runs, windows from 0.4 % up came with p99s several
+#: times larger at the same load.
+STEAL_NOTABLE_PERCENT = 0.1
 #: Default seconds between two frames of a multiplexed stream (common practice for audio
 #: front ends is 10-20 ms packets, from memory; a word due just after a frame waits this long).
 DEFAULT_TICK_S = 0.01
@@ -178,6 +186,35 @@ class ProcessProbe:
                              rss_bytes=int(statm.split()[1]) * self._page)
 
 
+def read_steal() -> tuple[float, ...] | None:
+    """Seconds of steal time of each CPU of this host since boot (``cpu0`` first), or None.
+
+    Steal is the time a virtual machine's CPU was ready to run but the hypervisor ran another
+    guest (the 8th counter of each ``cpuN`` line of ``/proc/stat``, in clock ticks). None where
+    ``/proc/stat`` is missing or has no steal counter (not Linux, or a kernel before 2.6.11).
+    """
+    try:
+        lines = Path("/proc/stat").read_text(encoding="ascii").splitlines()
+    except OSError:
+        return None
+    return parse_steal(lines, os.sysconf("SC_CLK_TCK"))
+
+
+def parse_steal(lines: Sequence[str], ticks_per_s: int) -> tuple[float, ...] | None:
+    """The per-CPU steal seconds in ``/proc/stat`` lines (the all-CPU ``cpu`` line is
+    skipped); None when a CPU line has no steal counter or there is none."""
+    steal: list[float] = []
+    for line in lines:
+        name, _, rest = line.partition(" ")
+        if not (name.startswith("cpu") and name[3:].isdigit()):
+            continue
+        counters = rest.split()
+        if len(counters) < 8:
+            return None
+        steal.append(int(counters[7]) / ticks_per_s)
+    return tuple(steal) if steal else None
+
+
 @dataclass(slots=True, kw_only=True)
 class LoadResult:
     """What one load run measured; latencies in seconds."""
@@ -195,6 +232,9 @@ class LoadResult:
     server_before: ProcessSample | None = None
     server_open: ProcessSample | None = None
     server_after: ProcessSample | None = None
+    #: Per-CPU steal seconds (:func:`read_steal`) when the window opened and when it closed.
+    steal_open: tuple[float, ...] | None = None
+    steal_after: tuple[float, ...] | None = None
 
     @property
     def achieved_wps(self) -> float:
@@ -231,7 +271,17 @@ class LoadResult:
             if self.measured_s > 0 else 0.0,
         }
         out["server"] = self._server_summary()
+        out["steal"] = self._steal_summary()
         return out
+
+    def _steal_summary(self) -> dict[str, Any] | None:
+        opened, after = self.steal_open, self.steal_after
+        if opened is None or after is None or len(opened) != len(after) \
+                or self.measured_s <= 0:
+            return None
+        per_cpu = [round(1000 * (b - a), 1) for a, b in zip(opened, after, strict=True)]
+        return {"per_cpu_ms": per_cpu,
+                "max_percent": round(max(per_cpu) / 10 / self.measured_s, 3)}
 
     def _server_summary(self) -> dict[str, Any] | None:
         before, opened, after = self.server_before, self.server_open, self.server_after
@@ -626,6 +676,7 @@ async def run_load(config: LoadConfig, script: WordScript, *,
             result.errors[OPEN_TIMEOUT] += run.opening
             run.all_open.set()
         result.server_open = probe.sample() if probe is not None else None
+        result.steal_open = read_steal()
         cpu = time.process_time()
         run.start = loop.time()
         run.stop = run.start + config.seconds
@@ -634,6 +685,7 @@ async def run_load(config: LoadConfig, script: WordScript, *,
         result.measured_s = loop.time() - run.start
         result.client_cpu_s = time.process_time() - cpu
         result.server_after = probe.sample() if probe is not None else None
+        result.steal_after = read_steal()
         await asyncio.gather(*tasks, return_exceptions=False)
     finally:
         for channel in channels:

@@ -152,6 +152,20 @@ def _load(info: dict[str, Any]) -> str:
     return " / ".join(f"{x:.2f}" for x in info["loadavg"])
 
 
+def _quiet_row(service: dict[str, Any], what: str) -> list[str]:
+    """A headline row for the runs the hypervisor left alone, when steal was measured and
+    some run was disturbed (otherwise it would repeat the row above)."""
+    quiet, runs = service.get("quiet_runs"), service.get("runs")
+    if quiet is None or quiet == runs:
+        return []
+    largest = service["largest_passing_quiet"]
+    counts = "; ".join(f"N={n}: {q['met']} of {q['of']} quiet runs met"
+                       for n, q in quiet.items())
+    return [f"| {what}, counting only runs with steal ≤ {service['steal_notable_percent']:g} % "
+            f"of the window on the server's and the generator's cores ({counts or 'none'}) "
+            f"| **{largest}** conversations ({largest * service['rate']:g} words/s) | - |"]
+
+
 def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[str]:
     """The ConverseMany sweep: its command, how it differs, its table."""
     largest = service["largest_passing"]
@@ -258,10 +272,12 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         f"| largest N with p99 word→hypothesis ≤ {service['p99_budget_ms']:g} ms at "
         f"{service['rate']:g} words/s for {service['seconds']:g} s, no errors, server on one "
         f"core | **{largest}** conversations ({largest * service['rate']:g} words/s) | 1,000 |",
+        *_quiet_row(service, "the same"),
         *([f"| the same, conversations multiplexed over "
            f"{_streams(multiplexed.get('channels', 4))} "
            f"| **{multiplexed['largest_passing']}** conversations "
-           f"({multiplexed['largest_passing'] * multiplexed['rate']:g} words/s) | 1,000 |"]
+           f"({multiplexed['largest_passing'] * multiplexed['rate']:g} words/s) | 1,000 |",
+           *_quiet_row(multiplexed, "the same, multiplexed")]
           if multiplexed else []),
         f"| p99 latency ÷ p99 of the trivial RPC at the same N and rate, at the largest N "
         f"the server kept up with (N={steady['conversations']}) "
@@ -300,7 +316,11 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "words answered in it. *Generator CPU* near 100 %, or a *generator send lag* (how late "
         "the generator wrote words against its schedule) well above a few ms, means the load "
         "generator itself was short of CPU: its stalls are then inside the latencies, which "
-        "no longer describe the server alone. Stepping goes on while the server keeps up (no "
+        "no longer describe the server alone. *Steal* is the time the hypervisor ran other "
+        "guests on the server's and the generator's cores during the window (`/proc/stat`): "
+        "both processes stall, so it lands in the tails though neither did more work; a run "
+        "with more than " + f"{service.get('steal_notable_percent', 0.1):g}" + " % of the "
+        "window on either core counts as disturbed. Stepping goes on while the server keeps up (no "
         "errors, at least 90 % of the offered words answered in the window), so CPU figures "
         "exist at real load even when the latency budget is missed.",
         "",

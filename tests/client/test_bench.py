@@ -26,6 +26,8 @@ from midstream.client._load import (
     ProcessProbe,
     WordScript,
     _distribution,
+    parse_steal,
+    read_steal,
     run_load,
 )
 
@@ -35,7 +37,7 @@ _LOAD_KEYS = {
     "target", "workload", "conversations", "rate_per_conversation", "offered_wps", "seconds",
     "channels", "opened", "words_sent", "words_answered", "answered_in_window", "measured_s",
     "achieved_wps", "latency_ms", "send_lag_ms", "errors", "error_count",
-    "client_cpu_percent", "server", "corpus",
+    "client_cpu_percent", "server", "steal", "corpus",
 }
 _DISTRIBUTION_KEYS = {"p50", "p95", "p99", "max", "mean"}
 _SERVER_KEYS = {"cpu_percent", "rss_before_bytes", "rss_open_bytes", "rss_after_bytes",
@@ -66,6 +68,10 @@ def _check_load(summary: dict[str, Any], *, local: bool) -> None:
     assert summary["words_answered"] == summary["words_sent"]
     assert summary["latency_ms"]["p50"] <= summary["latency_ms"]["p99"] \
         <= summary["latency_ms"]["max"]
+    steal = summary["steal"]
+    if steal is not None:  # a Linux host: one figure per CPU, none negative
+        assert len(steal["per_cpu_ms"]) == os.cpu_count()
+        assert min(steal["per_cpu_ms"]) >= 0 and steal["max_percent"] >= 0
     if local:
         assert summary["server"].keys() == _SERVER_KEYS
         assert summary["server"]["rss_before_bytes"] > 0
@@ -211,6 +217,19 @@ def test_process_probe_reads_proc() -> None:
         ProcessProbe(2**22 + 12345).sample()
 
 
+def test_steal_is_read_per_cpu_from_proc_stat() -> None:
+    # /proc/stat layout (proc(5)): "cpuN user nice system idle iowait irq softirq steal ...",
+    # in clock ticks; the first line sums every CPU and is not one of them.
+    lines = ["cpu  9 0 9 9 0 0 0 7 0 0", "cpu0 4 0 4 4 0 0 0 3 0 0",
+             "cpu1 5 0 5 5 0 0 0 4 0 0", "intr 1 2 3", "ctxt 5"]
+    assert parse_steal(lines, 100) == (0.03, 0.04)
+    assert parse_steal(["cpu0 4 0 4 4 0 0 0"], 100) is None  # a kernel without the counter
+    assert parse_steal(["intr 1"], 100) is None
+    if os.path.exists("/proc/stat"):
+        steal = read_steal()
+        assert steal is not None and len(steal) == os.cpu_count()
+
+
 def _script(name: str, *argv: str, tmp_path: Path) -> dict[str, Any]:
     out = tmp_path / f"{name}.json"
     done = subprocess.run([sys.executable, str(REPO / "scripts" / name), "--smoke", "--json",
@@ -300,3 +319,27 @@ def test_bench_gc_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> Non
     assert [p["thresholds"] for p in result["passes"]] == [
         [700, 10, 10], [700, 10, 1000000], [700, 1000000, 1000000]]
     assert all(set(p["generations"]) == {"0", "1", "2"} for p in result["passes"])
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
+                                            tmp_path: Path) -> None:
+    # The whole pipeline behind docs/benchmarks.md, every script in its smoke mode.
+    page = tmp_path / "benchmarks.md"
+    done = subprocess.run([sys.executable, str(REPO / "scripts" / "bench_report.py"), "--smoke",
+                           "--multiplex", "--models", str(models_dir), "--work",
+                           str(tmp_path / "work"), "--out", str(page)],
+                          capture_output=True, text=True, timeout=300, check=False,
+                          env=os.environ | {"MIDSTREAM_CORPORA": str(swda_dir.parent)})
+    assert done.returncode == 0, done.stderr
+    text = page.read_text(encoding="utf-8")
+    for heading in ("## Machine", "## Headline", "## Live conversations per server core",
+                    "## Live conversations per server core, multiplexed (ConverseMany)",
+                    "## Memory per idle live conversation", "## Word decoder alone",
+                    "## Reproduce"):
+        assert f"\n{heading}\n" in text
+    # Both service tables carry the steal column and one row per step (smoke: one step).
+    tables = [line for line in text.splitlines() if line.startswith("| N | offered")]
+    assert len(tables) == 2 and all("steal ms" in line for line in tables)
+    assert len([line for line in text.splitlines() if line.startswith("| 4 | 12 |")]) == 2
