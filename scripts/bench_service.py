@@ -175,10 +175,10 @@ def runs_by_size(results: list[dict[str, Any]], *, quiet_only: bool = False
 def disturbed(step: dict[str, Any]) -> bool | None:
     """Whether steal on the server's or the generator's core passed the notable share of the
     window; None when steal was not measured (not Linux, or JSON from before it was)."""
-    steal, seconds = step.get("steal_ms"), step["load"]["measured_s"]
+    steal, seconds = step.get("steal_ms"), float(step["load"]["measured_s"])
     if steal is None or seconds <= 0:
         return None
-    worst = float(max(steal["server_core"], steal["generator_core"]))
+    worst: float = max(steal["server_core"], steal["generator_core"])
     return worst / 10 / seconds > STEAL_NOTABLE_PERCENT
 
 
