@@ -161,9 +161,11 @@ def _quiet_row(service: dict[str, Any], what: str) -> list[str]:
     largest = service["largest_passing_quiet"]
     counts = "; ".join(f"N={n}: {q['met']} of {q['of']} quiet runs met"
                        for n, q in quiet.items())
+    result = (f"**{largest}** conversations ({largest * service['rate']:g} words/s)" if counts
+              else "no run was that quiet")
     return [f"| {what}, counting only runs with steal ≤ {service['steal_notable_percent']:g} % "
-            f"of the window on the server's and the generator's cores ({counts or 'none'}) "
-            f"| **{largest}** conversations ({largest * service['rate']:g} words/s) | - |"]
+            f"of the window on the server's and the generator's cores"
+            f"{f' ({counts})' if counts else ''} | {result} | - |"]
 
 
 def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[str]:
