@@ -25,7 +25,7 @@ from midstream._build import build_name, compiled_modules
 from midstream._errors import InputError, UnavailableError
 from midstream.server._auth import BearerTokenInterceptor
 from midstream.server._config import ServerConfig
-from midstream.server._metrics import ServerMetrics
+from midstream.server._metrics import LoopLagProbe, ServerMetrics
 from midstream.server._models import Bundle, load_bundle, tune_bundle
 from midstream.server._servicer import MidstreamServicer
 from midstream.wire import midstream_pb2 as pb
@@ -54,6 +54,7 @@ class MidstreamServer:
         self.config = config
         self._bundle = bundle
         self.metrics = ServerMetrics()
+        self._loop_lag = LoopLagProbe(self.metrics.tally)
         self._server: grpc.aio.Server | None = None
         self._servicer: MidstreamServicer | None = None
         self._health: health.aio.HealthServicer | None = None
@@ -155,6 +156,7 @@ class MidstreamServer:
             raise UnavailableError(f"cannot listen on {address}")
         await server.start()
         self._server, self._port = server, port
+        self._loop_lag.start()
         for name in ("", SERVICE_NAME):
             await self._health.set(name, health_pb2.HealthCheckResponse.SERVING)
         if self.config.metrics_port is not None:
@@ -184,6 +186,7 @@ class MidstreamServer:
         """
         if self._stopped or self._server is None:
             self._stopped = True
+            self._loop_lag.stop()
             self.metrics.close()
             return
         self._stopped = True
@@ -195,6 +198,7 @@ class MidstreamServer:
         self._servicer.registry.close_all(pb.END_REASON_SERVER_SHUTDOWN)
         _log.info("stopping: finished %d live conversations, grace %.1f s", live, grace)
         await self._server.stop(grace)
+        self._loop_lag.stop()
         self.metrics.close()
 
     async def wait_for_termination(self) -> None:

@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 import asyncio
+import time
 import urllib.request
 
 import grpc
 import pytest
-from midstream.server._metrics import _LATENCY_BUCKETS, WordTally
+from midstream.server._metrics import _LAG_BUCKETS, _LATENCY_BUCKETS, LoopLagProbe, WordTally
 from prometheus_client import CollectorRegistry, Counter, Histogram
 from prometheus_client.parser import text_string_to_metric_families
 from server_kit import (  # noqa: F401 - fixtures are found by name
@@ -79,12 +80,16 @@ def test_word_tally_exposes_what_prometheus_clients_own_metrics_would() -> None:
     revisions = Counter("midstream_revisions", "r", registry=reference)
     latency = Histogram("midstream_update_latency_seconds", "l", buckets=_LATENCY_BUCKETS,
                         registry=reference)
+    lag = Histogram("midstream_loop_lag_seconds", "g", buckets=_LAG_BUCKETS,
+                    registry=reference)
     tally = WordTally()
     ours = CollectorRegistry()
     ours.register(tally)
     for seconds in (0.0, 0.0005, 0.00051, 0.003, 0.05, 0.7, 1.0, 3.5):
         latency.observe(seconds)
         tally.observe_latency(seconds)
+        lag.observe(seconds / 2)
+        tally.observe_loop_lag(seconds / 2)
     words.inc(7)
     tally.words += 7
     revisions.inc(2)
@@ -97,3 +102,35 @@ def test_word_tally_exposes_what_prometheus_clients_own_metrics_would() -> None:
                 if not s.name.endswith("_created")}
 
     assert samples(ours) == pytest.approx(samples(reference))
+
+
+async def test_loop_lag_probe_sees_a_blocked_loop() -> None:
+    # The probe's callback runs late by however long the loop was held: a 0.3 s block (the
+    # way a long synchronous step holds every conversation) is seen as one lag above 0.25 s.
+    # Only lower bounds: a busy test machine can only add lag.
+    tally = WordTally()
+    probe = LoopLagProbe(tally, interval=0.01)
+    probe.start()
+    await asyncio.sleep(0.1)
+    time.sleep(0.3)  # blocking the loop is the point
+    await asyncio.sleep(0.05)
+    probe.stop()
+    family = next(f for f in tally.collect() if f.name == "midstream_loop_lag_seconds")
+    buckets = {s.labels["le"]: s.value for s in family.samples if s.name.endswith("_bucket")}
+    total = buckets["+Inf"]
+    assert total >= 5  # about ten probes in 0.15 s of free loop
+    assert total - buckets["0.25"] >= 1
+    total_lag = next(s.value for s in family.samples if s.name.endswith("_sum"))
+    assert total_lag >= 0.28
+    count = total
+    await asyncio.sleep(0.05)  # stopped: no more observations
+    family = next(f for f in tally.collect() if f.name == "midstream_loop_lag_seconds")
+    assert next(s.value for s in family.samples if s.name.endswith("_count")) == count
+
+
+async def test_served_metrics_include_loop_lag(start_server: ServerFactory) -> None:
+    running = await start_server(metrics_port=0)
+    assert running.server.metrics_port
+    await asyncio.sleep(0.25)  # two or more probes at the default interval
+    scraped = await asyncio.to_thread(_scrape, running.server.metrics_port)
+    assert scraped[("midstream_loop_lag_seconds_count", ())] >= 1
