@@ -57,9 +57,9 @@ SETTLE_TIMEOUT = "SETTLE_TIMEOUT"
 #: Seconds a conversation waits for updates of its last words after it stopped sending.
 _SETTLE_S = 10.0
 #: Steal time (share of the window, on any CPU) above which a run counts as disturbed by the
-#: hypervisor. Set from this project's own runs on a 2-CPU virtual machine (no source): windows
-#: at 0.05 % or less kept the tails of quiet runs, windows from 0.4 % up came with p99s several
-#: times larger at the same load.
+#: hypervisor. Set from this project's own runs on a 2-CPU virtual machine (no source): the
+#: first four runs that recorded it met the latency budget at 0.05 % and missed it at 0.4 % and
+#: more; later runs met it at 1-3 % too. So it marks a run to read with care, not a failed one.
 STEAL_NOTABLE_PERCENT = 0.1
 #: Default seconds between two frames of a multiplexed stream (common practice for audio
 #: front ends is 10-20 ms packets, from memory; a word due just after a frame waits this long).
