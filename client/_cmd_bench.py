@@ -39,6 +39,7 @@ import subprocess
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -52,6 +53,7 @@ from midstream.client._load import (
     WordScript,
     run_load,
 )
+from midstream.client._scrape import MetricsProbe
 from midstream.corpora import read_corpus
 
 #: Words read from the corpus for the script (enough that conversations rarely repeat).
@@ -110,6 +112,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                        help="process id of a local server: report its CPU and memory")
     local.add_argument("--spawn", action="store_true",
                        help="start 'midstream serve' on a free local port for the run")
+    parser.add_argument("--server-metrics", default=None, metavar="URL",
+                        help="the server's metrics page (as 'midstream serve --metrics-port' "
+                             "prints it): report how late its event loop ran over the window "
+                             "(automatic with --spawn)")
     parser.add_argument("--models", type=Path, default=None, metavar="DIR",
                         help="with --spawn: the server's model folder (default: shipped)")
     parser.add_argument("--server-cpu", type=int, default=None, metavar="CORE",
@@ -156,10 +162,20 @@ def load_script(corpus: Path | None, split: str, *, limit: int = _SCRIPT_WORDS
                                     f"{total} words)"
 
 
+@dataclass(frozen=True, slots=True)
+class Spawned:
+    """A server :func:`spawn_server` started: its address, process id and metrics page."""
+
+    target: str
+    pid: int
+    metrics_url: str
+
+
 @contextmanager
 def spawn_server(*, models: Path | None, cpu: int | None, live: int,
-                 token: str | None) -> Iterator[tuple[str, int]]:
-    """Run ``midstream serve`` on a free local port; yield its (target, pid); stop it after.
+                 token: str | None) -> Iterator[Spawned]:
+    """Run ``midstream serve`` on a free local port, its metrics on another; yield where; stop
+    it after.
 
     Raises
     ------
@@ -167,7 +183,8 @@ def spawn_server(*, models: Path | None, cpu: int | None, live: int,
         When the server exits or does not report its address in time.
     """
     command = [sys.executable, "-m", "midstream.client._cli", "serve", "--host", "127.0.0.1",
-               "--port", "0", "--grace", "5", "--max-live-conversations", str(live)]
+               "--port", "0", "--grace", "5", "--max-live-conversations", str(live),
+               "--metrics-host", "127.0.0.1", "--metrics-port", "0"]
     if models is not None:
         command += ["--models", str(models)]
     env = dict(os.environ)
@@ -189,12 +206,15 @@ def spawn_server(*, models: Path | None, cpu: int | None, live: int,
             if not selector.select(timeout=_SPAWN_TIMEOUT_S):
                 raise UnavailableError(f"the spawned server did not start within "
                                        f"{_SPAWN_TIMEOUT_S:g} s")
+        # It prints "serving on ADDRESS", then "metrics on URL", once both are bound.
         line = process.stdout.readline().decode("utf-8", "replace").strip()
-        if not line.startswith("serving on "):
+        metrics = process.stdout.readline().decode("utf-8", "replace").strip()
+        if not (line.startswith("serving on ") and metrics.startswith("metrics on ")):
             code = process.wait(timeout=10)
             raise UnavailableError(f"the spawned server exited ({code}) before serving; run "
                                    f"'{' '.join(command)}' by hand to see why")
-        yield line.removeprefix("serving on "), process.pid
+        yield Spawned(target=line.removeprefix("serving on "), pid=process.pid,
+                      metrics_url=metrics.removeprefix("metrics on "))
     finally:
         if process.poll() is None:
             process.send_signal(signal.SIGTERM)
@@ -234,15 +254,19 @@ def run(args: argparse.Namespace) -> int:
         if args.tls:
             raise InputError("--spawn starts a plain local server: drop --tls")
         with spawn_server(models=args.models, cpu=args.server_cpu,
-                          live=max(256, args.conversations), token=token) as (target, pid):
-            config = configure(target)
-            result = asyncio.run(run_load(config, script, probe=ProcessProbe(pid)))
+                          live=max(256, args.conversations), token=token) as spawned:
+            config = configure(spawned.target)
+            result = asyncio.run(run_load(config, script, probe=ProcessProbe(spawned.pid),
+                                          lag_probe=MetricsProbe(spawned.metrics_url)))
     else:
         config = configure(args.server or os.environ.get("MIDSTREAM_SERVER") or DEFAULT_TARGET)
         probe = ProcessProbe(args.server_pid) if args.server_pid is not None else None
         if probe is not None:
             probe.sample()  # fail now, not after the run, when the pid is wrong
-        result = asyncio.run(run_load(config, script, probe=probe))
+        lag_probe = MetricsProbe(args.server_metrics) if args.server_metrics else None
+        if lag_probe is not None:
+            lag_probe.read()  # likewise for a wrong metrics address
+        result = asyncio.run(run_load(config, script, probe=probe, lag_probe=lag_probe))
     summary = result.summary()
     summary["corpus"] = source
     if args.json:
@@ -257,6 +281,17 @@ def run(args: argparse.Namespace) -> int:
 
 def _ms(value: float) -> str:
     return f"{value:.1f}" if math.isfinite(value) else "-"
+
+
+def bucket_text(bucket: list[float | None] | None) -> str:
+    """A histogram bucket ``[lower, upper]`` (ms) as text: ``"2-5"``, ``"> 2500"``."""
+    if bucket is None:
+        return "-"
+    lower, upper = bucket
+    if upper is None:
+        return f"> {lower:g}"
+    return f"{lower:g}-{upper:g}"
+
 
 
 def _print(s: dict[str, Any]) -> None:
@@ -290,6 +325,14 @@ def _print(s: dict[str, Any]) -> None:
         if steal["max_percent"] > STEAL_NOTABLE_PERCENT:
             print("  warning      the hypervisor took CPU time from this machine during the "
                   "window: latency tails include those stalls")
+    loop = s["server_loop_lag"]
+    if loop is not None:
+        if "error" in loop:
+            print(f"  loop lag     not measured: {loop['error']}")
+        elif loop["probes"]:
+            print(f"  loop lag ms  p50 {bucket_text(loop['p50_ms'])}  p99 "
+                  f"{bucket_text(loop['p99_ms'])}  worst {bucket_text(loop['max_ms'])}   (how "
+                  f"late the server's event loop ran a 0.1 s probe; {loop['probes']} probes)")
     errors = ", ".join(f"{k} {v}" for k, v in s["errors"].items()) or "none"
     print(f"  errors       {errors}")
     server = s["server"]

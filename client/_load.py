@@ -19,7 +19,9 @@ transport round trip of the frames.
 :class:`ProcessProbe` reads a local server's CPU time and resident memory from ``/proc``;
 :func:`read_steal` reads how long a virtual machine's hypervisor kept each of this host's CPUs
 for other guests (steal time), which stalls the server and the generator alike and shows in the
-latency tails although neither did more work.
+latency tails although neither did more work; a
+:class:`~midstream.client._scrape.MetricsProbe` reads how late the server's own event loop ran
+over the window, which tells a busy or stalled server from a slow transport or generator.
 
 This module talks protobuf directly (the :class:`~midstream.client.Client` converts every
 update to domain types, which would make the generator, not the server, the bottleneck). It
@@ -43,6 +45,7 @@ from typing import Any, Literal
 import grpc
 import grpc.aio
 from midstream._errors import InputError
+from midstream.client._scrape import Histogram, MetricsProbe
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 
@@ -235,6 +238,11 @@ class LoadResult:
     #: Per-CPU steal seconds (:func:`read_steal`) when the window opened and when it closed.
     steal_open: tuple[float, ...] | None = None
     steal_after: tuple[float, ...] | None = None
+    #: The server's loop-lag histogram (:class:`~midstream.client._scrape.MetricsProbe`) when
+    #: the window opened and when it closed, and why it could not be read, if it could not.
+    loop_lag_open: Histogram | None = None
+    loop_lag_after: Histogram | None = None
+    loop_lag_error: str | None = None
 
     @property
     def achieved_wps(self) -> float:
@@ -272,6 +280,27 @@ class LoadResult:
         }
         out["server"] = self._server_summary()
         out["steal"] = self._steal_summary()
+        out["server_loop_lag"] = self._loop_lag_summary()
+        return out
+
+    def _loop_lag_summary(self) -> dict[str, Any] | None:
+        """The window's loop-lag probes and the buckets (ms, ``[lower, upper]``, ``upper``
+        None past the last bucket) its p50, p99 and worst probe fell in."""
+        if self.loop_lag_error is not None:
+            return {"error": self.loop_lag_error}
+        opened, after = self.loop_lag_open, self.loop_lag_after
+        if opened is None or after is None:
+            return None
+        try:
+            window = after.since(opened)
+        except InputError as exc:
+            return {"error": str(exc)}
+        out: dict[str, Any] = {"probes": window.total}
+        for key, quantile in (("p50_ms", 0.5), ("p99_ms", 0.99), ("max_ms", 1.0)):
+            bucket = window.bucket_of(quantile)
+            out[key] = None if bucket is None else [
+                round(1000 * bucket[0], 3),
+                round(1000 * bucket[1], 3) if math.isfinite(bucket[1]) else None]
         return out
 
     def _steal_summary(self) -> dict[str, Any] | None:
@@ -639,13 +668,16 @@ async def _describe_ticks(run: _Run, stub: pb_grpc.MidstreamStub, numbers: list[
 
 
 async def run_load(config: LoadConfig, script: WordScript, *,
-                   probe: ProcessProbe | None = None) -> LoadResult:
+                   probe: ProcessProbe | None = None,
+                   lag_probe: MetricsProbe | None = None) -> LoadResult:
     """Run one load test and return its measurements.
 
     The conversations are opened over ``config.ramp_s`` seconds; sending starts once all are
     open (or failed to open), runs ``config.seconds`` seconds, then every conversation closes
     and waits up to a few seconds for the updates of its last words. ``probe`` samples a local
-    server before opening, once all are open and at the end of the sending window.
+    server before opening, once all are open and at the end of the sending window;
+    ``lag_probe`` reads the server's loop-lag histogram when the window opens and closes (a
+    failed read is recorded in the result, not raised: the run's other figures stand).
     """
     result = LoadResult(config=config)
     run = _Run(config, script, result)
@@ -677,6 +709,8 @@ async def run_load(config: LoadConfig, script: WordScript, *,
             run.all_open.set()
         result.server_open = probe.sample() if probe is not None else None
         result.steal_open = read_steal()
+        if lag_probe is not None:
+            result.loop_lag_open = await _read_lag(lag_probe, result)
         cpu = time.process_time()
         run.start = loop.time()
         run.stop = run.start + config.seconds
@@ -686,11 +720,22 @@ async def run_load(config: LoadConfig, script: WordScript, *,
         result.client_cpu_s = time.process_time() - cpu
         result.server_after = probe.sample() if probe is not None else None
         result.steal_after = read_steal()
+        if lag_probe is not None and result.loop_lag_error is None:
+            result.loop_lag_after = await _read_lag(lag_probe, result)
         await asyncio.gather(*tasks, return_exceptions=False)
     finally:
         for channel in channels:
             await channel.close()
     return result
+
+
+async def _read_lag(probe: MetricsProbe, result: LoadResult) -> Histogram | None:
+    # Off the event loop: the generator's sends must not wait for an HTTP read.
+    try:
+        return await asyncio.to_thread(probe.read)
+    except InputError as exc:
+        result.loop_lag_error = str(exc)
+        return None
 
 
 @dataclass(slots=True, kw_only=True)

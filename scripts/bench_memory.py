@@ -100,11 +100,12 @@ def main() -> int:
     def hold(*, bare: bool) -> dict[str, Any]:
         # A fresh server each time: RSS rarely shrinks, so one measure would hide the next.
         with spawn_server(models=models, cpu=args.server_core,
-                          live=max(256, args.conversations + 16), token=None) as (target, pid):
+                          live=max(256, args.conversations + 16), token=None) as spawned:
             return asyncio.run(hold_conversations(
-                LoadConfig(target=target, conversations=args.conversations,
+                LoadConfig(target=spawned.target, conversations=args.conversations,
                            ramp_s=min(10.0, args.conversations / 200), channels=args.channels),
-                script, words_each=args.words, probe=ProcessProbe(pid), bare=bare)).summary()
+                script, words_each=args.words, probe=ProcessProbe(spawned.pid),
+                bare=bare)).summary()
 
     held = hold(bare=False)
     bare = hold(bare=True)

@@ -322,7 +322,12 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "guests on the server's and the generator's cores during the window (`/proc/stat`): "
         "both processes stall, so it lands in the tails though neither did more work; a run "
         "with more than " + f"{service.get('steal_notable_percent', 0.1):g}" + " % of the "
-        "window on either core counts as disturbed. Stepping goes on while the server keeps up (no "
+        "window on either core counts as disturbed. *Server loop lag* is how late the server's "
+        "event loop ran a callback due every 0.1 s over the window (its "
+        "`midstream_loop_lag_seconds` histogram, read at the window's start and end; a "
+        "histogram gives the bucket a percentile fell in, so the cell is a range): a lag near "
+        "the budget means the server itself was busy or stalled, a small one puts a miss on "
+        "the transport or the generator. Stepping goes on while the server keeps up (no "
         "errors, at least 90 % of the offered words answered in the window), so CPU figures "
         "exist at real load even when the latency budget is missed.",
         "",
@@ -362,7 +367,9 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "",
         "`midstream bench` is the same load generator as a command. Point it at any server; "
         "give `--server-pid` when the server runs on the same host to get its CPU and memory, "
-        "or `--spawn` to start a local `midstream serve` for the run:",
+        "`--server-metrics URL` (its `midstream serve --metrics-port` page, any host) to get how "
+        "late its event loop ran, or `--spawn` to start a local `midstream serve` for the run "
+        "(both come with it):",
         "",
         "```",
         "midstream bench --target HOST:PORT --conversations 500 --rate 3 --seconds 60 \\",
@@ -371,6 +378,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "midstream bench --spawn --models DIR --server-cpu 0 --client-cpu 1 -n 200",
         "midstream bench --baseline ...      # DescribeModels at the same rate: transport only",
         "midstream bench --multiplex ...     # conversations over a few ConverseMany streams",
+        "midstream bench --target HOST:PORT --server-metrics http://HOST:9464/metrics ...",
         "midstream bench --smoke --spawn     # a few seconds, checks the setup",
         "```",
         "",
@@ -378,7 +386,9 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "hypothesis, errors by gRPC status (plus `OPEN_TIMEOUT` / `SETTLE_TIMEOUT`, the "
         "generator's own), the generator's CPU use (near 100 %: the figures describe the "
         "generator, move it to another core or host) and, for a local server, its CPU use and "
-        "RSS growth per open conversation. `midstream serve --max-live-conversations N` raises "
+        "RSS growth per open conversation; with its metrics page, the server's loop lag (a "
+        "lag near the latency budget says the server's core, not the network, is the limit). "
+        "`midstream serve --max-live-conversations N` raises "
         "the server's limit (default 256) for runs above it.",
         "",
         "## Reproduce",

@@ -40,7 +40,7 @@ from typing import Any
 
 from _benchkit import corpora_root, machine, models_folder, pin_self
 from midstream._types import Word
-from midstream.client._cmd_bench import load_script, spawn_server
+from midstream.client._cmd_bench import bucket_text, load_script, spawn_server
 from midstream.client._load import (
     DEFAULT_TICK_S,
     STEAL_NOTABLE_PERCENT,
@@ -49,6 +49,7 @@ from midstream.client._load import (
     WordScript,
     run_load,
 )
+from midstream.client._scrape import MetricsProbe
 from midstream.models import ModelBundle
 
 _FULL_STEPS: tuple[int, ...] = (100, 250, 500, 1000, 1500)
@@ -88,12 +89,13 @@ def one_step(args: argparse.Namespace, models: Path, script: WordScript, n: int,
     """One step: a fresh pinned server, the tagging load, then the transport baseline."""
     ramp = min(10.0, n / 100)
     with spawn_server(models=models, cpu=args.server_core, live=max(256, n),
-                      token=None) as (target, pid):
-        probe = ProcessProbe(pid)
+                      token=None) as spawned:
+        target, probe = spawned.target, ProcessProbe(spawned.pid)
         mode = {"multiplex": args.multiplex, "tick_s": args.tick_ms / 1000}
         load = asyncio.run(run_load(LoadConfig(
             target=target, conversations=n, rate=args.rate, seconds=args.seconds, ramp_s=ramp,
-            channels=args.channels, **mode), script, probe=probe)).summary()
+            channels=args.channels, **mode), script, probe=probe,
+            lag_probe=MetricsProbe(spawned.metrics_url))).summary()
         base = asyncio.run(run_load(LoadConfig(
             target=target, conversations=n, rate=args.rate, seconds=args.baseline_seconds,
             ramp_s=0.0, channels=args.channels, workload="describe", **mode), script,
@@ -134,8 +136,8 @@ def table(steps: list[dict[str, Any]]) -> list[str]:
         "| N | offered w/s | achieved w/s | p50 ms | p95 ms | p99 ms | errors | server CPU % "
         "| server CPU ms/word | KiB/conv (open) | baseline p50 / p99 ms | p99 / baseline p99 "
         "| generator CPU % | generator send lag p99 ms | steal ms server / generator core "
-        "| meets p99 |",
-        "|" + "---|" * 16,
+        "| server loop lag p99 / worst ms | meets p99 |",
+        "|" + "---|" * 17,
     ]
     for s in steps:
         load, base, server = s["load"], s["baseline"], s["load"]["server"]
@@ -148,12 +150,20 @@ def table(steps: list[dict[str, Any]]) -> list[str]:
             f"| {server['bytes_per_open_conversation'] / 1024:.1f} "
             f"| {blat['p50']:.1f} / {blat['p99']:.1f} | {s['p99_ratio_to_baseline']:.1f}x "
             f"| {load['client_cpu_percent']:.0f} | {load['send_lag_ms']['p99']:.1f} "
-            f"| {_steal_cell(s.get('steal_ms'))} | {'yes' if s['passed'] else 'no'} |")
+            f"| {_steal_cell(s.get('steal_ms'))} | {_lag_cell(load.get('server_loop_lag'))} "
+            f"| {'yes' if s['passed'] else 'no'} |")
     return lines
 
 
 def _steal_cell(steal: dict[str, float] | None) -> str:
     return "-" if steal is None else f"{steal['server_core']:.0f} / {steal['generator_core']:.0f}"
+
+
+def _lag_cell(lag: dict[str, Any] | None) -> str:
+    # Absent from JSON written before the loop lag was measured.
+    if lag is None or "error" in lag or not lag.get("probes"):
+        return "-"
+    return f"{bucket_text(lag['p99_ms'])} / {bucket_text(lag['max_ms'])}"
 
 
 def runs_by_size(results: list[dict[str, Any]], *, quiet_only: bool = False

@@ -37,7 +37,7 @@ _LOAD_KEYS = {
     "target", "workload", "conversations", "rate_per_conversation", "offered_wps", "seconds",
     "channels", "opened", "words_sent", "words_answered", "answered_in_window", "measured_s",
     "achieved_wps", "latency_ms", "send_lag_ms", "errors", "error_count",
-    "client_cpu_percent", "server", "steal", "corpus",
+    "client_cpu_percent", "server", "steal", "server_loop_lag", "corpus",
 }
 _DISTRIBUTION_KEYS = {"p50", "p95", "p99", "max", "mean"}
 _SERVER_KEYS = {"cpu_percent", "rss_before_bytes", "rss_open_bytes", "rss_after_bytes",
@@ -111,6 +111,14 @@ def test_bench_spawns_its_own_server(models_dir: Path, swda_dir: Path,
     summary = _bench(["--spawn", "--models", str(models_dir), "--corpus", str(swda_dir)],
                      capsys)
     _check_load(summary, local=True)
+    # The spawned server's metrics page was read at both ends of the 2 s window: its loop-lag
+    # probe (every 0.1 s) fired there, and the buckets found are ordered ranges.
+    lag = summary["server_loop_lag"]
+    assert lag["probes"] >= 5, lag
+    for key in ("p50_ms", "p99_ms", "max_ms"):
+        lower, upper = lag[key]
+        assert upper is None or lower < upper
+    assert lag["p50_ms"][0] <= lag["p99_ms"][0] <= lag["max_ms"][0]
 
 
 @pytest.mark.corpus
@@ -162,6 +170,13 @@ def test_no_corpus_is_a_clear_error(tmp_path: Path, monkeypatch: pytest.MonkeyPa
     monkeypatch.setenv("MIDSTREAM_CORPORA", str(tmp_path))
     assert main(["bench", "--smoke", "--target", "127.0.0.1:9"]) == 1
     assert "--corpus" in capsys.readouterr().err
+
+
+def test_unreadable_metrics_page_is_refused_before_the_run(
+        swda_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["bench", "--smoke", "--target", "127.0.0.1:9", "--corpus", str(swda_dir),
+                 "--server-metrics", "http://127.0.0.1:9/metrics"]) == 1
+    assert "http://127.0.0.1:9/metrics" in capsys.readouterr().err
 
 
 def test_unreachable_server_is_reported_not_hung(swda_dir: Path,

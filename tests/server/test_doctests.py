@@ -1,4 +1,5 @@
-"""The examples in the server's and the wire conversion's docstrings run."""
+"""The examples in the server's, the wire conversion's and the metrics reader's docstrings
+run."""
 
 from __future__ import annotations
 
@@ -9,7 +10,7 @@ import pytest
 
 
 @pytest.mark.parametrize("name", ["midstream.server._config", "midstream.server._status",
-                                  "midstream.wire._convert"])
+                                  "midstream.wire._convert", "midstream.client._scrape"])
 def test_docstring_examples_run(name: str) -> None:
     result = doctest.testmod(importlib.import_module(name))
     assert result.attempted > 0 and result.failed == 0
