@@ -120,6 +120,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help="with --spawn: the server's model folder (default: shipped)")
     parser.add_argument("--server-cpu", type=int, default=None, metavar="CORE",
                         help="with --spawn: pin the server to this CPU core")
+    parser.add_argument("--spin-idle-cores", action="store_true",
+                        help="with --spawn: start the server with --spin-idle-cores (its "
+                             "cores kept from idling; see midstream serve --help)")
     parser.add_argument("--client-cpu", type=int, default=None, metavar="CORE",
                         help="pin this load generator to this CPU core")
     parser.add_argument("--seed", type=int, default=0, help="seed of the send phases")
@@ -173,9 +176,9 @@ class Spawned:
 
 @contextmanager
 def spawn_server(*, models: Path | None, cpu: int | None, live: int,
-                 token: str | None) -> Iterator[Spawned]:
+                 token: str | None, spin: bool = False) -> Iterator[Spawned]:
     """Run ``midstream serve`` on a free local port, its metrics on another; yield where; stop
-    it after.
+    it after. ``spin``: start it with ``--spin-idle-cores``.
 
     Raises
     ------
@@ -187,6 +190,8 @@ def spawn_server(*, models: Path | None, cpu: int | None, live: int,
                "--metrics-host", "127.0.0.1", "--metrics-port", "0"]
     if models is not None:
         command += ["--models", str(models)]
+    if spin:
+        command.append("--spin-idle-cores")
     env = dict(os.environ)
     if token:
         env["MIDSTREAM_BENCH_TOKEN"] = token
@@ -250,11 +255,15 @@ def run(args: argparse.Namespace) -> int:
                           tls=bool(args.tls), tls_ca=args.tls_ca, seed=args.seed,
                           multiplex=bool(args.multiplex), tick_s=args.tick_ms / 1000)
 
+    if args.spin_idle_cores and not args.spawn:
+        raise InputError("--spin-idle-cores applies to a server this command starts: add "
+                         "--spawn, or start yours with 'midstream serve --spin-idle-cores'")
     if args.spawn:
         if args.tls:
             raise InputError("--spawn starts a plain local server: drop --tls")
         with spawn_server(models=args.models, cpu=args.server_cpu,
-                          live=max(256, args.conversations), token=token) as spawned:
+                          live=max(256, args.conversations), token=token,
+                          spin=bool(args.spin_idle_cores)) as spawned:
             config = configure(spawned.target)
             result = asyncio.run(run_load(config, script, probe=ProcessProbe(spawned.pid),
                                           lag_probe=MetricsProbe(spawned.metrics_url)))

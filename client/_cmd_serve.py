@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import contextlib
 import dataclasses
 import gc
 import logging
@@ -29,7 +30,13 @@ from pathlib import Path
 from typing import Final
 
 from midstream._errors import InputError
-from midstream.server import MidstreamServer, ServerConfig, ServerLimits, run_server_loop
+from midstream.server import (
+    IdleSpinners,
+    MidstreamServer,
+    ServerConfig,
+    ServerLimits,
+    run_server_loop,
+)
 
 _TOKEN_ENV = "MIDSTREAM_TOKEN"
 _log = logging.getLogger(__name__)
@@ -97,6 +104,12 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help="run a full garbage collection every S seconds, to free reference "
                              f"cycles older collections would miss (default {_FULL_COLLECTION_S:g}"
                              "; 0: never)")
+    parser.add_argument("--spin-idle-cores", action="store_true",
+                        help="keep the cores this server may run on from idling: one "
+                             "idle-priority (SCHED_IDLE) spinning process per core, which takes "
+                             "no time the server wants but costs the cores' power; on virtual "
+                             "machines it lowers CPU per word and latency tails "
+                             "(docs/benchmarks.md). Pin the server (taskset) first. Linux only")
     parser.set_defaults(handler=run)
 
 
@@ -190,8 +203,11 @@ def run(args: argparse.Namespace) -> int:
     config = build_config(args)
     if args.full_collection_every < 0:
         raise InputError("--full-collection-every must be >= 0 (0: never)")
-    return run_server_loop(serve(config, gc_thresholds=parse_gc_thresholds(args.gc_thresholds),
-                                 full_collection_s=args.full_collection_every))
+    gc_thresholds = parse_gc_thresholds(args.gc_thresholds)
+    # Started before the server, while this process has one thread, and stopped after it.
+    with IdleSpinners() if args.spin_idle_cores else contextlib.nullcontext():
+        return run_server_loop(serve(config, gc_thresholds=gc_thresholds,
+                                     full_collection_s=args.full_collection_every))
 
 
 def build_config(args: argparse.Namespace) -> ServerConfig:

@@ -14,8 +14,10 @@ the tables.
     .venv/bin/python scripts/bench_report.py --multiplex              # also the ConverseMany sweep
 
 ``--multiplex`` runs ``bench_service.py`` a second time with ``--multiplex`` (the conversations
-carried over a few ``ConverseMany`` streams) and adds its table; ``--reuse`` shows it whenever
-the saved output holds it.
+carried over a few ``ConverseMany`` streams) and adds its table; ``--spin-steps`` runs that sweep
+once more at those steps with each server started with ``--spin-idle-cores`` (its core kept from
+idling), the other sweep being its baseline. ``--reuse`` shows them whenever the saved output
+holds them.
 
 Every run's raw output is kept in ``--work`` (JSON and text), so the page can be rewritten
 without measuring again (``--reuse``).
@@ -66,6 +68,9 @@ def main() -> int:
                         help="also run bench_service.py --multiplex (ConverseMany streams)")
     parser.add_argument("--multiplex-steps", default=None,
                         help="passed as --steps to bench_service.py --multiplex")
+    parser.add_argument("--spin-steps", default=None, metavar="STEPS",
+                        help="with --multiplex: also run bench_service.py --multiplex "
+                             "--spin-idle-cores at these steps")
     parser.add_argument("--multiplex-channels", type=int, default=None, metavar="N",
                         help="passed as --channels to bench_service.py --multiplex (streams "
                              "the conversations share; its default is 4)")
@@ -102,10 +107,18 @@ def main() -> int:
             multiplex_cmd += ["--steps", args.multiplex_steps]
         if args.multiplex_channels:
             multiplex_cmd += ["--channels", str(args.multiplex_channels)]
+        spin_cmd = [sys.executable, str(_SCRIPTS / "bench_service.py"), *model_args,
+                    "--multiplex", "--spin-idle-cores", "--json",
+                    str(work / "service_multiplex_spin.json"), "--steps", str(args.spin_steps)]
+        if args.multiplex_channels:
+            spin_cmd += ["--channels", str(args.multiplex_channels)]
+        spinning = bool(args.multiplex and args.spin_steps)
         if args.smoke:
-            for command in (engine_cmd, service_cmd, memory_cmd, multiplex_cmd, gc_cmd):
+            for command in (engine_cmd, service_cmd, memory_cmd, multiplex_cmd, gc_cmd,
+                            spin_cmd):
                 command.append("--smoke")
         (work / "service_multiplex.json").unlink(missing_ok=True)
+        (work / "service_multiplex_spin.json").unlink(missing_ok=True)
         if (_SCRIPTS / "bench_engine.py").exists():
             _run(engine_cmd, work / "engine.txt")
         _run(service_cmd, work / "service.txt")
@@ -113,9 +126,12 @@ def main() -> int:
         _run(gc_cmd, work / "gc.txt")
         if args.multiplex:
             _run(multiplex_cmd, work / "service_multiplex.txt")
+        if spinning:
+            _run(spin_cmd, work / "service_multiplex_spin.txt")
         commands_file.write_text(json.dumps({
             "engine": _shown(engine_cmd), "service": _shown(service_cmd),
             "service_multiplex": _shown(multiplex_cmd) if args.multiplex else None,
+            "service_multiplex_spin": _shown(spin_cmd) if spinning else None,
             "memory": _shown(memory_cmd), "gc": _shown(gc_cmd),
             "machine_before": before, "models": models_note,
             "report": _shown([sys.executable, str(Path(__file__).resolve()), *sys.argv[1:]]),
@@ -128,10 +144,12 @@ def main() -> int:
     multiplexed_file = work / "service_multiplex.json"
     multiplexed = (json.loads(multiplexed_file.read_text(encoding="utf-8"))
                    if multiplexed_file.exists() else None)
+    spin_file = work / "service_multiplex_spin.json"
+    spun = json.loads(spin_file.read_text(encoding="utf-8")) if spin_file.exists() else None
     gc_file = work / "gc.json"
     collector = json.loads(gc_file.read_text(encoding="utf-8")) if gc_file.exists() else None
     args.out.write_text(render(commands, service, memory, engine_text, multiplexed,
-                               collector=collector),
+                               collector=collector, spun=spun),
                         encoding="utf-8")
     print(f"wrote {args.out}", file=sys.stderr)
     return 0
@@ -150,6 +168,13 @@ def _engine_section(text: str) -> list[str]:
 
 def _load(info: dict[str, Any]) -> str:
     return " / ".join(f"{x:.2f}" for x in info["loadavg"])
+
+
+def _runs_note(service: dict[str, Any]) -> str:
+    """`` (N=1000: 4 of 5 runs met)`` for the sizes run more than once."""
+    counts = [f"N={n}: {r['met']} of {r['of']} runs met"
+              for n, r in service.get("runs", {}).items() if r["of"] > 1]
+    return f" ({'; '.join(counts)})" if counts else ""
 
 
 def _quiet_row(service: dict[str, Any], what: str) -> list[str]:
@@ -183,6 +208,30 @@ def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[s
         "time (so the wait for the next frame is inside it) to the first update naming it. "
         "*Baseline*: one `DescribeModels` call per frame, timed the same way. Largest N "
         f"meeting p99 ≤ {service['p99_budget_ms']:g} ms with no errors: **{largest}** "
+        f"({largest * service['rate']:g} words/s).",
+        "",
+        *service_table(service["steps"]),
+        "",
+    ]
+
+
+def _spun_section(command: str | None, service: dict[str, Any]) -> list[str]:
+    """The ConverseMany sweep again, each server started with ``--spin-idle-cores``."""
+    largest = service["largest_passing"]
+    return [
+        "## The same, server core kept from idling (`midstream serve --spin-idle-cores`)",
+        "",
+        f"`{command or 'scripts/bench_service.py --multiplex --spin-idle-cores'}`",
+        "",
+        "The multiplexed sweep again, run after it, with each server started with "
+        "`--spin-idle-cores`: an idle-priority (`SCHED_IDLE`) process spins on the server's "
+        "core, so the core never halts between frames; the kernel runs it only when the server "
+        "has nothing to do. On a virtual machine a halted CPU goes back to the hypervisor, and "
+        "the next frame starts on a cold, just-woken core. The sweep above is this one's "
+        "baseline: the same server, load and steps with the core left to idle. *Server CPU* "
+        "counts the server process only, not the spinner (which keeps the core 100 % busy "
+        "in `top`). Largest N meeting p99 ≤ "
+        f"{service['p99_budget_ms']:g} ms with no errors: **{largest}** "
         f"({largest * service['rate']:g} words/s).",
         "",
         *service_table(service["steps"]),
@@ -225,9 +274,9 @@ def _collector_section(command: str | None, result: dict[str, Any]) -> list[str]
 
 def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, Any],
            engine_text: str, multiplexed: dict[str, Any] | None = None, *,
-           collector: dict[str, Any] | None = None) -> str:
+           collector: dict[str, Any] | None = None, spun: dict[str, Any] | None = None) -> str:
     """The benchmarks page; ``multiplexed`` is ``bench_service.py --multiplex`` output,
-    ``collector`` is ``bench_gc.py`` output."""
+    ``spun`` the same with ``--spin-idle-cores``, ``collector`` is ``bench_gc.py`` output."""
     m0, m1 = commands["machine_before"], commands["machine_after"]
     eng = service["engine"]
     steps = service["steps"]
@@ -276,11 +325,17 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         f"core | **{largest}** conversations ({largest * service['rate']:g} words/s) | 1,000 |",
         *_quiet_row(service, "the same"),
         *([f"| the same, conversations multiplexed over "
-           f"{_streams(multiplexed.get('channels', 4))} "
+           f"{_streams(multiplexed.get('channels', 4))}{_runs_note(multiplexed)} "
            f"| **{multiplexed['largest_passing']}** conversations "
            f"({multiplexed['largest_passing'] * multiplexed['rate']:g} words/s) | 1,000 |",
            *_quiet_row(multiplexed, "the same, multiplexed")]
           if multiplexed else []),
+        *([f"| the same, multiplexed, server core kept from idling (`serve "
+           f"--spin-idle-cores`){_runs_note(spun)} "
+           f"| **{spun['largest_passing']}** conversations "
+           f"({spun['largest_passing'] * spun['rate']:g} words/s) | 1,000 |",
+           *_quiet_row(spun, "the same, multiplexed, core kept from idling")]
+          if spun else []),
         f"| p99 latency ÷ p99 of the trivial RPC at the same N and rate, at the largest N "
         f"the server kept up with (N={steady['conversations']}) "
         f"| {steady['p99_ratio_to_baseline']:.2f}x | - |",
@@ -340,6 +395,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "",
         *(_multiplexed_section(commands.get("service_multiplex"), multiplexed)
           if multiplexed else []),
+        *(_spun_section(commands.get("service_multiplex_spin"), spun) if spun else []),
         "## Memory per idle live conversation",
         "",
         f"`{commands['memory']}`",
@@ -403,6 +459,8 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         commands["engine"],
         commands["service"],
         *([commands["service_multiplex"]] if commands.get("service_multiplex") else []),
+        *([commands["service_multiplex_spin"]] if commands.get("service_multiplex_spin")
+          else []),
         commands["memory"],
         *([commands["gc"]] if commands.get("gc") else []),
         "midstream bench --target HOST:PORT --conversations 500 --corpus DIR   # any server",

@@ -21,7 +21,9 @@ are measured in the same run, so the headline figures are ratios, not machine-de
 ``--multiplex`` carries each step's conversations over one ``ConverseMany`` stream per channel
 (``midstream bench --multiplex``): one frame per stream every ``--tick-ms`` with every word due,
 latency timed from each word's scheduled time; the transport baseline is then one
-``DescribeModels`` call per frame, timed the same way.
+``DescribeModels`` call per frame, timed the same way. ``--spin-idle-cores`` starts each server
+with ``midstream serve --spin-idle-cores`` (an idle-priority spinner keeps its core from
+halting between frames).
 
 Absolute figures depend on the machine and on what else runs on it (see the load average
 printed first); compare ratios.
@@ -89,7 +91,7 @@ def one_step(args: argparse.Namespace, models: Path, script: WordScript, n: int,
     """One step: a fresh pinned server, the tagging load, then the transport baseline."""
     ramp = min(10.0, n / 100)
     with spawn_server(models=models, cpu=args.server_core, live=max(256, n),
-                      token=None) as spawned:
+                      token=None, spin=args.spin_idle_cores) as spawned:
         target, probe = spawned.target, ProcessProbe(spawned.pid)
         mode = {"multiplex": args.multiplex, "tick_s": args.tick_ms / 1000}
         load = asyncio.run(run_load(LoadConfig(
@@ -223,6 +225,9 @@ def main() -> int:
     parser.add_argument("--tick-ms", type=float, default=1000 * DEFAULT_TICK_S,
                         help="with --multiplex: milliseconds between two frames of a stream")
     parser.add_argument("--server-core", type=int, default=0)
+    parser.add_argument("--spin-idle-cores", action="store_true",
+                        help="start each server with 'midstream serve --spin-idle-cores' (its "
+                             "core kept from idling by an idle-priority spinner)")
     parser.add_argument("--client-core", type=int, default=1)
     parser.add_argument("--engine-words", type=int, default=20_000)
     parser.add_argument("--all-steps", action="store_true",
@@ -257,6 +262,8 @@ def main() -> int:
     if args.multiplex:
         print(f"transport: {args.channels} ConverseMany streams, a frame every "
               f"{args.tick_ms:g} ms each; latency from each word's scheduled time")
+    if args.spin_idle_cores:
+        print("server: midstream serve --spin-idle-cores (its core kept from idling)")
 
     # The engine baseline runs on the core the server will use, before any server starts.
     pin_self(args.server_core)
@@ -333,6 +340,7 @@ def main() -> int:
             "largest_passing_quiet": largest_quiet,
             "steal_notable_percent": STEAL_NOTABLE_PERCENT,
             "multiplex": args.multiplex, "tick_ms": args.tick_ms if args.multiplex else None,
+            "spin_idle_cores": args.spin_idle_cores,
             "channels": args.channels, "server_core": args.server_core,
             "generator_cores": generator_cores,
             "service_to_engine_cpu_ratio": round(service_ratio, 3),

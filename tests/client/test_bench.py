@@ -172,6 +172,13 @@ def test_no_corpus_is_a_clear_error(tmp_path: Path, monkeypatch: pytest.MonkeyPa
     assert "--corpus" in capsys.readouterr().err
 
 
+def test_spinning_a_server_it_did_not_start_is_refused(
+        swda_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["bench", "--smoke", "--target", "127.0.0.1:9", "--corpus", str(swda_dir),
+                 "--spin-idle-cores"]) == 1
+    assert "--spawn" in capsys.readouterr().err
+
+
 def test_unreadable_metrics_page_is_refused_before_the_run(
         swda_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["bench", "--smoke", "--target", "127.0.0.1:9", "--corpus", str(swda_dir),
@@ -343,7 +350,8 @@ def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
     # The whole pipeline behind docs/benchmarks.md, every script in its smoke mode.
     page = tmp_path / "benchmarks.md"
     done = subprocess.run([sys.executable, str(REPO / "scripts" / "bench_report.py"), "--smoke",
-                           "--multiplex", "--models", str(models_dir), "--work",
+                           "--multiplex", "--spin-steps", "4", "--models", str(models_dir),
+                           "--work",
                            str(tmp_path / "work"), "--out", str(page)],
                           capture_output=True, text=True, timeout=300, check=False,
                           env=os.environ | {"MIDSTREAM_CORPORA": str(swda_dir.parent)})
@@ -351,10 +359,15 @@ def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
     text = page.read_text(encoding="utf-8")
     for heading in ("## Machine", "## Headline", "## Live conversations per server core",
                     "## Live conversations per server core, multiplexed (ConverseMany)",
+                    "## The same, server core kept from idling "
+                    "(`midstream serve --spin-idle-cores`)",
                     "## Memory per idle live conversation", "## Word decoder alone",
                     "## Reproduce"):
         assert f"\n{heading}\n" in text
-    # Both service tables carry the steal column and one row per step (smoke: one step).
+    # The three service tables carry the steal and loop-lag columns and one row per step
+    # (smoke: one step).
     tables = [line for line in text.splitlines() if line.startswith("| N | offered")]
-    assert len(tables) == 2 and all("steal ms" in line for line in tables)
-    assert len([line for line in text.splitlines() if line.startswith("| 4 | 12 |")]) == 2
+    assert len(tables) == 3
+    assert all("steal ms" in line and "loop lag" in line for line in tables)
+    assert len([line for line in text.splitlines() if line.startswith("| 4 | 12 |")]) == 3
+    assert "--spin-idle-cores" in text.split("## Reproduce")[1]
