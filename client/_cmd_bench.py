@@ -174,6 +174,20 @@ class Spawned:
     metrics_url: str
 
 
+def serve_command(*, models: Path | None, live: int, spin: bool) -> list[str]:
+    """The ``midstream serve`` command line :func:`spawn_server` runs: room for ``live``
+    conversations, all of them on one ``ConverseMany`` stream if the load puts them there."""
+    command = [sys.executable, "-m", "midstream.client._cli", "serve", "--host", "127.0.0.1",
+               "--port", "0", "--grace", "5", "--max-live-conversations", str(live),
+               "--limit", f"max_channels_per_stream={live}",
+               "--metrics-host", "127.0.0.1", "--metrics-port", "0"]
+    if models is not None:
+        command += ["--models", str(models)]
+    if spin:
+        command.append("--spin-idle-cores")
+    return command
+
+
 @contextmanager
 def spawn_server(*, models: Path | None, cpu: int | None, live: int,
                  token: str | None, spin: bool = False) -> Iterator[Spawned]:
@@ -185,13 +199,7 @@ def spawn_server(*, models: Path | None, cpu: int | None, live: int,
     UnavailableError
         When the server exits or does not report its address in time.
     """
-    command = [sys.executable, "-m", "midstream.client._cli", "serve", "--host", "127.0.0.1",
-               "--port", "0", "--grace", "5", "--max-live-conversations", str(live),
-               "--metrics-host", "127.0.0.1", "--metrics-port", "0"]
-    if models is not None:
-        command += ["--models", str(models)]
-    if spin:
-        command.append("--spin-idle-cores")
+    command = serve_command(models=models, live=live, spin=spin)
     env = dict(os.environ)
     if token:
         env["MIDSTREAM_BENCH_TOKEN"] = token

@@ -19,8 +19,9 @@ from typing import Any
 import pytest
 from client_kit import REPO, Served, models_dir, served
 from midstream._errors import InputError
-from midstream.client._cli import main
-from midstream.client._cmd_bench import load_script
+from midstream.client._cli import build_parser, main
+from midstream.client._cmd_bench import load_script, serve_command
+from midstream.client._cmd_serve import build_config
 from midstream.client._load import (
     LoadConfig,
     ProcessProbe,
@@ -170,6 +171,16 @@ def test_no_corpus_is_a_clear_error(tmp_path: Path, monkeypatch: pytest.MonkeyPa
     monkeypatch.setenv("MIDSTREAM_CORPORA", str(tmp_path))
     assert main(["bench", "--smoke", "--target", "127.0.0.1:9"]) == 1
     assert "--corpus" in capsys.readouterr().err
+
+
+def test_spawned_server_takes_every_conversation_on_one_stream() -> None:
+    # 1,200 multiplexed conversations on one stream exceed the default per-stream limit (1,024):
+    # a spawned server must be given room for all it is asked to carry, or the run measures a
+    # refusal (RESOURCE_EXHAUSTED) instead of the server.
+    command = serve_command(models=None, live=1200, spin=False)
+    config = build_config(build_parser().parse_args(command[command.index("serve"):]))
+    assert config.limits.max_live_conversations == 1200
+    assert config.limits.max_channels_per_stream == 1200
 
 
 def test_spinning_a_server_it_did_not_start_is_refused(
