@@ -64,6 +64,10 @@ _SETTLE_S = 10.0
 #: first four runs that recorded it met the latency budget at 0.05 % and missed it at 0.4 % and
 #: more; later runs met it at 1-3 % too. So it marks a run to read with care, not a failed one.
 STEAL_NOTABLE_PERCENT = 0.1
+#: Most events the generator puts in one ``ConverseMany`` frame: the server's default
+#: ``max_events_per_frame`` (docs/limits.md), over which it refuses the frame and ends the
+#: stream. Opening or closing more conversations than this at once takes several frames.
+MAX_FRAME_EVENTS = 1024
 #: Default seconds between two frames of a multiplexed stream (common practice for audio
 #: front ends is 10-20 ms packets, from memory; a word due just after a frame waits this long).
 DEFAULT_TICK_S = 0.01
@@ -587,10 +591,10 @@ async def _multiplexed(run: _Run, stub: pb_grpc.MidstreamStub, numbers: list[int
             now = loop.time() - began
             due_now = [c for at, c in opening if at <= now]
             opening = [(at, c) for at, c in opening if at > now]
-            if due_now:
-                await call.write(pb.ClientFrame(events=[
+            for frame in _frames([
                     pb.ChannelEvent(channel=c, event=pb.ClientEvent(open=pb.OpenConversation()))
-                    for c in due_now]))
+                    for c in due_now]):
+                await call.write(frame)
             if opening:
                 await asyncio.sleep(max(opening[0][0] - (loop.time() - began), config.tick_s))
         await run.go.wait()
@@ -612,10 +616,12 @@ async def _multiplexed(run: _Run, stub: pb_grpc.MidstreamStub, numbers: list[int
             sent = loop.time()
             result.send_lag.extend(max(0.0, sent - due) for due, _, _ in due_words)
             result.words_sent += len(events)
-            await call.write(pb.ClientFrame(events=events))
-        await call.write(pb.ClientFrame(events=[
-            pb.ChannelEvent(channel=c, event=pb.ClientEvent(close=pb.CloseConversation()))
-            for c in sorted(live)]))
+            for frame in _frames(events):
+                await call.write(frame)
+        for frame in _frames([
+                pb.ChannelEvent(channel=c, event=pb.ClientEvent(close=pb.CloseConversation()))
+                for c in sorted(live)]):
+            await call.write(frame)
         await call.done_writing()
         try:
             await asyncio.wait_for(reader, timeout=_SETTLE_S)
@@ -665,6 +671,12 @@ async def _describe_ticks(run: _Run, stub: pb_grpc.MidstreamStub, numbers: list[
         elif not schedule:
             break
     await asyncio.gather(*calls)
+
+
+def _frames(events: list[pb.ChannelEvent]) -> list[pb.ClientFrame]:
+    """``events`` in order, as frames of at most :data:`MAX_FRAME_EVENTS` (none when empty)."""
+    return [pb.ClientFrame(events=events[i:i + MAX_FRAME_EVENTS])
+            for i in range(0, len(events), MAX_FRAME_EVENTS)]
 
 
 async def run_load(config: LoadConfig, script: WordScript, *,

@@ -23,14 +23,18 @@ from midstream.client._cli import build_parser, main
 from midstream.client._cmd_bench import load_script, serve_command
 from midstream.client._cmd_serve import build_config
 from midstream.client._load import (
+    MAX_FRAME_EVENTS,
     LoadConfig,
     ProcessProbe,
     WordScript,
     _distribution,
+    _frames,
     parse_steal,
     read_steal,
     run_load,
 )
+from midstream.server import ServerLimits
+from midstream.wire import midstream_pb2 as pb
 
 __all__ = ["models_dir", "served"]  # fixtures used here, re-exported for pytest
 
@@ -181,6 +185,18 @@ def test_spawned_server_takes_every_conversation_on_one_stream() -> None:
     config = build_config(build_parser().parse_args(command[command.index("serve"):]))
     assert config.limits.max_live_conversations == 1200
     assert config.limits.max_channels_per_stream == 1200
+
+
+def test_frames_stay_within_the_servers_event_limit() -> None:
+    # Closing 2,500 conversations at once: a single frame would be over the server's default
+    # max_events_per_frame and be refused as a whole, ending the stream (INVALID_ARGUMENT).
+    assert ServerLimits().max_events_per_frame == MAX_FRAME_EVENTS
+    events = [pb.ChannelEvent(channel=c, event=pb.ClientEvent(close=pb.CloseConversation()))
+              for c in range(1, 2501)]
+    frames = _frames(events)
+    assert [len(f.events) for f in frames] == [1024, 1024, 452]
+    assert [e.channel for f in frames for e in f.events] == list(range(1, 2501))
+    assert _frames([]) == []
 
 
 def test_spinning_a_server_it_did_not_start_is_refused(
