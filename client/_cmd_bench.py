@@ -310,7 +310,6 @@ def bucket_text(bucket: list[float | None] | None) -> str:
     return f"{lower:g}-{upper:g}"
 
 
-
 def _print(s: dict[str, Any]) -> None:
     what = "DescribeModels calls" if s["workload"] == "describe" else "words"
     if s["workload"] == "describe" and s["multiplex"]:
