@@ -202,36 +202,41 @@ def _quiet_row(service: dict[str, Any], what: str) -> list[str]:
             f"{f' ({counts})' if counts else ''} | {result} | - |"]
 
 
-def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[str]:
-    """The ConverseMany sweep: its command, how it differs, its table."""
+def _sweep_section(heading: str, command: str, text: str,
+                   service: dict[str, Any]) -> list[str]:
+    """A service sweep's section: heading, command, what differs, its largest N, its table."""
     largest = service["largest_passing"]
     return [
-        "## Live conversations per server core, multiplexed (ConverseMany)",
+        f"## {heading}",
         "",
-        f"`{command or 'scripts/bench_service.py --multiplex'}`",
+        f"`{command}`",
         "",
-        f"The same steps, but the conversations ride {_streams(service.get('channels', 4))} "
-        f"(one per connection): every {service.get('tick_ms', 10):g} ms "
-        "each stream sends one frame holding every word that fell due on it, and the server "
-        "answers each frame with one reply frame. Latency is from each word's *scheduled* "
-        "time (so the wait for the next frame is inside it) to the first update naming it. "
-        "*Baseline*: one `DescribeModels` call per frame, timed the same way. Largest N "
-        f"meeting p99 ≤ {service['p99_budget_ms']:g} ms with no errors: **{largest}** "
-        f"({largest * service['rate']:g} words/s).",
+        f"{text} Largest N meeting p99 ≤ {service['p99_budget_ms']:g} ms with no errors: "
+        f"**{largest}** ({largest * service['rate']:g} words/s).",
         "",
         *service_table(service["steps"]),
         "",
     ]
 
 
+def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[str]:
+    """The ConverseMany sweep: its command, how it differs, its table."""
+    return _sweep_section(
+        "Live conversations per server core, multiplexed (ConverseMany)",
+        command or "scripts/bench_service.py --multiplex",
+        f"The same steps, but the conversations ride {_streams(service.get('channels', 4))} "
+        f"(one per connection): every {service.get('tick_ms', 10):g} ms "
+        "each stream sends one frame holding every word that fell due on it, and the server "
+        "answers each frame with one reply frame. Latency is from each word's *scheduled* "
+        "time (so the wait for the next frame is inside it) to the first update naming it. "
+        "*Baseline*: one `DescribeModels` call per frame, timed the same way.", service)
+
+
 def _spun_section(command: str | None, service: dict[str, Any]) -> list[str]:
     """The ConverseMany sweep again, each server started with ``--spin-idle-cores``."""
-    largest = service["largest_passing"]
-    return [
-        "## The same, server core kept from idling (`midstream serve --spin-idle-cores`)",
-        "",
-        f"`{command or 'scripts/bench_service.py --multiplex --spin-idle-cores'}`",
-        "",
+    return _sweep_section(
+        "The same, server core kept from idling (`midstream serve --spin-idle-cores`)",
+        command or "scripts/bench_service.py --multiplex --spin-idle-cores",
         "The multiplexed sweep again, run after it, with each server started with "
         "`--spin-idle-cores`: an idle-priority (`SCHED_IDLE`) process spins on the server's "
         "core, so the core never halts between frames; the kernel runs it only when the server "
@@ -239,13 +244,7 @@ def _spun_section(command: str | None, service: dict[str, Any]) -> list[str]:
         "the next frame starts on a cold, just-woken core. The sweep above is this one's "
         "baseline: the same server, load and steps with the core left to idle. *Server CPU* "
         "counts the server process only, not the spinner (which keeps the core 100 % busy "
-        "in `top`). Largest N meeting p99 ≤ "
-        f"{service['p99_budget_ms']:g} ms with no errors: **{largest}** "
-        f"({largest * service['rate']:g} words/s).",
-        "",
-        *service_table(service["steps"]),
-        "",
-    ]
+        "in `top`).", service)
 
 
 def _collector_section(command: str | None, result: dict[str, Any]) -> list[str]:
