@@ -12,14 +12,20 @@ and Viterbi at the last position of a chain, marginals): crfsuite's operations i
 order, so its results are crfsuite's bits, where numpy's calls cost several times as much.
 
 This is the one module that uses numba. Kernels are compiled on first use and cached on disk
-beside this file (``cache=True``); :func:`warm_up` does that ahead of time so the first live
-word does not pay for it.
+in the user's cache folder (:func:`kernel_cache_dir`); :func:`warm_up` does that ahead of time
+so the first live word does not pay for it. The cache never goes beside this file: in an
+installed package that is ``site-packages/midstream/models/__pycache__``, which ``pip
+uninstall`` does not remove (it did not write those files), and the folder left behind then
+reads as a namespace package named ``midstream`` that shadows a later editable install.
 """
 
 from __future__ import annotations
 
 import math
-from typing import Any
+import os
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any, TypeVar, cast
 
 import numba
 import numpy as np
@@ -33,6 +39,7 @@ __all__ = [
     "decode_lattice",
     "decode_window",
     "exp_into",
+    "kernel_cache_dir",
     "warm_up",
 ]
 
@@ -41,7 +48,40 @@ IntArray = npt.NDArray[np.int64]
 
 _NO_MASK: FloatArray = np.empty(0)
 
-_jit = numba.njit(cache=True, nogil=True)
+_Kernel = TypeVar("_Kernel", bound=Callable[..., Any])
+
+# numba's setting for its cache folder (NUMBA_CACHE_DIR); numba.config sets its attributes at run
+# time, so a type checker cannot see them.
+_CACHE_SETTING = "CACHE_DIR"
+
+
+
+def kernel_cache_dir() -> Path:
+    """The folder numba's on-disk kernel cache uses for this module.
+
+    ``$NUMBA_CACHE_DIR`` when the user set it (numba's own setting), else
+    ``$XDG_CACHE_HOME/midstream/kernels`` (``~/.cache/midstream/kernels`` when that is unset, the
+    XDG base directory convention). numba keeps a sub-folder per source folder, so several
+    clones, virtual environments and the compiled build never share an entry.
+    """
+    chosen = getattr(numba.config, _CACHE_SETTING)
+    if chosen:
+        return Path(chosen)
+    base = os.environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
+    return Path(base) / "midstream" / "kernels"
+
+
+def _jit(func: _Kernel) -> _Kernel:
+    # numba chooses a function's cache folder once, when caching is enabled at decoration, from
+    # its global setting; set it for the length of that call only, so no other numba user in
+    # the process is moved. The dispatcher numba returns is called like the function it wraps.
+    saved = getattr(numba.config, _CACHE_SETTING)
+    setattr(numba.config, _CACHE_SETTING, str(kernel_cache_dir()))
+    try:
+        return cast(_Kernel, numba.njit(cache=True, nogil=True)(func))
+    finally:
+        setattr(numba.config, _CACHE_SETTING, saved)
+
 
 
 @_jit
