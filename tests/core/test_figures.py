@@ -1,0 +1,60 @@
+"""Every marked quality figure in the README, docs and model cards matches the stored output of
+the command that produced it, for the models that ship (``scripts/figures.py``)."""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import subprocess
+import sys
+from pathlib import Path
+from types import ModuleType
+
+import pytest
+
+REPO = Path(__file__).resolve().parents[2]
+
+
+def _figures_module() -> ModuleType:
+    spec = importlib.util.spec_from_file_location("figures", REPO / "scripts" / "figures.py")
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    sys.modules["figures"] = module
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_every_marked_figure_matches_its_stored_run() -> None:
+    result = subprocess.run([sys.executable, str(REPO / "scripts" / "figures.py"), "check"],
+                            capture_output=True, text=True, timeout=120, check=False)
+    assert result.returncode == 0, result.stderr
+
+
+def test_pages_carry_marked_figures() -> None:
+    figures = _figures_module()
+    found = list(figures.figures(figures.pages()))
+    assert any(f.page.name == "README.md" for f in found)
+
+
+def test_check_catches_a_wrong_number_and_changed_models(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    figures = _figures_module()
+    page = tmp_path / "page.md"
+    page.write_text("| f1 | 0.80<!--fig swda-val some.key--> |\n", encoding="utf-8")
+    store = tmp_path / "store"
+    store.mkdir()
+    weights = tmp_path / "weights"
+    weights.mkdir()
+    (weights / "a.msm").write_bytes(b"model")
+    monkeypatch.setattr(figures, "REPO", tmp_path)
+    monkeypatch.setattr(figures, "STORE", store)
+    monkeypatch.setattr(figures, "WEIGHTS", weights)
+    monkeypatch.setattr(figures, "PAGES", ("page.md",))
+    record = {"command": "x", "models": figures.model_hashes(), "figures": {"some.key": 0.8049}}
+    (store / "swda-val.json").write_text(json.dumps(record), encoding="utf-8")
+    assert figures.problems() == []
+    record["figures"] = {"some.key": 0.8051}
+    (store / "swda-val.json").write_text(json.dumps(record), encoding="utf-8")
+    assert any("shows 0.80" in line and "gave 0.81" in line for line in figures.problems())
+    (weights / "a.msm").write_bytes(b"retrained")
+    assert any("models changed" in line for line in figures.problems())
