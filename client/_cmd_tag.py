@@ -63,7 +63,8 @@ async def _run(args: argparse.Namespace) -> int:
     gold: dict[str, GoldWord] | None = None
     pacing = Pacing()
     if args.input == "-":
-        events = lines_from_thread(stream_lines(sys.stdin, "<stdin>", args.format))
+        events = lines_from_thread(stream_lines(sys.stdin, "<stdin>", args.format,
+                                                 recording=args.recording))
     else:
         loaded = load_input(args)
         events, gold = loaded.events, loaded.gold
