@@ -195,3 +195,12 @@ def test_words_outside_a_voice_span_have_the_no_voice_speaker() -> None:
                                 "n.vtt"))
     assert [(w[0], w[1]) for w in words] == [(NO_VOICE, "hello"), ("Ann", "there"),
                                               (NO_VOICE, "you")]
+
+
+def test_docstring_examples_run() -> None:
+    import doctest  # noqa: PLC0415
+
+    import midstream.client._captions as module  # noqa: PLC0415
+
+    result = doctest.testmod(module)
+    assert result.attempted > 0 and result.failed == 0
