@@ -93,8 +93,7 @@ def call_log(served: Served, tmp_path_factory: pytest.TempPathFactory) -> Path:
     vtt = folder / "call.vtt"
     vtt.write_text(CALL_VTT, encoding="utf-8")
     log = folder / "call.log"
-    assert main(["replay", str(vtt), "--server", served.target, "--speed", "0",
-                 "--no-progress", "--log", str(log)]) == 0
+    assert main(["tag", str(vtt), "--server", served.target, "--log", str(log)]) == 0
     return log
 
 
