@@ -177,8 +177,11 @@ def parse_webvtt(text: str, source: str) -> list[TimedEvent]:
     ids = _Ids()
     events: list[TimedEvent] = []
     number = 1
-    # Skip the header block (up to the first blank line).
+    # Skip the header block (up to the first blank line); a cue there lacks its blank line.
     while number < len(lines) and lines[number].strip():
+        if "-->" in lines[number]:
+            raise TranscriptFormatError("a blank line must separate the WEBVTT line from the "
+                                        "first cue", source=source, line=number + 1)
         number += 1
     while number < len(lines):
         while number < len(lines) and not lines[number].strip():

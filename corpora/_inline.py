@@ -74,6 +74,8 @@ class _Pending:
     annotated: bool
     builder: _Builder = field(default_factory=_Builder)
     acts: list[tuple[UtteranceFunction, str]] = field(default_factory=list)
+    #: Per speaker, the line where their outermost open '[' was written.
+    opened: dict[str, int] = field(default_factory=dict)
 
 
 def _error(message: str, source: str, line: int, field: str | None = None) -> TranscriptFormatError:
@@ -97,8 +99,9 @@ def _finish(pending: _Pending, source: str, last_line: int) -> Conversation:
     before = builder.unbalanced
     builder.finish()
     if builder.unbalanced != before:
-        raise _error(f"conversation {pending.id!r}: a '[' is still open at its end",
-                     source, last_line)
+        line = min(pending.opened.values(), default=last_line)
+        raise _error(f"conversation {pending.id!r}: this '[' is still open at its end",
+                     source, line)
     utterances = tuple(
         Utterance(speaker=u.speaker, words=tuple(u.words), function=function, fine_tag=fine,
                   fine_class=fine, complete=u.complete)
@@ -177,8 +180,16 @@ def parse_inline(lines: Iterable[str], source: str) -> Iterator[Conversation]:
         before = builder.unbalanced
         builder.line(act, speaker, text)
         if builder.unbalanced != before:
+            opened = pending.opened.get(speaker)
+            if opened is not None and opened < number:
+                raise _error(f"speaker {speaker}'s '[' is still open when their utterance "
+                             f"ends on line {number}", source, opened)
             raise _error("unbalanced markup: a ']' with nothing open, a '[ ... ]' without '+', "
                          "or a '[' still open when its utterance ends", source, number)
+        if builder.speakers[speaker].frames:
+            pending.opened.setdefault(speaker, number)
+        else:
+            pending.opened.pop(speaker, None)
     if not header:
         raise _error(f"empty: the first line must be '{FORMAT_LINE}'", source, max(number, 1))
     if pending is not None:

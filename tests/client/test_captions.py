@@ -64,6 +64,8 @@ def test_webvtt_errors_name_the_file_and_line() -> None:
         parse_webvtt(backwards, "x.vtt")
     with pytest.raises(TranscriptFormatError, match=r"^x\.vtt:4: .*outside its cue"):
         parse_webvtt("WEBVTT\n\n00:01.000 --> 00:02.000\nhi <00:05.000> there\n", "x.vtt")
+    with pytest.raises(TranscriptFormatError, match=r"^x\.vtt:2: a blank line must separate"):
+        parse_webvtt("WEBVTT\n00:01.000 --> 00:02.000\nhi\n", "x.vtt")
     with pytest.raises(TranscriptFormatError, match=r"^x\.vtt:5: a '<' that opens no tag"):
         parse_webvtt("WEBVTT\n\n00:01.000 --> 00:02.000\nhi\n<v Ann oops\n", "x.vtt")
 

@@ -79,6 +79,15 @@ def test_a_malformed_line_is_named(line: str, message: str) -> None:
         _read(f"@format midstream-inline 1\n@conversation c\n{line}\n")
 
 
+def test_a_bracket_left_open_is_named_where_it_was_opened() -> None:
+    with pytest.raises(TranscriptFormatError, match=r"call\.inline:3: speaker A's '\[' is still "
+                                                    r"open when their utterance ends on line 5"):
+        _read("@format midstream-inline 1\n@conversation c\nA statement: [ the + the\n"
+              "B other: hm /\nA statement: so /\n")
+    with pytest.raises(TranscriptFormatError, match=r"call\.inline:3: conversation 'c': this"):
+        _read("@format midstream-inline 1\n@conversation c\nA statement: [ the + the\n")
+
+
 def test_the_header_and_conversation_lines_are_required() -> None:
     with pytest.raises(TranscriptFormatError, match=r"call\.inline:1: the first line must be"):
         _read("@conversation c\nA statement: hi /\n")
