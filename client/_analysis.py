@@ -159,7 +159,7 @@ def analyse(log: RevisionLog, *, max_seen: int = 20) -> Analysis:
                 source = sent.get(state.word_id)
                 timeline = timelines[state.word_id] = WordTimeline(
                     word_id=state.word_id, speaker=state.speaker,
-                    text=source.text if source is not None else state.word_id,
+                    text=source.text if source is not None else state.text or state.word_id,
                     order=order.get(state.word_id, len(order) + len(timelines)),
                     gold=source.gold.label if source is not None and source.gold else None)
                 first_seen.append(state.word_id)
@@ -197,7 +197,9 @@ def _add_change(timeline: WordTimeline, state: WordHypothesis, seq: int, time: f
 
 
 def log_from_history(history: RevisionHistory, *, ended: bool) -> RevisionLog:
-    """A revision log rebuilt from a server's ``GetRevisions`` reply (no word text, no gold).
+    """A revision log rebuilt from a server's ``GetRevisions`` reply (no gold).
+
+    Words sent are not in it; each word's text comes with its states.
 
     Revisions sharing a seq form one update. ``ended``: the conversation has ended, so its
     last update was the one that finalised everything.

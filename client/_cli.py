@@ -25,6 +25,7 @@ _COMMAND_MODULES: tuple[str, ...] = (
     "midstream.client._cmd_replay",
     "midstream.client._cmd_subscribe",
     "midstream.client._cmd_inspect",
+    "midstream.client._cmd_export",
     "midstream.client._cmd_demo",
     "midstream.client._cmd_serve",
     "midstream.client._cmd_bench",

@@ -1,10 +1,12 @@
 """``midstream tag``: stream words to a server and print the live hypotheses.
 
-Reads JSON Lines word events (``docs/word-events.md``) or NIST CTM from a file or, by default,
-standard input as lines arrive, so a recogniser's output can be piped straight in::
+Reads JSON Lines word events (``docs/word-events.md``), NIST CTM, WebVTT or NIST STM from a
+file or, by default, standard input as lines arrive, so a recogniser's output can be piped
+straight in::
 
     my-recogniser | midstream tag --server 127.0.0.1:50051
     midstream tag call.ctm --json > updates.jsonl
+    midstream tag call.vtt --log call.log      # the revision log, as replay --log writes it
 """
 
 from __future__ import annotations
@@ -13,7 +15,10 @@ import argparse
 import asyncio
 import sys
 from collections.abc import AsyncIterable, Iterable
+from pathlib import Path
+from typing import TextIO
 
+from midstream._errors import InputError
 from midstream.client._common import (
     add_input_options,
     add_server_options,
@@ -23,14 +28,22 @@ from midstream.client._common import (
 )
 from midstream.client._inputs import TimedEvent
 from midstream.client._output import Printer, lines_from_thread
-from midstream.client._records import GoldWord
-from midstream.client._results import Welcome
+from midstream.client._records import (
+    LOG_FORMAT,
+    GoldWord,
+    SentWord,
+    dumps,
+    event_record,
+    word_record,
+)
+from midstream.client._results import ServerEvent, Welcome
 from midstream.client._streaming import Pacing, stream_conversation
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = subparsers.add_parser(
-        "tag", help="stream words (JSONL or CTM, file or stdin) and print live hypotheses",
+        "tag", help="stream words (JSONL, CTM, WebVTT or STM; file or stdin) and print live "
+               "hypotheses",
         description="Stream recogniser words to a server and print its live hypotheses: a "
                     "line per utterance redrawn as labels change on a terminal, one line per "
                     "finished utterance otherwise, or JSON Lines with --json.")
@@ -49,6 +62,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              "standard input is always sent as it arrives)")
     parser.add_argument("--id", dest="conversation_id", default=None,
                         help="ask for this conversation id (default: the server assigns one)")
+    parser.add_argument("--log", type=Path, default=None,
+                        help="also write every word sent and event received as JSON Lines "
+                             "(the revision log replay --log writes)")
     parser.set_defaults(handler=run)
 
 
@@ -63,13 +79,27 @@ async def _run(args: argparse.Namespace) -> int:
     gold: dict[str, GoldWord] | None = None
     pacing = Pacing()
     if args.input == "-":
-        events = lines_from_thread(stream_lines(sys.stdin, "<stdin>", args.format))
+        events = lines_from_thread(stream_lines(sys.stdin, "<stdin>", args.format,
+                                                 recording=args.recording))
     else:
         loaded = load_input(args)
         events, gold = loaded.events, loaded.gold
         pacing = Pacing(speed=max(args.speed, 0.0))
 
+    log: TextIO | None = None
+    if args.log is not None:
+        try:
+            log = args.log.open("w", encoding="utf-8")
+        except OSError as exc:
+            raise InputError(f"{args.log}: cannot write the log: {exc.strerror}") from None
+    source = "<stdin>" if args.input == "-" else str(args.input)
+
     def welcome(message: Welcome) -> None:
+        if log is not None:
+            log.write(dumps({"type": "header", "format": LOG_FORMAT,
+                             "conversation_id": message.conversation_id, "source": source,
+                             "server": client.target}) + "\n")
+            log.write(dumps(event_record(message)) + "\n")
         if args.json:
             # The first record names the conversation, so the output is a log inspect can read.
             printer.event(message)
@@ -81,9 +111,24 @@ async def _run(args: argparse.Namespace) -> int:
             print(f"conversation {conversation}: follow it with "
                   f"'midstream subscribe {separator}{conversation}'", file=sys.stderr, flush=True)
 
-    async with client_from_args(args) as client:
-        await stream_conversation(client, events, pacing=pacing, gold=gold,
-                                  conversation_id=args.conversation_id, on_welcome=welcome,
-                                  on_word=printer.word, on_event=printer.event)
+    def word(sent: SentWord) -> None:
+        printer.word(sent)
+        if log is not None:
+            log.write(dumps(word_record(sent)) + "\n")
+
+    def event(received: ServerEvent, sent: int) -> None:
+        printer.event(received, sent)
+        if log is not None:
+            log.write(dumps(event_record(received, sent=sent)) + "\n")
+
+    client = client_from_args(args)
+    try:
+        async with client:
+            await stream_conversation(client, events, pacing=pacing, gold=gold,
+                                      conversation_id=args.conversation_id, on_welcome=welcome,
+                                      on_word=word, on_event=event)
+    finally:
+        if log is not None:
+            log.close()
     printer.finish()
     return 0

@@ -53,8 +53,12 @@ def add_input_options(parser: argparse.ArgumentParser, *, stdin: bool) -> None:
         "input", nargs="?" if stdin else None, default="-" if stdin else None,
         help="word events: a .jsonl or .ctm file" + (", or - for standard input (default)"
                                                       if stdin else ", or a corpus folder"))
-    parser.add_argument("--format", choices=("auto", "jsonl", "ctm", "corpus"), default="auto",
+    parser.add_argument("--format", choices=("auto", "jsonl", "ctm", "vtt", "stm", "corpus"),
+                        default="auto",
                         help="input format (auto: from the file name; a folder is a corpus)")
+    parser.add_argument("--recording", metavar="NAME", default=None,
+                        help="the recording (first field) to send from a CTM or STM file "
+                             "holding several")
     parser.add_argument("--split", default=None,
                         help="corpus split to read the conversation from (e.g. val)")
     parser.add_argument("--conversation", metavar="ID", default=None,
@@ -146,16 +150,29 @@ def load_input(args: argparse.Namespace) -> LoadedInput:
         conversation = read_conversation(path, split=args.split,
                                          conversation_id=args.conversation)
         return conversation_events(conversation)
-    return LoadedInput(source=str(path), events=read_events(path, args.format))
+    return LoadedInput(source=str(path), events=read_events(
+        path, args.format, recording=getattr(args, "recording", None)))
 
 
-def stream_lines(handle: TextIO, source: str, fmt: str) -> Iterator[TimedEvent]:
-    """Parse events from an open text stream line by line, as they arrive (for pipes)."""
+def stream_lines(handle: TextIO, source: str, fmt: str, *,
+                 recording: str | None = None) -> Iterator[TimedEvent]:
+    """Parse events from an open text stream line by line, as they arrive (for pipes).
+
+    WebVTT and STM give segment times, not word times, so their input is read whole first.
+    """
     if fmt == "auto":
         fmt = "jsonl"
+    if fmt in ("vtt", "stm"):
+        from midstream.client._captions import parse_stm, parse_webvtt  # noqa: PLC0415
+
+        text = handle.read()
+        yield from (parse_webvtt(text, source) if fmt == "vtt"
+                    else parse_stm(text.splitlines(), source, recording=recording))
+        return
     if fmt not in ("jsonl", "ctm"):
-        raise InputError(f"{source}: standard input must be jsonl or ctm, not {fmt!r}")
-    parser = CtmParser(source) if fmt == "ctm" else JsonlEventParser(source)
+        raise InputError(f"{source}: standard input must be jsonl, ctm, vtt or stm, not {fmt!r}")
+    parser = CtmParser(source, recording=recording) if fmt == "ctm" \
+        else JsonlEventParser(source)
     for number, raw in enumerate(handle, start=1):
         event = parser.parse_line(raw, number)
         if event is not None:

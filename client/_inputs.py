@@ -1,5 +1,8 @@
 """Readers for the word streams a user already has: JSON Lines word events and NIST CTM.
 
+WebVTT captions and NIST STM, which time segments rather than words, are read by
+``_captions.py``; :func:`read_events` dispatches to all four.
+
 Both readers yield :class:`TimedEvent` values in the order to send them; ``time`` is when a live
 recogniser would have delivered the event (a word's end time, else its start; ``None`` when the
 input carries no times). The JSON Lines schema is documented in ``docs/word-events.md``.
@@ -192,8 +195,10 @@ def parse_jsonl_events(lines: Iterable[str], source: str) -> Iterator[TimedEvent
 class CtmParser:
     """Parse NIST CTM lines: ``<file> <channel> <start> <duration> <word> [<confidence>]``.
 
-    The channel names the speaker. Lines starting with ``;;`` are comments. One CTM input holds
-    one recording: a second file name is an error (split such a CTM per recording first).
+    The channel names the speaker. Lines starting with ``;;`` are comments. A CTM file may hold
+    several recordings (its first field); a conversation is one of them: ``recording`` picks
+    it (other recordings' lines are skipped, still checked for their field count), and without
+    it a second file name is an error that says how to pick one.
     Word ids are ``<channel>-<n>``, counted per channel from 1.
 
     Examples
@@ -203,10 +208,13 @@ class CtmParser:
 end=0.75, confidence=0.93, fragment=False)), time=0.75, line=1)
     """
 
-    def __init__(self, source: str) -> None:
+    def __init__(self, source: str, *, recording: str | None = None) -> None:
         self.source = source
-        self._recording: str | None = None
+        self._picked = recording is not None
+        self._recording: str | None = recording
         self._counts: dict[str, int] = {}
+        #: Every recording name seen, picked or not (to say what a file holds).
+        self.recordings: dict[str, None] = {}
 
     def parse_line(self, raw: str, number: int) -> TimedEvent | None:
         """The word on one line, or ``None`` for a blank or comment line."""
@@ -222,12 +230,15 @@ end=0.75, confidence=0.93, fragment=False)), time=0.75, line=1)
                 f"expected 5 or 6 fields (file channel start duration word [confidence]), "
                 f"got {len(fields)}")
         recording, channel, start_text, duration_text, text = fields[:5]
+        self.recordings[recording] = None
         if self._recording is None:
             self._recording = recording
         elif recording != self._recording:
+            if self._picked:
+                return None
             raise where.error(
                 f"a second recording {recording!r} after {self._recording!r}; "
-                "give one recording per input", "file")
+                "pick one with --recording NAME", "file")
         speaker = where.text(channel, "channel", MAX_ID_CHARS)
         start = where.number_field(_float(start_text, "start", where), "start")
         duration = where.number_field(_float(duration_text, "duration", where), "duration")
@@ -251,13 +262,35 @@ def _float(text: str, field: str, where: _Line) -> float:
         raise where.error(f"not a number: {text!r}", field) from None
 
 
-def parse_ctm(lines: Iterable[str], source: str) -> Iterator[TimedEvent]:
-    """Yield the words of CTM text in input order (one line at a time)."""
-    parser = CtmParser(source)
+def parse_ctm(lines: Iterable[str], source: str, *,
+              recording: str | None = None) -> Iterator[TimedEvent]:
+    """Yield the words of CTM text in input order (one line at a time).
+
+    Raises
+    ------
+    TranscriptFormatError
+        For a malformed line, a second recording when none was picked, or (at the end) a
+        picked recording the text does not hold.
+    """
+    parser = CtmParser(source, recording=recording)
     for number, raw in enumerate(lines, start=1):
         event = parser.parse_line(raw, number)
         if event is not None:
             yield event
+    if recording is not None and recording not in parser.recordings:
+        held = ", ".join(parser.recordings) or "none"
+        raise TranscriptFormatError(f"no recording {recording!r}; it holds: {held}",
+                                    source=source)
+
+
+def ctm_recordings(lines: Iterable[str]) -> list[str]:
+    """The recording names a CTM text holds, in order of first appearance."""
+    names: dict[str, None] = {}
+    for raw in lines:
+        stripped = raw.strip()
+        if stripped and not stripped.startswith(";;"):
+            names[stripped.split(None, 1)[0]] = None
+    return list(names)
 
 
 def sort_by_time(events: Iterable[TimedEvent]) -> list[TimedEvent]:
@@ -276,20 +309,32 @@ def sort_by_time(events: Iterable[TimedEvent]) -> list[TimedEvent]:
     return ordered
 
 
+#: Word-stream formats and the file name endings that name them.
+FORMAT_SUFFIXES: dict[str, tuple[str, ...]] = {
+    "ctm": (".ctm",),
+    "jsonl": (".jsonl", ".ndjson", ".json"),
+    "vtt": (".vtt",),
+    "stm": (".stm",),
+}
+
+
 def detect_format(path: Path) -> str:
-    """``"ctm"`` or ``"jsonl"`` from a file name; anything else is an error naming the file."""
+    """The format named by a file's ending (:data:`FORMAT_SUFFIXES`); anything else is an
+    error naming the file."""
     suffix = path.suffix.lower()
-    if suffix == ".ctm":
-        return "ctm"
-    if suffix in {".jsonl", ".ndjson", ".json"}:
-        return "jsonl"
+    for fmt, suffixes in FORMAT_SUFFIXES.items():
+        if suffix in suffixes:
+            return fmt
     raise TranscriptFormatError(
-        "cannot tell the format from the file name (.ctm or .jsonl); pass --format",
+        "cannot tell the format from the file name (.ctm, .jsonl, .vtt or .stm); pass --format",
         source=str(path))
 
 
-def read_events(path: Path, fmt: str = "auto") -> list[TimedEvent]:
-    """All events of a CTM or JSON Lines file, in arrival order.
+def read_events(path: Path, fmt: str = "auto", *,
+                recording: str | None = None) -> list[TimedEvent]:
+    """All events of a CTM, JSON Lines, WebVTT or STM file, in arrival order.
+
+    ``recording`` picks one recording of a CTM or STM file that holds several.
 
     Raises
     ------
@@ -304,8 +349,19 @@ def read_events(path: Path, fmt: str = "auto") -> list[TimedEvent]:
     except (OSError, UnicodeDecodeError) as exc:
         raise TranscriptFormatError(f"cannot read: {exc}", source=str(path)) from None
     lines = text.splitlines()
+    if recording is not None and kind not in ("ctm", "stm"):
+        raise TranscriptFormatError(f"--recording applies to CTM and STM files, not {kind}",
+                                    source=str(path))
     if kind == "ctm":
-        return sort_by_time(parse_ctm(lines, str(path)))
+        return sort_by_time(parse_ctm(lines, str(path), recording=recording))
     if kind == "jsonl":
         return list(parse_jsonl_events(lines, str(path)))
-    raise TranscriptFormatError(f"unknown format {fmt!r} (ctm or jsonl)", source=str(path))
+    # Imported here: _captions builds on this module's event types.
+    from midstream.client._captions import parse_stm, parse_webvtt  # noqa: PLC0415
+
+    if kind == "vtt":
+        return parse_webvtt(text, str(path))
+    if kind == "stm":
+        return parse_stm(lines, str(path), recording=recording)
+    raise TranscriptFormatError(f"unknown format {fmt!r} (ctm, jsonl, vtt or stm)",
+                                source=str(path))

@@ -72,8 +72,13 @@ class SentWord:
 
 def word_state_record(state: WordHypothesis) -> dict[str, Any]:
     record: dict[str, Any] = {"id": state.word_id, "speaker": state.speaker,
+                              "text": state.text,
                               "label": state.label.value, "confidence": round(state.confidence, 4),
                               "revision": state.revision, "final": state.final}
+    if state.start is not None:
+        record["start"] = state.start
+    if state.end is not None:
+        record["end"] = state.end
     if state.reparandum_of is not None:
         record["reparandum_of"] = state.reparandum_of
     if state.interruption_point:
@@ -174,13 +179,18 @@ class _Reader:
         if not isinstance(record, dict):
             raise self.error("a word state must be an object", "words")
         try:
+            # Logs written before word states carried their text have none: "" then.
+            start, end = record.get("start"), record.get("end")
             return WordHypothesis(
                 word_id=str(self.get(record, "id")), speaker=str(self.get(record, "speaker")),
                 label=DisfluencyLabel(self.get(record, "label")),
                 confidence=float(self.get(record, "confidence")),
                 revision=int(self.get(record, "revision")), final=bool(self.get(record, "final")),
                 reparandum_of=record.get("reparandum_of"),
-                interruption_point=bool(record.get("interruption_point", False)))
+                interruption_point=bool(record.get("interruption_point", False)),
+                text=str(record.get("text", "")),
+                start=None if start is None else float(start),
+                end=None if end is None else float(end))
         except (ValueError, TypeError) as exc:
             raise self.error(f"bad word state: {exc}", "words") from None
 

@@ -160,11 +160,16 @@ class Conversation:
 class WordHypothesis:
     """The current hypothesis about one streamed word.
 
-    ``revision`` counts how many times the published label or confidence changed (0 for the
-    first publication). Once ``final`` is true the label never changes again.
+    ``revision`` counts how many times the published state changed (0 for the first
+    publication). Once ``final`` is true the label never changes again.
     ``reparandum_of`` links a reparandum or restart word to the repair onset that replaces it
     (``None`` for a restart or any other label); ``interruption_point`` is true on the last word
     of a reparandum.
+
+    ``text`` is the word as the engine tagged it (the recogniser's text, lower-cased, punctuation
+    stripped; ``""`` where a producer did not say) and ``start``/``end`` its times in seconds as
+    the caller gave them, so a subscriber can show and join words without the recogniser's
+    output. A replacement of the word's text or times is republished with ``revision`` + 1.
     """
 
     word_id: str
@@ -175,6 +180,9 @@ class WordHypothesis:
     final: bool
     reparandum_of: str | None = None
     interruption_point: bool = False
+    text: str = ""
+    start: float | None = None
+    end: float | None = None
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

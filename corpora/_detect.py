@@ -10,25 +10,28 @@ mrda       a ``database/`` folder holding ``.dadb`` files
 maptask    a ``moves/`` folder holding ``.moves.xml`` files
 disfl_qa   a ``train.json`` or ``dev.json`` file
 jsonl      a ``.jsonl`` file, or a folder holding ``.jsonl`` files
+inline     an ``.inline`` file, or a folder holding ``.inline`` files
 ========== ===============================================================
 
 Splits are lists of conversation names, one a line, in ``splits/<split>.txt`` inside the corpus
-folder (SwDA conversation numbers, MRDA meeting names, Map Task dialogue names, JSON Lines
-conversation ids). Disfl-QA has a file per split instead (``train`` is ``train.json``, ``val`` is
-``dev.json``). The test splits of the shipped corpora are held back, so asking for ``test`` there
-fails with a message that says so.
+folder (SwDA conversation numbers, MRDA meeting names, Map Task dialogue names, JSON Lines and
+inline-markup conversation ids). Disfl-QA has a file per split instead (``train`` is
+``train.json``, ``val`` is ``dev.json``). The test splits of the shipped corpora are held back,
+so asking for ``test`` there fails with a message that says so.
 """
 
 from __future__ import annotations
 
 import re
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from enum import StrEnum
 from pathlib import Path
 
 from midstream._errors import CorpusNotFoundError
 from midstream._types import Conversation
 from midstream.corpora._disflqa import read_disflqa
+from midstream.corpora._inline import SUFFIX as INLINE_SUFFIX
+from midstream.corpora._inline import read_inline
 from midstream.corpora._jsonl import read_jsonl
 from midstream.corpora._maptask import read_maptask
 from midstream.corpora._mrda import read_mrda
@@ -43,10 +46,12 @@ class CorpusKind(StrEnum):
     MAPTASK = "maptask"
     DISFL_QA = "disfl_qa"
     JSONL = "jsonl"
+    INLINE = "inline"
 
 
 _LOOKED_FOR = ("sw*utt/*.utt (SwDA), database/*.dadb (MRDA), moves/*.moves.xml (Map Task), "
-               "train.json or dev.json (Disfl-QA), *.jsonl (Midstream JSON Lines)")
+               "train.json or dev.json (Disfl-QA), *.jsonl (Midstream JSON Lines), "
+               "*.inline (inline disfluency markup)")
 _SPLIT_NAME = re.compile(r"[A-Za-z0-9_-]{1,64}")
 _HELD_BACK = ("the test splits of the annotated corpora are held back on purpose: tune on "
               "train, report on val")
@@ -57,7 +62,7 @@ def _has(folder: Path, pattern: str) -> bool:
 
 
 def detect_kind(path: Path | str) -> CorpusKind:
-    """The kind of corpus at ``path`` (a folder, or a ``.jsonl`` file).
+    """The kind of corpus at ``path`` (a folder, or a ``.jsonl`` or ``.inline`` file).
 
     Raises
     ------
@@ -77,8 +82,10 @@ def detect_kind(path: Path | str) -> CorpusKind:
     if path.is_file():
         if path.suffix == ".jsonl":
             return CorpusKind.JSONL
-        raise CorpusNotFoundError(f"{path}: a file, but not a .jsonl file; looked for "
-                                  f"{_LOOKED_FOR}")
+        if path.suffix == INLINE_SUFFIX:
+            return CorpusKind.INLINE
+        raise CorpusNotFoundError(f"{path}: a file, but not a .jsonl file (nor "
+                                  f"{INLINE_SUFFIX}); looked for {_LOOKED_FOR}")
     if not path.is_dir():
         raise CorpusNotFoundError(f"{path}: no such file or folder")
     if _has(path, "sw*utt/*.utt"):
@@ -91,6 +98,8 @@ def detect_kind(path: Path | str) -> CorpusKind:
         return CorpusKind.DISFL_QA
     if _has(path, "*.jsonl"):
         return CorpusKind.JSONL
+    if _has(path, f"*{INLINE_SUFFIX}"):
+        return CorpusKind.INLINE
     raise CorpusNotFoundError(f"{path}: no corpus of a known kind; looked for {_LOOKED_FOR}")
 
 
@@ -122,7 +131,7 @@ def read_corpus(path: Path | str, *, split: str | None = None) -> Iterator[Conve
     Parameters
     ----------
     path : Path or str
-        A corpus folder, a folder of ``.jsonl`` files, or one ``.jsonl`` file.
+        A corpus folder, a folder of ``.jsonl`` or ``.inline`` files, or one such file.
     split : str, optional
         ``"train"``, ``"val"`` (or another list in ``splits/``); everything when ``None``.
 
@@ -150,17 +159,21 @@ def read_corpus(path: Path | str, *, split: str | None = None) -> Iterator[Conve
         if split is not None:
             raise CorpusNotFoundError(f"{path}: a single file has no splits; put it in a folder "
                                       "with splits/<split>.txt listing conversation ids")
-        return read_jsonl(path)
+        return read_inline(path) if kind is CorpusKind.INLINE else read_jsonl(path)
     names = None if split is None else split_names(path, split)
     if kind is CorpusKind.MRDA:
         return read_mrda(path, ids=names)
     if kind is CorpusKind.MAPTASK:
         return read_maptask(path, ids=names)
-    return _read_jsonl_folder(path, None if names is None else frozenset(names))
+    keep = None if names is None else frozenset(names)
+    if kind is CorpusKind.INLINE:
+        return _read_folder(path, f"*{INLINE_SUFFIX}", read_inline, keep)
+    return _read_folder(path, "*.jsonl", read_jsonl, keep)
 
 
-def _read_jsonl_folder(folder: Path, keep: frozenset[str] | None) -> Iterator[Conversation]:
-    for file in sorted(folder.glob("*.jsonl")):
-        for conversation in read_jsonl(file):
+def _read_folder(folder: Path, pattern: str, read: Callable[[Path], Iterator[Conversation]],
+                 keep: frozenset[str] | None) -> Iterator[Conversation]:
+    for file in sorted(folder.glob(pattern)):
+        for conversation in read(file):
             if keep is None or conversation.id in keep:
                 yield conversation

@@ -70,7 +70,11 @@ class _Slot:
     word_id: str
     speaker: str
     key: int
+    #: The normalised text the decoder tagged; published states hold this same string object,
+    #: so carrying the word in every update costs a reference, not a copy.
     text: str
+    start: float | None = None
+    end: float | None = None
     label: DisfluencyLabel = DisfluencyLabel.FLUENT
     ends_utterance: bool = False
     final: bool = False
@@ -168,7 +172,8 @@ class ConversationEngine:
         channel = self._channel(word.speaker)
         key = channel.next_key
         channel.next_key += 1
-        slot = _Slot(word_id=word_id, speaker=word.speaker, key=key, text=token.text)
+        slot = _Slot(word_id=word_id, speaker=word.speaker, key=key, text=token.text,
+                     start=word.start, end=word.end)
         channel.slots[key] = slot
         channel.open_keys.append(key)
         self._by_id[word_id] = slot
@@ -197,6 +202,7 @@ class ConversationEngine:
         if token is None:
             raise EventError(f"word {word_id!r}: replacement text has no speech content")
         slot.text = token.text
+        slot.start, slot.end = word.start, word.end
         channel = self._channels[slot.speaker]
         clean = _clean_word(word, token.text, token.fragment or word.fragment)
         states = channel.decoder.replace(slot.key, clean)
@@ -310,18 +316,42 @@ class ConversationEngine:
                     previous.label is state.label and previous.final == final
                     and previous.reparandum_of == link
                     and previous.interruption_point == state.interruption_point
-                    and abs(previous.confidence - state.confidence) < step):
+                    and abs(previous.confidence - state.confidence) < step
+                    and previous.text is slot.text):
                 continue
             slot.published = hypothesis = WordHypothesis(
                 word_id=slot.word_id, speaker=slot.speaker, label=state.label,
                 confidence=state.confidence,
                 revision=0 if previous is None else previous.revision + 1,
                 final=final, reparandum_of=link, interruption_point=state.interruption_point,
+                text=slot.text, start=slot.start, end=slot.end,
             )
             words.append(hypothesis)
+        if revised is not None:
+            self._republish_revised(slots.get(revised), words)
         utterances = self._resegment(channel, close_all=close_all, changed=changed)
         return HypothesisDiff(words=tuple(words), utterances=tuple(utterances),
                               withdrawn_word_ids=withdrawn)
+
+    @staticmethod
+    def _republish_revised(slot: _Slot | None, words: list[WordHypothesis]) -> None:
+        """Republish a replaced word whose text or times moved when its tag did not.
+
+        The decoder reports a word only when its tag state moved; a subscriber must still
+        learn the word's new text and times.
+        """
+        if slot is None or slot.published is None:
+            return
+        previous = slot.published
+        if previous.text is slot.text and previous.start == slot.start \
+                and previous.end == slot.end:
+            return
+        slot.published = hypothesis = WordHypothesis(
+            word_id=previous.word_id, speaker=previous.speaker, label=previous.label,
+            confidence=previous.confidence, revision=previous.revision + 1, final=previous.final,
+            reparandum_of=previous.reparandum_of, interruption_point=previous.interruption_point,
+            text=slot.text, start=slot.start, end=slot.end)
+        words.append(hypothesis)
 
     def _groups(self, channel: _Channel, close_all: bool) -> list[tuple[int, ...]]:
         """Split the channel's open words at the currently hypothesised utterance ends."""

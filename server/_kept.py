@@ -21,7 +21,7 @@ published state and turned back into objects only when read: snapshots, replays 
 
 from __future__ import annotations
 
-from typing import Any, Final, TypeAlias
+from typing import Any, Final, TypeAlias, TypeGuard
 
 from midstream._types import (
     DisfluencyLabel,
@@ -32,8 +32,10 @@ from midstream._types import (
     WordHypothesis,
 )
 
-#: ``(word_id, speaker, label, confidence, revision, final, reparandum_of, interruption_point)``
-WordRecord: TypeAlias = tuple[str, str, str, float, int, bool, "str | None", bool]
+#: ``(word_id, speaker, label, confidence, revision, final, reparandum_of, interruption_point,
+#: text, start, end)``; the text is the engine's own string object, not a copy.
+WordRecord: TypeAlias = tuple[str, str, str, float, int, bool, "str | None", bool, str,
+                              "float | None", "float | None"]
 #: ``(utterance_id, speaker, word ids joined by ID_SEPARATOR, clean_text, function, fine_class,
 #: confidence, revision, final)``
 UtteranceRecord: TypeAlias = tuple[str, str, str, str, str, str, float, int, bool]
@@ -56,16 +58,28 @@ _LABELS: Final = {label.value: label for label in DisfluencyLabel}
 _FUNCTIONS: Final = {function.value: function for function in UtteranceFunction}
 
 
+def is_word_record(record: WordRecord | UtteranceRecord) -> TypeGuard[WordRecord]:
+    """Whether a kept state record is a word's (11 fields; an utterance's has 9)."""
+    return len(record) == 11
+
+
+def is_utterance_record(record: WordRecord | UtteranceRecord) -> TypeGuard[UtteranceRecord]:
+    return len(record) == 9
+
+
 def pack_word(word: WordHypothesis) -> WordRecord:
     return (word.word_id, word.speaker, word.label.value, float(word.confidence), word.revision,
-            word.final, word.reparandum_of, word.interruption_point)
+            word.final, word.reparandum_of, word.interruption_point, word.text, word.start,
+            word.end)
 
 
 def unpack_word(record: WordRecord) -> WordHypothesis:
-    word_id, speaker, label, confidence, revision, final, reparandum_of, ip = record
+    word_id, speaker, label, confidence, revision, final, reparandum_of, ip, text, start, end = \
+        record
     return WordHypothesis(word_id=word_id, speaker=speaker, label=_LABELS[label],
                           confidence=confidence, revision=revision, final=final,
-                          reparandum_of=reparandum_of, interruption_point=ip)
+                          reparandum_of=reparandum_of, interruption_point=ip, text=text,
+                          start=start, end=end)
 
 
 def _join(ids: tuple[str, ...]) -> str:

@@ -47,6 +47,8 @@ from midstream.server._kept import (
     UpdateRecord,
     UtteranceRecord,
     WordRecord,
+    is_utterance_record,
+    is_word_record,
     pack_update,
     pack_utterance,
     pack_word,
@@ -126,10 +128,12 @@ def _to_wire(update: HypothesisUpdate) -> pb.ServerMessage:
 
 
 def _unpack_state(record: WordRecord | UtteranceRecord) -> State:
-    # The two record shapes differ in length (8 and 9 fields).
-    if len(record) == 8:
+    if is_word_record(record):
         return unpack_word(record)
-    return unpack_utterance(record)
+    if is_utterance_record(record):
+        return unpack_utterance(record)
+    raise ValueError(f"a kept record of {len(record)} fields is neither a word's nor an "
+                     "utterance's")
 
 
 def merge_diffs(diffs: Iterable[HypothesisDiff]) -> HypothesisDiff:

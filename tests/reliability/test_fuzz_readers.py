@@ -19,7 +19,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from midstream import TranscriptFormatError
 from midstream.client._inputs import CtmParser, JsonlEventParser, read_events
-from midstream.corpora import read_jsonl
+from midstream.corpora import read_inline, read_jsonl
 from midstream.corpora._maptask import parse_transcript_line, read_maptask_dialogue, read_moves
 from midstream.corpora._mrda import parse_dadb_line, parse_trans_line, read_mrda_meeting
 from midstream.corpora._swda import parse_conversation
@@ -33,7 +33,8 @@ _PIECES = st.sampled_from([
     b"\t", b"\n", b"\r\n", b"\r", b" ", b"\x00", b"\xff", b"\xc3", b"\xe2\x80", b"{", b"}",
     b"[", b"]", b"\"", b"/", b",", b":", b"-", b"+", b"#", b";;", b"1e999", b"NaN", b"-0.5",
     b"g", b"f", b"A", b"B.1", b"<move", b"/>", b"<?xml version='1.0'?>",
-    b"&#0;", b"{D", b"{F uh }", b"[ i, + i ]", b"sd", b"qy^d",
+    b"&#0;", b"{D", b"{F uh }", b"[ i, + i ]", b"sd", b"qy^d", b"WEBVTT\n", b"-->",
+    b"00:01.000", b"<v A>", b"</v>", b"statement:",
 ])
 _BYTES = st.one_of(
     st.binary(max_size=300),
@@ -97,7 +98,19 @@ def test_jsonl_corpus_reader_takes_any_bytes(data: bytes) -> None:
             list(read_jsonl(io.BytesIO(payload)))
 
 
-@pytest.mark.parametrize("suffix", [".ctm", ".jsonl"])
+@_SETTINGS
+@given(data=_BYTES)
+def test_inline_markup_reader_takes_any_bytes(tmp_path: Path, data: bytes) -> None:
+    path = tmp_path / "calls.inline"
+    for payload in (data, b"@format midstream-inline 1\n@conversation c\n" + data):
+        path.write_bytes(payload)
+        try:
+            list(read_inline(path))
+        except TranscriptFormatError as error:
+            assert str(path) in str(error)
+
+
+@pytest.mark.parametrize("suffix", [".ctm", ".jsonl", ".vtt", ".stm"])
 @_SETTINGS
 @given(data=_BYTES)
 def test_word_event_files_take_any_bytes(tmp_path: Path, suffix: str, data: bytes) -> None:

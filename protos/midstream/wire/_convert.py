@@ -188,6 +188,9 @@ def word_state_to_wire(state: WordHypothesis) -> pb.WordState:
         final=state.final,
         repaired_by=state.reparandum_of or "",
         interruption_point=state.interruption_point,
+        text=state.text,
+        start_s=state.start,
+        end_s=state.end,
     )
 
 
@@ -202,6 +205,9 @@ def word_state_from_wire(message: pb.WordState) -> WordHypothesis:
         final=message.final,
         reparandum_of=message.repaired_by or None,
         interruption_point=message.interruption_point,
+        text=message.text,
+        start=message.start_s if message.HasField("start_s") else None,
+        end=message.end_s if message.HasField("end_s") else None,
     )
 
 
@@ -257,9 +263,11 @@ def update_into_wire(update: HypothesisUpdate, message: pb.Update) -> None:
     message.server_time = update.server_time
     add_word, roles = message.words.add, _LABEL_TO_WIRE
     for w in diff.words:
+        # None leaves an optional field unset, as the caller gave no time.
         add_word(word_id=w.word_id, speaker=w.speaker, role=roles[w.label],
                  confidence=w.confidence, revision=w.revision, final=w.final,
-                 repaired_by=w.reparandum_of or "", interruption_point=w.interruption_point)
+                 repaired_by=w.reparandum_of or "", interruption_point=w.interruption_point,
+                 text=w.text, start_s=w.start, end_s=w.end)
     add_utterance, functions = message.utterances.add, _FUNCTION_TO_WIRE
     for u in diff.utterances:
         add_utterance(utterance_id=u.utterance_id, speaker=u.speaker, word_ids=u.word_ids,

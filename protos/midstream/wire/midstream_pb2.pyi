@@ -185,7 +185,7 @@ class ServerFrame(_message.Message):
     def __init__(self, replies: _Optional[_Iterable[_Union[ChannelReply, _Mapping]]] = ...) -> None: ...
 
 class WordState(_message.Message):
-    __slots__ = ("word_id", "speaker", "role", "confidence", "revision", "final", "repaired_by", "interruption_point")
+    __slots__ = ("word_id", "speaker", "role", "confidence", "revision", "final", "repaired_by", "interruption_point", "text", "start_s", "end_s")
     WORD_ID_FIELD_NUMBER: _ClassVar[int]
     SPEAKER_FIELD_NUMBER: _ClassVar[int]
     ROLE_FIELD_NUMBER: _ClassVar[int]
@@ -194,6 +194,9 @@ class WordState(_message.Message):
     FINAL_FIELD_NUMBER: _ClassVar[int]
     REPAIRED_BY_FIELD_NUMBER: _ClassVar[int]
     INTERRUPTION_POINT_FIELD_NUMBER: _ClassVar[int]
+    TEXT_FIELD_NUMBER: _ClassVar[int]
+    START_S_FIELD_NUMBER: _ClassVar[int]
+    END_S_FIELD_NUMBER: _ClassVar[int]
     word_id: str
     speaker: str
     role: WordRole
@@ -202,7 +205,10 @@ class WordState(_message.Message):
     final: bool
     repaired_by: str
     interruption_point: bool
-    def __init__(self, word_id: _Optional[str] = ..., speaker: _Optional[str] = ..., role: _Optional[_Union[WordRole, str]] = ..., confidence: _Optional[float] = ..., revision: _Optional[int] = ..., final: _Optional[bool] = ..., repaired_by: _Optional[str] = ..., interruption_point: _Optional[bool] = ...) -> None: ...
+    text: str
+    start_s: float
+    end_s: float
+    def __init__(self, word_id: _Optional[str] = ..., speaker: _Optional[str] = ..., role: _Optional[_Union[WordRole, str]] = ..., confidence: _Optional[float] = ..., revision: _Optional[int] = ..., final: _Optional[bool] = ..., repaired_by: _Optional[str] = ..., interruption_point: _Optional[bool] = ..., text: _Optional[str] = ..., start_s: _Optional[float] = ..., end_s: _Optional[float] = ...) -> None: ...
 
 class UtteranceState(_message.Message):
     __slots__ = ("utterance_id", "speaker", "word_ids", "clean_text", "function", "fine_class", "confidence", "revision", "final")
