@@ -57,7 +57,9 @@ class Printer:
             self._note(f"[gap: updates from {event.first_missing} are lost "
                        f"({event.reason.value}); a snapshot follows]")
         elif isinstance(event, Reconnected):
-            self._note(f"[reconnected, attempt {event.attempt}, from seq {event.from_seq}]")
+            where = (f"from seq {event.from_seq}" if event.from_seq is not None
+                     else "from a snapshot")
+            self._note(f"[connection lost: reconnecting {where}, attempt {event.attempt}]")
         elif isinstance(event, Snapshot):
             self._note(f"[snapshot as of seq {event.seq}]")
         if self._quiet:

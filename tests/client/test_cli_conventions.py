@@ -9,6 +9,7 @@ from importlib import metadata
 from pathlib import Path
 
 import pytest
+from client_kit import free_port
 from midstream import InputError
 from midstream.client import _cmd_serve
 from midstream.client._cli import build_parser, main, verbosity
@@ -85,3 +86,14 @@ def test_serve_help_documents_the_environment_variables(
     for name in ("MIDSTREAM_HOST", "MIDSTREAM_PORT", "MIDSTREAM_MODELS"):
         assert name in text
     assert "the option wins" in text
+
+
+def test_subscribe_to_a_server_that_is_not_there_says_it_cannot_connect(
+        capsys: pytest.CaptureFixture[str]) -> None:
+    target = f"127.0.0.1:{free_port()}"
+    assert main(["subscribe", "call-7", "--server", target]) == 3
+    captured = capsys.readouterr()
+    assert "reconnect" not in captured.out + captured.err
+    lines = captured.err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"midstream: server {target}: ")
+    assert "cannot reach the server" in lines[0]
