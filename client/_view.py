@@ -205,6 +205,7 @@ class TerminalView:
         self._width = width
         self._order = SpokenOrder(board)
         self._drawn = 0
+        self._speaker_width = 1
 
     def _columns(self) -> int:
         width = self._width() if callable(self._width) else self._width
@@ -212,8 +213,7 @@ class TerminalView:
         return max(width - 1, 20)
 
     def _parts(self, utterance: UtteranceHypothesis) -> tuple[str, str]:
-        speakers = max((len(u.speaker) for u in self._board.utterances.values()), default=1)
-        prefix = utterance_prefix(utterance, speaker_width=min(speakers, 8))
+        prefix = utterance_prefix(utterance, speaker_width=self._speaker_width)
         body = (self._board.clean(utterance) if self._clean
                 else self._board.marked(utterance))
         return prefix, body
@@ -248,6 +248,11 @@ class TerminalView:
         """
         self._order.note(changed)
         columns = self._columns()
+        for utterance_id in changed:
+            # Speaker column as wide as the longest name seen (at most 8): narrow terminals
+            # keep their columns for words.
+            speaker = self._board.utterances[utterance_id].speaker
+            self._speaker_width = max(self._speaker_width, min(len(speaker), 8))
         released = self._order.release(force=ended or self._board.final)
         rows = [row for u in released for row in self._released_rows(u, columns)]
         live = [self._live_row(u, columns) for u in self._order.waiting()]
