@@ -16,7 +16,8 @@ from collections.abc import Sequence
 from midstream._types import DisfluencyLabel
 from midstream.client._analysis import WordTimeline
 
-__all__ = ["WORDS_PER_PANEL", "accuracy_svg", "confusion_svg", "legend_svg", "timeline_svgs"]
+__all__ = ["COLOURS", "WORDS_PER_PANEL", "accuracy_svg", "confusion_svg", "legend_svg",
+           "timeline_svgs"]
 
 #: Words per timeline panel: about as many rows as a screen shows at a readable size.
 WORDS_PER_PANEL = 40
