@@ -41,8 +41,8 @@ class Printer:
         self._clean = clean
         self._rates = rates
         self._quiet = quiet
-        self._view = TerminalView(out, self.board, clean=clean, width=_terminal_width) \
-            if live and not json_lines else None
+        self._view = TerminalView(out, self.board, clean=clean, width=_terminal_width,
+                                  height=_terminal_height) if live and not json_lines else None
         self._order = SpokenOrder(self.board)
 
     def word(self, word: SentWord) -> None:
@@ -104,6 +104,11 @@ class Printer:
 def _terminal_width() -> int:
     """Columns of the terminal now (asked on every redraw, so a resized window is followed)."""
     return shutil.get_terminal_size().columns
+
+
+def _terminal_height() -> int:
+    """Rows of the terminal now."""
+    return shutil.get_terminal_size().lines
 
 
 async def lines_from_thread(iterator: Iterator[TimedEvent], *, bound: int = 256

@@ -167,8 +167,13 @@ class SpokenOrder:
         waiting = [board.utterances[u] for u in self._pending if board.utterances[u].word_ids]
         return sorted(waiting, key=lambda u: (board.spoken_position(u), u.utterance_id))
 
-    def release(self, *, force: bool = False) -> list[UtteranceHypothesis]:
-        """The utterances now due, in spoken order; each is released once."""
+    def release(self, *, force: bool = False, keep: int | None = None
+                ) -> list[UtteranceHypothesis]:
+        """The utterances now due, in spoken order; each is released once.
+
+        ``keep``: at most this many may stay waiting; beyond it the earliest final ones are
+        released although an open one began before them (a screen holds only so many rows).
+        """
         for utterance_id in list(self._pending):
             utterance = self._board.utterances[utterance_id]
             if utterance.final and not utterance.word_ids:
@@ -182,6 +187,17 @@ class SpokenOrder:
             due.append(utterance)
             self._pending.discard(utterance.utterance_id)
             self._released.add(utterance.utterance_id)
+        if keep is not None:
+            waiting = self.waiting()
+            excess = len(waiting) - keep
+            for utterance in waiting:
+                if excess <= 0:
+                    break
+                if utterance.final:
+                    due.append(utterance)
+                    self._pending.discard(utterance.utterance_id)
+                    self._released.add(utterance.utterance_id)
+                    excess -= 1
         return due
 
 
@@ -190,7 +206,8 @@ class TerminalView:
 
     Every row written is shorter than the terminal (``width`` is asked on each redraw, so a
     resized window is followed): a row the terminal wrapped would put the cursor-up count out
-    and garble the screen. A live utterance is one row showing the end of its words (``…``
+    and garble the screen; so would a live area taller than the screen (``height``). A live
+    utterance is one row showing the end of its words (``…``
     where the start was cut: the newest words are the ones changing); a released one is
     wrapped under its words' column. Uses only two ANSI sequences (cursor up, erase line),
     which every terminal emulator of the last decades understands; it is used only when the
@@ -198,11 +215,13 @@ class TerminalView:
     """
 
     def __init__(self, out: TextIO, board: Board, *, clean: bool,
-                 width: int | Callable[[], int] = 160) -> None:
+                 width: int | Callable[[], int] = 160,
+                 height: int | Callable[[], int] = 1000) -> None:
         self._out = out
         self._board = board
         self._clean = clean
         self._width = width
+        self._height = height
         self._order = SpokenOrder(board)
         self._drawn = 0
         self._speaker_width = 1
@@ -253,9 +272,14 @@ class TerminalView:
             # keep their columns for words.
             speaker = self._board.utterances[utterance_id].speaker
             self._speaker_width = max(self._speaker_width, min(len(speaker), 8))
-        released = self._order.release(force=ended or self._board.final)
+        # Cursor-up cannot climb above the screen's top row: the live area stays shorter than
+        # the screen, releasing early (or, when open utterances alone overflow it, showing
+        # the latest of them).
+        lines = self._height() if callable(self._height) else self._height
+        room = max(lines - 1, 1)
+        released = self._order.release(force=ended or self._board.final, keep=room)
         rows = [row for u in released for row in self._released_rows(u, columns)]
-        live = [self._live_row(u, columns) for u in self._order.waiting()]
+        live = [self._live_row(u, columns) for u in self._order.waiting()][-room:]
         if self._drawn:
             self._out.write(f"\x1b[{self._drawn}A")
         # Released rows go above the live area and are never redrawn.

@@ -19,12 +19,14 @@ from midstream.client._results import Ended, EndReason
 from midstream.client._view import Board, TerminalView
 
 
-def _screen(output: str, width: int = 1000) -> list[str]:
-    """What a terminal ``width`` columns wide shows after ``output``.
+def _screen(output: str, width: int = 1000, height: int = 100_000) -> list[str]:
+    """What a terminal ``width`` columns by ``height`` rows shows after ``output`` (scrollback
+    included).
 
     Replays the two ANSI sequences the view uses (cursor up, erase line) and wraps text that
     reaches the right edge onto the next row, as a terminal does: a view that writes rows wider
-    than the terminal leaves its cursor-up count wrong and the screen garbled.
+    than the terminal leaves its cursor-up count wrong and the screen garbled. Cursor-up stops
+    at the top of the visible screen (the last ``height`` rows), as on a terminal.
     """
     rows: list[list[str]] = [[]]
     row = column = 0
@@ -36,7 +38,7 @@ def _screen(output: str, width: int = 1000) -> list[str]:
         elif token == "\x1b[2K":
             rows[row] = []
         elif token.startswith("\x1b["):
-            row = max(row - int(token[2:-1]), 0)
+            row = max(row - int(token[2:-1]), len(rows) - height, 0)
         else:
             for char in token:
                 if column == width:
@@ -182,3 +184,30 @@ def test_outside_a_terminal_utterances_print_in_spoken_order() -> None:
     assert lines[0].split()[0] == "caller-A" and lines[0].endswith("if nobody minds")
     assert lines[1].split()[0] == "B" and lines[1].endswith("mhm right")
     assert lines[2].startswith("[conversation ended")
+
+
+def test_a_live_area_taller_than_the_screen_releases_early_instead_of_garbling() -> None:
+    # A's turn stays open while B backchannels nine times (invented): in spoken order all nine
+    # would wait behind A's turn, more rows than a 6-row terminal can redraw.
+    width, height = 80, 6
+    board = Board()
+    board.note_text("a0", "so")
+    for i in range(9):
+        board.note_text(f"b{i}", f"mhm{i}")
+    out = io.StringIO()
+    view = TerminalView(out, board, clean=False, width=width, height=height)
+    steps = [_update(1, DisfluencyLabel.FLUENT, UtteranceFunction.STATEMENT, final=False,
+                     words=("a0",), utterance_id="ua", speaker="A")]
+    steps += [_update(2 + i, DisfluencyLabel.FLUENT, UtteranceFunction.ACKNOWLEDGEMENT,
+                      final=True, words=(f"b{i}",), utterance_id=f"ub{i}", speaker="B")
+              for i in range(9)]
+    steps.append(_update(11, DisfluencyLabel.FLUENT, UtteranceFunction.STATEMENT, final=True,
+                         words=("a0",), utterance_id="ua", speaker="A"))
+    for update in steps:
+        changed, _ = board.apply(update)
+        view.refresh(changed)
+    screen = _screen(out.getvalue(), width, height)
+    # Every utterance ends on screen exactly once, none still marked live.
+    assert sorted(row.rsplit(" | ", 1)[1] for row in screen) == sorted(
+        ["so", *(f"mhm{i}" for i in range(9))])
+    assert all("~" not in row for row in screen)
