@@ -85,7 +85,8 @@ def build_parser() -> argparse.ArgumentParser:
     # A command's own namespace is merged into the top one after parsing, so each level counts
     # its -v under a name of its own; main() adds them up.
     for depth_parser in _command_parsers(parser):
-        _add_global_options(depth_parser, dest=f"verbose_{id(depth_parser)}")
+        _add_global_options(depth_parser,
+                            dest="verbose_" + depth_parser.prog.replace(" ", "_"))
     return parser
 
 
