@@ -84,5 +84,10 @@ def run(args: argparse.Namespace) -> int:
         json.dump(clean, sys.stdout, indent=2, sort_keys=True)
         sys.stdout.write("\n")
     else:
+        split = f", split {args.split}" if args.split else ""
+        count = len(conversations)
+        print(f"{count} conversation{'s' if count != 1 else ''} of {args.corpus}{split}, "
+              "replayed word by "
+              "word; --json gives every figure by key\n")
         print(format_figures(figures))
     return 0
