@@ -87,7 +87,6 @@ def run(args: argparse.Namespace) -> int:
         split = f", split {args.split}" if args.split else ""
         count = len(conversations)
         print(f"{count} conversation{'s' if count != 1 else ''} of {args.corpus}{split}, "
-              "replayed word by "
-              "word; --json gives every figure by key\n")
+              "replayed word by word; --json gives every figure by key\n")
         print(format_figures(figures))
     return 0
