@@ -33,6 +33,7 @@ from __future__ import annotations
 import asyncio
 import json
 import logging
+import random
 from collections.abc import AsyncGenerator, AsyncIterator, Iterable, Sequence
 from dataclasses import dataclass
 from types import TracebackType
@@ -89,18 +90,42 @@ class RetryPolicy:
     """How a follower reconnects after losing its stream.
 
     Attempt ``n`` (from 1) waits ``min(max_backoff, initial_backoff * multiplier ** (n - 1))``
-    seconds first; after ``max_attempts`` consecutive failures the last error is raised. A
-    message received resets the count. Values are common practice, no source.
+    seconds, less a random share of up to ``jitter`` of it (the wait is drawn uniformly from
+    ``[(1 - jitter) * w, w]``), so that followers cut off together do not all come back in the
+    same instant (the "equal jitter" of exponential backoff, common practice; from memory).
+    ``seed`` fixes the random draws (tests); ``None`` seeds from the system. After
+    ``max_attempts`` consecutive failures the last error is raised; a message received resets
+    the count. Values are common practice, no source.
     """
 
     max_attempts: int = 5
     initial_backoff: float = 0.2
     max_backoff: float = 5.0
     multiplier: float = 2.0
+    jitter: float = 0.5
+    seed: int | None = None
 
-    def delay(self, attempt: int) -> float:
-        """Seconds to wait before attempt ``attempt`` (counted from 1)."""
-        return float(min(self.max_backoff, self.initial_backoff * self.multiplier ** (attempt - 1)))
+    def __post_init__(self) -> None:
+        if self.max_attempts < 0 or self.initial_backoff < 0 or self.max_backoff < 0 \
+                or self.multiplier < 1 or not 0.0 <= self.jitter <= 1.0:
+            raise InputError(f"RetryPolicy: attempts and backoffs must be >= 0, multiplier "
+                             f">= 1 and jitter within [0, 1]; got {self!r}")
+
+    def delay(self, attempt: int, rng: random.Random | None = None) -> float:
+        """Seconds to wait before attempt ``attempt`` (counted from 1).
+
+        ``rng`` draws the jitter (a :class:`Client` keeps one seeded with ``seed``); without
+        one the full, un-jittered wait is returned.
+        """
+        full = float(min(self.max_backoff, self.initial_backoff * self.multiplier ** (attempt - 1)))
+        if rng is None or not self.jitter:
+            return full
+        return full * (1.0 - self.jitter * rng.random())
+
+    def random_source(self) -> random.Random:
+        """A random source for :meth:`delay`, seeded with ``seed``."""
+        # Spreads retries in time; nothing secret depends on it.
+        return random.Random(self.seed)
 
 
 def _server_event(message: pb.ServerMessage) -> ServerEvent:
@@ -173,6 +198,7 @@ class Client:
         self._root_certificates = root_certificates
         self._timeout = timeout
         self._retry = retry or RetryPolicy()
+        self._backoff_random = self._retry.random_source()
         self._channel: grpc.aio.Channel | None = None
         self._stub: Any = None
 
@@ -250,11 +276,13 @@ class Client:
         yields :class:`Reconnected`, and the server answers with the missed updates or, when
         they fell out of its buffer, with a :class:`Gap` and a :class:`Snapshot`: a gap is
         never silent. Gives up after the client's :class:`RetryPolicy` and raises the mapped
-        error (:class:`midstream.UnavailableError` for a vanished server).
+        error (:class:`midstream.UnavailableError` for a vanished server). A server that never
+        answered (not there, wrong address) is not retried: the first error is raised as is.
         """
         stub = self._require_stub()
         next_seq = from_seq
         attempt = 0
+        heard = False
         while True:
             request = pb.FollowRequest(conversation_id=conversation_id)
             if next_seq is not None:
@@ -263,6 +291,7 @@ class Client:
             try:
                 async for message in call:
                     attempt = 0
+                    heard = True
                     event = _server_event(message)
                     if isinstance(event, HypothesisUpdate | Snapshot):
                         next_seq = event.seq + 1
@@ -273,12 +302,18 @@ class Client:
                 return
             except grpc.RpcError as exc:
                 code = exc.code() if isinstance(exc, grpc.aio.AioRpcError) else None
-                if code not in RETRYABLE or attempt >= self._retry.max_attempts:
+                # Retrying is for a stream that was lost. A server never heard from is not
+                # there (or refuses us): say so at once rather than "reconnecting" to it.
+                if code not in RETRYABLE or not heard:
                     raise self._error(exc) from exc
+                if attempt >= self._retry.max_attempts:
+                    # Every retryable status maps to UnavailableError.
+                    raise UnavailableError(f"{self._error(exc)} (the stream was lost; gave up "
+                                           f"after {attempt} reconnect attempts)") from exc
                 attempt += 1
                 _log.info("follow %s: stream lost (%s); reconnect attempt %d from seq %s",
                           conversation_id, code, attempt, next_seq)
-                await asyncio.sleep(self._retry.delay(attempt))
+                await asyncio.sleep(self._retry.delay(attempt, self._backoff_random))
                 yield Reconnected(from_seq=next_seq, attempt=attempt)
             finally:
                 call.cancel()

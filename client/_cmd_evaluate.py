@@ -12,7 +12,8 @@ decoder and scored on what the stream said at each moment (keys documented in
 from the shipped function model unless ``--functions-model`` names another, skipped with
 ``--words-only``) are merged into the same report, including
 ``utterance_functions.predicted_segmentation.word_accuracy``: whole conversations replayed
-through the conversation engine, as a live caller would see them.
+through the conversation engine, as a live caller would see them. People get the figures as
+titled tables (:mod:`midstream.client._figures`), scripts every key with ``--json``.
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ import sys
 from pathlib import Path
 
 from midstream._errors import InputError
+from midstream.client._figures import format_figures
 from midstream.corpora import read_corpus
 from midstream.models._bundle import ModelBundle, default_functions_model_path
 from midstream.models._decoder import DecoderConfig
@@ -82,7 +84,9 @@ def run(args: argparse.Namespace) -> int:
         json.dump(clean, sys.stdout, indent=2, sort_keys=True)
         sys.stdout.write("\n")
     else:
-        width = max(len(k) for k in figures)
-        for key in sorted(figures):
-            print(f"{key:<{width}}  {figures[key]:.4f}")
+        split = f", split {args.split}" if args.split else ""
+        count = len(conversations)
+        print(f"{count} conversation{'s' if count != 1 else ''} of {args.corpus}{split}, "
+              "replayed word by word; --json gives every figure by key\n")
+        print(format_figures(figures))
     return 0

@@ -2,8 +2,9 @@
 
 For each word: its labels over time (``label@seq``), when each changed, and why it became final
 (it left the tagger's window, its utterance closed, or the conversation ended). ``--html FILE``
-writes a report with plots (revision timeline; confusion matrix and utterance-function accuracy
-against words seen when the log carries gold labels) and tables.
+writes a report with vector plots (revision timeline of every word; confusion matrix and
+utterance-function accuracy against words seen when the log carries gold labels, and why not
+when it does not) and tables.
 """
 
 from __future__ import annotations
@@ -44,8 +45,7 @@ def run(args: argparse.Namespace) -> int:
     analysis = analyse(read_log(args.log)) if args.log is not None else asyncio.run(_live(args))
     _print_timeline(analysis, words=set(args.word or ()), changed_only=args.changed)
     if args.html is not None:
-        # matplotlib takes seconds to import: only a report pays for it, not every command.
-        from midstream.client._report import render_report  # noqa: PLC0415
+        from midstream.client._report import render_report  # noqa: PLC0415 - only reports
 
         try:
             args.html.write_text(render_report(analysis), encoding="utf-8")

@@ -11,7 +11,9 @@ The first line on standard output names the address (``serving on HOST:PORT``), 
 started with ``--port 0`` can read the port. SIGTERM (and SIGINT) drain: health turns
 NOT_SERVING, every live conversation is finished and its caller and followers get the final
 update and ``ended`` within ``--grace`` seconds, then the process exits 0. This module is an
-entry point: it is the only place the token's environment variable is read.
+entry point: the only place the server's environment variables are read (``MIDSTREAM_HOST``,
+``MIDSTREAM_PORT``, ``MIDSTREAM_MODELS`` under the options of the same meaning, and the token's
+variable), in :func:`build_config`, which can be handed another environment.
 """
 
 from __future__ import annotations
@@ -26,6 +28,7 @@ import os
 import signal
 import sys
 import time
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Final
 
@@ -39,6 +42,11 @@ from midstream.server import (
 )
 
 _TOKEN_ENV = "MIDSTREAM_TOKEN"
+_HOST_ENV = "MIDSTREAM_HOST"
+_PORT_ENV = "MIDSTREAM_PORT"
+_MODELS_ENV = "MIDSTREAM_MODELS"
+_DEFAULT_HOST = "127.0.0.1"
+_DEFAULT_PORT = 50051
 _log = logging.getLogger(__name__)
 
 
@@ -48,13 +56,19 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "serve", help="run the streaming gRPC service",
         description="Serve the tagging models over gRPC (Converse, Follow, TagTranscript, ...) "
                     "until SIGTERM or Ctrl-C, which drain live conversations first. Limits are "
-                    "listed in docs/limits.md.")
-    parser.add_argument("--host", default="127.0.0.1",
-                        help="address to listen on (default 127.0.0.1; 0.0.0.0 for all)")
-    parser.add_argument("--port", type=int, default=50051,
-                        help="gRPC port (default 50051; 0 picks a free one)")
+                    "listed in docs/limits.md.",
+        epilog=f"environment: {_HOST_ENV}, {_PORT_ENV} and {_MODELS_ENV} set --host, --port "
+               "and --models when the option is not given (the option wins); "
+               f"--token-env reads {_TOKEN_ENV} by default.")
+    parser.add_argument("--host", default=None,
+                        help=f"address to listen on (default ${_HOST_ENV} or {_DEFAULT_HOST}; "
+                             "0.0.0.0 for all)")
+    parser.add_argument("--port", type=int, default=None,
+                        help=f"gRPC port (default ${_PORT_ENV} or {_DEFAULT_PORT}; 0 picks a "
+                             "free one)")
     parser.add_argument("--models", type=Path, default=None, metavar="DIR",
-                        help="folder of .msm model files (default: the shipped models)")
+                        help=f"folder of .msm model files (default ${_MODELS_ENV} or the "
+                             "shipped models)")
     parser.add_argument("--metrics-port", type=int, default=None, metavar="N",
                         help="serve Prometheus metrics over HTTP on this port (default: off)")
     parser.add_argument("--metrics-host", default="127.0.0.1",
@@ -186,14 +200,14 @@ def parse_limits(items: list[str]) -> dict[str, int | float]:
     return values
 
 
-def _token(args: argparse.Namespace) -> str | None:
+def _token(args: argparse.Namespace, environ: Mapping[str, str]) -> str | None:
     if args.token is not None:
         if not args.token:
             raise InputError("--token is empty")
         return str(args.token)
     if args.token_env is None:
         return None
-    value = os.environ.get(args.token_env, "")
+    value = environ.get(args.token_env, "")
     if not value:
         raise InputError(f"--token-env: environment variable {args.token_env} is unset or empty")
     return value
@@ -210,25 +224,51 @@ def run(args: argparse.Namespace) -> int:
                                      full_collection_s=args.full_collection_every))
 
 
-def build_config(args: argparse.Namespace) -> ServerConfig:
-    """The server configuration the parsed arguments ask for (reads the token variable).
+def _listen_address(args: argparse.Namespace, environ: Mapping[str, str]
+                    ) -> tuple[str, int, Path | None]:
+    """Host, port and models folder: the option if given, else its variable, else the default."""
+    host = args.host if args.host is not None else (environ.get(_HOST_ENV) or _DEFAULT_HOST)
+    port = args.port
+    if port is None:
+        text = environ.get(_PORT_ENV, "").strip()
+        if not text:
+            port = _DEFAULT_PORT
+        elif text.isdigit() and int(text) <= 65535:
+            port = int(text)
+        else:
+            raise InputError(f"environment variable {_PORT_ENV}: {text!r} is not a port number "
+                             "(0 to 65535)")
+    models = args.models
+    if models is None and environ.get(_MODELS_ENV):
+        models = Path(environ[_MODELS_ENV])
+    return host, port, models
+
+
+def build_config(args: argparse.Namespace, *, environ: Mapping[str, str] | None = None
+                 ) -> ServerConfig:
+    """The server configuration the parsed arguments and ``environ`` ask for.
+
+    ``environ`` supplies ``MIDSTREAM_HOST``, ``MIDSTREAM_PORT``, ``MIDSTREAM_MODELS`` for options
+    not given and the token's variable (``None``: the process's environment).
 
     Raises
     ------
     InputError
         A negative grace or lag, a non-positive idle timeout or live limit, a malformed or
-        out-of-range ``--limit``, an empty or unset token.
+        out-of-range ``--limit``, an empty or unset token, a ``MIDSTREAM_PORT`` that is no port.
     """
+    environ = os.environ if environ is None else environ
+    host, port, models = _listen_address(args, environ)
     if args.grace < 0 or args.idle_timeout <= 0 or args.max_live_conversations < 1:
         raise InputError("--grace must be >= 0, --idle-timeout > 0 and "
                          "--max-live-conversations >= 1")
     if args.lag is not None and args.lag < 0:
         raise InputError(f"--lag must be >= 0, got {args.lag}")
     return ServerConfig(
-        host=args.host, port=args.port, models_dir=args.models,
+        host=host, port=port, models_dir=models,
         metrics_host=args.metrics_host, metrics_port=args.metrics_port,
         tls_cert=args.tls_cert, tls_key=args.tls_key, require_tls=args.require_tls,
-        token=_token(args), grace_s=args.grace,
+        token=_token(args, environ), grace_s=args.grace,
         limits=ServerLimits(**{"idle_timeout_s": args.idle_timeout,
                                "max_live_conversations": args.max_live_conversations,
                                **parse_limits(args.limit)}),

@@ -1,8 +1,9 @@
 """How the streaming commands print what the server says (only command modules call this).
 
 :class:`Printer` chooses one of three renderings: JSON Lines of every event (``--json``), a
-live terminal view that redraws open utterances (stdout a TTY), or one line per finished
-utterance (anything else, e.g. a log file). ``--clean`` prints clean text instead of marked
+live terminal view that redraws open utterances within the terminal's width (stdout a TTY), or
+one line per finished utterance in the order the utterances were spoken (anything else, e.g. a
+log file). ``--clean`` prints clean text instead of marked
 words; ``--rates`` ends with per-speaker disfluency rates and their caution.
 """
 
@@ -10,6 +11,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import shutil
 import threading
 from collections.abc import AsyncIterator, Iterator
 from typing import TextIO
@@ -20,6 +22,7 @@ from midstream.client._results import Ended, Gap, Reconnected, ServerEvent, Snap
 from midstream.client._view import (
     RATES_CAUTION,
     Board,
+    SpokenOrder,
     TerminalView,
     disfluency_rates,
     rates_table,
@@ -38,9 +41,9 @@ class Printer:
         self._clean = clean
         self._rates = rates
         self._quiet = quiet
-        self._view = TerminalView(out, self.board, clean=clean) if live and not json_lines \
-            else None
-        self._printed: set[str] = set()
+        self._view = TerminalView(out, self.board, clean=clean, width=_terminal_width,
+                                  height=_terminal_height) if live and not json_lines else None
+        self._order = SpokenOrder(self.board)
 
     def word(self, word: SentWord) -> None:
         self.board.note_text(word.word_id, word.text)
@@ -54,21 +57,21 @@ class Printer:
             self._note(f"[gap: updates from {event.first_missing} are lost "
                        f"({event.reason.value}); a snapshot follows]")
         elif isinstance(event, Reconnected):
-            self._note(f"[reconnected, attempt {event.attempt}, from seq {event.from_seq}]")
+            where = (f"from seq {event.from_seq}" if event.from_seq is not None
+                     else "from a snapshot")
+            self._note(f"[connection lost: reconnecting {where}, attempt {event.attempt}]")
         elif isinstance(event, Snapshot):
             self._note(f"[snapshot as of seq {event.seq}]")
         if self._quiet:
             return
+        ended = isinstance(event, Ended)
         if self._view is not None:
-            self._view.refresh(changed)
+            self._view.refresh(changed, ended=ended)
         else:
-            for utterance_id in changed:
-                utterance = self.board.utterances[utterance_id]
-                # An utterance the tagger dissolved (its words moved elsewhere) ends empty.
-                if utterance.final and utterance_id not in self._printed and utterance.word_ids:
-                    self._printed.add(utterance_id)
-                    print(utterance_line(self.board, utterance, clean=self._clean),
-                          file=self.out, flush=True)
+            self._order.note(changed)
+            for utterance in self._order.release(force=ended or self.board.final):
+                print(utterance_line(self.board, utterance, clean=self._clean),
+                      file=self.out, flush=True)
         if isinstance(event, Ended):
             self._note(f"[conversation ended: {event.reason.value}, last seq {event.last_seq}]")
 
@@ -77,7 +80,12 @@ class Printer:
             print(text, file=self.out, flush=True)
 
     def finish(self) -> None:
-        """Print the closing summary (rates) once the conversation has ended."""
+        """Print what is left (utterances, rates) once the conversation has ended."""
+        if self._view is None and not self._json and not self._quiet:
+            # A stream that stopped without an end notice still shows every finished utterance.
+            for utterance in self._order.release(force=True):
+                print(utterance_line(self.board, utterance, clean=self._clean),
+                      file=self.out, flush=True)
         if self._rates:
             words = [w for w in self.board.words.values() if w.word_id not in self.board.withdrawn]
             text = rates_table(disfluency_rates(words))
@@ -91,6 +99,16 @@ class Printer:
                       file=self.out, flush=True)
             else:
                 print(text, file=self.out, flush=True)
+
+
+def _terminal_width() -> int:
+    """Columns of the terminal now (asked on every redraw, so a resized window is followed)."""
+    return shutil.get_terminal_size().columns
+
+
+def _terminal_height() -> int:
+    """Rows of the terminal now."""
+    return shutil.get_terminal_size().lines
 
 
 async def lines_from_thread(iterator: Iterator[TimedEvent], *, bound: int = 256

@@ -1,41 +1,28 @@
-"""The HTML report of ``midstream inspect --html``: plots made by matplotlib, and tables.
+"""The HTML report of ``midstream inspect --html``: vector plots and tables in one file.
 
-The report is one self-contained file: plots are PNGs embedded as base64 ``data:`` URIs, so it
-can be mailed or archived without its pictures going missing. Word text appears in the report
-(it is the user's own transcript); it is never logged.
+The report is one self-contained file: plots are inline SVG (:mod:`midstream.client._plots`),
+so it can be mailed or archived without its pictures going missing, and its labels stay text.
+A section that cannot be drawn says why instead of vanishing (no gold labels, no gold
+utterance functions). Word text appears in the report (it is the user's own transcript); it is
+never logged.
 """
 
 from __future__ import annotations
 
-import base64
 import html
-import io
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable
 
-# The object-oriented API without pyplot: no global figure state and no display backend, as
-# matplotlib's own guide to embedding in a web server recommends.
-import numpy as np
-from matplotlib.colors import ListedColormap
-from matplotlib.figure import Figure
-from matplotlib.patches import Patch
-from matplotlib.ticker import MaxNLocator
-from midstream._types import DisfluencyLabel
 from midstream.client._analysis import Analysis, WordTimeline
+from midstream.client._plots import (
+    WORDS_PER_PANEL,
+    accuracy_svg,
+    confusion_svg,
+    legend_svg,
+    timeline_svgs,
+)
 
-#: Words drawn in the revision timeline; a longer conversation shows its first ones (and says so).
-MAX_TIMELINE_WORDS = 120
 #: Rows of the per-word table; words whose label changed come first.
 MAX_TABLE_WORDS = 400
-
-_COLOURS: dict[DisfluencyLabel, str] = {
-    DisfluencyLabel.FLUENT: "#c8c8c8",
-    DisfluencyLabel.FILLER: "#1f77b4",
-    DisfluencyLabel.EDIT_TERM: "#9467bd",
-    DisfluencyLabel.DISCOURSE_MARKER: "#17becf",
-    DisfluencyLabel.REPARANDUM: "#d62728",
-    DisfluencyLabel.REPAIR: "#2ca02c",
-    DisfluencyLabel.RESTART: "#ff7f0e",
-}
 
 _STYLE = """
 body { font-family: sans-serif; margin: 2em; max-width: 70em; }
@@ -43,94 +30,14 @@ table { border-collapse: collapse; margin: 1em 0; }
 th, td { border: 1px solid #bbb; padding: 0.2em 0.5em; text-align: left; font-size: 90%; }
 th { background: #eee; }
 td.num { text-align: right; }
+svg.plot { display: block; margin: 0.5em 0 1.5em 0; max-width: none; }
+p.absent { color: #555; border-left: 4px solid #ccc; padding-left: 0.6em; }
 .caution { color: #664; font-style: italic; }
 """
 
 
-def _png(figure: Figure) -> str:
-    buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=80)
-    data = base64.b64encode(buffer.getvalue()).decode("ascii")
-    return f'<img alt="" src="data:image/png;base64,{data}">'
-
-
-def timeline_figure(words: Sequence[WordTimeline]) -> Figure:
-    """Each word a row, each update a column, coloured by the word's label at that update.
-
-    One image for the whole grid (not a bar per change): a long conversation draws as fast as
-    a short one. Black ticks mark the updates where a word's label changed; white is before a
-    word's first publication.
-    """
-    shown = list(words[:MAX_TIMELINE_WORDS])
-    labels = list(_COLOURS)
-    index = {label: i for i, label in enumerate(labels)}
-    first = min((c.seq for w in shown for c in w.changes), default=1)
-    last = max((c.seq for w in shown for c in w.changes), default=1)
-    grid = np.full((max(len(shown), 1), last - first + 1), np.nan)
-    ticks_x: list[int] = []
-    ticks_y: list[int] = []
-    for row, word in enumerate(shown):
-        previous = None
-        for change, following in zip(word.changes, [*word.changes[1:], None], strict=True):
-            stop = following.seq if following is not None else last + 1
-            grid[row, change.seq - first:stop - first] = index[change.label]
-            if previous is not None and change.label != previous:
-                ticks_x.append(change.seq)
-                ticks_y.append(row)
-            previous = change.label
-    figure = Figure(figsize=(10, max(3.0, 0.1 * len(shown) + 1.5)))
-    figure.subplots_adjust(left=0.14, right=0.98)
-    axes = figure.subplots()
-    colours = ListedColormap([_COLOURS[label] for label in labels]).with_extremes(bad="white")
-    axes.imshow(np.ma.masked_invalid(grid), aspect="auto", interpolation="nearest",
-                cmap=colours, vmin=-0.5, vmax=len(labels) - 0.5,
-                extent=(first - 0.5, last + 0.5, len(shown) - 0.5, -0.5))
-    if ticks_x:
-        axes.scatter(ticks_x, ticks_y, marker="|", color="black", s=30, linewidths=1)
-    axes.set_yticks(range(len(shown)))
-    axes.set_yticklabels([f"{w.speaker}:{w.text}"[:18] for w in shown], fontsize=5)
-    axes.set_xlabel("update (seq)")
-    axes.set_ylabel("word (in order sent)")
-    axes.set_title("Revision timeline: label of each word over time (ticks: label changed)")
-    handles = [Patch(color=colour, label=label.value) for label, colour in _COLOURS.items()]
-    axes.legend(handles=handles, fontsize=7, loc="upper right")
-    return figure
-
-
-def confusion_figure(labels: Sequence[DisfluencyLabel], matrix: Sequence[Sequence[int]]) -> Figure:
-    figure = Figure(figsize=(6.5, 5.5))
-    figure.subplots_adjust(left=0.25, bottom=0.25)
-    axes = figure.subplots()
-    axes.imshow(matrix, cmap="Blues")
-    names = [label.value for label in labels]
-    axes.set_xticks(range(len(names)))
-    axes.set_xticklabels(names, rotation=45, ha="right", fontsize=8)
-    axes.set_yticks(range(len(names)))
-    axes.set_yticklabels(names, fontsize=8)
-    peak = max((max(row) for row in matrix), default=0)
-    for i, row in enumerate(matrix):
-        for j, count in enumerate(row):
-            if count:
-                axes.text(j, i, str(count), ha="center", va="center", fontsize=7,
-                          color="white" if count > peak / 2 else "black")
-    axes.set_xlabel("final label (stream)")
-    axes.set_ylabel("gold label (corpus annotation)")
-    axes.set_title("Word labels: gold against final")
-    return figure
-
-
-def accuracy_figure(curve: Sequence[tuple[int, float, int]]) -> Figure:
-    figure = Figure(figsize=(7, 3.5))
-    figure.subplots_adjust(bottom=0.15)
-    axes = figure.subplots()
-    axes.plot([k for k, _, _ in curve], [a for _, a, _ in curve], "o-")
-    axes.set_ylim(0, 1)
-    axes.xaxis.set_major_locator(MaxNLocator(integer=True))
-    axes.set_xlabel("words of the utterance seen")
-    axes.set_ylabel("function accuracy")
-    axes.set_title("Utterance function right while the utterance grows (against gold)")
-    axes.grid(alpha=0.3)
-    return figure
+def _absent(reason: str) -> str:
+    return f'<p class="absent">{html.escape(reason)}</p>'
 
 
 def _table(header: Iterable[str], rows: Iterable[Iterable[object]]) -> str:
@@ -182,23 +89,46 @@ def render_report(analysis: Analysis) -> str:
                  + _table(("reason", "words"), sorted(reasons.items())))
 
     parts.append("<h2>Revision timeline</h2>")
-    if len(analysis.words) > MAX_TIMELINE_WORDS:
-        parts.append(f"<p>The first {MAX_TIMELINE_WORDS} of {len(analysis.words)} words.</p>")
-    parts.append(_png(timeline_figure(analysis.words)))
+    if analysis.words:
+        panels = timeline_svgs(analysis.words)
+        parts.append(f"<p>Each word a row (in the order sent), each update a column, coloured "
+                     f"by the word's label after that update; {len(analysis.words)} words in "
+                     f"{len(panels)} panel{'s' if len(panels) > 1 else ''} of up to "
+                     f"{WORDS_PER_PANEL}, each with its own update axis.</p>")
+        parts.append(legend_svg())
+        parts.extend(panels)
+    else:
+        parts.append(_absent("No timeline: the log holds no word hypotheses."))
 
+    parts.append("<h2>Confusion matrix</h2>")
     if analysis.has_gold:
         labels, matrix = analysis.confusion()
-        parts.append("<h2>Confusion matrix</h2><p>Gold labels are the corpus annotation named "
-                     "in the source; the stream's final labels are compared word by word.</p>")
-        parts.append(_png(confusion_figure(labels, matrix)))
+        parts.append("<p>Gold labels are the corpus annotation named in the source; the "
+                     "stream's final labels are compared word by word.</p>")
+        parts.append(confusion_svg(labels, matrix))
         parts.append(_table(["gold \\ final", *(label.value for label in labels)],
                             ([gold.value, *row] for gold, row in zip(labels, matrix,
                                                                     strict=True))))
+    else:
+        parts.append(_absent(
+            "No confusion matrix: this log carries no gold labels to compare the stream's "
+            "labels with. A log of a replayed annotated conversation has them "
+            "('midstream replay CORPUS --conversation ID --log FILE'); words sent by "
+            "'tag' or from a CTM or JSON Lines file do not."))
+
+    parts.append("<h2>Utterance function against words seen</h2>")
     if analysis.function_accuracy_by_seen:
-        parts.append("<h2>Utterance function against words seen</h2>")
-        parts.append(_png(accuracy_figure(analysis.function_accuracy_by_seen)))
+        parts.append(accuracy_svg(analysis.function_accuracy_by_seen))
         parts.append(_table(("words seen", "accuracy", "utterances"),
                             analysis.function_accuracy_by_seen))
+    elif analysis.has_gold:
+        parts.append(_absent(
+            "No function accuracy: the gold annotation of this log gives no utterance "
+            "functions to score against."))
+    else:
+        parts.append(_absent(
+            "No function accuracy: this log carries no gold utterances and functions (as for "
+            "the confusion matrix above)."))
 
     words = sorted(analysis.words, key=lambda w: (w.label_changes == 0, w.order))
     shown = words[:MAX_TABLE_WORDS]

@@ -127,14 +127,57 @@ async def test_follow_without_position_starts_with_a_snapshot(served: Served) ->
     assert isinstance(followed[-1], Ended)
 
 
-async def test_follow_gives_up_after_bounded_retries_and_says_each_one() -> None:
+async def test_follow_to_a_server_that_is_not_there_says_so_at_once() -> None:
+    # Nothing to reconnect to: a follower never heard from the server reports that plainly
+    # instead of announcing reconnects to a server it never reached.
     retry = RetryPolicy(max_attempts=3, initial_backoff=0.01, max_backoff=0.02)
     seen: list[ServerEvent] = []
     async with Client(f"127.0.0.1:{free_port()}", retry=retry) as client:
-        with pytest.raises(UnavailableError, match=r"127\.0\.0\.1"):
+        with pytest.raises(UnavailableError, match=r"127\.0\.0\.1.*cannot reach the server"):
             async for event in client.follow("anything"):
                 seen.append(event)
-    assert seen == [Reconnected(from_seq=None, attempt=n) for n in (1, 2, 3)]
+    assert seen == []
+
+
+async def test_follow_gives_up_after_bounded_retries_once_its_stream_is_lost(
+        served: Served) -> None:
+    proxy = CuttingProxy(served.server.port)
+    port = await proxy.start()
+    retry = RetryPolicy(max_attempts=2, initial_backoff=0.01, max_backoff=0.02, seed=1)
+    seen: list[ServerEvent] = []
+    async with (Client(served.target) as client,
+                Client(f"127.0.0.1:{port}", retry=retry) as follower,
+                client.converse() as stream):
+        await stream.send_words([AddWord(word_id="w1", word=Word(text="so", speaker="A"))])
+        with pytest.raises(UnavailableError, match="stream was lost; gave up after 2 reconnect"):
+            async for event in follower.follow(stream.conversation_id):
+                seen.append(event)
+                if isinstance(event, Snapshot):
+                    await proxy.stop()  # the network path is gone for good
+    assert isinstance(seen[0], Snapshot)
+    assert seen[1:] == [Reconnected(from_seq=seen[0].seq + 1, attempt=n) for n in (1, 2)]
+
+
+def test_reconnect_waits_are_jittered_within_bounds_and_reproducible_with_a_seed() -> None:
+    policy = RetryPolicy(initial_backoff=0.2, multiplier=2.0, max_backoff=5.0, jitter=0.5,
+                         seed=42)
+    full = [policy.delay(n) for n in range(1, 9)]
+    assert full == [0.2, 0.4, 0.8, 1.6, 3.2, 5.0, 5.0, 5.0]
+    rng = policy.random_source()
+    waits = [policy.delay(n, rng) for n in range(1, 9)]
+    # Each wait lies in [(1 - jitter) * full, full], and they are not all the full wait.
+    assert all(0.5 * f <= w <= f for w, f in zip(waits, full, strict=True))
+    assert len({round(w / f, 6) for w, f in zip(waits, full, strict=True)}) > 1
+    # The same seed draws the same waits; another seed others.
+    again = policy.random_source()
+    assert [policy.delay(n, again) for n in range(1, 9)] == waits
+    other = RetryPolicy(seed=43).random_source()
+    assert [policy.delay(n, other) for n in range(1, 9)] != waits
+    # No jitter: the documented exponential schedule exactly.
+    plain = RetryPolicy(jitter=0.0)
+    assert [plain.delay(n, plain.random_source()) for n in range(1, 9)] == full
+    with pytest.raises(InputError, match="jitter"):
+        RetryPolicy(jitter=1.5)
 
 
 async def test_batch_listing_revisions_and_models(served: Served) -> None:

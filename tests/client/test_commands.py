@@ -154,9 +154,12 @@ def test_replayed_swda_conversation_ends_on_the_batch_labels_and_reports(
 
     page = _Page()
     page.feed(html_path.read_text(encoding="utf-8"))
-    # Revision timeline, confusion matrix, function accuracy against words seen.
-    assert len(page.images) == 3
-    assert all(src.startswith("data:image/png;base64,") for src in page.images)
+    # Inline vector plots: the timeline of all 737 words in panels of 40, a legend, the
+    # confusion matrix, function accuracy against words seen; no raster images.
+    assert page.images == []
+    assert page.svgs.count("plot timeline") == 19
+    assert page.svgs.count("legend") == 1
+    assert page.svgs.count("plot confusion") == page.svgs.count("plot accuracy") == 1
     assert {"Revision timeline", "Confusion matrix", "Words", "Utterances"} <= set(page.headings)
     assert page.tables >= 5
 
@@ -201,6 +204,7 @@ class _Page(HTMLParser):
     def __init__(self) -> None:
         super().__init__()
         self.images: list[str] = []
+        self.svgs: list[str] = []
         self.headings: list[str] = []
         self.tables = 0
         self._in_heading = False
@@ -208,6 +212,8 @@ class _Page(HTMLParser):
     def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
         if tag == "img":
             self.images.append(dict(attrs).get("src") or "")
+        elif tag == "svg":
+            self.svgs.append(dict(attrs).get("class") or "")
         elif tag == "table":
             self.tables += 1
         self._in_heading = tag in ("h1", "h2")
