@@ -118,7 +118,7 @@ def test_a_webvtt_call_with_two_voices_tags_and_exports_as_diaml(
     # Every functional segment points at word tokens, and every word is in one.
     segments = {s.get("{http://www.w3.org/XML/1998/namespace}id"): s
                 for s in root.iter(f"{ms}functionalSegment")}
-    covered = [ref.removeprefix("#") for s in segments.values()
+    covered = [ref.removeprefix("#") for s in segments.values() if s.get("kind") is None
                for ref in (s.get("target") or "").split()]
     assert sorted(covered) == sorted(tokens)
     assert all((a.get("target") or "").removeprefix("#") in segments for a in acts)
@@ -126,6 +126,14 @@ def test_a_webvtt_call_with_two_voices_tags_and_exports_as_diaml(
     roles = {tokens[r.get("target", "").removeprefix("#")].text: r.get("role")
              for r in root.iter(f"{ms}role")}
     assert roles.get("uh") == "filler" or roles.get("um") == "filler"
+    # Each filled pause is also a stalling act (time management) on a segment of its own.
+    fillers = sorted(r.get("target", "") for r in root.iter(f"{ms}role")
+                     if r.get("role") == "filler")
+    stalled = sorted(ref for a in acts if a.get("communicativeFunction") == "stalling"
+                     for ref in (segments[a.get("target", "")[1:]].get("target") or "").split())
+    assert stalled == fillers and all(
+        a.get("dimension") == "timeManagement" for a in acts
+        if a.get("communicativeFunction") == "stalling")
 
 
 def test_the_csv_has_a_row_per_utterance_and_per_word(call_log: Path, tmp_path: Path) -> None:
