@@ -1,10 +1,10 @@
 """``midstream replay``: replay a timed transcript to a server at a real-time factor.
 
-The input is a CTM or JSON Lines file, or a corpus folder with ``--split`` and
-``--conversation``. ``--speed 1`` keeps the transcript's own timing, ``--speed 4`` is four times
-faster, ``--speed 0`` sends as fast as the server accepts. ``--log FILE`` saves every word sent
-and every update received (with gold labels when the input is a corpus conversation) for
-``midstream inspect``.
+The input is a CTM, JSON Lines, WebVTT or STM file, an annotated transcript file, or a corpus
+folder with ``--split`` and ``--conversation``. ``--speed 1`` keeps the transcript's own
+timing, ``--speed 4`` is four times faster, ``--speed 0`` sends as fast as the server accepts.
+``--log FILE`` saves every word sent and every update received (with gold labels when the input
+is a corpus conversation or an annotated transcript) for ``midstream inspect``.
 """
 
 from __future__ import annotations
@@ -32,9 +32,10 @@ from tqdm import tqdm
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = subparsers.add_parser(
         "replay", help="replay a timed transcript or corpus conversation at a real-time factor",
-        description="Replay a CTM or JSON Lines transcript, or one conversation of a corpus "
-                    "folder, to a server with its own timing scaled by --speed, showing a "
-                    "progress bar; optionally save the full revision log.")
+        description="Replay a CTM, JSON Lines, WebVTT or STM transcript, or one conversation of "
+                    "an annotated transcript or corpus folder, to a server with its own timing "
+                    "scaled by --speed, showing a progress bar; optionally save the full "
+                    "revision log.")
     add_input_options(parser, stdin=False)
     add_server_options(parser)
     parser.add_argument("--speed", type=float, default=1.0,

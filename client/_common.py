@@ -26,7 +26,7 @@ from midstream.client._inputs import (
 )
 from midstream.client._records import GoldWord
 from midstream.client._results import AddWord
-from midstream.corpora import read_corpus
+from midstream.corpora import CorpusKind, detect_kind, read_corpus
 
 #: Where the commands look for a server unless told (``midstream serve`` listens here by default).
 DEFAULT_TARGET = "127.0.0.1:50051"
@@ -113,8 +113,8 @@ def read_conversation(folder: Path, *, split: str | None, conversation_id: str |
     InputError
         When the split holds no conversation with that id.
     """
-    if not folder.is_dir():
-        raise CorpusNotFoundError(f"{folder}: no such corpus folder")
+    if not folder.exists():
+        raise CorpusNotFoundError(f"{folder}: no such corpus folder or transcript file")
     wanted = conversation_id
     for conversation in read_corpus(folder, split=split):
         if wanted is None or conversation.id == wanted or _short_id(conversation.id) == wanted:
@@ -126,7 +126,13 @@ def read_conversation(folder: Path, *, split: str | None, conversation_id: str |
 
 
 def _is_transcript_file(path: Path) -> bool:
-    """Whether a ``.jsonl`` file is Midstream's annotated transcript format (its header line)."""
+    """Whether a file is an annotated transcript: inline markup (``.inline``) or a ``.jsonl``
+    file in Midstream's transcript format (its header line)."""
+    if path.is_file() and path.suffix != ".jsonl":
+        try:
+            return detect_kind(path) is CorpusKind.INLINE
+        except CorpusNotFoundError:
+            return False
     if path.suffix.lower() != ".jsonl" or not path.is_file():
         return False
     try:

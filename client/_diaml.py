@@ -34,7 +34,10 @@ onset, per word with the tagger's confidence). One document holds all four::
 Each utterance is one functional segment with one dialogue act: its coarse function (and, where
 it decides, its fine class) mapped to one ISO function by :func:`iso_function`. An utterance
 whose function is ``other`` with no fine class that names an ISO function gets a segment but no
-dialogue act: Midstream does not know which act it is.
+dialogue act: Midstream does not know which act it is. Disfluencies the standard has functions
+for get segments and acts of their own as well (a filled pause is ``stalling``, a repair a
+``selfCorrection``, a restart a ``retraction``), after the utterances' acts; the disfluency
+layer keeps every role, with or without such a function.
 """
 
 from __future__ import annotations
@@ -230,8 +233,50 @@ def diaml_document(outcome: Outcome) -> ET.Element:
             if name == "inform":
                 latest_inform[sender] = act_id
         latest_segment[sender] = segment_id
+    _disfluency_acts(segments, acts, outcome, participant, first=len(outcome.utterances) + 1)
     _disfluency_layer(root, outcome)
     return root
+
+
+def _disfluency_acts(segments: ET.Element, acts: ET.Element, outcome: Outcome,
+                     participant: dict[str, str], *, first: int) -> None:
+    """The disfluencies the standard has functions for, as dialogue acts of their own.
+
+    A filled pause is stalling (time management: the speaker needs a moment); a repair is a
+    selfCorrection and a restart a retraction (own communication management: the speaker
+    corrects or withdraws what they just said). The segment of a filler run is its words; that
+    of a repair its reparandum, interregnum and onset. (The functions' use for these is the
+    standard's definitions as remembered, from memory.)
+    """
+    ms = f"{{{LAYER}}}"
+    number = first
+    for utterance in outcome.utterances:
+        spans: list[tuple[tuple[int, ...], str, str]] = []
+        run: list[int] = []
+        for index in (*utterance.words, -1):
+            if index >= 0 and outcome.words[index].state.label is DisfluencyLabel.FILLER \
+                    and (not run or run[-1] + 1 == index):
+                run.append(index)
+                continue
+            if run:
+                spans.append((tuple(run), "stalling", "timeManagement"))
+            run = [index] if index >= 0 and \
+                outcome.words[index].state.label is DisfluencyLabel.FILLER else []
+        for repair in repairs_of(outcome, utterance):
+            words = (*repair.reparandum, *repair.interregnum,
+                     *(() if repair.repair_onset is None else (repair.repair_onset,)))
+            spans.append((words, "retraction" if repair.is_restart else "selfCorrection",
+                          "ownCommunicationManagement"))
+        sender = participant[utterance.state.speaker]
+        for words, function, dimension in sorted(spans):
+            segment_id, act_id = f"fs{number}", f"da{number}"
+            number += 1
+            ET.SubElement(segments, f"{ms}functionalSegment", {
+                _XML_ID: segment_id, "target": " ".join(f"#w{i + 1}" for i in words),
+                "sender": f"#{sender}", "kind": "disfluency"})
+            ET.SubElement(acts, f"{{{DIAML}}}dialogueAct", {
+                _XML_ID: act_id, "target": f"#{segment_id}", "sender": f"#{sender}",
+                "communicativeFunction": function, "dimension": dimension})
 
 
 def _latest_other(latest: dict[str, str], sender: str) -> str | None:

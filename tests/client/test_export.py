@@ -20,9 +20,11 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
     models_dir_fixture,
     served_fixture,
 )
+from midstream import DisfluencyLabel
 from midstream.client._cli import main
 from midstream.client._diaml import DIAML, ISO_FUNCTIONS, LAYER, check_diaml
-from midstream.corpora import read_corpus
+from midstream.client._records import read_log
+from midstream.corpora import read_corpus, write_jsonl
 
 pytestmark = pytest.mark.corpus
 
@@ -116,7 +118,7 @@ def test_a_webvtt_call_with_two_voices_tags_and_exports_as_diaml(
     # Every functional segment points at word tokens, and every word is in one.
     segments = {s.get("{http://www.w3.org/XML/1998/namespace}id"): s
                 for s in root.iter(f"{ms}functionalSegment")}
-    covered = [ref.removeprefix("#") for s in segments.values()
+    covered = [ref.removeprefix("#") for s in segments.values() if s.get("kind") is None
                for ref in (s.get("target") or "").split()]
     assert sorted(covered) == sorted(tokens)
     assert all((a.get("target") or "").removeprefix("#") in segments for a in acts)
@@ -124,6 +126,14 @@ def test_a_webvtt_call_with_two_voices_tags_and_exports_as_diaml(
     roles = {tokens[r.get("target", "").removeprefix("#")].text: r.get("role")
              for r in root.iter(f"{ms}role")}
     assert roles.get("uh") == "filler" or roles.get("um") == "filler"
+    # Each filled pause is also a stalling act (time management) on a segment of its own.
+    fillers = sorted(r.get("target", "") for r in root.iter(f"{ms}role")
+                     if r.get("role") == "filler")
+    stalled = sorted(ref for a in acts if a.get("communicativeFunction") == "stalling"
+                     for ref in (segments[a.get("target", "")[1:]].get("target") or "").split())
+    assert stalled == fillers and all(
+        a.get("dimension") == "timeManagement" for a in acts
+        if a.get("communicativeFunction") == "stalling")
 
 
 def test_the_csv_has_a_row_per_utterance_and_per_word(call_log: Path, tmp_path: Path) -> None:
@@ -172,3 +182,24 @@ def test_docstring_examples_run() -> None:
 
     result = doctest.testmod(module)
     assert result.attempted > 0 and result.failed == 0
+
+
+def test_a_transcript_file_replays_with_its_gold_labels(
+        served: Served, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    inline = tmp_path / "desk.inline"
+    inline.write_text("@format midstream-inline 1\n@conversation desk-1\n"
+                      "A question: {F uh} can you [ reset + {F um} reset ] my password /\n"
+                      "B answer: {D well} yes i can /\n", encoding="utf-8")
+    jsonl = tmp_path / "desk.jsonl"
+    with jsonl.open("w", encoding="utf-8") as stream:
+        write_jsonl(read_corpus(inline), stream)
+    for transcript in (inline, jsonl):
+        log = tmp_path / f"{transcript.suffix[1:]}.log"
+        assert main(["replay", str(transcript), "--server", served.target, "--speed", "0",
+                     "--no-progress", "--log", str(log)]) == 0
+        words = read_log(log).words
+        assert [w.text for w in words][:3] == ["uh", "can", "you"]
+        assert words[0].gold is not None and words[0].gold.label is DisfluencyLabel.FILLER
+        capsys.readouterr()
+        assert main(["inspect", str(log)]) == 0
+        assert "final word-label accuracy against gold" in capsys.readouterr().out

@@ -92,3 +92,29 @@ def test_a_replaced_words_new_text_reaches_the_caller(served: Served) -> None:
     assert (last["a2"].text, last["a2"].end) == ("went", 0.6)
     assert last["a1"].text == "i"  # as the server tagged it: lower case
     assert any(w.word_id == "a2" and w.text == "want" for u in updates for w in u.diff.words)
+
+
+def test_a_live_follower_sees_the_callers_word_states(served: Served) -> None:
+    words = [AddWord(word_id=f"a{n}", word=Word(text=text, speaker="A", start=0.3 * n,
+                                                 end=0.3 * n + 0.25))
+             for n, text in enumerate(["so", "uh", "we", "we", "need", "the", "the", "form"])]
+
+    async def run() -> tuple[list[HypothesisUpdate], list[HypothesisUpdate]]:
+        async with Client(served.target) as caller, Client(served.target) as other:
+            async with caller.converse() as stream:
+                follower = asyncio.create_task(_follow_updates(other, stream.conversation_id))
+                for word in words:
+                    await stream.send_words([word])
+                await stream.close()
+                mine = [e async for e in stream if isinstance(e, HypothesisUpdate)]
+            return mine, await asyncio.wait_for(follower, 30)
+
+    mine, theirs = asyncio.run(run())
+    assert [u.diff.words for u in theirs] == [u.diff.words for u in mine]
+    texts = {w.word_id: (w.text, w.start) for u in theirs for w in u.diff.words}
+    assert texts == {w.word_id: (w.word.text, w.word.start) for w in words}
+
+
+async def _follow_updates(client: Client, conversation_id: str) -> list[HypothesisUpdate]:
+    return [e async for e in client.follow(conversation_id, from_seq=1)
+            if isinstance(e, HypothesisUpdate)]

@@ -46,7 +46,7 @@ def test_spoken_word_keeps_absent_optionals_absent() -> None:
 def test_update_round_trips() -> None:
     word = WordHypothesis(word_id="w1", speaker="A", label=DisfluencyLabel.REPARANDUM,
                           confidence=0.75, revision=2, final=True, reparandum_of="w3",
-                          interruption_point=True)
+                          interruption_point=True, text="went", start=0.0, end=0.25)
     utt = UtteranceHypothesis(utterance_id="u1", speaker="A", word_ids=("w1", "w3"),
                               clean_text="i went", function=UtteranceFunction.STATEMENT,
                               fine_class="sd", confidence=0.5, revision=1, final=False)
@@ -65,10 +65,10 @@ def test_update_built_in_place_matches_its_states_built_alone() -> None:
     # the standalone state conversions give, an unset repair link included.
     words = (
         WordHypothesis(word_id="w1", speaker="A", label=DisfluencyLabel.FILLER,
-                       confidence=0.9, revision=0, final=False),
+                       confidence=0.9, revision=0, final=False, text="uh", start=0.5),
         WordHypothesis(word_id="w2", speaker="A", label=DisfluencyLabel.REPARANDUM,
                        confidence=0.6, revision=3, final=True, reparandum_of="w4",
-                       interruption_point=True),
+                       interruption_point=True, text="we", end=1.0),
     )
     utt = UtteranceHypothesis(utterance_id="u1", speaker="A", word_ids=("w1", "w2"),
                               clean_text="", function=UtteranceFunction.QUESTION,

@@ -29,7 +29,9 @@ _unit = st.floats(min_value=0.0, max_value=1.0)
 words = st.builds(WordHypothesis, word_id=_ids, speaker=_ids,
                   label=st.sampled_from(DisfluencyLabel), confidence=_unit,
                   revision=st.integers(0, 50), final=st.booleans(),
-                  reparandum_of=st.none() | _ids, interruption_point=st.booleans())
+                  reparandum_of=st.none() | _ids, interruption_point=st.booleans(),
+                  text=st.text(max_size=8), start=st.none() | st.floats(0.0, 1e5),
+                  end=st.none() | st.floats(0.0, 1e5))
 utterances = st.builds(UtteranceHypothesis, utterance_id=_ids, speaker=_ids,
                        word_ids=st.lists(_ids, max_size=5).map(tuple), clean_text=st.text(),
                        function=st.sampled_from(UtteranceFunction), fine_class=st.text(),
