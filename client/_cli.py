@@ -17,6 +17,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import logging
+import os
 import sys
 from collections.abc import Callable, Iterator, Sequence
 from importlib import metadata
@@ -44,6 +45,7 @@ EXIT_OK = 0
 EXIT_ERROR = 1
 EXIT_UNAVAILABLE = 3
 EXIT_INTERRUPTED = 130
+EXIT_BROKEN_PIPE = 141
 
 
 _VERBOSE_HELP = "more log output (-v info, -vv debug; debug may include transcript words)"
@@ -114,6 +116,13 @@ def main(argv: Sequence[str] | None = None) -> int:
         return EXIT_ERROR
     except KeyboardInterrupt:
         return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        # The reader of our output went away (``midstream corpus stats ... | head``): nothing
+        # is wrong with the command. Point stdout at devnull so the interpreter's final flush
+        # does not raise again, and exit as a process killed by SIGPIPE would.
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_BROKEN_PIPE
 
 
 if __name__ == "__main__":

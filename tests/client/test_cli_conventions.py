@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import os
 import subprocess
 import sys
 from importlib import metadata
@@ -97,3 +98,21 @@ def test_subscribe_to_a_server_that_is_not_there_says_it_cannot_connect(
     lines = captured.err.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith(f"midstream: server {target}: ")
     assert "cannot reach the server" in lines[0]
+
+
+def test_a_reader_that_stops_early_ends_the_command_quietly(tmp_path: Path) -> None:
+    # `midstream corpus stats ... | head`: the pipe's reader leaves before the command writes.
+    transcript = tmp_path / "call.inline"
+    transcript.write_text("@format midstream-inline 1\n@conversation c1\n"
+                          "A statement: {F uh} we [ go + go ] now /\n", encoding="utf-8")
+    read_end, write_end = os.pipe()
+    os.close(read_end)
+    try:
+        done = subprocess.run([sys.executable, "-m", "midstream", "corpus", "stats",
+                               str(transcript)], stdout=write_end, stderr=subprocess.PIPE,
+                              text=True, timeout=120, check=False)
+    finally:
+        os.close(write_end)
+    assert done.returncode == 141
+    assert "Traceback" not in done.stderr
+    assert "BrokenPipeError" not in done.stderr
