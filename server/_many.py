@@ -102,6 +102,11 @@ class ManyStream:
         stop = servicer.stop_signal()
         if stop.done():
             await servicer.refuse_stream(context, UnavailableError("the server is shutting down"))
+        # The call's end finishes every open channel even if grpc never resumes nor closes
+        # this generator (see MidstreamServicer.Converse).
+        # (The stubs name a class where grpc takes any callable of the context.)
+        context.add_done_callback(
+            lambda _: self._abandon(pb.END_REASON_CALLER_VANISHED))  # type: ignore[arg-type]
         loop = asyncio.get_running_loop()
         sweep_every = min(limits.idle_timeout_s / _SWEEPS_PER_TIMEOUT, _MAX_SWEEP_S)
         next_sweep = sweep_every

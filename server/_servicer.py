@@ -14,6 +14,7 @@ with ``END_REASON_REJECTED`` (see ``docs/service.md``).
 from __future__ import annotations
 
 import asyncio
+import functools
 import json
 import logging
 import time
@@ -254,10 +255,26 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             session = self.registry.open(first.open.conversation_id, self.bundle)
         except MidstreamError as exc:
             await self.refuse_stream(context, exc)
-        yield pb.ServerMessage(welcome=pb.Welcome(
-            conversation_id=session.id, next_seq=session.seq + 1))
-        async for message in self._converse(session, context):
-            yield message
+        # From here on the conversation is this call's to end, however the call ends. grpc
+        # stops iterating a handler whose caller vanished (it is cancelled while sending, outside
+        # this generator) and closes the generator only when it is collected, which a
+        # reference cycle can put off indefinitely: the call's own end finishes the
+        # conversation, and the try below covers every yield, the welcome included.
+        # The stubs name a class where grpc takes any callable of the context.
+        context.add_done_callback(
+            functools.partial(self._call_ended, session))  # type: ignore[arg-type]
+        try:
+            yield pb.ServerMessage(welcome=pb.Welcome(
+                conversation_id=session.id, next_seq=session.seq + 1))
+            async for message in self._converse(session, context):
+                yield message
+        finally:
+            self._call_ended(session)
+
+    def _call_ended(self, session: Session, _: object = None) -> None:
+        """Finish ``session`` as abandoned by its caller unless it has already ended."""
+        if session.live:
+            self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
 
     async def _converse(
         self, session: Session,
