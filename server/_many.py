@@ -42,6 +42,7 @@ from typing import TYPE_CHECKING
 
 import grpc
 from midstream._errors import EventError, LimitExceededError, MidstreamError, UnavailableError
+from midstream.server._decode import MalformedMessage
 from midstream.server._ingest import apply_event, caller_vanished
 from midstream.server._session import Session, message_budget
 from midstream.server._status import (
@@ -141,10 +142,13 @@ class ManyStream:
                         for frame in self._frames():
                             yield frame
                         return
-                    assert isinstance(request, pb.ClientFrame)
                     try:
+                        if isinstance(request, MalformedMessage):
+                            # No channel can be told apart in bytes that did not decode.
+                            raise request.error()
+                        assert isinstance(request, pb.ClientFrame)
                         self._frame(request)
-                    except FieldLimitError as exc:
+                    except (FieldLimitError, EventError) as exc:
                         self._end_all(pb.END_REASON_REJECTED)
                         for frame in self._frames():
                             yield frame

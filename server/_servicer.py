@@ -32,6 +32,7 @@ from midstream._errors import (
 )
 from midstream._types import HypothesisDiff, UtteranceHypothesis, WordHypothesis
 from midstream.server._config import ServerLimits
+from midstream.server._decode import MalformedMessage
 from midstream.server._ingest import apply_event, caller_vanished
 from midstream.server._limits import SpeakerTimeline, check_id, check_word
 from midstream.server._many import ManyStream
@@ -202,6 +203,11 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         await context.abort(code, str(error))
         raise AssertionError("abort returned")  # pragma: no cover - abort always raises
 
+    async def refuse(self, context: grpc.aio.ServicerContext[Any, Any],
+                     error: MidstreamError) -> NoReturn:
+        """End a call with the status code of ``error``: counted, logged on one line."""
+        await self._fail(context, error)
+
     @staticmethod
     def log_internal(where: str, error: Exception) -> None:
         """Log a fault by its type only; the detail (which may quote words) at DEBUG."""
@@ -237,6 +243,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     ) -> AsyncIterator[pb.ServerMessage]:
         with self._reader(context, self.stop_signal()) as reader:
             first = await reader.next()
+        if isinstance(first, MalformedMessage):
+            await self.refuse_stream(context, first.error())
         if not isinstance(first, pb.ClientEvent):
             if first is _STOPPED:
                 await self._fail(context, UnavailableError("the server is shutting down"))
@@ -301,7 +309,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     for message in (*session.since(sent), session.closing_messages[-1]):
                         yield message
                     return
-                assert isinstance(event, pb.ClientEvent)
+                assert isinstance(event, pb.ClientEvent | MalformedMessage)
                 try:
                     closing = apply_event(session, event, time.monotonic(), self._limits)
                 except MidstreamError as exc:
@@ -337,6 +345,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         """Wait for the caller's half-close; any further event is refused."""
         with self._reader(context, self.stop_signal()) as reader:
             event = await reader.next()
+        if isinstance(event, MalformedMessage):
+            await self.refuse_stream(context, event.error())
         if isinstance(event, pb.ClientEvent):
             await self.refuse_stream(context, ProtocolStateError(
                 f"event {event.WhichOneof('event')!r} after 'close': conversation "
@@ -352,10 +362,12 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     # --- Follow, list, revisions ---------------------------------------------------------
 
     async def Follow(  # noqa: N802
-        self, request: pb.FollowRequest,
+        self, request: pb.FollowRequest | MalformedMessage,
         context: grpc.aio.ServicerContext[pb.FollowRequest, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
         try:
+            if isinstance(request, MalformedMessage):
+                raise request.error()
             session = self.registry.get(request.conversation_id)
             from_seq = request.from_seq if request.HasField("from_seq") else None
             backlog, follower = session.follow(from_seq)
