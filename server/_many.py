@@ -220,7 +220,8 @@ class ManyStream:
         self._highest = number
         channel = self._channels[number] = _Channel(number, session, self._waited)
         self._out.replies.add(channel=number, message=pb.ServerMessage(
-            welcome=pb.Welcome(conversation_id=session.id, next_seq=session.seq + 1)))
+            welcome=pb.Welcome(conversation_id=session.id, next_seq=session.seq + 1,
+                               epoch=session.epoch)))
         channel.sent = session.seq
 
     def _event(self, channel: _Channel, event: pb.ClientEvent, received: float) -> None:

@@ -273,7 +273,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             functools.partial(self._call_ended, session))  # type: ignore[arg-type]
         try:
             yield pb.ServerMessage(welcome=pb.Welcome(
-                conversation_id=session.id, next_seq=session.seq + 1))
+                conversation_id=session.id, next_seq=session.seq + 1, epoch=session.epoch))
             async for message in self._converse(session, context):
                 yield message
         finally:
@@ -370,7 +370,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                 raise request.error()
             session = self.registry.get(request.conversation_id)
             from_seq = request.from_seq if request.HasField("from_seq") else None
-            backlog, follower = session.follow(from_seq)
+            backlog, follower = session.follow(from_seq, request.epoch)
         except MidstreamError as exc:
             await self._fail(context, exc)
         if follower is None:
@@ -417,7 +417,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             revisions.append(revision)
         revisions.reverse()
         return pb.GetRevisionsReply(conversation_id=session.id, revisions=revisions,
-                                    truncated=truncated)
+                                    truncated=truncated, epoch=session.epoch)
 
     # --- batch -----------------------------------------------------------------------------
 
