@@ -43,7 +43,7 @@ from typing import TYPE_CHECKING
 import grpc
 from midstream._errors import EventError, LimitExceededError, MidstreamError, UnavailableError
 from midstream.server._decode import MalformedMessage
-from midstream.server._ingest import apply_event, caller_vanished
+from midstream.server._ingest import apply_event, caller_address, caller_vanished
 from midstream.server._session import Session, message_budget
 from midstream.server._status import (
     FieldLimitError,
@@ -82,12 +82,13 @@ class _Channel:
 class ManyStream:
     """The server side of one ``ConverseMany`` call. Use from the server's event loop only."""
 
-    __slots__ = ("_channels", "_context", "_highest", "_out", "_servicer", "_waited")
+    __slots__ = ("_channels", "_context", "_highest", "_out", "_owner", "_servicer", "_waited")
 
     def __init__(self, servicer: MidstreamServicer,
                  context: grpc.aio.ServicerContext[pb.ClientFrame, pb.ServerFrame]) -> None:
         self._servicer = servicer
         self._context = context
+        self._owner = ""  # the caller's address, read when the call runs
         self._channels: dict[int, _Channel] = {}
         self._highest = 0  # the highest channel number opened so far
         # Seconds the server has spent waiting for the caller's next frame: the idle clock.
@@ -99,6 +100,7 @@ class ManyStream:
     async def run(self) -> AsyncIterator[pb.ServerFrame]:
         """Serve the call: read frames, apply them, yield reply frames, until the stream ends."""
         servicer, context = self._servicer, self._context
+        self._owner = caller_address(context)
         limits = servicer.limits
         stop = servicer.stop_signal()
         if stop.done():
@@ -213,7 +215,8 @@ class ManyStream:
             self._refuse(number, UnavailableError("the server is shutting down"))
             return
         try:
-            session = servicer.registry.open(conversation_id, servicer.bundle)
+            session = servicer.registry.open(conversation_id, servicer.bundle,
+                                             owner=self._owner)
         except MidstreamError as exc:
             self._refuse(number, exc)
             return

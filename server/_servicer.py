@@ -33,7 +33,7 @@ from midstream._errors import (
 from midstream._types import HypothesisDiff, UtteranceHypothesis, WordHypothesis
 from midstream.server._config import ServerLimits
 from midstream.server._decode import MalformedMessage
-from midstream.server._ingest import apply_event, caller_vanished
+from midstream.server._ingest import apply_event, caller_address, caller_vanished
 from midstream.server._limits import SpeakerTimeline, check_id, check_word
 from midstream.server._many import ManyStream
 from midstream.server._metrics import ServerMetrics
@@ -260,7 +260,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if self._stopping:
             await self.refuse_stream(context, UnavailableError("the server is shutting down"))
         try:
-            session = self.registry.open(first.open.conversation_id, self.bundle)
+            session = self.registry.open(first.open.conversation_id, self.bundle,
+                                         owner=caller_address(context))
         except MidstreamError as exc:
             await self.refuse_stream(context, exc)
         # From here on the conversation is this call's to end, however the call ends. grpc
