@@ -41,9 +41,8 @@ _BY_CODE: dict[grpc.StatusCode, _Factory] = {
     grpc.StatusCode.ALREADY_EXISTS: EventError,
     grpc.StatusCode.PERMISSION_DENIED: InputError,
     grpc.StatusCode.RESOURCE_EXHAUSTED: _limit,
-    # The server uses FAILED_PRECONDITION both for an event not allowed now and for a model that
-    # fails to load; error_from_status tells them apart by the method (see _MODEL_METHODS).
-    grpc.StatusCode.FAILED_PRECONDITION: EventError,
+    # The server's only FAILED_PRECONDITION: models that could not be loaded.
+    grpc.StatusCode.FAILED_PRECONDITION: ModelError,
     grpc.StatusCode.ABORTED: UnavailableError,
     grpc.StatusCode.OUT_OF_RANGE: EventError,
     grpc.StatusCode.UNIMPLEMENTED: MidstreamError,
@@ -59,18 +58,12 @@ RETRYABLE: frozenset[grpc.StatusCode] = frozenset(
 )
 
 
-#: Methods whose FAILED_PRECONDITION means a model could not be used.
-_MODEL_METHODS = frozenset({"ReloadModels", "DescribeModels"})
-
-
 def error_from_status(
     code: grpc.StatusCode, details: str | None, *, target: str, method: str = ""
 ) -> MidstreamError:
     """The Midstream error for a failed call's status; the message names the server.
 
-    ``method`` (the RPC's name) only matters for ``FAILED_PRECONDITION``: a
-    :class:`~midstream.ModelError` from the model methods, an
-    :class:`~midstream.EventError` (event not allowed now) elsewhere.
+    ``method`` (the RPC's name) is kept for messages; each code has one meaning.
 
     Examples
     --------
@@ -84,8 +77,6 @@ def error_from_status(
     if code is grpc.StatusCode.UNAVAILABLE and "connect" in text.lower():
         text = f"cannot reach the server ({text})"
     factory = _BY_CODE.get(code, MidstreamError)
-    if code is grpc.StatusCode.FAILED_PRECONDITION and method in _MODEL_METHODS:
-        factory = ModelError
     return factory(f"server {target}: {text} ({code.name})")
 
 
