@@ -362,6 +362,21 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
 
     # --- Follow, list, revisions ---------------------------------------------------------
 
+    def _known(self, conversation_id: str) -> Session:
+        """A live or kept conversation, its id checked first (no over-long id is echoed back).
+
+        Raises
+        ------
+        EventError
+            For an empty id or one holding a control character.
+        FieldLimitError
+            For an id over ``max_id_chars``.
+        NotFoundError
+            When no such conversation is live or kept.
+        """
+        check_id(conversation_id, "conversation_id", self._limits)
+        return self.registry.get(conversation_id)
+
     async def Follow(  # noqa: N802
         self, request: pb.FollowRequest | MalformedMessage,
         context: grpc.aio.ServicerContext[pb.FollowRequest, pb.ServerMessage],
@@ -369,7 +384,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         try:
             if isinstance(request, MalformedMessage):
                 raise request.error()
-            session = self.registry.get(request.conversation_id)
+            session = self._known(request.conversation_id)
             from_seq = request.from_seq if request.HasField("from_seq") else None
             backlog, follower = session.follow(from_seq, request.epoch)
         except MidstreamError as exc:
@@ -397,7 +412,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         context: grpc.aio.ServicerContext[pb.GetRevisionsRequest, pb.GetRevisionsReply],
     ) -> pb.GetRevisionsReply:
         try:
-            session = self.registry.get(request.conversation_id)
+            session = self._known(request.conversation_id)
         except MidstreamError as exc:
             await self._fail(context, exc)
         kept, truncated = session.revisions()
