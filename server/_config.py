@@ -71,6 +71,9 @@ class ServerLimits:
     """Most conversations open at once on one ``ConverseMany`` stream."""
     max_events_per_frame: int = 1024
     """Most channel events in one ``ConverseMany`` request frame."""
+    max_streams_without_conversation: int = 64
+    """Most ingest streams at once with no conversation open: ``Converse`` before its
+    ``open``, ``ConverseMany`` with no open channel. Each ends after ``idle_timeout_s``."""
 
     def __post_init__(self) -> None:
         for name in (
@@ -80,6 +83,7 @@ class ServerLimits:
             "max_kept_bytes", "max_followers_per_conversation", "follower_queue",
             "max_message_bytes", "max_ended_conversations", "max_transcript_items",
             "max_channels_per_stream", "max_events_per_frame",
+            "max_streams_without_conversation",
         ):
             if getattr(self, name) < 1:
                 raise InputError(f"ServerLimits.{name} must be at least 1, not "

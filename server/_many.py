@@ -114,15 +114,21 @@ class ManyStream:
         sweep_every = min(limits.idle_timeout_s / _SWEEPS_PER_TIMEOUT, _MAX_SWEEP_S)
         next_sweep = sweep_every
         read: asyncio.Future[pb.ClientFrame] | None = None
+        # A stream with no open channel counts against max_streams_without_conversation and
+        # ends after idle_timeout_s of it (on the waiting clock).
+        try:
+            servicer.enter_waiting()
+        except LimitExceededError as exc:
+            await servicer.refuse_stream(context, exc)
+        waiting, empty_since = True, 0.0
         try:
             while True:
                 if read is None:
                     # The stubs say a frame; at the end of the stream it is grpc.aio.EOF.
                     read = asyncio.ensure_future(context.read())
                 pending: asyncio.Future[pb.ClientFrame] = read
-                # With no channel open nothing can time out: wait for the caller as long as it
-                # takes (keepalive pings notice a dead peer).
-                timeout = max(next_sweep - self._waited, 0.0) if self._channels else None
+                timeout = max((next_sweep if self._channels
+                               else empty_since + limits.idle_timeout_s) - self._waited, 0.0)
                 began = loop.time()
                 await asyncio.wait((pending, stop), timeout=timeout,
                                    return_when=asyncio.FIRST_COMPLETED)
@@ -160,7 +166,23 @@ class ManyStream:
                     next_sweep = self._waited + sweep_every
                 for frame in self._frames():
                     yield frame
+                if waiting == bool(self._channels):  # a first channel opened, or the last ended
+                    waiting = not waiting
+                    if waiting:
+                        servicer.enter_waiting(check=False)
+                        empty_since = self._waited
+                    else:
+                        servicer.leave_waiting()
+                if waiting and self._waited - empty_since >= limits.idle_timeout_s:
+                    if read is not None:
+                        read.cancel()  # the refusal reads what is in flight itself
+                        read = None
+                    await servicer.refuse_stream(context, ProtocolStateError(
+                        f"no channel was open on this stream for idle_timeout_s "
+                        f"({limits.idle_timeout_s} s)"))
         finally:
+            if waiting:
+                servicer.leave_waiting()
             if read is not None and not read.done():
                 read.cancel()
             # Cancelled, or the caller went away mid-stream: finalise for the followers.

@@ -25,6 +25,7 @@ from typing import Any, NoReturn
 import grpc
 from midstream._errors import (
     EventError,
+    LimitExceededError,
     MidstreamError,
     ModelError,
     NotFoundError,
@@ -162,6 +163,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self._metrics = metrics
         self.registry = SessionRegistry(limits, metrics)
         self._stopping = False
+        self._waiting = 0  # ingest streams without a conversation open
         # One future for every stream waiting on a stop, made on first use (on the loop):
         # a wait task per stream cost about a kilobyte each for the whole conversation.
         self._stop_signal: asyncio.Future[None] | None = None
@@ -178,6 +180,35 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     def stopping(self) -> bool:
         """Whether :meth:`begin_stopping` was called."""
         return self._stopping
+
+    def enter_waiting(self, *, check: bool = True) -> None:
+        """Count an ingest stream that has no conversation open (yet, or any more).
+
+        Such a stream costs the server memory and a slot but does nothing, so their number is
+        capped: without it a caller could hold thousands open. ``check=False`` counts a stream
+        that is already running (its last channel ended) without refusing it.
+
+        Raises
+        ------
+        LimitExceededError
+            When ``max_streams_without_conversation`` are already waiting.
+        """
+        limit = self._limits.max_streams_without_conversation
+        if check and self._waiting >= limit:
+            raise LimitExceededError(
+                "max_streams_without_conversation", limit,
+                f"{limit} streams have no conversation open; limit "
+                f"max_streams_without_conversation is {limit}")
+        self._waiting += 1
+
+    def leave_waiting(self) -> None:
+        """The stream counted by :meth:`enter_waiting` opened a conversation or ended."""
+        self._waiting -= 1
+
+    @property
+    def waiting(self) -> int:
+        """Ingest streams without a conversation open."""
+        return self._waiting
 
     def begin_stopping(self) -> None:
         """Refuse new conversations and interrupt streams that wait outside one; idempotent."""
@@ -241,8 +272,15 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self, request_iterator: AsyncIterator[pb.ClientEvent],
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
-        with self._reader(context, self.stop_signal()) as reader:
-            first = await reader.next()
+        try:
+            self.enter_waiting()
+        except LimitExceededError as exc:
+            await self.refuse_stream(context, exc)
+        try:
+            with self._reader(context, self.stop_signal()) as reader:
+                first = await reader.next()
+        finally:
+            self.leave_waiting()
         if isinstance(first, MalformedMessage):
             await self.refuse_stream(context, first.error())
         if not isinstance(first, pb.ClientEvent):
