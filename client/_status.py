@@ -52,10 +52,23 @@ _BY_CODE: dict[grpc.StatusCode, _Factory] = {
     grpc.StatusCode.UNAUTHENTICATED: InputError,
 }
 
+#: What gRPC's status details say when the TLS handshake failed (BoringSSL's words).
+_TLS_FAILURES = ("certificate_verify_failed", "ssl handshake failed", "handshake failed",
+                 "certificate verify failed", "ssl_error_ssl")
+
 #: Codes after which a follower may reconnect and resume (the server or network went away).
 RETRYABLE: frozenset[grpc.StatusCode] = frozenset(
     {grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.ABORTED, grpc.StatusCode.DEADLINE_EXCEEDED}
 )
+
+
+def tls_failure(details: str | None) -> bool:
+    """Whether an ``UNAVAILABLE`` status's details say the TLS handshake failed.
+
+    Such a failure does not go away by retrying (a wrong CA, a certificate for another host).
+    """
+    lowered = (details or "").lower()
+    return any(mark in lowered for mark in _TLS_FAILURES)
 
 
 def error_from_status(
@@ -74,7 +87,13 @@ def error_from_status(
     ('NotFoundError', "server localhost:50551: no conversation 'c1' (NOT_FOUND)")
     """
     text = (details or "").strip() or "no details given"
-    if code is grpc.StatusCode.UNAVAILABLE and "connect" in text.lower():
+    lowered = text.lower()
+    if code is grpc.StatusCode.UNAVAILABLE and tls_failure(text):
+        # gRPC reports a refused certificate as a failure to connect: say what it was.
+        text = (f"TLS handshake with the server failed: the server's certificate was not "
+                f"accepted (is it signed by the CA given with --ca / root_certificates, and "
+                f"issued for this host name?) ({text})")
+    elif code is grpc.StatusCode.UNAVAILABLE and "connect" in lowered:
         text = f"cannot reach the server ({text})"
     factory = _BY_CODE.get(code, MidstreamError)
     return factory(f"server {target}: {text} ({code.name})")
