@@ -156,7 +156,9 @@ async def test_the_end_of_the_call_ends_the_conversation_without_the_handler(
 
 async def test_many_callers_cancelling_after_the_welcome_leave_nothing_live(
         start_server: ServerFactory) -> None:
-    limits = ServerLimits(idle_timeout_s=0.5, max_live_conversations=8,
+    # An idle timeout long enough that the fresh caller below is never timed out on a busy
+    # machine; a leaked conversation would outlive any timeout (nothing reads for it).
+    limits = ServerLimits(idle_timeout_s=2.0, max_live_conversations=8,
                           max_ended_conversations=16)
     running = await start_server(limits=limits)
     refused = 0
