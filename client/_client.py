@@ -63,7 +63,7 @@ from midstream.client._results import (
     Welcome,
     WithdrawWord,
 )
-from midstream.client._status import RETRYABLE, error_from_rpc, error_from_status
+from midstream.client._status import RETRYABLE, error_from_rpc, error_from_status, tls_failure
 from midstream.wire import _convert, midstream_pb2_grpc
 from midstream.wire import midstream_pb2 as pb
 
@@ -75,6 +75,7 @@ DEFAULT_FRAME_EVENTS = 1024
 _GAP_REASONS = {
     pb.GAP_REASON_EVICTED: GapReason.EVICTED,
     pb.GAP_REASON_LAGGED: GapReason.LAGGED,
+    pb.GAP_REASON_EPOCH_MISMATCH: GapReason.EPOCH_MISMATCH,
 }
 _END_REASONS = {
     pb.END_REASON_CLOSED: EndReason.CLOSED,
@@ -135,10 +136,11 @@ def _server_event(message: pb.ServerMessage) -> ServerEvent:
         return _convert.update_from_wire(message.update)
     if body == "welcome":
         return Welcome(conversation_id=message.welcome.conversation_id,
-                       next_seq=message.welcome.next_seq)
+                       next_seq=message.welcome.next_seq, epoch=message.welcome.epoch)
     if body == "snapshot":
         seq, words, utterances, final = _convert.snapshot_from_wire(message.snapshot)
-        return Snapshot(seq=seq, words=words, utterances=utterances, conversation_final=final)
+        return Snapshot(seq=seq, words=words, utterances=utterances, conversation_final=final,
+                        epoch=message.snapshot.epoch)
     if body == "gap":
         return Gap(first_missing=message.gap.first_missing, oldest_kept=message.gap.oldest_kept,
                    reason=_GAP_REASONS.get(message.gap.reason, GapReason.UNKNOWN))
@@ -267,11 +269,16 @@ class Client:
         """
         return MultiplexedStream(self, frame_events=frame_events)
 
-    async def follow(self, conversation_id: str, *,
-                     from_seq: int | None = None) -> AsyncGenerator[ServerEvent, None]:
+    async def follow(self, conversation_id: str, *, from_seq: int | None = None,
+                     epoch: int = 0) -> AsyncGenerator[ServerEvent, None]:
         """Yield a conversation's updates as its ingesting caller sees them, until it ends.
 
         Without ``from_seq`` the server starts with a :class:`Snapshot` of the current state.
+        ``epoch`` is the epoch ``from_seq`` belongs to (from a :class:`Welcome`, an update or a
+        snapshot); a position of another epoch (a different conversation that reuses the id,
+        say after a server restart), or beyond 1 without one, gets a :class:`Gap`
+        (``EPOCH_MISMATCH``) and a :class:`Snapshot` instead. Reconnects carry the epoch of
+        the last update seen, so a follower is never spliced into another conversation.
         After a lost connection the follower reconnects with the next seq it has not seen,
         yields :class:`Reconnected`, and the server answers with the missed updates or, when
         they fell out of its buffer, with a :class:`Gap` and a :class:`Snapshot`: a gap is
@@ -284,7 +291,7 @@ class Client:
         attempt = 0
         heard = False
         while True:
-            request = pb.FollowRequest(conversation_id=conversation_id)
+            request = pb.FollowRequest(conversation_id=conversation_id, epoch=epoch)
             if next_seq is not None:
                 request.from_seq = next_seq
             call = stub.Follow(request, metadata=self._metadata())
@@ -294,7 +301,7 @@ class Client:
                     heard = True
                     event = _server_event(message)
                     if isinstance(event, HypothesisUpdate | Snapshot):
-                        next_seq = event.seq + 1
+                        next_seq, epoch = event.seq + 1, event.epoch
                     yield event
                     if isinstance(event, Ended):
                         return
@@ -303,8 +310,10 @@ class Client:
             except grpc.RpcError as exc:
                 code = exc.code() if isinstance(exc, grpc.aio.AioRpcError) else None
                 # Retrying is for a stream that was lost. A server never heard from is not
-                # there (or refuses us): say so at once rather than "reconnecting" to it.
-                if code not in RETRYABLE or not heard:
+                # there (or refuses us): say so at once rather than "reconnecting" to it. A
+                # refused TLS certificate will be refused again.
+                details = exc.details() if isinstance(exc, grpc.aio.AioRpcError) else None
+                if code not in RETRYABLE or not heard or tls_failure(details):
                     raise self._error(exc) from exc
                 if attempt >= self._retry.max_attempts:
                     # Every retryable status maps to UnavailableError.
@@ -345,7 +354,8 @@ class Client:
                      else _convert.utterance_state_from_wire(item.utterance))
             revisions.append(Revision(seq=item.seq, server_time=item.server_time, state=state))
         return RevisionHistory(conversation_id=reply.conversation_id or conversation_id,
-                               revisions=tuple(revisions), truncated=reply.truncated)
+                               revisions=tuple(revisions), truncated=reply.truncated,
+                               epoch=reply.epoch)
 
     async def list_conversations(self) -> tuple[ConversationSummary, ...]:
         """Live and recently ended conversations the server keeps."""
@@ -353,7 +363,7 @@ class Client:
         return tuple(
             ConversationSummary(conversation_id=c.conversation_id, speakers=tuple(c.speakers),
                                 words=c.words, last_seq=c.last_seq, started_at=c.started_at,
-                                ended=c.ended)
+                                ended=c.ended, epoch=c.epoch)
             for c in reply.conversations)
 
     async def describe_models(self) -> tuple[ModelInfo, ...]:

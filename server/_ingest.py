@@ -7,12 +7,14 @@ Generated protobuf types are read here, as in the servicer: this module is part 
 from __future__ import annotations
 
 import asyncio
+import sys
 from typing import Any
 
 import grpc
 from midstream._errors import EventError
 from midstream._types import Word
 from midstream.server._config import ServerLimits
+from midstream.server._decode import MalformedMessage
 from midstream.server._limits import check_batch_size, check_id, check_word
 from midstream.server._session import Session
 from midstream.server._status import ProtocolStateError
@@ -23,7 +25,7 @@ from midstream.wire import midstream_pb2 as pb
 _CANCEL_SETTLE_S = 0.05
 
 
-def apply_event(session: Session, event: pb.ClientEvent, received: float,
+def apply_event(session: Session, event: pb.ClientEvent | MalformedMessage, received: float,
                 limits: ServerLimits) -> bool:
     """Check and apply one event after ``open``; return whether it was ``close``. Never awaits.
 
@@ -32,9 +34,12 @@ def apply_event(session: Session, event: pb.ClientEvent, received: float,
     Raises
     ------
     MidstreamError
-        The event was refused (a check at the edge, the engine, or the protocol state); words
+        The event was refused (its bytes did not decode, a check at the edge, the engine, or
+        the protocol state); words
         of a batch before the bad one stay applied and published.
     """
+    if isinstance(event, MalformedMessage):
+        raise event.error()
     kind = event.WhichOneof("event")
     if kind == "words":
         batch = event.words.words
@@ -65,6 +70,17 @@ def apply_event(session: Session, event: pb.ClientEvent, received: float,
         raise EventError("the event is empty: set one of words, replace, withdraw, hint, "
                          "close")
     return False
+
+
+def caller_address(context: grpc.aio.ServicerContext[Any, Any]) -> str:
+    """The caller's address without its port (``ipv4:10.0.0.7``), which retention shares by.
+
+    The port is left out because one caller may open many connections.
+    """
+    peer = context.peer() or ""
+    host, colon, port = peer.rpartition(":")
+    # Interned: every conversation of one caller then shares one string.
+    return sys.intern(host if colon and port.isdigit() else peer)
 
 
 async def caller_vanished(context: grpc.aio.ServicerContext[Any, Any]) -> bool:

@@ -42,7 +42,8 @@ from typing import TYPE_CHECKING
 
 import grpc
 from midstream._errors import EventError, LimitExceededError, MidstreamError, UnavailableError
-from midstream.server._ingest import apply_event, caller_vanished
+from midstream.server._decode import MalformedMessage
+from midstream.server._ingest import apply_event, caller_address, caller_vanished
 from midstream.server._session import Session, message_budget
 from midstream.server._status import (
     FieldLimitError,
@@ -81,12 +82,13 @@ class _Channel:
 class ManyStream:
     """The server side of one ``ConverseMany`` call. Use from the server's event loop only."""
 
-    __slots__ = ("_channels", "_context", "_highest", "_out", "_servicer", "_waited")
+    __slots__ = ("_channels", "_context", "_highest", "_out", "_owner", "_servicer", "_waited")
 
     def __init__(self, servicer: MidstreamServicer,
                  context: grpc.aio.ServicerContext[pb.ClientFrame, pb.ServerFrame]) -> None:
         self._servicer = servicer
         self._context = context
+        self._owner = ""  # the caller's address, read when the call runs
         self._channels: dict[int, _Channel] = {}
         self._highest = 0  # the highest channel number opened so far
         # Seconds the server has spent waiting for the caller's next frame: the idle clock.
@@ -98,23 +100,35 @@ class ManyStream:
     async def run(self) -> AsyncIterator[pb.ServerFrame]:
         """Serve the call: read frames, apply them, yield reply frames, until the stream ends."""
         servicer, context = self._servicer, self._context
+        self._owner = caller_address(context)
         limits = servicer.limits
         stop = servicer.stop_signal()
         if stop.done():
             await servicer.refuse_stream(context, UnavailableError("the server is shutting down"))
+        # The call's end finishes every open channel even if grpc never resumes nor closes
+        # this generator (see MidstreamServicer.Converse).
+        # (The stubs name a class where grpc takes any callable of the context.)
+        context.add_done_callback(
+            lambda _: self._abandon(pb.END_REASON_CALLER_VANISHED))  # type: ignore[arg-type]
         loop = asyncio.get_running_loop()
         sweep_every = min(limits.idle_timeout_s / _SWEEPS_PER_TIMEOUT, _MAX_SWEEP_S)
         next_sweep = sweep_every
         read: asyncio.Future[pb.ClientFrame] | None = None
+        # A stream with no open channel counts against max_streams_without_conversation and
+        # ends after idle_timeout_s of it (on the waiting clock).
+        try:
+            servicer.enter_waiting()
+        except LimitExceededError as exc:
+            await servicer.refuse_stream(context, exc)
+        waiting, empty_since = True, 0.0
         try:
             while True:
                 if read is None:
                     # The stubs say a frame; at the end of the stream it is grpc.aio.EOF.
                     read = asyncio.ensure_future(context.read())
                 pending: asyncio.Future[pb.ClientFrame] = read
-                # With no channel open nothing can time out: wait for the caller as long as it
-                # takes (keepalive pings notice a dead peer).
-                timeout = max(next_sweep - self._waited, 0.0) if self._channels else None
+                timeout = max((next_sweep if self._channels
+                               else empty_since + limits.idle_timeout_s) - self._waited, 0.0)
                 began = loop.time()
                 await asyncio.wait((pending, stop), timeout=timeout,
                                    return_when=asyncio.FIRST_COMPLETED)
@@ -136,10 +150,13 @@ class ManyStream:
                         for frame in self._frames():
                             yield frame
                         return
-                    assert isinstance(request, pb.ClientFrame)
                     try:
+                        if isinstance(request, MalformedMessage):
+                            # No channel can be told apart in bytes that did not decode.
+                            raise request.error()
+                        assert isinstance(request, pb.ClientFrame)
                         self._frame(request)
-                    except FieldLimitError as exc:
+                    except (FieldLimitError, EventError) as exc:
                         self._end_all(pb.END_REASON_REJECTED)
                         for frame in self._frames():
                             yield frame
@@ -149,7 +166,23 @@ class ManyStream:
                     next_sweep = self._waited + sweep_every
                 for frame in self._frames():
                     yield frame
+                if waiting == bool(self._channels):  # a first channel opened, or the last ended
+                    waiting = not waiting
+                    if waiting:
+                        servicer.enter_waiting(check=False)
+                        empty_since = self._waited
+                    else:
+                        servicer.leave_waiting()
+                if waiting and self._waited - empty_since >= limits.idle_timeout_s:
+                    if read is not None:
+                        read.cancel()  # the refusal reads what is in flight itself
+                        read = None
+                    await servicer.refuse_stream(context, ProtocolStateError(
+                        f"no channel was open on this stream for idle_timeout_s "
+                        f"({limits.idle_timeout_s} s)"))
         finally:
+            if waiting:
+                servicer.leave_waiting()
             if read is not None and not read.done():
                 read.cancel()
             # Cancelled, or the caller went away mid-stream: finalise for the followers.
@@ -204,14 +237,16 @@ class ManyStream:
             self._refuse(number, UnavailableError("the server is shutting down"))
             return
         try:
-            session = servicer.registry.open(conversation_id, servicer.bundle)
+            session = servicer.registry.open(conversation_id, servicer.bundle,
+                                             owner=self._owner)
         except MidstreamError as exc:
             self._refuse(number, exc)
             return
         self._highest = number
         channel = self._channels[number] = _Channel(number, session, self._waited)
         self._out.replies.add(channel=number, message=pb.ServerMessage(
-            welcome=pb.Welcome(conversation_id=session.id, next_seq=session.seq + 1)))
+            welcome=pb.Welcome(conversation_id=session.id, next_seq=session.seq + 1,
+                               epoch=session.epoch)))
         channel.sent = session.seq
 
     def _event(self, channel: _Channel, event: pb.ClientEvent, received: float) -> None:

@@ -14,6 +14,7 @@ with ``END_REASON_REJECTED`` (see ``docs/service.md``).
 from __future__ import annotations
 
 import asyncio
+import functools
 import json
 import logging
 import time
@@ -24,6 +25,7 @@ from typing import Any, NoReturn
 import grpc
 from midstream._errors import (
     EventError,
+    LimitExceededError,
     MidstreamError,
     ModelError,
     NotFoundError,
@@ -31,7 +33,8 @@ from midstream._errors import (
 )
 from midstream._types import HypothesisDiff, UtteranceHypothesis, WordHypothesis
 from midstream.server._config import ServerLimits
-from midstream.server._ingest import apply_event, caller_vanished
+from midstream.server._decode import MalformedMessage
+from midstream.server._ingest import apply_event, caller_address, caller_vanished
 from midstream.server._limits import SpeakerTimeline, check_id, check_word
 from midstream.server._many import ManyStream
 from midstream.server._metrics import ServerMetrics
@@ -160,6 +163,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self._metrics = metrics
         self.registry = SessionRegistry(limits, metrics)
         self._stopping = False
+        self._waiting = 0  # ingest streams without a conversation open
         # One future for every stream waiting on a stop, made on first use (on the loop):
         # a wait task per stream cost about a kilobyte each for the whole conversation.
         self._stop_signal: asyncio.Future[None] | None = None
@@ -176,6 +180,35 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     def stopping(self) -> bool:
         """Whether :meth:`begin_stopping` was called."""
         return self._stopping
+
+    def enter_waiting(self, *, check: bool = True) -> None:
+        """Count an ingest stream that has no conversation open (yet, or any more).
+
+        Such a stream costs the server memory and a slot but does nothing, so their number is
+        capped: without it a caller could hold thousands open. ``check=False`` counts a stream
+        that is already running (its last channel ended) without refusing it.
+
+        Raises
+        ------
+        LimitExceededError
+            When ``max_streams_without_conversation`` are already waiting.
+        """
+        limit = self._limits.max_streams_without_conversation
+        if check and self._waiting >= limit:
+            raise LimitExceededError(
+                "max_streams_without_conversation", limit,
+                f"{limit} streams have no conversation open; limit "
+                f"max_streams_without_conversation is {limit}")
+        self._waiting += 1
+
+    def leave_waiting(self) -> None:
+        """The stream counted by :meth:`enter_waiting` opened a conversation or ended."""
+        self._waiting -= 1
+
+    @property
+    def waiting(self) -> int:
+        """Ingest streams without a conversation open."""
+        return self._waiting
 
     def begin_stopping(self) -> None:
         """Refuse new conversations and interrupt streams that wait outside one; idempotent."""
@@ -200,6 +233,11 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         _log.debug("refusal detail: %s", error)
         await context.abort(code, str(error))
         raise AssertionError("abort returned")  # pragma: no cover - abort always raises
+
+    async def refuse(self, context: grpc.aio.ServicerContext[Any, Any],
+                     error: MidstreamError) -> NoReturn:
+        """End a call with the status code of ``error``: counted, logged on one line."""
+        await self._fail(context, error)
 
     @staticmethod
     def log_internal(where: str, error: Exception) -> None:
@@ -234,8 +272,17 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self, request_iterator: AsyncIterator[pb.ClientEvent],
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
-        with self._reader(context, self.stop_signal()) as reader:
-            first = await reader.next()
+        try:
+            self.enter_waiting()
+        except LimitExceededError as exc:
+            await self.refuse_stream(context, exc)
+        try:
+            with self._reader(context, self.stop_signal()) as reader:
+                first = await reader.next()
+        finally:
+            self.leave_waiting()
+        if isinstance(first, MalformedMessage):
+            await self.refuse_stream(context, first.error())
         if not isinstance(first, pb.ClientEvent):
             if first is _STOPPED:
                 await self._fail(context, UnavailableError("the server is shutting down"))
@@ -251,13 +298,30 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if self._stopping:
             await self.refuse_stream(context, UnavailableError("the server is shutting down"))
         try:
-            session = self.registry.open(first.open.conversation_id, self.bundle)
+            session = self.registry.open(first.open.conversation_id, self.bundle,
+                                         owner=caller_address(context))
         except MidstreamError as exc:
             await self.refuse_stream(context, exc)
-        yield pb.ServerMessage(welcome=pb.Welcome(
-            conversation_id=session.id, next_seq=session.seq + 1))
-        async for message in self._converse(session, context):
-            yield message
+        # From here on the conversation is this call's to end, however the call ends. grpc
+        # stops iterating a handler whose caller vanished (it is cancelled while sending, outside
+        # this generator) and closes the generator only when it is collected, which a
+        # reference cycle can put off indefinitely: the call's own end finishes the
+        # conversation, and the try below covers every yield, the welcome included.
+        # The stubs name a class where grpc takes any callable of the context.
+        context.add_done_callback(
+            functools.partial(self._call_ended, session))  # type: ignore[arg-type]
+        try:
+            yield pb.ServerMessage(welcome=pb.Welcome(
+                conversation_id=session.id, next_seq=session.seq + 1, epoch=session.epoch))
+            async for message in self._converse(session, context):
+                yield message
+        finally:
+            self._call_ended(session)
+
+    def _call_ended(self, session: Session, _: object = None) -> None:
+        """Finish ``session`` as abandoned by its caller unless it has already ended."""
+        if session.live:
+            self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
 
     async def _converse(
         self, session: Session,
@@ -284,7 +348,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     for message in (*session.since(sent), session.closing_messages[-1]):
                         yield message
                     return
-                assert isinstance(event, pb.ClientEvent)
+                assert isinstance(event, pb.ClientEvent | MalformedMessage)
                 try:
                     closing = apply_event(session, event, time.monotonic(), self._limits)
                 except MidstreamError as exc:
@@ -320,6 +384,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         """Wait for the caller's half-close; any further event is refused."""
         with self._reader(context, self.stop_signal()) as reader:
             event = await reader.next()
+        if isinstance(event, MalformedMessage):
+            await self.refuse_stream(context, event.error())
         if isinstance(event, pb.ClientEvent):
             await self.refuse_stream(context, ProtocolStateError(
                 f"event {event.WhichOneof('event')!r} after 'close': conversation "
@@ -334,14 +400,31 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
 
     # --- Follow, list, revisions ---------------------------------------------------------
 
+    def _known(self, conversation_id: str) -> Session:
+        """A live or kept conversation, its id checked first (no over-long id is echoed back).
+
+        Raises
+        ------
+        EventError
+            For an empty id or one holding a control character.
+        FieldLimitError
+            For an id over ``max_id_chars``.
+        NotFoundError
+            When no such conversation is live or kept.
+        """
+        check_id(conversation_id, "conversation_id", self._limits)
+        return self.registry.get(conversation_id)
+
     async def Follow(  # noqa: N802
-        self, request: pb.FollowRequest,
+        self, request: pb.FollowRequest | MalformedMessage,
         context: grpc.aio.ServicerContext[pb.FollowRequest, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
         try:
-            session = self.registry.get(request.conversation_id)
+            if isinstance(request, MalformedMessage):
+                raise request.error()
+            session = self._known(request.conversation_id)
             from_seq = request.from_seq if request.HasField("from_seq") else None
-            backlog, follower = session.follow(from_seq)
+            backlog, follower = session.follow(from_seq, request.epoch)
         except MidstreamError as exc:
             await self._fail(context, exc)
         if follower is None:
@@ -367,7 +450,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         context: grpc.aio.ServicerContext[pb.GetRevisionsRequest, pb.GetRevisionsReply],
     ) -> pb.GetRevisionsReply:
         try:
-            session = self.registry.get(request.conversation_id)
+            session = self._known(request.conversation_id)
         except MidstreamError as exc:
             await self._fail(context, exc)
         kept, truncated = session.revisions()
@@ -388,7 +471,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             revisions.append(revision)
         revisions.reverse()
         return pb.GetRevisionsReply(conversation_id=session.id, revisions=revisions,
-                                    truncated=truncated)
+                                    truncated=truncated, epoch=session.epoch)
 
     # --- batch -----------------------------------------------------------------------------
 
