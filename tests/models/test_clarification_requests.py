@@ -31,22 +31,28 @@ _DELIVERY = (
 
 @pytest.fixture(scope="module")
 def functions() -> dict[str, UtteranceFunction]:
+    """Each turn's text to the function of the utterance holding its last word (the word
+    model may split a turn or take a word such as "sorry" for an editing term, so the turn's
+    own words, not the clean text, find it)."""
     bundle = ModelBundle.load_default()
     engine = bundle.new_engine()
     latest: dict[str, UtteranceHypothesis] = {}
+    last_words: dict[str, str] = {}
     n = 0
     for speaker, text in _DELIVERY:
         for token in text.split():
             for u in engine.add_word(f"w{n}", Word(text=token, speaker=speaker)).utterances:
                 latest[u.utterance_id] = u
             n += 1
+        last_words[text] = f"w{n - 1}"
         for u in engine.hint(speaker, turn_end=True).utterances:
             latest[u.utterance_id] = u
     for u in engine.finish().utterances:
         latest[u.utterance_id] = u
     final = [u for u in latest.values() if u.word_ids]
     assert all(u.final for u in final)
-    return {u.clean_text: u.function for u in final}
+    holding = {w: u.function for u in final for w in u.word_ids}
+    return {text: holding[word] for text, word in last_words.items()}
 
 
 def test_an_echo_check_is_a_clarification_request(
@@ -63,5 +69,8 @@ def test_the_rest_of_the_exchange_is_not_taken_for_clarification(
         functions: dict[str, UtteranceFunction]) -> None:
     # The model must not call everything after the partner's turn a clarification request.
     assert functions["and do you need me to sign anything"] is UtteranceFunction.QUESTION
-    assert functions["we can bring the wardrobe on thursday at four fifteen"] is not (
-        UtteranceFunction.CLARIFICATION_REQUEST)
+    assert functions["okay"] is UtteranceFunction.ACKNOWLEDGEMENT
+    informs = [text for speaker, text in _DELIVERY if speaker == "agent"]
+    taken = [text for text in informs
+             if functions[text] is UtteranceFunction.CLARIFICATION_REQUEST]
+    assert not taken
