@@ -12,7 +12,9 @@ checks that both paths gave the same labels.
 
 With ``--coarse PATH`` it also times what the engine does per word when a coarse-function model
 serves beside the fine one: both taggers' ``label_partial`` on each call, against the fine
-tagger's alone in the same rounds, and prints the ratio (the cost the second CRF adds).
+tagger's alone in the same rounds, and prints the ratio (the cost the second CRF adds); then the
+whole engine (shipped word model, ``ConversationEngine.add_word`` over the same conversations'
+words) with and without the coarse model, rounds alternating, CPU time per word and the ratio.
 
 ::
 
@@ -29,7 +31,9 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
+from midstream import Conversation
 from midstream.corpora import read_corpus
+from midstream.models import ModelBundle
 from midstream.models._artifact import load_artifact
 from midstream.models._functions import FunctionTagger, clean_view, utterance_features
 from midstream.models._views import UtteranceView
@@ -64,6 +68,19 @@ def _time(label: Callable[[FunctionTagger, list[UtteranceView], UtteranceView], 
         labels.append(label(tagger, context, current))
         costs.append((clock() - started) / 1e3)
     return costs, time.thread_time() - cpu, labels
+
+
+def _engine_cpu(bundle: ModelBundle, conversations: list[Conversation]) -> float:
+    """CPU seconds per word of fresh engines fed the conversations' words in order."""
+    cpu = time.thread_time()
+    n = 0
+    for conversation in conversations:
+        engine = bundle.new_engine()
+        for i, word in enumerate(conversation.words):
+            engine.add_word(f"w{i}", word)
+        engine.finish()
+        n += len(conversation.words)
+    return (time.thread_time() - cpu) / max(n, 1)
 
 
 class _Pair:
@@ -109,9 +126,11 @@ def main() -> int:
     # Calls that open an utterance meet a new context window (one per utterance); the rest
     # reuse it.
     opening: list[bool] = []
+    conversations: list[Conversation] = []
     for n, conversation in enumerate(read_corpus(corpora / "swda", split="val")):
         if n >= args.conversations:
             break
+        conversations.append(conversation)
         views = [clean_view(conversation, u) for u in conversation.utterances]
         for i, utterance in enumerate(conversation.utterances):
             context = views[max(0, i - tagger.context):i]
@@ -181,6 +200,21 @@ def main() -> int:
         ratio = statistics.median(both) / statistics.median(alone)
         print(f"fine+coarse / fine alone: {ratio:.2f}x median, "
               f"CPU time {both_cpu / alone_cpu:.2f}x")
+        words = ModelBundle.load_default().word_model
+        fine_only = ModelBundle(word_model=words, function_tagger=tagger, infos=())
+        with_coarse = ModelBundle(word_model=words, function_tagger=tagger, infos=(),
+                                  coarse_tagger=FunctionTagger.from_artifact(coarse))
+        one: list[float] = []
+        two: list[float] = []
+        for bundle in (fine_only, with_coarse):  # compile the kernels before timing
+            _engine_cpu(bundle, conversations[:1])
+        for _ in range(args.rounds):
+            one.append(_engine_cpu(fine_only, conversations))
+            two.append(_engine_cpu(with_coarse, conversations))
+        print(f"engine CPU per word: fine model only {1e6 * statistics.median(one):.1f} us, "
+              f"with the coarse model {1e6 * statistics.median(two):.1f} us, ratio "
+              f"{statistics.median(two) / statistics.median(one):.2f}x (median of "
+              f"{args.rounds} rounds)")
     return 0
 
 
