@@ -65,8 +65,9 @@ class FunctionTrainingOptions:
         Seed of the augmentation's random cuts (training is otherwise deterministic).
     oversample
         ``(label, copies)`` pairs: for every utterance with that label, ``copies`` extra short
-        training sequences of it and the :data:`OVERSAMPLE_CONTEXT` utterances before it (each
-        cut to a random prefix with probability ``augment``). crfsuite has no class weights;
+        training sequences of it, the :data:`OVERSAMPLE_CONTEXT` utterances before it and the
+        :data:`OVERSAMPLE_AFTER` after it (the rare one cut to a random prefix with probability
+        ``augment``). crfsuite has no class weights;
         repeating a rare class's windows is how its few examples weigh more, and the window is
         what the streaming tagger decodes anyway.
     """
@@ -94,6 +95,9 @@ class FunctionTrainingOptions:
 #: Utterances before a rare one that its oversampled window holds: the streaming tagger's
 #: context (:data:`~midstream.models._functions.DEFAULT_CONTEXT`).
 OVERSAMPLE_CONTEXT = 4
+#: Utterances after it: windows that all ended on the rare class taught the tagger that the
+#: last position of a window (where a stream's current utterance always is) is that class.
+OVERSAMPLE_AFTER = 1
 
 
 def _label(conversation: Conversation, index: int, scheme: str) -> str:
@@ -162,16 +166,16 @@ def build_sequences(conversations: Iterable[Conversation],
                 for _ in range(copies.get(label, 0)):
                     xseqs.append(_rare_window(conversation, views, i, xseq=xseq, rng=rng,
                                               rate=options.augment, config=options.config))
-                    yseqs.append(labels[max(0, i - OVERSAMPLE_CONTEXT):i + 1])
+                    yseqs.append(labels[max(0, i - OVERSAMPLE_CONTEXT):i + 1 + OVERSAMPLE_AFTER])
     return xseqs, yseqs
 
 
 def _rare_window(conversation: Conversation, views: Sequence[UtteranceView], index: int, *,
                  xseq: Sequence[Features], rng: random.Random, rate: float,
                  config: FunctionFeatureConfig) -> list[Features]:
-    """Utterance ``index`` with the ones before it, as the streaming tagger decodes it: the
-    window's first utterance opens the chain, the last is cut to a prefix with probability
-    ``rate``."""
+    """Utterance ``index`` with the ones before it, as the streaming tagger decodes it, and
+    :data:`OVERSAMPLE_AFTER` after it: the window's first utterance opens the chain, the rare
+    one is cut to a prefix with probability ``rate``."""
     start = max(0, index - OVERSAMPLE_CONTEXT)
     window: list[Features] = []
     if index > start:
@@ -184,6 +188,8 @@ def _rare_window(conversation: Conversation, views: Sequence[UtteranceView], ind
         shown = clean_view(conversation, utterance, upto=rng.randint(1, n - 1))
     previous = views[index - 1] if index > start else None
     window.append(utterance_features(shown, previous, config))
+    # The utterances after it see it whole, as a stream's context is final.
+    window.extend(xseq[index + 1:index + 1 + OVERSAMPLE_AFTER])
     return window
 
 
