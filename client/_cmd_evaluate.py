@@ -12,8 +12,10 @@ decoder and scored on what the stream said at each moment (keys documented in
 from the shipped function model unless ``--functions-model`` names another, skipped with
 ``--words-only``) are merged into the same report, including
 ``utterance_functions.predicted_segmentation.word_accuracy``: whole conversations replayed
-through the conversation engine, as a live caller would see them. People get the figures as
-titled tables (:mod:`midstream.client._figures`), scripts every key with ``--json``.
+through the conversation engine, as a live caller would see them. With the shipped models the
+coarse figures are the coarse model's and the ``...swbd42`` figures the 42-class model's;
+``--functions-only`` skips the word model's figures. People get the figures as titled tables
+(:mod:`midstream.client._figures`), scripts every key with ``--json``.
 """
 
 from __future__ import annotations
@@ -24,7 +26,7 @@ import math
 import sys
 from pathlib import Path
 
-from midstream._errors import InputError
+from midstream._errors import InputError, NotFoundError
 from midstream.client._figures import format_figures
 from midstream.corpora import read_corpus
 from midstream.models._bundle import ModelBundle, default_functions_model_path
@@ -49,6 +51,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help="utterance-function model (.msm); default: the shipped one")
     parser.add_argument("--words-only", action="store_true",
                         help="score the word model only (no utterance functions)")
+    parser.add_argument("--functions-only", action="store_true",
+                        help="score the utterance functions only (no disfluency figures)")
     parser.add_argument("--lag", type=int, default=None,
                         help="open words at most: a word's label becomes final once settled "
                              "(no later word can change it) or this many words late "
@@ -70,13 +74,20 @@ def run(args: argparse.Namespace) -> int:
         conversations = conversations[: args.limit]
     if not conversations:
         raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
+    if args.words_only and args.functions_only:
+        raise InputError("--words-only and --functions-only exclude each other")
     decoder = DecoderConfig(lag=args.lag, settle=not args.no_settle)
-    figures = evaluate_words(conversations, model, config=decoder, progress=True)
+    figures: dict[str, float] = {}
+    if not args.functions_only:
+        figures.update(evaluate_words(conversations, model, config=decoder, progress=True))
     if not args.words_only:
-        tagger = FunctionTagger.load(args.functions_model or default_functions_model_path())
-        figures.update(evaluate_functions(conversations, tagger))
-        bundle = ModelBundle(word_model=model, function_tagger=tagger, infos=(),
-                             decoder=decoder)
+        fine, coarse = _function_taggers(args.functions_model)
+        figures.update(evaluate_functions(conversations, coarse))
+        if fine is not coarse:
+            fine_figures = evaluate_functions(conversations, fine, replay=False)
+            figures.update({k: v for k, v in fine_figures.items() if ".swbd42." in k})
+        bundle = ModelBundle(word_model=model, function_tagger=fine, infos=(),
+                             decoder=decoder, coarse_tagger=None if fine is coarse else coarse)
         figures.update(evaluate_engine(conversations, bundle))
     if args.json:
         clean = {k: (None if isinstance(v, float) and math.isnan(v) else v)
@@ -90,3 +101,16 @@ def run(args: argparse.Namespace) -> int:
               "replayed word by word; --json gives every figure by key\n")
         print(format_figures(figures))
     return 0
+
+
+def _function_taggers(path: Path | None) -> tuple[FunctionTagger, FunctionTagger]:
+    """The fine and the coarse tagger: both the one named, or the shipped ones."""
+    if path is not None:
+        tagger = FunctionTagger.load(path)
+        return tagger, tagger
+    fine = FunctionTagger.load(default_functions_model_path())
+    try:
+        coarse = FunctionTagger.load(default_functions_model_path("coarse"))
+    except NotFoundError:
+        return fine, fine
+    return fine, coarse

@@ -93,8 +93,9 @@ def _register_functions(tasks: argparse._SubParsersAction[argparse.ArgumentParse
     parser = tasks.add_parser(
         "functions", help="the utterance-function CRF",
         description="Train the utterance-function CRF and write a .msm model file.")
-    parser.add_argument("corpus", type=Path, help="a corpus folder or a .jsonl file")
-    parser.add_argument("--split", default=None, help="read only this split, e.g. train")
+    parser.add_argument("corpus", type=Path, nargs="+",
+                        help="corpus folders or .jsonl files; several are pooled")
+    parser.add_argument("--split", default=None, help="read only this split of each, e.g. train")
     parser.add_argument("--out", type=Path, required=True, help="model file to write (.msm)")
     functions.add_training_arguments(parser)
     parser.set_defaults(handler=functions.run)

@@ -6,15 +6,23 @@
         --augment 0.5 --c1 0.1 0.3 --c2 0.01 --cv-folds 3 --cv-subset 300 \\
         --out functions-swbd42.msm
     midstream train functions my_calls.jsonl --scheme coarse --out functions-coarse.msm
+    midstream train functions ../shared/corpora/swda ../shared/corpora/mrda \\
+        ../shared/corpora/maptask --split train --scheme coarse --partner-features \\
+        --oversample clarification_request=0 clarification_request=3 --out functions-coarse.msm
 
 ``midstream train`` (:mod:`midstream.client._cmd_train`) registers the sub-command with
 :func:`add_training_arguments` and :func:`run`. The corpus is anything
 :func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of
-your own transcripts). Given several ``--c1``/``--c2`` values, the combinations are compared by
-conversation-grouped cross-validation on the first ``--cv-subset`` conversations (by id) of the
-corpus given, which must be the training split; the best is then trained on all of it. The score
-of a combination is the mean of its gold-segmentation accuracy in the model's own scheme and its
-coarse accuracy after three received words.
+your own transcripts); several corpora are pooled. Given several ``--c1``/``--c2``/
+``--oversample`` values, the combinations are compared by conversation-grouped cross-validation
+on the first ``--cv-subset`` conversations (by id) of each corpus given, which must be training
+splits; the best is then trained on all of them. The score of a combination is, for one corpus,
+the mean of its gold-segmentation accuracy in the model's own scheme and its coarse accuracy
+after three received words; for pooled corpora, the mean over the corpora of coarse accuracy,
+coarse macro-F1 (gold segmentation: so that a corpus's rare classes count, and every corpus as
+much as another however many utterances it has) and the streamed coarse accuracy after three
+received words (what a live caller gets: a setting that helps whole conversations can hurt the
+bounded window a stream is labelled over).
 """
 
 from __future__ import annotations
@@ -32,7 +40,7 @@ from midstream._types import Conversation
 from midstream.corpora import read_corpus
 from midstream.models._artifact import ModelArtifact, save_artifact
 from midstream.models._eval_functions import evaluate_functions
-from midstream.models._functions import SCHEMES, FunctionTagger
+from midstream.models._functions import SCHEMES, FunctionFeatureConfig, FunctionTagger
 from midstream.models._train_functions import (
     FunctionTrainingOptions,
     Scorer,
@@ -56,6 +64,13 @@ def add_training_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--augment", type=float, default=defaults.augment,
                         help="share of utterances cut to a random prefix in an augmented copy")
     parser.add_argument("--seed", type=int, default=defaults.seed)
+    parser.add_argument("--partner-features", action="store_true",
+                        help="features of how an utterance echoes the partner's just before it "
+                             "(repeated words and numbers, short replies, alternatives)")
+    parser.add_argument("--oversample", nargs="+", default=[""],
+                        metavar="LABEL=COPIES[,LABEL=COPIES...]",
+                        help="extra copies of a short window around each utterance of a label "
+                             "(several values are compared by cross-validation)")
     parser.add_argument("--cv-folds", type=int, default=3,
                         help="folds for comparing several --c1/--c2 values")
     parser.add_argument("--cv-subset", type=int, default=300,
@@ -80,29 +95,38 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
     out = out if out is not None else sys.stdout
     if not conversations:
         raise InputError("the corpus holds no conversations to train on")
+    samplings = [parse_oversample(value) for value in args.oversample]
     base = FunctionTrainingOptions(
         scheme=args.scheme, c1=args.c1[0], c2=args.c2[0], min_freq=args.min_freq,
-        max_iterations=args.max_iterations, augment=args.augment, seed=args.seed)
-    grid = list(itertools.product(args.c1, args.c2))
+        max_iterations=args.max_iterations, augment=args.augment, seed=args.seed,
+        config=FunctionFeatureConfig(partner=args.partner_features), oversample=samplings[0])
+    grid = list(itertools.product(args.c1, args.c2, samplings))
     chosen = base
     cv: dict[str, object] = {}
     if len(grid) > 1:
         if args.cv_folds < 2:
             raise InputError(f"--cv-folds must be at least 2, got {args.cv_folds}")
-        subset = sorted(conversations, key=lambda c: c.id)
-        if args.cv_subset:
-            subset = subset[:args.cv_subset]
-        score = _cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
+        corpora = sorted({c.corpus for c in conversations})
+        subset: list[Conversation] = []
+        for corpus in corpora:
+            some = sorted((c for c in conversations if c.corpus == corpus), key=lambda c: c.id)
+            subset += some[:args.cv_subset] if args.cv_subset else some
+        score = (_cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
+                 if len(corpora) == 1 else _pooled_score(corpora))
         best = -1.0
-        for c1, c2 in grid:
-            options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2})
+        for c1, c2, sampling in grid:
+            options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2,
+                                                 "oversample": sampling})
             figures = cross_validate(subset, options, folds=args.cv_folds, score=score)
-            print(f"cv c1={c1} c2={c2}: " + " ".join(
+            name = f"c1={c1},c2={c2}" + (
+                f",oversample={_oversample_text(sampling)}" if sampling else "")
+            print(f"cv {name}: " + " ".join(
                 f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
-            cv[f"c1={c1},c2={c2}"] = {k: round(v, 4) for k, v in figures.items()}
+            cv[name] = {k: round(v, 4) for k, v in figures.items()}
             if figures["score"] > best:
                 best, chosen = figures["score"], options
-        print(f"chosen c1={chosen.c1} c2={chosen.c2}", file=out, flush=True)
+        print(f"chosen c1={chosen.c1} c2={chosen.c2} "
+              f"oversample={_oversample_text(chosen.oversample) or '-'}", file=out, flush=True)
     command = "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:])
     artifact = train_function_model(conversations, chosen, command=command)
     if cv:
@@ -115,6 +139,54 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
     return artifact
 
 
+def _pooled_score(corpora: Sequence[str]) -> Scorer:
+    def score(tagger: FunctionTagger, held: Sequence[Conversation]) -> dict[str, float]:
+        result: dict[str, float] = {}
+        parts: list[float] = []
+        prefix = "utterance_functions.gold_segmentation.coarse"
+        for corpus in corpora:
+            mine = [c for c in held if c.corpus == corpus]
+            if not mine:
+                continue
+            figures = evaluate_functions(mine, tagger)
+            accuracy = figures[f"{prefix}.accuracy"]
+            macro = figures[f"{prefix}.macro_f1"]
+            early = figures["utterance_functions.accuracy_after_words.3"]
+            result[f"{corpus}.accuracy"] = accuracy
+            result[f"{corpus}.macro_f1"] = macro
+            result[f"{corpus}.after_3"] = early
+            for label in ("question", "clarification_request"):
+                result[f"{corpus}.{label}_f1"] = figures.get(
+                    f"{prefix}.per_class.{label}.f1", 0.0)
+            parts += [accuracy, macro, early]
+        result["score"] = sum(parts) / len(parts) if parts else 0.0
+        return result
+    return score
+
+
+def parse_oversample(text: str) -> tuple[tuple[str, int], ...]:
+    """``"label=copies,label=copies"`` (empty: none) as :class:`FunctionTrainingOptions` takes it.
+
+    Examples
+    --------
+    >>> parse_oversample("clarification_request=3")
+    (('clarification_request', 3),)
+    """
+    pairs: list[tuple[str, int]] = []
+    for part in filter(None, text.split(",")):
+        label, sep, copies = part.partition("=")
+        if not sep or not label or not copies.isdigit():
+            raise InputError(f"--oversample {part!r}: expected LABEL=COPIES, e.g. "
+                             "clarification_request=3")
+        if int(copies):
+            pairs.append((label, int(copies)))
+    return tuple(pairs)
+
+
+def _oversample_text(pairs: Sequence[tuple[str, int]]) -> str:
+    return ",".join(f"{label}={copies}" for label, copies in pairs)
+
+
 def _fields(options: FunctionTrainingOptions) -> dict[str, object]:
     return {name: getattr(options, name) for name in options.__dataclass_fields__}
 
@@ -122,7 +194,7 @@ def _fields(options: FunctionTrainingOptions) -> dict[str, object]:
 def run(args: argparse.Namespace) -> int:
     """Handler of ``midstream train functions``: read, choose, train, write ``args.out``."""
     started = time.monotonic()
-    conversations = list(read_corpus(args.corpus, split=args.split))
+    conversations = [c for corpus in args.corpus for c in read_corpus(corpus, split=args.split)]
     artifact = train_from_args(args, conversations)
     save_artifact(artifact, args.out)
     size = args.out.stat().st_size

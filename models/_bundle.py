@@ -25,8 +25,9 @@ from midstream.models._wordmodel import WordModel
 
 #: Largest model file read (explicit limit; the shipped models are a few MB).
 MAX_MODEL_BYTES = 256 * 1024 * 1024
-#: When a folder holds function models of several schemes, the first found here serves: the
-#: fine scheme gives both a fine class and (by summing marginals) a coarse function.
+#: When a folder holds function models of several schemes, the first found here gives the fine
+#: class (and, alone, the coarse function by summing its marginals); a coarse-scheme model
+#: beside a fine one decides the coarse function.
 _SCHEME_PREFERENCE = ("swbd42", "coarse")
 
 
@@ -56,9 +57,11 @@ class ModelBundle:
 
     def __init__(self, *, word_model: WordModel, function_tagger: FunctionTagger,
                  infos: tuple[ModelInfo, ...], decoder: DecoderConfig | None = None,
-                 engine: EngineConfig | None = None) -> None:
+                 engine: EngineConfig | None = None,
+                 coarse_tagger: FunctionTagger | None = None) -> None:
         self._word_model = word_model
         self._function_tagger = function_tagger
+        self._coarse_tagger = coarse_tagger
         self._infos = infos
         self._decoder = decoder or DecoderConfig()
         self._engine = engine or EngineConfig()
@@ -95,8 +98,13 @@ class ModelBundle:
         chosen = next((by_scheme[s] for s in _SCHEME_PREFERENCE if s in by_scheme), functions[0])
         word_model = WordModel.from_artifact(words[0].artifact)
         function_tagger = FunctionTagger.from_artifact(chosen.artifact)
+        coarse = by_scheme.get("coarse")
+        if coarse is None or coarse is chosen:
+            return cls(word_model=word_model, function_tagger=function_tagger,
+                       infos=(words[0].info, chosen.info))
         return cls(word_model=word_model, function_tagger=function_tagger,
-                   infos=(words[0].info, chosen.info))
+                   infos=(words[0].info, chosen.info, coarse.info),
+                   coarse_tagger=FunctionTagger.from_artifact(coarse.artifact))
 
     def describe(self) -> tuple[ModelInfo, ...]:
         """The models in this bundle, word model first."""
@@ -105,7 +113,8 @@ class ModelBundle:
     def with_decoder(self, decoder: DecoderConfig) -> ModelBundle:
         """The same loaded models, making engines whose decoders use ``decoder`` (cheap)."""
         return ModelBundle(word_model=self._word_model, function_tagger=self._function_tagger,
-                           infos=self._infos, decoder=decoder, engine=self._engine)
+                           infos=self._infos, decoder=decoder, engine=self._engine,
+                           coarse_tagger=self._coarse_tagger)
 
     @staticmethod
     def warm_up() -> None:
@@ -121,22 +130,30 @@ class ModelBundle:
         word_model, decoder = self._word_model, self._decoder
         return ConversationEngine(
             new_decoder=lambda: ChannelDecoder(word_model, decoder),
-            function_tagger=self._function_tagger, config=self._engine)
+            function_tagger=self._function_tagger, coarse_tagger=self._coarse_tagger,
+            config=self._engine)
 
     @property
     def function_tagger(self) -> FunctionTagger:
+        """The tagger of the fine class (and of the coarse function when alone)."""
         return self._function_tagger
+
+    @property
+    def coarse_tagger(self) -> FunctionTagger:
+        """The tagger that decides the coarse function."""
+        return self._coarse_tagger or self._function_tagger
 
     @property
     def word_model(self) -> WordModel:
         return self._word_model
 
 
-def default_functions_model_path() -> Path:
-    """The shipped utterance-function model the default bundle serves."""
+def default_functions_model_path(scheme: str | None = None) -> Path:
+    """The shipped utterance-function model the default bundle serves (the fine one first), or
+    the shipped model of ``scheme``."""
     folder = Path(str(resources.files("midstream.models") / "weights"))
-    for scheme in _SCHEME_PREFERENCE:
-        path = folder / f"functions-{scheme}.msm"
+    for name in _SCHEME_PREFERENCE if scheme is None else (scheme,):
+        path = folder / f"functions-{name}.msm"
         if path.exists():
             return path
     raise NotFoundError(f"no shipped utterance-function model in {folder}")

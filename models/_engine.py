@@ -37,7 +37,7 @@ from midstream._types import (
 from midstream.corpora._normalise import normalise_token
 from midstream.models._decoder import ChannelDecoder, TokenState
 from midstream.models._functions import FunctionGuess, FunctionTagger, WordsMemo
-from midstream.models._views import UtteranceView
+from midstream.models._views import UtteranceView, build_view
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -75,6 +75,8 @@ class _Slot:
     text: str
     start: float | None = None
     end: float | None = None
+    #: A broken-off word ("s-"): kept in the published clean text, left out of the view.
+    fragment: bool = False
     label: DisfluencyLabel = DisfluencyLabel.FLUENT
     ends_utterance: bool = False
     final: bool = False
@@ -115,15 +117,21 @@ class ConversationEngine:
     new_decoder
         Makes a fresh channel decoder for each new speaker.
     function_tagger
-        Labels the function of (partial) utterances.
+        Labels the function of (partial) utterances: the fine class, and the coarse function
+        unless ``coarse_tagger`` is given.
+    coarse_tagger
+        A model of the coarse functions that decides them instead (the fine tagger still gives
+        the fine class); decoded over a context window of its own.
     config
         Engine tuning; see :class:`EngineConfig`.
     """
 
     def __init__(self, *, new_decoder: Callable[[], ChannelDecoder],
-                 function_tagger: FunctionTagger, config: EngineConfig | None = None) -> None:
+                 function_tagger: FunctionTagger, coarse_tagger: FunctionTagger | None = None,
+                 config: EngineConfig | None = None) -> None:
         self._new_decoder = new_decoder
         self._functions = function_tagger
+        self._coarse = coarse_tagger
         self._config = config or EngineConfig()
         self._channels: dict[str, _Channel] = {}
         self._by_id: dict[str, _Slot] = {}
@@ -134,6 +142,9 @@ class ConversationEngine:
         #: conversations).
         self._window = function_tagger.context_window(())
         self._memo = WordsMemo()
+        # The coarse tagger's rows index its own weights: a window and memo of its own.
+        self._coarse_window = (coarse_tagger or function_tagger).context_window(())
+        self._coarse_memo = WordsMemo()
         self._last_speaker: str | None = None
         self._finished = False
         # An utterance of nothing but disfluent words ("uh") has no words to label: it is
@@ -147,6 +158,12 @@ class ConversationEngine:
     def finished(self) -> bool:
         """True once :meth:`finish` ran; every later event raises :class:`EventError`."""
         return self._finished
+
+    @property
+    def context(self) -> tuple[UtteranceView, ...]:
+        """The final utterances the current ones are labelled after, oldest first (at most the
+        function tagger's context size)."""
+        return self._window.views
 
     @property
     def open_word_count(self) -> int:
@@ -172,15 +189,16 @@ class ConversationEngine:
         channel = self._channel(word.speaker)
         key = channel.next_key
         channel.next_key += 1
+        fragment = token.fragment or word.fragment
         slot = _Slot(word_id=word_id, speaker=word.speaker, key=key, text=token.text,
-                     start=word.start, end=word.end)
+                     start=word.start, end=word.end, fragment=fragment)
         channel.slots[key] = slot
         channel.open_keys.append(key)
         self._by_id[word_id] = slot
         self._remember(word_id)
         after_other = self._last_speaker is not None and self._last_speaker != word.speaker
         self._last_speaker = word.speaker
-        clean = _clean_word(word, token.text, token.fragment or word.fragment)
+        clean = _clean_word(word, token.text, fragment)
         states = channel.decoder.append(key, clean, after_other_speaker=after_other)
         return self._apply(channel, states)
 
@@ -203,8 +221,9 @@ class ConversationEngine:
             raise EventError(f"word {word_id!r}: replacement text has no speech content")
         slot.text = token.text
         slot.start, slot.end = word.start, word.end
+        slot.fragment = token.fragment or word.fragment
         channel = self._channels[slot.speaker]
-        clean = _clean_word(word, token.text, token.fragment or word.fragment)
+        clean = _clean_word(word, token.text, slot.fragment)
         states = channel.decoder.replace(slot.key, clean)
         # The new text changes the word's utterance even when no tag moved.
         return self._apply(channel, states, revised=slot.key)
@@ -406,12 +425,12 @@ class ConversationEngine:
                 channel.next_index += 1
             word_ids = tuple([s.word_id for s in slots])
             clean = tuple([s.text for s in slots if s.label not in REMOVED_FROM_CLEAN_TEXT])
-            view = UtteranceView(speaker=channel.speaker, words=clean,
-                                 removed=len(slots) - len(clean), complete=ended)
+            # The view training saw (fragments out): one builder for both.
+            view = build_view(channel.speaker, [(s.text, s.fragment, s.label) for s in slots],
+                              complete=ended)
             if entry.view != view or entry.word_ids != word_ids or (
                     final and not (entry.published and entry.published.final)):
-                guess = self._functions.label_built(self._window, view, self._memo) if clean \
-                    else self._empty_guess
+                guess = self._guess(view) if view.words else self._empty_guess
                 hypothesis = self._utterance(entry, speaker=channel.speaker, word_ids=word_ids,
                                              clean=clean, guess=guess, final=final)
                 if entry.published is None or _utterance_changed(
@@ -433,11 +452,26 @@ class ConversationEngine:
                     channel.slots.pop(slot.key, None)
             channel.ends.difference_update(done.keys)
             del channel.open_keys[:len(done.keys)]
-            if done.view is not None and done.view.words:
+            if done.view is not None:
+                # Every utterance joins the context, also one with no word left after
+                # cleaning: the chain training saw holds them too.
                 self._window = self._functions.extend_window(self._window, done.view,
                                                              self._memo)
+                if self._coarse is not None:
+                    self._coarse_window = self._coarse.extend_window(
+                        self._coarse_window, done.view, self._coarse_memo)
         channel.utterances = new
         return published
+
+    def _guess(self, view: UtteranceView) -> FunctionGuess:
+        """The fine tagger's label, with the coarse tagger's function when there is one."""
+        guess = self._functions.label_built(self._window, view, self._memo)
+        if self._coarse is None:
+            return guess
+        coarse = self._coarse.label_built(self._coarse_window, view, self._coarse_memo)
+        return FunctionGuess(label=guess.label, confidence=guess.confidence,
+                             function=coarse.function,
+                             function_confidence=coarse.function_confidence)
 
     def _utterance(self, entry: _OpenUtterance, *, speaker: str, word_ids: tuple[str, ...],
                    clean: tuple[str, ...], guess: FunctionGuess,

@@ -27,7 +27,6 @@ import numpy.typing as npt
 from midstream._errors import InputError, ModelError
 from midstream._schemes import coarse_function
 from midstream._types import (
-    REMOVED_FROM_CLEAN_TEXT,
     Conversation,
     Utterance,
     UtteranceFunction,
@@ -35,7 +34,7 @@ from midstream._types import (
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
 from midstream.models._lattice import chain_carry, chain_end_step, exp_into
-from midstream.models._views import UtteranceView, check_view
+from midstream.models._views import UtteranceView, build_view, check_view
 
 #: Feature-dictionary type the CRF adapter takes: attribute name to value.
 Features = dict[str, float]
@@ -85,19 +84,26 @@ class FunctionFeatureConfig:
     complete_flag
         A feature telling whether the utterance is complete; with prefix augmentation it tells the
         CRF a growing utterance from a finished one.
+    partner
+        Across a change of speaker, how the utterance relates to the partner's utterance just
+        before it: words and numbers it repeats, its length right after the partner's turn, its
+        opening word, an alternative echoing the partner ("four fifteen or four fifty"). What a
+        clarification request looks like in any corpus (ISO 24617-2 checkQuestion on the
+        partner's utterance; see docs/labels.md). Off in models trained before it existed.
     """
 
     trigrams: bool = True
     previous: bool = True
     complete_flag: bool = True
+    partner: bool = False
 
     def to_json(self) -> dict[str, bool]:
         return {"trigrams": self.trigrams, "previous": self.previous,
-                "complete_flag": self.complete_flag}
+                "complete_flag": self.complete_flag, "partner": self.partner}
 
     @classmethod
     def from_json(cls, data: Mapping[str, object]) -> FunctionFeatureConfig:
-        known = {"trigrams", "previous", "complete_flag"}
+        known = {"trigrams", "previous", "complete_flag", "partner"}
         unknown = set(data) - known
         if unknown:
             raise ModelError(f"unknown function feature settings {sorted(unknown)}")
@@ -161,7 +167,7 @@ def utterance_features(view: UtteranceView, previous: UtteranceView | None,
     changed = previous.speaker != view.speaker
     _add_previous_features(feats, previous, changed=changed, config=config)
     if changed and config.previous:
-        _add_pair_features(feats, previous.words, view.words)
+        _add_pair_features(feats, previous.words, view.words, partner=config.partner)
     return feats
 
 
@@ -255,14 +261,59 @@ def _add_previous_features(feats: Features, previous: UtteranceView, *, changed:
 
 
 def _add_pair_features(feats: Features, previous: tuple[str, ...],
-                       words: tuple[str, ...]) -> None:
-    """Previous first word with this first word, across a change of speaker."""
+                       words: tuple[str, ...], *, partner: bool = False) -> None:
+    """Previous first word with this first word, across a change of speaker; with ``partner``
+    also how this utterance echoes the partner's (see :class:`FunctionFeatureConfig`)."""
     if words:
         # "yeah" after a question is an answer, after an opinion an agreement, after a
         # statement a backchannel: the pair carries what neither word does alone.
         feats[f"x={previous[0] if previous else '-'}|{words[0]}"] = 1.0
         if len(words) <= 2:
             feats[f"xs={previous[0] if previous else '-'}|{'_'.join(words)}"] = 1.0
+    if partner:
+        _add_partner_features(feats, previous, words)
+
+
+#: Number words a repeated number is recognised by (besides digits): checks of times, amounts and
+#: distances repeat them ("four fifteen or four fifty"). Common practice, no source.
+_NUMBER_WORDS = frozenset({
+    "zero", "oh", "one", "two", "three", "four", "five", "six", "seven", "eight", "nine", "ten",
+    "eleven", "twelve", "thirteen", "fourteen", "fifteen", "sixteen", "seventeen", "eighteen",
+    "nineteen", "twenty", "thirty", "forty", "fifty", "sixty", "seventy", "eighty", "ninety",
+    "hundred", "thousand", "half", "quarter", "first", "second", "third",
+})
+
+
+def _add_partner_features(feats: Features, previous: tuple[str, ...],
+                          words: tuple[str, ...]) -> None:
+    """How an utterance right after the partner's relates to it (both at most
+    MAX_FEATURE_WORDS words are compared, so the cost per call is bounded)."""
+    n = len(words)
+    size = _length_bucket(n)
+    feats[f"xlen={size}"] = 1.0
+    if not n:
+        return
+    # An opening right after the partner's turn: "sorry", "pardon", "what" start repetition
+    # requests there, and something else in the middle of one's own turn.
+    feats[f"xw0={words[0]}|{'short' if n <= 4 else 'long'}"] = 1.0
+    said = frozenset(previous[:MAX_FEATURE_WORDS])
+    head = words[:MAX_FEATURE_WORDS]
+    repeated = [w for w in head if w in said]
+    share = len(repeated) / len(head)
+    echo = "0" if not repeated else "all" if share == 1.0 else "most" if share >= 0.5 else "some"
+    feats[f"ov={echo}"] = 1.0
+    feats[f"ov={echo}|{size}"] = 1.0
+    if not repeated:
+        return
+    if words[0] in said:
+        feats["ov0"] = 1.0
+    if head[-1] in said:
+        feats["ovl"] = 1.0
+    if any(w in _NUMBER_WORDS or w.isdigit() for w in repeated):
+        feats["ovnum"] = 1.0
+    if "or" in head:
+        # An alternative built from the partner's words offers two hearings of them.
+        feats["ovor"] = 1.0
 
 
 def sequence_features(views: Sequence[UtteranceView],
@@ -282,7 +333,8 @@ def clean_view(conversation: Conversation, utterance: Utterance,
 
     Words labelled filler, editing term, reparandum or restart are removed (and counted); a
     conversation without disfluency annotation keeps all its words. Word fragments ("s-") are
-    dropped uncounted, because live recognisers do not emit them.
+    dropped uncounted. The rule is :func:`~midstream.models._views.build_view`'s, which the live
+    engine calls too.
 
     Parameters
     ----------
@@ -294,21 +346,14 @@ def clean_view(conversation: Conversation, utterance: Utterance,
     """
     labels = conversation.labels
     indices = utterance.words if upto is None else utterance.words[:upto]
-    kept: list[str] = []
-    removed = 0
-    for i in indices:
-        if labels is not None and labels[i] in REMOVED_FROM_CLEAN_TEXT:
-            removed += 1
-            continue
-        word = conversation.words[i]
-        if word.fragment or not word.text:
-            continue
-        kept.append(word.text)
+    words = conversation.words
     # A whole utterance counts as complete even when the corpus marks it abandoned (see
     # UtteranceView.complete).
     whole = upto is None or upto >= len(utterance.words)
-    return UtteranceView(speaker=utterance.speaker, words=tuple(kept), removed=removed,
-                         complete=whole)
+    return build_view(utterance.speaker,
+                      [(words[i].text, words[i].fragment, labels[i] if labels is not None
+                        else None) for i in indices],
+                      complete=whole)
 
 
 def conversation_views(conversation: Conversation) -> list[UtteranceView]:
@@ -924,7 +969,7 @@ class FunctionTagger:
 
     def _pair_rows(self, previous: UtteranceView, words: tuple[str, ...]) -> tuple[int, ...]:
         pairs: Features = {}
-        _add_pair_features(pairs, previous.words, words)
+        _add_pair_features(pairs, previous.words, words, partner=self._config.partner)
         return self._rows(pairs)
 
     def _rows_of(self, view: UtteranceView,

@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 
 from midstream._errors import InputError
 from midstream._schemes import SWBD42_CLASSES
-from midstream._types import Conversation
+from midstream._types import Conversation, UtteranceFunction
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import train_crf
 from midstream.models._functions import (
@@ -63,6 +63,13 @@ class FunctionTrainingOptions:
         How a 42-class model derives its coarse function (``"sum"`` or ``"label"``).
     seed
         Seed of the augmentation's random cuts (training is otherwise deterministic).
+    oversample
+        ``(label, copies)`` pairs: for every utterance with that label, ``copies`` extra short
+        training sequences of it, the :data:`OVERSAMPLE_CONTEXT` utterances before it and the
+        :data:`OVERSAMPLE_AFTER` after it (the rare one cut to a random prefix with probability
+        ``augment``). crfsuite has no class weights;
+        repeating a rare class's windows is how its few examples weigh more, and the window is
+        what the streaming tagger decodes anyway.
     """
 
     scheme: str = "swbd42"
@@ -74,13 +81,23 @@ class FunctionTrainingOptions:
     config: FunctionFeatureConfig = field(default_factory=FunctionFeatureConfig)
     coarse_from: str = "sum"
     seed: int = 0
+    oversample: tuple[tuple[str, int], ...] = ()
 
     def to_json(self) -> dict[str, object]:
         return {
             "scheme": self.scheme, "c1": self.c1, "c2": self.c2, "min_freq": self.min_freq,
             "max_iterations": self.max_iterations, "augment": self.augment,
             "coarse_from": self.coarse_from, "seed": self.seed,
+            "oversample": {label: copies for label, copies in self.oversample},
         }
+
+
+#: Utterances before a rare one that its oversampled window holds: the streaming tagger's
+#: context (:data:`~midstream.models._functions.DEFAULT_CONTEXT`).
+OVERSAMPLE_CONTEXT = 4
+#: Utterances after it: windows that all ended on the rare class taught the tagger that the
+#: last position of a window (where a stream's current utterance always is) is that class.
+OVERSAMPLE_AFTER = 1
 
 
 def _label(conversation: Conversation, index: int, scheme: str) -> str:
@@ -120,6 +137,12 @@ def build_sequences(conversations: Iterable[Conversation],
                          f"(known: {', '.join(SCHEMES)})")
     xseqs: list[list[Features]] = []
     yseqs: list[list[str]] = []
+    copies = dict(options.oversample)
+    known = ({f.value for f in UtteranceFunction} if options.scheme == "coarse" else _SWBD42)
+    unknown = sorted(set(copies) - known)
+    if unknown:
+        raise InputError(f"cannot oversample {', '.join(unknown)}: not a label of scheme "
+                         f"{options.scheme!r}")
     for conversation in conversations:
         if not conversation.utterances:
             continue
@@ -137,7 +160,37 @@ def build_sequences(conversations: Iterable[Conversation],
             rng = random.Random(f"{options.seed}:{conversation.id}")
             xseqs.append(_augmented(conversation, views, rng, options.augment, options.config))
             yseqs.append(labels)
+        if copies:
+            rng = random.Random(f"{options.seed}:rare:{conversation.id}")
+            for i, label in enumerate(labels):
+                for _ in range(copies.get(label, 0)):
+                    xseqs.append(_rare_window(conversation, views, i, xseq=xseq, rng=rng,
+                                              rate=options.augment, config=options.config))
+                    yseqs.append(labels[max(0, i - OVERSAMPLE_CONTEXT):i + 1 + OVERSAMPLE_AFTER])
     return xseqs, yseqs
+
+
+def _rare_window(conversation: Conversation, views: Sequence[UtteranceView], index: int, *,
+                 xseq: Sequence[Features], rng: random.Random, rate: float,
+                 config: FunctionFeatureConfig) -> list[Features]:
+    """Utterance ``index`` with the ones before it, as the streaming tagger decodes it, and
+    :data:`OVERSAMPLE_AFTER` after it: the window's first utterance opens the chain, the rare
+    one is cut to a prefix with probability ``rate``."""
+    start = max(0, index - OVERSAMPLE_CONTEXT)
+    window: list[Features] = []
+    if index > start:
+        window.append(utterance_features(views[start], None, config))
+        window.extend(xseq[start + 1:index])
+    utterance = conversation.utterances[index]
+    shown = views[index]
+    n = len(utterance.words)
+    if n >= 2 and rng.random() < rate:
+        shown = clean_view(conversation, utterance, upto=rng.randint(1, n - 1))
+    previous = views[index - 1] if index > start else None
+    window.append(utterance_features(shown, previous, config))
+    # The utterances after it see it whole, as a stream's context is final.
+    window.extend(xseq[index + 1:index + 1 + OVERSAMPLE_AFTER])
+    return window
 
 
 def train_function_model(conversations: Iterable[Conversation],

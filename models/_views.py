@@ -1,4 +1,11 @@
-"""The utterance as the function tagger sees it, and the check of one a caller built.
+"""The utterance as the function tagger sees it, the one rule that builds it, and the check of
+one a caller built.
+
+:func:`build_view` is the only place that decides which words of an utterance the function
+tagger sees: training and offline evaluation (gold labels, :func:`~midstream.models._functions.
+clean_view`) and the live engine (the word tagger's labels) all call it, so a model is served
+the view it was trained on. The same holds for the context: every utterance, also one with no
+word left after cleaning ("uh"), takes its place on the chain, offline and live.
 
 Kept apart from :mod:`~midstream.models._functions` because that module may be compiled
 (``core/_build.py``): a compiled dataclass checks its field types itself and a compiled function
@@ -10,11 +17,13 @@ Python, the view holds whatever it was given until it is checked.
 from __future__ import annotations
 
 import itertools
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 from midstream._errors import InputError
+from midstream._types import REMOVED_FROM_CLEAN_TEXT, DisfluencyLabel
 
-__all__ = ["UtteranceView", "check_view"]
+__all__ = ["UtteranceView", "build_view", "check_view"]
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -46,6 +55,43 @@ class UtteranceView:
             return self
         return UtteranceView(speaker=self.speaker, words=self.words[:n], removed=self.removed,
                              complete=False)
+
+
+def build_view(speaker: str, words: Iterable[tuple[str, bool, DisfluencyLabel | None]], *,
+               complete: bool) -> UtteranceView:
+    """The view of an utterance from its received words, offline and live alike.
+
+    Parameters
+    ----------
+    speaker
+        The utterance's speaker.
+    words
+        ``(text, fragment, label)`` of each received word in order; ``label`` is ``None`` where
+        no disfluency labels exist (a conversation without that annotation keeps every word).
+    complete
+        Whether the utterance has ended.
+
+    Returns
+    -------
+    UtteranceView
+        Words labelled filler, editing term, reparandum or restart are removed and counted;
+        word fragments ("s-") and empty texts are dropped uncounted, because recognisers
+        rarely emit fragments and a model should not learn from what it will not be given.
+
+    Examples
+    --------
+    >>> F, R = DisfluencyLabel.FLUENT, DisfluencyLabel.FILLER
+    >>> build_view("A", [("uh", False, R), ("s", True, F), ("so", False, F)], complete=True)
+    UtteranceView(speaker='A', words=('so',), removed=1, complete=True)
+    """
+    kept: list[str] = []
+    removed = 0
+    for text, fragment, label in words:
+        if label is not None and label in REMOVED_FROM_CLEAN_TEXT:
+            removed += 1
+        elif text and not fragment:
+            kept.append(text)
+    return UtteranceView(speaker=speaker, words=tuple(kept), removed=removed, complete=complete)
 
 
 def check_view(view: object) -> UtteranceView:

@@ -10,9 +10,16 @@ so load from other processes hits both alike; the CPU time of the timing thread 
 being less sensitive to that load. Also prints the model's load time (target: at most 1 s) and
 checks that both paths gave the same labels.
 
+With ``--coarse PATH`` it also times what the engine does per word when a coarse-function model
+serves beside the fine one: both taggers' ``label_partial`` on each call, against the fine
+tagger's alone in the same rounds, and prints the ratio (the cost the second CRF adds); then the
+whole engine (shipped word model, ``ConversationEngine.add_word`` over the same conversations'
+words) with and without the coarse model, rounds alternating, CPU time per word and the ratio.
+
 ::
 
     .venv/bin/python scripts/bench_functions.py [--model PATH] [--conversations 5] [--rounds 3]
+    .venv/bin/python scripts/bench_functions.py --coarse models/weights/functions-coarse.msm
 """
 
 from __future__ import annotations
@@ -24,7 +31,9 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
+from midstream import Conversation
 from midstream.corpora import read_corpus
+from midstream.models import ModelBundle
 from midstream.models._artifact import load_artifact
 from midstream.models._functions import FunctionTagger, clean_view, utterance_features
 from midstream.models._views import UtteranceView
@@ -61,6 +70,32 @@ def _time(label: Callable[[FunctionTagger, list[UtteranceView], UtteranceView], 
     return costs, time.thread_time() - cpu, labels
 
 
+def _engine_cpu(bundle: ModelBundle, conversations: list[Conversation]) -> float:
+    """CPU seconds per word of fresh engines fed the conversations' words in order."""
+    cpu = time.thread_time()
+    n = 0
+    for conversation in conversations:
+        engine = bundle.new_engine()
+        for i, word in enumerate(conversation.words):
+            engine.add_word(f"w{i}", word)
+        engine.finish()
+        n += len(conversation.words)
+    return (time.thread_time() - cpu) / max(n, 1)
+
+
+class _Pair:
+    """Both taggers on each call, as the engine labels with a coarse model beside the fine."""
+
+    def __init__(self, fine: FunctionTagger, coarse: FunctionTagger) -> None:
+        self.fine = fine
+        self.coarse = coarse
+
+    def label(self, tagger: FunctionTagger, context: list[UtteranceView],
+              current: UtteranceView) -> str:
+        fine = tagger.label_partial(context, current)
+        return fine.label + self.coarse.label_partial(context, current).label
+
+
 def _time_features(tagger: FunctionTagger, calls: list[Call]) -> list[float]:
     clock = time.perf_counter_ns
     costs: list[float] = []
@@ -77,6 +112,8 @@ def main() -> int:
                         default=REPO / "models" / "weights" / "functions-swbd42.msm")
     parser.add_argument("--conversations", type=int, default=5)
     parser.add_argument("--rounds", type=int, default=3)
+    parser.add_argument("--coarse", type=Path, default=None,
+                        help="a coarse-function model served beside --model: time both")
     args = parser.parse_args()
     corpora = Path(os.environ.get("MIDSTREAM_CORPORA", REPO.parent / "shared" / "corpora"))
 
@@ -89,9 +126,11 @@ def main() -> int:
     # Calls that open an utterance meet a new context window (one per utterance); the rest
     # reuse it.
     opening: list[bool] = []
+    conversations: list[Conversation] = []
     for n, conversation in enumerate(read_corpus(corpora / "swda", split="val")):
         if n >= args.conversations:
             break
+        conversations.append(conversation)
         views = [clean_view(conversation, u) for u in conversation.utterances]
         for i, utterance in enumerate(conversation.utterances):
             context = views[max(0, i - tagger.context):i]
@@ -107,6 +146,11 @@ def main() -> int:
     new_cpu = old_cpu = 0.0
     features: list[float] = []
     differ = 0
+    coarse = (load_artifact(args.coarse, expected_kind="utterance_functions")
+              if args.coarse is not None else None)
+    alone: list[float] = []
+    both: list[float] = []
+    alone_cpu = both_cpu = 0.0
     for _ in range(args.rounds):
         costs, cpu, new_labels = _time(_label_new, FunctionTagger.from_artifact(artifact), calls)
         new.extend(costs)
@@ -117,6 +161,16 @@ def main() -> int:
         old_cpu += cpu
         features.extend(_time_features(tagger, calls))
         differ += sum(a != b for a, b in zip(new_labels, old_labels, strict=True))
+        if coarse is not None:
+            fine_tagger = FunctionTagger.from_artifact(artifact)
+            costs, cpu, _ = _time(_label_new, fine_tagger, calls)
+            alone.extend(costs)
+            alone_cpu += cpu
+            pair = _Pair(FunctionTagger.from_artifact(artifact),
+                         FunctionTagger.from_artifact(coarse))
+            costs, cpu, _ = _time(pair.label, pair.fine, calls)
+            both.extend(costs)
+            both_cpu += cpu
 
     def line(name: str, costs: list[float]) -> str:
         return (f"{name}: median {statistics.median(costs):.1f} us/call, "
@@ -140,6 +194,27 @@ def main() -> int:
     print(f"CPU time per call: label_partial {1e6 * new_cpu / total:.1f} us, crfsuite path "
           f"{1e6 * old_cpu / total:.1f} us, ratio {old_cpu / new_cpu:.1f}x")
     print(f"labels differing between the paths: {differ}")
+    if coarse is not None:
+        print(line("fine tagger alone (label_partial)", alone))
+        print(line("fine and coarse taggers (label_partial each)", both))
+        ratio = statistics.median(both) / statistics.median(alone)
+        print(f"fine+coarse / fine alone: {ratio:.2f}x median, "
+              f"CPU time {both_cpu / alone_cpu:.2f}x")
+        words = ModelBundle.load_default().word_model
+        fine_only = ModelBundle(word_model=words, function_tagger=tagger, infos=())
+        with_coarse = ModelBundle(word_model=words, function_tagger=tagger, infos=(),
+                                  coarse_tagger=FunctionTagger.from_artifact(coarse))
+        one: list[float] = []
+        two: list[float] = []
+        for bundle in (fine_only, with_coarse):  # compile the kernels before timing
+            _engine_cpu(bundle, conversations[:1])
+        for _ in range(args.rounds):
+            one.append(_engine_cpu(fine_only, conversations))
+            two.append(_engine_cpu(with_coarse, conversations))
+        print(f"engine CPU per word: fine model only {1e6 * statistics.median(one):.1f} us, "
+              f"with the coarse model {1e6 * statistics.median(two):.1f} us, ratio "
+              f"{statistics.median(two) / statistics.median(one):.2f}x (median of "
+              f"{args.rounds} rounds)")
     return 0
 
 

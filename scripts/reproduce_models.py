@@ -39,7 +39,8 @@ HEADLINES = {
 
 
 def training_command(model: Path, corpus: Path, out: Path) -> list[str]:
-    """The recorded training command with the corpus and output paths of this run."""
+    """The recorded training command with the corpus and output paths of this run (a pooled
+    command's corpora are each found by their folder name beside ``corpus``)."""
     metadata = load_artifact(model).metadata
     recorded = metadata.get("created_by") or metadata.get("command")
     if not isinstance(recorded, str):
@@ -48,8 +49,12 @@ def training_command(model: Path, corpus: Path, out: Path) -> list[str]:
     words = [w for w in words if w != "-v"]
     start = words.index("train")
     args = words[start:]
-    # args: train TASK CORPUS [options...]; swap the corpus and the --out value.
-    args[2] = str(corpus)
+    # args: train TASK CORPUS [CORPUS...] [options...]; swap the corpora and the --out value.
+    args[2] = str(corpus.parent / Path(args[2]).name)
+    for i in range(3, len(args)):
+        if args[i].startswith("-"):
+            break
+        args[i] = str(corpus.parent / Path(args[i]).name)
     args[args.index("--out") + 1] = str(out)
     return [sys.executable, "-m", "midstream.client._cli", *args]
 

@@ -58,3 +58,14 @@ def test_missing_out_is_a_clear_error(transcripts: Path,
     assert "--out is required" in capsys.readouterr().err
     assert main(["train", "words", str(transcripts), "--right", "-1", "--out", "x.msm"]) == 1
     assert "--right must be >= 0, got -1" in capsys.readouterr().err
+
+
+def test_evaluate_functions_only_scores_the_shipped_coarse_model(
+        transcripts: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    code = main(["evaluate", str(transcripts), "--functions-only", "--json", "--limit", "3"])
+    assert code == 0
+    figures = json.loads(capsys.readouterr().out)
+    assert not any(k.startswith(("disfluency.", "segmentation.")) for k in figures)
+    assert 0.0 <= figures["utterance_functions.gold_segmentation.coarse.accuracy"] <= 1.0
+    assert "utterance_functions.predicted_segmentation.word_accuracy" in figures
+    assert main(["evaluate", str(transcripts), "--functions-only", "--words-only"]) == 1

@@ -12,6 +12,7 @@ import random
 from midstream import Conversation, DisfluencyLabel, Utterance, Word
 from midstream._schemes import coarse_function
 from midstream.models._artifact import ModelArtifact
+from midstream.models._functions import FunctionFeatureConfig
 from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
 
 F = DisfluencyLabel.FLUENT
@@ -68,8 +69,10 @@ def invented_corpus(n: int, start: int = 0) -> list[Conversation]:
     return [invented_conversation(seed) for seed in range(start, start + n)]
 
 
-def tiny_model(scheme: str = "swbd42", *, augment: float = 0.5) -> ModelArtifact:
+def tiny_model(scheme: str = "swbd42", *, augment: float = 0.5,
+               partner: bool = False) -> ModelArtifact:
     """A function model trained on 20 invented conversations (about a second)."""
     options = FunctionTrainingOptions(scheme=scheme, c1=0.01, c2=0.01, min_freq=1,
-                                      max_iterations=60, augment=augment)
+                                      max_iterations=60, augment=augment,
+                                      config=FunctionFeatureConfig(partner=partner))
     return train_function_model(invented_corpus(20), options)

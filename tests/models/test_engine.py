@@ -6,6 +6,7 @@ fast; what they check is the engine's bookkeeping, which does not depend on mode
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -21,6 +22,7 @@ from midstream import (
     WordHypothesis,
 )
 from midstream.models import ConversationEngine, EngineConfig, ModelBundle, ModelInfo
+from midstream.models._artifact import save_artifact
 from midstream.models._functions import FunctionTagger
 from midstream.models._train_words import WordTrainingConfig, train_word_artifact
 from midstream.models._wordmodel import WordModel
@@ -239,3 +241,36 @@ def test_random_event_streams_keep_the_invariants(
         expected = [texts[w] for w in utterance.word_ids
                     if final[w] not in REMOVED_FROM_CLEAN_TEXT]
         assert utterance.clean_text == " ".join(expected)
+
+
+def test_a_coarse_model_beside_the_fine_one_decides_the_function(
+        tmp_path: Path) -> None:
+    words = train_word_artifact(invented_corpus(20),
+                                WordTrainingConfig(max_iterations=40, min_freq=1))
+    save_artifact(words, tmp_path / "words.msm")
+    fine, coarse = tiny_model("swbd42"), tiny_model("coarse", partner=True)
+    save_artifact(fine, tmp_path / "functions-swbd42.msm")
+    save_artifact(coarse, tmp_path / "functions-coarse.msm")
+    loaded = ModelBundle.load_directory(tmp_path)
+    assert loaded.function_tagger.scheme == "swbd42"
+    assert loaded.coarse_tagger.scheme == "coarse"
+    assert [i.name for i in loaded.describe()] == [
+        "words.msm", "functions-swbd42.msm", "functions-coarse.msm"]
+    coarse_tagger = FunctionTagger.from_artifact(coarse)
+    fine_tagger = FunctionTagger.from_artifact(fine)
+    engine = loaded.new_engine()
+    final = {u.utterance_id: u for diff in _stream(engine, _SAMPLE) for u in diff.utterances}
+    # Each published utterance: the fine class from the fine model and the function from the
+    # coarse one, both over the context the engine kept (the final utterances before it).
+    published = [u for u in final.values() if u.word_ids]
+    views = engine.context
+    assert 2 <= len(published) == len(views) <= coarse_tagger.context
+    position = {view.words: i for i, view in enumerate(views)}
+    for utterance in published:
+        i = position[tuple(utterance.clean_text.split())]
+        window, view = list(views[:i]), views[i]
+        assert utterance.function == coarse_tagger.label_partial(window, view).function
+        assert utterance.fine_class == fine_tagger.label_partial(window, view).label
+    # Alone, the fine model gives both, as before.
+    (tmp_path / "functions-coarse.msm").unlink()
+    assert ModelBundle.load_directory(tmp_path).coarse_tagger.scheme == "swbd42"

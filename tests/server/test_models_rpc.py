@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+from dataclasses import replace
 from pathlib import Path
 
 import grpc
@@ -11,6 +12,7 @@ from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,
+    TEST_LIMITS,
     Caller,
     Running,
     ServerFactory,
@@ -58,7 +60,10 @@ async def test_transcript_matches_the_stream_word_for_word(running: Running) -> 
 async def test_describe_and_failed_reload_keep_the_models(running: Running,
                                                           tmp_path: Path) -> None:
     before = await running.stub.DescribeModels(pb.DescribeModelsRequest())
-    assert [m.kind for m in before.models] == ["words", "utterance_functions"]
+    # The word model, the function model, and a coarse-function model where one is shipped.
+    kinds = [m.kind for m in before.models]
+    assert kinds[:2] == ["words", "utterance_functions"]
+    assert kinds[2:] in ([], ["utterance_functions"])
     assert all(json.loads(m.training_summary_json) for m in before.models)
     assert all(len(m.sha256) == 64 and m.labels for m in before.models)
     (tmp_path / "words.msm").write_bytes(b"not a model at all")
@@ -78,8 +83,11 @@ async def test_describe_and_failed_reload_keep_the_models(running: Running,
     assert replies[-1].ended.reason == pb.END_REASON_CLOSED
 
 
-async def test_reload_swaps_models_for_new_conversations_only(running: Running,
+async def test_reload_swaps_models_for_new_conversations_only(start_server: ServerFactory,
                                                               models_dir: Path) -> None:
+    # The live conversation must outlast the reload: loading three models can take longer than
+    # the test limits' 1 s idle timeout on a busy machine.
+    running = await start_server(limits=replace(TEST_LIMITS, idle_timeout_s=30.0))
     caller = Caller(running.stub)
     await caller.open()
     await caller.send(words_event(spoken("w1", "well", start=0.0)))

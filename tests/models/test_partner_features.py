@@ -1,0 +1,93 @@
+"""Partner features (how an utterance echoes the partner's just before it) and rare-class
+oversampling in training: what the coarse model needs to find clarification requests."""
+
+from __future__ import annotations
+
+import pytest
+from function_kit import invented_corpus
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from midstream._errors import InputError
+from midstream.models._functions import (
+    MAX_FEATURE_WORDS,
+    FunctionFeatureConfig,
+    utterance_features,
+)
+from midstream.models._train_functions import FunctionTrainingOptions, build_sequences
+from midstream.models._views import UtteranceView
+
+PARTNER = FunctionFeatureConfig(partner=True)
+
+
+def _features(previous: str, current: str, *, same: bool = False) -> dict[str, float]:
+    before = UtteranceView(speaker="A", words=tuple(previous.split()))
+    now = UtteranceView(speaker="A" if same else "B", words=tuple(current.split()))
+    return utterance_features(now, before, PARTNER)
+
+
+def test_an_alternative_echoing_the_partners_numbers_is_seen() -> None:
+    # Invented: a delivery slot read out, and the caller unsure which time was said.
+    feats = _features("the van comes at four fifteen", "four fifteen or four fifty")
+    assert {"ovnum", "ovor", "ov0", "ov=most", "xlen=4-5"} <= feats.keys()
+
+
+def test_a_short_repetition_request_right_after_the_partner() -> None:
+    feats = _features("the van comes at four fifteen", "sorry which day")
+    assert {"ov=0", "xlen=3", "xw0=sorry|short"} <= feats.keys()
+    assert not {"ovnum", "ovor", "ov0"} & feats.keys()
+
+
+def test_an_echo_check_repeats_the_partners_last_words() -> None:
+    feats = _features("we meet at the north gate", "the north gate")
+    assert {"ov=all", "ov=all|3", "ov0", "ovl"} <= feats.keys()
+
+
+def test_partner_features_need_a_change_of_speaker_and_the_setting() -> None:
+    assert not any(k.startswith(("ov", "xlen", "xw0"))
+                   for k in _features("four fifteen", "four fifteen", same=True))
+    before = UtteranceView(speaker="A", words=("four", "fifteen"))
+    now = UtteranceView(speaker="B", words=("four", "fifteen"))
+    assert not any(k.startswith(("ov", "xlen", "xw0")) for k in utterance_features(now, before))
+
+
+_words = st.lists(st.sampled_from(("four", "fifteen", "or", "sorry", "what", "12", "the", "")),
+                  max_size=MAX_FEATURE_WORDS + 5).map(tuple)
+
+
+@settings(max_examples=80, deadline=None)
+@given(previous=_words, current=_words)
+def test_partner_features_are_pure_and_bounded(previous: tuple[str, ...],
+                                               current: tuple[str, ...]) -> None:
+    before = UtteranceView(speaker="A", words=previous)
+    now = UtteranceView(speaker="B", words=current)
+    first = utterance_features(now, before, PARTNER)
+    assert first == utterance_features(now, before, PARTNER)
+    assert before.words == previous and now.words == current
+    # One echo bucket, whatever the words.
+    assert sum(k.startswith("ov=") and "|" not in k for k in first) == (1 if current else 0)
+
+
+def test_oversampling_adds_a_window_per_rare_utterance() -> None:
+    conversations = invented_corpus(3)
+    plain = FunctionTrainingOptions(scheme="coarse", augment=0.0)
+    rare = FunctionTrainingOptions(scheme="coarse", augment=0.0,
+                                   oversample=(("answer", 2),))
+    for conversation in conversations:
+        _, ys = build_sequences([conversation], plain)
+        xs2, ys2 = build_sequences([conversation], rare)
+        answers = sum(y == "answer" for y in ys[0])
+        assert answers > 0
+        assert ys2[0] == ys[0]
+        extra = ys2[1:]
+        assert len(extra) == 2 * answers
+        # Each window holds the rare utterance, at most the streaming context before it and one
+        # utterance after it (so that windows do not all end on the rare class).
+        assert all(len(window) <= 6 and "answer" in window[-2:] for window in extra)
+        assert any(window[-1] != "answer" for window in extra)
+        assert all(len(x) == len(y) for x, y in zip(xs2, ys2, strict=True))
+
+
+def test_oversampling_a_label_outside_the_scheme_is_refused() -> None:
+    options = FunctionTrainingOptions(scheme="coarse", oversample=(("check", 3),))
+    with pytest.raises(InputError, match="check"):
+        build_sequences(invented_corpus(1), options)

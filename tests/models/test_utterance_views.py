@@ -1,0 +1,107 @@
+"""One utterance view for training and serving (models/_views.py ``build_view``).
+
+The function model is trained on views built from a corpus's words and gold disfluency labels;
+the live engine builds them from the recogniser's words and the word tagger's labels. Both must
+apply the same rule, and both must put the same utterances on the context chain, or the model is
+served something it never saw.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from midstream import DisfluencyLabel, Word
+from midstream._types import Conversation, Utterance, UtteranceHypothesis
+from midstream.corpora import read_corpus
+from midstream.models import ModelBundle
+from midstream.models._functions import conversation_views
+from midstream.models._views import UtteranceView, build_view
+
+F = DisfluencyLabel.FLUENT
+
+
+def test_build_view_drops_fragments_uncounted_and_disfluent_words_counted() -> None:
+    view = build_view("A", [("i", False, F), ("w", True, F), ("uh", False, DisfluencyLabel.FILLER),
+                            ("went", False, F), ("", False, F)], complete=False)
+    assert view == UtteranceView(speaker="A", words=("i", "went"), removed=1, complete=False)
+    # Without disfluency labels every word is kept, but a fragment still is not.
+    assert build_view("B", [("so", False, None), ("th", True, None)], complete=True).words == (
+        "so",)
+
+
+def _stream_with_gold_ends(bundle: ModelBundle, conversation: Conversation) -> tuple[
+        list[UtteranceHypothesis], dict[str, DisfluencyLabel],
+        list[tuple[int, tuple[UtteranceView, ...]]]]:
+    """Stream the words, hinting each gold utterance end; the final utterances in the order they
+    became final, every word's final label, and after each event the engine's context with the
+    number of utterances final by then."""
+    last_word = {u.words[-1] for u in conversation.utterances if u.words}
+    engine = bundle.new_engine()
+    finals: list[UtteranceHypothesis] = []
+    labels: dict[str, DisfluencyLabel] = {}
+    contexts: list[tuple[int, tuple[UtteranceView, ...]]] = []
+
+    def take(diff_utterances: tuple[UtteranceHypothesis, ...]) -> None:
+        finals.extend(u for u in diff_utterances if u.final and u.word_ids)
+        contexts.append((len(finals), engine.context))
+
+    for i, word in enumerate(conversation.words):
+        diff = engine.add_word(f"w{i}", word)
+        labels.update({w.word_id: w.label for w in diff.words})
+        take(diff.utterances)
+        if i in last_word:
+            diff = engine.hint(word.speaker, turn_end=False)
+            labels.update({w.word_id: w.label for w in diff.words})
+            take(diff.utterances)
+    diff = engine.finish()
+    labels.update({w.word_id: w.label for w in diff.words})
+    take(diff.utterances)
+    return finals, labels, contexts
+
+
+@pytest.mark.corpus
+def test_corpus_conversation_has_the_same_views_and_contexts_offline_and_streamed(
+        swda_dir: Path) -> None:
+    # A SwDA val conversation (Jurafsky, Shriberg & Biasca 1997) with word fragments and
+    # filler-only utterances ("uh"): the two places the engine's view used to differ.
+    def gold_differences(c: Conversation) -> bool:
+        views = conversation_views(c)
+        return (any(w.fragment for w in c.words)
+                and any(not v.words and v.removed for v in views))
+    conversation = next(c for c in read_corpus(swda_dir, split="val")
+                        if len(c.words) <= 900 and gold_differences(c))
+    bundle = ModelBundle.load_default()
+    finals, labels, contexts = _stream_with_gold_ends(bundle, conversation)
+    # The same conversation offline, as training reads one: the streamed segmentation and the
+    # streamed disfluency labels, in the order the utterances became final.
+    offline = Conversation(
+        id=conversation.id, corpus=conversation.corpus, words=conversation.words,
+        labels=tuple(labels[f"w{i}"] for i in range(len(conversation.words))),
+        utterances=tuple(
+            Utterance(speaker=u.speaker, words=tuple(int(w[1:]) for w in u.word_ids),
+                      function=u.function, fine_tag=u.fine_class, fine_class=u.fine_class)
+            for u in finals))
+    views = conversation_views(offline)
+    assert len(views) == len(finals) > 20
+    context = bundle.function_tagger.context
+    for done, streamed in contexts:
+        assert streamed == tuple(views[:done][-context:])
+    # The case that used to differ was there: an utterance left empty by cleaning, which the
+    # engine once kept off the chain that training puts it on.
+    assert any(not v.words for v in views[:contexts[-1][0]])
+
+
+def test_engine_context_keeps_utterances_left_empty_by_cleaning() -> None:
+    bundle = ModelBundle.load_default()
+    engine = bundle.new_engine()
+    turns = [("A", ("uh",)), ("B", ("right",)), ("A", ("we", "went"))]
+    for speaker, texts in turns:
+        for text in texts:
+            engine.add_word(f"{speaker}{text}", Word(text=text, speaker=speaker))
+        engine.hint(speaker, turn_end=True)
+    engine.finish()
+    words = [v.words for v in engine.context]
+    # "uh" alone is a filled pause: nothing left to label, but it stays on the chain as in
+    # training, where every corpus utterance is one position of the chain.
+    assert words == [(), ("right",), ("we", "went")]
