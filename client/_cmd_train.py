@@ -79,6 +79,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                             "a word open until that many more have arrived")
     words.add_argument("--no-word-classes", action="store_true",
                        help="leave out the closed-class substitution features")
+    words.add_argument("--break-ahead", action="store_true",
+                       help="add the break-ahead features (where the other speaker next spoke "
+                            "within the right context, and the word the speaker stopped at)")
     words.add_argument("--tune-bias", action="store_true",
                        help="choose the reparandum/repair tag bias by cross-validation "
                             "(--cv-folds, --cv-subset, --seed) before training")
@@ -124,6 +127,8 @@ def _command_line(args: argparse.Namespace) -> str:
         parts += ["--right", str(args.right)]
     if args.no_word_classes:
         parts += ["--no-word-classes"]
+    if args.break_ahead:
+        parts += ["--break-ahead"]
     if args.tag_bias is not None:
         parts += ["--tag-bias", args.tag_bias]
     if args.tune_bias:
@@ -251,6 +256,7 @@ def run_words(args: argparse.Namespace) -> int:
                               restart_span=args.restart_span[0],
                               tag_bias=tag_bias,
                               word_classes=not args.no_word_classes,
+                              break_ahead=args.break_ahead,
                               right=args.right, left=max(WordTrainingConfig().left,
                                                          args.right + 1))
     grid = [{"c1": c1, "c2": c2, "min_freq": m, "restart_span": r}

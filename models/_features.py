@@ -77,6 +77,10 @@ class FeatureConfig:
     :mod:`~midstream.models._wordclasses`); empty turns the word-class features off (models
     trained before they existed).
 
+    ``break_ahead`` turns on the features of a break ahead: the first place within the right
+    context where the other speaker spoke before the speaker's next word, with the word the
+    speaker stopped at (an utterance broken off there may be abandoned: a restart).
+
     ``tag_bias`` maps internal CRF tags to a constant added to their state score at decoding
     (not a feature: it shifts the decision threshold between tags after training, chosen by
     cross-validation on the training split; empty means the trained weights alone decide).
@@ -88,6 +92,7 @@ class FeatureConfig:
     restart_span: int = 0
     tag_bias: Mapping[str, float] = field(default_factory=dict)
     word_classes: Mapping[str, str] = field(default_factory=dict, repr=False)
+    break_ahead: bool = False
 
     def __post_init__(self) -> None:
         if self.right < 0 or self.left < self.right + 1:
@@ -103,6 +108,8 @@ class FeatureConfig:
             data["tag_bias"] = dict(self.tag_bias)
         if self.word_classes:
             data["word_classes"] = dict(self.word_classes)
+        if self.break_ahead:
+            data["break_ahead"] = True
         return data
 
     @classmethod
@@ -117,6 +124,8 @@ class FeatureConfig:
             # Absent in models trained before the word-class features existed.
             word_classes={str(k): str(v)
                           for k, v in dict(data.get("word_classes", {})).items()},
+            # Absent in models trained before the break-ahead features existed.
+            break_ahead=bool(data.get("break_ahead", False)),
         )
 
 
@@ -239,6 +248,8 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
         ]
         if tk.after_other_speaker:
             out.append("oth+1")
+            if config.break_ahead:
+                out.append("othw=" + w0)
         pause = _pause(t0, tk)
         if pause is not None:
             out.append(f"pa={_bucket(pause, _PAUSE_EDGES)}")
@@ -249,6 +260,12 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
     elif textk in lex:
         # A filled pause or editing term further ahead: an interruption point may lie between.
         out.append(f"lx+{k}=" + lex[textk])
+    if k >= 2 and config.break_ahead and tk.after_other_speaker and not any(
+            t.after_other_speaker for t in tokens[i + 1 : i + k]):
+        # The first break ahead, and the word the speaker stopped at: the words of an utterance
+        # broken off there may be abandoned (a restart) when the speaker then starts afresh.
+        out.append(f"oth+{k}")
+        out.append("othw=" + between[-1])
     # Exact and rough copies ending at or starting from i that reach i + k.
     if not t0.fragment and textk == text0:
         out.append(f"m0_{k}")

@@ -78,7 +78,8 @@ class WordTrainingConfig:
     ``c1``/``c2``: L1/L2 regularisation; ``min_freq``: attributes seen fewer times are dropped;
     ``chunk_length``: longest training sequence (words); ``right``/``left``/``restart_span``:
     feature context (see :class:`~midstream.models._features.FeatureConfig`);
-    ``word_classes``: use the closed-class substitution features.
+    ``word_classes``: use the closed-class substitution features; ``break_ahead``: the
+    break-ahead features (see :class:`~midstream.models._features.FeatureConfig`).
     """
 
     c1: float = 0.1
@@ -91,6 +92,7 @@ class WordTrainingConfig:
     restart_span: int = 5
     tag_bias: tuple[tuple[str, float], ...] = ()
     word_classes: bool = True
+    break_ahead: bool = False
 
 
 def annotated_channels(conversations: Iterable[Conversation]) -> Iterator[ChannelSequence]:
@@ -171,7 +173,8 @@ def train_word_artifact(
     features = FeatureConfig(right=config.right, left=config.left,
                              lexicon=build_lexicon(annotated),
                              restart_span=config.restart_span,
-                             word_classes=dict(CLOSED_CLASSES) if config.word_classes else {})
+                             word_classes=dict(CLOSED_CLASSES) if config.word_classes else {},
+                             break_ahead=config.break_ahead)
     started = time.monotonic()
     crf = train_crf_from(
         _pairs_factory(annotated, features, config.chunk_length),
@@ -210,6 +213,7 @@ def train_word_artifact(
             "restart_span": config.restart_span,
             "tag_bias": dict(config.tag_bias),
             "word_classes": config.word_classes,
+            "break_ahead": config.break_ahead,
         },
         metadata={"training_data": summary, **(metadata or {})},
     )

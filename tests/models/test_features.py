@@ -8,7 +8,7 @@ from midstream.models._features import FeatureConfig, Token, feature_piece, feat
 from midstream.models._wordclasses import CLOSED_CLASSES
 
 CONFIG = FeatureConfig(lexicon={"uh": "F", "um": "F", "mean": "E", "well": "D"},
-                       restart_span=5, word_classes=dict(CLOSED_CLASSES))
+                       restart_span=5, word_classes=dict(CLOSED_CLASSES), break_ahead=True)
 
 _token = st.builds(
     Token,
@@ -172,3 +172,14 @@ def test_copy_features_reach_back_as_far_as_the_restart_span() -> None:
     assert "m5_2" in feature_piece(_tokens("so a b c d x y so"), 5, 2, CONFIG)
     assert not any(f == "m6_2" for f in feature_piece(_tokens("so a b c d e x y so"), 6, 2,
                                                       CONFIG))
+
+
+def test_a_break_ahead_reaches_every_word_before_it() -> None:
+    # "i was going to / (other speaker) / we could": the words of an utterance broken off
+    # before the other speaker spoke see where it broke and the word it stopped at.
+    words = ["i", "was", "going", "to", "we", "could"]
+    tokens = [Token(text=w, after_other_speaker=(k == 4)) for k, w in enumerate(words)]
+    assert {"oth+3", "othw=to"} <= set(features_at(tokens, 1, CONFIG))
+    assert {"oth+1", "othw=to"} <= set(features_at(tokens, 3, CONFIG))
+    off = FeatureConfig(lexicon=CONFIG.lexicon)
+    assert not any(f.startswith("othw") for f in features_at(tokens, 1, off))
