@@ -10,6 +10,14 @@ when ``lag`` newer words have arrived, or when its utterance is closed; a final 
 changes again and the decoder forgets the word once it is no longer needed as left context
 (the caller keeps history).
 
+Abandoned utterances (restarts of the second kind, ``docs/labels.md``) need no special case:
+an utterance is abandoned only once its speaker starts afresh, so its words are first reported
+with another label and revised to ``restart`` when the fresh start's first words arrive. They
+become final by the same rule as every word: once settled (the features read ``right`` words
+ahead, so the last words of the abandoned utterance are decided on the fresh start's words), at
+the latest ``lag`` words late. A caller's explicit close finalises them at once, as any open
+word: after it they are never revised to ``restart``.
+
 A :class:`ChannelDecoder` is not safe to share between threads or tasks: one per channel, used
 from one place. The :class:`~midstream.models._wordmodel.WordModel` under it may be shared.
 """
