@@ -58,3 +58,42 @@ def test_missing_out_is_a_clear_error(transcripts: Path,
     assert "--out is required" in capsys.readouterr().err
     assert main(["train", "words", str(transcripts), "--right", "-1", "--out", "x.msm"]) == 1
     assert "--right must be >= 0, got -1" in capsys.readouterr().err
+
+
+def test_evaluate_as_recognised_with_word_errors(transcripts: Path, tmp_path: Path,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "words.msm"
+    assert main(["train", "words", str(transcripts), "--min-freq", "1",
+                 "--max-iterations", "30", "--out", str(out)]) == 0
+    capsys.readouterr()
+    runs = []
+    for rate in ("0", "0.2", "0.2"):
+        assert main(["evaluate", str(transcripts), "--model", str(out), "--words-only",
+                     "--as-recognised", "--word-error-rate", rate, "--json"]) == 0
+        runs.append(json.loads(capsys.readouterr().out))
+    clean, noisy, again = runs
+    assert noisy == again  # seeded: the same errors every run
+    assert noisy["disfluency.reparandum.f1"] != clean["disfluency.reparandum.f1"]
+    assert 0.0 <= noisy["disfluency.edited_no_fragments.f1"] <= 1.0
+
+
+def test_tuning_the_restart_bias_by_cross_validation(
+        transcripts: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    code = main(["train", "words", str(transcripts), "--cv-only", "--cv-folds", "3",
+                 "--cv-subset", "0", "--min-freq", "1", "--max-iterations", "30",
+                 "--tag-bias", "rp=-0.3", "--tune-restart-bias"])
+    assert code == 0
+    printed = capsys.readouterr().out
+    assert printed.count("restart precision=") == 25
+    assert "chosen bias rp=-0.3" in printed
+
+
+@pytest.mark.parametrize(("argv", "message"), [
+    (["--word-error-rate", "0.1"], "--word-error-rate needs --as-recognised"),
+    (["--as-recognised", "--word-error-rate", "1.5"], "--word-error-rate must be in [0, 1]"),
+])
+def test_bad_recogniser_options_are_clear_errors(transcripts: Path, argv: list[str],
+                                                 message: str,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["evaluate", str(transcripts), *argv]) == 1
+    assert message in capsys.readouterr().err
