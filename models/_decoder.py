@@ -165,12 +165,13 @@ class ChannelDecoder:
     # -- events --------------------------------------------------------------------------
 
     def append(
-        self, key: int, word: Word, *, after_other_speaker: bool = False
+        self, key: int, word: Word, *, after_other_speaker: bool = False, other_words: int = 0
     ) -> list[TokenState]:
         """Add the next word of this channel; return the states that changed.
 
         ``after_other_speaker``: another speaker's word came between the previous word of this
-        channel and this one (the engine knows; it is a strong utterance-end cue).
+        channel and this one (the engine knows; it is a strong utterance-end cue);
+        ``other_words``: how many words the other speakers said there (a backchannel or a turn).
 
         Raises
         ------
@@ -183,7 +184,7 @@ class ChannelDecoder:
             raise EventError(f"word {key}: key already used in this channel")
         self._top_key = max(self._top_key, key)
         self._entries.append(_Entry(key))
-        self._tokens.append(token_of(word, after_other_speaker))
+        self._tokens.append(token_of(word, after_other_speaker, other_words))
         last = len(self._entries) - 1
         self._reserve(last + 1)
         self._scores[last] = 0.0
@@ -214,7 +215,8 @@ class ChannelDecoder:
             ``key`` is final or unknown.
         """
         position = self._open_position(key)
-        self._tokens[position] = token_of(word, self._tokens[position].after_other_speaker)
+        held = self._tokens[position]
+        self._tokens[position] = token_of(word, held.after_other_speaker, held.other_words)
         self._rescore_open()
         return self._update(close=False)
 

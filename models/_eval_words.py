@@ -179,7 +179,8 @@ def _stream_channel(channel: ChannelSequence, model: WordModel,
     for position, word in enumerate(channel.words):
         record(
             decoder.append(position, word,
-                           after_other_speaker=channel.after_other_speaker[position]),
+                           after_other_speaker=channel.after_other_speaker[position],
+                           other_words=channel.other_words[position]),
             position,
         )
     record(decoder.finish(), n - 1)
@@ -245,7 +246,8 @@ def _replay(
             gold_kind = "abandoned" if index in abandoned else "bracket"
         for kind, counts in tally.restart_kinds.items():
             counts.add(predicted_kind[position] == kind, gold_kind == kind)
-    offline = model.tag_tokens(tokens_from_words(channel.words, channel.after_other_speaker))
+    offline = model.tag_tokens(tokens_from_words(channel.words, channel.after_other_speaker,
+                                   channel.other_words))
     for position, tag in enumerate(offline):
         tally.offline.add(
             decode_tag(tag)[1] == DisfluencyLabel.REPARANDUM,
@@ -323,7 +325,8 @@ def offline_scores(conversations: Sequence[Conversation], model: WordModel) -> d
     segmentation = BinaryCounts()
     for conversation in conversations:
         for channel in channel_sequences(conversation):
-            tokens = tokens_from_words(channel.words, channel.after_other_speaker)
+            tokens = tokens_from_words(channel.words, channel.after_other_speaker,
+                                   channel.other_words)
             tags = [decode_tag(t) for t in model.tag_tokens(tokens)]
             gold = _gold_labels(channel)
             for position, (_, label, ends) in enumerate(tags):

@@ -136,7 +136,8 @@ def training_pairs(
     """(tags, per-word feature names) for every chunk of every annotated channel."""
     for channel in annotated_channels(conversations):
         assert channel.tags is not None
-        tokens = tokens_from_words(channel.words, channel.after_other_speaker)
+        tokens = tokens_from_words(channel.words, channel.after_other_speaker,
+                                   channel.other_words)
         xs = [features_at(tokens, i, features) for i in range(len(tokens))]
         for piece in chunk_at_ends(len(tokens), channel.ends, max_length=chunk_length):
             yield [channel.tags[i] for i in piece], [xs[i] for i in piece]
@@ -353,7 +354,8 @@ def held_out_channels(conversations: Sequence[Conversation],
         assert channel.tags is not None
         if not channel.words:
             continue
-        tokens = tokens_from_words(channel.words, channel.after_other_speaker)
+        tokens = tokens_from_words(channel.words, channel.after_other_speaker,
+                                   channel.other_words)
         emissions = np.stack([model.score(features_at(tokens, i, model.config))
                               for i in range(len(tokens))])
         gold = [TAG_LABEL[t.removesuffix(END_SUFFIX)] for t in channel.tags]

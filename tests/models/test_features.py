@@ -4,8 +4,10 @@ from __future__ import annotations
 
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from midstream import Conversation, Utterance, UtteranceFunction, Word
 from midstream.models._features import FeatureConfig, Token, feature_piece, features_at
 from midstream.models._wordclasses import CLOSED_CLASSES
+from midstream.models._wordtags import channel_sequences
 
 CONFIG = FeatureConfig(lexicon={"uh": "F", "um": "F", "mean": "E", "well": "D"},
                        restart_span=5, word_classes=dict(CLOSED_CLASSES), break_ahead=True)
@@ -183,3 +185,27 @@ def test_a_break_ahead_reaches_every_word_before_it() -> None:
     assert {"oth+1", "othw=to"} <= set(features_at(tokens, 3, CONFIG))
     off = FeatureConfig(lexicon=CONFIG.lexicon)
     assert not any(f.startswith("othw") for f in features_at(tokens, 1, off))
+
+
+def test_the_size_of_the_other_speakers_interjection_is_read() -> None:
+    # A backchannel (1-2 words) lets the speaker keep the floor; a longer turn does not.
+    words = ["i", "was", "going", "to", "we", "could"]
+    short = [Token(text=w, after_other_speaker=(k == 4), other_words=1 if k == 4 else 0)
+             for k, w in enumerate(words)]
+    long = [Token(text=w, after_other_speaker=(k == 4), other_words=12 if k == 4 else 0)
+            for k, w in enumerate(words)]
+    assert "othn+3=1" in features_at(short, 1, CONFIG)
+    assert "othn+3=6+" in features_at(long, 1, CONFIG)
+    assert "othnw=1|to" in features_at(short, 3, CONFIG)
+
+
+def test_channels_count_the_other_speakers_words_between() -> None:
+    speakers = "AABBBAB"
+    conversation = Conversation(
+        id="c", corpus="demo",
+        words=tuple(Word(text="w", speaker=s) for s in speakers),
+        utterances=(Utterance(speaker="A", words=(0, 1, 5), function=UtteranceFunction.OTHER,
+                              fine_tag="x", fine_class="x"),))
+    a, b = channel_sequences(conversation)
+    assert a.other_words == (0, 0, 3)
+    assert b.other_words == (0, 0, 0, 1)
