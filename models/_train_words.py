@@ -301,11 +301,13 @@ BIAS_CANDIDATES: tuple[dict[str, float], ...] = tuple(
     {"rp": rp, "rp.ip": ip}
     for rp in (-0.5, -0.4, -0.3, -0.2, -0.1, 0.0, 0.1) for ip in (0.0, 0.2, 0.4, 0.6, 0.8, 1.0)
 )
-#: Restart tag biases ``--tune-restart-bias`` compares, added to a fixed reparandum bias: restarts
-#: are rare (under 1 % of words), so the grid reaches further up (common practice, no source).
+#: Restart tag biases ``--tune-restart-bias`` compares, added to a fixed reparandum bias (grid:
+#: common practice, no source; the first, no restart bias, is the reference).
 RESTART_BIAS_CANDIDATES: tuple[dict[str, float], ...] = tuple(
     {"rs": rs, "rs.ip": ip}
-    for rs in (0.0, 0.5, 1.0, 1.5, 2.0) for ip in (0.0, 0.5, 1.0, 1.5, 2.0)
+    # A bias on every restart word adds up along a run, so its steps are small; the last
+    # word's bias decides one word and reaches further.
+    for rs in (0.0, 0.1, 0.2, 0.3) for ip in (0.0, 0.5, 1.0, 1.5, 2.0, 3.0)
 )
 
 

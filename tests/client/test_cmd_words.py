@@ -10,6 +10,7 @@ import pytest
 from midstream.client._cli import main
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
+from midstream.models._train_words import RESTART_BIAS_CANDIDATES
 from midstream.models._wordmodel import WordModel
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))
@@ -84,7 +85,7 @@ def test_tuning_the_restart_bias_by_cross_validation(
                  "--tag-bias", "rp=-0.3", "--tune-restart-bias"])
     assert code == 0
     printed = capsys.readouterr().out
-    assert printed.count("restart precision=") == 25
+    assert printed.count("restart precision=") == len(RESTART_BIAS_CANDIDATES)
     assert "chosen bias rp=-0.3" in printed
 
 
