@@ -8,9 +8,10 @@ from pathlib import Path
 
 import pytest
 from midstream.client._cli import main
+from midstream.client._cmd_train import RESTART_GUARD, choose_restart_bias
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
-from midstream.models._train_words import RESTART_BIAS_CANDIDATES
+from midstream.models._train_words import RESTART_BIAS_CANDIDATES, BiasResult
 from midstream.models._wordmodel import WordModel
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))
@@ -98,3 +99,17 @@ def test_bad_recogniser_options_are_clear_errors(transcripts: Path, argv: list[s
                                                  capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["evaluate", str(transcripts), *argv]) == 1
     assert message in capsys.readouterr().err
+
+
+def test_the_restart_bias_never_trades_away_the_other_figures() -> None:
+    def result(restart: float, rp: float, edited: float, seg: float) -> BiasResult:
+        return BiasResult(bias=(("rs.ip", restart),), precision=0.0, recall=0.0, f1=rp,
+                          restart_f1=restart, edited_f1=edited, segmentation_f1=seg)
+
+    reference = result(0.01, 0.75, 0.70, 0.83)
+    costly = [result(0.20, 0.75 - 2 * RESTART_GUARD, 0.70, 0.83),
+              result(0.19, 0.75, 0.70 - 2 * RESTART_GUARD, 0.83),
+              result(0.18, 0.75, 0.70, 0.83 - 2 * RESTART_GUARD)]
+    fair = result(0.05, 0.75 - RESTART_GUARD / 2, 0.70, 0.83)
+    assert choose_restart_bias([reference, *costly, fair]) is fair
+    assert choose_restart_bias([reference, *costly]) is reference
