@@ -67,6 +67,7 @@ def print_table(stats: CorpusStats, out: TextIO) -> None:
         ("  disfluency-annotated", stats.disfluency_annotated),
         ("speakers (per conversation, summed)", stats.speakers),
         ("utterances", stats.utterances),
+        ("  incomplete (cut off, trailed off, abandoned)", stats.incomplete_utterances),
         ("words", stats.words),
         ("  in annotated conversations", stats.annotated_words),
         ("  fragments", stats.fragments),

@@ -9,8 +9,10 @@ not the repair's end, is annotated.
 
 Restarts come in two kinds (``corpora/_restarts.py``): a ``bracket`` restart (a repair
 structure with no repair, the deletions above) and an ``abandoned`` utterance (the speaker
-broke the utterance off and started afresh). ``restarts`` counts each kind's units, over all
-conversations (a corpus with a partial disfluency layer still marks abandoned utterances);
+broke the utterance off and started afresh: one of the ``incomplete_utterances`` the corpus
+marks, most of which are cut off or trailed off instead). ``restarts`` counts each kind's
+units, over all conversations (a corpus with a partial disfluency layer still marks abandoned
+utterances);
 ``restart_words`` their words labelled ``restart`` in annotated conversations, a word inside
 both kinds counted as abandoned.
 """
@@ -44,6 +46,7 @@ class CorpusStats:
     disfluency_annotated: int = 0
     speakers: int = 0
     utterances: int = 0
+    incomplete_utterances: int = 0
     words: int = 0
     annotated_words: int = 0
     fragments: int = 0
@@ -62,6 +65,7 @@ class CorpusStats:
             "disfluency_annotated": self.disfluency_annotated,
             "speakers": self.speakers,
             "utterances": self.utterances,
+            "incomplete_utterances": self.incomplete_utterances,
             "words": self.words,
             "annotated_words": self.annotated_words,
             "fragments": self.fragments,
@@ -132,6 +136,7 @@ def corpus_stats(conversations: Iterable[Conversation]) -> CorpusStats:
         for utterance in conversation.utterances:
             functions[utterance.function.value] += 1
             fine_classes[utterance.fine_class] += 1
+            counts["incomplete_utterances"] += not utterance.complete
             if utterance.abandoned:
                 restarts["abandoned"] += 1
                 abandoned_words.update(utterance.words)
@@ -150,6 +155,7 @@ def corpus_stats(conversations: Iterable[Conversation]) -> CorpusStats:
         disfluency_annotated=counts["disfluency_annotated"],
         speakers=counts["speakers"],
         utterances=counts["utterances"],
+        incomplete_utterances=counts["incomplete_utterances"],
         words=counts["words"],
         annotated_words=counts["annotated_words"],
         fragments=counts["fragments"],
