@@ -234,10 +234,9 @@ def _replay(
         tally.edits += len(history[position])
         tally.edited_words += 1
         tally.final_delays.append(final_step[position] - position)
-    if not all(w.fragment for w in channel.words):
-        for position in range(n):
-            if not channel.words[position].fragment:
-                tally.edited.add(predicted[position] in _EDITED, gold[position] in _EDITED)
+    for position in range(n):
+        if not channel.words[position].fragment:
+            tally.edited.add(predicted[position] in _EDITED, gold[position] in _EDITED)
     predicted_kind = restart_kinds(predicted, final_end)
     abandoned = {i for u in conversation.utterances if u.abandoned for i in u.words}
     for position, index in enumerate(channel.indices):
@@ -246,8 +245,8 @@ def _replay(
             gold_kind = "abandoned" if index in abandoned else "bracket"
         for kind, counts in tally.restart_kinds.items():
             counts.add(predicted_kind[position] == kind, gold_kind == kind)
-    offline = model.tag_tokens(tokens_from_words(channel.words, channel.after_other_speaker,
-                                   channel.other_words))
+    offline = model.tag_tokens(tokens_from_words(
+        channel.words, channel.after_other_speaker, channel.other_words))
     for position, tag in enumerate(offline):
         tally.offline.add(
             decode_tag(tag)[1] == DisfluencyLabel.REPARANDUM,
@@ -326,7 +325,7 @@ def offline_scores(conversations: Sequence[Conversation], model: WordModel) -> d
     for conversation in conversations:
         for channel in channel_sequences(conversation):
             tokens = tokens_from_words(channel.words, channel.after_other_speaker,
-                                   channel.other_words)
+                                       channel.other_words)
             tags = [decode_tag(t) for t in model.tag_tokens(tokens)]
             gold = _gold_labels(channel)
             for position, (_, label, ends) in enumerate(tags):
