@@ -176,11 +176,12 @@ def _stream_channel(channel: ChannelSequence, model: WordModel,
                 stream.final_end[key] = state.ends_utterance
                 stream.final_step[key] = step
 
+    other_words = channel.other_words or (0,) * n  # a channel built without the counts
     for position, word in enumerate(channel.words):
         record(
             decoder.append(position, word,
                            after_other_speaker=channel.after_other_speaker[position],
-                           other_words=channel.other_words[position]),
+                           other_words=other_words[position]),
             position,
         )
     record(decoder.finish(), n - 1)
