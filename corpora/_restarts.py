@@ -3,9 +3,12 @@
 A restart (Shriberg 1994, *fresh start*) abandons what was said and repairs it with nothing. The
 corpora show it in two forms. Inside an utterance, SwDA brackets it with an empty repair,
 ``[ X + ]`` (read by :mod:`~midstream.corpora._swda`). Across utterances, the transcribers end a
-unit as incomplete and the speaker begins a new one: SwDA's ``-/`` (Meteer et al. 1995,
-*Dysfluency Annotation Stylebook for the Switchboard Corpus*, the section on slash units and
-incomplete slash units; cited from memory, the stylebook is not in the corpus folder), MRDA's
+unit as incomplete and the speaker begins a new one: SwDA's ``-/`` ("end of cut-off unit", the
+slash-unit convention of Meteer et al. 1995, *Dysfluency Annotation Stylebook for the
+Switchboard Corpus*, whose section on slash units is cited from memory: the stylebook is not in
+the corpus folder; checked in the SwDA coders' manual ``doc/manual.august1.html``, §2 "Units to
+label", which quotes the convention, and §3 Communicative-Status, which tags an abandoned
+utterance ``%`` "together with -/"), MRDA's
 ``==`` (an abandoned segment: ``doc/mrda_manual.pdf``, the section on transcript conventions and
 disruption forms) and Map Task's ``aban`` move flag (HCRC Dialogue Structure Coding Manual,
 Carletta et al. 1996, the section on moves: an abandoned move; from memory for the section).

@@ -13,8 +13,8 @@ coders' manual ``doc/manual.august1.html``):
 ``{F ..}`` ``{E ..}`` ``{D ..}`` ``{C ..}`` ``{A ..}``
     filled pause, editing term, discourse marker, coordinating conjunction, aside.
 ``/`` and ``-/``
-    the end of a complete and of an incomplete slash unit (Meteer et al. 1995, the stylebook's
-    section on slash units; from memory).
+    the end of a complete and of a cut-off slash unit (Meteer et al. 1995, the stylebook's
+    section on slash units, from memory; quoted in the coders' manual, §2 "Units to label").
 
 How the reader resolves what the markup leaves open:
 
