@@ -23,10 +23,11 @@ What the reader gives
   be given: ``labels`` is ``None``. The interruption marks are kept as
   ``Conversation.interruption_points`` (the word index each `` - `` follows), abandonment as
   ``Utterance.complete``, fragments as ``Word.fragment``. A segment the transcript ends with
-  ``==`` (abandoned: the manual's transcript conventions, ``doc/mrda_manual.pdf``) after which
-  its speaker starts afresh is ``Utterance.abandoned`` (a restart, ``corpora/_restarts.py``);
-  its words carry no label, as the layer is partial. Fillers are transcribed as ordinary
-  words (``uh``, ``um``) with no tag of their own, so they are left in the words.
+  ``==`` (the speaker "trails off or is interrupted": ``doc/mrda_manual.pdf``, Section 2)
+  after which its speaker starts afresh is ``Utterance.abandoned`` (a restart,
+  ``corpora/_restarts.py``); its words carry no label, as the layer is partial. Fillers are
+  transcribed as ordinary words (``uh``, ``um``) with no tag of their own, so they are left in
+  the words.
 
 Segments without any word (``DIGIT_TASK``, ``BLEEPED``: digit reading and cut audio) give no
 utterance. Nothing here logs words.

@@ -9,9 +9,10 @@ Switchboard Corpus*, whose section on slash units is cited from memory: the styl
 the corpus folder; checked in the SwDA coders' manual ``doc/manual.august1.html``, §2 "Units to
 label", which quotes the convention, and §3 Communicative-Status, which tags an abandoned
 utterance ``%`` "together with -/"), MRDA's
-``==`` (an abandoned segment: ``doc/mrda_manual.pdf``, the section on transcript conventions and
-disruption forms) and Map Task's ``aban`` move flag (HCRC Dialogue Structure Coding Manual,
-Carletta et al. 1996, the section on moves: an abandoned move; from memory for the section).
+``==`` (checked: ``doc/mrda_manual.pdf``, Section 2 "Segmentation": marked where "a speaker
+trails off or is interrupted and consequently does not complete his utterance") and Map Task's
+``aban`` move flag (an abandoned move: HCRC Dialogue Structure Coding Manual, Carletta et al.
+1996; from memory, the manual is not in the corpus folder).
 
 An incomplete unit is also what a transcriber writes where the other speaker cuts the speaker
 off, or where the speaker trails off at the end of a turn. Neither is a restart: the speaker
