@@ -67,6 +67,7 @@ def print_table(stats: CorpusStats, out: TextIO) -> None:
         ("  disfluency-annotated", stats.disfluency_annotated),
         ("speakers (per conversation, summed)", stats.speakers),
         ("utterances", stats.utterances),
+        ("  incomplete (cut off, trailed off, abandoned)", stats.incomplete_utterances),
         ("words", stats.words),
         ("  in annotated conversations", stats.annotated_words),
         ("  fragments", stats.fragments),
@@ -78,5 +79,8 @@ def print_table(stats: CorpusStats, out: TextIO) -> None:
     _section(out, "disfluency labels (share of annotated words)", stats.labels,
              stats.annotated_words)
     _section(out, "repairs (Shriberg 1994 types)", stats.repairs, sum(stats.repairs.values()))
+    _section(out, "restarts (units of each kind)", stats.restarts, sum(stats.restarts.values()))
+    _section(out, "restart words (share of restart words)", stats.restart_words,
+             sum(stats.restart_words.values()))
     _section(out, "utterance functions", stats.functions, stats.utterances)
     _section(out, "utterance classes", stats.fine_classes, stats.utterances)

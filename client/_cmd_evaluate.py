@@ -16,6 +16,12 @@ through the conversation engine, as a live caller would see them. With the shipp
 coarse figures are the coarse model's and the ``...swbd42`` figures the 42-class model's;
 ``--functions-only`` skips the word model's figures. People get the figures as titled tables
 (:mod:`midstream.client._figures`), scripts every key with ``--json``.
+
+``--as-recognised`` feeds the words as a speech recogniser would: without the word fragments
+transcribers write ("th-"), and with ``--word-error-rate R`` also with seeded substitutions,
+deletions and insertions (proportions and how gold labels follow them:
+:mod:`midstream.models._recogniser`; ``--error-seed`` picks the draw).
+``scripts/recogniser_tables.py`` prints the model cards' tables at 0 %, 10 % and 20 % errors.
 """
 
 from __future__ import annotations
@@ -35,6 +41,7 @@ from midstream.models._eval_engine import evaluate_engine
 from midstream.models._eval_functions import evaluate_functions
 from midstream.models._eval_words import evaluate_words
 from midstream.models._functions import FunctionTagger
+from midstream.models._recogniser import RecogniserConditions, as_recognised
 from midstream.models._wordmodel import WordModel
 
 
@@ -59,6 +66,13 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              "(default: the decoder's, 10)")
     parser.add_argument("--no-settle", action="store_true",
                         help="make every label final exactly --lag words late instead")
+    parser.add_argument("--as-recognised", action="store_true",
+                        help="feed the words as a recogniser would: no word fragments")
+    parser.add_argument("--word-error-rate", type=float, default=0.0, metavar="R",
+                        help="with --as-recognised: seed word errors at this rate per word "
+                             "(0 to 1; substitutions, deletions, insertions 60/25/15)")
+    parser.add_argument("--error-seed", type=int, default=0,
+                        help="seed of the word-error draws (default 0)")
     parser.add_argument("--limit", type=int, default=0,
                         help="evaluate only the first N conversations (0: all)")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
@@ -68,6 +82,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 def run(args: argparse.Namespace) -> int:
     if args.lag is not None and args.lag < 0:
         raise InputError(f"--lag must be >= 0, got {args.lag}")
+    if not 0.0 <= args.word_error_rate <= 1.0:
+        raise InputError(f"--word-error-rate must be in [0, 1], got {args.word_error_rate}")
+    if args.word_error_rate and not args.as_recognised:
+        raise InputError("--word-error-rate needs --as-recognised")
     model = WordModel.load(args.model)
     conversations = list(read_corpus(args.corpus, split=args.split))
     if args.limit:
@@ -76,6 +94,10 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
     if args.words_only and args.functions_only:
         raise InputError("--words-only and --functions-only exclude each other")
+    if args.as_recognised:
+        conditions = RecogniserConditions(word_error_rate=args.word_error_rate,
+                                          seed=args.error_seed)
+        conversations = [as_recognised(c, conditions) for c in conversations]
     decoder = DecoderConfig(lag=args.lag, settle=not args.no_settle)
     figures: dict[str, float] = {}
     if not args.functions_only:

@@ -114,6 +114,12 @@ class Utterance:
     a speaker's utterance may be interrupted by the other speaker and continued afterwards.
     ``fine_tag`` is the corpus's own tag as written; ``fine_class`` its clustered class (the
     SWBD-DAMSL 42 classes for SwDA, the corpus's label set elsewhere); ``function`` the coarse one.
+
+    ``complete`` is false when the corpus marks the utterance incomplete (cut off, trailed off or
+    abandoned). ``abandoned`` is true for an abandoned utterance in Shriberg's (1994) sense, a
+    restart with no repair: the corpus marks it incomplete *and* the same speaker's next words
+    start a new utterance (see :mod:`midstream.corpora._restarts`); where the corpus has a
+    disfluency layer its words are labelled :attr:`DisfluencyLabel.RESTART`.
     """
 
     speaker: str
@@ -122,6 +128,7 @@ class Utterance:
     fine_tag: str
     fine_class: str
     complete: bool = True
+    abandoned: bool = False
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

@@ -47,6 +47,7 @@ from midstream._types import (
     UtteranceFunction,
 )
 from midstream.corpora._normalise import normalise_token
+from midstream.corpora._restarts import abandoned_utterances
 from midstream.corpora._swda import _TOKEN, _Builder
 
 FORMAT_LINE = "@format midstream-inline 1"
@@ -102,13 +103,20 @@ def _finish(pending: _Pending, source: str, last_line: int) -> Conversation:
         line = min(pending.opened.values(), default=last_line)
         raise _error(f"conversation {pending.id!r}: this '[' is still open at its end",
                      source, line)
+    units = builder.utterances
+    # The same rule as the corpus reader: a '-/' unit after which its speaker starts afresh.
+    abandoned = abandoned_utterances(
+        builder.words, [u.words for u in units], [function for function, _ in pending.acts],
+        [k for k, u in enumerate(units) if not u.complete and not u.dash_end],
+        continued={k for k, u in enumerate(units) if u.dash_start},
+    ) if pending.annotated else set()
     utterances = tuple(
         Utterance(speaker=u.speaker, words=tuple(u.words), function=function, fine_tag=fine,
-                  fine_class=fine, complete=u.complete)
-        for u, (function, fine) in zip(builder.utterances, pending.acts, strict=True))
+                  fine_class=fine, complete=u.complete, abandoned=k in abandoned)
+        for k, (u, (function, fine)) in enumerate(zip(units, pending.acts, strict=True)))
     return Conversation(
         id=pending.id, corpus=CORPUS, words=tuple(builder.words), utterances=utterances,
-        labels=builder.labels() if pending.annotated else None,
+        labels=builder.labels(abandoned) if pending.annotated else None,
         repairs=tuple(builder.repairs) if pending.annotated else ())
 
 

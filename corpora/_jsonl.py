@@ -55,7 +55,7 @@ _FIELDS: dict[str, frozenset[str]] = {
     "word": frozenset({"type", "conversation", "speaker", "text", "start", "end", "confidence",
                        "fragment", "label", "utterance"}),
     "utterance": frozenset({"type", "conversation", "index", "speaker", "function", "fine_tag",
-                            "fine_class", "complete"}),
+                            "fine_class", "complete", "abandoned"}),
     "repair": frozenset({"type", "conversation", "reparandum", "interregnum", "repair_onset"}),
 }
 
@@ -337,7 +337,8 @@ def _build(pending: _Pending) -> Conversation:
             speaker=speaker, words=tuple(indices), function=_FUNCTIONS[function],
             fine_tag=line.text("fine_tag", required=False),
             fine_class=line.text("fine_class", required=False),
-            complete=line.flag("complete", True)))
+            complete=line.flag("complete", True),
+            abandoned=line.flag("abandoned", False)))
     if members:
         missing = min(members)
         raise TranscriptFormatError(
@@ -461,6 +462,8 @@ def write_jsonl(conversations: Iterable[Conversation], stream: IO[str]) -> int:
                 "speaker": utterance.speaker, "function": utterance.function.value,
                 "fine_tag": utterance.fine_tag, "fine_class": utterance.fine_class,
                 "complete": utterance.complete,
+                # Written only when set, so files of corpora without the mark stay as they were.
+                **({"abandoned": True} if utterance.abandoned else {}),
             }))
         for repair in conversation.repairs:
             stream.write(_dump({

@@ -14,7 +14,9 @@ What the reader gives
 - **Utterances**: one per move. ``fine_class`` is the move label; ``fine_tag`` the label with
   its set flags appended after ``+`` in a fixed order (``aban`` abandoned, ``rep-self`` /
   ``rep-other`` repeated, ``interj`` interjected, ``cont`` continued, ``meta`` about the task
-  itself), e.g. ``instruct+cont``; ``complete`` is false for an abandoned move.
+  itself), e.g. ``instruct+cont``; ``complete`` is false for an abandoned move, and
+  ``abandoned`` true when the same speaker then starts afresh (``corpora/_restarts.py``; a
+  ``cont`` move carries on an earlier one and is never such a fresh start).
 - **Disfluency layer**: none in this copy beyond fragments and abandoned moves, so ``labels`` is
   ``None``.
 """
@@ -23,13 +25,14 @@ from __future__ import annotations
 
 import xml.etree.ElementTree as ET
 from collections.abc import Collection, Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 from midstream._errors import CorpusNotFoundError, TranscriptFormatError
 from midstream._schemes import coarse_function
 from midstream._types import Conversation, Utterance, Word
 from midstream.corpora._normalise import normalise_token
+from midstream.corpora._restarts import abandoned_utterances
 from midstream.corpora._text import read_lines
 
 _HEADER_LINES = 3
@@ -61,6 +64,10 @@ class Move:
     @property
     def abandoned(self) -> bool:
         return "aban" in self.flags
+
+    @property
+    def continued(self) -> bool:
+        return "cont" in self.flags
 
 
 def read_moves(path: Path) -> tuple[Move, ...]:
@@ -125,6 +132,7 @@ def read_maptask_dialogue(moves_dir: Path, transcript: Path) -> Conversation:
     taken = dict.fromkeys(_SPEAKERS, 0)
     words: list[Word] = []
     utterances: list[Utterance] = []
+    spoken: list[Move] = []  # the move of each utterance
     for number, line in enumerate(read_lines(transcript), start=1):
         if number <= _HEADER_LINES or not line.strip():
             continue
@@ -152,13 +160,20 @@ def read_maptask_dialogue(moves_dir: Path, transcript: Path) -> Conversation:
             fine_class=move.label,
             complete=not move.abandoned,
         ))
+        spoken.append(move)
     for speaker in _SPEAKERS:
         if taken[speaker] != len(moves[speaker]):
             raise TranscriptFormatError(
                 f"{taken[speaker]} {speaker!r} lines but {len(moves[speaker])} moves in "
                 f"{name}.{speaker}.moves.xml", source=str(transcript))
+    abandoned = abandoned_utterances(
+        words, [u.words for u in utterances], [u.function for u in utterances],
+        [k for k, move in enumerate(spoken) if move.abandoned],
+        continued={k for k, move in enumerate(spoken) if move.continued})
     return Conversation(id=name, corpus="maptask", words=tuple(words),
-                        utterances=tuple(utterances), labels=None)
+                        utterances=tuple(replace(u, abandoned=True) if k in abandoned else u
+                                         for k, u in enumerate(utterances)),
+                        labels=None)
 
 
 def read_maptask(root: Path, *, ids: Collection[str] | None = None) -> Iterator[Conversation]:

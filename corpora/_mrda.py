@@ -22,8 +22,12 @@ What the reader gives
   segments but never the extent of a reparandum or a repair, so no faithful per-word label can
   be given: ``labels`` is ``None``. The interruption marks are kept as
   ``Conversation.interruption_points`` (the word index each `` - `` follows), abandonment as
-  ``Utterance.complete``, fragments as ``Word.fragment``. Fillers are transcribed as ordinary
-  words (``uh``, ``um``) with no tag of their own, so they are left in the words.
+  ``Utterance.complete``, fragments as ``Word.fragment``. A segment the transcript ends with
+  ``==`` (the speaker "trails off or is interrupted": ``doc/mrda_manual.pdf``, Section 2)
+  after which its speaker starts afresh is ``Utterance.abandoned`` (a restart,
+  ``corpora/_restarts.py``); its words carry no label, as the layer is partial. Fillers are
+  transcribed as ordinary words (``uh``, ``um``) with no tag of their own, so they are left in
+  the words.
 
 Segments without any word (``DIGIT_TASK``, ``BLEEPED``: digit reading and cut audio) give no
 utterance. Nothing here logs words.
@@ -40,6 +44,7 @@ from midstream._errors import CorpusNotFoundError, TranscriptFormatError
 from midstream._schemes import coarse_function
 from midstream._types import Conversation, Utterance, Word
 from midstream.corpora._normalise import normalise_token
+from midstream.corpora._restarts import abandoned_utterances
 from midstream.corpora._text import read_lines
 
 #: Columns of a ``.dadb`` line (corpora README; the last five hold adjacency pairs and comments).
@@ -255,7 +260,8 @@ def read_mrda_meeting(dadb: Path, trans: Path) -> Conversation:
     # Words are gathered per segment first, then sorted by time across speakers; each word
     # remembers its segment part so utterances can be rebuilt from the sorted order.
     pending: list[tuple[float, int, Word]] = []
-    parts: list[tuple[DadbSegment, str, str, bool]] = []  # segment, original, normalised, done
+    # segment, original, normalised, complete, ended by "=="
+    parts: list[tuple[DadbSegment, str, str, bool, bool]] = []
     part_words: list[list[int]] = []  # sequence numbers of each part's words
     interrupted_after: set[int] = set()  # sequence numbers followed by " - "
     sequence = 0
@@ -307,28 +313,34 @@ def read_mrda_meeting(dadb: Path, trans: Path) -> Conversation:
                        if p in positions]
             if not members:
                 continue
-            last = index == len(normalised) - 1
-            complete = _disruption(label) is None and not (last and marks.trailing_off)
-            parts.append((segment, original, label, complete))
+            trailing = index == len(normalised) - 1 and marks.trailing_off
+            complete = _disruption(label) is None and not trailing
+            parts.append((segment, original, label, complete, trailing))
             part_words.append(members)
 
     pending.sort(key=lambda item: (item[0], item[1]))
     index_of = {seq: index for index, (_, seq, _) in enumerate(pending)}
+    words = tuple(word for _, _, word in pending)
+    indices = [tuple(sorted(index_of[s] for s in members)) for members in part_words]
+    functions = [coarse_function("mrda", mrda_class(part[2])) for part in parts]
+    # Utterances are in .dadb order; the abandonment rule reads them in time order.
+    abandoned = abandoned_utterances(
+        words, indices, functions, [k for k, part in enumerate(parts) if part[4]])
     utterances = []
-    for (segment, original, label, complete), members in zip(parts, part_words, strict=True):
-        fine_class = mrda_class(label)
+    for k, (segment, original, label, complete, _) in enumerate(parts):
         utterances.append(Utterance(
             speaker=segment.speaker,
-            words=tuple(sorted(index_of[s] for s in members)),
-            function=coarse_function("mrda", fine_class),
+            words=indices[k],
+            function=functions[k],
             fine_tag=original,
-            fine_class=fine_class,
+            fine_class=mrda_class(label),
             complete=complete,
+            abandoned=k in abandoned,
         ))
     return Conversation(
         id=dadb.stem,
         corpus="mrda",
-        words=tuple(word for _, _, word in pending),
+        words=words,
         utterances=tuple(utterances),
         labels=None,
         interruption_points=tuple(sorted(index_of[s] for s in interrupted_after)),

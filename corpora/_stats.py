@@ -6,6 +6,15 @@ Repairs are typed after Shriberg (1994): a *repetition* repairs with the same wo
 *substitution* with different ones, a *deletion* (restart) with none. Shriberg's insertions
 (repair = reparandum plus new words) count as substitutions here, because only the repair onset,
 not the repair's end, is annotated.
+
+Restarts come in two kinds (``corpora/_restarts.py``): a ``bracket`` restart (a repair
+structure with no repair, the deletions above) and an ``abandoned`` utterance (the speaker
+broke the utterance off and started afresh: one of the ``incomplete_utterances`` the corpus
+marks, most of which are cut off or trailed off instead). ``restarts`` counts each kind's
+units, over all conversations (a corpus with a partial disfluency layer still marks abandoned
+utterances);
+``restart_words`` their words labelled ``restart`` in annotated conversations, a word inside
+both kinds counted as abandoned.
 """
 
 from __future__ import annotations
@@ -20,6 +29,8 @@ from midstream._types import Conversation, DisfluencyLabel, Repair, UtteranceFun
 _NOT_CONTENT = frozenset({DisfluencyLabel.FILLER, DisfluencyLabel.EDIT_TERM})
 #: Repair types, in the order the table prints them.
 REPAIR_TYPES: tuple[str, ...] = ("repetition", "substitution", "deletion")
+#: The two kinds of restart, in the order the table prints them.
+RESTART_KINDS: tuple[str, ...] = ("bracket", "abandoned")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -35,6 +46,7 @@ class CorpusStats:
     disfluency_annotated: int = 0
     speakers: int = 0
     utterances: int = 0
+    incomplete_utterances: int = 0
     words: int = 0
     annotated_words: int = 0
     fragments: int = 0
@@ -43,6 +55,8 @@ class CorpusStats:
     repairs: dict[str, int] = field(default_factory=dict)
     functions: dict[str, int] = field(default_factory=dict)
     fine_classes: dict[str, int] = field(default_factory=dict)
+    restarts: dict[str, int] = field(default_factory=dict)
+    restart_words: dict[str, int] = field(default_factory=dict)
 
     def to_json(self) -> dict[str, object]:
         """The counts as a JSON-ready dict (mapping keys in a stable order)."""
@@ -51,12 +65,15 @@ class CorpusStats:
             "disfluency_annotated": self.disfluency_annotated,
             "speakers": self.speakers,
             "utterances": self.utterances,
+            "incomplete_utterances": self.incomplete_utterances,
             "words": self.words,
             "annotated_words": self.annotated_words,
             "fragments": self.fragments,
             "unbalanced_brackets": self.unbalanced_brackets,
             "labels": dict(self.labels),
             "repairs": dict(self.repairs),
+            "restarts": dict(self.restarts),
+            "restart_words": dict(self.restart_words),
             "functions": dict(self.functions),
             "fine_classes": dict(sorted(self.fine_classes.items())),
         }
@@ -105,6 +122,8 @@ def corpus_stats(conversations: Iterable[Conversation]) -> CorpusStats:
     repairs: Counter[str] = Counter({kind: 0 for kind in REPAIR_TYPES})
     functions: Counter[str] = Counter({function.value: 0 for function in UtteranceFunction})
     fine_classes: Counter[str] = Counter()
+    restarts: Counter[str] = Counter(dict.fromkeys(RESTART_KINDS, 0))
+    restart_words: Counter[str] = Counter(dict.fromkeys(RESTART_KINDS, 0))
     counts = Counter[str]()
     for conversation in conversations:
         counts["conversations"] += 1
@@ -113,20 +132,30 @@ def corpus_stats(conversations: Iterable[Conversation]) -> CorpusStats:
         counts["words"] += len(conversation.words)
         counts["fragments"] += sum(1 for word in conversation.words if word.fragment)
         counts["unbalanced_brackets"] += conversation.unbalanced_brackets
+        abandoned_words: set[int] = set()
         for utterance in conversation.utterances:
             functions[utterance.function.value] += 1
             fine_classes[utterance.fine_class] += 1
+            counts["incomplete_utterances"] += not utterance.complete
+            if utterance.abandoned:
+                restarts["abandoned"] += 1
+                abandoned_words.update(utterance.words)
+        restarts["bracket"] += sum(1 for r in conversation.repairs if r.is_restart)
         if conversation.labels is not None:
             counts["disfluency_annotated"] += 1
             counts["annotated_words"] += len(conversation.words)
             gold = conversation.labels
             labels.update(label.value for label in gold)
             repairs.update(repair_type(r, conversation.words, gold) for r in conversation.repairs)
+            for index, label in enumerate(gold):
+                if label is DisfluencyLabel.RESTART:
+                    restart_words["abandoned" if index in abandoned_words else "bracket"] += 1
     return CorpusStats(
         conversations=counts["conversations"],
         disfluency_annotated=counts["disfluency_annotated"],
         speakers=counts["speakers"],
         utterances=counts["utterances"],
+        incomplete_utterances=counts["incomplete_utterances"],
         words=counts["words"],
         annotated_words=counts["annotated_words"],
         fragments=counts["fragments"],
@@ -135,4 +164,6 @@ def corpus_stats(conversations: Iterable[Conversation]) -> CorpusStats:
         repairs=dict(repairs),
         functions=dict(functions),
         fine_classes=dict(fine_classes.most_common()),
+        restarts=dict(restarts),
+        restart_words=dict(restart_words),
     )

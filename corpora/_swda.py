@@ -13,7 +13,8 @@ coders' manual ``doc/manual.august1.html``):
 ``{F ..}`` ``{E ..}`` ``{D ..}`` ``{C ..}`` ``{A ..}``
     filled pause, editing term, discourse marker, coordinating conjunction, aside.
 ``/`` and ``-/``
-    the end of a complete and of an incomplete slash unit.
+    the end of a complete and of a cut-off slash unit (Meteer et al. 1995, the stylebook's
+    section on slash units, from memory; quoted in the coders' manual, §2 "Units to label").
 
 How the reader resolves what the markup leaves open:
 
@@ -44,6 +45,12 @@ How the reader resolves what the markup leaves open:
 - Utterances keep lines with no words (a non-verbal ``x`` line of ``<laughter>`` only): the
   manual's class counts include them. ``complete`` is true when the utterance's last slash is
   ``/``, false for ``-/`` or no slash at all (cut off and never continued).
+- An incomplete utterance after which the same speaker starts afresh is *abandoned*
+  (``Utterance.abandoned``; the rules in :mod:`midstream.corpora._restarts`), a restart in
+  Shriberg's (1994) sense: its words are RESTART (fillers and editing terms keep their labels,
+  brackets inside it still label their own reparanda). ``--`` written before its ``-/`` or at
+  the start of the speaker's next line links the two lines as one unit run on across a
+  backchannel, so such a unit is not abandoned.
 """
 
 from __future__ import annotations
@@ -59,6 +66,7 @@ from midstream._errors import CorpusNotFoundError, InputError, TranscriptFormatE
 from midstream._schemes import coarse_function, swbd42_class
 from midstream._types import Conversation, DisfluencyLabel, Repair, Utterance, Word
 from midstream.corpora._normalise import normalise_token
+from midstream.corpora._restarts import abandoned_utterances
 
 CORPUS = "swda"
 #: The tag of a line that continues its speaker's previous utterance ("+@" flags its segmentation).
@@ -140,6 +148,10 @@ class _OpenUtterance:
     tag: str
     words: list[int] = field(default_factory=list)
     complete: bool = False
+    #: ``--`` right before its ``-/``, or opening its first line: the transcribers' mark that
+    #: one unit runs on across the other speaker's backchannel (not an abandoned start).
+    dash_end: bool = False
+    dash_start: bool = False
 
 
 @dataclass(slots=True)
@@ -172,7 +184,13 @@ class _Builder:
         # Per-word work is inlined: this loop runs for every word of the corpus.
         words, base, owned = self.words, self.base, utterance.words
         frames, curly, speaker = state.frames, state.curly, utterance.speaker
+        opening = not owned  # the line opens its utterance
+        previous = last_token = ""  # the tokens read before this one, overlap marks skipped
         for token in _TOKEN.findall(text):
+            if token and token != "#":
+                if opening and token == "-" and not previous:
+                    utterance.dash_start = True
+                last_token, previous = previous, token
             mark = _MARKS.get(token)
             if mark is None:
                 if not token:  # a comment or non-speech span
@@ -204,6 +222,7 @@ class _Builder:
                     curly.pop()
             elif mark is _Mark.SLASH or mark is _Mark.INCOMPLETE:
                 utterance.complete = mark is _Mark.SLASH
+                utterance.dash_end = mark is _Mark.INCOMPLETE and last_token == "-"
                 self._close_all(state)
             else:
                 curly.append(_CURLY_OPEN[token])
@@ -251,9 +270,27 @@ class _Builder:
                 )
             )
 
-    def labels(self) -> tuple[DisfluencyLabel, ...]:
+    def abandoned(self) -> set[int]:
+        """Indices of the utterances abandoned for a fresh start (``corpora/_restarts.py``)."""
+        units = self.utterances
+        return abandoned_utterances(
+            self.words,
+            [u.words for u in units],
+            [coarse_function("swbd42", swbd42_class(u.tag)) for u in units],
+            [k for k, u in enumerate(units) if not u.complete and not u.dash_end],
+            continued={k for k, u in enumerate(units) if u.dash_start},
+        )
+
+    def labels(self, abandoned: set[int]) -> tuple[DisfluencyLabel, ...]:
         labels = list(self.base)
         removed = {DisfluencyLabel.REPARANDUM, DisfluencyLabel.RESTART}
+        # An abandoned utterance is the outermost restart: every word of it leaves the clean
+        # text, except that fillers and editing terms keep their own label as inside brackets,
+        # and the brackets inside it (applied next) still decide their own words.
+        for k in abandoned:
+            for index in self.utterances[k].words:
+                if self.base[index] not in _KEEP_IN_REPARANDUM:
+                    labels[index] = DisfluencyLabel.RESTART
         # Repairs are emitted innermost first; applying them outermost first lets the innermost
         # bracket decide between REPARANDUM and RESTART.
         for repair in reversed(self.repairs):
@@ -320,6 +357,7 @@ def parse_conversation(text: str, *, conversation_id: str, source: str = "") -> 
             _check_tag(tag, source, number)
         builder.line(tag, speaker, match.group("text"))
     builder.finish()
+    abandoned = builder.abandoned() if builder.marked else set()
     utterances = tuple(
         Utterance(
             speaker=u.speaker,
@@ -328,15 +366,16 @@ def parse_conversation(text: str, *, conversation_id: str, source: str = "") -> 
             fine_tag=u.tag,
             fine_class=swbd42_class(u.tag),
             complete=u.complete,
+            abandoned=k in abandoned,
         )
-        for u in builder.utterances
+        for k, u in enumerate(builder.utterances)
     )
     return Conversation(
         id=conversation_id,
         corpus=CORPUS,
         words=tuple(builder.words),
         utterances=utterances,
-        labels=builder.labels() if builder.marked else None,
+        labels=builder.labels(abandoned) if builder.marked else None,
         repairs=tuple(builder.repairs) if builder.marked else (),
         unbalanced_brackets=builder.unbalanced,
     )

@@ -10,6 +10,14 @@ when ``lag`` newer words have arrived, or when its utterance is closed; a final 
 changes again and the decoder forgets the word once it is no longer needed as left context
 (the caller keeps history).
 
+Abandoned utterances (restarts of the second kind, ``docs/labels.md``) need no special case:
+an utterance is abandoned only once its speaker starts afresh, so its words are first reported
+with another label and revised to ``restart`` when the fresh start's first words arrive. They
+become final by the same rule as every word: once settled (the features read ``right`` words
+ahead, so the last words of the abandoned utterance are decided on the fresh start's words), at
+the latest ``lag`` words late. A caller's explicit close finalises them at once, as any open
+word: after it they are never revised to ``restart``.
+
 A :class:`ChannelDecoder` is not safe to share between threads or tasks: one per channel, used
 from one place. The :class:`~midstream.models._wordmodel.WordModel` under it may be shared.
 """
@@ -157,12 +165,13 @@ class ChannelDecoder:
     # -- events --------------------------------------------------------------------------
 
     def append(
-        self, key: int, word: Word, *, after_other_speaker: bool = False
+        self, key: int, word: Word, *, after_other_speaker: bool = False, other_words: int = 0
     ) -> list[TokenState]:
         """Add the next word of this channel; return the states that changed.
 
         ``after_other_speaker``: another speaker's word came between the previous word of this
-        channel and this one (the engine knows; it is a strong utterance-end cue).
+        channel and this one (the engine knows; it is a strong utterance-end cue);
+        ``other_words``: how many words the other speakers said there (a backchannel or a turn).
 
         Raises
         ------
@@ -175,7 +184,7 @@ class ChannelDecoder:
             raise EventError(f"word {key}: key already used in this channel")
         self._top_key = max(self._top_key, key)
         self._entries.append(_Entry(key))
-        self._tokens.append(token_of(word, after_other_speaker))
+        self._tokens.append(token_of(word, after_other_speaker, other_words))
         last = len(self._entries) - 1
         self._reserve(last + 1)
         self._scores[last] = 0.0
@@ -206,7 +215,8 @@ class ChannelDecoder:
             ``key`` is final or unknown.
         """
         position = self._open_position(key)
-        self._tokens[position] = token_of(word, self._tokens[position].after_other_speaker)
+        held = self._tokens[position]
+        self._tokens[position] = token_of(word, held.after_other_speaker, held.other_words)
         self._rescore_open()
         return self._update(close=False)
 

@@ -106,6 +106,8 @@ class _Channel:
     ends: set[int] = field(default_factory=set)
     #: Number of the next utterance this speaker starts (1-based; never reused).
     next_index: int = 1
+    #: The conversation's word count when this speaker's last word was added (0: none yet).
+    last_added: int = 0
     utterances: list[_OpenUtterance] = field(default_factory=list)
 
 
@@ -146,6 +148,7 @@ class ConversationEngine:
         self._coarse_window = (coarse_tagger or function_tagger).context_window(())
         self._coarse_memo = WordsMemo()
         self._last_speaker: str | None = None
+        self._words_added = 0
         self._finished = False
         # An utterance of nothing but disfluent words ("uh") has no words to label: it is
         # published as the scheme's abandoned/uninterpretable class, coarse "other".
@@ -198,8 +201,14 @@ class ConversationEngine:
         self._remember(word_id)
         after_other = self._last_speaker is not None and self._last_speaker != word.speaker
         self._last_speaker = word.speaker
+        # The other speakers' words since this speaker's previous word, as training counts them
+        # (0 before a channel's first word).
+        self._words_added += 1
+        other_words = (self._words_added - channel.last_added - 1) if channel.last_added else 0
+        channel.last_added = self._words_added
         clean = _clean_word(word, token.text, fragment)
-        states = channel.decoder.append(key, clean, after_other_speaker=after_other)
+        states = channel.decoder.append(key, clean, after_other_speaker=after_other,
+                                        other_words=other_words)
         return self._apply(channel, states)
 
     def replace_word(self, word_id: str, word: Word) -> HypothesisDiff:

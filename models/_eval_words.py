@@ -12,6 +12,17 @@ Reported keys (all in ``[0, 1]`` unless a unit is named):
     (the positive class is the label; gold from the corpus annotation).
 ``disfluency.reparandum_no_fragments.f1``
     reparandum F1 with word fragments left out (recognisers rarely emit fragments).
+``disfluency.edited_no_fragments.f1``
+    F1 of EDITED words, fragments left out: a word counts as edited when it is a reparandum or
+    a restart word, on both sides. This is how published Switchboard disfluency figures are
+    scored (the Treebank's EDITED nodes cover reparanda and restarts; Charniak & Johnson,
+    NAACL 2001, and Johnson & Charniak, ACL 2004, score words under EDITED, fragments
+    excluded: from memory).
+``disfluency.restart.{bracket,abandoned}.{precision,recall,f1}``
+    restart words of each kind (``corpora/_restarts.py``). Gold kind: a restart word inside an
+    abandoned utterance is ``abandoned``, any other ``bracket``. Predicted kind: a restart word
+    whose run of restart words (fillers and editing terms inside it skipped) reaches a predicted
+    utterance end is ``abandoned``, any other ``bracket``. ``disfluency.restart.*`` counts both.
 ``disfluency.offline.reparandum.f1``
     the same model decoding each whole channel at once (crfsuite's own Viterbi).
 ``incremental.edit_overhead``
@@ -49,6 +60,34 @@ from tqdm import tqdm
 __all__ = ["BinaryCounts", "evaluate_words", "offline_scores"]
 
 _DELAYS = (0, 1, 2)
+_RESTART_KINDS = ("bracket", "abandoned")
+_EDITED = frozenset({DisfluencyLabel.REPARANDUM, DisfluencyLabel.RESTART})
+#: Labels a run of restart words may hold without ending (they stay inside brackets too).
+_INSIDE_RESTART = frozenset({DisfluencyLabel.FILLER, DisfluencyLabel.EDIT_TERM})
+
+
+def restart_kinds(labels: Sequence[DisfluencyLabel | None], ends: Sequence[bool]) -> list[str]:
+    """The kind of each restart word of one channel ("" for other words).
+
+    A restart word is ``abandoned`` when its run of restart words (fillers and editing terms
+    inside it skipped) reaches an utterance end, else ``bracket``.
+
+    >>> R, F = DisfluencyLabel.RESTART, DisfluencyLabel.FLUENT
+    >>> restart_kinds([R, F, R, R], [False, False, False, True])
+    ['bracket', '', 'abandoned', 'abandoned']
+    """
+    kinds = [""] * len(labels)
+    kind = "bracket"  # what a restart word gets at this point, walking right to left
+    for position in range(len(labels) - 1, -1, -1):
+        label = labels[position]
+        if label is DisfluencyLabel.RESTART or label in _INSIDE_RESTART:
+            if ends[position]:
+                kind = "abandoned"
+            if label is DisfluencyLabel.RESTART:
+                kinds[position] = kind
+        else:
+            kind = "bracket"
+    return kinds
 
 
 @dataclass(slots=True)
@@ -87,6 +126,10 @@ class _Tally:
         default_factory=lambda: {label: BinaryCounts() for label in DisfluencyLabel}
     )
     no_fragments: BinaryCounts = field(default_factory=BinaryCounts)
+    edited: BinaryCounts = field(default_factory=BinaryCounts)
+    restart_kinds: dict[str, BinaryCounts] = field(
+        default_factory=lambda: {kind: BinaryCounts() for kind in _RESTART_KINDS}
+    )
     offline: BinaryCounts = field(default_factory=BinaryCounts)
     at_delay: dict[int, BinaryCounts] = field(
         default_factory=lambda: {d: BinaryCounts() for d in _DELAYS}
@@ -133,10 +176,12 @@ def _stream_channel(channel: ChannelSequence, model: WordModel,
                 stream.final_end[key] = state.ends_utterance
                 stream.final_step[key] = step
 
+    other_words = channel.other_words or (0,) * n  # a channel built without the counts
     for position, word in enumerate(channel.words):
         record(
             decoder.append(position, word,
-                           after_other_speaker=channel.after_other_speaker[position]),
+                           after_other_speaker=channel.after_other_speaker[position],
+                           other_words=other_words[position]),
             position,
         )
     record(decoder.finish(), n - 1)
@@ -190,7 +235,19 @@ def _replay(
         tally.edits += len(history[position])
         tally.edited_words += 1
         tally.final_delays.append(final_step[position] - position)
-    offline = model.tag_tokens(tokens_from_words(channel.words, channel.after_other_speaker))
+    for position in range(n):
+        if not channel.words[position].fragment:
+            tally.edited.add(predicted[position] in _EDITED, gold[position] in _EDITED)
+    predicted_kind = restart_kinds(predicted, final_end)
+    abandoned = {i for u in conversation.utterances if u.abandoned for i in u.words}
+    for position, index in enumerate(channel.indices):
+        gold_kind = ""
+        if gold[position] is DisfluencyLabel.RESTART:
+            gold_kind = "abandoned" if index in abandoned else "bracket"
+        for kind, counts in tally.restart_kinds.items():
+            counts.add(predicted_kind[position] == kind, gold_kind == kind)
+    offline = model.tag_tokens(tokens_from_words(
+        channel.words, channel.after_other_speaker, channel.other_words))
     for position, tag in enumerate(offline):
         tally.offline.add(
             decode_tag(tag)[1] == DisfluencyLabel.REPARANDUM,
@@ -232,6 +289,11 @@ def evaluate_words(
         result[f"disfluency.{label.value}.recall"] = counts.recall
         result[f"disfluency.{label.value}.f1"] = counts.f1
     result["disfluency.reparandum_no_fragments.f1"] = tally.no_fragments.f1
+    result["disfluency.edited_no_fragments.f1"] = tally.edited.f1
+    for kind, counts in tally.restart_kinds.items():
+        result[f"disfluency.restart.{kind}.precision"] = counts.precision
+        result[f"disfluency.restart.{kind}.recall"] = counts.recall
+        result[f"disfluency.restart.{kind}.f1"] = counts.f1
     result["disfluency.offline.reparandum.f1"] = tally.offline.f1
     overhead = tally.edits - tally.edited_words
     result["incremental.edit_overhead"] = overhead / tally.edits if tally.edits else 0.0
@@ -263,7 +325,8 @@ def offline_scores(conversations: Sequence[Conversation], model: WordModel) -> d
     segmentation = BinaryCounts()
     for conversation in conversations:
         for channel in channel_sequences(conversation):
-            tokens = tokens_from_words(channel.words, channel.after_other_speaker)
+            tokens = tokens_from_words(channel.words, channel.after_other_speaker,
+                                       channel.other_words)
             tags = [decode_tag(t) for t in model.tag_tokens(tokens)]
             gold = _gold_labels(channel)
             for position, (_, label, ends) in enumerate(tags):

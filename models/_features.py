@@ -44,14 +44,19 @@ class Token:
     end: float | None = None
     confidence: float | None = None
     after_other_speaker: bool = False
+    #: Words the other speakers said since this speaker's previous word (0 when unknown).
+    other_words: int = 0
 
 
-def tokens_from_words(words: Sequence[Word], after_other: Sequence[bool]) -> list[Token]:
-    """Tokens of one channel's words (``after_other[k]``: another speaker spoke before word k)."""
-    return [token_of(w, a) for w, a in zip(words, after_other, strict=True)]
+def tokens_from_words(words: Sequence[Word], after_other: Sequence[bool],
+                      other_words: Sequence[int] = ()) -> list[Token]:
+    """Tokens of one channel's words (``after_other[k]``: another speaker spoke before word k;
+    ``other_words[k]``: how many words they said, all 0 when not given)."""
+    counts = other_words or [0] * len(words)
+    return [token_of(w, a, n) for w, a, n in zip(words, after_other, counts, strict=True)]
 
 
-def token_of(word: Word, after_other_speaker: bool = False) -> Token:
+def token_of(word: Word, after_other_speaker: bool = False, other_words: int = 0) -> Token:
     return Token(
         text=word.text,
         fragment=word.fragment,
@@ -59,7 +64,15 @@ def token_of(word: Word, after_other_speaker: bool = False) -> Token:
         end=word.end,
         confidence=word.confidence,
         after_other_speaker=after_other_speaker,
+        other_words=other_words,
     )
+
+
+def _other_bucket(token: Token) -> str:
+    # 1-2 words is a backchannel's size ("uh-huh", "oh really"), a longer one takes the floor
+    # (common practice, no source).
+    n = token.other_words
+    return "1" if n <= 1 else "2" if n == 2 else "3-5" if n <= 5 else "6+"
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -77,6 +90,11 @@ class FeatureConfig:
     :mod:`~midstream.models._wordclasses`); empty turns the word-class features off (models
     trained before they existed).
 
+    ``break_ahead`` turns on the features of a break ahead: the first place within the right
+    context where the other speaker spoke before the speaker's next word, how many words they
+    said there, and the word the speaker stopped at (an utterance broken off for no more than a
+    backchannel, after which the speaker starts afresh, was abandoned: a restart).
+
     ``tag_bias`` maps internal CRF tags to a constant added to their state score at decoding
     (not a feature: it shifts the decision threshold between tags after training, chosen by
     cross-validation on the training split; empty means the trained weights alone decide).
@@ -88,6 +106,7 @@ class FeatureConfig:
     restart_span: int = 0
     tag_bias: Mapping[str, float] = field(default_factory=dict)
     word_classes: Mapping[str, str] = field(default_factory=dict, repr=False)
+    break_ahead: bool = False
 
     def __post_init__(self) -> None:
         if self.right < 0 or self.left < self.right + 1:
@@ -103,6 +122,8 @@ class FeatureConfig:
             data["tag_bias"] = dict(self.tag_bias)
         if self.word_classes:
             data["word_classes"] = dict(self.word_classes)
+        if self.break_ahead:
+            data["break_ahead"] = True
         return data
 
     @classmethod
@@ -117,6 +138,8 @@ class FeatureConfig:
             # Absent in models trained before the word-class features existed.
             word_classes={str(k): str(v)
                           for k, v in dict(data.get("word_classes", {})).items()},
+            # Absent in models trained before the break-ahead features existed.
+            break_ahead=bool(data.get("break_ahead", False)),
         )
 
 
@@ -162,6 +185,8 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
             out.append("fp=" + t0.text[:2])
         if t0.after_other_speaker:
             out.append("oth")
+            if config.break_ahead:
+                out.append("othn=" + _other_bucket(t0))
         if i >= 1:
             pause = _pause(tokens[i - 1], t0)
             if pause is not None:
@@ -239,6 +264,10 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
         ]
         if tk.after_other_speaker:
             out.append("oth+1")
+            if config.break_ahead:
+                out.append("othw=" + w0)
+                out.append("othn+1=" + _other_bucket(tk))
+                out.append("othnw=" + _other_bucket(tk) + "|" + w0)
         pause = _pause(t0, tk)
         if pause is not None:
             out.append(f"pa={_bucket(pause, _PAUSE_EDGES)}")
@@ -249,6 +278,13 @@ def feature_piece(tokens: Sequence[Token], i: int, k: int, config: FeatureConfig
     elif textk in lex:
         # A filled pause or editing term further ahead: an interruption point may lie between.
         out.append(f"lx+{k}=" + lex[textk])
+    if k >= 2 and config.break_ahead and tk.after_other_speaker and not any(
+            t.after_other_speaker for t in tokens[i + 1 : i + k]):
+        # The first break ahead, and the word the speaker stopped at: the words of an utterance
+        # broken off there may be abandoned (a restart) when the speaker then starts afresh.
+        out.append(f"oth+{k}")
+        out.append("othw=" + between[-1])
+        out.append(f"othn+{k}=" + _other_bucket(tk))
     # Exact and rough copies ending at or starting from i that reach i + k.
     if not t0.fragment and textk == text0:
         out.append(f"m0_{k}")

@@ -44,6 +44,7 @@ from tqdm import tqdm
 
 __all__ = [
     "BIAS_CANDIDATES",
+    "RESTART_BIAS_CANDIDATES",
     "BiasResult",
     "HeldOutChannel",
     "WordTrainingConfig",
@@ -77,7 +78,8 @@ class WordTrainingConfig:
     ``c1``/``c2``: L1/L2 regularisation; ``min_freq``: attributes seen fewer times are dropped;
     ``chunk_length``: longest training sequence (words); ``right``/``left``/``restart_span``:
     feature context (see :class:`~midstream.models._features.FeatureConfig`);
-    ``word_classes``: use the closed-class substitution features.
+    ``word_classes``: use the closed-class substitution features; ``break_ahead``: the
+    break-ahead features (see :class:`~midstream.models._features.FeatureConfig`).
     """
 
     c1: float = 0.1
@@ -90,6 +92,7 @@ class WordTrainingConfig:
     restart_span: int = 5
     tag_bias: tuple[tuple[str, float], ...] = ()
     word_classes: bool = True
+    break_ahead: bool = False
 
 
 def annotated_channels(conversations: Iterable[Conversation]) -> Iterator[ChannelSequence]:
@@ -133,7 +136,8 @@ def training_pairs(
     """(tags, per-word feature names) for every chunk of every annotated channel."""
     for channel in annotated_channels(conversations):
         assert channel.tags is not None
-        tokens = tokens_from_words(channel.words, channel.after_other_speaker)
+        tokens = tokens_from_words(channel.words, channel.after_other_speaker,
+                                   channel.other_words)
         xs = [features_at(tokens, i, features) for i in range(len(tokens))]
         for piece in chunk_at_ends(len(tokens), channel.ends, max_length=chunk_length):
             yield [channel.tags[i] for i in piece], [xs[i] for i in piece]
@@ -170,7 +174,8 @@ def train_word_artifact(
     features = FeatureConfig(right=config.right, left=config.left,
                              lexicon=build_lexicon(annotated),
                              restart_span=config.restart_span,
-                             word_classes=dict(CLOSED_CLASSES) if config.word_classes else {})
+                             word_classes=dict(CLOSED_CLASSES) if config.word_classes else {},
+                             break_ahead=config.break_ahead)
     started = time.monotonic()
     crf = train_crf_from(
         _pairs_factory(annotated, features, config.chunk_length),
@@ -209,6 +214,7 @@ def train_word_artifact(
             "restart_span": config.restart_span,
             "tag_bias": dict(config.tag_bias),
             "word_classes": config.word_classes,
+            "break_ahead": config.break_ahead,
         },
         metadata={"training_data": summary, **(metadata or {})},
     )
@@ -295,6 +301,14 @@ BIAS_CANDIDATES: tuple[dict[str, float], ...] = tuple(
     {"rp": rp, "rp.ip": ip}
     for rp in (-0.5, -0.4, -0.3, -0.2, -0.1, 0.0, 0.1) for ip in (0.0, 0.2, 0.4, 0.6, 0.8, 1.0)
 )
+#: Restart tag biases ``--tune-restart-bias`` compares, added to a fixed reparandum bias (grid:
+#: common practice, no source; the first, no restart bias, is the reference).
+RESTART_BIAS_CANDIDATES: tuple[dict[str, float], ...] = tuple(
+    {"rs": rs, "rs.ip": ip}
+    # A bias on every restart word adds up along a run, so its steps are small; the last
+    # word's bias decides one word and reaches further.
+    for rs in (0.0, 0.1, 0.2, 0.3) for ip in (0.0, 0.5, 1.0, 1.5, 2.0, 3.0)
+)
 
 
 def expand_tag_bias(bias: dict[str, float], tags: Sequence[str]) -> dict[str, float]:
@@ -317,13 +331,16 @@ def expand_tag_bias(bias: dict[str, float], tags: Sequence[str]) -> dict[str, fl
 class HeldOutChannel:
     """A held-out channel's unbiased state scores and the gold facts the bias sweep scores.
 
-    ``emissions``: ``(n, tags)`` state scores of the fold model; ``reparandum``: gold
-    reparandum words; ``counted``: words that count for the score (not fragments).
+    ``emissions``: ``(n, tags)`` state scores of the fold model; ``reparandum``,
+    ``restart``, ``ends``: gold reparandum words, restart words and utterance ends;
+    ``counted``: words that count for the disfluency scores (not fragments).
     """
 
     emissions: FloatArray
     reparandum: BoolArray
     counted: BoolArray
+    restart: BoolArray
+    ends: BoolArray
 
 
 def held_out_channels(conversations: Sequence[Conversation],
@@ -339,26 +356,39 @@ def held_out_channels(conversations: Sequence[Conversation],
         assert channel.tags is not None
         if not channel.words:
             continue
-        tokens = tokens_from_words(channel.words, channel.after_other_speaker)
+        tokens = tokens_from_words(channel.words, channel.after_other_speaker,
+                                   channel.other_words)
         emissions = np.stack([model.score(features_at(tokens, i, model.config))
                               for i in range(len(tokens))])
+        gold = [TAG_LABEL[t.removesuffix(END_SUFFIX)] for t in channel.tags]
         result.append(HeldOutChannel(
             emissions=emissions,
-            reparandum=np.array([TAG_LABEL[t.removesuffix(END_SUFFIX)]
-                                 == DisfluencyLabel.REPARANDUM for t in channel.tags]),
+            reparandum=np.array([g == DisfluencyLabel.REPARANDUM for g in gold]),
             counted=np.array([not w.fragment for w in channel.words]),
+            restart=np.array([g == DisfluencyLabel.RESTART for g in gold]),
+            ends=np.array(channel.ends),
         ))
     return result
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class BiasResult:
-    """Held-out reparandum scores (fragments left out, counts pooled over folds) of one bias."""
+    """Held-out scores of one bias, counts pooled over folds.
+
+    ``precision``/``recall``/``f1``: reparandum words, fragments left out; ``restart_*``:
+    restart words (both kinds), fragments left out; ``edited_f1``: reparandum and restart words
+    together, fragments left out; ``segmentation_f1``: utterance ends.
+    """
 
     bias: tuple[tuple[str, float], ...]
     precision: float
     recall: float
     f1: float
+    restart_precision: float = 0.0
+    restart_recall: float = 0.0
+    restart_f1: float = 0.0
+    edited_f1: float = 0.0
+    segmentation_f1: float = 0.0
 
 
 def sweep_tag_bias(
@@ -373,21 +403,34 @@ def sweep_tag_bias(
     results = []
     for candidate in candidates:
         counts = BinaryCounts()
+        restarts = BinaryCounts()
+        edited = BinaryCounts()
+        ends = BinaryCounts()
         for model, channels in folds:
             bias = expand_tag_bias(candidate, model.tags)
             vector = np.array([bias.get(t, 0.0) for t in model.tags])
             reparandum = np.array([lab == DisfluencyLabel.REPARANDUM for lab in model.tag_label])
+            restart = np.array([lab == DisfluencyLabel.RESTART for lab in model.tag_label])
             for channel in channels:
                 path, _ = decode_lattice(channel.emissions + vector, model.exp_transitions)
-                predicted = reparandum[path][channel.counted]
-                gold = channel.reparandum[channel.counted]
-                counts.tp += int((predicted & gold).sum())
-                counts.fp += int((predicted & ~gold).sum())
-                counts.fn += int((~predicted & gold).sum())
+                counted = channel.counted
+                _pool(counts, reparandum[path][counted], channel.reparandum[counted])
+                _pool(restarts, restart[path][counted], channel.restart[counted])
+                _pool(edited, (reparandum[path] | restart[path])[counted],
+                      (channel.reparandum | channel.restart)[counted])
+                _pool(ends, model.tag_end[path], channel.ends)
         results.append(BiasResult(bias=tuple(sorted(candidate.items())),
                                   precision=counts.precision, recall=counts.recall,
-                                  f1=counts.f1))
+                                  f1=counts.f1, restart_precision=restarts.precision,
+                                  restart_recall=restarts.recall, restart_f1=restarts.f1,
+                                  edited_f1=edited.f1, segmentation_f1=ends.f1))
     return results
+
+
+def _pool(counts: BinaryCounts, predicted: BoolArray, gold: BoolArray) -> None:
+    counts.tp += int((predicted & gold).sum())
+    counts.fp += int((predicted & ~gold).sum())
+    counts.fn += int((~predicted & gold).sum())
 
 
 def tune_tag_bias(

@@ -97,7 +97,8 @@ class ChannelSequence:
     ``indices`` are the words' indices in the conversation; ``after_other_speaker[k]`` is true
     when another speaker's word came between word ``k-1`` and word ``k`` of this channel.
     ``tags`` is ``None`` when the conversation has no disfluency annotation; ``ends`` always
-    holds the gold utterance ends.
+    holds the gold utterance ends. ``other_words[k]`` counts the other speakers' words between
+    word ``k-1`` and word ``k`` (0 for the channel's first word).
     """
 
     conversation: str
@@ -107,6 +108,7 @@ class ChannelSequence:
     after_other_speaker: tuple[bool, ...]
     ends: tuple[bool, ...]
     tags: tuple[str, ...] | None
+    other_words: tuple[int, ...] = ()
 
 
 def channel_sequences(conversation: Conversation) -> list[ChannelSequence]:
@@ -121,7 +123,8 @@ def channel_sequences(conversation: Conversation) -> list[ChannelSequence]:
     result = []
     for speaker in conversation.speakers:
         indices = [i for i, w in enumerate(conversation.words) if w.speaker == speaker]
-        after_other = [False] + [b - a > 1 for a, b in itertools.pairwise(indices)]
+        other_words = [0] + [b - a - 1 for a, b in itertools.pairwise(indices)]
+        after_other = [n > 0 for n in other_words]
         ends = [i in ends_at for i in indices]
         if indices:
             # A channel's last word ends whatever utterance it is in.
@@ -144,6 +147,7 @@ def channel_sequences(conversation: Conversation) -> list[ChannelSequence]:
                 indices=tuple(indices),
                 words=tuple(conversation.words[i] for i in indices),
                 after_other_speaker=tuple(after_other),
+                other_words=tuple(other_words),
                 ends=tuple(ends),
                 tags=tags,
             )

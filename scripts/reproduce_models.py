@@ -29,7 +29,8 @@ REPO = Path(__file__).resolve().parent.parent
 WEIGHTS = REPO / "models" / "weights"
 #: The figures the model cards state and the issue thresholds refer to.
 HEADLINES = {
-    "words": ("disfluency.reparandum_no_fragments.f1", "disfluency.filler.f1",
+    "words": ("disfluency.reparandum_no_fragments.f1", "disfluency.edited_no_fragments.f1",
+              "disfluency.restart.f1", "disfluency.filler.f1",
               "disfluency.offline.reparandum.f1", "incremental.edit_overhead",
               "segmentation.f1"),
     "utterance_functions": ("utterance_functions.gold_segmentation.coarse.accuracy",

@@ -8,8 +8,10 @@ from pathlib import Path
 
 import pytest
 from midstream.client._cli import main
+from midstream.client._cmd_train import RESTART_GUARD, choose_restart_bias
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
+from midstream.models._train_words import RESTART_BIAS_CANDIDATES, BiasResult
 from midstream.models._wordmodel import WordModel
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))
@@ -69,3 +71,56 @@ def test_evaluate_functions_only_scores_the_shipped_coarse_model(
     assert 0.0 <= figures["utterance_functions.gold_segmentation.coarse.accuracy"] <= 1.0
     assert "utterance_functions.predicted_segmentation.word_accuracy" in figures
     assert main(["evaluate", str(transcripts), "--functions-only", "--words-only"]) == 1
+
+
+def test_evaluate_as_recognised_with_word_errors(transcripts: Path, tmp_path: Path,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "words.msm"
+    assert main(["train", "words", str(transcripts), "--min-freq", "1",
+                 "--max-iterations", "30", "--out", str(out)]) == 0
+    capsys.readouterr()
+    runs = []
+    for rate in ("0", "0.2", "0.2"):
+        assert main(["evaluate", str(transcripts), "--model", str(out), "--words-only",
+                     "--as-recognised", "--word-error-rate", rate, "--json"]) == 0
+        runs.append(json.loads(capsys.readouterr().out))
+    clean, noisy, again = runs
+    assert noisy == again  # seeded: the same errors every run
+    assert noisy["disfluency.reparandum.f1"] != clean["disfluency.reparandum.f1"]
+    assert 0.0 <= noisy["disfluency.edited_no_fragments.f1"] <= 1.0
+
+
+def test_tuning_the_restart_bias_by_cross_validation(
+        transcripts: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    code = main(["train", "words", str(transcripts), "--cv-only", "--cv-folds", "3",
+                 "--cv-subset", "0", "--min-freq", "1", "--max-iterations", "30",
+                 "--tag-bias", "rp=-0.3", "--tune-restart-bias"])
+    assert code == 0
+    printed = capsys.readouterr().out
+    assert printed.count("restart precision=") == len(RESTART_BIAS_CANDIDATES)
+    assert "chosen bias rp=-0.3" in printed
+
+
+@pytest.mark.parametrize(("argv", "message"), [
+    (["--word-error-rate", "0.1"], "--word-error-rate needs --as-recognised"),
+    (["--as-recognised", "--word-error-rate", "1.5"], "--word-error-rate must be in [0, 1]"),
+])
+def test_bad_recogniser_options_are_clear_errors(transcripts: Path, argv: list[str],
+                                                 message: str,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["evaluate", str(transcripts), *argv]) == 1
+    assert message in capsys.readouterr().err
+
+
+def test_the_restart_bias_never_trades_away_the_other_figures() -> None:
+    def result(restart: float, rp: float, edited: float, seg: float) -> BiasResult:
+        return BiasResult(bias=(("rs.ip", restart),), precision=0.0, recall=0.0, f1=rp,
+                          restart_f1=restart, edited_f1=edited, segmentation_f1=seg)
+
+    reference = result(0.01, 0.75, 0.70, 0.83)
+    costly = [result(0.20, 0.75 - 2 * RESTART_GUARD, 0.70, 0.83),
+              result(0.19, 0.75, 0.70 - 2 * RESTART_GUARD, 0.83),
+              result(0.18, 0.75, 0.70, 0.83 - 2 * RESTART_GUARD)]
+    fair = result(0.05, 0.75 - RESTART_GUARD / 2, 0.70, 0.83)
+    assert choose_restart_bias([reference, *costly, fair]) is fair
+    assert choose_restart_bias([reference, *costly]) is reference

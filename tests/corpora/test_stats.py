@@ -122,3 +122,15 @@ def test_the_command_names_a_missing_corpus(tmp_path: Path,
                                             capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["corpus", "stats", str(tmp_path / "nowhere")]) == 1
     assert "nowhere" in capsys.readouterr().err
+
+
+@pytest.mark.corpus
+def test_both_kinds_of_restart_are_counted_in_swda_val(swda_dir: Path) -> None:
+    # SwDA val (corpus annotation): the "[ X + ]" brackets with an empty repair, and "-/" units
+    # followed by the same speaker's fresh start (corpora/_restarts.py). The issue that asked
+    # for them estimated "about 60" such units in val by its own count.
+    stats = corpus_stats(read_swda(swda_dir, split="val"))
+    assert stats.restarts["bracket"] == stats.repairs["deletion"]
+    assert 30 <= stats.restarts["abandoned"] <= 70
+    assert sum(stats.restart_words.values()) == stats.labels["restart"]
+    assert stats.restart_words["abandoned"] > 0

@@ -375,3 +375,48 @@ def test_class_counts_reproduce_the_manuals_table(ws97_train: list[Conversation]
     for cls, manual in MANUAL_COUNTS.items():
         if manual >= 1000 and cls not in ("%", "o"):
             assert counts[cls] == pytest.approx(manual, rel=0.03), differences[cls]
+
+
+# --- abandoned utterances: the second kind of restart ---------------------------------------
+# Shriberg (1994): a restart (fresh start) abandons what was said with no repair. "-/" ends an
+# incomplete slash unit (Meteer et al. 1995, the stylebook's section on slash units; from
+# memory); it is a restart only when the same speaker then starts afresh (corpora/_restarts.py).
+
+
+def test_an_incomplete_unit_followed_by_a_fresh_start_is_a_restart() -> None:
+    conversation = parse(
+        "%   A.1 utt1: {C and } i was going {F uh, } -/\n"
+        "b   B.2 utt1: Uh-huh. /\n"
+        "sd  A.3 utt1: we could do it. /\n"
+    )
+    (abandoned, backchannel, fresh) = conversation.utterances
+    assert (abandoned.abandoned, backchannel.abandoned, fresh.abandoned) == (True, False, False)
+    assert conversation.labels == (
+        L.RESTART, L.RESTART, L.RESTART, L.RESTART, L.FILLER,  # "and i was going uh"
+        L.FLUENT,  # uh-huh
+        L.FLUENT, L.FLUENT, L.FLUENT, L.FLUENT,
+    )
+
+
+@pytest.mark.parametrize(("body", "why"), [
+    ("sd  A.1 utt1: {C and } i was going -/\nsd  B.2 utt1: i think we should go. /\n"
+     "sd  A.3 utt1: we could do it. /\n", "the other speaker took the floor"),
+    ("sd  A.1 utt1: {C and } i was going -/\nb  B.2 utt1: Uh-huh. /\n"
+     "+  A.3 utt1: to go. /\n", "the speaker continued the unit"),
+    ("sd  A.1 utt1: {C and } i was going -- -/\nb  B.2 utt1: Uh-huh. /\n"
+     "sd  A.3 utt1: -- to go. /\n", "-- links the two lines"),
+    ("sd  A.1 utt1: {C and } i was going -/\n", "a trail-off: nothing follows"),
+])
+def test_an_incomplete_unit_without_a_fresh_start_is_no_restart(body: str, why: str) -> None:
+    conversation = parse(body)
+    assert not any(u.abandoned for u in conversation.utterances), why
+    assert conversation.labels is not None
+    assert L.RESTART not in conversation.labels, why
+
+
+def test_brackets_inside_an_abandoned_unit_keep_their_reparandum() -> None:
+    conversation = parse(
+        "%   A.1 utt1: [ i, + i ] was -/\n"
+        "sd  A.1 utt2: we could. /\n"
+    )
+    assert conversation.labels == (L.REPARANDUM, L.RESTART, L.RESTART, L.FLUENT, L.FLUENT)

@@ -10,7 +10,7 @@ import pytest
 from midstream import DisfluencyLabel
 from midstream.corpora import read_corpus
 from midstream.models._decoder import ChannelDecoder
-from midstream.models._eval_words import BinaryCounts, evaluate_words
+from midstream.models._eval_words import BinaryCounts, evaluate_words, restart_kinds
 from midstream.models._wordmodel import WordModel, default_words_model_path
 from midstream.models._wordtags import channel_sequences, decode_tag
 from sklearn.metrics import precision_recall_fscore_support
@@ -69,6 +69,45 @@ def test_streaming_scores_match_scikit_learn_on_final_labels(model: WordModel) -
     assert figures["segmentation.precision"] == pytest.approx(precision)
 
 
+def test_edited_f1_counts_reparandum_and_restart_words_together(model: WordModel) -> None:
+    # Published Switchboard figures score EDITED words: reparandum and restart words together,
+    # fragments excluded (Charniak & Johnson, NAACL 2001; Johnson & Charniak, ACL 2004; from
+    # memory). Checked against scikit-learn's binary F1 over the same words.
+    conversations = [invented_conversation(seed) for seed in (210, 211, 212)]
+    figures = evaluate_words(conversations, model)
+    edited = {DisfluencyLabel.REPARANDUM.value, DisfluencyLabel.RESTART.value}
+    gold: list[bool] = []
+    final: list[bool] = []
+    for conversation in conversations:
+        for channel in channel_sequences(conversation):
+            decoder = ChannelDecoder(model)
+            last: dict[int, str] = {}
+            for key, word in enumerate(channel.words):
+                for state in decoder.append(
+                        key, word, after_other_speaker=channel.after_other_speaker[key]):
+                    last[state.key] = state.label.value
+            for state in decoder.finish():
+                last[state.key] = state.label.value
+            assert channel.tags is not None
+            for k, (tag, word) in enumerate(zip(channel.tags, channel.words, strict=True)):
+                if not word.fragment:
+                    gold.append(decode_tag(tag)[1].value in edited)
+                    final.append(last[k] in edited)
+    assert any(gold)
+    _, _, f1, _ = precision_recall_fscore_support(gold, final, average="binary", zero_division=0)
+    assert figures["disfluency.edited_no_fragments.f1"] == pytest.approx(f1)
+
+
+def test_restart_kinds_follow_utterance_ends() -> None:
+    # A restart that runs into the end of its utterance abandons the utterance (Shriberg 1994's
+    # fresh start); one followed by more words of the utterance is the bracket kind.
+    r, f, p = DisfluencyLabel.RESTART, DisfluencyLabel.FLUENT, DisfluencyLabel.FILLER
+    labels = [r, r, f, f, r, p, f, r, r, p]
+    ends = [False, False, False, True, False, True, False, False, False, True]
+    assert restart_kinds(labels, ends) == [
+        "bracket", "bracket", "", "", "abandoned", "", "", "abandoned", "abandoned", ""]
+
+
 def test_report_has_every_documented_key(model: WordModel) -> None:
     figures = evaluate_words([invented_conversation(300)], model)
     for label in DisfluencyLabel:
@@ -76,6 +115,9 @@ def test_report_has_every_documented_key(model: WordModel) -> None:
             assert f"disfluency.{label.value}.{name}" in figures
     for key in (
         "disfluency.reparandum_no_fragments.f1",
+        "disfluency.edited_no_fragments.f1",
+        "disfluency.restart.bracket.f1",
+        "disfluency.restart.abandoned.f1",
         "disfluency.offline.reparandum.f1",
         "incremental.edit_overhead",
         "incremental.time_to_detection_words.median",

@@ -4,11 +4,13 @@ from __future__ import annotations
 
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from midstream import Conversation, Utterance, UtteranceFunction, Word
 from midstream.models._features import FeatureConfig, Token, feature_piece, features_at
 from midstream.models._wordclasses import CLOSED_CLASSES
+from midstream.models._wordtags import channel_sequences
 
 CONFIG = FeatureConfig(lexicon={"uh": "F", "um": "F", "mean": "E", "well": "D"},
-                       restart_span=5, word_classes=dict(CLOSED_CLASSES))
+                       restart_span=5, word_classes=dict(CLOSED_CLASSES), break_ahead=True)
 
 _token = st.builds(
     Token,
@@ -172,3 +174,38 @@ def test_copy_features_reach_back_as_far_as_the_restart_span() -> None:
     assert "m5_2" in feature_piece(_tokens("so a b c d x y so"), 5, 2, CONFIG)
     assert not any(f == "m6_2" for f in feature_piece(_tokens("so a b c d e x y so"), 6, 2,
                                                       CONFIG))
+
+
+def test_a_break_ahead_reaches_every_word_before_it() -> None:
+    # "i was going to / (other speaker) / we could": the words of an utterance broken off
+    # before the other speaker spoke see where it broke and the word it stopped at.
+    words = ["i", "was", "going", "to", "we", "could"]
+    tokens = [Token(text=w, after_other_speaker=(k == 4)) for k, w in enumerate(words)]
+    assert {"oth+3", "othw=to"} <= set(features_at(tokens, 1, CONFIG))
+    assert {"oth+1", "othw=to"} <= set(features_at(tokens, 3, CONFIG))
+    off = FeatureConfig(lexicon=CONFIG.lexicon)
+    assert not any(f.startswith("othw") for f in features_at(tokens, 1, off))
+
+
+def test_the_size_of_the_other_speakers_interjection_is_read() -> None:
+    # A backchannel (1-2 words) lets the speaker keep the floor; a longer turn does not.
+    words = ["i", "was", "going", "to", "we", "could"]
+    short = [Token(text=w, after_other_speaker=(k == 4), other_words=1 if k == 4 else 0)
+             for k, w in enumerate(words)]
+    long = [Token(text=w, after_other_speaker=(k == 4), other_words=12 if k == 4 else 0)
+            for k, w in enumerate(words)]
+    assert "othn+3=1" in features_at(short, 1, CONFIG)
+    assert "othn+3=6+" in features_at(long, 1, CONFIG)
+    assert "othnw=1|to" in features_at(short, 3, CONFIG)
+
+
+def test_channels_count_the_other_speakers_words_between() -> None:
+    speakers = "AABBBAB"
+    conversation = Conversation(
+        id="c", corpus="demo",
+        words=tuple(Word(text="w", speaker=s) for s in speakers),
+        utterances=(Utterance(speaker="A", words=(0, 1, 5), function=UtteranceFunction.OTHER,
+                              fine_tag="x", fine_class="x"),))
+    a, b = channel_sequences(conversation)
+    assert a.other_words == (0, 0, 3)
+    assert b.other_words == (0, 0, 0, 1)
