@@ -7,7 +7,9 @@
     midstream evaluate calls.jsonl --functions-model functions.msm
 
 Every speaker channel is streamed one word at a time through the word model's incremental
-decoder and scored on what the stream said at each moment (keys documented in
+decoder, with the word times the corpus carries (MRDA's) weighed by the boundary model
+(``--boundary-model``, default the shipped one; ``--no-boundary`` for the word model alone), and
+scored on what the stream said at each moment (keys documented in
 :mod:`midstream.models._eval_words`). The utterance-function figures (``utterance_functions.*``,
 from the shipped function model unless ``--functions-model`` names another, skipped with
 ``--words-only``) are merged into the same report, including
@@ -25,6 +27,7 @@ from pathlib import Path
 
 from midstream._errors import InputError
 from midstream.corpora import read_corpus
+from midstream.models._boundary import BoundaryModel, default_boundary_model_path
 from midstream.models._bundle import ModelBundle, default_functions_model_path
 from midstream.models._decoder import DecoderConfig
 from midstream.models._eval_engine import evaluate_engine
@@ -45,6 +48,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help="word model (.msm); default: the shipped one")
     parser.add_argument("--functions-model", type=Path, default=None,
                         help="utterance-function model (.msm); default: the shipped one")
+    parser.add_argument("--boundary-model", type=Path, default=None,
+                        help="boundary model (.msm, timing evidence for utterance ends); "
+                             "default: the shipped one")
+    parser.add_argument("--no-boundary", action="store_true",
+                        help="decide utterance ends with the word model alone")
     parser.add_argument("--words-only", action="store_true",
                         help="score the word model only (no utterance functions)")
     parser.add_argument("--lag", type=int, default=None,
@@ -63,18 +71,25 @@ def run(args: argparse.Namespace) -> int:
     if args.lag is not None and args.lag < 0:
         raise InputError(f"--lag must be >= 0, got {args.lag}")
     model = WordModel.load(args.model)
+    if args.no_boundary and args.boundary_model is not None:
+        raise InputError("--boundary-model and --no-boundary exclude each other")
+    boundary = None
+    if args.boundary_model is not None or (
+            not args.no_boundary and default_boundary_model_path().exists()):
+        boundary = BoundaryModel.load(args.boundary_model)
     conversations = list(read_corpus(args.corpus, split=args.split))
     if args.limit:
         conversations = conversations[: args.limit]
     if not conversations:
         raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
     decoder = DecoderConfig(lag=args.lag, settle=not args.no_settle)
-    figures = evaluate_words(conversations, model, config=decoder, progress=True)
+    figures = evaluate_words(conversations, model, config=decoder, progress=True,
+                             boundary=boundary)
     if not args.words_only:
         tagger = FunctionTagger.load(args.functions_model or default_functions_model_path())
         figures.update(evaluate_functions(conversations, tagger))
         bundle = ModelBundle(word_model=model, function_tagger=tagger, infos=(),
-                             decoder=decoder)
+                             decoder=decoder, boundary_model=boundary)
         figures.update(evaluate_engine(conversations, bundle))
     if args.json:
         clean = {k: (None if isinstance(v, float) and math.isnan(v) else v)

@@ -44,14 +44,21 @@ class Token:
     end: float | None = None
     confidence: float | None = None
     after_other_speaker: bool = False
+    #: The word starts before another speaker's latest word ends (read by the boundary
+    #: model only, :mod:`midstream.models._boundary`).
+    overlap: bool = False
 
 
-def tokens_from_words(words: Sequence[Word], after_other: Sequence[bool]) -> list[Token]:
-    """Tokens of one channel's words (``after_other[k]``: another speaker spoke before word k)."""
-    return [token_of(w, a) for w, a in zip(words, after_other, strict=True)]
+def tokens_from_words(words: Sequence[Word], after_other: Sequence[bool],
+                      overlap: Sequence[bool] | None = None) -> list[Token]:
+    """Tokens of one channel's words (``after_other[k]``: another speaker spoke before word k;
+    ``overlap[k]``: word k overlaps another speaker's word, all false when not given)."""
+    if overlap is None:
+        return [token_of(w, a) for w, a in zip(words, after_other, strict=True)]
+    return [token_of(w, a, o) for w, a, o in zip(words, after_other, overlap, strict=True)]
 
 
-def token_of(word: Word, after_other_speaker: bool = False) -> Token:
+def token_of(word: Word, after_other_speaker: bool = False, overlap: bool = False) -> Token:
     return Token(
         text=word.text,
         fragment=word.fragment,
@@ -59,6 +66,7 @@ def token_of(word: Word, after_other_speaker: bool = False) -> Token:
         end=word.end,
         confidence=word.confidence,
         after_other_speaker=after_other_speaker,
+        overlap=overlap,
     )
 
 
