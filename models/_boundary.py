@@ -12,13 +12,18 @@ whether an utterance ends after it, from
   silent after;
 - whether another speaker spoke in that silence (a speaker change);
 - the silence before the word (bucketed) and whether the word overlaps another speaker's word;
-- the word itself and the word before it (lexical cues such as "okay", "right", "yeah").
+- the word itself, the word before it and the next word of the channel when there is one
+  (lexical cues such as "okay", "right", "yeah", or a next word that starts afresh).
 
-None of these reads a word after the one decided, so the evidence is complete as soon as the
-silence after the word is known. The decoder adds ``weight * log_odds + offset`` to the state
-score of every utterance-end tag of the word CRF (a product of the two models; ``weight`` and
-``offset`` are chosen by cross-validation), and only for words whose times are known: on an
-untimed conversation the word CRF decides alone, exactly as before.
+The evidence for a word is complete once the channel's next word arrives (the silence and the
+speaker change are then known). While the stream is silent after a word, a time tick weighs the
+silence so far with the features that need no next word (the silence indicators fire one by
+one as it grows). The decoder adds ``weight * log_odds + offset`` to the state score of every
+utterance-end tag of the word CRF (a product of the two models; ``weight`` and ``offset`` are
+chosen by cross-validation with the word model), and only for words whose times are known: on
+an untimed conversation the word CRF decides alone, exactly as before. The word model is used
+only through its end tags, so a retrained word model with the same tag set keeps working (its
+``weight`` and ``offset`` are then worth choosing again).
 
 A :class:`BoundaryModel` is immutable after loading and safe to share between threads.
 """

@@ -58,7 +58,7 @@ async def test_transcript_matches_the_stream_word_for_word(running: Running) -> 
 async def test_describe_and_failed_reload_keep_the_models(running: Running,
                                                           tmp_path: Path) -> None:
     before = await running.stub.DescribeModels(pb.DescribeModelsRequest())
-    assert [m.kind for m in before.models] == ["words", "utterance_functions"]
+    assert [m.kind for m in before.models] == ["words", "utterance_functions", "boundaries"]
     assert all(json.loads(m.training_summary_json) for m in before.models)
     assert all(len(m.sha256) == 64 and m.labels for m in before.models)
     (tmp_path / "words.msm").write_bytes(b"not a model at all")
