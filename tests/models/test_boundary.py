@@ -116,8 +116,8 @@ def _states(decoder: ChannelDecoder, words: list[Word]) -> list[TokenState]:
 def test_untimed_words_decode_exactly_as_without_a_boundary_model(
         model: WordModel, boundary: BoundaryModel) -> None:
     # A conversation without times must work no worse than before: it is not touched at all.
-    words = [Word(text=t, speaker="A") for t in
-             "we went to the store last week uh i think that is a good idea".split()]
+    said = "we went to the store last week uh i think that is a good idea"
+    words = [Word(text=t, speaker="A") for t in said.split()]
     assert _states(ChannelDecoder(model, boundary=boundary), words) == _states(
         ChannelDecoder(model), words)
 
@@ -133,8 +133,9 @@ def test_timed_silences_end_utterances_the_word_model_alone_runs_on(
 def test_a_tick_closes_the_open_utterance_once_the_silence_is_long_enough(
         model: WordModel, boundary: BoundaryModel) -> None:
     decoder = ChannelDecoder(model, boundary=boundary)
+    said = "they bought a new car"
     words = [Word(text=t, speaker="A", start=0.35 * k, end=0.35 * k + 0.3)
-             for k, t in enumerate("they bought a new car".split())]
+             for k, t in enumerate(said.split())]
     for key, word in enumerate(words):
         decoder.append(key, word)
     end = 0.35 * 4 + 0.3

@@ -102,7 +102,8 @@ async def test_a_ctm_call_is_split_at_its_silences_and_speaker_changes(
 async def test_a_tick_closes_an_utterance_during_the_silence_after_it(running: Running) -> None:
     caller = Caller(running.stub)
     await caller.open()
-    text = "the boiler in the basement is making a loud noise".split()
+    said = "the boiler in the basement is making a loud noise"
+    text = said.split()
     for k, token in enumerate(text):
         await caller.send(words_event(spoken(f"w{k}", token, "tenant", start=0.3 * k)))
     last_end = 0.3 * (len(text) - 1) + 0.2
