@@ -7,7 +7,6 @@ utterances end.
 
 from __future__ import annotations
 
-import functools
 from dataclasses import replace
 
 import pytest
@@ -15,7 +14,6 @@ from midstream import Conversation, Utterance, UtteranceFunction, Word
 from midstream._errors import ModelError
 from midstream.models._artifact import ModelArtifact
 from midstream.models._boundary import (
-    BoundaryConfig,
     BoundaryModel,
     boundary_features,
     overlap_flags,
@@ -23,39 +21,13 @@ from midstream.models._boundary import (
 from midstream.models._decoder import ChannelDecoder, TokenState
 from midstream.models._eval_words import evaluate_words
 from midstream.models._features import Token
-from midstream.models._train_boundaries import BoundaryTrainingConfig, train_boundary_artifact
 from midstream.models._wordmodel import WordModel
-from word_kit import invented_conversation, tiny_model
-
-
-def _one_speaker(conversation: Conversation) -> Conversation:
-    """The conversation said by one speaker, 2 s of silence before every utterance: only the
-    silences tell where its utterances end."""
-    clock, words = 0.0, []
-    for utterance in conversation.utterances:
-        clock += 2.0
-        for index in utterance.words:
-            word = conversation.words[index]
-            words.append(replace(word, speaker="A", start=clock, end=clock + 0.3))
-            clock += 0.35
-    return replace(conversation, words=tuple(words), utterances=tuple(
-        replace(u, speaker="A") for u in conversation.utterances))
-
-
-@functools.cache
-def _boundary_bytes() -> bytes:
-    conversations = [invented_conversation(seed, times=True) for seed in range(4)]
-    conversations += [_one_speaker(invented_conversation(seed, times=True))
-                      for seed in range(4, 8)]
-    artifact = train_boundary_artifact(
-        conversations, BoundaryTrainingConfig(min_freq=1, max_iterations=50),
-        join=BoundaryConfig(weight=1.0, offset=0.0), metadata={})
-    return artifact.to_bytes()
+from word_kit import invented_conversation, one_speaker, tiny_boundary_bytes, tiny_model
 
 
 @pytest.fixture(scope="module")
 def boundary() -> BoundaryModel:
-    return BoundaryModel.from_artifact(ModelArtifact.from_bytes(_boundary_bytes()))
+    return BoundaryModel.from_artifact(ModelArtifact.from_bytes(tiny_boundary_bytes()))
 
 
 @pytest.fixture(scope="module")
@@ -124,7 +96,7 @@ def test_untimed_words_decode_exactly_as_without_a_boundary_model(
 
 def test_timed_silences_end_utterances_the_word_model_alone_runs_on(
         model: WordModel, boundary: BoundaryModel) -> None:
-    merged = [_one_speaker(invented_conversation(seed, times=True)) for seed in (20, 21, 22)]
+    merged = [one_speaker(invented_conversation(seed, times=True)) for seed in (20, 21, 22)]
     alone = evaluate_words(merged, model)["segmentation.f1"]
     joined = evaluate_words(merged, model, boundary=boundary)["segmentation.f1"]
     assert joined > alone and joined > 0.9
@@ -158,7 +130,7 @@ def test_ticks_never_close_untimed_words_or_a_decoder_without_a_boundary_model(
 
 
 def test_a_model_of_another_kind_is_refused(boundary: BoundaryModel) -> None:
-    artifact = ModelArtifact.from_bytes(_boundary_bytes())
+    artifact = ModelArtifact.from_bytes(tiny_boundary_bytes())
     with pytest.raises(ModelError, match="expected 'boundaries'"):
         BoundaryModel.from_artifact(replace(artifact, kind="words"))
     with pytest.raises(ModelError, match="configuration is malformed"):
