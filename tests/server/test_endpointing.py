@@ -2,8 +2,10 @@
 
 The call is invented for this test (a tenant reports a leaking tap to a building's caretaker):
 two CTM channels, at least 1.2 s of silence before every utterance, the other speaker's whole
-turn between a speaker's turns, and two utterances of one speaker separated by silence alone.
-No caller hint is sent: the server must find the ends from the times.
+turn between a speaker's turns, and two utterances of one speaker separated by 3 s of silence
+alone (a shorter pause inside one speaker's turn is weighed with the words around it, see
+``models/weights/boundaries.md``). No caller hint is sent: the server must find the ends from
+the times.
 """
 
 from __future__ import annotations
@@ -35,7 +37,7 @@ _CALL = (
     ("tenant", 0.4, "hello is that the caretaker"),
     ("caretaker", 1.3, "yes speaking"),
     ("tenant", 1.4, "the tap in my kitchen has been dripping all night"),
-    ("tenant", 1.6, "could someone come and look at it today"),
+    ("tenant", 3.0, "could someone come and look at it today"),
     ("caretaker", 1.2, "which flat are you in"),
     ("tenant", 1.5, "flat twelve on the second floor"),
     ("caretaker", 1.3, "okay i can come round at four"),
