@@ -23,6 +23,7 @@ from midstream.client._results import (
     Snapshot,
     SpeakerHint,
     TaggedTranscript,
+    TimeTick,
     Welcome,
     WithdrawWord,
 )
@@ -50,6 +51,7 @@ __all__ = [
     "SyncConversation",
     "SyncMultiplexedStream",
     "TaggedTranscript",
+    "TimeTick",
     "TimedEvent",
     "Welcome",
     "WithdrawWord",

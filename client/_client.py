@@ -60,6 +60,7 @@ from midstream.client._results import (
     Snapshot,
     SpeakerHint,
     TaggedTranscript,
+    TimeTick,
     Welcome,
     WithdrawWord,
 )
@@ -169,6 +170,8 @@ def _client_event(event: InputEvent) -> pb.ClientEvent:
         return pb.ClientEvent(replace=pb.ReplaceWord(word=spoken))
     if isinstance(event, WithdrawWord):
         return pb.ClientEvent(withdraw=pb.WithdrawWord(word_id=event.word_id))
+    if isinstance(event, TimeTick):
+        return pb.ClientEvent(tick=_convert.tick_to_wire(event.time))
     return pb.ClientEvent(hint=_convert.hint_to_wire(event.speaker, turn_end=event.turn_end))
 
 
@@ -453,7 +456,7 @@ class ConversationStream:
             self._call.cancel()
 
     async def send(self, event: InputEvent) -> None:
-        """Send one input event (a word, a replacement, a withdrawal or a hint)."""
+        """Send one input event (a word, a replacement, a withdrawal, a hint or a tick)."""
         await self._write(_client_event(event))
 
     async def send_words(self, words: Sequence[AddWord]) -> None:
@@ -474,6 +477,10 @@ class ConversationStream:
     async def hint(self, speaker: str, *, turn_end: bool = False) -> None:
         """The speaker's utterance (``turn_end``: turn) ended after their last word."""
         await self.send(SpeakerHint(speaker=speaker, turn_end=turn_end))
+
+    async def tick(self, time: float) -> None:
+        """The stream's time moved on to ``time`` (seconds, the words' clock) with no word."""
+        await self.send(TimeTick(time=time))
 
     async def close(self) -> None:
         """No more words: ask the server to finalise everything. Idempotent.
@@ -600,7 +607,7 @@ class MultiplexedStream:
         return channel
 
     def send(self, channel: int, event: InputEvent) -> None:
-        """Queue one input event (a word, a replacement, a withdrawal or a hint)."""
+        """Queue one input event (a word, a replacement, a withdrawal, a hint or a tick)."""
         self._queue(channel, _client_event(event))
 
     def send_words(self, channel: int, words: Sequence[AddWord]) -> None:

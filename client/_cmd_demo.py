@@ -2,7 +2,11 @@
 
 Starts a server on a free loopback port with the default (shipped) models, or ``--models DIR``,
 streams the call in :mod:`midstream.client._demo_script` at about real time, and shows the
-labels as they are revised. ``--no-pause`` sends everything at once (for tests and scripts).
+labels as they are revised. The call goes in as a recogniser gives it: timed words of a
+two-channel NIST CTM file with the recogniser's clock ticking through the silences, no caller
+hints, so utterances end where the speakers stop. ``--no-pause`` sends everything at once (for
+tests and scripts); ``--write-ctm FILE`` writes the call's CTM file and stops (the README's first
+session pipes it into ``midstream tag``).
 """
 
 from __future__ import annotations
@@ -14,7 +18,7 @@ from pathlib import Path
 
 from midstream._types import HypothesisUpdate
 from midstream.client._client import Client
-from midstream.client._demo_script import demo_events
+from midstream.client._demo_script import demo_ctm, demo_events
 from midstream.client._output import Printer
 from midstream.client._records import SentWord
 from midstream.client._results import ServerEvent
@@ -33,6 +37,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("--speed", type=float, default=1.0,
                         help="real-time factor when pausing (default 1)")
     parser.add_argument("--clean", action="store_true", help="show clean text")
+    parser.add_argument("--write-ctm", type=Path, default=None, metavar="FILE",
+                        help="write the invented call as a NIST CTM file and stop")
     parser.add_argument("--rates", action="store_true",
                         help="finish with per-speaker disfluency rates per 100 words "
                              "(automatic estimates for research, not a diagnosis)")
@@ -40,6 +46,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 
 def run(args: argparse.Namespace) -> int:
+    if args.write_ctm is not None:
+        args.write_ctm.write_text(demo_ctm(), encoding="utf-8")
+        print(f"wrote {args.write_ctm}: an invented call to a bicycle shop, channels shop and "
+              "caller")
+        return 0
     return asyncio.run(_run(args))
 
 

@@ -7,7 +7,9 @@
     midstream evaluate calls.jsonl --functions-model functions.msm
 
 Every speaker channel is streamed one word at a time through the word model's incremental
-decoder and scored on what the stream said at each moment (keys documented in
+decoder, with the word times the corpus carries (MRDA's) weighed by the boundary model
+(``--boundary-model``, default the shipped one; ``--no-boundary`` for the word model alone), and
+scored on what the stream said at each moment (keys documented in
 :mod:`midstream.models._eval_words`). The utterance-function figures (``utterance_functions.*``,
 from the shipped function model unless ``--functions-model`` names another, skipped with
 ``--words-only``) are merged into the same report, including
@@ -35,6 +37,7 @@ from pathlib import Path
 from midstream._errors import InputError, NotFoundError
 from midstream.client._figures import format_figures
 from midstream.corpora import read_corpus
+from midstream.models._boundary import BoundaryModel, default_boundary_model_path
 from midstream.models._bundle import ModelBundle, default_functions_model_path
 from midstream.models._decoder import DecoderConfig
 from midstream.models._eval_engine import evaluate_engine
@@ -56,6 +59,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help="word model (.msm); default: the shipped one")
     parser.add_argument("--functions-model", type=Path, default=None,
                         help="utterance-function model (.msm); default: the shipped one")
+    parser.add_argument("--boundary-model", type=Path, default=None,
+                        help="boundary model (.msm, timing evidence for utterance ends); "
+                             "default: the shipped one")
+    parser.add_argument("--no-boundary", action="store_true",
+                        help="decide utterance ends with the word model alone")
     parser.add_argument("--words-only", action="store_true",
                         help="score the word model only (no utterance functions)")
     parser.add_argument("--functions-only", action="store_true",
@@ -87,6 +95,12 @@ def run(args: argparse.Namespace) -> int:
     if args.word_error_rate and not args.as_recognised:
         raise InputError("--word-error-rate needs --as-recognised")
     model = WordModel.load(args.model)
+    if args.no_boundary and args.boundary_model is not None:
+        raise InputError("--boundary-model and --no-boundary exclude each other")
+    boundary = None
+    if args.boundary_model is not None or (
+            not args.no_boundary and default_boundary_model_path().exists()):
+        boundary = BoundaryModel.load(args.boundary_model)
     conversations = list(read_corpus(args.corpus, split=args.split))
     if args.limit:
         conversations = conversations[: args.limit]
@@ -101,7 +115,8 @@ def run(args: argparse.Namespace) -> int:
     decoder = DecoderConfig(lag=args.lag, settle=not args.no_settle)
     figures: dict[str, float] = {}
     if not args.functions_only:
-        figures.update(evaluate_words(conversations, model, config=decoder, progress=True))
+        figures.update(evaluate_words(conversations, model, config=decoder, progress=True,
+                                      boundary=boundary))
     if not args.words_only:
         fine, coarse = _function_taggers(args.functions_model)
         figures.update(evaluate_functions(conversations, coarse))
@@ -109,7 +124,8 @@ def run(args: argparse.Namespace) -> int:
             fine_figures = evaluate_functions(conversations, fine, replay=False)
             figures.update({k: v for k, v in fine_figures.items() if ".swbd42." in k})
         bundle = ModelBundle(word_model=model, function_tagger=fine, infos=(),
-                             decoder=decoder, coarse_tagger=None if fine is coarse else coarse)
+                             decoder=decoder, coarse_tagger=None if fine is coarse else coarse,
+                             boundary_model=boundary)
         figures.update(evaluate_engine(conversations, bundle))
     if args.json:
         clean = {k: (None if isinstance(v, float) and math.isnan(v) else v)

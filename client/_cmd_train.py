@@ -7,12 +7,14 @@
         --c1 0.05 0.2 --c2 0.01 0.1 --cv-folds 3 --cv-subset 120
     midstream train functions ../shared/corpora/swda --split train --out functions.msm
 
-One sub-command per model: ``words`` (disfluency roles and utterance ends, this module) and
+One sub-command per model: ``words`` (disfluency roles and utterance ends, this module),
 ``functions`` (utterance functions, options from
-:mod:`midstream.client._cmd_train_functions`). Given several ``--c1``/``--c2``/``--min-freq``
-values, ``words`` compares every combination by cross-validation grouped by conversation on a
-seeded random subset (``--cv-subset``) of the corpus given, which must be the training split;
-the best is then trained on all of it. Progress goes to stderr.
+:mod:`midstream.client._cmd_train_functions`) and ``boundaries`` (timing evidence for
+utterance ends, :mod:`midstream.client._cmd_train_boundaries`). Given several
+``--c1``/``--c2``/``--min-freq`` values, ``words`` compares every combination by
+cross-validation grouped by conversation on a seeded random subset (``--cv-subset``) of the
+corpus given, which must be the training split; the best is then trained on all of it. Progress
+goes to stderr.
 """
 
 from __future__ import annotations
@@ -28,6 +30,7 @@ from pathlib import Path
 
 from midstream._errors import InputError
 from midstream._types import Conversation
+from midstream.client import _cmd_train_boundaries as boundaries
 from midstream.client import _cmd_train_functions as functions
 from midstream.corpora import read_corpus
 from midstream.models._artifact import save_artifact
@@ -49,7 +52,7 @@ RESTART_GUARD = 0.002
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = subparsers.add_parser(
-        "train", help="train a model (words or functions) on annotated conversations",
+        "train", help="train a model (words, functions or boundaries) on annotated conversations",
         description="Train a model on annotated conversations and write a .msm model file.")
     tasks = parser.add_subparsers(dest="train_task", required=True, metavar="MODEL")
     words = tasks.add_parser(
@@ -101,6 +104,12 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     words.add_argument("--seed", type=int, default=0, help="seed of the cross-validation draw")
     words.set_defaults(handler=run_words)
     _register_functions(tasks)
+    timing = tasks.add_parser(
+        "boundaries", help="timing evidence for utterance ends (silences, speaker changes)",
+        description="Train the boundary classifier on conversations with word times and choose "
+                    "how its evidence joins the word model, by grouped cross-validation.")
+    boundaries.add_training_arguments(timing)
+    timing.set_defaults(handler=boundaries.run)
 
 
 def _register_functions(tasks: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:

@@ -49,8 +49,16 @@ class SpeakerHint:
     turn_end: bool = False
 
 
+@dataclass(frozen=True, slots=True, kw_only=True)
+class TimeTick:
+    """The stream's time moved on to ``time`` (seconds, the clock of the words' times) with no
+    word: a silence the server weighs to close an utterance without waiting for the next word."""
+
+    time: float
+
+
 #: One event of a word stream, in the order a recogniser would produce it.
-InputEvent = AddWord | ReplaceWord | WithdrawWord | SpeakerHint
+InputEvent = AddWord | ReplaceWord | WithdrawWord | SpeakerHint | TimeTick
 
 
 # --- what the server says on a stream -----------------------------------------------------------

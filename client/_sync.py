@@ -298,6 +298,10 @@ class SyncConversation(_ReadAhead[ServerEvent]):
         """See :meth:`ConversationStream.hint`."""
         self._owner._run(self._conversation.hint(speaker, turn_end=turn_end))
 
+    def tick(self, time: float) -> None:
+        """See :meth:`ConversationStream.tick`."""
+        self._owner._run(self._conversation.tick(time))
+
     def close(self) -> None:
         """See :meth:`ConversationStream.close`."""
         self._owner._run(self._conversation.close())

@@ -12,7 +12,8 @@ Layout (all integers little-endian)::
     56+M    P     payload: the crfsuite model bytes, zlib-compressed from version 2 on
                   (version 1 stored them raw; both are read)
 
-The metadata names the model's ``kind`` (``"words"`` or ``"utterance_functions"``), its label
+The metadata names the model's ``kind`` (``"words"``, ``"utterance_functions"`` or
+``"boundaries"``), its label
 set, feature configuration, a training-data summary, hyper-parameters and the command that
 made it. Readers check magic, version, lengths and checksum before anything reaches C code.
 """
@@ -39,8 +40,8 @@ __all__ = [
     "save_artifact",
 ]
 
-ModelKind = Literal["words", "utterance_functions"]
-MODEL_KINDS: Final[frozenset[str]] = frozenset({"words", "utterance_functions"})
+ModelKind = Literal["words", "utterance_functions", "boundaries"]
+MODEL_KINDS: Final[frozenset[str]] = frozenset({"words", "utterance_functions", "boundaries"})
 
 MAGIC: Final = b"\x89MSM\r\n\x1a\n"
 FORMAT_VERSION: Final = 2

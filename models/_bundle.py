@@ -17,6 +17,7 @@ from typing import Any
 
 from midstream._errors import ModelError, NotFoundError
 from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
+from midstream.models._boundary import BoundaryModel
 from midstream.models._decoder import ChannelDecoder, DecoderConfig
 from midstream.models._engine import ConversationEngine, EngineConfig
 from midstream.models._functions import FunctionTagger
@@ -58,10 +59,12 @@ class ModelBundle:
     def __init__(self, *, word_model: WordModel, function_tagger: FunctionTagger,
                  infos: tuple[ModelInfo, ...], decoder: DecoderConfig | None = None,
                  engine: EngineConfig | None = None,
-                 coarse_tagger: FunctionTagger | None = None) -> None:
+                 coarse_tagger: FunctionTagger | None = None,
+                 boundary_model: BoundaryModel | None = None) -> None:
         self._word_model = word_model
         self._function_tagger = function_tagger
         self._coarse_tagger = coarse_tagger
+        self._boundary_model = boundary_model
         self._infos = infos
         self._decoder = decoder or DecoderConfig()
         self._engine = engine or EngineConfig()
@@ -73,7 +76,8 @@ class ModelBundle:
 
     @classmethod
     def load_directory(cls, path: Path) -> ModelBundle:
-        """Load every ``.msm`` model in a folder: one word model and a function model.
+        """Load every ``.msm`` model in a folder: one word model and a function model, and the
+        boundary model (timing evidence for utterance ends) when the folder has one.
 
         Raises
         ------
@@ -81,7 +85,7 @@ class ModelBundle:
             The folder does not exist.
         ModelError
             A file is corrupt, truncated, of a newer format or of an unexpected kind, or the
-            folder lacks a word model or a function model.
+            folder lacks a word model or a function model, or holds two boundary models.
         """
         if not path.is_dir():
             raise NotFoundError(f"model folder {path} does not exist")
@@ -94,27 +98,37 @@ class ModelBundle:
         if not functions:
             raise ModelError(f"{path}: no utterance-function model (.msm of kind "
                              "'utterance_functions') found")
+        boundaries = [m for m in loaded if m.artifact.kind == "boundaries"]
+        if len(boundaries) > 1:
+            raise ModelError(f"{path}: expected at most one boundary model (.msm of kind "
+                             f"'boundaries'), found {len(boundaries)}")
         by_scheme = {m.artifact.features.get("scheme"): m for m in functions}
         chosen = next((by_scheme[s] for s in _SCHEME_PREFERENCE if s in by_scheme), functions[0])
         word_model = WordModel.from_artifact(words[0].artifact)
         function_tagger = FunctionTagger.from_artifact(chosen.artifact)
+        boundary_model = (BoundaryModel.from_artifact(boundaries[0].artifact) if boundaries
+                          else None)
         coarse = by_scheme.get("coarse")
         if coarse is None or coarse is chosen:
             return cls(word_model=word_model, function_tagger=function_tagger,
-                       infos=(words[0].info, chosen.info))
+                       infos=(words[0].info, chosen.info, *(m.info for m in boundaries)),
+                       boundary_model=boundary_model)
         return cls(word_model=word_model, function_tagger=function_tagger,
-                   infos=(words[0].info, chosen.info, coarse.info),
-                   coarse_tagger=FunctionTagger.from_artifact(coarse.artifact))
+                   infos=(words[0].info, chosen.info, coarse.info,
+                          *(m.info for m in boundaries)),
+                   coarse_tagger=FunctionTagger.from_artifact(coarse.artifact),
+                   boundary_model=boundary_model)
 
     def describe(self) -> tuple[ModelInfo, ...]:
-        """The models in this bundle, word model first."""
+        """The models in this bundle: word model, function model, then any boundary model."""
         return self._infos
 
     def with_decoder(self, decoder: DecoderConfig) -> ModelBundle:
         """The same loaded models, making engines whose decoders use ``decoder`` (cheap)."""
         return ModelBundle(word_model=self._word_model, function_tagger=self._function_tagger,
                            infos=self._infos, decoder=decoder, engine=self._engine,
-                           coarse_tagger=self._coarse_tagger)
+                           coarse_tagger=self._coarse_tagger,
+                           boundary_model=self._boundary_model)
 
     @staticmethod
     def warm_up() -> None:
@@ -127,9 +141,9 @@ class ModelBundle:
 
     def new_engine(self) -> ConversationEngine:
         """A fresh engine for one conversation (cheap: models are shared)."""
-        word_model, decoder = self._word_model, self._decoder
+        word_model, decoder, boundary = self._word_model, self._decoder, self._boundary_model
         return ConversationEngine(
-            new_decoder=lambda: ChannelDecoder(word_model, decoder),
+            new_decoder=lambda: ChannelDecoder(word_model, decoder, boundary),
             function_tagger=self._function_tagger, coarse_tagger=self._coarse_tagger,
             config=self._engine)
 
@@ -146,6 +160,11 @@ class ModelBundle:
     @property
     def word_model(self) -> WordModel:
         return self._word_model
+
+    @property
+    def boundary_model(self) -> BoundaryModel | None:
+        """Timing evidence for utterance ends, or ``None`` (the word model decides alone)."""
+        return self._boundary_model
 
 
 def default_functions_model_path(scheme: str | None = None) -> Path:

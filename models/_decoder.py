@@ -32,6 +32,7 @@ import numpy as np
 import numpy.typing as npt
 from midstream._errors import EventError
 from midstream._types import DisfluencyLabel, Word
+from midstream.models._boundary import BoundaryModel
 from midstream.models._features import Token, feature_piece, features_at, token_of
 from midstream.models._lattice import accumulate_rows, decode_window
 from midstream.models._wordmodel import WordModel
@@ -126,9 +127,12 @@ class ChannelDecoder:
     [TokenState(key=0, label=<DisfluencyLabel.FLUENT: 'fluent'>, ...)]
     """
 
-    def __init__(self, model: WordModel, config: DecoderConfig = DecoderConfig()) -> None:
+    def __init__(self, model: WordModel, config: DecoderConfig = DecoderConfig(),
+                 boundary: BoundaryModel | None = None) -> None:
         self._model = model
         self._config = config
+        self._boundary = boundary
+        self._end_columns = np.flatnonzero(model.end_mask)
         self._right = model.config.right
         self._settle = config.settle
         self._lag = config.lag if config.lag is not None else (
@@ -165,13 +169,17 @@ class ChannelDecoder:
     # -- events --------------------------------------------------------------------------
 
     def append(
-        self, key: int, word: Word, *, after_other_speaker: bool = False, other_words: int = 0
+        self, key: int, word: Word, *, after_other_speaker: bool = False, other_words: int = 0,
+        overlap: bool = False
     ) -> list[TokenState]:
         """Add the next word of this channel; return the states that changed.
 
         ``after_other_speaker``: another speaker's word came between the previous word of this
         channel and this one (the engine knows; it is a strong utterance-end cue);
         ``other_words``: how many words the other speakers said there (a backchannel or a turn).
+        ``overlap``: the word starts before another speaker's latest word ends. With a boundary
+        model, the silence between the previous word and this one (when both have times) joins
+        the previous word's utterance-end decision.
 
         Raises
         ------
@@ -184,10 +192,13 @@ class ChannelDecoder:
             raise EventError(f"word {key}: key already used in this channel")
         self._top_key = max(self._top_key, key)
         self._entries.append(_Entry(key))
-        self._tokens.append(token_of(word, after_other_speaker, other_words))
+        self._tokens.append(token_of(word, after_other_speaker=after_other_speaker,
+                                     other_words=other_words, overlap=overlap))
         last = len(self._entries) - 1
         self._reserve(last + 1)
         self._scores[last] = 0.0
+        if self._boundary is not None and last >= 1 and not self._entries[last - 1].final:
+            self._join_evidence(last - 1)
         names: list[str] = []
         targets: list[int] = []
         model = self._model
@@ -216,7 +227,8 @@ class ChannelDecoder:
         """
         position = self._open_position(key)
         held = self._tokens[position]
-        self._tokens[position] = token_of(word, held.after_other_speaker, held.other_words)
+        self._tokens[position] = token_of(word, after_other_speaker=held.after_other_speaker,
+                                          other_words=held.other_words, overlap=held.overlap)
         self._rescore_open()
         return self._update(close=False)
 
@@ -237,6 +249,40 @@ class ChannelDecoder:
         if self._first_open >= len(self._entries):
             return []
         return self._update(close=False)
+
+    def tick(self, now: float, *, other_spoke: bool) -> list[TokenState]:
+        """The stream's time moved on to ``now`` (seconds, the word times' clock) with no word.
+
+        With a boundary model and a timed last word, the silence since that word is weighed
+        as if the next word came now (``other_spoke``: another speaker spoke since it): when
+        the joined evidence makes an utterance end after it more likely than not, the open
+        utterance is closed as by :meth:`close_utterance`. Otherwise nothing changes (the
+        evidence is not kept: the next word or tick weighs the silence again). A time at or
+        before the last word's end changes nothing.
+        """
+        boundary = self._boundary
+        held = len(self._entries)
+        if boundary is None or self._first_open >= held:
+            return []
+        last = held - 1
+        end = self._tokens[last].end
+        if end is None or not now > end:
+            return []
+        evidence = boundary.evidence(self._tokens, last, silence=now - end,
+                                     other_spoke=other_spoke)
+        saved = self._scores[last].copy()
+        self._scores[last, self._end_columns] += evidence
+        start = self._first_open
+        lo = start - 1 if start > 0 else start
+        model = self._model
+        result = decode_window(
+            self._scores, lo, held, model.exp_transitions,
+            first=self._entries[lo].tag if start > 0 else -1, last_mask=None,
+            tag_group=model.tag_group, tag_end=model.tag_end, settle_from=-1)
+        self._scores[last] = saved
+        if result.end_probability[-1] < 0.5:
+            return []
+        return self._update(close=True)
 
     def close_utterance(self) -> list[TokenState]:
         """The caller knows an utterance ends after the last word: finalise all open words."""
@@ -272,6 +318,19 @@ class ChannelDecoder:
         model = self._model
         for i in range(self._first_open, last + 1):
             self._scores[i] = model.score(features_at(self._tokens[: last + 1], i, model.config))
+            if self._boundary is not None and i < last:
+                self._join_evidence(i)
+
+    def _join_evidence(self, i: int) -> None:
+        """Add the boundary model's evidence to word ``i``'s end tags (its successor is held)."""
+        assert self._boundary is not None
+        tokens = self._tokens
+        end, start = tokens[i].end, tokens[i + 1].start
+        if end is None or start is None:
+            return  # untimed: the word model decides alone
+        evidence = self._boundary.evidence(tokens, i, silence=max(start - end, 0.0),
+                                           other_spoke=tokens[i + 1].after_other_speaker)
+        self._scores[i, self._end_columns] += evidence
 
     def _update(self, *, close: bool) -> list[TokenState]:
         model = self._model

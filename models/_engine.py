@@ -149,6 +149,9 @@ class ConversationEngine:
         self._coarse_memo = WordsMemo()
         self._last_speaker: str | None = None
         self._words_added = 0
+        #: End time of each speaker's latest timed word: a new word that starts before another
+        #: speaker's latest end overlaps it (one entry per speaker, bounded by the speakers).
+        self._last_end: dict[str, float] = {}
         self._finished = False
         # An utterance of nothing but disfluent words ("uh") has no words to label: it is
         # published as the scheme's abandoned/uninterpretable class, coarse "other".
@@ -201,6 +204,15 @@ class ConversationEngine:
         self._remember(word_id)
         after_other = self._last_speaker is not None and self._last_speaker != word.speaker
         self._last_speaker = word.speaker
+        overlap = False
+        start = word.start
+        if start is not None:
+            for speaker, end in self._last_end.items():
+                if end > start and speaker != word.speaker:
+                    overlap = True
+                    break
+        if word.end is not None:
+            self._last_end[word.speaker] = word.end
         # The other speakers' words since this speaker's previous word, as training counts them
         # (0 before a channel's first word).
         self._words_added += 1
@@ -208,7 +220,7 @@ class ConversationEngine:
         channel.last_added = self._words_added
         clean = _clean_word(word, token.text, fragment)
         states = channel.decoder.append(key, clean, after_other_speaker=after_other,
-                                        other_words=other_words)
+                                        other_words=other_words, overlap=overlap)
         return self._apply(channel, states)
 
     def replace_word(self, word_id: str, word: Word) -> HypothesisDiff:
@@ -270,6 +282,27 @@ class ConversationEngine:
         if turn_end and self._last_speaker == speaker:
             self._last_speaker = None
         return self._apply(channel, states, close_all=True)
+
+    def tick(self, now: float) -> HypothesisDiff:
+        """The stream's time moved on to ``now`` with no word (seconds, the word times' clock).
+
+        Each speaker whose last word has an end time before ``now`` has been silent since; an
+        open utterance closes (its words become final) once the silence, with whether another
+        speaker spoke since, makes its end more likely than not under the boundary model
+        joined with the word model. Without a boundary model, or for untimed words, nothing
+        changes. Caller hints still close utterances at once.
+        """
+        self._check_open()
+        diffs = []
+        for channel in self._channels.values():
+            if not channel.open_keys:
+                continue
+            states = channel.decoder.tick(
+                now, other_spoke=self._last_speaker is not None
+                and self._last_speaker != channel.speaker)
+            if states:
+                diffs.append(self._apply(channel, states, close_all=True))
+        return _merge(diffs)
 
     def finish(self) -> HypothesisDiff:
         """End of conversation: every word and utterance becomes final."""

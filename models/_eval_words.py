@@ -38,6 +38,8 @@ Reported keys (all in ``[0, 1]`` unless a unit is named):
     reparandum F1 of the labels as they stood ``d`` words after each word arrived.
 ``segmentation.{precision,recall,f1}``
     utterance ends (the last word of each gold utterance in its speaker's channel), final output.
+    Words are fed with the times, speaker changes and overlaps the corpus gives (MRDA has word
+    times; SwDA and Map Task none), and no caller hint.
 
 Disfluency metrics use disfluency-annotated conversations only (NaN when there is none);
 segmentation uses all.
@@ -51,6 +53,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 
 from midstream._types import Conversation, DisfluencyLabel
+from midstream.models._boundary import BoundaryModel, overlap_flags
 from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models._features import tokens_from_words
 from midstream.models._wordmodel import WordModel
@@ -158,9 +161,10 @@ class _Stream:
     final_step: list[int]
 
 
-def _stream_channel(channel: ChannelSequence, model: WordModel,
-                    config: DecoderConfig) -> _Stream:
-    decoder = ChannelDecoder(model, config)
+def _stream_channel(channel: ChannelSequence, model: WordModel, config: DecoderConfig,
+                    boundary: BoundaryModel | None = None,
+                    overlap: Sequence[bool] | None = None) -> _Stream:
+    decoder = ChannelDecoder(model, config, boundary)
     n = len(channel.words)
     stream = _Stream(history=[[] for _ in range(n)], final_label=[None] * n,
                      final_end=[False] * n, final_step=[n - 1] * n)
@@ -181,7 +185,8 @@ def _stream_channel(channel: ChannelSequence, model: WordModel,
         record(
             decoder.append(position, word,
                            after_other_speaker=channel.after_other_speaker[position],
-                           other_words=other_words[position]),
+                           other_words=other_words[position],
+                           overlap=overlap is not None and overlap[channel.indices[position]]),
             position,
         )
     record(decoder.finish(), n - 1)
@@ -207,10 +212,11 @@ def streaming_final_labels(conversation: Conversation, model: WordModel,
 
 def _replay(
     channel: ChannelSequence, model: WordModel, config: DecoderConfig, tally: _Tally,
-    conversation: Conversation,
+    conversation: Conversation, *, boundary: BoundaryModel | None = None,
+    overlap: Sequence[bool] | None = None,
 ) -> None:
     n = len(channel.words)
-    stream = _stream_channel(channel, model, config)
+    stream = _stream_channel(channel, model, config, boundary, overlap)
     history, final_label = stream.history, stream.final_label
     final_end, final_step = stream.final_end, stream.final_step
 
@@ -274,15 +280,22 @@ def evaluate_words(
     *,
     config: DecoderConfig | None = None,
     progress: bool = False,
+    boundary: BoundaryModel | None = None,
 ) -> dict[str, float]:
-    """Replay every conversation's channels and score them (keys in the module docstring)."""
+    """Replay every conversation's channels and score them (keys in the module docstring).
+
+    ``boundary``: the boundary model whose timing evidence joins the word model's utterance
+    ends, as in the server (``None``: the word model alone).
+    """
     config = DecoderConfig() if config is None else config
     tally = _Tally()
     conversations = list(conversations)
     for conversation in tqdm(conversations, desc="evaluate words", file=sys.stderr,
                              disable=not progress):
+        overlap = overlap_flags(conversation) if boundary is not None else None
         for channel in channel_sequences(conversation):
-            _replay(channel, model, config, tally, conversation)
+            _replay(channel, model, config, tally, conversation, boundary=boundary,
+                    overlap=overlap)
     result: dict[str, float] = {}
     for label, counts in tally.labels.items():
         result[f"disfluency.{label.value}.precision"] = counts.precision

@@ -46,17 +46,25 @@ class Token:
     after_other_speaker: bool = False
     #: Words the other speakers said since this speaker's previous word (0 when unknown).
     other_words: int = 0
+    #: The word starts before another speaker's latest word ends (read by the boundary
+    #: model only, :mod:`midstream.models._boundary`).
+    overlap: bool = False
 
 
 def tokens_from_words(words: Sequence[Word], after_other: Sequence[bool],
-                      other_words: Sequence[int] = ()) -> list[Token]:
+                      other_words: Sequence[int] = (),
+                      overlap: Sequence[bool] | None = None) -> list[Token]:
     """Tokens of one channel's words (``after_other[k]``: another speaker spoke before word k;
-    ``other_words[k]``: how many words they said, all 0 when not given)."""
+    ``other_words[k]``: how many words they said, all 0 when not given; ``overlap[k]``: word k
+    overlaps another speaker's word, all false when not given)."""
     counts = other_words or [0] * len(words)
-    return [token_of(w, a, n) for w, a, n in zip(words, after_other, counts, strict=True)]
+    overlaps = overlap if overlap is not None else [False] * len(words)
+    return [token_of(w, after_other_speaker=a, other_words=n, overlap=o)
+            for w, a, n, o in zip(words, after_other, counts, overlaps, strict=True)]
 
 
-def token_of(word: Word, after_other_speaker: bool = False, other_words: int = 0) -> Token:
+def token_of(word: Word, *, after_other_speaker: bool = False, other_words: int = 0,
+             overlap: bool = False) -> Token:
     return Token(
         text=word.text,
         fragment=word.fragment,
@@ -65,6 +73,7 @@ def token_of(word: Word, after_other_speaker: bool = False, other_words: int = 0
         confidence=word.confidence,
         after_other_speaker=after_other_speaker,
         other_words=other_words,
+        overlap=overlap,
     )
 
 

@@ -19,6 +19,12 @@ median decoder cost at most 150 us per word, and the 1,000-word over 10-word rat
     .venv/bin/python scripts/bench_engine.py [--model words.msm] [--words 3000]
     .venv/bin/python scripts/bench_engine.py --smoke --json out.json      # seconds, for CI
 
+With a boundary model (the shipped ``boundaries.msm``, or ``--boundary-model``), one more
+paired run times the same words given invented times (0.25 s words, 0.05 s apart, 0.8 s of
+silence every eight words) through two decoders in turn, one weighing the times with the
+boundary model and one without: the ratio of their median per-word CPU time is what weighing
+the times costs.
+
 Words come from SwDA's val split when the corpora are found (``$MIDSTREAM_CORPORA`` or
 ``../shared/corpora``), otherwise from invented sentences.
 """
@@ -38,6 +44,7 @@ from pathlib import Path
 from _benchkit import machine
 from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceFunction, Word
 from midstream.corpora import read_corpus
+from midstream.models._boundary import BoundaryModel, default_boundary_model_path
 from midstream.models._decoder import ChannelDecoder, DecoderConfig
 from midstream.models._features import Token, features_at, token_of
 from midstream.models._lattice import warm_up
@@ -159,6 +166,34 @@ def _run(model: WordModel, texts: Sequence[str], lengths: Sequence[int],
     return cpu
 
 
+def _timed(texts: Sequence[str]) -> list[Word]:
+    """The words with invented recogniser times (see the module docstring)."""
+    words, clock = [], 0.0
+    for k, text in enumerate(texts):
+        if k and k % 8 == 0:
+            clock += 0.8
+        words.append(Word(text=text, speaker="A", start=clock, end=clock + 0.25))
+        clock += 0.3
+    return words
+
+
+def _boundary_pair(model: WordModel, boundary: BoundaryModel, texts: Sequence[str],
+                   config: DecoderConfig, rounds: int) -> tuple[float, float]:
+    """Median CPU us per word without and with the boundary model, the two decoders in turn."""
+    words = _timed(texts)
+    without: list[int] = []
+    with_: list[int] = []
+    for _ in range(rounds):
+        plain = ChannelDecoder(model, config)
+        joined = ChannelDecoder(model, config, boundary)
+        for key, word in enumerate(words):
+            for decoder, times in ((plain, without), (joined, with_)):
+                cpu0 = time.thread_time_ns()
+                decoder.append(key, word)
+                times.append(time.thread_time_ns() - cpu0)
+    return _percentile(without, 0.5), _percentile(with_, 0.5)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--model", type=Path, default=None,
@@ -173,6 +208,9 @@ def main(argv: Sequence[str] | None = None) -> int:
                         help="finalise words exactly --lag words late instead of once settled")
     parser.add_argument("--smoke", action="store_true", help="a few hundred words, for CI")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
+    parser.add_argument("--boundary-model", type=Path, default=None,
+                        help="boundary model (.msm) for the timed pair; default: the shipped "
+                             "one when present")
     args = parser.parse_args(argv)
     n_words = 300 if args.smoke else args.words
     rounds = 1 if args.smoke else max(args.rounds, 1)
@@ -238,12 +276,20 @@ def main(argv: Sequence[str] | None = None) -> int:
     # Throughput from the mean, not the median: slow words count in full.
     throughput = decoded / (spent_ns / 1e9)
     print(f"decoder throughput: {throughput:,.0f} words per CPU second (target >= 10,000)")
+    boundary_path = args.boundary_model or default_boundary_model_path()
+    pair: dict[str, float] = {}
+    if boundary_path.exists() and not args.smoke:
+        plain_us, joined_us = _boundary_pair(model, BoundaryModel.load(boundary_path),
+                                             stream, config, rounds)
+        pair = {"without_us": plain_us, "with_us": joined_us, "ratio": joined_us / plain_us}
+        print(f"timed words, median per word: {plain_us:.1f} us without the boundary model, "
+              f"{joined_us:.1f} us with it ({boundary_path.name}); ratio {pair['ratio']:.2f}")
     if args.json is not None:
         args.json.write_text(json.dumps({
             "machine": machine(), "model": source, "words_per_round": runs,
             "rounds": rounds, "lag": lag, "settle": config.settle, "rows": rows,
             "ratio_1000_over_10": ratio, "round_ratios": round_ratios,
-            "words_per_cpu_s": throughput,
+            "words_per_cpu_s": throughput, "boundary_pair": pair,
         }, indent=2), encoding="utf-8")
     return 0
 

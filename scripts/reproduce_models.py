@@ -2,14 +2,15 @@
 
 Each shipped ``.msm`` file records the command that trained it. This script re-runs those
 commands on the corpora here (``--corpora`` or ``$MIDSTREAM_CORPORA`` or ``../shared/corpora``),
-writing to a scratch folder, then evaluates shipped and retrained models on SwDA val with
+writing to a scratch folder, then evaluates shipped and retrained models on SwDA val (the
+boundary model on MRDA val, the corpus with word times it is trained on) with
 ``midstream evaluate --json`` and checks that the headline figures agree within ``--tolerance``
 (0.01 by default). It takes about an hour on a 2-core machine; it is not part of the CI run.
 
 Usage::
 
     python scripts/reproduce_models.py [--corpora DIR] [--work DIR] [--tolerance 0.01]
-                                       [--only words|utterance_functions]
+                                       [--only words|utterance_functions|boundaries]
 """
 
 from __future__ import annotations
@@ -36,7 +37,10 @@ HEADLINES = {
     "utterance_functions": ("utterance_functions.gold_segmentation.coarse.accuracy",
                             "utterance_functions.gold_segmentation.swbd42.accuracy",
                             "utterance_functions.accuracy_after_words.3"),
+    "boundaries": ("segmentation.f1",),
 }
+#: The corpus each kind is trained and evaluated on.
+CORPUS = {"words": "swda", "utterance_functions": "swda", "boundaries": "mrda"}
 
 
 def training_command(model: Path, corpus: Path, out: Path) -> list[str]:
@@ -65,6 +69,8 @@ def evaluate(kind: str, model: Path, words_model: Path, corpus: Path) -> dict[st
                "--split", "val", "--json"]
     if kind == "words":
         command += ["--model", str(model)]
+    elif kind == "boundaries":
+        command += ["--model", str(words_model), "--boundary-model", str(model), "--words-only"]
     else:
         command += ["--model", str(words_model), "--functions-model", str(model)]
     result = subprocess.run(command, capture_output=True, text=True, check=True)
@@ -81,7 +87,6 @@ def main() -> int:
     parser.add_argument("--only", choices=sorted(HEADLINES), default=None,
                         help="retrain only the model of this kind (the other is not touched)")
     args = parser.parse_args()
-    corpus = args.corpora / "swda"
     work = args.work or Path(tempfile.mkdtemp(prefix="midstream-reproduce-"))
     work.mkdir(parents=True, exist_ok=True)
     shipped = sorted(WEIGHTS.glob("*.msm"))
@@ -91,6 +96,7 @@ def main() -> int:
         if args.only is not None and load_artifact(model).kind != args.only:
             continue
         out = work / model.name
+        corpus = args.corpora / CORPUS[load_artifact(model).kind]
         command = training_command(model, corpus, out)
         print("$", shlex.join(command[2:]), flush=True)
         subprocess.run(command, check=True)

@@ -61,6 +61,8 @@ def apply_event(session: Session, event: pb.ClientEvent | MalformedMessage, rece
     elif kind == "hint":
         speaker, turn_end = cv.hint_from_wire(event.hint)
         session.hint(speaker, turn_end=turn_end, received=received)
+    elif kind == "tick":
+        session.tick(cv.tick_from_wire(event.tick), received=received)
     elif kind == "close":
         return True
     elif kind == "open":
@@ -68,7 +70,7 @@ def apply_event(session: Session, event: pb.ClientEvent | MalformedMessage, rece
                                  f"{session.id} is already open)")
     else:
         raise EventError("the event is empty: set one of words, replace, withdraw, hint, "
-                         "close")
+                         "tick, close")
     return False
 
 

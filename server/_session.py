@@ -429,6 +429,10 @@ class Session:
         self.timeline.check_speaker(speaker)
         return self._publish(engine.hint(speaker, turn_end=turn_end), received)
 
+    def tick(self, now: float, *, received: float) -> HypothesisUpdate | None:
+        """The stream's time moved on to ``now`` (seconds, the word times' clock) with no word."""
+        return self._publish(self._engine_or_error().tick(now), received)
+
     def finish(self, reason: pb.EndReason) -> tuple[pb.ServerMessage, ...]:
         """Finalise everything and end the conversation; idempotent.
 

@@ -192,7 +192,7 @@ async def test_batch_listing_revisions_and_models(served: Served) -> None:
     updates = [e for e in events if isinstance(e, HypothesisUpdate)]
     assert listed[conversation_id].ended
     assert listed[conversation_id].last_seq == updates[-1].seq
-    assert {m.kind for m in models} == {"words", "utterance_functions"}
+    assert {m.kind for m in models} == {"words", "utterance_functions", "boundaries"}
     # The history holds exactly the states the stream published, seq by seq.
     published = [(u.seq, s) for u in updates for s in (*u.diff.words, *u.diff.utterances)]
     assert sorted(((r.seq, r.state) for r in history.revisions), key=lambda p: p[0]) == sorted(

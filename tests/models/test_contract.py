@@ -20,11 +20,12 @@ from hypothesis import strategies as st
 from midstream import Conversation, Utterance, UtteranceFunction, Word
 from midstream._errors import EventError
 from midstream.models._artifact import ModelArtifact
+from midstream.models._boundary import BoundaryModel, overlap_flags
 from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models._functions import FunctionTagger, clean_view
 from midstream.models._wordmodel import WordModel
 from midstream.models._wordtags import channel_sequences
-from word_kit import invented_conversation, tiny_artifact_bytes
+from word_kit import invented_conversation, tiny_artifact_bytes, tiny_boundary_bytes
 
 
 @dataclass(frozen=True, slots=True)
@@ -80,9 +81,31 @@ def _tag_functions(model: object, conversation: Conversation) -> list[object]:
     return out
 
 
+def _load_boundaries(data: bytes) -> object:
+    return BoundaryModel.from_artifact(ModelArtifact.from_bytes(data, expected_kind="boundaries"))
+
+
+def _tag_boundaries(model: object, conversation: Conversation) -> list[object]:
+    # The word decoder with the boundary model's evidence joined, overlaps as a stream shows.
+    assert isinstance(model, BoundaryModel)
+    words = _load_words(tiny_artifact_bytes())
+    assert isinstance(words, WordModel)
+    overlap = overlap_flags(conversation)
+    out: list[object] = []
+    for channel in channel_sequences(conversation):
+        decoder = ChannelDecoder(words, boundary=model)
+        for key, word in enumerate(channel.words):
+            out += decoder.append(key, word,
+                                  after_other_speaker=channel.after_other_speaker[key],
+                                  overlap=overlap[channel.indices[key]])
+        out += decoder.finish()
+    return out
+
+
 ADAPTERS = [
     Adapter("words", tiny_artifact_bytes, _load_words, _tag_words),
     Adapter("functions", _function_model_bytes, _load_functions, _tag_functions),
+    Adapter("boundaries", tiny_boundary_bytes, _load_boundaries, _tag_boundaries),
 ]
 
 
@@ -180,5 +203,47 @@ def test_a_final_label_never_changes(events: Sequence[tuple[str, str, object]],
                 assert not is_open
             else:
                 assert is_open
+    check(decoder.finish())
+    assert final == set(range(next_key)) - withdrawn
+
+
+_timed_event = st.one_of(
+    st.tuples(st.just("append"), st.sampled_from(_VOCAB), st.floats(0.0, 3.0)),
+    st.tuples(st.just("tick"), st.just(""), st.floats(0.0, 4.0)),
+    st.tuples(st.just("withdraw"), st.just(""), st.floats(0.0, 0.0)),
+)
+
+
+@settings(max_examples=40, deadline=None)
+@given(events=st.lists(_timed_event, max_size=50), other=st.booleans())
+def test_a_final_label_never_changes_with_timed_words_and_ticks(
+        events: Sequence[tuple[str, str, float]], other: bool) -> None:
+    model = _load_words(tiny_artifact_bytes())
+    boundary = _load_boundaries(tiny_boundary_bytes())
+    assert isinstance(model, WordModel) and isinstance(boundary, BoundaryModel)
+    decoder = ChannelDecoder(model, boundary=boundary)
+    final: set[int] = set()
+    withdrawn: set[int] = set()
+    next_key = 0
+    clock = 0.0
+
+    def check(states: list[TokenState]) -> None:
+        for state in states:
+            assert state.key not in final and state.key not in withdrawn
+            if state.final:
+                final.add(state.key)
+
+    for kind, text, seconds in events:
+        if kind == "append":
+            clock += seconds  # the silence before the word
+            check(decoder.append(next_key, Word(text=text, speaker="A", start=clock,
+                                                end=clock + 0.25)))
+            clock += 0.25
+            next_key += 1
+        elif kind == "tick":
+            check(decoder.tick(clock + seconds, other_spoke=other))
+        elif next_key - 1 in decoder.open_keys:
+            check(decoder.withdraw(next_key - 1))
+            withdrawn.add(next_key - 1)
     check(decoder.finish())
     assert final == set(range(next_key)) - withdrawn

@@ -7,6 +7,7 @@ seeded variation; a CRF trained on a few of them in a second or two learns what 
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import random
 
@@ -19,6 +20,8 @@ from midstream import (
     Word,
 )
 from midstream.models._artifact import ModelArtifact
+from midstream.models._boundary import BoundaryConfig
+from midstream.models._train_boundaries import BoundaryTrainingConfig, train_boundary_artifact
 from midstream.models._train_words import WordTrainingConfig, train_word_artifact
 from midstream.models._wordmodel import WordModel
 
@@ -114,3 +117,30 @@ def tiny_artifact_bytes() -> bytes:
 
 def tiny_model() -> WordModel:
     return WordModel.from_artifact(ModelArtifact.from_bytes(tiny_artifact_bytes()))
+
+
+def one_speaker(conversation: Conversation) -> Conversation:
+    """The conversation said by one speaker, 2 s of silence before every utterance: only the
+    silences tell where its utterances end."""
+    clock, words = 0.0, []
+    for utterance in conversation.utterances:
+        clock += 2.0
+        for index in utterance.words:
+            word = conversation.words[index]
+            words.append(dataclasses.replace(word, speaker="A", start=clock, end=clock + 0.3))
+            clock += 0.35
+    return dataclasses.replace(conversation, words=tuple(words), utterances=tuple(
+        dataclasses.replace(u, speaker="A") for u in conversation.utterances))
+
+
+@functools.cache
+def tiny_boundary_bytes() -> bytes:
+    """A boundary model trained on invented timed conversations (cached for the session): four
+    two-speaker ones and four said by one speaker, so both silences and turns teach it."""
+    conversations = [invented_conversation(seed, times=True) for seed in range(4)]
+    conversations += [one_speaker(invented_conversation(seed, times=True))
+                      for seed in range(4, 8)]
+    artifact = train_boundary_artifact(
+        conversations, BoundaryTrainingConfig(min_freq=1, max_iterations=50),
+        join=BoundaryConfig(weight=1.0, offset=0.0), metadata={})
+    return artifact.to_bytes()

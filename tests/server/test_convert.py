@@ -82,3 +82,14 @@ def test_update_built_in_place_matches_its_states_built_alone() -> None:
     assert list(built.utterances) == [cv.utterance_state_to_wire(utt)]
     assert (built.seq, built.server_time, list(built.withdrawn_word_ids)) == (3, 2.0, [])
     assert built == cv.update_to_wire(update)
+
+
+@pytest.mark.parametrize("seconds", [0.0, 12.75])
+def test_a_time_tick_round_trips(seconds: float) -> None:
+    assert cv.tick_from_wire(cv.tick_to_wire(seconds)) == seconds
+
+
+@pytest.mark.parametrize("seconds", [float("nan"), float("inf"), -0.5])
+def test_a_time_tick_outside_the_clock_is_refused_naming_the_field(seconds: float) -> None:
+    with pytest.raises(EventError, match=r"'tick\.time_s'"):
+        cv.tick_from_wire(pb.TimeTick(time_s=seconds))

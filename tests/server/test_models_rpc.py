@@ -60,10 +60,11 @@ async def test_transcript_matches_the_stream_word_for_word(running: Running) -> 
 async def test_describe_and_failed_reload_keep_the_models(running: Running,
                                                           tmp_path: Path) -> None:
     before = await running.stub.DescribeModels(pb.DescribeModelsRequest())
-    # The word model, the function model, and a coarse-function model where one is shipped.
+    # The word model, the function model, then a coarse-function model and the boundary model
+    # where they are shipped.
     kinds = [m.kind for m in before.models]
     assert kinds[:2] == ["words", "utterance_functions"]
-    assert kinds[2:] in ([], ["utterance_functions"])
+    assert kinds[2:] in (["boundaries"], ["utterance_functions", "boundaries"])
     assert all(json.loads(m.training_summary_json) for m in before.models)
     assert all(len(m.sha256) == 64 and m.labels for m in before.models)
     (tmp_path / "words.msm").write_bytes(b"not a model at all")

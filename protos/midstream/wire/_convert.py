@@ -19,6 +19,7 @@ True
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterable
 
 from midstream._errors import EventError
@@ -45,6 +46,8 @@ __all__ = [
     "snapshot_to_wire",
     "spoken_word_from_wire",
     "spoken_word_to_wire",
+    "tick_from_wire",
+    "tick_to_wire",
     "update_from_wire",
     "update_into_wire",
     "update_to_wire",
@@ -172,6 +175,26 @@ def hint_to_wire(speaker: str, *, turn_end: bool) -> pb.SpeakerHint:
     """The wire form of an utterance-end (``turn_end=False``) or turn-end hint."""
     kind = pb.HINT_KIND_TURN_END if turn_end else pb.HINT_KIND_UTTERANCE_END
     return pb.SpeakerHint(speaker=speaker, kind=kind)
+
+
+def tick_from_wire(message: pb.TimeTick) -> float:
+    """The stream time (seconds) a time tick says the recogniser's clock reads.
+
+    Raises
+    ------
+    EventError
+        When the time is not a finite number at least 0 (the rule of word times).
+    """
+    value = message.time_s
+    if not math.isfinite(value) or value < 0:
+        raise EventError(f"field 'tick.time_s' must be a finite number >= 0 seconds, got "
+                         f"{value}")
+    return value
+
+
+def tick_to_wire(time_s: float) -> pb.TimeTick:
+    """The wire form of a time tick (seconds on the clock of the words' times)."""
+    return pb.TimeTick(time_s=time_s)
 
 
 # --- hypotheses --------------------------------------------------------------------------------

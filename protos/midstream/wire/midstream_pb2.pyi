@@ -132,21 +132,29 @@ class CloseConversation(_message.Message):
     __slots__ = ()
     def __init__(self) -> None: ...
 
+class TimeTick(_message.Message):
+    __slots__ = ("time_s",)
+    TIME_S_FIELD_NUMBER: _ClassVar[int]
+    time_s: float
+    def __init__(self, time_s: _Optional[float] = ...) -> None: ...
+
 class ClientEvent(_message.Message):
-    __slots__ = ("open", "words", "replace", "withdraw", "hint", "close")
+    __slots__ = ("open", "words", "replace", "withdraw", "hint", "close", "tick")
     OPEN_FIELD_NUMBER: _ClassVar[int]
     WORDS_FIELD_NUMBER: _ClassVar[int]
     REPLACE_FIELD_NUMBER: _ClassVar[int]
     WITHDRAW_FIELD_NUMBER: _ClassVar[int]
     HINT_FIELD_NUMBER: _ClassVar[int]
     CLOSE_FIELD_NUMBER: _ClassVar[int]
+    TICK_FIELD_NUMBER: _ClassVar[int]
     open: OpenConversation
     words: WordBatch
     replace: ReplaceWord
     withdraw: WithdrawWord
     hint: SpeakerHint
     close: CloseConversation
-    def __init__(self, open: _Optional[_Union[OpenConversation, _Mapping]] = ..., words: _Optional[_Union[WordBatch, _Mapping]] = ..., replace: _Optional[_Union[ReplaceWord, _Mapping]] = ..., withdraw: _Optional[_Union[WithdrawWord, _Mapping]] = ..., hint: _Optional[_Union[SpeakerHint, _Mapping]] = ..., close: _Optional[_Union[CloseConversation, _Mapping]] = ...) -> None: ...
+    tick: TimeTick
+    def __init__(self, open: _Optional[_Union[OpenConversation, _Mapping]] = ..., words: _Optional[_Union[WordBatch, _Mapping]] = ..., replace: _Optional[_Union[ReplaceWord, _Mapping]] = ..., withdraw: _Optional[_Union[WithdrawWord, _Mapping]] = ..., hint: _Optional[_Union[SpeakerHint, _Mapping]] = ..., close: _Optional[_Union[CloseConversation, _Mapping]] = ..., tick: _Optional[_Union[TimeTick, _Mapping]] = ...) -> None: ...
 
 class ChannelEvent(_message.Message):
     __slots__ = ("channel", "event")
