@@ -31,6 +31,8 @@ _COUNT_SUFFIXES = (".count", ".support", ".words")
 _TITLES: dict[str, str] = {
     "disfluency": "Disfluency roles: final streaming labels, word by word",
     "disfluency.offline": "Same model, whole channels decoded at once",
+    "disfluency.restart": "Restarts by kind (bracket with an empty repair; abandoned "
+                          "utterance)",
     "incremental": "Incremental behaviour",
     "incremental.reparandum_f1_at_delay": "Reparandum F1 of the labels as they stood N words "
                                           "after each word arrived",
