@@ -54,6 +54,8 @@ RUNS: dict[str, tuple[str, ...]] = {
     "swda-val": ("midstream", "evaluate", _corpus("swda"), "--split", "val", "--json"),
     "mrda-val": ("midstream", "evaluate", _corpus("mrda"), "--split", "val", "--json"),
     "maptask-val": ("midstream", "evaluate", _corpus("maptask"), "--split", "val", "--json"),
+    "mrda-val-words-alone": ("midstream", "evaluate", _corpus("mrda"), "--split", "val",
+                             "--no-boundary", "--words-only", "--json"),
 }
 
 
@@ -139,8 +141,10 @@ def problems() -> list[str]:
     return found
 
 
-def expand(command: Sequence[str]) -> list[str]:
-    corpora = os.environ.get("MIDSTREAM_CORPORA") or str(REPO.parent / "shared" / "corpora")
+def expand(command: Sequence[str], corpora: str | None = None) -> list[str]:
+    """The run's command line for this interpreter, with the corpora folder filled in."""
+    corpora = corpora or os.environ.get("MIDSTREAM_CORPORA") or str(
+        REPO.parent / "shared" / "corpora")
     words = [word.replace("$MIDSTREAM_CORPORA", corpora) for word in command]
     # The installed command line, run by this interpreter so the active environment is used.
     return [sys.executable, "-m", "midstream.client._cli", *words[1:]]
