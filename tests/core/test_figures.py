@@ -75,8 +75,8 @@ def test_the_stored_swda_run_is_what_the_code_gives_now(corpora_dir: Path) -> No
     result = subprocess.run(command, capture_output=True, text=True, timeout=1800, check=False)
     assert result.returncode == 0, result.stderr[-4000:]
     fresh = json.loads(result.stdout)
-    assert fresh.keys() == stored["figures"].keys()  # type: ignore[union-attr]
-    for key, value in stored["figures"].items():  # type: ignore[union-attr]
+    assert fresh.keys() == stored["figures"].keys()
+    for key, value in stored["figures"].items():
         if value is None:  # NaN in the JSON output: nothing to score
             assert fresh[key] is None, key
         else:
