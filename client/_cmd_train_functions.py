@@ -67,6 +67,10 @@ def add_training_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--partner-features", action="store_true",
                         help="features of how an utterance echoes the partner's just before it "
                              "(repeated words and numbers, short replies, alternatives)")
+    parser.add_argument("--opening-features", nargs="+", choices=("off", "on"), default=["off"],
+                        help="a feature naming a filler or editing term that opened the "
+                             "utterance and was cleaned away (\"sorry\"); 'off on' compares "
+                             "both by cross-validation")
     parser.add_argument("--oversample", nargs="+", default=[""],
                         metavar="LABEL=COPIES[,LABEL=COPIES...]",
                         help="extra copies of a short window around each utterance of a label "
@@ -99,8 +103,10 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
     base = FunctionTrainingOptions(
         scheme=args.scheme, c1=args.c1[0], c2=args.c2[0], min_freq=args.min_freq,
         max_iterations=args.max_iterations, augment=args.augment, seed=args.seed,
-        config=FunctionFeatureConfig(partner=args.partner_features), oversample=samplings[0])
-    grid = list(itertools.product(args.c1, args.c2, samplings))
+        config=FunctionFeatureConfig(partner=args.partner_features,
+                                     opening=args.opening_features[0] == "on"),
+        oversample=samplings[0])
+    grid = list(itertools.product(args.c1, args.c2, samplings, args.opening_features))
     chosen = base
     cv: dict[str, object] = {}
     if len(grid) > 1:
@@ -114,19 +120,23 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
         score = (_cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
                  if len(corpora) == 1 else _pooled_score(corpora))
         best = -1.0
-        for c1, c2, sampling in grid:
+        for c1, c2, sampling, opening in grid:
+            config = FunctionFeatureConfig(partner=args.partner_features,
+                                           opening=opening == "on")
             options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2,
-                                                 "oversample": sampling})
+                                                 "oversample": sampling, "config": config})
             figures = cross_validate(subset, options, folds=args.cv_folds, score=score)
             name = f"c1={c1},c2={c2}" + (
-                f",oversample={_oversample_text(sampling)}" if sampling else "")
+                f",oversample={_oversample_text(sampling)}" if sampling else "") + (
+                ",opening=on" if opening == "on" else "")
             print(f"cv {name}: " + " ".join(
                 f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
             cv[name] = {k: round(v, 4) for k, v in figures.items()}
             if figures["score"] > best:
                 best, chosen = figures["score"], options
         print(f"chosen c1={chosen.c1} c2={chosen.c2} "
-              f"oversample={_oversample_text(chosen.oversample) or '-'}", file=out, flush=True)
+              f"oversample={_oversample_text(chosen.oversample) or '-'} "
+              f"opening={'on' if chosen.config.opening else 'off'}", file=out, flush=True)
     command = "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:])
     artifact = train_function_model(conversations, chosen, command=command)
     if cv:

@@ -90,20 +90,26 @@ class FunctionFeatureConfig:
         opening word, an alternative echoing the partner ("four fifteen or four fifty"). What a
         clarification request looks like in any corpus (ISO 24617-2 checkQuestion on the
         partner's utterance; see docs/labels.md). Off in models trained before it existed.
+    opening
+        The identity of a filler or editing term that opened the utterance and was cleaned away
+        (``UtteranceView.opening``: the "sorry" of "sorry which day"). Off in models trained
+        before it existed.
     """
 
     trigrams: bool = True
     previous: bool = True
     complete_flag: bool = True
     partner: bool = False
+    opening: bool = False
 
     def to_json(self) -> dict[str, bool]:
         return {"trigrams": self.trigrams, "previous": self.previous,
-                "complete_flag": self.complete_flag, "partner": self.partner}
+                "complete_flag": self.complete_flag, "partner": self.partner,
+                "opening": self.opening}
 
     @classmethod
     def from_json(cls, data: Mapping[str, object]) -> FunctionFeatureConfig:
-        known = {"trigrams", "previous", "complete_flag", "partner"}
+        known = {"trigrams", "previous", "complete_flag", "partner", "opening"}
         unknown = set(data) - known
         if unknown:
             raise ModelError(f"unknown function feature settings {sorted(unknown)}")
@@ -191,6 +197,8 @@ def _shape_features(view: UtteranceView, config: FunctionFeatureConfig) -> Featu
             feats["only_disfluent"] = 1.0
     if config.complete_flag and not view.complete:
         feats["incomplete"] = 1.0
+    if config.opening and view.opening:
+        feats[f"rw0={view.opening}"] = 1.0
     return feats
 
 
@@ -656,7 +664,7 @@ class FunctionTagger:
         self._work_width = max(len(crf.labels), self._groups[-1] + 1)
         self._no_carry: FloatArray = np.empty(0)
         self._opening = self._rows({"prev=none": 1.0})
-        self._shapes: dict[tuple[int, int, bool], tuple[int, ...]] = {}
+        self._shapes: dict[tuple[int, int, bool, str], tuple[int, ...]] = {}
         self._carries: _Lru[tuple[UtteranceView, ...], _Carry] = _Lru(WINDOW_CACHE_SIZE)
         # The same windows keyed by the views' ids: hashing a tuple of ints is far cheaper than
         # hashing the views' fields on every word. Each entry holds its views, so while it lives
@@ -999,8 +1007,13 @@ class FunctionTagger:
 
     def _shape_rows(self, view: UtteranceView) -> tuple[int, ...]:
         # The shape features depend on these alone (length and removed buckets end at 20 and
-        # 3), so the table stays small.
-        key = (min(len(view.words), 20), min(view.removed, 3), view.complete)
+        # 3, openings are the model's own), so the table stays small.
+        opening = view.opening if self._config.opening else ""
+        if opening and f"rw0={opening}" not in self._attributes:
+            # An opening word the model never kept has no row: one key for all of them keeps
+            # the table as small as the model's vocabulary of openings.
+            opening = ""
+        key = (min(len(view.words), 20), min(view.removed, 3), view.complete, opening)
         rows = self._shapes.get(key)
         if rows is None:
             rows = self._rows(_shape_features(view, self._config))

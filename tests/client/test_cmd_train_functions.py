@@ -54,6 +54,27 @@ def test_several_weights_are_chosen_by_cross_validation(
     assert set(grid) == {"c1=0.01,c2=0.01", "c1=5.0,c2=0.01"}
 
 
+def test_the_opening_feature_is_compared_by_cross_validation_and_stored(
+        transcripts: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # The invented transcripts open some utterances with a filler, so the feature has data.
+    out = tmp_path / "functions.msm"
+    code = main(["train", "functions", str(transcripts), "--scheme", "coarse",
+                 "--partner-features", "--opening-features", "off", "on", "--min-freq", "1",
+                 "--max-iterations", "30", "--cv-folds", "2", "--cv-subset", "0",
+                 "--out", str(out)])
+    assert code == 0
+    printed = capsys.readouterr().out
+    assert "cv c1=0.1,c2=0.01:" in printed and "cv c1=0.1,c2=0.01,opening=on:" in printed
+    artifact = load_artifact(out, expected_kind="utterance_functions")
+    grid = artifact.metadata["cross_validation"]["grid"]
+    assert set(grid) == {"c1=0.1,c2=0.01", "c1=0.1,c2=0.01,opening=on"}
+    # The model holds the setting the grid chose (the first of equal scores), so serving
+    # builds the features it learned.
+    scores = {name: figures["score"] for name, figures in grid.items()}
+    chosen_on = max(scores, key=scores.__getitem__).endswith("opening=on")
+    assert FunctionTagger.from_artifact(artifact).config.opening is chosen_on
+
+
 def test_swbd42_on_other_labels_is_a_one_line_error(
         tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     conversations = invented_corpus(3)

@@ -84,6 +84,17 @@ def test_filler_only_and_partial_utterances_are_told_apart() -> None:
     assert "incomplete" not in off
 
 
+def test_a_removed_opening_word_is_a_feature_only_when_configured() -> None:
+    sorry = UtteranceView(speaker="B", words=("which", "day"), removed=1, opening="sorry")
+    on = FunctionFeatureConfig(partner=True, opening=True)
+    assert utterance_features(sorry, None, on)["rw0=sorry"] == 1.0
+    # Models trained before the feature existed read no such setting and see no such feature.
+    assert not any(k.startswith("rw0=") for k in utterance_features(sorry, None))
+    assert FunctionFeatureConfig.from_json({"partner": True}) == FunctionFeatureConfig(
+        partner=True)
+    assert FunctionFeatureConfig.from_json(on.to_json()) == on
+
+
 def test_feature_count_is_bounded_however_long_the_utterance() -> None:
     # Per-word cost bound: n-grams come from at most MAX_FEATURE_WORDS leading words.
     long = UtteranceView(speaker="A", words=tuple(f"w{i}" for i in range(5000)))

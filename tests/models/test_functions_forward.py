@@ -58,8 +58,9 @@ def tiny_fine() -> ModelArtifact:
 
 @pytest.fixture(scope="module")
 def tiny_coarse() -> ModelArtifact:
-    # With the partner features, as the shipped coarse model: every path must agree on them.
-    return tiny_model("coarse", partner=True)
+    # With the partner and opening features, as the shipped coarse model: every path must
+    # agree on them (the invented conversations open some utterances with a removed "uh").
+    return tiny_model("coarse", partner=True, opening=True)
 
 
 def crfsuite_reference(crf: CrfTagger, tagger: FunctionTagger,
@@ -153,6 +154,8 @@ _views = st.builds(
                  max_size=MAX_FEATURE_WORDS + 3).map(tuple)),
     removed=st.integers(min_value=0, max_value=4),
     complete=st.booleans(),
+    # A known opening, one the model never saw, none.
+    opening=st.sampled_from(("", "uh", "zyzzyva")),
 )
 
 

@@ -30,6 +30,26 @@ def test_build_view_drops_fragments_uncounted_and_disfluent_words_counted() -> N
         "so",)
 
 
+def test_build_view_names_a_removed_opening_filler_or_editing_term() -> None:
+    # "sorry which day": the editing term is cleaned away, but which word opened the utterance
+    # is what tells a repetition request, so the view keeps it.
+    edit = DisfluencyLabel.EDIT_TERM
+    view = build_view("B", [("sorry", False, edit), ("which", False, F), ("day", False, F)],
+                      complete=True)
+    assert (view.words, view.removed, view.opening) == (("which", "day"), 1, "sorry")
+    # A fragment before it is not a word a recogniser gives; the opening is still "sorry".
+    assert build_view("B", [("s", True, F), ("sorry", False, edit)], complete=False).opening == (
+        "sorry")
+    # Only the first word counts, and only as a filler or editing term: a removed reparandum
+    # opening the utterance, or an editing term later on, is no opening.
+    assert build_view("B", [("which", False, F), ("sorry", False, edit)],
+                      complete=True).opening == ""
+    assert build_view("B", [("i", False, DisfluencyLabel.REPARANDUM), ("we", False, F)],
+                      complete=True).opening == ""
+    # The prefix of a growing utterance keeps it.
+    assert view.prefix(1).opening == "sorry"
+
+
 def _stream_with_gold_ends(bundle: ModelBundle, conversation: Conversation) -> tuple[
         list[UtteranceHypothesis], dict[str, DisfluencyLabel],
         list[tuple[int, tuple[UtteranceView, ...]]]]:
