@@ -64,6 +64,9 @@ def apply_event(session: Session, event: pb.ClientEvent, received: float,
     else:
         raise EventError("the event is empty: set one of words, replace, withdraw, hint, "
                          "close")
+    journal = session.journal
+    if journal is not None:
+        journal.accepted(event)
     return False
 
 

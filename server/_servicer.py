@@ -19,7 +19,7 @@ import logging
 import time
 from collections.abc import AsyncIterator, Callable
 from pathlib import Path
-from typing import Any, NoReturn
+from typing import TYPE_CHECKING, Any, NoReturn
 
 import grpc
 from midstream._errors import (
@@ -46,6 +46,10 @@ from midstream.server._status import (
 from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
+
+if TYPE_CHECKING:  # imported only with a shared log: redis stays out of the default path
+    from midstream.server._journal import SharedLog
+    from midstream.server._replica import Replica
 
 _log = logging.getLogger(__name__)
 
@@ -153,12 +157,19 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     """
 
     def __init__(self, bundle: Bundle, limits: ServerLimits, metrics: ServerMetrics, *,
-                 load: Callable[[Path], Bundle] = load_bundle) -> None:
+                 load: Callable[[Path], Bundle] = load_bundle,
+                 shared: SharedLog | None = None) -> None:
         self.bundle = bundle
         self._load = load  # what ReloadModels loads with (the server's decoder settings)
         self._limits = limits
         self._metrics = metrics
-        self.registry = SessionRegistry(limits, metrics)
+        self.registry = SessionRegistry(limits, metrics,
+                                        journal=shared.journal if shared else None)
+        # Serves what other replicas ingest (and continues their conversations) from the log.
+        self.replica: Replica | None = None
+        if shared is not None:
+            from midstream.server._replica import Replica  # noqa: PLC0415 - see above
+            self.replica = Replica(shared, limits)
         self._stopping = False
         # One future for every stream waiting on a stop, made on first use (on the loop):
         # a wait task per stream cost about a kilobyte each for the whole conversation.
@@ -251,13 +262,36 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if self._stopping:
             await self.refuse_stream(context, UnavailableError("the server is shutting down"))
         try:
-            session = self.registry.open(first.open.conversation_id, self.bundle)
+            session, logged = await self._open(first.open)
         except MidstreamError as exc:
             await self.refuse_stream(context, exc)
         yield pb.ServerMessage(welcome=pb.Welcome(
-            conversation_id=session.id, next_seq=session.seq + 1))
+            conversation_id=session.id, next_seq=session.seq + 1, events_logged=logged))
         async for message in self._converse(session, context):
             yield message
+
+    async def _open(self, request: pb.OpenConversation) -> tuple[Session, int]:
+        """A new conversation, or one continued from the shared log; and the events logged."""
+        if request.resume:
+            if self.replica is None or not request.conversation_id:
+                raise ProtocolStateError(
+                    "open.resume continues a conversation by its id on servers that share a "
+                    "log (midstream serve --redis)")
+            return await self.replica.resume(request.conversation_id, self.registry,
+                                             self.bundle)
+        if self.replica is not None and request.conversation_id:
+            await self.replica.check_new(request.conversation_id)
+        return self.registry.open(request.conversation_id, self.bundle), 0
+
+    def _shared_only(self, conversation_id: str) -> Replica | None:
+        """The replica view when this server shares a log and does not hold the conversation."""
+        if self.replica is None:
+            return None
+        try:
+            self.registry.get(conversation_id)
+        except NotFoundError:
+            return self.replica
+        return None
 
     async def _converse(
         self, session: Session,
@@ -338,9 +372,18 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self, request: pb.FollowRequest,
         context: grpc.aio.ServicerContext[pb.FollowRequest, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
+        from_seq = request.from_seq if request.HasField("from_seq") else None
+        replica = self._shared_only(request.conversation_id)
+        if replica is not None:
+            try:
+                async for message in replica.follow(request.conversation_id, from_seq,
+                                                    self.stop_signal()):
+                    yield message
+            except MidstreamError as exc:
+                await self._fail(context, exc)
+            return
         try:
             session = self.registry.get(request.conversation_id)
-            from_seq = request.from_seq if request.HasField("from_seq") else None
             backlog, follower = session.follow(from_seq)
         except MidstreamError as exc:
             await self._fail(context, exc)
@@ -359,13 +402,24 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         context: grpc.aio.ServicerContext[pb.ListConversationsRequest,
                                           pb.ListConversationsReply],
     ) -> pb.ListConversationsReply:
-        return pb.ListConversationsReply(
-            conversations=[s.summary() for s in self.registry.sessions()])
+        local = [s.summary() for s in self.registry.sessions()]
+        if self.replica is not None:
+            try:
+                local += await self.replica.summaries({s.conversation_id for s in local})
+            except MidstreamError as exc:
+                await self._fail(context, exc)
+        return pb.ListConversationsReply(conversations=local)
 
     async def GetRevisions(  # noqa: N802
         self, request: pb.GetRevisionsRequest,
         context: grpc.aio.ServicerContext[pb.GetRevisionsRequest, pb.GetRevisionsReply],
     ) -> pb.GetRevisionsReply:
+        replica = self._shared_only(request.conversation_id)
+        if replica is not None:
+            try:
+                return await replica.revisions(request.conversation_id)
+            except MidstreamError as exc:
+                await self._fail(context, exc)
         try:
             session = self.registry.get(request.conversation_id)
         except MidstreamError as exc:

@@ -29,7 +29,7 @@ import secrets
 import time
 from collections import OrderedDict, deque
 from collections.abc import AsyncIterator, Callable, Iterable, Iterator
-from typing import Generic, TypeVar
+from typing import Generic, Protocol, TypeVar
 
 from midstream._errors import EventError, LimitExceededError, NotFoundError
 from midstream._types import (
@@ -65,6 +65,23 @@ _log = logging.getLogger(__name__)
 
 State = WordHypothesis | UtteranceHypothesis
 _T = TypeVar("_T")
+
+
+class Journal(Protocol):
+    """Where a session also records what it publishes (a shared log, ``midstream.server._journal``).
+
+    Every method is called synchronously from the session's own step and must not block: it
+    queues what it is given and writes later.
+    """
+
+    def published(self, update: HypothesisUpdate) -> None:
+        """An update was published (called with every update, in sequence order)."""
+
+    def accepted(self, event: pb.ClientEvent) -> None:
+        """An input event after ``open`` was applied without error (``close`` excluded)."""
+
+    def ended(self, message: pb.ServerMessage) -> None:
+        """The conversation ended; ``message`` is its ``ended`` message."""
 
 
 def message_budget(limits: ServerLimits) -> int:
@@ -221,7 +238,8 @@ class Session:
     __slots__ = (
         "_ended", "_engine", "_followers", "_metrics", "_newest", "_replay", "_revisions",
         "_shared_wire", "_utterances", "_words", "closing_messages", "end_reason", "ended_at",
-        "id", "limits", "revisions_truncated", "seq", "started_at", "timeline", "word_count",
+        "id", "journal", "limits", "revisions_truncated", "seq", "started_at", "timeline",
+        "word_count",
     )
 
     def __init__(self, conversation_id: str, engine: Engine, limits: ServerLimits,
@@ -254,6 +272,8 @@ class Session:
         self.revisions_truncated = False
         # A dict rather than a set: an empty set costs over 200 bytes, an empty dict 64.
         self._followers: dict[Follower, None] = {}
+        # Set by the registry when the server shares its log with other replicas.
+        self.journal: Journal | None = None
 
     # --- ingest ---------------------------------------------------------------------------
 
@@ -352,6 +372,8 @@ class Session:
         self.end_reason = reason
         self.ended_at = time.time()
         ended = pb.ServerMessage(ended=pb.Ended(reason=reason, last_seq=self.seq))
+        if self.journal is not None:
+            self.journal.ended(ended)
         for follower in self._followers:
             follower.push_end(ended)
         self._followers.clear()
@@ -410,6 +432,8 @@ class Session:
             message = self._shared_wire = _to_wire(update)
             for follower in self._followers:
                 follower.offer(message, seq)
+        if self.journal is not None:
+            self.journal.published(update)
         tally = self._metrics.tally
         tally.revisions += revised
         if received is not None:
@@ -570,9 +594,11 @@ class SessionRegistry:
     whenever the registry is touched.
     """
 
-    def __init__(self, limits: ServerLimits, metrics: ServerMetrics) -> None:
+    def __init__(self, limits: ServerLimits, metrics: ServerMetrics, *,
+                 journal: Callable[[Session], Journal] | None = None) -> None:
         self._limits = limits
         self._metrics = metrics
+        self._journal = journal  # gives each new session its journal (a shared log)
         self._live: dict[str, Session] = {}
         self._ended: OrderedDict[str, Session] = OrderedDict()
 
@@ -606,6 +632,8 @@ class SessionRegistry:
                 f"{limit} conversations are live; limit max_live_conversations is {limit}",
             )
         session = Session(conversation_id, bundle.new_engine(), self._limits, self._metrics)
+        if self._journal is not None:
+            session.journal = self._journal(session)
         self._live[conversation_id] = session
         self._metrics.live.set(len(self._live))
         _log.info("conversation %s opened", conversation_id)
@@ -620,6 +648,17 @@ class SessionRegistry:
                 self._ended.popitem(last=False)
             self._metrics.live.set(len(self._live))
         return messages
+
+    def forget(self, session: Session) -> None:
+        """Drop ``session`` without publishing its end (a conversation that could not be
+        rebuilt from a shared log, whose log must stay as it is)."""
+        session.journal = None
+        session.finish(pb.END_REASON_UNSPECIFIED)
+        if self._live.get(session.id) is session:
+            del self._live[session.id]
+            self._metrics.live.set(len(self._live))
+        if self._ended.get(session.id) is session:
+            del self._ended[session.id]
 
     def close_all(self, reason: pb.EndReason) -> None:
         """Finish every live conversation (graceful shutdown)."""

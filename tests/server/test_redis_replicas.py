@@ -1,0 +1,219 @@
+"""Replicas sharing one Redis log, in-process: following, listing and revisions on a replica
+that never saw the conversation, and what retention and a lost Redis do to a follower.
+
+The processes-and-SIGKILL cases are in ``test_redis_failover.py``.
+"""
+
+from __future__ import annotations
+
+import asyncio
+
+import grpc
+import pytest
+from grpc_health.v1 import health_pb2, health_pb2_grpc
+from midstream.server import SharedLogConfig
+from midstream.server._journal import SHARED_LOG_HEALTH
+from midstream.wire import midstream_pb2 as pb
+from redis_kit import RedisProcess, call_words, gaps_told, redis_server_fixture
+from server_kit import (
+    Caller,
+    ServerFactory,
+    bundle_fixture,
+    follow_all,
+    models_dir_fixture,
+    start_server_fixture,
+    words_event,
+)
+
+__all__ = ["bundle_fixture", "models_dir_fixture", "redis_server_fixture",
+           "start_server_fixture"]
+
+
+async def _ingest(caller: Caller, words: list[pb.SpokenWord]) -> None:
+    for word in words:
+        await caller.call.write(words_event(word))
+    # Every word of the invented call changes something, so each gets exactly one update.
+    for _ in words:
+        message = await caller.call.read()
+        assert message.WhichOneof("body") == "update", message
+        caller.updates.append(message.update)
+
+
+async def _until_logged(stub: object, conversation_id: str, last_seq: int) -> None:
+    """Wait until a replica's listing shows the conversation logged up to ``last_seq``."""
+    async with asyncio.timeout(10):
+        while True:
+            reply = await stub.ListConversations(pb.ListConversationsRequest())  # type: ignore[attr-defined]
+            if any(c.conversation_id == conversation_id and c.last_seq >= last_seq
+                   for c in reply.conversations):
+                return
+            await asyncio.sleep(0.02)
+
+
+async def test_a_conversation_ingested_on_one_replica_is_followed_from_seq_1_on_another(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    shared = SharedLogConfig(url=redis_server.url)
+    a = await start_server(shared_log=shared)
+    b = await start_server(shared_log=shared)
+    words = call_words()[:30]
+    caller = Caller(a.stub)
+    conversation_id = await caller.open()
+    await _until_logged(b.stub, conversation_id, 0)
+    # A follower on B attached before the first word sees the conversation live.
+    live = asyncio.ensure_future(follow_all(b.stub, conversation_id, from_seq=1))
+    await _ingest(caller, words)
+    ended = await caller.close()
+    assert ended.reason == pb.END_REASON_CLOSED
+    followed = await asyncio.wait_for(live, 20)
+    later = await follow_all(b.stub, conversation_id, from_seq=1)
+    for messages in (followed, later):
+        updates = [m.update for m in messages if m.WhichOneof("body") == "update"]
+        # Identical updates, server times included: B relays what A published.
+        assert [u.SerializeToString() for u in updates] == [
+            u.SerializeToString() for u in caller.updates]
+        assert messages[-1].ended.reason == pb.END_REASON_CLOSED
+        assert messages[-1].ended.last_seq == caller.updates[-1].seq
+    # The listing and the revisions on B agree with A's own.
+    listing = await b.stub.ListConversations(pb.ListConversationsRequest())
+    [summary] = [c for c in listing.conversations if c.conversation_id == conversation_id]
+    assert summary.ended and summary.words == len(words)
+    assert summary.last_seq == caller.updates[-1].seq
+    on_a = await a.stub.GetRevisions(pb.GetRevisionsRequest(conversation_id=conversation_id))
+    on_b = await b.stub.GetRevisions(pb.GetRevisionsRequest(conversation_id=conversation_id))
+    assert list(on_b.revisions) == list(on_a.revisions)
+    assert on_b.truncated == on_a.truncated
+
+
+async def test_a_snapshot_on_another_replica_is_the_ingesting_replicas_state(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    shared = SharedLogConfig(url=redis_server.url)
+    a = await start_server(shared_log=shared)
+    b = await start_server(shared_log=shared)
+    caller = Caller(a.stub)
+    conversation_id = await caller.open()
+    await _ingest(caller, call_words()[:20])
+    await _until_logged(b.stub, conversation_id, caller.updates[-1].seq)
+    stream_a = a.stub.Follow(pb.FollowRequest(conversation_id=conversation_id))
+    stream_b = b.stub.Follow(pb.FollowRequest(conversation_id=conversation_id))
+    snap_a, snap_b = (await stream_a.read()).snapshot, (await stream_b.read()).snapshot
+    stream_a.cancel()
+    stream_b.cancel()
+    assert snap_b.seq == snap_a.seq == caller.updates[-1].seq
+    assert sorted(w.SerializeToString() for w in snap_b.words) == sorted(
+        w.SerializeToString() for w in snap_a.words)
+    assert sorted(u.SerializeToString() for u in snap_b.utterances) == sorted(
+        u.SerializeToString() for u in snap_a.utterances)
+    await caller.close()
+
+
+async def test_a_resume_point_retention_dropped_gets_a_gap_notice_and_snapshot(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    shared = SharedLogConfig(url=redis_server.url, max_entries=8)
+    a = await start_server(shared_log=shared)
+    b = await start_server(shared_log=shared)
+    caller = Caller(a.stub)
+    conversation_id = await caller.open()
+    await _ingest(caller, call_words()[:40])
+    await caller.close()
+    messages = await follow_all(b.stub, conversation_id, from_seq=1)
+    kinds = [m.WhichOneof("body") for m in messages]
+    assert kinds[:2] == ["gap", "snapshot"]
+    gap, snapshot = messages[0].gap, messages[1].snapshot
+    assert gap.reason == pb.GAP_REASON_EVICTED and gap.first_missing == 1
+    assert gap.oldest_kept > 1
+    # The stream keeps max_entries and at most a quarter more between trims.
+    assert caller.updates[-1].seq - gap.oldest_kept + 1 <= 8 + 8 // 4 + 1
+    # After the snapshot: every later update once, in order, then the end.
+    after = [m.update.seq for m in messages if m.WhichOneof("body") == "update"]
+    assert after == list(range(snapshot.seq + 1, caller.updates[-1].seq + 1))
+    assert kinds[-1] == "ended"
+    # The snapshot plus what follows is the final state the caller saw.
+    final: dict[str, bytes] = {}
+    for update in caller.updates:
+        for word in update.words:
+            final[word.word_id] = word.SerializeToString()
+    folded = {w.word_id: w.SerializeToString() for w in snapshot.words}
+    for message in messages[2:]:
+        if message.WhichOneof("body") == "update":
+            for word in message.update.words:
+                folded[word.word_id] = word.SerializeToString()
+    assert folded == final
+    revisions = await b.stub.GetRevisions(pb.GetRevisionsRequest(conversation_id=conversation_id))
+    assert revisions.truncated
+
+
+async def test_unknown_conversations_and_bad_positions_are_refused_as_on_one_server(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    shared = SharedLogConfig(url=redis_server.url)
+    a = await start_server(shared_log=shared)
+    b = await start_server(shared_log=shared)
+    with pytest.raises(grpc.aio.AioRpcError) as missing:
+        await follow_all(b.stub, "nobody-here")
+    assert missing.value.code() == grpc.StatusCode.NOT_FOUND
+    caller = Caller(a.stub)
+    conversation_id = await caller.open()
+    await _ingest(caller, call_words()[:3])
+    await _until_logged(b.stub, conversation_id, 3)
+    with pytest.raises(grpc.aio.AioRpcError) as ahead:
+        await follow_all(b.stub, conversation_id, from_seq=99)
+    assert ahead.value.code() == grpc.StatusCode.OUT_OF_RANGE
+    # A caller-chosen id live on A cannot be opened anew on B.
+    second = Caller(b.stub)
+    await second.call.write(pb.ClientEvent(open=pb.OpenConversation(
+        conversation_id=conversation_id)))
+    with pytest.raises(grpc.aio.AioRpcError) as taken:
+        await second.call.read()
+    assert taken.value.code() == grpc.StatusCode.ALREADY_EXISTS
+    await caller.close()
+
+
+@pytest.mark.parametrize("buffer_entries", [100_000, 4])
+async def test_a_redis_restart_mid_conversation_never_costs_a_silent_gap(
+        start_server: ServerFactory, redis_server: RedisProcess, buffer_entries: int) -> None:
+    """Redis dies and comes back empty (no persistence) while A ingests: the caller never
+    notices; a follower on B gets every update once when A's buffer held the outage, else
+    an explicit gap notice and snapshot where the dropped entries were."""
+    shared = SharedLogConfig(url=redis_server.url, timeout_s=0.5,
+                             buffer_entries=buffer_entries)
+    a = await start_server(shared_log=shared)
+    b = await start_server(shared_log=shared)
+    words = call_words()[:40]
+    caller = Caller(a.stub)
+    conversation_id = await caller.open()
+    await _ingest(caller, words[:15])
+    await _until_logged(b.stub, conversation_id, caller.updates[-1].seq)
+    live = asyncio.ensure_future(follow_all(b.stub, conversation_id, from_seq=1))
+    await asyncio.sleep(0.3)
+    redis_server.stop()
+    # The caller keeps getting its updates while Redis is down.
+    await _ingest(caller, words[15:25])
+    # Health says so under the shared log's own name; the service itself stays SERVING.
+    health = health_pb2_grpc.HealthStub(a.channel)
+    async with asyncio.timeout(10):
+        while (await health.Check(health_pb2.HealthCheckRequest(
+                service=SHARED_LOG_HEALTH))).status != health_pb2.HealthCheckResponse.NOT_SERVING:
+            await asyncio.sleep(0.05)
+    overall = await health.Check(health_pb2.HealthCheckRequest(service=""))
+    assert overall.status == health_pb2.HealthCheckResponse.SERVING
+    redis_server.start()  # empty: persistence is off
+    await _ingest(caller, words[25:])
+    await caller.close()
+    messages = await asyncio.wait_for(live, 30)
+    kinds = [m.WhichOneof("body") for m in messages]
+    last = caller.updates[-1].seq
+    assert kinds[-1] == "ended"
+    gaps = gaps_told(messages, last)
+    if buffer_entries > 1000:
+        # The outage fitted in A's buffer: every update, once, in order.
+        assert gaps == 0
+        assert [m.update.seq for m in messages if m.WhichOneof("body") == "update"] == list(
+            range(1, last + 1))
+    else:
+        assert gaps >= 1
+    assert (await health.Check(health_pb2.HealthCheckRequest(
+        service=SHARED_LOG_HEALTH))).status == health_pb2.HealthCheckResponse.SERVING
+    metrics = a.server.metrics.registry
+    assert metrics.get_sample_value("midstream_shared_log_degraded_total") == 1
+    assert metrics.get_sample_value("midstream_shared_log_up") == 1
+    dropped = metrics.get_sample_value("midstream_shared_log_dropped_total")
+    assert (dropped == 0) == (buffer_entries > 1000)
