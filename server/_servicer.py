@@ -298,7 +298,9 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
         # A server stop finishes every session, so waiting on this session's end covers it.
-        sent = 0  # the last sequence number the caller was given
+        # The last sequence number the caller was given: a continued conversation's earlier
+        # updates went to the caller from the replica that died.
+        sent = session.seq
         reader = self._reader(context, session.ended_signal())
         try:
             while True:
