@@ -74,6 +74,7 @@ DEFAULT_FRAME_EVENTS = 1024
 _GAP_REASONS = {
     pb.GAP_REASON_EVICTED: GapReason.EVICTED,
     pb.GAP_REASON_LAGGED: GapReason.LAGGED,
+    pb.GAP_REASON_EPOCH_MISMATCH: GapReason.EPOCH_MISMATCH,
 }
 _END_REASONS = {
     pb.END_REASON_CLOSED: EndReason.CLOSED,
@@ -110,10 +111,11 @@ def _server_event(message: pb.ServerMessage) -> ServerEvent:
         return _convert.update_from_wire(message.update)
     if body == "welcome":
         return Welcome(conversation_id=message.welcome.conversation_id,
-                       next_seq=message.welcome.next_seq)
+                       next_seq=message.welcome.next_seq, epoch=message.welcome.epoch)
     if body == "snapshot":
         seq, words, utterances, final = _convert.snapshot_from_wire(message.snapshot)
-        return Snapshot(seq=seq, words=words, utterances=utterances, conversation_final=final)
+        return Snapshot(seq=seq, words=words, utterances=utterances, conversation_final=final,
+                        epoch=message.snapshot.epoch)
     if body == "gap":
         return Gap(first_missing=message.gap.first_missing, oldest_kept=message.gap.oldest_kept,
                    reason=_GAP_REASONS.get(message.gap.reason, GapReason.UNKNOWN))
@@ -241,11 +243,16 @@ class Client:
         """
         return MultiplexedStream(self, frame_events=frame_events)
 
-    async def follow(self, conversation_id: str, *,
-                     from_seq: int | None = None) -> AsyncGenerator[ServerEvent, None]:
+    async def follow(self, conversation_id: str, *, from_seq: int | None = None,
+                     epoch: int = 0) -> AsyncGenerator[ServerEvent, None]:
         """Yield a conversation's updates as its ingesting caller sees them, until it ends.
 
         Without ``from_seq`` the server starts with a :class:`Snapshot` of the current state.
+        ``epoch`` is the epoch ``from_seq`` belongs to (from a :class:`Welcome`, an update or a
+        snapshot); a position of another epoch (a different conversation that reuses the id,
+        say after a server restart), or beyond 1 without one, gets a :class:`Gap`
+        (``EPOCH_MISMATCH``) and a :class:`Snapshot` instead. Reconnects carry the epoch of
+        the last update seen, so a follower is never spliced into another conversation.
         After a lost connection the follower reconnects with the next seq it has not seen,
         yields :class:`Reconnected`, and the server answers with the missed updates or, when
         they fell out of its buffer, with a :class:`Gap` and a :class:`Snapshot`: a gap is
@@ -256,7 +263,7 @@ class Client:
         next_seq = from_seq
         attempt = 0
         while True:
-            request = pb.FollowRequest(conversation_id=conversation_id)
+            request = pb.FollowRequest(conversation_id=conversation_id, epoch=epoch)
             if next_seq is not None:
                 request.from_seq = next_seq
             call = stub.Follow(request, metadata=self._metadata())
@@ -265,7 +272,7 @@ class Client:
                     attempt = 0
                     event = _server_event(message)
                     if isinstance(event, HypothesisUpdate | Snapshot):
-                        next_seq = event.seq + 1
+                        next_seq, epoch = event.seq + 1, event.epoch
                     yield event
                     if isinstance(event, Ended):
                         return
@@ -310,7 +317,8 @@ class Client:
                      else _convert.utterance_state_from_wire(item.utterance))
             revisions.append(Revision(seq=item.seq, server_time=item.server_time, state=state))
         return RevisionHistory(conversation_id=reply.conversation_id or conversation_id,
-                               revisions=tuple(revisions), truncated=reply.truncated)
+                               revisions=tuple(revisions), truncated=reply.truncated,
+                               epoch=reply.epoch)
 
     async def list_conversations(self) -> tuple[ConversationSummary, ...]:
         """Live and recently ended conversations the server keeps."""
@@ -318,7 +326,7 @@ class Client:
         return tuple(
             ConversationSummary(conversation_id=c.conversation_id, speakers=tuple(c.speakers),
                                 words=c.words, last_seq=c.last_seq, started_at=c.started_at,
-                                ended=c.ended)
+                                ended=c.ended, epoch=c.epoch)
             for c in reply.conversations)
 
     async def describe_models(self) -> tuple[ModelInfo, ...]:

@@ -25,6 +25,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("--from-seq", type=int, default=None,
                         help="start from this update (default: a snapshot of the current "
                              "state, then live updates)")
+    parser.add_argument("--epoch", type=int, default=0,
+                        help="the epoch --from-seq belongs to (printed with every update); "
+                             "when the id now names another conversation (another epoch) you "
+                             "get a gap notice and a snapshot instead of its updates")
     parser.add_argument("--json", action="store_true",
                         help="print every event as a JSON line")
     parser.set_defaults(handler=run)
@@ -33,6 +37,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 def run(args: argparse.Namespace) -> int:
     if args.from_seq is not None and args.from_seq < 1:
         raise InputError(f"--from-seq counts from 1, got {args.from_seq}")
+    if args.epoch < 0:
+        raise InputError(f"--epoch is a number from the server (0 or more), got {args.epoch}")
     return asyncio.run(_run(args))
 
 
@@ -41,6 +47,7 @@ async def _run(args: argparse.Namespace) -> int:
     printer = Printer(sys.stdout, json_lines=args.json, live=sys.stdout.isatty(),
                       clean=True, rates=False)
     async with client_from_args(args) as client:
-        async for event in client.follow(args.conversation_id, from_seq=args.from_seq):
+        async for event in client.follow(args.conversation_id, from_seq=args.from_seq,
+                                         epoch=args.epoch):
             printer.event(event)
     return 0

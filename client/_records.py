@@ -9,7 +9,7 @@ Record types, in the order a log holds them::
     {"type": "header", "format": 1, "conversation_id": ..., "source": ..., "server": ...}
     {"type": "word", "id": ..., "speaker": ..., "text": ..., "start": ..., "end": ...,
      "sent": <words sent so far, this one included>, "gold": {...} | absent}
-    {"type": "update", "seq": ..., "server_time": ..., "final": bool, "words": [...],
+    {"type": "update", "seq": ..., "epoch": ..., "server_time": ..., "final": bool, "words": [...],
      "utterances": [...], "withdrawn": [...], "sent": <words sent when it arrived>}
     {"type": "snapshot" | "gap" | "ended" | "reconnected", ...}
 
@@ -92,18 +92,19 @@ def event_record(event: ServerEvent, *, sent: int | None = None) -> dict[str, An
     """The JSON record of one server event (``sent``: words sent when it arrived)."""
     record: dict[str, Any]
     if isinstance(event, HypothesisUpdate):
-        record = {"type": "update", "seq": event.seq, "server_time": event.server_time,
-                  "final": event.conversation_final,
+        record = {"type": "update", "seq": event.seq, "epoch": event.epoch,
+                  "server_time": event.server_time, "final": event.conversation_final,
                   "words": [word_state_record(w) for w in event.diff.words],
                   "utterances": [utterance_state_record(u) for u in event.diff.utterances],
                   "withdrawn": list(event.diff.withdrawn_word_ids)}
     elif isinstance(event, Snapshot):
-        record = {"type": "snapshot", "seq": event.seq, "final": event.conversation_final,
+        record = {"type": "snapshot", "seq": event.seq, "epoch": event.epoch,
+                  "final": event.conversation_final,
                   "words": [word_state_record(w) for w in event.words],
                   "utterances": [utterance_state_record(u) for u in event.utterances]}
     elif isinstance(event, Welcome):
         record = {"type": "welcome", "conversation_id": event.conversation_id,
-                  "next_seq": event.next_seq}
+                  "next_seq": event.next_seq, "epoch": event.epoch}
     elif isinstance(event, Gap):
         record = {"type": "gap", "first_missing": event.first_missing,
                   "oldest_kept": event.oldest_kept, "reason": event.reason.value}
@@ -227,16 +228,19 @@ class _Reader:
                     withdrawn_word_ids=tuple(str(w) for w in record.get("withdrawn", ())))
                 return HypothesisUpdate(seq=int(self.get(record, "seq")),
                                         server_time=float(self.get(record, "server_time")),
-                                        diff=diff, conversation_final=bool(record.get("final")))
+                                        diff=diff, conversation_final=bool(record.get("final")),
+                                        epoch=int(record.get("epoch", 0)))
             if kind == "snapshot":
                 return Snapshot(seq=int(self.get(record, "seq")),
                                 words=tuple(self.word_state(w) for w in self.get(record, "words")),
                                 utterances=tuple(self.utterance_state(u)
                                                  for u in self.get(record, "utterances")),
-                                conversation_final=bool(record.get("final")))
+                                conversation_final=bool(record.get("final")),
+                                epoch=int(record.get("epoch", 0)))
             if kind == "welcome":
                 return Welcome(conversation_id=str(self.get(record, "conversation_id")),
-                               next_seq=int(self.get(record, "next_seq")))
+                               next_seq=int(self.get(record, "next_seq")),
+                               epoch=int(record.get("epoch", 0)))
             if kind == "gap":
                 return Gap(first_missing=int(self.get(record, "first_missing")),
                            oldest_kept=int(self.get(record, "oldest_kept")),

@@ -63,6 +63,10 @@ class GapReason(StrEnum):
     """The asked-for position is older than the server's replay buffer keeps."""
     LAGGED = "lagged"
     """The follower read too slowly; the server dropped updates and sends a snapshot."""
+    EPOCH_MISMATCH = "epoch_mismatch"
+    """The position belonged to another conversation that used the same id (another epoch,
+    e.g. before a server restart): the snapshot that follows is of the conversation now
+    using it."""
     UNKNOWN = "unknown"
     """A reason this client version does not know."""
 
@@ -81,10 +85,15 @@ class EndReason(StrEnum):
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class Welcome:
-    """The server accepted a conversation; ``next_seq`` is the seq the next update carries."""
+    """The server accepted a conversation; ``next_seq`` is the seq the next update carries.
+
+    ``epoch`` tells this conversation apart from any other that uses or used the same id (0:
+    a server that does not say); give it with a ``from_seq`` to :meth:`Client.follow`.
+    """
 
     conversation_id: str
     next_seq: int
+    epoch: int = 0
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -95,6 +104,7 @@ class Snapshot:
     words: tuple[WordHypothesis, ...]
     utterances: tuple[UtteranceHypothesis, ...]
     conversation_final: bool
+    epoch: int = 0
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -144,6 +154,7 @@ class ConversationSummary:
     last_seq: int
     started_at: float
     ended: bool
+    epoch: int = 0
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -185,3 +196,4 @@ class RevisionHistory:
     conversation_id: str
     revisions: tuple[Revision, ...]
     truncated: bool
+    epoch: int = 0

@@ -19,9 +19,11 @@ import dataclasses
 import logging
 import multiprocessing
 import multiprocessing.connection
+import os
 import signal
 import socket
 import sys
+import threading
 import time
 from multiprocessing.context import SpawnProcess
 from typing import Any
@@ -39,10 +41,20 @@ _POLL_S = 0.2
 _MIN_LIFETIME_S = 5.0
 
 
+def _orphaned(parent: int) -> None:
+    """Stop this worker (SIGTERM: it drains) once its supervisor is gone, however it went."""
+    while os.getppid() == parent:
+        time.sleep(_POLL_S * 5)
+    os.kill(os.getpid(), signal.SIGTERM)
+
+
 def _worker(config: ServerConfig, ready: multiprocessing.connection.Connection,
             options: dict[str, Any]) -> None:
     """A worker's main: serve ``config`` until SIGTERM, telling the supervisor its port."""
     from midstream.client._cmd_serve import serve  # noqa: PLC0415 - in the worker only
+
+    threading.Thread(target=_orphaned, args=(os.getppid(),), daemon=True,
+                     name="supervisor-watch").start()
 
     logging.basicConfig(level=options.pop("log_level"),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")

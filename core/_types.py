@@ -210,10 +210,13 @@ class HypothesisUpdate:
 
     ``seq`` counts a conversation's updates from 1 without gaps; ``server_time`` is Unix time in
     seconds when the server published it. ``conversation_final`` is set on the update that
-    finalised everything when the conversation ended.
+    finalised everything when the conversation ended. ``epoch`` tells this conversation apart
+    from any other that uses or used the same id (a random number chosen when it was opened;
+    0 when unknown): sequence numbers continue only within one epoch.
     """
 
     seq: int
     server_time: float
     diff: HypothesisDiff
     conversation_final: bool = False
+    epoch: int = 0

@@ -26,11 +26,11 @@ from midstream._build import build_name, compiled_modules
 from midstream._errors import InputError, UnavailableError
 from midstream.server._auth import BearerTokenInterceptor
 from midstream.server._config import ServerConfig
+from midstream.server._decode import add_servicer
 from midstream.server._metrics import LoopLagProbe, ServerMetrics
 from midstream.server._models import Bundle, load_bundle, tune_bundle
 from midstream.server._servicer import MidstreamServicer
 from midstream.wire import midstream_pb2 as pb
-from midstream.wire import midstream_pb2_grpc as pb_grpc
 
 if TYPE_CHECKING:  # imported only with a shared log: redis stays out of the default path
     from midstream.server._journal import SharedLog
@@ -157,8 +157,8 @@ class MidstreamServer:
             await shared.start()
         self._servicer = MidstreamServicer(bundle, limits, self.metrics, load=load,
                                            shared=shared)
-        # The generated registration function carries no annotations.
-        pb_grpc.add_MidstreamServicer_to_server(self._servicer, server)  # type: ignore[no-untyped-call]
+        # Not the generated registration: requests that do not decode must reach the servicer.
+        add_servicer(self._servicer, server)
         self._health = health.aio.HealthServicer()
         health_pb2_grpc.add_HealthServicer_to_server(self._health, server)
         reflection.enable_server_reflection(

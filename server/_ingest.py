@@ -13,6 +13,7 @@ import grpc
 from midstream._errors import EventError
 from midstream._types import Word
 from midstream.server._config import ServerLimits
+from midstream.server._decode import MalformedMessage
 from midstream.server._limits import check_batch_size, check_id, check_word
 from midstream.server._session import Session
 from midstream.server._status import ProtocolStateError
@@ -23,7 +24,7 @@ from midstream.wire import midstream_pb2 as pb
 _CANCEL_SETTLE_S = 0.05
 
 
-def apply_event(session: Session, event: pb.ClientEvent, received: float,
+def apply_event(session: Session, event: pb.ClientEvent | MalformedMessage, received: float,
                 limits: ServerLimits) -> bool:
     """Check and apply one event after ``open``; return whether it was ``close``. Never awaits.
 
@@ -32,9 +33,12 @@ def apply_event(session: Session, event: pb.ClientEvent, received: float,
     Raises
     ------
     MidstreamError
-        The event was refused (a check at the edge, the engine, or the protocol state); words
+        The event was refused (its bytes did not decode, a check at the edge, the engine, or
+        the protocol state); words
         of a batch before the bad one stay applied and published.
     """
+    if isinstance(event, MalformedMessage):
+        raise event.error()
     kind = event.WhichOneof("event")
     if kind == "words":
         batch = event.words.words

@@ -5,7 +5,8 @@ Redis Cluster keeps them on one shard; ``ConversationKeys``):
 
 ``<prefix>:{<id>}:u``
     A stream of the conversation's updates, entry id ``<seq>-0`` (so a resume point is a
-    stream position), fields ``i`` (the incarnation) and ``u`` (a serialised ``Update``); the
+    stream position), fields ``i`` (the conversation's epoch, which tells it apart from another
+    conversation using the same id) and ``u`` (a serialised ``Update``); the
     end is entry ``<last seq>-1`` with ``end`` (a serialised ``ServerMessage`` holding
     ``ended``). Trimmed to about ``max_entries`` entries and ``max_age_s`` seconds.
 ``<prefix>:{<id>}:e``
@@ -17,7 +18,8 @@ Redis Cluster keeps them on one shard; ``ConversationKeys``):
     number no older than the oldest update left: what a follower whose position was trimmed
     gets after the gap notice.
 ``<prefix>:{<id>}:m``
-    A hash describing the conversation (owner, incarnation, counts, speakers, ended).
+    A hash describing the conversation: ``inc`` (its epoch), ``owner`` (the process that
+    writes it), counts, speakers, whether it ended and can be continued.
 
 plus one sorted set ``<prefix>:index`` of conversation ids by last write, for the listing.
 
@@ -383,11 +385,11 @@ class SharedLog:
             await self._client.aclose()
 
     def journal(self, session: Session) -> ConversationJournal:
-        """A new journal for a session just opened (its incarnation drawn afresh).
+        """A new journal for a session just opened (the log knows it by its epoch).
 
         Queued at once, with nothing in it, so that other replicas list the conversation (and
         can follow it) before its first update."""
-        journal = ConversationJournal(self, session, secrets.token_hex(8))
+        journal = ConversationJournal(self, session, str(session.epoch))
         self.queued(journal, 0)
         return journal
 

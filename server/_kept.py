@@ -37,8 +37,8 @@ WordRecord: TypeAlias = tuple[str, str, str, float, int, bool, "str | None", boo
 #: ``(utterance_id, speaker, word ids joined by ID_SEPARATOR, clean_text, function, fine_class,
 #: confidence, revision, final)``
 UtteranceRecord: TypeAlias = tuple[str, str, str, str, str, str, float, int, bool]
-#: ``(seq, server_time, conversation_final, withdrawn ids joined, number of word records, then
-#: the word records and the utterance records)``
+#: ``(seq, server_time, conversation_final, withdrawn ids joined, epoch, number of word records,
+#: then the word records and the utterance records)``
 UpdateRecord: TypeAlias = tuple[Any, ...]
 
 #: Joins word ids in a record. Ids that reach a session hold no control character (the server
@@ -49,7 +49,7 @@ WORD_REVISION: Final = 4
 UTTERANCE_REVISION: Final = 7
 #: Where an update record keeps its sequence number.
 UPDATE_SEQ: Final = 0
-_UPDATE_HEAD = 5
+_UPDATE_HEAD = 6
 
 # Value -> member by dict lookup: an enum call goes through its metaclass and costs more.
 _LABELS: Final = {label.value: label for label in DisfluencyLabel}
@@ -98,14 +98,15 @@ def pack_update(update: HypothesisUpdate, words: list[WordRecord],
                 utterances: list[UtteranceRecord]) -> UpdateRecord:
     """The record of ``update`` whose states the caller has already packed, in diff order."""
     return (update.seq, update.server_time, update.conversation_final,
-            _join(update.diff.withdrawn_word_ids), len(words), *words, *utterances)
+            _join(update.diff.withdrawn_word_ids), update.epoch, len(words), *words,
+            *utterances)
 
 
 def unpack_update(record: UpdateRecord) -> HypothesisUpdate:
-    seq, server_time, final, withdrawn, n_words = record[:_UPDATE_HEAD]
+    seq, server_time, final, withdrawn, epoch, n_words = record[:_UPDATE_HEAD]
     split = _UPDATE_HEAD + n_words
     return HypothesisUpdate(
-        seq=seq, server_time=server_time, conversation_final=final,
+        seq=seq, server_time=server_time, conversation_final=final, epoch=epoch,
         diff=HypothesisDiff(words=tuple(map(unpack_word, record[_UPDATE_HEAD:split])),
                             utterances=tuple(map(unpack_utterance, record[split:])),
                             withdrawn_word_ids=_split(withdrawn)))

@@ -42,6 +42,7 @@ from typing import TYPE_CHECKING
 
 import grpc
 from midstream._errors import EventError, LimitExceededError, MidstreamError, UnavailableError
+from midstream.server._decode import MalformedMessage
 from midstream.server._ingest import apply_event, caller_vanished
 from midstream.server._session import Session, message_budget
 from midstream.server._status import (
@@ -102,6 +103,11 @@ class ManyStream:
         stop = servicer.stop_signal()
         if stop.done():
             await servicer.refuse_stream(context, UnavailableError("the server is shutting down"))
+        # The call's end finishes every open channel even if grpc never resumes nor closes
+        # this generator (see MidstreamServicer.Converse).
+        # (The stubs name a class where grpc takes any callable of the context.)
+        context.add_done_callback(
+            lambda _: self._abandon(pb.END_REASON_CALLER_VANISHED))  # type: ignore[arg-type]
         loop = asyncio.get_running_loop()
         sweep_every = min(limits.idle_timeout_s / _SWEEPS_PER_TIMEOUT, _MAX_SWEEP_S)
         next_sweep = sweep_every
@@ -136,10 +142,13 @@ class ManyStream:
                         for frame in self._frames():
                             yield frame
                         return
-                    assert isinstance(request, pb.ClientFrame)
                     try:
+                        if isinstance(request, MalformedMessage):
+                            # No channel can be told apart in bytes that did not decode.
+                            raise request.error()
+                        assert isinstance(request, pb.ClientFrame)
                         self._frame(request)
-                    except FieldLimitError as exc:
+                    except (FieldLimitError, EventError) as exc:
                         self._end_all(pb.END_REASON_REJECTED)
                         for frame in self._frames():
                             yield frame
@@ -215,7 +224,8 @@ class ManyStream:
         self._highest = number
         channel = self._channels[number] = _Channel(number, session, self._waited)
         self._out.replies.add(channel=number, message=pb.ServerMessage(
-            welcome=pb.Welcome(conversation_id=session.id, next_seq=session.seq + 1)))
+            welcome=pb.Welcome(conversation_id=session.id, next_seq=session.seq + 1,
+                               epoch=session.epoch)))
         channel.sent = session.seq
 
     def _event(self, channel: _Channel, event: pb.ClientEvent, received: float) -> None:

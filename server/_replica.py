@@ -6,14 +6,17 @@ reads the conversation's update stream: from its position while the stream holds
 ``gap`` (``EVICTED``) and a snapshot (the stored snapshot with every later update folded in),
 then live entries with blocking reads. A jump in sequence numbers while reading (entries
 dropped past a replica's local buffer, or a Redis that lost its data) gets the same gap notice
-and snapshot: never a silent gap. Entries of another incarnation of the id end the stream with
-``FAILED_PRECONDITION`` rather than splice two conversations together.
+and snapshot: never a silent gap. The conversation's epoch is checked as on the ingesting
+replica: a position of another epoch (or beyond seq 1 without one), and entries of another
+conversation that took over the id while following, get ``gap`` (``EPOCH_MISMATCH``) and a
+snapshot of the conversation now under the id, never a splice.
 
 Continuing (:func:`resume`) claims the conversation for this replica (the old owner's later
 writes are refused), replays every logged input event through a fresh engine from the same
 models (decoding is deterministic, so it publishes the same updates with the same sequence
-numbers), checks the newest update the log holds against the replay, writes the updates the
-old replica published but never logged, and hands the session on like a newly opened one.
+numbers and the same epoch), checks the newest update the log holds against the replay,
+writes the updates the old replica published but never logged, and hands the session on like
+a newly opened one.
 
 Use from the server's event loop only.
 """
@@ -78,13 +81,14 @@ def _entry(entry_id: bytes) -> tuple[int, bool]:
 class _State:
     """The latest word and utterance states, folded from a snapshot and later updates."""
 
-    __slots__ = ("final", "seq", "utterances", "words")
+    __slots__ = ("epoch", "final", "seq", "utterances", "words")
 
-    def __init__(self, snapshot: pb.Snapshot | None) -> None:
+    def __init__(self, snapshot: pb.Snapshot | None, epoch: int) -> None:
         self.words: OrderedDict[str, pb.WordState] = OrderedDict()
         self.utterances: OrderedDict[str, pb.UtteranceState] = OrderedDict()
         self.seq = 0
         self.final = False
+        self.epoch = epoch
         if snapshot is not None:
             self.seq, self.final = snapshot.seq, snapshot.conversation_final
             for word in snapshot.words:
@@ -124,7 +128,7 @@ class _State:
                 first_word += 1
         return pb.ServerMessage(snapshot=pb.Snapshot(
             seq=self.seq, words=words[first_word:], utterances=utterances[first_utterance:],
-            conversation_final=self.final))
+            conversation_final=self.final, epoch=self.epoch))
 
 
 class Replica:
@@ -166,10 +170,11 @@ class Replica:
         client = self._log.client
         for _ in range(3):
             async with client.pipeline(transaction=True) as pipe:
+                pipe.hget(keys.meta, "inc")
                 pipe.get(keys.snapshot)
                 pipe.xrange(keys.updates, "-", "+")
-                stored, entries = await pipe.execute()
-            state = _State(pb.Snapshot.FromString(stored) if stored else None)
+                epoch, stored, entries = await pipe.execute()
+            state = _State(pb.Snapshot.FromString(stored) if stored else None, int(epoch or 0))
             last_id = f"{state.seq}-0".encode()
             ended: pb.ServerMessage | None = None
             consistent = True
@@ -192,7 +197,7 @@ class Replica:
 
     # --- Follow ---------------------------------------------------------------------------
 
-    async def follow(self, conversation_id: str, from_seq: int | None,
+    async def follow(self, conversation_id: str, from_seq: int | None, epoch: int,
                      stop: asyncio.Future[None]) -> AsyncIterator[pb.ServerMessage]:
         """The messages ``Follow`` sends, read from the shared log (see the module docstring).
 
@@ -207,16 +212,23 @@ class Replica:
         meta = await self._meta(keys, conversation_id)
         incarnation = meta[b"inc"]
         logged = int(meta.get(b"useq", b"0"))
+        other_epoch = epoch not in (0, int(incarnation))
+        # Seq 1 is the start of whichever epoch: nothing was seen that could be spliced onto.
+        unchecked = epoch == 0 and from_seq is not None and from_seq > 1
         if from_seq is not None and from_seq < 1:
             raise EventError("field 'from_seq' must be at least 1 (sequence numbers count from 1)")
-        if from_seq is not None and from_seq > logged + 1:
+        if from_seq is not None and from_seq > logged + 1 and not other_epoch:
             raise PositionError(
                 f"field 'from_seq' ({from_seq}) is beyond the next sequence number "
                 f"({logged + 1}) of conversation {conversation_id}")
         client = self._log.client
         expected: int
-        if from_seq is None:
+        if from_seq is None or other_epoch or unchecked:
             state, last_id, ended = await self._fold(keys)
+            if from_seq is not None:
+                yield pb.ServerMessage(gap=pb.Gap(
+                    first_missing=from_seq, oldest_kept=await self._oldest(keys, logged),
+                    reason=pb.GAP_REASON_EPOCH_MISMATCH))
             yield state.message(self._limits)
             if ended is not None:
                 yield ended
@@ -244,18 +256,30 @@ class Replica:
                     f"elsewhere from seq {expected}")
             try:
                 reply: Any = await client.xread({keys.updates: last_id},
-                                                      count=_READ_COUNT, block=_BLOCK_MS)
-                if not reply:
-                    current = await client.hget(keys.meta, "inc")
-                    if current is not None and current != incarnation:
-                        raise _restarted(conversation_id)
-                    continue
+                                                count=_READ_COUNT, block=_BLOCK_MS)
+                current = None if reply else await client.hget(keys.meta, "inc")
             except (RedisError, OSError):
                 await asyncio.sleep(_RETRY_S)  # the writer logs the outage once
                 continue
-            for entry_id, fields in reply[0][1]:
+            entries = reply[0][1] if reply else []
+            if (current is not None and current != incarnation) or (
+                    entries and entries[0][1].get(b"i") != incarnation):
+                # Another conversation took over the id (this one had ended): say so and
+                # carry on with it from a snapshot, as the ingesting replica would.
+                state, last_id, ended = await self._fold(keys)
+                incarnation = str(state.epoch).encode()
+                yield pb.ServerMessage(gap=pb.Gap(
+                    first_missing=expected, oldest_kept=await self._oldest(keys, state.seq),
+                    reason=pb.GAP_REASON_EPOCH_MISMATCH))
+                yield state.message(self._limits)
+                if ended is not None:
+                    yield ended
+                    return
+                expected = state.seq + 1
+                continue
+            for entry_id, fields in entries:
                 if fields.get(b"i") != incarnation:
-                    raise _restarted(conversation_id)
+                    break  # the next read tells the followers about the new conversation
                 seq, is_end = _entry(entry_id)
                 last_id = entry_id
                 if not is_end and seq < expected:
@@ -278,12 +302,17 @@ class Replica:
                 yield pb.ServerMessage(update=pb.Update.FromString(fields[b"u"]))
                 expected = seq + 1
 
+    async def _oldest(self, keys: ConversationKeys, logged: int) -> int:
+        """The oldest sequence number the update stream holds (``logged + 1`` when none)."""
+        first: Any = await self._log.client.xrange(keys.updates, "-", "+", count=1)
+        return _entry(first[0][0])[0] if first else logged + 1
+
     # --- GetRevisions and the listing ----------------------------------------------------------
 
     async def revisions(self, conversation_id: str) -> pb.GetRevisionsReply:
         """Every state the log still holds, oldest first, within the message budget."""
         keys = self._keys(conversation_id)
-        await self._meta(keys, conversation_id)
+        meta = await self._meta(keys, conversation_id)
         entries: Any = await self._log.client.xrange(keys.updates, "-", "+")
         kept: list[pb.Revision] = []
         for entry_id, fields in entries:
@@ -306,7 +335,7 @@ class Replica:
             revisions.append(revision)
         revisions.reverse()
         return pb.GetRevisionsReply(conversation_id=conversation_id, revisions=revisions,
-                                    truncated=truncated)
+                                    truncated=truncated, epoch=int(meta[b"inc"]))
 
     async def summaries(self, skip: set[str]) -> list[pb.ConversationSummary]:
         """Conversations the log holds (written within ``max_age_s``), but those in ``skip``."""
@@ -335,7 +364,7 @@ class Replica:
                 speakers=speakers.split("\x1f") if speakers else [],
                 words=int(meta.get(b"words", b"0")), last_seq=int(meta.get(b"useq", b"0")),
                 started_at=float(meta.get(b"started", b"0")),
-                ended=meta.get(b"ended") == b"1"))
+                ended=meta.get(b"ended") == b"1", epoch=int(meta[b"inc"])))
         return summaries
 
     # --- opening and continuing ----------------------------------------------------------
@@ -412,6 +441,8 @@ class Replica:
                 stored = pb.Update.FromString(fields[b"u"])
                 break
         session = registry.open(conversation_id, bundle)
+        # The same conversation goes on: it keeps its epoch (followers' positions stay valid).
+        session.epoch = int(meta[b"inc"])
         journal = session.journal
         assert isinstance(journal, ConversationJournal)
         journal.incarnation = meta[b"inc"].decode()
@@ -469,8 +500,3 @@ class Replica:
                         "or decoder settings)")
         return session.since(logged)
 
-
-def _restarted(conversation_id: str) -> ProtocolStateError:
-    return ProtocolStateError(
-        f"conversation {conversation_id!r} was started anew (another incarnation of the id); "
-        "follow it again from the start")

@@ -14,6 +14,7 @@ with ``END_REASON_REJECTED`` (see ``docs/service.md``).
 from __future__ import annotations
 
 import asyncio
+import functools
 import json
 import logging
 import time
@@ -31,6 +32,7 @@ from midstream._errors import (
 )
 from midstream._types import HypothesisDiff, UtteranceHypothesis, WordHypothesis
 from midstream.server._config import ServerLimits
+from midstream.server._decode import MalformedMessage
 from midstream.server._ingest import apply_event, caller_vanished
 from midstream.server._limits import SpeakerTimeline, check_id, check_word
 from midstream.server._many import ManyStream
@@ -212,6 +214,11 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         await context.abort(code, str(error))
         raise AssertionError("abort returned")  # pragma: no cover - abort always raises
 
+    async def refuse(self, context: grpc.aio.ServicerContext[Any, Any],
+                     error: MidstreamError) -> NoReturn:
+        """End a call with the status code of ``error``: counted, logged on one line."""
+        await self._fail(context, error)
+
     @staticmethod
     def log_internal(where: str, error: Exception) -> None:
         """Log a fault by its type only; the detail (which may quote words) at DEBUG."""
@@ -247,6 +254,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     ) -> AsyncIterator[pb.ServerMessage]:
         with self._reader(context, self.stop_signal()) as reader:
             first = await reader.next()
+        if isinstance(first, MalformedMessage):
+            await self.refuse_stream(context, first.error())
         if not isinstance(first, pb.ClientEvent):
             if first is _STOPPED:
                 await self._fail(context, UnavailableError("the server is shutting down"))
@@ -265,10 +274,27 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             session, logged = await self._open(first.open)
         except MidstreamError as exc:
             await self.refuse_stream(context, exc)
-        yield pb.ServerMessage(welcome=pb.Welcome(
-            conversation_id=session.id, next_seq=session.seq + 1, events_logged=logged))
-        async for message in self._converse(session, context):
-            yield message
+        # From here on the conversation is this call's to end, however the call ends. grpc
+        # stops iterating a handler whose caller vanished (it is cancelled while sending, outside
+        # this generator) and closes the generator only when it is collected, which a
+        # reference cycle can put off indefinitely: the call's own end finishes the
+        # conversation, and the try below covers every yield, the welcome included.
+        # The stubs name a class where grpc takes any callable of the context.
+        context.add_done_callback(
+            functools.partial(self._call_ended, session))  # type: ignore[arg-type]
+        try:
+            yield pb.ServerMessage(welcome=pb.Welcome(
+                conversation_id=session.id, next_seq=session.seq + 1, epoch=session.epoch,
+                events_logged=logged))
+            async for message in self._converse(session, context):
+                yield message
+        finally:
+            self._call_ended(session)
+
+    def _call_ended(self, session: Session, _: object = None) -> None:
+        """Finish ``session`` as abandoned by its caller unless it has already ended."""
+        if session.live:
+            self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
 
     async def _open(self, request: pb.OpenConversation) -> tuple[Session, int]:
         """A new conversation, or one continued from the shared log; and the events logged."""
@@ -320,7 +346,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     for message in (*session.since(sent), session.closing_messages[-1]):
                         yield message
                     return
-                assert isinstance(event, pb.ClientEvent)
+                assert isinstance(event, pb.ClientEvent | MalformedMessage)
                 try:
                     closing = apply_event(session, event, time.monotonic(), self._limits)
                 except MidstreamError as exc:
@@ -356,6 +382,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         """Wait for the caller's half-close; any further event is refused."""
         with self._reader(context, self.stop_signal()) as reader:
             event = await reader.next()
+        if isinstance(event, MalformedMessage):
+            await self.refuse_stream(context, event.error())
         if isinstance(event, pb.ClientEvent):
             await self.refuse_stream(context, ProtocolStateError(
                 f"event {event.WhichOneof('event')!r} after 'close': conversation "
@@ -371,24 +399,27 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     # --- Follow, list, revisions ---------------------------------------------------------
 
     async def Follow(  # noqa: N802
-        self, request: pb.FollowRequest,
+        self, request: pb.FollowRequest | MalformedMessage,
         context: grpc.aio.ServicerContext[pb.FollowRequest, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
-        from_seq = request.from_seq if request.HasField("from_seq") else None
-        replica = self._shared_only(request.conversation_id)
+        try:
+            if isinstance(request, MalformedMessage):
+                raise request.error()
+            from_seq = request.from_seq if request.HasField("from_seq") else None
+            replica = self._shared_only(request.conversation_id)
+            if replica is None:
+                session = self.registry.get(request.conversation_id)
+                backlog, follower = session.follow(from_seq, request.epoch)
+        except MidstreamError as exc:
+            await self._fail(context, exc)
         if replica is not None:
             try:
                 async for message in replica.follow(request.conversation_id, from_seq,
-                                                    self.stop_signal()):
+                                                    request.epoch, self.stop_signal()):
                     yield message
             except MidstreamError as exc:
                 await self._fail(context, exc)
             return
-        try:
-            session = self.registry.get(request.conversation_id)
-            backlog, follower = session.follow(from_seq)
-        except MidstreamError as exc:
-            await self._fail(context, exc)
         if follower is None:
             for message in backlog:
                 yield message
@@ -444,7 +475,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             revisions.append(revision)
         revisions.reverse()
         return pb.GetRevisionsReply(conversation_id=session.id, revisions=revisions,
-                                    truncated=truncated)
+                                    truncated=truncated, epoch=session.epoch)
 
     # --- batch -----------------------------------------------------------------------------
 

@@ -67,6 +67,15 @@ State = WordHypothesis | UtteranceHypothesis
 _T = TypeVar("_T")
 
 
+def new_epoch() -> int:
+    """A conversation's epoch: random, never 0 (0 means "none given" on the wire).
+
+    53 bits, so that it survives any JSON reader as a number (a double holds integers up to
+    2**53 exactly); two incarnations of one id share an epoch once in 2**53.
+    """
+    return secrets.randbelow(2**53 - 1) + 1
+
+
 class Journal(Protocol):
     """Where a session also records what it publishes (a shared log, ``midstream.server._journal``).
 
@@ -238,13 +247,18 @@ class Session:
     __slots__ = (
         "_ended", "_engine", "_followers", "_metrics", "_newest", "_replay", "_revisions",
         "_shared_wire", "_utterances", "_words", "closing_messages", "end_reason", "ended_at",
-        "id", "journal", "limits", "revisions_truncated", "seq", "started_at", "timeline",
+        "epoch", "id", "journal", "limits", "revisions_truncated", "seq", "started_at",
+        "timeline",
         "word_count",
     )
 
     def __init__(self, conversation_id: str, engine: Engine, limits: ServerLimits,
                  metrics: ServerMetrics) -> None:
         self.id = conversation_id
+        # Tells this conversation apart from any other that uses or used the same id: a
+        # follower's position is only meaningful within one epoch. (A replica continuing the
+        # same conversation after a failover would carry the epoch on rather than draw one.)
+        self.epoch = new_epoch()
         self.started_at = time.time()
         self.limits = limits
         self.timeline = SpeakerTimeline(limits)
@@ -392,7 +406,7 @@ class Session:
         seq = self.seq = self.seq + 1
         now = time.time()
         update = self._newest = HypothesisUpdate(seq=seq, server_time=now, diff=diff,
-                                                 conversation_final=final)
+                                                 conversation_final=final, epoch=self.epoch)
         history = self._revisions
         if len(history) + len(diff.words) + len(diff.utterances) > history.capacity:
             # Some append below evicts the oldest kept revision.
@@ -514,7 +528,7 @@ class Session:
                 first_word += 1
         return pb.ServerMessage(snapshot=pb.Snapshot(
             seq=self.seq, words=words[first_word:], utterances=utterances[first_utterance:],
-            conversation_final=not self.live,
+            conversation_final=not self.live, epoch=self.epoch,
         ))
 
     def revisions(self) -> tuple[list[tuple[int, float, State]], bool]:
@@ -522,17 +536,21 @@ class Session:
         return [(seq, when, _unpack_state(record)) for seq, when, record in self._revisions
                 ], self.revisions_truncated
 
-    def follow(self, from_seq: int | None) -> tuple[list[pb.ServerMessage], Follower | None]:
+    def follow(self, from_seq: int | None, epoch: int = 0,
+               ) -> tuple[list[pb.ServerMessage], Follower | None]:
         """Register a follower; return what it must be sent first and its live queue.
 
         ``from_seq=None`` starts with a snapshot. A position still in the replay buffer replays
-        from there; an older one gets ``gap`` (``EVICTED``) and a snapshot. On an ended
-        conversation the backlog ends with ``ended`` and no follower is registered.
+        from there; an older one gets ``gap`` (``EVICTED``) and a snapshot. A position of
+        another epoch (``epoch`` given and not this one's), or beyond 1 without an epoch, gets
+        ``gap`` (``EPOCH_MISMATCH``) and a snapshot: sequence numbers of one conversation say
+        nothing about another that reuses its id. On an ended conversation the backlog ends with
+        ``ended`` and no follower is registered.
 
         Raises
         ------
         PositionError
-            When ``from_seq`` is beyond the next sequence number.
+            When ``from_seq`` is beyond the next sequence number (of this epoch).
         EventError
             When ``from_seq`` is 0 (sequence numbers count from 1).
         LimitExceededError
@@ -540,7 +558,8 @@ class Session:
         """
         if from_seq is not None and from_seq < 1:
             raise EventError("field 'from_seq' must be at least 1 (sequence numbers count from 1)")
-        if from_seq is not None and from_seq > self.seq + 1:
+        other_epoch = epoch not in (0, self.epoch)
+        if from_seq is not None and from_seq > self.seq + 1 and not other_epoch:
             raise PositionError(
                 f"field 'from_seq' ({from_seq}) is beyond the next sequence number "
                 f"({self.seq + 1}) of conversation {self.id}"
@@ -553,7 +572,15 @@ class Session:
                 f"limit max_followers_per_conversation is {limit}",
             )
         backlog: list[pb.ServerMessage] = []
-        if from_seq is None:
+        # Seq 1 is the start of whichever epoch: nothing was seen that could be spliced onto.
+        unchecked = epoch == 0 and from_seq is not None and from_seq > 1
+        if other_epoch or unchecked:
+            backlog.append(pb.ServerMessage(gap=pb.Gap(
+                first_missing=from_seq if from_seq is not None else 1,
+                oldest_kept=self.oldest_kept, reason=pb.GAP_REASON_EPOCH_MISMATCH,
+            )))
+            backlog.append(self.snapshot_message())
+        elif from_seq is None:
             backlog.append(self.snapshot_message())
         elif from_seq < self.oldest_kept:
             backlog.append(pb.ServerMessage(gap=pb.Gap(
@@ -583,6 +610,7 @@ class Session:
         return pb.ConversationSummary(
             conversation_id=self.id, speakers=self.timeline.speakers, words=self.word_count,
             last_seq=self.seq, started_at=self.started_at, ended=not self.live,
+            epoch=self.epoch,
         )
 
 

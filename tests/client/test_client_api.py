@@ -59,8 +59,11 @@ async def test_converse_yields_welcome_updates_in_sequence_then_ended(served: Se
     async with Client(served.target) as client:
         conversation_id, events = await _stream_demo(client, "bike-shop-1")
     assert conversation_id == "bike-shop-1"
-    assert events[0] == Welcome(conversation_id="bike-shop-1", next_seq=1)
+    welcome = events[0]
+    assert isinstance(welcome, Welcome) and welcome.epoch > 0
+    assert welcome == Welcome(conversation_id="bike-shop-1", next_seq=1, epoch=welcome.epoch)
     updates = [e for e in events if isinstance(e, HypothesisUpdate)]
+    assert {u.epoch for u in updates} == {welcome.epoch}
     assert [u.seq for u in updates] == list(range(1, len(updates) + 1))
     assert updates[-1].conversation_final
     assert events[-1] == Ended(reason=EndReason.CLOSED, last_seq=updates[-1].seq)

@@ -30,8 +30,9 @@ Received = ServerEvent | MidstreamError
 
 
 def _timeless(events: Sequence[Received]) -> list[Received]:
-    """Updates without their server time (it differs between runs), and the rest as they are."""
-    return [replace(e, server_time=0.0) if isinstance(e, HypothesisUpdate) else e
+    """Updates without their server time and epoch (they differ between conversations), and
+    the rest as they are."""
+    return [replace(e, server_time=0.0, epoch=0) if isinstance(e, HypothesisUpdate) else e
             for e in events]
 
 

@@ -21,7 +21,7 @@ from pathlib import Path
 import grpc
 import pytest
 from midstream import HypothesisUpdate, NotFoundError
-from midstream.client import Client, Reconnected, RetryPolicy
+from midstream.client import Client, Gap, GapReason, Reconnected, RetryPolicy, Snapshot
 from midstream.server import ServerLimits
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
@@ -155,7 +155,7 @@ async def test_stalled_follower_lags_and_the_caller_is_never_held_back(
     assert all(w.final for w in final.values())
     # And it can resume losslessly from the replay buffer after catching up.
     resumed = await _drain(running.stub.Follow(pb.FollowRequest(
-        conversation_id=conversation, from_seq=session.oldest_kept)))
+        conversation_id=conversation, from_seq=session.oldest_kept, epoch=session.epoch)))
     assert [m.update.seq for m in resumed[:-1]] == list(
         range(session.oldest_kept, session.seq + 1))
     await follower_channel.close()
@@ -259,6 +259,52 @@ async def test_followers_get_a_clear_answer_across_a_server_restart(
         await _drain(first.stub.Follow(pb.FollowRequest(conversation_id=conversation),
                                        wait_for_ready=True, timeout=WAIT_S))
     assert info.value.code() == grpc.StatusCode.NOT_FOUND
+
+
+async def test_a_follower_is_never_spliced_into_a_new_conversation_reusing_the_id(
+    start_server: ServerFactory,
+) -> None:
+    # The caller re-opens its own id on a restarted server; a follower that had seen seq 1..6
+    # of the first conversation resumes from 7. The new one has passed seq 7 too, so only the
+    # epoch can tell the two apart: the follower gets a gap notice and the new state.
+    first = await start_server(limits=ServerLimits(idle_timeout_s=30.0))
+    port = first.server.port
+    call = first.stub.Converse()
+    await call.write(open_event("call-7"))
+    old_epoch = (await asyncio.wait_for(call.read(), WAIT_S)).welcome.epoch
+    follower = first.stub.Follow(pb.FollowRequest(conversation_id="call-7", from_seq=1))
+    seen = [await _send(call, _word(i)) for i in range(6)]
+    followed = [(await follower.read()).update for _ in range(6)]
+    assert followed == seen and {u.epoch for u in seen} == {old_epoch}
+    await first.server.stop(0)
+
+    second = await start_server(port=port)
+    call = second.stub.Converse()
+    await call.write(open_event("call-7"))
+    new_epoch = (await asyncio.wait_for(call.read(), WAIT_S)).welcome.epoch
+    assert new_epoch != old_epoch
+    for i in range(10):
+        await _send(call, _word(100 + i))
+    resumed = second.stub.Follow(pb.FollowRequest(conversation_id="call-7", from_seq=7,
+                                                  epoch=old_epoch))
+    gap = (await asyncio.wait_for(resumed.read(), WAIT_S)).gap
+    assert (gap.first_missing, gap.reason) == (7, pb.GAP_REASON_EPOCH_MISMATCH)
+    snapshot = (await resumed.read()).snapshot
+    assert (snapshot.seq, snapshot.epoch) == (10, new_epoch)
+    assert {w.word_id for w in snapshot.words} == {f"w{100 + i}" for i in range(10)}
+    live = await _send(call, _word(110))
+    assert (await resumed.read()).update == live and live.epoch == new_epoch
+    resumed.cancel()
+
+    # The client library does the same for a follower that gives its epoch.
+    async with Client(f"127.0.0.1:{port}") as client:
+        events = client.follow("call-7", from_seq=7, epoch=old_epoch)
+        gap_event = await anext(events)
+        snapshot_event = await anext(events)
+        await events.aclose()
+    assert isinstance(gap_event, Gap) and gap_event.reason is GapReason.EPOCH_MISMATCH
+    assert isinstance(snapshot_event, Snapshot) and snapshot_event.epoch == new_epoch
+    call.cancel()
 
 
 async def _serve_process(models_dir: Path, port: int = 0,

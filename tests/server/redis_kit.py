@@ -104,11 +104,13 @@ def call_words() -> list[pb.SpokenWord]:
     return words
 
 
-def without_time(update: pb.Update) -> bytes:
-    """An update's bytes with its server time cleared (replicas stamp their own clocks)."""
+def comparable(update: pb.Update) -> bytes:
+    """An update's bytes without its server time (each replica stamps its own clock) and epoch
+    (drawn afresh for every conversation), to compare two conversations of the same words."""
     copy = pb.Update()
     copy.CopyFrom(update)
     copy.server_time = 0.0
+    copy.epoch = 0
     return copy.SerializeToString(deterministic=True)
 
 

@@ -147,11 +147,13 @@ class Caller:
                  metadata: tuple[tuple[str, str], ...] = ()) -> None:
         self.call = stub.Converse(metadata=metadata)
         self.updates: list[pb.Update] = []
+        self.epoch = 0  # the conversation's, from the welcome
 
     async def open(self, conversation_id: str = "") -> str:
         await self.call.write(open_event(conversation_id))
         message = await self.call.read()
         assert message.WhichOneof("body") == "welcome"
+        self.epoch = message.welcome.epoch
         return str(message.welcome.conversation_id)
 
     async def send(self, event: pb.ClientEvent) -> pb.Update:

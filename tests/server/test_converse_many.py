@@ -94,7 +94,8 @@ def _error(replies: list[Reply], channel: int) -> pb.ChannelError:
 
 
 def _comparable(messages: list[pb.ServerMessage]) -> list[pb.ServerMessage]:
-    """Updates and ended without server times or conversation ids (which differ per run)."""
+    """Updates and ended without server times, epochs or conversation ids (which differ per
+    conversation)."""
     out = []
     for message in messages:
         kind = message.WhichOneof("body")
@@ -102,6 +103,7 @@ def _comparable(messages: list[pb.ServerMessage]) -> list[pb.ServerMessage]:
             copy = pb.ServerMessage()
             copy.CopyFrom(message)
             copy.update.server_time = 0.0
+            copy.update.epoch = 0
             out.append(copy)
         elif kind == "ended":
             out.append(message)

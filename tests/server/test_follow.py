@@ -61,11 +61,41 @@ async def test_resume_from_last_seq_misses_and_repeats_nothing(running: Running)
     first.cancel()  # the follower disconnects mid-stream
     await _stream_words(caller, 5, offset=5)
     resumed = running.stub.Follow(
-        pb.FollowRequest(conversation_id=conversation, from_seq=got[-1].seq + 1))
+        pb.FollowRequest(conversation_id=conversation, from_seq=got[-1].seq + 1,
+                         epoch=got[-1].epoch))
     await _stream_words(caller, 5, offset=10)
     await caller.close()
     got += _updates([m async for m in resumed])
     assert got == caller.updates
+
+
+async def test_a_position_of_another_epoch_gives_gap_and_snapshot(running: Running) -> None:
+    # A sequence number means something only within its epoch: with another epoch (or with
+    # none, beyond seq 1) the follower is told and given the state, never replayed updates.
+    caller = Caller(running.stub)
+    conversation = await caller.open()
+    await _stream_words(caller, 4)
+    assert caller.epoch and all(u.epoch == caller.epoch for u in caller.updates)
+    for epoch in (caller.epoch + 1, 0):
+        follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation,
+                                                        from_seq=3, epoch=epoch))
+        gap = (await follower.read()).gap
+        assert (gap.first_missing, gap.reason) == (3, pb.GAP_REASON_EPOCH_MISMATCH)
+        snapshot = (await follower.read()).snapshot
+        assert (snapshot.seq, snapshot.epoch) == (4, caller.epoch)
+        follower.cancel()
+    # Even a position beyond this epoch's next sequence number: told, not OUT_OF_RANGE.
+    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation,
+                                                    from_seq=99, epoch=caller.epoch + 1))
+    assert (await follower.read()).gap.reason == pb.GAP_REASON_EPOCH_MISMATCH
+    follower.cancel()
+    # Seq 1 is the start of any epoch: nothing seen, nothing to splice onto.
+    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=1))
+    assert (await follower.read()).update == caller.updates[0]
+    follower.cancel()
+    listed = await running.stub.ListConversations(pb.ListConversationsRequest())
+    assert [c.epoch for c in listed.conversations] == [caller.epoch]
+    await caller.close()
 
 
 async def test_absent_position_gives_snapshot_then_live(running: Running) -> None:
@@ -88,7 +118,8 @@ async def test_evicted_position_gives_gap_and_snapshot(start_server: ServerFacto
     caller = Caller(running.stub)
     conversation = await caller.open()
     await _stream_words(caller, 15)
-    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=2))
+    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=2,
+                                                    epoch=caller.epoch))
     gap = (await follower.read()).gap
     assert (gap.first_missing, gap.oldest_kept, gap.reason) == (2, 6, pb.GAP_REASON_EVICTED)
     snapshot = (await follower.read()).snapshot
@@ -104,7 +135,7 @@ async def test_bad_positions_and_unknown_conversations_are_refused(running: Runn
     conversation = await caller.open()
     await _stream_words(caller, 3)
     cases = [
-        (pb.FollowRequest(conversation_id=conversation, from_seq=5),
+        (pb.FollowRequest(conversation_id=conversation, from_seq=5, epoch=caller.epoch),
          grpc.StatusCode.OUT_OF_RANGE, "from_seq"),
         (pb.FollowRequest(conversation_id=conversation, from_seq=0),
          grpc.StatusCode.INVALID_ARGUMENT, "from_seq"),
@@ -116,7 +147,8 @@ async def test_bad_positions_and_unknown_conversations_are_refused(running: Runn
         assert info.value.code() == code
         assert named in (info.value.details() or "")
     # The next sequence number itself is a valid place to start: live updates only.
-    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=4))
+    follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=4,
+                                                    epoch=caller.epoch))
     await _stream_words(caller, 1, offset=3)
     assert (await follower.read()).update.seq == 4
     follower.cancel()

@@ -21,7 +21,7 @@ import pytest
 import redis.asyncio as aioredis
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
-from redis_kit import RedisProcess, call_words, gaps_told, redis_server_fixture, without_time
+from redis_kit import RedisProcess, call_words, comparable, gaps_told, redis_server_fixture
 from server_kit import models_dir_fixture, words_event
 
 __all__ = ["models_dir_fixture", "redis_server_fixture"]
@@ -80,18 +80,18 @@ async def _reference(stub: pb_grpc.MidstreamStub, words: list[pb.SpokenWord]) ->
     updates: list[bytes] = []
     for word in words:
         await call.write(words_event(word))
-        updates.append(without_time((await call.read()).update))
+        updates.append(comparable((await call.read()).update))
     await call.write(pb.ClientEvent(close=pb.CloseConversation()))
     await call.done_writing()
-    updates.append(without_time((await call.read()).update))
+    updates.append(comparable((await call.read()).update))
     assert (await call.read()).ended.reason == pb.END_REASON_CLOSED
     return updates
 
 
 async def _follow(stub: pb_grpc.MidstreamStub, conversation_id: str, from_seq: int,
-                  into: list[pb.ServerMessage]) -> None:
+                  into: list[pb.ServerMessage], epoch: int = 0) -> None:
     async for message in stub.Follow(pb.FollowRequest(conversation_id=conversation_id,
-                                                      from_seq=from_seq)):
+                                                      from_seq=from_seq, epoch=epoch)):
         into.append(message)
 
 
@@ -100,6 +100,17 @@ async def _logged(url: str, conversation_id: str) -> int:
     try:
         useq = await client.hget(f"midstream:{{{conversation_id}}}:m", "useq")
         return int(useq or 0)
+    finally:
+        await client.aclose()
+
+
+async def _until_in_log(url: str, conversation_id: str) -> None:
+    """Wait until the log knows the conversation (its replica writes it right after open)."""
+    client = aioredis.Redis.from_url(url)
+    try:
+        async with asyncio.timeout(10):
+            while not await client.exists(f"midstream:{{{conversation_id}}}:m"):
+                await asyncio.sleep(0.02)
     finally:
         await client.aclose()
 
@@ -139,7 +150,8 @@ async def test_kill_9_of_the_ingesting_replica_loses_and_repeats_no_word(
     reference = await _reference(b.stub, words)
     call = a.stub.Converse()
     await call.write(pb.ClientEvent(open=pb.OpenConversation(conversation_id="call-2")))
-    await call.read()
+    epoch = (await call.read()).welcome.epoch
+    await _until_in_log(redis_server.url, "call-2")
     # Followers on both replicas from the start; B's reads the shared log.
     on_a: list[pb.ServerMessage] = []
     on_b: list[pb.ServerMessage] = []
@@ -160,6 +172,7 @@ async def test_kill_9_of_the_ingesting_replica_loses_and_repeats_no_word(
                                                               resume=True)))
     welcome = (await again.read()).welcome
     assert welcome.conversation_id == "call-2"
+    assert welcome.epoch == epoch  # the same conversation goes on
     assert 0 < welcome.events_logged <= 30
     assert welcome.next_seq == welcome.events_logged + 1  # one update per word
     for word in words[welcome.events_logged:]:
@@ -173,12 +186,13 @@ async def test_kill_9_of_the_ingesting_replica_loses_and_repeats_no_word(
     await asyncio.wait_for(follow_b, 30)
     # B's follower: every update once, no gap, and exactly the uninterrupted conversation's.
     assert gaps_told(on_b, final.seq) == 0
-    assert [without_time(m.update) for m in on_b[:-1]] == reference
+    assert [comparable(m.update) for m in on_b[:-1]] == reference
+    assert {m.update.epoch for m in on_b[:-1]} == {epoch}
     # A's follower lost its server; it resumes on B from the next seq it lacks.
     resumed_from = on_a[-1].update.seq + 1 if on_a else 1
     rest: list[pb.ServerMessage] = []
-    await asyncio.wait_for(_follow(b.stub, "call-2", resumed_from, rest), 30)
-    assert [without_time(m.update) for m in (on_a + rest)[:-1]] == reference
+    await asyncio.wait_for(_follow(b.stub, "call-2", resumed_from, rest, epoch), 30)
+    assert [comparable(m.update) for m in (on_a + rest)[:-1]] == reference
     # Every word once in the final state.
     final_words = {w.word_id for m in on_b[:-1] for w in m.update.words}
     assert final_words == {w.word_id for w in words}
@@ -190,7 +204,7 @@ async def test_workers_share_one_port_and_one_log(models_dir: Path,
     process = subprocess.Popen(
         [sys.executable, "-m", "midstream.client._cli", "serve", "--port", "0", "--workers",
          "2", "--models", str(models_dir), "--redis", redis_server.url, "--grace", "1"],
-        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
     try:
         assert process.stdout is not None
         line = await asyncio.wait_for(asyncio.to_thread(process.stdout.readline), 180)
@@ -198,9 +212,12 @@ async def test_workers_share_one_port_and_one_log(models_dir: Path,
         port = int(line.split()[2].rsplit(":", 1)[1])
         words = call_words()[:5]
         ids: list[str] = []
-        # Separate connections: the kernel spreads them over the workers.
+        # Separate connections (channels share connections unless told not to): the kernel
+        # spreads them over the workers.
         for index in range(12):
-            async with grpc.aio.insecure_channel(f"127.0.0.1:{port}") as channel:
+            async with grpc.aio.insecure_channel(
+                    f"127.0.0.1:{port}",
+                    options=[("grpc.use_local_subchannel_pool", 1)]) as channel:
                 stub = pb_grpc.MidstreamStub(channel)  # type: ignore[no-untyped-call]
                 call = stub.Converse()
                 await call.write(pb.ClientEvent(open=pb.OpenConversation(
@@ -232,7 +249,7 @@ async def test_workers_share_one_port_and_one_log(models_dir: Path,
         assert process.returncode == 0, stderr
     finally:
         if process.poll() is None:
-            process.kill()
+            os.killpg(process.pid, signal.SIGKILL)  # the supervisor and its workers
             process.communicate()
 
 

@@ -17,7 +17,7 @@ from midstream.server._ingest import apply_event
 from midstream.server._metrics import ServerMetrics
 from midstream.server._session import Session
 from midstream.wire import midstream_pb2 as pb
-from redis_kit import call_words, without_time
+from redis_kit import call_words, comparable
 from server_kit import bundle_fixture, models_dir_fixture, words_event
 
 __all__ = ["bundle_fixture", "models_dir_fixture"]
@@ -55,7 +55,7 @@ def _run(bundle: ModelBundle, events: list[pb.ClientEvent]) -> list[bytes]:
     for event in events:
         apply_event(session, event, time.monotonic(), limits)
     session.finish(pb.END_REASON_CLOSED)
-    return [without_time(m.update) for m in session.since(0)]
+    return [comparable(m.update) for m in session.since(0)]
 
 
 def test_the_same_events_give_the_same_updates_bit_for_bit(bundle: ModelBundle) -> None:
@@ -75,5 +75,5 @@ def test_a_replay_of_a_prefix_is_a_prefix_of_the_whole(bundle: ModelBundle) -> N
     session = Session("prefix", bundle.new_engine(), limits, ServerMetrics())
     for event in events[:60]:
         apply_event(session, event, time.monotonic(), limits)
-    prefix = [without_time(m.update) for m in session.since(0)]
+    prefix = [comparable(m.update) for m in session.since(0)]
     assert prefix == whole[:len(prefix)]

@@ -269,6 +269,7 @@ def update_into_wire(update: HypothesisUpdate, message: pb.Update) -> None:
     if diff.withdrawn_word_ids:
         message.withdrawn_word_ids.extend(diff.withdrawn_word_ids)
     message.conversation_final = update.conversation_final
+    message.epoch = update.epoch
 
 
 def diff_from_wire(message: pb.Update | pb.TagTranscriptReply) -> HypothesisDiff:
@@ -290,6 +291,7 @@ def update_from_wire(message: pb.Update) -> HypothesisUpdate:
         server_time=message.server_time,
         diff=diff_from_wire(message),
         conversation_final=message.conversation_final,
+        epoch=message.epoch,
     )
 
 

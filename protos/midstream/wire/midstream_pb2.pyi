@@ -40,6 +40,7 @@ class GapReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     GAP_REASON_UNSPECIFIED: _ClassVar[GapReason]
     GAP_REASON_EVICTED: _ClassVar[GapReason]
     GAP_REASON_LAGGED: _ClassVar[GapReason]
+    GAP_REASON_EPOCH_MISMATCH: _ClassVar[GapReason]
 
 class EndReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
@@ -71,6 +72,7 @@ FUNCTION_OTHER: Function
 GAP_REASON_UNSPECIFIED: GapReason
 GAP_REASON_EVICTED: GapReason
 GAP_REASON_LAGGED: GapReason
+GAP_REASON_EPOCH_MISMATCH: GapReason
 END_REASON_UNSPECIFIED: EndReason
 END_REASON_CLOSED: EndReason
 END_REASON_IDLE_TIMEOUT: EndReason
@@ -229,32 +231,36 @@ class UtteranceState(_message.Message):
     def __init__(self, utterance_id: _Optional[str] = ..., speaker: _Optional[str] = ..., word_ids: _Optional[_Iterable[str]] = ..., clean_text: _Optional[str] = ..., function: _Optional[_Union[Function, str]] = ..., fine_class: _Optional[str] = ..., confidence: _Optional[float] = ..., revision: _Optional[int] = ..., final: _Optional[bool] = ...) -> None: ...
 
 class Update(_message.Message):
-    __slots__ = ("seq", "server_time", "words", "utterances", "withdrawn_word_ids", "conversation_final")
+    __slots__ = ("seq", "server_time", "words", "utterances", "withdrawn_word_ids", "conversation_final", "epoch")
     SEQ_FIELD_NUMBER: _ClassVar[int]
     SERVER_TIME_FIELD_NUMBER: _ClassVar[int]
     WORDS_FIELD_NUMBER: _ClassVar[int]
     UTTERANCES_FIELD_NUMBER: _ClassVar[int]
     WITHDRAWN_WORD_IDS_FIELD_NUMBER: _ClassVar[int]
     CONVERSATION_FINAL_FIELD_NUMBER: _ClassVar[int]
+    EPOCH_FIELD_NUMBER: _ClassVar[int]
     seq: int
     server_time: float
     words: _containers.RepeatedCompositeFieldContainer[WordState]
     utterances: _containers.RepeatedCompositeFieldContainer[UtteranceState]
     withdrawn_word_ids: _containers.RepeatedScalarFieldContainer[str]
     conversation_final: bool
-    def __init__(self, seq: _Optional[int] = ..., server_time: _Optional[float] = ..., words: _Optional[_Iterable[_Union[WordState, _Mapping]]] = ..., utterances: _Optional[_Iterable[_Union[UtteranceState, _Mapping]]] = ..., withdrawn_word_ids: _Optional[_Iterable[str]] = ..., conversation_final: _Optional[bool] = ...) -> None: ...
+    epoch: int
+    def __init__(self, seq: _Optional[int] = ..., server_time: _Optional[float] = ..., words: _Optional[_Iterable[_Union[WordState, _Mapping]]] = ..., utterances: _Optional[_Iterable[_Union[UtteranceState, _Mapping]]] = ..., withdrawn_word_ids: _Optional[_Iterable[str]] = ..., conversation_final: _Optional[bool] = ..., epoch: _Optional[int] = ...) -> None: ...
 
 class Snapshot(_message.Message):
-    __slots__ = ("seq", "words", "utterances", "conversation_final")
+    __slots__ = ("seq", "words", "utterances", "conversation_final", "epoch")
     SEQ_FIELD_NUMBER: _ClassVar[int]
     WORDS_FIELD_NUMBER: _ClassVar[int]
     UTTERANCES_FIELD_NUMBER: _ClassVar[int]
     CONVERSATION_FINAL_FIELD_NUMBER: _ClassVar[int]
+    EPOCH_FIELD_NUMBER: _ClassVar[int]
     seq: int
     words: _containers.RepeatedCompositeFieldContainer[WordState]
     utterances: _containers.RepeatedCompositeFieldContainer[UtteranceState]
     conversation_final: bool
-    def __init__(self, seq: _Optional[int] = ..., words: _Optional[_Iterable[_Union[WordState, _Mapping]]] = ..., utterances: _Optional[_Iterable[_Union[UtteranceState, _Mapping]]] = ..., conversation_final: _Optional[bool] = ...) -> None: ...
+    epoch: int
+    def __init__(self, seq: _Optional[int] = ..., words: _Optional[_Iterable[_Union[WordState, _Mapping]]] = ..., utterances: _Optional[_Iterable[_Union[UtteranceState, _Mapping]]] = ..., conversation_final: _Optional[bool] = ..., epoch: _Optional[int] = ...) -> None: ...
 
 class Gap(_message.Message):
     __slots__ = ("first_missing", "oldest_kept", "reason")
@@ -267,14 +273,16 @@ class Gap(_message.Message):
     def __init__(self, first_missing: _Optional[int] = ..., oldest_kept: _Optional[int] = ..., reason: _Optional[_Union[GapReason, str]] = ...) -> None: ...
 
 class Welcome(_message.Message):
-    __slots__ = ("conversation_id", "next_seq", "events_logged")
+    __slots__ = ("conversation_id", "next_seq", "epoch", "events_logged")
     CONVERSATION_ID_FIELD_NUMBER: _ClassVar[int]
     NEXT_SEQ_FIELD_NUMBER: _ClassVar[int]
+    EPOCH_FIELD_NUMBER: _ClassVar[int]
     EVENTS_LOGGED_FIELD_NUMBER: _ClassVar[int]
     conversation_id: str
     next_seq: int
+    epoch: int
     events_logged: int
-    def __init__(self, conversation_id: _Optional[str] = ..., next_seq: _Optional[int] = ..., events_logged: _Optional[int] = ...) -> None: ...
+    def __init__(self, conversation_id: _Optional[str] = ..., next_seq: _Optional[int] = ..., epoch: _Optional[int] = ..., events_logged: _Optional[int] = ...) -> None: ...
 
 class Ended(_message.Message):
     __slots__ = ("reason", "last_seq")
@@ -299,28 +307,32 @@ class ServerMessage(_message.Message):
     def __init__(self, welcome: _Optional[_Union[Welcome, _Mapping]] = ..., update: _Optional[_Union[Update, _Mapping]] = ..., snapshot: _Optional[_Union[Snapshot, _Mapping]] = ..., gap: _Optional[_Union[Gap, _Mapping]] = ..., ended: _Optional[_Union[Ended, _Mapping]] = ...) -> None: ...
 
 class FollowRequest(_message.Message):
-    __slots__ = ("conversation_id", "from_seq")
+    __slots__ = ("conversation_id", "from_seq", "epoch")
     CONVERSATION_ID_FIELD_NUMBER: _ClassVar[int]
     FROM_SEQ_FIELD_NUMBER: _ClassVar[int]
+    EPOCH_FIELD_NUMBER: _ClassVar[int]
     conversation_id: str
     from_seq: int
-    def __init__(self, conversation_id: _Optional[str] = ..., from_seq: _Optional[int] = ...) -> None: ...
+    epoch: int
+    def __init__(self, conversation_id: _Optional[str] = ..., from_seq: _Optional[int] = ..., epoch: _Optional[int] = ...) -> None: ...
 
 class ConversationSummary(_message.Message):
-    __slots__ = ("conversation_id", "speakers", "words", "last_seq", "started_at", "ended")
+    __slots__ = ("conversation_id", "speakers", "words", "last_seq", "started_at", "ended", "epoch")
     CONVERSATION_ID_FIELD_NUMBER: _ClassVar[int]
     SPEAKERS_FIELD_NUMBER: _ClassVar[int]
     WORDS_FIELD_NUMBER: _ClassVar[int]
     LAST_SEQ_FIELD_NUMBER: _ClassVar[int]
     STARTED_AT_FIELD_NUMBER: _ClassVar[int]
     ENDED_FIELD_NUMBER: _ClassVar[int]
+    EPOCH_FIELD_NUMBER: _ClassVar[int]
     conversation_id: str
     speakers: _containers.RepeatedScalarFieldContainer[str]
     words: int
     last_seq: int
     started_at: float
     ended: bool
-    def __init__(self, conversation_id: _Optional[str] = ..., speakers: _Optional[_Iterable[str]] = ..., words: _Optional[int] = ..., last_seq: _Optional[int] = ..., started_at: _Optional[float] = ..., ended: _Optional[bool] = ...) -> None: ...
+    epoch: int
+    def __init__(self, conversation_id: _Optional[str] = ..., speakers: _Optional[_Iterable[str]] = ..., words: _Optional[int] = ..., last_seq: _Optional[int] = ..., started_at: _Optional[float] = ..., ended: _Optional[bool] = ..., epoch: _Optional[int] = ...) -> None: ...
 
 class ListConversationsRequest(_message.Message):
     __slots__ = ()
@@ -373,14 +385,16 @@ class Revision(_message.Message):
     def __init__(self, seq: _Optional[int] = ..., server_time: _Optional[float] = ..., word: _Optional[_Union[WordState, _Mapping]] = ..., utterance: _Optional[_Union[UtteranceState, _Mapping]] = ...) -> None: ...
 
 class GetRevisionsReply(_message.Message):
-    __slots__ = ("conversation_id", "revisions", "truncated")
+    __slots__ = ("conversation_id", "revisions", "truncated", "epoch")
     CONVERSATION_ID_FIELD_NUMBER: _ClassVar[int]
     REVISIONS_FIELD_NUMBER: _ClassVar[int]
     TRUNCATED_FIELD_NUMBER: _ClassVar[int]
+    EPOCH_FIELD_NUMBER: _ClassVar[int]
     conversation_id: str
     revisions: _containers.RepeatedCompositeFieldContainer[Revision]
     truncated: bool
-    def __init__(self, conversation_id: _Optional[str] = ..., revisions: _Optional[_Iterable[_Union[Revision, _Mapping]]] = ..., truncated: _Optional[bool] = ...) -> None: ...
+    epoch: int
+    def __init__(self, conversation_id: _Optional[str] = ..., revisions: _Optional[_Iterable[_Union[Revision, _Mapping]]] = ..., truncated: _Optional[bool] = ..., epoch: _Optional[int] = ...) -> None: ...
 
 class ModelDescription(_message.Message):
     __slots__ = ("kind", "name", "format_version", "labels", "sha256", "training_summary_json")

@@ -1,0 +1,184 @@
+"""A caller can vanish at any point of a ``Converse`` call and never leave its conversation live.
+
+Live conversations count against ``max_live_conversations``: one that outlives its caller locks
+a slot until a restart. These tests vanish at every point the handler waits, first by driving
+the handler directly (so each suspension point is reached deterministically), then over real
+gRPC with many callers cancelling right after the welcome at once.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import itertools
+from collections.abc import AsyncIterator, Callable
+from typing import Any
+
+import grpc
+import pytest
+from midstream.models import ModelBundle
+from midstream.server import ServerLimits
+from midstream.server._metrics import ServerMetrics
+from midstream.server._servicer import MidstreamServicer
+from midstream.wire import midstream_pb2 as pb
+from server_kit import (  # noqa: F401 - fixtures are found by name
+    CLOSE,
+    Caller,
+    ServerFactory,
+    bundle_fixture,
+    models_dir_fixture,
+    open_event,
+    spoken,
+    start_server_fixture,
+    words_event,
+)
+
+
+class _ScriptedContext:
+    """Just enough of a grpc.aio servicer context to drive ``Converse`` from a script.
+
+    Every ``read`` and ``abort`` yields to the event loop first, so the handler is suspended
+    at each of them; nothing ever calls the done callbacks (the handler's own cleanup must
+    suffice).
+    """
+
+    def __init__(self, events: list[pb.ClientEvent]) -> None:
+        self._events = list(events)
+        self.callbacks: list[Callable[[Any], None]] = []
+
+    async def read(self) -> object:
+        await asyncio.sleep(0)
+        return self._events.pop(0) if self._events else grpc.aio.EOF
+
+    async def abort(self, code: grpc.StatusCode, details: str) -> None:
+        await asyncio.sleep(0)
+        raise grpc.aio.AbortError(f"{code.name}: {details}")
+
+    def cancelled(self) -> bool:
+        return False
+
+    def done(self) -> bool:
+        return False
+
+    def add_done_callback(self, callback: Callable[[Any], None]) -> None:
+        self.callbacks.append(callback)
+
+
+_SCRIPT = [open_event("c"), words_event(spoken("w0", "so", start=0.0)),
+           words_event(spoken("w1", "uh", start=1.0)), CLOSE]
+
+
+async def _no_requests() -> AsyncIterator[pb.ClientEvent]:
+    # Converse reads through its context; the request iterator is never touched.
+    events: tuple[pb.ClientEvent, ...] = ()
+    for event in events:
+        yield event
+
+
+_NO_REQUESTS = _no_requests()
+
+
+async def _consume(messages: AsyncIterator[pb.ServerMessage], stop_after: int | None) -> int:
+    seen = 0
+    async for _ in messages:
+        seen += 1
+        if stop_after is not None and seen >= stop_after:
+            break
+    return seen
+
+
+@pytest.mark.parametrize("script", [_SCRIPT, _SCRIPT[:3], [open_event("c"), open_event("c")]],
+                         ids=["closed", "half-closed", "refused"])
+async def test_cancelling_at_every_await_point_ends_the_conversation(
+        bundle: ModelBundle, script: list[pb.ClientEvent],
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # Telling a cancellation from a half-close waits a moment; no wait makes it one step.
+    monkeypatch.setattr("midstream.server._ingest._CANCEL_SETTLE_S", 0.0)
+    limits = ServerLimits(idle_timeout_s=5.0)
+    servicer = MidstreamServicer(bundle, limits, ServerMetrics())
+    # Count how many times the handler yields to the loop on an undisturbed run.
+    steps = 0
+    for steps in itertools.count(1):
+        servicer = MidstreamServicer(bundle, limits, ServerMetrics())
+        context = _ScriptedContext(script)
+        task = asyncio.ensure_future(_consume(servicer.Converse(
+            _NO_REQUESTS, context), None))  # type: ignore[arg-type]
+        for _ in range(steps):
+            await asyncio.sleep(0)
+            if task.done():
+                break
+        if task.done():
+            break
+        task.cancel()
+        with pytest.raises(asyncio.CancelledError):
+            await task
+        # Whatever point it was cancelled at, no conversation is left live.
+        assert servicer.registry.live_count == 0, f"leaked when cancelled at step {steps}"
+        assert steps < 200, "the handler never finished"
+    assert task.exception() is None or isinstance(task.exception(), grpc.aio.AbortError)
+    assert steps > 5  # the run really passed several await points
+    assert servicer.registry.live_count == 0
+
+
+async def test_dropping_the_handler_at_every_message_ends_the_conversation(
+        bundle: ModelBundle) -> None:
+    # grpc stops iterating a handler whose caller went away (it is cancelled while sending a
+    # message, outside the generator) and closes it only when it is collected: closing it at
+    # each message it yields must end the conversation, the welcome included.
+    limits = ServerLimits(idle_timeout_s=5.0)
+    for stop_after in range(1, 4):  # the welcome, then each update before the final one
+        servicer = MidstreamServicer(bundle, limits, ServerMetrics())
+        context = _ScriptedContext(_SCRIPT)
+        messages = servicer.Converse(_NO_REQUESTS, context)  # type: ignore[arg-type]
+        assert await _consume(messages, stop_after) == stop_after
+        assert servicer.registry.live_count == 1
+        await messages.aclose()  # type: ignore[attr-defined]
+        assert servicer.registry.live_count == 0, f"leaked after {stop_after} messages"
+
+
+async def test_the_end_of_the_call_ends_the_conversation_without_the_handler(
+        bundle: ModelBundle) -> None:
+    # A handler suspended at a yield that grpc never resumes nor closes (a reference cycle
+    # keeps it alive): the end of the call alone must finish the conversation.
+    servicer = MidstreamServicer(bundle, ServerLimits(idle_timeout_s=5.0), ServerMetrics())
+    context = _ScriptedContext(_SCRIPT)
+    messages = servicer.Converse(_NO_REQUESTS, context)  # type: ignore[arg-type]
+    assert await _consume(messages, 1) == 1  # the welcome
+    assert servicer.registry.live_count == 1 and len(context.callbacks) == 1
+    context.callbacks[0](context)  # what grpc does when the call ends, however it ends
+    assert servicer.registry.live_count == 0
+    session = servicer.registry.get("c")
+    assert session.end_reason == pb.END_REASON_CALLER_VANISHED
+    await messages.aclose()  # type: ignore[attr-defined]
+
+
+async def test_many_callers_cancelling_after_the_welcome_leave_nothing_live(
+        start_server: ServerFactory) -> None:
+    limits = ServerLimits(idle_timeout_s=0.5, max_live_conversations=8,
+                          max_ended_conversations=16)
+    running = await start_server(limits=limits)
+    refused = 0
+
+    async def hit_and_run(calls: int) -> None:
+        nonlocal refused
+        for _ in range(calls):
+            call = running.stub.Converse()
+            await call.write(open_event())
+            try:
+                await call.read()  # the welcome (or a refusal while slots are taken)
+            except grpc.aio.AioRpcError as exc:
+                assert exc.code() == grpc.StatusCode.RESOURCE_EXHAUSTED
+                refused += 1
+            call.cancel()
+
+    # 8 concurrent callers x 40 calls each: 320 calls, each cancelled right after the welcome.
+    await asyncio.gather(*(hit_and_run(40) for _ in range(8)))
+    registry = running.server.servicer.registry
+    async with asyncio.timeout(limits.idle_timeout_s * 10):
+        while registry.live_count:
+            await asyncio.sleep(0.05)
+    assert refused < 320  # most calls really opened a conversation
+    caller = Caller(running.stub)
+    assert await caller.open("fresh")
+    await caller.send(words_event(spoken("w0", "so", start=0.0)))
+    ended = await caller.close()
+    assert ended.reason == pb.END_REASON_CLOSED
