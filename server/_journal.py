@@ -68,8 +68,10 @@ SHARED_LOG_HEALTH: Final = "midstream.v1.Midstream/shared-log"
 # Redis (single-threaded) for long (common practice, no source).
 _UPDATES_PER_CALL = 256
 _EVENTS_PER_CALL = 512
-# Conversations written per round trip.
+# Conversations, and entries in all, written per round trip: a round trip stays well within
+# timeout_s even on a busy Redis (common practice, no source).
 _CONVERSATIONS_PER_ROUND = 512
+_ENTRIES_PER_ROUND = 4096
 # Retry delays while Redis is unreachable, seconds.
 _RETRY_FIRST_S = 0.05
 _RETRY_MAX_S = 1.0
@@ -111,7 +113,16 @@ local useq = tonumber(redis.call('HGET', KEYS[3], 'useq') or '0')
 local n_meta = tonumber(ARGV[12])
 local pos = 13 + 2 * n_meta
 local first = tonumber(ARGV[6])
-for k = 1, tonumber(ARGV[5]) do
+local status = 'OK'
+local n_events = tonumber(ARGV[5])
+if n_events > 0 and first > events_done + 1 then
+  -- Redis lost logged events (a failover to a replica that had not received them): the log
+  -- can no longer rebuild the conversation, so it stops taking its events.
+  status = 'EVENTS_LOST'
+  n_events = 0
+  pos = pos + tonumber(ARGV[5])
+end
+for k = 1, n_events do
   local index = first + k - 1
   if index > events_done then
     redis.call('XADD', KEYS[2], index .. '-0', 'e', ARGV[pos])
@@ -142,10 +153,13 @@ for k = 13, 12 + 2 * n_meta do
   fields[#fields + 1] = ARGV[k]
 end
 redis.call('HSET', KEYS[3], unpack(fields))
+if status ~= 'OK' then
+  redis.call('HSET', KEYS[3], 'resumable', '0')
+end
 for k = 1, 4 do
   redis.call('PEXPIRE', KEYS[k], ARGV[3])
 end
-return 'OK'
+return status
 """
 
 
@@ -456,11 +470,16 @@ class SharedLog:
     def _build(self) -> list[_Call]:
         calls: list[_Call] = []
         now = time.time()
+        entries = 0
         for journal in list(self._dirty)[:_CONVERSATIONS_PER_ROUND]:
             if journal.dead:
                 self._forget(journal)
                 continue
-            calls.append(self._call(journal, now))
+            call = self._call(journal, now)
+            calls.append(call)
+            entries += call.n_updates + call.n_events
+            if entries >= _ENTRIES_PER_ROUND:
+                break
         return calls
 
     def _call(self, journal: ConversationJournal, now: float) -> _Call:
@@ -561,6 +580,10 @@ class SharedLog:
             self.failures_total.inc()
             return
         journal.created = True
+        if result in (b"EVENTS_LOST", "EVENTS_LOST"):
+            _log.warning("shared log lost input events of conversation %s; it can no longer "
+                         "be continued on another replica", journal.session.id)
+            journal.resumable = False
         if call.generation == journal.generation:
             del journal.updates[:call.n_updates]
             del journal.events[:call.n_events]

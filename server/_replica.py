@@ -24,10 +24,11 @@ Use from the server's event loop only.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import logging
 import time
 from collections import OrderedDict
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Iterator
 from typing import Any, Final
 
 from midstream._errors import EventError, MidstreamError, NotFoundError, UnavailableError
@@ -70,6 +71,18 @@ end
 redis.call('HSET', KEYS[1], 'owner', ARGV[2])
 return 'OK'
 """
+
+
+@contextlib.contextmanager
+def _reachable() -> Iterator[None]:
+    """Report Redis being unreachable as ``UNAVAILABLE`` (try again), not as a fault."""
+    try:
+        yield
+    except (RedisError, OSError) as exc:
+        if isinstance(exc, ResponseError):
+            raise
+        raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
+                               "try again") from exc
 
 
 def _entry(entry_id: bytes) -> tuple[int, bool]:
@@ -152,11 +165,8 @@ class Replica:
         return ConversationKeys.of(self._log.config.key_prefix, conversation_id)
 
     async def _meta(self, keys: ConversationKeys, conversation_id: str) -> dict[bytes, bytes]:
-        try:
+        with _reachable():
             meta: Any = await self._log.client.hgetall(keys.meta)
-        except (RedisError, OSError) as exc:
-            raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
-                                   "try again") from exc
         if not meta or b"inc" not in meta:
             raise NotFoundError(f"no live or kept conversation with id {conversation_id!r}")
         return dict(meta)
@@ -169,11 +179,12 @@ class Replica:
         entry id read and the ``ended`` message when the stream holds the end."""
         client = self._log.client
         for _ in range(3):
-            async with client.pipeline(transaction=True) as pipe:
-                pipe.hget(keys.meta, "inc")
-                pipe.get(keys.snapshot)
-                pipe.xrange(keys.updates, "-", "+")
-                epoch, stored, entries = await pipe.execute()
+            with _reachable():
+                async with client.pipeline(transaction=True) as pipe:
+                    pipe.hget(keys.meta, "inc")
+                    pipe.get(keys.snapshot)
+                    pipe.xrange(keys.updates, "-", "+")
+                    epoch, stored, entries = await pipe.execute()
             state = _State(pb.Snapshot.FromString(stored) if stored else None, int(epoch or 0))
             last_id = f"{state.seq}-0".encode()
             ended: pb.ServerMessage | None = None
@@ -235,7 +246,8 @@ class Replica:
                 return
             expected = state.seq + 1
         else:
-            first: Any = await client.xrange(keys.updates, f"{from_seq}-0", "+", count=1)
+            with _reachable():
+                first: Any = await client.xrange(keys.updates, f"{from_seq}-0", "+", count=1)
             oldest = _entry(first[0][0])[0] if first else logged + 1
             if oldest > from_seq and from_seq <= logged:
                 state, last_id, ended = await self._fold(keys)
@@ -304,7 +316,8 @@ class Replica:
 
     async def _oldest(self, keys: ConversationKeys, logged: int) -> int:
         """The oldest sequence number the update stream holds (``logged + 1`` when none)."""
-        first: Any = await self._log.client.xrange(keys.updates, "-", "+", count=1)
+        with _reachable():
+            first: Any = await self._log.client.xrange(keys.updates, "-", "+", count=1)
         return _entry(first[0][0])[0] if first else logged + 1
 
     # --- GetRevisions and the listing ----------------------------------------------------------
@@ -313,7 +326,8 @@ class Replica:
         """Every state the log still holds, oldest first, within the message budget."""
         keys = self._keys(conversation_id)
         meta = await self._meta(keys, conversation_id)
-        entries: Any = await self._log.client.xrange(keys.updates, "-", "+")
+        with _reachable():
+            entries: Any = await self._log.client.xrange(keys.updates, "-", "+")
         kept: list[pb.Revision] = []
         for entry_id, fields in entries:
             seq, is_end = _entry(entry_id)

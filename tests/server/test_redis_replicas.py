@@ -217,3 +217,96 @@ async def test_a_redis_restart_mid_conversation_never_costs_a_silent_gap(
     assert metrics.get_sample_value("midstream_shared_log_up") == 1
     dropped = metrics.get_sample_value("midstream_shared_log_dropped_total")
     assert (dropped == 0) == (buffer_entries > 1000)
+
+
+async def test_an_id_reused_after_its_conversation_ended_is_never_spliced_on_another_replica(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    shared = SharedLogConfig(url=redis_server.url)
+    a = await start_server(shared_log=shared)
+    b = await start_server(shared_log=shared)
+    c = await start_server(shared_log=shared)
+    first = Caller(a.stub)
+    await first.open("reused")
+    await _ingest(first, call_words()[:6])
+    await first.close()
+    old_epoch = first.updates[0].epoch
+    await _until_logged(c.stub, "reused", first.updates[-1].seq)
+    # The same id, a new conversation, ingested by B.
+    second = Caller(b.stub)
+    await second.call.write(pb.ClientEvent(open=pb.OpenConversation(conversation_id="reused")))
+    welcome = (await second.call.read()).welcome
+    assert welcome.epoch != old_epoch
+    await _ingest(second, call_words()[10:20])
+    async with asyncio.timeout(10):
+        while True:
+            listing = await c.stub.ListConversations(pb.ListConversationsRequest())
+            if any(s.conversation_id == "reused" and s.epoch == welcome.epoch
+                   and s.last_seq == second.updates[-1].seq for s in listing.conversations):
+                break
+            await asyncio.sleep(0.02)
+    # A follower of the first conversation resuming on C is told, not carried on.
+    stream = c.stub.Follow(pb.FollowRequest(conversation_id="reused", from_seq=4,
+                                            epoch=old_epoch))
+    gap, snapshot = (await stream.read()).gap, (await stream.read()).snapshot
+    stream.cancel()
+    assert gap.reason == pb.GAP_REASON_EPOCH_MISMATCH and gap.first_missing == 4
+    assert snapshot.epoch == welcome.epoch and snapshot.seq == second.updates[-1].seq
+    assert {w.word_id for w in snapshot.words} == {w.word_id for w in call_words()[10:20]}
+    # Without an epoch, a position beyond 1 is not taken on trust either.
+    stream = c.stub.Follow(pb.FollowRequest(conversation_id="reused", from_seq=4))
+    assert (await stream.read()).gap.reason == pb.GAP_REASON_EPOCH_MISMATCH
+    stream.cancel()
+    await second.close()
+
+
+async def _refusal(stub: object, request: pb.OpenConversation) -> grpc.StatusCode:
+    call = stub.Converse()  # type: ignore[attr-defined]
+    await call.write(pb.ClientEvent(open=request))
+    with pytest.raises(grpc.aio.AioRpcError) as refused:
+        await call.read()
+    code: grpc.StatusCode = refused.value.code()
+    return code
+
+
+async def test_continuing_is_refused_where_it_cannot_be_done_faithfully(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    shared = SharedLogConfig(url=redis_server.url)
+    a = await start_server(shared_log=shared)
+    b = await start_server(shared_log=shared)
+    alone = await start_server()
+    assert await _refusal(b.stub, pb.OpenConversation(
+        conversation_id="never-opened", resume=True)) == grpc.StatusCode.NOT_FOUND
+    assert await _refusal(alone.stub, pb.OpenConversation(
+        conversation_id="x", resume=True)) == grpc.StatusCode.FAILED_PRECONDITION
+    caller = Caller(a.stub)
+    await caller.open("done")
+    await _ingest(caller, call_words()[:3])
+    await caller.close()
+    await _until_logged(b.stub, "done", caller.updates[-1].seq)
+    async with asyncio.timeout(10):  # the end reaches the log with the final update
+        while not any(s.conversation_id == "done" and s.ended for s in (
+                await b.stub.ListConversations(pb.ListConversationsRequest())).conversations):
+            await asyncio.sleep(0.02)
+    assert await _refusal(b.stub, pb.OpenConversation(
+        conversation_id="done", resume=True)) == grpc.StatusCode.FAILED_PRECONDITION
+    live = Caller(a.stub)
+    await live.open("live-here")
+    await _ingest(live, call_words()[:2])
+    # Live on A itself: nothing to continue there.
+    assert await _refusal(a.stub, pb.OpenConversation(
+        conversation_id="live-here", resume=True)) == grpc.StatusCode.ALREADY_EXISTS
+    await live.close()
+
+
+async def test_a_replica_with_other_decoder_settings_refuses_to_continue(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    shared = SharedLogConfig(url=redis_server.url)
+    a = await start_server(shared_log=shared)
+    other = await start_server(shared_log=shared, max_open_words=3)
+    caller = Caller(a.stub)
+    await caller.open("lagged")
+    await _ingest(caller, call_words()[:4])
+    await _until_logged(other.stub, "lagged", caller.updates[-1].seq)
+    assert await _refusal(other.stub, pb.OpenConversation(
+        conversation_id="lagged", resume=True)) == grpc.StatusCode.FAILED_PRECONDITION
+    await caller.close()
