@@ -97,7 +97,8 @@ def one_step(args: argparse.Namespace, models: Path, script: WordScript, n: int,
         load = asyncio.run(run_load(LoadConfig(
             target=target, conversations=n, rate=args.rate, seconds=args.seconds, ramp_s=ramp,
             channels=args.channels, **mode), script, probe=probe,
-            lag_probe=MetricsProbe(spawned.metrics_url))).summary()
+            lag_probe=MetricsProbe(spawned.metrics_url) if spawned.metrics_url else None,
+        )).summary()
         base = asyncio.run(run_load(LoadConfig(
             target=target, conversations=n, rate=args.rate, seconds=args.baseline_seconds,
             ramp_s=0.0, channels=args.channels, workload="describe", **mode), script,
