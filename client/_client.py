@@ -62,7 +62,7 @@ from midstream.client._results import (
     Welcome,
     WithdrawWord,
 )
-from midstream.client._status import RETRYABLE, error_from_rpc, error_from_status
+from midstream.client._status import RETRYABLE, error_from_rpc, error_from_status, tls_failure
 from midstream.wire import _convert, midstream_pb2_grpc
 from midstream.wire import midstream_pb2 as pb
 
@@ -280,7 +280,9 @@ class Client:
                 return
             except grpc.RpcError as exc:
                 code = exc.code() if isinstance(exc, grpc.aio.AioRpcError) else None
-                if code not in RETRYABLE or attempt >= self._retry.max_attempts:
+                details = exc.details() if isinstance(exc, grpc.aio.AioRpcError) else None
+                if (code not in RETRYABLE or attempt >= self._retry.max_attempts
+                        or tls_failure(details)):
                     raise self._error(exc) from exc
                 attempt += 1
                 _log.info("follow %s: stream lost (%s); reconnect attempt %d from seq %s",

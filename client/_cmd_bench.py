@@ -86,7 +86,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("--token", default=None,
                         help="bearer token the server requires (default $MIDSTREAM_TOKEN)")
     parser.add_argument("--tls", action="store_true", help="connect with TLS")
-    parser.add_argument("--tls-ca", type=Path, default=None, metavar="FILE",
+    parser.add_argument("--ca", "--tls-ca", dest="tls_ca", type=Path, default=None,
+                        metavar="FILE",
                         help="PEM CA certificates to trust with --tls (default: system roots)")
     parser.add_argument("--conversations", "-n", type=int, default=100, metavar="N",
                         help="concurrent conversations (default 100)")

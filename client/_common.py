@@ -33,18 +33,43 @@ DEFAULT_TARGET = "127.0.0.1:50051"
 
 
 def add_server_options(parser: argparse.ArgumentParser) -> None:
-    """``--server``, ``--token`` and ``--tls`` for commands that talk to a server."""
+    """``--server``, ``--token``, ``--tls`` and ``--ca`` for commands that talk to a server."""
     parser.add_argument("--server", metavar="HOST:PORT", default=None,
                         help=f"the server (default $MIDSTREAM_SERVER or {DEFAULT_TARGET})")
     parser.add_argument("--token", default=None,
                         help="bearer token the server requires (default $MIDSTREAM_TOKEN)")
-    parser.add_argument("--tls", action="store_true", help="connect with TLS")
+    parser.add_argument("--tls", action="store_true",
+                        help="connect with TLS, trusting the system's CA certificates")
+    parser.add_argument("--ca", type=Path, default=None, metavar="FILE",
+                        help="connect with TLS, trusting the CA certificates in this PEM file "
+                             "(e.g. the server's own self-signed --tls-cert)")
+
+
+def read_ca(path: Path | None) -> bytes | None:
+    """The PEM bytes of a ``--ca`` file (``None`` without one).
+
+    Raises
+    ------
+    InputError
+        When the file cannot be read or holds no PEM certificate.
+    """
+    if path is None:
+        return None
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise InputError(f"--ca {path}: cannot read the CA file ({exc.strerror})") from exc
+    if b"-----BEGIN CERTIFICATE-----" not in data:
+        raise InputError(f"--ca {path}: not a PEM certificate file (no 'BEGIN CERTIFICATE')")
+    return data
 
 
 def client_from_args(args: argparse.Namespace) -> Client:
     target = args.server or os.environ.get("MIDSTREAM_SERVER") or DEFAULT_TARGET
     token = args.token or os.environ.get("MIDSTREAM_TOKEN") or None
-    return Client(target, token=token, tls=bool(args.tls))
+    roots = read_ca(args.ca)
+    return Client(target, token=token, tls=bool(args.tls) or roots is not None,
+                  root_certificates=roots)
 
 
 def add_input_options(parser: argparse.ArgumentParser, *, stdin: bool) -> None:

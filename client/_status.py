@@ -41,9 +41,8 @@ _BY_CODE: dict[grpc.StatusCode, _Factory] = {
     grpc.StatusCode.ALREADY_EXISTS: EventError,
     grpc.StatusCode.PERMISSION_DENIED: InputError,
     grpc.StatusCode.RESOURCE_EXHAUSTED: _limit,
-    # The server uses FAILED_PRECONDITION both for an event not allowed now and for a model that
-    # fails to load; error_from_status tells them apart by the method (see _MODEL_METHODS).
-    grpc.StatusCode.FAILED_PRECONDITION: EventError,
+    # The server's only FAILED_PRECONDITION: models that could not be loaded.
+    grpc.StatusCode.FAILED_PRECONDITION: ModelError,
     grpc.StatusCode.ABORTED: UnavailableError,
     grpc.StatusCode.OUT_OF_RANGE: EventError,
     grpc.StatusCode.UNIMPLEMENTED: MidstreamError,
@@ -53,14 +52,23 @@ _BY_CODE: dict[grpc.StatusCode, _Factory] = {
     grpc.StatusCode.UNAUTHENTICATED: InputError,
 }
 
+#: What gRPC's status details say when the TLS handshake failed (BoringSSL's words).
+_TLS_FAILURES = ("certificate_verify_failed", "ssl handshake failed", "handshake failed",
+                 "certificate verify failed", "ssl_error_ssl")
+
 #: Codes after which a follower may reconnect and resume (the server or network went away).
 RETRYABLE: frozenset[grpc.StatusCode] = frozenset(
     {grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.ABORTED, grpc.StatusCode.DEADLINE_EXCEEDED}
 )
 
 
-#: Methods whose FAILED_PRECONDITION means a model could not be used.
-_MODEL_METHODS = frozenset({"ReloadModels", "DescribeModels"})
+def tls_failure(details: str | None) -> bool:
+    """Whether an ``UNAVAILABLE`` status's details say the TLS handshake failed.
+
+    Such a failure does not go away by retrying (a wrong CA, a certificate for another host).
+    """
+    lowered = (details or "").lower()
+    return any(mark in lowered for mark in _TLS_FAILURES)
 
 
 def error_from_status(
@@ -68,9 +76,7 @@ def error_from_status(
 ) -> MidstreamError:
     """The Midstream error for a failed call's status; the message names the server.
 
-    ``method`` (the RPC's name) only matters for ``FAILED_PRECONDITION``: a
-    :class:`~midstream.ModelError` from the model methods, an
-    :class:`~midstream.EventError` (event not allowed now) elsewhere.
+    ``method`` (the RPC's name) is kept for messages; each code has one meaning.
 
     Examples
     --------
@@ -81,11 +87,15 @@ def error_from_status(
     ('NotFoundError', "server localhost:50551: no conversation 'c1' (NOT_FOUND)")
     """
     text = (details or "").strip() or "no details given"
-    if code is grpc.StatusCode.UNAVAILABLE and "connect" in text.lower():
+    lowered = text.lower()
+    if code is grpc.StatusCode.UNAVAILABLE and tls_failure(text):
+        # gRPC reports a refused certificate as a failure to connect: say what it was.
+        text = (f"TLS handshake with the server failed: the server's certificate was not "
+                f"accepted (is it signed by the CA given with --ca / root_certificates, and "
+                f"issued for this host name?) ({text})")
+    elif code is grpc.StatusCode.UNAVAILABLE and "connect" in lowered:
         text = f"cannot reach the server ({text})"
     factory = _BY_CODE.get(code, MidstreamError)
-    if code is grpc.StatusCode.FAILED_PRECONDITION and method in _MODEL_METHODS:
-        factory = ModelError
     return factory(f"server {target}: {text} ({code.name})")
 
 

@@ -43,15 +43,16 @@ async def drain_requests(requests: AsyncIterator[Any], *, seconds: float = 0.25,
         return
 
 
-def _refusal(handler: _Handler, metrics: ServerMetrics) -> _Handler:
+def _refusal(handler: _Handler, metrics: ServerMetrics,
+             reason: str = "missing or wrong bearer token in 'authorization' metadata",
+             ) -> _Handler:
     """A handler of the same shape as ``handler`` that only refuses the call."""
 
     async def refuse(request: Any, context: grpc.aio.ServicerContext[Any, Any]) -> None:
         metrics.errors.labels(code=grpc.StatusCode.UNAUTHENTICATED.name).inc()
         if handler.request_streaming:
             await drain_requests(request)
-        await context.abort(grpc.StatusCode.UNAUTHENTICATED,
-                            "missing or wrong bearer token in 'authorization' metadata")
+        await context.abort(grpc.StatusCode.UNAUTHENTICATED, reason)
 
     deserializer = handler.request_deserializer
     serializer = handler.response_serializer
@@ -85,10 +86,13 @@ class BearerTokenInterceptor(grpc.aio.ServerInterceptor):
         method = handler_call_details.method
         if handler is None or method.startswith(_OPEN_PREFIX):
             return handler
-        supplied = b""
-        for key, value in handler_call_details.invocation_metadata or ():
-            if key == "authorization":
-                supplied = value.encode() if isinstance(value, str) else value
-        if hmac.compare_digest(supplied, self._expected):
+        supplied = [value.encode() if isinstance(value, str) else value
+                    for key, value in handler_call_details.invocation_metadata or ()
+                    if key == "authorization"]
+        if len(supplied) > 1:
+            # Which one counts would depend on each proxy on the way: refuse them all.
+            return _refusal(handler, self._metrics,
+                            f"{len(supplied)} 'authorization' metadata entries; send exactly one")
+        if supplied and hmac.compare_digest(supplied[0], self._expected):
             return handler
         return _refusal(handler, self._metrics)

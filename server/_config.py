@@ -38,10 +38,20 @@ class ServerLimits:
     """Most distinct speakers in one conversation."""
     replay_updates: int = 4096
     """Updates kept per conversation for followers to resume from."""
+    replay_bytes: int = 4 * 1024 * 1024
+    """Estimated bytes of the updates kept per conversation (the two newest always stay)."""
     history_revisions: int = 32768
     """Published word and utterance states kept per conversation for ``GetRevisions``."""
+    history_bytes: int = 8 * 1024 * 1024
+    """Estimated bytes of the states kept per conversation for ``GetRevisions``."""
     snapshot_states: int = 10000
     """Latest word states, and latest utterance states, kept per conversation for snapshots."""
+    snapshot_bytes: int = 4 * 1024 * 1024
+    """Estimated bytes of the latest states kept per conversation for snapshots."""
+    max_kept_bytes: int = 1024 * 1024 * 1024
+    """Estimated bytes all conversations of the server keep (replay, history, snapshot
+    states; live and ended): over it, ended conversations are forgotten, then the live ones
+    keeping the most shed their oldest records."""
     max_followers_per_conversation: int = 32
     """Most ``Follow`` streams on one conversation at once."""
     follower_queue: int = 1024
@@ -61,14 +71,19 @@ class ServerLimits:
     """Most conversations open at once on one ``ConverseMany`` stream."""
     max_events_per_frame: int = 1024
     """Most channel events in one ``ConverseMany`` request frame."""
+    max_streams_without_conversation: int = 64
+    """Most ingest streams at once with no conversation open: ``Converse`` before its
+    ``open``, ``ConverseMany`` with no open channel. Each ends after ``idle_timeout_s``."""
 
     def __post_init__(self) -> None:
         for name in (
             "max_word_chars", "max_id_chars", "max_words_per_message", "max_live_conversations",
             "max_speakers_per_conversation", "replay_updates", "history_revisions",
-            "snapshot_states", "max_followers_per_conversation", "follower_queue",
+            "snapshot_states", "replay_bytes", "history_bytes", "snapshot_bytes",
+            "max_kept_bytes", "max_followers_per_conversation", "follower_queue",
             "max_message_bytes", "max_ended_conversations", "max_transcript_items",
             "max_channels_per_stream", "max_events_per_frame",
+            "max_streams_without_conversation",
         ):
             if getattr(self, name) < 1:
                 raise InputError(f"ServerLimits.{name} must be at least 1, not "

@@ -74,6 +74,16 @@ def apply_event(session: Session, event: pb.ClientEvent | MalformedMessage, rece
     return False
 
 
+def caller_address(context: grpc.aio.ServicerContext[Any, Any]) -> str:
+    """The caller's address without its port (``ipv4:10.0.0.7``), which retention shares by.
+
+    The port is left out because one caller may open many connections.
+    """
+    peer = context.peer() or ""
+    host, colon, port = peer.rpartition(":")
+    return host if colon and port.isdigit() else peer
+
+
 async def caller_vanished(context: grpc.aio.ServicerContext[Any, Any]) -> bool:
     """Whether an end of the request stream was a cancellation rather than a half-close.
 

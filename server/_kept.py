@@ -110,3 +110,54 @@ def unpack_update(record: UpdateRecord) -> HypothesisUpdate:
         diff=HypothesisDiff(words=tuple(map(unpack_word, record[_UPDATE_HEAD:split])),
                             utterances=tuple(map(unpack_utterance, record[split:])),
                             withdrawn_word_ids=_split(withdrawn)))
+
+
+# --- what a record costs --------------------------------------------------------------------
+#
+# Byte limits count each kept record at an estimate that is never below what it really takes
+# (tests/server/test_memory_bound.py measures a filled conversation with tracemalloc against
+# the estimate). CPython 3.11 on 64 bits, allocations as tracemalloc counts them, each rounded
+# up to 8 bytes: a tuple is 40 bytes + 8 per item + 16 of collector header (while tracked), a
+# float 24, an int above 256 28 (32), a str 49 + its length in ASCII (up to 80 + 4 per code
+# point otherwise). A string or number shared with another record or the engine is counted
+# in every record that holds it, and a record held by the replay buffer, the history and the
+# snapshot tables is counted in each: the estimate errs high, never low.
+
+#: A str object without its characters, upper bound.
+STR_OVERHEAD: Final = 80
+#: A word record without its strings: its tuple (128), confidence (32), revision (32), and the
+#: slot that holds it (16).
+WORD_RECORD_BYTES: Final = 208
+#: An utterance record without its strings: tuple (136), confidence, revision, slot.
+UTTERANCE_RECORD_BYTES: Final = 216
+#: An update record without its states and per-state slots: tuple head (56 + 6 x 8), seq,
+#: server time, the withdrawn-ids string's overhead, slot.
+UPDATE_RECORD_BYTES: Final = 56 + 48 + 32 + 32 + STR_OVERHEAD + 16
+#: A revision entry around its record: the (seq, time, record) tuple (80), seq, time, slot.
+REVISION_ENTRY_BYTES: Final = 80 + 32 + 32 + 16
+#: A snapshot table's entry around its record (an ordered dictionary's slot and links).
+TABLE_ENTRY_BYTES: Final = 128
+
+
+def _chars(text: str) -> int:
+    # isascii() is O(1) in CPython; a non-ASCII string takes up to 4 bytes per code point.
+    return len(text) if text.isascii() else 4 * len(text)
+
+
+def word_record_bytes(record: WordRecord) -> int:
+    """Estimated bytes of a word record (never below its real size)."""
+    repaired_by = record[6]
+    return (WORD_RECORD_BYTES + 2 * STR_OVERHEAD + _chars(record[0]) + _chars(record[1])
+            + (STR_OVERHEAD + _chars(repaired_by) if repaired_by is not None else 0))
+
+
+def utterance_record_bytes(record: UtteranceRecord) -> int:
+    """Estimated bytes of an utterance record (never below its real size)."""
+    return (UTTERANCE_RECORD_BYTES + 5 * STR_OVERHEAD + _chars(record[0]) + _chars(record[1])
+            + _chars(record[2]) + _chars(record[3]) + _chars(record[5]))
+
+
+def update_record_bytes(record: UpdateRecord, states_bytes: int) -> int:
+    """Estimated bytes of an update record whose states' records cost ``states_bytes``."""
+    return (UPDATE_RECORD_BYTES + 8 * (len(record) - _UPDATE_HEAD) + _chars(record[3])
+            + states_bytes)

@@ -43,7 +43,7 @@ from typing import TYPE_CHECKING
 import grpc
 from midstream._errors import EventError, LimitExceededError, MidstreamError, UnavailableError
 from midstream.server._decode import MalformedMessage
-from midstream.server._ingest import apply_event, caller_vanished
+from midstream.server._ingest import apply_event, caller_address, caller_vanished
 from midstream.server._session import Session, message_budget
 from midstream.server._status import (
     FieldLimitError,
@@ -82,12 +82,13 @@ class _Channel:
 class ManyStream:
     """The server side of one ``ConverseMany`` call. Use from the server's event loop only."""
 
-    __slots__ = ("_channels", "_context", "_highest", "_out", "_servicer", "_waited")
+    __slots__ = ("_channels", "_context", "_highest", "_out", "_owner", "_servicer", "_waited")
 
     def __init__(self, servicer: MidstreamServicer,
                  context: grpc.aio.ServicerContext[pb.ClientFrame, pb.ServerFrame]) -> None:
         self._servicer = servicer
         self._context = context
+        self._owner = ""  # the caller's address, read when the call runs
         self._channels: dict[int, _Channel] = {}
         self._highest = 0  # the highest channel number opened so far
         # Seconds the server has spent waiting for the caller's next frame: the idle clock.
@@ -99,6 +100,7 @@ class ManyStream:
     async def run(self) -> AsyncIterator[pb.ServerFrame]:
         """Serve the call: read frames, apply them, yield reply frames, until the stream ends."""
         servicer, context = self._servicer, self._context
+        self._owner = caller_address(context)
         limits = servicer.limits
         stop = servicer.stop_signal()
         if stop.done():
@@ -112,15 +114,21 @@ class ManyStream:
         sweep_every = min(limits.idle_timeout_s / _SWEEPS_PER_TIMEOUT, _MAX_SWEEP_S)
         next_sweep = sweep_every
         read: asyncio.Future[pb.ClientFrame] | None = None
+        # A stream with no open channel counts against max_streams_without_conversation and
+        # ends after idle_timeout_s of it (on the waiting clock).
+        try:
+            servicer.enter_waiting()
+        except LimitExceededError as exc:
+            await servicer.refuse_stream(context, exc)
+        waiting, empty_since = True, 0.0
         try:
             while True:
                 if read is None:
                     # The stubs say a frame; at the end of the stream it is grpc.aio.EOF.
                     read = asyncio.ensure_future(context.read())
                 pending: asyncio.Future[pb.ClientFrame] = read
-                # With no channel open nothing can time out: wait for the caller as long as it
-                # takes (keepalive pings notice a dead peer).
-                timeout = max(next_sweep - self._waited, 0.0) if self._channels else None
+                timeout = max((next_sweep if self._channels
+                               else empty_since + limits.idle_timeout_s) - self._waited, 0.0)
                 began = loop.time()
                 await asyncio.wait((pending, stop), timeout=timeout,
                                    return_when=asyncio.FIRST_COMPLETED)
@@ -158,7 +166,23 @@ class ManyStream:
                     next_sweep = self._waited + sweep_every
                 for frame in self._frames():
                     yield frame
+                if waiting == bool(self._channels):  # a first channel opened, or the last ended
+                    waiting = not waiting
+                    if waiting:
+                        servicer.enter_waiting(check=False)
+                        empty_since = self._waited
+                    else:
+                        servicer.leave_waiting()
+                if waiting and self._waited - empty_since >= limits.idle_timeout_s:
+                    if read is not None:
+                        read.cancel()  # the refusal reads what is in flight itself
+                        read = None
+                    await servicer.refuse_stream(context, ProtocolStateError(
+                        f"no channel was open on this stream for idle_timeout_s "
+                        f"({limits.idle_timeout_s} s)"))
         finally:
+            if waiting:
+                servicer.leave_waiting()
             if read is not None and not read.done():
                 read.cancel()
             # Cancelled, or the caller went away mid-stream: finalise for the followers.
@@ -217,7 +241,8 @@ class ManyStream:
             self._refuse(number, UnavailableError("the server is shutting down"))
             return
         try:
-            session = servicer.registry.open(conversation_id, servicer.bundle)
+            session = servicer.registry.open(conversation_id, servicer.bundle,
+                                             owner=self._owner)
         except MidstreamError as exc:
             self._refuse(number, exc)
             return

@@ -31,7 +31,13 @@ from collections import OrderedDict
 from collections.abc import AsyncIterator, Iterator
 from typing import Any, Final
 
-from midstream._errors import EventError, MidstreamError, NotFoundError, UnavailableError
+from midstream._errors import (
+    EventError,
+    MidstreamError,
+    ModelError,
+    NotFoundError,
+    UnavailableError,
+)
 from midstream.server._config import ServerLimits
 from midstream.server._ingest import apply_event
 from midstream.server._journal import (
@@ -403,17 +409,23 @@ class Replica:
                 f"conversation id {conversation_id!r} is live in the shared log; continue it "
                 "with open.resume, or choose another id")
 
-    async def resume(self, conversation_id: str, registry: SessionRegistry, bundle: Bundle,
-                     ) -> tuple[Session, int]:
+    async def resume(self, conversation_id: str, registry: SessionRegistry, bundle: Bundle, *,
+                     owner: str = "") -> tuple[Session, int]:
         """Continue ``conversation_id`` here; returns the session and the events replayed.
+
+        ``owner`` names the caller, as :meth:`SessionRegistry.open` takes it.
 
         Raises
         ------
         NotFoundError
             The log holds no such conversation.
         ProtocolStateError
-            It has ended, its logged input is incomplete, it was decoded by other models, or
-            replaying its input did not give what the log holds.
+            It has ended, or its logged input is incomplete (``INVALID_ARGUMENT``: nothing to
+            continue; open a new conversation).
+        ModelError
+            It was decoded by other models or decoder settings than this replica's, or
+            replaying its input did not give what the log holds (``FAILED_PRECONDITION``:
+            continue it on a replica serving what it was decoded with).
         ConflictError
             It is live on this replica already.
         UnavailableError
@@ -433,9 +445,9 @@ class Replica:
                 "than the local buffer held)")
         models = self._log.models()
         if meta.get(b"models", b"").decode() != models:
-            raise ProtocolStateError(
-                f"conversation {conversation_id!r} was decoded by other models than this "
-                "replica serves; continue it on a replica serving the same models")
+            raise ModelError(
+                f"conversation {conversation_id!r} was decoded by other models or decoder "
+                "settings than this replica serves; continue it on a replica serving the same")
         client = self._log.client
         if self._claim is None:
             self._claim = client.register_script(_CLAIM)
@@ -454,7 +466,7 @@ class Replica:
             if not _entry(entry_id)[1]:
                 stored = pb.Update.FromString(fields[b"u"])
                 break
-        session = registry.open(conversation_id, bundle)
+        session = registry.open(conversation_id, bundle, owner=owner)
         # The same conversation goes on: it keeps its epoch (followers' positions stay valid).
         session.epoch = int(meta[b"inc"])
         journal = session.journal
@@ -469,7 +481,7 @@ class Replica:
             missing = self._check(session, stored)
         except MidstreamError as exc:
             registry.forget(session)
-            if isinstance(exc, ProtocolStateError):
+            if isinstance(exc, ProtocolStateError | ModelError):
                 raise
             raise ProtocolStateError(
                 f"conversation {conversation_id!r} cannot be continued: replaying its logged "
@@ -508,7 +520,7 @@ class Replica:
                 mine.CopyFrom(replayed[0].update)
                 mine.server_time = stored.server_time
                 if mine != stored:
-                    raise ProtocolStateError(
+                    raise ModelError(
                         f"conversation {session.id} cannot be continued: replaying its input "
                         f"gave a different update {logged} than the log holds (other models "
                         "or decoder settings)")

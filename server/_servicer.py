@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING, Any, NoReturn
 import grpc
 from midstream._errors import (
     EventError,
+    LimitExceededError,
     MidstreamError,
     ModelError,
     NotFoundError,
@@ -33,7 +34,7 @@ from midstream._errors import (
 from midstream._types import HypothesisDiff, UtteranceHypothesis, WordHypothesis
 from midstream.server._config import ServerLimits
 from midstream.server._decode import MalformedMessage
-from midstream.server._ingest import apply_event, caller_vanished
+from midstream.server._ingest import apply_event, caller_address, caller_vanished
 from midstream.server._limits import SpeakerTimeline, check_id, check_word
 from midstream.server._many import ManyStream
 from midstream.server._metrics import ServerMetrics
@@ -173,6 +174,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             from midstream.server._replica import Replica  # noqa: PLC0415 - see above
             self.replica = Replica(shared, limits)
         self._stopping = False
+        self._waiting = 0  # ingest streams without a conversation open
         # One future for every stream waiting on a stop, made on first use (on the loop):
         # a wait task per stream cost about a kilobyte each for the whole conversation.
         self._stop_signal: asyncio.Future[None] | None = None
@@ -189,6 +191,35 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     def stopping(self) -> bool:
         """Whether :meth:`begin_stopping` was called."""
         return self._stopping
+
+    def enter_waiting(self, *, check: bool = True) -> None:
+        """Count an ingest stream that has no conversation open (yet, or any more).
+
+        Such a stream costs the server memory and a slot but does nothing, so their number is
+        capped: without it a caller could hold thousands open. ``check=False`` counts a stream
+        that is already running (its last channel ended) without refusing it.
+
+        Raises
+        ------
+        LimitExceededError
+            When ``max_streams_without_conversation`` are already waiting.
+        """
+        limit = self._limits.max_streams_without_conversation
+        if check and self._waiting >= limit:
+            raise LimitExceededError(
+                "max_streams_without_conversation", limit,
+                f"{limit} streams have no conversation open; limit "
+                f"max_streams_without_conversation is {limit}")
+        self._waiting += 1
+
+    def leave_waiting(self) -> None:
+        """The stream counted by :meth:`enter_waiting` opened a conversation or ended."""
+        self._waiting -= 1
+
+    @property
+    def waiting(self) -> int:
+        """Ingest streams without a conversation open."""
+        return self._waiting
 
     def begin_stopping(self) -> None:
         """Refuse new conversations and interrupt streams that wait outside one; idempotent."""
@@ -252,8 +283,15 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self, request_iterator: AsyncIterator[pb.ClientEvent],
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
-        with self._reader(context, self.stop_signal()) as reader:
-            first = await reader.next()
+        try:
+            self.enter_waiting()
+        except LimitExceededError as exc:
+            await self.refuse_stream(context, exc)
+        try:
+            with self._reader(context, self.stop_signal()) as reader:
+                first = await reader.next()
+        finally:
+            self.leave_waiting()
         if isinstance(first, MalformedMessage):
             await self.refuse_stream(context, first.error())
         if not isinstance(first, pb.ClientEvent):
@@ -271,7 +309,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if self._stopping:
             await self.refuse_stream(context, UnavailableError("the server is shutting down"))
         try:
-            session, logged = await self._open(first.open)
+            session, logged = await self._open(first.open, owner=caller_address(context))
         except MidstreamError as exc:
             await self.refuse_stream(context, exc)
         # From here on the conversation is this call's to end, however the call ends. grpc
@@ -296,25 +334,34 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if session.live:
             self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
 
-    async def _open(self, request: pb.OpenConversation) -> tuple[Session, int]:
-        """A new conversation, or one continued from the shared log; and the events logged."""
+    async def _open(self, request: pb.OpenConversation, *, owner: str,
+                    ) -> tuple[Session, int]:
+        """A new conversation, or one continued from the shared log; and the events logged.
+
+        ``owner`` names the caller (its address), as :meth:`SessionRegistry.open` takes it."""
         if request.resume:
             if self.replica is None or not request.conversation_id:
                 raise ProtocolStateError(
                     "open.resume continues a conversation by its id on servers that share a "
                     "log (midstream serve --redis)")
             return await self.replica.resume(request.conversation_id, self.registry,
-                                             self.bundle)
+                                             self.bundle, owner=owner)
         if self.replica is not None and request.conversation_id:
             await self.replica.check_new(request.conversation_id)
-        return self.registry.open(request.conversation_id, self.bundle), 0
+        return self.registry.open(request.conversation_id, self.bundle, owner=owner), 0
 
     def _shared_only(self, conversation_id: str) -> Replica | None:
-        """The replica view when this server shares a log and does not hold the conversation."""
+        """The replica view when this server shares a log and does not hold the conversation.
+
+        Raises
+        ------
+        EventError, FieldLimitError
+            For an id no conversation can have (as :meth:`_known`).
+        """
         if self.replica is None:
             return None
         try:
-            self.registry.get(conversation_id)
+            self._known(conversation_id)
         except NotFoundError:
             return self.replica
         return None
@@ -398,6 +445,21 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
 
     # --- Follow, list, revisions ---------------------------------------------------------
 
+    def _known(self, conversation_id: str) -> Session:
+        """A live or kept conversation, its id checked first (no over-long id is echoed back).
+
+        Raises
+        ------
+        EventError
+            For an empty id or one holding a control character.
+        FieldLimitError
+            For an id over ``max_id_chars``.
+        NotFoundError
+            When no such conversation is live or kept.
+        """
+        check_id(conversation_id, "conversation_id", self._limits)
+        return self.registry.get(conversation_id)
+
     async def Follow(  # noqa: N802
         self, request: pb.FollowRequest | MalformedMessage,
         context: grpc.aio.ServicerContext[pb.FollowRequest, pb.ServerMessage],
@@ -408,7 +470,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             from_seq = request.from_seq if request.HasField("from_seq") else None
             replica = self._shared_only(request.conversation_id)
             if replica is None:
-                session = self.registry.get(request.conversation_id)
+                session = self._known(request.conversation_id)
                 backlog, follower = session.follow(from_seq, request.epoch)
         except MidstreamError as exc:
             await self._fail(context, exc)
@@ -447,14 +509,11 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self, request: pb.GetRevisionsRequest,
         context: grpc.aio.ServicerContext[pb.GetRevisionsRequest, pb.GetRevisionsReply],
     ) -> pb.GetRevisionsReply:
-        replica = self._shared_only(request.conversation_id)
-        if replica is not None:
-            try:
-                return await replica.revisions(request.conversation_id)
-            except MidstreamError as exc:
-                await self._fail(context, exc)
         try:
-            session = self.registry.get(request.conversation_id)
+            replica = self._shared_only(request.conversation_id)
+            if replica is not None:
+                return await replica.revisions(request.conversation_id)
+            session = self._known(request.conversation_id)
         except MidstreamError as exc:
             await self._fail(context, exc)
         kept, truncated = session.revisions()

@@ -41,6 +41,8 @@ from midstream._types import (
 )
 from midstream.server._config import ServerLimits
 from midstream.server._kept import (
+    REVISION_ENTRY_BYTES,
+    TABLE_ENTRY_BYTES,
     UPDATE_SEQ,
     UTTERANCE_REVISION,
     WORD_REVISION,
@@ -53,6 +55,9 @@ from midstream.server._kept import (
     unpack_update,
     unpack_utterance,
     unpack_word,
+    update_record_bytes,
+    utterance_record_bytes,
+    word_record_bytes,
 )
 from midstream.server._limits import SpeakerTimeline, check_id
 from midstream.server._metrics import ServerMetrics
@@ -98,8 +103,25 @@ def message_budget(limits: ServerLimits) -> int:
     return int(limits.max_message_bytes * 0.9)
 
 
+class KeptBytes:
+    """The estimated bytes every conversation of one server keeps, against ``max_kept_bytes``.
+
+    Sessions add what they keep and take off what they drop; when ``used`` goes over ``limit``
+    they call :attr:`relieve` (the registry's, which forgets ended conversations and sheds the
+    oldest records of the largest live ones). Use from the event loop thread only.
+    """
+
+    __slots__ = ("limit", "relieve", "used")
+
+    def __init__(self, limit: int) -> None:
+        self.limit = limit
+        self.used = 0
+        self.relieve: Callable[[], None] = lambda: None
+
+
 class _Recent(Generic[_T]):
-    """The newest ``capacity`` items appended, oldest first.
+    """The newest items appended, oldest first: at most ``capacity`` of them and, when given
+    costs, at most ``byte_capacity`` bytes of them (the newest ``keep`` are kept regardless).
 
     A ``deque(maxlen=...)`` allocates a 64-slot block (over 500 bytes) when made, and a session
     has two; this list grows with its content instead. Evicted slots are cleared at once, and
@@ -107,22 +129,58 @@ class _Recent(Generic[_T]):
     twice ``capacity`` slots and appending stays amortised O(1).
     """
 
-    __slots__ = ("_head", "_items", "capacity")
+    __slots__ = ("_costs", "_head", "_items", "byte_capacity", "bytes", "capacity", "evicted",
+                 "keep")
 
-    def __init__(self, capacity: int) -> None:
+    def __init__(self, capacity: int, byte_capacity: int | None = None, keep: int = 0) -> None:
         self.capacity = capacity
+        self.byte_capacity = byte_capacity
+        self.keep = keep
         self._items: list[_T | None] = []
+        self._costs: list[int] = []  # parallel to _items
         self._head = 0  # index of the oldest kept item
+        self.bytes = 0  # the costs of the kept items
+        self.evicted = False  # whether any item was ever dropped
 
-    def append(self, item: _T) -> None:
-        items = self._items
-        items.append(item)
-        if len(items) - self._head > self.capacity:
-            items[self._head] = None  # release the evicted item now
-            self._head += 1
-            if self._head * 2 > len(items):
-                del items[:self._head]
-                self._head = 0
+    def append(self, item: _T, cost: int = 0) -> int:
+        """Keep ``item`` (which costs ``cost`` bytes), dropping the oldest over the limits.
+
+        Returns the change in :attr:`bytes`.
+        """
+        self._items.append(item)
+        self._costs.append(cost)
+        self.bytes += cost
+        freed = 0
+        if len(self._items) - self._head > self.capacity:
+            freed += self._drop_oldest()
+        byte_capacity = self.byte_capacity
+        if byte_capacity is not None:
+            while self.bytes > byte_capacity and len(self) > self.keep:
+                freed += self._drop_oldest()
+        return cost - freed
+
+    def shed(self, goal: int) -> int:
+        """Drop the oldest items (all but the newest ``keep``) until ``goal`` bytes are freed.
+
+        Returns the bytes freed.
+        """
+        freed = 0
+        while freed < goal and len(self) > self.keep:
+            freed += self._drop_oldest()
+        return freed
+
+    def _drop_oldest(self) -> int:
+        items, head = self._items, self._head
+        cost = self._costs[head]
+        items[head] = None  # release the evicted item now
+        self.bytes -= cost
+        self.evicted = True
+        head = self._head = head + 1
+        if head * 2 > len(items):
+            del items[:head]
+            del self._costs[:head]
+            self._head = 0
+        return cost
 
     def __len__(self) -> int:
         return len(self._items) - self._head
@@ -245,16 +303,22 @@ class Session:
 
     # Thousands may be live at once: no per-instance __dict__.
     __slots__ = (
-        "_ended", "_engine", "_followers", "_metrics", "_newest", "_replay", "_revisions",
-        "_shared_wire", "_utterances", "_words", "closing_messages", "end_reason", "ended_at",
-        "epoch", "id", "journal", "limits", "revisions_truncated", "seq", "started_at",
+        "_budget", "_ended", "_engine", "_followers", "_metrics", "_newest", "_replay",
+        "_revisions", "_shared_wire", "_table_bytes", "_utterances", "_words", "closing_messages",
+        "end_reason", "ended_at",
+        "epoch", "id", "journal", "limits", "owner", "revisions_truncated", "seq", "started_at",
         "timeline",
         "word_count",
     )
 
     def __init__(self, conversation_id: str, engine: Engine, limits: ServerLimits,
-                 metrics: ServerMetrics) -> None:
+                 metrics: ServerMetrics, *, budget: KeptBytes | None = None,
+                 owner: str = "") -> None:
         self.id = conversation_id
+        # Who opened it (the caller's address without its port), so that retention can share
+        # room between callers: one caller cannot push everybody's ended conversations out.
+        self.owner = owner
+        self._budget = budget
         # Tells this conversation apart from any other that uses or used the same id: a
         # follower's position is only meaningful within one epoch. (A replica continuing the
         # same conversation after a failover would carry the epoch on rather than draw one.)
@@ -271,7 +335,10 @@ class Session:
         self._metrics = metrics
         # Made on first use (see ended_signal): most conversations never need one.
         self._ended: asyncio.Future[None] | None = None
-        self._replay: _Recent[UpdateRecord] = _Recent(limits.replay_updates)
+        # The two newest updates are kept whatever they cost: the caller is sent what an event
+        # published (at most an update and the final one) right after it.
+        self._replay: _Recent[UpdateRecord] = _Recent(limits.replay_updates,
+                                                      limits.replay_bytes, keep=2)
         # The newest update as published, so the usual read (the one update since the caller
         # was last sent) needs no record turned back into objects.
         self._newest: HypothesisUpdate | None = None
@@ -282,7 +349,8 @@ class Session:
         self._utterances: OrderedDict[str, UtteranceRecord] = OrderedDict()
         # (seq, server time, record): one level of nesting, see midstream.server._kept.
         self._revisions: _Recent[tuple[int, float, WordRecord | UtteranceRecord]] = _Recent(
-            limits.history_revisions)
+            limits.history_revisions, limits.history_bytes)
+        self._table_bytes = 0  # the estimated bytes of _words and _utterances
         self.revisions_truncated = False
         # A dict rather than a set: an empty set costs over 200 bytes, an empty dict 64.
         self._followers: dict[Follower, None] = {}
@@ -408,10 +476,11 @@ class Session:
         update = self._newest = HypothesisUpdate(seq=seq, server_time=now, diff=diff,
                                                  conversation_final=final, epoch=self.epoch)
         history = self._revisions
-        if len(history) + len(diff.words) + len(diff.utterances) > history.capacity:
-            # Some append below evicts the oldest kept revision.
-            self.revisions_truncated = True
-        remember, kept = history.append, self.limits.snapshot_states
+        remember, limits = history.append, self.limits
+        kept, table_limit = limits.snapshot_states, limits.snapshot_bytes
+        table = table_before = self._table_bytes
+        grown = 0  # bytes the replay buffer and the history grew by
+        states_bytes = 0
         revised = 0
         words = self._words
         word_records: list[WordRecord] = []
@@ -419,29 +488,57 @@ class Session:
             # A revision is a state whose revision count went up (not a word turning final).
             word_id = word.word_id
             record = pack_word(word)
+            cost = word_record_bytes(record)
+            states_bytes += cost
             before = words.get(word_id)
-            revised += word.revision > (before[WORD_REVISION] if before is not None else 0)
+            if before is not None:
+                revised += word.revision > before[WORD_REVISION]
+                table -= word_record_bytes(before)
+            else:
+                revised += word.revision > 0
+                table += TABLE_ENTRY_BYTES
+            table += cost
             words[word_id] = record  # a known id keeps its place: the oldest are dropped first
-            if len(words) > kept:
-                words.popitem(last=False)
-            remember((seq, now, record))
+            while len(words) > kept or (table > table_limit and words):
+                table -= word_record_bytes(words.popitem(last=False)[1]) + TABLE_ENTRY_BYTES
+            grown += remember((seq, now, record), cost + REVISION_ENTRY_BYTES)
             word_records.append(record)
         utterances = self._utterances
         utterance_records: list[UtteranceRecord] = []
         for utterance in diff.utterances:
             utterance_id = utterance.utterance_id
             urecord = pack_utterance(utterance)
+            cost = utterance_record_bytes(urecord)
+            states_bytes += cost
             previous = utterances.get(utterance_id)
-            revised += utterance.revision > (
-                previous[UTTERANCE_REVISION] if previous is not None else 0)
+            if previous is not None:
+                revised += utterance.revision > previous[UTTERANCE_REVISION]
+                table -= utterance_record_bytes(previous)
+            else:
+                revised += utterance.revision > 0
+                table += TABLE_ENTRY_BYTES
+            table += cost
             utterances[utterance_id] = urecord
-            if len(utterances) > kept:
-                utterances.popitem(last=False)
-            remember((seq, now, urecord))
+            while len(utterances) > kept or (table > table_limit and utterances):
+                table -= (utterance_record_bytes(utterances.popitem(last=False)[1])
+                          + TABLE_ENTRY_BYTES)
+            grown += remember((seq, now, urecord), cost + REVISION_ENTRY_BYTES)
             utterance_records.append(urecord)
-        self._replay.append(pack_update(update, word_records, utterance_records))
+        if history.evicted:
+            self.revisions_truncated = True
+        record_of_update = pack_update(update, word_records, utterance_records)
+        grown += self._replay.append(record_of_update,
+                                     update_record_bytes(record_of_update, states_bytes))
         for word_id in diff.withdrawn_word_ids:
-            words.pop(word_id, None)
+            gone = words.pop(word_id, None)
+            if gone is not None:
+                table -= word_record_bytes(gone) + TABLE_ENTRY_BYTES
+        self._table_bytes = table
+        budget = self._budget
+        if budget is not None:
+            budget.used += grown + table - table_before
+            if budget.used > budget.limit:
+                budget.relieve()
         if self._followers:
             message = self._shared_wire = _to_wire(update)
             for follower in self._followers:
@@ -453,6 +550,35 @@ class Session:
         if received is not None:
             tally.observe_latency(time.monotonic() - received)
         return update
+
+    @property
+    def kept_bytes(self) -> int:
+        """Estimated bytes of the replay buffer, the history and the snapshot tables."""
+        return self._replay.bytes + self._revisions.bytes + self._table_bytes
+
+    def shed(self, goal: int) -> int:
+        """Drop the oldest kept records until ``goal`` bytes are freed; return the bytes freed.
+
+        The replay buffer goes first (a follower resuming there gets ``gap`` ``EVICTED`` and a
+        snapshot), then the history (``GetRevisions`` says ``truncated``), then the oldest
+        states of the snapshot tables. The two newest updates stay. The caller accounts for
+        the freed bytes (this does not touch the server's budget).
+        """
+        freed = self._replay.shed(goal)
+        if freed < goal:
+            dropped = self._revisions.shed(goal - freed)
+            if dropped:
+                self.revisions_truncated = True
+            freed += dropped
+        words, utterances = self._words, self._utterances
+        while freed < goal and (words or utterances):
+            if words and (not utterances or len(words) >= len(utterances)):
+                cost = word_record_bytes(words.popitem(last=False)[1])
+            else:
+                cost = utterance_record_bytes(utterances.popitem(last=False)[1])
+            freed += cost + TABLE_ENTRY_BYTES
+            self._table_bytes -= cost + TABLE_ENTRY_BYTES
+        return freed
 
     # --- reading ---------------------------------------------------------------------------
 
@@ -619,7 +745,11 @@ class SessionRegistry:
 
     Ended conversations stay ``ended_retention_s`` seconds (at most ``max_ended_conversations``
     of them) so late followers and ``GetRevisions`` still find them; they are dropped lazily
-    whenever the registry is touched.
+    whenever the registry is touched. When more must go (too many ended, or the server's kept
+    bytes over ``max_kept_bytes``), the oldest-ended conversation of the caller that has the
+    most of them kept goes first: one caller ending conversations in a hurry pushes out its own,
+    not everybody's. When no ended conversation is left and the bytes are still over, the live
+    conversations that keep the most shed their oldest records, down to a common level.
     """
 
     def __init__(self, limits: ServerLimits, metrics: ServerMetrics, *,
@@ -629,8 +759,11 @@ class SessionRegistry:
         self._journal = journal  # gives each new session its journal (a shared log)
         self._live: dict[str, Session] = {}
         self._ended: OrderedDict[str, Session] = OrderedDict()
+        self._ended_by_owner: dict[str, int] = {}
+        self.kept = KeptBytes(limits.max_kept_bytes)
+        self.kept.relieve = self._relieve
 
-    def open(self, conversation_id: str, bundle: Bundle) -> Session:
+    def open(self, conversation_id: str, bundle: Bundle, *, owner: str = "") -> Session:
         """Start a conversation with a fresh engine from ``bundle``.
 
         An empty id gets an unguessable one (``secrets.token_urlsafe``), never starting with
@@ -659,7 +792,8 @@ class SessionRegistry:
                 "max_live_conversations", limit,
                 f"{limit} conversations are live; limit max_live_conversations is {limit}",
             )
-        session = Session(conversation_id, bundle.new_engine(), self._limits, self._metrics)
+        session = Session(conversation_id, bundle.new_engine(), self._limits, self._metrics,
+                          budget=self.kept, owner=owner)
         if self._journal is not None:
             session.journal = self._journal(session)
         self._live[conversation_id] = session
@@ -672,8 +806,10 @@ class SessionRegistry:
         messages = session.finish(reason)
         if self._live.pop(session.id, None) is not None:
             self._ended[session.id] = session
+            owners = self._ended_by_owner
+            owners[session.owner] = owners.get(session.owner, 0) + 1
             while len(self._ended) > self._limits.max_ended_conversations:
-                self._ended.popitem(last=False)
+                self._forget_one()
             self._metrics.live.set(len(self._live))
         return messages
 
@@ -684,9 +820,51 @@ class SessionRegistry:
         session.finish(pb.END_REASON_UNSPECIFIED)
         if self._live.get(session.id) is session:
             del self._live[session.id]
+            self.kept.used -= session.kept_bytes
             self._metrics.live.set(len(self._live))
-        if self._ended.get(session.id) is session:
-            del self._ended[session.id]
+
+    def _forget(self, session: Session) -> None:
+        del self._ended[session.id]
+        owners = self._ended_by_owner
+        left = owners[session.owner] - 1
+        if left:
+            owners[session.owner] = left
+        else:
+            del owners[session.owner]
+        self.kept.used -= session.kept_bytes
+
+    def _forget_one(self) -> None:
+        """Forget the oldest-ended conversation of the caller with the most kept."""
+        owners = self._ended_by_owner
+        heaviest = max(owners, key=owners.__getitem__)
+        for session in self._ended.values():
+            if session.owner == heaviest:
+                self._forget(session)
+                return
+
+    def _relieve(self) -> None:
+        """Bring the kept bytes under ``max_kept_bytes`` (by a sixteenth, so this is rare)."""
+        kept = self.kept
+        target = kept.limit - kept.limit // 16
+        while self._ended and kept.used > target:
+            self._forget_one()
+        excess = kept.used - target
+        if excess <= 0 or not self._live:
+            return
+        # Water-filling: lower the largest conversations to one common level that frees the
+        # excess, so the conversation keeping the most gives up the most.
+        sizes = sorted((s.kept_bytes for s in self._live.values()), reverse=True)
+        level, freed_above = 0, 0
+        for count, size in enumerate(sizes, start=1):
+            below = sizes[count] if count < len(sizes) else 0
+            if freed_above + count * (size - below) >= excess:
+                level = size - -(-(excess - freed_above) // count)
+                break
+            freed_above += count * (size - below)
+        for session in self._live.values():
+            surplus = session.kept_bytes - level
+            if surplus > 0:
+                kept.used -= session.shed(surplus)
 
     def close_all(self, reason: pb.EndReason) -> None:
         """Finish every live conversation (graceful shutdown)."""
@@ -723,4 +901,4 @@ class SessionRegistry:
             oldest = next(iter(self._ended.values()))
             if oldest.ended_at is not None and oldest.ended_at > cutoff:
                 break
-            self._ended.popitem(last=False)
+            self._forget(oldest)

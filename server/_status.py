@@ -1,14 +1,17 @@
 """The one mapping from Midstream errors to gRPC status codes, and the server's own error kinds.
 
-The server refines the root tree with four kinds whose status code differs from their parent's
-(all stay catchable as the parent)::
+The server refines the root tree with kinds of its own (all stay catchable as the parent).
+Each status code has one meaning, so a client maps codes back without knowing the method:
+``FAILED_PRECONDITION`` is only a model that cannot be loaded (fix the files, then retry); an
+event not allowed now (``open`` twice, no ``open`` first, an event after ``close``) is bad
+input of the caller's own stream, ``INVALID_ARGUMENT`` like its parent::
 
     MidstreamError                          UNKNOWN
     ├── InputError                          INVALID_ARGUMENT
     │   ├── TranscriptFormatError           INVALID_ARGUMENT
     │   ├── CorpusNotFoundError             NOT_FOUND
     │   ├── EventError                      INVALID_ARGUMENT
-    │   │   └── ProtocolStateError          FAILED_PRECONDITION  (event not allowed now)
+    │   │   └── ProtocolStateError          INVALID_ARGUMENT     (event not allowed now)
     │   ├── PositionError                   OUT_OF_RANGE         (a sequence number ahead)
     │   └── ConflictError                   ALREADY_EXISTS       (a conversation id in use)
     ├── LimitExceededError                  RESOURCE_EXHAUSTED   (capacity: live, followers...)
@@ -58,7 +61,6 @@ class FieldLimitError(LimitExceededError):
 
 # Most specific first: the first class the error is an instance of wins.
 _CODES: tuple[tuple[type[MidstreamError], grpc.StatusCode], ...] = (
-    (ProtocolStateError, grpc.StatusCode.FAILED_PRECONDITION),
     (PositionError, grpc.StatusCode.OUT_OF_RANGE),
     (ConflictError, grpc.StatusCode.ALREADY_EXISTS),
     (FieldLimitError, grpc.StatusCode.INVALID_ARGUMENT),

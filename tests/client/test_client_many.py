@@ -93,7 +93,7 @@ async def test_a_refused_event_arrives_as_an_error_on_its_channel(served: Served
     assert isinstance(ended, Ended) and ended.reason is EndReason.CLOSED
     assert not any(isinstance(e, MidstreamError) for e in got[good])
     (unopened,) = got[99]
-    assert isinstance(unopened, EventError) and "FAILED_PRECONDITION" in str(unopened)
+    assert isinstance(unopened, EventError) and "INVALID_ARGUMENT" in str(unopened)
 
 
 async def test_queue_bound_and_a_refused_frame(served: Served) -> None:

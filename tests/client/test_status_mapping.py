@@ -35,16 +35,18 @@ def test_every_status_code_is_mapped(code: grpc.StatusCode) -> None:
     (grpc.StatusCode.INVALID_ARGUMENT, EventError),
     (grpc.StatusCode.RESOURCE_EXHAUSTED, LimitExceededError),
     (grpc.StatusCode.UNAUTHENTICATED, InputError),
-    (grpc.StatusCode.FAILED_PRECONDITION, EventError),
+    (grpc.StatusCode.FAILED_PRECONDITION, ModelError),
 ])
 def test_codes_map_to_the_matching_kind(code: grpc.StatusCode, kind: type[Exception]) -> None:
     assert type(error_from_status(code, "x", target="t")) is kind
 
 
-def test_failed_precondition_of_a_model_call_is_a_model_error() -> None:
-    error = error_from_status(grpc.StatusCode.FAILED_PRECONDITION, "corrupt model",
-                              target="t", method="ReloadModels")
-    assert type(error) is ModelError
+def test_failed_precondition_is_a_model_error_whatever_the_method() -> None:
+    # One status per meaning: the client needs no method to tell a model failure apart.
+    for method in ("ReloadModels", "Converse", ""):
+        error = error_from_status(grpc.StatusCode.FAILED_PRECONDITION, "corrupt model",
+                                  target="t", method=method)
+        assert type(error) is ModelError
 
 
 @pytest.mark.parametrize(("error", "method"), [

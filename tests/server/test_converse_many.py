@@ -170,7 +170,7 @@ async def test_a_bad_event_finishes_only_its_channel(running: Running) -> None:
     # Channel 1 is gone: a later event for it is refused and changes nothing.
     late = await mux.send((1, words_event(spoken("a3", "so", start=2.0))))
     assert _kinds(late, 1) == ["error"]
-    assert _error(late, 1).code == "FAILED_PRECONDITION"
+    assert _error(late, 1).code == "INVALID_ARGUMENT"
     followed = await asyncio.wait_for(follower, 5)
     assert followed[-1].ended.reason == pb.END_REASON_REJECTED
     await mux.call.done_writing()
@@ -192,7 +192,7 @@ async def test_channel_numbering_mistakes_get_clear_errors(running: Running) -> 
     )
     assert _error(replies, 0).code == "INVALID_ARGUMENT"
     assert "'channel' is 0" in _error(replies, 0).message
-    assert _error(replies, 5).code == "FAILED_PRECONDITION"
+    assert _error(replies, 5).code == "INVALID_ARGUMENT"
     assert "channel 5 is not open: its first event must be 'open', not 'words'" \
         in _error(replies, 5).message
     assert _kinds(replies, 7) == ["welcome", "update", "ended", "error", "error"]

@@ -140,12 +140,22 @@ async def test_bad_positions_and_unknown_conversations_are_refused(running: Runn
         (pb.FollowRequest(conversation_id=conversation, from_seq=0),
          grpc.StatusCode.INVALID_ARGUMENT, "from_seq"),
         (pb.FollowRequest(conversation_id="nope"), grpc.StatusCode.NOT_FOUND, "nope"),
+        (pb.FollowRequest(conversation_id="x" * 5000), grpc.StatusCode.INVALID_ARGUMENT,
+         "field 'conversation_id' is 5000 characters long; limit max_id_chars is 128"),
+        (pb.FollowRequest(conversation_id=""), grpc.StatusCode.INVALID_ARGUMENT,
+         "field 'conversation_id' is empty"),
     ]
     for request, code, named in cases:
         with pytest.raises(grpc.aio.AioRpcError) as info:
             _ = [m async for m in running.stub.Follow(request)]
         assert info.value.code() == code
         assert named in (info.value.details() or "")
+        assert "xxxxxxxx" not in (info.value.details() or "")  # the id is never echoed
+    with pytest.raises(grpc.aio.AioRpcError) as info:
+        await running.stub.GetRevisions(pb.GetRevisionsRequest(conversation_id="x" * 5000))
+    assert info.value.code() == grpc.StatusCode.INVALID_ARGUMENT
+    assert info.value.details() == ("field 'conversation_id' is 5000 characters long; "
+                                    "limit max_id_chars is 128")
     # The next sequence number itself is a valid place to start: live updates only.
     follower = running.stub.Follow(pb.FollowRequest(conversation_id=conversation, from_seq=4,
                                                     epoch=caller.epoch))

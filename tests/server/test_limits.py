@@ -69,8 +69,8 @@ MALFORMED: list[tuple[str, list[pb.ClientEvent], grpc.StatusCode, str]] = [
     ("unspecified hint kind", [pb.ClientEvent(hint=pb.SpeakerHint(speaker="A"))], INVALID,
      "hint.kind"),
     ("empty event", [pb.ClientEvent()], INVALID, "empty"),
-    ("open twice", [open_event()], grpc.StatusCode.FAILED_PRECONDITION, "'open'"),
-    ("event after close", [CLOSE, _W1], grpc.StatusCode.FAILED_PRECONDITION, "after 'close'"),
+    ("open twice", [open_event()], grpc.StatusCode.INVALID_ARGUMENT, "'open'"),
+    ("event after close", [CLOSE, _W1], grpc.StatusCode.INVALID_ARGUMENT, "after 'close'"),
     ("too many speakers",
      [words_event(*[spoken(f"w{i}", "a", speaker=f"s{i}") for i in range(17)])],
      grpc.StatusCode.RESOURCE_EXHAUSTED, "max_speakers_per_conversation is 16"),
@@ -91,7 +91,7 @@ async def test_malformed_event_gets_specific_status(
 async def test_first_event_must_be_open(running: Running) -> None:
     with pytest.raises(grpc.aio.AioRpcError) as info:
         _ = [m async for m in running.stub.Converse(iter([_W1]))]
-    assert info.value.code() == grpc.StatusCode.FAILED_PRECONDITION
+    assert info.value.code() == grpc.StatusCode.INVALID_ARGUMENT
     assert "first event must be 'open'" in (info.value.details() or "")
 
 

@@ -277,7 +277,7 @@ async def test_continuing_is_refused_where_it_cannot_be_done_faithfully(
     assert await _refusal(b.stub, pb.OpenConversation(
         conversation_id="never-opened", resume=True)) == grpc.StatusCode.NOT_FOUND
     assert await _refusal(alone.stub, pb.OpenConversation(
-        conversation_id="x", resume=True)) == grpc.StatusCode.FAILED_PRECONDITION
+        conversation_id="x", resume=True)) == grpc.StatusCode.INVALID_ARGUMENT
     caller = Caller(a.stub)
     await caller.open("done")
     await _ingest(caller, call_words()[:3])
@@ -288,7 +288,7 @@ async def test_continuing_is_refused_where_it_cannot_be_done_faithfully(
                 await b.stub.ListConversations(pb.ListConversationsRequest())).conversations):
             await asyncio.sleep(0.02)
     assert await _refusal(b.stub, pb.OpenConversation(
-        conversation_id="done", resume=True)) == grpc.StatusCode.FAILED_PRECONDITION
+        conversation_id="done", resume=True)) == grpc.StatusCode.INVALID_ARGUMENT
     live = Caller(a.stub)
     await live.open("live-here")
     await _ingest(live, call_words()[:2])

@@ -102,8 +102,12 @@ async def _outcome(call: object) -> grpc.StatusCode:
 
 
 @pytest.mark.parametrize("metadata", [(), (("authorization", "Bearer wrong"),),
-                                      (("authorization", "s3cret"),)],
-                         ids=["missing", "wrong", "not-bearer"])
+                                      (("authorization", "s3cret"),),
+                                      (("authorization", "Bearer wrong"),
+                                       ("authorization", "Bearer s3cret")),
+                                      (("authorization", "Bearer s3cret"),
+                                       ("authorization", "Bearer s3cret"))],
+                         ids=["missing", "wrong", "not-bearer", "duplicated", "right-twice"])
 async def test_token_missing_or_wrong_is_unauthenticated_on_every_rpc(
     start_server: ServerFactory, metadata: tuple[tuple[str, str], ...],
 ) -> None:
@@ -119,6 +123,18 @@ async def test_token_missing_or_wrong_is_unauthenticated_on_every_rpc(
     health = health_pb2_grpc.HealthStub(running.channel)
     reply = await health.Check(health_pb2.HealthCheckRequest(service=""), metadata=metadata)
     assert reply.status == health_pb2.HealthCheckResponse.SERVING
+
+
+async def test_duplicate_authorization_headers_are_refused_by_name(
+    start_server: ServerFactory,
+) -> None:
+    # With two headers, which one a server (or a proxy on the way) reads is anyone's guess.
+    running = await start_server(token="s3cret")
+    metadata = (("authorization", "Bearer wrong"), ("authorization", "Bearer s3cret"))
+    with pytest.raises(grpc.aio.AioRpcError) as info:
+        await running.stub.ListConversations(pb.ListConversationsRequest(), metadata=metadata)
+    assert info.value.code() == grpc.StatusCode.UNAUTHENTICATED
+    assert info.value.details() == "2 'authorization' metadata entries; send exactly one"
 
 
 async def test_right_token_is_let_through(start_server: ServerFactory) -> None:

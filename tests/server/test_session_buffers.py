@@ -13,7 +13,7 @@ from midstream import Word
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics
-from midstream.server._session import Session, _Recent, merge_diffs
+from midstream.server._session import Session, SessionRegistry, _Recent, merge_diffs
 from midstream.wire import midstream_pb2 as pb
 from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures by name
 
@@ -118,3 +118,13 @@ def test_reading_kept_records_gives_back_the_published_states(bundle: ModelBundl
     assert session._after(0) == published
     assert [state for _, _, state in session.revisions()[0]] == [
         state for update in published for state in (*update.diff.words, *update.diff.utterances)]
+
+
+def test_a_server_assigned_id_never_starts_with_a_dash(bundle: ModelBundle,
+                                                       monkeypatch: pytest.MonkeyPatch) -> None:
+    # A shell command line reads "-x..." as an option: the registry draws again.
+    draws = iter(["-starts-with-a-dash-12345", "fine-id-starting-with-f"])
+    monkeypatch.setattr("midstream.server._session.secrets.token_urlsafe",
+                        lambda _: next(draws))
+    registry = SessionRegistry(ServerLimits(), ServerMetrics())
+    assert registry.open("", bundle).id == "fine-id-starting-with-f"

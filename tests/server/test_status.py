@@ -38,7 +38,7 @@ EXPECTED = {
     TranscriptFormatError: grpc.StatusCode.INVALID_ARGUMENT,
     CorpusNotFoundError: grpc.StatusCode.NOT_FOUND,
     EventError: grpc.StatusCode.INVALID_ARGUMENT,
-    ProtocolStateError: grpc.StatusCode.FAILED_PRECONDITION,
+    ProtocolStateError: grpc.StatusCode.INVALID_ARGUMENT,
     PositionError: grpc.StatusCode.OUT_OF_RANGE,
     ConflictError: grpc.StatusCode.ALREADY_EXISTS,
     LimitExceededError: grpc.StatusCode.RESOURCE_EXHAUSTED,

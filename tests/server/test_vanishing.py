@@ -53,6 +53,9 @@ class _ScriptedContext:
         await asyncio.sleep(0)
         raise grpc.aio.AbortError(f"{code.name}: {details}")
 
+    def peer(self) -> str:
+        return "ipv4:127.0.0.1:5000"
+
     def cancelled(self) -> bool:
         return False
 
