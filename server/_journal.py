@@ -332,6 +332,7 @@ class SharedLog:
         self._task: asyncio.Task[None] | None = None
         self._healthy = True
         self._closing = False
+        self._told_dropped = False
         self.degraded_total = Counter(
             "midstream_shared_log_degraded", "Times writes to the shared log started failing.",
             registry=registry)
@@ -422,9 +423,12 @@ class SharedLog:
             dropped += journal.drop_pending()
         self._pending = sum(j.pending for j in self._dirty)
         self.dropped_total.inc(dropped)
-        _log.warning("shared log: %d buffered entries dropped (buffer_entries %d); followers "
-                     "of the affected conversations get a gap notice", dropped,
-                     self.config.buffer_entries)
+        if not self._told_dropped:  # once until writes catch up, not on every overflow
+            self._told_dropped = True
+            _log.warning("shared log: buffer full (buffer_entries %d), buffered entries "
+                         "dropped; followers of the affected conversations get a gap notice "
+                         "(midstream_shared_log_dropped_total counts them)",
+                         self.config.buffer_entries)
 
     # --- writing -----------------------------------------------------------------------
 
@@ -463,6 +467,7 @@ class SharedLog:
                 continue
             delay = _RETRY_FIRST_S
             self._set_health(True)
+            self._told_dropped = False
             for call, result in zip(calls, results[:len(calls)], strict=True):
                 self._landed(call, result)
             self.pending_gauge.set(self._pending)

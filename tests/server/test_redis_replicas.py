@@ -169,7 +169,8 @@ async def test_unknown_conversations_and_bad_positions_are_refused_as_on_one_ser
 
 @pytest.mark.parametrize("buffer_entries", [100_000, 4])
 async def test_a_redis_restart_mid_conversation_never_costs_a_silent_gap(
-        start_server: ServerFactory, redis_server: RedisProcess, buffer_entries: int) -> None:
+        start_server: ServerFactory, redis_server: RedisProcess, buffer_entries: int,
+        caplog: pytest.LogCaptureFixture) -> None:
     """Redis dies and comes back empty (no persistence) while A ingests: the caller never
     notices; a follower on B gets every update once when A's buffer held the outage, else
     an explicit gap notice and snapshot where the dropped entries were."""
@@ -217,6 +218,15 @@ async def test_a_redis_restart_mid_conversation_never_costs_a_silent_gap(
     assert metrics.get_sample_value("midstream_shared_log_up") == 1
     dropped = metrics.get_sample_value("midstream_shared_log_dropped_total")
     assert (dropped == 0) == (buffer_entries > 1000)
+    # The outage is logged once when it begins and once when it ends, not per word or retry.
+    said = [r.getMessage() for r in caplog.records if r.name == "midstream.server._journal"]
+    # Only A had anything to write; B's writer never tried.
+    assert sum("unreachable (" in m for m in said) == 1
+    assert sum("reachable again" in m for m in said) == 1
+    # Drops are told once per episode (here: the burst of the first words, and the outage),
+    # not once per dropped entry.
+    told = sum("buffer full" in m for m in said)
+    assert told == 0 if buffer_entries > 1000 else 1 <= told <= 2 < (dropped or 0)
 
 
 async def test_an_id_reused_after_its_conversation_ended_is_never_spliced_on_another_replica(
