@@ -454,6 +454,7 @@ class Replica:
         try:
             await self._claim(keys=[keys.meta], args=[meta[b"inc"], self._log.owner])
             events: Any = await client.xrange(keys.events, "-", "+")
+            logged: Any = await client.xrange(keys.updates, "-", "+")
             tail: Any = await client.xrevrange(keys.updates, "+", "-", count=2)
         except ResponseError as exc:
             raise ProtocolStateError(f"conversation {conversation_id!r} changed while being "
@@ -467,8 +468,14 @@ class Replica:
                 stored = pb.Update.FromString(fields[b"u"])
                 break
         session = registry.open(conversation_id, bundle, owner=owner)
-        # The same conversation goes on: it keeps its epoch (followers' positions stay valid).
+        # The same conversation goes on: it keeps its epoch (followers' positions stay valid),
+        # its start, and the times its updates were published (a follower reading them here
+        # gets what it would have got from the dead replica).
         session.epoch = int(meta[b"inc"])
+        session.started_at = float(meta.get(b"started", session.started_at))
+        published = {_entry(entry_id)[0]: pb.Update.FromString(fields[b"u"]).server_time
+                     for entry_id, fields in logged if not _entry(entry_id)[1]}
+        session.clock = lambda: published.get(session.seq, time.time())
         journal = session.journal
         assert isinstance(journal, ConversationJournal)
         journal.incarnation = meta[b"inc"].decode()
@@ -491,6 +498,7 @@ class Replica:
             raise
         journal.replaying = False
         journal.first_kept = 1
+        session.clock = time.time
         for message in missing:
             journal.republished(message.update)
         _log.info("conversation %s continued here from %d logged events (seq %d, %d updates "

@@ -304,8 +304,8 @@ class Session:
     # Thousands may be live at once: no per-instance __dict__.
     __slots__ = (
         "_budget", "_ended", "_engine", "_followers", "_metrics", "_newest", "_replay",
-        "_revisions", "_shared_wire", "_table_bytes", "_utterances", "_words", "closing_messages",
-        "end_reason", "ended_at",
+        "_revisions", "_shared_wire", "_table_bytes", "_utterances", "_words", "clock",
+        "closing_messages", "end_reason", "ended_at",
         "epoch", "id", "journal", "limits", "owner", "revisions_truncated", "seq", "started_at",
         "timeline",
         "word_count",
@@ -324,6 +324,9 @@ class Session:
         # same conversation after a failover would carry the epoch on rather than draw one.)
         self.epoch = new_epoch()
         self.started_at = time.time()
+        # Stamps each update (Unix seconds); a conversation rebuilt from a shared log stamps
+        # its replayed updates with the times they were first published.
+        self.clock: Callable[[], float] = time.time
         self.limits = limits
         self.timeline = SpeakerTimeline(limits)
         self.word_count = 0
@@ -472,7 +475,7 @@ class Session:
         if not diff and not final:
             return None
         seq = self.seq = self.seq + 1
-        now = time.time()
+        now = self.clock()
         update = self._newest = HypothesisUpdate(seq=seq, server_time=now, diff=diff,
                                                  conversation_final=final, epoch=self.epoch)
         history = self._revisions

@@ -11,6 +11,8 @@ import asyncio
 import grpc
 import pytest
 from grpc_health.v1 import health_pb2, health_pb2_grpc
+from midstream import Word
+from midstream.client import AddWord, Client
 from midstream.server import SharedLogConfig
 from midstream.server._journal import SHARED_LOG_HEALTH
 from midstream.wire import midstream_pb2 as pb
@@ -320,3 +322,37 @@ async def test_a_replica_with_other_decoder_settings_refuses_to_continue(
     assert await _refusal(other.stub, pb.OpenConversation(
         conversation_id="lagged", resume=True)) == grpc.StatusCode.FAILED_PRECONDITION
     await caller.close()
+
+
+async def test_the_client_library_continues_a_conversation_and_the_old_replica_is_fenced_off(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    """A replica cut off rather than dead: once the conversation is continued elsewhere,
+    nothing the old replica publishes reaches the log, and followers see one sequence."""
+    shared = SharedLogConfig(url=redis_server.url)
+    a = await start_server(shared_log=shared)
+    b = await start_server(shared_log=shared)
+    words = call_words()[:16]
+    old = Caller(a.stub)
+    await old.open("moved")
+    await _ingest(old, words[:10])
+    await _until_logged(b.stub, "moved", old.updates[-1].seq)
+    async with (Client(f"127.0.0.1:{b.server.port}") as client,
+                client.converse("moved", resume=True) as stream):
+        assert stream.welcome.events_logged == 10
+        assert stream.welcome.next_seq == old.updates[-1].seq + 1
+        assert stream.welcome.epoch == old.updates[0].epoch
+        # The old replica goes on a little (its caller has not noticed): it is fenced off.
+        await _ingest(old, words[10:12])
+        old.call.cancel()
+        for word in words[10:]:
+            await stream.send_words([AddWord(word_id=word.word_id, word=Word(
+                text=word.text, speaker=word.speaker, start=word.start_s, end=word.end_s))])
+    messages = await follow_all(b.stub, "moved", from_seq=1)
+    last = messages[-1].ended.last_seq
+    assert gaps_told(messages, last) == 0
+    assert messages[-1].ended.reason == pb.END_REASON_CLOSED
+    followed = [m.update for m in messages if m.WhichOneof("body") == "update"]
+    # The first ten updates are A's, the rest B's: one sequence, every word once.
+    assert [u.SerializeToString() for u in followed[:10]] == [
+        u.SerializeToString() for u in old.updates[:10]]
+    assert {w.word_id for u in followed for w in u.words} == {w.word_id for w in words}
