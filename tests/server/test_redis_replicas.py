@@ -356,3 +356,22 @@ async def test_the_client_library_continues_a_conversation_and_the_old_replica_i
     assert [u.SerializeToString() for u in followed[:10]] == [
         u.SerializeToString() for u in old.updates[:10]]
     assert {w.word_id for u in followed for w in u.words} == {w.word_id for w in words}
+
+
+async def test_a_replica_stopping_writes_its_conversations_ends_for_followers_elsewhere(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    shared = SharedLogConfig(url=redis_server.url)
+    a = await start_server(shared_log=shared)
+    b = await start_server(shared_log=shared)
+    caller = Caller(a.stub)
+    conversation_id = await caller.open()
+    await _ingest(caller, call_words()[:12])
+    await _until_logged(b.stub, conversation_id, caller.updates[-1].seq)
+    live = asyncio.ensure_future(follow_all(b.stub, conversation_id, from_seq=1))
+    await asyncio.sleep(0.2)
+    await a.server.stop(2)  # SIGTERM's path: every live conversation finished and written
+    messages = await asyncio.wait_for(live, 20)
+    assert messages[-1].ended.reason == pb.END_REASON_SERVER_SHUTDOWN
+    assert gaps_told(messages, messages[-1].ended.last_seq) == 0
+    final = messages[-2].update
+    assert final.conversation_final and all(w.final for w in final.words)
