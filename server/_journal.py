@@ -75,6 +75,10 @@ _ENTRIES_PER_ROUND = 4096
 # Retry delays while Redis is unreachable, seconds.
 _RETRY_FIRST_S = 0.05
 _RETRY_MAX_S = 1.0
+# Updates between two publication times a journal keeps for trimming by age: a sample (seq,
+# time) older than max_age_s says every update up to seq is, so trimming at sample granularity
+# keeps at most this many updates too many (common practice, no source).
+_TIME_EVERY = 16
 # Seconds a stop gives the writer even with no grace: ends of conversations finished by the
 # stop are worth one round trip.
 _STOP_FLUSH_MIN_S = 0.5
@@ -211,7 +215,7 @@ class ConversationJournal:
     __slots__ = (
         "_log", "created", "dead", "dropped", "end", "events", "events_queued",
         "events_written", "first_kept", "generation", "incarnation", "keys", "models",
-        "replaying", "resumable", "session", "times", "updates",
+        "replaying", "resumable", "session", "times", "updates", "written_seq",
     )
 
     def __init__(self, log: SharedLog, session: Session, incarnation: str) -> None:
@@ -233,7 +237,9 @@ class ConversationJournal:
         self.dropped = False  # pending entries were dropped past the buffer
         self.generation = 0  # bumped when pending entries are dropped
         self.first_kept = 1  # the oldest update seq the stream still holds (as written)
-        # (seq, server time) of updates written, oldest first, for trimming by age.
+        self.written_seq = 0  # the newest update seq written
+        # (seq, server time) of every _TIME_EVERY-th update written, oldest first, for
+        # trimming by age: a conversation keeps a few hundred samples, not one per update.
         self.times: deque[tuple[int, float]] = deque()
 
     def published(self, update: HypothesisUpdate) -> None:
@@ -494,7 +500,7 @@ class SharedLog:
         updates = journal.updates[:_UPDATES_PER_CALL]
         events = journal.events[:_EVENTS_PER_CALL]
         call.n_updates, call.n_events = len(updates), len(events)
-        last = updates[-1].seq if updates else (journal.times[-1][0] if journal.times else 0)
+        last = updates[-1].seq if updates else journal.written_seq
         # Trim by count and by age; a trim always comes with a fresh snapshot, so the stream
         # never starts after the snapshot's sequence number plus one.
         cut = last - config.max_entries + 1
@@ -600,7 +606,12 @@ class SharedLog:
         if call.end:
             journal.end = None
             self._pending -= 1
-        journal.times.extend(call.times)
+        if call.times:
+            journal.written_seq = call.times[-1][0]
+        times = journal.times
+        for seq, when in call.times:
+            if not times or seq - times[-1][0] >= _TIME_EVERY:
+                times.append((seq, when))
         if call.minid:
             journal.first_kept = call.minid
             times = journal.times
