@@ -163,10 +163,10 @@ class SyncClient:
         return SyncMultiplexedStream(self, self._client.converse_many(frame_events=frame_events),
                                      buffer)
 
-    def follow(self, conversation_id: str, *, from_seq: int | None = None
+    def follow(self, conversation_id: str, *, from_seq: int | None = None, epoch: int = 0,
                ) -> Iterator[ServerEvent]:
         """See :meth:`Client.follow`; blocks between events."""
-        events = self._client.follow(conversation_id, from_seq=from_seq)
+        events = self._client.follow(conversation_id, from_seq=from_seq, epoch=epoch)
 
         async def step() -> ServerEvent:
             return await anext(events)

@@ -56,6 +56,9 @@ class ServerLimits:
     """Most ``Follow`` streams on one conversation at once."""
     follower_queue: int = 1024
     """Messages one follower may have waiting before it is told it lagged."""
+    follower_queue_bytes: int = 8 * 1024 * 1024
+    """Estimated bytes of the messages one follower may have waiting before it is told it
+    lagged."""
     max_message_bytes: int = 4 * 1024 * 1024
     """Largest gRPC message received or sent."""
     idle_timeout_s: float = 300.0
@@ -80,7 +83,8 @@ class ServerLimits:
             "max_word_chars", "max_id_chars", "max_words_per_message", "max_live_conversations",
             "max_speakers_per_conversation", "replay_updates", "history_revisions",
             "snapshot_states", "replay_bytes", "history_bytes", "snapshot_bytes",
-            "max_kept_bytes", "max_followers_per_conversation", "follower_queue",
+            "max_kept_bytes", "follower_queue_bytes", "max_followers_per_conversation",
+            "follower_queue",
             "max_message_bytes", "max_ended_conversations", "max_transcript_items",
             "max_channels_per_stream", "max_events_per_frame",
             "max_streams_without_conversation",

@@ -7,6 +7,7 @@ Generated protobuf types are read here, as in the servicer: this module is part 
 from __future__ import annotations
 
 import asyncio
+import sys
 from typing import Any
 
 import grpc
@@ -81,7 +82,8 @@ def caller_address(context: grpc.aio.ServicerContext[Any, Any]) -> str:
     """
     peer = context.peer() or ""
     host, colon, port = peer.rpartition(":")
-    return host if colon and port.isdigit() else peer
+    # Interned: every conversation of one caller then shares one string.
+    return sys.intern(host if colon and port.isdigit() else peer)
 
 
 async def caller_vanished(context: grpc.aio.ServicerContext[Any, Any]) -> bool:

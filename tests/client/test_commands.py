@@ -168,6 +168,20 @@ def test_replayed_swda_conversation_ends_on_the_batch_labels_and_reports(
     followed = [json.loads(line) for line in out.splitlines()]
     logged = [e.seq for e, _ in log.events if isinstance(e, HypothesisUpdate)]
     assert [r["seq"] for r in followed if r["type"] == "update"] == logged
+    epoch = followed[0]["epoch"]
+    assert epoch > 0 and {r["epoch"] for r in followed if r["type"] == "update"} == {epoch}
+
+    # Resuming with its epoch replays from there; with another epoch it is told, not spliced.
+    code, out, _ = _run(["subscribe", "--from-seq", "3", "--epoch", str(epoch), "--json",
+                         "--server", served.target, "--", log.conversation_id], capsys)
+    assert code == 0
+    assert json.loads(out.splitlines()[0])["seq"] == 3
+    code, out, _ = _run(["subscribe", "--from-seq", "3", "--epoch", str(epoch + 1), "--json",
+                         "--server", served.target, "--", log.conversation_id], capsys)
+    assert code == 0
+    told = [json.loads(line) for line in out.splitlines()]
+    assert [r["type"] for r in told] == ["gap", "snapshot", "ended"]
+    assert told[0]["reason"] == "epoch_mismatch" and told[1]["epoch"] == epoch
 
     # And inspect it live, through GetRevisions.
     code, out, _ = _run(["inspect", f"--conversation={log.conversation_id}",

@@ -278,7 +278,7 @@ async def test_a_follower_is_never_spliced_into_a_new_conversation_reusing_the_i
     assert followed == seen and {u.epoch for u in seen} == {old_epoch}
     await first.server.stop(0)
 
-    second = await start_server(port=port)
+    second = await start_server(port=port, limits=ServerLimits(idle_timeout_s=30.0))
     call = second.stub.Converse()
     await call.write(open_event("call-7"))
     new_epoch = (await asyncio.wait_for(call.read(), WAIT_S)).welcome.epoch

@@ -13,6 +13,9 @@ from typing import Any
 
 import grpc
 import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+from midstream.server._decode import MalformedMessage, tolerant_deserializer
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     Caller,
@@ -154,3 +157,28 @@ async def test_well_formed_calls_still_work_through_the_tolerant_decoding(
     history = await running.stub.GetRevisions(pb.GetRevisionsRequest(
         conversation_id=conversation))
     assert history.revisions
+
+
+@given(st.binary(max_size=200))
+def test_any_bytes_decode_to_a_message_or_a_named_problem(data: bytes) -> None:
+    for message_type in (pb.ClientEvent, pb.ClientFrame, pb.FollowRequest):
+        decoded = tolerant_deserializer(message_type)(data)
+        if isinstance(decoded, MalformedMessage):
+            assert decoded.problem.startswith(
+                f"{message_type.DESCRIPTOR.full_name} could not be decoded: ")
+        else:
+            assert isinstance(decoded, message_type)
+
+
+@given(st.text(max_size=20))
+def test_invalid_utf8_is_named_by_its_field_path(text: str) -> None:
+    frame = pb.ClientFrame(events=[pb.ChannelEvent(channel=1, event=pb.ClientEvent(
+        words=pb.WordBatch(words=[pb.SpokenWord(word_id="w1", speaker="A", text=text + "q")]))),
+    ])
+    raw = frame.SerializeToString()
+    # Replace the text's last character (an ASCII "q") with a byte that never starts UTF-8.
+    at = raw.rindex(b"q")
+    decoded = tolerant_deserializer(pb.ClientFrame)(raw[:at] + b"\xff" + raw[at + 1:])
+    assert isinstance(decoded, MalformedMessage)
+    assert decoded.problem == ("midstream.v1.ClientFrame could not be decoded: field "
+                               "'events.event.words.words.text' is not valid UTF-8")

@@ -109,3 +109,18 @@ def test_one_caller_cannot_flush_every_ended_conversation(bundle: ModelBundle) -
         registry.close(registry.open(f"b{n}", bundle, owner="caller-b"), pb.END_REASON_CLOSED)
     kept = [s.id for s in registry.sessions()]
     assert kept == ["a1", "a2", "b18", "b19"]
+
+
+async def test_a_follower_queue_is_bounded_in_bytes(bundle: ModelBundle) -> None:
+    limits = ServerLimits(follower_queue_bytes=256 * 1024)
+    session = SessionRegistry(limits, ServerMetrics()).open("followed", bundle)
+    backlog, follower = session.follow(None)
+    assert follower is not None
+    session.add_words(_maximal_batch(0, limits)[:8], received=0.0)  # small: queued
+    session.add_words(_maximal_batch(1, limits), received=0.0)  # a maximal batch: over
+    messages = follower.messages(backlog)
+    kinds = [(await anext(messages)).WhichOneof("body") for _ in range(3)]
+    # The snapshot it started with, then told it lagged and given the state: no maximal batch
+    # queued for a reader that holds more than its share.
+    assert kinds == ["snapshot", "gap", "snapshot"]
+    await messages.aclose()  # type: ignore[attr-defined]
