@@ -239,6 +239,8 @@ class Replica:
                 f"field 'from_seq' ({from_seq}) is beyond the next sequence number "
                 f"({logged + 1}) of conversation {conversation_id}")
         client = self._log.client
+        # A blocking read must return well within the connection's own timeout.
+        block_ms = int(min(_BLOCK_MS, 500 * self._log.config.timeout_s))
         expected: int
         if from_seq is None or other_epoch or unchecked:
             state, last_id, ended = await self._fold(keys)
@@ -274,7 +276,7 @@ class Replica:
                     f"elsewhere from seq {expected}")
             try:
                 reply: Any = await client.xread({keys.updates: last_id},
-                                                count=_READ_COUNT, block=_BLOCK_MS)
+                                                count=_READ_COUNT, block=block_ms)
                 current = None if reply else await client.hget(keys.meta, "inc")
             except (RedisError, OSError):
                 await asyncio.sleep(_RETRY_S)  # the writer logs the outage once
