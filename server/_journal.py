@@ -224,8 +224,9 @@ class ConversationJournal:
         self.keys = ConversationKeys.of(log.config.key_prefix, session.id)
         self.incarnation = incarnation
         self.models = log.models()  # the models this conversation is decoded with
-        # Updates as published, or as wire messages (those re-sent after a rebuild).
-        self.updates: list[HypothesisUpdate | pb.Update] = []
+        # Updates as published, as wire messages (those re-sent after a rebuild), or already
+        # serialised as (seq, server time, bytes) by a round trip that failed.
+        self.updates: list[HypothesisUpdate | pb.Update | tuple[int, float, bytes]] = []
         self.events: list[bytes] = []
         self.end: pb.ServerMessage | None = None
         self.events_queued = 0  # events accepted and queued (written or not), in order
@@ -287,6 +288,10 @@ class ConversationJournal:
             self.resumable = False
             self.generation += 1
         return dropped
+
+
+def _seq(update: HypothesisUpdate | pb.Update | tuple[int, float, bytes]) -> int:
+    return update[0] if isinstance(update, tuple) else update.seq
 
 
 class _Call:
@@ -500,7 +505,7 @@ class SharedLog:
         updates = journal.updates[:_UPDATES_PER_CALL]
         events = journal.events[:_EVENTS_PER_CALL]
         call.n_updates, call.n_events = len(updates), len(events)
-        last = updates[-1].seq if updates else journal.written_seq
+        last = _seq(updates[-1]) if updates else journal.written_seq
         # Trim by count and by age; a trim always comes with a fresh snapshot, so the stream
         # never starts after the snapshot's sequence number plus one.
         cut = last - config.max_entries + 1
@@ -514,7 +519,7 @@ class SharedLog:
         if journal.dropped:
             # Entries were dropped: everything before what is sent now goes, so nobody reads
             # across the hole.
-            cut = max(cut, updates[0].seq if updates else session.seq + 1)
+            cut = max(cut, _seq(updates[0]) if updates else session.seq + 1)
         snapshot = b""
         if cut > journal.first_kept or journal.dropped:
             snapshot = session.snapshot_message().snapshot.SerializeToString()
@@ -537,10 +542,16 @@ class SharedLog:
         for name, value in meta.items():
             args += (name, value)
         args += events
-        for update in updates:
-            wire = update if isinstance(update, pb.Update) else cv.update_to_wire(update)
-            args += (update.seq, wire.SerializeToString())
-            call.times.append((update.seq, update.server_time))
+        for index, update in enumerate(updates):
+            if isinstance(update, tuple):
+                seq, when, data = update
+            else:
+                # Serialised once: a round trip that fails is retried with the same bytes.
+                wire = update if isinstance(update, pb.Update) else cv.update_to_wire(update)
+                seq, when, data = update.seq, update.server_time, wire.SerializeToString()
+                journal.updates[index] = (seq, when, data)
+            args += (seq, data)
+            call.times.append((seq, when))
         call.args = args
         return call
 
@@ -591,7 +602,7 @@ class SharedLog:
             self.failures_total.inc()
             return
         journal.created = True
-        if result in (b"EVENTS_LOST", "EVENTS_LOST"):
+        if result in (b"EVENTS_LOST", "EVENTS_LOST") and journal.resumable:
             _log.warning("shared log lost input events of conversation %s; it can no longer "
                          "be continued on another replica", journal.session.id)
             journal.resumable = False
