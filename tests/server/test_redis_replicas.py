@@ -7,6 +7,7 @@ The processes-and-SIGKILL cases are in ``test_redis_failover.py``.
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 
 import grpc
 import pytest
@@ -18,6 +19,7 @@ from midstream.server._journal import SHARED_LOG_HEALTH
 from midstream.wire import midstream_pb2 as pb
 from redis_kit import RedisProcess, call_words, gaps_told, redis_server_fixture
 from server_kit import (
+    TEST_LIMITS,
     Caller,
     ServerFactory,
     bundle_fixture,
@@ -378,3 +380,27 @@ async def test_a_replica_stopping_writes_its_conversations_ends_for_followers_el
     assert gaps_told(messages, messages[-1].ended.last_seq) == 0
     final = messages[-2].update
     assert final.conversation_final and all(w.final for w in final.words)
+
+
+async def test_updates_older_than_max_age_are_trimmed_at_the_next_write(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    shared = SharedLogConfig(url=redis_server.url, max_age_s=2.0)
+    # The caller pauses longer than the test servers' idle timeout.
+    a = await start_server(shared_log=shared,
+                           limits=dataclasses.replace(TEST_LIMITS, idle_timeout_s=30.0))
+    b = await start_server(shared_log=shared)
+    words = call_words()[:14]
+    caller = Caller(a.stub)
+    conversation_id = await caller.open()
+    await _ingest(caller, words[:6])
+    await asyncio.sleep(1.2)
+    await _ingest(caller, words[6:12])  # keeps the keys alive (they expire 2 s after a write)
+    await asyncio.sleep(1.2)  # the first words are now older than max_age_s
+    await _ingest(caller, words[12:])
+    await _until_logged(b.stub, conversation_id, caller.updates[-1].seq)
+    stream = b.stub.Follow(pb.FollowRequest(conversation_id=conversation_id, from_seq=1))
+    first = await stream.read()
+    stream.cancel()
+    assert first.gap.reason == pb.GAP_REASON_EVICTED and first.gap.first_missing == 1
+    assert 1 < first.gap.oldest_kept <= 7  # trimmed by age, never past the newer words
+    await caller.close()
