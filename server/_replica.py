@@ -455,17 +455,18 @@ class Replica:
             self._claim = client.register_script(_CLAIM)
         try:
             await self._claim(keys=[keys.meta], args=[meta[b"inc"], self._log.owner])
+            # Claimed: nobody else writes it now, so these reads agree with each other.
             events: Any = await client.xrange(keys.events, "-", "+")
             logged: Any = await client.xrange(keys.updates, "-", "+")
-            tail: Any = await client.xrevrange(keys.updates, "+", "-", count=2)
+            useq: Any = await client.hget(keys.meta, "useq")
         except ResponseError as exc:
             raise ProtocolStateError(f"conversation {conversation_id!r} changed while being "
                                      "continued (ended, or started anew); try again") from exc
         except (RedisError, OSError) as exc:
             raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
                                    "try again") from exc
-        stored: pb.Update | None = None
-        for entry_id, fields in tail:
+        stored: pb.Update | None = None  # the newest update the stream still holds
+        for entry_id, fields in reversed(logged):
             if not _entry(entry_id)[1]:
                 stored = pb.Update.FromString(fields[b"u"])
                 break
@@ -487,7 +488,7 @@ class Replica:
         journal.events_queued = journal.events_written = len(events)
         try:
             await self._replay(session, events)
-            missing = self._check(session, stored)
+            missing = self._check(session, int(useq or 0), stored)
         except MidstreamError as exc:
             registry.forget(session)
             if isinstance(exc, ProtocolStateError | ModelError):
@@ -516,23 +517,24 @@ class Replica:
                         limits)
 
     @staticmethod
-    def _check(session: Session, stored: pb.Update | None) -> list[pb.ServerMessage]:
-        """Compare the replay with the newest logged update; the updates the log lacks."""
-        logged = stored.seq if stored is not None else 0
+    def _check(session: Session, logged: int, stored: pb.Update | None,
+               ) -> list[pb.ServerMessage]:
+        """Compare the replay with the log (``logged`` updates written, the newest still held
+        ``stored``); return the updates the log lacks."""
         if logged > session.seq:
             raise ProtocolStateError(
                 f"conversation {session.id} cannot be continued: the log holds updates up to "
                 f"seq {logged} but its logged input gives only {session.seq}")
         if stored is not None:
-            replayed = session.since(logged - 1)
-            if replayed and replayed[0].update.seq == logged:
+            replayed = session.since(stored.seq - 1)
+            if replayed and replayed[0].update.seq == stored.seq:
                 mine = pb.Update()
                 mine.CopyFrom(replayed[0].update)
                 mine.server_time = stored.server_time
                 if mine != stored:
                     raise ModelError(
                         f"conversation {session.id} cannot be continued: replaying its input "
-                        f"gave a different update {logged} than the log holds (other models "
-                        "or decoder settings)")
+                        f"gave a different update {stored.seq} than the log holds (other "
+                        "models or decoder settings)")
         return session.since(logged)
 
