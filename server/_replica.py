@@ -359,8 +359,19 @@ class Replica:
         return pb.GetRevisionsReply(conversation_id=conversation_id, revisions=revisions,
                                     truncated=truncated, epoch=int(meta[b"inc"]))
 
-    async def summaries(self, skip: set[str]) -> list[pb.ConversationSummary]:
-        """Conversations the log holds (written within ``max_age_s``), but those in ``skip``."""
+    async def newer_than(self, conversation_id: str, epoch: int) -> bool:
+        """Whether the log holds another conversation under this id than ``epoch`` (one that
+        took the id over); ``False`` when Redis cannot be asked."""
+        keys = self._keys(conversation_id)
+        try:
+            current: Any = await self._log.client.hget(keys.meta, "inc")
+        except (RedisError, OSError):
+            return False
+        return current is not None and int(current) != epoch
+
+    async def summaries(self, skip: set[tuple[str, int]]) -> list[pb.ConversationSummary]:
+        """Conversations the log holds (written within ``max_age_s``), but those in ``skip``
+        (``(conversation id, epoch)`` pairs)."""
         client, config = self._log.client, self._log.config
         index = index_key(config.key_prefix)
         horizon = time.time() - config.max_age_s
@@ -368,7 +379,8 @@ class Replica:
             await client.zremrangebyscore(index, "-inf", horizon)
             ids: Any = await client.zrangebyscore(index, horizon, "+inf", start=0,
                                                           num=_LIST_LIMIT)
-            wanted = [i.decode() for i in ids if i.decode() not in skip]
+            # Ids held here are asked about too: another replica may have reused one.
+            wanted = [i.decode() for i in ids]
             async with client.pipeline(transaction=False) as pipe:
                 for conversation_id in wanted:
                     pipe.hgetall(ConversationKeys.of(config.key_prefix, conversation_id).meta)
@@ -380,6 +392,8 @@ class Replica:
         for conversation_id, meta in zip(wanted, metas, strict=True):
             if not meta or b"inc" not in meta:
                 continue  # expired since the index was read
+            if (conversation_id, int(meta[b"inc"])) in skip:
+                continue  # listed from this replica's memory
             speakers = meta.get(b"speakers", b"").decode()
             summaries.append(pb.ConversationSummary(
                 conversation_id=conversation_id,

@@ -350,8 +350,9 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             await self.replica.check_new(request.conversation_id)
         return self.registry.open(request.conversation_id, self.bundle, owner=owner), 0
 
-    def _shared_only(self, conversation_id: str) -> Replica | None:
-        """The replica view when this server shares a log and does not hold the conversation.
+    async def _shared_only(self, conversation_id: str) -> Replica | None:
+        """The replica view when this server shares a log and does not hold the conversation
+        (or holds only an ended one whose id another replica has since given to a new one).
 
         Raises
         ------
@@ -361,8 +362,10 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if self.replica is None:
             return None
         try:
-            self._known(conversation_id)
+            session = self._known(conversation_id)
         except NotFoundError:
+            return self.replica
+        if not session.live and await self.replica.newer_than(conversation_id, session.epoch):
             return self.replica
         return None
 
@@ -468,7 +471,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             if isinstance(request, MalformedMessage):
                 raise request.error()
             from_seq = request.from_seq if request.HasField("from_seq") else None
-            replica = self._shared_only(request.conversation_id)
+            replica = await self._shared_only(request.conversation_id)
             if replica is None:
                 session = self._known(request.conversation_id)
                 backlog, follower = session.follow(from_seq, request.epoch)
@@ -500,7 +503,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         local = [s.summary() for s in self.registry.sessions()]
         if self.replica is not None:
             try:
-                local += await self.replica.summaries({s.conversation_id for s in local})
+                local += await self.replica.summaries(
+                    {(s.conversation_id, s.epoch) for s in local})
             except MidstreamError as exc:
                 await self._fail(context, exc)
         return pb.ListConversationsReply(conversations=local)
@@ -510,7 +514,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         context: grpc.aio.ServicerContext[pb.GetRevisionsRequest, pb.GetRevisionsReply],
     ) -> pb.GetRevisionsReply:
         try:
-            replica = self._shared_only(request.conversation_id)
+            replica = await self._shared_only(request.conversation_id)
             if replica is not None:
                 return await replica.revisions(request.conversation_id)
             session = self._known(request.conversation_id)

@@ -273,6 +273,17 @@ async def test_an_id_reused_after_its_conversation_ended_is_never_spliced_on_ano
     stream = c.stub.Follow(pb.FollowRequest(conversation_id="reused", from_seq=4))
     assert (await stream.read()).gap.reason == pb.GAP_REASON_EPOCH_MISMATCH
     stream.cancel()
+    # A still keeps the first conversation (ended) in memory, yet serves the one now under
+    # the id, and lists both.
+    stream = a.stub.Follow(pb.FollowRequest(conversation_id="reused", from_seq=1,
+                                            epoch=welcome.epoch))
+    update = (await stream.read()).update
+    stream.cancel()
+    assert update.seq == 1 and update.epoch == welcome.epoch
+    listing = await a.stub.ListConversations(pb.ListConversationsRequest())
+    assert sorted((s.epoch, s.ended) for s in listing.conversations
+                  if s.conversation_id == "reused") == sorted(
+        [(old_epoch, True), (welcome.epoch, False)])
     await second.close()
 
 
