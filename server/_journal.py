@@ -56,7 +56,7 @@ from midstream.server._session import Session
 from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 from prometheus_client import CollectorRegistry, Counter, Gauge
-from redis.exceptions import RedisError, ResponseError
+from redis.exceptions import NoScriptError, RedisError, ResponseError
 
 _log = logging.getLogger(__name__)
 
@@ -79,6 +79,14 @@ _RETRY_MAX_S = 1.0
 # time) older than max_age_s says every update up to seq is, so trimming at sample granularity
 # keeps at most this many updates too many (common practice, no source).
 _TIME_EVERY = 16
+# Seconds between two updates of a conversation's place in the listing's index (which drops
+# conversations not written for max_age_s, so an hour's precision would do; common practice,
+# no source).
+_INDEX_EVERY_S = 60.0
+# Seconds the writer waits after being woken before it writes, so one round trip carries
+# what several conversations published meanwhile; what followers on other replicas wait more
+# (common practice, no source).
+_GATHER_S = 0.005
 # Seconds a stop gives the writer even with no grace: ends of conversations finished by the
 # stop are worth one round trip.
 _STOP_FLUSH_MIN_S = 0.5
@@ -214,8 +222,8 @@ class ConversationJournal:
 
     __slots__ = (
         "_log", "created", "dead", "dropped", "end", "events", "events_queued",
-        "events_written", "first_kept", "generation", "incarnation", "keys", "models",
-        "replaying", "resumable", "session", "times", "updates", "written_seq",
+        "events_written", "first_kept", "generation", "incarnation", "indexed_at", "keys",
+        "models", "replaying", "resumable", "session", "times", "updates", "written_seq",
     )
 
     def __init__(self, log: SharedLog, session: Session, incarnation: str) -> None:
@@ -239,14 +247,17 @@ class ConversationJournal:
         self.generation = 0  # bumped when pending entries are dropped
         self.first_kept = 1  # the oldest update seq the stream still holds (as written)
         self.written_seq = 0  # the newest update seq written
+        self.indexed_at = 0.0  # when the listing's index last had this conversation
         # (seq, server time) of every _TIME_EVERY-th update written, oldest first, for
         # trimming by age: a conversation keeps a few hundred samples, not one per update.
         self.times: deque[tuple[int, float]] = deque()
 
-    def published(self, update: HypothesisUpdate) -> None:
+    def published(self, update: pb.Update) -> None:
         if self.replaying or self.dead:
             return
-        self.updates.append(update)
+        # Serialised now: bytes are what is sent, and hold far less than a message while
+        # Redis is away.
+        self.updates.append((update.seq, update.server_time, update.SerializeToString()))
         self._log.queued(self, 1)
 
     def republished(self, update: pb.Update) -> None:
@@ -465,6 +476,9 @@ class SharedLog:
             if not self._dirty:
                 self._wake.clear()
                 await self._wake.wait()
+                # Gather what the next few milliseconds publish into the same round trip:
+                # at a few hundred words a second, rounds of one word each cost more CPU.
+                await asyncio.sleep(_GATHER_S)
                 continue
             calls = self._build()
             try:
@@ -527,11 +541,15 @@ class SharedLog:
         end = journal.end if len(updates) == len(journal.updates) else None
         call.end = end is not None
         meta = {
-            "started": repr(session.started_at), "words": str(session.word_count),
-            "seq": str(session.seq), "speakers": "\x1f".join(session.timeline.speakers),
-            "resumable": "1" if journal.resumable else "0", "models": journal.models,
-            "reason": str(end.ended.reason) if end is not None else "",
+            "words": str(session.word_count), "seq": str(session.seq),
+            "speakers": "\x1f".join(session.timeline.speakers),
+            "resumable": "1" if journal.resumable else "0",
         }
+        if not journal.created:
+            # What never changes is written with the conversation, not with every update.
+            meta.update(started=repr(session.started_at), models=journal.models)
+        if end is not None:
+            meta["reason"] = str(end.ended.reason)
         args: list[Any] = [
             self.owner, journal.incarnation, int(config.max_age_s * 1000),
             "1" if journal.created else "0", len(events), journal.events_written + 1,
@@ -556,19 +574,32 @@ class SharedLog:
         return call
 
     async def _send(self, calls: list[_Call]) -> list[Any]:
-        async with self.client.pipeline(transaction=False) as pipe:
-            now = time.time()
-            # Queued by hand: the script object's own call is a coroutine even on a pipeline.
-            # The pipeline loads the script first if Redis lacks it (after a restart).
-            pipe.scripts.add(self._script)
-            for call in calls:
-                keys = call.journal.keys
-                pipe.evalsha(self._script.sha, 4, keys.updates, keys.events, keys.meta,
-                             keys.snapshot, *call.args)
-                pipe.zadd(index_key(self.config.key_prefix), {call.journal.session.id: now})
-            results: list[Any] = await pipe.execute(raise_on_error=False)
-        # Each script result is followed by its ZADD's.
-        return results[0::2]
+        """One pipelined round trip: each call's script, and the listing's index for those
+        that need it; the scripts' results, in order."""
+        now = time.time()
+        # The index forgets conversations not written for max_age_s: refresh well before.
+        every = min(_INDEX_EVERY_S, self.config.max_age_s / 4)
+        index = {call.journal.session.id: now for call in calls
+                 if now - call.journal.indexed_at >= every}
+        for _ in range(2):
+            async with self.client.pipeline(transaction=False) as pipe:
+                # Queued by hand and not registered with the pipeline, which would ask Redis
+                # whether it has the script on every round trip; a Redis that lost it
+                # (restarted) answers NOSCRIPT, and the script is loaded once and sent again.
+                for call in calls:
+                    keys = call.journal.keys
+                    pipe.evalsha(self._script.sha, 4, keys.updates, keys.events, keys.meta,
+                                 keys.snapshot, *call.args)
+                if index:
+                    pipe.zadd(index_key(self.config.key_prefix), index)
+                results: list[Any] = await pipe.execute(raise_on_error=False)
+            if not any(isinstance(r, NoScriptError) for r in results[:len(calls)]):
+                break
+            await self.client.script_load(_APPEND)
+        for call in calls:
+            if call.journal.session.id in index:
+                call.journal.indexed_at = now
+        return results[:len(calls)]
 
     def _landed(self, call: _Call, result: Any) -> None:
         journal = call.journal
@@ -580,6 +611,7 @@ class SharedLog:
                 _log.warning("shared log lost conversation %s; rewriting it from a snapshot",
                              journal.session.id)
                 journal.created = False
+                journal.indexed_at = 0.0
                 journal.dropped = True
                 journal.resumable = False
                 journal.first_kept = 1

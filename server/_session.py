@@ -93,8 +93,9 @@ class Journal(Protocol):
     queues what it is given and writes later.
     """
 
-    def published(self, update: HypothesisUpdate) -> None:
-        """An update was published (called with every update, in sequence order)."""
+    def published(self, update: pb.Update) -> None:
+        """An update was published, in the wire form its caller is sent (called with every
+        update, in sequence order; the message must not be changed)."""
 
     def accepted(self, event: pb.ClientEvent) -> None:
         """An input event after ``open`` was applied without error (``close`` excluded)."""
@@ -565,8 +566,14 @@ class Session:
             cost = WIRE_MESSAGE_BYTES + update_bytes
             for follower in self._followers:
                 follower.offer(message, seq, cost)
-        if self.journal is not None:
-            self.journal.published(update)
+        journal = self.journal
+        if journal is not None:
+            # The wire form the caller (and any follower) is sent anyway: the log serialises
+            # it rather than converting the update a second time.
+            shared = self._shared_wire
+            if shared is None or shared.update.seq != seq:
+                shared = self._shared_wire = _to_wire(update)
+            journal.published(shared.update)
         tally = self._metrics.tally
         tally.revisions += revised
         if received is not None:

@@ -233,7 +233,10 @@ async def test_workers_share_one_port_and_one_log(models_dir: Path,
                 ids.append(f"w-{index}")
         client = aioredis.Redis.from_url(redis_server.url)
         try:
-            owners = {await client.hget(f"midstream:{{{i}}}:m", "owner") for i in ids}
+            async with asyncio.timeout(10):  # the last conversations' writes may be in flight
+                while None in (owners := {await client.hget(f"midstream:{{{i}}}:m", "owner")
+                                          for i in ids}):
+                    await asyncio.sleep(0.05)
         finally:
             await client.aclose()
         assert len(owners) == 2  # both workers ingested some (a 1 in 2,048 chance otherwise)

@@ -227,13 +227,13 @@ async def test_a_redis_restart_mid_conversation_never_costs_a_silent_gap(
     # Only A had anything to write; B's writer never tried.
     assert sum("unreachable (" in m for m in said) == 1
     assert sum("reachable again" in m for m in said) == 1
-    # Drops are told once per episode (a buffer of 4 overflows in each burst of words: before,
-    # during and after the outage), not once per dropped entry.
+    # Drops are told once per episode (a buffer of 4 overflows in each burst of words that
+    # arrives before the writer runs), not once per dropped entry.
     told = sum("buffer full" in m for m in said)
     if buffer_entries > 1000:
         assert told == 0
     else:
-        assert 1 <= told <= 3 < (dropped or 0), (told, dropped)
+        assert 1 <= told <= (dropped or 0) / 4, (told, dropped)
 
 
 async def test_an_id_reused_after_its_conversation_ended_is_never_spliced_on_another_replica(
