@@ -550,6 +550,11 @@ class SharedLog:
             meta.update(started=repr(session.started_at), models=journal.models)
         if end is not None:
             meta["reason"] = str(end.ended.reason)
+        if journal.dropped:
+            # The snapshot stands for every update up to the session's newest, written or
+            # dropped: readers take the log as that far on (a follower from there is told
+            # the gap), and entries up to it are not written again.
+            meta["useq"] = str(session.seq)
         args: list[Any] = [
             self.owner, journal.incarnation, int(config.max_age_s * 1000),
             "1" if journal.created else "0", len(events), journal.events_written + 1,

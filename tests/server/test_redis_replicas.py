@@ -29,6 +29,10 @@ from server_kit import (
     words_event,
 )
 
+#: Callers here pause between steps (waiting for the log, for Redis to go and come back)
+#: longer than the server kit's one-second idle timeout may allow on a loaded machine.
+LIMITS = dataclasses.replace(TEST_LIMITS, idle_timeout_s=30.0)
+
 __all__ = ["bundle_fixture", "models_dir_fixture", "redis_server_fixture",
            "start_server_fixture"]
 
@@ -54,11 +58,20 @@ async def _until_logged(stub: object, conversation_id: str, last_seq: int) -> No
             await asyncio.sleep(0.02)
 
 
+async def _until_ended(stub: object, conversation_id: str) -> None:
+    """Wait until a replica's listing shows the conversation ended (its end was written)."""
+    async with asyncio.timeout(10):
+        while not any(c.conversation_id == conversation_id and c.ended for c in (
+                await stub.ListConversations(  # type: ignore[attr-defined]
+                    pb.ListConversationsRequest())).conversations):
+            await asyncio.sleep(0.02)
+
+
 async def test_a_conversation_ingested_on_one_replica_is_followed_from_seq_1_on_another(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
     shared = SharedLogConfig(url=redis_server.url)
-    a = await start_server(shared_log=shared)
-    b = await start_server(shared_log=shared)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
     words = call_words()[:30]
     caller = Caller(a.stub)
     conversation_id = await caller.open()
@@ -91,8 +104,8 @@ async def test_a_conversation_ingested_on_one_replica_is_followed_from_seq_1_on_
 async def test_a_snapshot_on_another_replica_is_the_ingesting_replicas_state(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
     shared = SharedLogConfig(url=redis_server.url)
-    a = await start_server(shared_log=shared)
-    b = await start_server(shared_log=shared)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
     caller = Caller(a.stub)
     conversation_id = await caller.open()
     await _ingest(caller, call_words()[:20])
@@ -113,12 +126,13 @@ async def test_a_snapshot_on_another_replica_is_the_ingesting_replicas_state(
 async def test_a_resume_point_retention_dropped_gets_a_gap_notice_and_snapshot(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
     shared = SharedLogConfig(url=redis_server.url, max_entries=8)
-    a = await start_server(shared_log=shared)
-    b = await start_server(shared_log=shared)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
     caller = Caller(a.stub)
     conversation_id = await caller.open()
     await _ingest(caller, call_words()[:40])
     await caller.close()
+    await _until_ended(b.stub, conversation_id)  # the log holds it all, trimmed
     messages = await follow_all(b.stub, conversation_id, from_seq=1)
     kinds = [m.WhichOneof("body") for m in messages]
     assert kinds[:2] == ["gap", "snapshot"]
@@ -149,8 +163,8 @@ async def test_a_resume_point_retention_dropped_gets_a_gap_notice_and_snapshot(
 async def test_unknown_conversations_and_bad_positions_are_refused_as_on_one_server(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
     shared = SharedLogConfig(url=redis_server.url)
-    a = await start_server(shared_log=shared)
-    b = await start_server(shared_log=shared)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
     with pytest.raises(grpc.aio.AioRpcError) as missing:
         await follow_all(b.stub, "nobody-here")
     assert missing.value.code() == grpc.StatusCode.NOT_FOUND
@@ -180,8 +194,8 @@ async def test_a_redis_restart_mid_conversation_never_costs_a_silent_gap(
     an explicit gap notice and snapshot where the dropped entries were."""
     shared = SharedLogConfig(url=redis_server.url, timeout_s=0.5,
                              buffer_entries=buffer_entries)
-    a = await start_server(shared_log=shared)
-    b = await start_server(shared_log=shared)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
     words = call_words()[:40]
     caller = Caller(a.stub)
     conversation_id = await caller.open()
@@ -239,9 +253,9 @@ async def test_a_redis_restart_mid_conversation_never_costs_a_silent_gap(
 async def test_an_id_reused_after_its_conversation_ended_is_never_spliced_on_another_replica(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
     shared = SharedLogConfig(url=redis_server.url)
-    a = await start_server(shared_log=shared)
-    b = await start_server(shared_log=shared)
-    c = await start_server(shared_log=shared)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    c = await start_server(limits=LIMITS, shared_log=shared)
     first = Caller(a.stub)
     await first.open("reused")
     await _ingest(first, call_words()[:6])
@@ -299,9 +313,9 @@ async def _refusal(stub: object, request: pb.OpenConversation) -> grpc.StatusCod
 async def test_continuing_is_refused_where_it_cannot_be_done_faithfully(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
     shared = SharedLogConfig(url=redis_server.url)
-    a = await start_server(shared_log=shared)
-    b = await start_server(shared_log=shared)
-    alone = await start_server()
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    alone = await start_server(limits=LIMITS)
     assert await _refusal(b.stub, pb.OpenConversation(
         conversation_id="never-opened", resume=True)) == grpc.StatusCode.NOT_FOUND
     assert await _refusal(alone.stub, pb.OpenConversation(
@@ -329,8 +343,8 @@ async def test_continuing_is_refused_where_it_cannot_be_done_faithfully(
 async def test_a_replica_with_other_decoder_settings_refuses_to_continue(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
     shared = SharedLogConfig(url=redis_server.url)
-    a = await start_server(shared_log=shared)
-    other = await start_server(shared_log=shared, max_open_words=3)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    other = await start_server(limits=LIMITS, shared_log=shared, max_open_words=3)
     caller = Caller(a.stub)
     await caller.open("lagged")
     await _ingest(caller, call_words()[:4])
@@ -345,8 +359,8 @@ async def test_the_client_library_continues_a_conversation_and_the_old_replica_i
     """A replica cut off rather than dead: once the conversation is continued elsewhere,
     nothing the old replica publishes reaches the log, and followers see one sequence."""
     shared = SharedLogConfig(url=redis_server.url)
-    a = await start_server(shared_log=shared)
-    b = await start_server(shared_log=shared)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
     words = call_words()[:16]
     old = Caller(a.stub)
     await old.open("moved")
@@ -377,8 +391,8 @@ async def test_the_client_library_continues_a_conversation_and_the_old_replica_i
 async def test_a_replica_stopping_writes_its_conversations_ends_for_followers_elsewhere(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
     shared = SharedLogConfig(url=redis_server.url)
-    a = await start_server(shared_log=shared)
-    b = await start_server(shared_log=shared)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
     caller = Caller(a.stub)
     conversation_id = await caller.open()
     await _ingest(caller, call_words()[:12])
@@ -395,18 +409,16 @@ async def test_a_replica_stopping_writes_its_conversations_ends_for_followers_el
 
 async def test_updates_older_than_max_age_are_trimmed_at_the_next_write(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
-    shared = SharedLogConfig(url=redis_server.url, max_age_s=2.0)
-    # The caller pauses longer than the test servers' idle timeout.
-    a = await start_server(shared_log=shared,
-                           limits=dataclasses.replace(TEST_LIMITS, idle_timeout_s=30.0))
-    b = await start_server(shared_log=shared)
+    shared = SharedLogConfig(url=redis_server.url, max_age_s=3.0)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
     words = call_words()[:14]
     caller = Caller(a.stub)
     conversation_id = await caller.open()
     await _ingest(caller, words[:6])
-    await asyncio.sleep(1.2)
-    await _ingest(caller, words[6:12])  # keeps the keys alive (they expire 2 s after a write)
-    await asyncio.sleep(1.2)  # the first words are now older than max_age_s
+    await asyncio.sleep(1.6)
+    await _ingest(caller, words[6:12])  # keeps the keys alive (they expire 3 s after a write)
+    await asyncio.sleep(1.6)  # the first words are now older than max_age_s
     await _ingest(caller, words[12:])
     await _until_logged(b.stub, conversation_id, caller.updates[-1].seq)
     stream = b.stub.Follow(pb.FollowRequest(conversation_id=conversation_id, from_seq=1))
