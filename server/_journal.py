@@ -665,7 +665,9 @@ class SharedLog:
             times = journal.times
             while times and times[0][0] < call.minid:
                 times.popleft()
-        if not journal.pending:
+        if not journal.pending and not journal.dropped:
+            # (A journal whose entries were dropped while this call was in flight stays: its
+            # next call writes the snapshot that covers the hole.)
             self._dirty.pop(journal, None)
 
     def _forget(self, journal: ConversationJournal) -> None:
