@@ -137,7 +137,8 @@ def _server_event(message: pb.ServerMessage) -> ServerEvent:
         return _convert.update_from_wire(message.update)
     if body == "welcome":
         return Welcome(conversation_id=message.welcome.conversation_id,
-                       next_seq=message.welcome.next_seq, epoch=message.welcome.epoch)
+                       next_seq=message.welcome.next_seq, epoch=message.welcome.epoch,
+                       events_logged=message.welcome.events_logged)
     if body == "snapshot":
         seq, words, utterances, final = _convert.snapshot_from_wire(message.snapshot)
         return Snapshot(seq=seq, words=words, utterances=utterances, conversation_final=final,
@@ -254,13 +255,19 @@ class Client:
 
     # --- streams ------------------------------------------------------------------------------
 
-    def converse(self, conversation_id: str | None = None) -> ConversationStream:
+    def converse(self, conversation_id: str | None = None, *,
+                 resume: bool = False) -> ConversationStream:
         """A stream that ingests one conversation; use it as an async context manager.
 
         ``conversation_id`` asks for a caller-chosen id; ``None`` lets the server assign one
-        (read it from :attr:`ConversationStream.conversation_id`).
+        (read it from :attr:`ConversationStream.conversation_id`). ``resume=True`` continues
+        conversation ``conversation_id`` whose server died, on servers sharing a Redis log
+        (``docs/deploy.md``): the :class:`Welcome`'s ``events_logged`` says how many of your
+        events it holds; send the rest.
         """
-        return ConversationStream(self, conversation_id or "")
+        if resume and not conversation_id:
+            raise InputError("resume=True continues a conversation by its id: give it")
+        return ConversationStream(self, conversation_id or "", resume=resume)
 
     def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS) -> MultiplexedStream:
         """A stream that ingests many conversations, each on a channel; use ``async with``.
@@ -406,9 +413,10 @@ class ConversationStream:
     as abandoned by its caller).
     """
 
-    def __init__(self, client: Client, conversation_id: str) -> None:
+    def __init__(self, client: Client, conversation_id: str, *, resume: bool = False) -> None:
         self._client = client
         self._requested_id = conversation_id
+        self._resume = resume
         self._call: Any = None
         self._welcome: Welcome | None = None
         self._welcome_pending = True
@@ -431,7 +439,8 @@ class ConversationStream:
     async def __aenter__(self) -> Self:
         stub = self._client._require_stub()
         self._call = stub.Converse(metadata=self._client._metadata())
-        opening = pb.ClientEvent(open=pb.OpenConversation(conversation_id=self._requested_id))
+        opening = pb.ClientEvent(open=pb.OpenConversation(conversation_id=self._requested_id,
+                                                          resume=self._resume))
         await self._write(opening)
         first = await self._read()
         if not isinstance(first, Welcome):

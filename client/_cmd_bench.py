@@ -6,6 +6,7 @@
     midstream bench --spawn --conversations 200 --seconds 30 --json     # a local server
     midstream bench --smoke --spawn                                     # a few seconds
     midstream bench --spawn --multiplex -n 1000 --channels 4            # 4 multiplexed streams
+    midstream bench --spawn --redis redis://127.0.0.1:6379/0            # the shared log's cost
 
 Each simulated conversation streams real transcript words (a corpus split, ``val`` by default)
 one per event at ``--rate`` words per second. The report gives the words per second achieved,
@@ -23,6 +24,11 @@ report), the figures describe the generator, not the server; run it on another c
 On a virtual machine they also include the hypervisor's: the report gives each CPU's steal time
 over the window (time the host ran other guests on it) and warns when it is large enough to
 move the tails.
+
+``--spawn --redis URL`` runs the same load twice in one run, on a spawned server without and
+then with ``--redis URL``, and reports the ratio of server CPU per word (the shared log's
+cost; Redis's own CPU is not counted). ``--workers N`` spawns ``serve --workers N`` (the
+server's CPU is then its workers' together; no loop-lag figure, each worker has its own loop).
 """
 
 from __future__ import annotations
@@ -121,6 +127,12 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help="with --spawn: the server's model folder (default: shipped)")
     parser.add_argument("--server-cpu", type=int, default=None, metavar="CORE",
                         help="with --spawn: pin the server to this CPU core")
+    parser.add_argument("--redis", default=None, metavar="URL",
+                        help="with --spawn: run the load twice, without and with 'serve "
+                             "--redis URL', and report the ratio of server CPU per word")
+    parser.add_argument("--workers", type=int, default=1, metavar="N",
+                        help="with --spawn: start 'serve --workers N' (needs --redis; every "
+                             "run then uses the shared log)")
     parser.add_argument("--spin-idle-cores", action="store_true",
                         help="with --spawn: start the server with --spin-idle-cores (its "
                              "cores kept from idling; see midstream serve --help)")
@@ -172,16 +184,24 @@ class Spawned:
 
     target: str
     pid: int
-    metrics_url: str
+    metrics_url: str | None
 
 
-def serve_command(*, models: Path | None, live: int, spin: bool) -> list[str]:
+def serve_command(*, models: Path | None, live: int, spin: bool, redis: str | None = None,
+                  workers: int = 1) -> list[str]:
     """The ``midstream serve`` command line :func:`spawn_server` runs: room for ``live``
-    conversations, all of them on one ``ConverseMany`` stream if the load puts them there."""
+    conversations, all of them on one ``ConverseMany`` stream if the load puts them there;
+    ``redis``: with the shared log; ``workers``: that many processes (metrics are then left
+    off: each worker would serve its own page)."""
     command = [sys.executable, "-m", "midstream.client._cli", "serve", "--host", "127.0.0.1",
                "--port", "0", "--grace", "5", "--max-live-conversations", str(live),
-               "--limit", f"max_channels_per_stream={live}",
-               "--metrics-host", "127.0.0.1", "--metrics-port", "0"]
+               "--limit", f"max_channels_per_stream={live}"]
+    if workers == 1:
+        command += ["--metrics-host", "127.0.0.1", "--metrics-port", "0"]
+    else:
+        command += ["--workers", str(workers)]
+    if redis is not None:
+        command += ["--redis", redis]
     if models is not None:
         command += ["--models", str(models)]
     if spin:
@@ -191,16 +211,18 @@ def serve_command(*, models: Path | None, live: int, spin: bool) -> list[str]:
 
 @contextmanager
 def spawn_server(*, models: Path | None, cpu: int | None, live: int,
-                 token: str | None, spin: bool = False) -> Iterator[Spawned]:
+                 token: str | None, spin: bool = False, redis: str | None = None,
+                 workers: int = 1) -> Iterator[Spawned]:
     """Run ``midstream serve`` on a free local port, its metrics on another; yield where; stop
-    it after. ``spin``: start it with ``--spin-idle-cores``.
+    it after. ``spin``: start it with ``--spin-idle-cores``; ``redis`` and ``workers`` as
+    :func:`serve_command` takes them.
 
     Raises
     ------
     UnavailableError
         When the server exits or does not report its address in time.
     """
-    command = serve_command(models=models, live=live, spin=spin)
+    command = serve_command(models=models, live=live, spin=spin, redis=redis, workers=workers)
     env = dict(os.environ)
     if token:
         env["MIDSTREAM_BENCH_TOKEN"] = token
@@ -220,15 +242,17 @@ def spawn_server(*, models: Path | None, cpu: int | None, live: int,
             if not selector.select(timeout=_SPAWN_TIMEOUT_S):
                 raise UnavailableError(f"the spawned server did not start within "
                                        f"{_SPAWN_TIMEOUT_S:g} s")
-        # It prints "serving on ADDRESS", then "metrics on URL", once both are bound.
+        # It prints "serving on ADDRESS", then "metrics on URL", once both are bound (with
+        # workers: "serving on ADDRESS (N workers)" alone).
         line = process.stdout.readline().decode("utf-8", "replace").strip()
-        metrics = process.stdout.readline().decode("utf-8", "replace").strip()
+        metrics = ("metrics on -" if workers > 1
+                   else process.stdout.readline().decode("utf-8", "replace").strip())
         if not (line.startswith("serving on ") and metrics.startswith("metrics on ")):
             code = process.wait(timeout=10)
             raise UnavailableError(f"the spawned server exited ({code}) before serving; run "
                                    f"'{' '.join(command)}' by hand to see why")
-        yield Spawned(target=line.removeprefix("serving on "), pid=process.pid,
-                      metrics_url=metrics.removeprefix("metrics on "))
+        yield Spawned(target=line.removeprefix("serving on ").split()[0], pid=process.pid,
+                      metrics_url=None if workers > 1 else metrics.removeprefix("metrics on "))
     finally:
         if process.poll() is None:
             process.send_signal(signal.SIGTERM)
@@ -267,15 +291,29 @@ def run(args: argparse.Namespace) -> int:
     if args.spin_idle_cores and not args.spawn:
         raise InputError("--spin-idle-cores applies to a server this command starts: add "
                          "--spawn, or start yours with 'midstream serve --spin-idle-cores'")
+    if (args.redis or args.workers != 1) and not args.spawn:
+        raise InputError("--redis and --workers apply to a server this command starts: add "
+                         "--spawn")
+    if args.workers > 1 and not args.redis:
+        raise InputError(f"--workers {args.workers} needs --redis URL (the workers share it)")
     if args.spawn:
         if args.tls:
             raise InputError("--spawn starts a plain local server: drop --tls")
-        with spawn_server(models=args.models, cpu=args.server_cpu,
-                          live=max(256, args.conversations), token=token,
-                          spin=bool(args.spin_idle_cores)) as spawned:
-            config = configure(spawned.target)
-            result = asyncio.run(run_load(config, script, probe=ProcessProbe(spawned.pid),
-                                          lag_probe=MetricsProbe(spawned.metrics_url)))
+        runs: dict[str, dict[str, Any]] = {}
+        ways = [None, args.redis] if args.redis and args.workers == 1 else [args.redis]
+        for redis in ways:
+            with spawn_server(models=args.models, cpu=args.server_cpu,
+                              live=max(256, args.conversations), token=token,
+                              spin=bool(args.spin_idle_cores), redis=redis,
+                              workers=args.workers) as spawned:
+                config = configure(spawned.target)
+                result = asyncio.run(run_load(
+                    config, script, probe=ProcessProbe(spawned.pid, children=args.workers > 1),
+                    lag_probe=(MetricsProbe(spawned.metrics_url) if spawned.metrics_url
+                               else None)))
+            runs["redis" if redis else "plain"] = result.summary()
+        if len(runs) == 2:
+            return _compare(runs, source, json_out=bool(args.json))
     else:
         config = configure(args.server or os.environ.get("MIDSTREAM_SERVER") or DEFAULT_TARGET)
         probe = ProcessProbe(args.server_pid) if args.server_pid is not None else None
@@ -294,6 +332,35 @@ def run(args: argparse.Namespace) -> int:
     if summary["opened"] == 0:
         raise UnavailableError(f"no conversation could be opened on {config.target}: "
                                f"{summary['errors']}")
+    return 0
+
+
+def cpu_ms_per_word(summary: dict[str, Any]) -> float:
+    """Server CPU milliseconds per word answered in a run's window (NaN when unknown)."""
+    server, achieved = summary.get("server"), summary.get("achieved_wps", 0.0)
+    if not server or not achieved:
+        return math.nan
+    return float(10.0 * server["cpu_percent"] / achieved)
+
+
+def _compare(runs: dict[str, dict[str, Any]], source: str, *, json_out: bool) -> int:
+    """Report the two runs of ``--redis`` and the ratio of their server CPU per word."""
+    plain, shared = cpu_ms_per_word(runs["plain"]), cpu_ms_per_word(runs["redis"])
+    ratio = shared / plain if plain > 0 else math.nan
+    for summary in runs.values():
+        summary["corpus"] = source
+        summary["server_cpu_ms_per_word"] = cpu_ms_per_word(summary)
+    if json_out:
+        print(json.dumps({**runs, "cpu_per_word_ratio": ratio}, sort_keys=True))
+    else:
+        for name, summary in runs.items():
+            print(f"--- {'without' if name == 'plain' else 'with'} --redis")
+            _print(summary)
+        print(f"server CPU per word: {_ms(plain * 1000)} us without the shared log, "
+              f"{_ms(shared * 1000)} us with it: ratio {ratio:.2f} (target at most 1.3)")
+    if any(summary["opened"] == 0 for summary in runs.values()):
+        raise UnavailableError(f"no conversation could be opened: "
+                               f"{[s['errors'] for s in runs.values()]}")
     return 0
 
 

@@ -6,14 +6,16 @@
     midstream serve --port 0 --metrics-port 9464      # any free port; Prometheus metrics
     MIDSTREAM_TOKEN=... midstream serve --host 0.0.0.0 --tls-cert c.pem --tls-key k.pem \\
         --require-tls --token-env
+    midstream serve --redis redis://10.0.0.7:6379/0 --workers 2     # one replica of several
 
 The first line on standard output names the address (``serving on HOST:PORT``), so a script
 started with ``--port 0`` can read the port. SIGTERM (and SIGINT) drain: health turns
 NOT_SERVING, every live conversation is finished and its caller and followers get the final
 update and ``ended`` within ``--grace`` seconds, then the process exits 0. This module is an
 entry point: the only place the server's environment variables are read (``MIDSTREAM_HOST``,
-``MIDSTREAM_PORT``, ``MIDSTREAM_MODELS`` under the options of the same meaning, and the token's
-variable), in :func:`build_config`, which can be handed another environment.
+``MIDSTREAM_PORT``, ``MIDSTREAM_MODELS`` under the options of the same meaning, the token's
+variable and ``MIDSTREAM_REDIS`` for the shared log), in :func:`build_config`, which can be
+handed another environment.
 """
 
 from __future__ import annotations
@@ -28,7 +30,7 @@ import os
 import signal
 import sys
 import time
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Final
 
@@ -38,6 +40,7 @@ from midstream.server import (
     MidstreamServer,
     ServerConfig,
     ServerLimits,
+    SharedLogConfig,
     run_server_loop,
 )
 
@@ -47,6 +50,7 @@ _PORT_ENV = "MIDSTREAM_PORT"
 _MODELS_ENV = "MIDSTREAM_MODELS"
 _DEFAULT_HOST = "127.0.0.1"
 _DEFAULT_PORT = 50051
+_REDIS_ENV = "MIDSTREAM_REDIS"
 _log = logging.getLogger(__name__)
 
 
@@ -124,6 +128,19 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              "no time the server wants but costs the cores' power; on virtual "
                              "machines it lowers CPU per word and latency tails "
                              "(docs/benchmarks.md). Pin the server (taskset) first. Linux only")
+    parser.add_argument("--redis", default=None, metavar="URL",
+                        help="share every conversation's updates and input events in this "
+                             "Redis (redis://HOST:PORT/DB), so that any replica serves Follow, "
+                             "GetRevisions and the listing and can continue a conversation "
+                             f"whose replica died (default ${_REDIS_ENV}; docs/deploy.md)")
+    parser.add_argument("--redis-limit", action="append", default=[], metavar="NAME=VALUE",
+                        help="set a limit of the shared log (max_entries, max_age_s, "
+                             "max_events, buffer_entries, timeout_s, key_prefix; "
+                             "docs/limits.md), repeatable")
+    parser.add_argument("--workers", type=int, default=1, metavar="N",
+                        help="run N server processes on one port (SO_REUSEPORT) sharing the "
+                             "--redis log, to use N cores (default 1)")
+    parser.add_argument("--reuse-port", action="store_true", help=argparse.SUPPRESS)
     parser.set_defaults(handler=run)
 
 
@@ -213,11 +230,50 @@ def _token(args: argparse.Namespace, environ: Mapping[str, str]) -> str | None:
     return value
 
 
+def parse_log_limits(url: str, items: list[str]) -> SharedLogConfig:
+    """The shared log's configuration: ``url`` and ``NAME=VALUE`` items.
+
+    Raises
+    ------
+    InputError
+        An item without ``=``, a name that is no shared-log limit, or a bad value.
+    """
+    defaults = SharedLogConfig(url=url)
+    names = [f.name for f in dataclasses.fields(SharedLogConfig) if f.name != "url"]
+    values: dict[str, int | float | str] = {}
+    for item in items:
+        name, sep, text = item.partition("=")
+        name = name.strip()
+        if not sep or name not in names:
+            raise InputError(f"--redis-limit {item!r}: expected NAME=VALUE with NAME one of "
+                             f"{', '.join(names)}")
+        kind = type(getattr(defaults, name))
+        try:
+            values[name] = kind(text.strip())
+        except ValueError:
+            raise InputError(f"--redis-limit {item!r}: {name} takes a "
+                             f"{'whole number' if kind is int else 'number'}") from None
+    return SharedLogConfig(url=url, **values)  # type: ignore[arg-type]
+
+
 def run(args: argparse.Namespace) -> int:
     config = build_config(args)
     if args.full_collection_every < 0:
         raise InputError("--full-collection-every must be >= 0 (0: never)")
     gc_thresholds = parse_gc_thresholds(args.gc_thresholds)
+    if args.workers < 1:
+        raise InputError(f"--workers must be at least 1, not {args.workers}")
+    if args.workers > 1:
+        if config.shared_log is None:
+            raise InputError(
+                f"--workers {args.workers} needs a shared log (--redis URL or "
+                f"${_REDIS_ENV}): without one each worker would hold only its own "
+                "conversations, and a follower would reach the wrong one")
+        from midstream.client._workers import run_workers  # noqa: PLC0415 - only with --workers
+
+        return run_workers(config, args.workers, gc_thresholds=gc_thresholds,
+                           full_collection_s=args.full_collection_every,
+                           spin_idle_cores=args.spin_idle_cores)
     # Started before the server, while this process has one thread, and stopped after it.
     with IdleSpinners() if args.spin_idle_cores else contextlib.nullcontext():
         return run_server_loop(serve(config, gc_thresholds=gc_thresholds,
@@ -264,6 +320,9 @@ def build_config(args: argparse.Namespace, *, environ: Mapping[str, str] | None 
                          "--max-live-conversations >= 1")
     if args.lag is not None and args.lag < 0:
         raise InputError(f"--lag must be >= 0, got {args.lag}")
+    url = args.redis if args.redis is not None else environ.get(_REDIS_ENV, "")
+    if args.redis_limit and not url:
+        raise InputError("--redis-limit needs --redis URL (or $MIDSTREAM_REDIS)")
     return ServerConfig(
         host=host, port=port, models_dir=models,
         metrics_host=args.metrics_host, metrics_port=args.metrics_port,
@@ -273,15 +332,19 @@ def build_config(args: argparse.Namespace, *, environ: Mapping[str, str] | None 
                                "max_live_conversations": args.max_live_conversations,
                                **parse_limits(args.limit)}),
         max_open_words=args.lag, settle=not args.no_settle,
+        shared_log=parse_log_limits(url, args.redis_limit) if url else None,
+        reuse_port=args.reuse_port or args.workers > 1,
     )
 
 
 async def serve(config: ServerConfig, *, gc_thresholds: tuple[int, int, int] | None = None,
-                full_collection_s: float = 0.0) -> int:
+                full_collection_s: float = 0.0,
+                on_ready: Callable[[int], None] | None = None) -> int:
     """Serve until SIGTERM or SIGINT, then drain within ``config.grace_s``; returns 0.
 
     ``gc_thresholds``: the collector's thresholds once the models are loaded (``None``: leave
     them as they are). ``full_collection_s``: seconds between full collections (0: none).
+    ``on_ready`` (a worker of ``--workers``) is given the port instead of it being printed.
     """
     server = MidstreamServer(config)
     await server.start()
@@ -291,7 +354,10 @@ async def serve(config: ServerConfig, *, gc_thresholds: tuple[int, int, int] | N
     gc.freeze()
     if gc_thresholds is not None:
         gc.set_threshold(*gc_thresholds)
-    print(f"serving on {config.host}:{server.port}", flush=True)
+    if on_ready is not None:
+        on_ready(server.port)
+    else:
+        print(f"serving on {config.host}:{server.port}", flush=True)
     if server.metrics_port is not None:
         print(f"metrics on http://{config.metrics_host}:{server.metrics_port}/metrics",
               flush=True)

@@ -165,26 +165,49 @@ class ProcessSample:
 
 
 class ProcessProbe:
-    """Reads a local process's CPU time and RSS from ``/proc`` (Linux only)."""
+    """Reads a local process's CPU time and RSS from ``/proc`` (Linux only).
 
-    def __init__(self, pid: int) -> None:
+    ``children=True`` adds its child processes' (``serve --workers``: the workers do the work,
+    the supervising process waits).
+    """
+
+    def __init__(self, pid: int, *, children: bool = False) -> None:
         self.pid = pid
+        self._children = children
         self._tick = os.sysconf("SC_CLK_TCK")
         self._page = os.sysconf("SC_PAGE_SIZE")
 
     def sample(self) -> ProcessSample:
-        """The process's counters now.
+        """The process's counters now (with its children's, when asked).
 
         Raises
         ------
         InputError
             When the process does not exist or ``/proc`` cannot be read.
         """
+        own = self._sample(self.pid)
+        if not self._children:
+            return own
+        cpu, rss = own.cpu_s, own.rss_bytes
         try:
-            stat = Path(f"/proc/{self.pid}/stat").read_text(encoding="ascii")
-            statm = Path(f"/proc/{self.pid}/statm").read_text(encoding="ascii")
+            listed = Path(f"/proc/{self.pid}/task/{self.pid}/children").read_text("ascii")
+        except OSError:
+            listed = ""
+        for child in listed.split():
+            try:
+                sample = self._sample(int(child))
+            except InputError:
+                continue  # exited between the listing and the read
+            cpu += sample.cpu_s
+            rss += sample.rss_bytes
+        return ProcessSample(wall=own.wall, cpu_s=cpu, rss_bytes=rss)
+
+    def _sample(self, pid: int) -> ProcessSample:
+        try:
+            stat = Path(f"/proc/{pid}/stat").read_text(encoding="ascii")
+            statm = Path(f"/proc/{pid}/statm").read_text(encoding="ascii")
         except OSError as exc:
-            raise InputError(f"cannot read /proc/{self.pid}: {exc.strerror} (is the server "
+            raise InputError(f"cannot read /proc/{pid}: {exc.strerror} (is the server "
                              "process local and alive?)") from None
         # Fields after the parenthesised command name, which may itself hold spaces.
         fields = stat[stat.rindex(")") + 2:].split()

@@ -97,11 +97,14 @@ class Welcome:
 
     ``epoch`` tells this conversation apart from any other that uses or used the same id (0:
     a server that does not say); give it with a ``from_seq`` to :meth:`Client.follow`.
+    ``events_logged``: for a conversation continued with ``resume=True``, how many of the
+    caller's events (after opening) the server holds; send the rest, from the next one on.
     """
 
     conversation_id: str
     next_seq: int
     epoch: int = 0
+    events_logged: int = 0
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

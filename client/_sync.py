@@ -147,11 +147,12 @@ class SyncClient:
         """See :meth:`Client.reload_models`."""
         return self._run(self._client.reload_models(directory))
 
-    def converse(self, conversation_id: str | None = None, *,
+    def converse(self, conversation_id: str | None = None, *, resume: bool = False,
                  buffer: int = DEFAULT_BUFFER) -> SyncConversation:
         """See :meth:`Client.converse`; use the result with ``with``. ``buffer`` as for
         :meth:`converse_many`."""
-        return SyncConversation(self, self._client.converse(conversation_id), buffer)
+        return SyncConversation(self, self._client.converse(conversation_id, resume=resume),
+                                buffer)
 
     def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
                       buffer: int = DEFAULT_BUFFER) -> SyncMultiplexedStream:

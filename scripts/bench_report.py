@@ -13,6 +13,9 @@ the tables.
     .venv/bin/python scripts/bench_report.py --reuse /tmp/bench       # rewrite from saved output
     .venv/bin/python scripts/bench_report.py --multiplex              # also the ConverseMany sweep
 
+``--shared-log`` also runs ``scripts/bench_redis.py`` (the shared Redis log's CPU per word
+against none, and Redis's bytes per word) and adds its table.
+
 ``--multiplex`` runs ``bench_service.py`` a second time with ``--multiplex`` (the conversations
 carried over a few ``ConverseMany`` streams) and adds its table; ``--spin-steps`` runs that sweep
 once more at those steps with each server started with ``--spin-idle-cores`` (its core kept from
@@ -74,6 +77,9 @@ def main() -> int:
     parser.add_argument("--multiplex-channels", type=int, default=None, metavar="N",
                         help="passed as --channels to bench_service.py --multiplex (streams "
                              "the conversations share; its default is 4)")
+    parser.add_argument("--shared-log", action="store_true",
+                        help="also run bench_redis.py (the shared Redis log's CPU per word and "
+                             "Redis bytes per word; starts its own redis-server)")
     parser.add_argument("--work", type=Path, default=Path("/tmp/midstream-bench"))
     parser.add_argument("--reuse", type=Path, default=None, metavar="DIR",
                         help="write the page from the output saved in DIR; measure nothing")
@@ -113,10 +119,13 @@ def main() -> int:
         if args.multiplex_channels:
             spin_cmd += ["--channels", str(args.multiplex_channels)]
         spinning = bool(args.multiplex and args.spin_steps)
+        redis_cmd = [sys.executable, str(_SCRIPTS / "bench_redis.py"), *model_args,
+                     "--json", str(work / "redis.json")]
         if args.smoke:
             for command in (engine_cmd, service_cmd, memory_cmd, multiplex_cmd, gc_cmd,
-                            spin_cmd):
+                            spin_cmd, redis_cmd):
                 command.append("--smoke")
+        (work / "redis.json").unlink(missing_ok=True)
         (work / "service_multiplex.json").unlink(missing_ok=True)
         (work / "service_multiplex_spin.json").unlink(missing_ok=True)
         if (_SCRIPTS / "bench_engine.py").exists():
@@ -128,11 +137,14 @@ def main() -> int:
             _run(multiplex_cmd, work / "service_multiplex.txt")
         if spinning:
             _run(spin_cmd, work / "service_multiplex_spin.txt")
+        if args.shared_log:
+            _run(redis_cmd, work / "redis.txt")
         commands_file.write_text(json.dumps({
             "engine": _shown(engine_cmd), "service": _shown(service_cmd),
             "service_multiplex": _shown(multiplex_cmd) if args.multiplex else None,
             "service_multiplex_spin": _shown(spin_cmd) if spinning else None,
             "memory": _shown(memory_cmd), "gc": _shown(gc_cmd),
+            "redis": _shown(redis_cmd) if args.shared_log else None,
             "machine_before": before, "models": models_note,
             "report": _shown([sys.executable, str(Path(__file__).resolve()), *sys.argv[1:]]),
             "machine_after": machine()}, indent=2), encoding="utf-8")
@@ -148,8 +160,10 @@ def main() -> int:
     spun = json.loads(spin_file.read_text(encoding="utf-8")) if spin_file.exists() else None
     gc_file = work / "gc.json"
     collector = json.loads(gc_file.read_text(encoding="utf-8")) if gc_file.exists() else None
+    redis_file = work / "redis.json"
+    shared = json.loads(redis_file.read_text(encoding="utf-8")) if redis_file.exists() else None
     args.out.write_text(render(commands, service, memory, engine_text, multiplexed,
-                               collector=collector, spun=spun),
+                               collector=collector, spun=spun, shared=shared),
                         encoding="utf-8")
     print(f"wrote {args.out}", file=sys.stderr)
     return 0
@@ -280,11 +294,40 @@ def _collector_section(command: str | None, result: dict[str, Any]) -> list[str]
     ]
 
 
+def _shared_section(command: str | None, result: dict[str, Any]) -> list[str]:
+    """The shared Redis log's cost (``bench_redis.py`` output)."""
+    ratios = ", ".join(f"{r:.2f}" for r in result["cpu_ratios"])
+    return [
+        "## Shared Redis log (`serve --redis`)",
+        "",
+        f"`{command or 'scripts/bench_redis.py'}`",
+        "",
+        f"In-process (no network between caller and server), {result['conversations']} "
+        f"conversations take {result['words_per_pass']:,} SwDA val words one per event, "
+        "without and with every session's journal (the pass ends when the writer has sent "
+        "everything to Redis); passes alternate. Redis's own CPU is not counted.",
+        "",
+        "| measure | result | target (project brief, no source) |",
+        "|---|---|---|",
+        f"| server CPU per word with the log ÷ without, median of {result['repeats']} "
+        f"(each: {ratios}) | **{result['cpu_ratio_median']:.2f}x** | ≤ 1.3 |",
+        f"| ms per word without / with | {result['ms_per_word_plain']:.3f} / "
+        f"{result['ms_per_word_shared']:.3f} | - |",
+        f"| Redis bytes per word: update stream / input events / all keys | "
+        f"{result['update_stream_bytes_per_word']:.0f} / "
+        f"{result['event_stream_bytes_per_word']:.0f} / {result['all_bytes_per_word']:.0f} "
+        "| - |",
+        "",
+    ]
+
+
 def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, Any],
            engine_text: str, multiplexed: dict[str, Any] | None = None, *,
-           collector: dict[str, Any] | None = None, spun: dict[str, Any] | None = None) -> str:
+           collector: dict[str, Any] | None = None, spun: dict[str, Any] | None = None,
+           shared: dict[str, Any] | None = None) -> str:
     """The benchmarks page; ``multiplexed`` is ``bench_service.py --multiplex`` output,
-    ``spun`` the same with ``--spin-idle-cores``, ``collector`` is ``bench_gc.py`` output."""
+    ``spun`` the same with ``--spin-idle-cores``, ``collector`` is ``bench_gc.py`` output,
+    ``shared`` is ``bench_redis.py`` output."""
     m0, m1 = commands["machine_before"], commands["machine_after"]
     eng = service["engine"]
     steps = service["steps"]
@@ -419,6 +462,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "replay buffer and history.",
         "",
         *(_collector_section(commands.get("gc"), collector) if collector else []),
+        *(_shared_section(commands.get("redis"), shared) if shared else []),
         "## Word decoder alone",
         "",
         f"`{commands['engine']}` (owned by the word-model work; its output verbatim):",
@@ -468,6 +512,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
           else []),
         commands["memory"],
         *([commands["gc"]] if commands.get("gc") else []),
+        *([commands["redis"]] if commands.get("redis") else []),
         "midstream bench --target HOST:PORT --conversations 500 --corpus DIR   # any server",
         "```",
         "",

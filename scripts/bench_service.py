@@ -25,6 +25,11 @@ latency timed from each word's scheduled time; the transport baseline is then on
 with ``midstream serve --spin-idle-cores`` (an idle-priority spinner keeps its core from
 halting between frames).
 
+``--redis URL`` starts each server with ``midstream serve --redis URL`` (the shared log);
+``--workers N`` (needs ``--redis``) with ``--workers N``, unpinned (the workers take every
+core), the server's CPU then being its workers' together. Running the sweep with ``--workers
+2`` and again with ``--workers 1`` compares the conversations held within the budget.
+
 Absolute figures depend on the machine and on what else runs on it (see the load average
 printed first); compare ratios.
 """
@@ -90,14 +95,18 @@ def one_step(args: argparse.Namespace, models: Path, script: WordScript, n: int,
              generator_cores: list[int]) -> dict[str, Any]:
     """One step: a fresh pinned server, the tagging load, then the transport baseline."""
     ramp = min(10.0, n / 100)
-    with spawn_server(models=models, cpu=args.server_core, live=max(256, n),
-                      token=None, spin=args.spin_idle_cores) as spawned:
-        target, probe = spawned.target, ProcessProbe(spawned.pid)
+    workers = args.workers
+    with spawn_server(models=models, cpu=args.server_core if workers == 1 else None,
+                      live=max(256, n), token=None, spin=args.spin_idle_cores,
+                      redis=args.redis, workers=workers) as spawned:
+        target = spawned.target
+        probe = ProcessProbe(spawned.pid, children=workers > 1)
         mode = {"multiplex": args.multiplex, "tick_s": args.tick_ms / 1000}
         load = asyncio.run(run_load(LoadConfig(
             target=target, conversations=n, rate=args.rate, seconds=args.seconds, ramp_s=ramp,
             channels=args.channels, **mode), script, probe=probe,
-            lag_probe=MetricsProbe(spawned.metrics_url))).summary()
+            lag_probe=MetricsProbe(spawned.metrics_url) if spawned.metrics_url else None,
+        )).summary()
         base = asyncio.run(run_load(LoadConfig(
             target=target, conversations=n, rate=args.rate, seconds=args.baseline_seconds,
             ramp_s=0.0, channels=args.channels, workload="describe", **mode), script,
@@ -229,6 +238,10 @@ def main() -> int:
                         help="start each server with 'midstream serve --spin-idle-cores' (its "
                              "core kept from idling by an idle-priority spinner)")
     parser.add_argument("--client-core", type=int, default=1)
+    parser.add_argument("--redis", default=None, metavar="URL",
+                        help="start each server with 'midstream serve --redis URL'")
+    parser.add_argument("--workers", type=int, default=1, metavar="N",
+                        help="start each server with '--workers N' (needs --redis; unpinned)")
     parser.add_argument("--engine-words", type=int, default=20_000)
     parser.add_argument("--all-steps", action="store_true",
                         help="run every step even after one fails")
@@ -239,6 +252,8 @@ def main() -> int:
     parser.add_argument("--json", type=Path, default=None, metavar="FILE",
                         help="also write every figure to FILE as JSON")
     args = parser.parse_args()
+    if args.workers > 1 and not args.redis:
+        parser.error("--workers needs --redis URL")
     steps = _MULTIPLEX_STEPS if args.multiplex else _FULL_STEPS
     if args.quick:
         args.seconds, args.baseline_seconds = 15.0, 10.0

@@ -17,6 +17,7 @@ import asyncio
 import functools
 import logging
 from types import TracebackType
+from typing import TYPE_CHECKING
 
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
@@ -30,6 +31,9 @@ from midstream.server._metrics import LoopLagProbe, ServerMetrics
 from midstream.server._models import Bundle, load_bundle, tune_bundle
 from midstream.server._servicer import MidstreamServicer
 from midstream.wire import midstream_pb2 as pb
+
+if TYPE_CHECKING:  # imported only with a shared log: redis stays out of the default path
+    from midstream.server._journal import SharedLog
 
 _log = logging.getLogger(__name__)
 
@@ -61,6 +65,8 @@ class MidstreamServer:
         self._port: int | None = None
         self._metrics_port: int | None = None
         self._stopped = False
+        self._shared: SharedLog | None = None
+        self._health_tasks: set[asyncio.Task[None]] = set()
 
     @property
     def port(self) -> int:
@@ -128,8 +134,9 @@ class MidstreamServer:
             options=[
                 ("grpc.max_receive_message_length", limits.max_message_bytes),
                 ("grpc.max_send_message_length", limits.max_message_bytes),
-                # Two servers on one port would split traffic unpredictably.
-                ("grpc.so_reuseport", 0),
+                # Two servers on one port split the traffic between them: only on purpose
+                # (serve --workers, replicas sharing one log).
+                ("grpc.so_reuseport", 1 if config.reuse_port else 0),
                 # Ping idle connections so a peer that vanished without closing (a dead network)
                 # is noticed within about 80 s, before the idle timeout (common practice, no
                 # source).
@@ -137,7 +144,19 @@ class MidstreamServer:
                 ("grpc.keepalive_timeout_ms", 20_000),
             ],
         )
-        self._servicer = MidstreamServicer(bundle, limits, self.metrics, load=load)
+        shared = None
+        if config.shared_log is not None:
+            from midstream.server._journal import SharedLog  # noqa: PLC0415 - see above
+
+            # The models and decoder settings: only they decode a conversation the same.
+            models = (",".join(info.sha256 for info in bundle.describe())
+                      + f";lag={config.max_open_words};settle={config.settle}")
+            shared = self._shared = SharedLog(config.shared_log, self.metrics.registry,
+                                              models=lambda: models,
+                                              on_health=self._shared_health)
+            await shared.start()
+        self._servicer = MidstreamServicer(bundle, limits, self.metrics, load=load,
+                                           shared=shared)
         # Not the generated registration: requests that do not decode must reach the servicer.
         add_servicer(self._servicer, server)
         self._health = health.aio.HealthServicer()
@@ -159,6 +178,8 @@ class MidstreamServer:
         self._loop_lag.start()
         for name in ("", SERVICE_NAME):
             await self._health.set(name, health_pb2.HealthCheckResponse.SERVING)
+        if shared is not None:
+            self._shared_health(shared.healthy)
         if self.config.metrics_port is not None:
             try:
                 self._metrics_port = self.metrics.serve(self.config.metrics_host,
@@ -175,6 +196,19 @@ class MidstreamServer:
         _log.info("serving on %s:%d (%s, %s build)%s", self.config.host, port,
                   "TLS" if credentials else "plaintext", build,
                   f", metrics on port {self._metrics_port}" if self._metrics_port else "")
+
+    def _shared_health(self, healthy: bool) -> None:
+        """Report the shared log's state under its own health name (the service still serves
+        its callers while the log is degraded)."""
+        from midstream.server._journal import SHARED_LOG_HEALTH  # noqa: PLC0415
+
+        if self._health is None:
+            return
+        status = (health_pb2.HealthCheckResponse.SERVING if healthy
+                  else health_pb2.HealthCheckResponse.NOT_SERVING)
+        task = asyncio.ensure_future(self._health.set(SHARED_LOG_HEALTH, status))
+        self._health_tasks.add(task)
+        task.add_done_callback(self._health_tasks.discard)
 
     async def stop(self, grace: float | None = None) -> None:
         """Drain and stop; idempotent.
@@ -197,6 +231,9 @@ class MidstreamServer:
         live = self._servicer.registry.live_count
         self._servicer.registry.close_all(pb.END_REASON_SERVER_SHUTDOWN)
         _log.info("stopping: finished %d live conversations, grace %.1f s", live, grace)
+        if self._shared is not None:
+            # Their ends (and anything still buffered) reach the log before the streams close.
+            await self._shared.stop(grace)
         await self._server.stop(grace)
         self._loop_lag.stop()
         self.metrics.close()

@@ -100,6 +100,52 @@ class ServerLimits:
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
+class SharedLogConfig:
+    """Where replicas share their update logs (a Redis server), and how much it keeps.
+
+    Every limit is listed in ``docs/limits.md``. ``url`` is a ``redis://`` or ``rediss://`` URL
+    (it may hold a password, so the repr hides it). Counts are entries of one conversation's
+    streams; ``_s`` fields are seconds.
+
+    Examples
+    --------
+    >>> SharedLogConfig(url="redis://127.0.0.1:6379/0", max_entries=100).max_entries
+    100
+    """
+
+    url: str = field(repr=False)
+    max_entries: int = 4096
+    """Updates kept per conversation in its Redis stream (up to a quarter more between trims)."""
+    max_age_s: float = 3600.0
+    """Updates older than this are trimmed at the conversation's next write; a conversation's
+    keys expire this long after its last write."""
+    max_events: int = 100_000
+    """Input events kept per conversation for failover; past it the conversation can no
+    longer be continued on another replica (it goes on where it is)."""
+    buffer_entries: int = 100_000
+    """Entries (updates and events, all conversations) held locally while Redis is unreachable
+    or slow; past it the oldest conversations' pending entries are dropped and their followers
+    get a gap notice."""
+    key_prefix: str = "midstream"
+    """Prefix of every key this server writes (several deployments may share one Redis)."""
+    timeout_s: float = 2.0
+    """How long one Redis round trip may take before the log counts as degraded."""
+
+    def __post_init__(self) -> None:
+        if not self.url.startswith(("redis://", "rediss://", "unix://")):
+            raise InputError("the shared log URL must start with redis://, rediss:// or "
+                             "unix:// (e.g. redis://127.0.0.1:6379/0)")
+        for name in ("max_entries", "max_events", "buffer_entries"):
+            if getattr(self, name) < 1:
+                raise InputError(f"SharedLogConfig.{name} must be at least 1, not "
+                                 f"{getattr(self, name)}")
+        if not (self.max_age_s > 0 and self.timeout_s > 0):
+            raise InputError("SharedLogConfig.max_age_s and timeout_s must be > 0")
+        if not self.key_prefix or any(c in self.key_prefix for c in "{}"):
+            raise InputError("SharedLogConfig.key_prefix must be non-empty and hold no braces")
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
 class ServerConfig:
     """Where and how one server runs.
 
@@ -110,6 +156,7 @@ class ServerConfig:
     metrics; ``0`` picks a free port. ``token`` (never shown in the repr) makes every call but
     the health check require ``authorization: Bearer <token>`` metadata. ``require_tls`` refuses
     to start without ``tls_cert`` and ``tls_key``. ``grace_s`` bounds a graceful stop.
+    ``shared_log`` (a :class:`SharedLogConfig`) makes this server one replica of several.
     """
 
     host: str = "127.0.0.1"
@@ -128,6 +175,12 @@ class ServerConfig:
     many newer words of its speaker have arrived; ``None``: the decoder's default."""
     settle: bool = True
     """``False``: every label becomes final exactly ``max_open_words`` words late."""
+    shared_log: SharedLogConfig | None = None
+    """Publish every conversation to a shared Redis log, so that any replica serves
+    ``Follow``, ``GetRevisions`` and the listing and can continue a conversation whose replica
+    died (``docs/deploy.md``); ``None``: everything stays in this process."""
+    reuse_port: bool = False
+    """Let several processes listen on one port (``SO_REUSEPORT``; ``serve --workers``)."""
 
     def __post_init__(self) -> None:
         if self.max_open_words is not None and self.max_open_words < 0:

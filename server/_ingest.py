@@ -71,6 +71,9 @@ def apply_event(session: Session, event: pb.ClientEvent | MalformedMessage, rece
     else:
         raise EventError("the event is empty: set one of words, replace, withdraw, hint, "
                          "tick, close")
+    journal = session.journal
+    if journal is not None:
+        journal.accepted(event)
     return False
 
 

@@ -207,6 +207,10 @@ class ManyStream:
             elif number == 0:
                 self._refuse(number, EventError(
                     "field 'channel' is 0 (unset?): channel numbers start at 1"))
+            elif item.event.WhichOneof("event") == "open" and item.event.open.resume:
+                # Continuing needs an await (the shared log) inside a frame's one step.
+                self._refuse(number, ProtocolStateError(
+                    "open.resume is taken on Converse only; continue the conversation there"))
             elif item.event.WhichOneof("event") == "open":
                 self._open(number, item.event.open.conversation_id)
             elif number <= self._highest:

@@ -20,7 +20,7 @@ import logging
 import time
 from collections.abc import AsyncIterator, Callable
 from pathlib import Path
-from typing import Any, NoReturn
+from typing import TYPE_CHECKING, Any, NoReturn
 
 import grpc
 from midstream._errors import (
@@ -49,6 +49,10 @@ from midstream.server._status import (
 from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
+
+if TYPE_CHECKING:  # imported only with a shared log: redis stays out of the default path
+    from midstream.server._journal import SharedLog
+    from midstream.server._replica import Replica
 
 _log = logging.getLogger(__name__)
 
@@ -156,12 +160,19 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     """
 
     def __init__(self, bundle: Bundle, limits: ServerLimits, metrics: ServerMetrics, *,
-                 load: Callable[[Path], Bundle] = load_bundle) -> None:
+                 load: Callable[[Path], Bundle] = load_bundle,
+                 shared: SharedLog | None = None) -> None:
         self.bundle = bundle
         self._load = load  # what ReloadModels loads with (the server's decoder settings)
         self._limits = limits
         self._metrics = metrics
-        self.registry = SessionRegistry(limits, metrics)
+        self.registry = SessionRegistry(limits, metrics,
+                                        journal=shared.journal if shared else None)
+        # Serves what other replicas ingest (and continues their conversations) from the log.
+        self.replica: Replica | None = None
+        if shared is not None:
+            from midstream.server._replica import Replica  # noqa: PLC0415 - see above
+            self.replica = Replica(shared, limits)
         self._stopping = False
         self._waiting = 0  # ingest streams without a conversation open
         # One future for every stream waiting on a stop, made on first use (on the loop):
@@ -298,8 +309,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if self._stopping:
             await self.refuse_stream(context, UnavailableError("the server is shutting down"))
         try:
-            session = self.registry.open(first.open.conversation_id, self.bundle,
-                                         owner=caller_address(context))
+            session, logged = await self._open(first.open, owner=caller_address(context))
         except MidstreamError as exc:
             await self.refuse_stream(context, exc)
         # From here on the conversation is this call's to end, however the call ends. grpc
@@ -312,7 +322,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             functools.partial(self._call_ended, session))  # type: ignore[arg-type]
         try:
             yield pb.ServerMessage(welcome=pb.Welcome(
-                conversation_id=session.id, next_seq=session.seq + 1, epoch=session.epoch))
+                conversation_id=session.id, next_seq=session.seq + 1, epoch=session.epoch,
+                events_logged=logged))
             async for message in self._converse(session, context):
                 yield message
         finally:
@@ -323,12 +334,49 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if session.live:
             self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
 
+    async def _open(self, request: pb.OpenConversation, *, owner: str,
+                    ) -> tuple[Session, int]:
+        """A new conversation, or one continued from the shared log; and the events logged.
+
+        ``owner`` names the caller (its address), as :meth:`SessionRegistry.open` takes it."""
+        if request.resume:
+            if self.replica is None or not request.conversation_id:
+                raise ProtocolStateError(
+                    "open.resume continues a conversation by its id on servers that share a "
+                    "log (midstream serve --redis)")
+            return await self.replica.resume(request.conversation_id, self.registry,
+                                             self.bundle, owner=owner)
+        if self.replica is not None and request.conversation_id:
+            await self.replica.check_new(request.conversation_id)
+        return self.registry.open(request.conversation_id, self.bundle, owner=owner), 0
+
+    async def _shared_only(self, conversation_id: str) -> Replica | None:
+        """The replica view when this server shares a log and does not hold the conversation
+        (or holds only an ended one whose id another replica has since given to a new one).
+
+        Raises
+        ------
+        EventError, FieldLimitError
+            For an id no conversation can have (as :meth:`_known`).
+        """
+        if self.replica is None:
+            return None
+        try:
+            session = self._known(conversation_id)
+        except NotFoundError:
+            return self.replica
+        if not session.live and await self.replica.newer_than(conversation_id, session.epoch):
+            return self.replica
+        return None
+
     async def _converse(
         self, session: Session,
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
         # A server stop finishes every session, so waiting on this session's end covers it.
-        sent = 0  # the last sequence number the caller was given
+        # The last sequence number the caller was given: a continued conversation's earlier
+        # updates went to the caller from the replica that died.
+        sent = session.seq
         reader = self._reader(context, session.ended_signal())
         try:
             while True:
@@ -422,11 +470,21 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         try:
             if isinstance(request, MalformedMessage):
                 raise request.error()
-            session = self._known(request.conversation_id)
             from_seq = request.from_seq if request.HasField("from_seq") else None
-            backlog, follower = session.follow(from_seq, request.epoch)
+            replica = await self._shared_only(request.conversation_id)
+            if replica is None:
+                session = self._known(request.conversation_id)
+                backlog, follower = session.follow(from_seq, request.epoch)
         except MidstreamError as exc:
             await self._fail(context, exc)
+        if replica is not None:
+            try:
+                async for message in replica.follow(request.conversation_id, from_seq,
+                                                    request.epoch, self.stop_signal()):
+                    yield message
+            except MidstreamError as exc:
+                await self._fail(context, exc)
+            return
         if follower is None:
             for message in backlog:
                 yield message
@@ -442,14 +500,23 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         context: grpc.aio.ServicerContext[pb.ListConversationsRequest,
                                           pb.ListConversationsReply],
     ) -> pb.ListConversationsReply:
-        return pb.ListConversationsReply(
-            conversations=[s.summary() for s in self.registry.sessions()])
+        local = [s.summary() for s in self.registry.sessions()]
+        if self.replica is not None:
+            try:
+                local += await self.replica.summaries(
+                    {(s.conversation_id, s.epoch) for s in local})
+            except MidstreamError as exc:
+                await self._fail(context, exc)
+        return pb.ListConversationsReply(conversations=local)
 
     async def GetRevisions(  # noqa: N802
         self, request: pb.GetRevisionsRequest,
         context: grpc.aio.ServicerContext[pb.GetRevisionsRequest, pb.GetRevisionsReply],
     ) -> pb.GetRevisionsReply:
         try:
+            replica = await self._shared_only(request.conversation_id)
+            if replica is not None:
+                return await replica.revisions(request.conversation_id)
             session = self._known(request.conversation_id)
         except MidstreamError as exc:
             await self._fail(context, exc)

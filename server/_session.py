@@ -29,7 +29,7 @@ import secrets
 import time
 from collections import OrderedDict, deque
 from collections.abc import AsyncIterator, Callable, Iterable, Iterator
-from typing import Generic, TypeVar
+from typing import Generic, Protocol, TypeVar
 
 from midstream._errors import EventError, LimitExceededError, NotFoundError
 from midstream._types import (
@@ -86,6 +86,24 @@ def new_epoch() -> int:
     2**53 exactly); two incarnations of one id share an epoch once in 2**53.
     """
     return secrets.randbelow(2**53 - 1) + 1
+
+
+class Journal(Protocol):
+    """Where a session also records what it publishes (a shared log, ``midstream.server._journal``).
+
+    Every method is called synchronously from the session's own step and must not block: it
+    queues what it is given and writes later.
+    """
+
+    def published(self, update: pb.Update) -> None:
+        """An update was published, in the wire form its caller is sent (called with every
+        update, in sequence order; the message must not be changed)."""
+
+    def accepted(self, event: pb.ClientEvent) -> None:
+        """An input event after ``open`` was applied without error (``close`` excluded)."""
+
+    def ended(self, message: pb.ServerMessage) -> None:
+        """The conversation ended; ``message`` is its ``ended`` message."""
 
 
 def message_budget(limits: ServerLimits) -> int:
@@ -307,9 +325,10 @@ class Session:
     # Thousands may be live at once: no per-instance __dict__.
     __slots__ = (
         "_budget", "_ended", "_engine", "_followers", "_metrics", "_newest", "_replay",
-        "_revisions", "_shared_wire", "_table_bytes", "_utterances", "_words", "closing_messages",
-        "end_reason", "ended_at",
-        "epoch", "id", "limits", "owner", "revisions_truncated", "seq", "started_at", "timeline",
+        "_revisions", "_shared_wire", "_table_bytes", "_utterances", "_words", "clock",
+        "closing_messages", "end_reason", "ended_at",
+        "epoch", "id", "journal", "limits", "owner", "revisions_truncated", "seq", "started_at",
+        "timeline",
         "word_count",
     )
 
@@ -326,6 +345,9 @@ class Session:
         # same conversation after a failover would carry the epoch on rather than draw one.)
         self.epoch = new_epoch()
         self.started_at = time.time()
+        # Stamps each update (Unix seconds); a conversation rebuilt from a shared log stamps
+        # its replayed updates with the times they were first published.
+        self.clock: Callable[[], float] = time.time
         self.limits = limits
         self.timeline = SpeakerTimeline(limits)
         self.word_count = 0
@@ -356,6 +378,8 @@ class Session:
         self.revisions_truncated = False
         # A dict rather than a set: an empty set costs over 200 bytes, an empty dict 64.
         self._followers: dict[Follower, None] = {}
+        # Set by the registry when the server shares its log with other replicas.
+        self.journal: Journal | None = None
 
     # --- ingest ---------------------------------------------------------------------------
 
@@ -458,6 +482,8 @@ class Session:
         self.end_reason = reason
         self.ended_at = time.time()
         ended = pb.ServerMessage(ended=pb.Ended(reason=reason, last_seq=self.seq))
+        if self.journal is not None:
+            self.journal.ended(ended)
         for follower in self._followers:
             follower.push_end(ended)
         self._followers.clear()
@@ -474,7 +500,7 @@ class Session:
         if not diff and not final:
             return None
         seq = self.seq = self.seq + 1
-        now = time.time()
+        now = self.clock()
         update = self._newest = HypothesisUpdate(seq=seq, server_time=now, diff=diff,
                                                  conversation_final=final, epoch=self.epoch)
         history = self._revisions
@@ -548,6 +574,14 @@ class Session:
             cost = WIRE_MESSAGE_BYTES + update_bytes
             for follower in self._followers:
                 follower.offer(message, seq, cost)
+        journal = self.journal
+        if journal is not None:
+            # The wire form the caller (and any follower) is sent anyway: the log serialises
+            # it rather than converting the update a second time.
+            shared = self._shared_wire
+            if shared is None or shared.update.seq != seq:
+                shared = self._shared_wire = _to_wire(update)
+            journal.published(shared.update)
         tally = self._metrics.tally
         tally.revisions += revised
         if received is not None:
@@ -755,9 +789,11 @@ class SessionRegistry:
     conversations that keep the most shed their oldest records, down to a common level.
     """
 
-    def __init__(self, limits: ServerLimits, metrics: ServerMetrics) -> None:
+    def __init__(self, limits: ServerLimits, metrics: ServerMetrics, *,
+                 journal: Callable[[Session], Journal] | None = None) -> None:
         self._limits = limits
         self._metrics = metrics
+        self._journal = journal  # gives each new session its journal (a shared log)
         self._live: dict[str, Session] = {}
         self._ended: OrderedDict[str, Session] = OrderedDict()
         self._ended_by_owner: dict[str, int] = {}
@@ -795,6 +831,8 @@ class SessionRegistry:
             )
         session = Session(conversation_id, bundle.new_engine(), self._limits, self._metrics,
                           budget=self.kept, owner=owner)
+        if self._journal is not None:
+            session.journal = self._journal(session)
         self._live[conversation_id] = session
         self._metrics.live.set(len(self._live))
         _log.info("conversation %s opened", conversation_id)
@@ -811,6 +849,16 @@ class SessionRegistry:
                 self._forget_one()
             self._metrics.live.set(len(self._live))
         return messages
+
+    def forget(self, session: Session) -> None:
+        """Drop ``session`` without publishing its end (a conversation that could not be
+        rebuilt from a shared log, whose log must stay as it is)."""
+        session.journal = None
+        session.finish(pb.END_REASON_UNSPECIFIED)
+        if self._live.get(session.id) is session:
+            del self._live[session.id]
+            self.kept.used -= session.kept_bytes
+            self._metrics.live.set(len(self._live))
 
     def _forget(self, session: Session) -> None:
         del self._ended[session.id]

@@ -35,8 +35,9 @@ from midstream.client._load import (
 )
 from midstream.server import ServerLimits
 from midstream.wire import midstream_pb2 as pb
+from redis_kit import RedisProcess, redis_server_fixture
 
-__all__ = ["models_dir", "served"]  # fixtures used here, re-exported for pytest
+__all__ = ["models_dir", "redis_server_fixture", "served"]  # fixtures used here, for pytest
 
 _LOAD_KEYS = {
     "target", "workload", "conversations", "rate_per_conversation", "offered_wps", "seconds",
@@ -398,3 +399,39 @@ def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
     assert all("steal ms" in line and "loop lag" in line for line in tables)
     assert len([line for line in text.splitlines() if line.startswith("| 4 | 12 |")]) == 3
     assert "--spin-idle-cores" in text.split("## Reproduce")[1]
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_with_redis_compares_server_cpu_per_word_in_one_run(
+        models_dir: Path, swda_dir: Path, redis_server: RedisProcess,
+        capsys: pytest.CaptureFixture[str]) -> None:
+    both = _bench(["--spawn", "--models", str(models_dir), "--corpus", str(swda_dir),
+                   "--redis", redis_server.url], capsys)
+    for name in ("plain", "redis"):
+        _check_load(both[name], local=True)
+        assert both[name]["server_cpu_ms_per_word"] > 0
+    assert both["cpu_per_word_ratio"] == pytest.approx(
+        both["redis"]["server_cpu_ms_per_word"] / both["plain"]["server_cpu_ms_per_word"])
+
+
+@pytest.mark.parametrize("flags", [["--redis", "redis://127.0.0.1:9/0"], ["--workers", "2"]])
+def test_redis_and_workers_apply_to_a_spawned_server_only(
+        flags: list[str], swda_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["bench", "--smoke", "--target", "127.0.0.1:9", "--corpus", str(swda_dir),
+                 *flags]) == 1
+    assert "--spawn" in capsys.readouterr().err
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_redis_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path,
+                           redis_server: RedisProcess) -> None:
+    result = _script("bench_redis.py", "--models", str(models_dir), "--corpus",
+                     str(swda_dir), "--redis", redis_server.url, tmp_path=tmp_path)
+    assert result["words_per_pass"] == 400
+    assert result["ms_per_word_plain"] > 0 and result["ms_per_word_shared"] > 0
+    assert result["cpu_ratio_median"] > 0
+    # Every word's update and input event was written: the streams hold something per word.
+    assert result["update_stream_bytes_per_word"] > 0
+    assert result["event_stream_bytes_per_word"] > 0

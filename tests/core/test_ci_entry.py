@@ -1,5 +1,6 @@
 """CI's entry point refuses to run without the corpora, so corpus tests can never skip there,
-and installs chromium, so the report's browser test cannot skip there either."""
+and installs chromium and redis-server, so the report's browser test and the shared-log tests
+cannot skip there either."""
 
 from __future__ import annotations
 
@@ -25,8 +26,8 @@ def _fake_bin(folder: Path, name: str, script: str) -> None:
     path.chmod(0o755)
 
 
-def test_ci_run_installs_chromium_with_apt_when_it_is_missing(tmp_path: Path) -> None:
-    # A PATH holding only what .ci/run needs, so chromium is missing whatever the host has;
+def test_ci_run_installs_chromium_and_redis_with_apt_when_missing(tmp_path: Path) -> None:
+    # A PATH holding only what .ci/run needs, so both packages are missing whatever the host has;
     # apt-get is a stand-in that records its calls and fails the install, which must stop the
     # run with a clear error before any test starts.
     bin_dir = tmp_path / "bin"
@@ -42,6 +43,6 @@ def test_ci_run_installs_chromium_with_apt_when_it_is_missing(tmp_path: Path) ->
     result = subprocess.run([str(bin_dir / "bash"), str(REPO / ".ci" / "run")], env=env,
                             capture_output=True, text=True, timeout=60, check=False)
     assert result.returncode == 1
-    assert "could not install chromium" in result.stderr
+    assert "could not install chromium redis-server" in result.stderr
     assert calls.read_text(encoding="utf-8").splitlines() == [
-        "update -qq", "install -y -qq chromium"]
+        "update -qq", "install -y -qq chromium redis-server"]

@@ -97,10 +97,12 @@ class SpokenWord(_message.Message):
     def __init__(self, word_id: _Optional[str] = ..., speaker: _Optional[str] = ..., text: _Optional[str] = ..., start_s: _Optional[float] = ..., end_s: _Optional[float] = ..., confidence: _Optional[float] = ...) -> None: ...
 
 class OpenConversation(_message.Message):
-    __slots__ = ("conversation_id",)
+    __slots__ = ("conversation_id", "resume")
     CONVERSATION_ID_FIELD_NUMBER: _ClassVar[int]
+    RESUME_FIELD_NUMBER: _ClassVar[int]
     conversation_id: str
-    def __init__(self, conversation_id: _Optional[str] = ...) -> None: ...
+    resume: bool
+    def __init__(self, conversation_id: _Optional[str] = ..., resume: _Optional[bool] = ...) -> None: ...
 
 class WordBatch(_message.Message):
     __slots__ = ("words",)
@@ -285,14 +287,16 @@ class Gap(_message.Message):
     def __init__(self, first_missing: _Optional[int] = ..., oldest_kept: _Optional[int] = ..., reason: _Optional[_Union[GapReason, str]] = ...) -> None: ...
 
 class Welcome(_message.Message):
-    __slots__ = ("conversation_id", "next_seq", "epoch")
+    __slots__ = ("conversation_id", "next_seq", "epoch", "events_logged")
     CONVERSATION_ID_FIELD_NUMBER: _ClassVar[int]
     NEXT_SEQ_FIELD_NUMBER: _ClassVar[int]
     EPOCH_FIELD_NUMBER: _ClassVar[int]
+    EVENTS_LOGGED_FIELD_NUMBER: _ClassVar[int]
     conversation_id: str
     next_seq: int
     epoch: int
-    def __init__(self, conversation_id: _Optional[str] = ..., next_seq: _Optional[int] = ..., epoch: _Optional[int] = ...) -> None: ...
+    events_logged: int
+    def __init__(self, conversation_id: _Optional[str] = ..., next_seq: _Optional[int] = ..., epoch: _Optional[int] = ..., events_logged: _Optional[int] = ...) -> None: ...
 
 class Ended(_message.Message):
     __slots__ = ("reason", "last_seq")

@@ -1,0 +1,677 @@
+"""The shared update log's writing side: every conversation's updates and input events in Redis.
+
+With ``midstream serve --redis URL`` each conversation gets four keys sharing one hash tag (so
+Redis Cluster keeps them on one shard; ``ConversationKeys``):
+
+``<prefix>:{<id>}:u``
+    A stream of the conversation's updates, entry id ``<seq>-0`` (so a resume point is a
+    stream position), fields ``i`` (the conversation's epoch, which tells it apart from another
+    conversation using the same id) and ``u`` (a serialised ``Update``); the
+    end is entry ``<last seq>-1`` with ``end`` (a serialised ``ServerMessage`` holding
+    ``ended``). Trimmed to about ``max_entries`` entries and ``max_age_s`` seconds.
+``<prefix>:{<id>}:e``
+    A stream of the accepted input events after ``open``, entry id ``<n>-0`` for the n-th, field
+    ``e`` (a serialised ``ClientEvent``): what another replica replays to continue the
+    conversation. Never trimmed; at most ``max_events`` entries.
+``<prefix>:{<id>}:s``
+    A serialised ``Snapshot``, written whenever the update stream is trimmed, at a sequence
+    number no older than the oldest update left: what a follower whose position was trimmed
+    gets after the gap notice.
+``<prefix>:{<id>}:m``
+    A hash describing the conversation: ``inc`` (its epoch), ``owner`` (the process that
+    writes it), counts, speakers, whether it ended and can be continued.
+
+plus one sorted set ``<prefix>:index`` of conversation ids by last write, for the listing.
+
+Writing never blocks a session: :class:`ConversationJournal` (one per session, called
+synchronously from the session's step) only queues, and one writer task sends what is queued
+in one pipelined round trip, one script call per conversation (each atomic in Redis, so an
+update and the events that made it arrive together or not at all). While Redis is unreachable
+or slow the queue grows up to ``buffer_entries`` and is sent when Redis answers again; past that
+bound the buffered entries are dropped, and each affected conversation's next write trims its
+stream to after the hole and writes a fresh snapshot, so followers see a gap notice and a
+snapshot rather than a silent gap. Such a conversation can no longer be continued elsewhere
+(its logged input has a hole). The degraded state is logged once when it begins and once when
+it ends, counted in metrics and reported by the health service (``SHARED_LOG_HEALTH``).
+
+Use from the server's event loop only.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import logging
+import secrets
+import time
+from collections import deque
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any, Final
+
+import redis.asyncio as aioredis
+from midstream._types import HypothesisUpdate
+from midstream.server._config import SharedLogConfig
+from midstream.server._session import Session
+from midstream.wire import _convert as cv
+from midstream.wire import midstream_pb2 as pb
+from prometheus_client import CollectorRegistry, Counter, Gauge
+from redis.exceptions import NoScriptError, RedisError, ResponseError
+
+_log = logging.getLogger(__name__)
+
+#: The health-service name that reports the shared log: SERVING while writes reach Redis,
+#: NOT_SERVING while they are buffered (the service itself keeps serving its callers).
+SHARED_LOG_HEALTH: Final = "midstream.v1.Midstream/shared-log"
+
+# What one script call carries at most, so one busy conversation cannot make a call that holds
+# Redis (single-threaded) for long (common practice, no source).
+_UPDATES_PER_CALL = 256
+_EVENTS_PER_CALL = 512
+# Conversations, and entries in all, written per round trip: a round trip stays well within
+# timeout_s even on a busy Redis (common practice, no source).
+_CONVERSATIONS_PER_ROUND = 512
+_ENTRIES_PER_ROUND = 4096
+# Retry delays while Redis is unreachable, seconds.
+_RETRY_FIRST_S = 0.05
+_RETRY_MAX_S = 1.0
+# Updates between two publication times a journal keeps for trimming by age: a sample (seq,
+# time) older than max_age_s says every update up to seq is, so trimming at sample granularity
+# keeps at most this many updates too many (common practice, no source).
+_TIME_EVERY = 16
+# Seconds between two updates of a conversation's place in the listing's index (which drops
+# conversations not written for max_age_s, so an hour's precision would do; common practice,
+# no source).
+_INDEX_EVERY_S = 60.0
+# Seconds the writer waits after being woken before it writes, so one round trip carries
+# what several conversations published meanwhile; what followers on other replicas wait more
+# (common practice, no source).
+_GATHER_S = 0.005
+# Seconds a stop gives the writer even with no grace: ends of conversations finished by the
+# stop are worth one round trip.
+_STOP_FLUSH_MIN_S = 0.5
+# The stream is trimmed once it holds this fraction of max_entries too many, so a snapshot is
+# written about every max_entries/4 updates rather than on every write.
+_TRIM_SLACK = 4
+
+# Refusals the append script answers with (Redis error replies).
+_SUPERSEDED: Final = "MIDSTREAM_SUPERSEDED"
+_CONFLICT: Final = "MIDSTREAM_CONFLICT"
+_LOST: Final = "MIDSTREAM_LOST"
+
+# KEYS: updates, events, meta, snapshot.
+# ARGV: owner, incarnation, ttl_ms, must_exist, n_events, first_event, n_updates, end_id,
+# end, snapshot, minid, n_meta, then n_meta field/value pairs, the events, the update pairs
+# (seq, bytes). Entries already written (a retry after a timeout whose first try did land) are
+# skipped, so sending a batch twice writes it once.
+_APPEND: Final = """
+local inc = redis.call('HGET', KEYS[3], 'inc')
+if inc and inc ~= ARGV[2] then
+  if redis.call('HGET', KEYS[3], 'ended') ~= '1' then
+    return redis.error_reply('MIDSTREAM_CONFLICT')
+  end
+  redis.call('DEL', KEYS[1], KEYS[2], KEYS[3], KEYS[4])
+  inc = false
+end
+if not inc and ARGV[4] == '1' then
+  return redis.error_reply('MIDSTREAM_LOST')
+end
+local owner = redis.call('HGET', KEYS[3], 'owner')
+if owner and owner ~= ARGV[1] then
+  return redis.error_reply('MIDSTREAM_SUPERSEDED')
+end
+local events_done = tonumber(redis.call('HGET', KEYS[3], 'events') or '0')
+local useq = tonumber(redis.call('HGET', KEYS[3], 'useq') or '0')
+local n_meta = tonumber(ARGV[12])
+local pos = 13 + 2 * n_meta
+local first = tonumber(ARGV[6])
+local status = 'OK'
+local n_events = tonumber(ARGV[5])
+if n_events > 0 and first > events_done + 1 then
+  -- Redis lost logged events (a failover to a replica that had not received them): the log
+  -- can no longer rebuild the conversation, so it stops taking its events.
+  status = 'EVENTS_LOST'
+  n_events = 0
+  pos = pos + tonumber(ARGV[5])
+end
+for k = 1, n_events do
+  local index = first + k - 1
+  if index > events_done then
+    redis.call('XADD', KEYS[2], index .. '-0', 'e', ARGV[pos])
+    events_done = index
+  end
+  pos = pos + 1
+end
+for k = 1, tonumber(ARGV[7]) do
+  local seq = tonumber(ARGV[pos])
+  if seq > useq then
+    redis.call('XADD', KEYS[1], ARGV[pos] .. '-0', 'i', ARGV[2], 'u', ARGV[pos + 1])
+    useq = seq
+  end
+  pos = pos + 2
+end
+if ARGV[10] ~= '' then
+  redis.call('SET', KEYS[4], ARGV[10])
+end
+if ARGV[11] ~= '0' then
+  redis.call('XTRIM', KEYS[1], 'MINID', ARGV[11] .. '-0')
+end
+if ARGV[8] ~= '' and redis.call('HGET', KEYS[3], 'ended') ~= '1' then
+  redis.call('XADD', KEYS[1], ARGV[8], 'i', ARGV[2], 'end', ARGV[9])
+  redis.call('HSET', KEYS[3], 'ended', '1')
+end
+local fields = {'inc', ARGV[2], 'owner', ARGV[1], 'events', events_done, 'useq', useq}
+for k = 13, 12 + 2 * n_meta do
+  fields[#fields + 1] = ARGV[k]
+end
+redis.call('HSET', KEYS[3], unpack(fields))
+if status ~= 'OK' then
+  redis.call('HSET', KEYS[3], 'resumable', '0')
+end
+for k = 1, 4 do
+  redis.call('PEXPIRE', KEYS[k], ARGV[3])
+end
+return status
+"""
+
+
+@dataclass(frozen=True, slots=True)
+class ConversationKeys:
+    """The Redis keys of one conversation (one hash tag, so one Redis Cluster slot)."""
+
+    updates: str
+    events: str
+    meta: str
+    snapshot: str
+
+    @classmethod
+    def of(cls, prefix: str, conversation_id: str) -> ConversationKeys:
+        # Ids hold no control characters but may hold braces; every key of one conversation
+        # starts with the same text, so its hash tag (up to the first '}') is the same anyway.
+        base = f"{prefix}:{{{conversation_id}}}"
+        return cls(f"{base}:u", f"{base}:e", f"{base}:m", f"{base}:s")
+
+
+def index_key(prefix: str) -> str:
+    """The sorted set of conversation ids by last write time."""
+    return f"{prefix}:index"
+
+
+def update_entry_id(seq: int) -> str:
+    """The stream entry id of the update with sequence number ``seq``."""
+    return f"{seq}-0"
+
+
+def end_entry_id(last_seq: int) -> str:
+    """The stream entry id of a conversation's end, after its last update."""
+    return f"{last_seq}-1"
+
+
+class ConversationJournal:
+    """What one session queues for the shared log; its methods never block or await.
+
+    Attributes
+    ----------
+    replaying
+        While true nothing is queued (a conversation being rebuilt from the log re-publishes
+        what the log already holds).
+    resumable
+        False once an input event could not be logged (over ``max_events``, or dropped past
+        the local buffer): the conversation can then not be continued on another replica.
+    """
+
+    __slots__ = (
+        "_log", "created", "dead", "dropped", "end", "events", "events_queued",
+        "events_written", "first_kept", "generation", "incarnation", "indexed_at", "keys",
+        "models", "replaying", "resumable", "session", "times", "updates", "written_seq",
+    )
+
+    def __init__(self, log: SharedLog, session: Session, incarnation: str) -> None:
+        self._log = log
+        self.session = session
+        self.keys = ConversationKeys.of(log.config.key_prefix, session.id)
+        self.incarnation = incarnation
+        self.models = log.models()  # the models this conversation is decoded with
+        # Updates as published, as wire messages (those re-sent after a rebuild), or already
+        # serialised as (seq, server time, bytes) by a round trip that failed.
+        self.updates: list[HypothesisUpdate | pb.Update | tuple[int, float, bytes]] = []
+        self.events: list[bytes] = []
+        self.end: pb.ServerMessage | None = None
+        self.events_queued = 0  # events accepted and queued (written or not), in order
+        self.events_written = 0
+        self.replaying = False
+        self.resumable = True
+        self.created = False  # the conversation's meta was written at least once
+        self.dead = False  # another replica owns the id now: write nothing more
+        self.dropped = False  # pending entries were dropped past the buffer
+        self.generation = 0  # bumped when pending entries are dropped
+        self.first_kept = 1  # the oldest update seq the stream still holds (as written)
+        self.written_seq = 0  # the newest update seq written
+        self.indexed_at = 0.0  # when the listing's index last had this conversation
+        # (seq, server time) of every _TIME_EVERY-th update written, oldest first, for
+        # trimming by age: a conversation keeps a few hundred samples, not one per update.
+        self.times: deque[tuple[int, float]] = deque()
+
+    def published(self, update: pb.Update) -> None:
+        if self.replaying or self.dead:
+            return
+        # Serialised now: bytes are what is sent, and hold far less than a message while
+        # Redis is away.
+        self.updates.append((update.seq, update.server_time, update.SerializeToString()))
+        self._log.queued(self, 1)
+
+    def republished(self, update: pb.Update) -> None:
+        """Queue an update rebuilt from the log that the log does not hold yet."""
+        self.updates.append(update)
+        self._log.queued(self, 1)
+
+    def accepted(self, event: pb.ClientEvent) -> None:
+        if self.replaying or self.dead or not self.resumable:
+            return
+        if self.events_queued >= self._log.config.max_events:
+            self.resumable = False
+            _log.info("conversation %s logged max_events (%d) input events; it can no "
+                      "longer be continued on another replica", self.session.id,
+                      self._log.config.max_events)
+            self._log.queued(self, 0)
+            return
+        self.events.append(event.SerializeToString())
+        self.events_queued += 1
+        self._log.queued(self, 1)
+
+    def ended(self, message: pb.ServerMessage) -> None:
+        if self.dead:
+            return
+        self.end = message
+        self._log.queued(self, 1)
+
+    @property
+    def pending(self) -> int:
+        return len(self.updates) + len(self.events) + (self.end is not None)
+
+    def drop_pending(self) -> int:
+        """Forget everything queued (past the local buffer); returns how many entries."""
+        dropped = len(self.updates) + len(self.events)
+        self.updates.clear()
+        self.events.clear()
+        if dropped:
+            self.dropped = True
+            self.resumable = False
+            self.generation += 1
+        return dropped
+
+
+def _seq(update: HypothesisUpdate | pb.Update | tuple[int, float, bytes]) -> int:
+    return update[0] if isinstance(update, tuple) else update.seq
+
+
+class _Call:
+    """One conversation's share of a round trip, and what to forget once it landed."""
+
+    __slots__ = ("args", "end", "generation", "journal", "minid", "n_events", "n_updates",
+                 "times")
+
+    def __init__(self, journal: ConversationJournal) -> None:
+        self.journal = journal
+        self.generation = journal.generation
+        self.args: list[Any] = []
+        self.n_events = 0
+        self.n_updates = 0
+        self.end = False
+        self.minid = 0
+        self.times: list[tuple[int, float]] = []
+
+
+class SharedLog:
+    """The connection to the shared Redis log and its writer task.
+
+    Parameters
+    ----------
+    config
+        Where Redis is and what it keeps.
+    registry
+        The server's metrics registry; the log adds its gauges and counters there.
+    models
+        An identifier of the models in service (their SHA-256s), written with each
+        conversation: a conversation is continued only by a replica serving the same models,
+        since only they decode it the same.
+    on_health
+        Called with ``True``/``False`` when writes start or stop reaching Redis.
+    """
+
+    def __init__(self, config: SharedLogConfig, registry: CollectorRegistry, *,
+                 models: Callable[[], str],
+                 on_health: Callable[[bool], None] | None = None) -> None:
+        self.config = config
+        self.owner = secrets.token_hex(8)  # this process, as the owner of what it writes
+        self.models = models
+        self._on_health = on_health
+        self._client: aioredis.Redis | None = None
+        self._script: Any = None
+        self._dirty: dict[ConversationJournal, None] = {}
+        self._pending = 0
+        self._wake = asyncio.Event()
+        self._task: asyncio.Task[None] | None = None
+        self._healthy = True
+        self._closing = False
+        self._told_dropped = False
+        self.degraded_total = Counter(
+            "midstream_shared_log_degraded", "Times writes to the shared log started failing.",
+            registry=registry)
+        self.dropped_total = Counter(
+            "midstream_shared_log_dropped",
+            "Entries dropped because the shared log stayed unreachable past the local buffer.",
+            registry=registry)
+        self.failures_total = Counter(
+            "midstream_shared_log_write_failures", "Round trips to the shared log that failed.",
+            registry=registry)
+        self.pending_gauge = Gauge(
+            "midstream_shared_log_pending", "Entries waiting to be written to the shared log.",
+            registry=registry)
+        self.up_gauge = Gauge(
+            "midstream_shared_log_up", "1 while writes reach the shared log, 0 while degraded.",
+            registry=registry)
+        self.up_gauge.set(1)
+
+    @property
+    def client(self) -> aioredis.Redis:
+        if self._client is None:
+            raise RuntimeError("the shared log has not been started")
+        return self._client
+
+    @property
+    def healthy(self) -> bool:
+        return self._healthy
+
+    @property
+    def pending(self) -> int:
+        return self._pending
+
+    async def start(self) -> None:
+        """Connect (lazily: an unreachable Redis makes the log degraded, not the start fail)."""
+        config = self.config
+        self._client = aioredis.Redis.from_url(
+            config.url, socket_timeout=config.timeout_s,
+            socket_connect_timeout=config.timeout_s, decode_responses=False,
+            # One connection per waiting remote follower, plus the writer's (docs/deploy.md).
+            max_connections=4096)
+        self._script = self._client.register_script(_APPEND)
+        try:
+            async with asyncio.timeout(config.timeout_s):
+                await self._client.ping()
+        except (RedisError, OSError, TimeoutError) as exc:
+            self._set_health(False, exc)
+        self._task = asyncio.create_task(self._run(), name="shared-log-writer")
+
+    async def stop(self, grace: float) -> None:
+        """Write what is queued (for up to ``grace`` seconds), then disconnect; idempotent."""
+        if self._task is None:
+            return
+        self._closing = True
+        self._wake.set()
+        deadline = time.monotonic() + max(grace, _STOP_FLUSH_MIN_S)
+        while self._dirty and time.monotonic() < deadline and not self._task.done():
+            await asyncio.sleep(0.01)
+        if self._dirty:
+            _log.warning("shared log: %d entries not written at shutdown", self._pending)
+        self._task.cancel()
+        with contextlib.suppress(asyncio.CancelledError):
+            await self._task
+        self._task = None
+        if self._client is not None:
+            await self._client.aclose()
+
+    def journal(self, session: Session) -> ConversationJournal:
+        """A new journal for a session just opened (the log knows it by its epoch).
+
+        Queued at once, with nothing in it, so that other replicas list the conversation (and
+        can follow it) before its first update."""
+        journal = ConversationJournal(self, session, str(session.epoch))
+        self.queued(journal, 0)
+        return journal
+
+    # --- queueing (synchronous) --------------------------------------------------------
+
+    def queued(self, journal: ConversationJournal, entries: int) -> None:
+        self._dirty[journal] = None
+        self._pending += entries
+        if self._pending > self.config.buffer_entries:
+            self._overflow()
+        self._wake.set()
+
+    def _overflow(self) -> None:
+        dropped = 0
+        for journal in self._dirty:
+            dropped += journal.drop_pending()
+        self._pending = sum(j.pending for j in self._dirty)
+        self.dropped_total.inc(dropped)
+        if not self._told_dropped:  # once until writes catch up, not on every overflow
+            self._told_dropped = True
+            _log.warning("shared log: buffer full (buffer_entries %d), buffered entries "
+                         "dropped; followers of the affected conversations get a gap notice "
+                         "(midstream_shared_log_dropped_total counts them)",
+                         self.config.buffer_entries)
+
+    # --- writing -----------------------------------------------------------------------
+
+    def _set_health(self, healthy: bool, error: BaseException | None = None) -> None:
+        if healthy == self._healthy:
+            return
+        self._healthy = healthy
+        self.up_gauge.set(1 if healthy else 0)
+        if healthy:
+            _log.warning("shared log reachable again; writing %d buffered entries",
+                         self._pending)
+        else:
+            self.degraded_total.inc()
+            _log.warning("shared log unreachable (%s); buffering up to %d entries locally",
+                         type(error).__name__ if error else "unknown",
+                         self.config.buffer_entries)
+        if self._on_health is not None:
+            self._on_health(healthy)
+
+    async def _run(self) -> None:
+        delay = _RETRY_FIRST_S
+        while True:
+            if not self._dirty:
+                self._wake.clear()
+                await self._wake.wait()
+                # Gather what the next few milliseconds publish into the same round trip:
+                # at a few hundred words a second, rounds of one word each cost more CPU.
+                await asyncio.sleep(_GATHER_S)
+                continue
+            calls = self._build()
+            try:
+                async with asyncio.timeout(self.config.timeout_s):
+                    results = await self._send(calls)
+            except (RedisError, OSError, TimeoutError) as exc:
+                self.failures_total.inc()
+                self._set_health(False, exc)
+                await asyncio.sleep(delay)
+                delay = min(delay * 2, _RETRY_MAX_S)
+                continue
+            delay = _RETRY_FIRST_S
+            self._set_health(True)
+            self._told_dropped = False
+            for call, result in zip(calls, results[:len(calls)], strict=True):
+                self._landed(call, result)
+            self.pending_gauge.set(self._pending)
+
+    def _build(self) -> list[_Call]:
+        calls: list[_Call] = []
+        now = time.time()
+        entries = 0
+        for journal in list(self._dirty)[:_CONVERSATIONS_PER_ROUND]:
+            if journal.dead:
+                self._forget(journal)
+                continue
+            call = self._call(journal, now)
+            calls.append(call)
+            entries += call.n_updates + call.n_events
+            if entries >= _ENTRIES_PER_ROUND:
+                break
+        return calls
+
+    def _call(self, journal: ConversationJournal, now: float) -> _Call:
+        config = self.config
+        session = journal.session
+        call = _Call(journal)
+        updates = journal.updates[:_UPDATES_PER_CALL]
+        events = journal.events[:_EVENTS_PER_CALL]
+        call.n_updates, call.n_events = len(updates), len(events)
+        last = _seq(updates[-1]) if updates else journal.written_seq
+        # Trim by count and by age; a trim always comes with a fresh snapshot, so the stream
+        # never starts after the snapshot's sequence number plus one.
+        cut = last - config.max_entries + 1
+        if cut - journal.first_kept < config.max_entries // _TRIM_SLACK:
+            cut = 0
+        horizon = now - config.max_age_s
+        for seq, when in journal.times:
+            if when >= horizon:
+                break
+            cut = max(cut, seq + 1)
+        if journal.dropped:
+            # Entries were dropped: everything before what is sent now goes, so nobody reads
+            # across the hole.
+            cut = max(cut, _seq(updates[0]) if updates else session.seq + 1)
+        snapshot = b""
+        if cut > journal.first_kept or journal.dropped:
+            snapshot = session.snapshot_message().snapshot.SerializeToString()
+            call.minid = max(cut, 1)
+        end = journal.end if len(updates) == len(journal.updates) else None
+        call.end = end is not None
+        meta = {
+            "words": str(session.word_count), "seq": str(session.seq),
+            "speakers": "\x1f".join(session.timeline.speakers),
+            "resumable": "1" if journal.resumable else "0",
+        }
+        if not journal.created:
+            # What never changes is written with the conversation, not with every update.
+            meta.update(started=repr(session.started_at), models=journal.models)
+        if end is not None:
+            meta["reason"] = str(end.ended.reason)
+        if journal.dropped:
+            # The snapshot stands for every update up to the session's newest, written or
+            # dropped: readers take the log as that far on (a follower from there is told
+            # the gap), and entries up to it are not written again.
+            meta["useq"] = str(session.seq)
+        args: list[Any] = [
+            self.owner, journal.incarnation, int(config.max_age_s * 1000),
+            "1" if journal.created else "0", len(events), journal.events_written + 1,
+            len(updates), end_entry_id(end.ended.last_seq) if end is not None else "",
+            end.SerializeToString() if end is not None else b"", snapshot, str(call.minid),
+            len(meta),
+        ]
+        for name, value in meta.items():
+            args += (name, value)
+        args += events
+        for index, update in enumerate(updates):
+            if isinstance(update, tuple):
+                seq, when, data = update
+            else:
+                # Serialised once: a round trip that fails is retried with the same bytes.
+                wire = update if isinstance(update, pb.Update) else cv.update_to_wire(update)
+                seq, when, data = update.seq, update.server_time, wire.SerializeToString()
+                journal.updates[index] = (seq, when, data)
+            args += (seq, data)
+            call.times.append((seq, when))
+        call.args = args
+        return call
+
+    async def _send(self, calls: list[_Call]) -> list[Any]:
+        """One pipelined round trip: each call's script, and the listing's index for those
+        that need it; the scripts' results, in order."""
+        now = time.time()
+        # The index forgets conversations not written for max_age_s: refresh well before.
+        every = min(_INDEX_EVERY_S, self.config.max_age_s / 4)
+        index = {call.journal.session.id: now for call in calls
+                 if now - call.journal.indexed_at >= every}
+        for _ in range(2):
+            async with self.client.pipeline(transaction=False) as pipe:
+                # Queued by hand and not registered with the pipeline, which would ask Redis
+                # whether it has the script on every round trip; a Redis that lost it
+                # (restarted) answers NOSCRIPT, and the script is loaded once and sent again.
+                for call in calls:
+                    keys = call.journal.keys
+                    pipe.evalsha(self._script.sha, 4, keys.updates, keys.events, keys.meta,
+                                 keys.snapshot, *call.args)
+                if index:
+                    pipe.zadd(index_key(self.config.key_prefix), index)
+                results: list[Any] = await pipe.execute(raise_on_error=False)
+            if not any(isinstance(r, NoScriptError) for r in results[:len(calls)]):
+                break
+            await self.client.script_load(_APPEND)
+        for call in calls:
+            if call.journal.session.id in index:
+                call.journal.indexed_at = now
+        return results[:len(calls)]
+
+    def _landed(self, call: _Call, result: Any) -> None:
+        journal = call.journal
+        if isinstance(result, ResponseError):
+            text = str(result)
+            if _LOST in text:
+                # Redis lost what it held (restarted without persistence): write the state
+                # afresh, as after dropped entries.
+                _log.warning("shared log lost conversation %s; rewriting it from a snapshot",
+                             journal.session.id)
+                journal.created = False
+                journal.indexed_at = 0.0
+                journal.dropped = True
+                journal.resumable = False
+                journal.first_kept = 1
+                journal.times.clear()
+                return
+            if _SUPERSEDED in text or _CONFLICT in text:
+                _log.warning("conversation %s: %s; this replica stops writing it",
+                             journal.session.id,
+                             "continued on another replica" if _SUPERSEDED in text
+                             else "the id is live on another replica")
+            else:
+                _log.error("shared log refused a write for conversation %s (%s)",
+                           journal.session.id, type(result).__name__)
+                _log.debug("shared log refusal detail: %s", result)
+            journal.dead = True
+            self._forget(journal)
+            return
+        if isinstance(result, Exception):
+            # Anything else (a connection error mid-pipeline): keep the entries for a retry.
+            self.failures_total.inc()
+            return
+        journal.created = True
+        if result in (b"EVENTS_LOST", "EVENTS_LOST") and journal.resumable:
+            _log.warning("shared log lost input events of conversation %s; it can no longer "
+                         "be continued on another replica", journal.session.id)
+            journal.resumable = False
+        if call.generation == journal.generation:
+            del journal.updates[:call.n_updates]
+            del journal.events[:call.n_events]
+            journal.events_written += call.n_events
+            self._pending -= call.n_updates + call.n_events
+        else:
+            journal.events_written = journal.events_queued - len(journal.events)
+        journal.dropped = journal.dropped and call.generation != journal.generation
+        if call.end:
+            journal.end = None
+            self._pending -= 1
+        if call.times:
+            journal.written_seq = call.times[-1][0]
+        times = journal.times
+        for seq, when in call.times:
+            if not times or seq - times[-1][0] >= _TIME_EVERY:
+                times.append((seq, when))
+        if call.minid:
+            journal.first_kept = call.minid
+            times = journal.times
+            while times and times[0][0] < call.minid:
+                times.popleft()
+        if not journal.pending and not journal.dropped:
+            # (A journal whose entries were dropped while this call was in flight stays: its
+            # next call writes the snapshot that covers the hole.)
+            self._dirty.pop(journal, None)
+
+    def _forget(self, journal: ConversationJournal) -> None:
+        self._pending -= journal.pending
+        journal.drop_pending()
+        journal.end = None
+        self._dirty.pop(journal, None)

@@ -1,0 +1,554 @@
+"""What any replica serves from the shared log: ``Follow``, ``GetRevisions``, the listing, and
+continuing a conversation whose replica died.
+
+The keys and their layout are described in :mod:`midstream.server._journal`. A follower here
+reads the conversation's update stream: from its position while the stream holds it, else a
+``gap`` (``EVICTED``) and a snapshot (the stored snapshot with every later update folded in),
+then live entries with blocking reads. A jump in sequence numbers while reading (entries
+dropped past a replica's local buffer, or a Redis that lost its data) gets the same gap notice
+and snapshot: never a silent gap. The conversation's epoch is checked as on the ingesting
+replica: a position of another epoch (or beyond seq 1 without one), and entries of another
+conversation that took over the id while following, get ``gap`` (``EPOCH_MISMATCH``) and a
+snapshot of the conversation now under the id, never a splice.
+
+Continuing (:func:`resume`) claims the conversation for this replica (the old owner's later
+writes are refused), replays every logged input event through a fresh engine from the same
+models (decoding is deterministic, so it publishes the same updates with the same sequence
+numbers and the same epoch), checks the newest update the log holds against the replay,
+writes the updates the old replica published but never logged, and hands the session on like
+a newly opened one.
+
+Use from the server's event loop only.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import logging
+import time
+from collections import OrderedDict
+from collections.abc import AsyncIterator, Iterator
+from typing import Any, Final
+
+from midstream._errors import (
+    EventError,
+    MidstreamError,
+    ModelError,
+    NotFoundError,
+    UnavailableError,
+)
+from midstream.server._config import ServerLimits
+from midstream.server._ingest import apply_event
+from midstream.server._journal import (
+    ConversationJournal,
+    ConversationKeys,
+    SharedLog,
+    index_key,
+)
+from midstream.server._limits import check_id
+from midstream.server._models import Bundle
+from midstream.server._session import Session, SessionRegistry, message_budget
+from midstream.server._status import ConflictError, PositionError, ProtocolStateError
+from midstream.wire import midstream_pb2 as pb
+from redis.exceptions import RedisError, ResponseError
+
+_log = logging.getLogger(__name__)
+
+# Milliseconds one blocking read waits before the follower checks for a stop and whether the
+# conversation was started anew; entries read per call.
+_BLOCK_MS = 1000
+_READ_COUNT = 512
+# Seconds between retries while Redis is unreachable for a follower.
+_RETRY_S = 0.5
+# Input events replayed between two returns to the event loop, so a long rebuild does not
+# starve live streams (decodes themselves are never split).
+_REPLAY_SLICE = 64
+# Most conversations the listing reads from the shared log.
+_LIST_LIMIT = 10_000
+
+_CLAIM: Final = """
+if redis.call('HGET', KEYS[1], 'inc') ~= ARGV[1] then
+  return redis.error_reply('MIDSTREAM_CONFLICT')
+end
+if redis.call('HGET', KEYS[1], 'ended') == '1' then
+  return redis.error_reply('MIDSTREAM_ENDED')
+end
+redis.call('HSET', KEYS[1], 'owner', ARGV[2])
+return 'OK'
+"""
+
+
+@contextlib.contextmanager
+def _reachable() -> Iterator[None]:
+    """Report Redis being unreachable as ``UNAVAILABLE`` (try again), not as a fault."""
+    try:
+        yield
+    except (RedisError, OSError) as exc:
+        if isinstance(exc, ResponseError):
+            raise
+        raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
+                               "try again") from exc
+
+
+def _entry(entry_id: bytes) -> tuple[int, bool]:
+    """``(seq, is_end)`` of a stream entry id (``<seq>-0`` update, ``<last seq>-1`` end)."""
+    seq, _, kind = entry_id.partition(b"-")
+    return int(seq), kind != b"0"
+
+
+class _State:
+    """The latest word and utterance states, folded from a snapshot and later updates."""
+
+    __slots__ = ("epoch", "final", "seq", "utterances", "words")
+
+    def __init__(self, snapshot: pb.Snapshot | None, epoch: int) -> None:
+        self.words: OrderedDict[str, pb.WordState] = OrderedDict()
+        self.utterances: OrderedDict[str, pb.UtteranceState] = OrderedDict()
+        self.seq = 0
+        self.final = False
+        self.epoch = epoch
+        if snapshot is not None:
+            self.seq, self.final = snapshot.seq, snapshot.conversation_final
+            for word in snapshot.words:
+                self.words[word.word_id] = word
+            for utterance in snapshot.utterances:
+                self.utterances[utterance.utterance_id] = utterance
+
+    def apply(self, update: pb.Update) -> None:
+        for word in update.words:
+            self.words.pop(word.word_id, None)  # a revised state moves to the newest end
+            self.words[word.word_id] = word
+        for utterance in update.utterances:
+            self.utterances.pop(utterance.utterance_id, None)
+            self.utterances[utterance.utterance_id] = utterance
+        for word_id in update.withdrawn_word_ids:
+            self.words.pop(word_id, None)
+        self.seq = update.seq
+        self.final = update.conversation_final
+
+    def message(self, limits: ServerLimits) -> pb.ServerMessage:
+        """The state as a snapshot within ``snapshot_states`` and the message budget; the
+        oldest states are left out first, as the ingesting replica's snapshots do."""
+        keep = limits.snapshot_states
+        words = list(self.words.values())[-keep:]
+        utterances = list(self.utterances.values())[-keep:]
+        room = message_budget(limits)
+        room -= sum(w.ByteSize() + 6 for w in words) + sum(u.ByteSize() + 6 for u in utterances)
+        first_word = first_utterance = 0
+        while room < 0 and (first_word < len(words) or first_utterance < len(utterances)):
+            if first_utterance < len(utterances) and (
+                    first_word >= len(words)
+                    or utterances[first_utterance].ByteSize() >= words[first_word].ByteSize()):
+                room += utterances[first_utterance].ByteSize() + 6
+                first_utterance += 1
+            else:
+                room += words[first_word].ByteSize() + 6
+                first_word += 1
+        return pb.ServerMessage(snapshot=pb.Snapshot(
+            seq=self.seq, words=words[first_word:], utterances=utterances[first_utterance:],
+            conversation_final=self.final, epoch=self.epoch))
+
+
+class Replica:
+    """Serves conversations from the shared log to this replica's callers.
+
+    Parameters
+    ----------
+    log
+        The server's shared log (its connection and its writer).
+    limits
+        The server's limits (message budget, snapshot size, id length).
+    """
+
+    def __init__(self, log: SharedLog, limits: ServerLimits) -> None:
+        self._log = log
+        self._limits = limits
+        self._claim: Any = None
+
+    def _keys(self, conversation_id: str) -> ConversationKeys:
+        check_id(conversation_id, "conversation_id", self._limits)
+        return ConversationKeys.of(self._log.config.key_prefix, conversation_id)
+
+    async def _meta(self, keys: ConversationKeys, conversation_id: str) -> dict[bytes, bytes]:
+        with _reachable():
+            meta: Any = await self._log.client.hgetall(keys.meta)
+        if not meta or b"inc" not in meta:
+            raise NotFoundError(f"no live or kept conversation with id {conversation_id!r}")
+        return dict(meta)
+
+    # --- snapshot ---------------------------------------------------------------------
+
+    async def _fold(self, keys: ConversationKeys,
+                    ) -> tuple[_State, bytes, pb.ServerMessage | None]:
+        """The current state from the stored snapshot and every later update; also the last
+        entry id read and the ``ended`` message when the stream holds the end."""
+        client = self._log.client
+        for _ in range(3):
+            with _reachable():
+                async with client.pipeline(transaction=True) as pipe:
+                    pipe.hget(keys.meta, "inc")
+                    pipe.get(keys.snapshot)
+                    pipe.xrange(keys.updates, "-", "+")
+                    epoch, stored, entries = await pipe.execute()
+            state = _State(pb.Snapshot.FromString(stored) if stored else None, int(epoch or 0))
+            last_id = f"{state.seq}-0".encode()
+            ended: pb.ServerMessage | None = None
+            consistent = True
+            for entry_id, fields in entries:
+                seq, is_end = _entry(entry_id)
+                if is_end:
+                    ended = pb.ServerMessage.FromString(fields[b"end"])
+                elif seq <= state.seq:
+                    continue
+                elif seq != state.seq + 1:
+                    consistent = False  # a hole the snapshot does not cover: read again
+                    break
+                else:
+                    state.apply(pb.Update.FromString(fields[b"u"]))
+                last_id = entry_id
+            if consistent:
+                return state, last_id, ended
+            await asyncio.sleep(0.05)
+        raise UnavailableError("the shared log changed while it was read three times; try again")
+
+    # --- Follow ---------------------------------------------------------------------------
+
+    async def follow(self, conversation_id: str, from_seq: int | None, epoch: int,
+                     stop: asyncio.Future[None]) -> AsyncIterator[pb.ServerMessage]:
+        """The messages ``Follow`` sends, read from the shared log (see the module docstring).
+
+        Raises
+        ------
+        NotFoundError, EventError, PositionError, UnavailableError
+            As the ingesting replica's ``Follow`` would, and ``UNAVAILABLE`` when Redis is
+            unreachable at the start or this server stops (follow again elsewhere, from the
+            next sequence number).
+        """
+        keys = self._keys(conversation_id)
+        meta = await self._meta(keys, conversation_id)
+        incarnation = meta[b"inc"]
+        logged = int(meta.get(b"useq", b"0"))
+        other_epoch = epoch not in (0, int(incarnation))
+        # Seq 1 is the start of whichever epoch: nothing was seen that could be spliced onto.
+        unchecked = epoch == 0 and from_seq is not None and from_seq > 1
+        if from_seq is not None and from_seq < 1:
+            raise EventError("field 'from_seq' must be at least 1 (sequence numbers count from 1)")
+        if from_seq is not None and from_seq > logged + 1 and not other_epoch:
+            raise PositionError(
+                f"field 'from_seq' ({from_seq}) is beyond the next sequence number "
+                f"({logged + 1}) of conversation {conversation_id}")
+        client = self._log.client
+        # A blocking read must return well within the connection's own timeout.
+        block_ms = int(min(_BLOCK_MS, 500 * self._log.config.timeout_s))
+        expected: int
+        if from_seq is None or other_epoch or unchecked:
+            state, last_id, ended = await self._fold(keys)
+            if from_seq is not None:
+                yield pb.ServerMessage(gap=pb.Gap(
+                    first_missing=from_seq, oldest_kept=await self._oldest(keys, logged),
+                    reason=pb.GAP_REASON_EPOCH_MISMATCH))
+            yield state.message(self._limits)
+            if ended is not None:
+                yield ended
+                return
+            expected = state.seq + 1
+        else:
+            with _reachable():
+                first: Any = await client.xrange(keys.updates, f"{from_seq}-0", "+", count=1)
+            oldest = _entry(first[0][0])[0] if first else logged + 1
+            if oldest > from_seq and from_seq <= logged:
+                state, last_id, ended = await self._fold(keys)
+                yield pb.ServerMessage(gap=pb.Gap(first_missing=from_seq, oldest_kept=oldest,
+                                                  reason=pb.GAP_REASON_EVICTED))
+                yield state.message(self._limits)
+                if ended is not None:
+                    yield ended
+                    return
+                expected = state.seq + 1
+            else:
+                last_id = f"{from_seq - 1}-0".encode()
+                expected = from_seq
+        while True:
+            if stop.done():
+                raise UnavailableError(
+                    f"this server is stopping; follow conversation {conversation_id} again "
+                    f"elsewhere from seq {expected}")
+            try:
+                reply: Any = await client.xread({keys.updates: last_id},
+                                                count=_READ_COUNT, block=block_ms)
+                current = None if reply else await client.hget(keys.meta, "inc")
+            except (RedisError, OSError):
+                await asyncio.sleep(_RETRY_S)  # the writer logs the outage once
+                continue
+            entries = reply[0][1] if reply else []
+            if (current is not None and current != incarnation) or (
+                    entries and entries[0][1].get(b"i") != incarnation):
+                # Another conversation took over the id (this one had ended): say so and
+                # carry on with it from a snapshot, as the ingesting replica would.
+                state, last_id, ended = await self._fold(keys)
+                incarnation = str(state.epoch).encode()
+                yield pb.ServerMessage(gap=pb.Gap(
+                    first_missing=expected, oldest_kept=await self._oldest(keys, state.seq),
+                    reason=pb.GAP_REASON_EPOCH_MISMATCH))
+                yield state.message(self._limits)
+                if ended is not None:
+                    yield ended
+                    return
+                expected = state.seq + 1
+                continue
+            for entry_id, fields in entries:
+                if fields.get(b"i") != incarnation:
+                    break  # the next read tells the followers about the new conversation
+                seq, is_end = _entry(entry_id)
+                last_id = entry_id
+                if not is_end and seq < expected:
+                    continue
+                if (is_end and seq >= expected) or (not is_end and seq > expected):
+                    # Entries are missing here: tell, then start again from a snapshot.
+                    state, last_id, ended = await self._fold(keys)
+                    yield pb.ServerMessage(gap=pb.Gap(
+                        first_missing=expected, oldest_kept=seq if not is_end else seq + 1,
+                        reason=pb.GAP_REASON_EVICTED))
+                    yield state.message(self._limits)
+                    if ended is not None:
+                        yield ended
+                        return
+                    expected = state.seq + 1
+                    break
+                if is_end:
+                    yield pb.ServerMessage.FromString(fields[b"end"])
+                    return
+                yield pb.ServerMessage(update=pb.Update.FromString(fields[b"u"]))
+                expected = seq + 1
+
+    async def _oldest(self, keys: ConversationKeys, logged: int) -> int:
+        """The oldest sequence number the update stream holds (``logged + 1`` when none)."""
+        with _reachable():
+            first: Any = await self._log.client.xrange(keys.updates, "-", "+", count=1)
+        return _entry(first[0][0])[0] if first else logged + 1
+
+    # --- GetRevisions and the listing ----------------------------------------------------------
+
+    async def revisions(self, conversation_id: str) -> pb.GetRevisionsReply:
+        """Every state the log still holds, oldest first, within the message budget."""
+        keys = self._keys(conversation_id)
+        meta = await self._meta(keys, conversation_id)
+        with _reachable():
+            entries: Any = await self._log.client.xrange(keys.updates, "-", "+")
+        kept: list[pb.Revision] = []
+        for entry_id, fields in entries:
+            seq, is_end = _entry(entry_id)
+            if is_end:
+                continue
+            update = pb.Update.FromString(fields[b"u"])
+            kept.extend(pb.Revision(seq=seq, server_time=update.server_time, word=word)
+                        for word in update.words)
+            kept.extend(pb.Revision(seq=seq, server_time=update.server_time, utterance=u)
+                        for u in update.utterances)
+        truncated = not entries or _entry(entries[0][0])[0] > 1
+        room = message_budget(self._limits)
+        revisions: list[pb.Revision] = []
+        for revision in reversed(kept):  # newest first: a cut drops the oldest
+            room -= revision.ByteSize() + 6
+            if room < 0:
+                truncated = True
+                break
+            revisions.append(revision)
+        revisions.reverse()
+        return pb.GetRevisionsReply(conversation_id=conversation_id, revisions=revisions,
+                                    truncated=truncated, epoch=int(meta[b"inc"]))
+
+    async def newer_than(self, conversation_id: str, epoch: int) -> bool:
+        """Whether the log holds another conversation under this id than ``epoch`` (one that
+        took the id over); ``False`` when Redis cannot be asked."""
+        keys = self._keys(conversation_id)
+        try:
+            current: Any = await self._log.client.hget(keys.meta, "inc")
+        except (RedisError, OSError):
+            return False
+        return current is not None and int(current) != epoch
+
+    async def summaries(self, skip: set[tuple[str, int]]) -> list[pb.ConversationSummary]:
+        """Conversations the log holds (written within ``max_age_s``), but those in ``skip``
+        (``(conversation id, epoch)`` pairs)."""
+        client, config = self._log.client, self._log.config
+        index = index_key(config.key_prefix)
+        horizon = time.time() - config.max_age_s
+        try:
+            await client.zremrangebyscore(index, "-inf", horizon)
+            ids: Any = await client.zrangebyscore(index, horizon, "+inf", start=0,
+                                                          num=_LIST_LIMIT)
+            # Ids held here are asked about too: another replica may have reused one.
+            wanted = [i.decode() for i in ids]
+            async with client.pipeline(transaction=False) as pipe:
+                for conversation_id in wanted:
+                    pipe.hgetall(ConversationKeys.of(config.key_prefix, conversation_id).meta)
+                metas: list[dict[bytes, bytes]] = await pipe.execute()
+        except (RedisError, OSError) as exc:
+            raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
+                                   "try again") from exc
+        summaries = []
+        for conversation_id, meta in zip(wanted, metas, strict=True):
+            if not meta or b"inc" not in meta:
+                continue  # expired since the index was read
+            if (conversation_id, int(meta[b"inc"])) in skip:
+                continue  # listed from this replica's memory
+            speakers = meta.get(b"speakers", b"").decode()
+            summaries.append(pb.ConversationSummary(
+                conversation_id=conversation_id,
+                speakers=speakers.split("\x1f") if speakers else [],
+                words=int(meta.get(b"words", b"0")), last_seq=int(meta.get(b"useq", b"0")),
+                started_at=float(meta.get(b"started", b"0")),
+                ended=meta.get(b"ended") == b"1", epoch=int(meta[b"inc"])))
+        return summaries
+
+    # --- opening and continuing ----------------------------------------------------------
+
+    async def check_new(self, conversation_id: str) -> None:
+        """Refuse a new conversation whose caller-chosen id is live in the shared log.
+
+        An unreachable log lets it through (the log's own check refuses to write it later).
+
+        Raises
+        ------
+        ConflictError
+            When another replica holds a live conversation with this id.
+        """
+        keys = self._keys(conversation_id)
+        try:
+            inc, ended = await self._log.client.hmget(keys.meta, ["inc", "ended"])
+        except (RedisError, OSError):
+            return
+        if inc is not None and ended != b"1":
+            raise ConflictError(
+                f"conversation id {conversation_id!r} is live in the shared log; continue it "
+                "with open.resume, or choose another id")
+
+    async def resume(self, conversation_id: str, registry: SessionRegistry, bundle: Bundle, *,
+                     owner: str = "") -> tuple[Session, int]:
+        """Continue ``conversation_id`` here; returns the session and the events replayed.
+
+        ``owner`` names the caller, as :meth:`SessionRegistry.open` takes it.
+
+        Raises
+        ------
+        NotFoundError
+            The log holds no such conversation.
+        ProtocolStateError
+            It has ended, or its logged input is incomplete (``INVALID_ARGUMENT``: nothing to
+            continue; open a new conversation).
+        ModelError
+            It was decoded by other models or decoder settings than this replica's, or
+            replaying its input did not give what the log holds (``FAILED_PRECONDITION``:
+            continue it on a replica serving what it was decoded with).
+        ConflictError
+            It is live on this replica already.
+        UnavailableError
+            Redis is unreachable.
+        """
+        keys = self._keys(conversation_id)
+        if any(s.id == conversation_id and s.live for s in registry.sessions()):
+            raise ConflictError(f"conversation {conversation_id!r} is live on this replica")
+        meta = await self._meta(keys, conversation_id)
+        if meta.get(b"ended") == b"1":
+            raise ProtocolStateError(f"conversation {conversation_id!r} has ended; open a new "
+                                     "one to go on")
+        if meta.get(b"resumable") != b"1":
+            raise ProtocolStateError(
+                f"conversation {conversation_id!r} cannot be continued: its logged input is "
+                "incomplete (it outgrew max_events, or the shared log was unreachable longer "
+                "than the local buffer held)")
+        models = self._log.models()
+        if meta.get(b"models", b"").decode() != models:
+            raise ModelError(
+                f"conversation {conversation_id!r} was decoded by other models or decoder "
+                "settings than this replica serves; continue it on a replica serving the same")
+        client = self._log.client
+        if self._claim is None:
+            self._claim = client.register_script(_CLAIM)
+        try:
+            await self._claim(keys=[keys.meta], args=[meta[b"inc"], self._log.owner])
+            # Claimed: nobody else writes it now, so these reads agree with each other.
+            events: Any = await client.xrange(keys.events, "-", "+")
+            logged: Any = await client.xrange(keys.updates, "-", "+")
+            useq: Any = await client.hget(keys.meta, "useq")
+        except ResponseError as exc:
+            raise ProtocolStateError(f"conversation {conversation_id!r} changed while being "
+                                     "continued (ended, or started anew); try again") from exc
+        except (RedisError, OSError) as exc:
+            raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
+                                   "try again") from exc
+        stored: pb.Update | None = None  # the newest update the stream still holds
+        for entry_id, fields in reversed(logged):
+            if not _entry(entry_id)[1]:
+                stored = pb.Update.FromString(fields[b"u"])
+                break
+        session = registry.open(conversation_id, bundle, owner=owner)
+        # The same conversation goes on: it keeps its epoch (followers' positions stay valid),
+        # its start, and the times its updates were published (a follower reading them here
+        # gets what it would have got from the dead replica).
+        session.epoch = int(meta[b"inc"])
+        session.started_at = float(meta.get(b"started", session.started_at))
+        published = {_entry(entry_id)[0]: pb.Update.FromString(fields[b"u"]).server_time
+                     for entry_id, fields in logged if not _entry(entry_id)[1]}
+        session.clock = lambda: published.get(session.seq, time.time())
+        journal = session.journal
+        assert isinstance(journal, ConversationJournal)
+        journal.incarnation = meta[b"inc"].decode()
+        journal.models = models
+        journal.created = True
+        journal.replaying = True
+        journal.events_queued = journal.events_written = len(events)
+        try:
+            await self._replay(session, events)
+            missing = self._check(session, int(useq or 0), stored)
+        except MidstreamError as exc:
+            registry.forget(session)
+            if isinstance(exc, ProtocolStateError | ModelError):
+                raise
+            raise ProtocolStateError(
+                f"conversation {conversation_id!r} cannot be continued: replaying its logged "
+                "input was refused") from exc
+        except BaseException:
+            registry.forget(session)
+            raise
+        journal.replaying = False
+        journal.first_kept = 1
+        session.clock = time.time
+        for message in missing:
+            journal.republished(message.update)
+        _log.info("conversation %s continued here from %d logged events (seq %d, %d updates "
+                  "the log lacked)", conversation_id, len(events), session.seq, len(missing))
+        return session, len(events)
+
+    async def _replay(self, session: Session, events: list[Any]) -> None:
+        limits = self._limits
+        for index, (_, fields) in enumerate(events):
+            if index and index % _REPLAY_SLICE == 0:
+                await asyncio.sleep(0)
+            apply_event(session, pb.ClientEvent.FromString(fields[b"e"]), time.monotonic(),
+                        limits)
+
+    @staticmethod
+    def _check(session: Session, logged: int, stored: pb.Update | None,
+               ) -> list[pb.ServerMessage]:
+        """Compare the replay with the log (``logged`` updates written, the newest still held
+        ``stored``); return the updates the log lacks."""
+        if logged > session.seq:
+            raise ProtocolStateError(
+                f"conversation {session.id} cannot be continued: the log holds updates up to "
+                f"seq {logged} but its logged input gives only {session.seq}")
+        if stored is not None:
+            replayed = session.since(stored.seq - 1)
+            if replayed and replayed[0].update.seq == stored.seq:
+                mine = pb.Update()
+                mine.CopyFrom(replayed[0].update)
+                mine.server_time = stored.server_time
+                if mine != stored:
+                    raise ModelError(
+                        f"conversation {session.id} cannot be continued: replaying its input "
+                        f"gave a different update {stored.seq} than the log holds (other "
+                        "models or decoder settings)")
+        return session.since(logged)
+

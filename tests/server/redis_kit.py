@@ -1,0 +1,146 @@
+"""A real Redis for the shared-log tests: ``redis-server`` on a free loopback port.
+
+Each test that asks for ``redis_server`` gets its own server in a temporary folder with
+persistence off (``--save '' --appendonly no``), so a restart starts empty, as a Redis without
+persistence does. When ``redis-server`` is not installed these tests fail under ``CI=true``
+(``.ci/run`` installs it) and skip with the reason elsewhere.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import socket
+import subprocess
+import time
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from midstream.client._demo_script import UTTERANCES
+from midstream.wire import midstream_pb2 as pb
+
+#: Seconds a redis-server may take to answer its first PING.
+_START_TIMEOUT_S = 10.0
+
+
+def _free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+        probe.bind(("127.0.0.1", 0))
+        return int(probe.getsockname()[1])
+
+
+class RedisProcess:
+    """One redis-server process; :meth:`restart` brings it back empty on the same port."""
+
+    def __init__(self, binary: str, folder: Path) -> None:
+        self._binary = binary
+        self._folder = folder
+        self.port = _free_port()
+        self._process: subprocess.Popen[bytes] | None = None
+
+    @property
+    def url(self) -> str:
+        return f"redis://127.0.0.1:{self.port}/0"
+
+    def start(self) -> None:
+        self._process = subprocess.Popen(
+            [self._binary, "--port", str(self.port), "--bind", "127.0.0.1", "--save", "",
+             "--appendonly", "no", "--dir", str(self._folder), "--protected-mode", "yes"],
+            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        deadline = time.monotonic() + _START_TIMEOUT_S
+        while time.monotonic() < deadline:
+            try:
+                with socket.create_connection(("127.0.0.1", self.port), timeout=0.5) as conn:
+                    conn.sendall(b"PING\r\n")
+                    if conn.recv(16).startswith(b"+PONG"):
+                        return
+            except OSError:
+                pass
+            if self._process.poll() is not None:
+                raise RuntimeError(f"redis-server exited with {self._process.returncode}")
+            time.sleep(0.05)
+        raise RuntimeError("redis-server did not answer within 10 s")
+
+    def stop(self) -> None:
+        if self._process is not None and self._process.poll() is None:
+            self._process.kill()
+            self._process.wait(timeout=10)
+        self._process = None
+
+    def restart(self) -> None:
+        """Kill it and start it again empty (persistence is off)."""
+        self.stop()
+        self.start()
+
+
+@pytest.fixture(name="redis_server")
+def redis_server_fixture(tmp_path: Path) -> Iterator[RedisProcess]:
+    binary = shutil.which("redis-server")
+    if binary is None:
+        message = "redis-server is not installed (Debian package redis-server; .ci/run installs it)"
+        if os.environ.get("CI") == "true":
+            pytest.fail(message)
+        pytest.skip(message)
+    server = RedisProcess(binary, tmp_path)
+    server.start()
+    try:
+        yield server
+    finally:
+        server.stop()
+
+
+def call_words() -> list[pb.SpokenWord]:
+    """The demo's invented phone call as wire words, one id each, in order (invented data)."""
+    words: list[pb.SpokenWord] = []
+    start = 0.0
+    for speaker, _, text in UTTERANCES:
+        for token in text.split():
+            word = pb.SpokenWord(word_id=f"w{len(words) + 1}", speaker=speaker, text=token,
+                                 start_s=start, end_s=start + 0.25)
+            words.append(word)
+            start += 0.32
+        start += 0.6
+    return words
+
+
+def comparable(update: pb.Update) -> bytes:
+    """An update's bytes without its server time (each replica stamps its own clock) and epoch
+    (drawn afresh for every conversation), to compare two conversations of the same words."""
+    copy = pb.Update()
+    copy.CopyFrom(update)
+    copy.server_time = 0.0
+    copy.epoch = 0
+    return copy.SerializeToString(deterministic=True)
+
+
+def gaps_told(messages: list[pb.ServerMessage], last_seq: int) -> int:
+    """Check a follower's messages hold no silent gap and no duplicate; return the gap notices.
+
+    Every update carries the next sequence number; a ``gap`` names exactly the next one as
+    missing and is followed by a snapshot, after which updates go on from the snapshot's; the
+    stream ends with ``ended`` at ``last_seq``.
+    """
+    expected: int | None = None
+    gaps = 0
+    pending_snapshot = False
+    for message in messages:
+        kind = message.WhichOneof("body")
+        if kind == "snapshot":
+            expected = message.snapshot.seq + 1
+            pending_snapshot = False
+        elif kind == "gap":
+            assert expected is None or message.gap.first_missing == expected, message
+            gaps += 1
+            pending_snapshot = True
+        elif kind == "update":
+            assert not pending_snapshot, "an update between a gap notice and its snapshot"
+            if expected is None:
+                expected = message.update.seq
+            assert message.update.seq == expected, (message.update.seq, expected)
+            expected += 1
+        elif kind == "ended":
+            assert message.ended.last_seq == last_seq
+            assert expected == last_seq + 1, (expected, last_seq)
+    assert messages and messages[-1].WhichOneof("body") == "ended"
+    return gaps
