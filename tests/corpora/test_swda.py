@@ -317,7 +317,8 @@ def test_marker_counts_match_a_plain_text_count(swda_dir: Path,
 
 @pytest.mark.corpus
 def test_reparandum_words_are_about_six_percent(train: list[Conversation]) -> None:
-    # Charniak & Johnson (NAACL 2001): 5.9% of Switchboard words are EDITED (reparandum).
+    # The corpora's README: reparandum words are roughly 6 % of Switchboard words (Charniak &
+    # Johnson, NAACL 2001); the paper's exact share (5.9 %) is from memory. Restarts count too.
     annotated = [c for c in train if c.labels is not None]
     words = sum(len(c.words) for c in annotated)
     removed = sum(1 for c in annotated if c.labels is not None for label in c.labels
