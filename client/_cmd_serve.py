@@ -150,11 +150,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 #: only cost time. Only the youngest generation is collected automatically (Python's 700): an
 #: object that outlives one young collection is almost always a live conversation's state, which
 #: waits for that conversation's next word, so walking it again in older collections found
-#: nothing. With 1,000 live conversations in-process (scripts/bench_gc.py --conversations 1000
-#: --words 120, 2026-12-03) Python's own thresholds paused up to 0.42 s (full collections),
-#: 700,10,1000000 up to 22-30 ms (middle generation) at 27-29 us of collector time per word, and
-#: 700,1000000,1000000 up to 4-16 ms at 13 us per word. Cycles that outlive a young collection
-#: (from errors, ended streams) are freed by the periodic full collection.
+#: nothing, and with a thousand live conversations Python's own thresholds paused for tenths of a
+#: second (the pauses per setting, and the command that measures them: docs/limits.md). Cycles
+#: that outlive a young collection (from errors, ended streams) are freed by the periodic full
+#: collection.
 _GC_THRESHOLDS: Final = "700,1000000,1000000"
 #: Seconds between full collections (common practice, no source: rare enough that its pause,
 #: tenths of a second with a thousand live conversations, touches few words).

@@ -3,12 +3,10 @@
 A server at a few hundred frames a second is idle between frames, and an idle CPU halts. On a
 virtual machine a halted virtual CPU goes back to the hypervisor, which may run other work on
 that physical core; the next frame then starts on cold caches and a core that has to be woken.
-On this project's 2-CPU virtual machine (``midstream bench --spawn --multiplex -n 1000``,
-server pinned to one core, six one-off runs on 2026-12-04) the same server spent 0.24-0.27 ms
-of CPU per word with its core left to idle and 0.18-0.20 ms with a spinner beside it, and the
-p99 latency went from 23-133 ms to 18-24 ms; disabling the guest's halting idle state on that
-core instead (``cpuidle`` ``state1/disable``, root only; one run) gained less. The benchmark
-report (``scripts/bench_report.py --spin-steps``) measures both ways in one run.
+On a 2-CPU virtual machine this cost a server at a thousand multiplexed conversations about a
+quarter more CPU per word and most of its p99 latency (the runs and their command:
+docs/service.md); the benchmark report (``scripts/bench_report.py --spin-steps``) measures both
+ways in one run.
 
 A spinner is a separate process (a thread would contend for the interpreter lock) pinned to one
 core under ``SCHED_IDLE``: the kernel runs it only when nothing else on that core wants to run,
