@@ -3,7 +3,7 @@
 ::
 
     async with Client("localhost:50551") as client:
-        async with client.converse() as stream:
+        async with client.feed() as stream:
             await stream.send_words([AddWord(word_id="w1", word=Word(text="uh", speaker="A"))])
             await stream.close()
             async for event in stream:          # Welcome, HypothesisUpdate..., Ended
@@ -12,7 +12,7 @@
 Callers that carry many conversations at once (a gateway) can send them over one stream,
 one message per flush rather than one per event::
 
-    async with client.converse_many() as mux:
+    async with client.feed_many() as mux:
         channel = mux.open()
         mux.send_words(channel, [AddWord(word_id="w1", word=Word(text="uh", speaker="A"))])
         await mux.flush()
@@ -70,7 +70,7 @@ from midstream.wire import midstream_pb2 as pb
 
 _log = logging.getLogger(__name__)
 
-#: Events one ``ConverseMany`` frame may hold: the server's default ``max_events_per_frame``.
+#: Events one ``FeedMany`` frame may hold: the server's default ``max_events_per_frame``.
 DEFAULT_FRAME_EVENTS = 1024
 
 _GAP_REASONS = {
@@ -255,7 +255,7 @@ class Client:
 
     # --- streams ------------------------------------------------------------------------------
 
-    def converse(self, conversation_id: str | None = None, *,
+    def feed(self, conversation_id: str | None = None, *,
                  resume: bool = False) -> ConversationStream:
         """A stream that ingests one conversation; use it as an async context manager.
 
@@ -269,7 +269,7 @@ class Client:
             raise InputError("resume=True continues a conversation by its id: give it")
         return ConversationStream(self, conversation_id or "", resume=resume)
 
-    def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS) -> MultiplexedStream:
+    def feed_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS) -> MultiplexedStream:
         """A stream that ingests many conversations, each on a channel; use ``async with``.
 
         For callers carrying many conversations at once: events are queued and sent together
@@ -399,7 +399,7 @@ class Client:
 
 
 class ConversationStream:
-    """One ingesting conversation; obtained from :meth:`Client.converse`.
+    """One ingesting conversation; obtained from :meth:`Client.feed`.
 
     ``async with`` opens it and waits for the server's :class:`Welcome` (so
     :attr:`conversation_id` is known before the first word). Send with :meth:`send_words` and
@@ -438,7 +438,7 @@ class ConversationStream:
 
     async def __aenter__(self) -> Self:
         stub = self._client._require_stub()
-        self._call = stub.Converse(metadata=self._client._metadata())
+        self._call = stub.Feed(metadata=self._client._metadata())
         opening = pb.ClientEvent(open=pb.OpenConversation(conversation_id=self._requested_id,
                                                           resume=self._resume))
         await self._write(opening)
@@ -553,7 +553,7 @@ class ConversationStream:
 
 
 class MultiplexedStream:
-    """Many ingesting conversations over one stream; obtained from :meth:`Client.converse_many`.
+    """Many ingesting conversations over one stream; obtained from :meth:`Client.feed_many`.
 
     ``async with`` starts the call; leaving the block normally half-closes it (the server
     finishes every open channel with ``ended`` ``CLOSED``) and drains the replies nobody read;
@@ -576,7 +576,7 @@ class MultiplexedStream:
 
     async def __aenter__(self) -> Self:
         stub = self._client._require_stub()
-        self._call = stub.ConverseMany(metadata=self._client._metadata())
+        self._call = stub.FeedMany(metadata=self._client._metadata())
         return self
 
     async def __aexit__(self, exc_type: type[BaseException] | None,
@@ -647,7 +647,7 @@ class MultiplexedStream:
         try:
             await self._call.write(frame)
         except grpc.RpcError as exc:
-            raise self._client._error(exc, "ConverseMany") from exc
+            raise self._client._error(exc, "FeedMany") from exc
         except asyncio.InvalidStateError as exc:
             # grpc.aio raises this when writing to a call the server already finished.
             raise await self._failure() from exc
@@ -661,7 +661,7 @@ class MultiplexedStream:
         try:
             await self._call.done_writing()
         except grpc.RpcError as exc:
-            raise self._client._error(exc, "ConverseMany") from exc
+            raise self._client._error(exc, "FeedMany") from exc
 
     def __aiter__(self) -> AsyncIterator[tuple[int, ServerEvent | MidstreamError]]:
         return self._replies()
@@ -675,7 +675,7 @@ class MultiplexedStream:
                 frame = await self._call.read()
             except grpc.RpcError as exc:
                 self._finished = True
-                raise self._client._error(exc, "ConverseMany") from exc
+                raise self._client._error(exc, "FeedMany") from exc
             if frame is grpc.aio.EOF:
                 self._finished = True
                 if await self._call.code() is not grpc.StatusCode.OK:
@@ -687,7 +687,7 @@ class MultiplexedStream:
                                                            grpc.StatusCode.UNKNOWN)
                     yield reply.channel, error_from_status(
                         code, f"channel {reply.channel}: {reply.error.message}",
-                        target=target, method="ConverseMany")
+                        target=target, method="FeedMany")
                 else:
                     yield reply.channel, _server_event(reply.message)
 
@@ -696,4 +696,4 @@ class MultiplexedStream:
         code = await self._call.code()
         details = await self._call.details()
         return error_from_status(code, details, target=self._client.target,
-                                 method="ConverseMany")
+                                 method="FeedMany")

@@ -15,7 +15,7 @@ and, when the server is local (``--server-pid`` or ``--spawn``), its CPU use and
 memory per live conversation. ``--baseline`` sends a trivial ``DescribeModels`` call at the same
 rate instead of words, to compare tagging with the bare transport round trip.
 
-``--multiplex`` carries the conversations over one ``ConverseMany`` stream per channel, each
+``--multiplex`` carries the conversations over one ``FeedMany`` stream per channel, each
 sending one frame every ``--tick-ms`` with every word due on it; latency is then timed from each
 word's scheduled time (the wait for the next frame included), not from the write.
 
@@ -108,7 +108,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              "(the transport round trip); with --multiplex, one call per "
                              "stream per frame that has words due")
     parser.add_argument("--multiplex", action="store_true",
-                        help="carry the conversations over one ConverseMany stream per "
+                        help="carry the conversations over one FeedMany stream per "
                              "channel, sending one frame of every word due per tick; latency "
                              "is then timed from each word's scheduled time")
     parser.add_argument("--tick-ms", type=float, default=1000 * DEFAULT_TICK_S, metavar="MS",
@@ -190,7 +190,7 @@ class Spawned:
 def serve_command(*, models: Path | None, live: int, spin: bool, redis: str | None = None,
                   workers: int = 1) -> list[str]:
     """The ``midstream serve`` command line :func:`spawn_server` runs: room for ``live``
-    conversations, all of them on one ``ConverseMany`` stream if the load puts them there;
+    conversations, all of them on one ``FeedMany`` stream if the load puts them there;
     ``redis``: with the shared log; ``workers``: that many processes (metrics are then left
     off: each worker would serve its own page)."""
     command = [sys.executable, "-m", "midstream.client._cli", "serve", "--host", "127.0.0.1",
@@ -284,7 +284,7 @@ def run(args: argparse.Namespace) -> int:
     def configure(target: str) -> LoadConfig:
         return LoadConfig(target=target, conversations=args.conversations, rate=args.rate,
                           seconds=args.seconds, ramp_s=ramp, channels=args.channels,
-                          workload="describe" if args.baseline else "converse", token=token,
+                          workload="describe" if args.baseline else "feed", token=token,
                           tls=bool(args.tls), tls_ca=args.tls_ca, seed=args.seed,
                           multiplex=bool(args.multiplex), tick_s=args.tick_ms / 1000)
 
@@ -385,7 +385,7 @@ def _print(s: dict[str, Any]) -> None:
     print(f"target {s['target']}: {s['opened']}/{s['conversations']} conversations open, "
           f"{s['rate_per_conversation']:g} {what}/s each, {s['measured_s']:.1f} s")
     if s["multiplex"]:
-        print(f"  carried by   {s['channels']} ConverseMany streams, one frame per "
+        print(f"  carried by   {s['channels']} FeedMany streams, one frame per "
               f"{s['tick_ms']:g} ms tick each")
     print(f"  words from   {s['corpus']}")
     print(f"  offered      {s['offered_wps']:.1f} {what}/s")

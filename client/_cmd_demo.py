@@ -66,7 +66,7 @@ async def _run(args: argparse.Namespace) -> int:
     await server.start()
     print(f"demo server on 127.0.0.1:{server.port}; an invented call to a bicycle shop "
           "(labels marked after words: fil filler, edt editing term, dm discourse marker, "
-          "rpd reparandum, rep repair onset, rst restart; ~ not final yet)", flush=True)
+          "rpd reparandum, fix repair onset, rst restart; ~ not final yet)", flush=True)
     revised = 0
 
     def on_event(event: ServerEvent, sent: int) -> None:

@@ -3,8 +3,8 @@
 ::
 
     midstream evaluate ../shared/corpora/swda --split val
-    midstream evaluate ../shared/corpora/swda --split val --model words.msm --json
-    midstream evaluate calls.jsonl --functions-model functions.msm
+    midstream evaluate ../shared/corpora/swda --split val --model words.tagger --json
+    midstream evaluate calls.jsonl --functions-model functions.tagger
 
 Every speaker channel is streamed one word at a time through the word model's incremental
 decoder, with the word times the corpus carries (MRDA's) weighed by the boundary model
@@ -56,11 +56,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("corpus", type=Path, help="a corpus folder or a .jsonl file")
     parser.add_argument("--split", default=None, help="read only this split, e.g. val")
     parser.add_argument("--model", type=Path, default=None,
-                        help="word model (.msm); default: the shipped one")
+                        help="word model (.tagger); default: the shipped one")
     parser.add_argument("--functions-model", type=Path, default=None,
-                        help="utterance-function model (.msm); default: the shipped one")
+                        help="utterance-function model (.tagger); default: the shipped one")
     parser.add_argument("--boundary-model", type=Path, default=None,
-                        help="boundary model (.msm, timing evidence for utterance ends); "
+                        help="boundary model (.tagger, timing evidence for utterance ends); "
                              "default: the shipped one")
     parser.add_argument("--no-boundary", action="store_true",
                         help="decide utterance ends with the word model alone")

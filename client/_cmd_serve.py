@@ -58,7 +58,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     defaults = ServerLimits()
     parser = subparsers.add_parser(
         "serve", help="run the streaming gRPC service",
-        description="Serve the tagging models over gRPC (Converse, Follow, TagTranscript, ...) "
+        description="Serve the tagging models over gRPC (Feed, Follow, TagTranscript, ...) "
                     "until SIGTERM or Ctrl-C, which drain live conversations first. Limits are "
                     "listed in docs/limits.md.",
         epilog=f"environment: {_HOST_ENV}, {_PORT_ENV} and {_MODELS_ENV} set --host, --port "
@@ -71,7 +71,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help=f"gRPC port (default ${_PORT_ENV} or {_DEFAULT_PORT}; 0 picks a "
                              "free one)")
     parser.add_argument("--models", type=Path, default=None, metavar="DIR",
-                        help=f"folder of .msm model files (default ${_MODELS_ENV} or the "
+                        help=f"folder of .tagger model files (default ${_MODELS_ENV} or the "
                              "shipped models)")
     parser.add_argument("--metrics-port", type=int, default=None, metavar="N",
                         help="serve Prometheus metrics over HTTP on this port (default: off)")

@@ -1,11 +1,11 @@
-"""``midstream train``: train a model on annotated conversations and write a ``.msm`` file.
+"""``midstream train``: train a model on annotated conversations and write a ``.tagger`` file.
 
 ::
 
-    midstream train words ../shared/corpora/swda --split train --out words.msm
-    midstream train words ../shared/corpora/swda --split train --out words.msm \\
+    midstream train words ../shared/corpora/swda --split train --out words.tagger
+    midstream train words ../shared/corpora/swda --split train --out words.tagger \\
         --c1 0.05 0.2 --c2 0.01 0.1 --cv-folds 3 --cv-subset 120
-    midstream train functions ../shared/corpora/swda --split train --out functions.msm
+    midstream train functions ../shared/corpora/swda --split train --out functions.tagger
 
 One sub-command per model: ``words`` (disfluency roles and utterance ends, this module),
 ``functions`` (utterance functions, options from
@@ -53,7 +53,7 @@ RESTART_GUARD = 0.002
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = subparsers.add_parser(
         "train", help="train a model (words, functions or boundaries) on annotated conversations",
-        description="Train a model on annotated conversations and write a .msm model file.")
+        description="Train a model on annotated conversations and write a .tagger model file.")
     tasks = parser.add_subparsers(dest="train_task", required=True, metavar="MODEL")
     words = tasks.add_parser(
         "words", help="the disfluency and utterance-end CRF",
@@ -62,7 +62,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     words.add_argument("corpus", type=Path, help="a corpus folder or a .jsonl file")
     words.add_argument("--split", default=None, help="read only this split, e.g. train")
     words.add_argument("--out", type=Path, default=None,
-                       help="model file to write (.msm); required unless --cv-only")
+                       help="model file to write (.tagger); required unless --cv-only")
     defaults = WordTrainingConfig()
     words.add_argument("--c1", type=float, nargs="+", default=[defaults.c1],
                        help="L1 weight(s); several values are compared by cross-validation")
@@ -115,11 +115,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 def _register_functions(tasks: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = tasks.add_parser(
         "functions", help="the utterance-function CRF",
-        description="Train the utterance-function CRF and write a .msm model file.")
+        description="Train the utterance-function CRF and write a .tagger model file.")
     parser.add_argument("corpus", type=Path, nargs="+",
                         help="corpus folders or .jsonl files; several are pooled")
     parser.add_argument("--split", default=None, help="read only this split of each, e.g. train")
-    parser.add_argument("--out", type=Path, required=True, help="model file to write (.msm)")
+    parser.add_argument("--out", type=Path, required=True, help="model file to write (.tagger)")
     functions.add_training_arguments(parser)
     parser.set_defaults(handler=functions.run)
 

@@ -3,7 +3,7 @@
 ::
 
     midstream train boundaries ../shared/corpora/mrda --split train --c1 0.1 0.5 \\
-        --weight 1 1.5 2 --offset 1 2 3 --cv-folds 3 --seed 0 --out boundaries.msm
+        --weight 1 1.5 2 --offset 1 2 3 --cv-folds 3 --seed 0 --out boundaries.tagger
 
 Given several values of ``--c1``, ``--weight`` or ``--offset`` (or ``--cv-only``), every
 combination is compared by cross-validation
@@ -45,7 +45,7 @@ def add_training_arguments(parser: argparse.ArgumentParser) -> None:
                                                   "times")
     parser.add_argument("--split", default=None, help="read only this split, e.g. train")
     parser.add_argument("--out", type=Path, default=None,
-                        help="model file to write (.msm); required unless --cv-only")
+                        help="model file to write (.tagger); required unless --cv-only")
     parser.add_argument("--words-model", type=Path, default=None,
                         help="word model the evidence joins while choosing --weight and "
                              "--offset (default: the shipped one)")

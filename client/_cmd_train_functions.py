@@ -4,11 +4,11 @@
 
     midstream train functions ../shared/corpora/swda --split train --scheme swbd42 \\
         --augment 0.5 --c1 0.1 0.3 --c2 0.01 --cv-folds 3 --cv-subset 300 \\
-        --out functions-swbd42.msm
-    midstream train functions my_calls.jsonl --scheme coarse --out functions-coarse.msm
+        --out functions-swbd42.tagger
+    midstream train functions my_calls.jsonl --scheme coarse --out functions-coarse.tagger
     midstream train functions ../shared/corpora/swda ../shared/corpora/mrda \\
         ../shared/corpora/maptask --split train --scheme coarse --partner-features \\
-        --oversample clarification_request=0 clarification_request=3 --out functions-coarse.msm
+        --oversample clarification_request=0 clarification_request=3 --out functions-coarse.tagger
 
 ``midstream train`` (:mod:`midstream.client._cmd_train`) registers the sub-command with
 :func:`add_training_arguments` and :func:`run`. The corpus is anything

@@ -1,4 +1,5 @@
-"""An invented phone call for ``midstream demo``: a caller books a bicycle repair with a shop.
+"""An invented phone call for ``midstream demo``: a caller books a bicycle repair with a shop on
+the moon (no such shop exists: the scenario is made up end to end).
 
 Written for the demo (no corpus text): it has filled pauses, editing terms, discourse markers,
 self-repairs, a restart, questions, answers, acknowledgements and a clarification request.
@@ -15,7 +16,7 @@ from midstream.client._results import AddWord, TimeTick
 
 #: ``(speaker, silence before in seconds, words)``, one utterance each, in order.
 UTTERANCES: tuple[tuple[str, float, str], ...] = (
-    ("shop", 0.3, "good morning hillside cycles"),
+    ("shop", 0.3, "good morning moonbase bike repairs"),
     ("shop", 0.9, "how can i help"),
     ("caller", 1.3, "hi um yeah i was wondering if you could uh if you could take a look at "
                     "my bike"),

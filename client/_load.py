@@ -1,6 +1,6 @@
 """A load generator for a Midstream server: many concurrent conversations at a fixed word rate.
 
-:func:`run_load` opens ``conversations`` ``Converse`` streams over a few channels, and each sends
+:func:`run_load` opens ``conversations`` ``Feed`` streams over a few channels, and each sends
 one word per event at ``rate`` words per second for ``seconds`` seconds, taken from real
 transcripts (:class:`WordScript`). For every word it times the interval from just before the
 write to the first update naming that word's id (the word's first hypothesis), and it counts
@@ -9,7 +9,7 @@ a conversation not opened in time, or one whose last updates had not arrived 10 
 window). The ``describe`` workload sends a trivial ``DescribeModels`` call at
 the same rate instead: the transport round trip against which tagging is compared.
 
-With ``multiplex`` the conversations ride ``ConverseMany`` streams instead, one per channel:
+With ``multiplex`` the conversations ride ``FeedMany`` streams instead, one per channel:
 every ``tick_s`` each stream sends one frame holding every word that fell due on it since the
 last frame. Latency is then timed from each word's *scheduled* time, not from the frame's
 write, so the wait for the next tick is inside the figure. The ``describe`` workload then makes
@@ -49,7 +49,7 @@ from midstream.client._scrape import Histogram, MetricsProbe
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 
-Workload = Literal["converse", "describe"]
+Workload = Literal["feed", "describe"]
 
 #: Percentiles reported, in percent.
 PERCENTILES: tuple[int, ...] = (50, 95, 99)
@@ -64,7 +64,7 @@ _SETTLE_S = 10.0
 #: first four runs that recorded it met the latency budget at 0.05 % and missed it at 0.4 % and
 #: more; later runs met it at 1-3 % too. So it marks a run to read with care, not a failed one.
 STEAL_NOTABLE_PERCENT = 0.1
-#: Most events the generator puts in one ``ConverseMany`` frame: the server's default
+#: Most events the generator puts in one ``FeedMany`` frame: the server's default
 #: ``max_events_per_frame`` (docs/limits.md), over which it refuses the frame and ends the
 #: stream. Opening or closing more conversations than this at once takes several frames.
 MAX_FRAME_EVENTS = 1024
@@ -80,7 +80,7 @@ class LoadConfig:
     ``rate`` is words per second per conversation; ``seconds`` is how long each conversation
     sends after all are open; ``ramp_s`` spreads the opening of the conversations (seconds).
     ``channels`` is how many HTTP/2 connections carry the streams. ``multiplex`` carries the
-    conversations over one ``ConverseMany`` stream per channel, sending a frame every
+    conversations over one ``FeedMany`` stream per channel, sending a frame every
     ``tick_s`` seconds.
     """
 
@@ -90,7 +90,7 @@ class LoadConfig:
     seconds: float = 60.0
     ramp_s: float = 5.0
     channels: int = 4
-    workload: Workload = "converse"
+    workload: Workload = "feed"
     token: str | None = field(default=None, repr=False)
     tls: bool = False
     tls_ca: Path | None = None
@@ -426,12 +426,12 @@ def _channel(config: LoadConfig, index: int) -> grpc.aio.Channel:
     return grpc.aio.secure_channel(config.target, credentials, options=options)
 
 
-async def _converse(run: _Run, stub: pb_grpc.MidstreamStub, number: int) -> None:
+async def _feed(run: _Run, stub: pb_grpc.MidstreamStub, number: int) -> None:
     """One simulated conversation: open, send at the rate, close, read everything."""
     config, result = run.config, run.result
     loop = asyncio.get_running_loop()
     pending: dict[str, float] = {}
-    call = stub.Converse(metadata=run.metadata)
+    call = stub.Feed(metadata=run.metadata)
     opened = False
     reader: asyncio.Task[None] | None = None
 
@@ -561,10 +561,10 @@ async def _ticks(run: _Run) -> AsyncIterator[float]:
 
 
 async def _multiplexed(run: _Run, stub: pb_grpc.MidstreamStub, numbers: list[int]) -> None:
-    """Conversations ``numbers`` over one ConverseMany stream: frames of due words per tick."""
+    """Conversations ``numbers`` over one FeedMany stream: frames of due words per tick."""
     config, result = run.config, run.result
     loop = asyncio.get_running_loop()
-    call = stub.ConverseMany(metadata=run.metadata)
+    call = stub.FeedMany(metadata=run.metadata)
     # Channel numbers count from 1 in opening order, as the protocol asks.
     channel_of = {number: index + 1 for index, number in enumerate(numbers)}
     unanswered = set(channel_of.values())  # opens not yet answered
@@ -723,13 +723,13 @@ async def run_load(config: LoadConfig, script: WordScript, *,
         result.server_before = probe.sample() if probe is not None else None
         tasks = []
         if config.multiplex:
-            streams = _multiplexed if config.workload == "converse" else _describe_ticks
+            streams = _multiplexed if config.workload == "feed" else _describe_ticks
             for index, stub in enumerate(stubs):
                 numbers = list(range(index, config.conversations, len(stubs)))
                 if numbers:
                     tasks.append(asyncio.ensure_future(streams(run, stub, numbers)))
         else:
-            body = _converse if config.workload == "converse" else _describe
+            body = _feed if config.workload == "feed" else _describe
             spacing = config.ramp_s / config.conversations
             for number in range(config.conversations):
                 tasks.append(asyncio.ensure_future(
@@ -825,7 +825,7 @@ async def hold_conversations(config: LoadConfig, script: WordScript, *, words_ea
 
     async def one(stub: pb_grpc.MidstreamStub, number: int, *, hold: bool) -> None:
         nonlocal idle
-        call = stub.Converse(metadata=metadata)
+        call = stub.Feed(metadata=metadata)
         counted = False
         try:
             if bare and hold:

@@ -148,7 +148,7 @@ class Reconnected:
     attempt: int
 
 
-#: Anything :meth:`Client.converse` or :meth:`Client.follow` yields.
+#: Anything :meth:`Client.feed` or :meth:`Client.follow` yields.
 ServerEvent = Welcome | HypothesisUpdate | Snapshot | Gap | Ended | Reconnected
 
 

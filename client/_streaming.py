@@ -76,7 +76,7 @@ async def stream_conversation(
     """
     pacing = pacing or Pacing()
     counter = [0]
-    async with client.converse(conversation_id) as stream:
+    async with client.feed(conversation_id) as stream:
         result = StreamResult(conversation_id=stream.conversation_id)
         on_welcome(stream.welcome)
 

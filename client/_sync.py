@@ -59,7 +59,7 @@ class _Stream(Protocol[_Yielded_co]):
     async def close(self) -> None: ...
 
 
-#: Replies read ahead of the caller by default (see :meth:`SyncClient.converse_many`).
+#: Replies read ahead of the caller by default (see :meth:`SyncClient.feed_many`).
 DEFAULT_BUFFER = 1024
 _END = object()  # the reply stream ended normally
 _NOTHING = object()  # no reply within the timeout
@@ -147,21 +147,21 @@ class SyncClient:
         """See :meth:`Client.reload_models`."""
         return self._run(self._client.reload_models(directory))
 
-    def converse(self, conversation_id: str | None = None, *, resume: bool = False,
+    def feed(self, conversation_id: str | None = None, *, resume: bool = False,
                  buffer: int = DEFAULT_BUFFER) -> SyncConversation:
-        """See :meth:`Client.converse`; use the result with ``with``. ``buffer`` as for
-        :meth:`converse_many`."""
-        return SyncConversation(self, self._client.converse(conversation_id, resume=resume),
+        """See :meth:`Client.feed`; use the result with ``with``. ``buffer`` as for
+        :meth:`feed_many`."""
+        return SyncConversation(self, self._client.feed(conversation_id, resume=resume),
                                 buffer)
 
-    def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
+    def feed_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
                       buffer: int = DEFAULT_BUFFER) -> SyncMultiplexedStream:
-        """See :meth:`Client.converse_many`; use the result with ``with``.
+        """See :meth:`Client.feed_many`; use the result with ``with``.
 
         ``buffer``: replies read ahead of the caller at most; when that many wait unread, the
         stream stops reading and gRPC's flow control holds the server back.
         """
-        return SyncMultiplexedStream(self, self._client.converse_many(frame_events=frame_events),
+        return SyncMultiplexedStream(self, self._client.feed_many(frame_events=frame_events),
                                      buffer)
 
     def follow(self, conversation_id: str, *, from_seq: int | None = None, epoch: int = 0,

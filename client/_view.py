@@ -39,7 +39,7 @@ LABEL_MARKS: dict[DisfluencyLabel, str] = {
     DisfluencyLabel.EDIT_TERM: "edt",
     DisfluencyLabel.DISCOURSE_MARKER: "dm",
     DisfluencyLabel.REPARANDUM: "rpd",
-    DisfluencyLabel.REPAIR: "rep",
+    DisfluencyLabel.REPAIR: "fix",
     DisfluencyLabel.RESTART: "rst",
 }
 

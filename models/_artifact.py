@@ -1,4 +1,4 @@
-"""Midstream model files (``.msm``): our own container around crfsuite's model bytes.
+"""Midstream model files (``.tagger``): our own container around crfsuite's model bytes.
 
 Layout (all integers little-endian)::
 
@@ -57,7 +57,7 @@ MAX_METADATA_BYTES: Final = 16 * 1024 * 1024
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class ModelArtifact:
-    """A trained model with its provenance, as stored in a ``.msm`` file.
+    """A trained model with its provenance, as stored in a ``.tagger`` file.
 
     ``metadata`` holds free-form JSON-compatible provenance (training-data summary, created-by
     command, ...); ``features`` the feature configuration the model was trained with, which a
@@ -72,7 +72,7 @@ class ModelArtifact:
     metadata: Mapping[str, Any] = field(default_factory=dict)
 
     def to_bytes(self) -> bytes:
-        """Serialise to the ``.msm`` layout."""
+        """Serialise to the ``.tagger`` layout."""
         meta = json.dumps(
             {
                 "kind": self.kind,
@@ -93,7 +93,7 @@ class ModelArtifact:
     def from_bytes(
         cls, data: bytes, *, expected_kind: ModelKind | None = None, source: str = "model"
     ) -> ModelArtifact:
-        """Parse and check a ``.msm`` file's bytes.
+        """Parse and check a ``.tagger`` file's bytes.
 
         Raises
         ------
@@ -178,7 +178,7 @@ def save_artifact(artifact: ModelArtifact, path: Path) -> None:
 
 
 def load_artifact(path: Path, *, expected_kind: ModelKind | None = None) -> ModelArtifact:
-    """Read and check a ``.msm`` file.
+    """Read and check a ``.tagger`` file.
 
     Raises
     ------

@@ -65,7 +65,7 @@ _BEFORE_EDGES: Final = (0.1, 0.3, 0.5, 1.0, 2.0)
 
 def default_boundary_model_path() -> Path:
     """Where the shipped boundary model lives (inside the installed package)."""
-    return Path(str(resources.files("midstream.models") / "weights" / "boundaries.msm"))
+    return Path(str(resources.files("midstream.models") / "weights" / "boundaries.tagger"))
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -187,7 +187,7 @@ class BoundaryModel:
 
     @classmethod
     def load(cls, path: Path | None = None) -> BoundaryModel:
-        """Load a ``.msm`` boundary model (the shipped one when ``path`` is None)."""
+        """Load a ``.tagger`` boundary model (the shipped one when ``path`` is None)."""
         path = default_boundary_model_path() if path is None else path
         return cls.from_artifact(load_artifact(path, expected_kind="boundaries"))
 

@@ -76,7 +76,7 @@ class ModelBundle:
 
     @classmethod
     def load_directory(cls, path: Path) -> ModelBundle:
-        """Load every ``.msm`` model in a folder: one word model and a function model, and the
+        """Load every ``.tagger`` model in a folder: one word model and a function model, and the
         boundary model (timing evidence for utterance ends) when the folder has one.
 
         Raises
@@ -89,18 +89,18 @@ class ModelBundle:
         """
         if not path.is_dir():
             raise NotFoundError(f"model folder {path} does not exist")
-        loaded = [_load(file) for file in sorted(path.glob("*.msm"))]
+        loaded = [_load(file) for file in sorted(path.glob("*.tagger"))]
         words = [m for m in loaded if m.artifact.kind == "words"]
         functions = [m for m in loaded if m.artifact.kind == "utterance_functions"]
         if len(words) != 1:
-            raise ModelError(f"{path}: expected exactly one word model (.msm of kind 'words'), "
+            raise ModelError(f"{path}: expected exactly one word model (.tagger of kind 'words'), "
                              f"found {len(words)}")
         if not functions:
-            raise ModelError(f"{path}: no utterance-function model (.msm of kind "
+            raise ModelError(f"{path}: no utterance-function model (.tagger of kind "
                              "'utterance_functions') found")
         boundaries = [m for m in loaded if m.artifact.kind == "boundaries"]
         if len(boundaries) > 1:
-            raise ModelError(f"{path}: expected at most one boundary model (.msm of kind "
+            raise ModelError(f"{path}: expected at most one boundary model (.tagger of kind "
                              f"'boundaries'), found {len(boundaries)}")
         by_scheme = {m.artifact.features.get("scheme"): m for m in functions}
         chosen = next((by_scheme[s] for s in _SCHEME_PREFERENCE if s in by_scheme), functions[0])
@@ -172,7 +172,7 @@ def default_functions_model_path(scheme: str | None = None) -> Path:
     the shipped model of ``scheme``."""
     folder = Path(str(resources.files("midstream.models") / "weights"))
     for name in _SCHEME_PREFERENCE if scheme is None else (scheme,):
-        path = folder / f"functions-{name}.msm"
+        path = folder / f"functions-{name}.tagger"
         if path.exists():
             return path
     raise NotFoundError(f"no shipped utterance-function model in {folder}")

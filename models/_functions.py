@@ -681,7 +681,7 @@ class FunctionTagger:
     @classmethod
     def from_artifact(cls, artifact: ModelArtifact, *, context: int = DEFAULT_CONTEXT,
                       coarse_from: str | None = None) -> FunctionTagger:
-        """A tagger over a loaded ``.msm`` artifact of kind ``"utterance_functions"``.
+        """A tagger over a loaded ``.tagger`` artifact of kind ``"utterance_functions"``.
 
         Raises
         ------
@@ -712,7 +712,7 @@ class FunctionTagger:
 
     @classmethod
     def load(cls, path: Path, *, context: int = DEFAULT_CONTEXT) -> FunctionTagger:
-        """Read a ``.msm`` file and build a tagger (raises NotFoundError or ModelError)."""
+        """Read a ``.tagger`` file and build a tagger (raises NotFoundError or ModelError)."""
         return cls.from_artifact(load_artifact(path, expected_kind="utterance_functions"),
                                  context=context)
 

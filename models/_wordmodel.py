@@ -28,7 +28,7 @@ IntArray = npt.NDArray[np.int64]
 
 def default_words_model_path() -> Path:
     """Where the shipped word model lives (inside the installed package)."""
-    return Path(str(resources.files("midstream.models") / "weights" / "words.msm"))
+    return Path(str(resources.files("midstream.models") / "weights" / "words.tagger"))
 
 
 class WordModel:
@@ -95,7 +95,7 @@ class WordModel:
 
     @classmethod
     def load(cls, path: Path | None = None) -> WordModel:
-        """Load a ``.msm`` word model (the shipped one when ``path`` is None)."""
+        """Load a ``.tagger`` word model (the shipped one when ``path`` is None)."""
         path = default_words_model_path() if path is None else path
         return cls.from_artifact(load_artifact(path, expected_kind="words"))
 

@@ -30,9 +30,9 @@ from midstream.models._train_words import WordTrainingConfig, train_word_artifac
 swda, out = Path(sys.argv[1]), Path(sys.argv[2])
 conversations = list(itertools.islice(read_corpus(swda, split="train"), 12))
 save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=30)),
-              out / "words.msm")
+              out / "words.tagger")
 save_artifact(train_function_model(conversations, FunctionTrainingOptions(max_iterations=30)),
-              out / "functions.msm")
+              out / "functions.tagger")
 """
 
 
@@ -59,12 +59,12 @@ def models_folder(given: Path | None, tiny: Path | None) -> tuple[Path, str]:
     """
     if given is not None:
         return given, f"models from {given}"
-    if any(WEIGHTS.glob("*.msm")):
+    if any(WEIGHTS.glob("*.tagger")):
         return WEIGHTS, "the shipped models (models/weights)"
     if tiny is None:
         raise SystemExit("no shipped models in models/weights: pass --models DIR, or "
                          "--train-tiny DIR to train small ones from SwDA train")
-    if not ((tiny / "words.msm").is_file() and (tiny / "functions.msm").is_file()):
+    if not ((tiny / "words.tagger").is_file() and (tiny / "functions.tagger").is_file()):
         tiny.mkdir(parents=True, exist_ok=True)
         subprocess.run([sys.executable, "-c", _TRAIN_TINY, str(corpora_root() / "swda"),
                         str(tiny)], check=True)

@@ -16,10 +16,10 @@ alike; ``--rounds`` repeats the whole stream, the rows pool the rounds, and the 
 ratio across rounds is printed too. Targets (project targets, no source):
 median decoder cost at most 150 us per word, and the 1,000-word over 10-word ratio at most 1.3.
 
-    .venv/bin/python scripts/bench_engine.py [--model words.msm] [--words 3000]
+    .venv/bin/python scripts/bench_engine.py [--model words.tagger] [--words 3000]
     .venv/bin/python scripts/bench_engine.py --smoke --json out.json      # seconds, for CI
 
-With a boundary model (the shipped ``boundaries.msm``, or ``--boundary-model``), one more
+With a boundary model (the shipped ``boundaries.tagger``, or ``--boundary-model``), one more
 paired run times the same words given invented times (0.25 s words, 0.05 s apart, 0.8 s of
 silence every eight words) through two decoders in turn, one weighing the times with the
 boundary model and one without: the ratio of their median per-word CPU time is what weighing
@@ -197,7 +197,7 @@ def _boundary_pair(model: WordModel, boundary: BoundaryModel, texts: Sequence[st
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--model", type=Path, default=None,
-                        help="word model (.msm); default: the shipped one")
+                        help="word model (.tagger); default: the shipped one")
     parser.add_argument("--words", type=int, default=3000,
                         help="words per round (at least 1,000, the longest utterance)")
     parser.add_argument("--rounds", type=int, default=3,
@@ -209,7 +209,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--smoke", action="store_true", help="a few hundred words, for CI")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
     parser.add_argument("--boundary-model", type=Path, default=None,
-                        help="boundary model (.msm) for the timed pair; default: the shipped "
+                        help="boundary model (.tagger) for the timed pair; default: the shipped "
                              "one when present")
     args = parser.parse_args(argv)
     n_words = 300 if args.smoke else args.words

@@ -19,7 +19,7 @@ words) with and without the coarse model, rounds alternating, CPU time per word 
 ::
 
     .venv/bin/python scripts/bench_functions.py [--model PATH] [--conversations 5] [--rounds 3]
-    .venv/bin/python scripts/bench_functions.py --coarse models/weights/functions-coarse.msm
+    .venv/bin/python scripts/bench_functions.py --coarse models/weights/functions-coarse.tagger
 """
 
 from __future__ import annotations
@@ -109,7 +109,7 @@ def _time_features(tagger: FunctionTagger, calls: list[Call]) -> list[float]:
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--model", type=Path,
-                        default=REPO / "models" / "weights" / "functions-swbd42.msm")
+                        default=REPO / "models" / "weights" / "functions-swbd42.tagger")
     parser.add_argument("--conversations", type=int, default=5)
     parser.add_argument("--rounds", type=int, default=3)
     parser.add_argument("--coarse", type=Path, default=None,

@@ -1,6 +1,6 @@
 """Cycle-collector pauses on the server's word path, for several collector thresholds.
 
-No network: as ``bench_ingest.py``, a servicer in this process takes ``ConverseMany`` request
+No network: as ``bench_ingest.py``, a servicer in this process takes ``FeedMany`` request
 frames for ``--conversations`` live conversations (SwDA val words, channels in turn) and every
 reply frame is serialised. ``gc.callbacks`` time each collection. For each ``--gc-thresholds``
 setting (``G0,G1,G2``, as ``midstream serve --gc-thresholds``) a fresh pass reports, per

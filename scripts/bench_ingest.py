@@ -1,4 +1,4 @@
-"""CPU per word of the server's ingest layer outside the engine, on the ``ConverseMany`` path.
+"""CPU per word of the server's ingest layer outside the engine, on the ``FeedMany`` path.
 
 No network: each pass builds a servicer in this process, opens ``--conversations`` channels on
 one ``ManyStream`` and hands it request frames of ``--per-frame`` one-word events (SwDA val

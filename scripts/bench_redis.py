@@ -1,7 +1,7 @@
 """What the shared Redis log costs: server CPU per word with and without it, and Redis memory.
 
 No network between caller and server: each pass opens ``--conversations`` sessions in this
-process and applies one-word events to them in turn, as the ``Converse`` handler does
+process and applies one-word events to them in turn, as the ``Feed`` handler does
 (``apply_event``: checks, engine, publishing); with the shared log every session also has its
 journal, and the pass ends only when the writer task has sent everything to Redis, so its work
 (conversion, pipelining, the client) is inside the timed part. Passes alternate between the two

@@ -11,13 +11,13 @@ the tables.
     .venv/bin/python scripts/bench_report.py                         # full: about 15 minutes
     .venv/bin/python scripts/bench_report.py --quick --out /tmp/b.md  # shorter steps
     .venv/bin/python scripts/bench_report.py --reuse /tmp/bench       # rewrite from saved output
-    .venv/bin/python scripts/bench_report.py --multiplex              # also the ConverseMany sweep
+    .venv/bin/python scripts/bench_report.py --multiplex              # also the FeedMany sweep
 
 ``--shared-log`` also runs ``scripts/bench_redis.py`` (the shared Redis log's CPU per word
 against none, and Redis's bytes per word) and adds its table.
 
 ``--multiplex`` runs ``bench_service.py`` a second time with ``--multiplex`` (the conversations
-carried over a few ``ConverseMany`` streams) and adds its table; ``--spin-steps`` runs that sweep
+carried over a few ``FeedMany`` streams) and adds its table; ``--spin-steps`` runs that sweep
 once more at those steps with each server started with ``--spin-idle-cores`` (its core kept from
 idling), the other sweep being its baseline. ``--reuse`` shows them whenever the saved output
 holds them.
@@ -68,7 +68,7 @@ def main() -> int:
                         help="every script in its smoke mode (seconds; checks the pipeline)")
     parser.add_argument("--steps", default=None, help="passed to bench_service.py")
     parser.add_argument("--multiplex", action="store_true",
-                        help="also run bench_service.py --multiplex (ConverseMany streams)")
+                        help="also run bench_service.py --multiplex (FeedMany streams)")
     parser.add_argument("--multiplex-steps", default=None,
                         help="passed as --steps to bench_service.py --multiplex")
     parser.add_argument("--spin-steps", default=None, metavar="STEPS",
@@ -94,7 +94,7 @@ def main() -> int:
         models, models_note = models_folder(args.models, args.train_tiny)
         model_args = ["--models", str(models)]
         engine_cmd = [sys.executable, str(_SCRIPTS / "bench_engine.py"),
-                      "--model", str(models / "words.msm")]
+                      "--model", str(models / "words.tagger")]
         service_cmd = [sys.executable, str(_SCRIPTS / "bench_service.py"), *model_args,
                        "--json", str(work / "service.json")]
         if args.quick:
@@ -170,7 +170,7 @@ def main() -> int:
 
 
 def _streams(count: int) -> str:
-    return "one `ConverseMany` stream" if count == 1 else f"{count} `ConverseMany` streams"
+    return "one `FeedMany` stream" if count == 1 else f"{count} `FeedMany` streams"
 
 
 def _engine_section(text: str) -> list[str]:
@@ -234,9 +234,9 @@ def _sweep_section(heading: str, command: str, text: str,
 
 
 def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[str]:
-    """The ConverseMany sweep: its command, how it differs, its table."""
+    """The FeedMany sweep: its command, how it differs, its table."""
     return _sweep_section(
-        "Live conversations per server core, multiplexed (ConverseMany)",
+        "Live conversations per server core, multiplexed (FeedMany)",
         command or "scripts/bench_service.py --multiplex",
         f"The same steps, but the conversations ride {_streams(service.get('channels', 4))} "
         f"(one per connection): every {service.get('tick_ms', 10):g} ms "
@@ -247,7 +247,7 @@ def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[s
 
 
 def _spun_section(command: str | None, service: dict[str, Any]) -> list[str]:
-    """The ConverseMany sweep again, each server started with ``--spin-idle-cores``."""
+    """The FeedMany sweep again, each server started with ``--spin-idle-cores``."""
     return _sweep_section(
         "The same, server core kept from idling (`midstream serve --spin-idle-cores`)",
         command or "scripts/bench_service.py --multiplex --spin-idle-cores",
@@ -279,7 +279,7 @@ def _collector_section(command: str | None, result: dict[str, Any]) -> list[str]
         f"`{command or 'scripts/bench_gc.py'}`",
         "",
         f"In-process (no network), {result['conversations']} live conversations on "
-        f"`ConverseMany` take {result['words']:,} SwDA val words; `gc.callbacks` time every "
+        f"`FeedMany` take {result['words']:,} SwDA val words; `gc.callbacks` time every "
         "collection. A pause holds up every word in flight, so the longest pause bounds what "
         "the collector adds to the latency tail. Baseline: Python's own thresholds "
         f"(700,10,10). `midstream serve` uses {_GC_THRESHOLDS} and a full collection every "
@@ -482,7 +482,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "    [--token T | --tls --tls-ca ca.pem] [--json]",
         "midstream bench --spawn --models DIR --server-cpu 0 --client-cpu 1 -n 200",
         "midstream bench --baseline ...      # DescribeModels at the same rate: transport only",
-        "midstream bench --multiplex ...     # conversations over a few ConverseMany streams",
+        "midstream bench --multiplex ...     # conversations over a few FeedMany streams",
         "midstream bench --target HOST:PORT --server-metrics http://HOST:9464/metrics ...",
         "midstream bench --smoke --spawn     # a few seconds, checks the setup",
         "```",

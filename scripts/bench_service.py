@@ -18,7 +18,7 @@ are measured in the same run, so the headline figures are ratios, not machine-de
     .venv/bin/python scripts/bench_service.py --smoke --json out.json
     .venv/bin/python scripts/bench_service.py --multiplex --steps 500,1000,1200
 
-``--multiplex`` carries each step's conversations over one ``ConverseMany`` stream per channel
+``--multiplex`` carries each step's conversations over one ``FeedMany`` stream per channel
 (``midstream bench --multiplex``): one frame per stream every ``--tick-ms`` with every word due,
 latency timed from each word's scheduled time; the transport baseline is then one
 ``DescribeModels`` call per frame, timed the same way. ``--spin-idle-cores`` starts each server
@@ -229,7 +229,7 @@ def main() -> int:
     parser.add_argument("--p99-ms", type=float, default=50.0, help="latency budget (p99)")
     parser.add_argument("--channels", type=int, default=4)
     parser.add_argument("--multiplex", action="store_true",
-                        help="carry the conversations over one ConverseMany stream per channel "
+                        help="carry the conversations over one FeedMany stream per channel "
                              f"(default steps {','.join(map(str, _MULTIPLEX_STEPS))})")
     parser.add_argument("--tick-ms", type=float, default=1000 * DEFAULT_TICK_S,
                         help="with --multiplex: milliseconds between two frames of a stream")
@@ -275,7 +275,7 @@ def main() -> int:
     print(f"models: {models_note}")
     print(f"words: {source}")
     if args.multiplex:
-        print(f"transport: {args.channels} ConverseMany streams, a frame every "
+        print(f"transport: {args.channels} FeedMany streams, a frame every "
               f"{args.tick_ms:g} ms each; latency from each word's scheduled time")
     if args.spin_idle_cores:
         print("server: midstream serve --spin-idle-cores (its core kept from idling)")

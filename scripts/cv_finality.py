@@ -49,7 +49,7 @@ def _shipped_config() -> WordTrainingConfig:
 def _train_fold(k: int, work: Path) -> None:
     folds = _folds(list(read_corpus(corpora_root() / "swda", split="train")), _FOLDS, None, 0)
     train = list(itertools.chain.from_iterable(f for j, f in enumerate(folds) if j != k))
-    save_artifact(train_word_artifact(train, _shipped_config()), work / f"fold{k}.msm")
+    save_artifact(train_word_artifact(train, _shipped_config()), work / f"fold{k}.tagger")
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -62,7 +62,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.train_fold is not None:
         _train_fold(args.train_fold, args.work)
         return 0
-    missing = [k for k in range(_FOLDS) if not (args.work / f"fold{k}.msm").exists()]
+    missing = [k for k in range(_FOLDS) if not (args.work / f"fold{k}.tagger").exists()]
     for batch in (missing[i : i + 2] for i in range(0, len(missing), 2)):  # two cores
         running = [subprocess.Popen([sys.executable, __file__, "--work", str(args.work),
                                      "--train-fold", str(k)]) for k in batch]
@@ -73,7 +73,7 @@ def main(argv: list[str] | None = None) -> int:
     rules += [(f"settled, at most {b} open", DecoderConfig(lag=b)) for b in args.bounds]
     table: dict[str, list[dict[str, float]]] = {name: [] for name, _ in rules}
     for k in range(_FOLDS):
-        model = WordModel.load(args.work / f"fold{k}.msm")
+        model = WordModel.load(args.work / f"fold{k}.tagger")
         for name, config in rules:
             figures = evaluate_words(folds[k], model, config=config)
             table[name].append({key: figures[key] for key in _KEYS})

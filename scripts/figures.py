@@ -94,7 +94,7 @@ def figures(paths: Sequence[Path]) -> Iterator[Figure]:
 
 def model_hashes() -> dict[str, str]:
     return {path.name: hashlib.sha256(path.read_bytes()).hexdigest()
-            for path in sorted(WEIGHTS.glob("*.msm"))}
+            for path in sorted(WEIGHTS.glob("*.tagger"))}
 
 
 def stored(run: str) -> dict[str, object]:

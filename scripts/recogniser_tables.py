@@ -10,7 +10,7 @@ command line is printed above the tables so a model card can quote both.
 Usage::
 
     python scripts/recogniser_tables.py [--corpus DIR] [--rates 0 0.1 0.2] [--seed 0]
-                                        [--model words.msm] [--functions-model f.msm]
+                                        [--model words.tagger] [--functions-model f.tagger]
                                         [--limit N]
 """
 

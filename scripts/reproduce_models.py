@@ -1,6 +1,6 @@
 """Retrain the shipped models from a clean checkout and compare their val figures.
 
-Each shipped ``.msm`` file records the command that trained it. This script re-runs those
+Each shipped ``.tagger`` file records the command that trained it. This script re-runs those
 commands on the corpora here (``--corpora`` or ``$MIDSTREAM_CORPORA`` or ``../shared/corpora``),
 writing to a scratch folder, then evaluates shipped and retrained models on SwDA val (the
 boundary model on MRDA val, the corpus with word times it is trained on) with
@@ -89,7 +89,7 @@ def main() -> int:
     args = parser.parse_args()
     work = args.work or Path(tempfile.mkdtemp(prefix="midstream-reproduce-"))
     work.mkdir(parents=True, exist_ok=True)
-    shipped = sorted(WEIGHTS.glob("*.msm"))
+    shipped = sorted(WEIGHTS.glob("*.tagger"))
     words_shipped = next(m for m in shipped if load_artifact(m).kind == "words")
     failures = 0
     for model in shipped:

@@ -191,7 +191,7 @@ async def run_conversation(stub: pb_grpc.MidstreamStub, number: int, conversatio
                            *, deadline: float, follow: bool, max_words: int | None,
                            window: int, totals: Totals) -> None:
     name = f"#{number} ({conversation.id})"
-    call = stub.Converse()
+    call = stub.Feed()
     await call.write(pb.ClientEvent(open=pb.OpenConversation()))
     welcome = await asyncio.wait_for(call.read(), READ_TIMEOUT_S)
     if not isinstance(welcome, pb.ServerMessage) or not welcome.HasField("welcome"):

@@ -62,7 +62,7 @@ class ServerLimits:
     max_message_bytes: int = 4 * 1024 * 1024
     """Largest gRPC message received or sent."""
     idle_timeout_s: float = 300.0
-    """A ``Converse`` stream (or ``ConverseMany`` channel) silent this long has its conversation
+    """A ``Feed`` stream (or ``FeedMany`` channel) silent this long has its conversation
     finished."""
     ended_retention_s: float = 600.0
     """How long an ended conversation stays for late followers and ``GetRevisions``."""
@@ -71,12 +71,12 @@ class ServerLimits:
     max_transcript_items: int = 50_000
     """Most items in one ``TagTranscript`` request."""
     max_channels_per_stream: int = 1024
-    """Most conversations open at once on one ``ConverseMany`` stream."""
+    """Most conversations open at once on one ``FeedMany`` stream."""
     max_events_per_frame: int = 1024
-    """Most channel events in one ``ConverseMany`` request frame."""
+    """Most channel events in one ``FeedMany`` request frame."""
     max_streams_without_conversation: int = 64
-    """Most ingest streams at once with no conversation open: ``Converse`` before its
-    ``open``, ``ConverseMany`` with no open channel. Each ends after ``idle_timeout_s``."""
+    """Most ingest streams at once with no conversation open: ``Feed`` before its
+    ``open``, ``FeedMany`` with no open channel. Each ends after ``idle_timeout_s``."""
 
     def __post_init__(self) -> None:
         for name in (

@@ -1,4 +1,4 @@
-"""What both ingest RPCs (``Converse`` and ``ConverseMany``) share: applying one event to a
+"""What both ingest RPCs (``Feed`` and ``FeedMany``) share: applying one event to a
 session, and telling a caller's cancellation from its half-close.
 
 Generated protobuf types are read here, as in the servicer: this module is part of the edge.

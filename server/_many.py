@@ -1,4 +1,4 @@
-"""``ConverseMany``: many conversations over one stream, one reply frame per request frame.
+"""``FeedMany``: many conversations over one stream, one reply frame per request frame.
 
 A caller carrying hundreds of conversations (a media gateway, a recogniser front end) would
 otherwise send and receive one gRPC message per word per conversation; gRPC's per-message cost
@@ -7,7 +7,7 @@ events of many conversations, each on a caller-numbered *channel*, and the serve
 frame with one reply frame holding every message it produced (split only to stay within
 ``max_message_bytes``), so messages per second follow frames, not words.
 
-Every channel follows the ``Converse`` protocol exactly: the same event checks
+Every channel follows the ``Feed`` protocol exactly: the same event checks
 (:func:`~midstream.server._ingest.apply_event`), the same sessions in the same registry (so
 ``Follow``, ``ListConversations`` and ``GetRevisions`` see them like any other), the same
 replies. What differs is what a refusal ends:
@@ -28,7 +28,7 @@ however many conversations a long-lived stream carries.
 
 Idle channels are found by a sweep, not a timer per channel or per word: the stream keeps a clock
 that runs only while the server waits for the caller's next frame (time spent on events or
-blocked writing replies never counts against the caller, as with ``Converse``), and a channel
+blocked writing replies never counts against the caller, as with ``Feed``), and a channel
 whose last event is ``idle_timeout_s`` of that clock behind is finished with ``IDLE_TIMEOUT``.
 """
 
@@ -80,7 +80,7 @@ class _Channel:
 
 
 class ManyStream:
-    """The server side of one ``ConverseMany`` call. Use from the server's event loop only."""
+    """The server side of one ``FeedMany`` call. Use from the server's event loop only."""
 
     __slots__ = ("_channels", "_context", "_highest", "_out", "_owner", "_servicer", "_waited")
 
@@ -106,7 +106,7 @@ class ManyStream:
         if stop.done():
             await servicer.refuse_stream(context, UnavailableError("the server is shutting down"))
         # The call's end finishes every open channel even if grpc never resumes nor closes
-        # this generator (see MidstreamServicer.Converse).
+        # this generator (see MidstreamServicer.Feed).
         # (The stubs name a class where grpc takes any callable of the context.)
         context.add_done_callback(
             lambda _: self._abandon(pb.END_REASON_CALLER_VANISHED))  # type: ignore[arg-type]
@@ -210,7 +210,7 @@ class ManyStream:
             elif item.event.WhichOneof("event") == "open" and item.event.open.resume:
                 # Continuing needs an await (the shared log) inside a frame's one step.
                 self._refuse(number, ProtocolStateError(
-                    "open.resume is taken on Converse only; continue the conversation there"))
+                    "open.resume is taken on Feed only; continue the conversation there"))
             elif item.event.WhichOneof("event") == "open":
                 self._open(number, item.event.open.conversation_id)
             elif number <= self._highest:
@@ -254,7 +254,7 @@ class ManyStream:
         channel.sent = session.seq
 
     def _event(self, channel: _Channel, event: pb.ClientEvent, received: float) -> None:
-        """Apply one event to an open channel's conversation, as ``Converse`` would."""
+        """Apply one event to an open channel's conversation, as ``Feed`` would."""
         servicer, session = self._servicer, channel.session
         channel.last_event = self._waited
         try:

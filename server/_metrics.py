@@ -3,7 +3,7 @@
 Names and meanings (documented in ``docs/service.md``):
 
 ``midstream_words_total``
-    Words taken in by ``Converse`` (rate it for words per second).
+    Words taken in by ``Feed`` (rate it for words per second).
 ``midstream_update_latency_seconds``
     From reading an event off the stream to having its update built and queued for everyone.
 ``midstream_loop_lag_seconds``
@@ -125,7 +125,7 @@ class WordTally(Collector):
         return self.collect()
 
     def collect(self) -> Iterator[CounterMetricFamily | HistogramMetricFamily]:
-        yield CounterMetricFamily("midstream_words", "Words taken in by Converse.",
+        yield CounterMetricFamily("midstream_words", "Words taken in by Feed.",
                                   value=self.words)
         yield self._latency.family(
             "midstream_update_latency_seconds",

@@ -5,7 +5,7 @@ Generated protobuf types stop here: requests are converted to domain types with
 engine sees them. Every Midstream error an RPC raises is reported through one function
 (:func:`midstream.server._status.status_code`).
 
-A ``Converse`` stream is one RPC, so a refused event cannot be answered and then carried on
+A ``Feed`` stream is one RPC, so a refused event cannot be answered and then carried on
 from: the caller gets every update published up to the bad event, then the error status; the
 conversation is finished (all words final) and followers get the final update and ``ended``
 with ``END_REASON_REJECTED`` (see ``docs/service.md``).
@@ -77,7 +77,7 @@ _STOPPED = _Stopped()
 
 
 class _EventReader:
-    """Reads a Converse stream's events until a stop signal or an idle timeout interrupts.
+    """Reads a Feed stream's events until a stop signal or an idle timeout interrupts.
 
     Every word arrives as one event, so this runs thousands of times a second: rather than a
     wait with a timeout per read (a timer, callbacks and bookkeeping each time), one watchdog
@@ -273,13 +273,13 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             pass
         await self._fail(context, error)
 
-    # --- Converse ------------------------------------------------------------------------
+    # --- Feed ------------------------------------------------------------------------
 
     def _reader(self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
                 stop: asyncio.Future[None]) -> _EventReader:
         return _EventReader(context, stop, self._limits.idle_timeout_s)
 
-    async def Converse(  # noqa: N802 - the generated servicer's name
+    async def Feed(  # noqa: N802 - the generated servicer's name
         self, request_iterator: AsyncIterator[pb.ClientEvent],
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
@@ -324,7 +324,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             yield pb.ServerMessage(welcome=pb.Welcome(
                 conversation_id=session.id, next_seq=session.seq + 1, epoch=session.epoch,
                 events_logged=logged))
-            async for message in self._converse(session, context):
+            async for message in self._feed(session, context):
                 yield message
         finally:
             self._call_ended(session)
@@ -369,7 +369,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             return self.replica
         return None
 
-    async def _converse(
+    async def _feed(
         self, session: Session,
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
     ) -> AsyncIterator[pb.ServerMessage]:
@@ -439,7 +439,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                 f"event {event.WhichOneof('event')!r} after 'close': conversation "
                 f"{session.id} has ended"))
 
-    async def ConverseMany(  # noqa: N802
+    async def FeedMany(  # noqa: N802
         self, request_iterator: AsyncIterator[pb.ClientFrame],
         context: grpc.aio.ServicerContext[pb.ClientFrame, pb.ServerFrame],
     ) -> AsyncIterator[pb.ServerFrame]:

@@ -41,10 +41,10 @@ def _train_tiny(swda: Path, folder: Path) -> Path:
         if len(conversations) == 15:
             break
     save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=40)),
-                  folder / "words.msm")
+                  folder / "words.tagger")
     save_artifact(train_function_model(
         conversations, FunctionTrainingOptions(scheme="coarse", max_iterations=40)),
-        folder / "functions.msm")
+        folder / "functions.tagger")
     return folder
 
 
@@ -56,7 +56,7 @@ def models_dir_fixture(request: pytest.FixtureRequest,
     The shipped folder counts once it holds both kinds a server needs (a word model and an
     utterance-function model); a broken shipped model fails under ``CI=true``.
     """
-    if any(WEIGHTS.glob("*.msm")):
+    if any(WEIGHTS.glob("*.tagger")):
         try:
             ModelBundle.load_directory(WEIGHTS)
             return WEIGHTS
@@ -66,7 +66,7 @@ def models_dir_fixture(request: pytest.FixtureRequest,
     # Every module that imports this fixture gets its own copy of it, so the session's models
     # are kept in one folder of the session's temporary directory and trained only once.
     folder = tmp_path_factory.getbasetemp() / "tiny-models"
-    if (folder / "functions.msm").exists():
+    if (folder / "functions.tagger").exists():
         return folder
     swda: Path = request.getfixturevalue("swda_dir")
     folder.mkdir(exist_ok=True)

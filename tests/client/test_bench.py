@@ -70,7 +70,7 @@ def _check_load(summary: dict[str, Any], *, local: bool) -> None:
     assert summary["opened"] == summary["conversations"]
     assert summary["error_count"] == 0, summary["errors"]
     assert summary["words_sent"] > 0
-    # Every word sent gets a hypothesis naming it (the Converse contract in midstream.proto).
+    # Every word sent gets a hypothesis naming it (the Feed contract in midstream.proto).
     assert summary["words_answered"] == summary["words_sent"]
     assert summary["latency_ms"]["p50"] <= summary["latency_ms"]["p99"] \
         <= summary["latency_ms"]["max"]
@@ -96,7 +96,7 @@ def test_bench_against_a_running_server(served: Served, swda_dir: Path,
                                         capsys: pytest.CaptureFixture[str]) -> None:
     summary = _bench(["--target", served.target, "--corpus", str(swda_dir)], capsys)
     _check_load(summary, local=False)
-    assert summary["workload"] == "converse"
+    assert summary["workload"] == "feed"
     assert summary["conversations"] == 4
 
 
@@ -134,7 +134,7 @@ def test_bench_multiplexed_streams(served: Served, swda_dir: Path,
                       "-n", "6", "--channels", "2", "--tick-ms", "20"], capsys)
     # --smoke keeps at most 4 conversations and one channel.
     _check_load(summary, local=False)
-    assert summary["workload"] == "converse" and summary["multiplex"] is True
+    assert summary["workload"] == "feed" and summary["multiplex"] is True
     assert summary["tick_ms"] == 20.0 and summary["channels"] == 1
     # Every conversation sent words, in frames: 4 x 3 words/s x 2 s, give or take a phase.
     assert summary["words_sent"] >= 4 * 5
@@ -386,7 +386,7 @@ def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
     assert done.returncode == 0, done.stderr
     text = page.read_text(encoding="utf-8")
     for heading in ("## Machine", "## Headline", "## Live conversations per server core",
-                    "## Live conversations per server core, multiplexed (ConverseMany)",
+                    "## Live conversations per server core, multiplexed (FeedMany)",
                     "## The same, server core kept from idling "
                     "(`midstream serve --spin-idle-cores`)",
                     "## Memory per idle live conversation", "## Word decoder alone",

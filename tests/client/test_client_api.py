@@ -47,7 +47,7 @@ pytestmark = pytest.mark.corpus
 
 async def _stream_demo(client: Client, conversation_id: str | None = None
                        ) -> tuple[str, list[ServerEvent]]:
-    async with client.converse(conversation_id) as stream:
+    async with client.feed(conversation_id) as stream:
         for timed in demo_events():
             await stream.send(timed.event)
         await stream.close()
@@ -55,7 +55,7 @@ async def _stream_demo(client: Client, conversation_id: str | None = None
     return stream.conversation_id, events
 
 
-async def test_converse_yields_welcome_updates_in_sequence_then_ended(served: Served) -> None:
+async def test_feed_yields_welcome_updates_in_sequence_then_ended(served: Served) -> None:
     async with Client(served.target) as client:
         conversation_id, events = await _stream_demo(client, "bike-shop-1")
     assert conversation_id == "bike-shop-1"
@@ -88,7 +88,7 @@ async def test_follow_sees_the_callers_sequence_and_resumes_after_a_cut(served: 
     try:
         async with (Client(served.target) as client,
                     Client(f"127.0.0.1:{port}", retry=retry) as follower,
-                    client.converse() as stream):
+                    client.feed() as stream):
             for event in events[:half]:
                 await stream.send(event)
 
@@ -150,7 +150,7 @@ async def test_follow_gives_up_after_bounded_retries_once_its_stream_is_lost(
     seen: list[ServerEvent] = []
     async with (Client(served.target) as client,
                 Client(f"127.0.0.1:{port}", retry=retry) as follower,
-                client.converse() as stream):
+                client.feed() as stream):
         await stream.send_words([AddWord(word_id="w1", word=Word(text="so", speaker="A"))])
         with pytest.raises(UnavailableError, match="stream was lost; gave up after 2 reconnect"):
             async for event in follower.follow(stream.conversation_id):
@@ -203,11 +203,11 @@ async def test_errors_are_midstream_errors(served: Served, tmp_path: Path) -> No
     async with Client(served.target) as client:
         with pytest.raises(NotFoundError, match="nope"):
             await client.revisions("nope")
-        (tmp_path / "broken.msm").write_bytes(b"not a model at all")
+        (tmp_path / "broken.tagger").write_bytes(b"not a model at all")
         with pytest.raises(ModelError):
             await client.reload_models(str(tmp_path))
         with pytest.raises(EventError):
-            async with client.converse() as stream:
+            async with client.feed() as stream:
                 await stream.send_words([AddWord(word_id="a", word=Word(text="hi",
                                                                         speaker="A"))])
                 await stream.withdraw_word("never-sent")

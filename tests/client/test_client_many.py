@@ -1,4 +1,4 @@
-"""Client.converse_many: many conversations over one stream, through the client library."""
+"""Client.feed_many: many conversations over one stream, through the client library."""
 
 from __future__ import annotations
 
@@ -43,15 +43,15 @@ async def _by_channel(mux: MultiplexedStream) -> dict[int, list[Received]]:
     return out
 
 
-async def test_each_channel_yields_what_converse_yields(served: Served) -> None:
+async def test_each_channel_yields_what_feed_yields(served: Served) -> None:
     events = [timed.event for timed in demo_events()]
     async with Client(served.target) as client:
-        async with client.converse() as stream:
+        async with client.feed() as stream:
             for event in events:
                 await stream.send(event)
             await stream.close()
             expected = [e async for e in stream]
-        async with client.converse_many() as mux:
+        async with client.feed_many() as mux:
             first, second = mux.open(), mux.open("many-bike-2")
             assert (first, second) == (1, 2)
             await mux.flush()
@@ -75,7 +75,7 @@ async def test_each_channel_yields_what_converse_yields(served: Served) -> None:
 
 async def test_a_refused_event_arrives_as_an_error_on_its_channel(served: Served) -> None:
     word = Word(text="so", speaker="A")
-    async with Client(served.target) as client, client.converse_many() as mux:
+    async with Client(served.target) as client, client.feed_many() as mux:
         good, bad = mux.open(), mux.open()
         await mux.flush()
         mux.send_words(good, [AddWord(word_id="w1", word=word)])
@@ -99,8 +99,8 @@ async def test_a_refused_event_arrives_as_an_error_on_its_channel(served: Served
 async def test_queue_bound_and_a_refused_frame(served: Served) -> None:
     async with Client(served.target) as client:
         with pytest.raises(InputError, match="frame_events"):
-            client.converse_many(frame_events=0)
-        async with client.converse_many(frame_events=2) as mux:
+            client.feed_many(frame_events=0)
+        async with client.feed_many(frame_events=2) as mux:
             mux.open()
             mux.open()
             with pytest.raises(InputError, match="flush"):
@@ -108,7 +108,7 @@ async def test_queue_bound_and_a_refused_frame(served: Served) -> None:
             await mux.flush()
         # Over the server's max_events_per_frame (1024 by default): the stream ends with
         # INVALID_ARGUMENT naming the limit, raised while reading.
-        async with client.converse_many(frame_events=2000) as mux:
+        async with client.feed_many(frame_events=2000) as mux:
             channel = mux.open()
             for index in range(1100):
                 mux.send_words(channel, [AddWord(word_id=f"w{index}",
@@ -123,9 +123,9 @@ def test_the_sync_wrapper_carries_many_conversations(served: Served) -> None:
     word = Word(text="so", speaker="A")
     with SyncClient(served.target) as client:
         with pytest.raises(InputError, match="buffer"):
-            client.converse_many(buffer=0)
+            client.feed_many(buffer=0)
         # A small buffer: the reader stops at two unread replies and resumes as they are taken.
-        with client.converse_many(buffer=2) as mux:
+        with client.feed_many(buffer=2) as mux:
             first, second, bad = mux.open(), mux.open("sync-many-2"), mux.open()
             mux.flush()
             for event in events:
@@ -155,7 +155,7 @@ def test_the_sync_wrapper_carries_many_conversations(served: Served) -> None:
 
 def test_leaving_the_sync_wrapper_early_discards_unread_replies(served: Served) -> None:
     with SyncClient(served.target) as client:
-        with client.converse_many(buffer=1) as mux:
+        with client.feed_many(buffer=1) as mux:
             channel = mux.open()
             mux.send_words(channel, [AddWord(word_id=f"w{i}", word=Word(text="so", speaker="A"))
                                      for i in range(20)])
@@ -164,19 +164,19 @@ def test_leaving_the_sync_wrapper_early_discards_unread_replies(served: Served) 
         assert client.describe_models()
 
 
-def test_the_sync_conversation_yields_what_converse_yields(served: Served) -> None:
+def test_the_sync_conversation_yields_what_feed_yields(served: Served) -> None:
     events = [timed.event for timed in demo_events()]
     with SyncClient(served.target) as client:
         with pytest.raises(InputError, match="buffer"):
-            client.converse(buffer=0)
+            client.feed(buffer=0)
         # A buffer of two: the reader waits for the caller, which reads only at the end.
-        with client.converse("sync-one", buffer=2) as conversation:
+        with client.feed("sync-one", buffer=2) as conversation:
             assert conversation.conversation_id == "sync-one"
             for event in events:
                 conversation.send(event)
             conversation.close()
             got: list[Received] = list(conversation.events())
-        with client.converse("sync-two") as conversation:
+        with client.feed("sync-two") as conversation:
             conversation.send(events[0])
             # Welcome and one update, then a quiet spell ends the iteration; the stream stays
             # open and the block closes it, discarding what follows.

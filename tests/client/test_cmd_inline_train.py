@@ -42,8 +42,8 @@ def test_an_inline_transcript_trains_and_evaluates_a_model(
     stats = json.loads(capsys.readouterr().out)
     assert stats["conversations"] == 6
 
-    words_model = tmp_path / "words.msm"
-    functions_model = tmp_path / "functions.msm"
+    words_model = tmp_path / "words.tagger"
+    functions_model = tmp_path / "functions.tagger"
     assert main(["train", "words", str(transcript), "--min-freq", "1", "--max-iterations", "30",
                  "--out", str(words_model)]) == 0
     assert main(["train", "functions", str(transcript), "--scheme", "coarse",

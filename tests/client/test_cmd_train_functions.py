@@ -27,7 +27,7 @@ def transcripts(tmp_path: Path) -> Path:
 
 def test_trains_a_coarse_model_users_can_load(transcripts: Path, tmp_path: Path,
                                               capsys: pytest.CaptureFixture[str]) -> None:
-    out = tmp_path / "functions.msm"
+    out = tmp_path / "functions.tagger"
     code = main(["train", "functions", str(transcripts), "--scheme", "coarse",
                  "--min-freq", "1", "--max-iterations", "40", "--augment", "0.5",
                  "--out", str(out)])
@@ -43,7 +43,7 @@ def test_trains_a_coarse_model_users_can_load(transcripts: Path, tmp_path: Path,
 
 def test_several_weights_are_chosen_by_cross_validation(
         transcripts: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    out = tmp_path / "functions.msm"
+    out = tmp_path / "functions.tagger"
     code = main(["train", "functions", str(transcripts), "--scheme", "swbd42",
                  "--c1", "0.01", "5.0", "--min-freq", "1", "--max-iterations", "30",
                  "--cv-folds", "2", "--cv-subset", "0", "--out", str(out)])
@@ -57,7 +57,7 @@ def test_several_weights_are_chosen_by_cross_validation(
 def test_the_opening_feature_is_compared_by_cross_validation_and_stored(
         transcripts: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # The invented transcripts open some utterances with a filler, so the feature has data.
-    out = tmp_path / "functions.msm"
+    out = tmp_path / "functions.tagger"
     code = main(["train", "functions", str(transcripts), "--scheme", "coarse",
                  "--partner-features", "--opening-features", "off", "on", "--min-freq", "1",
                  "--max-iterations", "30", "--cv-folds", "2", "--cv-subset", "0",
@@ -85,6 +85,6 @@ def test_swbd42_on_other_labels_is_a_one_line_error(
     with path.open("w", encoding="utf-8") as stream:
         write_jsonl(odd, stream)
     code = main(["train", "functions", str(path), "--scheme", "swbd42",
-                 "--out", str(tmp_path / "x.msm")])
+                 "--out", str(tmp_path / "x.tagger")])
     assert code == 1
     assert "instruct" in capsys.readouterr().err

@@ -28,7 +28,7 @@ def transcripts(tmp_path: Path) -> Path:
 
 def test_train_then_evaluate(transcripts: Path, tmp_path: Path,
                              capsys: pytest.CaptureFixture[str]) -> None:
-    out = tmp_path / "words.msm"
+    out = tmp_path / "words.tagger"
     code = main(["train", "words", str(transcripts), "--min-freq", "1",
                  "--max-iterations", "40", "--out", str(out)])
     assert code == 0
@@ -58,7 +58,7 @@ def test_missing_out_is_a_clear_error(transcripts: Path,
                                       capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["train", "words", str(transcripts)]) == 1
     assert "--out is required" in capsys.readouterr().err
-    assert main(["train", "words", str(transcripts), "--right", "-1", "--out", "x.msm"]) == 1
+    assert main(["train", "words", str(transcripts), "--right", "-1", "--out", "x.tagger"]) == 1
     assert "--right must be >= 0, got -1" in capsys.readouterr().err
 
 
@@ -75,7 +75,7 @@ def test_evaluate_functions_only_scores_the_shipped_coarse_model(
 
 def test_evaluate_as_recognised_with_word_errors(transcripts: Path, tmp_path: Path,
                                                  capsys: pytest.CaptureFixture[str]) -> None:
-    out = tmp_path / "words.msm"
+    out = tmp_path / "words.tagger"
     assert main(["train", "words", str(transcripts), "--min-freq", "1",
                  "--max-iterations", "30", "--out", str(out)]) == 0
     capsys.readouterr()

@@ -82,7 +82,7 @@ def transcripts(tmp_path: Path) -> Path:
 
 def test_evaluate_prints_tables_holding_every_figure_json_gives(
         transcripts: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    model = tmp_path / "words.msm"
+    model = tmp_path / "words.tagger"
     assert main(["train", "words", str(transcripts), "--min-freq", "1",
                  "--max-iterations", "30", "--out", str(model)]) == 0
     capsys.readouterr()

@@ -43,7 +43,7 @@ def test_codes_map_to_the_matching_kind(code: grpc.StatusCode, kind: type[Except
 
 def test_failed_precondition_is_a_model_error_whatever_the_method() -> None:
     # One status per meaning: the client needs no method to tell a model failure apart.
-    for method in ("ReloadModels", "Converse", ""):
+    for method in ("ReloadModels", "Feed", ""):
         error = error_from_status(grpc.StatusCode.FAILED_PRECONDITION, "corrupt model",
                                   target="t", method=method)
         assert type(error) is ModelError

@@ -78,7 +78,7 @@ def test_tag_json_and_a_follower_see_each_words_text_and_times(
 
 def test_a_replaced_words_new_text_reaches_the_caller(served: Served) -> None:
     async def run() -> list[HypothesisUpdate]:
-        async with Client(served.target) as client, client.converse() as stream:
+        async with Client(served.target) as client, client.feed() as stream:
             await stream.send_words([
                 AddWord(word_id="a1", word=Word(text="I", speaker="A", start=0.0, end=0.2)),
                 AddWord(word_id="a2", word=Word(text="want", speaker="A", start=0.3, end=0.5)),
@@ -101,7 +101,7 @@ def test_a_live_follower_sees_the_callers_word_states(served: Served) -> None:
 
     async def run() -> tuple[list[HypothesisUpdate], list[HypothesisUpdate]]:
         async with Client(served.target) as caller, Client(served.target) as other:
-            async with caller.converse() as stream:
+            async with caller.feed() as stream:
                 follower = asyncio.create_task(_follow_updates(other, stream.conversation_id))
                 for word in words:
                     await stream.send_words([word])

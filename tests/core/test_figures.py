@@ -46,7 +46,7 @@ def test_check_catches_a_wrong_number_and_changed_models(
     store.mkdir()
     weights = tmp_path / "weights"
     weights.mkdir()
-    (weights / "a.msm").write_bytes(b"model")
+    (weights / "a.tagger").write_bytes(b"model")
     monkeypatch.setattr(figures, "REPO", tmp_path)
     monkeypatch.setattr(figures, "STORE", store)
     monkeypatch.setattr(figures, "WEIGHTS", weights)
@@ -57,7 +57,7 @@ def test_check_catches_a_wrong_number_and_changed_models(
     record["figures"] = {"some.key": 0.8051}
     (store / "swda-val.json").write_text(json.dumps(record), encoding="utf-8")
     assert any("shows 0.80" in line and "gave 0.81" in line for line in figures.problems())
-    (weights / "a.msm").write_bytes(b"retrained")
+    (weights / "a.tagger").write_bytes(b"retrained")
     assert any("models changed" in line for line in figures.problems())
 
 

@@ -1,4 +1,4 @@
-"""The .msm container: compressed payloads, the older raw format, and refused payloads."""
+"""The .tagger container: compressed payloads, the older raw format, and refused payloads."""
 
 from __future__ import annotations
 

@@ -1,4 +1,4 @@
-"""The python-crfsuite adapter and the ``.msm`` container: loading, checks, training."""
+"""The python-crfsuite adapter and the ``.tagger`` container: loading, checks, training."""
 
 from __future__ import annotations
 

@@ -247,15 +247,15 @@ def test_a_coarse_model_beside_the_fine_one_decides_the_function(
         tmp_path: Path) -> None:
     words = train_word_artifact(invented_corpus(20),
                                 WordTrainingConfig(max_iterations=40, min_freq=1))
-    save_artifact(words, tmp_path / "words.msm")
+    save_artifact(words, tmp_path / "words.tagger")
     fine, coarse = tiny_model("swbd42"), tiny_model("coarse", partner=True)
-    save_artifact(fine, tmp_path / "functions-swbd42.msm")
-    save_artifact(coarse, tmp_path / "functions-coarse.msm")
+    save_artifact(fine, tmp_path / "functions-swbd42.tagger")
+    save_artifact(coarse, tmp_path / "functions-coarse.tagger")
     loaded = ModelBundle.load_directory(tmp_path)
     assert loaded.function_tagger.scheme == "swbd42"
     assert loaded.coarse_tagger.scheme == "coarse"
     assert [i.name for i in loaded.describe()] == [
-        "words.msm", "functions-swbd42.msm", "functions-coarse.msm"]
+        "words.tagger", "functions-swbd42.tagger", "functions-coarse.tagger"]
     coarse_tagger = FunctionTagger.from_artifact(coarse)
     fine_tagger = FunctionTagger.from_artifact(fine)
     engine = loaded.new_engine()
@@ -272,5 +272,5 @@ def test_a_coarse_model_beside_the_fine_one_decides_the_function(
         assert utterance.function == coarse_tagger.label_partial(window, view).function
         assert utterance.fine_class == fine_tagger.label_partial(window, view).label
     # Alone, the fine model gives both, as before.
-    (tmp_path / "functions-coarse.msm").unlink()
+    (tmp_path / "functions-coarse.tagger").unlink()
     assert ModelBundle.load_directory(tmp_path).coarse_tagger.scheme == "swbd42"

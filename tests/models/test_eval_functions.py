@@ -93,7 +93,7 @@ def test_short_utterances_count_with_their_end_label(tagger: FunctionTagger) -> 
 @pytest.fixture(scope="module")
 def shipped_val_figures(swda_dir: Path) -> dict[str, float]:
     """The shipped model scored on SwDA validation (gold segmentation, gold cleaning); ~1 min."""
-    tagger = FunctionTagger.load(WEIGHTS / "functions-swbd42.msm")
+    tagger = FunctionTagger.load(WEIGHTS / "functions-swbd42.tagger")
     return evaluate_functions(read_corpus(swda_dir, split="val"), tagger)
 
 

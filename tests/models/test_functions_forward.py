@@ -39,7 +39,7 @@ from midstream.models._functions import (
 )
 from midstream.models._views import UtteranceView
 
-SHIPPED = Path(__file__).resolve().parents[2] / "models" / "weights" / "functions-swbd42.msm"
+SHIPPED = Path(__file__).resolve().parents[2] / "models" / "weights" / "functions-swbd42.tagger"
 
 #: The agreement the contract asks for (crfsuite's own arithmetic repeated: in practice the
 #: values are bit for bit the same).

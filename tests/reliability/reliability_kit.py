@@ -89,7 +89,7 @@ async def start_server_fixture(bundle: ModelBundle) -> AsyncIterator[ServerFacto
 
 async def refusal(stub: pb_grpc.MidstreamStub,
                   events: list[pb.ClientEvent]) -> grpc.aio.AioRpcError:
-    """Send ``events`` on one Converse stream, read everything and return the error status.
+    """Send ``events`` on one Feed stream, read everything and return the error status.
 
     Raises
     ------
@@ -98,7 +98,7 @@ async def refusal(stub: pb_grpc.MidstreamStub,
     """
     try:
         async with asyncio.timeout(WAIT_S):
-            _ = [m async for m in stub.Converse(iter(events))]
+            _ = [m async for m in stub.Feed(iter(events))]
     except grpc.aio.AioRpcError as exc:
         return exc
     raise AssertionError("the stream ended without an error status")

@@ -46,7 +46,7 @@ async def test_server_assigned_ids_are_unguessable(start_server: ServerFactory) 
     running = await start_server()
     ids = []
     for _ in range(200):
-        replies = [m async for m in running.stub.Converse(iter([open_event(), CLOSE]),
+        replies = [m async for m in running.stub.Feed(iter([open_event(), CLOSE]),
                                                          timeout=WAIT_S)]
         ids.append(replies[0].welcome.conversation_id)
     assert len(set(ids)) == len(ids)
@@ -102,7 +102,7 @@ async def test_tls_with_token_guards_follow_and_leaks_no_words(
     credentials = grpc.ssl_channel_credentials(root_certificates=cert.read_bytes())
     caplog.set_level(logging.INFO)  # every logger, server and client library alike
     async with Client(target, tls=True, root_certificates=cert.read_bytes(),
-                      token="t0k3n") as client, client.converse() as stream:
+                      token="t0k3n") as client, client.feed() as stream:
         conversation = stream.conversation_id
         follower = asyncio.create_task(_follow_all(client, conversation))
         await asyncio.sleep(0.1)

@@ -45,7 +45,7 @@ _FIRST = words_event(spoken("w1", "so", start=0.0), spoken("w2", "we", start=0.5
                      spoken("w3", "went", start=1.0))
 _TURN_END = pb.ClientEvent(hint=pb.SpeakerHint(speaker="A", kind=pb.HINT_KIND_TURN_END))
 
-CONVERSE_ROWS: list[tuple[str, list[pb.ClientEvent], grpc.StatusCode, str]] = [
+FEED_ROWS: list[tuple[str, list[pb.ClientEvent], grpc.StatusCode, str]] = [
     ("a 10 KB word", [words_event(spoken("w1", "a" * 10_240))], INVALID,
      "field 'text' of word 'w1' is 10240 characters long; limit max_word_chars is 100"),
     ("format and separator characters only",
@@ -59,9 +59,9 @@ CONVERSE_ROWS: list[tuple[str, list[pb.ClientEvent], grpc.StatusCode, str]] = [
 ]
 
 
-@pytest.mark.parametrize(("events", "code", "message"), [r[1:] for r in CONVERSE_ROWS],
-                         ids=[r[0] for r in CONVERSE_ROWS])
-async def test_converse_refusal(running: Running, events: list[pb.ClientEvent],
+@pytest.mark.parametrize(("events", "code", "message"), [r[1:] for r in FEED_ROWS],
+                         ids=[r[0] for r in FEED_ROWS])
+async def test_feed_refusal(running: Running, events: list[pb.ClientEvent],
                                 code: grpc.StatusCode, message: str) -> None:
     error = await refusal(running.stub, [open_event(), *events])
     assert error.code() == code
@@ -78,7 +78,7 @@ async def test_replacing_a_final_word_names_its_finality(running: Running) -> No
 async def test_reusing_an_ended_conversation_id_is_already_exists(running: Running) -> None:
     # "Words after the end" on a new stream: the id stays taken while the ended conversation is
     # kept for late followers, so nothing can be appended to it.
-    replies = [m async for m in running.stub.Converse(iter([open_event("call-7"), _FIRST, CLOSE]),
+    replies = [m async for m in running.stub.Feed(iter([open_event("call-7"), _FIRST, CLOSE]),
                                                      timeout=WAIT_S)]
     assert replies[-1].ended.reason == pb.END_REASON_CLOSED
     error = await refusal(running.stub, [open_event("call-7"), _FIRST])
@@ -100,9 +100,9 @@ async def test_unknown_conversation_on_revisions_is_not_found(running: Running) 
 def _model_folder(models_dir: Path, target: Path) -> tuple[Path, Path]:
     """Copy the serving models into ``target``; return (word model, function model) paths."""
     target.mkdir()
-    by_kind = {load_artifact(p).kind: p for p in sorted(models_dir.glob("*.msm"))}
-    words = shutil.copy(by_kind["words"], target / "words.msm")
-    functions = shutil.copy(by_kind["utterance_functions"], target / "functions.msm")
+    by_kind = {load_artifact(p).kind: p for p in sorted(models_dir.glob("*.tagger"))}
+    words = shutil.copy(by_kind["words"], target / "words.tagger")
+    functions = shutil.copy(by_kind["utterance_functions"], target / "functions.tagger")
     return Path(words), Path(functions)
 
 
@@ -155,7 +155,7 @@ async def test_model_of_the_wrong_kind_on_reload(running: Running, models_dir: P
     shutil.copy(functions, words)
     error = await _reload_refused(running, tmp_path / "kind")
     assert error.code() == PRECONDITION
-    assert "expected exactly one word model (.msm of kind 'words'), found 0" \
+    assert "expected exactly one word model (.tagger of kind 'words'), found 0" \
         in (error.details() or "")
 
 

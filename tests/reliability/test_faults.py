@@ -2,7 +2,7 @@
 
 Each test injects one fault into a real server over real gRPC and checks that nobody loses an
 update silently, nobody hangs (every wait has a deadline) and the ingesting caller keeps going.
-The clean endings of a Converse stream (cancel, half-close, idle, shutdown) are covered by
+The clean endings of a Feed stream (cancel, half-close, idle, shutdown) are covered by
 ``tests/server/test_lifecycle.py``; these tests add faults from outside the process and load.
 
 Two channel options make HTTP/2 flow control small and fixed so that "stops reading" reaches
@@ -56,7 +56,7 @@ def _word(i: int) -> pb.ClientEvent:
 
 async def _open(stub: pb_grpc.MidstreamStub,
                 ) -> tuple[grpc.aio.StreamStreamCall[pb.ClientEvent, pb.ServerMessage], str]:
-    call = stub.Converse()
+    call = stub.Feed()
     await call.write(open_event())
     welcome = await asyncio.wait_for(call.read(), WAIT_S)
     return call, str(welcome.welcome.conversation_id)
@@ -79,7 +79,7 @@ async def _drain(stream: grpc.aio.UnaryStreamCall[pb.FollowRequest, pb.ServerMes
 
 async def _rest(call: grpc.aio.StreamStreamCall[pb.ClientEvent, pb.ServerMessage],
                 ) -> list[pb.ServerMessage]:
-    """Every message left on a Converse call driven with read/write, until it ends."""
+    """Every message left on a Feed call driven with read/write, until it ends."""
     messages = []
     async with asyncio.timeout(WAIT_S):
         while isinstance(message := await call.read(), pb.ServerMessage):
@@ -168,7 +168,7 @@ import asyncio, sys, grpc
 from midstream.wire import midstream_pb2 as pb, midstream_pb2_grpc as pb_grpc
 async def main():
     channel = grpc.aio.insecure_channel(sys.argv[1])
-    call = pb_grpc.MidstreamStub(channel).Converse()
+    call = pb_grpc.MidstreamStub(channel).Feed()
     await call.write(pb.ClientEvent(open=pb.OpenConversation()))
     welcome = await call.read()
     for i, text in enumerate(["so", "we", "went"]):
@@ -269,7 +269,7 @@ async def test_a_follower_is_never_spliced_into_a_new_conversation_reusing_the_i
     # epoch can tell the two apart: the follower gets a gap notice and the new state.
     first = await start_server(limits=ServerLimits(idle_timeout_s=30.0))
     port = first.server.port
-    call = first.stub.Converse()
+    call = first.stub.Feed()
     await call.write(open_event("call-7"))
     old_epoch = (await asyncio.wait_for(call.read(), WAIT_S)).welcome.epoch
     follower = first.stub.Follow(pb.FollowRequest(conversation_id="call-7", from_seq=1))
@@ -279,7 +279,7 @@ async def test_a_follower_is_never_spliced_into_a_new_conversation_reusing_the_i
     await first.server.stop(0)
 
     second = await start_server(port=port, limits=ServerLimits(idle_timeout_s=30.0))
-    call = second.stub.Converse()
+    call = second.stub.Feed()
     await call.write(open_event("call-7"))
     new_epoch = (await asyncio.wait_for(call.read(), WAIT_S)).welcome.epoch
     assert new_epoch != old_epoch
@@ -371,7 +371,7 @@ async def test_failed_reload_does_not_disturb_a_live_stream(
     updates = [await _send(call, _word(i)) for i in range(5)]
     broken = tmp_path / "broken"
     broken.mkdir()
-    for model in models_dir.glob("*.msm"):
+    for model in models_dir.glob("*.tagger"):
         data = model.read_bytes()
         (broken / model.name).write_bytes(data[: len(data) - 100])
     before = await running.stub.DescribeModels(pb.DescribeModelsRequest(), timeout=WAIT_S)
@@ -392,7 +392,7 @@ async def test_failed_reload_does_not_disturb_a_live_stream(
     closing = await _rest(call)
     assert closing[-1].ended.reason == pb.END_REASON_CLOSED
     assert closing[0].update.seq == updates[-1].seq + 1
-    replies = [m async for m in running.stub.Converse(
+    replies = [m async for m in running.stub.Feed(
         iter([open_event(), _word(0), CLOSE]), timeout=WAIT_S)]
     assert replies[-1].ended.reason == pb.END_REASON_CLOSED
     assert conversation != replies[0].welcome.conversation_id

@@ -1,6 +1,6 @@
 """Random event sequences against the servicer over real gRPC.
 
-Each Hypothesis example is one Converse stream (mostly well-formed, some events malformed or out
+Each Hypothesis example is one Feed stream (mostly well-formed, some events malformed or out
 of place) sent with a deadline to a real server, followed by a late ``Follow`` of the same
 conversation from sequence number 1. Whatever the events, the server must:
 
@@ -110,11 +110,11 @@ def _events(draw: st.DrawFn) -> list[pb.ClientEvent]:
     return events
 
 
-def _converse(stub: pb_grpc.MidstreamStub, events: list[pb.ClientEvent],
+def _feed(stub: pb_grpc.MidstreamStub, events: list[pb.ClientEvent],
               ) -> tuple[list[pb.ServerMessage], grpc.StatusCode, str]:
     messages: list[pb.ServerMessage] = []
     try:
-        for message in stub.Converse(iter([open_event(), *events]), timeout=WAIT_S):
+        for message in stub.Feed(iter([open_event(), *events]), timeout=WAIT_S):
             messages.append(message)
     except grpc.RpcError as error:
         return messages, error.code(), error.details() or ""
@@ -158,7 +158,7 @@ def stub_fixture(bundle: ModelBundle) -> Iterator[pb_grpc.MidstreamStub]:
 def test_random_streams_over_grpc_keep_every_promise(stub: pb_grpc.MidstreamStub,
                                                       data: Any) -> None:
     events = data.draw(_events())
-    messages, code, details = _converse(stub, events)
+    messages, code, details = _feed(stub, events)
     event(f"status {code.name}")  # --hypothesis-show-statistics shows the mix
     assert code == grpc.StatusCode.OK or code in _INPUT_STATUSES, (code, details)
     assert code == grpc.StatusCode.OK or details, "a refusal must say what was wrong"

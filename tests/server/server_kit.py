@@ -54,9 +54,9 @@ from midstream.models._train_words import WordTrainingConfig, train_word_artifac
 swda, out = Path(sys.argv[1]), Path(sys.argv[2])
 conversations = list(itertools.islice(read_corpus(swda, split="train"), 8))
 save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=25)),
-              out / "words.msm")
+              out / "words.tagger")
 save_artifact(train_function_model(conversations, FunctionTrainingOptions(max_iterations=25)),
-              out / "functions.msm")
+              out / "functions.tagger")
 """
 
 _MODELS: list[Path] = []  # once per session, whichever test module asks first
@@ -141,11 +141,11 @@ CLOSE = pb.ClientEvent(close=pb.CloseConversation())
 
 
 class Caller:
-    """The ingesting side of one ``Converse`` stream, driven event by event."""
+    """The ingesting side of one ``Feed`` stream, driven event by event."""
 
     def __init__(self, stub: pb_grpc.MidstreamStub,
                  metadata: tuple[tuple[str, str], ...] = ()) -> None:
-        self.call = stub.Converse(metadata=metadata)
+        self.call = stub.Feed(metadata=metadata)
         self.updates: list[pb.Update] = []
         self.epoch = 0  # the conversation's, from the welcome
 

@@ -82,7 +82,7 @@ async def test_a_ctm_call_is_split_at_its_silences_and_speaker_changes(
     sent = [open_event(), *(words_event(cv.spoken_word_to_wire(w.word_id, w.word))
                             for w in words), CLOSE]
     utterances: dict[str, pb.UtteranceState] = {}
-    async for message in running.stub.Converse(iter(sent)):
+    async for message in running.stub.Feed(iter(sent)):
         if message.WhichOneof("body") == "update":
             for state in message.update.utterances:
                 utterances[state.utterance_id] = state
@@ -124,6 +124,6 @@ async def test_a_tick_with_a_bad_time_is_refused_naming_the_field(running: Runni
                                                                   value: float) -> None:
     events = [open_event(), pb.ClientEvent(tick=pb.TimeTick(time_s=value))]
     with pytest.raises(grpc.aio.AioRpcError) as raised:
-        _ = [m async for m in running.stub.Converse(iter(events))]
+        _ = [m async for m in running.stub.Feed(iter(events))]
     assert raised.value.code() == grpc.StatusCode.INVALID_ARGUMENT
     assert "tick.time_s" in (raised.value.details() or "")

@@ -1,6 +1,6 @@
 """Cancellation, half-close, idle timeout and graceful shutdown: nobody is left hanging.
 
-Whatever way a Converse stream ends, its conversation is finished (every word final) and each
+Whatever way a Feed stream ends, its conversation is finished (every word final) and each
 follower receives the final update and ``ended`` with the reason.
 """
 

@@ -83,14 +83,14 @@ async def test_malformed_event_gets_specific_status(
     running: Running, events: list[pb.ClientEvent], code: grpc.StatusCode, named: str,
 ) -> None:
     with pytest.raises(grpc.aio.AioRpcError) as info:
-        _ = [m async for m in running.stub.Converse(iter([open_event(), *events]))]
+        _ = [m async for m in running.stub.Feed(iter([open_event(), *events]))]
     assert info.value.code() == code
     assert named in (info.value.details() or "")
 
 
 async def test_first_event_must_be_open(running: Running) -> None:
     with pytest.raises(grpc.aio.AioRpcError) as info:
-        _ = [m async for m in running.stub.Converse(iter([_W1]))]
+        _ = [m async for m in running.stub.Feed(iter([_W1]))]
     assert info.value.code() == grpc.StatusCode.INVALID_ARGUMENT
     assert "first event must be 'open'" in (info.value.details() or "")
 
@@ -118,7 +118,7 @@ async def test_capacity_limits_are_resource_exhausted(start_server: ServerFactor
     callers = [Caller(running.stub) for _ in range(2)]
     ids = [await c.open() for c in callers]
     with pytest.raises(grpc.aio.AioRpcError) as info:
-        _ = [m async for m in running.stub.Converse(iter([open_event()]))]
+        _ = [m async for m in running.stub.Feed(iter([open_event()]))]
     assert info.value.code() == grpc.StatusCode.RESOURCE_EXHAUSTED
     assert "max_live_conversations is 2" in (info.value.details() or "")
     first = running.stub.Follow(pb.FollowRequest(conversation_id=ids[0]))
@@ -137,7 +137,7 @@ async def test_oversized_message_is_refused_by_the_transport(start_server: Serve
     running = await start_server(limits=ServerLimits(max_message_bytes=2048))
     batch = words_event(*[spoken(f"w{i}", "word", start=float(i)) for i in range(200)])
     with pytest.raises(grpc.aio.AioRpcError) as info:
-        _ = [m async for m in running.stub.Converse(iter([open_event(), batch]))]
+        _ = [m async for m in running.stub.Feed(iter([open_event(), batch]))]
     assert info.value.code() == grpc.StatusCode.RESOURCE_EXHAUSTED
 
 

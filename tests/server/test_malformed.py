@@ -39,7 +39,7 @@ def _raw_stream(channel: grpc.aio.Channel, method: str) -> Any:
     return channel.stream_stream(f"/midstream.v1.Midstream/{method}",
                                  request_serializer=None,
                                  response_deserializer=pb.ServerMessage.FromString
-                                 if method == "Converse" else pb.ServerFrame.FromString)
+                                 if method == "Feed" else pb.ServerFrame.FromString)
 
 
 def _errors(running: Running) -> float:
@@ -62,7 +62,7 @@ def _loud(caplog: pytest.LogCaptureFixture) -> list[logging.LogRecord]:
 async def test_malformed_event_is_invalid_argument_and_followers_are_told_rejected(
         running: Running, caplog: pytest.LogCaptureFixture, payload: bytes,
         problem: str) -> None:
-    call = _raw_stream(running.channel, "Converse")()
+    call = _raw_stream(running.channel, "Feed")()
     await call.write(open_event().SerializeToString())
     welcome = await call.read()
     conversation = welcome.welcome.conversation_id
@@ -89,7 +89,7 @@ async def test_malformed_event_is_invalid_argument_and_followers_are_told_reject
 
 
 async def test_malformed_first_event_is_invalid_argument(running: Running) -> None:
-    call = _raw_stream(running.channel, "Converse")()
+    call = _raw_stream(running.channel, "Feed")()
     await call.write(_GARBAGE)
     with pytest.raises(grpc.aio.AioRpcError) as caught:
         await call.read()
@@ -100,7 +100,7 @@ async def test_malformed_first_event_is_invalid_argument(running: Running) -> No
 
 async def test_malformed_frame_ends_the_stream_and_rejects_its_channels(
         running: Running, caplog: pytest.LogCaptureFixture) -> None:
-    call = _raw_stream(running.channel, "ConverseMany")()
+    call = _raw_stream(running.channel, "FeedMany")()
     await call.write(pb.ClientFrame(events=[pb.ChannelEvent(
         channel=1, event=open_event("m1"))]).SerializeToString())
     assert (await call.read()).replies[0].message.HasField("welcome")

@@ -50,7 +50,7 @@ async def test_transcript_matches_the_stream_word_for_word(running: Running) -> 
               pb.ClientEvent(hint=cv.hint_to_wire("A", turn_end=True))]
     events += [words_event(w) for w in spoken_words[6:]] + [CLOSE]
     streamed_words, streamed_utterances = _final_by_id(
-        [m async for m in running.stub.Converse(iter(events))])
+        [m async for m in running.stub.Feed(iter(events))])
     assert [w.word_id for w in reply.words] == [f"w{i}" for i in range(len(texts))]
     assert all(w.final for w in reply.words) and all(u.final for u in reply.utterances)
     assert {w.word_id: w for w in reply.words} == streamed_words
@@ -67,7 +67,7 @@ async def test_describe_and_failed_reload_keep_the_models(running: Running,
     assert kinds[2:] in (["boundaries"], ["utterance_functions", "boundaries"])
     assert all(json.loads(m.training_summary_json) for m in before.models)
     assert all(len(m.sha256) == 64 and m.labels for m in before.models)
-    (tmp_path / "words.msm").write_bytes(b"not a model at all")
+    (tmp_path / "words.tagger").write_bytes(b"not a model at all")
     cases = [str(tmp_path), str(tmp_path / "missing")]
     for directory in cases:
         with pytest.raises(grpc.aio.AioRpcError) as info:
@@ -79,7 +79,7 @@ async def test_describe_and_failed_reload_keep_the_models(running: Running,
     assert info.value.code() == grpc.StatusCode.INVALID_ARGUMENT
     assert await running.stub.DescribeModels(pb.DescribeModelsRequest()) == before
     # Still serving conversations with the old models.
-    replies = [m async for m in running.stub.Converse(iter([
+    replies = [m async for m in running.stub.Feed(iter([
         open_event(), words_event(spoken("w1", "hello")), CLOSE]))]
     assert replies[-1].ended.reason == pb.END_REASON_CLOSED
 
@@ -96,11 +96,11 @@ async def test_reload_swaps_models_for_new_conversations_only(start_server: Serv
     reply = await running.stub.ReloadModels(pb.ReloadModelsRequest(directory=str(models_dir)))
     assert running.server.servicer.bundle is not before
     assert reply == await running.stub.DescribeModels(pb.DescribeModelsRequest())
-    assert {m.name for m in reply.models} == {p.name for p in models_dir.glob("*.msm")}
+    assert {m.name for m in reply.models} == {p.name for p in models_dir.glob("*.tagger")}
     # The live conversation keeps its engine and goes on; a new one runs on the new bundle.
     await caller.send(words_event(spoken("w2", "yes", start=1.0)))
     assert (await caller.close()).reason == pb.END_REASON_CLOSED
-    replies = [m async for m in running.stub.Converse(iter([
+    replies = [m async for m in running.stub.Feed(iter([
         open_event(), words_event(spoken("w1", "hello")), CLOSE]))]
     assert replies[-1].ended.reason == pb.END_REASON_CLOSED
 

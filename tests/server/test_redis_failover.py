@@ -74,7 +74,7 @@ async def spawn_fixture(models_dir: Path, redis_server: RedisProcess,
 
 async def _reference(stub: pb_grpc.MidstreamStub, words: list[pb.SpokenWord]) -> list[bytes]:
     """The updates of the words tagged in one uninterrupted conversation (times cleared)."""
-    call = stub.Converse()
+    call = stub.Feed()
     await call.write(pb.ClientEvent(open=pb.OpenConversation()))
     await call.read()
     updates: list[bytes] = []
@@ -120,7 +120,7 @@ async def test_a_conversation_tagged_on_a_is_followed_identically_on_b_also_afte
     a = await spawn()  # type: ignore[misc]
     b = await spawn()  # type: ignore[misc]
     words = call_words()[:30]
-    call = a.stub.Converse()
+    call = a.stub.Feed()
     await call.write(pb.ClientEvent(open=pb.OpenConversation(conversation_id="call-1")))
     await call.read()
     seen: list[pb.Update] = []
@@ -148,7 +148,7 @@ async def test_kill_9_of_the_ingesting_replica_loses_and_repeats_no_word(
     b = await spawn()  # type: ignore[misc]
     words = call_words()[:48]
     reference = await _reference(b.stub, words)
-    call = a.stub.Converse()
+    call = a.stub.Feed()
     await call.write(pb.ClientEvent(open=pb.OpenConversation(conversation_id="call-2")))
     epoch = (await call.read()).welcome.epoch
     await _until_in_log(redis_server.url, "call-2")
@@ -167,7 +167,7 @@ async def test_kill_9_of_the_ingesting_replica_loses_and_repeats_no_word(
     with pytest.raises(grpc.aio.AioRpcError):
         await follow_a
     # The caller continues on B; the welcome says how many of its events the log holds.
-    again = b.stub.Converse()
+    again = b.stub.Feed()
     await again.write(pb.ClientEvent(open=pb.OpenConversation(conversation_id="call-2",
                                                               resume=True)))
     welcome = (await again.read()).welcome
@@ -219,7 +219,7 @@ async def test_workers_share_one_port_and_one_log(models_dir: Path,
                     f"127.0.0.1:{port}",
                     options=[("grpc.use_local_subchannel_pool", 1)]) as channel:
                 stub = pb_grpc.MidstreamStub(channel)  # type: ignore[no-untyped-call]
-                call = stub.Converse()
+                call = stub.Feed()
                 await call.write(pb.ClientEvent(open=pb.OpenConversation(
                     conversation_id=f"w-{index}")))
                 await call.read()

@@ -58,7 +58,7 @@ async def test_tls_serves_secure_callers_only(start_server: ServerFactory,
     credentials = grpc.ssl_channel_credentials(root_certificates=cert.read_bytes())
     async with grpc.aio.secure_channel(f"localhost:{running.server.port}", credentials) as ch:
         stub = pb_grpc.MidstreamStub(ch)  # type: ignore[no-untyped-call]
-        replies = [m async for m in stub.Converse(iter([
+        replies = [m async for m in stub.Feed(iter([
             open_event(), words_event(spoken("w1", "hello")), CLOSE]))]
         assert replies[-1].ended.reason == pb.END_REASON_CLOSED
     with pytest.raises(grpc.aio.AioRpcError) as info:
@@ -76,8 +76,8 @@ async def test_required_tls_without_certificate_refuses_to_start(bundle: ModelBu
 def _every_rpc(stub: pb_grpc.MidstreamStub, metadata: tuple[tuple[str, str], ...],
                ) -> dict[str, object]:
     return {
-        "Converse": stub.Converse(iter([open_event(), CLOSE]), metadata=metadata),
-        "ConverseMany": stub.ConverseMany(iter([pb.ClientFrame()]), metadata=metadata),
+        "Feed": stub.Feed(iter([open_event(), CLOSE]), metadata=metadata),
+        "FeedMany": stub.FeedMany(iter([pb.ClientFrame()]), metadata=metadata),
         "Follow": stub.Follow(pb.FollowRequest(conversation_id="x"), metadata=metadata),
         "ListConversations": stub.ListConversations(pb.ListConversationsRequest(),
                                                     metadata=metadata),
@@ -143,7 +143,7 @@ async def test_right_token_is_let_through(start_server: ServerFactory) -> None:
     codes = {name: await _outcome(call)
              for name, call in _every_rpc(running.stub, metadata).items()}
     assert codes == {
-        "Converse": grpc.StatusCode.OK, "ConverseMany": grpc.StatusCode.OK,
+        "Feed": grpc.StatusCode.OK, "FeedMany": grpc.StatusCode.OK,
         "Follow": grpc.StatusCode.NOT_FOUND,
         "ListConversations": grpc.StatusCode.OK, "TagTranscript": grpc.StatusCode.OK,
         "GetRevisions": grpc.StatusCode.NOT_FOUND, "DescribeModels": grpc.StatusCode.OK,

@@ -111,7 +111,7 @@ async def test_default_config_serves_the_shipped_models_or_says_they_are_missing
     # error naming the folder when not (never a crash or a half-started server).
     shipped = Path(__file__).resolve().parents[2] / "models" / "weights"
     server = MidstreamServer(_config())
-    if list(shipped.glob("*.msm")):
+    if list(shipped.glob("*.tagger")):
         await server.start()
         try:
             assert server.port > 0

@@ -29,7 +29,7 @@ async def test_swda_val_conversation_streamed_equals_tagged_transcript(
     spoken = [cv.spoken_word_to_wire(f"w{i}", w) for i, w in enumerate(conversation.words)]
     assert len(spoken) >= 50
     events = [open_event(), *(words_event(w) for w in spoken), CLOSE]
-    messages = [m async for m in running.stub.Converse(iter(events))]
+    messages = [m async for m in running.stub.Feed(iter(events))]
     assert messages[-1].ended.reason == pb.END_REASON_CLOSED
     streamed_words: dict[str, pb.WordState] = {}
     streamed_utterances: dict[str, pb.UtteranceState] = {}

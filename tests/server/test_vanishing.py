@@ -1,4 +1,4 @@
-"""A caller can vanish at any point of a ``Converse`` call and never leave its conversation live.
+"""A caller can vanish at any point of a ``Feed`` call and never leave its conversation live.
 
 Live conversations count against ``max_live_conversations``: one that outlives its caller locks
 a slot until a restart. These tests vanish at every point the handler waits, first by driving
@@ -35,7 +35,7 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
 
 
 class _ScriptedContext:
-    """Just enough of a grpc.aio servicer context to drive ``Converse`` from a script.
+    """Just enough of a grpc.aio servicer context to drive ``Feed`` from a script.
 
     Every ``read`` and ``abort`` yields to the event loop first, so the handler is suspended
     at each of them; nothing ever calls the done callbacks (the handler's own cleanup must
@@ -72,7 +72,7 @@ _SCRIPT = [open_event("c"), words_event(spoken("w0", "so", start=0.0)),
 
 
 async def _no_requests() -> AsyncIterator[pb.ClientEvent]:
-    # Converse reads through its context; the request iterator is never touched.
+    # Feed reads through its context; the request iterator is never touched.
     events: tuple[pb.ClientEvent, ...] = ()
     for event in events:
         yield event
@@ -104,7 +104,7 @@ async def test_cancelling_at_every_await_point_ends_the_conversation(
     for steps in itertools.count(1):
         servicer = MidstreamServicer(bundle, limits, ServerMetrics())
         context = _ScriptedContext(script)
-        task = asyncio.ensure_future(_consume(servicer.Converse(
+        task = asyncio.ensure_future(_consume(servicer.Feed(
             _NO_REQUESTS, context), None))  # type: ignore[arg-type]
         for _ in range(steps):
             await asyncio.sleep(0)
@@ -132,7 +132,7 @@ async def test_dropping_the_handler_at_every_message_ends_the_conversation(
     for stop_after in range(1, 4):  # the welcome, then each update before the final one
         servicer = MidstreamServicer(bundle, limits, ServerMetrics())
         context = _ScriptedContext(_SCRIPT)
-        messages = servicer.Converse(_NO_REQUESTS, context)  # type: ignore[arg-type]
+        messages = servicer.Feed(_NO_REQUESTS, context)  # type: ignore[arg-type]
         assert await _consume(messages, stop_after) == stop_after
         assert servicer.registry.live_count == 1
         await messages.aclose()  # type: ignore[attr-defined]
@@ -145,7 +145,7 @@ async def test_the_end_of_the_call_ends_the_conversation_without_the_handler(
     # keeps it alive): the end of the call alone must finish the conversation.
     servicer = MidstreamServicer(bundle, ServerLimits(idle_timeout_s=5.0), ServerMetrics())
     context = _ScriptedContext(_SCRIPT)
-    messages = servicer.Converse(_NO_REQUESTS, context)  # type: ignore[arg-type]
+    messages = servicer.Feed(_NO_REQUESTS, context)  # type: ignore[arg-type]
     assert await _consume(messages, 1) == 1  # the welcome
     assert servicer.registry.live_count == 1 and len(context.callbacks) == 1
     context.callbacks[0](context)  # what grpc does when the call ends, however it ends
@@ -165,7 +165,7 @@ async def main():
     stub = pb_grpc.MidstreamStub(grpc.aio.insecure_channel(sys.argv[1]))
     opened = 0
     for _ in range(int(sys.argv[2])):
-        call = stub.Converse()
+        call = stub.Feed()
         await call.write(pb.ClientEvent(open=pb.OpenConversation()))
         try:
             opened += (await call.read()).HasField("welcome")

@@ -1,6 +1,6 @@
 """Ingest streams without a conversation are capped and time out.
 
-A ``Converse`` stream before its ``open`` and a ``ConverseMany`` stream with no open channel do
+A ``Feed`` stream before its ``open`` and a ``FeedMany`` stream with no open channel do
 nothing but hold a slot: at most ``max_streams_without_conversation`` of them at once, each
 ended after ``idle_timeout_s`` (docs/limits.md).
 """
@@ -46,22 +46,22 @@ async def _status(call: Any) -> tuple[grpc.StatusCode, str]:
 
 async def test_streams_without_a_conversation_are_capped(start_server: ServerFactory) -> None:
     running = await start_server(limits=_LIMITS)
-    silent = running.stub.Converse()  # never sends anything
-    idle_many = running.stub.ConverseMany()  # opens no channel
+    silent = running.stub.Feed()  # never sends anything
+    idle_many = running.stub.FeedMany()  # opens no channel
     await _until_waiting(running, 2)
-    refused = running.stub.Converse()
+    refused = running.stub.Feed()
     await refused.write(open_event())
     assert await _status(refused) == (
         grpc.StatusCode.RESOURCE_EXHAUSTED,
         "2 streams have no conversation open; limit max_streams_without_conversation is 2")
-    refused_many = running.stub.ConverseMany()
+    refused_many = running.stub.FeedMany()
     await refused_many.write(_frame(1, open_event()))
     assert (await _status(refused_many))[0] == grpc.StatusCode.RESOURCE_EXHAUSTED
     # A multiplexed stream that opens a channel no longer waits: room for another stream.
     await idle_many.write(_frame(1, open_event()))
     assert (await idle_many.read()).replies[0].message.HasField("welcome")
     await _until_waiting(running, 1)
-    accepted = running.stub.Converse()
+    accepted = running.stub.Feed()
     await accepted.write(open_event())
     assert (await accepted.read()).HasField("welcome")
     # ...and waits again once its last channel has ended.
@@ -75,8 +75,8 @@ async def test_streams_without_a_conversation_are_capped(start_server: ServerFac
 
 async def test_streams_without_a_conversation_time_out(start_server: ServerFactory) -> None:
     running = await start_server(limits=_LIMITS)
-    silent = running.stub.Converse()
-    idle_many = running.stub.ConverseMany()
+    silent = running.stub.Feed()
+    idle_many = running.stub.FeedMany()
     await _until_waiting(running, 2)
     code, details = await asyncio.wait_for(_status(silent), 10)
     assert code == grpc.StatusCode.INVALID_ARGUMENT

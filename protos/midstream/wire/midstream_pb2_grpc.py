@@ -34,13 +34,13 @@ class MidstreamStub:
         Args:
             channel: A grpc.Channel.
         """
-        self.Converse = channel.stream_stream(
-                '/midstream.v1.Midstream/Converse',
+        self.Feed = channel.stream_stream(
+                '/midstream.v1.Midstream/Feed',
                 request_serializer=midstream_dot_wire_dot_midstream__pb2.ClientEvent.SerializeToString,
                 response_deserializer=midstream_dot_wire_dot_midstream__pb2.ServerMessage.FromString,
                 _registered_method=True)
-        self.ConverseMany = channel.stream_stream(
-                '/midstream.v1.Midstream/ConverseMany',
+        self.FeedMany = channel.stream_stream(
+                '/midstream.v1.Midstream/FeedMany',
                 request_serializer=midstream_dot_wire_dot_midstream__pb2.ClientFrame.SerializeToString,
                 response_deserializer=midstream_dot_wire_dot_midstream__pb2.ServerFrame.FromString,
                 _registered_method=True)
@@ -79,7 +79,7 @@ class MidstreamStub:
 class MidstreamServicer:
     """Missing associated documentation comment in .proto file."""
 
-    def Converse(self, request_iterator, context):
+    def Feed(self, request_iterator, context):
         """Ingest one conversation: the first event must be `open`; the server answers with `welcome`,
         then one `update` per event that changed a hypothesis, and `ended` after `close`.
         """
@@ -87,9 +87,9 @@ class MidstreamServicer:
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
-    def ConverseMany(self, request_iterator, context):
+    def FeedMany(self, request_iterator, context):
         """Ingest many conversations over one stream, each on a caller-numbered channel. Every
-        channel follows the `Converse` protocol; the server answers each request frame with at most
+        channel follows the `Feed` protocol; the server answers each request frame with at most
         one reply frame (split only when it would exceed the message size limit).
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
@@ -143,13 +143,13 @@ class MidstreamServicer:
 
 def add_MidstreamServicer_to_server(servicer, server):
     rpc_method_handlers = {
-            'Converse': grpc.stream_stream_rpc_method_handler(
-                    servicer.Converse,
+            'Feed': grpc.stream_stream_rpc_method_handler(
+                    servicer.Feed,
                     request_deserializer=midstream_dot_wire_dot_midstream__pb2.ClientEvent.FromString,
                     response_serializer=midstream_dot_wire_dot_midstream__pb2.ServerMessage.SerializeToString,
             ),
-            'ConverseMany': grpc.stream_stream_rpc_method_handler(
-                    servicer.ConverseMany,
+            'FeedMany': grpc.stream_stream_rpc_method_handler(
+                    servicer.FeedMany,
                     request_deserializer=midstream_dot_wire_dot_midstream__pb2.ClientFrame.FromString,
                     response_serializer=midstream_dot_wire_dot_midstream__pb2.ServerFrame.SerializeToString,
             ),
@@ -195,7 +195,7 @@ class Midstream:
     """Missing associated documentation comment in .proto file."""
 
     @staticmethod
-    def Converse(request_iterator,
+    def Feed(request_iterator,
             target,
             options=(),
             channel_credentials=None,
@@ -208,7 +208,7 @@ class Midstream:
         return grpc.experimental.stream_stream(
             request_iterator,
             target,
-            '/midstream.v1.Midstream/Converse',
+            '/midstream.v1.Midstream/Feed',
             midstream_dot_wire_dot_midstream__pb2.ClientEvent.SerializeToString,
             midstream_dot_wire_dot_midstream__pb2.ServerMessage.FromString,
             options,
@@ -222,7 +222,7 @@ class Midstream:
             _registered_method=True)
 
     @staticmethod
-    def ConverseMany(request_iterator,
+    def FeedMany(request_iterator,
             target,
             options=(),
             channel_credentials=None,
@@ -235,7 +235,7 @@ class Midstream:
         return grpc.experimental.stream_stream(
             request_iterator,
             target,
-            '/midstream.v1.Midstream/ConverseMany',
+            '/midstream.v1.Midstream/FeedMany',
             midstream_dot_wire_dot_midstream__pb2.ClientFrame.SerializeToString,
             midstream_dot_wire_dot_midstream__pb2.ServerFrame.FromString,
             options,

@@ -1,4 +1,4 @@
-"""ConverseMany: many conversations over one stream, each channel behaving like Converse."""
+"""FeedMany: many conversations over one stream, each channel behaving like Feed."""
 
 from __future__ import annotations
 
@@ -51,10 +51,10 @@ def _replies(frame: pb.ServerFrame) -> list[Reply]:
 
 
 class Mux:
-    """The caller side of one ConverseMany stream: one frame out, its reply frame in."""
+    """The caller side of one FeedMany stream: one frame out, its reply frame in."""
 
     def __init__(self, running: Running, metadata: tuple[tuple[str, str], ...] = ()) -> None:
-        self.call = running.stub.ConverseMany(metadata=metadata)
+        self.call = running.stub.FeedMany(metadata=metadata)
 
     async def send(self, *events: tuple[int, pb.ClientEvent]) -> list[Reply]:
         await self.call.write(_frame(*events))
@@ -111,11 +111,11 @@ def _comparable(messages: list[pb.ServerMessage]) -> list[pb.ServerMessage]:
 
 
 @pytest.mark.corpus
-async def test_each_channel_gets_exactly_what_converse_gives(
+async def test_each_channel_gets_exactly_what_feed_gives(
     start_server: ServerFactory, swda_dir: Path,
 ) -> None:
     # Three SwDA val conversations (val is for reporting, never tuning) interleaved word by
-    # word on one stream must produce, per channel, the very updates Converse produces.
+    # word on one stream must produce, per channel, the very updates Feed produces.
     running = await start_server(limits=_PATIENT)
     conversations = [c for c in read_corpus(swda_dir, split="val") if len(c.words) >= 60][:3]
     scripts = [[cv.spoken_word_to_wire(f"w{i}", w) for i, w in enumerate(c.words[:120])]
@@ -123,7 +123,7 @@ async def test_each_channel_gets_exactly_what_converse_gives(
     expected = []
     for script in scripts:
         events = [open_event(), *(words_event(w) for w in script), CLOSE]
-        expected.append(_comparable([m async for m in running.stub.Converse(iter(events))]))
+        expected.append(_comparable([m async for m in running.stub.Feed(iter(events))]))
     mux = Mux(running)
     got = await mux.send(*((n, open_event()) for n in (1, 2, 3)))
     assert [k for _, k, _ in got] == ["welcome"] * 3

@@ -1,4 +1,4 @@
-"""Converse: the ingest protocol, sequence numbers, final updates and ending."""
+"""Feed: the ingest protocol, sequence numbers, final updates and ending."""
 
 from __future__ import annotations
 
@@ -36,7 +36,7 @@ async def test_words_in_updates_out_then_final_and_ended(start_server: ServerFac
         words_event(spoken("w3", "went", start=0.6)),
         CLOSE,
     ]
-    replies = [m async for m in running.stub.Converse(iter(events))]
+    replies = [m async for m in running.stub.Feed(iter(events))]
     kinds = [m.WhichOneof("body") for m in replies]
     assert kinds == ["welcome", "update", "update", "update", "ended"]
     welcome = replies[0].welcome
@@ -56,9 +56,9 @@ async def test_words_in_updates_out_then_final_and_ended(start_server: ServerFac
 
 
 async def test_caller_chosen_id_is_kept_and_cannot_be_reused(running: Running) -> None:
-    replies = [m async for m in running.stub.Converse(iter([open_event("call-7"), CLOSE]))]
+    replies = [m async for m in running.stub.Feed(iter([open_event("call-7"), CLOSE]))]
     assert replies[0].welcome.conversation_id == "call-7"
     with pytest.raises(grpc.aio.AioRpcError) as info:
-        _ = [m async for m in running.stub.Converse(iter([open_event("call-7"), CLOSE]))]
+        _ = [m async for m in running.stub.Feed(iter([open_event("call-7"), CLOSE]))]
     assert info.value.code() == grpc.StatusCode.ALREADY_EXISTS
     assert "call-7" in (info.value.details() or "")
