@@ -56,6 +56,18 @@ RUNS: dict[str, tuple[str, ...]] = {
     "maptask-val": ("midstream", "evaluate", _corpus("maptask"), "--split", "val", "--json"),
     "mrda-val-words-alone": ("midstream", "evaluate", _corpus("mrda"), "--split", "val",
                              "--no-boundary", "--words-only", "--json"),
+    # The SwDA 42-class model alone (its coarse function from summed fine marginals), as its
+    # card reports it: in its own corpus and in the two others.
+    **{f"{corpus}-val-swbd42": ("midstream", "evaluate", _corpus(corpus), "--split", "val",
+                                "--functions-only", "--functions-model",
+                                "models/weights/functions-swbd42.tagger", "--json")
+       for corpus in ("swda", "maptask", "mrda")},
+    # Recogniser conditions: no fragments, seeded word errors at 0, 10 and 20 %.
+    **{f"swda-val-recognised-{rate}": ("midstream", "evaluate", _corpus("swda"), "--split",
+                                       "val", "--as-recognised", "--word-error-rate",
+                                       f"0.{rate // 10}" if rate else "0", "--error-seed", "0",
+                                       "--json")
+       for rate in (0, 10, 20)},
 }
 
 
@@ -151,7 +163,9 @@ def expand(command: Sequence[str], corpora: str | None = None) -> list[str]:
 
 
 def execute(run: str) -> None:
-    result = subprocess.run(expand(RUNS[run]), capture_output=True, text=True, check=False)
+    # From the repository root: runs name shipped model files by their repository path.
+    result = subprocess.run(expand(RUNS[run]), capture_output=True, text=True, check=False,
+                            cwd=REPO)
     if result.returncode != 0:
         raise SystemExit(f"run {run!r} failed:\n{result.stderr[-4000:]}")
     output = json.loads(result.stdout)
