@@ -10,7 +10,7 @@ Every speaker channel is streamed one word at a time through the word model's in
 decoder, with the word times the corpus carries (MRDA's) weighed by the boundary model
 (``--boundary-model``, default the shipped one; ``--no-boundary`` for the word model alone), and
 scored on what the stream said at each moment (keys documented in
-:mod:`midstream.models._eval_words`). The utterance-function figures (``utterance_functions.*``,
+:mod:`midstream.models.words._eval`). The utterance-function figures (``utterance_functions.*``,
 from the shipped function model unless ``--functions-model`` names another, skipped with
 ``--words-only``) are merged into the same report, including
 ``utterance_functions.predicted_segmentation.word_accuracy``: whole conversations replayed
@@ -37,15 +37,15 @@ from pathlib import Path
 from midstream._errors import InputError, NotFoundError
 from midstream.client._figures import format_figures
 from midstream.corpora import read_corpus
-from midstream.models._boundary import BoundaryModel, default_boundary_model_path
 from midstream.models._bundle import ModelBundle, default_functions_model_path
-from midstream.models._decoder import DecoderConfig
 from midstream.models._eval_engine import evaluate_engine
-from midstream.models._eval_functions import evaluate_functions
-from midstream.models._eval_words import evaluate_words
-from midstream.models._functions import FunctionTagger
 from midstream.models._recogniser import RecogniserConditions, as_recognised
-from midstream.models._wordmodel import WordModel
+from midstream.models.boundaries._model import BoundaryModel, default_boundary_model_path
+from midstream.models.functions._eval import evaluate_functions
+from midstream.models.functions._tagger import FunctionTagger
+from midstream.models.words._decoder import DecoderConfig
+from midstream.models.words._eval import evaluate_words
+from midstream.models.words._model import WordModel
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:

@@ -34,7 +34,8 @@ from midstream.client import _cmd_train_boundaries as boundaries
 from midstream.client import _cmd_train_functions as functions
 from midstream.corpora import read_corpus
 from midstream.models._artifact import save_artifact
-from midstream.models._train_words import (
+from midstream.models.words._tags import TAG_LABEL
+from midstream.models.words._train import (
     BIAS_CANDIDATES,
     RESTART_BIAS_CANDIDATES,
     BiasResult,
@@ -43,7 +44,6 @@ from midstream.models._train_words import (
     train_word_artifact,
     tune_tag_bias,
 )
-from midstream.models._wordtags import TAG_LABEL
 
 #: How much held-out reparandum or utterance-end F1 a restart bias may cost (common practice,
 #: no source: about the spread between neighbouring reparandum biases in the model card).

@@ -29,13 +29,13 @@ from midstream._errors import InputError
 from midstream._types import Conversation
 from midstream.corpora import read_corpus
 from midstream.models._artifact import save_artifact
-from midstream.models._boundary import BoundaryConfig
-from midstream.models._train_boundaries import (
+from midstream.models.boundaries._model import BoundaryConfig
+from midstream.models.boundaries._train import (
     BoundaryTrainingConfig,
     cross_validate_boundaries,
     train_boundary_artifact,
 )
-from midstream.models._wordmodel import WordModel, default_words_model_path
+from midstream.models.words._model import WordModel, default_words_model_path
 
 
 def add_training_arguments(parser: argparse.ArgumentParser) -> None:

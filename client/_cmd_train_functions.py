@@ -39,9 +39,9 @@ from midstream._errors import InputError
 from midstream._types import Conversation
 from midstream.corpora import read_corpus
 from midstream.models._artifact import ModelArtifact, save_artifact
-from midstream.models._eval_functions import evaluate_functions
-from midstream.models._functions import SCHEMES, FunctionFeatureConfig, FunctionTagger
-from midstream.models._train_functions import (
+from midstream.models.functions._eval import evaluate_functions
+from midstream.models.functions._tagger import SCHEMES, FunctionFeatureConfig, FunctionTagger
+from midstream.models.functions._train import (
     FunctionTrainingOptions,
     Scorer,
     cross_validate,

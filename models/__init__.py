@@ -6,7 +6,7 @@ into hypothesis diffs.
 """
 
 from midstream.models._bundle import ModelBundle, ModelInfo
-from midstream.models._decoder import DecoderConfig
 from midstream.models._engine import ConversationEngine, EngineConfig
+from midstream.models.words._decoder import DecoderConfig
 
 __all__ = ["ConversationEngine", "DecoderConfig", "EngineConfig", "ModelBundle", "ModelInfo"]

@@ -17,12 +17,12 @@ from typing import Any
 
 from midstream._errors import ModelError, NotFoundError
 from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
-from midstream.models._boundary import BoundaryModel
-from midstream.models._decoder import ChannelDecoder, DecoderConfig
 from midstream.models._engine import ConversationEngine, EngineConfig
-from midstream.models._functions import FunctionTagger
 from midstream.models._lattice import warm_up as warm_up_kernels
-from midstream.models._wordmodel import WordModel
+from midstream.models.boundaries._model import BoundaryModel
+from midstream.models.functions._tagger import FunctionTagger
+from midstream.models.words._decoder import ChannelDecoder, DecoderConfig
+from midstream.models.words._model import WordModel
 
 #: Largest model file read (explicit limit; the shipped models are a few MB).
 MAX_MODEL_BYTES = 256 * 1024 * 1024

@@ -1,7 +1,7 @@
 """The conversation engine: recogniser events in, hypothesis diffs out.
 
 One :class:`ConversationEngine` serves one conversation. Each speaker has a channel whose
-:class:`~midstream.models._decoder.ChannelDecoder` labels words and utterance ends as they
+:class:`~midstream.models.words._decoder.ChannelDecoder` labels words and utterance ends as they
 arrive; the engine turns the decoder's token states into :class:`~midstream.WordHypothesis`
 values, splits each channel's open words into utterances at the currently hypothesised ends,
 labels every utterance whose cleaned words changed with the utterance-function tagger, and
@@ -35,9 +35,9 @@ from midstream._types import (
     WordHypothesis,
 )
 from midstream.corpora._normalise import normalise_token
-from midstream.models._decoder import ChannelDecoder, TokenState
-from midstream.models._functions import FunctionGuess, FunctionTagger, WordsMemo
-from midstream.models._views import UtteranceView, build_view
+from midstream.models.functions._tagger import FunctionGuess, FunctionTagger, WordsMemo
+from midstream.models.functions._views import UtteranceView, build_view
+from midstream.models.words._decoder import ChannelDecoder, TokenState
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

@@ -25,8 +25,8 @@ from midstream import ModelError
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
 from midstream.models._artifact import save_artifact
-from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
-from midstream.models._train_words import WordTrainingConfig, train_word_artifact
+from midstream.models.functions._train import FunctionTrainingOptions, train_function_model
+from midstream.models.words._train import WordTrainingConfig, train_word_artifact
 from midstream.server import MidstreamServer, ServerConfig
 
 REPO = Path(__file__).resolve().parents[2]

@@ -25,7 +25,7 @@ from midstream.client._records import read_log
 from midstream.client._view import RATES_CAUTION
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
-from midstream.models._eval_words import streaming_final_labels
+from midstream.models.words._eval import streaming_final_labels
 
 pytestmark = pytest.mark.corpus
 

@@ -19,7 +19,9 @@ import numpy.typing as npt
 from midstream._errors import InputError
 from midstream._types import Conversation
 from midstream.models._artifact import ModelArtifact
-from midstream.models._boundary import (
+from midstream.models._crf import CrfTagger, train_crf_from
+from midstream.models._lattice import decode_lattice
+from midstream.models.boundaries._model import (
     BOUNDARY_LABELS,
     END,
     GOES_ON,
@@ -28,12 +30,10 @@ from midstream.models._boundary import (
     boundary_features,
     overlap_flags,
 )
-from midstream.models._crf import CrfTagger, train_crf_from
-from midstream.models._eval_words import BinaryCounts
-from midstream.models._features import Token, features_at, tokens_from_words
-from midstream.models._lattice import decode_lattice
-from midstream.models._wordmodel import WordModel
-from midstream.models._wordtags import ChannelSequence, channel_sequences
+from midstream.models.words._eval import BinaryCounts
+from midstream.models.words._features import Token, features_at, tokens_from_words
+from midstream.models.words._model import WordModel
+from midstream.models.words._tags import ChannelSequence, channel_sequences
 
 __all__ = [
     "BoundaryTrainingConfig",

@@ -40,7 +40,7 @@ from midstream._errors import ModelError
 from midstream._types import Conversation
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
-from midstream.models._features import Token
+from midstream.models.words._features import Token
 
 __all__ = [
     "BOUNDARY_LABELS",

@@ -1,7 +1,7 @@
 """Incremental decoding of one speaker channel: words in, revisable word states out.
 
 Each new word adds its features and the pieces of its neighbours' features that it completes
-(see :mod:`midstream.models._features`), then re-decodes a bounded window: the last finalised
+(see :mod:`midstream.models.words._features`), then re-decodes a bounded window: the last finalised
 word (its tag fixed) and at most :attr:`DecoderConfig.lag` open words. Cost per word therefore
 does not grow with how long the speaker talks, and memory holds at most ``left + lag + 1`` words.
 
@@ -19,7 +19,7 @@ the latest ``lag`` words late. A caller's explicit close finalises them at once,
 word: after it they are never revised to ``restart``.
 
 A :class:`ChannelDecoder` is not safe to share between threads or tasks: one per channel, used
-from one place. The :class:`~midstream.models._wordmodel.WordModel` under it may be shared.
+from one place. The :class:`~midstream.models.words._model.WordModel` under it may be shared.
 """
 
 from __future__ import annotations
@@ -32,11 +32,11 @@ import numpy as np
 import numpy.typing as npt
 from midstream._errors import EventError
 from midstream._types import DisfluencyLabel, Word
-from midstream.models._boundary import BoundaryModel
-from midstream.models._features import Token, feature_piece, features_at, token_of
 from midstream.models._lattice import accumulate_rows, decode_window
-from midstream.models._wordmodel import WordModel
-from midstream.models._wordtags import INTERREGNUM_TAGS, IP_TAGS
+from midstream.models.boundaries._model import BoundaryModel
+from midstream.models.words._features import Token, feature_piece, features_at, token_of
+from midstream.models.words._model import WordModel
+from midstream.models.words._tags import INTERREGNUM_TAGS, IP_TAGS
 
 __all__ = ["DEFAULT_LAG", "ChannelDecoder", "DecoderConfig", "TokenState"]
 

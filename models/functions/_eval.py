@@ -23,8 +23,8 @@ from collections.abc import Iterable, Sequence
 
 from midstream._schemes import SWBD42_CLASSES
 from midstream._types import Conversation
-from midstream.models._functions import FunctionTagger, clean_view
-from midstream.models._views import UtteranceView
+from midstream.models.functions._tagger import FunctionTagger, clean_view
+from midstream.models.functions._views import UtteranceView
 
 #: Prefix lengths (received words) at which the growing label is scored.
 AFTER_WORDS: tuple[int, ...] = (1, 2, 3, 5)

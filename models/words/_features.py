@@ -47,7 +47,7 @@ class Token:
     #: Words the other speakers said since this speaker's previous word (0 when unknown).
     other_words: int = 0
     #: The word starts before another speaker's latest word ends (read by the boundary
-    #: model only, :mod:`midstream.models._boundary`).
+    #: model only, :mod:`midstream.models.boundaries._model`).
     overlap: bool = False
 
 
@@ -96,7 +96,7 @@ class FeatureConfig:
     follows an interruption point. Requires ``restart_span <= left``.
 
     ``word_classes`` maps closed-class words to a group letter (see
-    :mod:`~midstream.models._wordclasses`); empty turns the word-class features off (models
+    :mod:`~midstream.models.words._classes`); empty turns the word-class features off (models
     trained before they existed).
 
     ``break_ahead`` turns on the features of a break ahead: the first place within the right

@@ -1,7 +1,7 @@
 """The trained word model: CRF weights, feature configuration and tag bookkeeping in one object.
 
 A :class:`WordModel` is immutable after loading and safe to share between threads and sessions;
-each speaker channel gets its own :class:`~midstream.models._decoder.ChannelDecoder` over it.
+each speaker channel gets its own :class:`~midstream.models.words._decoder.ChannelDecoder` over it.
 """
 
 from __future__ import annotations
@@ -16,9 +16,9 @@ from midstream._errors import ModelError
 from midstream._types import DisfluencyLabel
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
-from midstream.models._features import FeatureConfig, Token, features_at
 from midstream.models._lattice import decode_lattice
-from midstream.models._wordtags import END_SUFFIX, IP_TAGS, TAG_LABEL, decode_tag
+from midstream.models.words._features import FeatureConfig, Token, features_at
+from midstream.models.words._tags import END_SUFFIX, IP_TAGS, TAG_LABEL, decode_tag
 
 __all__ = ["WordModel", "default_words_model_path"]
 

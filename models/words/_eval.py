@@ -1,9 +1,9 @@
 """Evaluating the word model by replaying annotated conversations word by word.
 
-Every speaker channel is fed to a :class:`~midstream.models._decoder.ChannelDecoder` one word at
-a time, and every state the decoder reports is recorded with the step (the channel position of
-the newest word) at which it was said. Scores use only what the stream had said at each moment;
-no gold boundary is ever given to the decoder.
+Every speaker channel is fed to a :class:`~midstream.models.words._decoder.ChannelDecoder` one word
+at a time, and every state the decoder reports is recorded with the step (the channel position of
+the newest word) at which it was said. Scores use only what the stream had said at each moment; no
+gold boundary is ever given to the decoder.
 
 Reported keys (all in ``[0, 1]`` unless a unit is named):
 
@@ -53,11 +53,11 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 
 from midstream._types import Conversation, DisfluencyLabel
-from midstream.models._boundary import BoundaryModel, overlap_flags
-from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
-from midstream.models._features import tokens_from_words
-from midstream.models._wordmodel import WordModel
-from midstream.models._wordtags import ChannelSequence, channel_sequences, decode_tag
+from midstream.models.boundaries._model import BoundaryModel, overlap_flags
+from midstream.models.words._decoder import ChannelDecoder, DecoderConfig, TokenState
+from midstream.models.words._features import tokens_from_words
+from midstream.models.words._model import WordModel
+from midstream.models.words._tags import ChannelSequence, channel_sequences, decode_tag
 from tqdm import tqdm
 
 __all__ = ["BinaryCounts", "evaluate_words", "offline_scores"]

@@ -28,12 +28,12 @@ from midstream._errors import InputError
 from midstream._types import Conversation, DisfluencyLabel
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import TrainingPairs, train_crf_from
-from midstream.models._eval_words import BinaryCounts, offline_scores
-from midstream.models._features import FeatureConfig, features_at, tokens_from_words
 from midstream.models._lattice import decode_lattice
-from midstream.models._wordclasses import CLOSED_CLASSES
-from midstream.models._wordmodel import WordModel
-from midstream.models._wordtags import (
+from midstream.models.words._classes import CLOSED_CLASSES
+from midstream.models.words._eval import BinaryCounts, offline_scores
+from midstream.models.words._features import FeatureConfig, features_at, tokens_from_words
+from midstream.models.words._model import WordModel
+from midstream.models.words._tags import (
     END_SUFFIX,
     TAG_LABEL,
     ChannelSequence,
@@ -77,9 +77,9 @@ class WordTrainingConfig:
 
     ``c1``/``c2``: L1/L2 regularisation; ``min_freq``: attributes seen fewer times are dropped;
     ``chunk_length``: longest training sequence (words); ``right``/``left``/``restart_span``:
-    feature context (see :class:`~midstream.models._features.FeatureConfig`);
+    feature context (see :class:`~midstream.models.words._features.FeatureConfig`);
     ``word_classes``: use the closed-class substitution features; ``break_ahead``: the
-    break-ahead features (see :class:`~midstream.models._features.FeatureConfig`).
+    break-ahead features (see :class:`~midstream.models.words._features.FeatureConfig`).
     """
 
     c1: float = 0.1
@@ -317,7 +317,7 @@ def expand_tag_bias(bias: dict[str, float], tags: Sequence[str]) -> dict[str, fl
     Raises
     ------
     InputError
-        A key is no disfluency tag of :mod:`~midstream.models._wordtags`.
+        A key is no disfluency tag of :mod:`~midstream.models.words._tags`.
     """
     unknown = sorted(set(bias) - set(TAG_LABEL))
     if unknown:
@@ -398,7 +398,8 @@ def sweep_tag_bias(
     """Viterbi-decode every fold's held-out channels under each candidate bias and score it.
 
     A candidate maps disfluency tags (``rp``, ``ro``...) to the constant added to their state
-    scores, as :class:`~midstream.models._features.FeatureConfig` ``tag_bias`` does at decoding.
+    scores, as :class:`~midstream.models.words._features.FeatureConfig` ``tag_bias`` does at
+    decoding.
     """
     results = []
     for candidate in candidates:

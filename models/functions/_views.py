@@ -1,13 +1,14 @@
 """The utterance as the function tagger sees it, the one rule that builds it, and the check of
 one a caller built.
 
-:func:`build_view` is the only place that decides which words of an utterance the function
-tagger sees: training and offline evaluation (gold labels, :func:`~midstream.models._functions.
-clean_view`) and the live engine (the word tagger's labels) all call it, so a model is served
-the view it was trained on. The same holds for the context: every utterance, also one with no
-word left after cleaning ("uh"), takes its place on the chain, offline and live.
+:func:`build_view` is the only place that decides which words of an utterance the function tagger
+sees: training and offline evaluation (gold labels,
+:func:`~midstream.models.functions._tagger.clean_view`) and the live engine (the word tagger's
+labels) all call it, so a model is served the view it was trained on. The same holds for the
+context: every utterance, also one with no word left after cleaning ("uh"), takes its place on the
+chain, offline and live.
 
-Kept apart from :mod:`~midstream.models._functions` because that module may be compiled
+Kept apart from :mod:`~midstream.models.functions._tagger` because that module may be compiled
 (``core/_build.py``): a compiled dataclass checks its field types itself and a compiled function
 its argument types, so a caller's malformed view would raise a bare ``TypeError`` before
 :func:`check_view` could name the problem as an :class:`~midstream.InputError`. Here, as plain

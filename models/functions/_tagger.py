@@ -34,7 +34,7 @@ from midstream._types import (
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
 from midstream.models._lattice import chain_carry, chain_end_step, exp_into
-from midstream.models._views import UtteranceView, build_view, check_view
+from midstream.models.functions._views import UtteranceView, build_view, check_view
 
 #: Feature-dictionary type the CRF adapter takes: attribute name to value.
 Features = dict[str, float]
@@ -341,8 +341,8 @@ def clean_view(conversation: Conversation, utterance: Utterance,
 
     Words labelled filler, editing term, reparandum or restart are removed (and counted); a
     conversation without disfluency annotation keeps all its words. Word fragments ("s-") are
-    dropped uncounted. The rule is :func:`~midstream.models._views.build_view`'s, which the live
-    engine calls too.
+    dropped uncounted. The rule is
+    :func:`~midstream.models.functions._views.build_view`'s, which the live engine calls too.
 
     Parameters
     ----------

@@ -23,7 +23,7 @@ from midstream._schemes import SWBD42_CLASSES
 from midstream._types import Conversation, UtteranceFunction
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import train_crf
-from midstream.models._functions import (
+from midstream.models.functions._tagger import (
     SCHEMES,
     Features,
     FunctionFeatureConfig,
@@ -32,7 +32,7 @@ from midstream.models._functions import (
     conversation_views,
     utterance_features,
 )
-from midstream.models._views import UtteranceView
+from midstream.models.functions._views import UtteranceView
 
 _log = logging.getLogger(__name__)
 
@@ -93,7 +93,7 @@ class FunctionTrainingOptions:
 
 
 #: Utterances before a rare one that its oversampled window holds: the streaming tagger's
-#: context (:data:`~midstream.models._functions.DEFAULT_CONTEXT`).
+#: context (:data:`~midstream.models.functions._tagger.DEFAULT_CONTEXT`).
 OVERSAMPLE_CONTEXT = 4
 #: Utterances after it: windows that all ended on the rare class taught the tagger that the
 #: last position of a window (where a stream's current utterance always is) is that class.
