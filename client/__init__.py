@@ -1,4 +1,4 @@
-"""Client library and command line of Midstream.
+"""Midstream's client library.
 
 :class:`Client` is the asyncio client (an async context manager owning one channel);
 :class:`SyncClient` wraps it for scripts. Everything they return is a domain type of

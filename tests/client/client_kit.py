@@ -1,6 +1,6 @@
 """Client test kit: a real server with the shipped models, in a thread or a subprocess.
 
-The command-line tests call ``midstream.client._cli.main`` in-process; it runs its own event
+The command-line tests call ``midstream.client.cli._main.main`` in-process; it runs its own event
 loop (``asyncio.run``), so the server it talks to runs on another loop in a daemon thread.
 Test modules import what they use (``from client_kit import served``): a second
 ``conftest.py`` would clash with ``tests/conftest.py`` under mypy.

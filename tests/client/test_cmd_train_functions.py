@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 
 import pytest
-from midstream.client._cli import main
+from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
 from midstream.models.functions._tagger import FunctionTagger

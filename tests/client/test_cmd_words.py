@@ -7,8 +7,8 @@ import sys
 from pathlib import Path
 
 import pytest
-from midstream.client._cli import main
-from midstream.client._cmd_train import RESTART_GUARD, choose_restart_bias
+from midstream.client.cli._cmd_train import RESTART_GUARD, choose_restart_bias
+from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
 from midstream.models.words._model import WordModel

@@ -14,9 +14,9 @@ from midstream import (
     UtteranceHypothesis,
     WordHypothesis,
 )
-from midstream.client._output import Printer
 from midstream.client._results import Ended, EndReason
-from midstream.client._view import Board, TerminalView
+from midstream.client.cli._output import Printer
+from midstream.client.cli._view import Board, TerminalView
 
 
 def _screen(output: str, width: int = 1000, height: int = 100_000) -> list[str]:

@@ -6,7 +6,7 @@ from dataclasses import replace
 
 import pytest
 from midstream import DisfluencyLabel, InputError
-from midstream.client._cmd_train import parse_tag_bias
+from midstream.client.cli._cmd_train import parse_tag_bias
 from midstream.models._artifact import ModelArtifact
 from midstream.models.words._eval import BinaryCounts
 from midstream.models.words._features import tokens_from_words

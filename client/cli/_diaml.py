@@ -47,7 +47,7 @@ from collections.abc import Mapping
 from typing import IO, Final
 
 from midstream._types import DisfluencyLabel, UtteranceFunction
-from midstream.client._outcome import Outcome, repairs_of
+from midstream.client.cli._outcome import Outcome, repairs_of
 
 DIAML: Final = "http://www.iso.org/diaml/"
 LAYER: Final = "urn:x-midstream:layer:1"

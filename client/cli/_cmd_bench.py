@@ -50,8 +50,7 @@ from pathlib import Path
 from typing import Any
 
 from midstream._errors import CorpusNotFoundError, InputError, UnavailableError
-from midstream.client._common import DEFAULT_TARGET
-from midstream.client._load import (
+from midstream.client.bench._load import (
     DEFAULT_TICK_S,
     STEAL_NOTABLE_PERCENT,
     LoadConfig,
@@ -59,7 +58,8 @@ from midstream.client._load import (
     WordScript,
     run_load,
 )
-from midstream.client._scrape import MetricsProbe
+from midstream.client.bench._scrape import MetricsProbe
+from midstream.client.cli._common import DEFAULT_TARGET
 from midstream.corpora import read_corpus
 
 #: Words read from the corpus for the script (enough that conversations rarely repeat).
@@ -193,7 +193,7 @@ def serve_command(*, models: Path | None, live: int, spin: bool, redis: str | No
     conversations, all of them on one ``FeedMany`` stream if the load puts them there;
     ``redis``: with the shared log; ``workers``: that many processes (metrics are then left
     off: each worker would serve its own page)."""
-    command = [sys.executable, "-m", "midstream.client._cli", "serve", "--host", "127.0.0.1",
+    command = [sys.executable, "-m", "midstream.client.cli._main", "serve", "--host", "127.0.0.1",
                "--port", "0", "--grace", "5", "--max-live-conversations", str(live),
                "--limit", f"max_channels_per_stream={live}"]
     if workers == 1:

@@ -10,7 +10,7 @@
         ../shared/corpora/maptask --split train --scheme coarse --partner-features \\
         --oversample clarification_request=0 clarification_request=3 --out functions-coarse.tagger
 
-``midstream train`` (:mod:`midstream.client._cmd_train`) registers the sub-command with
+``midstream train`` (:mod:`midstream.client.cli._cmd_train`) registers the sub-command with
 :func:`add_training_arguments` and :func:`run`. The corpus is anything
 :func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of
 your own transcripts); several corpora are pooled. Given several ``--c1``/``--c2``/

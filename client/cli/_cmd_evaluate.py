@@ -17,7 +17,7 @@ from the shipped function model unless ``--functions-model`` names another, skip
 through the conversation engine, as a live caller would see them. With the shipped models the
 coarse figures are the coarse model's and the ``...swbd42`` figures the 42-class model's;
 ``--functions-only`` skips the word model's figures. People get the figures as titled tables
-(:mod:`midstream.client._figures`), scripts every key with ``--json``.
+(:mod:`midstream.client.cli._figures`), scripts every key with ``--json``.
 
 ``--as-recognised`` feeds the words as a speech recogniser would: without the word fragments
 transcribers write ("th-"), and with ``--word-error-rate R`` also with seeded substitutions,
@@ -35,7 +35,7 @@ import sys
 from pathlib import Path
 
 from midstream._errors import InputError, NotFoundError
-from midstream.client._figures import format_figures
+from midstream.client.cli._figures import format_figures
 from midstream.corpora import read_corpus
 from midstream.models._bundle import ModelBundle, default_functions_model_path
 from midstream.models._eval_engine import evaluate_engine

@@ -29,8 +29,8 @@ from midstream._types import (
     Word,
     WordHypothesis,
 )
-from midstream.client._records import RevisionLog
 from midstream.client._results import Snapshot
+from midstream.client.cli._records import RevisionLog
 from midstream.corpora import normalise_token
 
 _L = DisfluencyLabel

@@ -16,8 +16,8 @@ from dataclasses import dataclass
 from midstream._types import HypothesisUpdate
 from midstream.client._client import Client
 from midstream.client._inputs import TimedEvent
-from midstream.client._records import GoldWord, SentWord
 from midstream.client._results import AddWord, Ended, ServerEvent, Welcome
+from midstream.client.cli._records import GoldWord, SentWord
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

@@ -19,16 +19,17 @@ from pathlib import Path
 from typing import TextIO
 
 from midstream._errors import InputError
-from midstream.client._common import (
+from midstream.client._inputs import TimedEvent
+from midstream.client._results import ServerEvent, Welcome
+from midstream.client.cli._common import (
     add_input_options,
     add_server_options,
     client_from_args,
     load_input,
     stream_lines,
 )
-from midstream.client._inputs import TimedEvent
-from midstream.client._output import Printer, lines_from_thread
-from midstream.client._records import (
+from midstream.client.cli._output import Printer, lines_from_thread
+from midstream.client.cli._records import (
     LOG_FORMAT,
     GoldWord,
     SentWord,
@@ -36,8 +37,7 @@ from midstream.client._records import (
     event_record,
     word_record,
 )
-from midstream.client._results import ServerEvent, Welcome
-from midstream.client._streaming import Pacing, stream_conversation
+from midstream.client.cli._streaming import Pacing, stream_conversation
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:

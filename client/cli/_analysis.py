@@ -1,6 +1,6 @@
 """What ``midstream inspect`` computes from a revision log: per-word timelines and scores.
 
-Everything here is pure: a :class:`~midstream.client._records.RevisionLog` in, plain values out.
+Everything here is pure: a :class:`~midstream.client.cli._records.RevisionLog` in, plain values out.
 Scores against gold labels compare the stream's own words, so they are only as meaningful as the
 corpus annotation the log carries (named in its ``source``).
 """
@@ -18,8 +18,8 @@ from midstream._types import (
     UtteranceHypothesis,
     WordHypothesis,
 )
-from midstream.client._records import RevisionLog, SentWord
 from midstream.client._results import RevisionHistory, Snapshot, Welcome
+from midstream.client.cli._records import RevisionLog, SentWord
 
 
 class FinalReason:

@@ -24,8 +24,8 @@ from midstream.client._inputs import (
     TimedEvent,
     read_events,
 )
-from midstream.client._records import GoldWord
 from midstream.client._results import AddWord
+from midstream.client.cli._records import GoldWord
 from midstream.corpora import CorpusKind, detect_kind, read_corpus
 
 #: Where the commands look for a server unless told (``midstream serve`` listens here by default).

@@ -20,7 +20,7 @@ transport round trip of the frames.
 :func:`read_steal` reads how long a virtual machine's hypervisor kept each of this host's CPUs
 for other guests (steal time), which stalls the server and the generator alike and shows in the
 latency tails although neither did more work; a
-:class:`~midstream.client._scrape.MetricsProbe` reads how late the server's own event loop ran
+:class:`~midstream.client.bench._scrape.MetricsProbe` reads how late the server's own event loop ran
 over the window, which tells a busy or stalled server from a slow transport or generator.
 
 This module talks protobuf directly (the :class:`~midstream.client.Client` converts every
@@ -45,7 +45,7 @@ from typing import Any, Literal
 import grpc
 import grpc.aio
 from midstream._errors import InputError
-from midstream.client._scrape import Histogram, MetricsProbe
+from midstream.client.bench._scrape import Histogram, MetricsProbe
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 
@@ -265,7 +265,7 @@ class LoadResult:
     #: Per-CPU steal seconds (:func:`read_steal`) when the window opened and when it closed.
     steal_open: tuple[float, ...] | None = None
     steal_after: tuple[float, ...] | None = None
-    #: The server's loop-lag histogram (:class:`~midstream.client._scrape.MetricsProbe`) when
+    #: The server's loop-lag histogram (:class:`~midstream.client.bench._scrape.MetricsProbe`) when
     #: the window opened and when it closed, and why it could not be read, if it could not.
     loop_lag_open: Histogram | None = None
     loop_lag_after: Histogram | None = None

@@ -17,9 +17,9 @@ import sys
 from pathlib import Path
 
 from midstream._errors import InputError
-from midstream.client._diaml import write_diaml
-from midstream.client._outcome import conversation_of, outcome_of, write_csv
-from midstream.client._records import read_log
+from midstream.client.cli._diaml import write_diaml
+from midstream.client.cli._outcome import conversation_of, outcome_of, write_csv
+from midstream.client.cli._records import read_log
 from midstream.corpora import write_inline
 
 FORMATS = ("csv", "diaml", "inline")

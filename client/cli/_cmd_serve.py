@@ -268,7 +268,7 @@ def run(args: argparse.Namespace) -> int:
                 f"--workers {args.workers} needs a shared log (--redis URL or "
                 f"${_REDIS_ENV}): without one each worker would hold only its own "
                 "conversations, and a follower would reach the wrong one")
-        from midstream.client._workers import run_workers  # noqa: PLC0415 - only with --workers
+        from midstream.client.cli._workers import run_workers  # noqa: PLC0415 - only with --workers
 
         return run_workers(config, args.workers, gc_thresholds=gc_thresholds,
                            full_collection_s=args.full_collection_every,

@@ -1,6 +1,6 @@
 """The HTML report of ``midstream inspect --html``: vector plots and tables in one file.
 
-The report is one self-contained file: plots are inline SVG (:mod:`midstream.client._plots`),
+The report is one self-contained file: plots are inline SVG (:mod:`midstream.client.cli._plots`),
 so it can be mailed or archived without its pictures going missing, and its labels stay text.
 A section that cannot be drawn says why instead of vanishing (no gold labels, no gold
 utterance functions). Word text appears in the report (it is the user's own transcript); it is
@@ -12,8 +12,8 @@ from __future__ import annotations
 import html
 from collections.abc import Iterable
 
-from midstream.client._analysis import Analysis, WordTimeline
-from midstream.client._plots import (
+from midstream.client.cli._analysis import Analysis, WordTimeline
+from midstream.client.cli._plots import (
     WORDS_PER_PANEL,
     accuracy_svg,
     confusion_svg,

@@ -17,9 +17,9 @@ from collections.abc import AsyncIterator, Iterator
 from typing import TextIO
 
 from midstream.client._inputs import TimedEvent
-from midstream.client._records import SentWord, dumps, event_record
 from midstream.client._results import Ended, Gap, Reconnected, ServerEvent, Snapshot
-from midstream.client._view import (
+from midstream.client.cli._records import SentWord, dumps, event_record
+from midstream.client.cli._view import (
     RATES_CAUTION,
     Board,
     SpokenOrder,

@@ -15,9 +15,9 @@ import sys
 from pathlib import Path
 
 from midstream._errors import InputError
-from midstream.client._analysis import Analysis, analyse, log_from_history
-from midstream.client._common import add_server_options, client_from_args
-from midstream.client._records import read_log
+from midstream.client.cli._analysis import Analysis, analyse, log_from_history
+from midstream.client.cli._common import add_server_options, client_from_args
+from midstream.client.cli._records import read_log
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -45,7 +45,7 @@ def run(args: argparse.Namespace) -> int:
     analysis = analyse(read_log(args.log)) if args.log is not None else asyncio.run(_live(args))
     _print_timeline(analysis, words=set(args.word or ()), changed_only=args.changed)
     if args.html is not None:
-        from midstream.client._report import render_report  # noqa: PLC0415 - only reports
+        from midstream.client.cli._report import render_report  # noqa: PLC0415 - only reports
 
         try:
             args.html.write_text(render_report(analysis), encoding="utf-8")

@@ -51,7 +51,7 @@ def _orphaned(parent: int) -> None:
 def _worker(config: ServerConfig, ready: multiprocessing.connection.Connection,
             options: dict[str, Any]) -> None:
     """A worker's main: serve ``config`` until SIGTERM, telling the supervisor its port."""
-    from midstream.client._cmd_serve import serve  # noqa: PLC0415 - in the worker only
+    from midstream.client.cli._cmd_serve import serve  # noqa: PLC0415 - in the worker only
 
     threading.Thread(target=_orphaned, args=(os.getppid(),), daemon=True,
                      name="supervisor-watch").start()

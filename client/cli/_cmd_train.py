@@ -9,8 +9,8 @@
 
 One sub-command per model: ``words`` (disfluency roles and utterance ends, this module),
 ``functions`` (utterance functions, options from
-:mod:`midstream.client._cmd_train_functions`) and ``boundaries`` (timing evidence for
-utterance ends, :mod:`midstream.client._cmd_train_boundaries`). Given several
+:mod:`midstream.client.cli._cmd_train_functions`) and ``boundaries`` (timing evidence for
+utterance ends, :mod:`midstream.client.cli._cmd_train_boundaries`). Given several
 ``--c1``/``--c2``/``--min-freq`` values, ``words`` compares every combination by
 cross-validation grouped by conversation on a seeded random subset (``--cv-subset``) of the
 corpus given, which must be the training split; the best is then trained on all of it. Progress
@@ -30,8 +30,8 @@ from pathlib import Path
 
 from midstream._errors import InputError
 from midstream._types import Conversation
-from midstream.client import _cmd_train_boundaries as boundaries
-from midstream.client import _cmd_train_functions as functions
+from midstream.client.cli import _cmd_train_boundaries as boundaries
+from midstream.client.cli import _cmd_train_functions as functions
 from midstream.corpora import read_corpus
 from midstream.models._artifact import save_artifact
 from midstream.models.words._tags import TAG_LABEL

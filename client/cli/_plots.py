@@ -14,7 +14,7 @@ import math
 from collections.abc import Sequence
 
 from midstream._types import DisfluencyLabel
-from midstream.client._analysis import WordTimeline
+from midstream.client.cli._analysis import WordTimeline
 
 __all__ = ["COLOURS", "WORDS_PER_PANEL", "accuracy_svg", "confusion_svg", "legend_svg",
            "timeline_svgs"]

@@ -1,7 +1,7 @@
 """``midstream demo``: an in-process server and an invented phone call, tagged live.
 
 Starts a server on a free loopback port with the default (shipped) models, or ``--models DIR``,
-streams the call in :mod:`midstream.client._demo_script` at about real time, and shows the
+streams the call in :mod:`midstream.client.cli._demo_script` at about real time, and shows the
 labels as they are revised. The call goes in as a recogniser gives it: timed words of a
 two-channel NIST CTM file with the recogniser's clock ticking through the silences, no caller
 hints, so utterances end where the speakers stop. ``--no-pause`` sends everything at once (for
@@ -18,11 +18,11 @@ from pathlib import Path
 
 from midstream._types import HypothesisUpdate
 from midstream.client._client import Client
-from midstream.client._demo_script import demo_ctm, demo_events
-from midstream.client._output import Printer
-from midstream.client._records import SentWord
 from midstream.client._results import ServerEvent
-from midstream.client._streaming import Pacing, stream_conversation
+from midstream.client.cli._demo_script import demo_ctm, demo_events
+from midstream.client.cli._output import Printer
+from midstream.client.cli._records import SentWord
+from midstream.client.cli._streaming import Pacing, stream_conversation
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:

@@ -11,8 +11,8 @@ import asyncio
 import sys
 
 from midstream._errors import InputError
-from midstream.client._common import add_server_options, client_from_args
-from midstream.client._output import Printer
+from midstream.client.cli._common import add_server_options, client_from_args
+from midstream.client.cli._output import Printer
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:

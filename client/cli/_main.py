@@ -26,17 +26,17 @@ from midstream._errors import MidstreamError, UnavailableError
 
 #: Command modules in the order ``--help`` lists them.
 _COMMAND_MODULES: tuple[str, ...] = (
-    "midstream.client._cmd_corpus",
-    "midstream.client._cmd_tag",
-    "midstream.client._cmd_replay",
-    "midstream.client._cmd_subscribe",
-    "midstream.client._cmd_inspect",
-    "midstream.client._cmd_export",
-    "midstream.client._cmd_demo",
-    "midstream.client._cmd_serve",
-    "midstream.client._cmd_bench",
-    "midstream.client._cmd_train",
-    "midstream.client._cmd_evaluate",
+    "midstream.client.cli._cmd_corpus",
+    "midstream.client.cli._cmd_tag",
+    "midstream.client.cli._cmd_replay",
+    "midstream.client.cli._cmd_subscribe",
+    "midstream.client.cli._cmd_inspect",
+    "midstream.client.cli._cmd_export",
+    "midstream.client.cli._cmd_demo",
+    "midstream.client.cli._cmd_serve",
+    "midstream.client.cli._cmd_bench",
+    "midstream.client.cli._cmd_train",
+    "midstream.client.cli._cmd_evaluate",
 )
 
 Handler = Callable[[argparse.Namespace], int]

@@ -16,16 +16,16 @@ from pathlib import Path
 from typing import TextIO
 
 from midstream._errors import InputError
-from midstream.client._common import (
+from midstream.client._results import AddWord, ServerEvent, Welcome
+from midstream.client.cli._common import (
     add_input_options,
     add_server_options,
     client_from_args,
     load_input,
 )
-from midstream.client._output import Printer
-from midstream.client._records import LOG_FORMAT, SentWord, dumps, event_record, word_record
-from midstream.client._results import AddWord, ServerEvent, Welcome
-from midstream.client._streaming import Pacing, stream_conversation
+from midstream.client.cli._output import Printer
+from midstream.client.cli._records import LOG_FORMAT, SentWord, dumps, event_record, word_record
+from midstream.client.cli._streaming import Pacing, stream_conversation
 from tqdm import tqdm
 
 
