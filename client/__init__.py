@@ -6,26 +6,28 @@
 subclasses mapped from gRPC status codes.
 """
 
+from midstream import (
+    AddWord,
+    EndReason,
+    GapReason,
+    ModelInfo,
+    ReplaceWord,
+    SpeakerHint,
+    TimeTick,
+    WithdrawWord,
+)
 from midstream.client._client import Client, ConversationStream, MultiplexedStream, RetryPolicy
 from midstream.client._inputs import TimedEvent, parse_ctm, parse_jsonl_events, read_events
 from midstream.client._results import (
-    AddWord,
     ConversationSummary,
     Ended,
-    EndReason,
     Gap,
-    GapReason,
-    ModelInfo,
     Reconnected,
-    ReplaceWord,
     Revision,
     RevisionHistory,
     Snapshot,
-    SpeakerHint,
     TaggedTranscript,
-    TimeTick,
     Welcome,
-    WithdrawWord,
 )
 from midstream.client._sync import SyncClient, SyncConversation, SyncMultiplexedStream
 

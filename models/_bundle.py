@@ -9,12 +9,11 @@ event-loop thread, so their calls never interleave.
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
-from typing import Any
 
+from midstream import ModelInfo
 from midstream._errors import ModelError, NotFoundError
 from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
 from midstream.models._engine import ConversationEngine, EngineConfig
@@ -30,18 +29,6 @@ MAX_MODEL_BYTES = 256 * 1024 * 1024
 #: class (and, alone, the coarse function by summing its marginals); a coarse-scheme model
 #: beside a fine one decides the coarse function.
 _SCHEME_PREFERENCE = ("swbd42", "coarse")
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class ModelInfo:
-    """What one loaded model is: kind, file name, format, labels, checksum, provenance."""
-
-    kind: str
-    name: str
-    format_version: int
-    labels: tuple[str, ...]
-    sha256: str
-    training_summary: Mapping[str, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

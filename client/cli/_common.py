@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TextIO
 
+from midstream import AddWord
 from midstream._errors import CorpusNotFoundError, InputError
 from midstream._types import Conversation
 from midstream.client._client import Client
@@ -24,7 +25,6 @@ from midstream.client._inputs import (
     TimedEvent,
     read_events,
 )
-from midstream.client._results import AddWord
 from midstream.client.cli._records import GoldWord
 from midstream.corpora import CorpusKind, detect_kind, read_corpus
 

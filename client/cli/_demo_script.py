@@ -11,8 +11,8 @@ the silences, so utterances end where the speakers stop.
 
 from __future__ import annotations
 
+from midstream import AddWord, TimeTick
 from midstream.client._inputs import TimedEvent, parse_ctm, sort_by_time
-from midstream.client._results import AddWord, TimeTick
 
 #: ``(speaker, silence before in seconds, words)``, one utterance each, in order.
 UTTERANCES: tuple[tuple[str, float, str], ...] = (

@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from midstream import EndReason, GapReason
 from midstream._errors import TranscriptFormatError
 from midstream._types import (
     DisfluencyLabel,
@@ -33,16 +34,7 @@ from midstream._types import (
     UtteranceHypothesis,
     WordHypothesis,
 )
-from midstream.client._results import (
-    Ended,
-    EndReason,
-    Gap,
-    GapReason,
-    Reconnected,
-    ServerEvent,
-    Snapshot,
-    Welcome,
-)
+from midstream.client._results import Ended, Gap, Reconnected, ServerEvent, Snapshot, Welcome
 
 LOG_FORMAT = 1
 

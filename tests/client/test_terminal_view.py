@@ -8,13 +8,14 @@ import re
 import pytest
 from midstream import (
     DisfluencyLabel,
+    EndReason,
     HypothesisDiff,
     HypothesisUpdate,
     UtteranceFunction,
     UtteranceHypothesis,
     WordHypothesis,
 )
-from midstream.client._results import Ended, EndReason
+from midstream.client._results import Ended
 from midstream.client.cli._output import Printer
 from midstream.client.cli._view import Board, TerminalView
 
