@@ -45,11 +45,16 @@ def _stage(root: Path, into: Path) -> None:
     if into.exists():
         shutil.rmtree(into)
     for package, folder in folders.items():
-        target = into.joinpath(*package.split("."))
-        target.mkdir(parents=True, exist_ok=True)
-        for source in (root / folder).iterdir():
-            if source.suffix in (".py", ".pyi") or source.name == "py.typed":
-                shutil.copy2(source, target / source.name)
+        base = root / folder
+        # Subpackages (``models/words/``) sit in their parent's folder; other packages' folders
+        # never do, so walking the folder copies this package and its subpackages only.
+        for source in base.rglob("*"):
+            if "__pycache__" in source.parts or not (
+                    source.suffix in (".py", ".pyi") or source.name == "py.typed"):
+                continue
+            target = into.joinpath(*package.split("."), source.relative_to(base))
+            target.parent.mkdir(parents=True, exist_ok=True)
+            shutil.copy2(source, target)
 
 
 #: mypy's settings while compiling (the repository's [tool.mypy] is for the type check).

@@ -1,4 +1,4 @@
-"""Client library and command line of Midstream.
+"""Midstream's client library.
 
 :class:`Client` is the asyncio client (an async context manager owning one channel);
 :class:`SyncClient` wraps it for scripts. Everything they return is a domain type of
@@ -6,26 +6,28 @@
 subclasses mapped from gRPC status codes.
 """
 
+from midstream import (
+    AddWord,
+    EndReason,
+    GapReason,
+    ModelInfo,
+    ReplaceWord,
+    SpeakerHint,
+    TimeTick,
+    WithdrawWord,
+)
 from midstream.client._client import Client, ConversationStream, MultiplexedStream, RetryPolicy
 from midstream.client._inputs import TimedEvent, parse_ctm, parse_jsonl_events, read_events
 from midstream.client._results import (
-    AddWord,
     ConversationSummary,
     Ended,
-    EndReason,
     Gap,
-    GapReason,
-    ModelInfo,
     Reconnected,
-    ReplaceWord,
     Revision,
     RevisionHistory,
     Snapshot,
-    SpeakerHint,
     TaggedTranscript,
-    TimeTick,
     Welcome,
-    WithdrawWord,
 )
 from midstream.client._sync import SyncClient, SyncConversation, SyncMultiplexedStream
 

@@ -41,28 +41,30 @@ from typing import Any, Self
 
 import grpc
 import grpc.aio
-from midstream._errors import InputError, MidstreamError, UnavailableError
-from midstream._types import HypothesisUpdate, Word
-from midstream.client._results import (
+from midstream import (
     AddWord,
-    ConversationSummary,
-    Ended,
     EndReason,
-    Gap,
     GapReason,
     InputEvent,
     ModelInfo,
-    Reconnected,
     ReplaceWord,
+    SpeakerHint,
+    TimeTick,
+    WithdrawWord,
+)
+from midstream._errors import InputError, MidstreamError, UnavailableError
+from midstream._types import HypothesisUpdate, Word
+from midstream.client._results import (
+    ConversationSummary,
+    Ended,
+    Gap,
+    Reconnected,
     Revision,
     RevisionHistory,
     ServerEvent,
     Snapshot,
-    SpeakerHint,
     TaggedTranscript,
-    TimeTick,
     Welcome,
-    WithdrawWord,
 )
 from midstream.client._status import RETRYABLE, error_from_rpc, error_from_status, tls_failure
 from midstream.wire import _convert, midstream_pb2_grpc

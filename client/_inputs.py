@@ -26,9 +26,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from midstream import AddWord, InputEvent, ReplaceWord, SpeakerHint, WithdrawWord
 from midstream._errors import TranscriptFormatError
 from midstream._types import Word
-from midstream.client._results import AddWord, InputEvent, ReplaceWord, SpeakerHint, WithdrawWord
 
 #: Longest accepted input line (characters); a longer one is an error, not a silent cut.
 MAX_LINE_CHARS = 10_000

@@ -1,94 +1,24 @@
 """Typed values the client library hands back: server messages, summaries, revision histories.
 
 Generated protobuf types never leave ``midstream.client``: every reply is converted into these
-frozen dataclasses (or the domain types of :mod:`midstream`) at the edge. Input events a caller
-sends are here too, so a transcript reader and a live recogniser feed the same methods.
+frozen dataclasses (or the domain types of :mod:`midstream`) at the edge. The input events a
+caller sends, the gap and end reasons and ``ModelInfo`` are the core's (:mod:`midstream`), shared
+with the server and the models.
 
 Units follow :mod:`midstream._types`: times in seconds, ``server_time`` in Unix seconds.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-from enum import StrEnum
-from typing import Any
+from dataclasses import dataclass
 
-from midstream._types import HypothesisUpdate, UtteranceHypothesis, Word, WordHypothesis
-
-# --- what a caller sends ----------------------------------------------------------------------
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class AddWord:
-    """A new recogniser word; ``word_id`` is unique within the conversation."""
-
-    word_id: str
-    word: Word
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class ReplaceWord:
-    """The recogniser revised an earlier word: same ``word_id``, new text or times."""
-
-    word_id: str
-    word: Word
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class WithdrawWord:
-    """The recogniser withdrew an earlier word."""
-
-    word_id: str
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class SpeakerHint:
-    """The speaker's utterance (or, with ``turn_end``, turn) ends after their last word."""
-
-    speaker: str
-    turn_end: bool = False
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class TimeTick:
-    """The stream's time moved on to ``time`` (seconds, the clock of the words' times) with no
-    word: a silence the server weighs to close an utterance without waiting for the next word."""
-
-    time: float
-
-
-#: One event of a word stream, in the order a recogniser would produce it.
-InputEvent = AddWord | ReplaceWord | WithdrawWord | SpeakerHint | TimeTick
-
-
-# --- what the server says on a stream -----------------------------------------------------------
-
-
-class GapReason(StrEnum):
-    """Why a follower misses updates."""
-
-    EVICTED = "evicted"
-    """The asked-for position is older than the server's replay buffer keeps."""
-    LAGGED = "lagged"
-    """The follower read too slowly; the server dropped updates and sends a snapshot."""
-    EPOCH_MISMATCH = "epoch_mismatch"
-    """The position belonged to another conversation that used the same id (another epoch,
-    e.g. before a server restart): the snapshot that follows is of the conversation now
-    using it."""
-    UNKNOWN = "unknown"
-    """A reason this client version does not know."""
-
-
-class EndReason(StrEnum):
-    """Why a conversation ended."""
-
-    CLOSED = "closed"
-    IDLE_TIMEOUT = "idle_timeout"
-    CALLER_VANISHED = "caller_vanished"
-    SERVER_SHUTDOWN = "server_shutdown"
-    REJECTED = "rejected"
-    """The caller sent an event the server refused; the call failed with its error."""
-    UNKNOWN = "unknown"
+from midstream import (
+    EndReason,
+    GapReason,
+    HypothesisUpdate,
+    UtteranceHypothesis,
+    WordHypothesis,
+)
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -166,18 +96,6 @@ class ConversationSummary:
     started_at: float
     ended: bool
     epoch: int = 0
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class ModelInfo:
-    """A model in service: ``kind`` is ``"words"`` or ``"utterance_functions"``."""
-
-    kind: str
-    name: str
-    format_version: int
-    labels: tuple[str, ...]
-    sha256: str
-    training_summary: dict[str, Any] = field(default_factory=dict, hash=False, compare=False)
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

@@ -24,6 +24,7 @@ from collections.abc import AsyncIterator, Coroutine, Iterable, Iterator, Sequen
 from types import TracebackType
 from typing import Any, Generic, Protocol, Self, TypeVar, cast
 
+from midstream import AddWord, InputEvent, ModelInfo, SpeakerHint
 from midstream._errors import InputError, MidstreamError, UnavailableError
 from midstream.client._client import (
     DEFAULT_FRAME_EVENTS,
@@ -33,13 +34,9 @@ from midstream.client._client import (
     RetryPolicy,
 )
 from midstream.client._results import (
-    AddWord,
     ConversationSummary,
-    InputEvent,
-    ModelInfo,
     RevisionHistory,
     ServerEvent,
-    SpeakerHint,
     TaggedTranscript,
 )
 

@@ -19,9 +19,9 @@ __all__ = ["PER_WORD_MODULES", "build_name", "compiled_modules"]
 #: TypeError before Midstream's own checks name it) and modules whose doctests are tests.
 PER_WORD_MODULES: tuple[str, ...] = (
     "midstream.models._engine",
-    "midstream.models._decoder",
-    "midstream.models._features",
-    "midstream.models._functions",
+    "midstream.models.words._decoder",
+    "midstream.models.words._features",
+    "midstream.models.functions._tagger",
     "midstream.server._ingest",
     "midstream.server._kept",
 )

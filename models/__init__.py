@@ -5,8 +5,9 @@ utterance-function tagger; ``ConversationEngine`` turns one conversation's recog
 into hypothesis diffs.
 """
 
-from midstream.models._bundle import ModelBundle, ModelInfo
-from midstream.models._decoder import DecoderConfig
+from midstream import ModelInfo
+from midstream.models._bundle import ModelBundle
 from midstream.models._engine import ConversationEngine, EngineConfig
+from midstream.models.words._decoder import DecoderConfig
 
 __all__ = ["ConversationEngine", "DecoderConfig", "EngineConfig", "ModelBundle", "ModelInfo"]

@@ -9,20 +9,19 @@ event-loop thread, so their calls never interleave.
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
-from typing import Any
 
+from midstream import ModelInfo
 from midstream._errors import ModelError, NotFoundError
 from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
-from midstream.models._boundary import BoundaryModel
-from midstream.models._decoder import ChannelDecoder, DecoderConfig
 from midstream.models._engine import ConversationEngine, EngineConfig
-from midstream.models._functions import FunctionTagger
 from midstream.models._lattice import warm_up as warm_up_kernels
-from midstream.models._wordmodel import WordModel
+from midstream.models.boundaries._model import BoundaryModel
+from midstream.models.functions._tagger import FunctionTagger
+from midstream.models.words._decoder import ChannelDecoder, DecoderConfig
+from midstream.models.words._model import WordModel
 
 #: Largest model file read (explicit limit; the shipped models are a few MB).
 MAX_MODEL_BYTES = 256 * 1024 * 1024
@@ -30,18 +29,6 @@ MAX_MODEL_BYTES = 256 * 1024 * 1024
 #: class (and, alone, the coarse function by summing its marginals); a coarse-scheme model
 #: beside a fine one decides the coarse function.
 _SCHEME_PREFERENCE = ("swbd42", "coarse")
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class ModelInfo:
-    """What one loaded model is: kind, file name, format, labels, checksum, provenance."""
-
-    kind: str
-    name: str
-    format_version: int
-    labels: tuple[str, ...]
-    sha256: str
-    training_summary: Mapping[str, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

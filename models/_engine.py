@@ -1,7 +1,7 @@
 """The conversation engine: recogniser events in, hypothesis diffs out.
 
 One :class:`ConversationEngine` serves one conversation. Each speaker has a channel whose
-:class:`~midstream.models._decoder.ChannelDecoder` labels words and utterance ends as they
+:class:`~midstream.models.words._decoder.ChannelDecoder` labels words and utterance ends as they
 arrive; the engine turns the decoder's token states into :class:`~midstream.WordHypothesis`
 values, splits each channel's open words into utterances at the currently hypothesised ends,
 labels every utterance whose cleaned words changed with the utterance-function tagger, and
@@ -24,6 +24,7 @@ from collections import OrderedDict
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
+from midstream import merge_diffs
 from midstream._errors import EventError
 from midstream._types import (
     REMOVED_FROM_CLEAN_TEXT,
@@ -35,9 +36,9 @@ from midstream._types import (
     WordHypothesis,
 )
 from midstream.corpora._normalise import normalise_token
-from midstream.models._decoder import ChannelDecoder, TokenState
-from midstream.models._functions import FunctionGuess, FunctionTagger, WordsMemo
-from midstream.models._views import UtteranceView, build_view
+from midstream.models.functions._tagger import FunctionGuess, FunctionTagger, WordsMemo
+from midstream.models.functions._views import UtteranceView, build_view
+from midstream.models.words._decoder import ChannelDecoder, TokenState
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -302,7 +303,7 @@ class ConversationEngine:
                 and self._last_speaker != channel.speaker)
             if states:
                 diffs.append(self._apply(channel, states, close_all=True))
-        return _merge(diffs)
+        return merge_diffs(diffs)
 
     def finish(self) -> HypothesisDiff:
         """End of conversation: every word and utterance becomes final."""
@@ -310,7 +311,7 @@ class ConversationEngine:
         diffs = [self._apply(channel, channel.decoder.finish(), close_all=True)
                  for channel in self._channels.values()]
         self._finished = True
-        return _merge(diffs)
+        return merge_diffs(diffs)
 
     # -- internals ------------------------------------------------------------------------
 
@@ -550,15 +551,3 @@ def _utterance_changed(old: UtteranceHypothesis, new: UtteranceHypothesis, step:
     return (old.function != new.function or old.fine_class != new.fine_class
             or old.word_ids != new.word_ids or old.clean_text != new.clean_text
             or old.final != new.final or abs(old.confidence - new.confidence) >= step)
-
-
-def _merge(diffs: Iterable[HypothesisDiff]) -> HypothesisDiff:
-    words: list[WordHypothesis] = []
-    utterances: list[UtteranceHypothesis] = []
-    withdrawn: list[str] = []
-    for diff in diffs:
-        words.extend(diff.words)
-        utterances.extend(diff.utterances)
-        withdrawn.extend(diff.withdrawn_word_ids)
-    return HypothesisDiff(words=tuple(words), utterances=tuple(utterances),
-                          withdrawn_word_ids=tuple(withdrawn))

@@ -25,8 +25,8 @@ import itertools, sys
 from pathlib import Path
 from midstream.corpora import read_corpus
 from midstream.models._artifact import save_artifact
-from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
-from midstream.models._train_words import WordTrainingConfig, train_word_artifact
+from midstream.models.functions._train import FunctionTrainingOptions, train_function_model
+from midstream.models.words._train import WordTrainingConfig, train_word_artifact
 swda, out = Path(sys.argv[1]), Path(sys.argv[2])
 conversations = list(itertools.islice(read_corpus(swda, split="train"), 12))
 save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=30)),

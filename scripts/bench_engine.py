@@ -44,12 +44,12 @@ from pathlib import Path
 from _benchkit import machine
 from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceFunction, Word
 from midstream.corpora import read_corpus
-from midstream.models._boundary import BoundaryModel, default_boundary_model_path
-from midstream.models._decoder import ChannelDecoder, DecoderConfig
-from midstream.models._features import Token, features_at, token_of
 from midstream.models._lattice import warm_up
-from midstream.models._train_words import WordTrainingConfig, train_word_artifact
-from midstream.models._wordmodel import WordModel, default_words_model_path
+from midstream.models.boundaries._model import BoundaryModel, default_boundary_model_path
+from midstream.models.words._decoder import ChannelDecoder, DecoderConfig
+from midstream.models.words._features import Token, features_at, token_of
+from midstream.models.words._model import WordModel, default_words_model_path
+from midstream.models.words._train import WordTrainingConfig, train_word_artifact
 
 _REPO = Path(__file__).resolve().parent.parent
 _SENTENCES = (

@@ -35,8 +35,8 @@ from midstream import Conversation
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
 from midstream.models._artifact import load_artifact
-from midstream.models._functions import FunctionTagger, clean_view, utterance_features
-from midstream.models._views import UtteranceView
+from midstream.models.functions._tagger import FunctionTagger, clean_view, utterance_features
+from midstream.models.functions._views import UtteranceView
 
 REPO = Path(__file__).resolve().parent.parent
 

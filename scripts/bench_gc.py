@@ -33,8 +33,8 @@ from typing import Any
 from _benchkit import corpora_root, machine, models_folder, source_arguments
 from bench_ingest import _frame_bytes, _plan, open_stream
 from midstream._errors import InputError
-from midstream.client._cmd_bench import load_script
-from midstream.client._cmd_serve import parse_gc_thresholds
+from midstream.client.cli._cmd_bench import load_script
+from midstream.client.cli._cmd_serve import parse_gc_thresholds
 from midstream.models import ModelBundle
 from midstream.server._many import ManyStream
 from midstream.wire import midstream_pb2 as pb

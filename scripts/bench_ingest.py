@@ -35,7 +35,7 @@ from typing import Any, cast
 
 from _benchkit import corpora_root, machine, models_folder, source_arguments
 from midstream._types import Word
-from midstream.client._cmd_bench import load_script
+from midstream.client.cli._cmd_bench import load_script
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._many import ManyStream

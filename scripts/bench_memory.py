@@ -32,8 +32,8 @@ from typing import Any
 
 from _benchkit import corpora_root, machine, models_folder, pin_self
 from midstream._types import Word
-from midstream.client._cmd_bench import load_script, spawn_server
-from midstream.client._load import LoadConfig, ProcessProbe, WordScript, hold_conversations
+from midstream.client.bench._load import LoadConfig, ProcessProbe, WordScript, hold_conversations
+from midstream.client.cli._cmd_bench import load_script, spawn_server
 from midstream.models import ModelBundle
 
 #: Target from the project brief: an idle live conversation costs at most this much.

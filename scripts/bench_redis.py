@@ -33,7 +33,7 @@ from typing import Any
 
 import redis.asyncio as aioredis
 from _benchkit import corpora_root, machine, models_folder, source_arguments
-from midstream.client._cmd_bench import load_script
+from midstream.client.cli._cmd_bench import load_script
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits, SharedLogConfig
 from midstream.server._ingest import apply_event

@@ -37,7 +37,7 @@ from typing import Any
 
 from _benchkit import REPO, machine, models_folder
 from bench_service import table as service_table
-from midstream.client._cmd_serve import _FULL_COLLECTION_S, _GC_THRESHOLDS
+from midstream.client.cli._cmd_serve import _FULL_COLLECTION_S, _GC_THRESHOLDS
 
 _SCRIPTS = REPO / "scripts"
 

@@ -47,8 +47,7 @@ from typing import Any
 
 from _benchkit import corpora_root, machine, models_folder, pin_self
 from midstream._types import Word
-from midstream.client._cmd_bench import bucket_text, load_script, spawn_server
-from midstream.client._load import (
+from midstream.client.bench._load import (
     DEFAULT_TICK_S,
     STEAL_NOTABLE_PERCENT,
     LoadConfig,
@@ -56,7 +55,8 @@ from midstream.client._load import (
     WordScript,
     run_load,
 )
-from midstream.client._scrape import MetricsProbe
+from midstream.client.bench._scrape import MetricsProbe
+from midstream.client.cli._cmd_bench import bucket_text, load_script, spawn_server
 from midstream.models import ModelBundle
 
 _FULL_STEPS: tuple[int, ...] = (100, 250, 500, 1000, 1500)

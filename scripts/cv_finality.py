@@ -24,10 +24,10 @@ from pathlib import Path
 from _benchkit import corpora_root
 from midstream.corpora import read_corpus
 from midstream.models._artifact import load_artifact, save_artifact
-from midstream.models._decoder import DecoderConfig
-from midstream.models._eval_words import evaluate_words
-from midstream.models._train_words import WordTrainingConfig, _folds, train_word_artifact
-from midstream.models._wordmodel import WordModel, default_words_model_path
+from midstream.models.words._decoder import DecoderConfig
+from midstream.models.words._eval import evaluate_words
+from midstream.models.words._model import WordModel, default_words_model_path
+from midstream.models.words._train import WordTrainingConfig, _folds, train_word_artifact
 
 _FOLDS = 3
 _KEYS = ("disfluency.reparandum_no_fragments.f1", "disfluency.offline.reparandum.f1",

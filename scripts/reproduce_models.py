@@ -61,11 +61,11 @@ def training_command(model: Path, corpus: Path, out: Path) -> list[str]:
             break
         args[i] = str(corpus.parent / Path(args[i]).name)
     args[args.index("--out") + 1] = str(out)
-    return [sys.executable, "-m", "midstream.client._cli", *args]
+    return [sys.executable, "-m", "midstream.client.cli._main", *args]
 
 
 def evaluate(kind: str, model: Path, words_model: Path, corpus: Path) -> dict[str, float]:
-    command = [sys.executable, "-m", "midstream.client._cli", "evaluate", str(corpus),
+    command = [sys.executable, "-m", "midstream.client.cli._main", "evaluate", str(corpus),
                "--split", "val", "--json"]
     if kind == "words":
         command += ["--model", str(model)]

@@ -28,9 +28,10 @@ import logging
 import secrets
 import time
 from collections import OrderedDict, deque
-from collections.abc import AsyncIterator, Callable, Iterable, Iterator
+from collections.abc import AsyncIterator, Callable, Iterator
 from typing import Generic, Protocol, TypeVar
 
+from midstream import merge_diffs
 from midstream._errors import EventError, LimitExceededError, NotFoundError
 from midstream._types import (
     HypothesisDiff,
@@ -224,26 +225,6 @@ def _unpack_state(record: WordRecord | UtteranceRecord) -> State:
         return unpack_utterance(record)
     raise ValueError(f"a kept record of {len(record)} fields is neither a word's nor an "
                      "utterance's")
-
-
-def merge_diffs(diffs: Iterable[HypothesisDiff]) -> HypothesisDiff:
-    """One diff with the latest state of everything the given diffs (in order) touched."""
-    words: dict[str, WordHypothesis] = {}
-    utterances: dict[str, UtteranceHypothesis] = {}
-    withdrawn: dict[str, None] = {}
-    for diff in diffs:
-        for word in diff.words:
-            withdrawn.pop(word.word_id, None)
-            words[word.word_id] = word
-        for utterance in diff.utterances:
-            utterances[utterance.utterance_id] = utterance
-        for word_id in diff.withdrawn_word_ids:
-            words.pop(word_id, None)
-            withdrawn[word_id] = None
-    return HypothesisDiff(
-        words=tuple(words.values()), utterances=tuple(utterances.values()),
-        withdrawn_word_ids=tuple(withdrawn),
-    )
 
 
 class Follower:

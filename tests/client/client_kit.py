@@ -1,6 +1,6 @@
 """Client test kit: a real server with the shipped models, in a thread or a subprocess.
 
-The command-line tests call ``midstream.client._cli.main`` in-process; it runs its own event
+The command-line tests call ``midstream.client.cli._main.main`` in-process; it runs its own event
 loop (``asyncio.run``), so the server it talks to runs on another loop in a daemon thread.
 Test modules import what they use (``from client_kit import served``): a second
 ``conftest.py`` would clash with ``tests/conftest.py`` under mypy.
@@ -25,8 +25,8 @@ from midstream import ModelError
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
 from midstream.models._artifact import save_artifact
-from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
-from midstream.models._train_words import WordTrainingConfig, train_word_artifact
+from midstream.models.functions._train import FunctionTrainingOptions, train_function_model
+from midstream.models.words._train import WordTrainingConfig, train_word_artifact
 from midstream.server import MidstreamServer, ServerConfig
 
 REPO = Path(__file__).resolve().parents[2]

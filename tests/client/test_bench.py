@@ -19,10 +19,7 @@ from typing import Any
 import pytest
 from client_kit import REPO, Served, models_dir, served
 from midstream._errors import InputError
-from midstream.client._cli import build_parser, main
-from midstream.client._cmd_bench import load_script, serve_command
-from midstream.client._cmd_serve import build_config
-from midstream.client._load import (
+from midstream.client.bench._load import (
     MAX_FRAME_EVENTS,
     LoadConfig,
     ProcessProbe,
@@ -33,6 +30,9 @@ from midstream.client._load import (
     read_steal,
     run_load,
 )
+from midstream.client.cli._cmd_bench import load_script, serve_command
+from midstream.client.cli._cmd_serve import build_config
+from midstream.client.cli._main import build_parser, main
 from midstream.server import ServerLimits
 from midstream.wire import midstream_pb2 as pb
 from redis_kit import RedisProcess, redis_server_fixture

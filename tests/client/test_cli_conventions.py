@@ -12,8 +12,8 @@ from pathlib import Path
 import pytest
 from client_kit import free_port
 from midstream import InputError
-from midstream.client import _cmd_serve
-from midstream.client._cli import build_parser, main, verbosity
+from midstream.client.cli import _cmd_serve
+from midstream.client.cli._main import build_parser, main, verbosity
 
 
 def test_version_prints_the_installed_distribution_version(

@@ -38,8 +38,8 @@ from midstream.client import (
     SyncClient,
     Welcome,
 )
-from midstream.client._demo_script import demo_events
 from midstream.client._results import ServerEvent
+from midstream.client.cli._demo_script import demo_events
 from midstream.server import MidstreamServer, ServerConfig, ServerLimits
 
 pytestmark = pytest.mark.corpus

@@ -21,8 +21,8 @@ from midstream.client import (
     SyncClient,
     Welcome,
 )
-from midstream.client._demo_script import demo_events
 from midstream.client._results import ServerEvent
+from midstream.client.cli._demo_script import demo_events
 
 pytestmark = pytest.mark.corpus
 

@@ -8,7 +8,7 @@ import json
 from pathlib import Path
 
 import pytest
-from midstream.client._cli import main
+from midstream.client.cli._main import main
 from midstream.corpora import CorpusKind, detect_kind, read_corpus
 
 #: An invented help-desk call, written as an annotator would.

@@ -7,11 +7,11 @@ import sys
 from pathlib import Path
 
 import pytest
-from midstream.client._cli import main
+from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
-from midstream.models._functions import FunctionTagger
-from midstream.models._views import UtteranceView
+from midstream.models.functions._tagger import FunctionTagger
+from midstream.models.functions._views import UtteranceView
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))
 from function_kit import invented_corpus

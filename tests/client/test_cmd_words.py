@@ -7,12 +7,12 @@ import sys
 from pathlib import Path
 
 import pytest
-from midstream.client._cli import main
-from midstream.client._cmd_train import RESTART_GUARD, choose_restart_bias
+from midstream.client.cli._cmd_train import RESTART_GUARD, choose_restart_bias
+from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
-from midstream.models._train_words import RESTART_BIAS_CANDIDATES, BiasResult
-from midstream.models._wordmodel import WordModel
+from midstream.models.words._model import WordModel
+from midstream.models.words._train import RESTART_BIAS_CANDIDATES, BiasResult
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))
 from word_kit import invented_conversation

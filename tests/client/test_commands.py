@@ -1,4 +1,4 @@
-"""Every client command run in-process (``_cli.main``) against a real server and real models."""
+"""Every client command run in-process (``_main.main``) against a real server and real models."""
 
 from __future__ import annotations
 
@@ -19,13 +19,13 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
 )
 from midstream import DisfluencyLabel, HypothesisUpdate
 from midstream.client import AddWord, SyncClient
-from midstream.client._cli import main
-from midstream.client._demo_script import demo_events
-from midstream.client._records import read_log
-from midstream.client._view import RATES_CAUTION
+from midstream.client.cli._demo_script import demo_events
+from midstream.client.cli._main import main
+from midstream.client.cli._records import read_log
+from midstream.client.cli._view import RATES_CAUTION
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
-from midstream.models._eval_words import streaming_final_labels
+from midstream.models.words._eval import streaming_final_labels
 
 pytestmark = pytest.mark.corpus
 

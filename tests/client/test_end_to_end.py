@@ -14,7 +14,7 @@ from client_kit import CTM_TEXT, models_dir_fixture  # noqa: F401 - fixtures are
 
 pytestmark = [pytest.mark.corpus, pytest.mark.slow]
 
-_CLI = [sys.executable, "-m", "midstream.client._cli"]
+_CLI = [sys.executable, "-m", "midstream.client.cli._main"]
 
 
 def test_serve_tag_from_a_pipe_and_subscribe(models_dir: Path, tmp_path: Path) -> None:

@@ -9,8 +9,8 @@ import sys
 from pathlib import Path
 
 import pytest
-from midstream.client._cli import main
-from midstream.client._figures import format_figures
+from midstream.client.cli._figures import format_figures
+from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))

@@ -21,9 +21,9 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
     served_fixture,
 )
 from midstream import DisfluencyLabel
-from midstream.client._cli import main
-from midstream.client._diaml import DIAML, ISO_FUNCTIONS, LAYER, check_diaml
-from midstream.client._records import read_log
+from midstream.client.cli._diaml import DIAML, ISO_FUNCTIONS, LAYER, check_diaml
+from midstream.client.cli._main import main
+from midstream.client.cli._records import read_log
 from midstream.corpora import read_corpus, write_jsonl
 
 pytestmark = pytest.mark.corpus
@@ -178,7 +178,7 @@ def test_export_errors_name_the_file(tmp_path: Path, capsys: pytest.CaptureFixtu
 def test_docstring_examples_run() -> None:
     import doctest  # noqa: PLC0415
 
-    import midstream.client._diaml as module  # noqa: PLC0415
+    import midstream.client.cli._diaml as module  # noqa: PLC0415
 
     result = doctest.testmod(module)
     assert result.attempted > 0 and result.failed == 0

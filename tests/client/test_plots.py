@@ -5,9 +5,9 @@ from __future__ import annotations
 import xml.etree.ElementTree as ET
 
 from midstream import DisfluencyLabel
-from midstream.client._analysis import Analysis, LabelChange, WordTimeline
-from midstream.client._plots import COLOURS, accuracy_svg, confusion_svg, timeline_svgs
-from midstream.client._report import render_report
+from midstream.client.cli._analysis import Analysis, LabelChange, WordTimeline
+from midstream.client.cli._plots import COLOURS, accuracy_svg, confusion_svg, timeline_svgs
+from midstream.client.cli._report import render_report
 
 _SVG = "{http://www.w3.org/2000/svg}"
 

@@ -25,8 +25,8 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
     models_dir_fixture,
     served_fixture,
 )
-from midstream.client._cli import main
-from midstream.client._plots import WORDS_PER_PANEL
+from midstream.client.cli._main import main
+from midstream.client.cli._plots import WORDS_PER_PANEL
 
 pytestmark = pytest.mark.corpus
 

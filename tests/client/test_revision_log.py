@@ -13,8 +13,9 @@ from midstream import (
     WordHypothesis,
 )
 from midstream.client import Ended, EndReason, Gap, GapReason, Reconnected, Snapshot, Welcome
-from midstream.client._analysis import FinalReason, analyse
-from midstream.client._records import (
+from midstream.client._results import ServerEvent
+from midstream.client.cli._analysis import FinalReason, analyse
+from midstream.client.cli._records import (
     GoldWord,
     SentWord,
     dumps,
@@ -22,8 +23,7 @@ from midstream.client._records import (
     parse_log,
     word_record,
 )
-from midstream.client._results import ServerEvent
-from midstream.client._view import RATES_CAUTION, disfluency_rates, rates_table
+from midstream.client.cli._view import RATES_CAUTION, disfluency_rates, rates_table
 
 F, R, P = DisfluencyLabel.FLUENT, DisfluencyLabel.REPARANDUM, DisfluencyLabel.REPAIR
 

@@ -1,4 +1,4 @@
-"""Reading a server's loop-lag histogram for the load generator (midstream.client._scrape)."""
+"""Reading a server's loop-lag histogram for the load generator (midstream.client.bench._scrape)."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import re
 
 import pytest
 from midstream._errors import InputError
-from midstream.client._scrape import (
+from midstream.client.bench._scrape import (
     LOOP_LAG_METRIC,
     Histogram,
     MetricsProbe,

@@ -8,15 +8,16 @@ import re
 import pytest
 from midstream import (
     DisfluencyLabel,
+    EndReason,
     HypothesisDiff,
     HypothesisUpdate,
     UtteranceFunction,
     UtteranceHypothesis,
     WordHypothesis,
 )
-from midstream.client._output import Printer
-from midstream.client._results import Ended, EndReason
-from midstream.client._view import Board, TerminalView
+from midstream.client._results import Ended
+from midstream.client.cli._output import Printer
+from midstream.client.cli._view import Board, TerminalView
 
 
 def _screen(output: str, width: int = 1000, height: int = 100_000) -> list[str]:

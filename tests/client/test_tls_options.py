@@ -17,8 +17,8 @@ import pytest
 from client_kit import models_dir_fixture  # noqa: F401 - fixtures are found by name
 from midstream import InputError, NotFoundError, UnavailableError
 from midstream.client import Client
-from midstream.client._cli import build_parser, main
-from midstream.client._common import read_ca
+from midstream.client.cli._common import read_ca
+from midstream.client.cli._main import build_parser, main
 from midstream.server import MidstreamServer, ServerConfig
 
 #: Every command that talks to a server (demo runs its own in-process).

@@ -20,7 +20,7 @@ from client_kit import (  # noqa: F401 - fixtures are found by name
 )
 from midstream import HypothesisUpdate, Word
 from midstream.client import AddWord, Client, Snapshot
-from midstream.client._cli import main
+from midstream.client.cli._main import main
 
 pytestmark = pytest.mark.corpus
 

@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 from midstream import Conversation, DisfluencyLabel, Repair, Utterance, UtteranceFunction, Word
-from midstream.client._cli import main
+from midstream.client.cli._main import main
 from midstream.corpora._stats import corpus_stats, repair_type
 from midstream.corpora._swda import parse_conversation, read_swda
 

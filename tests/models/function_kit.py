@@ -12,8 +12,8 @@ import random
 from midstream import Conversation, DisfluencyLabel, Utterance, Word
 from midstream._schemes import coarse_function
 from midstream.models._artifact import ModelArtifact
-from midstream.models._functions import FunctionFeatureConfig
-from midstream.models._train_functions import FunctionTrainingOptions, train_function_model
+from midstream.models.functions._tagger import FunctionFeatureConfig
+from midstream.models.functions._train import FunctionTrainingOptions, train_function_model
 
 F = DisfluencyLabel.FLUENT
 FILLER = DisfluencyLabel.FILLER

@@ -13,15 +13,15 @@ import pytest
 from midstream import Conversation, Utterance, UtteranceFunction, Word
 from midstream._errors import ModelError
 from midstream.models._artifact import ModelArtifact
-from midstream.models._boundary import (
+from midstream.models.boundaries._model import (
     BoundaryModel,
     boundary_features,
     overlap_flags,
 )
-from midstream.models._decoder import ChannelDecoder, TokenState
-from midstream.models._eval_words import evaluate_words
-from midstream.models._features import Token
-from midstream.models._wordmodel import WordModel
+from midstream.models.words._decoder import ChannelDecoder, TokenState
+from midstream.models.words._eval import evaluate_words
+from midstream.models.words._features import Token
+from midstream.models.words._model import WordModel
 from word_kit import invented_conversation, one_speaker, tiny_boundary_bytes, tiny_model
 
 

@@ -20,11 +20,11 @@ from hypothesis import strategies as st
 from midstream import Conversation, Utterance, UtteranceFunction, Word
 from midstream._errors import EventError
 from midstream.models._artifact import ModelArtifact
-from midstream.models._boundary import BoundaryModel, overlap_flags
-from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
-from midstream.models._functions import FunctionTagger, clean_view
-from midstream.models._wordmodel import WordModel
-from midstream.models._wordtags import channel_sequences
+from midstream.models.boundaries._model import BoundaryModel, overlap_flags
+from midstream.models.functions._tagger import FunctionTagger, clean_view
+from midstream.models.words._decoder import ChannelDecoder, DecoderConfig, TokenState
+from midstream.models.words._model import WordModel
+from midstream.models.words._tags import channel_sequences
 from word_kit import invented_conversation, tiny_artifact_bytes, tiny_boundary_bytes
 
 

@@ -10,12 +10,12 @@ import pytest
 from midstream import DisfluencyLabel, Word
 from midstream._errors import EventError, ModelError
 from midstream.models._artifact import ModelArtifact
-from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
-from midstream.models._features import features_at, tokens_from_words
 from midstream.models._lattice import decode_lattice, decode_window
-from midstream.models._train_words import train_word_artifact
-from midstream.models._wordmodel import WordModel
-from midstream.models._wordtags import channel_sequences
+from midstream.models.words._decoder import ChannelDecoder, DecoderConfig, TokenState
+from midstream.models.words._features import features_at, tokens_from_words
+from midstream.models.words._model import WordModel
+from midstream.models.words._tags import channel_sequences
+from midstream.models.words._train import train_word_artifact
 from word_kit import TINY, invented_conversation, tiny_model
 
 

@@ -23,9 +23,9 @@ from midstream import (
 )
 from midstream.models import ConversationEngine, EngineConfig, ModelBundle, ModelInfo
 from midstream.models._artifact import save_artifact
-from midstream.models._functions import FunctionTagger
-from midstream.models._train_words import WordTrainingConfig, train_word_artifact
-from midstream.models._wordmodel import WordModel
+from midstream.models.functions._tagger import FunctionTagger
+from midstream.models.words._model import WordModel
+from midstream.models.words._train import WordTrainingConfig, train_word_artifact
 
 
 @pytest.fixture(scope="module")

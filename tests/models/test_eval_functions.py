@@ -11,13 +11,13 @@ from function_kit import invented_conversation, invented_corpus, tiny_model
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from midstream.corpora import read_corpus
-from midstream.models._eval_functions import (
+from midstream.models.functions._eval import (
     AFTER_WORDS,
     classification_figures,
     evaluate_functions,
     replay_labels,
 )
-from midstream.models._functions import FunctionTagger, clean_view
+from midstream.models.functions._tagger import FunctionTagger, clean_view
 from sklearn.metrics import accuracy_score, f1_score, precision_recall_fscore_support
 
 WEIGHTS = Path(__file__).resolve().parents[2] / "models" / "weights"

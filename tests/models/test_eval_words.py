@@ -9,10 +9,10 @@ from pathlib import Path
 import pytest
 from midstream import DisfluencyLabel
 from midstream.corpora import read_corpus
-from midstream.models._decoder import ChannelDecoder
-from midstream.models._eval_words import BinaryCounts, evaluate_words, restart_kinds
-from midstream.models._wordmodel import WordModel, default_words_model_path
-from midstream.models._wordtags import channel_sequences, decode_tag
+from midstream.models.words._decoder import ChannelDecoder
+from midstream.models.words._eval import BinaryCounts, evaluate_words, restart_kinds
+from midstream.models.words._model import WordModel, default_words_model_path
+from midstream.models.words._tags import channel_sequences, decode_tag
 from sklearn.metrics import precision_recall_fscore_support
 from word_kit import invented_conversation, tiny_model
 

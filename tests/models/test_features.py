@@ -5,9 +5,9 @@ from __future__ import annotations
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from midstream import Conversation, Utterance, UtteranceFunction, Word
-from midstream.models._features import FeatureConfig, Token, feature_piece, features_at
-from midstream.models._wordclasses import CLOSED_CLASSES
-from midstream.models._wordtags import channel_sequences
+from midstream.models.words._classes import CLOSED_CLASSES
+from midstream.models.words._features import FeatureConfig, Token, feature_piece, features_at
+from midstream.models.words._tags import channel_sequences
 
 CONFIG = FeatureConfig(lexicon={"uh": "F", "um": "F", "mean": "E", "well": "D"},
                        restart_span=5, word_classes=dict(CLOSED_CLASSES), break_ahead=True)

@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 from midstream import Conversation, InputError, ModelError, UtteranceFunction
 from midstream._schemes import coarse_function
 from midstream.models._artifact import ModelArtifact
-from midstream.models._functions import (
+from midstream.models.functions._tagger import (
     MAX_FEATURE_WORDS,
     FunctionFeatureConfig,
     FunctionTagger,
@@ -24,13 +24,13 @@ from midstream.models._functions import (
     sequence_features,
     utterance_features,
 )
-from midstream.models._train_functions import (
+from midstream.models.functions._train import (
     FunctionTrainingOptions,
     build_sequences,
     conversation_folds,
     train_function_model,
 )
-from midstream.models._views import UtteranceView
+from midstream.models.functions._views import UtteranceView
 
 
 @pytest.fixture(scope="module")

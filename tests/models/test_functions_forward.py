@@ -23,7 +23,7 @@ from midstream import InputError
 from midstream.corpora import read_corpus
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
-from midstream.models._functions import (
+from midstream.models.functions._tagger import (
     MAX_FEATURE_WORDS,
     NGRAM_CACHE_SIZE,
     SHARED_WORDS,
@@ -37,7 +37,7 @@ from midstream.models._functions import (
     conversation_views,
     sequence_features,
 )
-from midstream.models._views import UtteranceView
+from midstream.models.functions._views import UtteranceView
 
 SHIPPED = Path(__file__).resolve().parents[2] / "models" / "weights" / "functions-swbd42.tagger"
 

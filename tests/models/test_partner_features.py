@@ -8,13 +8,13 @@ from function_kit import invented_corpus
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from midstream._errors import InputError
-from midstream.models._functions import (
+from midstream.models.functions._tagger import (
     MAX_FEATURE_WORDS,
     FunctionFeatureConfig,
     utterance_features,
 )
-from midstream.models._train_functions import FunctionTrainingOptions, build_sequences
-from midstream.models._views import UtteranceView
+from midstream.models.functions._train import FunctionTrainingOptions, build_sequences
+from midstream.models.functions._views import UtteranceView
 
 PARTNER = FunctionFeatureConfig(partner=True)
 

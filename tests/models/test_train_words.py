@@ -6,19 +6,19 @@ from dataclasses import replace
 
 import pytest
 from midstream import DisfluencyLabel, InputError
-from midstream.client._cmd_train import parse_tag_bias
+from midstream.client.cli._cmd_train import parse_tag_bias
 from midstream.models._artifact import ModelArtifact
-from midstream.models._eval_words import BinaryCounts
-from midstream.models._features import tokens_from_words
-from midstream.models._train_words import (
+from midstream.models.words._eval import BinaryCounts
+from midstream.models.words._features import tokens_from_words
+from midstream.models.words._model import WordModel
+from midstream.models.words._tags import channel_sequences, decode_tag
+from midstream.models.words._train import (
     expand_tag_bias,
     held_out_channels,
     sweep_tag_bias,
     train_word_artifact,
     tune_tag_bias,
 )
-from midstream.models._wordmodel import WordModel
-from midstream.models._wordtags import channel_sequences, decode_tag
 from word_kit import TINY, invented_conversation, tiny_model
 
 _HELD_OUT = [invented_conversation(seed) for seed in (500, 501, 502)]

@@ -1,4 +1,4 @@
-"""One utterance view for training and serving (models/_views.py ``build_view``).
+"""One utterance view for training and serving (models/functions/_views.py ``build_view``).
 
 The function model is trained on views built from a corpus's words and gold disfluency labels;
 the live engine builds them from the recogniser's words and the word tagger's labels. Both must
@@ -15,8 +15,8 @@ from midstream import DisfluencyLabel, Word
 from midstream._types import Conversation, Utterance, UtteranceHypothesis
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
-from midstream.models._functions import conversation_views
-from midstream.models._views import UtteranceView, build_view
+from midstream.models.functions._tagger import conversation_views
+from midstream.models.functions._views import UtteranceView, build_view
 
 F = DisfluencyLabel.FLUENT
 

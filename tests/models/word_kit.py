@@ -20,10 +20,10 @@ from midstream import (
     Word,
 )
 from midstream.models._artifact import ModelArtifact
-from midstream.models._boundary import BoundaryConfig
-from midstream.models._train_boundaries import BoundaryTrainingConfig, train_boundary_artifact
-from midstream.models._train_words import WordTrainingConfig, train_word_artifact
-from midstream.models._wordmodel import WordModel
+from midstream.models.boundaries._model import BoundaryConfig
+from midstream.models.boundaries._train import BoundaryTrainingConfig, train_boundary_artifact
+from midstream.models.words._model import WordModel
+from midstream.models.words._train import WordTrainingConfig, train_word_artifact
 
 _SENTENCES = (
     "we went to the store last week",

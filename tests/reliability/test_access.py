@@ -148,7 +148,7 @@ def test_serve_require_tls_without_certificate_refuses_to_start(models_dir: Path
     # The documented switch: `midstream serve --require-tls` never falls back to plaintext.
     # Run as its own process, as a user runs it (it owns its event loop and logging setup).
     done = subprocess.run(
-        [sys.executable, "-m", "midstream.client._cli", "serve", "--port", "0", "--models",
+        [sys.executable, "-m", "midstream.client.cli._main", "serve", "--port", "0", "--models",
          str(models_dir), "--require-tls"],
         capture_output=True, text=True, timeout=60, check=False)
     assert done.returncode != 0

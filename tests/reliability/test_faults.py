@@ -311,7 +311,7 @@ async def _serve_process(models_dir: Path, port: int = 0,
                          ) -> tuple[asyncio.subprocess.Process, int]:
     """``midstream serve`` in its own process; returns it and the port it listens on."""
     process = await asyncio.create_subprocess_exec(
-        sys.executable, "-m", "midstream.client._cli", "serve", "--port", str(port),
+        sys.executable, "-m", "midstream.client.cli._main", "serve", "--port", str(port),
         "--models", str(models_dir), stdout=asyncio.subprocess.PIPE)
     assert process.stdout is not None
     line = (await asyncio.wait_for(process.stdout.readline(), 60)).decode()

@@ -17,7 +17,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
-from midstream.client._demo_script import UTTERANCES
+from midstream.client.cli._demo_script import UTTERANCES
 from midstream.wire import midstream_pb2 as pb
 
 #: Seconds a redis-server may take to answer its first PING.

@@ -6,7 +6,7 @@ import argparse
 
 import pytest
 from midstream import InputError
-from midstream.client import _cmd_serve
+from midstream.client.cli import _cmd_serve
 from midstream.server import ServerConfig, SharedLogConfig
 
 

@@ -52,7 +52,7 @@ async def spawn_fixture(models_dir: Path, redis_server: RedisProcess,
 
     async def spawn(*extra: str) -> Replica:
         process = subprocess.Popen(
-            [sys.executable, "-m", "midstream.client._cli", "serve", "--port", "0",
+            [sys.executable, "-m", "midstream.client.cli._main", "serve", "--port", "0",
              "--models", str(models_dir), "--redis", redis_server.url, "--grace", "1",
              "--idle-timeout", "60", *extra],
             stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True,
@@ -202,7 +202,7 @@ async def test_kill_9_of_the_ingesting_replica_loses_and_repeats_no_word(
 async def test_workers_share_one_port_and_one_log(models_dir: Path,
                                                   redis_server: RedisProcess) -> None:
     process = subprocess.Popen(
-        [sys.executable, "-m", "midstream.client._cli", "serve", "--port", "0", "--workers",
+        [sys.executable, "-m", "midstream.client.cli._main", "serve", "--port", "0", "--workers",
          "2", "--models", str(models_dir), "--redis", redis_server.url, "--grace", "1"],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
     try:
@@ -259,7 +259,7 @@ async def test_workers_share_one_port_and_one_log(models_dir: Path,
 def test_workers_without_a_shared_log_are_refused(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.delenv("MIDSTREAM_REDIS", raising=False)
     result = subprocess.run(
-        [sys.executable, "-m", "midstream.client._cli", "serve", "--port", "0", "--workers",
+        [sys.executable, "-m", "midstream.client.cli._main", "serve", "--port", "0", "--workers",
          "2"], capture_output=True, text=True, timeout=120, check=False)
     assert result.returncode != 0
     assert "--workers 2 needs a shared log (--redis URL" in result.stderr

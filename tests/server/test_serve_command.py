@@ -15,7 +15,7 @@ from pathlib import Path
 import grpc
 import pytest
 from midstream import InputError, ModelError, NotFoundError, UnavailableError
-from midstream.client import _cmd_serve
+from midstream.client.cli import _cmd_serve
 from midstream.models import ModelBundle
 from midstream.server import MidstreamServer, ServerConfig
 from midstream.wire import midstream_pb2 as pb
@@ -33,7 +33,7 @@ from server_kit import (  # noqa: F401 - fixtures are found by name
 
 def _serve(*args: str, env: dict[str, str] | None = None) -> subprocess.Popen[str]:
     return subprocess.Popen(
-        [sys.executable, "-m", "midstream.client._cli", "serve", "--port", "0", *args],
+        [sys.executable, "-m", "midstream.client.cli._main", "serve", "--port", "0", *args],
         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
         env={**os.environ, **(env or {})},
     )

@@ -1,0 +1,213 @@
+"""Options and handler of ``midstream train functions`` (the utterance-function CRF).
+
+::
+
+    midstream train functions ../shared/corpora/swda --split train --scheme swbd42 \\
+        --augment 0.5 --c1 0.1 0.3 --c2 0.01 --cv-folds 3 --cv-subset 300 \\
+        --out functions-swbd42.tagger
+    midstream train functions my_calls.jsonl --scheme coarse --out functions-coarse.tagger
+    midstream train functions ../shared/corpora/swda ../shared/corpora/mrda \\
+        ../shared/corpora/maptask --split train --scheme coarse --partner-features \\
+        --oversample clarification_request=0 clarification_request=3 --out functions-coarse.tagger
+
+``midstream train`` (:mod:`midstream.client.cli._cmd_train`) registers the sub-command with
+:func:`add_training_arguments` and :func:`run`. The corpus is anything
+:func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of
+your own transcripts); several corpora are pooled. Given several ``--c1``/``--c2``/
+``--oversample`` values, the combinations are compared by conversation-grouped cross-validation
+on the first ``--cv-subset`` conversations (by id) of each corpus given, which must be training
+splits; the best is then trained on all of them. The score of a combination is, for one corpus,
+the mean of its gold-segmentation accuracy in the model's own scheme and its coarse accuracy
+after three received words; for pooled corpora, the mean over the corpora of coarse accuracy,
+coarse macro-F1 (gold segmentation: so that a corpus's rare classes count, and every corpus as
+much as another however many utterances it has) and the streamed coarse accuracy after three
+received words (what a live caller gets: a setting that helps whole conversations can hurt the
+bounded window a stream is labelled over).
+"""
+
+from __future__ import annotations
+
+import argparse
+import itertools
+import shlex
+import sys
+import time
+from collections.abc import Sequence
+from typing import TextIO
+
+from midstream._errors import InputError
+from midstream._types import Conversation
+from midstream.corpora import read_corpus
+from midstream.models._artifact import ModelArtifact, save_artifact
+from midstream.models.functions._eval import evaluate_functions
+from midstream.models.functions._tagger import SCHEMES, FunctionFeatureConfig, FunctionTagger
+from midstream.models.functions._train import (
+    FunctionTrainingOptions,
+    Scorer,
+    cross_validate,
+    train_function_model,
+)
+
+
+def add_training_arguments(parser: argparse.ArgumentParser) -> None:
+    """Add the function model's training options to ``parser``."""
+    defaults = FunctionTrainingOptions()
+    parser.add_argument("--scheme", choices=SCHEMES, default=defaults.scheme,
+                        help="label set: coarse functions, or SWBD-DAMSL 42 classes (SwDA only)")
+    parser.add_argument("--c1", type=float, nargs="+", default=[defaults.c1],
+                        help="L1 weight(s); several values are compared by cross-validation")
+    parser.add_argument("--c2", type=float, nargs="+", default=[defaults.c2],
+                        help="L2 weight(s); several values are compared by cross-validation")
+    parser.add_argument("--min-freq", type=int, default=defaults.min_freq,
+                        help="drop features seen fewer times in training")
+    parser.add_argument("--max-iterations", type=int, default=defaults.max_iterations)
+    parser.add_argument("--augment", type=float, default=defaults.augment,
+                        help="share of utterances cut to a random prefix in an augmented copy")
+    parser.add_argument("--seed", type=int, default=defaults.seed)
+    parser.add_argument("--partner-features", action="store_true",
+                        help="features of how an utterance echoes the partner's just before it "
+                             "(repeated words and numbers, short replies, alternatives)")
+    parser.add_argument("--opening-features", nargs="+", choices=("off", "on"), default=["off"],
+                        help="a feature naming a filler or editing term that opened the "
+                             "utterance and was cleaned away (\"sorry\"); 'off on' compares "
+                             "both by cross-validation")
+    parser.add_argument("--oversample", nargs="+", default=[""],
+                        metavar="LABEL=COPIES[,LABEL=COPIES...]",
+                        help="extra copies of a short window around each utterance of a label "
+                             "(several values are compared by cross-validation)")
+    parser.add_argument("--cv-folds", type=int, default=3,
+                        help="folds for comparing several --c1/--c2 values")
+    parser.add_argument("--cv-subset", type=int, default=300,
+                        help="conversations (first by id) used for cross-validation (0: all)")
+
+
+def _cv_score(scheme: str) -> Scorer:
+    def score(tagger: FunctionTagger, held: Sequence[Conversation]) -> dict[str, float]:
+        figures = evaluate_functions(held, tagger)
+        own = figures[f"utterance_functions.gold_segmentation.{scheme}.accuracy"]
+        early = figures["utterance_functions.accuracy_after_words.3"]
+        return {"accuracy": own, "after_3": early, "score": (own + early) / 2}
+    return score
+
+
+def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversation],
+                    *, out: TextIO | None = None) -> ModelArtifact:
+    """Choose hyper-parameters (if several are given) and train on ``conversations``.
+
+    Cross-validation progress goes to ``out`` (standard output when ``None``).
+    """
+    out = out if out is not None else sys.stdout
+    if not conversations:
+        raise InputError("the corpus holds no conversations to train on")
+    samplings = [parse_oversample(value) for value in args.oversample]
+    base = FunctionTrainingOptions(
+        scheme=args.scheme, c1=args.c1[0], c2=args.c2[0], min_freq=args.min_freq,
+        max_iterations=args.max_iterations, augment=args.augment, seed=args.seed,
+        config=FunctionFeatureConfig(partner=args.partner_features,
+                                     opening=args.opening_features[0] == "on"),
+        oversample=samplings[0])
+    grid = list(itertools.product(args.c1, args.c2, samplings, args.opening_features))
+    chosen = base
+    cv: dict[str, object] = {}
+    if len(grid) > 1:
+        if args.cv_folds < 2:
+            raise InputError(f"--cv-folds must be at least 2, got {args.cv_folds}")
+        corpora = sorted({c.corpus for c in conversations})
+        subset: list[Conversation] = []
+        for corpus in corpora:
+            some = sorted((c for c in conversations if c.corpus == corpus), key=lambda c: c.id)
+            subset += some[:args.cv_subset] if args.cv_subset else some
+        score = (_cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
+                 if len(corpora) == 1 else _pooled_score(corpora))
+        best = -1.0
+        for c1, c2, sampling, opening in grid:
+            config = FunctionFeatureConfig(partner=args.partner_features,
+                                           opening=opening == "on")
+            options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2,
+                                                 "oversample": sampling, "config": config})
+            figures = cross_validate(subset, options, folds=args.cv_folds, score=score)
+            name = f"c1={c1},c2={c2}" + (
+                f",oversample={_oversample_text(sampling)}" if sampling else "") + (
+                ",opening=on" if opening == "on" else "")
+            print(f"cv {name}: " + " ".join(
+                f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
+            cv[name] = {k: round(v, 4) for k, v in figures.items()}
+            if figures["score"] > best:
+                best, chosen = figures["score"], options
+        print(f"chosen c1={chosen.c1} c2={chosen.c2} "
+              f"oversample={_oversample_text(chosen.oversample) or '-'} "
+              f"opening={'on' if chosen.config.opening else 'off'}", file=out, flush=True)
+    command = "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:])
+    artifact = train_function_model(conversations, chosen, command=command)
+    if cv:
+        metadata = dict(artifact.metadata)
+        metadata["cross_validation"] = {"folds": args.cv_folds,
+                                        "subset": args.cv_subset, "grid": cv}
+        artifact = ModelArtifact(kind=artifact.kind, labels=artifact.labels, crf=artifact.crf,
+                                 features=artifact.features,
+                                 hyper_parameters=artifact.hyper_parameters, metadata=metadata)
+    return artifact
+
+
+def _pooled_score(corpora: Sequence[str]) -> Scorer:
+    def score(tagger: FunctionTagger, held: Sequence[Conversation]) -> dict[str, float]:
+        result: dict[str, float] = {}
+        parts: list[float] = []
+        prefix = "utterance_functions.gold_segmentation.coarse"
+        for corpus in corpora:
+            mine = [c for c in held if c.corpus == corpus]
+            if not mine:
+                continue
+            figures = evaluate_functions(mine, tagger)
+            accuracy = figures[f"{prefix}.accuracy"]
+            macro = figures[f"{prefix}.macro_f1"]
+            early = figures["utterance_functions.accuracy_after_words.3"]
+            result[f"{corpus}.accuracy"] = accuracy
+            result[f"{corpus}.macro_f1"] = macro
+            result[f"{corpus}.after_3"] = early
+            for label in ("question", "clarification_request"):
+                result[f"{corpus}.{label}_f1"] = figures.get(
+                    f"{prefix}.per_class.{label}.f1", 0.0)
+            parts += [accuracy, macro, early]
+        result["score"] = sum(parts) / len(parts) if parts else 0.0
+        return result
+    return score
+
+
+def parse_oversample(text: str) -> tuple[tuple[str, int], ...]:
+    """``"label=copies,label=copies"`` (empty: none) as :class:`FunctionTrainingOptions` takes it.
+
+    Examples
+    --------
+    >>> parse_oversample("clarification_request=3")
+    (('clarification_request', 3),)
+    """
+    pairs: list[tuple[str, int]] = []
+    for part in filter(None, text.split(",")):
+        label, sep, copies = part.partition("=")
+        if not sep or not label or not copies.isdigit():
+            raise InputError(f"--oversample {part!r}: expected LABEL=COPIES, e.g. "
+                             "clarification_request=3")
+        if int(copies):
+            pairs.append((label, int(copies)))
+    return tuple(pairs)
+
+
+def _oversample_text(pairs: Sequence[tuple[str, int]]) -> str:
+    return ",".join(f"{label}={copies}" for label, copies in pairs)
+
+
+def _fields(options: FunctionTrainingOptions) -> dict[str, object]:
+    return {name: getattr(options, name) for name in options.__dataclass_fields__}
+
+
+def run(args: argparse.Namespace) -> int:
+    """Handler of ``midstream train functions``: read, choose, train, write ``args.out``."""
+    started = time.monotonic()
+    conversations = [c for corpus in args.corpus for c in read_corpus(corpus, split=args.split)]
+    artifact = train_from_args(args, conversations)
+    save_artifact(artifact, args.out)
+    size = args.out.stat().st_size
+    print(f"wrote {args.out} ({size / 1e6:.1f} MB, {len(artifact.labels)} labels, "
+          f"{time.monotonic() - started:.0f} s)")
+    return 0

@@ -1,0 +1,289 @@
+"""Training the utterance-function CRF, and choosing its settings by grouped cross-validation.
+
+One training sequence is one conversation's utterances in time order (both speakers). To make the
+label of a *growing* utterance good after its first few words, training can add a copy of each
+conversation in which some utterances are cut to a random prefix and marked incomplete (prefix
+augmentation); the utterance after a cut one still sees the full previous utterance, as it would
+in a stream where the context is final.
+
+Cross-validation folds hold whole conversations, so no conversation contributes to both the
+training and the scoring side of a fold.
+"""
+
+from __future__ import annotations
+
+import logging
+import random
+import time
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass, field
+
+from midstream._errors import InputError
+from midstream._schemes import SWBD42_CLASSES
+from midstream._types import Conversation, UtteranceFunction
+from midstream.models._artifact import ModelArtifact
+from midstream.models._crf import train_crf
+from midstream.models.functions._tagger import (
+    SCHEMES,
+    Features,
+    FunctionFeatureConfig,
+    FunctionTagger,
+    clean_view,
+    conversation_views,
+    utterance_features,
+)
+from midstream.models.functions._views import UtteranceView
+
+_log = logging.getLogger(__name__)
+
+_SWBD42 = frozenset(SWBD42_CLASSES)
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class FunctionTrainingOptions:
+    """Settings of one training run (see :func:`train_function_model`).
+
+    Parameters
+    ----------
+    scheme
+        ``"coarse"`` (the seven coarse functions) or ``"swbd42"`` (the SWBD-DAMSL 42 classes; SwDA
+        conversations only).
+    c1, c2
+        L1 and L2 regularisation weights of the CRF.
+    min_freq
+        Features seen fewer times in training are dropped (shrinks the model).
+    max_iterations
+        L-BFGS iterations.
+    augment
+        Probability that an utterance of two or more cleaned words is cut to a random prefix in
+        the augmented copy of its conversation; 0 adds no copy.
+    config
+        Feature groups.
+    coarse_from
+        How a 42-class model derives its coarse function (``"sum"`` or ``"label"``).
+    seed
+        Seed of the augmentation's random cuts (training is otherwise deterministic).
+    oversample
+        ``(label, copies)`` pairs: for every utterance with that label, ``copies`` extra short
+        training sequences of it, the :data:`OVERSAMPLE_CONTEXT` utterances before it and the
+        :data:`OVERSAMPLE_AFTER` after it (the rare one cut to a random prefix with probability
+        ``augment``). crfsuite has no class weights;
+        repeating a rare class's windows is how its few examples weigh more, and the window is
+        what the streaming tagger decodes anyway.
+    """
+
+    scheme: str = "swbd42"
+    c1: float = 0.1
+    c2: float = 0.01
+    min_freq: int = 2
+    max_iterations: int = 100
+    augment: float = 0.5
+    config: FunctionFeatureConfig = field(default_factory=FunctionFeatureConfig)
+    coarse_from: str = "sum"
+    seed: int = 0
+    oversample: tuple[tuple[str, int], ...] = ()
+
+    def to_json(self) -> dict[str, object]:
+        return {
+            "scheme": self.scheme, "c1": self.c1, "c2": self.c2, "min_freq": self.min_freq,
+            "max_iterations": self.max_iterations, "augment": self.augment,
+            "coarse_from": self.coarse_from, "seed": self.seed,
+            "oversample": {label: copies for label, copies in self.oversample},
+        }
+
+
+#: Utterances before a rare one that its oversampled window holds: the streaming tagger's
+#: context (:data:`~midstream.models.functions._tagger.DEFAULT_CONTEXT`).
+OVERSAMPLE_CONTEXT = 4
+#: Utterances after it: windows that all ended on the rare class taught the tagger that the
+#: last position of a window (where a stream's current utterance always is) is that class.
+OVERSAMPLE_AFTER = 1
+
+
+def _label(conversation: Conversation, index: int, scheme: str) -> str:
+    utterance = conversation.utterances[index]
+    if scheme == "coarse":
+        return utterance.function.value
+    if utterance.fine_class not in _SWBD42:
+        raise InputError(
+            f"conversation {conversation.id} utterance {index}: class {utterance.fine_class!r} "
+            f"is not one of the SWBD-DAMSL 42 classes (train scheme 'swbd42' on SwDA only)"
+        )
+    return utterance.fine_class
+
+
+def _augmented(conversation: Conversation, views: Sequence[UtteranceView], rng: random.Random,
+               rate: float, config: FunctionFeatureConfig) -> list[Features]:
+    out: list[Features] = []
+    previous: UtteranceView | None = None
+    for utterance, view in zip(conversation.utterances, views, strict=True):
+        shown = view
+        n = len(utterance.words)
+        if n >= 2 and rng.random() < rate:
+            # Cut after a random number of *received* words, as a stream would show it.
+            shown = clean_view(conversation, utterance, upto=rng.randint(1, n - 1))
+        out.append(utterance_features(shown, previous, config))
+        # The next utterance sees this one whole: in a stream its context is final.
+        previous = view
+    return out
+
+
+def build_sequences(conversations: Iterable[Conversation],
+                    options: FunctionTrainingOptions) -> tuple[list[list[Features]],
+                                                               list[list[str]]]:
+    """Feature and label sequences for training: one per conversation, plus augmented copies."""
+    if options.scheme not in SCHEMES:
+        raise InputError(f"unknown function scheme {options.scheme!r} "
+                         f"(known: {', '.join(SCHEMES)})")
+    xseqs: list[list[Features]] = []
+    yseqs: list[list[str]] = []
+    copies = dict(options.oversample)
+    known = ({f.value for f in UtteranceFunction} if options.scheme == "coarse" else _SWBD42)
+    unknown = sorted(set(copies) - known)
+    if unknown:
+        raise InputError(f"cannot oversample {', '.join(unknown)}: not a label of scheme "
+                         f"{options.scheme!r}")
+    for conversation in conversations:
+        if not conversation.utterances:
+            continue
+        views = conversation_views(conversation)
+        labels = [_label(conversation, i, options.scheme) for i in range(len(views))]
+        previous: UtteranceView | None = None
+        xseq: list[Features] = []
+        for view in views:
+            xseq.append(utterance_features(view, previous, options.config))
+            previous = view
+        xseqs.append(xseq)
+        yseqs.append(labels)
+        if options.augment > 0:
+            # A string seed is hashed deterministically (not with Python's salted hash).
+            rng = random.Random(f"{options.seed}:{conversation.id}")
+            xseqs.append(_augmented(conversation, views, rng, options.augment, options.config))
+            yseqs.append(labels)
+        if copies:
+            rng = random.Random(f"{options.seed}:rare:{conversation.id}")
+            for i, label in enumerate(labels):
+                for _ in range(copies.get(label, 0)):
+                    xseqs.append(_rare_window(conversation, views, i, xseq=xseq, rng=rng,
+                                              rate=options.augment, config=options.config))
+                    yseqs.append(labels[max(0, i - OVERSAMPLE_CONTEXT):i + 1 + OVERSAMPLE_AFTER])
+    return xseqs, yseqs
+
+
+def _rare_window(conversation: Conversation, views: Sequence[UtteranceView], index: int, *,
+                 xseq: Sequence[Features], rng: random.Random, rate: float,
+                 config: FunctionFeatureConfig) -> list[Features]:
+    """Utterance ``index`` with the ones before it, as the streaming tagger decodes it, and
+    :data:`OVERSAMPLE_AFTER` after it: the window's first utterance opens the chain, the rare
+    one is cut to a prefix with probability ``rate``."""
+    start = max(0, index - OVERSAMPLE_CONTEXT)
+    window: list[Features] = []
+    if index > start:
+        window.append(utterance_features(views[start], None, config))
+        window.extend(xseq[start + 1:index])
+    utterance = conversation.utterances[index]
+    shown = views[index]
+    n = len(utterance.words)
+    if n >= 2 and rng.random() < rate:
+        shown = clean_view(conversation, utterance, upto=rng.randint(1, n - 1))
+    previous = views[index - 1] if index > start else None
+    window.append(utterance_features(shown, previous, config))
+    # The utterances after it see it whole, as a stream's context is final.
+    window.extend(xseq[index + 1:index + 1 + OVERSAMPLE_AFTER])
+    return window
+
+
+def train_function_model(conversations: Iterable[Conversation],
+                         options: FunctionTrainingOptions = FunctionTrainingOptions(),
+                         *, command: str = "") -> ModelArtifact:
+    """Train an utterance-function CRF on annotated conversations.
+
+    Parameters
+    ----------
+    conversations
+        Conversations with gold utterance functions; disfluency labels, where present, clean the
+        utterances (conversations without them keep all words).
+    options
+        Scheme, hyper-parameters, augmentation and features.
+    command
+        The command line that started training, recorded in the artifact's provenance.
+
+    Returns
+    -------
+    ModelArtifact
+        Of kind ``"utterance_functions"``; load it with :meth:`FunctionTagger.from_artifact`.
+
+    Raises
+    ------
+    InputError
+        An unknown scheme, a class outside the scheme, or no utterances at all.
+    ModelError
+        The CRF trainer failed.
+    """
+    conversations = list(conversations)
+    started = time.monotonic()
+    xseqs, yseqs = build_sequences(conversations, options)
+    if not xseqs:
+        raise InputError("no utterances to train the function model on")
+    _log.info("training function model (%s) on %d conversations, %d sequences",
+              options.scheme, len(conversations), len(xseqs))
+    crf = train_crf(xseqs, yseqs, c1=options.c1, c2=options.c2, min_freq=options.min_freq,
+                    max_iterations=options.max_iterations)
+    seconds = time.monotonic() - started
+    counts: dict[str, int] = {}
+    for conversation in conversations:
+        counts[conversation.corpus] = counts.get(conversation.corpus, 0) + 1
+    labels = sorted({y for ys in yseqs for y in ys})
+    return ModelArtifact(
+        kind="utterance_functions",
+        labels=tuple(labels),
+        crf=crf,
+        features={"scheme": options.scheme, "config": options.config.to_json(),
+                  "coarse_from": options.coarse_from},
+        hyper_parameters=options.to_json(),
+        metadata={
+            "training": {
+                "conversations": counts,
+                "utterances": sum(len(c.utterances) for c in conversations),
+                "seconds": round(seconds, 1),
+            },
+            "command": command,
+        },
+    )
+
+
+def conversation_folds(conversations: Sequence[Conversation], k: int) -> list[list[int]]:
+    """Indices of ``conversations`` split into ``k`` folds of whole conversations.
+
+    The assignment depends only on the conversation ids (sorted, then dealt round-robin), so it
+    is reproducible and independent of input order.
+    """
+    if k < 2:
+        raise InputError(f"cross-validation needs at least 2 folds, got {k}")
+    if len(conversations) < k:
+        raise InputError(f"{len(conversations)} conversations cannot fill {k} folds")
+    order = sorted(range(len(conversations)), key=lambda i: conversations[i].id)
+    return [order[f::k] for f in range(k)]
+
+
+Scorer = Callable[[FunctionTagger, Sequence[Conversation]], dict[str, float]]
+
+
+def cross_validate(conversations: Sequence[Conversation], options: FunctionTrainingOptions,
+                   *, folds: int, score: Scorer) -> dict[str, float]:
+    """Mean of ``score``'s figures over conversation-grouped folds (train split only!).
+
+    ``score(tagger, held_out)`` returns named figures for one fold; their means are returned.
+    """
+    parts = conversation_folds(conversations, folds)
+    totals: dict[str, float] = {}
+    for f, held in enumerate(parts):
+        held_set = set(held)
+        train = [c for i, c in enumerate(conversations) if i not in held_set]
+        artifact = train_function_model(train, options)
+        tagger = FunctionTagger.from_artifact(artifact)
+        figures = score(tagger, [conversations[i] for i in held])
+        _log.info("fold %d/%d: %s", f + 1, folds, figures)
+        for name, value in figures.items():
+            totals[name] = totals.get(name, 0.0) + value
+    return {name: value / folds for name, value in totals.items()}

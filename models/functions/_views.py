@@ -1,0 +1,131 @@
+"""The utterance as the function tagger sees it, the one rule that builds it, and the check of
+one a caller built.
+
+:func:`build_view` is the only place that decides which words of an utterance the function tagger
+sees: training and offline evaluation (gold labels,
+:func:`~midstream.models.functions._tagger.clean_view`) and the live engine (the word tagger's
+labels) all call it, so a model is served the view it was trained on. The same holds for the
+context: every utterance, also one with no word left after cleaning ("uh"), takes its place on the
+chain, offline and live.
+
+Kept apart from :mod:`~midstream.models.functions._tagger` because that module may be compiled
+(``core/_build.py``): a compiled dataclass checks its field types itself and a compiled function
+its argument types, so a caller's malformed view would raise a bare ``TypeError`` before
+:func:`check_view` could name the problem as an :class:`~midstream.InputError`. Here, as plain
+Python, the view holds whatever it was given until it is checked.
+"""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Iterable
+from dataclasses import dataclass
+
+from midstream._errors import InputError
+from midstream._types import REMOVED_FROM_CLEAN_TEXT, DisfluencyLabel
+
+__all__ = ["UtteranceView", "build_view", "check_view"]
+
+# Removed opening words whose identity the view keeps: a filled pause or an editing term says
+# how the speaker starts ("sorry", "pardon", "uh"); a reparandum or restart is content that the
+# repair replaces, already seen in the words that follow.
+_OPENING_LABELS = frozenset({DisfluencyLabel.FILLER, DisfluencyLabel.EDIT_TERM})
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class UtteranceView:
+    """One utterance as the function tagger sees it.
+
+    Parameters
+    ----------
+    speaker
+        Speaker id; only equality with the previous utterance's speaker is used.
+    words
+        The cleaned words, lower case, in order (disfluent words already removed).
+    removed
+        How many words were removed as filler, editing term, reparandum or restart.
+    complete
+        ``False`` while the utterance may still grow; ``True`` once it has ended (an abandoned
+        utterance too: a live stream cannot tell abandoned from ended, so training does not
+        either).
+    opening
+        The utterance's first word when it was removed as a filler or an editing
+        term; ``""`` otherwise. Cleaning takes "sorry" out of "sorry which day" as an editing
+        term, yet the word is the opening cue of a repetition request, so the view keeps which
+        word it was.
+    """
+
+    speaker: str
+    words: tuple[str, ...]
+    removed: int = 0
+    complete: bool = True
+    opening: str = ""
+
+    def prefix(self, n: int) -> UtteranceView:
+        """The view after only the first ``n`` cleaned words (incomplete when ``n`` is short)."""
+        if n >= len(self.words):
+            return self
+        return UtteranceView(speaker=self.speaker, words=self.words[:n], removed=self.removed,
+                             complete=False, opening=self.opening)
+
+
+def build_view(speaker: str, words: Iterable[tuple[str, bool, DisfluencyLabel | None]], *,
+               complete: bool) -> UtteranceView:
+    """The view of an utterance from its received words, offline and live alike.
+
+    Parameters
+    ----------
+    speaker
+        The utterance's speaker.
+    words
+        ``(text, fragment, label)`` of each received word in order; ``label`` is ``None`` where
+        no disfluency labels exist (a conversation without that annotation keeps every word).
+    complete
+        Whether the utterance has ended.
+
+    Returns
+    -------
+    UtteranceView
+        Words labelled filler, editing term, reparandum or restart are removed and counted;
+        word fragments ("s-") and empty texts are dropped uncounted, because recognisers
+        rarely emit fragments and a model should not learn from what it will not be given.
+        When the first kept-or-removed word is a filler or an editing term, its text is the
+        view's ``opening``.
+
+    Examples
+    --------
+    >>> F, R = DisfluencyLabel.FLUENT, DisfluencyLabel.FILLER
+    >>> build_view("A", [("uh", False, R), ("s", True, F), ("so", False, F)], complete=True)
+    UtteranceView(speaker='A', words=('so',), removed=1, complete=True, opening='uh')
+    """
+    kept: list[str] = []
+    removed = 0
+    opening = ""
+    first = True
+    for text, fragment, label in words:
+        if first and text and not fragment:
+            # Fragments and empty texts are not words a recogniser gives, so the first word is
+            # the first whole one.
+            first = False
+            if label in _OPENING_LABELS:
+                opening = text
+        if label is not None and label in REMOVED_FROM_CLEAN_TEXT:
+            removed += 1
+        elif text and not fragment:
+            kept.append(text)
+    return UtteranceView(speaker=speaker, words=tuple(kept), removed=removed, complete=complete,
+                         opening=opening)
+
+
+def check_view(view: object) -> UtteranceView:
+    """Return ``view`` if it is a well-formed :class:`UtteranceView`, else raise InputError."""
+    if not isinstance(view, UtteranceView):
+        raise InputError(f"expected an UtteranceView, got {type(view).__name__}")
+    words = view.words
+    if not isinstance(words, tuple) or not all(map(isinstance, words, itertools.repeat(str))):
+        raise InputError("UtteranceView.words must be a tuple of strings")
+    if view.removed < 0:
+        raise InputError(f"UtteranceView.removed must be >= 0, got {view.removed}")
+    if not isinstance(view.opening, str):
+        raise InputError("UtteranceView.opening must be a string")
+    return view

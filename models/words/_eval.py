@@ -1,0 +1,356 @@
+"""Evaluating the word model by replaying annotated conversations word by word.
+
+Every speaker channel is fed to a :class:`~midstream.models.words._decoder.ChannelDecoder` one word
+at a time, and every state the decoder reports is recorded with the step (the channel position of
+the newest word) at which it was said. Scores use only what the stream had said at each moment; no
+gold boundary is ever given to the decoder.
+
+Reported keys (all in ``[0, 1]`` unless a unit is named):
+
+``disfluency.<label>.{precision,recall,f1}``
+    word-level scores of each :class:`~midstream.DisfluencyLabel` on the final streaming output
+    (the positive class is the label; gold from the corpus annotation).
+``disfluency.reparandum_no_fragments.f1``
+    reparandum F1 with word fragments left out (recognisers rarely emit fragments).
+``disfluency.edited_no_fragments.f1``
+    F1 of EDITED words, fragments left out: a word counts as edited when it is a reparandum or
+    a restart word, on both sides. This is how published Switchboard disfluency figures are
+    scored (the Treebank's EDITED nodes cover reparanda and restarts; Charniak & Johnson,
+    NAACL 2001, and Johnson & Charniak, ACL 2004, score words under EDITED, fragments
+    excluded: from memory).
+``disfluency.restart.{bracket,abandoned}.{precision,recall,f1}``
+    restart words of each kind (``corpora/_restarts.py``). Gold kind: a restart word inside an
+    abandoned utterance is ``abandoned``, any other ``bracket``. Predicted kind: a restart word
+    whose run of restart words (fillers and editing terms inside it skipped) reaches a predicted
+    utterance end is ``abandoned``, any other ``bracket``. ``disfluency.restart.*`` counts both.
+``disfluency.offline.reparandum.f1``
+    the same model decoding each whole channel at once (crfsuite's own Viterbi).
+``incremental.edit_overhead``
+    share of label edits that were unnecessary (Baumann, Buß & Schlangen, Dialogue & Discourse
+    2011): each word's first label and every change count as an edit; one per word is necessary.
+``incremental.time_to_detection_words.median`` and ``incremental.detection_rate``
+    for gold repairs with an onset: words of the channel from the repair onset until the
+    reparandum's first word was first labelled reparandum (negative: before the onset arrived),
+    and the share of such reparanda ever so labelled.
+``incremental.final_decision_delay_words.mean``
+    words that arrived after a word before it became final.
+``incremental.reparandum_f1_at_delay.{0,1,2}``
+    reparandum F1 of the labels as they stood ``d`` words after each word arrived.
+``segmentation.{precision,recall,f1}``
+    utterance ends (the last word of each gold utterance in its speaker's channel), final output.
+    Words are fed with the times, speaker changes and overlaps the corpus gives (MRDA has word
+    times; SwDA and Map Task none), and no caller hint.
+
+Disfluency metrics use disfluency-annotated conversations only (NaN when there is none);
+segmentation uses all.
+"""
+
+from __future__ import annotations
+
+import statistics
+import sys
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+
+from midstream._types import Conversation, DisfluencyLabel
+from midstream.models.boundaries._model import BoundaryModel, overlap_flags
+from midstream.models.words._decoder import ChannelDecoder, DecoderConfig, TokenState
+from midstream.models.words._features import tokens_from_words
+from midstream.models.words._model import WordModel
+from midstream.models.words._tags import ChannelSequence, channel_sequences, decode_tag
+from tqdm import tqdm
+
+__all__ = ["BinaryCounts", "evaluate_words", "offline_scores"]
+
+_DELAYS = (0, 1, 2)
+_RESTART_KINDS = ("bracket", "abandoned")
+_EDITED = frozenset({DisfluencyLabel.REPARANDUM, DisfluencyLabel.RESTART})
+#: Labels a run of restart words may hold without ending (they stay inside brackets too).
+_INSIDE_RESTART = frozenset({DisfluencyLabel.FILLER, DisfluencyLabel.EDIT_TERM})
+
+
+def restart_kinds(labels: Sequence[DisfluencyLabel | None], ends: Sequence[bool]) -> list[str]:
+    """The kind of each restart word of one channel ("" for other words).
+
+    A restart word is ``abandoned`` when its run of restart words (fillers and editing terms
+    inside it skipped) reaches an utterance end, else ``bracket``.
+
+    >>> R, F = DisfluencyLabel.RESTART, DisfluencyLabel.FLUENT
+    >>> restart_kinds([R, F, R, R], [False, False, False, True])
+    ['bracket', '', 'abandoned', 'abandoned']
+    """
+    kinds = [""] * len(labels)
+    kind = "bracket"  # what a restart word gets at this point, walking right to left
+    for position in range(len(labels) - 1, -1, -1):
+        label = labels[position]
+        if label is DisfluencyLabel.RESTART or label in _INSIDE_RESTART:
+            if ends[position]:
+                kind = "abandoned"
+            if label is DisfluencyLabel.RESTART:
+                kinds[position] = kind
+        else:
+            kind = "bracket"
+    return kinds
+
+
+@dataclass(slots=True)
+class BinaryCounts:
+    """True positives, false positives and false negatives of one binary decision."""
+
+    tp: int = 0
+    fp: int = 0
+    fn: int = 0
+
+    def add(self, predicted: bool, gold: bool) -> None:
+        if predicted and gold:
+            self.tp += 1
+        elif predicted:
+            self.fp += 1
+        elif gold:
+            self.fn += 1
+
+    @property
+    def precision(self) -> float:
+        return self.tp / (self.tp + self.fp) if self.tp + self.fp else 0.0
+
+    @property
+    def recall(self) -> float:
+        return self.tp / (self.tp + self.fn) if self.tp + self.fn else 0.0
+
+    @property
+    def f1(self) -> float:
+        denominator = 2 * self.tp + self.fp + self.fn
+        return 2 * self.tp / denominator if denominator else 0.0
+
+
+@dataclass(slots=True)
+class _Tally:
+    labels: dict[DisfluencyLabel, BinaryCounts] = field(
+        default_factory=lambda: {label: BinaryCounts() for label in DisfluencyLabel}
+    )
+    no_fragments: BinaryCounts = field(default_factory=BinaryCounts)
+    edited: BinaryCounts = field(default_factory=BinaryCounts)
+    restart_kinds: dict[str, BinaryCounts] = field(
+        default_factory=lambda: {kind: BinaryCounts() for kind in _RESTART_KINDS}
+    )
+    offline: BinaryCounts = field(default_factory=BinaryCounts)
+    at_delay: dict[int, BinaryCounts] = field(
+        default_factory=lambda: {d: BinaryCounts() for d in _DELAYS}
+    )
+    segmentation: BinaryCounts = field(default_factory=BinaryCounts)
+    edits: int = 0
+    edited_words: int = 0
+    detection_delays: list[int] = field(default_factory=list)
+    gold_repairs: int = 0
+    final_delays: list[int] = field(default_factory=list)
+
+
+def _gold_labels(channel: ChannelSequence) -> list[DisfluencyLabel] | None:
+    if channel.tags is None:
+        return None
+    return [decode_tag(t)[1] for t in channel.tags]
+
+
+@dataclass(slots=True)
+class _Stream:
+    """What streaming one channel said: label changes per word and the final states."""
+
+    history: list[list[tuple[int, DisfluencyLabel]]]
+    final_label: list[DisfluencyLabel | None]
+    final_end: list[bool]
+    final_step: list[int]
+
+
+def _stream_channel(channel: ChannelSequence, model: WordModel, config: DecoderConfig,
+                    boundary: BoundaryModel | None = None,
+                    overlap: Sequence[bool] | None = None) -> _Stream:
+    decoder = ChannelDecoder(model, config, boundary)
+    n = len(channel.words)
+    stream = _Stream(history=[[] for _ in range(n)], final_label=[None] * n,
+                     final_end=[False] * n, final_step=[n - 1] * n)
+
+    def record(states: Iterable[TokenState], step: int) -> None:
+        for state in states:
+            key = state.key
+            steps = stream.history[key]
+            if not steps or steps[-1][1] != state.label:
+                steps.append((step, state.label))
+            if state.final:
+                stream.final_label[key] = state.label
+                stream.final_end[key] = state.ends_utterance
+                stream.final_step[key] = step
+
+    other_words = channel.other_words or (0,) * n  # a channel built without the counts
+    for position, word in enumerate(channel.words):
+        record(
+            decoder.append(position, word,
+                           after_other_speaker=channel.after_other_speaker[position],
+                           other_words=other_words[position],
+                           overlap=overlap is not None and overlap[channel.indices[position]]),
+            position,
+        )
+    record(decoder.finish(), n - 1)
+    return stream
+
+
+def streaming_final_labels(conversation: Conversation, model: WordModel,
+                           config: DecoderConfig | None = None) -> list[DisfluencyLabel]:
+    """The final label of every word of ``conversation`` (conversation order), as scored.
+
+    This is exactly what :func:`evaluate_words` scores: each speaker channel streamed word by
+    word through a :class:`ChannelDecoder`.
+    """
+    labels: list[DisfluencyLabel | None] = [None] * len(conversation.words)
+    for channel in channel_sequences(conversation):
+        stream = _stream_channel(channel, model, config or DecoderConfig())
+        for position, index in enumerate(channel.indices):
+            labels[index] = stream.final_label[position]
+    if any(label is None for label in labels):
+        raise AssertionError("a word was left without a final label")
+    return [label for label in labels if label is not None]
+
+
+def _replay(
+    channel: ChannelSequence, model: WordModel, config: DecoderConfig, tally: _Tally,
+    conversation: Conversation, *, boundary: BoundaryModel | None = None,
+    overlap: Sequence[bool] | None = None,
+) -> None:
+    n = len(channel.words)
+    stream = _stream_channel(channel, model, config, boundary, overlap)
+    history, final_label = stream.history, stream.final_label
+    final_end, final_step = stream.final_end, stream.final_step
+
+    for position in range(n):
+        tally.segmentation.add(final_end[position], channel.ends[position])
+    gold = _gold_labels(channel)
+    if gold is None:
+        return
+    predicted = final_label
+    for position in range(n):
+        label = predicted[position]
+        assert label is not None, "decoder left a word without a final state"
+        for name, counts in tally.labels.items():
+            counts.add(label == name, gold[position] == name)
+        is_rep = gold[position] == DisfluencyLabel.REPARANDUM
+        if not channel.words[position].fragment:
+            tally.no_fragments.add(label == DisfluencyLabel.REPARANDUM, is_rep)
+        for d in _DELAYS:
+            step = position + d
+            at = [lab for s, lab in history[position] if s <= step]
+            tally.at_delay[d].add(bool(at) and at[-1] == DisfluencyLabel.REPARANDUM, is_rep)
+        tally.edits += len(history[position])
+        tally.edited_words += 1
+        tally.final_delays.append(final_step[position] - position)
+    for position in range(n):
+        if not channel.words[position].fragment:
+            tally.edited.add(predicted[position] in _EDITED, gold[position] in _EDITED)
+    predicted_kind = restart_kinds(predicted, final_end)
+    abandoned = {i for u in conversation.utterances if u.abandoned for i in u.words}
+    for position, index in enumerate(channel.indices):
+        gold_kind = ""
+        if gold[position] is DisfluencyLabel.RESTART:
+            gold_kind = "abandoned" if index in abandoned else "bracket"
+        for kind, counts in tally.restart_kinds.items():
+            counts.add(predicted_kind[position] == kind, gold_kind == kind)
+    offline = model.tag_tokens(tokens_from_words(
+        channel.words, channel.after_other_speaker, channel.other_words))
+    for position, tag in enumerate(offline):
+        tally.offline.add(
+            decode_tag(tag)[1] == DisfluencyLabel.REPARANDUM,
+            gold[position] == DisfluencyLabel.REPARANDUM,
+        )
+    # Time to detection, over the gold repairs of this channel that have an onset.
+    where = {index: position for position, index in enumerate(channel.indices)}
+    for repair in conversation.repairs:
+        if repair.repair_onset is None or repair.reparandum[0] not in where:
+            continue
+        onset = where.get(repair.repair_onset)
+        if onset is None:
+            continue
+        tally.gold_repairs += 1
+        first = where[repair.reparandum[0]]
+        detected = [s for s, lab in history[first] if lab == DisfluencyLabel.REPARANDUM]
+        if detected:
+            tally.detection_delays.append(detected[0] - onset)
+
+
+def evaluate_words(
+    conversations: Iterable[Conversation],
+    model: WordModel,
+    *,
+    config: DecoderConfig | None = None,
+    progress: bool = False,
+    boundary: BoundaryModel | None = None,
+) -> dict[str, float]:
+    """Replay every conversation's channels and score them (keys in the module docstring).
+
+    ``boundary``: the boundary model whose timing evidence joins the word model's utterance
+    ends, as in the server (``None``: the word model alone).
+    """
+    config = DecoderConfig() if config is None else config
+    tally = _Tally()
+    conversations = list(conversations)
+    for conversation in tqdm(conversations, desc="evaluate words", file=sys.stderr,
+                             disable=not progress):
+        overlap = overlap_flags(conversation) if boundary is not None else None
+        for channel in channel_sequences(conversation):
+            _replay(channel, model, config, tally, conversation, boundary=boundary,
+                    overlap=overlap)
+    result: dict[str, float] = {}
+    for label, counts in tally.labels.items():
+        result[f"disfluency.{label.value}.precision"] = counts.precision
+        result[f"disfluency.{label.value}.recall"] = counts.recall
+        result[f"disfluency.{label.value}.f1"] = counts.f1
+    result["disfluency.reparandum_no_fragments.f1"] = tally.no_fragments.f1
+    result["disfluency.edited_no_fragments.f1"] = tally.edited.f1
+    for kind, counts in tally.restart_kinds.items():
+        result[f"disfluency.restart.{kind}.precision"] = counts.precision
+        result[f"disfluency.restart.{kind}.recall"] = counts.recall
+        result[f"disfluency.restart.{kind}.f1"] = counts.f1
+    result["disfluency.offline.reparandum.f1"] = tally.offline.f1
+    overhead = tally.edits - tally.edited_words
+    result["incremental.edit_overhead"] = overhead / tally.edits if tally.edits else 0.0
+    result["incremental.time_to_detection_words.median"] = (
+        float(statistics.median(tally.detection_delays)) if tally.detection_delays
+        else float("nan")
+    )
+    result["incremental.detection_rate"] = (
+        len(tally.detection_delays) / tally.gold_repairs if tally.gold_repairs else 0.0
+    )
+    result["incremental.final_decision_delay_words.mean"] = (
+        statistics.fmean(tally.final_delays) if tally.final_delays else float("nan")
+    )
+    for d, counts in tally.at_delay.items():
+        result[f"incremental.reparandum_f1_at_delay.{d}"] = counts.f1
+    if not tally.edited_words:
+        # No disfluency-annotated conversation: these figures are unknown, not zero.
+        result = {k: float("nan") for k in result}
+    result["segmentation.precision"] = tally.segmentation.precision
+    result["segmentation.recall"] = tally.segmentation.recall
+    result["segmentation.f1"] = tally.segmentation.f1
+    return result
+
+
+def offline_scores(conversations: Sequence[Conversation], model: WordModel) -> dict[str, float]:
+    """Quick offline scores (whole channels at once) used by cross-validation."""
+    reparandum = BinaryCounts()
+    filler = BinaryCounts()
+    segmentation = BinaryCounts()
+    for conversation in conversations:
+        for channel in channel_sequences(conversation):
+            tokens = tokens_from_words(channel.words, channel.after_other_speaker,
+                                       channel.other_words)
+            tags = [decode_tag(t) for t in model.tag_tokens(tokens)]
+            gold = _gold_labels(channel)
+            for position, (_, label, ends) in enumerate(tags):
+                segmentation.add(ends, channel.ends[position])
+                if gold is not None:
+                    reparandum.add(label == DisfluencyLabel.REPARANDUM,
+                                   gold[position] == DisfluencyLabel.REPARANDUM)
+                    filler.add(label == DisfluencyLabel.FILLER,
+                               gold[position] == DisfluencyLabel.FILLER)
+    return {
+        "reparandum_f1": reparandum.f1,
+        "filler_f1": filler.f1,
+        "segmentation_f1": segmentation.f1,
+    }
