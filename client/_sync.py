@@ -148,11 +148,12 @@ class SyncClient:
         return self._run(self._client.reload_models(directory))
 
     def converse(self, conversation_id: str | None = None, *, resume: bool = False,
+                 server_ticks: bool = False,
                  buffer: int = DEFAULT_BUFFER) -> SyncConversation:
         """See :meth:`Client.converse`; use the result with ``with``. ``buffer`` as for
         :meth:`converse_many`."""
-        return SyncConversation(self, self._client.converse(conversation_id, resume=resume),
-                                buffer)
+        return SyncConversation(self, self._client.converse(
+            conversation_id, resume=resume, server_ticks=server_ticks), buffer)
 
     def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
                       buffer: int = DEFAULT_BUFFER) -> SyncMultiplexedStream:
