@@ -343,13 +343,20 @@ class Client:
 
     # --- unary calls --------------------------------------------------------------------------
 
-    async def tag_transcript(self, events: Iterable[AddWord | SpeakerHint]) -> TaggedTranscript:
-        """Tag a whole transcript in one call; every hypothesis returned is final."""
+    async def tag_transcript(self, events: Iterable[AddWord | SpeakerHint | TimeTick],
+                             ) -> TaggedTranscript:
+        """Tag a whole transcript in one call; every hypothesis returned is final.
+
+        A :class:`TimeTick` among the events weighs the silence up to its time as on a live
+        stream (an utterance it closes stays closed).
+        """
         items = []
         for event in events:
             if isinstance(event, AddWord):
                 items.append(pb.TranscriptItem(
                     word=_convert.spoken_word_to_wire(event.word_id, event.word)))
+            elif isinstance(event, TimeTick):
+                items.append(pb.TranscriptItem(tick=_convert.tick_to_wire(event.time)))
             else:
                 items.append(pb.TranscriptItem(
                     hint=_convert.hint_to_wire(event.speaker, turn_end=event.turn_end)))

@@ -41,6 +41,7 @@ from midstream.client._results import (
     ServerEvent,
     SpeakerHint,
     TaggedTranscript,
+    TimeTick,
 )
 
 _T = TypeVar("_T")
@@ -127,7 +128,8 @@ class SyncClient:
                                    "call connect() first")
         return asyncio.run_coroutine_threadsafe(coroutine, self._loop).result()
 
-    def tag_transcript(self, events: Iterable[AddWord | SpeakerHint]) -> TaggedTranscript:
+    def tag_transcript(self, events: Iterable[AddWord | SpeakerHint | TimeTick],
+                       ) -> TaggedTranscript:
         """See :meth:`Client.tag_transcript`."""
         return self._run(self._client.tag_transcript(list(events)))
 

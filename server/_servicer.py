@@ -677,8 +677,10 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                 check_id(speaker, "hint.speaker", self._limits)
                 timeline.check_speaker(speaker)
                 keep(engine.hint(speaker, turn_end=turn_end))
+            elif kind == "tick":
+                keep(engine.tick(cv.tick_from_wire(item.tick)))
             else:
-                raise EventError("the item is empty: set word or hint")
+                raise EventError("the item is empty: set word, hint or tick")
         keep(engine.finish())
         return list(words.values()), list(utterances.values())
 

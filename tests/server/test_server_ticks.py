@@ -9,6 +9,7 @@ during the same silence. The words are an invented report to a caretaker.
 from __future__ import annotations
 
 import asyncio
+import math
 from dataclasses import replace
 
 import grpc
@@ -17,14 +18,17 @@ from midstream import HypothesisUpdate, Word
 from midstream.client import AddWord, Client
 from midstream.server._session import Session
 from midstream.server._status import ProtocolStateError
+from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
+    CLOSE,
     TEST_LIMITS,
     Caller,
     Running,
     ServerFactory,
     bundle_fixture,
     models_dir_fixture,
+    open_event,
     running_fixture,
     spoken,
     start_server_fixture,
@@ -160,3 +164,59 @@ async def test_a_session_recorded_in_a_shared_log_refuses_the_server_clock(
         session.tick_by_server(lambda: None)
     session.journal = None
     await caller.close()
+
+
+def _paused_report(*, tick: bool) -> list[pb.TranscriptItem]:
+    """One speaker, a 1 s pause before an afterthought; with ``tick``, the recogniser's clock
+    ticks just before the afterthought starts (invented words)."""
+    items: list[pb.TranscriptItem] = []
+
+    def say(word_id: str, token: str, start: float) -> None:
+        items.append(pb.TranscriptItem(word=pb.SpokenWord(
+            word_id=word_id, speaker="tenant", text=token, start_s=start, end_s=start + 0.25)))
+
+    for k, token in enumerate(["the", "boiler", "is", "making", "a", "loud", "noise"]):
+        say(f"a{k}", token, 0.3 * k)
+    last_end = 0.3 * 6 + 0.25
+    if tick:
+        items.append(pb.TranscriptItem(tick=cv.tick_to_wire(last_end + 0.99)))
+    for k, token in enumerate(["in", "the", "basement"]):
+        say(f"b{k}", token, last_end + 1.0 + 0.3 * k)
+    return items
+
+
+def _groups(utterances: list[pb.UtteranceState]) -> list[list[str]]:
+    return [list(u.word_ids) for u in utterances if u.word_ids]
+
+
+async def test_tag_transcript_weighs_a_tick_as_a_live_stream_does(running: Running) -> None:
+    items = _paused_report(tick=True)
+    reply = await running.stub.TagTranscript(pb.TagTranscriptRequest(items=items))
+    # The tick weighed 0.99 s of silence after "noise" and closed the utterance there: the
+    # afterthought cannot reopen it.
+    assert _groups(list(reply.utterances)) == [[f"a{k}" for k in range(7)],
+                                               [f"b{k}" for k in range(3)]]
+    # The same events streamed live end the same way.
+    events = [open_event(), *(pb.ClientEvent(tick=i.tick) if i.HasField("tick")
+                              else words_event(i.word) for i in items), CLOSE]
+    live: dict[str, pb.UtteranceState] = {}
+    async for message in running.stub.Converse(iter(events)):
+        for state in message.update.utterances:
+            live[state.utterance_id] = state
+    assert _groups(list(live.values())) == _groups(list(reply.utterances))
+    # Without the tick the afterthought's own words weigh in, and the shipped models join it
+    # to the report: the tick, not the pause alone, made the split above.
+    untimed = await running.stub.TagTranscript(
+        pb.TagTranscriptRequest(items=_paused_report(tick=False)))
+    assert _groups(list(untimed.utterances)) == [[*(f"a{k}" for k in range(7)),
+                                                  *(f"b{k}" for k in range(3))]]
+
+
+@pytest.mark.parametrize("value", [math.nan, -1.0])
+async def test_tag_transcript_refuses_a_bad_tick_naming_the_field(running: Running,
+                                                                   value: float) -> None:
+    items = [*_paused_report(tick=False)[:2], pb.TranscriptItem(tick=pb.TimeTick(time_s=value))]
+    with pytest.raises(grpc.aio.AioRpcError) as raised:
+        await running.stub.TagTranscript(pb.TagTranscriptRequest(items=items))
+    assert raised.value.code() == grpc.StatusCode.INVALID_ARGUMENT
+    assert "tick.time_s" in (raised.value.details() or "")

@@ -361,12 +361,14 @@ class ListConversationsReply(_message.Message):
     def __init__(self, conversations: _Optional[_Iterable[_Union[ConversationSummary, _Mapping]]] = ...) -> None: ...
 
 class TranscriptItem(_message.Message):
-    __slots__ = ("word", "hint")
+    __slots__ = ("word", "hint", "tick")
     WORD_FIELD_NUMBER: _ClassVar[int]
     HINT_FIELD_NUMBER: _ClassVar[int]
+    TICK_FIELD_NUMBER: _ClassVar[int]
     word: SpokenWord
     hint: SpeakerHint
-    def __init__(self, word: _Optional[_Union[SpokenWord, _Mapping]] = ..., hint: _Optional[_Union[SpeakerHint, _Mapping]] = ...) -> None: ...
+    tick: TimeTick
+    def __init__(self, word: _Optional[_Union[SpokenWord, _Mapping]] = ..., hint: _Optional[_Union[SpeakerHint, _Mapping]] = ..., tick: _Optional[_Union[TimeTick, _Mapping]] = ...) -> None: ...
 
 class TagTranscriptRequest(_message.Message):
     __slots__ = ("items",)
