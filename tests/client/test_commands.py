@@ -5,6 +5,8 @@ from __future__ import annotations
 import io
 import json
 import sys
+import time
+from collections.abc import Iterator
 from html.parser import HTMLParser
 from pathlib import Path
 from typing import Any
@@ -147,6 +149,40 @@ def test_a_tick_line_closes_the_utterance_before_the_next_word(
     assert not ticked["final"]
     assert "c1" not in {w["id"] for w in ticked["words"]}  # before the next word was sent
     assert closing(_tick_call(tmp_path, None))["final"]
+
+
+class _PausingPipe:
+    """Standard input that gives its lines at once, then stays open and silent for
+    ``pause_s`` seconds before it ends, as a live recogniser's pipe falls silent."""
+
+    def __init__(self, lines: list[str], pause_s: float) -> None:
+        self._lines = lines
+        self._pause_s = pause_s
+
+    def __iter__(self) -> Iterator[str]:
+        yield from self._lines
+        time.sleep(self._pause_s)  # the reading thread's wait, not the server's
+
+
+def test_tag_with_server_ticks_closes_an_utterance_while_the_pipe_is_silent(
+        served: Served, tmp_path: Path, capsys: pytest.CaptureFixture[str],
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    lines = _tick_call(tmp_path, None).read_text(encoding="utf-8").splitlines(keepends=True)
+    tenant = [f"t{k}" for k in range(10)]
+    closing = {}
+    for flag in ("--server-ticks", None):
+        # The tenant's words only; the pipe then falls silent past the last silence mark (3 s).
+        monkeypatch.setattr(sys, "stdin", _PausingPipe(lines[:10], pause_s=4.5))
+        argv = ["tag", "--server", served.target, "--json"]
+        code, out, err = _run([*argv, flag] if flag else argv, capsys)
+        assert code == 0, err
+        updates = [r for r in map(json.loads, out.splitlines()) if r["type"] == "update"]
+        closing[flag] = next(u for u in updates if any(
+            s["words"] == tenant and s["final"] for s in u["utterances"]))
+    # The server's clock closed it during the silence, before the pipe ended ...
+    assert not closing["--server-ticks"]["final"]
+    # ... where without it only the end of the input does.
+    assert closing[None]["final"]
 
 
 @pytest.mark.parametrize(("tick", "message"), [
