@@ -7,11 +7,13 @@ over reference words, NIST scoring).
 
 from __future__ import annotations
 
+import doctest
 from dataclasses import replace
 
 import pytest
 from midstream import Conversation, DisfluencyLabel, Repair, Utterance, UtteranceFunction, Word
 from midstream.models import ModelBundle
+from midstream.models import _recogniser as recogniser_module
 from midstream.models._boundary import BoundaryModel
 from midstream.models._eval_engine import replay_conversation
 from midstream.models._eval_words import evaluate_words
@@ -177,3 +179,8 @@ def test_evaluation_with_ticks_closes_utterances_in_the_silence_as_a_live_stream
         k: v for k, v in plain.items() if k.startswith("segmentation.")}
     assert replay_conversation(untimed, bundle) == replay_conversation(
         untimed, bundle, ticks=silence_ticks(untimed, boundary.silence_marks))
+
+
+def test_the_modules_examples_run() -> None:
+    result = doctest.testmod(recogniser_module)
+    assert result.attempted > 0 and result.failed == 0
