@@ -168,11 +168,12 @@ class _EventReader:
         if self._woken:
             self._woken = False
             return _WOKEN
-        self._waiting_since = self._loop.time()
         read: asyncio.Future[object]
         if self._carried is not None:
+            # The wait a wake interrupted goes on: the caller has been idle since it began.
             read, self._carried = self._carried, None
         else:
+            self._waiting_since = self._loop.time()
             read = asyncio.ensure_future(self._context.read())
         self._pending = read
         try:
