@@ -258,18 +258,22 @@ class Client:
     # --- streams ------------------------------------------------------------------------------
 
     def feed(self, conversation_id: str | None = None, *,
-                 resume: bool = False) -> ConversationStream:
+                 resume: bool = False, server_ticks: bool = False) -> ConversationStream:
         """A stream that ingests one conversation; use it as an async context manager.
 
         ``conversation_id`` asks for a caller-chosen id; ``None`` lets the server assign one
         (read it from :attr:`ConversationStream.conversation_id`). ``resume=True`` continues
         conversation ``conversation_id`` whose server died, on servers sharing a Redis log
         (``docs/deploy.md``): the :class:`Welcome`'s ``events_logged`` says how many of your
-        events it holds; send the rest.
+        events it holds; send the rest. ``server_ticks=True`` lets the server's clock move the
+        conversation's time on while you send no word, so an utterance closes after a silence
+        and its update arrives without a tick from you (``docs/service.md``; refused by
+        servers sharing a log).
         """
         if resume and not conversation_id:
             raise InputError("resume=True continues a conversation by its id: give it")
-        return ConversationStream(self, conversation_id or "", resume=resume)
+        return ConversationStream(self, conversation_id or "", resume=resume,
+                                  server_ticks=server_ticks)
 
     def feed_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS) -> MultiplexedStream:
         """A stream that ingests many conversations, each on a channel; use ``async with``.
@@ -341,13 +345,20 @@ class Client:
 
     # --- unary calls --------------------------------------------------------------------------
 
-    async def tag_transcript(self, events: Iterable[AddWord | SpeakerHint]) -> TaggedTranscript:
-        """Tag a whole transcript in one call; every hypothesis returned is final."""
+    async def tag_transcript(self, events: Iterable[AddWord | SpeakerHint | TimeTick],
+                             ) -> TaggedTranscript:
+        """Tag a whole transcript in one call; every hypothesis returned is final.
+
+        A :class:`TimeTick` among the events weighs the silence up to its time as on a live
+        stream (an utterance it closes stays closed).
+        """
         items = []
         for event in events:
             if isinstance(event, AddWord):
                 items.append(pb.TranscriptItem(
                     word=_convert.spoken_word_to_wire(event.word_id, event.word)))
+            elif isinstance(event, TimeTick):
+                items.append(pb.TranscriptItem(tick=_convert.tick_to_wire(event.time)))
             else:
                 items.append(pb.TranscriptItem(
                     hint=_convert.hint_to_wire(event.speaker, turn_end=event.turn_end)))
@@ -415,10 +426,12 @@ class ConversationStream:
     as abandoned by its caller).
     """
 
-    def __init__(self, client: Client, conversation_id: str, *, resume: bool = False) -> None:
+    def __init__(self, client: Client, conversation_id: str, *, resume: bool = False,
+                 server_ticks: bool = False) -> None:
         self._client = client
         self._requested_id = conversation_id
         self._resume = resume
+        self._server_ticks = server_ticks
         self._call: Any = None
         self._welcome: Welcome | None = None
         self._welcome_pending = True
@@ -442,7 +455,8 @@ class ConversationStream:
         stub = self._client._require_stub()
         self._call = stub.Feed(metadata=self._client._metadata())
         opening = pb.ClientEvent(open=pb.OpenConversation(conversation_id=self._requested_id,
-                                                          resume=self._resume))
+                                                          resume=self._resume,
+                                                          server_ticks=self._server_ticks))
         await self._write(opening)
         first = await self._read()
         if not isinstance(first, Welcome):

@@ -26,7 +26,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from midstream import AddWord, InputEvent, ReplaceWord, SpeakerHint, WithdrawWord
+from midstream import AddWord, InputEvent, ReplaceWord, SpeakerHint, TimeTick, WithdrawWord
 from midstream._errors import TranscriptFormatError
 from midstream._types import Word
 
@@ -44,6 +44,7 @@ _KIND_FIELDS: dict[str, frozenset[str]] = {
     "withdraw": frozenset({"kind", "id"}),
     "utterance_end": frozenset({"kind", "speaker"}),
     "turn_end": frozenset({"kind", "speaker"}),
+    "tick": frozenset({"kind", "time"}),
 }
 
 
@@ -170,6 +171,11 @@ end=0.4, confidence=None, fragment=False)), time=0.4, line=1)
             word_id = where.text(record.get("id"), "id", MAX_ID_CHARS)
             self._known(word_id, where)
             return TimedEvent(event=WithdrawWord(word_id=word_id), time=None, line=number)
+        if kind == "tick":
+            if "time" not in record:
+                raise where.error("a tick must say what the recogniser's clock reads", "time")
+            time = where.number_field(record["time"], "time")
+            return TimedEvent(event=TimeTick(time=time), time=time, line=number)
         speaker = where.text(record.get("speaker"), "speaker", MAX_ID_CHARS)
         return TimedEvent(event=SpeakerHint(speaker=speaker, turn_end=kind == "turn_end"),
                           time=None, line=number)

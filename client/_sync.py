@@ -24,7 +24,7 @@ from collections.abc import AsyncIterator, Coroutine, Iterable, Iterator, Sequen
 from types import TracebackType
 from typing import Any, Generic, Protocol, Self, TypeVar, cast
 
-from midstream import AddWord, InputEvent, ModelInfo, SpeakerHint
+from midstream import AddWord, InputEvent, ModelInfo, SpeakerHint, TimeTick
 from midstream._errors import InputError, MidstreamError, UnavailableError
 from midstream.client._client import (
     DEFAULT_FRAME_EVENTS,
@@ -124,7 +124,8 @@ class SyncClient:
                                    "call connect() first")
         return asyncio.run_coroutine_threadsafe(coroutine, self._loop).result()
 
-    def tag_transcript(self, events: Iterable[AddWord | SpeakerHint]) -> TaggedTranscript:
+    def tag_transcript(self, events: Iterable[AddWord | SpeakerHint | TimeTick],
+                       ) -> TaggedTranscript:
         """See :meth:`Client.tag_transcript`."""
         return self._run(self._client.tag_transcript(list(events)))
 
@@ -145,11 +146,12 @@ class SyncClient:
         return self._run(self._client.reload_models(directory))
 
     def feed(self, conversation_id: str | None = None, *, resume: bool = False,
+                 server_ticks: bool = False,
                  buffer: int = DEFAULT_BUFFER) -> SyncConversation:
         """See :meth:`Client.feed`; use the result with ``with``. ``buffer`` as for
         :meth:`feed_many`."""
-        return SyncConversation(self, self._client.feed(conversation_id, resume=resume),
-                                buffer)
+        return SyncConversation(self, self._client.feed(
+            conversation_id, resume=resume, server_ticks=server_ticks), buffer)
 
     def feed_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
                       buffer: int = DEFAULT_BUFFER) -> SyncMultiplexedStream:

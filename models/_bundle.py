@@ -132,7 +132,8 @@ class ModelBundle:
         return ConversationEngine(
             new_decoder=lambda: ChannelDecoder(word_model, decoder, boundary),
             function_tagger=self._function_tagger, coarse_tagger=self._coarse_tagger,
-            config=self._engine)
+            config=self._engine,
+            silence_marks=boundary.silence_marks if boundary is not None else ())
 
     @property
     def function_tagger(self) -> FunctionTagger:

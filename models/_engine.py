@@ -127,12 +127,18 @@ class ConversationEngine:
         the fine class); decoded over a context window of its own.
     config
         Engine tuning; see :class:`EngineConfig`.
+    silence_marks
+        The silences after a word (seconds, ascending) at which :meth:`tick` can change a
+        decision (the boundary model's, see ``BoundaryModel.silence_marks``); empty when ticks
+        change nothing (no boundary model).
     """
 
     def __init__(self, *, new_decoder: Callable[[], ChannelDecoder],
                  function_tagger: FunctionTagger, coarse_tagger: FunctionTagger | None = None,
-                 config: EngineConfig | None = None) -> None:
+                 config: EngineConfig | None = None,
+                 silence_marks: tuple[float, ...] = ()) -> None:
         self._new_decoder = new_decoder
+        self.silence_marks = silence_marks
         self._functions = function_tagger
         self._coarse = coarse_tagger
         self._config = config or EngineConfig()

@@ -20,6 +20,12 @@ dominate published recogniser error breakdowns on conversational speech, deletio
 The word error rate against the fragment-free transcript is then ``rate`` in expectation. The
 draws are seeded per conversation from ``seed`` and the conversation id, so a conversation's
 errors do not depend on which others are evaluated with it.
+
+A live recogniser's clock also runs through the silences: :func:`silence_ticks` gives the time
+ticks a caller that ticks through every silence would send (one as each speaker's silence
+passes each of the boundary model's silence marks, the silences at which its evidence can
+change), so that evaluation closes utterances during silences as a live stream does, rather
+than only when the speaker's next word arrives.
 """
 
 from __future__ import annotations
@@ -30,7 +36,8 @@ from dataclasses import dataclass, replace
 
 from midstream._types import Conversation, DisfluencyLabel, Repair, Word
 
-__all__ = ["ERROR_SHARES", "RecogniserConditions", "as_recognised"]
+__all__ = ["ERROR_SHARES", "RecogniserConditions", "SilenceTick", "as_recognised",
+           "silence_ticks"]
 
 #: Shares of substitutions, deletions and insertions among seeded errors (see module docstring).
 ERROR_SHARES: dict[str, float] = {"substitution": 0.60, "deletion": 0.25, "insertion": 0.15}
@@ -117,6 +124,72 @@ def as_recognised(conversation: Conversation, conditions: RecogniserConditions) 
         interruption_points=tuple(new_index[i] for i in conversation.interruption_points
                                   if i in new_index),
     )
+
+
+@dataclass(frozen=True, slots=True)
+class SilenceTick:
+    """A time tick sent before word ``before`` of the conversation (``len(words)``: after the
+    last word, before the end) saying the clock reads ``time`` (seconds)."""
+
+    before: int
+    time: float
+
+
+def _arrival(word: Word) -> float | None:
+    # A recogniser sends a word once it has ended (the client's readers time events the same).
+    return word.end if word.end is not None else word.start
+
+
+def silence_ticks(conversation: Conversation,
+                  marks: Sequence[float]) -> tuple[SilenceTick, ...]:
+    """The ticks a live caller ticking through every silence sends, in sending order.
+
+    For each timed word, a tick at ``end + mark`` for every mark (seconds, the boundary
+    model's ``silence_marks``) that falls in the silence before the same speaker's next word
+    starts (after the speaker's last word: before the conversation's last word arrives). Each
+    goes before the first later word that arrives after it (words arrive at their end). Words
+    without times get none, so an untimed conversation gets no ticks.
+
+    Examples
+    --------
+    >>> words = (Word(text="hi", speaker="A", start=0.0, end=0.3),
+    ...          Word(text="yes", speaker="B", start=1.0, end=1.2),
+    ...          Word(text="so", speaker="A", start=1.6, end=1.8))
+    >>> conversation = Conversation(id="c", corpus="demo", words=words, utterances=())
+    >>> [(t.before, round(t.time, 2)) for t in silence_ticks(conversation, (0.5, 1.0, 2.0))]
+    [(1, 0.8), (2, 1.3), (2, 1.7)]
+    """
+    words = conversation.words
+    if not marks or not words:
+        return ()
+    arrivals = [_arrival(w) for w in words]
+    horizon = max((a for a in arrivals if a is not None), default=None)
+    if horizon is None:
+        return ()
+    next_start: dict[str, float | None] = {}  # per speaker, filled walking backwards
+    limit: list[float | None] = [None] * len(words)
+    for index in range(len(words) - 1, -1, -1):
+        word = words[index]
+        limit[index] = next_start.get(word.speaker, horizon)
+        next_start[word.speaker] = word.start if word.start is not None else _arrival(word)
+    ticks: list[SilenceTick] = []
+    for index, word in enumerate(words):
+        end, until = word.end, limit[index]
+        if end is None or until is None:
+            continue
+        before = index + 1
+        for mark in marks:
+            time = end + mark
+            if time >= until:
+                break
+            while before < len(words):
+                arrival = arrivals[before]
+                if arrival is not None and arrival > time:
+                    break
+                before += 1
+            ticks.append(SilenceTick(before=before, time=time))
+    ticks.sort(key=lambda tick: (tick.before, tick.time))
+    return tuple(ticks)
 
 
 def _other_word(rng: random.Random, pool: Sequence[str], text: str) -> str:

@@ -7,6 +7,7 @@ Environment variables are never read here: ``midstream serve`` reads them and pa
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -77,6 +78,10 @@ class ServerLimits:
     max_streams_without_conversation: int = 64
     """Most ingest streams at once with no conversation open: ``Feed`` before its
     ``open``, ``FeedMany`` with no open channel. Each ends after ``idle_timeout_s``."""
+    server_tick_min_silence_s: float = 0.5
+    """For a conversation opened with ``server_ticks``: the shortest silence after a word at
+    which the server ticks its time on (it ticks at the boundary model's silence marks from
+    here on); shorter pauses, common between the words of one utterance, cost no decode."""
 
     def __post_init__(self) -> None:
         for name in (
@@ -94,6 +99,10 @@ class ServerLimits:
                                  f"{getattr(self, name)}")
         if not self.idle_timeout_s > 0:
             raise InputError(f"ServerLimits.idle_timeout_s must be > 0, not {self.idle_timeout_s}")
+        if not (math.isfinite(self.server_tick_min_silence_s)
+                and self.server_tick_min_silence_s >= 0):
+            raise InputError("ServerLimits.server_tick_min_silence_s must be a finite number "
+                             f">= 0, not {self.server_tick_min_silence_s}")
         if not self.ended_retention_s >= 0:
             raise InputError("ServerLimits.ended_retention_s must be >= 0, not "
                              f"{self.ended_retention_s}")

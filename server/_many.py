@@ -211,6 +211,12 @@ class ManyStream:
                 # Continuing needs an await (the shared log) inside a frame's one step.
                 self._refuse(number, ProtocolStateError(
                     "open.resume is taken on Feed only; continue the conversation there"))
+            elif item.event.WhichOneof("event") == "open" and item.event.open.server_ticks:
+                # One stream serves many conversations in frames the caller paces: it sends
+                # the time ticks its frames need itself.
+                self._refuse(number, ProtocolStateError(
+                    "open.server_ticks is taken on Feed only; send time ticks (tick "
+                    "events) in the frames of FeedMany"))
             elif item.event.WhichOneof("event") == "open":
                 self._open(number, item.event.open.conversation_id)
             elif number <= self._highest:

@@ -47,6 +47,10 @@ class Engine(Protocol):
     def hint(self, speaker: str, *, turn_end: bool) -> HypothesisDiff: ...
     def tick(self, now: float) -> HypothesisDiff: ...
     def finish(self) -> HypothesisDiff: ...
+    @property
+    def silence_marks(self) -> tuple[float, ...]:
+        """Silences after a word (seconds, ascending) at which a tick can change a decision;
+        empty when ticks change nothing."""
 
 
 class Bundle(Protocol):

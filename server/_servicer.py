@@ -72,8 +72,13 @@ class _Stopped:
     """Marker: the conversation was finished by the server (shutdown) while waiting."""
 
 
+class _Woken:
+    """Marker: the server published an update of its own (a server tick) while waiting."""
+
+
 _TIMEOUT = _Timeout()
 _STOPPED = _Stopped()
+_WOKEN = _Woken()
 
 
 class _EventReader:
@@ -83,14 +88,16 @@ class _EventReader:
     wait with a timeout per read (a timer, callbacks and bookkeeping each time), one watchdog
     timer per stream re-arms itself only when it fires, and the stop signal cancels the pending
     read through a callback. :meth:`next` returns the event, ``grpc.aio.EOF``, ``_TIMEOUT``
-    or ``_STOPPED``. Use as a context manager (or call :meth:`close`) to drop the timer.
+    or ``_STOPPED``; once :meth:`wakeable` was called, also ``_WOKEN`` after :meth:`wake`
+    (the pending read is kept for the next call: a cancelled read could lose an event).
+    Use as a context manager (or call :meth:`close`) to drop the timer.
     ``stop`` is shared with other streams (a session's end, the server stopping): the reader
     only adds and removes a callback, never cancels it.
     """
 
     # One per open stream: no per-instance __dict__.
-    __slots__ = ("_context", "_idle_timeout_s", "_loop", "_pending", "_reason", "_stop",
-                 "_timer", "_waiting_since")
+    __slots__ = ("_carried", "_context", "_idle_timeout_s", "_loop", "_pending", "_reason",
+                 "_stop", "_timer", "_waiter", "_waiting_since", "_woken")
 
     def __init__(self, context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
                  stop: asyncio.Future[None], idle_timeout_s: float) -> None:
@@ -102,6 +109,11 @@ class _EventReader:
         # spends on an event (or writing its update) never counts against the caller.
         self._waiting_since = self._loop.time()
         self._pending: asyncio.Future[object] | None = None
+        # Only a wakeable reader waits through _waiter (a future more per event): the read a
+        # wake left pending, and whether a wake came while no read was pending.
+        self._waiter: asyncio.Future[None] | None = None
+        self._carried: asyncio.Future[object] | None = None
+        self._woken: bool | None = None  # None: not wakeable
         self._reason: object | None = _STOPPED if stop.done() else None
         self._timer = self._loop.call_later(idle_timeout_s, self._check_idle)
         stop.add_done_callback(self._on_stop)
@@ -115,6 +127,23 @@ class _EventReader:
     def close(self) -> None:
         self._timer.cancel()
         self._stop.remove_done_callback(self._on_stop)
+        if self._carried is not None and not self._carried.done():
+            self._carried.cancel()
+        self._carried = None
+
+    def wakeable(self) -> None:
+        """Let :meth:`wake` interrupt a wait (for a conversation the server ticks)."""
+        if self._woken is None:
+            self._woken = False
+
+    def wake(self) -> None:
+        """Make the pending (or the next) :meth:`next` return ``_WOKEN``; the read goes on."""
+        if self._woken is None:
+            return
+        self._woken = True
+        waiter = self._waiter
+        if waiter is not None and not waiter.done():
+            waiter.set_result(None)
 
     def _interrupt(self, reason: object) -> None:
         if self._reason is None:
@@ -136,10 +165,20 @@ class _EventReader:
     async def next(self) -> object:
         if self._reason is not None:
             return self._reason
-        self._waiting_since = self._loop.time()
-        read: asyncio.Future[object] = asyncio.ensure_future(self._context.read())
+        if self._woken:
+            self._woken = False
+            return _WOKEN
+        read: asyncio.Future[object]
+        if self._carried is not None:
+            # The wait a wake interrupted goes on: the caller has been idle since it began.
+            read, self._carried = self._carried, None
+        else:
+            self._waiting_since = self._loop.time()
+            read = asyncio.ensure_future(self._context.read())
         self._pending = read
         try:
+            if self._woken is not None and await self._woken_first(read):
+                return _WOKEN
             event = await read
         except asyncio.CancelledError:
             task = asyncio.current_task()
@@ -151,6 +190,29 @@ class _EventReader:
         finally:
             self._pending = None
         return event
+
+    async def _woken_first(self, read: asyncio.Future[object]) -> bool:
+        """Wait for ``read`` or a wake; on a wake keep ``read`` for the next call."""
+        waiter: asyncio.Future[None] = self._loop.create_future()
+
+        def settle(_: object) -> None:
+            if not waiter.done():
+                waiter.set_result(None)
+
+        read.add_done_callback(settle)
+        self._waiter = waiter
+        try:
+            await waiter
+        except asyncio.CancelledError:
+            read.cancel()  # this task was cancelled: the read goes with it, as when awaited
+            raise
+        finally:
+            self._waiter = None
+        if read.done():
+            return False
+        self._woken = False
+        self._carried = read
+        return True
 
 
 class MidstreamServicer(pb_grpc.MidstreamServicer):
@@ -308,6 +370,11 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                 f"the first event must be 'open', not {first.WhichOneof('event')!r}"))
         if self._stopping:
             await self.refuse_stream(context, UnavailableError("the server is shutting down"))
+        if first.open.server_ticks and self.replica is not None:
+            await self.refuse_stream(context, ProtocolStateError(
+                "open.server_ticks is refused on servers sharing a log (midstream serve "
+                "--redis): the server's ticks are not logged input, so the conversation could "
+                "not be continued on another replica; send time ticks instead"))
         try:
             session, logged = await self._open(first.open, owner=caller_address(context))
         except MidstreamError as exc:
@@ -324,7 +391,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             yield pb.ServerMessage(welcome=pb.Welcome(
                 conversation_id=session.id, next_seq=session.seq + 1, epoch=session.epoch,
                 events_logged=logged))
-            async for message in self._feed(session, context):
+            async for message in self._feed(session, context,
+                                                server_ticks=first.open.server_ticks):
                 yield message
         finally:
             self._call_ended(session)
@@ -371,16 +439,26 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
 
     async def _feed(
         self, session: Session,
-        context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
+        context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage], *,
+        server_ticks: bool = False,
     ) -> AsyncIterator[pb.ServerMessage]:
         # A server stop finishes every session, so waiting on this session's end covers it.
         # The last sequence number the caller was given: a continued conversation's earlier
         # updates went to the caller from the replica that died.
         sent = session.seq
         reader = self._reader(context, session.ended_signal())
+        if server_ticks:
+            reader.wakeable()
+            session.tick_by_server(reader.wake)
         try:
             while True:
                 event = await reader.next()
+                if event is _WOKEN and session.live:
+                    # The server's clock closed an utterance: send it without an event.
+                    for message in session.since(sent):
+                        sent = message.update.seq
+                        yield message
+                    continue
                 if event is _STOPPED or not session.live:
                     # Finished by the server (shutdown): hand over the rest and the end.
                     for message in (*session.since(sent), session.closing_messages[-1]):
@@ -600,8 +678,10 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                 check_id(speaker, "hint.speaker", self._limits)
                 timeline.check_speaker(speaker)
                 keep(engine.hint(speaker, turn_end=turn_end))
+            elif kind == "tick":
+                keep(engine.tick(cv.tick_from_wire(item.tick)))
             else:
-                raise EventError("the item is empty: set word or hint")
+                raise EventError("the item is empty: set word, hint or tick")
         keep(engine.finish())
         return list(words.values()), list(utterances.values())
 

@@ -65,7 +65,8 @@ from midstream.server._kept import (
 from midstream.server._limits import SpeakerTimeline, check_id
 from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Bundle, Engine
-from midstream.server._status import ConflictError, PositionError
+from midstream.server._silence import SilenceClock
+from midstream.server._status import ConflictError, PositionError, ProtocolStateError
 from midstream.wire import _convert as cv
 from midstream.wire import midstream_pb2 as pb
 
@@ -306,7 +307,8 @@ class Session:
     # Thousands may be live at once: no per-instance __dict__.
     __slots__ = (
         "_budget", "_ended", "_engine", "_followers", "_metrics", "_newest", "_replay",
-        "_revisions", "_shared_wire", "_table_bytes", "_utterances", "_words", "clock",
+        "_revisions", "_shared_wire", "_silence", "_table_bytes", "_utterances", "_words",
+        "clock",
         "closing_messages", "end_reason", "ended_at",
         "epoch", "id", "journal", "limits", "owner", "revisions_truncated", "seq", "started_at",
         "timeline",
@@ -361,6 +363,8 @@ class Session:
         self._followers: dict[Follower, None] = {}
         # Set by the registry when the server shares its log with other replicas.
         self.journal: Journal | None = None
+        # The server's clock, when the caller asked for it (see tick_by_server).
+        self._silence: SilenceClock | None = None
 
     # --- ingest ---------------------------------------------------------------------------
 
@@ -379,6 +383,36 @@ class Session:
             if not self.live:
                 self._ended.set_result(None)
         return self._ended
+
+    def tick_by_server(self, wake: Callable[[], None]) -> None:
+        """Let the server's clock move this conversation's time on while no word arrives.
+
+        ``wake`` is called (from a loop callback) after such a tick published an update. Ticks
+        come at the engine's silence marks from ``server_tick_min_silence_s`` on; see
+        :mod:`midstream.server._silence`.
+
+        Raises
+        ------
+        ProtocolStateError
+            When the conversation is recorded in a shared log: its logged input could not give
+            the server's ticks back when it is continued on another replica.
+        """
+        engine = self._engine_or_error()
+        if self.journal is not None:
+            raise ProtocolStateError(
+                "open.server_ticks is refused on servers sharing a log (midstream serve "
+                "--redis): the server's ticks are not logged input, so the conversation could "
+                "not be continued on another replica; send time ticks instead")
+        least = self.limits.server_tick_min_silence_s
+        marks = tuple(mark for mark in engine.silence_marks if mark >= least)
+        if self._silence is not None:
+            self._silence.cancel()
+        self._silence = SilenceClock(self, marks, wake)
+
+    @property
+    def server_ticks(self) -> SilenceClock | None:
+        """The server's clock of this conversation, when its caller asked for one."""
+        return self._silence
 
     def _engine_or_error(self) -> Engine:
         if self._engine is None:
@@ -401,6 +435,11 @@ class Session:
                 diffs.append(engine.add_word(word_id, word))
                 timeline.record(word)
         finally:
+            silence = self._silence
+            if silence is not None and diffs:
+                for _, word in words[:len(diffs)]:
+                    if word.end is not None:
+                        silence.heard(word.end, received)
             if diffs:
                 self.word_count += len(diffs)
                 self._metrics.tally.words += len(diffs)
@@ -419,6 +458,8 @@ class Session:
         self.timeline.check_speaker(word.speaker)
         diff = engine.replace_word(word_id, word)
         self.timeline.record(word)
+        if self._silence is not None and word.end is not None:
+            self._silence.heard(word.end, received)
         return self._publish(diff, received)
 
     def withdraw_word(self, word_id: str, received: float) -> HypothesisUpdate | None:
@@ -447,6 +488,9 @@ class Session:
         if self._engine is None:
             return self.closing_messages
         engine, self._engine = self._engine, None
+        if self._silence is not None:
+            self._silence.cancel()
+            self._silence = None
         try:
             diff = engine.finish()
         except Exception as exc:  # whatever broke, followers get the end

@@ -75,7 +75,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("--no-settle", action="store_true",
                         help="make every label final exactly --lag words late instead")
     parser.add_argument("--as-recognised", action="store_true",
-                        help="feed the words as a recogniser would: no word fragments")
+                        help="feed the words as a recogniser would: no word fragments, and "
+                             "the recogniser's clock ticking through every silence of timed "
+                             "words (utterances close during a silence, as live)")
     parser.add_argument("--word-error-rate", type=float, default=0.0, metavar="R",
                         help="with --as-recognised: seed word errors at this rate per word "
                              "(0 to 1; substitutions, deletions, insertions 60/25/15)")
@@ -116,7 +118,7 @@ def run(args: argparse.Namespace) -> int:
     figures: dict[str, float] = {}
     if not args.functions_only:
         figures.update(evaluate_words(conversations, model, config=decoder, progress=True,
-                                      boundary=boundary))
+                                      boundary=boundary, ticks=args.as_recognised))
     if not args.words_only:
         fine, coarse = _function_taggers(args.functions_model)
         figures.update(evaluate_functions(conversations, coarse))
@@ -126,7 +128,7 @@ def run(args: argparse.Namespace) -> int:
         bundle = ModelBundle(word_model=model, function_tagger=fine, infos=(),
                              decoder=decoder, coarse_tagger=None if fine is coarse else coarse,
                              boundary_model=boundary)
-        figures.update(evaluate_engine(conversations, bundle))
+        figures.update(evaluate_engine(conversations, bundle, ticks=args.as_recognised))
     if args.json:
         clean = {k: (None if isinstance(v, float) and math.isnan(v) else v)
                  for k, v in figures.items()}

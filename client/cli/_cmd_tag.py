@@ -62,6 +62,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              "standard input is always sent as it arrives)")
     parser.add_argument("--id", dest="conversation_id", default=None,
                         help="ask for this conversation id (default: the server assigns one)")
+    parser.add_argument("--server-ticks", action="store_true",
+                        help="let the server's clock move the conversation on while no word "
+                             "arrives, so an utterance closes after a silence of a live pipe "
+                             "without tick lines (refused by servers sharing a log)")
     parser.add_argument("--log", type=Path, default=None,
                         help="also write every word sent and event received as JSON Lines "
                              "(the revision log replay --log writes)")
@@ -126,7 +130,8 @@ async def _run(args: argparse.Namespace) -> int:
         async with client:
             await stream_conversation(client, events, pacing=pacing, gold=gold,
                                       conversation_id=args.conversation_id, on_welcome=welcome,
-                                      on_word=word, on_event=event)
+                                      on_word=word, on_event=event,
+                                      server_ticks=args.server_ticks)
     finally:
         if log is not None:
             log.close()

@@ -68,16 +68,18 @@ async def stream_conversation(
     on_welcome: Callable[[Welcome], None] = lambda welcome: None,
     on_word: OnWord = lambda word: None,
     on_event: OnEvent = lambda event, sent: None,
+    server_ticks: bool = False,
 ) -> StreamResult:
     """Send ``events`` as one conversation and pass every reply to ``on_event``.
 
     ``on_word`` sees each word as it is sent (with its gold annotation when ``gold`` has it);
     ``on_event`` sees each server event with the number of words sent when it arrived.
-    Returns once the server has ended the conversation.
+    ``server_ticks`` opens the conversation with the server's clock ticking through silences
+    (:meth:`Client.feed`). Returns once the server has ended the conversation.
     """
     pacing = pacing or Pacing()
     counter = [0]
-    async with client.feed(conversation_id) as stream:
+    async with client.feed(conversation_id, server_ticks=server_ticks) as stream:
         result = StreamResult(conversation_id=stream.conversation_id)
         on_welcome(stream.welcome)
 

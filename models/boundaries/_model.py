@@ -61,6 +61,9 @@ BOUNDARY_LABELS: Final = (END, GOES_ON)
 SILENCE_EDGES: Final = (0.1, 0.2, 0.3, 0.5, 0.75, 1.0, 1.5, 2.0, 3.0)
 #: Buckets of the silence before a word, seconds (same source).
 _BEFORE_EDGES: Final = (0.1, 0.3, 0.5, 1.0, 2.0)
+#: Every silence at which a silence feature starts to fire (the speaker-change feature buckets
+#: the silence by the same edges as the silence before a word).
+_MARKS: Final = tuple(sorted({*SILENCE_EDGES, *_BEFORE_EDGES}))
 
 
 def default_boundary_model_path() -> Path:
@@ -190,6 +193,16 @@ class BoundaryModel:
         """Load a ``.tagger`` boundary model (the shipped one when ``path`` is None)."""
         path = default_boundary_model_path() if path is None else path
         return cls.from_artifact(load_artifact(path, expected_kind="boundaries"))
+
+    @property
+    def silence_marks(self) -> tuple[float, ...]:
+        """The silences after a word (seconds, ascending) at which its evidence can change.
+
+        Between two marks every silence fires the same features, so a stream that has fallen
+        silent needs weighing again only as its silence passes each mark; past the last one
+        the evidence stays as it is.
+        """
+        return _MARKS
 
     def log_odds(self, features: Sequence[str]) -> float:
         """The classifier's log-odds of an utterance end (unknown features weigh nothing)."""

@@ -53,6 +53,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 
 from midstream._types import Conversation, DisfluencyLabel
+from midstream.models._recogniser import SilenceTick, silence_ticks
 from midstream.models.boundaries._model import BoundaryModel, overlap_flags
 from midstream.models.words._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models.words._features import tokens_from_words
@@ -163,7 +164,12 @@ class _Stream:
 
 def _stream_channel(channel: ChannelSequence, model: WordModel, config: DecoderConfig,
                     boundary: BoundaryModel | None = None,
-                    overlap: Sequence[bool] | None = None) -> _Stream:
+                    overlap: Sequence[bool] | None = None, *,
+                    ticks: Sequence[SilenceTick] = (),
+                    speakers: Sequence[str] = ()) -> _Stream:
+    """Stream one channel; ``ticks`` (conversation-wide, in sending order) reach it between its
+    words as they would live, ``speakers`` (each conversation word's) telling whether another
+    speaker's word was the last to arrive before a tick."""
     decoder = ChannelDecoder(model, config, boundary)
     n = len(channel.words)
     stream = _Stream(history=[[] for _ in range(n)], final_label=[None] * n,
@@ -181,7 +187,26 @@ def _stream_channel(channel: ChannelSequence, model: WordModel, config: DecoderC
                 stream.final_step[key] = step
 
     other_words = channel.other_words or (0,) * n  # a channel built without the counts
+    pending = iter(ticks)
+    tick = next(pending, None)
+
+    def send_ticks(current: SilenceTick | None, until: int, step: int) -> SilenceTick | None:
+        # From `current` on, the ticks sent before conversation word `until` (all left: -1);
+        # returns the first tick not sent.
+        while current is not None and (until < 0 or current.before <= until):
+            record(decoder.tick(current.time,
+                                other_spoke=speakers[current.before - 1] != channel.speaker),
+                   step)
+            current = next(pending, None)
+        return current
+
     for position, word in enumerate(channel.words):
+        if tick is not None:
+            if position:
+                tick = send_ticks(tick, channel.indices[position], position - 1)
+            else:  # before the channel's first word there is nothing to close
+                while tick is not None and tick.before <= channel.indices[0]:
+                    tick = next(pending, None)
         record(
             decoder.append(position, word,
                            after_other_speaker=channel.after_other_speaker[position],
@@ -189,6 +214,8 @@ def _stream_channel(channel: ChannelSequence, model: WordModel, config: DecoderC
                            overlap=overlap is not None and overlap[channel.indices[position]]),
             position,
         )
+    if tick is not None and n:
+        send_ticks(tick, -1, n - 1)
     record(decoder.finish(), n - 1)
     return stream
 
@@ -213,10 +240,12 @@ def streaming_final_labels(conversation: Conversation, model: WordModel,
 def _replay(
     channel: ChannelSequence, model: WordModel, config: DecoderConfig, tally: _Tally,
     conversation: Conversation, *, boundary: BoundaryModel | None = None,
-    overlap: Sequence[bool] | None = None,
+    overlap: Sequence[bool] | None = None, ticks: Sequence[SilenceTick] = (),
+    speakers: Sequence[str] = (),
 ) -> None:
     n = len(channel.words)
-    stream = _stream_channel(channel, model, config, boundary, overlap)
+    stream = _stream_channel(channel, model, config, boundary, overlap, ticks=ticks,
+                             speakers=speakers)
     history, final_label = stream.history, stream.final_label
     final_end, final_step = stream.final_end, stream.final_step
 
@@ -281,11 +310,15 @@ def evaluate_words(
     config: DecoderConfig | None = None,
     progress: bool = False,
     boundary: BoundaryModel | None = None,
+    ticks: bool = False,
 ) -> dict[str, float]:
     """Replay every conversation's channels and score them (keys in the module docstring).
 
     ``boundary``: the boundary model whose timing evidence joins the word model's utterance
-    ends, as in the server (``None``: the word model alone).
+    ends, as in the server (``None``: the word model alone). ``ticks``: with a boundary model,
+    send the time ticks of :func:`~midstream.models._recogniser.silence_ticks` through every
+    silence, so an utterance closes during the silence after it as on a live stream (and
+    stays closed whatever the speaker's next word is); untimed words get none.
     """
     config = DecoderConfig() if config is None else config
     tally = _Tally()
@@ -293,9 +326,13 @@ def evaluate_words(
     for conversation in tqdm(conversations, desc="evaluate words", file=sys.stderr,
                              disable=not progress):
         overlap = overlap_flags(conversation) if boundary is not None else None
+        sent: tuple[SilenceTick, ...] = ()
+        if ticks and boundary is not None:
+            sent = silence_ticks(conversation, boundary.silence_marks)
+        speakers = [word.speaker for word in conversation.words] if sent else []
         for channel in channel_sequences(conversation):
             _replay(channel, model, config, tally, conversation, boundary=boundary,
-                    overlap=overlap)
+                    overlap=overlap, ticks=sent, speakers=speakers)
     result: dict[str, float] = {}
     for label, counts in tally.labels.items():
         result[f"disfluency.{label.value}.precision"] = counts.precision

@@ -7,6 +7,7 @@ import sys
 from pathlib import Path
 
 import pytest
+from midstream import Conversation, Utterance, UtteranceFunction, Word
 from midstream.client.cli._cmd_train import RESTART_GUARD, choose_restart_bias
 from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
@@ -88,6 +89,36 @@ def test_evaluate_as_recognised_with_word_errors(transcripts: Path, tmp_path: Pa
     assert noisy == again  # seeded: the same errors every run
     assert noisy["disfluency.reparandum.f1"] != clean["disfluency.reparandum.f1"]
     assert 0.0 <= noisy["disfluency.edited_no_fragments.f1"] <= 1.0
+
+
+def test_evaluate_as_recognised_ticks_through_the_silences(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # Invented: a report, a 1 s pause, an afterthought of the same speaker (two utterances).
+    # Fed as a recogniser would, the clock ticks through the pause and the report's end is
+    # found there; fed without, the afterthought's words join it (the shipped models).
+    words: list[Word] = []
+    utterances = []
+    clock = 0.0
+    for text in ("the boiler is making a loud noise", "in the basement"):
+        first = len(words)
+        for token in text.split():
+            words.append(Word(text=token, speaker="tenant", start=round(clock, 2),
+                              end=round(clock + 0.25, 2)))
+            clock += 0.3
+        clock += 0.95
+        utterances.append(Utterance(speaker="tenant", words=tuple(range(first, len(words))),
+                                    function=UtteranceFunction.STATEMENT, fine_tag="sd",
+                                    fine_class="sd"))
+    path = tmp_path / "boiler.jsonl"
+    with path.open("w", encoding="utf-8") as out:
+        write_jsonl([Conversation(id="boiler", corpus="demo", words=tuple(words),
+                                  utterances=tuple(utterances))], out)
+    recall: dict[str | None, float] = {}
+    for fed in ("--as-recognised", None):
+        argv = ["evaluate", str(path), "--words-only", "--json"]
+        assert main([*argv, fed] if fed else argv) == 0
+        recall[fed] = json.loads(capsys.readouterr().out)["segmentation.recall"]
+    assert recall == {"--as-recognised": 1.0, None: 0.5}
 
 
 def test_tuning_the_restart_bias_by_cross_validation(

@@ -5,8 +5,11 @@ from __future__ import annotations
 import io
 import json
 import sys
+import time
+from collections.abc import Iterator
 from html.parser import HTMLParser
 from pathlib import Path
+from typing import Any
 
 import pytest
 from client_kit import (  # noqa: F401 - fixtures are found by name
@@ -109,6 +112,94 @@ def test_bad_input_lines_exit_1_naming_file_line_and_field(
                          "--no-progress"], capsys)
     assert code == 1
     assert f"{bad_jsonl}:2: field 'text'" in err and len(err.strip().splitlines()) == 1
+
+
+def _tick_call(tmp_path: Path, tick: dict[str, object] | None) -> Path:
+    """An invented report to a caretaker as JSON Lines word events, with ``tick`` (if any)
+    between the tenant's last word and the caretaker's reply."""
+    said = ["the", "boiler", "in", "the", "basement", "is", "making", "a", "loud", "noise"]
+    lines: list[dict[str, object]] = [
+        {"speaker": "tenant", "text": token, "id": f"t{k}", "start": round(0.3 * k, 2),
+         "end": round(0.3 * k + 0.2, 2)} for k, token in enumerate(said)]
+    if tick is not None:
+        lines.append(tick)
+    lines.append({"speaker": "caretaker", "text": "okay", "id": "c1", "start": 5.8,
+                  "end": 6.1})
+    path = tmp_path / "boiler.jsonl"
+    path.write_text("".join(json.dumps(line) + "\n" for line in lines), encoding="utf-8")
+    return path
+
+
+def test_a_tick_line_closes_the_utterance_before_the_next_word(
+        served: Served, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # docs/word-events.md: a tick line says the recogniser's clock reads `time`. Sent at 2.5 s
+    # of silence after "noise", it closes the tenant's utterance in an update of its own; the
+    # caretaker's word does not close it (the tenant's channel gets no word of its own), so
+    # without the tick it stays open until the conversation ends.
+    tenant = [f"t{k}" for k in range(10)]
+
+    def closing(path: Path) -> dict[str, Any]:
+        code, out, err = _run(["tag", str(path), "--server", served.target, "--json"], capsys)
+        assert code == 0, err
+        updates = [r for r in map(json.loads, out.splitlines()) if r["type"] == "update"]
+        return next(u for u in updates
+                    if any(s["words"] == tenant and s["final"] for s in u["utterances"]))
+
+    ticked = closing(_tick_call(tmp_path, {"kind": "tick", "time": 5.2}))
+    assert not ticked["final"]
+    assert "c1" not in {w["id"] for w in ticked["words"]}  # before the next word was sent
+    assert closing(_tick_call(tmp_path, None))["final"]
+
+
+class _PausingPipe:
+    """Standard input that gives its lines at once, then stays open and silent for
+    ``pause_s`` seconds before it ends, as a live recogniser's pipe falls silent."""
+
+    def __init__(self, lines: list[str], pause_s: float) -> None:
+        self._lines = lines
+        self._pause_s = pause_s
+
+    def __iter__(self) -> Iterator[str]:
+        yield from self._lines
+        time.sleep(self._pause_s)  # the reading thread's wait, not the server's
+
+
+def test_tag_with_server_ticks_closes_an_utterance_while_the_pipe_is_silent(
+        served: Served, tmp_path: Path, capsys: pytest.CaptureFixture[str],
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    lines = _tick_call(tmp_path, None).read_text(encoding="utf-8").splitlines(keepends=True)
+    tenant = [f"t{k}" for k in range(10)]
+    closing = {}
+    for flag in ("--server-ticks", None):
+        # The tenant's words only; the pipe then falls silent past the last silence mark (3 s).
+        monkeypatch.setattr(sys, "stdin", _PausingPipe(lines[:10], pause_s=4.5))
+        argv = ["tag", "--server", served.target, "--json"]
+        code, out, err = _run([*argv, flag] if flag else argv, capsys)
+        assert code == 0, err
+        updates = [r for r in map(json.loads, out.splitlines()) if r["type"] == "update"]
+        closing[flag] = next(u for u in updates if any(
+            s["words"] == tenant and s["final"] for s in u["utterances"]))
+    # The server's clock closed it during the silence, before the pipe ended ...
+    assert not closing["--server-ticks"]["final"]
+    # ... where without it only the end of the input does.
+    assert closing[None]["final"]
+
+
+@pytest.mark.parametrize(("tick", "message"), [
+    ({"kind": "tick"}, "field 'time': a tick must say what the recogniser's clock reads"),
+    ({"kind": "tick", "time": "later"}, "field 'time': must be a number, got str"),
+    ({"kind": "tick", "time": -1}, "field 'time': must be at least 0, got -1"),
+    ({"kind": "tick", "time": 5, "speaker": "tenant"},
+     "field 'speaker': unknown field for a 'tick' event"),
+])
+def test_a_malformed_tick_line_exits_1_naming_line_and_field(
+        served: Served, tmp_path: Path, capsys: pytest.CaptureFixture[str],
+        tick: dict[str, object], message: str) -> None:
+    path = _tick_call(tmp_path, tick)
+    for command in (["tag"], ["replay", "--speed", "0", "--no-progress"]):
+        code, _, err = _run([*command, str(path), "--server", served.target], capsys)
+        assert code == 1
+        assert err.strip() == f"midstream: {path}:11: {message}"
 
 
 def test_an_unreachable_server_exits_3_naming_it(ctm_file: Path,

@@ -9,7 +9,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from midstream import TranscriptFormatError, Word
-from midstream.client import AddWord, ReplaceWord, SpeakerHint, WithdrawWord
+from midstream.client import AddWord, ReplaceWord, SpeakerHint, TimeTick, WithdrawWord
 from midstream.client._inputs import (
     CtmParser,
     JsonlEventParser,
@@ -76,6 +76,7 @@ JSONL = [
     "",
     '{"kind": "utterance_end", "speaker": "A"}',
     '{"kind": "turn_end", "speaker": "A"}',
+    '{"kind": "tick", "time": 2.5}',
 ]
 
 
@@ -89,9 +90,11 @@ def test_jsonl_event_kinds() -> None:
         WithdrawWord(word_id="w2"),
         SpeakerHint(speaker="A", turn_end=False),
         SpeakerHint(speaker="A", turn_end=True),
+        TimeTick(time=2.5),
     ]
-    assert [e.time for e in events] == [0.4, None, 0.4, None, None, None]
-    assert [e.line for e in events] == [1, 2, 3, 4, 6, 7]
+    # A tick arrives at the time it carries, like a word at its end.
+    assert [e.time for e in events] == [0.4, None, 0.4, None, None, None, 2.5]
+    assert [e.line for e in events] == [1, 2, 3, 4, 6, 7, 8]
 
 
 @pytest.mark.parametrize(("line", "field", "fragment"), [
@@ -108,6 +111,11 @@ def test_jsonl_event_kinds() -> None:
     ('{"speaker": "A", "text": "hi", "id": "w1"}', "id", "used twice"),
     ('{"kind": "withdraw", "id": "w9"}', "id", "no earlier word"),
     ('{"kind": "replace", "speaker": "A", "text": "x"}', "id", "must name the word"),
+    ('{"kind": "tick"}', "time", "must say what the recogniser's clock reads"),
+    ('{"kind": "tick", "time": -0.5}', "time", "must be at least 0"),
+    ('{"kind": "tick", "time": "soon"}', "time", "must be a number"),
+    ('{"kind": "tick", "time": null}', "time", "must be a number"),
+    ('{"kind": "tick", "time": 3, "speaker": "A"}', "speaker", "unknown field"),
 ])
 def test_jsonl_errors_name_file_line_and_field(line: str, field: str | None,
                                                fragment: str) -> None:
@@ -140,8 +148,9 @@ _json_values = st.recursive(
                                                                 max_size=4),
     max_leaves=8)
 _jsonl_keys = st.sampled_from(["kind", "id", "speaker", "text", "start", "end", "confidence",
-                               "other"])
-_kinds = st.sampled_from(["word", "replace", "withdraw", "utterance_end", "turn_end", "x"])
+                               "time", "other"])
+_kinds = st.sampled_from(["word", "replace", "withdraw", "utterance_end", "turn_end", "tick",
+                          "x"])
 
 
 @st.composite
@@ -166,6 +175,8 @@ def test_jsonl_parser_parses_or_raises_format_error(lines: list[str]) -> None:
             word = event.event.word
             assert word.text.strip() and word.speaker.strip()
             assert word.confidence is None or 0.0 <= word.confidence <= 1.0
+        if event is not None and isinstance(event.event, TimeTick):
+            assert event.time == event.event.time and 0.0 <= event.time < float("inf")
 
 
 _ctm_field = st.one_of(st.text(max_size=10), st.floats().map(str), st.integers().map(str),

@@ -7,9 +7,23 @@ over reference words, NIST scoring).
 
 from __future__ import annotations
 
+import doctest
+from dataclasses import replace
+
 import pytest
 from midstream import Conversation, DisfluencyLabel, Repair, Utterance, UtteranceFunction, Word
-from midstream.models._recogniser import ERROR_SHARES, RecogniserConditions, as_recognised
+from midstream.models import ModelBundle
+from midstream.models import _recogniser as recogniser_module
+from midstream.models._eval_engine import replay_conversation
+from midstream.models._recogniser import (
+    ERROR_SHARES,
+    RecogniserConditions,
+    as_recognised,
+    silence_ticks,
+)
+from midstream.models.boundaries._model import BoundaryModel
+from midstream.models.words._eval import evaluate_words
+from midstream.models.words._model import WordModel
 
 L = DisfluencyLabel
 
@@ -78,3 +92,95 @@ def test_errors_come_at_the_rate_and_proportions_asked(rate: float) -> None:
 def test_a_rate_outside_zero_to_one_is_refused() -> None:
     with pytest.raises(ValueError, match="word_error_rate"):
         RecogniserConditions(word_error_rate=1.5)
+
+
+# --- the recogniser's clock through the silences ------------------------------------------------
+
+def _timed(*turns: tuple[str, float, str]) -> Conversation:
+    """Invented: ``(speaker, silence before in seconds, words)`` per gold utterance, each word
+    0.25 s long and 0.05 s after the one before."""
+    words: list[Word] = []
+    utterances = []
+    clock = 0.0
+    for speaker, silence, text in turns:
+        clock += silence
+        first = len(words)
+        for token in text.split():
+            words.append(Word(text=token, speaker=speaker, start=clock, end=clock + 0.25))
+            clock += 0.3
+        clock -= 0.05
+        utterances.append(Utterance(speaker=speaker, words=tuple(range(first, len(words))),
+                                    function=UtteranceFunction.STATEMENT, fine_tag="sd",
+                                    fine_class="sd"))
+    return Conversation(id="boiler", corpus="demo", words=tuple(words),
+                        utterances=tuple(utterances))
+
+
+def test_silence_ticks_run_per_speaker_until_that_speaker_speaks_again() -> None:
+    conversation = _timed(("A", 0.0, "the boiler is broken"), ("B", 0.4, "oh no"),
+                          ("A", 2.0, "since monday"))
+    ticks = silence_ticks(conversation, (0.2, 0.5, 1.0, 3.0))
+    words = conversation.words
+    a_end, b_end = words[3].end, words[5].end
+    assert a_end is not None and b_end is not None
+    # A's silence after "broken" runs through B's turn until A starts again (3 s is too late).
+    a_ticks = [t for t in ticks if t.time in {a_end + m for m in (0.2, 0.5, 1.0)}]
+    assert len(a_ticks) == 3
+    # Each tick goes before the first word that arrives (ends) after it, in sending order.
+    for tick in ticks:
+        if tick.before < len(words):
+            arrival = words[tick.before].end
+            assert arrival is not None and arrival > tick.time
+        previous = words[tick.before - 1].end
+        assert previous is not None and previous <= tick.time
+    assert list(ticks) == sorted(ticks, key=lambda t: (t.before, t.time))
+    # Nothing is ticked once the last word has arrived (the end closes everything anyway).
+    last = words[-1].end
+    assert last is not None and all(t.time < last for t in ticks)
+    assert all(t.time < (words[6].start or 0.0) for t in ticks if t.time > b_end + 1.0)
+
+
+def test_untimed_words_get_no_ticks() -> None:
+    conversation = _conversation(50)
+    assert silence_ticks(conversation, (0.5, 1.0)) == ()
+    assert silence_ticks(_timed(("A", 0.0, "hello there")), ()) == ()
+
+
+def _report(*, timed: bool = True) -> Conversation:
+    # A report, a 1 s pause, an afterthought: two gold utterances of one speaker.
+    conversation = _timed(("tenant", 0.0, "the boiler is making a loud noise"),
+                          ("tenant", 1.0, "in the basement"))
+    if timed:
+        return conversation
+    return replace(conversation, words=tuple(replace(w, start=None, end=None)
+                                             for w in conversation.words))
+
+
+def test_evaluation_with_ticks_closes_utterances_in_the_silence_as_a_live_stream_does() -> None:
+    # With the shipped models the afterthought's own words join it to the report when they
+    # arrive; a live caller's clock ticking through the 1 s pause closes the report first
+    # (tests/server/test_server_ticks.py shows the server doing so with the same words).
+    model, boundary = WordModel.load(), BoundaryModel.load()
+    report = _report()
+    joined = evaluate_words([report], model, boundary=boundary)
+    ticked = evaluate_words([report], model, boundary=boundary, ticks=True)
+    assert joined["segmentation.recall"] == 0.5  # only the final end was found
+    assert ticked["segmentation.recall"] == 1.0 and ticked["segmentation.precision"] == 1.0
+    bundle = ModelBundle.load_default()
+    ticks = silence_ticks(report, boundary.silence_marks)
+    live = replay_conversation(report, bundle, ticks=ticks)
+    assert {u.utterance_id for u in live.values()} == {"tenant.1", "tenant.2"}
+    assert live["w6"].word_ids == tuple(f"w{i}" for i in range(7))
+    # Without times there is no clock to tick: the figures are exactly those without ticks.
+    untimed = _report(timed=False)
+    plain = evaluate_words([untimed], model, boundary=boundary)
+    with_ticks = evaluate_words([untimed], model, boundary=boundary, ticks=True)
+    assert {k: v for k, v in with_ticks.items() if k.startswith("segmentation.")} == {
+        k: v for k, v in plain.items() if k.startswith("segmentation.")}
+    assert replay_conversation(untimed, bundle) == replay_conversation(
+        untimed, bundle, ticks=silence_ticks(untimed, boundary.silence_marks))
+
+
+def test_the_modules_examples_run() -> None:
+    result = doctest.testmod(recogniser_module)
+    assert result.attempted > 0 and result.failed == 0

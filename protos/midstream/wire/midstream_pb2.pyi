@@ -97,12 +97,14 @@ class SpokenWord(_message.Message):
     def __init__(self, word_id: _Optional[str] = ..., speaker: _Optional[str] = ..., text: _Optional[str] = ..., start_s: _Optional[float] = ..., end_s: _Optional[float] = ..., confidence: _Optional[float] = ...) -> None: ...
 
 class OpenConversation(_message.Message):
-    __slots__ = ("conversation_id", "resume")
+    __slots__ = ("conversation_id", "resume", "server_ticks")
     CONVERSATION_ID_FIELD_NUMBER: _ClassVar[int]
     RESUME_FIELD_NUMBER: _ClassVar[int]
+    SERVER_TICKS_FIELD_NUMBER: _ClassVar[int]
     conversation_id: str
     resume: bool
-    def __init__(self, conversation_id: _Optional[str] = ..., resume: _Optional[bool] = ...) -> None: ...
+    server_ticks: bool
+    def __init__(self, conversation_id: _Optional[str] = ..., resume: _Optional[bool] = ..., server_ticks: _Optional[bool] = ...) -> None: ...
 
 class WordBatch(_message.Message):
     __slots__ = ("words",)
@@ -359,12 +361,14 @@ class ListConversationsReply(_message.Message):
     def __init__(self, conversations: _Optional[_Iterable[_Union[ConversationSummary, _Mapping]]] = ...) -> None: ...
 
 class TranscriptItem(_message.Message):
-    __slots__ = ("word", "hint")
+    __slots__ = ("word", "hint", "tick")
     WORD_FIELD_NUMBER: _ClassVar[int]
     HINT_FIELD_NUMBER: _ClassVar[int]
+    TICK_FIELD_NUMBER: _ClassVar[int]
     word: SpokenWord
     hint: SpeakerHint
-    def __init__(self, word: _Optional[_Union[SpokenWord, _Mapping]] = ..., hint: _Optional[_Union[SpeakerHint, _Mapping]] = ...) -> None: ...
+    tick: TimeTick
+    def __init__(self, word: _Optional[_Union[SpokenWord, _Mapping]] = ..., hint: _Optional[_Union[SpeakerHint, _Mapping]] = ..., tick: _Optional[_Union[TimeTick, _Mapping]] = ...) -> None: ...
 
 class TagTranscriptRequest(_message.Message):
     __slots__ = ("items",)
