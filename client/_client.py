@@ -41,8 +41,7 @@ from typing import Any, Self
 
 import grpc
 import grpc.aio
-from midstream._errors import InputError, MidstreamError, UnavailableError
-from midstream._types import HypothesisUpdate, Word
+from midstream import HypothesisUpdate, InputError, MidstreamError, UnavailableError, Word
 from midstream.client._results import (
     AddWord,
     ConversationSummary,
@@ -65,8 +64,9 @@ from midstream.client._results import (
     WithdrawWord,
 )
 from midstream.client._status import RETRYABLE, error_from_rpc, error_from_status, tls_failure
-from midstream.wire import _convert, midstream_pb2_grpc
+from midstream.wire import convert as _convert
 from midstream.wire import midstream_pb2 as pb
+from midstream.wire import midstream_pb2_grpc
 
 _log = logging.getLogger(__name__)
 

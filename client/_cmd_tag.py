@@ -18,7 +18,7 @@ from collections.abc import AsyncIterable, Iterable
 from pathlib import Path
 from typing import TextIO
 
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.client._common import (
     add_input_options,
     add_server_options,

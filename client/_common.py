@@ -14,8 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TextIO
 
-from midstream._errors import CorpusNotFoundError, InputError
-from midstream._types import Conversation
+from midstream import Conversation, CorpusNotFoundError, InputError
 from midstream.client._client import Client
 from midstream.client._inputs import (
     MAX_LINE_CHARS,

@@ -26,8 +26,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from midstream._errors import TranscriptFormatError
-from midstream._types import Word
+from midstream import TranscriptFormatError, Word
 from midstream.client._results import AddWord, InputEvent, ReplaceWord, SpeakerHint, WithdrawWord
 
 #: Longest accepted input line (characters); a longer one is an error, not a silent cut.

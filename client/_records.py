@@ -24,11 +24,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from midstream._errors import TranscriptFormatError
-from midstream._types import (
+from midstream import (
     DisfluencyLabel,
     HypothesisDiff,
     HypothesisUpdate,
+    TranscriptFormatError,
     UtteranceFunction,
     UtteranceHypothesis,
     WordHypothesis,

@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any
 
-from midstream._types import HypothesisUpdate, UtteranceHypothesis, Word, WordHypothesis
+from midstream import HypothesisUpdate, UtteranceHypothesis, Word, WordHypothesis
 
 # --- what a caller sends ----------------------------------------------------------------------
 

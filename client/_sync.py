@@ -24,7 +24,7 @@ from collections.abc import AsyncIterator, Coroutine, Iterable, Iterator, Sequen
 from types import TracebackType
 from typing import Any, Generic, Protocol, Self, TypeVar, cast
 
-from midstream._errors import InputError, MidstreamError, UnavailableError
+from midstream import InputError, MidstreamError, UnavailableError
 from midstream.client._client import (
     DEFAULT_FRAME_EVENTS,
     Client,

@@ -15,7 +15,7 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
-from midstream._errors import ModelError, NotFoundError
+from midstream import ModelError, NotFoundError
 from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
 from midstream.models._boundary import BoundaryModel
 from midstream.models._decoder import ChannelDecoder, DecoderConfig

@@ -24,17 +24,17 @@ from collections import OrderedDict
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
-from midstream._errors import EventError
-from midstream._types import (
+from midstream import (
     REMOVED_FROM_CLEAN_TEXT,
     DisfluencyLabel,
+    EventError,
     HypothesisDiff,
     UtteranceFunction,
     UtteranceHypothesis,
     Word,
     WordHypothesis,
+    normalise_token,
 )
-from midstream.corpora._normalise import normalise_token
 from midstream.models._decoder import ChannelDecoder, TokenState
 from midstream.models._functions import FunctionGuess, FunctionTagger, WordsMemo
 from midstream.models._views import UtteranceView, build_view

@@ -52,7 +52,7 @@ import sys
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 
-from midstream._types import Conversation, DisfluencyLabel
+from midstream import Conversation, DisfluencyLabel
 from midstream.models._boundary import BoundaryModel, overlap_flags
 from midstream.models._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models._features import tokens_from_words

@@ -16,8 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
-from midstream._errors import InputError
-from midstream._types import Conversation
+from midstream import Conversation, InputError
 from midstream.models._artifact import ModelArtifact
 from midstream.models._boundary import (
     BOUNDARY_LABELS,

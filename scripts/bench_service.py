@@ -46,7 +46,7 @@ from pathlib import Path
 from typing import Any
 
 from _benchkit import corpora_root, machine, models_folder, pin_self
-from midstream._types import Word
+from midstream import Word
 from midstream.client._cmd_bench import bucket_text, load_script, spawn_server
 from midstream.client._load import (
     DEFAULT_TICK_S,
