@@ -24,8 +24,15 @@ from collections.abc import AsyncIterator, Coroutine, Iterable, Iterator, Sequen
 from types import TracebackType
 from typing import Any, Generic, Protocol, Self, TypeVar, cast
 
-from midstream import AddWord, InputEvent, ModelInfo, SpeakerHint
-from midstream._errors import InputError, MidstreamError, UnavailableError
+from midstream import (
+    AddWord,
+    InputError,
+    InputEvent,
+    MidstreamError,
+    ModelInfo,
+    SpeakerHint,
+    UnavailableError,
+)
 from midstream.client._client import (
     DEFAULT_FRAME_EVENTS,
     Client,

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 
-from midstream._types import Conversation, UtteranceFunction, UtteranceHypothesis
+from midstream import Conversation, UtteranceFunction, UtteranceHypothesis
 from midstream.models._bundle import ModelBundle
 
 

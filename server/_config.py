@@ -10,7 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from midstream._errors import InputError
+from midstream import InputError
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
