@@ -40,11 +40,8 @@ import re
 from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 
-from midstream import AddWord
-from midstream._errors import TranscriptFormatError
-from midstream._types import Word
+from midstream import AddWord, TranscriptFormatError, Word, normalise_token
 from midstream.client._inputs import MAX_ID_CHARS, MAX_LINE_CHARS, MAX_WORD_CHARS, TimedEvent
-from midstream.corpora import normalise_token
 
 __all__ = ["NO_VOICE", "parse_stm", "parse_webvtt", "recordings_of_stm"]
 

@@ -45,15 +45,18 @@ from midstream import (
     AddWord,
     EndReason,
     GapReason,
+    HypothesisUpdate,
+    InputError,
     InputEvent,
+    MidstreamError,
     ModelInfo,
     ReplaceWord,
     SpeakerHint,
     TimeTick,
+    UnavailableError,
     WithdrawWord,
+    Word,
 )
-from midstream._errors import InputError, MidstreamError, UnavailableError
-from midstream._types import HypothesisUpdate, Word
 from midstream.client._results import (
     ConversationSummary,
     Ended,
@@ -67,8 +70,9 @@ from midstream.client._results import (
     Welcome,
 )
 from midstream.client._status import RETRYABLE, error_from_rpc, error_from_status, tls_failure
-from midstream.wire import _convert, midstream_pb2_grpc
+from midstream.wire import convert as _convert
 from midstream.wire import midstream_pb2 as pb
+from midstream.wire import midstream_pb2_grpc
 
 _log = logging.getLogger(__name__)
 

@@ -26,9 +26,16 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from midstream import AddWord, InputEvent, ReplaceWord, SpeakerHint, TimeTick, WithdrawWord
-from midstream._errors import TranscriptFormatError
-from midstream._types import Word
+from midstream import (
+    AddWord,
+    InputEvent,
+    ReplaceWord,
+    SpeakerHint,
+    TimeTick,
+    TranscriptFormatError,
+    WithdrawWord,
+    Word,
+)
 
 #: Longest accepted input line (characters); a longer one is an error, not a silent cut.
 MAX_LINE_CHARS = 10_000

@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections.abc import Callable
 
 import grpc
-from midstream._errors import (
+from midstream import (
     EventError,
     InputError,
     LimitExceededError,

@@ -24,8 +24,16 @@ from collections.abc import AsyncIterator, Coroutine, Iterable, Iterator, Sequen
 from types import TracebackType
 from typing import Any, Generic, Protocol, Self, TypeVar, cast
 
-from midstream import AddWord, InputEvent, ModelInfo, SpeakerHint, TimeTick
-from midstream._errors import InputError, MidstreamError, UnavailableError
+from midstream import (
+    AddWord,
+    InputError,
+    InputEvent,
+    MidstreamError,
+    ModelInfo,
+    SpeakerHint,
+    TimeTick,
+    UnavailableError,
+)
 from midstream.client._client import (
     DEFAULT_FRAME_EVENTS,
     Client,

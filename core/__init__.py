@@ -1,10 +1,12 @@
 """Midstream: streaming disfluency and utterance-function tagging over recogniser words.
 
-The root package holds the domain types and the exception tree shared by every layer:
+The root package holds the domain types, the exception tree and the token normalisation
+(transcript token to recogniser word) shared by every layer, and says which build is running:
 ``midstream.corpora`` reads annotated conversations, ``midstream.models`` tags them,
 ``midstream.server`` serves the models over gRPC and ``midstream.client`` talks to it.
 """
 
+from midstream._build import build_name, compiled_modules
 from midstream._errors import (
     CorpusNotFoundError,
     EventError,
@@ -16,6 +18,7 @@ from midstream._errors import (
     TranscriptFormatError,
     UnavailableError,
 )
+from midstream._normalise import NormalisedToken, normalise_token
 from midstream._schemes import (
     SWBD42_CLASSES,
     MappingRow,
@@ -68,6 +71,7 @@ __all__ = [
     "MidstreamError",
     "ModelError",
     "ModelInfo",
+    "NormalisedToken",
     "NotFoundError",
     "Repair",
     "ReplaceWord",
@@ -81,9 +85,12 @@ __all__ = [
     "WithdrawWord",
     "Word",
     "WordHypothesis",
+    "build_name",
     "coarse_function",
+    "compiled_modules",
     "mapping_rows",
     "merge_diffs",
+    "normalise_token",
     "swbd42_class",
 ]
 __version__ = "0.1.0"

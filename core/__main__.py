@@ -1,5 +1,5 @@
 """``python -m midstream``: the ``midstream`` command line, for environments without its script."""
 
-from midstream.client.cli._main import main
+from midstream.client.cli import main
 
 raise SystemExit(main())

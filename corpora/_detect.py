@@ -27,8 +27,7 @@ from collections.abc import Callable, Iterator
 from enum import StrEnum
 from pathlib import Path
 
-from midstream._errors import CorpusNotFoundError
-from midstream._types import Conversation
+from midstream import Conversation, CorpusNotFoundError
 from midstream.corpora._disflqa import read_disflqa
 from midstream.corpora._inline import SUFFIX as INLINE_SUFFIX
 from midstream.corpora._inline import read_inline

@@ -43,16 +43,17 @@ import json
 from collections.abc import Iterator, Sequence
 from pathlib import Path
 
-from midstream._errors import CorpusNotFoundError, TranscriptFormatError
-from midstream._types import (
+from midstream import (
     Conversation,
+    CorpusNotFoundError,
     DisfluencyLabel,
     Repair,
+    TranscriptFormatError,
     Utterance,
     UtteranceFunction,
     Word,
+    normalise_token,
 )
-from midstream.corpora._normalise import normalise_token
 
 #: Editing terms found in the training data (see the module docstring for the rule).
 EDIT_TERMS: tuple[str, ...] = (

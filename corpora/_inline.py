@@ -38,15 +38,16 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO
 
-from midstream._errors import InputError, TranscriptFormatError
-from midstream._types import (
+from midstream import (
     Conversation,
     DisfluencyLabel,
+    InputError,
     Repair,
+    TranscriptFormatError,
     Utterance,
     UtteranceFunction,
+    normalise_token,
 )
-from midstream.corpora._normalise import normalise_token
 from midstream.corpora._restarts import abandoned_utterances
 from midstream.corpora._swda import _TOKEN, _Builder
 

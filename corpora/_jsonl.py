@@ -27,11 +27,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import IO, Any
 
-from midstream._errors import InputError, TranscriptFormatError
-from midstream._types import (
+from midstream import (
     Conversation,
     DisfluencyLabel,
+    InputError,
     Repair,
+    TranscriptFormatError,
     Utterance,
     UtteranceFunction,
     Word,

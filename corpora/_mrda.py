@@ -40,10 +40,15 @@ from collections.abc import Collection, Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
-from midstream._errors import CorpusNotFoundError, TranscriptFormatError
-from midstream._schemes import coarse_function
-from midstream._types import Conversation, Utterance, Word
-from midstream.corpora._normalise import normalise_token
+from midstream import (
+    Conversation,
+    CorpusNotFoundError,
+    TranscriptFormatError,
+    Utterance,
+    Word,
+    coarse_function,
+    normalise_token,
+)
 from midstream.corpora._restarts import abandoned_utterances
 from midstream.corpora._text import read_lines
 

@@ -33,7 +33,7 @@ from __future__ import annotations
 
 from collections.abc import Collection, Sequence
 
-from midstream._types import UtteranceFunction, Word
+from midstream import UtteranceFunction, Word
 
 __all__ = ["abandoned_utterances"]
 

@@ -23,7 +23,7 @@ from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 
-from midstream._types import Conversation, DisfluencyLabel, Repair, UtteranceFunction, Word
+from midstream import Conversation, DisfluencyLabel, Repair, UtteranceFunction, Word
 
 #: Words a repair comparison skips: they are not what the speaker repairs or repairs with.
 _NOT_CONTENT = frozenset({DisfluencyLabel.FILLER, DisfluencyLabel.EDIT_TERM})

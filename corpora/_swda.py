@@ -62,10 +62,19 @@ from enum import Enum
 from functools import lru_cache
 from pathlib import Path
 
-from midstream._errors import CorpusNotFoundError, InputError, TranscriptFormatError
-from midstream._schemes import coarse_function, swbd42_class
-from midstream._types import Conversation, DisfluencyLabel, Repair, Utterance, Word
-from midstream.corpora._normalise import normalise_token
+from midstream import (
+    Conversation,
+    CorpusNotFoundError,
+    DisfluencyLabel,
+    InputError,
+    Repair,
+    TranscriptFormatError,
+    Utterance,
+    Word,
+    coarse_function,
+    normalise_token,
+    swbd42_class,
+)
 from midstream.corpora._restarts import abandoned_utterances
 
 CORPUS = "swda"

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from midstream._errors import TranscriptFormatError
+from midstream import TranscriptFormatError
 
 
 def read_lines(path: Path, *, encoding: str = "utf-8") -> list[str]:

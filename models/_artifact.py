@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Final, Literal
 
-from midstream._errors import ModelError, NotFoundError
+from midstream import ModelError, NotFoundError
 
 __all__ = [
     "FORMAT_VERSION",

@@ -13,8 +13,7 @@ from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
 
-from midstream import ModelInfo
-from midstream._errors import ModelError, NotFoundError
+from midstream import ModelError, ModelInfo, NotFoundError
 from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
 from midstream.models._engine import ConversationEngine, EngineConfig
 from midstream.models._lattice import warm_up as warm_up_kernels

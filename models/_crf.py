@@ -24,7 +24,7 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 import pycrfsuite
-from midstream._errors import InputError, ModelError
+from midstream import InputError, ModelError
 
 __all__ = [
     "CrfTagger",

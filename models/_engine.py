@@ -24,18 +24,18 @@ from collections import OrderedDict
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
-from midstream import merge_diffs
-from midstream._errors import EventError
-from midstream._types import (
+from midstream import (
     REMOVED_FROM_CLEAN_TEXT,
     DisfluencyLabel,
+    EventError,
     HypothesisDiff,
     UtteranceFunction,
     UtteranceHypothesis,
     Word,
     WordHypothesis,
+    merge_diffs,
+    normalise_token,
 )
-from midstream.corpora._normalise import normalise_token
 from midstream.models.functions._tagger import FunctionGuess, FunctionTagger, WordsMemo
 from midstream.models.functions._views import UtteranceView, build_view
 from midstream.models.words._decoder import ChannelDecoder, TokenState

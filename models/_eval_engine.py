@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
 
-from midstream._types import Conversation, UtteranceFunction, UtteranceHypothesis
+from midstream import Conversation, UtteranceFunction, UtteranceHypothesis
 from midstream.models._bundle import ModelBundle
 from midstream.models._recogniser import SilenceTick, silence_ticks
 

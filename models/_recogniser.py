@@ -34,7 +34,7 @@ import random
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
 
-from midstream._types import Conversation, DisfluencyLabel, Repair, Word
+from midstream import Conversation, DisfluencyLabel, Repair, Word
 
 __all__ = ["ERROR_SHARES", "RecogniserConditions", "SilenceTick", "as_recognised",
            "silence_ticks"]

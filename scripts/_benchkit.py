@@ -13,7 +13,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from midstream._build import build_name
+from midstream import build_name
 
 REPO = Path(__file__).resolve().parent.parent
 WEIGHTS = REPO / "models" / "weights"

@@ -44,12 +44,17 @@ from pathlib import Path
 from _benchkit import machine
 from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceFunction, Word
 from midstream.corpora import read_corpus
-from midstream.models._lattice import warm_up
-from midstream.models.boundaries._model import BoundaryModel, default_boundary_model_path
-from midstream.models.words._decoder import ChannelDecoder, DecoderConfig
+from midstream.models import (
+    BoundaryModel,
+    DecoderConfig,
+    ModelBundle,
+    WordModel,
+    default_boundary_model_path,
+    default_words_model_path,
+)
+from midstream.models.training import WordTrainingConfig, train_word_artifact
+from midstream.models.words._decoder import ChannelDecoder
 from midstream.models.words._features import Token, features_at, token_of
-from midstream.models.words._model import WordModel, default_words_model_path
-from midstream.models.words._train import WordTrainingConfig, train_word_artifact
 
 _REPO = Path(__file__).resolve().parent.parent
 _SENTENCES = (
@@ -222,7 +227,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     texts = (None if args.smoke else _corpus_words(max(n_words, 1000))) or _invented_words(
         max(n_words, 1000))
     lengths = (10, 100, 1000)
-    warm_up()  # compile the kernels before timing, as the server does at start-up
+    ModelBundle.warm_up()  # compile the kernels before timing, as the server does at start-up
     # One untimed pass, so first-use costs (kernel dispatch for each window shape, allocator
     # growth) are not charged to whichever row happens to run first.
     config = DecoderConfig(lag=args.lag, settle=not args.no_settle)

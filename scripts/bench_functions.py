@@ -33,10 +33,10 @@ from pathlib import Path
 
 from midstream import Conversation
 from midstream.corpora import read_corpus
-from midstream.models import ModelBundle
-from midstream.models._artifact import load_artifact
-from midstream.models.functions._tagger import FunctionTagger, clean_view, utterance_features
+from midstream.models import FunctionTagger, ModelBundle
+from midstream.models.functions._tagger import clean_view, utterance_features
 from midstream.models.functions._views import UtteranceView
+from midstream.models.training import load_artifact
 
 REPO = Path(__file__).resolve().parent.parent
 

@@ -32,7 +32,7 @@ from typing import Any
 
 from _benchkit import corpora_root, machine, models_folder, source_arguments
 from bench_ingest import _frame_bytes, _plan, open_stream
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.client.cli._cmd_bench import load_script
 from midstream.client.cli._cmd_serve import parse_gc_thresholds
 from midstream.models import ModelBundle

@@ -34,7 +34,7 @@ import time
 from typing import Any, cast
 
 from _benchkit import corpora_root, machine, models_folder, source_arguments
-from midstream._types import Word
+from midstream import Word
 from midstream.client.cli._cmd_bench import load_script
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits

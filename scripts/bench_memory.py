@@ -31,7 +31,7 @@ from pathlib import Path
 from typing import Any
 
 from _benchkit import corpora_root, machine, models_folder, pin_self
-from midstream._types import Word
+from midstream import Word
 from midstream.client.bench._load import LoadConfig, ProcessProbe, WordScript, hold_conversations
 from midstream.client.cli._cmd_bench import load_script, spawn_server
 from midstream.models import ModelBundle

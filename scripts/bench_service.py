@@ -46,7 +46,7 @@ from pathlib import Path
 from typing import Any
 
 from _benchkit import corpora_root, machine, models_folder, pin_self
-from midstream._types import Word
+from midstream import Word
 from midstream.client.bench._load import (
     DEFAULT_TICK_S,
     STEAL_NOTABLE_PERCENT,

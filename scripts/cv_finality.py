@@ -23,11 +23,15 @@ from pathlib import Path
 
 from _benchkit import corpora_root
 from midstream.corpora import read_corpus
-from midstream.models._artifact import load_artifact, save_artifact
-from midstream.models.words._decoder import DecoderConfig
-from midstream.models.words._eval import evaluate_words
-from midstream.models.words._model import WordModel, default_words_model_path
-from midstream.models.words._train import WordTrainingConfig, _folds, train_word_artifact
+from midstream.models import DecoderConfig, WordModel, default_words_model_path
+from midstream.models.evaluation import evaluate_words
+from midstream.models.training import (
+    WordTrainingConfig,
+    load_artifact,
+    save_artifact,
+    train_word_artifact,
+    word_folds,
+)
 
 _FOLDS = 3
 _KEYS = ("disfluency.reparandum_no_fragments.f1", "disfluency.offline.reparandum.f1",
@@ -47,7 +51,7 @@ def _shipped_config() -> WordTrainingConfig:
 
 
 def _train_fold(k: int, work: Path) -> None:
-    folds = _folds(list(read_corpus(corpora_root() / "swda", split="train")), _FOLDS, None, 0)
+    folds = word_folds(list(read_corpus(corpora_root() / "swda", split="train")), _FOLDS)
     train = list(itertools.chain.from_iterable(f for j, f in enumerate(folds) if j != k))
     save_artifact(train_word_artifact(train, _shipped_config()), work / f"fold{k}.tagger")
 
@@ -68,7 +72,7 @@ def main(argv: list[str] | None = None) -> int:
                                      "--train-fold", str(k)]) for k in batch]
         if any(p.wait() for p in running):
             raise SystemExit("a fold model failed to train")
-    folds = _folds(list(read_corpus(corpora_root() / "swda", split="train")), _FOLDS, None, 0)
+    folds = word_folds(list(read_corpus(corpora_root() / "swda", split="train")), _FOLDS)
     rules = [("exactly 7 words late", DecoderConfig(lag=7, settle=False))]
     rules += [(f"settled, at most {b} open", DecoderConfig(lag=b)) for b in args.bounds]
     table: dict[str, list[dict[str, float]]] = {name: [] for name, _ in rules}

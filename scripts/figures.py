@@ -159,7 +159,7 @@ def expand(command: Sequence[str], corpora: str | None = None) -> list[str]:
         REPO.parent / "shared" / "corpora")
     words = [word.replace("$MIDSTREAM_CORPORA", corpora) for word in command]
     # The installed command line, run by this interpreter so the active environment is used.
-    return [sys.executable, "-m", "midstream.client.cli._main", *words[1:]]
+    return [sys.executable, "-m", "midstream", *words[1:]]
 
 
 def execute(run: str) -> None:

@@ -27,7 +27,7 @@ import tracemalloc
 from collections import OrderedDict
 from pathlib import Path
 
-from midstream._types import Word
+from midstream import Word
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics

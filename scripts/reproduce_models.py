@@ -24,7 +24,7 @@ import sys
 import tempfile
 from pathlib import Path
 
-from midstream.models._artifact import load_artifact
+from midstream.models.training import load_artifact
 
 REPO = Path(__file__).resolve().parent.parent
 WEIGHTS = REPO / "models" / "weights"
@@ -61,11 +61,11 @@ def training_command(model: Path, corpus: Path, out: Path) -> list[str]:
             break
         args[i] = str(corpus.parent / Path(args[i]).name)
     args[args.index("--out") + 1] = str(out)
-    return [sys.executable, "-m", "midstream.client.cli._main", *args]
+    return [sys.executable, "-m", "midstream", *args]
 
 
 def evaluate(kind: str, model: Path, words_model: Path, corpus: Path) -> dict[str, float]:
-    command = [sys.executable, "-m", "midstream.client.cli._main", "evaluate", str(corpus),
+    command = [sys.executable, "-m", "midstream", "evaluate", str(corpus),
                "--split", "val", "--json"]
     if kind == "words":
         command += ["--model", str(model)]

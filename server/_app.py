@@ -22,8 +22,7 @@ from typing import TYPE_CHECKING
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection
-from midstream._build import build_name, compiled_modules
-from midstream._errors import InputError, UnavailableError
+from midstream import InputError, UnavailableError, build_name, compiled_modules
 from midstream.server._auth import BearerTokenInterceptor
 from midstream.server._config import ServerConfig
 from midstream.server._decode import add_servicer

@@ -11,7 +11,7 @@ import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from midstream._errors import InputError
+from midstream import InputError
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

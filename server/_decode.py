@@ -34,7 +34,7 @@ from typing import TYPE_CHECKING, Any, TypeAlias, TypeVar
 import grpc
 from google.protobuf.descriptor import FieldDescriptor
 from google.protobuf.message import DecodeError, Message
-from midstream._errors import EventError
+from midstream import EventError
 from midstream.wire import midstream_pb2 as pb
 
 if TYPE_CHECKING:  # the servicer imports this module

@@ -11,14 +11,13 @@ import sys
 from typing import Any
 
 import grpc
-from midstream._errors import EventError
-from midstream._types import Word
+from midstream import EventError, Word
 from midstream.server._config import ServerLimits
 from midstream.server._decode import MalformedMessage
 from midstream.server._limits import check_batch_size, check_id, check_word
 from midstream.server._session import Session
 from midstream.server._status import ProtocolStateError
-from midstream.wire import _convert as cv
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 
 # How long an end of the request stream waits to tell a cancellation from a half-close.

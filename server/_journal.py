@@ -50,10 +50,10 @@ from dataclasses import dataclass
 from typing import Any, Final
 
 import redis.asyncio as aioredis
-from midstream._types import HypothesisUpdate
+from midstream import HypothesisUpdate
 from midstream.server._config import SharedLogConfig
 from midstream.server._session import Session
-from midstream.wire import _convert as cv
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from prometheus_client import CollectorRegistry, Counter, Gauge
 from redis.exceptions import NoScriptError, RedisError, ResponseError

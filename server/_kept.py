@@ -23,7 +23,7 @@ from __future__ import annotations
 
 from typing import Any, Final, TypeAlias, TypeGuard
 
-from midstream._types import (
+from midstream import (
     DisfluencyLabel,
     HypothesisDiff,
     HypothesisUpdate,

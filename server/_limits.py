@@ -14,8 +14,7 @@ import math
 import re
 import unicodedata
 
-from midstream._errors import EventError, LimitExceededError
-from midstream._types import Word
+from midstream import EventError, LimitExceededError, Word
 from midstream.server._config import ServerLimits
 from midstream.server._status import FieldLimitError
 

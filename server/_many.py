@@ -41,7 +41,7 @@ from collections.abc import AsyncIterator
 from typing import TYPE_CHECKING
 
 import grpc
-from midstream._errors import EventError, LimitExceededError, MidstreamError, UnavailableError
+from midstream import EventError, LimitExceededError, MidstreamError, UnavailableError
 from midstream.server._decode import MalformedMessage
 from midstream.server._ingest import apply_event, caller_address, caller_vanished
 from midstream.server._session import Session, message_budget

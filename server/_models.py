@@ -11,8 +11,7 @@ from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Protocol
 
-from midstream._errors import InputError
-from midstream._types import HypothesisDiff, Word
+from midstream import HypothesisDiff, InputError, Word
 
 
 class ModelInfoLike(Protocol):

@@ -31,7 +31,7 @@ from collections import OrderedDict
 from collections.abc import AsyncIterator, Iterator
 from typing import Any, Final
 
-from midstream._errors import (
+from midstream import (
     EventError,
     MidstreamError,
     ModelError,

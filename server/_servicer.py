@@ -1,7 +1,7 @@
 """The ``midstream.v1.Midstream`` service: converts wire messages and drives sessions.
 
 Generated protobuf types stop here: requests are converted to domain types with
-``midstream.wire._convert`` and checked by ``midstream.server._limits`` before a session or
+``midstream.wire.convert`` and checked by ``midstream.server._limits`` before a session or
 engine sees them. Every Midstream error an RPC raises is reported through one function
 (:func:`midstream.server._status.status_code`).
 
@@ -23,15 +23,17 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, NoReturn
 
 import grpc
-from midstream._errors import (
+from midstream import (
     EventError,
+    HypothesisDiff,
     LimitExceededError,
     MidstreamError,
     ModelError,
     NotFoundError,
     UnavailableError,
+    UtteranceHypothesis,
+    WordHypothesis,
 )
-from midstream._types import HypothesisDiff, UtteranceHypothesis, WordHypothesis
 from midstream.server._config import ServerLimits
 from midstream.server._decode import MalformedMessage
 from midstream.server._ingest import apply_event, caller_address, caller_vanished
@@ -46,7 +48,7 @@ from midstream.server._status import (
     ProtocolStateError,
     status_code,
 )
-from midstream.wire import _convert as cv
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
 

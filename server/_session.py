@@ -31,14 +31,16 @@ from collections import OrderedDict, deque
 from collections.abc import AsyncIterator, Callable, Iterator
 from typing import Generic, Protocol, TypeVar
 
-from midstream import merge_diffs
-from midstream._errors import EventError, LimitExceededError, NotFoundError
-from midstream._types import (
+from midstream import (
+    EventError,
     HypothesisDiff,
     HypothesisUpdate,
+    LimitExceededError,
+    NotFoundError,
     UtteranceHypothesis,
     Word,
     WordHypothesis,
+    merge_diffs,
 )
 from midstream.server._config import ServerLimits
 from midstream.server._kept import (
@@ -67,7 +69,7 @@ from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Bundle, Engine
 from midstream.server._silence import SilenceClock
 from midstream.server._status import ConflictError, PositionError, ProtocolStateError
-from midstream.wire import _convert as cv
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 
 _log = logging.getLogger(__name__)

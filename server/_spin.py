@@ -23,7 +23,7 @@ import os
 import subprocess
 import sys
 
-from midstream._errors import InputError
+from midstream import InputError
 
 __all__ = ["IdleSpinners"]
 

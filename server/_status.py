@@ -31,7 +31,7 @@ Examples
 from __future__ import annotations
 
 import grpc
-from midstream._errors import (
+from midstream import (
     CorpusNotFoundError,
     EventError,
     InputError,

@@ -44,7 +44,7 @@ from typing import Any, Literal
 
 import grpc
 import grpc.aio
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.client.bench._scrape import Histogram, MetricsProbe
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc

@@ -19,7 +19,7 @@ import urllib.error
 import urllib.request
 from dataclasses import dataclass
 
-from midstream._errors import InputError
+from midstream import InputError
 
 __all__ = ["LOOP_LAG_METRIC", "Histogram", "MetricsProbe", "parse_histogram"]
 

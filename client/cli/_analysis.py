@@ -10,7 +10,7 @@ from __future__ import annotations
 from collections import Counter
 from dataclasses import dataclass, field
 
-from midstream._types import (
+from midstream import (
     DisfluencyLabel,
     HypothesisDiff,
     HypothesisUpdate,

@@ -49,7 +49,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from midstream._errors import CorpusNotFoundError, InputError, UnavailableError
+from midstream import CorpusNotFoundError, InputError, UnavailableError
 from midstream.client.bench._load import (
     DEFAULT_TICK_S,
     STEAL_NOTABLE_PERCENT,

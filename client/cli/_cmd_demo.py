@@ -16,7 +16,7 @@ import asyncio
 import sys
 from pathlib import Path
 
-from midstream._types import HypothesisUpdate
+from midstream import HypothesisUpdate
 from midstream.client._client import Client
 from midstream.client._results import ServerEvent
 from midstream.client.cli._demo_script import demo_ctm, demo_events

@@ -34,18 +34,25 @@ import math
 import sys
 from pathlib import Path
 
-from midstream._errors import InputError, NotFoundError
+from midstream import InputError, NotFoundError
 from midstream.client.cli._figures import format_figures
 from midstream.corpora import read_corpus
-from midstream.models._bundle import ModelBundle, default_functions_model_path
-from midstream.models._eval_engine import evaluate_engine
-from midstream.models._recogniser import RecogniserConditions, as_recognised
-from midstream.models.boundaries._model import BoundaryModel, default_boundary_model_path
-from midstream.models.functions._eval import evaluate_functions
-from midstream.models.functions._tagger import FunctionTagger
-from midstream.models.words._decoder import DecoderConfig
-from midstream.models.words._eval import evaluate_words
-from midstream.models.words._model import WordModel
+from midstream.models import (
+    BoundaryModel,
+    DecoderConfig,
+    FunctionTagger,
+    ModelBundle,
+    WordModel,
+    default_boundary_model_path,
+    default_functions_model_path,
+)
+from midstream.models.evaluation import (
+    RecogniserConditions,
+    as_recognised,
+    evaluate_engine,
+    evaluate_functions,
+    evaluate_words,
+)
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:

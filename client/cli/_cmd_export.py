@@ -16,7 +16,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.client.cli._diaml import write_diaml
 from midstream.client.cli._outcome import conversation_of, outcome_of, write_csv
 from midstream.client.cli._records import read_log

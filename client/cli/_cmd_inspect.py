@@ -14,7 +14,7 @@ import asyncio
 import sys
 from pathlib import Path
 
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.client.cli._analysis import Analysis, analyse, log_from_history
 from midstream.client.cli._common import add_server_options, client_from_args
 from midstream.client.cli._records import read_log

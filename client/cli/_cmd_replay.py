@@ -15,8 +15,7 @@ import sys
 from pathlib import Path
 from typing import TextIO
 
-from midstream import AddWord
-from midstream._errors import InputError
+from midstream import AddWord, InputError
 from midstream.client._results import ServerEvent, Welcome
 from midstream.client.cli._common import (
     add_input_options,

@@ -34,7 +34,7 @@ from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Final
 
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.server import (
     IdleSpinners,
     MidstreamServer,

@@ -10,7 +10,7 @@ import argparse
 import asyncio
 import sys
 
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.client.cli._common import add_server_options, client_from_args
 from midstream.client.cli._output import Printer
 

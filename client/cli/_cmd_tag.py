@@ -18,7 +18,7 @@ from collections.abc import AsyncIterable, Iterable
 from pathlib import Path
 from typing import TextIO
 
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.client._inputs import TimedEvent
 from midstream.client._results import ServerEvent, Welcome
 from midstream.client.cli._common import (

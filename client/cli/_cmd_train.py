@@ -28,19 +28,18 @@ import time
 from dataclasses import replace
 from pathlib import Path
 
-from midstream._errors import InputError
-from midstream._types import Conversation
+from midstream import Conversation, InputError
 from midstream.client.cli import _cmd_train_boundaries as boundaries
 from midstream.client.cli import _cmd_train_functions as functions
 from midstream.corpora import read_corpus
-from midstream.models._artifact import save_artifact
-from midstream.models.words._tags import TAG_LABEL
-from midstream.models.words._train import (
+from midstream.models.training import (
     BIAS_CANDIDATES,
     RESTART_BIAS_CANDIDATES,
+    TAG_LABEL,
     BiasResult,
     WordTrainingConfig,
     cross_validate_words,
+    save_artifact,
     train_word_artifact,
     tune_tag_bias,
 )

@@ -25,17 +25,16 @@ import time
 from dataclasses import replace
 from pathlib import Path
 
-from midstream._errors import InputError
-from midstream._types import Conversation
+from midstream import Conversation, InputError
 from midstream.corpora import read_corpus
-from midstream.models._artifact import save_artifact
-from midstream.models.boundaries._model import BoundaryConfig
-from midstream.models.boundaries._train import (
+from midstream.models import WordModel, default_words_model_path
+from midstream.models.training import (
+    BoundaryConfig,
     BoundaryTrainingConfig,
     cross_validate_boundaries,
+    save_artifact,
     train_boundary_artifact,
 )
-from midstream.models.words._model import WordModel, default_words_model_path
 
 
 def add_training_arguments(parser: argparse.ArgumentParser) -> None:

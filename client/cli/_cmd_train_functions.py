@@ -35,16 +35,18 @@ import time
 from collections.abc import Sequence
 from typing import TextIO
 
-from midstream._errors import InputError
-from midstream._types import Conversation
+from midstream import Conversation, InputError
 from midstream.corpora import read_corpus
-from midstream.models._artifact import ModelArtifact, save_artifact
-from midstream.models.functions._eval import evaluate_functions
-from midstream.models.functions._tagger import SCHEMES, FunctionFeatureConfig, FunctionTagger
-from midstream.models.functions._train import (
+from midstream.models import FunctionTagger
+from midstream.models.evaluation import evaluate_functions
+from midstream.models.training import (
+    SCHEMES,
+    FunctionFeatureConfig,
     FunctionTrainingOptions,
+    ModelArtifact,
     Scorer,
-    cross_validate,
+    cross_validate_functions,
+    save_artifact,
     train_function_model,
 )
 
@@ -125,7 +127,7 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
                                            opening=opening == "on")
             options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2,
                                                  "oversample": sampling, "config": config})
-            figures = cross_validate(subset, options, folds=args.cv_folds, score=score)
+            figures = cross_validate_functions(subset, options, folds=args.cv_folds, score=score)
             name = f"c1={c1},c2={c2}" + (
                 f",oversample={_oversample_text(sampling)}" if sampling else "") + (
                 ",opening=on" if opening == "on" else "")

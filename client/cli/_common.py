@@ -14,9 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TextIO
 
-from midstream import AddWord
-from midstream._errors import CorpusNotFoundError, InputError
-from midstream._types import Conversation
+from midstream import AddWord, Conversation, CorpusNotFoundError, InputError
 from midstream.client._client import Client
 from midstream.client._inputs import (
     MAX_LINE_CHARS,

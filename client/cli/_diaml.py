@@ -46,7 +46,7 @@ import xml.etree.ElementTree as ET
 from collections.abc import Mapping
 from typing import IO, Final
 
-from midstream._types import DisfluencyLabel, UtteranceFunction
+from midstream import DisfluencyLabel, UtteranceFunction
 from midstream.client.cli._outcome import Outcome, repairs_of
 
 DIAML: Final = "http://www.iso.org/diaml/"

@@ -22,7 +22,7 @@ import sys
 from collections.abc import Callable, Iterator, Sequence
 from importlib import metadata
 
-from midstream._errors import MidstreamError, UnavailableError
+from midstream import MidstreamError, UnavailableError
 
 #: Command modules in the order ``--help`` lists them.
 _COMMAND_MODULES: tuple[str, ...] = (

@@ -16,22 +16,22 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from typing import IO
 
-from midstream._errors import InputError
-from midstream._types import (
+from midstream import (
     REMOVED_FROM_CLEAN_TEXT,
     Conversation,
     DisfluencyLabel,
     HypothesisUpdate,
+    InputError,
     Repair,
     Utterance,
     UtteranceFunction,
     UtteranceHypothesis,
     Word,
     WordHypothesis,
+    normalise_token,
 )
 from midstream.client._results import Snapshot
 from midstream.client.cli._records import RevisionLog
-from midstream.corpora import normalise_token
 
 _L = DisfluencyLabel
 #: Labels that may sit between a reparandum and its repair onset (Shriberg 1994's interregnum;

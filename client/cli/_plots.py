@@ -13,7 +13,7 @@ import html
 import math
 from collections.abc import Sequence
 
-from midstream._types import DisfluencyLabel
+from midstream import DisfluencyLabel
 from midstream.client.cli._analysis import WordTimeline
 
 __all__ = ["COLOURS", "WORDS_PER_PANEL", "accuracy_svg", "confusion_svg", "legend_svg",

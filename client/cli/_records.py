@@ -24,12 +24,13 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from midstream import EndReason, GapReason
-from midstream._errors import TranscriptFormatError
-from midstream._types import (
+from midstream import (
     DisfluencyLabel,
+    EndReason,
+    GapReason,
     HypothesisDiff,
     HypothesisUpdate,
+    TranscriptFormatError,
     UtteranceFunction,
     UtteranceHypothesis,
     WordHypothesis,

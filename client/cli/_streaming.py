@@ -13,8 +13,7 @@ import time
 from collections.abc import AsyncIterable, AsyncIterator, Callable, Iterable
 from dataclasses import dataclass
 
-from midstream import AddWord
-from midstream._types import HypothesisUpdate
+from midstream import AddWord, HypothesisUpdate
 from midstream.client._client import Client
 from midstream.client._inputs import TimedEvent
 from midstream.client._results import Ended, ServerEvent, Welcome

@@ -16,7 +16,7 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from typing import TextIO
 
-from midstream._types import (
+from midstream import (
     REMOVED_FROM_CLEAN_TEXT,
     DisfluencyLabel,
     HypothesisUpdate,

@@ -28,7 +28,7 @@ import time
 from multiprocessing.context import SpawnProcess
 from typing import Any
 
-from midstream._errors import UnavailableError
+from midstream import UnavailableError
 from midstream.server import IdleSpinners, ServerConfig, run_server_loop
 
 _log = logging.getLogger(__name__)

@@ -36,8 +36,7 @@ from importlib import resources
 from pathlib import Path
 from typing import Any, Final
 
-from midstream._errors import ModelError
-from midstream._types import Conversation
+from midstream import Conversation, ModelError
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
 from midstream.models.words._features import Token

@@ -16,8 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
-from midstream._errors import InputError
-from midstream._types import Conversation
+from midstream import Conversation, InputError
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import CrfTagger, train_crf_from
 from midstream.models._lattice import decode_lattice

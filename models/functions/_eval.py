@@ -21,8 +21,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
 
-from midstream._schemes import SWBD42_CLASSES
-from midstream._types import Conversation
+from midstream import SWBD42_CLASSES, Conversation
 from midstream.models.functions._tagger import FunctionTagger, clean_view
 from midstream.models.functions._views import UtteranceView
 

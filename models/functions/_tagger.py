@@ -24,12 +24,13 @@ from typing import Generic, NamedTuple, TypeVar
 
 import numpy as np
 import numpy.typing as npt
-from midstream._errors import InputError, ModelError
-from midstream._schemes import coarse_function
-from midstream._types import (
+from midstream import (
     Conversation,
+    InputError,
+    ModelError,
     Utterance,
     UtteranceFunction,
+    coarse_function,
 )
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger

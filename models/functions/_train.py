@@ -18,9 +18,7 @@ import time
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field
 
-from midstream._errors import InputError
-from midstream._schemes import SWBD42_CLASSES
-from midstream._types import Conversation, UtteranceFunction
+from midstream import SWBD42_CLASSES, Conversation, InputError, UtteranceFunction
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import train_crf
 from midstream.models.functions._tagger import (

@@ -21,8 +21,7 @@ import itertools
 from collections.abc import Iterable
 from dataclasses import dataclass
 
-from midstream._errors import InputError
-from midstream._types import REMOVED_FROM_CLEAN_TEXT, DisfluencyLabel
+from midstream import REMOVED_FROM_CLEAN_TEXT, DisfluencyLabel, InputError
 
 __all__ = ["UtteranceView", "build_view", "check_view"]
 

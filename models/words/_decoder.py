@@ -30,8 +30,7 @@ from typing import NamedTuple
 
 import numpy as np
 import numpy.typing as npt
-from midstream._errors import EventError
-from midstream._types import DisfluencyLabel, Word
+from midstream import DisfluencyLabel, EventError, Word
 from midstream.models._lattice import accumulate_rows, decode_window
 from midstream.models.boundaries._model import BoundaryModel
 from midstream.models.words._features import Token, feature_piece, features_at, token_of

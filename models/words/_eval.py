@@ -26,16 +26,26 @@ Reported keys (all in ``[0, 1]`` unless a unit is named):
 ``disfluency.offline.reparandum.f1``
     the same model decoding each whole channel at once (crfsuite's own Viterbi).
 ``incremental.edit_overhead``
-    share of label edits that were unnecessary (Baumann, Buß & Schlangen, Dialogue & Discourse
-    2011): each word's first label and every change count as an edit; one per word is necessary.
+    edit overhead (Baumann, Buß & Schlangen, "Evaluation and optimisation of incremental
+    processors", Dialogue & Discourse 2(1), 2011): the share of all edits to the output that
+    were unnecessary, where the necessary ones are those a processor that never revises would
+    make. Here the output is each word's label: a word's first label is its one necessary edit
+    and every later change of label an unnecessary one, whether the change was right or wrong
+    (a change counts once, as a substitution, rather than as a revoke and an add; how the paper
+    counts a substitution is from memory). :class:`EditCounts` does the counting.
 ``incremental.time_to_detection_words.median`` and ``incremental.detection_rate``
-    for gold repairs with an onset: words of the channel from the repair onset until the
-    reparandum's first word was first labelled reparandum (negative: before the onset arrived),
-    and the share of such reparanda ever so labelled.
+    time to detection (Zwarts, Johnson & Dale, "Detecting speech repairs incrementally using a
+    noisy channel approach", COLING 2010; from memory): for gold repairs with an onset, words
+    of the channel from the repair onset (the first word at which the repair can be seen)
+    until the reparandum's first word was first labelled reparandum (negative: before the
+    onset arrived), and the share of such reparanda ever so labelled. The paper averages over
+    detected repairs (from memory); the median here is less swayed by a few late detections.
 ``incremental.final_decision_delay_words.mean``
     words that arrived after a word before it became final.
 ``incremental.reparandum_f1_at_delay.{0,1,2}``
-    reparandum F1 of the labels as they stood ``d`` words after each word arrived.
+    delayed accuracy (Zwarts, Johnson & Dale 2010, as above; from memory): reparandum F1 of
+    the labels as they stood ``d`` words after each word arrived, so ``d = 0`` scores a word's
+    label before any right context existed.
 ``segmentation.{precision,recall,f1}``
     utterance ends (the last word of each gold utterance in its speaker's channel), final output.
     Words are fed with the times, speaker changes and overlaps the corpus gives (MRDA has word
@@ -52,7 +62,7 @@ import sys
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 
-from midstream._types import Conversation, DisfluencyLabel
+from midstream import Conversation, DisfluencyLabel
 from midstream.models._recogniser import SilenceTick, silence_ticks
 from midstream.models.boundaries._model import BoundaryModel, overlap_flags
 from midstream.models.words._decoder import ChannelDecoder, DecoderConfig, TokenState
@@ -61,7 +71,7 @@ from midstream.models.words._model import WordModel
 from midstream.models.words._tags import ChannelSequence, channel_sequences, decode_tag
 from tqdm import tqdm
 
-__all__ = ["BinaryCounts", "evaluate_words", "offline_scores"]
+__all__ = ["BinaryCounts", "EditCounts", "evaluate_words", "offline_scores"]
 
 _DELAYS = (0, 1, 2)
 _RESTART_KINDS = ("bracket", "abandoned")
@@ -125,6 +135,41 @@ class BinaryCounts:
 
 
 @dataclass(slots=True)
+class EditCounts:
+    """Edits to a stream's word labels, for edit overhead (Baumann, Buß & Schlangen 2011).
+
+    Feed each word's labels in the order the stream showed them (:meth:`add`); a word's first
+    label is the one necessary edit and every change after it an unnecessary one. Showing a
+    word again with the label it already had (a confidence moved) is no edit.
+
+    Examples
+    --------
+    A word shown fluent, then reparandum, then fluent again made three edits, one necessary:
+
+    >>> counts = EditCounts()
+    >>> counts.add(["fluent", "reparandum", "fluent"])
+    >>> counts.add(["filler", "filler"])
+    >>> counts.edits, counts.words, round(counts.overhead, 3)
+    (4, 2, 0.5)
+    """
+
+    edits: int = 0
+    words: int = 0
+
+    def add(self, labels: Sequence[object]) -> None:
+        """Count one word from the labels it was shown with, oldest first."""
+        shown = sum(1 for i, label in enumerate(labels) if i == 0 or label != labels[i - 1])
+        if shown:  # a word never shown made no edit, necessary or not
+            self.edits += shown
+            self.words += 1
+
+    @property
+    def overhead(self) -> float:
+        """Unnecessary edits over all edits (0 when nothing was shown)."""
+        return (self.edits - self.words) / self.edits if self.edits else 0.0
+
+
+@dataclass(slots=True)
 class _Tally:
     labels: dict[DisfluencyLabel, BinaryCounts] = field(
         default_factory=lambda: {label: BinaryCounts() for label in DisfluencyLabel}
@@ -139,8 +184,7 @@ class _Tally:
         default_factory=lambda: {d: BinaryCounts() for d in _DELAYS}
     )
     segmentation: BinaryCounts = field(default_factory=BinaryCounts)
-    edits: int = 0
-    edited_words: int = 0
+    edit_counts: EditCounts = field(default_factory=EditCounts)
     detection_delays: list[int] = field(default_factory=list)
     gold_repairs: int = 0
     final_delays: list[int] = field(default_factory=list)
@@ -267,8 +311,7 @@ def _replay(
             step = position + d
             at = [lab for s, lab in history[position] if s <= step]
             tally.at_delay[d].add(bool(at) and at[-1] == DisfluencyLabel.REPARANDUM, is_rep)
-        tally.edits += len(history[position])
-        tally.edited_words += 1
+        tally.edit_counts.add([label for _, label in history[position]])
         tally.final_delays.append(final_step[position] - position)
     for position in range(n):
         if not channel.words[position].fragment:
@@ -345,8 +388,7 @@ def evaluate_words(
         result[f"disfluency.restart.{kind}.recall"] = counts.recall
         result[f"disfluency.restart.{kind}.f1"] = counts.f1
     result["disfluency.offline.reparandum.f1"] = tally.offline.f1
-    overhead = tally.edits - tally.edited_words
-    result["incremental.edit_overhead"] = overhead / tally.edits if tally.edits else 0.0
+    result["incremental.edit_overhead"] = tally.edit_counts.overhead
     result["incremental.time_to_detection_words.median"] = (
         float(statistics.median(tally.detection_delays)) if tally.detection_delays
         else float("nan")
@@ -359,7 +401,7 @@ def evaluate_words(
     )
     for d, counts in tally.at_delay.items():
         result[f"incremental.reparandum_f1_at_delay.{d}"] = counts.f1
-    if not tally.edited_words:
+    if not tally.edit_counts.words:
         # No disfluency-annotated conversation: these figures are unknown, not zero.
         result = {k: float("nan") for k in result}
     result["segmentation.precision"] = tally.segmentation.precision

@@ -20,7 +20,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Final
 
-from midstream._types import Word
+from midstream import Word
 
 __all__ = ["FeatureConfig", "Token", "feature_piece", "features_at", "tokens_from_words"]
 

@@ -12,8 +12,7 @@ from pathlib import Path
 
 import numpy as np
 import numpy.typing as npt
-from midstream._errors import ModelError
-from midstream._types import DisfluencyLabel
+from midstream import DisfluencyLabel, ModelError
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
 from midstream.models._lattice import decode_lattice

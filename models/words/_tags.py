@@ -29,7 +29,7 @@ from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import Final
 
-from midstream._types import Conversation, DisfluencyLabel, Word
+from midstream import Conversation, DisfluencyLabel, Word
 
 __all__ = [
     "END_SUFFIX",

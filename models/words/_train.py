@@ -24,8 +24,7 @@ from typing import Any
 
 import numpy as np
 import numpy.typing as npt
-from midstream._errors import InputError
-from midstream._types import Conversation, DisfluencyLabel
+from midstream import Conversation, DisfluencyLabel, InputError
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import TrainingPairs, train_crf_from
 from midstream.models._lattice import decode_lattice

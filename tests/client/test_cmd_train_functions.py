@@ -3,18 +3,15 @@
 from __future__ import annotations
 
 import dataclasses
-import sys
 from pathlib import Path
 
 import pytest
+from function_kit import invented_corpus
 from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
 from midstream.models.functions._tagger import FunctionTagger
 from midstream.models.functions._views import UtteranceView
-
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))
-from function_kit import invented_corpus
 
 
 @pytest.fixture

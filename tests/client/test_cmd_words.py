@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import sys
 from pathlib import Path
 
 import pytest
@@ -14,8 +13,6 @@ from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
 from midstream.models.words._model import WordModel
 from midstream.models.words._train import RESTART_BIAS_CANDIDATES, BiasResult
-
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))
 from word_kit import invented_conversation
 
 

@@ -5,15 +5,12 @@ from __future__ import annotations
 import json
 import math
 import re
-import sys
 from pathlib import Path
 
 import pytest
 from midstream.client.cli._figures import format_figures
 from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
-
-sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "models"))
 from word_kit import invented_conversation
 
 #: Shaped like evaluate's keys (values invented).

@@ -1,6 +1,6 @@
 """The conversation engine: recogniser events in, hypothesis diffs out.
 
-Tiny models trained on invented conversations (tests/models/function_kit.py) keep these tests
+Tiny models trained on invented conversations (tests/function_kit.py) keep these tests
 fast; what they check is the engine's bookkeeping, which does not depend on model quality.
 """
 

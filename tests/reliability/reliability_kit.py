@@ -7,8 +7,9 @@ use the models are therefore marked ``corpus``.
 
 Test modules import the fixtures they use by name (``from reliability_kit import ...``): a
 second ``conftest.py`` would clash with ``tests/conftest.py`` under mypy. The model fixtures,
-the server handle and the wire-event builders are the server suite's own (``server_kit``, on
-pytest's ``pythonpath``); only the defaults for these tests differ.
+the server handle and the wire-event builders are the server suite's own (``tests/server_kit.py``,
+importable because ``tests/conftest.py`` puts its folder on ``sys.path``); only the defaults for
+these tests differ.
 """
 
 from __future__ import annotations

@@ -11,7 +11,7 @@ import pytest
 
 @pytest.mark.parametrize("name", ["midstream.server._config", "midstream.server._status",
                                   "midstream.server._decode",
-                                  "midstream.wire._convert", "midstream.client.bench._scrape"])
+                                  "midstream.wire.convert", "midstream.client.bench._scrape"])
 def test_docstring_examples_run(name: str) -> None:
     result = doctest.testmod(importlib.import_module(name))
     assert result.attempted > 0 and result.failed == 0

@@ -17,7 +17,7 @@ import pytest
 from midstream.client import AddWord, parse_ctm
 from midstream.client._inputs import sort_by_time
 from midstream.models import ModelBundle
-from midstream.wire import _convert as cv
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,

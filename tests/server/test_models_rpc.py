@@ -8,7 +8,7 @@ from pathlib import Path
 
 import grpc
 import pytest
-from midstream.wire import _convert as cv
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,

@@ -18,7 +18,7 @@ from midstream import HypothesisUpdate, Word
 from midstream.client import AddWord, Client
 from midstream.server._session import Session
 from midstream.server._status import ProtocolStateError
-from midstream.wire import _convert as cv
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,

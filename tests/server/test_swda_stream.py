@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 from midstream.corpora import read_corpus
-from midstream.wire import _convert as cv
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
     CLOSE,

@@ -13,7 +13,7 @@ from midstream import (
     Word,
     WordHypothesis,
 )
-from midstream.wire import _convert as cv
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 
 

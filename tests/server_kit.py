@@ -67,7 +67,7 @@ def models_dir_fixture(request: pytest.FixtureRequest,
                        tmp_path_factory: pytest.TempPathFactory) -> Path:
     """A folder of models: the shipped weights if they load, else tiny ones trained now."""
     if not _MODELS:
-        shipped = Path(__file__).resolve().parents[2] / "models" / "weights"
+        shipped = Path(__file__).resolve().parents[1] / "models" / "weights"
         try:
             ModelBundle.load_directory(shipped)
             _MODELS.append(shipped)

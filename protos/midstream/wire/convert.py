@@ -22,9 +22,9 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable
 
-from midstream._errors import EventError
-from midstream._types import (
+from midstream import (
     DisfluencyLabel,
+    EventError,
     HypothesisDiff,
     HypothesisUpdate,
     UtteranceFunction,
@@ -279,7 +279,7 @@ def update_into_wire(update: HypothesisUpdate, message: pb.Update) -> None:
     copied into its frame either (a copy per nesting level was a third of the conversion's CPU,
     ``scripts/bench_ingest.py``). The field mapping repeats :func:`word_state_to_wire` and
     :func:`utterance_state_to_wire` on purpose: a shared dict of field values per state measured
-    slower on this per-word path; ``tests/server/test_convert.py`` holds the two forms equal.
+    slower on this per-word path; ``tests/wire/test_convert.py`` holds the two forms equal.
     """
     diff = update.diff
     message.seq = update.seq

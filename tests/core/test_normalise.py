@@ -11,7 +11,7 @@ import re
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from midstream.corpora._normalise import NormalisedToken, normalise_token
+from midstream import NormalisedToken, normalise_token
 
 #: What a normalised word may contain: word characters, inner hyphens and apostrophes.
 _RECOGNISER_WORD = re.compile(r"^[^\W_](?:[\w'-]*[^\W_])?$")
