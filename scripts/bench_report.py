@@ -16,6 +16,9 @@ the tables.
 ``--shared-log`` also runs ``scripts/bench_redis.py`` (the shared Redis log's CPU per word
 against none, and Redis's bytes per word) and adds its table.
 
+A section that ``midstream bench --spawn --redis URL --write-page`` wrote into the page (the
+shared log's CPU ratio and the workers ratio over gRPC) is carried over as it stands.
+
 ``--multiplex`` runs ``bench_service.py`` a second time with ``--multiplex`` (the conversations
 carried over a few ``ConverseMany`` streams) and adds its table; ``--spin-steps`` runs that sweep
 once more at those steps with each server started with ``--spin-idle-cores`` (its core kept from
@@ -38,6 +41,9 @@ from typing import Any
 from _benchkit import REPO, machine, models_folder
 from bench_service import table as service_table
 from midstream.client._cmd_serve import _FULL_COLLECTION_S, _GC_THRESHOLDS
+from midstream.client._scale_out import BEGIN as SCALE_OUT_BEGIN
+from midstream.client._scale_out import END as SCALE_OUT_END
+from midstream.client._scale_out import write_section
 
 _SCRIPTS = REPO / "scripts"
 
@@ -162,9 +168,15 @@ def main() -> int:
     collector = json.loads(gc_file.read_text(encoding="utf-8")) if gc_file.exists() else None
     redis_file = work / "redis.json"
     shared = json.loads(redis_file.read_text(encoding="utf-8")) if redis_file.exists() else None
+    old = args.out.read_text(encoding="utf-8") if args.out.exists() else ""
     args.out.write_text(render(commands, service, memory, engine_text, multiplexed,
                                collector=collector, spun=spun, shared=shared),
                         encoding="utf-8")
+    # The section 'midstream bench --spawn --redis ... --write-page' wrote is its own run's:
+    # carry it over rather than lose it.
+    start, stop = old.find(SCALE_OUT_BEGIN), old.find(SCALE_OUT_END)
+    if 0 <= start < stop:
+        write_section(args.out, old[start:stop + len(SCALE_OUT_END)] + "\n")
     print(f"wrote {args.out}", file=sys.stderr)
     return 0
 
