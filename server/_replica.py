@@ -415,15 +415,36 @@ class Replica:
         ConflictError
             When another replica holds a live conversation with this id.
         """
-        keys = self._keys(conversation_id)
-        try:
-            inc, ended = await self._log.client.hmget(keys.meta, ["inc", "ended"])
-        except (RedisError, OSError):
-            return
-        if inc is not None and ended != b"1":
+        self._keys(conversation_id)  # an id no conversation can have is refused as such
+        if await self.live_in_log([conversation_id]):
             raise ConflictError(
                 f"conversation id {conversation_id!r} is live in the shared log; continue it "
                 "with open.resume, or choose another id")
+
+    async def live_in_log(self, conversation_ids: list[str]) -> set[str]:
+        """Those of ``conversation_ids`` the shared log holds as live conversations, asked in
+        one round trip (``ConverseMany`` checks every ``open`` of a frame at once).
+
+        Ids no conversation can have are left out (opening them refuses them), and an
+        unreachable log answers none (the log's own check refuses to write them later).
+        """
+        keys: list[tuple[str, ConversationKeys]] = []
+        for conversation_id in conversation_ids:
+            try:
+                keys.append((conversation_id, self._keys(conversation_id)))
+            except MidstreamError:
+                continue
+        if not keys:
+            return set()
+        try:
+            async with self._log.client.pipeline(transaction=False) as pipe:
+                for _, conversation in keys:
+                    pipe.hmget(conversation.meta, ["inc", "ended"])
+                replies: list[list[bytes | None]] = await pipe.execute()
+        except (RedisError, OSError):
+            return set()
+        return {conversation_id for (conversation_id, _), (inc, ended) in
+                zip(keys, replies, strict=True) if inc is not None and ended != b"1"}
 
     async def resume(self, conversation_id: str, registry: SessionRegistry, bundle: Bundle, *,
                      owner: str = "") -> tuple[Session, int]:
