@@ -182,6 +182,7 @@ async def test_every_refusal_to_continue_names_what_was_wrong_on_both_rpcs(
     b = await start_server(limits=LIMITS, shared_log=shared)
     short = await start_server(limits=LIMITS, shared_log=dataclasses.replace(
         shared, max_events=2))
+    other = await start_server(limits=LIMITS, shared_log=shared, max_open_words=3)
     alone = await start_server(limits=LIMITS)
     needs_log = ("INVALID_ARGUMENT", "open.resume continues a conversation by its id on "
                  "servers that share a log (midstream serve --redis)")
@@ -210,6 +211,10 @@ async def test_every_refusal_to_continue_names_what_was_wrong_on_both_rpcs(
     await _until_logged(b, "live", 1)
     assert await _refusals(a, pb.OpenConversation(conversation_id="live", resume=True)) == (
         "ALREADY_EXISTS", "conversation 'live' is live on this replica")
+    assert await _refusals(other, pb.OpenConversation(conversation_id="live",
+                                                      resume=True)) == (
+        "FAILED_PRECONDITION", "conversation 'live' was decoded by other models or decoder "
+        "settings than this replica serves; continue it on a replica serving the same")
     assert await _refusals(b, pb.OpenConversation(conversation_id="live")) == (
         "ALREADY_EXISTS", "conversation id 'live' is live in the shared log; continue it with "
         "open.resume, or choose another id")
