@@ -256,18 +256,22 @@ class Client:
     # --- streams ------------------------------------------------------------------------------
 
     def converse(self, conversation_id: str | None = None, *,
-                 resume: bool = False) -> ConversationStream:
+                 resume: bool = False, epoch: int = 0) -> ConversationStream:
         """A stream that ingests one conversation; use it as an async context manager.
 
         ``conversation_id`` asks for a caller-chosen id; ``None`` lets the server assign one
         (read it from :attr:`ConversationStream.conversation_id`). ``resume=True`` continues
         conversation ``conversation_id`` whose server died, on servers sharing a Redis log
         (``docs/deploy.md``): the :class:`Welcome`'s ``events_logged`` says how many of your
-        events it holds; send the rest.
+        events it holds; send the rest. ``epoch`` (the first welcome's) makes sure it is the
+        same conversation: when another has taken the id over since, opening raises
+        :class:`~midstream.NotFoundError` instead of continuing that one.
         """
         if resume and not conversation_id:
             raise InputError("resume=True continues a conversation by its id: give it")
-        return ConversationStream(self, conversation_id or "", resume=resume)
+        if epoch and not resume:
+            raise InputError("epoch names the conversation resume=True continues: add it")
+        return ConversationStream(self, conversation_id or "", resume=resume, epoch=epoch)
 
     def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS) -> MultiplexedStream:
         """A stream that ingests many conversations, each on a channel; use ``async with``.
@@ -413,10 +417,12 @@ class ConversationStream:
     as abandoned by its caller).
     """
 
-    def __init__(self, client: Client, conversation_id: str, *, resume: bool = False) -> None:
+    def __init__(self, client: Client, conversation_id: str, *, resume: bool = False,
+                 epoch: int = 0) -> None:
         self._client = client
         self._requested_id = conversation_id
         self._resume = resume
+        self._epoch = epoch
         self._call: Any = None
         self._welcome: Welcome | None = None
         self._welcome_pending = True
@@ -440,7 +446,8 @@ class ConversationStream:
         stub = self._client._require_stub()
         self._call = stub.Converse(metadata=self._client._metadata())
         opening = pb.ClientEvent(open=pb.OpenConversation(conversation_id=self._requested_id,
-                                                          resume=self._resume))
+                                                          resume=self._resume,
+                                                          epoch=self._epoch))
         await self._write(opening)
         first = await self._read()
         if not isinstance(first, Welcome):
@@ -604,14 +611,23 @@ class MultiplexedStream:
                              "before queueing more")
         self._queued.append(pb.ChannelEvent(channel=channel, event=event))
 
-    def open(self, conversation_id: str | None = None) -> int:
+    def open(self, conversation_id: str | None = None, *, resume: bool = False,
+             epoch: int = 0) -> int:
         """Queue the opening of a conversation; return its channel number.
 
         Its :class:`~midstream.client.Welcome` (or an error) arrives on that channel.
+        ``resume`` and ``epoch`` continue a conversation whose server died, as for
+        :meth:`Client.converse`; events queued after it on the channel reach the
+        conversation once it is rebuilt, so queue only those after the welcome's
+        ``events_logged``.
         """
+        if resume and not conversation_id:
+            raise InputError("resume=True continues a conversation by its id: give it")
+        if epoch and not resume:
+            raise InputError("epoch names the conversation resume=True continues: add it")
         channel = self._next_channel
         self._queue(channel, pb.ClientEvent(open=pb.OpenConversation(
-            conversation_id=conversation_id or "")))
+            conversation_id=conversation_id or "", resume=resume, epoch=epoch)))
         self._next_channel += 1
         return channel
 

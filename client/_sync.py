@@ -148,11 +148,11 @@ class SyncClient:
         return self._run(self._client.reload_models(directory))
 
     def converse(self, conversation_id: str | None = None, *, resume: bool = False,
-                 buffer: int = DEFAULT_BUFFER) -> SyncConversation:
+                 epoch: int = 0, buffer: int = DEFAULT_BUFFER) -> SyncConversation:
         """See :meth:`Client.converse`; use the result with ``with``. ``buffer`` as for
         :meth:`converse_many`."""
-        return SyncConversation(self, self._client.converse(conversation_id, resume=resume),
-                                buffer)
+        return SyncConversation(self, self._client.converse(conversation_id, resume=resume,
+                                                            epoch=epoch), buffer)
 
     def converse_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
                       buffer: int = DEFAULT_BUFFER) -> SyncMultiplexedStream:
@@ -335,9 +335,10 @@ class SyncMultiplexedStream(_ReadAhead[Reply]):
 
     # --- queueing (the caller's thread; nothing else touches the queue between flushes) ------
 
-    def open(self, conversation_id: str | None = None) -> int:
+    def open(self, conversation_id: str | None = None, *, resume: bool = False,
+             epoch: int = 0) -> int:
         """See :meth:`MultiplexedStream.open`."""
-        return self._many.open(conversation_id)
+        return self._many.open(conversation_id, resume=resume, epoch=epoch)
 
     def send(self, channel: int, event: InputEvent) -> None:
         """See :meth:`MultiplexedStream.send`."""

@@ -226,7 +226,7 @@ class ManyStream:
             elif item.event.WhichOneof("event") == "open":
                 request = item.event.open
                 if request.resume:
-                    await self._resume(number, request.conversation_id)
+                    await self._resume(number, request.conversation_id, request.epoch)
                     # Replaying took a while: the frame's later events arrived no sooner.
                     received = time.monotonic()
                 elif request.conversation_id and request.conversation_id in taken:
@@ -289,7 +289,7 @@ class ManyStream:
             return
         self._opened(number, session, 0)
 
-    async def _resume(self, number: int, conversation_id: str) -> None:
+    async def _resume(self, number: int, conversation_id: str, epoch: int) -> None:
         """Continue a conversation from the shared log on channel ``number``, as ``Converse``
         does with ``open.resume``; a refusal goes to the channel."""
         if not self._admits(number):
@@ -302,7 +302,8 @@ class ManyStream:
             return
         try:
             session, logged = await servicer.replica.resume(
-                conversation_id, servicer.registry, servicer.bundle, owner=self._owner)
+                conversation_id, servicer.registry, servicer.bundle, owner=self._owner,
+                epoch=epoch)
         except MidstreamError as exc:
             self._refuse(number, exc)
             return

@@ -447,15 +447,17 @@ class Replica:
                 zip(keys, replies, strict=True) if inc is not None and ended != b"1"}
 
     async def resume(self, conversation_id: str, registry: SessionRegistry, bundle: Bundle, *,
-                     owner: str = "") -> tuple[Session, int]:
+                     owner: str = "", epoch: int = 0) -> tuple[Session, int]:
         """Continue ``conversation_id`` here; returns the session and the events replayed.
 
-        ``owner`` names the caller, as :meth:`SessionRegistry.open` takes it.
+        ``owner`` names the caller, as :meth:`SessionRegistry.open` takes it; ``epoch``, when
+        not 0, the epoch of the conversation the caller means.
 
         Raises
         ------
         NotFoundError
-            The log holds no such conversation.
+            The log holds no such conversation, or holds another one under the id than
+            ``epoch`` names (it took the id over).
         ProtocolStateError
             It has ended, or its logged input is incomplete (``INVALID_ARGUMENT``: nothing to
             continue; open a new conversation).
@@ -472,6 +474,11 @@ class Replica:
         if any(s.id == conversation_id and s.live for s in registry.sessions()):
             raise ConflictError(f"conversation {conversation_id!r} is live on this replica")
         meta = await self._meta(keys, conversation_id)
+        if epoch and int(meta[b"inc"]) != epoch:
+            # Continuing it would splice the caller's words onto someone else's conversation.
+            raise NotFoundError(
+                f"no conversation with id {conversation_id!r} in epoch {epoch}: another "
+                "conversation has taken the id over since; open a new one to go on")
         if meta.get(b"ended") == b"1":
             raise ProtocolStateError(f"conversation {conversation_id!r} has ended; open a new "
                                      "one to go on")
