@@ -35,8 +35,11 @@ run in turn on fresh ``serve --redis URL --workers 1`` and then ``--workers N`` 
 ``--write-page FILE`` writes both ratios, with the command line, into a Markdown page
 (``docs/benchmarks.md``) in place of the section an earlier run wrote there::
 
-    midstream bench --spawn --redis redis://127.0.0.1:6379/0 -n 300 \\
+    midstream bench --spawn --redis redis://127.0.0.1:6379/0 -n 300 --channels 32 \\
         --scale-out 200,300,400,500,600 --write-page docs/benchmarks.md
+
+The kernel hands each connection (not each call) to one worker, so give ``--channels`` well
+above the worker count: with the default 4, one worker may well carry three of them.
 """
 
 from __future__ import annotations

@@ -150,8 +150,11 @@ def section(result: dict[str, Any], command: str) -> str:
             "| ≥ 1.6 |",
             "",
             "Each step below is a fresh `serve --redis URL --workers W` (not pinned: the "
-            "workers take the machine's cores) under N conversations; the steps of one "
-            "setting go up until one misses the budget. Server CPU counts every worker.",
+            "workers take the machine's cores) under N conversations over "
+            f"{plain['channels']} connections (the kernel gives each connection, not each "
+            "call, to a worker, so a few connections can load one worker alone); the steps "
+            "of one setting go up until one misses the budget. Server CPU counts every "
+            "worker.",
             "",
             "| workers | N | achieved w/s | p50 ms | p99 ms | errors | server CPU % "
             "| server CPU ms/word | generator CPU % | meets p99 |",

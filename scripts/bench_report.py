@@ -497,6 +497,11 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "midstream bench --multiplex ...     # conversations over a few ConverseMany streams",
         "midstream bench --target HOST:PORT --server-metrics http://HOST:9464/metrics ...",
         "midstream bench --smoke --spawn     # a few seconds, checks the setup",
+        "# the shared log's CPU per word with/without --redis, and conversations held at p99 <=",
+        "# 50 ms on --workers 2 / --workers 1, in one run; writes both into this page:",
+        "midstream bench --spawn --redis redis://127.0.0.1:6390/0 -n 300 --seconds 60 "
+        "--channels 32 \\",
+        "    --scale-out 200,300,400,500,600,700,800,900,1000,1200 --write-page docs/benchmarks.md",
         "```",
         "",
         "It reports words/s achieved, p50/p95/p99 latency from a word's send to its first "

@@ -378,6 +378,9 @@ def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
                                             tmp_path: Path) -> None:
     # The whole pipeline behind docs/benchmarks.md, every script in its smoke mode.
     page = tmp_path / "benchmarks.md"
+    # A section 'midstream bench --write-page' wrote is its own run's: it is carried over.
+    written = f"{BEGIN}\n## Shared log and workers\n\nfigures of another run\n{END}\n"
+    page.write_text(f"# Benchmarks\n\n{written}", encoding="utf-8")
     done = subprocess.run([sys.executable, str(REPO / "scripts" / "bench_report.py"), "--smoke",
                            "--multiplex", "--spin-steps", "4", "--models", str(models_dir),
                            "--work",
@@ -400,6 +403,8 @@ def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
     assert all("steal ms" in line and "loop lag" in line for line in tables)
     assert len([line for line in text.splitlines() if line.startswith("| 4 | 12 |")]) == 3
     assert "--spin-idle-cores" in text.split("## Reproduce")[1]
+    assert text.count(written) == 1
+    assert text.index(written) < text.index("\n## Benchmark your own deployment\n")
 
 
 @pytest.mark.corpus
