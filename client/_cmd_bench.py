@@ -27,7 +27,8 @@ move the tails.
 
 ``--spawn --redis URL`` runs the same load twice in one run, on a spawned server without and
 then with ``--redis URL``, and reports the ratio of server CPU per word (the shared log's
-cost; Redis's own CPU is not counted). ``--workers N`` spawns ``serve --workers N`` (the
+cost; Redis's own CPU is not counted); ``--repeats K`` runs K such pairs in turn and reports
+the median ratio. ``--workers N`` spawns ``serve --workers N`` (the
 server's CPU is then its workers' together; no loop-lag figure, each worker has its own loop).
 ``--scale-out STEPS`` adds, in the same run, the workers ratio: the conversation counts STEPS
 run in turn on fresh ``serve --redis URL --workers 1`` and then ``--workers N`` servers (N from
@@ -35,7 +36,7 @@ run in turn on fresh ``serve --redis URL --workers 1`` and then ``--workers N`` 
 ``--write-page FILE`` writes both ratios, with the command line, into a Markdown page
 (``docs/benchmarks.md``) in place of the section an earlier run wrote there::
 
-    midstream bench --spawn --redis redis://127.0.0.1:6379/0 -n 300 --channels 32 \\
+    midstream bench --spawn --redis redis://127.0.0.1:6379/0 -n 300 --channels 32 --repeats 3 \\
         --scale-out 200,300,400,500,600 --write-page docs/benchmarks.md
 
 The kernel hands each connection (not each call) to one worker, so give ``--channels`` well
@@ -54,6 +55,7 @@ import selectors
 import shlex
 import shutil
 import signal
+import statistics
 import subprocess
 import sys
 from collections.abc import Iterator
@@ -158,6 +160,10 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              "conversation counts on 'serve --workers 1' and on '--workers N' "
                              "(N from --workers, else 2) until one misses --p99-ms, and report "
                              "the ratio of the largest counts held")
+    parser.add_argument("--repeats", type=int, default=1, metavar="K",
+                        help="with --spawn --redis: run the load without and with the log K "
+                             "times in turn and report the median of the K ratios (on a "
+                             "shared machine one pair says little; default 1)")
     parser.add_argument("--p99-ms", type=float, default=50.0, metavar="MS",
                         help="with --scale-out: the latency budget a count must meet "
                              "(default 50)")
@@ -349,6 +355,8 @@ def run(args: argparse.Namespace) -> int:
                          "this command starts: add --spawn")
     if args.workers > 1 and not args.redis:
         raise InputError(f"--workers {args.workers} needs --redis URL (the workers share it)")
+    if args.repeats < 1:
+        raise InputError(f"--repeats {args.repeats}: give at least 1")
     if (args.scale_out or args.write_page) and not args.redis:
         raise InputError("--scale-out and --write-page compare servers with and without the "
                          "shared log: add --redis URL")
@@ -360,16 +368,22 @@ def run(args: argparse.Namespace) -> int:
         runs: dict[str, dict[str, Any]] = {}
         # With --scale-out the CPU comparison runs on one worker; the sweeps add more.
         compared = args.redis and (args.workers == 1 or counts)
-        for redis in ([None, args.redis] if compared else [args.redis]):
-            runs["redis" if redis else "plain"] = measure(
-                redis, 1 if counts else args.workers)
+        pairs: list[dict[str, float]] = []
+        for _ in range(args.repeats if compared else 1):
+            for redis in ([None, args.redis] if compared else [args.redis]):
+                runs["redis" if redis else "plain"] = measure(
+                    redis, 1 if counts else args.workers)
+            if compared:
+                plain, shared = (cpu_per_word(runs[k]) for k in ("plain", "redis"))
+                pairs.append({"plain": plain, "redis": shared,
+                              "ratio": shared / plain if plain > 0 else math.nan})
         sweeps: list[Sweep] = []
         for workers in ((1, max(args.workers, 2)) if counts else ()):
             sweep = Sweep(workers=workers, p99_ms=args.p99_ms)
             sweep.run(counts, functools.partial(measure, args.redis, workers))
             sweeps.append(sweep)
         if len(runs) == 2:
-            result = _compare(runs, source, sweeps, before=before)
+            result = _compare(runs, source, pairs, sweeps, before=before)
             if args.write_page is not None:
                 write_section(args.write_page, section(result, _shown(args)))
             if args.json:
@@ -426,16 +440,18 @@ def _shown(args: argparse.Namespace) -> str:
     return shlex.join(["midstream", *argv])
 
 
-def _compare(runs: dict[str, dict[str, Any]], source: str, sweeps: list[Sweep], *,
-             before: dict[str, Any]) -> dict[str, Any]:
-    """The two runs of ``--redis``, the ratio of their server CPU per word and, with
-    ``--scale-out``, the two sweeps and the ratio of the conversations they held."""
-    plain, shared = cpu_per_word(runs["plain"]), cpu_per_word(runs["redis"])
+def _compare(runs: dict[str, dict[str, Any]], source: str, pairs: list[dict[str, float]],
+             sweeps: list[Sweep], *, before: dict[str, Any]) -> dict[str, Any]:
+    """The last two runs of ``--redis`` (``plain`` and ``redis``), each pair's server CPU per
+    word and their ratio, the median ratio and, with ``--scale-out``, the two sweeps and the
+    ratio of the conversations they held."""
     for summary in runs.values():
         summary["corpus"] = source
         summary["server_cpu_ms_per_word"] = cpu_per_word(summary)
     result: dict[str, Any] = {**runs, "machine_before": before, "machine_after": machine_load(),
-                              "cpu_per_word_ratio": shared / plain if plain > 0 else math.nan}
+                              "cpu_pairs": pairs,
+                              "cpu_per_word_ratio": statistics.median(
+                                  p["ratio"] for p in pairs)}
     if sweeps:
         one, many = sweeps
         result["workers"] = {
@@ -448,10 +464,12 @@ def _print_compared(result: dict[str, Any]) -> None:
     for name in ("plain", "redis"):
         print(f"--- {'without' if name == 'plain' else 'with'} --redis")
         _print(result[name])
-    plain, shared = (result[name]["server_cpu_ms_per_word"] for name in ("plain", "redis"))
-    print(f"server CPU per word: {_ms(plain * 1000)} us without the shared log, "
-          f"{_ms(shared * 1000)} us with it: ratio {result['cpu_per_word_ratio']:.2f} "
-          "(target at most 1.3)")
+    for number, pair in enumerate(result["cpu_pairs"], 1):
+        print(f"server CPU per word, pair {number}: {_ms(pair['plain'] * 1000)} us without "
+              f"the shared log, {_ms(pair['redis'] * 1000)} us with it: ratio "
+              f"{pair['ratio']:.2f}")
+    print(f"ratio{' (median of the pairs)' if len(result['cpu_pairs']) > 1 else ''}: "
+          f"{result['cpu_per_word_ratio']:.2f} (target at most 1.3)")
     workers = result.get("workers")
     if workers is None:
         return

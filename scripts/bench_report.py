@@ -500,7 +500,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "# the shared log's CPU per word with/without --redis, and conversations held at p99 <=",
         "# 50 ms on --workers 2 / --workers 1, in one run; writes both into this page:",
         "midstream bench --spawn --redis redis://127.0.0.1:6390/0 -n 300 --seconds 60 "
-        "--channels 32 \\",
+        "--channels 32 --repeats 3 \\",
         "    --scale-out 200,300,400,500,600,700,800,900,1000,1200 --write-page docs/benchmarks.md",
         "```",
         "",
