@@ -361,6 +361,10 @@ def run(args: argparse.Namespace) -> int:
         raise InputError("--scale-out and --write-page compare servers with and without the "
                          "shared log: add --redis URL")
     counts = _counts(args.scale_out) if args.scale_out else []
+    if args.write_page and args.workers > 1 and not counts:
+        raise InputError(f"--write-page records the shared log's CPU ratio, measured on one "
+                         f"worker: drop --workers {args.workers}, or add --scale-out STEPS to "
+                         "compare it with one worker")
     if args.spawn:
         if args.tls:
             raise InputError("--spawn starts a plain local server: drop --tls")

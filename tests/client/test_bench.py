@@ -539,3 +539,6 @@ def test_scale_out_counts_must_be_positive_numbers(
     assert main(["bench", "--smoke", "--spawn", "--corpus", str(swda_dir),
                  "--scale-out", "100"]) == 1
     assert "add --redis URL" in capsys.readouterr().err
+    assert main(["bench", "--smoke", "--spawn", "--corpus", str(swda_dir), "--redis",
+                 "redis://127.0.0.1:9/0", "--workers", "2", "--write-page", "x.md"]) == 1
+    assert "drop --workers 2, or add --scale-out" in capsys.readouterr().err
