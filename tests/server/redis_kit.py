@@ -48,7 +48,9 @@ class RedisProcess:
         self._process = subprocess.Popen(
             [self._binary, "--port", str(self.port), "--bind", "127.0.0.1", "--save", "",
              "--appendonly", "no", "--dir", str(self._folder), "--protected-mode", "yes",
-             *(["--cluster-enabled", "yes"] if self._cluster else [])],
+             # The cluster bus port defaults to port + 10000, which a free port's may not be.
+             *(["--cluster-enabled", "yes", "--cluster-port", str(_free_port())]
+               if self._cluster else [])],
             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         deadline = time.monotonic() + _START_TIMEOUT_S
         while time.monotonic() < deadline:
