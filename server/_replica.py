@@ -426,8 +426,13 @@ class Replica:
         one round trip (``ConverseMany`` checks every ``open`` of a frame at once).
 
         Ids no conversation can have are left out (opening them refuses them), and an
-        unreachable log answers none (the log's own check refuses to write them later).
+        unreachable log answers none (the log's own check refuses to write them later). While
+        the writer finds Redis unreachable it is not asked at all: each frame with an ``open``
+        would otherwise wait out the connection timeout, holding up the stream's other
+        channels.
         """
+        if not self._log.healthy:
+            return set()
         keys: list[tuple[str, ConversationKeys]] = []
         for conversation_id in conversation_ids:
             try:
