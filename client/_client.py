@@ -261,22 +261,26 @@ class Client:
 
     # --- streams ------------------------------------------------------------------------------
 
-    def feed(self, conversation_id: str | None = None, *,
-                 resume: bool = False, server_ticks: bool = False) -> ConversationStream:
+    def feed(self, conversation_id: str | None = None, *, resume: bool = False,
+                 epoch: int = 0, server_ticks: bool = False) -> ConversationStream:
         """A stream that ingests one conversation; use it as an async context manager.
 
         ``conversation_id`` asks for a caller-chosen id; ``None`` lets the server assign one
         (read it from :attr:`ConversationStream.conversation_id`). ``resume=True`` continues
         conversation ``conversation_id`` whose server died, on servers sharing a Redis log
         (``docs/deploy.md``): the :class:`Welcome`'s ``events_logged`` says how many of your
-        events it holds; send the rest. ``server_ticks=True`` lets the server's clock move the
-        conversation's time on while you send no word, so an utterance closes after a silence
-        and its update arrives without a tick from you (``docs/service.md``; refused by
-        servers sharing a log).
+        events it holds; send the rest. ``epoch`` (the first welcome's) makes sure it is the
+        same conversation: when another has taken the id over since, opening raises
+        :class:`~midstream.NotFoundError` instead of continuing that one.
+        ``server_ticks=True`` lets the server's clock move the conversation's time on while you
+        send no word, so an utterance closes after a silence and its update arrives without a
+        tick from you (``docs/service.md``; refused by servers sharing a log).
         """
         if resume and not conversation_id:
             raise InputError("resume=True continues a conversation by its id: give it")
-        return ConversationStream(self, conversation_id or "", resume=resume,
+        if epoch and not resume:
+            raise InputError("epoch names the conversation resume=True continues: add it")
+        return ConversationStream(self, conversation_id or "", resume=resume, epoch=epoch,
                                   server_ticks=server_ticks)
 
     def feed_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS) -> MultiplexedStream:
@@ -431,10 +435,11 @@ class ConversationStream:
     """
 
     def __init__(self, client: Client, conversation_id: str, *, resume: bool = False,
-                 server_ticks: bool = False) -> None:
+                 epoch: int = 0, server_ticks: bool = False) -> None:
         self._client = client
         self._requested_id = conversation_id
         self._resume = resume
+        self._epoch = epoch
         self._server_ticks = server_ticks
         self._call: Any = None
         self._welcome: Welcome | None = None
@@ -460,6 +465,7 @@ class ConversationStream:
         self._call = stub.Feed(metadata=self._client._metadata())
         opening = pb.ClientEvent(open=pb.OpenConversation(conversation_id=self._requested_id,
                                                           resume=self._resume,
+                                                          epoch=self._epoch,
                                                           server_ticks=self._server_ticks))
         await self._write(opening)
         first = await self._read()
@@ -624,14 +630,23 @@ class MultiplexedStream:
                              "before queueing more")
         self._queued.append(pb.ChannelEvent(channel=channel, event=event))
 
-    def open(self, conversation_id: str | None = None) -> int:
+    def open(self, conversation_id: str | None = None, *, resume: bool = False,
+             epoch: int = 0) -> int:
         """Queue the opening of a conversation; return its channel number.
 
         Its :class:`~midstream.client.Welcome` (or an error) arrives on that channel.
+        ``resume`` and ``epoch`` continue a conversation whose server died, as for
+        :meth:`Client.feed`; events queued after it on the channel reach the
+        conversation once it is rebuilt, so queue only those after the welcome's
+        ``events_logged``.
         """
+        if resume and not conversation_id:
+            raise InputError("resume=True continues a conversation by its id: give it")
+        if epoch and not resume:
+            raise InputError("epoch names the conversation resume=True continues: add it")
         channel = self._next_channel
         self._queue(channel, pb.ClientEvent(open=pb.OpenConversation(
-            conversation_id=conversation_id or "")))
+            conversation_id=conversation_id or "", resume=resume, epoch=epoch)))
         self._next_channel += 1
         return channel
 

@@ -154,12 +154,12 @@ class SyncClient:
         return self._run(self._client.reload_models(directory))
 
     def feed(self, conversation_id: str | None = None, *, resume: bool = False,
-                 server_ticks: bool = False,
+                 epoch: int = 0, server_ticks: bool = False,
                  buffer: int = DEFAULT_BUFFER) -> SyncConversation:
         """See :meth:`Client.feed`; use the result with ``with``. ``buffer`` as for
         :meth:`feed_many`."""
         return SyncConversation(self, self._client.feed(
-            conversation_id, resume=resume, server_ticks=server_ticks), buffer)
+            conversation_id, resume=resume, epoch=epoch, server_ticks=server_ticks), buffer)
 
     def feed_many(self, *, frame_events: int = DEFAULT_FRAME_EVENTS,
                       buffer: int = DEFAULT_BUFFER) -> SyncMultiplexedStream:
@@ -342,9 +342,10 @@ class SyncMultiplexedStream(_ReadAhead[Reply]):
 
     # --- queueing (the caller's thread; nothing else touches the queue between flushes) ------
 
-    def open(self, conversation_id: str | None = None) -> int:
+    def open(self, conversation_id: str | None = None, *, resume: bool = False,
+             epoch: int = 0) -> int:
         """See :meth:`MultiplexedStream.open`."""
-        return self._many.open(conversation_id)
+        return self._many.open(conversation_id, resume=resume, epoch=epoch)
 
     def send(self, channel: int, event: InputEvent) -> None:
         """See :meth:`MultiplexedStream.send`."""

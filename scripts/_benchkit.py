@@ -14,6 +14,8 @@ from pathlib import Path
 from typing import Any
 
 from midstream import build_name
+from midstream.server._many import ManyStream
+from midstream.wire import midstream_pb2 as pb
 
 REPO = Path(__file__).resolve().parent.parent
 WEIGHTS = REPO / "models" / "weights"
@@ -112,3 +114,18 @@ def pin_self(core: int | None) -> None:
     if core is not None and core in _USABLE_CORES:
         os.sched_setaffinity(0, {core})
         assert os.sched_getaffinity(0) == {core}
+
+
+def apply_frame(stream: ManyStream, frame: pb.ClientFrame) -> None:
+    """Apply one ``FeedMany`` frame without an event loop.
+
+    Without a shared log ``ManyStream._frame`` never awaits, so one step runs it whole, as
+    one turn of the server's loop does; the coroutine it makes per frame is counted too.
+    """
+    step = stream._frame(frame)
+    try:
+        step.send(None)
+    except StopIteration:
+        return
+    step.close()
+    raise RuntimeError("ManyStream._frame awaited: these benchmarks run without a shared log")

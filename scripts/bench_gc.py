@@ -30,7 +30,7 @@ import json
 import time
 from typing import Any
 
-from _benchkit import corpora_root, machine, models_folder, source_arguments
+from _benchkit import apply_frame, corpora_root, machine, models_folder, source_arguments
 from bench_ingest import _frame_bytes, _plan, open_stream
 from midstream import InputError
 from midstream.client.cli._cmd_bench import load_script
@@ -45,7 +45,7 @@ _SETTINGS = "700,10,10 700,10,1000000 700,1000000,1000000"
 
 def _feed(stream: ManyStream, frames: list[bytes]) -> None:
     for data in frames:
-        stream._frame(pb.ClientFrame.FromString(data))
+        apply_frame(stream, pb.ClientFrame.FromString(data))
         for reply in stream._frames():
             reply.SerializeToString()
 

@@ -33,7 +33,7 @@ import statistics
 import time
 from typing import Any, cast
 
-from _benchkit import corpora_root, machine, models_folder, source_arguments
+from _benchkit import apply_frame, corpora_root, machine, models_folder, source_arguments
 from midstream import Word
 from midstream.client.cli._cmd_bench import load_script
 from midstream.models import ModelBundle
@@ -84,7 +84,7 @@ def open_stream(bundle: ModelBundle, conversations: int
                           max_channels_per_stream=conversations)
     servicer = MidstreamServicer(bundle, limits, ServerMetrics())
     stream = ManyStream(servicer, cast(Any, None))  # _frame and _frames never use the context
-    stream._frame(pb.ClientFrame(events=[
+    apply_frame(stream, pb.ClientFrame(events=[
         pb.ChannelEvent(channel=c, event=pb.ClientEvent(open=pb.OpenConversation()))
         for c in range(1, conversations + 1)]))
     stream._frames()
@@ -97,12 +97,12 @@ async def server_pass(bundle: ModelBundle, frames: list[bytes], conversations: i
     the server's own counter took in."""
     servicer, stream = open_stream(bundle, conversations)
     sent = 0
-    parse, frame_of, replies = pb.ClientFrame.FromString, stream._frame, stream._frames
+    parse, replies = pb.ClientFrame.FromString, stream._frames
     if profile is not None:
         profile.enable()
     began = time.process_time()
     for data in frames:
-        frame_of(parse(data))
+        apply_frame(stream, parse(data))
         for reply in replies():
             sent += len(reply.SerializeToString())
     spent = time.process_time() - began

@@ -16,6 +16,9 @@ the tables.
 ``--shared-log`` also runs ``scripts/bench_redis.py`` (the shared Redis log's CPU per word
 against none, and Redis's bytes per word) and adds its table.
 
+A section that ``midstream bench --spawn --redis URL --write-page`` wrote into the page (the
+shared log's CPU ratio and the workers ratio over gRPC) is carried over as it stands.
+
 ``--multiplex`` runs ``bench_service.py`` a second time with ``--multiplex`` (the conversations
 carried over a few ``FeedMany`` streams) and adds its table; ``--spin-steps`` runs that sweep
 once more at those steps with each server started with ``--spin-idle-cores`` (its core kept from
@@ -37,6 +40,9 @@ from typing import Any
 
 from _benchkit import REPO, machine, models_folder
 from bench_service import table as service_table
+from midstream.client.bench._scale_out import BEGIN as SCALE_OUT_BEGIN
+from midstream.client.bench._scale_out import END as SCALE_OUT_END
+from midstream.client.bench._scale_out import write_section
 from midstream.client.cli._cmd_serve import _FULL_COLLECTION_S, _GC_THRESHOLDS
 
 _SCRIPTS = REPO / "scripts"
@@ -162,9 +168,15 @@ def main() -> int:
     collector = json.loads(gc_file.read_text(encoding="utf-8")) if gc_file.exists() else None
     redis_file = work / "redis.json"
     shared = json.loads(redis_file.read_text(encoding="utf-8")) if redis_file.exists() else None
+    old = args.out.read_text(encoding="utf-8") if args.out.exists() else ""
     args.out.write_text(render(commands, service, memory, engine_text, multiplexed,
                                collector=collector, spun=spun, shared=shared),
                         encoding="utf-8")
+    # The section 'midstream bench --spawn --redis ... --write-page' wrote is its own run's:
+    # carry it over rather than lose it.
+    start, stop = old.find(SCALE_OUT_BEGIN), old.find(SCALE_OUT_END)
+    if 0 <= start < stop:
+        write_section(args.out, old[start:stop + len(SCALE_OUT_END)] + "\n")
     print(f"wrote {args.out}", file=sys.stderr)
     return 0
 
@@ -485,6 +497,11 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         "midstream bench --multiplex ...     # conversations over a few FeedMany streams",
         "midstream bench --target HOST:PORT --server-metrics http://HOST:9464/metrics ...",
         "midstream bench --smoke --spawn     # a few seconds, checks the setup",
+        "# the shared log's CPU per word with/without --redis, and conversations held at p99 <=",
+        "# 50 ms on --workers 2 / --workers 1, in one run; writes both into this page:",
+        "midstream bench --spawn --redis redis://127.0.0.1:6390/0 -n 300 --seconds 60 "
+        "--channels 32 --repeats 3 \\",
+        "    --scale-out 200,300,400,500,600,700,800,900,1000,1200 --write-page docs/benchmarks.md",
         "```",
         "",
         "It reports words/s achieved, p50/p95/p99 latency from a word's send to its first "

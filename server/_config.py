@@ -108,13 +108,19 @@ class ServerLimits:
                              f"{self.ended_retention_s}")
 
 
+#: URL schemes that name a Redis Cluster rather than one server.
+_CLUSTER_SCHEMES = ("redis+cluster://", "rediss+cluster://")
+
+
 @dataclass(frozen=True, slots=True, kw_only=True)
 class SharedLogConfig:
     """Where replicas share their update logs (a Redis server), and how much it keeps.
 
     Every limit is listed in ``docs/limits.md``. ``url`` is a ``redis://`` or ``rediss://`` URL
-    (it may hold a password, so the repr hides it). Counts are entries of one conversation's
-    streams; ``_s`` fields are seconds.
+    (it may hold a password, so the repr hides it); ``redis+cluster://HOST:PORT`` (or
+    ``rediss+cluster://``) names any node of a Redis Cluster, which is then used through a
+    cluster client. Counts are entries of one conversation's streams; ``_s`` fields are
+    seconds.
 
     Examples
     --------
@@ -140,10 +146,21 @@ class SharedLogConfig:
     timeout_s: float = 2.0
     """How long one Redis round trip may take before the log counts as degraded."""
 
+    @property
+    def cluster(self) -> bool:
+        """Whether ``url`` names a Redis Cluster (``redis+cluster://``, ``rediss+cluster://``)."""
+        return self.url.startswith(_CLUSTER_SCHEMES)
+
+    @property
+    def client_url(self) -> str:
+        """``url`` as the Redis client takes it (a cluster URL without its ``+cluster``)."""
+        return self.url.replace("+cluster://", "://", 1) if self.cluster else self.url
+
     def __post_init__(self) -> None:
-        if not self.url.startswith(("redis://", "rediss://", "unix://")):
-            raise InputError("the shared log URL must start with redis://, rediss:// or "
-                             "unix:// (e.g. redis://127.0.0.1:6379/0)")
+        if not self.url.startswith(("redis://", "rediss://", "unix://", *_CLUSTER_SCHEMES)):
+            raise InputError("the shared log URL must start with redis://, rediss://, "
+                             "unix://, or redis+cluster:// or rediss+cluster:// for a Redis "
+                             "Cluster (e.g. redis://127.0.0.1:6379/0)")
         for name in ("max_entries", "max_events", "buffer_entries"):
             if getattr(self, name) < 1:
                 raise InputError(f"SharedLogConfig.{name} must be at least 1, not "

@@ -56,6 +56,7 @@ from midstream.server._session import Session
 from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from prometheus_client import CollectorRegistry, Counter, Gauge
+from redis.asyncio.cluster import RedisCluster
 from redis.exceptions import NoScriptError, RedisError, ResponseError
 
 _log = logging.getLogger(__name__)
@@ -346,7 +347,7 @@ class SharedLog:
         self.owner = secrets.token_hex(8)  # this process, as the owner of what it writes
         self.models = models
         self._on_health = on_health
-        self._client: aioredis.Redis | None = None
+        self._client: aioredis.Redis | RedisCluster | None = None
         self._script: Any = None
         self._dirty: dict[ConversationJournal, None] = {}
         self._pending = 0
@@ -374,7 +375,7 @@ class SharedLog:
         self.up_gauge.set(1)
 
     @property
-    def client(self) -> aioredis.Redis:
+    def client(self) -> aioredis.Redis | RedisCluster:
         if self._client is None:
             raise RuntimeError("the shared log has not been started")
         return self._client
@@ -390,11 +391,17 @@ class SharedLog:
     async def start(self) -> None:
         """Connect (lazily: an unreachable Redis makes the log degraded, not the start fail)."""
         config = self.config
-        self._client = aioredis.Redis.from_url(
-            config.url, socket_timeout=config.timeout_s,
-            socket_connect_timeout=config.timeout_s, decode_responses=False,
-            # One connection per waiting remote follower, plus the writer's (docs/deploy.md).
-            max_connections=4096)
+        # One connection per waiting remote follower, plus the writer's (docs/deploy.md); in a
+        # cluster, per node.
+        options: dict[str, Any] = {"socket_timeout": config.timeout_s,
+                                   "socket_connect_timeout": config.timeout_s,
+                                   "decode_responses": False, "max_connections": 4096}
+        if config.cluster:
+            # Every key of one conversation shares a hash tag, so each script call and each
+            # read of a conversation stays on one node; the cluster client routes them.
+            self._client = RedisCluster.from_url(config.client_url, **options)
+        else:
+            self._client = aioredis.Redis.from_url(config.client_url, **options)
         self._script = self._client.register_script(_APPEND)
         try:
             async with asyncio.timeout(config.timeout_s):

@@ -22,6 +22,14 @@ replies. What differs is what a refusal ends:
   ``INVALID_ARGUMENT`` after every open conversation was finished (``REJECTED``) and its final
   messages sent.
 
+On servers sharing a log (``serve --redis``), ``open`` is checked as ``Feed`` checks it:
+a caller-chosen id live in the log is refused (``ALREADY_EXISTS``; every such id of a frame is
+asked about in one round trip), and ``open.resume`` continues a conversation whose replica died
+(:meth:`~midstream.server._replica.Replica.resume`: the same claim and replay). The frame's
+later events wait for the replay, so a resume holds up the stream's other channels for as long
+as its conversation's logged input takes to replay (other streams go on: the replay returns to
+the event loop between slices).
+
 Channel numbers are single-use: each ``open`` must use a number above every channel opened
 before on the stream. That catches an event for a reused number with one integer of memory
 however many conversations a long-lived stream carries.
@@ -46,6 +54,7 @@ from midstream.server._decode import MalformedMessage
 from midstream.server._ingest import apply_event, caller_address, caller_vanished
 from midstream.server._session import Session, message_budget
 from midstream.server._status import (
+    ConflictError,
     FieldLimitError,
     InternalError,
     ProtocolStateError,
@@ -155,7 +164,7 @@ class ManyStream:
                             # No channel can be told apart in bytes that did not decode.
                             raise request.error()
                         assert isinstance(request, pb.ClientFrame)
-                        self._frame(request)
+                        await self._frame(request)
                     except (FieldLimitError, EventError) as exc:
                         self._end_all(pb.END_REASON_REJECTED)
                         for frame in self._frames():
@@ -190,8 +199,14 @@ class ManyStream:
 
     # --- one frame -----------------------------------------------------------------------
 
-    def _frame(self, frame: pb.ClientFrame) -> None:
-        """Apply every event of a frame in order. Never awaits."""
+    async def _frame(self, frame: pb.ClientFrame) -> None:
+        """Apply every event of a frame in order.
+
+        Awaits only on servers sharing a log: once to ask it about every new caller-chosen id
+        the frame opens (one round trip), and for each ``open.resume``, whose conversation is
+        read from the log and replayed before the frame's later events are applied (so they
+        reach it in order). Everything else is applied without awaiting.
+        """
         limits = self._servicer.limits
         count, limit = len(frame.events), limits.max_events_per_frame
         if count > limit:
@@ -199,6 +214,7 @@ class ManyStream:
                 "max_events_per_frame", limit,
                 f"the frame holds {count} events; limit max_events_per_frame is {limit}")
         received = time.monotonic()
+        taken = await self._taken_elsewhere(frame)
         for item in frame.events:
             number = item.channel
             channel = self._channels.get(number)
@@ -207,10 +223,6 @@ class ManyStream:
             elif number == 0:
                 self._refuse(number, EventError(
                     "field 'channel' is 0 (unset?): channel numbers start at 1"))
-            elif item.event.WhichOneof("event") == "open" and item.event.open.resume:
-                # Continuing needs an await (the shared log) inside a frame's one step.
-                self._refuse(number, ProtocolStateError(
-                    "open.resume is taken on Feed only; continue the conversation there"))
             elif item.event.WhichOneof("event") == "open" and item.event.open.server_ticks:
                 # One stream serves many conversations in frames the caller paces: it sends
                 # the time ticks its frames need itself.
@@ -218,7 +230,18 @@ class ManyStream:
                     "open.server_ticks is taken on Feed only; send time ticks (tick "
                     "events) in the frames of FeedMany"))
             elif item.event.WhichOneof("event") == "open":
-                self._open(number, item.event.open.conversation_id)
+                request = item.event.open
+                if request.resume:
+                    await self._resume(number, request.conversation_id, request.epoch)
+                    # Replaying took a while: the frame's later events arrived no sooner.
+                    received = time.monotonic()
+                elif request.conversation_id and request.conversation_id in taken:
+                    if self._admits(number):
+                        self._refuse(number, ConflictError(
+                            f"conversation id {request.conversation_id!r} is live in the "
+                            "shared log; continue it with open.resume, or choose another id"))
+                else:
+                    self._open(number, request.conversation_id)
             elif number <= self._highest:
                 self._refuse(number, ProtocolStateError(
                     f"channel {number} is not open on this stream: its conversation has ended "
@@ -228,7 +251,19 @@ class ManyStream:
                     f"channel {number} is not open: its first event must be 'open', not "
                     f"{item.event.WhichOneof('event')!r}"))
 
-    def _open(self, number: int, conversation_id: str) -> None:
+    async def _taken_elsewhere(self, frame: pb.ClientFrame) -> set[str]:
+        """The caller-chosen ids the frame opens anew that the shared log holds as live (as
+        ``Feed`` refuses them); none without a log."""
+        replica = self._servicer.replica
+        if replica is None:
+            return set()
+        wanted = [item.event.open.conversation_id for item in frame.events
+                  if item.channel not in self._channels and item.event.WhichOneof("event")
+                  == "open" and item.event.open.conversation_id and not item.event.open.resume]
+        return await replica.live_in_log(wanted) if wanted else set()
+
+    def _admits(self, number: int) -> bool:
+        """Whether channel ``number`` may be opened now; refuses it (and says why) if not."""
         servicer = self._servicer
         limit = servicer.limits.max_channels_per_stream
         if number <= self._highest:
@@ -236,27 +271,59 @@ class ManyStream:
                 f"channel {number} cannot be opened: each 'open' must use a channel number "
                 f"above every one opened before on this stream (the highest is "
                 f"{self._highest}); channel numbers are not reused"))
-            return
+            return False
         if len(self._channels) >= limit:
             self._refuse(number, LimitExceededError(
                 "max_channels_per_stream", limit,
                 f"{limit} channels are open on this stream; limit max_channels_per_stream is "
                 f"{limit}"))
-            return
+            return False
         if servicer.stopping:
             self._refuse(number, UnavailableError("the server is shutting down"))
+            return False
+        return True
+
+    def _open(self, number: int, conversation_id: str) -> None:
+        if not self._admits(number):
             return
+        servicer = self._servicer
         try:
             session = servicer.registry.open(conversation_id, servicer.bundle,
                                              owner=self._owner)
         except MidstreamError as exc:
             self._refuse(number, exc)
             return
+        self._opened(number, session, 0)
+
+    async def _resume(self, number: int, conversation_id: str, epoch: int) -> None:
+        """Continue a conversation from the shared log on channel ``number``, as ``Feed``
+        does with ``open.resume``; a refusal goes to the channel."""
+        if not self._admits(number):
+            return
+        servicer = self._servicer
+        if servicer.replica is None or not conversation_id:
+            self._refuse(number, ProtocolStateError(
+                "open.resume continues a conversation by its id on servers that share a log "
+                "(midstream serve --redis)"))
+            return
+        try:
+            session, logged = await servicer.replica.resume(
+                conversation_id, servicer.registry, servicer.bundle, owner=self._owner,
+                epoch=epoch)
+        except MidstreamError as exc:
+            self._refuse(number, exc)
+            return
+        # Should the server have begun stopping meanwhile, the stream's next turn ends it
+        # like every other channel (welcome, final update, ``ended``).
+        self._opened(number, session, logged)
+
+    def _opened(self, number: int, session: Session, logged: int) -> None:
+        """Give ``session`` channel ``number`` and queue its welcome."""
         self._highest = number
         channel = self._channels[number] = _Channel(number, session, self._waited)
         self._out.replies.add(channel=number, message=pb.ServerMessage(
             welcome=pb.Welcome(conversation_id=session.id, next_seq=session.seq + 1,
-                               epoch=session.epoch)))
+                               epoch=session.epoch, events_logged=logged)))
         channel.sent = session.seq
 
     def _event(self, channel: _Channel, event: pb.ClientEvent, received: float) -> None:

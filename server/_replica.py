@@ -415,26 +415,54 @@ class Replica:
         ConflictError
             When another replica holds a live conversation with this id.
         """
-        keys = self._keys(conversation_id)
-        try:
-            inc, ended = await self._log.client.hmget(keys.meta, ["inc", "ended"])
-        except (RedisError, OSError):
-            return
-        if inc is not None and ended != b"1":
+        self._keys(conversation_id)  # an id no conversation can have is refused as such
+        if await self.live_in_log([conversation_id]):
             raise ConflictError(
                 f"conversation id {conversation_id!r} is live in the shared log; continue it "
                 "with open.resume, or choose another id")
 
+    async def live_in_log(self, conversation_ids: list[str]) -> set[str]:
+        """Those of ``conversation_ids`` the shared log holds as live conversations, asked in
+        one round trip (``FeedMany`` checks every ``open`` of a frame at once).
+
+        Ids no conversation can have are left out (opening them refuses them), and an
+        unreachable log answers none (the log's own check refuses to write them later). While
+        the writer finds Redis unreachable it is not asked at all: each frame with an ``open``
+        would otherwise wait out the connection timeout, holding up the stream's other
+        channels.
+        """
+        if not self._log.healthy:
+            return set()
+        keys: list[tuple[str, ConversationKeys]] = []
+        for conversation_id in conversation_ids:
+            try:
+                keys.append((conversation_id, self._keys(conversation_id)))
+            except MidstreamError:
+                continue
+        if not keys:
+            return set()
+        try:
+            async with self._log.client.pipeline(transaction=False) as pipe:
+                for _, conversation in keys:
+                    pipe.hmget(conversation.meta, ["inc", "ended"])
+                replies: list[list[bytes | None]] = await pipe.execute()
+        except (RedisError, OSError):
+            return set()
+        return {conversation_id for (conversation_id, _), (inc, ended) in
+                zip(keys, replies, strict=True) if inc is not None and ended != b"1"}
+
     async def resume(self, conversation_id: str, registry: SessionRegistry, bundle: Bundle, *,
-                     owner: str = "") -> tuple[Session, int]:
+                     owner: str = "", epoch: int = 0) -> tuple[Session, int]:
         """Continue ``conversation_id`` here; returns the session and the events replayed.
 
-        ``owner`` names the caller, as :meth:`SessionRegistry.open` takes it.
+        ``owner`` names the caller, as :meth:`SessionRegistry.open` takes it; ``epoch``, when
+        not 0, the epoch of the conversation the caller means.
 
         Raises
         ------
         NotFoundError
-            The log holds no such conversation.
+            The log holds no such conversation, or holds another one under the id than
+            ``epoch`` names (it took the id over).
         ProtocolStateError
             It has ended, or its logged input is incomplete (``INVALID_ARGUMENT``: nothing to
             continue; open a new conversation).
@@ -451,6 +479,11 @@ class Replica:
         if any(s.id == conversation_id and s.live for s in registry.sessions()):
             raise ConflictError(f"conversation {conversation_id!r} is live on this replica")
         meta = await self._meta(keys, conversation_id)
+        if epoch and int(meta[b"inc"]) != epoch:
+            # Continuing it would splice the caller's words onto someone else's conversation.
+            raise NotFoundError(
+                f"no conversation with id {conversation_id!r} in epoch {epoch}: another "
+                "conversation has taken the id over since; open a new one to go on")
         if meta.get(b"ended") == b"1":
             raise ProtocolStateError(f"conversation {conversation_id!r} has ended; open a new "
                                      "one to go on")

@@ -415,7 +415,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                     "open.resume continues a conversation by its id on servers that share a "
                     "log (midstream serve --redis)")
             return await self.replica.resume(request.conversation_id, self.registry,
-                                             self.bundle, owner=owner)
+                                             self.bundle, owner=owner, epoch=request.epoch)
         if self.replica is not None and request.conversation_id:
             await self.replica.check_new(request.conversation_id)
         return self.registry.open(request.conversation_id, self.bundle, owner=owner), 0

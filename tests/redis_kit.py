@@ -33,9 +33,10 @@ def _free_port() -> int:
 class RedisProcess:
     """One redis-server process; :meth:`restart` brings it back empty on the same port."""
 
-    def __init__(self, binary: str, folder: Path) -> None:
+    def __init__(self, binary: str, folder: Path, *, cluster: bool = False) -> None:
         self._binary = binary
         self._folder = folder
+        self._cluster = cluster  # a node of a Redis Cluster (see RedisCluster)
         self.port = _free_port()
         self._process: subprocess.Popen[bytes] | None = None
 
@@ -46,7 +47,10 @@ class RedisProcess:
     def start(self) -> None:
         self._process = subprocess.Popen(
             [self._binary, "--port", str(self.port), "--bind", "127.0.0.1", "--save", "",
-             "--appendonly", "no", "--dir", str(self._folder), "--protected-mode", "yes"],
+             "--appendonly", "no", "--dir", str(self._folder), "--protected-mode", "yes",
+             # The cluster bus port defaults to port + 10000, which a free port's may not be.
+             *(["--cluster-enabled", "yes", "--cluster-port", str(_free_port())]
+               if self._cluster else [])],
             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         deadline = time.monotonic() + _START_TIMEOUT_S
         while time.monotonic() < deadline:
@@ -144,3 +148,59 @@ def gaps_told(messages: list[pb.ServerMessage], last_seq: int) -> int:
             assert expected == last_seq + 1, (expected, last_seq)
     assert messages and messages[-1].WhichOneof("body") == "ended"
     return gaps
+
+
+class RedisCluster:
+    """Three ``redis-server`` processes joined into one Redis Cluster (no replicas), each on a
+    free loopback port in its own folder with persistence off."""
+
+    def __init__(self, binary: str, cli: str, folder: Path) -> None:
+        self._cli = cli
+        self.nodes: list[RedisProcess] = []
+        for number in range(3):
+            node_folder = folder / f"node{number}"
+            node_folder.mkdir()
+            self.nodes.append(RedisProcess(binary, node_folder, cluster=True))
+
+    @property
+    def url(self) -> str:
+        """The URL ``--redis`` takes for it: any one node, with the cluster scheme."""
+        return f"redis+cluster://127.0.0.1:{self.nodes[0].port}"
+
+    def start(self) -> None:
+        for node in self.nodes:
+            node.start()
+        subprocess.run([self._cli, "--cluster", "create",
+                        *(f"127.0.0.1:{node.port}" for node in self.nodes),
+                        "--cluster-replicas", "0", "--cluster-yes"],
+                       check=True, capture_output=True, timeout=30)
+        deadline = time.monotonic() + _START_TIMEOUT_S
+        while time.monotonic() < deadline:  # every node must agree the cluster is up
+            states = [subprocess.run([self._cli, "-p", str(node.port), "cluster", "info"],
+                                     capture_output=True, text=True, check=True,
+                                     timeout=10).stdout for node in self.nodes]
+            if all("cluster_state:ok" in state for state in states):
+                return
+            time.sleep(0.1)
+        raise RuntimeError("the Redis Cluster did not come up within 10 s")
+
+    def stop(self) -> None:
+        for node in self.nodes:
+            node.stop()
+
+
+@pytest.fixture(name="redis_cluster")
+def redis_cluster_fixture(tmp_path: Path) -> Iterator[RedisCluster]:
+    binary, cli = shutil.which("redis-server"), shutil.which("redis-cli")
+    if binary is None or cli is None:
+        message = ("redis-server and redis-cli are not installed (Debian package redis-server; "
+                   ".ci/run installs it)")
+        if os.environ.get("CI") == "true":
+            pytest.fail(message)
+        pytest.skip(message)
+    cluster = RedisCluster(binary, cli, tmp_path)
+    try:
+        cluster.start()
+        yield cluster
+    finally:
+        cluster.stop()

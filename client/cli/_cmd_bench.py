@@ -27,20 +27,35 @@ move the tails.
 
 ``--spawn --redis URL`` runs the same load twice in one run, on a spawned server without and
 then with ``--redis URL``, and reports the ratio of server CPU per word (the shared log's
-cost; Redis's own CPU is not counted). ``--workers N`` spawns ``serve --workers N`` (the
+cost; Redis's own CPU is not counted); ``--repeats K`` runs K such pairs in turn and reports
+the median ratio. ``--workers N`` spawns ``serve --workers N`` (the
 server's CPU is then its workers' together; no loop-lag figure, each worker has its own loop).
+``--scale-out STEPS`` adds, in the same run, the workers ratio: the conversation counts STEPS
+run in turn on fresh ``serve --redis URL --workers 1`` and then ``--workers N`` servers (N from
+``--workers``, else 2) until one misses ``--p99-ms``, and the largest counts held are divided.
+``--write-page FILE`` writes both ratios, with the command line, into a Markdown page
+(``docs/benchmarks.md``) in place of the section an earlier run wrote there::
+
+    midstream bench --spawn --redis redis://127.0.0.1:6379/0 -n 300 --channels 32 --repeats 3 \\
+        --scale-out 200,300,400,500,600 --write-page docs/benchmarks.md
+
+The kernel hands each connection (not each call) to one worker, so give ``--channels`` well
+above the worker count: with the default 4, one worker may well carry three of them.
 """
 
 from __future__ import annotations
 
 import argparse
 import asyncio
+import functools
 import json
 import math
 import os
 import selectors
+import shlex
 import shutil
 import signal
+import statistics
 import subprocess
 import sys
 from collections.abc import Iterator
@@ -57,6 +72,13 @@ from midstream.client.bench._load import (
     ProcessProbe,
     WordScript,
     run_load,
+)
+from midstream.client.bench._scale_out import (
+    Sweep,
+    cpu_per_word,
+    machine_load,
+    section,
+    write_section,
 )
 from midstream.client.bench._scrape import MetricsProbe
 from midstream.client.cli._common import DEFAULT_TARGET
@@ -133,6 +155,22 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("--workers", type=int, default=1, metavar="N",
                         help="with --spawn: start 'serve --workers N' (needs --redis; every "
                              "run then uses the shared log)")
+    parser.add_argument("--scale-out", default=None, metavar="STEPS",
+                        help="with --spawn --redis: also run these comma-separated "
+                             "conversation counts on 'serve --workers 1' and on '--workers N' "
+                             "(N from --workers, else 2) until one misses --p99-ms, and report "
+                             "the ratio of the largest counts held")
+    parser.add_argument("--repeats", type=int, default=1, metavar="K",
+                        help="with --spawn --redis: run the load without and with the log K "
+                             "times in turn and report the median of the K ratios (on a "
+                             "shared machine one pair says little; default 1)")
+    parser.add_argument("--p99-ms", type=float, default=50.0, metavar="MS",
+                        help="with --scale-out: the latency budget a count must meet "
+                             "(default 50)")
+    parser.add_argument("--write-page", type=Path, default=None, metavar="FILE",
+                        help="with --spawn --redis: write the ratios and this command into "
+                             "the Markdown page FILE (e.g. docs/benchmarks.md), replacing "
+                             "the section an earlier run wrote")
     parser.add_argument("--spin-idle-cores", action="store_true",
                         help="with --spawn: start the server with --spin-idle-cores (its "
                              "cores kept from idling; see midstream serve --help)")
@@ -281,39 +319,86 @@ def run(args: argparse.Namespace) -> int:
         except OSError as exc:
             raise InputError(f"--client-cpu {args.client_cpu}: {exc.strerror}") from None
 
-    def configure(target: str) -> LoadConfig:
-        return LoadConfig(target=target, conversations=args.conversations, rate=args.rate,
-                          seconds=args.seconds, ramp_s=ramp, channels=args.channels,
+    def configure(target: str, conversations: int | None = None) -> LoadConfig:
+        n = args.conversations if conversations is None else conversations
+        return LoadConfig(target=target, conversations=n, rate=args.rate,
+                          seconds=args.seconds,
+                          ramp_s=ramp if conversations is None or args.ramp is not None
+                          else min(10.0, n / 100),
+                          channels=args.channels,
                           workload="describe" if args.baseline else "feed", token=token,
                           tls=bool(args.tls), tls_ca=args.tls_ca, seed=args.seed,
                           multiplex=bool(args.multiplex), tick_s=args.tick_ms / 1000)
 
+    def measure(redis: str | None, workers: int, conversations: int | None = None
+                ) -> dict[str, Any]:
+        """One run of the load on a fresh spawned server; its summary."""
+        n = args.conversations if conversations is None else conversations
+        # The workers comparison leaves the server unpinned: its workers take every core.
+        cpu = args.server_cpu if conversations is None else None
+        with spawn_server(models=args.models, cpu=cpu, live=max(256, n), token=token,
+                          spin=bool(args.spin_idle_cores), redis=redis,
+                          workers=workers) as spawned:
+            outcome = asyncio.run(run_load(
+                configure(spawned.target, conversations), script,
+                probe=ProcessProbe(spawned.pid, children=workers > 1),
+                lag_probe=(MetricsProbe(spawned.metrics_url) if spawned.metrics_url
+                           else None)))
+        return outcome.summary()
+
     if args.spin_idle_cores and not args.spawn:
         raise InputError("--spin-idle-cores applies to a server this command starts: add "
                          "--spawn, or start yours with 'midstream serve --spin-idle-cores'")
-    if (args.redis or args.workers != 1) and not args.spawn:
-        raise InputError("--redis and --workers apply to a server this command starts: add "
-                         "--spawn")
+    if (args.redis or args.workers != 1 or args.scale_out or args.write_page) \
+            and not args.spawn:
+        raise InputError("--redis, --workers, --scale-out and --write-page apply to a server "
+                         "this command starts: add --spawn")
     if args.workers > 1 and not args.redis:
         raise InputError(f"--workers {args.workers} needs --redis URL (the workers share it)")
+    if args.repeats < 1:
+        raise InputError(f"--repeats {args.repeats}: give at least 1")
+    if (args.scale_out or args.write_page) and not args.redis:
+        raise InputError("--scale-out and --write-page compare servers with and without the "
+                         "shared log: add --redis URL")
+    counts = _counts(args.scale_out) if args.scale_out else []
+    if args.write_page and args.workers > 1 and not counts:
+        raise InputError(f"--write-page records the shared log's CPU ratio, measured on one "
+                         f"worker: drop --workers {args.workers}, or add --scale-out STEPS to "
+                         "compare it with one worker")
     if args.spawn:
         if args.tls:
             raise InputError("--spawn starts a plain local server: drop --tls")
+        before = machine_load()
         runs: dict[str, dict[str, Any]] = {}
-        ways = [None, args.redis] if args.redis and args.workers == 1 else [args.redis]
-        for redis in ways:
-            with spawn_server(models=args.models, cpu=args.server_cpu,
-                              live=max(256, args.conversations), token=token,
-                              spin=bool(args.spin_idle_cores), redis=redis,
-                              workers=args.workers) as spawned:
-                config = configure(spawned.target)
-                result = asyncio.run(run_load(
-                    config, script, probe=ProcessProbe(spawned.pid, children=args.workers > 1),
-                    lag_probe=(MetricsProbe(spawned.metrics_url) if spawned.metrics_url
-                               else None)))
-            runs["redis" if redis else "plain"] = result.summary()
+        # With --scale-out the CPU comparison runs on one worker; the sweeps add more.
+        compared = args.redis and (args.workers == 1 or counts)
+        pairs: list[dict[str, float]] = []
+        for _ in range(args.repeats if compared else 1):
+            for redis in ([None, args.redis] if compared else [args.redis]):
+                runs["redis" if redis else "plain"] = measure(
+                    redis, 1 if counts else args.workers)
+            if compared:
+                plain, shared = (cpu_per_word(runs[k]) for k in ("plain", "redis"))
+                pairs.append({"plain": plain, "redis": shared,
+                              "ratio": shared / plain if plain > 0 else math.nan})
+        sweeps: list[Sweep] = []
+        for workers in ((1, max(args.workers, 2)) if counts else ()):
+            sweep = Sweep(workers=workers, p99_ms=args.p99_ms)
+            sweep.run(counts, functools.partial(measure, args.redis, workers))
+            sweeps.append(sweep)
         if len(runs) == 2:
-            return _compare(runs, source, json_out=bool(args.json))
+            result = _compare(runs, source, pairs, sweeps, before=before)
+            if args.write_page is not None:
+                write_section(args.write_page, section(result, _shown(args)))
+            if args.json:
+                print(json.dumps(result, sort_keys=True))
+            else:
+                _print_compared(result)
+            if any(summary["opened"] == 0 for summary in runs.values()):
+                raise UnavailableError(f"no conversation could be opened: "
+                                       f"{[s['errors'] for s in runs.values()]}")
+            return 0
+        summary = next(iter(runs.values()))
     else:
         config = configure(args.server or os.environ.get("MIDSTREAM_SERVER") or DEFAULT_TARGET)
         probe = ProcessProbe(args.server_pid) if args.server_pid is not None else None
@@ -322,46 +407,89 @@ def run(args: argparse.Namespace) -> int:
         lag_probe = MetricsProbe(args.server_metrics) if args.server_metrics else None
         if lag_probe is not None:
             lag_probe.read()  # likewise for a wrong metrics address
-        result = asyncio.run(run_load(config, script, probe=probe, lag_probe=lag_probe))
-    summary = result.summary()
+        summary = asyncio.run(run_load(config, script, probe=probe,
+                                       lag_probe=lag_probe)).summary()
     summary["corpus"] = source
     if args.json:
         print(json.dumps(summary, sort_keys=True))
     else:
         _print(summary)
     if summary["opened"] == 0:
-        raise UnavailableError(f"no conversation could be opened on {config.target}: "
+        raise UnavailableError(f"no conversation could be opened on {summary['target']}: "
                                f"{summary['errors']}")
     return 0
 
 
-def cpu_ms_per_word(summary: dict[str, Any]) -> float:
-    """Server CPU milliseconds per word answered in a run's window (NaN when unknown)."""
-    server, achieved = summary.get("server"), summary.get("achieved_wps", 0.0)
-    if not server or not achieved:
-        return math.nan
-    return float(10.0 * server["cpu_percent"] / achieved)
+def _counts(steps: str) -> list[int]:
+    """``--scale-out``'s comma-separated conversation counts.
+
+    Raises
+    ------
+    InputError
+        When one is not a positive whole number.
+    """
+    try:
+        counts = [int(part) for part in steps.split(",")]
+    except ValueError:
+        counts = []
+    if not counts or min(counts) < 1:
+        raise InputError(f"--scale-out {steps!r}: give comma-separated conversation counts "
+                         "of at least 1, e.g. 200,300,400")
+    return counts
 
 
-def _compare(runs: dict[str, dict[str, Any]], source: str, *, json_out: bool) -> int:
-    """Report the two runs of ``--redis`` and the ratio of their server CPU per word."""
-    plain, shared = cpu_ms_per_word(runs["plain"]), cpu_ms_per_word(runs["redis"])
-    ratio = shared / plain if plain > 0 else math.nan
+def _shown(args: argparse.Namespace) -> str:
+    """The command line as typed (``midstream bench ...``), for the page it writes."""
+    argv: list[str] = getattr(args, "argv", None) or sys.argv[1:]
+    return shlex.join(["midstream", *argv])
+
+
+def _compare(runs: dict[str, dict[str, Any]], source: str, pairs: list[dict[str, float]],
+             sweeps: list[Sweep], *, before: dict[str, Any]) -> dict[str, Any]:
+    """The last two runs of ``--redis`` (``plain`` and ``redis``), each pair's server CPU per
+    word and their ratio, the median ratio and, with ``--scale-out``, the two sweeps and the
+    ratio of the conversations they held."""
     for summary in runs.values():
         summary["corpus"] = source
-        summary["server_cpu_ms_per_word"] = cpu_ms_per_word(summary)
-    if json_out:
-        print(json.dumps({**runs, "cpu_per_word_ratio": ratio}, sort_keys=True))
-    else:
-        for name, summary in runs.items():
-            print(f"--- {'without' if name == 'plain' else 'with'} --redis")
-            _print(summary)
-        print(f"server CPU per word: {_ms(plain * 1000)} us without the shared log, "
-              f"{_ms(shared * 1000)} us with it: ratio {ratio:.2f} (target at most 1.3)")
-    if any(summary["opened"] == 0 for summary in runs.values()):
-        raise UnavailableError(f"no conversation could be opened: "
-                               f"{[s['errors'] for s in runs.values()]}")
-    return 0
+        summary["server_cpu_ms_per_word"] = cpu_per_word(summary)
+    result: dict[str, Any] = {**runs, "machine_before": before, "machine_after": machine_load(),
+                              "cpu_pairs": pairs,
+                              "cpu_per_word_ratio": statistics.median(
+                                  p["ratio"] for p in pairs)}
+    if sweeps:
+        one, many = sweeps
+        result["workers"] = {
+            "sweeps": [sweep.summary() for sweep in sweeps],
+            "ratio": many.largest / one.largest if one.largest else None}
+    return result
+
+
+def _print_compared(result: dict[str, Any]) -> None:
+    for name in ("plain", "redis"):
+        print(f"--- {'without' if name == 'plain' else 'with'} --redis")
+        _print(result[name])
+    for number, pair in enumerate(result["cpu_pairs"], 1):
+        print(f"server CPU per word, pair {number}: {_ms(pair['plain'] * 1000)} us without "
+              f"the shared log, {_ms(pair['redis'] * 1000)} us with it: ratio "
+              f"{pair['ratio']:.2f}")
+    print(f"ratio{' (median of the pairs)' if len(result['cpu_pairs']) > 1 else ''}: "
+          f"{result['cpu_per_word_ratio']:.2f} (target at most 1.3)")
+    workers = result.get("workers")
+    if workers is None:
+        return
+    for sweep in workers["sweeps"]:
+        for step in sweep["steps"]:
+            load = step["load"]
+            print(f"--workers {sweep['workers']}, {step['conversations']} conversations: "
+                  f"{load['achieved_wps']:.0f} words/s, p99 {_ms(load['latency_ms']['p99'])} "
+                  f"ms, {load['error_count']} errors: "
+                  f"{'held' if step['passed'] else 'missed'}")
+    one, many = workers["sweeps"]
+    ratio = workers["ratio"]
+    print(f"conversations held at p99 <= {one['p99_budget_ms']:g} ms: "
+          f"{one['largest_passing']} on --workers 1, {many['largest_passing']} on --workers "
+          f"{many['workers']}: ratio {'-' if ratio is None else f'{ratio:.2f}'} "
+          "(target at least 1.6)")
 
 
 def _ms(value: float) -> str:

@@ -130,9 +130,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              "(docs/benchmarks.md). Pin the server (taskset) first. Linux only")
     parser.add_argument("--redis", default=None, metavar="URL",
                         help="share every conversation's updates and input events in this "
-                             "Redis (redis://HOST:PORT/DB), so that any replica serves Follow, "
-                             "GetRevisions and the listing and can continue a conversation "
-                             f"whose replica died (default ${_REDIS_ENV}; docs/deploy.md)")
+                             "Redis (redis://HOST:PORT/DB; a Redis Cluster: "
+                             "redis+cluster://ANY-NODE:PORT), so that any replica serves "
+                             "Follow, GetRevisions and the listing and can continue a "
+                             f"conversation whose replica died (default ${_REDIS_ENV}; "
+                             "docs/deploy.md)")
     parser.add_argument("--redis-limit", action="append", default=[], metavar="NAME=VALUE",
                         help="set a limit of the shared log (max_entries, max_age_s, "
                              "max_events, buffer_entries, timeout_s, key_prefix; "

@@ -103,6 +103,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``midstream`` console script."""
     parser = build_parser()
     args = parser.parse_args(argv)
+    # As typed, for commands that record how their output was made (bench --write-page).
+    args.argv = list(sys.argv[1:] if argv is None else argv)
     level = {0: logging.WARNING, 1: logging.INFO}.get(verbosity(args), logging.DEBUG)
     logging.basicConfig(level=level, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     handler: Handler = args.handler

@@ -30,6 +30,7 @@ from midstream.client.bench._load import (
     read_steal,
     run_load,
 )
+from midstream.client.bench._scale_out import BEGIN, END, Sweep, step_passed, write_section
 from midstream.client.cli._cmd_bench import load_script, serve_command
 from midstream.client.cli._cmd_serve import build_config
 from midstream.client.cli._main import build_parser, main
@@ -377,6 +378,9 @@ def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
                                             tmp_path: Path) -> None:
     # The whole pipeline behind docs/benchmarks.md, every script in its smoke mode.
     page = tmp_path / "benchmarks.md"
+    # A section 'midstream bench --write-page' wrote is its own run's: it is carried over.
+    written = f"{BEGIN}\n## Shared log and workers\n\nfigures of another run\n{END}\n"
+    page.write_text(f"# Benchmarks\n\n{written}", encoding="utf-8")
     done = subprocess.run([sys.executable, str(REPO / "scripts" / "bench_report.py"), "--smoke",
                            "--multiplex", "--spin-steps", "4", "--models", str(models_dir),
                            "--work",
@@ -399,6 +403,8 @@ def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
     assert all("steal ms" in line and "loop lag" in line for line in tables)
     assert len([line for line in text.splitlines() if line.startswith("| 4 | 12 |")]) == 3
     assert "--spin-idle-cores" in text.split("## Reproduce")[1]
+    assert text.count(written) == 1
+    assert text.index(written) < text.index("\n## Benchmark your own deployment\n")
 
 
 @pytest.mark.corpus
@@ -435,3 +441,104 @@ def test_bench_redis_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path,
     # Every word's update and input event was written: the streams hold something per word.
     assert result["update_stream_bytes_per_word"] > 0
     assert result["event_stream_bytes_per_word"] > 0
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_scale_out_gives_both_ratios_in_one_run_and_writes_them_into_a_page(
+        models_dir: Path, swda_dir: Path, redis_server: RedisProcess, tmp_path: Path,
+        capsys: pytest.CaptureFixture[str]) -> None:
+    page = tmp_path / "benchmarks.md"
+    page.write_text("# Benchmarks\n\n## Headline\n\nkept\n\n## Benchmark your own deployment\n\n"
+                    "also kept\n", encoding="utf-8")
+    argv = ["--spawn", "--models", str(models_dir), "--corpus", str(swda_dir), "--redis",
+            redis_server.url, "--scale-out", "3,2", "--repeats", "2", "--write-page", str(page)]
+    result = _bench(argv, capsys)
+    for name in ("plain", "redis"):
+        _check_load(result[name], local=True)
+    # Two pairs in turn; the last pair's runs are given whole, the ratio is the pairs' median.
+    first, last = result["cpu_pairs"]
+    assert last["plain"] == result["plain"]["server_cpu_ms_per_word"]
+    assert last["redis"] == result["redis"]["server_cpu_ms_per_word"]
+    for pair in (first, last):
+        assert pair["ratio"] == pytest.approx(pair["redis"] / pair["plain"])
+    assert result["cpu_per_word_ratio"] == pytest.approx((first["ratio"] + last["ratio"]) / 2)
+    one, two = result["workers"]["sweeps"]
+    assert (one["workers"], two["workers"]) == (1, 2)
+    for sweep in (one, two):
+        counts = [step["conversations"] for step in sweep["steps"]]
+        assert counts == [2, 3][:len(counts)] and counts  # ascending, stopped at a miss
+        assert all(step["passed"] for step in sweep["steps"][:-1])
+        assert sweep["largest_passing"] == max(
+            [s["conversations"] for s in sweep["steps"] if s["passed"]], default=0)
+        for step in sweep["steps"]:
+            assert step["load"]["conversations"] == step["conversations"]
+            assert step["load"]["server"]["cpu_percent"] >= 0
+    expected = two["largest_passing"] / one["largest_passing"] if one["largest_passing"] \
+        else None
+    assert result["workers"]["ratio"] == expected
+    text = page.read_text(encoding="utf-8")
+    assert text.count(BEGIN) == 1 and text.count(END) == 1
+    assert text.index("kept") < text.index(BEGIN) < text.index(END) \
+        < text.index("## Benchmark your own deployment") < text.index("also kept")
+    block = text[text.index(BEGIN):text.index(END)]
+    assert f"`midstream bench --smoke --json {' '.join(argv)}`" in block
+    assert f"**{result['cpu_per_word_ratio']:.2f}x** | ≤ 1.3 |" in block
+    assert "median of 2 pairs" in block
+    assert "`--workers 2` ÷ `--workers 1`" in block and "| ≥ 1.6 |" in block
+    # One table row per step run, on either setting.
+    assert sum(line.startswith(("| 1 | ", "| 2 | ")) for line in block.splitlines()) == len(
+        one["steps"]) + len(two["steps"])
+
+
+def test_a_sweep_stops_at_the_first_count_that_misses_the_budget() -> None:
+    def measure(n: int) -> dict[str, Any]:
+        # An invented server that holds up to 300 conversations within 50 ms.
+        return {"conversations": n, "opened": n, "error_count": 0, "words_sent": 10,
+                "words_answered": 10, "achieved_wps": 3.0 * n, "server": None,
+                "latency_ms": {"p99": 20.0 if n <= 300 else 80.0}}
+
+    sweep = Sweep(workers=1, p99_ms=50.0)
+    sweep.run([500, 200, 300, 400], measure)
+    assert [(s["conversations"], s["passed"]) for s in sweep.steps] == [
+        (200, True), (300, True), (400, False)]
+    assert sweep.largest == 300
+    missing = Sweep(workers=2, p99_ms=10.0)
+    missing.run([200, 300], measure)
+    assert missing.largest == 0 and len(missing.steps) == 1
+
+
+def test_a_run_that_lost_a_word_or_an_open_never_counts_as_held() -> None:
+    held = {"conversations": 4, "opened": 4, "error_count": 0, "words_sent": 8,
+            "words_answered": 8, "latency_ms": {"p99": 1.0}}
+    assert step_passed(held, 50.0)
+    assert not step_passed(held | {"opened": 3}, 50.0)
+    assert not step_passed(held | {"words_answered": 7}, 50.0)
+    assert not step_passed(held | {"error_count": 1}, 50.0)
+
+
+def test_a_new_run_replaces_the_section_an_earlier_run_wrote(tmp_path: Path) -> None:
+    page = tmp_path / "page.md"
+    page.write_text("# Page\n\n## Benchmark your own deployment\n\nend\n", encoding="utf-8")
+    write_section(page, f"{BEGIN}\nfirst\n{END}\n")
+    write_section(page, f"{BEGIN}\nsecond\n{END}\n")
+    text = page.read_text(encoding="utf-8")
+    assert "first" not in text and text.count(BEGIN) == 1
+    assert text == (f"# Page\n\n{BEGIN}\nsecond\n{END}\n\n## Benchmark your own deployment\n\n"
+                    "end\n")
+    fresh = tmp_path / "fresh.md"
+    write_section(fresh, f"{BEGIN}\nonly\n{END}\n")
+    assert fresh.read_text(encoding="utf-8") == f"{BEGIN}\nonly\n{END}\n"
+
+
+def test_scale_out_counts_must_be_positive_numbers(
+        swda_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["bench", "--smoke", "--spawn", "--corpus", str(swda_dir), "--redis",
+                 "redis://127.0.0.1:9/0", "--scale-out", "100,x"]) == 1
+    assert "--scale-out '100,x'" in capsys.readouterr().err
+    assert main(["bench", "--smoke", "--spawn", "--corpus", str(swda_dir),
+                 "--scale-out", "100"]) == 1
+    assert "add --redis URL" in capsys.readouterr().err
+    assert main(["bench", "--smoke", "--spawn", "--corpus", str(swda_dir), "--redis",
+                 "redis://127.0.0.1:9/0", "--workers", "2", "--write-page", "x.md"]) == 1
+    assert "drop --workers 2, or add --scale-out" in capsys.readouterr().err

@@ -284,3 +284,18 @@ async def test_a_follower_asking_for_evicted_updates_is_told_of_the_gap(models_d
     after = [e.seq for e in followed if isinstance(e, HypothesisUpdate)]
     assert after == list(range(snapshot.seq + 1, last + 1))
     assert isinstance(followed[-1], Ended)
+
+
+async def test_resume_needs_an_id_and_an_epoch_only_comes_with_resume() -> None:
+    # Refused before anything is sent: no server is needed.
+    async with Client("127.0.0.1:9") as client:
+        with pytest.raises(InputError, match="resume=True continues a conversation by its id"):
+            client.feed(None, resume=True, epoch=5)
+        with pytest.raises(InputError, match="epoch names the conversation resume=True"):
+            client.feed("call-1", epoch=5)
+        stream = client.feed_many()
+        with pytest.raises(InputError, match="resume=True continues a conversation by its id"):
+            stream.open(resume=True)
+        with pytest.raises(InputError, match="epoch names the conversation resume=True"):
+            stream.open("call-1", epoch=5)
+        assert stream.queued == 0

@@ -45,6 +45,10 @@ WHITE_BOX_SCRIPTS: Mapping[str, frozenset[str]] = {
         "midstream.corpora._swda",
     }),
     # The server's multiplexed frame path and its collector settings, without the network.
+    # The multiplexed stream's frame path that bench_gc and bench_ingest drive directly.
+    "scripts/_benchkit.py": frozenset({
+        "midstream.server._many",
+    }),
     "scripts/bench_gc.py": frozenset({
         "midstream.client.cli._cmd_bench",
         "midstream.client.cli._cmd_serve",
@@ -57,6 +61,7 @@ WHITE_BOX_SCRIPTS: Mapping[str, frozenset[str]] = {
         "midstream.server._servicer",
     }),
     "scripts/bench_report.py": frozenset({
+        "midstream.client.bench._scale_out",
         "midstream.client.cli._cmd_serve",
     }),
     # What the shared Redis log costs per word, the session's journal driven directly.

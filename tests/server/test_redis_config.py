@@ -56,3 +56,14 @@ def test_a_url_that_is_no_redis_url_is_refused(url: str) -> None:
 def test_the_url_may_hold_a_password_so_the_repr_leaves_it_out() -> None:
     config = SharedLogConfig(url="redis://:s3cret@h:6379/0")
     assert "s3cret" not in repr(config)
+
+
+@pytest.mark.parametrize(("url", "cluster", "client_url"), [
+    ("redis+cluster://10.0.0.5:7000", True, "redis://10.0.0.5:7000"),
+    ("rediss+cluster://:pw@10.0.0.5:7000", True, "rediss://:pw@10.0.0.5:7000"),
+    ("redis://10.0.0.5:6379/0", False, "redis://10.0.0.5:6379/0"),
+])
+def test_a_cluster_url_asks_for_the_cluster_client(url: str, cluster: bool,
+                                                   client_url: str) -> None:
+    config = SharedLogConfig(url=url)
+    assert (config.cluster, config.client_url) == (cluster, client_url)

@@ -367,7 +367,7 @@ async def test_the_client_library_continues_a_conversation_and_the_old_replica_i
     await _ingest(old, words[:10])
     await _until_logged(b.stub, "moved", old.updates[-1].seq)
     async with (Client(f"127.0.0.1:{b.server.port}") as client,
-                client.feed("moved", resume=True) as stream):
+                client.feed("moved", resume=True, epoch=old.updates[0].epoch) as stream):
         assert stream.welcome.events_logged == 10
         assert stream.welcome.next_seq == old.updates[-1].seq + 1
         assert stream.welcome.epoch == old.updates[0].epoch

@@ -97,14 +97,16 @@ class SpokenWord(_message.Message):
     def __init__(self, word_id: _Optional[str] = ..., speaker: _Optional[str] = ..., text: _Optional[str] = ..., start_s: _Optional[float] = ..., end_s: _Optional[float] = ..., confidence: _Optional[float] = ...) -> None: ...
 
 class OpenConversation(_message.Message):
-    __slots__ = ("conversation_id", "resume", "server_ticks")
+    __slots__ = ("conversation_id", "resume", "server_ticks", "epoch")
     CONVERSATION_ID_FIELD_NUMBER: _ClassVar[int]
     RESUME_FIELD_NUMBER: _ClassVar[int]
     SERVER_TICKS_FIELD_NUMBER: _ClassVar[int]
+    EPOCH_FIELD_NUMBER: _ClassVar[int]
     conversation_id: str
     resume: bool
     server_ticks: bool
-    def __init__(self, conversation_id: _Optional[str] = ..., resume: _Optional[bool] = ..., server_ticks: _Optional[bool] = ...) -> None: ...
+    epoch: int
+    def __init__(self, conversation_id: _Optional[str] = ..., resume: _Optional[bool] = ..., server_ticks: _Optional[bool] = ..., epoch: _Optional[int] = ...) -> None: ...
 
 class WordBatch(_message.Message):
     __slots__ = ("words",)

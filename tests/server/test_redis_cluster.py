@@ -1,0 +1,100 @@
+"""Replicas sharing a real Redis Cluster (three nodes): ``--redis redis+cluster://NODE``.
+
+Every key of one conversation carries one hash tag, so the cluster keeps them on one node and
+each script call stays there; the listing's index lives wherever its own key falls. The
+conversations' ids are chosen so that they fall on more than one node.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import dataclasses
+
+import pytest
+from midstream.server import SharedLogConfig
+from midstream.wire import midstream_pb2 as pb
+from redis.asyncio.cluster import RedisCluster as ClusterClient
+from redis_kit import RedisCluster, call_words, gaps_told, redis_cluster_fixture
+from server_kit import (
+    TEST_LIMITS,
+    Caller,
+    ServerFactory,
+    bundle_fixture,
+    follow_all,
+    models_dir_fixture,
+    start_server_fixture,
+    words_event,
+)
+
+LIMITS = dataclasses.replace(TEST_LIMITS, idle_timeout_s=30.0)
+
+__all__ = ["bundle_fixture", "models_dir_fixture", "redis_cluster_fixture",
+           "start_server_fixture"]
+
+
+async def _nodes_holding(url: str, conversation_ids: list[str]) -> set[str]:
+    """The cluster nodes (host:port) that hold these conversations' keys."""
+    client = ClusterClient.from_url(url.replace("+cluster", ""))
+    try:
+        await client.initialize()  # learns which node holds which slots
+        nodes = set()
+        for conversation_id in conversation_ids:
+            node = client.get_node_from_key(f"midstream:{{{conversation_id}}}:m")
+            assert node is not None
+            assert await client.exists(f"midstream:{{{conversation_id}}}:u",
+                                       f"midstream:{{{conversation_id}}}:e",
+                                       f"midstream:{{{conversation_id}}}:m") == 3
+            nodes.add(node.name)
+        return nodes
+    finally:
+        await client.aclose()
+
+
+async def _until_logged(stub: object, conversation_id: str, last_seq: int) -> None:
+    async with asyncio.timeout(10):
+        while not any(c.conversation_id == conversation_id and c.last_seq >= last_seq
+                      for c in (await stub.ListConversations(  # type: ignore[attr-defined]
+                          pb.ListConversationsRequest())).conversations):
+            await asyncio.sleep(0.02)
+
+
+@pytest.mark.slow
+async def test_replicas_on_a_cluster_follow_list_and_continue_each_others_conversations(
+        start_server: ServerFactory, redis_cluster: RedisCluster) -> None:
+    shared = SharedLogConfig(url=redis_cluster.url)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    c = await start_server(limits=LIMITS, shared_log=shared)  # reads everything from Redis
+    words = call_words()[:16]
+    ids = [f"cl-{n}" for n in range(6)]
+    callers = {}
+    for conversation_id in ids:
+        caller = Caller(a.stub)
+        await caller.open(conversation_id)
+        for word in words[:10]:
+            await caller.send(words_event(word))
+        callers[conversation_id] = caller
+    for conversation_id in ids:
+        await _until_logged(b.stub, conversation_id, callers[conversation_id].updates[-1].seq)
+    assert len(await _nodes_holding(redis_cluster.url, ids)) > 1
+    # Each is continued on B (A cut off from them), finished there, and followed from seq 1
+    # on C: one sequence, no gap, A's first ten updates then B's.
+    for conversation_id in ids:
+        old = callers[conversation_id]
+        again = Caller(b.stub)
+        await again.call.write(pb.ClientEvent(open=pb.OpenConversation(
+            conversation_id=conversation_id, resume=True, epoch=old.epoch)))
+        welcome = (await again.call.read()).welcome
+        assert welcome.events_logged == 10 and welcome.epoch == old.epoch
+        old.call.cancel()
+        for word in words[10:]:
+            await again.send(words_event(word))
+        ended = await again.close()
+        messages = await asyncio.wait_for(follow_all(c.stub, conversation_id, from_seq=1), 30)
+        assert gaps_told(messages, ended.last_seq) == 0
+        followed = [m.update for m in messages if m.WhichOneof("body") == "update"]
+        assert [u.SerializeToString() for u in followed[:10]] == [
+            u.SerializeToString() for u in old.updates]
+        assert {w.word_id for u in followed for w in u.words} == {w.word_id for w in words}
+    listing = await c.stub.ListConversations(pb.ListConversationsRequest())
+    assert {c.conversation_id for c in listing.conversations if c.ended} >= set(ids)
