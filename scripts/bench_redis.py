@@ -39,7 +39,7 @@ from midstream.server import ServerLimits, SharedLogConfig
 from midstream.server._ingest import apply_event
 from midstream.server._journal import ConversationKeys, SharedLog
 from midstream.server._metrics import ServerMetrics
-from midstream.server._session import SessionRegistry
+from midstream.server._registry import SessionRegistry
 from midstream.wire import midstream_pb2 as pb
 
 

@@ -31,7 +31,8 @@ from midstream import Word
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics
-from midstream.server._session import SessionRegistry, _Recent
+from midstream.server._registry import SessionRegistry
+from midstream.server._session import _Recent
 
 WEIGHTS = Path(__file__).resolve().parent.parent / "models" / "weights"
 

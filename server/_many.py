@@ -46,7 +46,7 @@ import asyncio
 import logging
 import time
 from collections.abc import AsyncIterator
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any, NoReturn, Protocol
 
 import grpc
 from midstream import EventError, LimitExceededError, MidstreamError, UnavailableError
@@ -62,8 +62,12 @@ from midstream.server._status import (
 )
 from midstream.wire import midstream_pb2 as pb
 
-if TYPE_CHECKING:  # the servicer imports this module
-    from midstream.server._servicer import MidstreamServicer
+if TYPE_CHECKING:  # the shared log (and its Redis client) loads only when configured
+    from midstream.server._config import ServerLimits
+    from midstream.server._metrics import ServerMetrics
+    from midstream.server._models import Bundle
+    from midstream.server._registry import SessionRegistry
+    from midstream.server._replica import Replica
 
 _log = logging.getLogger(__name__)
 
@@ -88,12 +92,38 @@ class _Channel:
         self.last_event = now  # on the stream's waiting clock
 
 
+class StreamHost(Protocol):
+    """What a multiplexed stream needs of the server that runs it: its models, limits, metrics
+    and conversations, the shared log if any, the stop signal, the count of streams without a
+    conversation, and how to refuse a stream. The servicer is one; a benchmark can be another.
+    """
+
+    @property
+    def bundle(self) -> Bundle: ...
+    @property
+    def limits(self) -> ServerLimits: ...
+    @property
+    def metrics(self) -> ServerMetrics: ...
+    @property
+    def registry(self) -> SessionRegistry: ...
+    @property
+    def replica(self) -> Replica | None: ...
+    @property
+    def stopping(self) -> bool: ...
+    def stop_signal(self) -> asyncio.Future[None]: ...
+    def enter_waiting(self, *, check: bool = True) -> None: ...
+    def leave_waiting(self) -> None: ...
+    def log_internal(self, where: str, error: Exception) -> None: ...
+    async def refuse_stream(self, context: grpc.aio.ServicerContext[Any, Any],
+                            error: MidstreamError) -> NoReturn: ...
+
+
 class ManyStream:
     """The server side of one ``FeedMany`` call. Use from the server's event loop only."""
 
     __slots__ = ("_channels", "_context", "_highest", "_out", "_owner", "_servicer", "_waited")
 
-    def __init__(self, servicer: MidstreamServicer,
+    def __init__(self, servicer: StreamHost,
                  context: grpc.aio.ServicerContext[pb.ClientFrame, pb.ServerFrame]) -> None:
         self._servicer = servicer
         self._context = context

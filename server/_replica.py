@@ -48,7 +48,8 @@ from midstream.server._journal import (
 )
 from midstream.server._limits import check_id
 from midstream.server._models import Bundle
-from midstream.server._session import Session, SessionRegistry, message_budget
+from midstream.server._registry import SessionRegistry
+from midstream.server._session import Session, message_budget
 from midstream.server._status import ConflictError, PositionError, ProtocolStateError
 from midstream.wire import midstream_pb2 as pb
 from redis.exceptions import RedisError, ResponseError

@@ -41,7 +41,8 @@ from midstream.server._limits import SpeakerTimeline, check_id, check_word
 from midstream.server._many import ManyStream
 from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Bundle, load_bundle
-from midstream.server._session import Session, SessionRegistry, message_budget
+from midstream.server._registry import SessionRegistry
+from midstream.server._session import Session, message_budget
 from midstream.server._status import (
     FieldLimitError,
     InternalError,

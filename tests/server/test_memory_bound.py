@@ -17,7 +17,8 @@ from midstream._types import Word
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics
-from midstream.server._session import Session, SessionRegistry, _Recent
+from midstream.server._registry import SessionRegistry
+from midstream.server._session import Session, _Recent
 from midstream.wire import midstream_pb2 as pb
 from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures by name
 
