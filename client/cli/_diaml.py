@@ -16,7 +16,7 @@ Language (DiAML, clause 11; concrete syntax 11.2). What this module takes from w
   with ``dact`` and ``functAntecedent``; ``feedbackDependence`` with ``dact`` and ``fbSegment``;
   the namespace ``http://www.iso.org/diaml/``): as in the published DiAML examples of the
   standard's editors (DIT++ "Annotated examples", https://dit.uvt.nl/is-examples.html), which
-  ``tests/client/test_export.py`` checks :func:`check_diaml` against.
+  ``tests/client/cli/test_export.py`` checks :func:`check_diaml` against.
 
 The standard leaves the primary data and the functional segments to "another level of
 analysis" (the examples page says so). Midstream writes that level itself, in its own namespace

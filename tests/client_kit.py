@@ -29,7 +29,7 @@ from midstream.models.functions._train import FunctionTrainingOptions, train_fun
 from midstream.models.words._train import WordTrainingConfig, train_word_artifact
 from midstream.server import MidstreamServer, ServerConfig
 
-REPO = Path(__file__).resolve().parents[2]
+REPO = Path(__file__).resolve().parents[1]
 WEIGHTS = REPO / "models" / "weights"
 
 
