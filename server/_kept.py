@@ -139,9 +139,11 @@ def unpack_update(record: UpdateRecord) -> HypothesisUpdate:
 
 #: A str object without its characters, upper bound.
 STR_OVERHEAD: Final = 80
-#: A word record without its strings: its tuple (128), confidence (32), revision (32), and the
-#: slot that holds it (16).
-WORD_RECORD_BYTES: Final = 208
+#: A word record without its strings and times: its tuple of eleven (144), confidence (32),
+#: revision (32), and the slot that holds it (16).
+WORD_RECORD_BYTES: Final = 224
+#: A float (a word's start or end time), rounded up.
+FLOAT_BYTES: Final = 24
 #: An utterance record without its strings: tuple (136), confidence, revision, slot.
 UTTERANCE_RECORD_BYTES: Final = 216
 #: An update record without its states and per-state slots: tuple head (56 + 6 x 8), seq,
@@ -160,9 +162,13 @@ def _chars(text: str) -> int:
 
 def word_record_bytes(record: WordRecord) -> int:
     """Estimated bytes of a word record (never below its real size)."""
-    repaired_by = record[6]
-    return (WORD_RECORD_BYTES + 2 * STR_OVERHEAD + _chars(record[0]) + _chars(record[1])
-            + (STR_OVERHEAD + _chars(repaired_by) if repaired_by is not None else 0))
+    repaired_by, start, end = record[6], record[9], record[10]
+    # The word's text is usually the engine's own string, counted here all the same: the
+    # estimate stays high once the engine forgets the word and only the record holds it.
+    return (WORD_RECORD_BYTES + 3 * STR_OVERHEAD + _chars(record[0]) + _chars(record[1])
+            + _chars(record[8])
+            + (STR_OVERHEAD + _chars(repaired_by) if repaired_by is not None else 0)
+            + (FLOAT_BYTES if start is not None else 0) + (FLOAT_BYTES if end is not None else 0))
 
 
 def utterance_record_bytes(record: UtteranceRecord) -> int:
