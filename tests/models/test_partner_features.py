@@ -10,7 +10,11 @@ from hypothesis import strategies as st
 from midstream._errors import InputError
 from midstream.models._functions import (
     MAX_FEATURE_WORDS,
+    PARTNER_LOOKBACK,
     FunctionFeatureConfig,
+    chain_partners,
+    earlier_partner,
+    sequence_features,
     utterance_features,
 )
 from midstream.models._train_functions import FunctionTrainingOptions, build_sequences
@@ -91,3 +95,32 @@ def test_oversampling_a_label_outside_the_scheme_is_refused() -> None:
     options = FunctionTrainingOptions(scheme="coarse", oversample=(("check", 3),))
     with pytest.raises(InputError, match="check"):
         build_sequences(invented_corpus(1), options)
+
+
+LOOKBACK = FunctionFeatureConfig(partner=True, lookback=True)
+
+
+def test_a_check_after_ones_own_okay_sees_the_partners_words() -> None:
+    # Invented: the caller acknowledges, then checks the time in a second utterance of their
+    # own; the check repeats the agent's numbers, not the caller's "okay".
+    agent = UtteranceView(speaker="A", words=("the", "van", "comes", "at", "four", "fifteen"))
+    okay = UtteranceView(speaker="B", words=("okay",))
+    check = UtteranceView(speaker="B", words=("four", "fifteen"))
+    chain = [agent, okay, check]
+    # "okay" follows the partner itself: no earlier partner to look back to.
+    assert chain_partners(chain) == [None, None, agent]
+    feats = sequence_features(chain, LOOKBACK)[2]
+    assert {"yov=all", "yovnum", "yov0", "yxlen=2", "yxw0=four|short"} <= feats.keys()
+    assert not any(k.startswith(("ov", "xlen")) for k in feats)
+    # Without the setting, or right after the partner, no look-back features.
+    assert not any(k.startswith("y") for k in sequence_features(chain, PARTNER)[2])
+    assert not any(k.startswith("y") for k in sequence_features([agent, check], LOOKBACK)[1])
+
+
+def test_the_look_back_stops_at_the_streaming_context() -> None:
+    agent = UtteranceView(speaker="A", words=("four", "fifteen"))
+    own = [UtteranceView(speaker="B", words=(w,)) for w in ("okay", "so", "right", "and")]
+    assert earlier_partner([agent, *own[:PARTNER_LOOKBACK - 1]], "B") is agent
+    assert earlier_partner([agent, *own[:PARTNER_LOOKBACK]], "B") is None
+    assert earlier_partner([agent], "B") is None  # the previous one is the partner itself
+    assert earlier_partner([], "B") is None
