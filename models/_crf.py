@@ -32,6 +32,7 @@ __all__ = [
     "ItemFeatures",
     "TrainingOptions",
     "TrainingPairs",
+    "shift_state_weights",
     "train_crf",
     "train_crf_from",
 ]
@@ -226,6 +227,46 @@ def _read_features(data: bytes) -> tuple[list[str], list[str], npt.NDArray[np.vo
         raise ModelError("CRF model corrupt: bad feature chunk")
     features = np.frombuffer(data, _FEATURE_RECORD, count, features_at + 12)
     return _read_strings(data, labels_at), _read_strings(data, attributes_at), features
+
+
+def shift_state_weights(data: bytes, attribute: str, shifts: Mapping[str, float]) -> bytes:
+    """Model bytes with ``shifts[label]`` added to the state weight of (``attribute``, label).
+
+    With an attribute every item carries (a bias), this adds a constant to a label's score at
+    every position: a prior shift that crfsuite's Viterbi and marginals, and every decoder
+    reading :meth:`CrfTagger.weights`, then apply alike, since it is in the model itself. The
+    weight is changed in place in crfsuite's feature chunk; the file's layout does not change.
+
+    Raises
+    ------
+    ModelError
+        The bytes are not a model, or the model has no weight for one of the pairs (L1
+        regularisation removed it, or the label or attribute is unknown): a feature cannot be
+        added without rewriting crfsuite's file.
+    """
+    data = bytes(data)
+    _check_model_bytes(data)
+    if not shifts:
+        return data
+    label_names, attribute_names, features = _read_features(data)
+    try:
+        source = attribute_names.index(attribute)
+    except ValueError:
+        raise ModelError(f"CRF model has no attribute {attribute!r}") from None
+    out = bytearray(data)
+    features_at = struct.unpack_from("<I", data, 28)[0] + 12
+    for label, shift in shifts.items():
+        if label not in label_names:
+            raise ModelError(f"CRF model has no label {label!r}")
+        target = label_names.index(label)
+        hits = np.flatnonzero((features["type"] == _STATE_FEATURE) & (features["src"] == source)
+                              & (features["dst"] == target))
+        if len(hits) != 1:
+            raise ModelError(f"CRF model has no weight for {attribute!r} and label {label!r}")
+        at = features_at + int(hits[0]) * _FEATURE_RECORD.itemsize + 12
+        (weight,) = struct.unpack_from("<d", out, at)
+        struct.pack_into("<d", out, at, weight + shift)
+    return bytes(out)
 
 
 def _read_strings(data: bytes, start: int) -> list[str]:

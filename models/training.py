@@ -12,7 +12,8 @@ training conversations it is given; none ever looks at a val or test split.
 - **Utterance-function tagger**: :func:`train_function_model` with
   :class:`FunctionTrainingOptions` (a label scheme of :data:`SCHEMES`, feature groups in
   :class:`FunctionFeatureConfig`); :func:`cross_validate_functions` averages a
-  :data:`Scorer`'s figures over folds.
+  :data:`Scorer`'s figures over folds, and :func:`cross_validate_biases` scores decode-bias
+  candidates on the same fold models.
 - **Boundary model** (timing evidence for utterance ends): :func:`train_boundary_artifact`
   with a :class:`BoundaryTrainingConfig`; :func:`cross_validate_boundaries` chooses how it
   joins the word tagger (:class:`BoundaryConfig`).
@@ -36,7 +37,12 @@ from midstream.models.boundaries._train import (
     train_boundary_artifact,
 )
 from midstream.models.functions._tagger import SCHEMES, FunctionFeatureConfig
-from midstream.models.functions._train import FunctionTrainingOptions, Scorer, train_function_model
+from midstream.models.functions._train import (
+    FunctionTrainingOptions,
+    Scorer,
+    cross_validate_biases,
+    train_function_model,
+)
 from midstream.models.functions._train import cross_validate as cross_validate_functions
 from midstream.models.words._tags import TAG_LABEL
 from midstream.models.words._train import (
@@ -63,6 +69,7 @@ __all__ = [
     "ModelArtifact",
     "Scorer",
     "WordTrainingConfig",
+    "cross_validate_biases",
     "cross_validate_boundaries",
     "cross_validate_functions",
     "cross_validate_words",

@@ -70,10 +70,12 @@ def invented_corpus(n: int, start: int = 0) -> list[Conversation]:
 
 
 def tiny_model(scheme: str = "swbd42", *, augment: float = 0.5,
-               partner: bool = False, opening: bool = False) -> ModelArtifact:
+               partner: bool = False, opening: bool = False,
+               lookback: bool = False) -> ModelArtifact:
     """A function model trained on 20 invented conversations (about a second)."""
     options = FunctionTrainingOptions(scheme=scheme, c1=0.01, c2=0.01, min_freq=1,
                                       max_iterations=60, augment=augment,
                                       config=FunctionFeatureConfig(partner=partner,
-                                                                   opening=opening))
+                                                                   opening=opening,
+                                                                   lookback=lookback))
     return train_function_model(invented_corpus(20), options)

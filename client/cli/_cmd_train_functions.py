@@ -29,10 +29,12 @@ from __future__ import annotations
 
 import argparse
 import itertools
+import math
 import shlex
 import sys
 import time
 from collections.abc import Sequence
+from dataclasses import replace
 from typing import TextIO
 
 from midstream import Conversation, InputError
@@ -45,7 +47,7 @@ from midstream.models.training import (
     FunctionTrainingOptions,
     ModelArtifact,
     Scorer,
-    cross_validate_functions,
+    cross_validate_biases,
     save_artifact,
     train_function_model,
 )
@@ -73,6 +75,16 @@ def add_training_arguments(parser: argparse.ArgumentParser) -> None:
                         help="a feature naming a filler or editing term that opened the "
                              "utterance and was cleaned away (\"sorry\"); 'off on' compares "
                              "both by cross-validation")
+    parser.add_argument("--lookback-features", nargs="+", choices=("off", "on"),
+                        default=["off"],
+                        help="with --partner-features: the partner features also against the "
+                             "last utterance of another speaker when the previous one is the "
+                             "speaker's own; 'off on' compares both by cross-validation")
+    parser.add_argument("--decode-bias", nargs="+", default=[""],
+                        metavar="LABEL=SHIFT[,LABEL=SHIFT...]",
+                        help="constant added to a label's score at every utterance after "
+                             "training (several values are compared by cross-validation; each "
+                             "fold's model is trained once and scored with every value)")
     parser.add_argument("--oversample", nargs="+", default=[""],
                         metavar="LABEL=COPIES[,LABEL=COPIES...]",
                         help="extra copies of a short window around each utterance of a label "
@@ -102,16 +114,19 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
     if not conversations:
         raise InputError("the corpus holds no conversations to train on")
     samplings = [parse_oversample(value) for value in args.oversample]
+    biases = [parse_decode_bias(value) for value in args.decode_bias]
     base = FunctionTrainingOptions(
         scheme=args.scheme, c1=args.c1[0], c2=args.c2[0], min_freq=args.min_freq,
         max_iterations=args.max_iterations, augment=args.augment, seed=args.seed,
         config=FunctionFeatureConfig(partner=args.partner_features,
-                                     opening=args.opening_features[0] == "on"),
-        oversample=samplings[0])
-    grid = list(itertools.product(args.c1, args.c2, samplings, args.opening_features))
+                                     opening=args.opening_features[0] == "on",
+                                     lookback=args.lookback_features[0] == "on"),
+        oversample=samplings[0], decode_bias=biases[0])
+    grid = list(itertools.product(args.c1, args.c2, samplings, args.opening_features,
+                                  args.lookback_features))
     chosen = base
     cv: dict[str, object] = {}
-    if len(grid) > 1:
+    if len(grid) * len(biases) > 1:
         if args.cv_folds < 2:
             raise InputError(f"--cv-folds must be at least 2, got {args.cv_folds}")
         corpora = sorted({c.corpus for c in conversations})
@@ -122,23 +137,29 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
         score = (_cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
                  if len(corpora) == 1 else _pooled_score(corpora))
         best = -1.0
-        for c1, c2, sampling, opening in grid:
+        for c1, c2, sampling, opening, lookback in grid:
             config = FunctionFeatureConfig(partner=args.partner_features,
-                                           opening=opening == "on")
+                                           opening=opening == "on", lookback=lookback == "on")
             options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2,
                                                  "oversample": sampling, "config": config})
-            figures = cross_validate_functions(subset, options, folds=args.cv_folds, score=score)
-            name = f"c1={c1},c2={c2}" + (
-                f",oversample={_oversample_text(sampling)}" if sampling else "") + (
-                ",opening=on" if opening == "on" else "")
-            print(f"cv {name}: " + " ".join(
-                f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
-            cv[name] = {k: round(v, 4) for k, v in figures.items()}
-            if figures["score"] > best:
-                best, chosen = figures["score"], options
+            results = cross_validate_biases(subset, options, biases, folds=args.cv_folds,
+                                            score=score)
+            for bias, figures in zip(biases, results, strict=True):
+                name = f"c1={c1},c2={c2}" + (
+                    f",oversample={_oversample_text(sampling)}" if sampling else "") + (
+                    ",opening=on" if opening == "on" else "") + (
+                    ",lookback=on" if lookback == "on" else "") + (
+                    f",decode_bias={_bias_text(bias)}" if bias else "")
+                print(f"cv {name}: " + " ".join(
+                    f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
+                cv[name] = {k: round(v, 4) for k, v in figures.items()}
+                if figures["score"] > best:
+                    best, chosen = figures["score"], replace(options, decode_bias=bias)
         print(f"chosen c1={chosen.c1} c2={chosen.c2} "
               f"oversample={_oversample_text(chosen.oversample) or '-'} "
-              f"opening={'on' if chosen.config.opening else 'off'}", file=out, flush=True)
+              f"opening={'on' if chosen.config.opening else 'off'} "
+              f"lookback={'on' if chosen.config.lookback else 'off'} "
+              f"decode_bias={_bias_text(chosen.decode_bias) or '-'}", file=out, flush=True)
     command = "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:])
     artifact = train_function_model(conversations, chosen, command=command)
     if cv:
@@ -193,6 +214,33 @@ def parse_oversample(text: str) -> tuple[tuple[str, int], ...]:
         if int(copies):
             pairs.append((label, int(copies)))
     return tuple(pairs)
+
+
+def parse_decode_bias(text: str) -> tuple[tuple[str, float], ...]:
+    """``"label=shift,label=shift"`` (empty: none) as :class:`FunctionTrainingOptions` takes it.
+
+    Examples
+    --------
+    >>> parse_decode_bias("clarification_request=1.5,question=0.5")
+    (('clarification_request', 1.5), ('question', 0.5))
+    """
+    pairs: list[tuple[str, float]] = []
+    for part in filter(None, text.split(",")):
+        label, sep, shift = part.partition("=")
+        try:
+            value = float(shift)
+        except ValueError:
+            value = math.nan
+        if not sep or not label or not math.isfinite(value):
+            raise InputError(f"--decode-bias {part!r}: expected LABEL=SHIFT, e.g. "
+                             "clarification_request=1.5")
+        if value:
+            pairs.append((label, value))
+    return tuple(pairs)
+
+
+def _bias_text(pairs: Sequence[tuple[str, float]]) -> str:
+    return ",".join(f"{label}={shift:g}" for label, shift in pairs)
 
 
 def _oversample_text(pairs: Sequence[tuple[str, int]]) -> str:

@@ -95,6 +95,13 @@ class FunctionFeatureConfig:
         The identity of a filler or editing term that opened the utterance and was cleaned away
         (``UtteranceView.opening``: the "sorry" of "sorry which day"). Off in models trained
         before it existed.
+    lookback
+        With ``partner``: when the previous utterance is the same speaker's, the partner
+        features (under their own names, prefixed ``y``) against the last utterance of another
+        speaker among the :data:`PARTNER_LOOKBACK` before it. A check often follows one's own
+        "okay" or "so" after the partner's turn (Map Task's acknowledge then check moves, MRDA's
+        floor holders), and in a meeting the previous segment is often the same speaker's. Off
+        in models trained before it existed.
     """
 
     trigrams: bool = True
@@ -102,15 +109,16 @@ class FunctionFeatureConfig:
     complete_flag: bool = True
     partner: bool = False
     opening: bool = False
+    lookback: bool = False
 
     def to_json(self) -> dict[str, bool]:
         return {"trigrams": self.trigrams, "previous": self.previous,
                 "complete_flag": self.complete_flag, "partner": self.partner,
-                "opening": self.opening}
+                "opening": self.opening, "lookback": self.lookback}
 
     @classmethod
     def from_json(cls, data: Mapping[str, object]) -> FunctionFeatureConfig:
-        known = {"trigrams", "previous", "complete_flag", "partner", "opening"}
+        known = {"trigrams", "previous", "complete_flag", "partner", "opening", "lookback"}
         unknown = set(data) - known
         if unknown:
             raise ModelError(f"unknown function feature settings {sorted(unknown)}")
@@ -139,7 +147,8 @@ def _removed_bucket(n: int) -> str:
 
 
 def utterance_features(view: UtteranceView, previous: UtteranceView | None,
-                       config: FunctionFeatureConfig = FunctionFeatureConfig()) -> Features:
+                       config: FunctionFeatureConfig = FunctionFeatureConfig(), *,
+                       partner: UtteranceView | None = None) -> Features:
     """Features of one utterance given the one before it on the conversation's chain.
 
     Parameters
@@ -150,6 +159,9 @@ def utterance_features(view: UtteranceView, previous: UtteranceView | None,
         The preceding utterance (either speaker), or ``None`` at the start of the chain.
     config
         Which feature groups to emit.
+    partner
+        When ``previous`` is the same speaker's: the last utterance of another speaker before
+        it, as :func:`earlier_partner` finds it (used with ``config.lookback`` only).
 
     Returns
     -------
@@ -175,7 +187,41 @@ def utterance_features(view: UtteranceView, previous: UtteranceView | None,
     _add_previous_features(feats, previous, changed=changed, config=config)
     if changed and config.previous:
         _add_pair_features(feats, previous.words, view.words, partner=config.partner)
+    elif partner is not None and config.lookback and config.partner:
+        _add_partner_features(feats, partner.words, view.words, prefix="y")
     return feats
+
+
+#: How many utterances back :func:`earlier_partner` looks for another speaker's: the streaming
+#: tagger's context (:data:`DEFAULT_CONTEXT`), so that the utterance a stream labels sees the
+#: partner training showed it.
+PARTNER_LOOKBACK = 4
+
+
+def earlier_partner(before: Sequence[UtteranceView], speaker: str) -> UtteranceView | None:
+    """The last utterance of another speaker than ``speaker`` among the last
+    :data:`PARTNER_LOOKBACK` of ``before`` (oldest first), when the very last is ``speaker``'s
+    own; ``None`` otherwise (the last is the partner itself, or no other speaker is that near).
+
+    Examples
+    --------
+    >>> a = UtteranceView(speaker="A", words=("four", "fifteen"))
+    >>> b = UtteranceView(speaker="B", words=("okay",))
+    >>> earlier_partner([a, b], "B") is a, earlier_partner([a], "B")
+    (True, None)
+    """
+    if not before or before[-1].speaker != speaker:
+        return None
+    for view in reversed(before[-PARTNER_LOOKBACK:]):
+        if view.speaker != speaker:
+            return view
+    return None
+
+
+def chain_partners(views: Sequence[UtteranceView]) -> list[UtteranceView | None]:
+    """:func:`earlier_partner` of each view of a chain among the views before it."""
+    return [earlier_partner(views[max(0, i - PARTNER_LOOKBACK):i], view.speaker)
+            for i, view in enumerate(views)]
 
 
 # utterance_features in parts, so the tagger's per-word path can build only what a new word
@@ -294,35 +340,36 @@ _NUMBER_WORDS = frozenset({
 
 
 def _add_partner_features(feats: Features, previous: tuple[str, ...],
-                          words: tuple[str, ...]) -> None:
-    """How an utterance right after the partner's relates to it (both at most
-    MAX_FEATURE_WORDS words are compared, so the cost per call is bounded)."""
+                          words: tuple[str, ...], prefix: str = "") -> None:
+    """How an utterance after the partner's relates to it (both at most MAX_FEATURE_WORDS
+    words are compared, so the cost per call is bounded); ``prefix`` names the features of an
+    earlier partner utterance (``"y"``) apart from those of one right before."""
     n = len(words)
     size = _length_bucket(n)
-    feats[f"xlen={size}"] = 1.0
+    feats[f"{prefix}xlen={size}"] = 1.0
     if not n:
         return
     # An opening right after the partner's turn: "sorry", "pardon", "what" start repetition
     # requests there, and something else in the middle of one's own turn.
-    feats[f"xw0={words[0]}|{'short' if n <= 4 else 'long'}"] = 1.0
+    feats[f"{prefix}xw0={words[0]}|{'short' if n <= 4 else 'long'}"] = 1.0
     said = frozenset(previous[:MAX_FEATURE_WORDS])
     head = words[:MAX_FEATURE_WORDS]
     repeated = [w for w in head if w in said]
     share = len(repeated) / len(head)
     echo = "0" if not repeated else "all" if share == 1.0 else "most" if share >= 0.5 else "some"
-    feats[f"ov={echo}"] = 1.0
-    feats[f"ov={echo}|{size}"] = 1.0
+    feats[f"{prefix}ov={echo}"] = 1.0
+    feats[f"{prefix}ov={echo}|{size}"] = 1.0
     if not repeated:
         return
     if words[0] in said:
-        feats["ov0"] = 1.0
+        feats[f"{prefix}ov0"] = 1.0
     if head[-1] in said:
-        feats["ovl"] = 1.0
+        feats[f"{prefix}ovl"] = 1.0
     if any(w in _NUMBER_WORDS or w.isdigit() for w in repeated):
-        feats["ovnum"] = 1.0
+        feats[f"{prefix}ovnum"] = 1.0
     if "or" in head:
         # An alternative built from the partner's words offers two hearings of them.
-        feats["ovor"] = 1.0
+        feats[f"{prefix}ovor"] = 1.0
 
 
 def sequence_features(views: Sequence[UtteranceView],
@@ -330,8 +377,10 @@ def sequence_features(views: Sequence[UtteranceView],
     """Features of each utterance of a chain, each given its predecessor in ``views``."""
     out: list[Features] = []
     previous: UtteranceView | None = None
-    for view in views:
-        out.append(utterance_features(view, previous, config))
+    partners: Iterable[UtteranceView | None] = (
+        chain_partners(views) if config.lookback else itertools.repeat(None))
+    for view, partner in zip(views, partners, strict=False):
+        out.append(utterance_features(view, previous, config, partner=partner))
         previous = view
     return out
 
@@ -377,7 +426,7 @@ def iter_views(conversations: Iterable[Conversation]) -> Iterator[list[Utterance
 
 
 class _FeatureCache:
-    """A small LRU of feature dictionaries keyed by (previous view, view, config).
+    """A small LRU of feature dictionaries keyed by (previous view, earlier partner, view).
 
     Context utterances are final, so their features are computed once and reused for every word
     of the next utterance. Bounded: a long session never grows it past ``size`` entries.
@@ -385,17 +434,17 @@ class _FeatureCache:
 
     def __init__(self, size: int) -> None:
         self._size = size
-        self._items: OrderedDict[tuple[UtteranceView | None, UtteranceView], Features] = (
-            OrderedDict())
+        self._items: OrderedDict[tuple[UtteranceView | None, UtteranceView | None,
+                                       UtteranceView], Features] = OrderedDict()
 
     def get(self, previous: UtteranceView | None, view: UtteranceView,
-            config: FunctionFeatureConfig) -> Features:
-        key = (previous, view)
+            config: FunctionFeatureConfig, partner: UtteranceView | None = None) -> Features:
+        key = (previous, partner, view)
         feats = self._items.get(key)
         if feats is not None:
             self._items.move_to_end(key)
             return feats
-        feats = utterance_features(view, previous, config)
+        feats = utterance_features(view, previous, config, partner=partner)
         self._items[key] = feats
         if len(self._items) > self._size:
             self._items.popitem(last=False)
@@ -672,9 +721,12 @@ class FunctionTagger:
         # no other object can carry those ids.
         self._recent: _Lru[tuple[int, ...], tuple[tuple[UtteranceView, ...], _Carry]] = _Lru(
             WINDOW_CACHE_SIZE)
-        self._states: _Lru[tuple[int, int], tuple[UtteranceView | None, UtteranceView,
-                                                  FloatArray, FloatArray]] = _Lru(
+        # Keyed by the ids of the previous view, the earlier partner (lookback) and the view.
+        self._states: _Lru[tuple[int, int, int], tuple[UtteranceView | None,
+                                                       UtteranceView | None, UtteranceView,
+                                                       FloatArray, FloatArray]] = _Lru(
             WINDOW_CACHE_SIZE * (context + 1))
+        self._lookback = config.lookback and config.partner
         self._words: _Lru[tuple[str, ...], _Words] = _Lru(NGRAM_CACHE_SIZE)
         # Only the crfsuite path (overflow fallback, tests, benchmark baseline) uses this one.
         self._feature_cache = _FeatureCache(size=8 * (context + 2))
@@ -808,27 +860,28 @@ class FunctionTagger:
 
     # --- label_partial -----------------------------------------------------------------------
 
-    def _context_scores(self, previous: UtteranceView | None,
-                        view: UtteranceView) -> tuple[FloatArray, FloatArray]:
+    def _context_scores(self, previous: UtteranceView | None, view: UtteranceView,
+                        partner: UtteranceView | None) -> tuple[FloatArray, FloatArray]:
         """State scores of a final context utterance and their exps (cached, read-only).
 
-        Keyed by the two views' ids, each entry holding the views so the ids stay theirs: a
-        window's utterances are hashed by value only when the window itself is new.
+        Keyed by the views' ids (``partner`` the earlier partner, or ``None``), each entry
+        holding the views so the ids stay theirs: a window's utterances are hashed by value
+        only when the window itself is new.
 
         Raises
         ------
         OverflowError
             crfsuite's exp overflows on these scores.
         """
-        key = (id(previous), id(view))
+        key = (id(previous), id(partner), id(view))
         entry = self._states.get(key)
         if entry is not None:
-            return entry[2], entry[3]
-        scores = self._state_scores(self._rows_of(view, previous))
+            return entry[3], entry[4]
+        scores = self._state_scores(self._rows_of(view, previous, partner))
         exps = self._exp(scores)
         scores.flags.writeable = False
         exps.flags.writeable = False
-        self._states.put(key, (previous, view, scores, exps))
+        self._states.put(key, (previous, partner, view, scores, exps))
         return scores, exps
 
     def _window_carry(self, window: tuple[UtteranceView, ...]) -> _Carry:
@@ -856,8 +909,9 @@ class FunctionTagger:
             check_view(view)
         previous: UtteranceView | None = None
         alpha = viterbi = self._state[self._pad]
-        for view in window:
-            scores, exps = self._context_scores(previous, view)
+        partners = self._partners(window)
+        for view, partner in zip(window, partners, strict=True):
+            scores, exps = self._context_scores(previous, view, partner)
             if previous is None:
                 forward, viterbi = exps, scores
             else:
@@ -981,22 +1035,39 @@ class FunctionTagger:
         _add_pair_features(pairs, previous.words, words, partner=self._config.partner)
         return self._rows(pairs)
 
-    def _rows_of(self, view: UtteranceView,
-                 previous: UtteranceView | None) -> tuple[int, ...]:
-        """Rows of ``utterance_features(view, previous)`` in its order, from the caches."""
+    def _lookback_rows(self, partner: UtteranceView, words: tuple[str, ...]) -> tuple[int, ...]:
+        feats: Features = {}
+        _add_partner_features(feats, partner.words, words, prefix="y")
+        return self._rows(feats)
+
+    def _partners(self, views: Sequence[UtteranceView]) -> Sequence[UtteranceView | None]:
+        """The earlier partner of each view of a window among the window's views before it."""
+        if self._lookback:
+            return chain_partners(views)
+        return [None] * len(views)
+
+    def _partner_in(self, window: Sequence[UtteranceView],
+                    speaker: str) -> UtteranceView | None:
+        return earlier_partner(window, speaker) if self._lookback else None
+
+    def _rows_of(self, view: UtteranceView, previous: UtteranceView | None,
+                 partner: UtteranceView | None = None) -> tuple[int, ...]:
+        """Rows of ``utterance_features(view, previous, partner=partner)`` in its order, from
+        the caches."""
         own = self._own_rows(view)
         if previous is None:
             return own + self._opening
-        return own + self._link_rows(previous, view, None)
+        return own + self._link_rows(previous, view, None, partner)
 
     def _own_rows(self, view: UtteranceView, memo: WordsMemo | None = None) -> tuple[int, ...]:
         """Rows of the features of ``view`` that do not depend on its predecessor, in order."""
         return self._shape_rows(view) + self._word_rows(view.words, memo)
 
     def _link_rows(self, previous: UtteranceView, view: UtteranceView,
-                   carry: _Carry | None) -> tuple[int, ...]:
-        """Rows of the features ``view`` takes from ``previous``, in order; ``carry`` is the
-        window ending with ``previous`` when there is one (it holds the follow rows)."""
+                   carry: _Carry | None, partner: UtteranceView | None = None) -> tuple[int, ...]:
+        """Rows of the features ``view`` takes from ``previous`` (and from its earlier
+        ``partner``), in order; ``carry`` is the window ending with ``previous`` when there is
+        one (it holds the follow rows)."""
         changed = previous.speaker != view.speaker
         if carry is not None:
             rows = carry.other if changed else carry.same
@@ -1004,6 +1075,8 @@ class FunctionTagger:
             rows = self._follow_rows(previous, changed=changed)
         if changed and self._config.previous:
             rows += self._pair_rows(previous, view.words)
+        elif partner is not None and self._lookback:
+            rows += self._lookback_rows(partner, view.words)
         return rows
 
     def _shape_rows(self, view: UtteranceView) -> tuple[int, ...]:
@@ -1064,6 +1137,14 @@ class FunctionTagger:
         link = self._link_rows(window.views[-1], view, window.carry) if window.views else ()
         views = (*window.views, view)[-self._context:]
         rows = (*window.rows, (own, link))[-self._context:]
+        if self._lookback:
+            # A view's earlier partner is looked for among the window's views only (as
+            # context_window does), and sliding may have taken it out: the links, a few small
+            # dictionaries once per final utterance, are summed again.
+            partners = chain_partners(views)
+            rows = tuple((own_rows, self._link_rows(views[i - 1], views[i], None, partners[i])
+                          if i else link_rows)
+                         for i, (own_rows, link_rows) in enumerate(rows))
         # The oldest view opens the chain: it takes no features from the one before it.
         flat = [*rows[0][0], *self._opening]
         ends = [len(flat)]
@@ -1097,19 +1178,23 @@ class FunctionTagger:
         """
         # The rows of utterance_features(current, previous), in its order.
         rows = self._own_rows(current, memo)
+        partner: UtteranceView | None = None
         if window.views:
             previous = window.views[-1]
             carry = window.carry
             if carry is None:
                 raise OverflowError("the context window's recursions overflowed")
-            rows += self._link_rows(previous, current, carry)
+            if self._lookback:
+                partner = earlier_partner(window.views, current.speaker)
+            rows += self._link_rows(previous, current, carry, partner)
             carry_forward, carry_best = carry.forward, carry.best
         else:
             previous = None
             rows += self._opening
             carry_forward = carry_best = self._no_carry
         if not self._compiled:
-            return self._last_step_numpy(rows, carry_forward, carry_best, previous, current)
+            return self._last_step_numpy(rows, carry_forward, carry_best, previous, current,
+                                         partner=partner)
         size = len(self._label_names)
         out = np.empty((4, self._work_width))
         k, confidence, group, group_confidence = chain_end_step(
@@ -1127,7 +1212,8 @@ class FunctionTagger:
             exps = out[1, :size].copy()
             scores.flags.writeable = False
             exps.flags.writeable = False
-            self._states.put((id(previous), id(current)), (previous, current, scores, exps))
+            self._states.put((id(previous), id(partner), id(current)),
+                             (previous, partner, current, scores, exps))
         if self._coarse_from == "label":
             group = self._group_list[k]
             group_confidence = float(out[3, group])
@@ -1135,7 +1221,8 @@ class FunctionTagger:
 
     def _last_step_numpy(self, rows: tuple[int, ...], carry_forward: FloatArray,
                          carry_best: FloatArray, previous: UtteranceView | None,
-                         current: UtteranceView) -> tuple[int, float, int, float, FloatArray]:
+                         current: UtteranceView, *, partner: UtteranceView | None,
+                         ) -> tuple[int, float, int, float, FloatArray]:
         """:meth:`_last_step`'s arithmetic in numpy, where the compiled exp is not the C
         library's."""
         scores = self._state_scores(rows)
@@ -1150,7 +1237,8 @@ class FunctionTagger:
         if current.complete:
             scores.flags.writeable = False
             exps.flags.writeable = False
-            self._states.put((id(previous), id(current)), (previous, current, scores, exps))
+            self._states.put((id(previous), id(partner), id(current)),
+                             (previous, partner, current, scores, exps))
         # At the last position crfsuite's backward vector is the scale factor and its marginal
         # alpha * beta / scale, alpha the scaled forward vector; its Viterbi takes the first of
         # equal final scores, as argmax does.
@@ -1216,10 +1304,11 @@ class FunctionTagger:
         check_view(current)
         xseq: list[Features] = []
         previous: UtteranceView | None = None
-        for view in window:
-            xseq.append(self._feature_cache.get(previous, view, self._config))
+        for view, partner in zip(window, self._partners(window), strict=True):
+            xseq.append(self._feature_cache.get(previous, view, self._config, partner))
             previous = view
-        xseq.append(utterance_features(current, previous, self._config))
+        xseq.append(utterance_features(current, previous, self._config,
+                                       partner=self._partner_in(window, current.speaker)))
         labels, marginals = self._crf.tag_with_marginals(xseq)
         return labels[-1], marginals
 

@@ -16,16 +16,17 @@ import logging
 import random
 import time
 from collections.abc import Callable, Iterable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 from midstream import SWBD42_CLASSES, Conversation, InputError, UtteranceFunction
 from midstream.models._artifact import ModelArtifact
-from midstream.models._crf import train_crf
+from midstream.models._crf import shift_state_weights, train_crf
 from midstream.models.functions._tagger import (
     SCHEMES,
     Features,
     FunctionFeatureConfig,
     FunctionTagger,
+    chain_partners,
     clean_view,
     conversation_views,
     utterance_features,
@@ -68,6 +69,12 @@ class FunctionTrainingOptions:
         ``augment``). crfsuite has no class weights;
         repeating a rare class's windows is how its few examples weigh more, and the window is
         what the streaming tagger decodes anyway.
+    decode_bias
+        ``(label, shift)`` pairs: ``shift`` added to the label's score at every utterance once
+        training is done (to the weight of the ``bias`` feature every utterance carries, so
+        crfsuite and the streaming tagger decode with it alike). A prior shift towards rare
+        classes that L-BFGS's likelihood undervalues, chosen by cross-validation
+        (:func:`cross_validate_biases`), never on held-out data.
     """
 
     scheme: str = "swbd42"
@@ -80,6 +87,7 @@ class FunctionTrainingOptions:
     coarse_from: str = "sum"
     seed: int = 0
     oversample: tuple[tuple[str, int], ...] = ()
+    decode_bias: tuple[tuple[str, float], ...] = ()
 
     def to_json(self) -> dict[str, object]:
         return {
@@ -87,6 +95,7 @@ class FunctionTrainingOptions:
             "max_iterations": self.max_iterations, "augment": self.augment,
             "coarse_from": self.coarse_from, "seed": self.seed,
             "oversample": {label: copies for label, copies in self.oversample},
+            "decode_bias": {label: shift for label, shift in self.decode_bias},
         }
 
 
@@ -114,16 +123,22 @@ def _augmented(conversation: Conversation, views: Sequence[UtteranceView], rng: 
                rate: float, config: FunctionFeatureConfig) -> list[Features]:
     out: list[Features] = []
     previous: UtteranceView | None = None
-    for utterance, view in zip(conversation.utterances, views, strict=True):
+    partners = _partners(views, config)
+    for utterance, view, partner in zip(conversation.utterances, views, partners, strict=True):
         shown = view
         n = len(utterance.words)
         if n >= 2 and rng.random() < rate:
             # Cut after a random number of *received* words, as a stream would show it.
             shown = clean_view(conversation, utterance, upto=rng.randint(1, n - 1))
-        out.append(utterance_features(shown, previous, config))
+        out.append(utterance_features(shown, previous, config, partner=partner))
         # The next utterance sees this one whole: in a stream its context is final.
         previous = view
     return out
+
+
+def _partners(views: Sequence[UtteranceView],
+              config: FunctionFeatureConfig) -> list[UtteranceView | None]:
+    return chain_partners(views) if config.lookback else [None] * len(views)
 
 
 def build_sequences(conversations: Iterable[Conversation],
@@ -148,8 +163,8 @@ def build_sequences(conversations: Iterable[Conversation],
         labels = [_label(conversation, i, options.scheme) for i in range(len(views))]
         previous: UtteranceView | None = None
         xseq: list[Features] = []
-        for view in views:
-            xseq.append(utterance_features(view, previous, options.config))
+        for view, partner in zip(views, _partners(views, options.config), strict=True):
+            xseq.append(utterance_features(view, previous, options.config, partner=partner))
             previous = view
         xseqs.append(xseq)
         yseqs.append(labels)
@@ -175,17 +190,21 @@ def _rare_window(conversation: Conversation, views: Sequence[UtteranceView], ind
     :data:`OVERSAMPLE_AFTER` after it: the window's first utterance opens the chain, the rare
     one is cut to a prefix with probability ``rate``."""
     start = max(0, index - OVERSAMPLE_CONTEXT)
+    # Earlier partners are looked for within the window, as the streaming tagger does.
+    partners = _partners(views[start:index + 1], config)
     window: list[Features] = []
     if index > start:
         window.append(utterance_features(views[start], None, config))
-        window.extend(xseq[start + 1:index])
+        window.extend(utterance_features(views[i], views[i - 1], config,
+                                         partner=partners[i - start])
+                      for i in range(start + 1, index))
     utterance = conversation.utterances[index]
     shown = views[index]
     n = len(utterance.words)
     if n >= 2 and rng.random() < rate:
         shown = clean_view(conversation, utterance, upto=rng.randint(1, n - 1))
     previous = views[index - 1] if index > start else None
-    window.append(utterance_features(shown, previous, config))
+    window.append(utterance_features(shown, previous, config, partner=partners[-1]))
     # The utterances after it see it whole, as a stream's context is final.
     window.extend(xseq[index + 1:index + 1 + OVERSAMPLE_AFTER])
     return window
@@ -227,6 +246,7 @@ def train_function_model(conversations: Iterable[Conversation],
               options.scheme, len(conversations), len(xseqs))
     crf = train_crf(xseqs, yseqs, c1=options.c1, c2=options.c2, min_freq=options.min_freq,
                     max_iterations=options.max_iterations)
+    crf = shift_state_weights(crf, BIAS_FEATURE, dict(options.decode_bias))
     seconds = time.monotonic() - started
     counts: dict[str, int] = {}
     for conversation in conversations:
@@ -267,21 +287,54 @@ def conversation_folds(conversations: Sequence[Conversation], k: int) -> list[li
 Scorer = Callable[[FunctionTagger, Sequence[Conversation]], dict[str, float]]
 
 
+#: The feature every utterance carries (see ``_shape_features``), whose weights a decode bias
+#: shifts.
+BIAS_FEATURE = "bias"
+
+
+def with_decode_bias(artifact: ModelArtifact,
+                     bias: Sequence[tuple[str, float]]) -> ModelArtifact:
+    """``artifact`` with ``bias`` added to its labels' scores (see
+    :attr:`FunctionTrainingOptions.decode_bias`), recorded in its hyper-parameters."""
+    hyper = dict(artifact.hyper_parameters)
+    before = dict(hyper.get("decode_bias") or {})
+    for label, shift in bias:
+        before[label] = before.get(label, 0.0) + shift
+    hyper["decode_bias"] = before
+    return replace(artifact, crf=shift_state_weights(artifact.crf, BIAS_FEATURE, dict(bias)),
+                   hyper_parameters=hyper)
+
+
 def cross_validate(conversations: Sequence[Conversation], options: FunctionTrainingOptions,
                    *, folds: int, score: Scorer) -> dict[str, float]:
     """Mean of ``score``'s figures over conversation-grouped folds (train split only!).
 
     ``score(tagger, held_out)`` returns named figures for one fold; their means are returned.
     """
+    return cross_validate_biases(conversations, options, [options.decode_bias], folds=folds,
+                                 score=score)[0]
+
+
+def cross_validate_biases(conversations: Sequence[Conversation],
+                          options: FunctionTrainingOptions,
+                          biases: Sequence[tuple[tuple[str, float], ...]], *, folds: int,
+                          score: Scorer) -> list[dict[str, float]]:
+    """:func:`cross_validate` of ``options`` with each decode bias of ``biases`` in turn.
+
+    A bias changes no training, so each fold's model is trained once and scored with every
+    bias; the figures of ``biases[i]`` are the ``i``-th of the list.
+    """
     parts = conversation_folds(conversations, folds)
-    totals: dict[str, float] = {}
+    totals: list[dict[str, float]] = [{} for _ in biases]
+    plain = replace(options, decode_bias=())
     for f, held in enumerate(parts):
         held_set = set(held)
         train = [c for i, c in enumerate(conversations) if i not in held_set]
-        artifact = train_function_model(train, options)
-        tagger = FunctionTagger.from_artifact(artifact)
-        figures = score(tagger, [conversations[i] for i in held])
-        _log.info("fold %d/%d: %s", f + 1, folds, figures)
-        for name, value in figures.items():
-            totals[name] = totals.get(name, 0.0) + value
-    return {name: value / folds for name, value in totals.items()}
+        artifact = train_function_model(train, plain)
+        for bias, total in zip(biases, totals, strict=True):
+            tagger = FunctionTagger.from_artifact(with_decode_bias(artifact, bias))
+            figures = score(tagger, [conversations[i] for i in held])
+            _log.info("fold %d/%d, bias %s: %s", f + 1, folds, bias, figures)
+            for name, value in figures.items():
+                total[name] = total.get(name, 0.0) + value
+    return [{name: value / folds for name, value in total.items()} for total in totals]

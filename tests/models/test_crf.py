@@ -7,7 +7,7 @@ import struct
 import pytest
 from midstream._errors import InputError, ModelError
 from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
-from midstream.models._crf import CrfTagger, train_crf
+from midstream.models._crf import CrfTagger, shift_state_weights, train_crf
 
 _X = [[{"w=the": 1.0}, {"w=uh": 1.0}, {"w=cat": 1.0}]] * 4
 _Y = [["O", "F", "O"]] * 4
@@ -96,3 +96,30 @@ def test_weights_read_from_bytes_match_crfsuites_own_dump(model_bytes: bytes) ->
     for (source, target), value in info.transitions.items():
         assert weights.transitions[column[source], column[target]] == pytest.approx(
             value, abs=1e-6)
+
+
+def test_a_shifted_state_weight_is_what_crfsuite_decodes_with(model_bytes: bytes) -> None:
+    # crfsuite's own dump of the shifted model is the outside reference: exactly one weight
+    # moved, by the shift, and crfsuite's decoding follows it (a large enough shift away from
+    # "O" on the only attribute of the first item makes that item "F").
+    shifted = shift_state_weights(model_bytes, "w=the", {"O": -50.0})
+    before = CrfTagger.from_bytes(model_bytes)._tagger.info().state_features
+    after = CrfTagger.from_bytes(shifted)._tagger.info().state_features
+    assert after.keys() == before.keys()
+    moved = {k: after[k] - before[k] for k in after if after[k] != before[k]}
+    assert list(moved) == [("w=the", "O")]
+    assert moved["w=the", "O"] == pytest.approx(-50.0)
+    assert CrfTagger.from_bytes(shifted).tag(_X[0])[0] == "F"
+    assert shift_state_weights(model_bytes, "w=the", {}) == model_bytes
+
+
+def test_a_shift_of_a_weight_the_model_lacks_is_refused(model_bytes: bytes) -> None:
+    with pytest.raises(ModelError, match="no label 'X'"):
+        shift_state_weights(model_bytes, "w=the", {"X": 1.0})
+    with pytest.raises(ModelError, match="no attribute"):
+        shift_state_weights(model_bytes, "w=dog", {"F": 1.0})
+    with pytest.raises(ModelError, match="no weight"):
+        # L1 regularisation left "the" no weight for "F": crfsuite's file has no place for it.
+        shift_state_weights(model_bytes, "w=the", {"F": 1.0})
+    with pytest.raises(ModelError, match="not a CRF model"):
+        shift_state_weights(b"x" * 64, "w=the", {"F": 1.0})

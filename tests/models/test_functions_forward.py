@@ -58,9 +58,11 @@ def tiny_fine() -> ModelArtifact:
 
 @pytest.fixture(scope="module")
 def tiny_coarse() -> ModelArtifact:
-    # With the partner and opening features, as the shipped coarse model: every path must
-    # agree on them (the invented conversations open some utterances with a removed "uh").
-    return tiny_model("coarse", partner=True, opening=True)
+    # With the partner, opening and look-back features, as the shipped coarse model: every
+    # path must agree on them (the invented conversations open some utterances with a removed
+    # "uh", and the hypothesis views below repeat speakers, so earlier partners are looked for
+    # and slide out of windows).
+    return tiny_model("coarse", partner=True, opening=True, lookback=True)
 
 
 def crfsuite_reference(crf: CrfTagger, tagger: FunctionTagger,

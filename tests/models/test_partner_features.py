@@ -3,17 +3,32 @@ oversampling in training: what the coarse model needs to find clarification requ
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import pytest
 from function_kit import invented_corpus
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from midstream import Conversation
 from midstream._errors import InputError
 from midstream.models.functions._tagger import (
     MAX_FEATURE_WORDS,
+    PARTNER_LOOKBACK,
     FunctionFeatureConfig,
+    FunctionTagger,
+    chain_partners,
+    conversation_views,
+    earlier_partner,
+    sequence_features,
     utterance_features,
 )
-from midstream.models.functions._train import FunctionTrainingOptions, build_sequences
+from midstream.models.functions._train import (
+    FunctionTrainingOptions,
+    build_sequences,
+    cross_validate_biases,
+    train_function_model,
+    with_decode_bias,
+)
 from midstream.models.functions._views import UtteranceView
 
 PARTNER = FunctionFeatureConfig(partner=True)
@@ -91,3 +106,70 @@ def test_oversampling_a_label_outside_the_scheme_is_refused() -> None:
     options = FunctionTrainingOptions(scheme="coarse", oversample=(("check", 3),))
     with pytest.raises(InputError, match="check"):
         build_sequences(invented_corpus(1), options)
+
+
+LOOKBACK = FunctionFeatureConfig(partner=True, lookback=True)
+
+
+def test_a_check_after_ones_own_okay_sees_the_partners_words() -> None:
+    # Invented: the caller acknowledges, then checks the time in a second utterance of their
+    # own; the check repeats the agent's numbers, not the caller's "okay".
+    agent = UtteranceView(speaker="A", words=("the", "van", "comes", "at", "four", "fifteen"))
+    okay = UtteranceView(speaker="B", words=("okay",))
+    check = UtteranceView(speaker="B", words=("four", "fifteen"))
+    chain = [agent, okay, check]
+    # "okay" follows the partner itself: no earlier partner to look back to.
+    assert chain_partners(chain) == [None, None, agent]
+    feats = sequence_features(chain, LOOKBACK)[2]
+    assert {"yov=all", "yovnum", "yov0", "yxlen=2", "yxw0=four|short"} <= feats.keys()
+    assert not any(k.startswith(("ov", "xlen")) for k in feats)
+    # Without the setting, or right after the partner, no look-back features.
+    assert not any(k.startswith("y") for k in sequence_features(chain, PARTNER)[2])
+    assert not any(k.startswith("y") for k in sequence_features([agent, check], LOOKBACK)[1])
+
+
+def test_the_look_back_stops_at_the_streaming_context() -> None:
+    agent = UtteranceView(speaker="A", words=("four", "fifteen"))
+    own = [UtteranceView(speaker="B", words=(w,)) for w in ("okay", "so", "right", "and")]
+    assert earlier_partner([agent, *own[:PARTNER_LOOKBACK - 1]], "B") is agent
+    assert earlier_partner([agent, *own[:PARTNER_LOOKBACK]], "B") is None
+    assert earlier_partner([agent], "B") is None  # the previous one is the partner itself
+    assert earlier_partner([], "B") is None
+
+
+def test_a_decode_bias_shifts_one_labels_score_everywhere_and_is_recorded() -> None:
+    # The bias goes into the model's weights, so crfsuite (label_conversation) and the
+    # streaming tagger (label_partial) both see it: the fine label's marginal can only grow.
+    conversations = invented_corpus(6)
+    # No L1 term, so that no label's bias weight is zero (a zero weight has no place in
+    # crfsuite's file to shift; shift_state_weights refuses it).
+    plain = FunctionTrainingOptions(scheme="coarse", augment=0.0, max_iterations=30, c1=0.0)
+    artifact = train_function_model(conversations, plain)
+    shifted = with_decode_bias(artifact, (("answer", 2.0),))
+    assert shifted.hyper_parameters["decode_bias"] == {"answer": 2.0}
+    before, after = (FunctionTagger.from_artifact(a) for a in (artifact, shifted))
+    row = before._attributes["bias"]
+    column = before.labels.index("answer")
+    assert after._state[row, column] == before._state[row, column] + 2.0
+    views = conversation_views(conversations[0])
+    for old, new in zip(before.label_conversation(views), after.label_conversation(views),
+                        strict=True):
+        if old.label == "answer":
+            assert new.label == "answer" and new.confidence >= old.confidence
+
+
+def test_cross_validation_scores_every_decode_bias_on_the_same_folds() -> None:
+    conversations = invented_corpus(6)
+    options = FunctionTrainingOptions(scheme="coarse", augment=0.0, max_iterations=20, c1=0.0)
+    seen: list[float] = []
+
+    def score(tagger: FunctionTagger, held: Sequence[Conversation]) -> dict[str, float]:
+        seen.append(tagger._state[tagger._attributes["bias"], tagger.labels.index("answer")])
+        return {"score": float(len(held))}
+
+    results = cross_validate_biases(conversations, options, [(), (("answer", 1.0),)],
+                                    folds=2, score=score)
+    assert results == [{"score": 3.0}, {"score": 3.0}]
+    # Each fold's model scored without, then with, the bias: one training per fold.
+    assert [b - a for a, b in zip(seen[::2], seen[1::2], strict=True)] == pytest.approx(
+        [1.0, 1.0])
