@@ -559,14 +559,26 @@ def train_abandon_cues(
     ``folds``-fold cross-validation grouped by conversation inside ``conversations`` (gold
     units; counts pooled over folds). Returns the model trained on all of them and the
     cross-validation report.
+
+    Raises
+    ------
+    InputError
+        No unit of ``conversations`` is abandoned.
     """
+    examples = list(abandon_examples(conversations))
+    if not any(e.abandoned for e in examples):
+        raise InputError("no abandoned utterances in the training data (Utterance.abandoned) "
+                         "to train the abandoned-unit model on; leave out --abandon-cues")
     fold_of = _folds(conversations, folds, None, seed)
     counts = {t: BinaryCounts() for t in thresholds}
     for k in range(folds):
         train = list(itertools.chain.from_iterable(fold_of[j] for j in range(folds) if j != k))
-        fold = AbandonCues(weights=_fit_abandon(list(abandon_examples(train))), threshold=1.0)
+        fold_examples = list(abandon_examples(train))
+        # A fold with no abandoned unit to learn from judges none abandoned.
+        fold = (AbandonCues(weights=_fit_abandon(fold_examples), threshold=1.0)
+                if any(e.abandoned for e in fold_examples) else None)
         for example in abandon_examples(fold_of[k]):
-            p = fold.probability(example.features)
+            p = fold.probability(example.features) if fold is not None else 0.0
             for t, tally in counts.items():
                 if p >= t and example.abandoned:
                     tally.tp += example.words
@@ -586,5 +598,4 @@ def train_abandon_cues(
                     for t, c in counts.items()],
         "chosen": best,
     }
-    weights = _fit_abandon(list(abandon_examples(conversations)))
-    return AbandonCues(weights=weights, threshold=best), report
+    return AbandonCues(weights=_fit_abandon(examples), threshold=best), report

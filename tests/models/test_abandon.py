@@ -7,10 +7,10 @@ Restart of the second kind as the corpus defines it (``corpora/_restarts.py``, a
 from __future__ import annotations
 
 import dataclasses
-import random
 
 import pytest
-from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceFunction, Word
+from midstream import DisfluencyLabel, Word
+from midstream._errors import InputError
 from midstream.models._abandon import AbandonCues, abandon_features
 from midstream.models._decoder import ChannelDecoder, TokenState
 from midstream.models._features import FeatureConfig
@@ -22,7 +22,7 @@ from midstream.models._train_words import (
     train_word_artifact,
 )
 from midstream.models._wordmodel import WordModel
-from word_kit import TINY, invented_conversation
+from word_kit import TINY, invented_abandoning, invented_conversation
 
 _FRESH = "my brother lives in texas we went to the store last week"
 
@@ -48,7 +48,7 @@ def model() -> WordModel:
     # The word kit's conversations and some where a speaker abandons a unit, so the CRF knows
     # that a restart's last word may end an utterance.
     conversations = [invented_conversation(seed) for seed in range(8)]
-    conversations += [_invented_abandoning(seed) for seed in range(3)]
+    conversations += [invented_abandoning(seed) for seed in range(3)]
     return WordModel.from_artifact(train_word_artifact(conversations, TINY))
 
 
@@ -93,37 +93,8 @@ def test_cues_round_trip_through_the_feature_configuration() -> None:
     assert cues.probability(features) == pytest.approx(1 / (1 + 2.718281828459045 ** 0.5))
 
 
-def _invented_abandoning(seed: int) -> Conversation:
-    """Speaker A abandons some starts ("i was going to") and begins afresh; B backchannels."""
-    rng = random.Random(seed)
-    words: list[Word] = []
-    labels: list[DisfluencyLabel] = []
-    utterances: list[Utterance] = []
-    starts = ("i was going to", "we were on the", "and then she", "it is in")
-    fresh = ("we went to the store", "my brother lives in texas", "they bought a new car",
-             "it was a nice day")
-
-    def unit(text: str, speaker: str, label: DisfluencyLabel, *, abandoned: bool) -> None:
-        first = len(words)
-        for token in text.split():
-            words.append(Word(text=token, speaker=speaker))
-            labels.append(label)
-        utterances.append(Utterance(
-            speaker=speaker, words=tuple(range(first, len(words))),
-            function=UtteranceFunction.STATEMENT, fine_tag="sd", fine_class="sd",
-            complete=not abandoned, abandoned=abandoned))
-
-    for _ in range(12):
-        if rng.random() < 0.4:
-            unit(rng.choice(starts), "A", DisfluencyLabel.RESTART, abandoned=True)
-        unit(rng.choice(fresh), "A", DisfluencyLabel.FLUENT, abandoned=False)
-        unit("uh-huh", "B", DisfluencyLabel.FLUENT, abandoned=False)
-    return Conversation(id=f"abandoning-{seed}", corpus="invented", words=tuple(words),
-                        utterances=tuple(utterances), labels=tuple(labels), repairs=())
-
-
 def test_training_learns_where_units_stop_and_chooses_a_threshold_by_cross_validation() -> None:
-    conversations = [_invented_abandoning(seed) for seed in range(9)]
+    conversations = [invented_abandoning(seed) for seed in range(9)]
     examples = list(abandon_examples(conversations))
     assert any(e.abandoned for e in examples) and not all(e.abandoned for e in examples)
     cues, report = train_abandon_cues(conversations)
@@ -137,3 +108,8 @@ def test_training_learns_where_units_stop_and_chooses_a_threshold_by_cross_valid
                                 whole=True, length=5, next_text="we", other_words=0,
                                 classes={})
     assert cues.probability(stopped) > cues.threshold > cues.probability(finished)
+
+
+def test_training_data_without_abandoned_units_is_a_clear_error() -> None:
+    with pytest.raises(InputError, match="no abandoned utterances"):
+        train_abandon_cues([invented_conversation(seed) for seed in range(3)])
