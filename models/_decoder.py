@@ -367,7 +367,8 @@ class ChannelDecoder:
             last_mask=model.end_mask if close else None,
             tag_group=model.tag_group, tag_end=model.tag_end, settle_from=complete,
         )
-        if not close and self._abandon is not None and self._judge(lo, start, result.path):
+        if not close and self._abandon is not None and self._judge(
+                lo, start, result.path, result.end_probability):
             result = decode_window(
                 self._scores, lo, held, model.exp_transitions,
                 first=self._entries[lo].tag if start > 0 else -1, last_mask=None,
@@ -427,7 +428,8 @@ class ChannelDecoder:
             self._first_open -= drop
         return changed
 
-    def _judge(self, lo: int, start: int, path: list[int]) -> bool:
+    def _judge(self, lo: int, start: int, path: list[int],
+               end_probability: list[float]) -> bool:
         """Judge the newest unjudged utterance end the path predicts among the open words.
 
         Only an end with a word after it counts (the speaker's fresh start); each is judged
