@@ -54,8 +54,10 @@ RUNS: dict[str, tuple[str, ...]] = {
     "swda-val": ("midstream", "evaluate", _corpus("swda"), "--split", "val", "--json"),
     "mrda-val": ("midstream", "evaluate", _corpus("mrda"), "--split", "val", "--json"),
     "maptask-val": ("midstream", "evaluate", _corpus("maptask"), "--split", "val", "--json"),
-    "mrda-val-words-alone": ("midstream", "evaluate", _corpus("mrda"), "--split", "val",
-                             "--no-boundary", "--words-only", "--json"),
+    # The word model alone (no boundary model) on each corpus, as its card compares them.
+    **{f"{corpus}-val-words-alone": ("midstream", "evaluate", _corpus(corpus), "--split", "val",
+                                     "--no-boundary", "--words-only", "--json")
+       for corpus in ("mrda", "maptask", "disflqa")},
     # The SwDA 42-class model alone (its coarse function from summed fine marginals), as its
     # card reports it: in its own corpus and in the two others.
     **{f"{corpus}-val-swbd42": ("midstream", "evaluate", _corpus(corpus), "--split", "val",

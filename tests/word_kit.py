@@ -101,6 +101,35 @@ def invented_conversation(seed: int, *, annotated: bool = True,
     )
 
 
+def invented_abandoning(seed: int) -> Conversation:
+    """Speaker A abandons some starts ("i was going to") and begins afresh; B backchannels."""
+    rng = random.Random(seed)
+    words: list[Word] = []
+    labels: list[DisfluencyLabel] = []
+    utterances: list[Utterance] = []
+    starts = ("i was going to", "we were on the", "and then she", "it is in")
+    fresh = ("we went to the store", "my brother lives in texas", "they bought a new car",
+             "it was a nice day")
+
+    def unit(text: str, speaker: str, label: DisfluencyLabel, *, abandoned: bool) -> None:
+        first = len(words)
+        for token in text.split():
+            words.append(Word(text=token, speaker=speaker))
+            labels.append(label)
+        utterances.append(Utterance(
+            speaker=speaker, words=tuple(range(first, len(words))),
+            function=UtteranceFunction.STATEMENT, fine_tag="sd", fine_class="sd",
+            complete=not abandoned, abandoned=abandoned))
+
+    for _ in range(12):
+        if rng.random() < 0.4:
+            unit(rng.choice(starts), "A", DisfluencyLabel.RESTART, abandoned=True)
+        unit(rng.choice(fresh), "A", DisfluencyLabel.FLUENT, abandoned=False)
+        unit("uh-huh", "B", DisfluencyLabel.FLUENT, abandoned=False)
+    return Conversation(id=f"abandoning-{seed}", corpus="invented", words=tuple(words),
+                        utterances=tuple(utterances), labels=tuple(labels), repairs=())
+
+
 #: Small, fast settings for test models (not the shipped model's). Eight invented conversations
 #: are too few to weigh the word-class features against the copy features (with them, "the kids
 #: the kids" came out a restart), so test models leave them out; the shipped-model tests and the

@@ -23,7 +23,8 @@ coarse figures are the coarse model's and the ``...swbd42`` figures the 42-class
 transcribers write ("th-"), and with ``--word-error-rate R`` also with seeded substitutions,
 deletions and insertions (proportions and how gold labels follow them:
 :mod:`midstream.models._recogniser`; ``--error-seed`` picks the draw).
-``scripts/recogniser_tables.py`` prints the model cards' tables at 0 %, 10 % and 20 % errors.
+The runs ``swda-val-recognised-*`` of ``scripts/figures.py`` give the model cards' tables at
+0 %, 10 % and 20 % errors.
 """
 
 from __future__ import annotations

@@ -84,6 +84,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     words.add_argument("--break-ahead", action="store_true",
                        help="add the break-ahead features (where the other speaker next spoke "
                             "within the right context, and the word the speaker stopped at)")
+    words.add_argument("--abandon-cues", action="store_true",
+                       help="train the abandoned-unit model beside the CRF: the decoder judges "
+                            "each predicted utterance end when the speaker's next word arrives "
+                            "and revises an abandoned unit's open words to restart (threshold "
+                            "chosen by 3-fold cross-validation inside the training data)")
     words.add_argument("--tune-bias", action="store_true",
                        help="choose the reparandum/repair tag bias by cross-validation "
                             "(--cv-folds, --cv-subset, --seed) before training")
@@ -138,6 +143,8 @@ def _command_line(args: argparse.Namespace) -> str:
         parts += ["--no-word-classes"]
     if args.break_ahead:
         parts += ["--break-ahead"]
+    if args.abandon_cues:
+        parts += ["--abandon-cues"]
     if args.tag_bias is not None:
         parts += ["--tag-bias", args.tag_bias]
     if args.tune_bias:
@@ -269,6 +276,7 @@ def run_words(args: argparse.Namespace) -> int:
                               tag_bias=tag_bias,
                               word_classes=not args.no_word_classes,
                               break_ahead=args.break_ahead,
+                              abandon_cues=args.abandon_cues,
                               right=args.right, left=max(WordTrainingConfig().left,
                                                          args.right + 1))
     grid = [{"c1": c1, "c2": c2, "min_freq": m, "restart_span": r}

@@ -10,13 +10,16 @@ when ``lag`` newer words have arrived, or when its utterance is closed; a final 
 changes again and the decoder forgets the word once it is no longer needed as left context
 (the caller keeps history).
 
-Abandoned utterances (restarts of the second kind, ``docs/labels.md``) need no special case:
-an utterance is abandoned only once its speaker starts afresh, so its words are first reported
-with another label and revised to ``restart`` when the fresh start's first words arrive. They
-become final by the same rule as every word: once settled (the features read ``right`` words
-ahead, so the last words of the abandoned utterance are decided on the fresh start's words), at
-the latest ``lag`` words late. A caller's explicit close finalises them at once, as any open
-word: after it they are never revised to ``restart``.
+Abandoned utterances (restarts of the second kind, ``docs/labels.md``): an utterance is
+abandoned only once its speaker starts afresh, so its words are first reported with another
+label and revised to ``restart`` when the fresh start's first word arrives. With a model that
+carries abandoned-unit cues (:mod:`~midstream.models.words._abandon`), the decoder judges each
+predicted utterance end once, when the first word after it arrives: if the unit before it was
+abandoned, its words that are still open (not fillers, editing terms or reparandum words) get
+restart evidence and are re-decoded. Words of the unit already final keep their label: a final
+state never changes. The revised words become final by the same rule as every word: once
+settled, at the latest ``lag`` words late. A caller's explicit close finalises open words at
+once, with no next word to judge by: after it they are never revised to ``restart``.
 
 A :class:`ChannelDecoder` is not safe to share between threads or tasks: one per channel, used
 from one place. The :class:`~midstream.models.words._model.WordModel` under it may be shared.
@@ -33,6 +36,7 @@ import numpy.typing as npt
 from midstream import DisfluencyLabel, EventError, Word
 from midstream.models._lattice import accumulate_rows, decode_window
 from midstream.models.boundaries._model import BoundaryModel
+from midstream.models.words._abandon import ABANDON_EVIDENCE, WHOLE_UNIT, abandon_features
 from midstream.models.words._features import Token, feature_piece, features_at, token_of
 from midstream.models.words._model import WordModel
 from midstream.models.words._tags import INTERREGNUM_TAGS, IP_TAGS
@@ -42,6 +46,7 @@ __all__ = ["DEFAULT_LAG", "ChannelDecoder", "DecoderConfig", "TokenState"]
 FloatArray = npt.NDArray[np.float64]
 
 _REPARANDUM_TAGS = frozenset({"rp", "rp.ip"})
+_KEPT_IN_ABANDONED = INTERREGNUM_TAGS | _REPARANDUM_TAGS
 
 #: Open words a settling decoder holds at most (see :class:`DecoderConfig`).
 DEFAULT_LAG = 10
@@ -107,12 +112,14 @@ class TokenState(NamedTuple):
 class _Entry:
     """A held word: its key, current tag, finality and what was last published about it."""
 
-    __slots__ = ("final", "key", "published", "tag")
+    __slots__ = ("final", "judged", "key", "published", "tag")
 
     def __init__(self, key: int) -> None:
         self.key = key
         self.tag = -1
         self.final = False
+        # An utterance end predicted after this word was judged for abandonment.
+        self.judged = False
         self.published: TokenState | None = None
 
 
@@ -138,6 +145,20 @@ class ChannelDecoder:
             DEFAULT_LAG if config.settle else model.config.right + 1)
         self._reparandum_tags = frozenset(
             k for k, b in enumerate(model.tag_base) if b in _REPARANDUM_TAGS)
+        self._abandon = model.config.abandon
+        # Where a judged unit's restart evidence goes: its inner words to ``rs``, its last word
+        # to ``rs.ip`` ending the utterance (``rs.ip`` in a model without that tag), so the
+        # path through the unit is the one the corpus gives an abandoned utterance.
+        base, ends = model.tag_base, model.tag_ends
+        self._restart_inner = [k for k, b in enumerate(base) if b == "rs" and not ends[k]]
+        self._restart_last = ([k for k, b in enumerate(base) if b == "rs.ip" and ends[k]]
+                              or [k for k, b in enumerate(base) if b == "rs.ip"])
+        # Tags an abandoned unit's word keeps: the corpus leaves fillers, editing terms and the
+        # reparanda of brackets inside the unit as they are.
+        self._keeps_label = tuple(b in _KEPT_IN_ABANDONED for b in model.tag_base)
+        self._classes = model.config.word_classes
+        # Whether words were dropped from the front (the channel's first word is gone).
+        self._trimmed = False
         # Finalised words kept as feature context; one more as the lattice's fixed left end.
         self._keep = max(model.config.left, 1)
         self._entries: list[_Entry] = []
@@ -317,6 +338,7 @@ class ChannelDecoder:
         model = self._model
         for i in range(self._first_open, last + 1):
             self._scores[i] = model.score(features_at(self._tokens[: last + 1], i, model.config))
+            self._entries[i].judged = False  # the restart evidence went with the old scores
             if self._boundary is not None and i < last:
                 self._join_evidence(i)
 
@@ -344,6 +366,13 @@ class ChannelDecoder:
             last_mask=model.end_mask if close else None,
             tag_group=model.tag_group, tag_end=model.tag_end, settle_from=complete,
         )
+        if not close and self._abandon is not None and self._judge(
+                lo, start, result.path, result.end_probability):
+            result = decode_window(
+                self._scores, lo, held, model.exp_transitions,
+                first=self._entries[lo].tag if start > 0 else -1, last_mask=None,
+                tag_group=model.tag_group, tag_end=model.tag_end, settle_from=complete,
+            )
         path = result.path
         confidence = result.confidence
         end_probability = result.end_probability
@@ -391,10 +420,56 @@ class ChannelDecoder:
         self._first_open = start + n_final
         drop = self._first_open - self._keep
         if drop > 0:
+            self._trimmed = True
             del self._entries[:drop]
             del self._tokens[:drop]
             self._scores[: held - drop] = self._scores[drop:held]
             self._first_open -= drop
+        return changed
+
+    def _judge(self, lo: int, start: int, path: list[int],
+               end_probability: list[float]) -> bool:
+        """Judge the newest unjudged utterance end the path predicts among the open words.
+
+        Only an end with a word after it counts (the speaker's fresh start); each is judged
+        once. When the unit before it was abandoned, restart evidence joins its open words'
+        scores and the caller re-decodes. Returns whether any score changed.
+        """
+        cues = self._abandon
+        assert cues is not None
+        entries = self._entries
+        tag_ends = self._model.tag_ends
+        end = -1
+        for i in range(len(entries) - 2, start - 1, -1):
+            if tag_ends[path[i - lo]]:
+                end = i
+                break
+        if end < 0 or entries[end].judged:
+            return False
+        entries[end].judged = True
+        first = end
+        while first > 0 and not tag_ends[path[first - 1 - lo] if first - 1 >= lo
+                                          else entries[first - 1].tag]:
+            first -= 1
+        tokens = self._tokens
+        length = end - first + 1
+        whole = first > 0 or not self._trimmed
+        texts = [t.text for t in tokens[max(first, end - WHOLE_UNIT + 1) : end + 1]]
+        following = tokens[end + 1]
+        features = abandon_features(
+            texts, fragment=tokens[end].fragment, whole=whole, length=length,
+            next_text=following.text,
+            other_words=following.other_words if following.after_other_speaker else 0,
+            classes=self._classes)
+        if cues.probability(features) < cues.threshold:
+            return False
+        keeps = self._keeps_label
+        changed = False
+        for i in range(max(first, start), end + 1):
+            if not keeps[path[i - lo]]:
+                columns = self._restart_last if i == end else self._restart_inner
+                self._scores[i, columns] += ABANDON_EVIDENCE
+                changed = True
         return changed
 
     def _links(self, window: list[_Entry], path: list[int]) -> list[int | None]:

@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 from typing import Any, Final
 
 from midstream import Word
+from midstream.models.words._abandon import AbandonCues
 
 __all__ = ["FeatureConfig", "Token", "feature_piece", "features_at", "tokens_from_words"]
 
@@ -104,6 +105,9 @@ class FeatureConfig:
     said there, and the word the speaker stopped at (an utterance broken off for no more than a
     backchannel, after which the speaker starts afresh, was abandoned: a restart).
 
+    ``abandon``: the abandoned-unit cues the decoder judges predicted utterance ends with
+    (:mod:`~midstream.models.words._abandon`; ``None``: the CRF's own restart tags alone).
+
     ``tag_bias`` maps internal CRF tags to a constant added to their state score at decoding
     (not a feature: it shifts the decision threshold between tags after training, chosen by
     cross-validation on the training split; empty means the trained weights alone decide).
@@ -116,6 +120,7 @@ class FeatureConfig:
     tag_bias: Mapping[str, float] = field(default_factory=dict)
     word_classes: Mapping[str, str] = field(default_factory=dict, repr=False)
     break_ahead: bool = False
+    abandon: AbandonCues | None = None
 
     def __post_init__(self) -> None:
         if self.right < 0 or self.left < self.right + 1:
@@ -133,6 +138,8 @@ class FeatureConfig:
             data["word_classes"] = dict(self.word_classes)
         if self.break_ahead:
             data["break_ahead"] = True
+        if self.abandon is not None:
+            data["abandon"] = self.abandon.to_json()
         return data
 
     @classmethod
@@ -149,6 +156,8 @@ class FeatureConfig:
                           for k, v in dict(data.get("word_classes", {})).items()},
             # Absent in models trained before the break-ahead features existed.
             break_ahead=bool(data.get("break_ahead", False)),
+            # Absent in models trained before the abandoned-unit cues existed.
+            abandon=(AbandonCues.from_json(data["abandon"]) if "abandon" in data else None),
         )
 
 

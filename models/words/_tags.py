@@ -9,7 +9,7 @@ with an utterance-end flag so one decode gives both layers.
 tag            meaning
 =============  =====================================================
 ``fl``         fluent word
-``fp``         filled pause
+``fil``        filled pause
 ``et``         explicit editing term
 ``dm``         discourse marker
 ``rp``         reparandum word, not the last
@@ -46,7 +46,7 @@ END_SUFFIX: Final = "/end"
 #: Published label of each internal disfluency tag.
 TAG_LABEL: Final[dict[str, DisfluencyLabel]] = {
     "fl": DisfluencyLabel.FLUENT,
-    "fp": DisfluencyLabel.FILLER,
+    "fil": DisfluencyLabel.FILLER,
     "et": DisfluencyLabel.EDIT_TERM,
     "dm": DisfluencyLabel.DISCOURSE_MARKER,
     "rp": DisfluencyLabel.REPARANDUM,
@@ -61,11 +61,11 @@ IP_TAGS: Final = frozenset({"rp.ip", "rs.ip"})
 #: Tags of words a repair replaces (reparandum or restart).
 REPLACED_TAGS: Final = frozenset({"rp", "rp.ip", "rs", "rs.ip"})
 #: Tags of the interregnum between an interruption point and the repair.
-INTERREGNUM_TAGS: Final = frozenset({"fp", "et", "dm"})
+INTERREGNUM_TAGS: Final = frozenset({"fil", "et", "dm"})
 
 _LABEL_TAG: Final[dict[DisfluencyLabel, str]] = {
     DisfluencyLabel.FLUENT: "fl",
-    DisfluencyLabel.FILLER: "fp",
+    DisfluencyLabel.FILLER: "fil",
     DisfluencyLabel.EDIT_TERM: "et",
     DisfluencyLabel.DISCOURSE_MARKER: "dm",
     DisfluencyLabel.REPARANDUM: "rp",

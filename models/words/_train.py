@@ -26,14 +26,16 @@ import numpy as np
 import numpy.typing as npt
 from midstream import Conversation, DisfluencyLabel, InputError
 from midstream.models._artifact import ModelArtifact
-from midstream.models._crf import TrainingPairs, train_crf_from
+from midstream.models._crf import CrfTagger, TrainingPairs, train_crf_from
 from midstream.models._lattice import decode_lattice
+from midstream.models.words._abandon import WHOLE_UNIT, AbandonCues, abandon_features
 from midstream.models.words._classes import CLOSED_CLASSES
 from midstream.models.words._eval import BinaryCounts, offline_scores
 from midstream.models.words._features import FeatureConfig, features_at, tokens_from_words
 from midstream.models.words._model import WordModel
 from midstream.models.words._tags import (
     END_SUFFIX,
+    INTERREGNUM_TAGS,
     TAG_LABEL,
     ChannelSequence,
     channel_sequences,
@@ -42,16 +44,21 @@ from midstream.models.words._tags import (
 from tqdm import tqdm
 
 __all__ = [
+    "ABANDON_MIN_PRECISION",
+    "ABANDON_THRESHOLDS",
     "BIAS_CANDIDATES",
     "RESTART_BIAS_CANDIDATES",
+    "AbandonExample",
     "BiasResult",
     "HeldOutChannel",
     "WordTrainingConfig",
+    "abandon_examples",
     "build_lexicon",
     "cross_validate_words",
     "expand_tag_bias",
     "held_out_channels",
     "sweep_tag_bias",
+    "train_abandon_cues",
     "train_word_artifact",
     "training_pairs",
     "tune_tag_bias",
@@ -78,7 +85,9 @@ class WordTrainingConfig:
     ``chunk_length``: longest training sequence (words); ``right``/``left``/``restart_span``:
     feature context (see :class:`~midstream.models.words._features.FeatureConfig`);
     ``word_classes``: use the closed-class substitution features; ``break_ahead``: the
-    break-ahead features (see :class:`~midstream.models.words._features.FeatureConfig`).
+    break-ahead features (see :class:`~midstream.models.words._features.FeatureConfig`);
+    ``abandon_cues``: train the abandoned-unit model beside the CRF
+    (:func:`train_abandon_cues`).
     """
 
     c1: float = 0.1
@@ -92,6 +101,7 @@ class WordTrainingConfig:
     tag_bias: tuple[tuple[str, float], ...] = ()
     word_classes: bool = True
     break_ahead: bool = False
+    abandon_cues: bool = False
 
 
 def annotated_channels(conversations: Iterable[Conversation]) -> Iterator[ChannelSequence]:
@@ -191,6 +201,11 @@ def train_word_artifact(
     if config.tag_bias:
         features = replace(features,
                            tag_bias=expand_tag_bias(dict(config.tag_bias), tuple(tag_counts)))
+    extra: dict[str, Any] = {}
+    if config.abandon_cues:
+        cues, report = train_abandon_cues(annotated)
+        features = replace(features, abandon=cues)
+        extra["abandon_cross_validation"] = report
     summary = {
         "conversations": len(annotated),
         "conversations_skipped_unannotated": len(conversations) - len(annotated),
@@ -214,8 +229,9 @@ def train_word_artifact(
             "tag_bias": dict(config.tag_bias),
             "word_classes": config.word_classes,
             "break_ahead": config.break_ahead,
+            "abandon_cues": config.abandon_cues,
         },
-        metadata={"training_data": summary, **(metadata or {})},
+        metadata={"training_data": summary, **extra, **(metadata or {})},
     )
 
 
@@ -457,3 +473,129 @@ def tune_tag_bias(
         model = WordModel.from_artifact(train_word_artifact(train, unbiased))
         trained.append((model, held_out_channels(fold_of[k], model)))
     return sweep_tag_bias(trained, candidates)
+
+
+#: Probability thresholds ``--abandon-cues`` compares by cross-validation (grid: common
+#: practice, no source).
+ABANDON_THRESHOLDS: tuple[float, ...] = (0.05, 0.1, 0.15, 0.175, 0.2, 0.225, 0.25, 0.3, 0.35,
+                                          0.4, 0.5)
+#: Held-out precision a threshold needs: revising a word to restart adds an EDITED word, which
+#: raises EDITED F1 only when at least F1 / 2 of the added words are right (EDITED F1 is about
+#: 0.75 here, so 0.375; rounded up to 0.4 for a margin).
+ABANDON_MIN_PRECISION = 0.4
+#: Regularisation of the abandoned-unit model (light L1 keeps it small; common practice,
+#: no source).
+_ABANDON_C1, _ABANDON_C2, _ABANDON_MIN_FREQ = 0.1, 1.0, 3
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class AbandonExample:
+    """One gold unit followed by its speaker's next word: features, gold flag and its words
+    that a restart would cover (fillers and editing terms keep their own label)."""
+
+    features: list[str]
+    abandoned: bool
+    words: int
+
+
+def abandon_examples(conversations: Iterable[Conversation]) -> Iterator[AbandonExample]:
+    """The units of every annotated channel that the speaker's own next word follows.
+
+    Units and the abandoned flag come from the corpus (``Utterance.abandoned``); the features
+    are those the decoder computes at a predicted end (:func:`abandon_features`).
+    """
+    classes = dict(CLOSED_CLASSES)
+    for conversation in conversations:
+        if not conversation.disfluency_annotated:
+            continue
+        abandoned = {u.words[-1] for u in conversation.utterances if u.abandoned and u.words}
+        for channel in channel_sequences(conversation):
+            assert channel.tags is not None
+            start = 0
+            n = len(channel.words)
+            other = channel.other_words or (0,) * n
+            for e in range(n - 1):
+                if not channel.ends[e]:
+                    continue
+                texts = [w.text for w in channel.words[start:e + 1]]
+                covered = sum(1 for t in channel.tags[start:e + 1]
+                              if t.removesuffix(END_SUFFIX) not in INTERREGNUM_TAGS)
+                yield AbandonExample(
+                    features=abandon_features(
+                        texts[-WHOLE_UNIT:], fragment=channel.words[e].fragment,
+                        whole=len(texts) <= WHOLE_UNIT, length=len(texts),
+                        next_text=channel.words[e + 1].text, other_words=other[e + 1],
+                        classes=classes),
+                    abandoned=channel.indices[e] in abandoned, words=covered)
+                start = e + 1
+
+
+def _fit_abandon(examples: Sequence[AbandonExample]) -> dict[str, float]:
+    def pairs() -> Iterator[tuple[Sequence[list[str]], Sequence[str]]]:
+        for example in examples:
+            yield [example.features], ["ab" if example.abandoned else "no"]
+
+    crf = train_crf_from(pairs, c1=_ABANDON_C1, c2=_ABANDON_C2, min_freq=_ABANDON_MIN_FREQ,
+                         max_iterations=200)
+    weights = CrfTagger.from_bytes(crf).weights()
+    if set(weights.labels) != {"ab", "no"}:
+        raise InputError("abandoned-unit model needs both abandoned and other units to train")
+    ab, no = weights.labels.index("ab"), weights.labels.index("no")
+    # A one-item CRF is a logistic model: the log-odds weight is the difference of the rows.
+    diff = weights.state[:, ab] - weights.state[:, no]
+    return {name: round(float(diff[row]), 5) for name, row in weights.attributes.items()
+            if abs(diff[row]) >= 1e-5}
+
+
+def train_abandon_cues(
+    conversations: Sequence[Conversation], *, folds: int = 3, seed: int = 0,
+    thresholds: Sequence[float] = ABANDON_THRESHOLDS,
+) -> tuple[AbandonCues, dict[str, Any]]:
+    """Train the abandoned-unit model on ``conversations`` and choose its threshold.
+
+    The threshold maximises held-out F1 over the words a restart decision covers, among those
+    with a held-out precision of at least :data:`ABANDON_MIN_PRECISION` (the highest
+    threshold when none reaches it), by
+    ``folds``-fold cross-validation grouped by conversation inside ``conversations`` (gold
+    units; counts pooled over folds). Returns the model trained on all of them and the
+    cross-validation report.
+
+    Raises
+    ------
+    InputError
+        No unit of ``conversations`` is abandoned.
+    """
+    examples = list(abandon_examples(conversations))
+    if not any(e.abandoned for e in examples):
+        raise InputError("no abandoned utterances in the training data (Utterance.abandoned) "
+                         "to train the abandoned-unit model on; leave out --abandon-cues")
+    fold_of = _folds(conversations, folds, None, seed)
+    counts = {t: BinaryCounts() for t in thresholds}
+    for k in range(folds):
+        train = list(itertools.chain.from_iterable(fold_of[j] for j in range(folds) if j != k))
+        fold_examples = list(abandon_examples(train))
+        # A fold with no abandoned unit to learn from judges none abandoned.
+        fold = (AbandonCues(weights=_fit_abandon(fold_examples), threshold=1.0)
+                if any(e.abandoned for e in fold_examples) else None)
+        for example in abandon_examples(fold_of[k]):
+            p = fold.probability(example.features) if fold is not None else 0.0
+            for t, tally in counts.items():
+                if p >= t and example.abandoned:
+                    tally.tp += example.words
+                elif p >= t:
+                    tally.fp += example.words
+                elif example.abandoned:
+                    tally.fn += example.words
+    allowed = [t for t in thresholds if counts[t].precision >= ABANDON_MIN_PRECISION]
+    best = max(allowed or [max(thresholds)], key=lambda t: counts[t].f1)
+    report = {
+        "folds": folds, "seed": seed,
+        "objective": "held-out F1 of the words of abandoned units (gold units, fillers and "
+                     "editing terms left out), counts pooled over folds, among thresholds "
+                     f"with held-out precision >= {ABANDON_MIN_PRECISION}",
+        "results": [{"threshold": t, "precision": round(c.precision, 4),
+                     "recall": round(c.recall, 4), "f1": round(c.f1, 4)}
+                    for t, c in counts.items()],
+        "chosen": best,
+    }
+    return AbandonCues(weights=_fit_abandon(examples), threshold=best), report

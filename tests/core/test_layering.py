@@ -45,6 +45,16 @@ WHITE_BOX_SCRIPTS: Mapping[str, frozenset[str]] = {
         "midstream.corpora._swda",
     }),
     # The server's multiplexed frame path and its collector settings, without the network.
+    # The abandoned-unit decision replayed on train folds without applying it: the decoder's
+    # private steps, recorded one by one.
+    "scripts/abandon_live_check.py": frozenset({
+        "midstream.models._artifact",
+        "midstream.models.words._abandon",
+        "midstream.models.words._decoder",
+        "midstream.models.words._model",
+        "midstream.models.words._tags",
+        "midstream.models.words._train",
+    }),
     # The multiplexed stream's frame path that bench_gc and bench_ingest drive directly.
     "scripts/_benchkit.py": frozenset({
         "midstream.server._many",

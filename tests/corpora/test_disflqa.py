@@ -13,13 +13,13 @@ from hypothesis import given
 from hypothesis import strategies as st
 from midstream import (
     REMOVED_FROM_CLEAN_TEXT,
+    Conversation,
     CorpusNotFoundError,
     DisfluencyLabel,
     Repair,
     TranscriptFormatError,
     UtteranceFunction,
 )
-from midstream._types import Conversation
 from midstream.corpora._disflqa import (
     EDIT_TERMS,
     FILLED_PAUSES,

@@ -13,13 +13,13 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 from midstream import (
+    Conversation,
     CorpusNotFoundError,
     TranscriptFormatError,
     UtteranceFunction,
     coarse_function,
     mapping_rows,
 )
-from midstream._types import Conversation
 from midstream.corpora import read_corpus
 from midstream.corpora._maptask import parse_transcript_line, read_maptask, read_moves
 

@@ -10,8 +10,13 @@ from pathlib import Path
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from midstream import TranscriptFormatError, UtteranceFunction, coarse_function, mapping_rows
-from midstream._types import Conversation
+from midstream import (
+    Conversation,
+    TranscriptFormatError,
+    UtteranceFunction,
+    coarse_function,
+    mapping_rows,
+)
 from midstream.corpora._mrda import (
     DECIDING_TAGS,
     DadbSegment,

@@ -10,8 +10,7 @@ from __future__ import annotations
 from dataclasses import replace
 
 import pytest
-from midstream import Conversation, Utterance, UtteranceFunction, Word
-from midstream._errors import ModelError
+from midstream import Conversation, ModelError, Utterance, UtteranceFunction, Word
 from midstream.models._artifact import ModelArtifact
 from midstream.models.boundaries._model import (
     BoundaryModel,

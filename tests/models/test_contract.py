@@ -17,8 +17,7 @@ import pytest
 from function_kit import tiny_model as tiny_function_model
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from midstream import Conversation, Utterance, UtteranceFunction, Word
-from midstream._errors import EventError
+from midstream import Conversation, EventError, Utterance, UtteranceFunction, Word
 from midstream.models._artifact import ModelArtifact
 from midstream.models.boundaries._model import BoundaryModel, overlap_flags
 from midstream.models.functions._tagger import FunctionTagger, clean_view

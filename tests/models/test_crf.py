@@ -5,7 +5,7 @@ from __future__ import annotations
 import struct
 
 import pytest
-from midstream._errors import InputError, ModelError
+from midstream import InputError, ModelError
 from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
 from midstream.models._crf import CrfTagger, shift_state_weights, train_crf
 

@@ -7,8 +7,7 @@ import itertools
 
 import numpy as np
 import pytest
-from midstream import DisfluencyLabel, Word
-from midstream._errors import EventError, ModelError
+from midstream import DisfluencyLabel, EventError, ModelError, Word
 from midstream.models._artifact import ModelArtifact
 from midstream.models._lattice import decode_lattice, decode_window
 from midstream.models.words._decoder import ChannelDecoder, DecoderConfig, TokenState

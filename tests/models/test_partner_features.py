@@ -9,8 +9,7 @@ import pytest
 from function_kit import invented_corpus
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from midstream import Conversation
-from midstream._errors import InputError
+from midstream import Conversation, InputError
 from midstream.models.functions._tagger import (
     MAX_FEATURE_WORDS,
     PARTNER_LOOKBACK,

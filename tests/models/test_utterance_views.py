@@ -11,8 +11,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
-from midstream import DisfluencyLabel, Word
-from midstream._types import Conversation, Utterance, UtteranceHypothesis
+from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceHypothesis, Word
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
 from midstream.models.functions._tagger import conversation_views

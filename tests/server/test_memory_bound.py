@@ -13,7 +13,7 @@ import gc
 import tracemalloc
 from collections import OrderedDict
 
-from midstream._types import Word
+from midstream import Word
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics

@@ -18,7 +18,7 @@ from typing import Any
 
 import pytest
 from client_kit import REPO, Served, models_dir, served
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.client.bench._load import (
     MAX_FRAME_EVENTS,
     LoadConfig,

@@ -6,7 +6,7 @@ import math
 import re
 
 import pytest
-from midstream._errors import InputError
+from midstream import InputError
 from midstream.client.bench._scrape import (
     LOOP_LAG_METRIC,
     Histogram,

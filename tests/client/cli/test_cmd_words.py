@@ -13,7 +13,7 @@ from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
 from midstream.models.words._model import WordModel
 from midstream.models.words._train import RESTART_BIAS_CANDIDATES, BiasResult
-from word_kit import invented_conversation
+from word_kit import invented_abandoning, invented_conversation
 
 
 @pytest.fixture
@@ -152,3 +152,26 @@ def test_the_restart_bias_never_trades_away_the_other_figures() -> None:
     fair = result(0.05, 0.75 - RESTART_GUARD / 2, 0.70, 0.83)
     assert choose_restart_bias([reference, *costly, fair]) is fair
     assert choose_restart_bias([reference, *costly]) is reference
+
+
+def test_abandon_cues_are_trained_into_the_model_and_named_in_its_command(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = tmp_path / "abandoning.jsonl"
+    with path.open("w", encoding="utf-8") as stream:
+        write_jsonl([invented_abandoning(seed) for seed in range(6)], stream)
+    out = tmp_path / "words.tagger"
+    assert main(["train", "words", str(path), "--min-freq", "1", "--max-iterations", "30",
+                 "--abandon-cues", "--out", str(out)]) == 0
+    artifact = load_artifact(out, expected_kind="words")
+    assert "--abandon-cues" in artifact.metadata["created_by"]
+    report = artifact.metadata["abandon_cross_validation"]
+    cues = WordModel.from_artifact(artifact).config.abandon
+    assert cues is not None and cues.threshold == report["chosen"]
+
+
+def test_abandon_cues_without_abandoned_units_is_a_clear_error(
+        transcripts: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    code = main(["train", "words", str(transcripts), "--min-freq", "1", "--max-iterations", "20",
+                 "--abandon-cues", "--out", str(tmp_path / "words.tagger")])
+    assert code == 1
+    assert "no abandoned utterances" in capsys.readouterr().err
