@@ -425,32 +425,6 @@ def iter_views(conversations: Iterable[Conversation]) -> Iterator[list[Utterance
         yield conversation_views(conversation)
 
 
-class _FeatureCache:
-    """A small LRU of feature dictionaries keyed by (previous view, earlier partner, view).
-
-    Context utterances are final, so their features are computed once and reused for every word
-    of the next utterance. Bounded: a long session never grows it past ``size`` entries.
-    """
-
-    def __init__(self, size: int) -> None:
-        self._size = size
-        self._items: OrderedDict[tuple[UtteranceView | None, UtteranceView | None,
-                                       UtteranceView], Features] = OrderedDict()
-
-    def get(self, previous: UtteranceView | None, view: UtteranceView,
-            config: FunctionFeatureConfig, partner: UtteranceView | None = None) -> Features:
-        key = (previous, partner, view)
-        feats = self._items.get(key)
-        if feats is not None:
-            self._items.move_to_end(key)
-            return feats
-        feats = utterance_features(view, previous, config, partner=partner)
-        self._items[key] = feats
-        if len(self._items) > self._size:
-            self._items.popitem(last=False)
-        return feats
-
-
 _K = TypeVar("_K", bound=Hashable)
 _V = TypeVar("_V")
 
@@ -729,7 +703,10 @@ class FunctionTagger:
         self._lookback = config.lookback and config.partner
         self._words: _Lru[tuple[str, ...], _Words] = _Lru(NGRAM_CACHE_SIZE)
         # Only the crfsuite path (overflow fallback, tests, benchmark baseline) uses this one.
-        self._feature_cache = _FeatureCache(size=8 * (context + 2))
+        # Features of final context utterances, keyed by (previous view, earlier partner,
+        # view): computed once and reused for every word of the next utterance.
+        self._context_features: _Lru[tuple[UtteranceView | None, UtteranceView | None,
+                                           UtteranceView], Features] = _Lru(8 * (context + 2))
 
     @classmethod
     def from_artifact(cls, artifact: ModelArtifact, *, context: int = DEFAULT_CONTEXT,
@@ -1305,7 +1282,12 @@ class FunctionTagger:
         xseq: list[Features] = []
         previous: UtteranceView | None = None
         for view, partner in zip(window, self._partners(window), strict=True):
-            xseq.append(self._feature_cache.get(previous, view, self._config, partner))
+            key = (previous, partner, view)
+            feats = self._context_features.get(key)
+            if feats is None:
+                feats = utterance_features(view, previous, self._config, partner=partner)
+                self._context_features.put(key, feats)
+            xseq.append(feats)
             previous = view
         xseq.append(utterance_features(current, previous, self._config,
                                        partner=self._partner_in(window, current.speaker)))
