@@ -57,7 +57,7 @@ RUNS: dict[str, tuple[str, ...]] = {
     # The word model alone (no boundary model) on each corpus, as its card compares them.
     **{f"{corpus}-val-words-alone": ("midstream", "evaluate", _corpus(corpus), "--split", "val",
                                      "--no-boundary", "--words-only", "--json")
-       for corpus in ("mrda", "maptask", "disflqa")},
+       for corpus in ("mrda", "maptask", "disfl_qa")},
     # The SwDA 42-class model alone (its coarse function from summed fine marginals), as its
     # card reports it: in its own corpus and in the two others.
     **{f"{corpus}-val-swbd42": ("midstream", "evaluate", _corpus(corpus), "--split", "val",
