@@ -29,7 +29,7 @@ from typing import Any
 from midstream import DisfluencyLabel
 from midstream.corpora import read_corpus
 from midstream.models._artifact import load_artifact
-from midstream.models.words._abandon import WHOLE_UNIT, AbandonCues, abandon_features
+from midstream.models.words._abandon import AbandonCues
 from midstream.models.words._decoder import ChannelDecoder
 from midstream.models.words._model import WordModel
 from midstream.models.words._tags import channel_sequences, decode_tag
@@ -41,27 +41,11 @@ Record = tuple[str, float, float, list[int]]
 def _recorder(records: list[Record], channel: list[str]) -> Any:
     def judge(self: Any, lo: int, start: int, path: list[int],
               end_probability: list[float]) -> bool:
-        entries, tag_ends = self._entries, self._model.tag_ends
-        end = -1
-        for i in range(len(entries) - 2, start - 1, -1):
-            if tag_ends[path[i - lo]]:
-                end = i
-                break
-        if end < 0 or entries[end].judged:
+        unit = self.next_unit(lo, start, path)
+        if unit is None:
             return False
-        entries[end].judged = True
-        first = end
-        while first > 0 and not tag_ends[path[first - 1 - lo] if first - 1 >= lo
-                                          else entries[first - 1].tag]:
-            first -= 1
-        tokens = self._tokens
-        following = tokens[end + 1]
-        features = abandon_features(
-            [t.text for t in tokens[max(first, end - WHOLE_UNIT + 1):end + 1]],
-            fragment=tokens[end].fragment, whole=first > 0 or not self._trimmed,
-            length=end - first + 1, next_text=following.text,
-            other_words=following.other_words if following.after_other_speaker else 0,
-            classes=self._classes)
+        first, end, features = unit
+        entries = self._entries
         keys = [entries[i].key for i in range(max(first, start), end + 1)
                 if not self._keeps_label[path[i - lo]]]
         records.append((channel[0], self._abandon.probability(features),

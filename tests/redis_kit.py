@@ -8,6 +8,7 @@ persistence does. When ``redis-server`` is not installed these tests fail under 
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import shutil
 import socket
@@ -19,6 +20,11 @@ from pathlib import Path
 import pytest
 from midstream.client.cli._demo_script import UTTERANCES
 from midstream.wire import midstream_pb2 as pb
+from server_kit import TEST_LIMITS
+
+#: Limits for callers that pause between steps (waiting for the log, for Redis to go and come
+#: back) longer than the server kit's one-second idle timeout may allow on a loaded machine.
+LIMITS = dataclasses.replace(TEST_LIMITS, idle_timeout_s=30.0)
 
 #: Seconds a redis-server may take to answer its first PING.
 _START_TIMEOUT_S = 10.0

@@ -431,36 +431,15 @@ class ChannelDecoder:
                end_probability: list[float]) -> bool:
         """Judge the newest unjudged utterance end the path predicts among the open words.
 
-        Only an end with a word after it counts (the speaker's fresh start); each is judged
-        once. When the unit before it was abandoned, restart evidence joins its open words'
-        scores and the caller re-decodes. Returns whether any score changed.
+        When the unit before it was abandoned, restart evidence joins its open words' scores
+        and the caller re-decodes. Returns whether any score changed.
         """
         cues = self._abandon
         assert cues is not None
-        entries = self._entries
-        tag_ends = self._model.tag_ends
-        end = -1
-        for i in range(len(entries) - 2, start - 1, -1):
-            if tag_ends[path[i - lo]]:
-                end = i
-                break
-        if end < 0 or entries[end].judged:
+        unit = self.next_unit(lo, start, path)
+        if unit is None:
             return False
-        entries[end].judged = True
-        first = end
-        while first > 0 and not tag_ends[path[first - 1 - lo] if first - 1 >= lo
-                                          else entries[first - 1].tag]:
-            first -= 1
-        tokens = self._tokens
-        length = end - first + 1
-        whole = first > 0 or not self._trimmed
-        texts = [t.text for t in tokens[max(first, end - WHOLE_UNIT + 1) : end + 1]]
-        following = tokens[end + 1]
-        features = abandon_features(
-            texts, fragment=tokens[end].fragment, whole=whole, length=length,
-            next_text=following.text,
-            other_words=following.other_words if following.after_other_speaker else 0,
-            classes=self._classes)
+        first, end, features = unit
         if cues.probability(features) < cues.threshold:
             return False
         keeps = self._keeps_label
@@ -471,6 +450,38 @@ class ChannelDecoder:
                 self._scores[i, columns] += ABANDON_EVIDENCE
                 changed = True
         return changed
+
+    def next_unit(self, lo: int, start: int,
+                  path: list[int]) -> tuple[int, int, list[str]] | None:
+        """The newest unjudged unit the path ends among the open words, marked judged.
+
+        Only an end with a word after it counts (the speaker's fresh start); each is judged
+        once. Returns the unit's first and last positions and its abandoned-unit features, or
+        ``None`` when there is none to judge.
+        """
+        entries = self._entries
+        tag_ends = self._model.tag_ends
+        end = -1
+        for i in range(len(entries) - 2, start - 1, -1):
+            if tag_ends[path[i - lo]]:
+                end = i
+                break
+        if end < 0 or entries[end].judged:
+            return None
+        entries[end].judged = True
+        first = end
+        while first > 0 and not tag_ends[path[first - 1 - lo] if first - 1 >= lo
+                                          else entries[first - 1].tag]:
+            first -= 1
+        tokens = self._tokens
+        following = tokens[end + 1]
+        features = abandon_features(
+            [t.text for t in tokens[max(first, end - WHOLE_UNIT + 1) : end + 1]],
+            fragment=tokens[end].fragment, whole=first > 0 or not self._trimmed,
+            length=end - first + 1, next_text=following.text,
+            other_words=following.other_words if following.after_other_speaker else 0,
+            classes=self._classes)
+        return first, end, features
 
     def _links(self, window: list[_Entry], path: list[int]) -> list[int | None]:
         """For each window position, the key of the repair onset its reparandum word links to.

@@ -8,15 +8,13 @@ conversations' ids are chosen so that they fall on more than one node.
 from __future__ import annotations
 
 import asyncio
-import dataclasses
 
 import pytest
 from midstream.server import SharedLogConfig
 from midstream.wire import midstream_pb2 as pb
 from redis.asyncio.cluster import RedisCluster as ClusterClient
-from redis_kit import RedisCluster, call_words, gaps_told, redis_cluster_fixture
+from redis_kit import LIMITS, RedisCluster, call_words, gaps_told, redis_cluster_fixture
 from server_kit import (
-    TEST_LIMITS,
     Caller,
     ServerFactory,
     bundle_fixture,
@@ -25,8 +23,6 @@ from server_kit import (
     start_server_fixture,
     words_event,
 )
-
-LIMITS = dataclasses.replace(TEST_LIMITS, idle_timeout_s=30.0)
 
 __all__ = ["bundle_fixture", "models_dir_fixture", "redis_cluster_fixture",
            "start_server_fixture"]

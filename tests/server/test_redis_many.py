@@ -12,10 +12,9 @@ import dataclasses
 import grpc
 from midstream.server import SharedLogConfig
 from midstream.wire import midstream_pb2 as pb
-from redis_kit import RedisProcess, call_words, comparable, gaps_told, redis_server_fixture
+from redis_kit import LIMITS, RedisProcess, call_words, comparable, gaps_told, redis_server_fixture
 from server_kit import (
     CLOSE,
-    TEST_LIMITS,
     Caller,
     Running,
     ServerFactory,
@@ -25,10 +24,6 @@ from server_kit import (
     start_server_fixture,
     words_event,
 )
-
-#: The callers wait for the log between steps, longer than the kit's one-second idle timeout
-#: may allow on a loaded machine.
-LIMITS = dataclasses.replace(TEST_LIMITS, idle_timeout_s=30.0)
 
 __all__ = ["bundle_fixture", "models_dir_fixture", "redis_server_fixture",
            "start_server_fixture"]

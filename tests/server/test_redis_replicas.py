@@ -7,7 +7,6 @@ The processes-and-SIGKILL cases are in ``test_redis_failover.py``.
 from __future__ import annotations
 
 import asyncio
-import dataclasses
 
 import grpc
 import pytest
@@ -17,9 +16,8 @@ from midstream.client import AddWord, Client
 from midstream.server import SharedLogConfig
 from midstream.server._journal import SHARED_LOG_HEALTH
 from midstream.wire import midstream_pb2 as pb
-from redis_kit import RedisProcess, call_words, gaps_told, redis_server_fixture
+from redis_kit import LIMITS, RedisProcess, call_words, gaps_told, redis_server_fixture
 from server_kit import (
-    TEST_LIMITS,
     Caller,
     ServerFactory,
     bundle_fixture,
@@ -28,10 +26,6 @@ from server_kit import (
     start_server_fixture,
     words_event,
 )
-
-#: Callers here pause between steps (waiting for the log, for Redis to go and come back)
-#: longer than the server kit's one-second idle timeout may allow on a loaded machine.
-LIMITS = dataclasses.replace(TEST_LIMITS, idle_timeout_s=30.0)
 
 __all__ = ["bundle_fixture", "models_dir_fixture", "redis_server_fixture",
            "start_server_fixture"]
