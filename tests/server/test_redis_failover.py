@@ -199,6 +199,24 @@ async def test_kill_9_of_the_ingesting_replica_loses_and_repeats_no_word(
     assert await _logged(redis_server.url, "call-2") == final.seq
 
 
+async def _ingest(port: int, conversation_id: str, words: list[pb.SpokenWord]) -> None:
+    """Tag ``words`` as one conversation over a connection of its own."""
+    async with grpc.aio.insecure_channel(
+            f"127.0.0.1:{port}", options=[("grpc.use_local_subchannel_pool", 1)]) as channel:
+        stub = pb_grpc.MidstreamStub(channel)  # type: ignore[no-untyped-call]
+        call = stub.Feed()
+        await call.write(pb.ClientEvent(open=pb.OpenConversation(
+            conversation_id=conversation_id)))
+        await call.read()
+        for word in words:
+            await call.write(words_event(word))
+            await call.read()
+        await call.write(pb.ClientEvent(close=pb.CloseConversation()))
+        await call.done_writing()
+        await call.read()
+        await call.read()
+
+
 async def test_workers_share_one_port_and_one_log(models_dir: Path,
                                                   redis_server: RedisProcess) -> None:
     process = subprocess.Popen(
@@ -212,34 +230,24 @@ async def test_workers_share_one_port_and_one_log(models_dir: Path,
         port = int(line.split()[2].rsplit(":", 1)[1])
         words = call_words()[:5]
         ids: list[str] = []
+        owners: set[bytes | str | None] = set()
         # Separate connections (channels share connections unless told not to): the kernel
-        # spreads them over the workers.
-        for index in range(12):
-            async with grpc.aio.insecure_channel(
-                    f"127.0.0.1:{port}",
-                    options=[("grpc.use_local_subchannel_pool", 1)]) as channel:
-                stub = pb_grpc.MidstreamStub(channel)  # type: ignore[no-untyped-call]
-                call = stub.Feed()
-                await call.write(pb.ClientEvent(open=pb.OpenConversation(
-                    conversation_id=f"w-{index}")))
-                await call.read()
-                for word in words:
-                    await call.write(words_event(word))
-                    await call.read()
-                await call.write(pb.ClientEvent(close=pb.CloseConversation()))
-                await call.done_writing()
-                await call.read()
-                await call.read()
-                ids.append(f"w-{index}")
+        # spreads them over the workers by a hash of each connection's addresses, so keep
+        # opening until both have ingested some; 40 all on one worker is a 1 in 2**39 chance.
         client = aioredis.Redis.from_url(redis_server.url)
         try:
-            async with asyncio.timeout(10):  # the last conversations' writes may be in flight
-                while None in (owners := {await client.hget(f"midstream:{{{i}}}:m", "owner")
-                                          for i in ids}):
-                    await asyncio.sleep(0.05)
+            while len(owners) < 2 and len(ids) < 40:
+                batch = [f"w-{index}" for index in range(len(ids), len(ids) + 8)]
+                for conversation_id in batch:
+                    await _ingest(port, conversation_id, words)
+                ids.extend(batch)
+                async with asyncio.timeout(10):  # the last conversations' writes may be in flight
+                    while None in (owners := {await client.hget(f"midstream:{{{i}}}:m", "owner")
+                                              for i in ids}):
+                        await asyncio.sleep(0.05)
         finally:
             await client.aclose()
-        assert len(owners) == 2  # both workers ingested some (a 1 in 2,048 chance otherwise)
+        assert len(owners) == 2, f"one worker ingested all {len(ids)} conversations: {owners}"
         # Any connection (so either worker) follows every conversation to its end.
         async with grpc.aio.insecure_channel(f"127.0.0.1:{port}") as channel:
             stub = pb_grpc.MidstreamStub(channel)  # type: ignore[no-untyped-call]
