@@ -40,6 +40,11 @@ WHITE_BOX_SCRIPTS: Mapping[str, frozenset[str]] = {
         "midstream.models.functions._tagger",
         "midstream.models.functions._views",
     }),
+    # The function tagger's inference paths against one another.
+    "scripts/measure_function_paths.py": frozenset({
+        "midstream.models.functions._tagger",
+        "midstream.models.functions._views",
+    }),
     # The SwDA reader against a baseline that reads the same files without parsing them.
     "scripts/bench_read.py": frozenset({
         "midstream.corpora._swda",
