@@ -34,8 +34,8 @@ from pathlib import Path
 from midstream import Conversation
 from midstream.corpora import read_corpus
 from midstream.models import FunctionTagger, ModelBundle
-from midstream.models.functions._tagger import clean_view, utterance_features
-from midstream.models.functions._views import UtteranceView
+from midstream.models.functions._features import utterance_features
+from midstream.models.functions._views import UtteranceView, clean_view
 from midstream.models.training import load_artifact
 
 REPO = Path(__file__).resolve().parent.parent
