@@ -179,7 +179,7 @@ def main() -> int:
     print(f"model: {args.model.name} ({args.model.stat().st_size / 1e6:.1f} MB), "
           f"load {load_seconds:.3f} s")
     print(f"calls (one per received word): {len(calls)} x {args.rounds} rounds")
-    print(line("label_partial (numpy forward step, cached context)", new))
+    print(line("label_partial (compiled forward step, cached context)", new))
     firsts = [c for c, first in zip(new, opening * args.rounds, strict=True) if first]
     others = [c for c, first in zip(new, opening * args.rounds, strict=True) if not first]
     print(f"  of which the first word of an utterance (new context window): median "
