@@ -12,10 +12,9 @@ reference: the tests hold the fast path to it within :data:`TOLERANCE`, and a ch
 ``exp`` would overflow (state scores past 709, which no regularised model reaches) is handed to
 it, so even then the answer is its own.
 
-Why one compiled path rather than numpy as well: ``scripts/measure_function_paths.py`` (at the
-commit that added it, when both paths and a probe of the C library's ``exp`` choosing between
-them still existed) labelled SwDA val prefixes 3.1 times as fast as crfsuite with the kernel
-and 2.5 times with numpy; the model cards give the figures.
+Why one compiled path and no numpy one beside it: the kernels label faster in the source and
+the compiled build alike, and a second path would have to be held to the reference too
+(``models/weights/functions.md``, "Inference", gives the measurement).
 """
 
 from __future__ import annotations
