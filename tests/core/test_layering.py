@@ -37,7 +37,7 @@ WHITE_BOX_SCRIPTS: Mapping[str, frozenset[str]] = {
     }),
     # The function tagger's feature extraction and views, timed apart from decoding.
     "scripts/bench_functions.py": frozenset({
-        "midstream.models.functions._tagger",
+        "midstream.models.functions._features",
         "midstream.models.functions._views",
     }),
     # The SwDA reader against a baseline that reads the same files without parsing them.
