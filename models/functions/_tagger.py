@@ -11,10 +11,10 @@ them to model rows (cached) and hands the rows to :mod:`~midstream.models.functi
 
 from __future__ import annotations
 
+import os
 from collections import OrderedDict
 from collections.abc import Hashable, Mapping, Sequence
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Generic, NamedTuple, TypeVar
 
 from midstream import (
@@ -331,7 +331,8 @@ class FunctionTagger:
             raise ModelError(f"function model labels do not fit scheme {scheme!r}: {exc}") from exc
 
     @classmethod
-    def load(cls, path: Path, *, context: int = DEFAULT_CONTEXT) -> FunctionTagger:
+    def load(cls, path: str | os.PathLike[str], *,
+             context: int = DEFAULT_CONTEXT) -> FunctionTagger:
         """Read a ``.tagger`` file and build a tagger (raises NotFoundError or ModelError)."""
         return cls.from_artifact(load_artifact(path, expected_kind="utterance_functions"),
                                  context=context)
