@@ -11,7 +11,10 @@ after the CRF could move them to ``restart``:
    abandoned-unit cues) reads the span, the words after it and the CRF's own marginals, and a
    span judged a restart has its words revised from ``reparandum`` to ``restart``;
 4. the abandoned-unit judge trained on the utterance ends the held-out CRF predicts (not on
-   gold units), revising a judged unit's last ``--open`` words as the live decoder can.
+   gold units), revising a judged unit's last ``--open`` words as the live decoder can;
+5. a word-level judge of the words the CRF calls fluent, with a bigram-rarity cue: how often
+   the word was followed by the next one in the training conversations outside the held-out
+   fold (a restart breaks the phrase off, so the pair should be rare).
 
 Fold CRFs are trained with the shipped model's settings (its recorded hyper-parameters and
 feature configuration) on a seeded subset of the training split, dealt as
@@ -33,6 +36,7 @@ from __future__ import annotations
 
 import argparse
 import itertools
+import math
 import os
 from collections import Counter, defaultdict
 from collections.abc import Iterator, Sequence
@@ -239,6 +243,35 @@ def unit_examples(channel: Held, c: int, open_words: int) -> Iterator[Example]:
         start = e + 1
 
 
+def word_examples(channel: Held, c: int, *, unigrams: Counter[str],
+                  bigrams: Counter[tuple[str, str]], restart_columns: list[int],
+                  edited_columns: list[int]) -> Iterator[Example]:
+    """One example per word the CRF tags fluent with no end after it; gold: a restart word."""
+    texts, p = channel.texts, channel.predicted
+    classes = CLOSED_CLASSES
+
+    def log_bucket(count: int) -> str:
+        return str(min(int(math.log2(count + 1)), 12))
+
+    for i in range(len(texts) - 1):
+        if p[i] != "fl" or channel.predicted_end[i]:
+            continue
+        word, following = texts[i], texts[i + 1]
+        seen, pair = unigrams[word], bigrams[word, following]
+        start = i == 0 or channel.predicted_end[i - 1]
+        f = ["b", "w=" + word, "n=" + following, "bc=" + log_bucket(pair),
+             "cond=" + _bucket(5 * pair / seen if seen else 0.0),
+             "wc=" + classes.get(word, "-") + "|" + log_bucket(pair), f"st={start}",
+             f"stw={start}|{word}",
+             "cn=" + classes.get(word, "-") + "|" + classes.get(following, "-"),
+             "prs=" + _bucket(2 * float(channel.marginals[i, restart_columns].sum())),
+             "ped=" + _bucket(2 * float(channel.marginals[i, edited_columns].sum())),
+             "np=" + p[i + 1]]
+        if channel.fragment[i]:
+            f.append("frag")
+        yield c, f, channel.gold[i].startswith("rs"), [i]
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--model", type=Path, default=default_words_model_path(),
@@ -307,6 +340,24 @@ def main() -> None:
     _judged(folds, [[x for c, h in enumerate(f) for x in unit_examples(h, c, args.open)]
                     for f in folds],
             f"abandoned-unit judge on predicted ends (last {args.open} words revisable)")
+
+    held_ids = [{c.id for c in fold} for fold in fold_of]
+    unigrams: list[Counter[str]] = [Counter() for _ in fold_of]
+    bigrams: list[Counter[tuple[str, str]]] = [Counter() for _ in fold_of]
+    for conversation in conversations:
+        for sequence in channel_sequences(conversation):
+            texts = [w.text for w in sequence.words]
+            for k, ids in enumerate(held_ids):
+                if conversation.id not in ids:
+                    unigrams[k].update(texts)
+                    bigrams[k].update(itertools.pairwise(texts))
+    edited_columns = restart_columns + reparandum_columns
+    _judged(folds, [[x for c, h in enumerate(f)
+                     for x in word_examples(h, c, unigrams=unigrams[k], bigrams=bigrams[k],
+                                            restart_columns=restart_columns,
+                                            edited_columns=edited_columns)]
+                    for k, f in enumerate(folds)],
+            "word-level judge of fluent-tagged words with bigram rarity")
 
 
 if __name__ == "__main__":

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import importlib.util
 import sys
+from collections import Counter
 from pathlib import Path
 from types import ModuleType
 
@@ -78,3 +79,19 @@ def test_scores_count_restart_words_and_edited_words_as_the_evaluation_does() ->
     assert edited == before[1] == "0.2857 (1.000 / 0.167)"
     assert reparandum == "0.0000 (0.000 / 0.000)"
     assert before[2] == "0.0000 (0.000 / 0.000)"
+
+
+def test_fluent_words_are_judged_with_how_often_their_pair_was_seen() -> None:
+    script = _script()
+    unigrams = Counter({"was": 8, "going": 4})
+    bigrams = Counter({("was", "going"): 4})
+    examples = list(script.word_examples(_channel(script), 0, unigrams=unigrams,
+                                         bigrams=bigrams, restart_columns=[0],
+                                         edited_columns=[0, 1]))
+    judged = {words[0]: (gold, set(features)) for _, features, gold, words in examples}
+    # Not judged: the reparandum "i", the filler, and the words an utterance end follows.
+    assert sorted(judged) == [0, 3, 4, 5, 7, 8, 9, 10, 12]
+    assert [i for i, (gold, _) in judged.items() if gold] == [7, 8, 9, 10]
+    # "was going": seen 4 times, after half of the "was" (0.2 and more is the top bucket).
+    assert {"bc=2", "cond=9"} <= judged[9][1]
+    assert "bc=0" in judged[10][1]  # "going to": never seen here
