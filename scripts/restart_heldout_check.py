@@ -28,8 +28,8 @@ Usage::
     MIDSTREAM_CORPORA=../shared/corpora python scripts/restart_heldout_check.py \\
         [--fold-dir build/restart_folds]
 
-The fold models are kept in ``--fold-dir`` and reused when present (about 7 minutes each to
-train on a quiet machine, 3 of them).
+The fold models are kept in ``--fold-dir`` and reused when present (3 of them, about 7 minutes
+of CRF training each on the shared two-core machine).
 """
 
 from __future__ import annotations
