@@ -55,6 +55,18 @@ WHITE_BOX_SCRIPTS: Mapping[str, frozenset[str]] = {
         "midstream.models.words._tags",
         "midstream.models.words._train",
     }),
+    # Second-stage restart decisions measured on held-out train folds: fold CRFs decoded
+    # offline with their lattice, judges fitted like the abandoned-unit cues.
+    "scripts/restart_heldout_check.py": frozenset({
+        "midstream.models._artifact",
+        "midstream.models._lattice",
+        "midstream.models.words._abandon",
+        "midstream.models.words._classes",
+        "midstream.models.words._features",
+        "midstream.models.words._model",
+        "midstream.models.words._tags",
+        "midstream.models.words._train",
+    }),
     # The multiplexed stream's frame path that bench_gc and bench_ingest drive directly.
     "scripts/_benchkit.py": frozenset({
         "midstream.server._many",
