@@ -104,8 +104,11 @@ _SMOKE = {"conversations": 4, "seconds": 2.0, "ramp": 0.2, "channels": 1}
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    # No abbreviated options: argparse matches abbreviations of this parser's options against
+    # a benchmark's own before handing them on ('soak --serve' read as an ambiguous '--server').
     parser = subparsers.add_parser(
-        "bench", help="load a server with concurrent conversations and measure latency",
+        "bench", allow_abbrev=False,
+        help="load a server with concurrent conversations and measure latency",
         description="Stream corpus words over N concurrent conversations at a fixed rate and "
                     "report words/s, word-to-hypothesis latency percentiles, errors by status "
                     "and (local servers) CPU and memory per conversation.")
