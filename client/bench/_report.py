@@ -489,7 +489,8 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         *_engine_section(engine_text),
         "## Benchmark your own deployment",
         "",
-        "`midstream bench` is the same load generator as a command. Point it at any server; "
+        "`midstream bench` without a subcommand is the load generator the service tables "
+        "use. Point it at any server; "
         "give `--server-pid` when the server runs on the same host to get its CPU and memory, "
         "`--server-metrics URL` (its `midstream serve --metrics-port` page, any host) to get how "
         "late its event loop ran, or `--spawn` to start a local `midstream serve` for the run "
