@@ -50,6 +50,7 @@ from midstream import (
     SpeakerHint,
 )
 from midstream.client import Client, ConversationStream, Ended, Welcome
+from midstream.client._results import ServerEvent
 from midstream.client.bench._kit import corpora_root
 from midstream.corpora import read_corpus
 from midstream.server import run_server_loop
@@ -63,7 +64,7 @@ SHORT_RSS_TOLERANCE = 0.25
 READ_TIMEOUT_S = 60.0
 
 #: What a caller's stream and a follower yield, as the client library types them.
-Event = object
+Event = ServerEvent
 
 
 # --- the server side (child process) ---------------------------------------------------------
