@@ -8,6 +8,7 @@ word sent got a hypothesis, no errors); they never assert on timings.
 from __future__ import annotations
 
 import asyncio
+import doctest
 import json
 import math
 import os
@@ -19,6 +20,7 @@ from typing import Any
 import pytest
 from client_kit import Served, models_dir, served
 from midstream import InputError
+from midstream.client.bench import _kit
 from midstream.client.bench._load import (
     MAX_FRAME_EVENTS,
     LoadConfig,
@@ -595,3 +597,9 @@ def test_every_benchmark_is_a_subcommand_with_smoke_and_json() -> None:
         assert "--smoke" in options, name
         # soak prints its checks; report writes the page (--out)
         assert name in {"soak", "report"} or "--json" in options, name
+
+
+def test_kit_examples_run() -> None:
+    # Paired's examples are its documentation: they must hold.
+    result = doctest.testmod(_kit)
+    assert result.attempted > 0 and result.failed == 0
