@@ -21,6 +21,8 @@ PER_WORD_MODULES: tuple[str, ...] = (
     "midstream.models._engine",
     "midstream.models.words._decoder",
     "midstream.models.words._features",
+    "midstream.models.functions._features",
+    "midstream.models.functions._inference",
     "midstream.models.functions._tagger",
     "midstream.server._ingest",
     "midstream.server._kept",

@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import struct
 import zlib
 from collections.abc import Mapping
@@ -177,8 +178,9 @@ def save_artifact(artifact: ModelArtifact, path: Path) -> None:
     tmp.replace(path)
 
 
-def load_artifact(path: Path, *, expected_kind: ModelKind | None = None) -> ModelArtifact:
-    """Read and check a ``.tagger`` file.
+def load_artifact(path: str | os.PathLike[str], *,
+                  expected_kind: ModelKind | None = None) -> ModelArtifact:
+    """Read and check a ``.tagger`` file (``path`` as a string or a path).
 
     Raises
     ------
@@ -188,6 +190,7 @@ def load_artifact(path: Path, *, expected_kind: ModelKind | None = None) -> Mode
         The file is not a valid model of the expected kind.
     """
 
+    path = Path(path)
     try:
         data = path.read_bytes()
     except FileNotFoundError as exc:

@@ -8,8 +8,9 @@ same arithmetic in a few microseconds. Work is done in probability space, normal
 position, so lattices of any length neither overflow nor underflow.
 
 :func:`chain_end_step` is the utterance-function tagger's per-word step (state scores, forward
-and Viterbi at the last position of a chain, marginals): crfsuite's operations in crfsuite's
-order, so its results are crfsuite's bits, where numpy's calls cost several times as much.
+and Viterbi at the last position of a chain, marginals) and :func:`chain_carry` its recursions
+over the context: crfsuite's operations in crfsuite's order, held to crfsuite within a stated
+tolerance (``models/functions/_inference.py``).
 
 This is the one module that uses numba. Kernels are compiled on first use and cached on disk
 in the user's cache folder (:func:`kernel_cache_dir`); :func:`warm_up` does that ahead of time
@@ -38,7 +39,6 @@ __all__ = [
     "chain_end_step",
     "decode_lattice",
     "decode_window",
-    "exp_into",
     "kernel_cache_dir",
     "warm_up",
 ]
@@ -271,24 +271,21 @@ def _sum_rows(state: Any, rows: Any, start: int, stop: int,
 
 # crfsuite's arithmetic at the last position of a chain, for the utterance-function tagger. Every
 # operation is crfsuite's, in its order: state scores summed attribute row by attribute row,
-# the C library's exp (numba calls it; no fast-math, so nothing is reassociated or fused),
-# vector sums left to right, scaling by multiplying with 1 / sum. The caller checks once that
-# this exp gives the C library's bits (:func:`exp_into`), so the results are crfsuite's.
+# exp (numba's, the C library's unless numba brings a vector library; no fast-math, so nothing
+# is reassociated or fused), vector sums left to right, scaling by multiplying with 1 / sum.
 @_jit
 def _chain_end_step(  # noqa: PLR0917
     state: Any, rows: Any, carry_forward: Any, carry_best: Any, group_of: Any,
         groups: Any, sums: Any, out: Any) -> Any:  # pragma: no cover
     size = state.shape[1]
     scores = out[0]
-    exps = out[1]
+    viterbi = out[1]
     probs = out[2]
     _sum_rows(state, rows, 0, rows.shape[0], scores)
-    for j in range(size):
-        exps[j] = math.exp(scores[j])
     chained = carry_forward.shape[0] == size
     # probs holds the unscaled forward vector until the scale is known.
     for j in range(size):
-        probs[j] = carry_forward[j] * exps[j] if chained else exps[j]
+        probs[j] = carry_forward[j] * math.exp(scores[j]) if chained else math.exp(scores[j])
     total = probs[0]
     for j in range(1, size):
         total += probs[j]
@@ -302,6 +299,7 @@ def _chain_end_step(  # noqa: PLR0917
         p *= scale
         probs[j] = p / scale
         value = carry_best[j] + scores[j] if chained else scores[j]
+        viterbi[j] = value
         if value > top:
             top = value
             best = j
@@ -332,10 +330,9 @@ def _push(  # noqa: PLR0917
         best_out[j] = top
 
 
-# crfsuite's forward and Viterbi recursions over a whole chain, one step short of a next position:
-# the same operations in the same order as FunctionTagger's numpy recursions (each state score
-# summed row by row from its first row, products summed over the previous label in label order,
-# scaling by 1 / the sum added left to right).
+# crfsuite's forward and Viterbi recursions over a whole chain, one step short of a next position,
+# in crfsuite's order (each state score summed row by row from its first row, products summed
+# over the previous label in label order, scaling by 1 / the sum added left to right).
 @_jit
 def _chain_carry(  # noqa: PLR0917
     state: Any, rows: Any, ends: Any, exp_transitions: Any, transitions: Any,
@@ -369,12 +366,6 @@ def _chain_carry(  # noqa: PLR0917
             alpha[j] = forward[j] * scale
     _push(alpha, viterbi, exp_transitions, transitions, forward_out, best_out)
     return True
-
-
-@_jit
-def _exp_into(values: Any, out: Any) -> None:  # pragma: no cover
-    for j in range(values.shape[0]):
-        out[j] = math.exp(values[j])
 
 
 def decode_lattice(
@@ -494,8 +485,8 @@ def chain_end_step(
         ascending order; ``sums`` (at least ``max(groups) + 1`` long) receives each group's
         summed marginals, added in label order from 0.0.
     out
-        At least ``(3, L)``; rows 0, 1 and 2 receive the state scores, their exps and the
-        marginals in their first ``L`` places (``sums`` may be a further row of it).
+        At least ``(3, L)``; rows 0, 1 and 2 receive the state scores, the final Viterbi scores
+        and the marginals in their first ``L`` places (``sums`` may be a further row of it).
 
     Returns
     -------
@@ -525,11 +516,6 @@ def chain_carry(state: FloatArray, rows: IntArray, ends: IntArray, *,
     return done
 
 
-def exp_into(values: FloatArray, out: FloatArray) -> None:
-    """``out[j] = exp(values[j])`` with the exp :func:`chain_end_step` uses (C library's)."""
-    _exp_into(values, out)
-
-
 def warm_up() -> None:
     """Compile (or load from the disk cache) every kernel now rather than on the first word."""
     scores = np.zeros((2, 2))
@@ -549,7 +535,6 @@ def warm_up() -> None:
         chain_end_step(transitions, ints, carry_forward=carry, carry_best=carry,
                        group_of=np.zeros(2, dtype=np.int64), groups=ints, sums=out[3],
                        out=out)
-    exp_into(np.zeros(2), np.zeros(2))
     chain_carry(transitions, np.zeros(2, dtype=np.int64), np.array([1, 2], dtype=np.int64),
                 exp_transitions=transitions, transitions=transitions,
                 forward_out=np.zeros(2), best_out=np.zeros(2))

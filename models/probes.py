@@ -20,8 +20,8 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-from midstream.models.functions._tagger import clean_view, utterance_features
-from midstream.models.functions._views import UtteranceView
+from midstream.models.functions._features import utterance_features
+from midstream.models.functions._views import UtteranceView, clean_view
 from midstream.models.words._abandon import AbandonCues
 from midstream.models.words._decoder import ChannelDecoder
 from midstream.models.words._features import Token, features_at, token_of

@@ -36,7 +36,8 @@ from midstream.models.boundaries._train import (
     cross_validate_boundaries,
     train_boundary_artifact,
 )
-from midstream.models.functions._tagger import SCHEMES, FunctionFeatureConfig
+from midstream.models.functions._features import FunctionFeatureConfig
+from midstream.models.functions._tagger import SCHEMES
 from midstream.models.functions._train import (
     FunctionTrainingOptions,
     Scorer,

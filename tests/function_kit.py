@@ -12,7 +12,7 @@ import random
 from midstream import Conversation, DisfluencyLabel, Utterance, Word
 from midstream._schemes import coarse_function
 from midstream.models._artifact import ModelArtifact
-from midstream.models.functions._tagger import FunctionFeatureConfig
+from midstream.models.functions._features import FunctionFeatureConfig
 from midstream.models.functions._train import FunctionTrainingOptions, train_function_model
 
 F = DisfluencyLabel.FLUENT

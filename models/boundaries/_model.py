@@ -30,6 +30,7 @@ A :class:`BoundaryModel` is immutable after loading and safe to share between th
 
 from __future__ import annotations
 
+import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from importlib import resources
@@ -188,7 +189,7 @@ class BoundaryModel:
         return cls(artifact, CrfTagger.from_bytes(artifact.crf))
 
     @classmethod
-    def load(cls, path: Path | None = None) -> BoundaryModel:
+    def load(cls, path: str | os.PathLike[str] | None = None) -> BoundaryModel:
         """Load a ``.tagger`` boundary model (the shipped one when ``path`` is None)."""
         path = default_boundary_model_path() if path is None else path
         return cls.from_artifact(load_artifact(path, expected_kind="boundaries"))

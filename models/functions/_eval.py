@@ -22,8 +22,8 @@ from __future__ import annotations
 from collections.abc import Iterable, Sequence
 
 from midstream import SWBD42_CLASSES, Conversation
-from midstream.models.functions._tagger import FunctionTagger, clean_view
-from midstream.models.functions._views import UtteranceView
+from midstream.models.functions._tagger import FunctionTagger
+from midstream.models.functions._views import UtteranceView, clean_view
 
 #: Prefix lengths (received words) at which the growing label is scored.
 AFTER_WORDS: tuple[int, ...] = (1, 2, 3, 5)

@@ -1,58 +1,53 @@
-"""Utterance functions: features of cleaned (possibly partial) utterances and the tagger.
+"""The utterance-function tagger: the CRF over a conversation's utterances, its streaming
+labelling and the caches that keep it cheap per word.
 
 A linear-chain CRF runs over a conversation's utterances in time order, both speakers on one
 chain, so its transition weights learn which function follows which ("an answer follows a
-question"). Each utterance is seen through an :class:`UtteranceView`: its speaker, its *cleaned*
-words (fillers, editing terms, reparanda and restarts removed), how many disfluent words were
-removed and whether it is complete. The features are pure functions of a view and the view
-before it; the tagger decodes a bounded window (a few preceding utterances plus the current,
+question"). The tagger decodes a bounded window (a few preceding utterances plus the current,
 growing one), so the cost of relabelling after each new word does not grow with the
-conversation.
-
-Feature values are recogniser-style text only: lower case, no punctuation, no timing.
+conversation. Features come from :mod:`~midstream.models.functions._features`; the tagger maps
+them to model rows (cached) and hands the rows to :mod:`~midstream.models.functions._inference`.
 """
 
 from __future__ import annotations
 
-import itertools
-import math
 from collections import OrderedDict
-from collections.abc import Callable, Hashable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Hashable, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Generic, NamedTuple, TypeVar
 
-import numpy as np
-import numpy.typing as npt
 from midstream import (
-    Conversation,
     InputError,
     ModelError,
-    Utterance,
     UtteranceFunction,
     coarse_function,
 )
 from midstream.models._artifact import ModelArtifact, load_artifact
 from midstream.models._crf import CrfTagger
-from midstream.models._lattice import chain_carry, chain_end_step, exp_into
-from midstream.models.functions._views import UtteranceView, build_view, check_view
-
-#: Feature-dictionary type the CRF adapter takes: attribute name to value.
-Features = dict[str, float]
-
-FloatArray = npt.NDArray[np.float64]
+from midstream.models.functions._features import (
+    MAX_FEATURE_WORDS,
+    Features,
+    FunctionFeatureConfig,
+    _add_pair_features,
+    _add_partner_features,
+    _add_previous_features,
+    _add_word_features,
+    _closing_ngram_names,
+    _ngram_names,
+    _open_ngram_names,
+    _shape_features,
+    chain_partners,
+    earlier_partner,
+    sequence_features,
+    utterance_features,
+)
+from midstream.models.functions._inference import ChainInference, EndStep, FloatArray
+from midstream.models.functions._views import UtteranceView, check_view
 
 #: How many preceding utterances :meth:`FunctionTagger.label_partial` decodes with the current
 #: one (common practice, no source: enough for question-answer-acknowledgement chains).
 DEFAULT_CONTEXT = 4
-
-#: n-grams are read from at most this many leading words of an utterance, so the features of a
-#: growing utterance cost a bounded amount however long the speaker talks (documented limit;
-#: fewer than 1% of SwDA utterances are longer, measured on the train split).
-MAX_FEATURE_WORDS = 40
-
-_BOS = "<s>"
-_EOS = "</s>"
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -69,360 +64,6 @@ class FunctionGuess:
     confidence: float
     function: UtteranceFunction
     function_confidence: float
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class FunctionFeatureConfig:
-    """Which feature groups are on (stored in the model so tagging matches training).
-
-    Parameters
-    ----------
-    trigrams
-        Word trigrams (with begin/end markers) besides unigrams and bigrams.
-    previous
-        Features of the previous utterance (first words, length) and their conjunction with the
-        current first word when the speaker changed.
-    complete_flag
-        A feature telling whether the utterance is complete; with prefix augmentation it tells the
-        CRF a growing utterance from a finished one.
-    partner
-        Across a change of speaker, how the utterance relates to the partner's utterance just
-        before it: words and numbers it repeats, its length right after the partner's turn, its
-        opening word, an alternative echoing the partner ("four fifteen or four fifty"). What a
-        clarification request looks like in any corpus (ISO 24617-2 checkQuestion on the
-        partner's utterance; see docs/labels.md). Off in models trained before it existed.
-    opening
-        The identity of a filler or editing term that opened the utterance and was cleaned away
-        (``UtteranceView.opening``: the "sorry" of "sorry which day"). Off in models trained
-        before it existed.
-    lookback
-        With ``partner``: when the previous utterance is the same speaker's, the partner
-        features (under their own names, prefixed ``y``) against the last utterance of another
-        speaker among the :data:`PARTNER_LOOKBACK` before it. A check often follows one's own
-        "okay" or "so" after the partner's turn (Map Task's acknowledge then check moves, MRDA's
-        floor holders), and in a meeting the previous segment is often the same speaker's. Off
-        in models trained before it existed.
-    """
-
-    trigrams: bool = True
-    previous: bool = True
-    complete_flag: bool = True
-    partner: bool = False
-    opening: bool = False
-    lookback: bool = False
-
-    def to_json(self) -> dict[str, bool]:
-        return {"trigrams": self.trigrams, "previous": self.previous,
-                "complete_flag": self.complete_flag, "partner": self.partner,
-                "opening": self.opening, "lookback": self.lookback}
-
-    @classmethod
-    def from_json(cls, data: Mapping[str, object]) -> FunctionFeatureConfig:
-        known = {"trigrams", "previous", "complete_flag", "partner", "opening", "lookback"}
-        unknown = set(data) - known
-        if unknown:
-            raise ModelError(f"unknown function feature settings {sorted(unknown)}")
-        values: dict[str, bool] = {}
-        for key, value in data.items():
-            if not isinstance(value, bool):
-                raise ModelError(f"function feature setting {key!r} must be true or false")
-            values[key] = value
-        return cls(**values)
-
-
-def _length_bucket(n: int) -> str:
-    if n <= 3:
-        return str(n)
-    if n <= 5:
-        return "4-5"
-    if n <= 9:
-        return "6-9"
-    if n <= 19:
-        return "10-19"
-    return "20+"
-
-
-def _removed_bucket(n: int) -> str:
-    return str(n) if n <= 2 else "3+"
-
-
-def utterance_features(view: UtteranceView, previous: UtteranceView | None,
-                       config: FunctionFeatureConfig = FunctionFeatureConfig(), *,
-                       partner: UtteranceView | None = None) -> Features:
-    """Features of one utterance given the one before it on the conversation's chain.
-
-    Parameters
-    ----------
-    view
-        The utterance to describe.
-    previous
-        The preceding utterance (either speaker), or ``None`` at the start of the chain.
-    config
-        Which feature groups to emit.
-    partner
-        When ``previous`` is the same speaker's: the last utterance of another speaker before
-        it, as :func:`earlier_partner` finds it (used with ``config.lookback`` only).
-
-    Returns
-    -------
-    dict
-        A new dictionary of attribute names to 1.0; neither input is changed.
-
-    Examples
-    --------
-    >>> v = UtteranceView(speaker="A", words=("do", "you", "know"))
-    >>> f = utterance_features(v, None)
-    >>> f["w0=do"], f["b=<s>|do"], f["len=3"], f["prev=none"]
-    (1.0, 1.0, 1.0, 1.0)
-    """
-    feats = _shape_features(view, config)
-    head = view.words[:MAX_FEATURE_WORDS]
-    feats.update(dict.fromkeys(_ngram_names(head, closed=len(view.words) <= MAX_FEATURE_WORDS,
-                                            trigrams=config.trigrams), 1.0))
-    _add_word_features(feats, view.words)
-    if previous is None:
-        feats["prev=none"] = 1.0
-        return feats
-    changed = previous.speaker != view.speaker
-    _add_previous_features(feats, previous, changed=changed, config=config)
-    if changed and config.previous:
-        _add_pair_features(feats, previous.words, view.words, partner=config.partner)
-    elif partner is not None and config.lookback and config.partner:
-        _add_partner_features(feats, partner.words, view.words, prefix="y")
-    return feats
-
-
-#: How many utterances back :func:`earlier_partner` looks for another speaker's: the streaming
-#: tagger's context (:data:`DEFAULT_CONTEXT`), so that the utterance a stream labels sees the
-#: partner training showed it.
-PARTNER_LOOKBACK = 4
-
-
-def earlier_partner(before: Sequence[UtteranceView], speaker: str) -> UtteranceView | None:
-    """The last utterance of another speaker than ``speaker`` among the last
-    :data:`PARTNER_LOOKBACK` of ``before`` (oldest first), when the very last is ``speaker``'s
-    own; ``None`` otherwise (the last is the partner itself, or no other speaker is that near).
-
-    Examples
-    --------
-    >>> a = UtteranceView(speaker="A", words=("four", "fifteen"))
-    >>> b = UtteranceView(speaker="B", words=("okay",))
-    >>> earlier_partner([a, b], "B") is a, earlier_partner([a], "B")
-    (True, None)
-    """
-    if not before or before[-1].speaker != speaker:
-        return None
-    for view in reversed(before[-PARTNER_LOOKBACK:]):
-        if view.speaker != speaker:
-            return view
-    return None
-
-
-def chain_partners(views: Sequence[UtteranceView]) -> list[UtteranceView | None]:
-    """:func:`earlier_partner` of each view of a chain among the views before it."""
-    return [earlier_partner(views[max(0, i - PARTNER_LOOKBACK):i], view.speaker)
-            for i, view in enumerate(views)]
-
-
-# utterance_features in parts, so the tagger's per-word path can build only what a new word
-# changes: the word-dependent rows come from a cache extended word by word, and the rows taken
-# from the previous utterance are kept with the cached decoding of the context. Every n-gram
-# name has "=" second ("w=", "b=", "t="), and no other feature name does but "x=...", so the
-# n-grams never share a name with another part; the other parts' prefixes differ too.
-
-
-def _shape_features(view: UtteranceView, config: FunctionFeatureConfig) -> Features:
-    """Bias, length, removed count, emptiness and completeness features (first in the dict)."""
-    feats: Features = {"bias": 1.0}
-    n = len(view.words)
-    feats[f"len={_length_bucket(n)}"] = 1.0
-    feats[f"rm={_removed_bucket(view.removed)}"] = 1.0
-    if n == 0:
-        # Nothing but disfluent words (or silence around a non-verbal sound).
-        feats["empty"] = 1.0
-        if view.removed:
-            feats["only_disfluent"] = 1.0
-    if config.complete_flag and not view.complete:
-        feats["incomplete"] = 1.0
-    if config.opening and view.opening:
-        feats[f"rw0={view.opening}"] = 1.0
-    return feats
-
-
-def _ngram_names(head: Sequence[str], *, closed: bool, trigrams: bool) -> list[str]:
-    """Word unigram, bigram and trigram names of ``head``, with an end marker when ``closed``."""
-    padded = (_BOS, *head, _EOS) if closed else (_BOS, *head)
-    names = [f"w={w}" for w in head]
-    names.extend(f"b={a}|{b}" for a, b in itertools.pairwise(padded))
-    if trigrams:
-        names.extend(f"t={a}|{b}|{c}"
-                     for a, b, c in zip(padded, padded[1:], padded[2:], strict=False))
-    return names
-
-
-def _open_ngram_names(head: Sequence[str], *, trigrams: bool) -> list[str]:
-    """The n-gram names :func:`_ngram_names` adds for the last word of ``head`` (non-empty)."""
-    last = head[-1]
-    before = head[-2] if len(head) > 1 else _BOS
-    names = [f"w={last}", f"b={before}|{last}"]
-    if trigrams and len(head) > 1:
-        names.append(f"t={head[-3] if len(head) > 2 else _BOS}|{before}|{last}")
-    return names
-
-
-def _closing_ngram_names(head: Sequence[str], *, trigrams: bool) -> list[str]:
-    """The n-gram names :func:`_ngram_names` adds for the end marker of a closed ``head``."""
-    last = head[-1] if head else _BOS
-    names = [f"b={last}|{_EOS}"]
-    if trigrams and head:
-        names.append(f"t={head[-2] if len(head) > 1 else _BOS}|{last}|{_EOS}")
-    return names
-
-
-def _add_word_features(feats: Features, words: tuple[str, ...]) -> None:
-    """First and last words and word pairs of the utterance."""
-    n = len(words)
-    if n:
-        first = words[0]
-        feats[f"w0={first}"] = 1.0
-        feats[f"wl={words[-1]}"] = 1.0
-        if n > 1:
-            feats[f"b0={first}|{words[1]}"] = 1.0
-            feats[f"bl={words[-2]}|{words[-1]}"] = 1.0
-        else:
-            feats[f"only={first}"] = 1.0
-        if n > 2:
-            feats[f"t0={first}|{words[1]}|{words[2]}"] = 1.0
-
-
-def _add_previous_features(feats: Features, previous: UtteranceView, *, changed: bool,
-                           config: FunctionFeatureConfig) -> None:
-    """The previous utterance's features: all of them depend on it and the speaker change only."""
-    feats["spk=change" if changed else "spk=same"] = 1.0
-    if config.previous:
-        pw = previous.words
-        pn = len(pw)
-        tag = "o" if changed else "s"
-        feats[f"p{tag}len={_length_bucket(pn)}"] = 1.0
-        if pn:
-            feats[f"p{tag}w0={pw[0]}"] = 1.0
-            feats[f"p{tag}wl={pw[-1]}"] = 1.0
-            if pn > 1:
-                feats[f"p{tag}b0={pw[0]}|{pw[1]}"] = 1.0
-        else:
-            feats[f"p{tag}empty"] = 1.0
-        if not previous.complete:
-            feats[f"p{tag}incomplete"] = 1.0
-
-
-def _add_pair_features(feats: Features, previous: tuple[str, ...],
-                       words: tuple[str, ...], *, partner: bool = False) -> None:
-    """Previous first word with this first word, across a change of speaker; with ``partner``
-    also how this utterance echoes the partner's (see :class:`FunctionFeatureConfig`)."""
-    if words:
-        # "yeah" after a question is an answer, after an opinion an agreement, after a
-        # statement a backchannel: the pair carries what neither word does alone.
-        feats[f"x={previous[0] if previous else '-'}|{words[0]}"] = 1.0
-        if len(words) <= 2:
-            feats[f"xs={previous[0] if previous else '-'}|{'_'.join(words)}"] = 1.0
-    if partner:
-        _add_partner_features(feats, previous, words)
-
-
-#: Number words a repeated number is recognised by (besides digits): checks of times, amounts and
-#: distances repeat them ("four fifteen or four fifty"). Common practice, no source.
-_NUMBER_WORDS = frozenset({
-    "zero", "oh", "one", "two", "three", "four", "five", "six", "seven", "eight", "nine", "ten",
-    "eleven", "twelve", "thirteen", "fourteen", "fifteen", "sixteen", "seventeen", "eighteen",
-    "nineteen", "twenty", "thirty", "forty", "fifty", "sixty", "seventy", "eighty", "ninety",
-    "hundred", "thousand", "half", "quarter", "first", "second", "third",
-})
-
-
-def _add_partner_features(feats: Features, previous: tuple[str, ...],
-                          words: tuple[str, ...], prefix: str = "") -> None:
-    """How an utterance after the partner's relates to it (both at most MAX_FEATURE_WORDS
-    words are compared, so the cost per call is bounded); ``prefix`` names the features of an
-    earlier partner utterance (``"y"``) apart from those of one right before."""
-    n = len(words)
-    size = _length_bucket(n)
-    feats[f"{prefix}xlen={size}"] = 1.0
-    if not n:
-        return
-    # An opening right after the partner's turn: "sorry", "pardon", "what" start repetition
-    # requests there, and something else in the middle of one's own turn.
-    feats[f"{prefix}xw0={words[0]}|{'short' if n <= 4 else 'long'}"] = 1.0
-    said = frozenset(previous[:MAX_FEATURE_WORDS])
-    head = words[:MAX_FEATURE_WORDS]
-    repeated = [w for w in head if w in said]
-    share = len(repeated) / len(head)
-    echo = "0" if not repeated else "all" if share == 1.0 else "most" if share >= 0.5 else "some"
-    feats[f"{prefix}ov={echo}"] = 1.0
-    feats[f"{prefix}ov={echo}|{size}"] = 1.0
-    if not repeated:
-        return
-    if words[0] in said:
-        feats[f"{prefix}ov0"] = 1.0
-    if head[-1] in said:
-        feats[f"{prefix}ovl"] = 1.0
-    if any(w in _NUMBER_WORDS or w.isdigit() for w in repeated):
-        feats[f"{prefix}ovnum"] = 1.0
-    if "or" in head:
-        # An alternative built from the partner's words offers two hearings of them.
-        feats[f"{prefix}ovor"] = 1.0
-
-
-def sequence_features(views: Sequence[UtteranceView],
-                      config: FunctionFeatureConfig = FunctionFeatureConfig()) -> list[Features]:
-    """Features of each utterance of a chain, each given its predecessor in ``views``."""
-    out: list[Features] = []
-    previous: UtteranceView | None = None
-    partners: Iterable[UtteranceView | None] = (
-        chain_partners(views) if config.lookback else itertools.repeat(None))
-    for view, partner in zip(views, partners, strict=False):
-        out.append(utterance_features(view, previous, config, partner=partner))
-        previous = view
-    return out
-
-
-def clean_view(conversation: Conversation, utterance: Utterance,
-               upto: int | None = None) -> UtteranceView:
-    """The view of one annotated utterance, cleaned with the gold disfluency labels.
-
-    Words labelled filler, editing term, reparandum or restart are removed (and counted); a
-    conversation without disfluency annotation keeps all its words. Word fragments ("s-") are
-    dropped uncounted. The rule is
-    :func:`~midstream.models.functions._views.build_view`'s, which the live engine calls too.
-
-    Parameters
-    ----------
-    conversation, utterance
-        The utterance and the conversation whose words and labels it indexes.
-    upto
-        Only the utterance's first ``upto`` words (as a stream would have them so far); the view
-        is then incomplete unless ``upto`` covers the whole utterance.
-    """
-    labels = conversation.labels
-    indices = utterance.words if upto is None else utterance.words[:upto]
-    words = conversation.words
-    # A whole utterance counts as complete even when the corpus marks it abandoned (see
-    # UtteranceView.complete).
-    whole = upto is None or upto >= len(utterance.words)
-    return build_view(utterance.speaker,
-                      [(words[i].text, words[i].fragment, labels[i] if labels is not None
-                        else None) for i in indices],
-                      complete=whole)
-
-
-def conversation_views(conversation: Conversation) -> list[UtteranceView]:
-    """Views of all utterances of a conversation, in the conversation's order."""
-    return [clean_view(conversation, u) for u in conversation.utterances]
-
-
-def iter_views(conversations: Iterable[Conversation]) -> Iterator[list[UtteranceView]]:
-    """Views per conversation, for batch use (training, evaluation)."""
-    for conversation in conversations:
-        yield conversation_views(conversation)
 
 
 _K = TypeVar("_K", bound=Hashable)
@@ -584,59 +225,25 @@ def _coarse_of(scheme: str, label: str) -> UtteranceFunction:
     return coarse_function("swbd42", label)
 
 
-def _exp_like_c() -> tuple[Callable[[FloatArray], FloatArray], bool]:
-    """An elementwise exp with the C library's results, as crfsuite's arithmetic needs.
-
-    numpy's float64 exp is the C library's except on CPUs where numpy brings a vectorised one
-    of its own; the compiled kernels call the C library's unless numba was given a vector
-    library of its own. A probe tells: the second value says whether the compiled kernels'
-    exp passed it (they are used only then), and the first is numpy's exp if that passed, else
-    the compiled one, else :func:`math.exp` value by value (a few microseconds more per call).
-    """
-    probe = np.linspace(-60.0, 60.0, 4099)
-    expected = [math.exp(x) for x in probe.tolist()]
-    compiled = np.empty_like(probe)
-    exp_into(probe, compiled)
-    compiled_like_c = compiled.tolist() == expected
-    if np.exp(probe).tolist() == expected:
-        return np.exp, compiled_like_c
-    if compiled_like_c:
-        def exp_compiled(values: FloatArray) -> FloatArray:
-            out = np.empty_like(values)
-            exp_into(values, out)
-            return out
-        return exp_compiled, True
-
-    def exp_each(values: FloatArray) -> FloatArray:
-        return np.array([math.exp(x) for x in values.tolist()])
-    return exp_each, False
-
-
 class FunctionTagger:
     """Labels utterances with their function from a trained CRF.
 
     Build it with :meth:`from_artifact` (or :meth:`load`).
 
-    :meth:`label_partial` does not call crfsuite: it needs only the last position's Viterbi
-    label and marginals, and both come from the forward recursions alone (crfsuite's backward
-    vector at the last position is its scale factor, which the marginal divides out again). The
-    tagger reads the CRF's weights once and repeats crfsuite's own arithmetic step for step (the
-    same operations in the same order, the C library's ``exp``), so labels and marginals are
-    crfsuite's to the last bit. The per-word step (state scores, the last position's recursions,
-    marginals and coarse sums) runs as one compiled kernel where its ``exp`` passes a probe
-    against the C library's (else in numpy, the same arithmetic). What does not change from
-    word to word is cached, each cache a
-    bounded LRU: the recursions over a window of final context utterances (keyed by the views'
-    ids, each entry holding its views so the ids stay theirs, and behind that by the views'
-    values; :data:`WINDOW_CACHE_SIZE` windows each), the context utterances' state scores
-    (``WINDOW_CACHE_SIZE * (context + 1)`` entries of two vectors), and the feature rows of a
-    growing utterance's words (:data:`NGRAM_CACHE_SIZE`), so a call costs the new word's
-    features, one gather of weight rows and one step of the recursions; the first call after a
-    new context window also runs the recursions over the window. A caller labelling word after
-    word after the same context keeps the window (:meth:`context_window`) and calls
-    :meth:`label_built`, so no shared cache is searched on each word. In the rare case ``exp``
-    would overflow (state scores past 709, which no regularised model reaches), the call is
-    handed to crfsuite so that even then the result is its own.
+    :meth:`label_partial` does not call crfsuite: the last position's Viterbi label and
+    marginals come from the compiled recursions of
+    :class:`~midstream.models.functions._inference.ChainInference`, held to crfsuite within its
+    ``TOLERANCE`` (the tests), with crfsuite as the fallback where an ``exp`` would overflow.
+    What does not change from word to word is cached, each cache a bounded LRU: the recursions
+    over a window of final context utterances (keyed by the views' ids, each entry holding its
+    views so the ids stay theirs, and behind that by the views' values;
+    :data:`WINDOW_CACHE_SIZE` windows each), the context utterances' model rows
+    (``WINDOW_CACHE_SIZE * (context + 1)`` entries), and the feature rows of a growing
+    utterance's words (:data:`NGRAM_CACHE_SIZE`), so a call costs the new word's features and
+    one compiled step; the first call after a new context window also runs the recursions over
+    the window. A caller labelling word after word after the same context keeps the window
+    (:meth:`context_window`) and calls :meth:`label_built`, so no shared cache is searched on
+    each word.
 
     Sharing: the weights are never written after construction and cache entries never change
     after insertion, so one tagger may serve any number of engines and sessions, interleaved on
@@ -662,32 +269,14 @@ class FunctionTagger:
         self._context = context
         self._coarse_from = coarse_from
         self._coarse = {label: _coarse_of(scheme, label) for label in crf.labels}
-        weights = crf.weights()
-        self._attributes = weights.attributes
-        # One all-zero last row, gathered when an utterance has no known attribute at all.
-        self._state: FloatArray = np.vstack([weights.state, np.zeros((1, len(crf.labels)))])
-        self._pad = len(self._state) - 1
-        self._transitions: FloatArray = weights.transitions
-        # Exponentiated one by one with the C library's exp, as crfsuite does.
-        self._exp_transitions: FloatArray = np.array(
-            [[math.exp(w) for w in row] for row in weights.transitions.tolist()]).reshape(
-            weights.transitions.shape)
         self._functions = tuple(UtteranceFunction)
         self._label_names: tuple[str, ...] = tuple(crf.labels)
         # Label index -> coarse function index (enum order), for summing marginals by group;
         # a function no label maps to can never be chosen.
-        self._group_of = np.array([self._functions.index(self._coarse[label])
-                                   for label in crf.labels], dtype=np.intp)
-        self._groups = sorted(set(self._group_of.tolist()))
-        self._exp, self._compiled = _exp_like_c()
-        # The compiled last step's fixed inputs, and the width of its work rows (the group
-        # sums share them, and there may be more functions than labels).
-        self._group_of_rows = self._group_of.astype(np.int64)
-        self._group_list: list[int] = self._group_of.tolist()
-        self._group_rows = np.array(self._groups, dtype=np.int64)
-        self._work_width = max(len(crf.labels), self._groups[-1] + 1)
-        self._no_carry: FloatArray = np.empty(0)
-        self._opening = self._rows({"prev=none": 1.0})
+        self._group_list: list[int] = [self._functions.index(self._coarse[label])
+                                       for label in crf.labels]
+        self._chain = ChainInference(crf, self._group_list)
+        self._opening = self._chain.rows({"prev=none": 1.0})
         self._shapes: dict[tuple[int, int, bool, str], tuple[int, ...]] = {}
         self._carries: _Lru[tuple[UtteranceView, ...], _Carry] = _Lru(WINDOW_CACHE_SIZE)
         # The same windows keyed by the views' ids: hashing a tuple of ints is far cheaper than
@@ -695,11 +284,12 @@ class FunctionTagger:
         # no other object can carry those ids.
         self._recent: _Lru[tuple[int, ...], tuple[tuple[UtteranceView, ...], _Carry]] = _Lru(
             WINDOW_CACHE_SIZE)
-        # Keyed by the ids of the previous view, the earlier partner (lookback) and the view.
-        self._states: _Lru[tuple[int, int, int], tuple[UtteranceView | None,
-                                                       UtteranceView | None, UtteranceView,
-                                                       FloatArray, FloatArray]] = _Lru(
-            WINDOW_CACHE_SIZE * (context + 1))
+        # Model rows of final context utterances, keyed by the ids of the previous view, the
+        # earlier partner (lookback) and the view; each entry holds the views.
+        self._context_rows: _Lru[tuple[int, int, int], tuple[UtteranceView | None,
+                                                             UtteranceView | None,
+                                                             UtteranceView, tuple[int, ...]]] = (
+            _Lru(WINDOW_CACHE_SIZE * (context + 1)))
         self._lookback = config.lookback and config.partner
         self._words: _Lru[tuple[str, ...], _Words] = _Lru(NGRAM_CACHE_SIZE)
         # Only the crfsuite path (overflow fallback, tests, benchmark baseline) uses this one.
@@ -783,83 +373,23 @@ class FunctionTagger:
         return FunctionGuess(label=label, confidence=confidence, function=function,
                              function_confidence=sums.get(function, 0.0))
 
-    def _group_at(self, k: int, probs: FloatArray) -> tuple[int, float]:
-        """The coarse function (enum index) and its confidence, for label ``k`` and marginals
-        ``probs`` of a fine model, as :meth:`_guess` chooses them."""
-        # bincount adds in label order from 0.0, as _guess does.
-        sums: list[float] = np.bincount(self._group_of, weights=probs).tolist()
-        if self._coarse_from == "label":
-            group = self._group_list[k]
-        else:
-            # max keeps the first of equal sums: ties go to the earlier function in enum order.
-            group = max(self._groups, key=sums.__getitem__)
-        return group, sums[group]
-
-    # --- crfsuite's arithmetic, step for step ---------------------------------------------
-    #
-    # crfsuite sums an item's state scores attribute by attribute in the order the item lists
-    # them (here the feature dictionary's order), each from 0.0; a gather of those rows summed
-    # along the first axis adds them in that order too. Its vector sums run left to right, its
-    # exp is the C library's (math.exp), and it scales by multiplying with 1 / sum.
-
-    def _rows(self, features: Iterable[str]) -> tuple[int, ...]:
-        """Model rows of the known attributes among ``features``, in their order."""
-        get = self._attributes.get
-        return tuple(r for r in map(get, features) if r is not None)
-
-    def _state_scores(self, rows: Sequence[int]) -> FloatArray:
-        """crfsuite's state scores of an item with the attributes of ``rows`` (in that order)."""
-        gathered = self._state.take(rows if rows else [self._pad], axis=0)
-        scores: FloatArray = np.add.reduce(gathered, axis=0)
-        return scores
-
-    def _push(self, alpha: FloatArray, viterbi: FloatArray) -> tuple[FloatArray, FloatArray]:
-        """``sum_i alpha[i] * exp(T[i, j])`` (over ``i`` in order) and ``max_i viterbi[i] +
-        T[i, j]`` for every ``j``: the recursions up to the next position's state scores."""
-        forward: FloatArray = np.add.reduce(alpha[:, None] * self._exp_transitions, axis=0)
-        best: FloatArray = np.maximum.reduce(viterbi[:, None] + self._transitions, axis=0)
-        return forward, best
-
-    @staticmethod
-    def _scale(forward: FloatArray) -> float:
-        """crfsuite's scale factor of a forward vector: 1 / its sum added left to right.
-
-        Raises
-        ------
-        OverflowError
-            The sum is not finite: an exp overflowed (numpy's warns, math.exp raises at once).
-        """
-        # accumulate adds strictly left to right (a plain sum may pair terms up).
-        total = float(np.add.accumulate(forward)[-1])
-        if not total < math.inf:
-            raise OverflowError("forward vector overflowed")
-        return 1.0 / total if total != 0.0 else 1.0
-
     # --- label_partial -----------------------------------------------------------------------
 
-    def _context_scores(self, previous: UtteranceView | None, view: UtteranceView,
-                        partner: UtteranceView | None) -> tuple[FloatArray, FloatArray]:
-        """State scores of a final context utterance and their exps (cached, read-only).
+    def _rows_after(self, previous: UtteranceView | None, view: UtteranceView,
+                    partner: UtteranceView | None) -> tuple[int, ...]:
+        """Model rows of a final context utterance after ``previous`` (cached, read-only).
 
         Keyed by the views' ids (``partner`` the earlier partner, or ``None``), each entry
         holding the views so the ids stay theirs: a window's utterances are hashed by value
         only when the window itself is new.
-
-        Raises
-        ------
-        OverflowError
-            crfsuite's exp overflows on these scores.
         """
         key = (id(previous), id(partner), id(view))
-        entry = self._states.get(key)
+        entry = self._context_rows.get(key)
         if entry is not None:
-            return entry[3], entry[4]
-        scores = self._state_scores(self._rows_of(view, previous, partner))
-        exps = self._exp(scores)
-        scores.flags.writeable = False
-        exps.flags.writeable = False
-        self._states.put(key, (previous, partner, view, scores, exps))
-        return scores, exps
+            return entry[3]
+        rows = self._rows_of(view, previous, partner)
+        self._context_rows.put(key, (previous, partner, view, rows))
+        return rows
 
     def _window_carry(self, window: tuple[UtteranceView, ...]) -> _Carry:
         """The recursions over ``window`` (non-empty, final views), from the cache if there.
@@ -885,22 +415,14 @@ class FunctionTagger:
         for view in window:
             check_view(view)
         previous: UtteranceView | None = None
-        alpha = viterbi = self._state[self._pad]
-        partners = self._partners(window)
-        for view, partner in zip(window, partners, strict=True):
-            scores, exps = self._context_scores(previous, view, partner)
-            if previous is None:
-                forward, viterbi = exps, scores
-            else:
-                forward, viterbi = self._push(alpha, viterbi)
-                forward *= exps
-                viterbi += scores
-            alpha = forward * self._scale(forward)
+        rows: list[int] = []
+        ends: list[int] = []
+        for view, partner in zip(window, self._partners(window), strict=True):
+            rows += self._rows_after(previous, view, partner)
+            ends.append(len(rows))
             previous = view
         assert previous is not None
-        forward, best = self._push(alpha, viterbi)
-        forward.flags.writeable = False
-        best.flags.writeable = False
+        forward, best = self._chain.carry(rows, ends)
         carry = _Carry(forward=forward, best=best,
                        same=self._follow_rows(previous, changed=False),
                        other=self._follow_rows(previous, changed=True))
@@ -949,7 +471,7 @@ class FunctionTagger:
 
     def _build_words(self, words: tuple[str, ...], parent: _Words | None) -> _Words:
         """The entry of ``words``, from its parent's (``words[:-1]``) when there is one."""
-        get = self._attributes.get
+        get = self._chain.attributes.get
         trigrams = self._config.trigrams
         if parent is not None:
             unigrams, bigrams, tri = parent.unigrams, parent.bigrams, parent.trigrams
@@ -983,7 +505,7 @@ class FunctionTagger:
         else:
             feats: Features = {}
             _add_word_features(feats, words)
-            word_rows = self._rows(feats)
+            word_rows = self._chain.rows(feats)
             lead = (get(f"w0={words[0]}") if words else None,
                     get(f"b0={words[0]}|{words[1]}") if len(words) > 1 else None,
                     get(f"t0={words[0]}|{words[1]}|{words[2]}") if len(words) > 2 else None)
@@ -999,23 +521,23 @@ class FunctionTagger:
         head = self._words_of(words[:MAX_FEATURE_WORDS], memo)
         feats: Features = {}
         _add_word_features(feats, words)
-        return (*head.unigrams, *head.bigrams, *head.trigrams, *self._rows(feats))
+        return (*head.unigrams, *head.bigrams, *head.trigrams, *self._chain.rows(feats))
 
     def _follow_rows(self, previous: UtteranceView, *, changed: bool) -> tuple[int, ...]:
         """Rows of the features an utterance takes from ``previous``, in order."""
         feats: Features = {}
         _add_previous_features(feats, previous, changed=changed, config=self._config)
-        return self._rows(feats)
+        return self._chain.rows(feats)
 
     def _pair_rows(self, previous: UtteranceView, words: tuple[str, ...]) -> tuple[int, ...]:
         pairs: Features = {}
         _add_pair_features(pairs, previous.words, words, partner=self._config.partner)
-        return self._rows(pairs)
+        return self._chain.rows(pairs)
 
     def _lookback_rows(self, partner: UtteranceView, words: tuple[str, ...]) -> tuple[int, ...]:
         feats: Features = {}
         _add_partner_features(feats, partner.words, words, prefix="y")
-        return self._rows(feats)
+        return self._chain.rows(feats)
 
     def _partners(self, views: Sequence[UtteranceView]) -> Sequence[UtteranceView | None]:
         """The earlier partner of each view of a window among the window's views before it."""
@@ -1060,23 +582,22 @@ class FunctionTagger:
         # The shape features depend on these alone (length and removed buckets end at 20 and
         # 3, openings are the model's own), so the table stays small.
         opening = view.opening if self._config.opening else ""
-        if opening and f"rw0={opening}" not in self._attributes:
+        if opening and f"rw0={opening}" not in self._chain.attributes:
             # An opening word the model never kept has no row: one key for all of them keeps
             # the table as small as the model's vocabulary of openings.
             opening = ""
         key = (min(len(view.words), 20), min(view.removed, 3), view.complete, opening)
         rows = self._shapes.get(key)
         if rows is None:
-            rows = self._rows(_shape_features(view, self._config))
+            rows = self._chain.rows(_shape_features(view, self._config))
             self._shapes[key] = rows
         return rows
 
     def _decode_partial(self, context: Sequence[UtteranceView],
-                        current: UtteranceView) -> tuple[int, FloatArray]:
-        """Index of the last position's Viterbi label and every label's marginal there: the
-        part of :meth:`_last_step` (same errors) that the exactness tests compare."""
-        k, _, _, _, probs = self._last_step(self.context_window(context), check_view(current))
-        return k, probs
+                        current: UtteranceView) -> EndStep:
+        """:meth:`_last_step` after ``context`` (same errors), which the agreement tests hold
+        to crfsuite."""
+        return self._last_step(self.context_window(context), check_view(current))
 
     def context_window(self, context: Sequence[UtteranceView]) -> ContextWindow:
         """The last :attr:`context` views of ``context`` with their recursions, for
@@ -1107,8 +628,8 @@ class FunctionTagger:
         """
         if not self._context:
             return window
-        if not self._compiled or (window.views and len(window.rows) != len(window.views)):
-            # numba's exp is not the C library's here, or the window was not made here.
+        if window.views and len(window.rows) != len(window.views):
+            # The window was not made here: it keeps no rows to slide.
             return self.context_window((*window.views, view))
         own = self._own_rows(view, memo)
         link = self._link_rows(window.views[-1], view, window.carry) if window.views else ()
@@ -1129,24 +650,18 @@ class FunctionTagger:
             flat += own_rows
             flat += link_rows
             ends.append(len(flat))
-        size = len(self._label_names)
-        forward, best = np.empty(size), np.empty(size)
-        if not chain_carry(self._state, np.array(flat, dtype=np.int64),
-                           np.array(ends, dtype=np.int64), exp_transitions=self._exp_transitions,
-                           transitions=self._transitions, forward_out=forward, best_out=best):
+        try:
+            forward, best = self._chain.carry(flat, ends)
+        except OverflowError:
             return ContextWindow(views, None, rows)
-        forward.flags.writeable = False
-        best.flags.writeable = False
         last = views[-1]
         return ContextWindow(views, _Carry(
             forward=forward, best=best, same=self._follow_rows(last, changed=False),
             other=self._follow_rows(last, changed=True)), rows)
 
     def _last_step(self, window: ContextWindow, current: UtteranceView,
-                   memo: WordsMemo | None = None) -> tuple[int, float, int, float, FloatArray]:
-        """The last position's Viterbi label, its marginal, the coarse function :meth:`_guess`
-        would choose (enum index; fine models only, else meaningless) with its confidence, and
-        every label's marginal, after ``window`` (``current`` a checked view).
+                   memo: WordsMemo | None = None) -> EndStep:
+        """The last position of the chain ``window`` then ``current`` (a checked view).
 
         Raises
         ------
@@ -1156,6 +671,7 @@ class FunctionTagger:
         # The rows of utterance_features(current, previous), in its order.
         rows = self._own_rows(current, memo)
         partner: UtteranceView | None = None
+        previous: UtteranceView | None = None
         if window.views:
             previous = window.views[-1]
             carry = window.carry
@@ -1164,67 +680,17 @@ class FunctionTagger:
             if self._lookback:
                 partner = earlier_partner(window.views, current.speaker)
             rows += self._link_rows(previous, current, carry, partner)
-            carry_forward, carry_best = carry.forward, carry.best
+            step = self._chain.end_step(rows, (carry.forward, carry.best))
         else:
-            previous = None
             rows += self._opening
-            carry_forward = carry_best = self._no_carry
-        if not self._compiled:
-            return self._last_step_numpy(rows, carry_forward, carry_best, previous, current,
-                                         partner=partner)
-        size = len(self._label_names)
-        out = np.empty((4, self._work_width))
-        k, confidence, group, group_confidence = chain_end_step(
-            self._state, np.array(rows, dtype=np.int64), carry_forward=carry_forward,
-            carry_best=carry_best, group_of=self._group_of_rows, groups=self._group_rows,
-            sums=out[3], out=out)
-        if k < 0:
-            raise OverflowError("forward vector overflowed")
+            step = self._chain.end_step(rows, None)
         if current.complete and memo is None:
-            # A finished utterance is about to become context: its state scores after this
-            # predecessor are then at hand. (A caller with a memo of its own slides a window of
-            # its own, extend_window, which does not read them.) Copies, so the cache holds two
-            # vectors rather than the whole work block.
-            scores = out[0, :size].copy()
-            exps = out[1, :size].copy()
-            scores.flags.writeable = False
-            exps.flags.writeable = False
-            self._states.put((id(previous), id(partner), id(current)),
-                             (previous, partner, current, scores, exps))
-        if self._coarse_from == "label":
-            group = self._group_list[k]
-            group_confidence = float(out[3, group])
-        return k, confidence, group, group_confidence, out[2, :size]
-
-    def _last_step_numpy(self, rows: tuple[int, ...], carry_forward: FloatArray,
-                         carry_best: FloatArray, previous: UtteranceView | None,
-                         current: UtteranceView, *, partner: UtteranceView | None,
-                         ) -> tuple[int, float, int, float, FloatArray]:
-        """:meth:`_last_step`'s arithmetic in numpy, where the compiled exp is not the C
-        library's."""
-        scores = self._state_scores(rows)
-        exps = self._exp(scores)
-        if len(carry_forward):
-            forward = carry_forward * exps
-            viterbi = carry_best + scores
-        else:
-            forward = exps
-            viterbi = scores
-        scale = self._scale(forward)
-        if current.complete:
-            scores.flags.writeable = False
-            exps.flags.writeable = False
-            self._states.put((id(previous), id(partner), id(current)),
-                             (previous, partner, current, scores, exps))
-        # At the last position crfsuite's backward vector is the scale factor and its marginal
-        # alpha * beta / scale, alpha the scaled forward vector; its Viterbi takes the first of
-        # equal final scores, as argmax does.
-        probs: FloatArray = forward * scale
-        probs *= scale
-        probs /= scale
-        k = int(viterbi.argmax())
-        group, group_confidence = self._group_at(k, probs)
-        return k, float(probs[k]), group, group_confidence, probs
+            # A finished utterance is about to become context: its rows after this predecessor
+            # are then at hand. (A caller with a memo of its own slides a window of its own,
+            # extend_window, which does not read them.)
+            self._context_rows.put((id(previous), id(partner), id(current)),
+                                   (previous, partner, current, rows))
+        return step
 
     def label_partial(self, context: Sequence[UtteranceView],
                       current: UtteranceView) -> FunctionGuess:
@@ -1258,15 +724,22 @@ class FunctionTagger:
         them out of the shared cache.
         """
         try:
-            k, confidence, group, group_confidence, _ = self._last_step(window, current, memo)
+            step = self._last_step(window, current, memo)
         except OverflowError:
             return self._guess(*self._label_partial_crfsuite(window.views, current))
-        label = self._label_names[k]
+        label = self._label_names[step.label]
+        confidence = step.confidence
         if self._scheme == "coarse":
             return FunctionGuess(label=label, confidence=confidence,
                                  function=self._coarse[label], function_confidence=confidence)
-        return FunctionGuess(label=label, confidence=confidence, function=self._functions[group],
-                             function_confidence=group_confidence)
+        if self._coarse_from == "label":
+            group = self._group_list[step.label]
+            return FunctionGuess(label=label, confidence=confidence,
+                                 function=self._functions[group],
+                                 function_confidence=float(step.group_sums[group]))
+        return FunctionGuess(label=label, confidence=confidence,
+                             function=self._functions[step.group],
+                             function_confidence=step.group_confidence)
 
     def _label_partial_crfsuite(self, context: Sequence[UtteranceView],
                                 current: UtteranceView) -> tuple[str, dict[str, float]]:
@@ -1291,8 +764,7 @@ class FunctionTagger:
             previous = view
         xseq.append(utterance_features(current, previous, self._config,
                                        partner=self._partner_in(window, current.speaker)))
-        labels, marginals = self._crf.tag_with_marginals(xseq)
-        return labels[-1], marginals
+        return self._chain.reference(xseq)
 
     def label_conversation(self, utterances: Sequence[UtteranceView]) -> list[FunctionGuess]:
         """Labels of a whole chain of utterances, decoded jointly (batch use, evaluation).

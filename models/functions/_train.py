@@ -21,17 +21,14 @@ from dataclasses import dataclass, field, replace
 from midstream import SWBD42_CLASSES, Conversation, InputError, UtteranceFunction
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import shift_state_weights, train_crf
-from midstream.models.functions._tagger import (
-    SCHEMES,
+from midstream.models.functions._features import (
     Features,
     FunctionFeatureConfig,
-    FunctionTagger,
     chain_partners,
-    clean_view,
-    conversation_views,
     utterance_features,
 )
-from midstream.models.functions._views import UtteranceView
+from midstream.models.functions._tagger import SCHEMES, FunctionTagger
+from midstream.models.functions._views import UtteranceView, clean_view, conversation_views
 
 _log = logging.getLogger(__name__)
 

@@ -2,13 +2,12 @@
 one a caller built.
 
 :func:`build_view` is the only place that decides which words of an utterance the function tagger
-sees: training and offline evaluation (gold labels,
-:func:`~midstream.models.functions._tagger.clean_view`) and the live engine (the word tagger's
-labels) all call it, so a model is served the view it was trained on. The same holds for the
-context: every utterance, also one with no word left after cleaning ("uh"), takes its place on the
-chain, offline and live.
+sees: training and offline evaluation (gold labels, :func:`clean_view`) and the live engine (the
+word tagger's labels) all call it, so a model is served the view it was trained on. The same
+holds for the context: every utterance, also one with no word left after cleaning ("uh"), takes
+its place on the chain, offline and live.
 
-Kept apart from :mod:`~midstream.models.functions._tagger` because that module may be compiled
+Kept apart from the tagger and its features because those modules may be compiled
 (``core/_build.py``): a compiled dataclass checks its field types itself and a compiled function
 its argument types, so a caller's malformed view would raise a bare ``TypeError`` before
 :func:`check_view` could name the problem as an :class:`~midstream.InputError`. Here, as plain
@@ -18,12 +17,19 @@ Python, the view holds whatever it was given until it is checked.
 from __future__ import annotations
 
 import itertools
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 
-from midstream import REMOVED_FROM_CLEAN_TEXT, DisfluencyLabel, InputError
+from midstream import (
+    REMOVED_FROM_CLEAN_TEXT,
+    Conversation,
+    DisfluencyLabel,
+    InputError,
+    Utterance,
+)
 
-__all__ = ["UtteranceView", "build_view", "check_view"]
+__all__ = ["UtteranceView", "build_view", "check_view", "clean_view", "conversation_views",
+           "iter_views"]
 
 # Removed opening words whose identity the view keeps: a filled pause or an editing term says
 # how the speaker starts ("sorry", "pardon", "uh"); a reparandum or restart is content that the
@@ -128,3 +134,42 @@ def check_view(view: object) -> UtteranceView:
     if not isinstance(view.opening, str):
         raise InputError("UtteranceView.opening must be a string")
     return view
+
+
+def clean_view(conversation: Conversation, utterance: Utterance,
+               upto: int | None = None) -> UtteranceView:
+    """The view of one annotated utterance, cleaned with the gold disfluency labels.
+
+    Words labelled filler, editing term, reparandum or restart are removed (and counted); a
+    conversation without disfluency annotation keeps all its words. Word fragments ("s-") are
+    dropped uncounted. The rule is :func:`build_view`'s, which the live engine calls too.
+
+    Parameters
+    ----------
+    conversation, utterance
+        The utterance and the conversation whose words and labels it indexes.
+    upto
+        Only the utterance's first ``upto`` words (as a stream would have them so far); the view
+        is then incomplete unless ``upto`` covers the whole utterance.
+    """
+    labels = conversation.labels
+    indices = utterance.words if upto is None else utterance.words[:upto]
+    words = conversation.words
+    # A whole utterance counts as complete even when the corpus marks it abandoned (see
+    # UtteranceView.complete).
+    whole = upto is None or upto >= len(utterance.words)
+    return build_view(utterance.speaker,
+                      [(words[i].text, words[i].fragment, labels[i] if labels is not None
+                        else None) for i in indices],
+                      complete=whole)
+
+
+def conversation_views(conversation: Conversation) -> list[UtteranceView]:
+    """Views of all utterances of a conversation, in the conversation's order."""
+    return [clean_view(conversation, u) for u in conversation.utterances]
+
+
+def iter_views(conversations: Iterable[Conversation]) -> Iterator[list[UtteranceView]]:
+    """Views per conversation, for batch use (training, evaluation)."""
+    for conversation in conversations:
+        yield conversation_views(conversation)

@@ -13,11 +13,16 @@ Reported keys (all in ``[0, 1]`` unless a unit is named):
 ``disfluency.reparandum_no_fragments.f1``
     reparandum F1 with word fragments left out (recognisers rarely emit fragments).
 ``disfluency.edited_no_fragments.f1``
-    F1 of EDITED words, fragments left out: a word counts as edited when it is a reparandum or
-    a restart word, on both sides. This is how published Switchboard disfluency figures are
-    scored (the Treebank's EDITED nodes cover reparanda and restarts; Charniak & Johnson,
-    NAACL 2001, and Johnson & Charniak, ACL 2004, score words under EDITED, fragments
-    excluded: from memory).
+    F1 of EDITED words, fragments left out, as published Switchboard disfluency figures are
+    scored (Charniak & Johnson, NAACL 2001, and Johnson & Charniak, ACL 2004, score the words
+    under the Treebank's EDITED nodes, fragments excluded: from memory). EDITED nodes come from
+    the bracket markup (Meteer et al. 1995): reparanda and bracket restarts ``[ X + ]``. An
+    abandoned utterance (``-/``) is an incomplete sentence in the Treebank, not an EDITED node
+    (from memory), so on the gold side its restart words are not EDITED; on the predicted side
+    every reparandum or restart word is, whatever its kind.
+``disfluency.edited_with_abandoned_no_fragments.f1``
+    the same with abandoned utterances' restart words counted as EDITED on the gold side too
+    (our restart label covers both kinds; this is the stricter figure).
 ``disfluency.restart.{bracket,abandoned}.{precision,recall,f1}``
     restart words of each kind (``corpora/_restarts.py``). Gold kind: a restart word inside an
     abandoned utterance is ``abandoned``, any other ``bracket``. Predicted kind: a restart word
@@ -176,6 +181,7 @@ class _Tally:
     )
     no_fragments: BinaryCounts = field(default_factory=BinaryCounts)
     edited: BinaryCounts = field(default_factory=BinaryCounts)
+    edited_with_abandoned: BinaryCounts = field(default_factory=BinaryCounts)
     restart_kinds: dict[str, BinaryCounts] = field(
         default_factory=lambda: {kind: BinaryCounts() for kind in _RESTART_KINDS}
     )
@@ -313,11 +319,15 @@ def _replay(
             tally.at_delay[d].add(bool(at) and at[-1] == DisfluencyLabel.REPARANDUM, is_rep)
         tally.edit_counts.add([label for _, label in history[position]])
         tally.final_delays.append(final_step[position] - position)
-    for position in range(n):
-        if not channel.words[position].fragment:
-            tally.edited.add(predicted[position] in _EDITED, gold[position] in _EDITED)
-    predicted_kind = restart_kinds(predicted, final_end)
     abandoned = {i for u in conversation.utterances if u.abandoned for i in u.words}
+    for position, index in enumerate(channel.indices):
+        if not channel.words[position].fragment:
+            edited = predicted[position] in _EDITED
+            # The Treebank's EDITED nodes come from the bracket markup alone: an abandoned
+            # utterance's words sit in an incomplete sentence, not under EDITED (from memory).
+            tally.edited.add(edited, gold[position] in _EDITED and index not in abandoned)
+            tally.edited_with_abandoned.add(edited, gold[position] in _EDITED)
+    predicted_kind = restart_kinds(predicted, final_end)
     for position, index in enumerate(channel.indices):
         gold_kind = ""
         if gold[position] is DisfluencyLabel.RESTART:
@@ -383,6 +393,7 @@ def evaluate_words(
         result[f"disfluency.{label.value}.f1"] = counts.f1
     result["disfluency.reparandum_no_fragments.f1"] = tally.no_fragments.f1
     result["disfluency.edited_no_fragments.f1"] = tally.edited.f1
+    result["disfluency.edited_with_abandoned_no_fragments.f1"] = tally.edited_with_abandoned.f1
     for kind, counts in tally.restart_kinds.items():
         result[f"disfluency.restart.{kind}.precision"] = counts.precision
         result[f"disfluency.restart.{kind}.recall"] = counts.recall

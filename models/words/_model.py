@@ -6,6 +6,7 @@ each speaker channel gets its own :class:`~midstream.models.words._decoder.Chann
 
 from __future__ import annotations
 
+import os
 from collections.abc import Mapping, Sequence
 from importlib import resources
 from pathlib import Path
@@ -93,7 +94,7 @@ class WordModel:
         return cls(artifact, CrfTagger.from_bytes(artifact.crf))
 
     @classmethod
-    def load(cls, path: Path | None = None) -> WordModel:
+    def load(cls, path: str | os.PathLike[str] | None = None) -> WordModel:
         """Load a ``.tagger`` word model (the shipped one when ``path`` is None)."""
         path = default_words_model_path() if path is None else path
         return cls.from_artifact(load_artifact(path, expected_kind="words"))

@@ -6,10 +6,11 @@ import hashlib
 import json
 import struct
 import zlib
+from pathlib import Path
 
 import pytest
-from midstream import ModelError
-from midstream.models._artifact import FORMAT_VERSION, ModelArtifact
+from midstream import ModelError, NotFoundError
+from midstream.models._artifact import FORMAT_VERSION, ModelArtifact, load_artifact
 
 _HEADER = struct.Struct("<8sIIQ32s")
 _MAGIC = b"\x89MSM\r\n\x1a\n"
@@ -51,3 +52,12 @@ def test_a_cut_compressed_payload_is_a_model_error() -> None:
     payload = zlib.compress(b"lCRF" + bytes(5000))[:-6]
     with pytest.raises(ModelError, match="truncated"):
         ModelArtifact.from_bytes(_container(2, meta, payload))
+
+
+def test_a_model_file_loads_from_a_string_path_as_from_a_path(tmp_path: Path) -> None:
+    # Users type paths as strings; the loaders take either.
+    path = tmp_path / "m.tagger"
+    path.write_bytes(_artifact().to_bytes())
+    assert load_artifact(str(path)) == load_artifact(path) == _artifact()
+    with pytest.raises(NotFoundError, match="model file not found"):
+        load_artifact(str(tmp_path / "missing.tagger"))

@@ -20,7 +20,8 @@ from hypothesis import strategies as st
 from midstream import Conversation, EventError, Utterance, UtteranceFunction, Word
 from midstream.models._artifact import ModelArtifact
 from midstream.models.boundaries._model import BoundaryModel, overlap_flags
-from midstream.models.functions._tagger import FunctionTagger, clean_view
+from midstream.models.functions._tagger import FunctionTagger
+from midstream.models.functions._views import clean_view
 from midstream.models.words._decoder import ChannelDecoder, DecoderConfig, TokenState
 from midstream.models.words._model import WordModel
 from midstream.models.words._tags import channel_sequences

@@ -17,7 +17,8 @@ from midstream.models.functions._eval import (
     evaluate_functions,
     replay_labels,
 )
-from midstream.models.functions._tagger import FunctionTagger, clean_view
+from midstream.models.functions._tagger import FunctionTagger
+from midstream.models.functions._views import clean_view
 from sklearn.metrics import accuracy_score, f1_score, precision_recall_fscore_support
 
 WEIGHTS = Path(__file__).resolve().parents[2] / "models" / "weights"

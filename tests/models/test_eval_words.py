@@ -14,7 +14,7 @@ from midstream.models.words._eval import BinaryCounts, evaluate_words, restart_k
 from midstream.models.words._model import WordModel, default_words_model_path
 from midstream.models.words._tags import channel_sequences, decode_tag
 from sklearn.metrics import precision_recall_fscore_support
-from word_kit import invented_conversation, tiny_model
+from word_kit import invented_abandoning, invented_conversation, tiny_model
 
 
 @pytest.fixture(scope="module")
@@ -69,16 +69,21 @@ def test_streaming_scores_match_scikit_learn_on_final_labels(model: WordModel) -
     assert figures["segmentation.precision"] == pytest.approx(precision)
 
 
-def test_edited_f1_counts_reparandum_and_restart_words_together(model: WordModel) -> None:
+def test_edited_f1_scores_the_words_the_treebank_puts_under_edited(model: WordModel) -> None:
     # Published Switchboard figures score EDITED words: reparandum and restart words together,
     # fragments excluded (Charniak & Johnson, NAACL 2001; Johnson & Charniak, ACL 2004; from
-    # memory). Checked against scikit-learn's binary F1 over the same words.
+    # memory). EDITED nodes come from the bracket markup (Meteer et al. 1995); an abandoned
+    # utterance is an incomplete sentence, not EDITED (from memory), so its restart words count
+    # only in the stricter key. Both checked against scikit-learn's binary F1 over the same words.
     conversations = [invented_conversation(seed) for seed in (210, 211, 212)]
+    conversations.append(invented_abandoning(213))
     figures = evaluate_words(conversations, model)
     edited = {DisfluencyLabel.REPARANDUM.value, DisfluencyLabel.RESTART.value}
     gold: list[bool] = []
+    gold_with_abandoned: list[bool] = []
     final: list[bool] = []
     for conversation in conversations:
+        abandoned = {i for u in conversation.utterances if u.abandoned for i in u.words}
         for channel in channel_sequences(conversation):
             decoder = ChannelDecoder(model)
             last: dict[int, str] = {}
@@ -91,11 +96,16 @@ def test_edited_f1_counts_reparandum_and_restart_words_together(model: WordModel
             assert channel.tags is not None
             for k, (tag, word) in enumerate(zip(channel.tags, channel.words, strict=True)):
                 if not word.fragment:
-                    gold.append(decode_tag(tag)[1].value in edited)
+                    is_edited = decode_tag(tag)[1].value in edited
+                    gold.append(is_edited and channel.indices[k] not in abandoned)
+                    gold_with_abandoned.append(is_edited)
                     final.append(last[k] in edited)
-    assert any(gold)
+    assert any(gold) and sum(gold_with_abandoned) > sum(gold)
     _, _, f1, _ = precision_recall_fscore_support(gold, final, average="binary", zero_division=0)
     assert figures["disfluency.edited_no_fragments.f1"] == pytest.approx(f1)
+    _, _, f1, _ = precision_recall_fscore_support(gold_with_abandoned, final, average="binary",
+                                                  zero_division=0)
+    assert figures["disfluency.edited_with_abandoned_no_fragments.f1"] == pytest.approx(f1)
 
 
 def test_restart_kinds_follow_utterance_ends() -> None:
@@ -116,6 +126,7 @@ def test_report_has_every_documented_key(model: WordModel) -> None:
     for key in (
         "disfluency.reparandum_no_fragments.f1",
         "disfluency.edited_no_fragments.f1",
+        "disfluency.edited_with_abandoned_no_fragments.f1",
         "disfluency.restart.bracket.f1",
         "disfluency.restart.abandoned.f1",
         "disfluency.offline.reparandum.f1",

@@ -15,22 +15,20 @@ from hypothesis import strategies as st
 from midstream import Conversation, InputError, ModelError, UtteranceFunction
 from midstream._schemes import coarse_function
 from midstream.models._artifact import ModelArtifact
-from midstream.models.functions._tagger import (
+from midstream.models.functions._features import (
     MAX_FEATURE_WORDS,
     FunctionFeatureConfig,
-    FunctionTagger,
-    clean_view,
-    conversation_views,
     sequence_features,
     utterance_features,
 )
+from midstream.models.functions._tagger import FunctionTagger
 from midstream.models.functions._train import (
     FunctionTrainingOptions,
     build_sequences,
     conversation_folds,
     train_function_model,
 )
-from midstream.models.functions._views import UtteranceView
+from midstream.models.functions._views import UtteranceView, clean_view, conversation_views
 
 
 @pytest.fixture(scope="module")

@@ -10,17 +10,16 @@ from function_kit import invented_corpus
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from midstream import Conversation, InputError
-from midstream.models.functions._tagger import (
+from midstream.models.functions._features import (
     MAX_FEATURE_WORDS,
     PARTNER_LOOKBACK,
     FunctionFeatureConfig,
-    FunctionTagger,
     chain_partners,
-    conversation_views,
     earlier_partner,
     sequence_features,
     utterance_features,
 )
+from midstream.models.functions._tagger import FunctionTagger
 from midstream.models.functions._train import (
     FunctionTrainingOptions,
     build_sequences,
@@ -28,7 +27,7 @@ from midstream.models.functions._train import (
     train_function_model,
     with_decode_bias,
 )
-from midstream.models.functions._views import UtteranceView
+from midstream.models.functions._views import UtteranceView, conversation_views
 
 PARTNER = FunctionFeatureConfig(partner=True)
 
@@ -147,9 +146,9 @@ def test_a_decode_bias_shifts_one_labels_score_everywhere_and_is_recorded() -> N
     shifted = with_decode_bias(artifact, (("answer", 2.0),))
     assert shifted.hyper_parameters["decode_bias"] == {"answer": 2.0}
     before, after = (FunctionTagger.from_artifact(a) for a in (artifact, shifted))
-    row = before._attributes["bias"]
+    row = before._chain.attributes["bias"]
     column = before.labels.index("answer")
-    assert after._state[row, column] == before._state[row, column] + 2.0
+    assert after._chain._state[row, column] == before._chain._state[row, column] + 2.0
     views = conversation_views(conversations[0])
     for old, new in zip(before.label_conversation(views), after.label_conversation(views),
                         strict=True):
@@ -163,7 +162,8 @@ def test_cross_validation_scores_every_decode_bias_on_the_same_folds() -> None:
     seen: list[float] = []
 
     def score(tagger: FunctionTagger, held: Sequence[Conversation]) -> dict[str, float]:
-        seen.append(tagger._state[tagger._attributes["bias"], tagger.labels.index("answer")])
+        chain = tagger._chain
+        seen.append(chain._state[chain.attributes["bias"], tagger.labels.index("answer")])
         return {"score": float(len(held))}
 
     results = cross_validate_biases(conversations, options, [(), (("answer", 1.0),)],

@@ -14,8 +14,7 @@ import pytest
 from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceHypothesis, Word
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
-from midstream.models.functions._tagger import conversation_views
-from midstream.models.functions._views import UtteranceView, build_view
+from midstream.models.functions._views import UtteranceView, build_view, conversation_views
 
 F = DisfluencyLabel.FLUENT
 
