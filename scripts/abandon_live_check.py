@@ -2,7 +2,7 @@
 
 The cues' threshold is chosen on gold units (``train_abandon_cues``); live, the decoder judges
 the units between the ends it predicts. This script measures the difference on the TRAIN split
-only: cues are trained on two of three conversation folds (``_folds``, seed 0) and the word
+only: cues are trained on two of three conversation folds (``word_folds``, seed 0) and the word
 model's CRF decodes conversations of the third fold word by word. Every judgement is recorded
 (the unit's probability, the CRF's end probability at that moment, the open words a revision
 would reach) without revising anything, and restart F1 and EDITED F1 (no fragments) are
@@ -28,12 +28,16 @@ from typing import Any
 
 from midstream import DisfluencyLabel
 from midstream.corpora import read_corpus
-from midstream.models._artifact import load_artifact
-from midstream.models.words._abandon import AbandonCues
-from midstream.models.words._decoder import ChannelDecoder
-from midstream.models.words._model import WordModel
-from midstream.models.words._tags import channel_sequences, decode_tag
-from midstream.models.words._train import _fit_abandon, _folds, abandon_examples
+from midstream.models import WordModel
+from midstream.models.probes import (
+    AbandonCues,
+    ChannelDecoder,
+    abandon_examples,
+    channel_sequences,
+    decode_tag,
+    fit_abandon,
+)
+from midstream.models.training import load_artifact, word_folds
 
 Record = tuple[str, float, float, list[int]]
 
@@ -64,7 +68,7 @@ def main() -> None:
     args = parser.parse_args()
     corpora = Path(os.environ.get("MIDSTREAM_CORPORA", "../shared/corpora"))
     conversations = list(read_corpus(corpora / "swda", split="train"))
-    fold_of = _folds(conversations, 3, None, 0)
+    fold_of = word_folds(conversations, 3)
     artifact = load_artifact(args.model, expected_kind="words")
     records: list[Record] = []
     channels: list[tuple[str, list[DisfluencyLabel], list[DisfluencyLabel], list[bool]]] = []
@@ -72,7 +76,7 @@ def main() -> None:
     ChannelDecoder._judge = _recorder(records, channel)  # type: ignore[method-assign]
     for k in args.folds:
         train = [c for j in range(3) if j != k for c in fold_of[j]]
-        cues = AbandonCues(weights=_fit_abandon(list(abandon_examples(train))), threshold=0.0)
+        cues = AbandonCues(weights=fit_abandon(list(abandon_examples(train))), threshold=0.0)
         features = dict(artifact.features)
         features["abandon"] = cues.to_json()
         model = WordModel.from_artifact(dataclasses.replace(artifact, features=features))

@@ -16,12 +16,12 @@ from __future__ import annotations
 import argparse
 import itertools
 import json
+import os
 import statistics
 import subprocess
 import sys
 from pathlib import Path
 
-from _benchkit import corpora_root
 from midstream.corpora import read_corpus
 from midstream.models import DecoderConfig, WordModel, default_words_model_path
 from midstream.models.evaluation import evaluate_words
@@ -32,6 +32,15 @@ from midstream.models.training import (
     train_word_artifact,
     word_folds,
 )
+
+
+def corpora_root() -> Path:
+    """``$MIDSTREAM_CORPORA`` or ``../shared/corpora`` beside the checkout."""
+    override = os.environ.get("MIDSTREAM_CORPORA")
+    if override:
+        return Path(override)
+    return Path(__file__).resolve().parents[2] / "shared" / "corpora"
+
 
 _FOLDS = 3
 _KEYS = ("disfluency.reparandum_no_fragments.f1", "disfluency.offline.reparandum.f1",

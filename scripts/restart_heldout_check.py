@@ -47,19 +47,27 @@ import numpy as np
 import numpy.typing as npt
 from midstream import Conversation
 from midstream.corpora import read_corpus
-from midstream.models._artifact import load_artifact, save_artifact
-from midstream.models._lattice import decode_lattice
-from midstream.models.words._abandon import WHOLE_UNIT, AbandonCues, abandon_features
-from midstream.models.words._classes import CLOSED_CLASSES
-from midstream.models.words._features import FeatureConfig, features_at, tokens_from_words
-from midstream.models.words._model import WordModel, default_words_model_path
-from midstream.models.words._tags import END_SUFFIX, channel_sequences
-from midstream.models.words._train import (
+from midstream.models import WordModel, default_words_model_path
+from midstream.models.probes import (
+    CLOSED_CLASSES,
+    END_SUFFIX,
+    WHOLE_UNIT,
+    AbandonCues,
     AbandonExample,
+    FeatureConfig,
+    abandon_features,
+    channel_sequences,
+    decode_lattice,
+    features_at,
+    fit_abandon,
+    tokens_from_words,
+)
+from midstream.models.training import (
     WordTrainingConfig,
-    _fit_abandon,
-    _folds,
+    load_artifact,
+    save_artifact,
     train_word_artifact,
+    word_folds,
 )
 
 FloatArray = npt.NDArray[np.float64]
@@ -155,7 +163,7 @@ def _judged(folds: Sequence[Sequence[Held]], examples: Sequence[Sequence[Example
     for k in range(len(folds)):
         train = [AbandonExample(features=f, abandoned=g, words=1)
                  for j in range(len(folds)) if j != k for _, f, g, _ in examples[j]]
-        cues = AbandonCues(weights=_fit_abandon(train), threshold=1.0)
+        cues = AbandonCues(weights=fit_abandon(train), threshold=1.0)
         probabilities.append([cues.probability(f) for _, f, _, _ in examples[k]])
     positives = sum(g for fold in examples for _, _, g, _ in fold)
     print(f"\n{title}: {sum(map(len, examples))} judged, {positives} gold positive")
@@ -283,7 +291,7 @@ def main() -> None:
     args = parser.parse_args()
     corpora = Path(os.environ.get("MIDSTREAM_CORPORA", "../shared/corpora"))
     conversations = list(read_corpus(corpora / "swda", split="train"))
-    fold_of = _folds(conversations, 3, args.subset, 0)
+    fold_of = word_folds(conversations, 3, subset=args.subset, seed=0)
     config = _config_of(args.model)
     args.fold_dir.mkdir(parents=True, exist_ok=True)
     folds: list[list[Held]] = []

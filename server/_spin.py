@@ -5,7 +5,7 @@ virtual machine a halted virtual CPU goes back to the hypervisor, which may run 
 that physical core; the next frame then starts on cold caches and a core that has to be woken.
 On a 2-CPU virtual machine this cost a server at a thousand multiplexed conversations about a
 quarter more CPU per word and most of its p99 latency (the runs and their command:
-docs/service.md); the benchmark report (``scripts/bench_report.py --spin-steps``) measures both
+docs/service.md); the benchmark report (``midstream bench report --spin-steps``) measures both
 ways in one run.
 
 A spinner is a separate process (a thread would contend for the interpreter lock) pinned to one

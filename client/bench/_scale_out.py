@@ -10,7 +10,7 @@ Two ratios, each against a baseline measured in the same run:
 
 :func:`section` renders both as a Markdown section and :func:`write_section` puts it into a
 page between two marker comments, replacing what an earlier run left there, so
-``scripts/bench_report.py`` can carry it over when it rewrites the rest of the page.
+``midstream bench report`` can carry it over when it rewrites the rest of the page.
 """
 
 from __future__ import annotations
@@ -27,7 +27,7 @@ from midstream import build_name
 __all__ = ["BEGIN", "END", "Sweep", "cpu_per_word", "machine_load", "section",
            "step_passed", "write_section"]
 
-#: The markers around the section in a page (``scripts/bench_report.py`` keeps what is
+#: The markers around the section in a page (``midstream bench report`` keeps what is
 #: between them).
 BEGIN = "<!-- midstream bench --redis: begin -->"
 END = "<!-- midstream bench --redis: end -->"
@@ -45,7 +45,7 @@ def cpu_per_word(summary: dict[str, Any]) -> float:
 
 def step_passed(summary: dict[str, Any], p99_ms: float) -> bool:
     """Whether a run held its conversations: every one opened, every word answered, no error,
-    and the p99 latency within ``p99_ms`` (as ``scripts/bench_service.py`` counts a step)."""
+    and the p99 latency within ``p99_ms`` (as ``midstream bench service`` counts a step)."""
     return bool(summary["opened"] == summary["conversations"]
                 and summary["error_count"] == 0
                 and summary["words_answered"] == summary["words_sent"]

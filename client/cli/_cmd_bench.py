@@ -1,4 +1,10 @@
-"""``midstream bench``: load a server with many live conversations and measure it.
+"""``midstream bench``: load a server with many live conversations and measure it; and every
+other benchmark, as a subcommand.
+
+Without a subcommand it runs the load generator (below). The subcommands (``midstream bench
+decoder``, ``functions``, ``read``, ``ingest``, ``gc``, ``memory``, ``kept``, ``redis``,
+``service``, ``soak``, ``report``) live in :mod:`midstream.client.bench`, one module each; each
+pairs its run with a baseline measured in the same run and gives the ratio.
 
 ::
 
@@ -48,6 +54,7 @@ from __future__ import annotations
 import argparse
 import asyncio
 import functools
+import importlib
 import json
 import math
 import os
@@ -65,6 +72,7 @@ from pathlib import Path
 from typing import Any
 
 from midstream import CorpusNotFoundError, InputError, UnavailableError
+from midstream.client.bench import BENCHMARKS
 from midstream.client.bench._load import (
     DEFAULT_TICK_S,
     STEAL_NOTABLE_PERCENT,
@@ -96,8 +104,11 @@ _SMOKE = {"conversations": 4, "seconds": 2.0, "ramp": 0.2, "channels": 1}
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    # No abbreviated options: argparse matches abbreviations of this parser's options against
+    # a benchmark's own before handing them on ('soak --serve' read as an ambiguous '--server').
     parser = subparsers.add_parser(
-        "bench", help="load a server with concurrent conversations and measure latency",
+        "bench", allow_abbrev=False,
+        help="load a server with concurrent conversations and measure latency",
         description="Stream corpus words over N concurrent conversations at a fixed rate and "
                     "report words/s, word-to-hypothesis latency percentiles, errors by status "
                     "and (local servers) CPU and memory per conversation.")
@@ -181,6 +192,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help="a run of a few seconds (4 conversations, 2 s) to check the setup")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.set_defaults(handler=run)
+    # The other benchmarks; without one, the load run above (so existing command lines work).
+    benchmarks = parser.add_subparsers(
+        dest="benchmark", metavar="BENCHMARK", title="benchmarks (default: the load run above)")
+    for module in BENCHMARKS:
+        importlib.import_module(module).register(benchmarks)
 
 
 def load_script(corpus: Path | None, split: str, *, limit: int = _SCRIPT_WORDS

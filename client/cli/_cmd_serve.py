@@ -148,7 +148,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 #: Collector thresholds while serving. Everything the word path keeps long (history, replay,
 #: snapshots) is stored untracked (see midstream.server._kept), and the word path makes no
-#: reference cycles (every collection of scripts/bench_gc.py's runs freed none), so collections
+#: reference cycles (every collection of 'midstream bench gc' runs freed none), so collections
 #: only cost time. Only the youngest generation is collected automatically (Python's 700): an
 #: object that outlives one young collection is almost always a live conversation's state, which
 #: waits for that conversation's next word, so walking it again in older collections found

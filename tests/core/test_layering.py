@@ -1,12 +1,13 @@
 """No module reaches into a private part of another top-level package (a house rule).
 
 The top-level packages are the folders ``pyproject.toml`` maps to import names (``core`` is
-``midstream``, ``models`` is ``midstream.models``, ...). A module may import anything of its
-own package, but of another package only what that package makes public: its ``__init__``
-names and its public submodules (``midstream.models.training``, ``midstream.wire.convert``,
-``midstream.client.cli``). Importing a ``_``-prefixed module or name of another package fails
-here, in library code and in ``scripts/`` (entry points are held to the same rule, since they
-show a user how to drive the package). Tests are exempt: they test the private modules.
+``midstream``, ``models`` is ``midstream.models``, ...). A module may import anything of its own
+package, but of another package only what that package makes public: its ``__init__`` names and
+its public submodules (``midstream.models.training``, ``midstream.wire.convert``,
+``midstream.client.cli``, the ``probes`` modules the benchmarks time inner stages through).
+Importing a ``_``-prefixed module or name of another package fails here, in library code and in
+``scripts/`` (entry points are held to the same rule, since they show a user how to drive the
+package). Tests are exempt: they test the private modules.
 
 The check reads the sources with :mod:`ast` (nothing is imported), so it sees imports inside
 functions as well, and ``importlib.import_module`` calls with a literal name.
@@ -23,95 +24,6 @@ from pathlib import Path
 import pytest
 
 REPO = Path(__file__).resolve().parents[2]
-
-#: Scripts that time one private stage in-process, the way a test exercises it, and the private
-#: modules each may reach for that. Every other script and module holds to the rule, and an
-#: entry here that is no longer needed fails :func:`test_every_exemption_is_still_needed`, so
-#: the list only shrinks. The load generator (``client/bench/``) and the bench command are still
-#: private to the client; one harness behind ``midstream bench`` would empty those entries.
-WHITE_BOX_SCRIPTS: Mapping[str, frozenset[str]] = {
-    # The decoder and the feature function, timed word by word against a baseline.
-    "scripts/bench_engine.py": frozenset({
-        "midstream.models.words._decoder",
-        "midstream.models.words._features",
-    }),
-    # The function tagger's feature extraction and views, timed apart from decoding.
-    "scripts/bench_functions.py": frozenset({
-        "midstream.models.functions._features",
-        "midstream.models.functions._views",
-    }),
-    # The SwDA reader against a baseline that reads the same files without parsing them.
-    "scripts/bench_read.py": frozenset({
-        "midstream.corpora._swda",
-    }),
-    # The server's multiplexed frame path and its collector settings, without the network.
-    # The abandoned-unit decision replayed on train folds without applying it: the decoder's
-    # private steps, recorded one by one.
-    "scripts/abandon_live_check.py": frozenset({
-        "midstream.models._artifact",
-        "midstream.models.words._abandon",
-        "midstream.models.words._decoder",
-        "midstream.models.words._model",
-        "midstream.models.words._tags",
-        "midstream.models.words._train",
-    }),
-    # Second-stage restart decisions measured on held-out train folds: fold CRFs decoded
-    # offline with their lattice, judges fitted like the abandoned-unit cues.
-    "scripts/restart_heldout_check.py": frozenset({
-        "midstream.models._artifact",
-        "midstream.models._lattice",
-        "midstream.models.words._abandon",
-        "midstream.models.words._classes",
-        "midstream.models.words._features",
-        "midstream.models.words._model",
-        "midstream.models.words._tags",
-        "midstream.models.words._train",
-    }),
-    # The multiplexed stream's frame path that bench_gc and bench_ingest drive directly.
-    "scripts/_benchkit.py": frozenset({
-        "midstream.server._many",
-    }),
-    "scripts/bench_gc.py": frozenset({
-        "midstream.client.cli._cmd_bench",
-        "midstream.client.cli._cmd_serve",
-        "midstream.server._many",
-    }),
-    "scripts/bench_ingest.py": frozenset({
-        "midstream.client.cli._cmd_bench",
-        "midstream.server._many",
-        "midstream.server._metrics",
-        "midstream.server._servicer",
-    }),
-    "scripts/bench_report.py": frozenset({
-        "midstream.client.bench._scale_out",
-        "midstream.client.cli._cmd_serve",
-    }),
-    # What the shared Redis log costs per word, the session's journal driven directly.
-    "scripts/bench_redis.py": frozenset({
-        "midstream.client.cli._cmd_bench",
-        "midstream.server._ingest",
-        "midstream.server._journal",
-        "midstream.server._metrics",
-        "midstream.server._registry",
-    }),
-    # What a session keeps, measured against its byte estimate.
-    "scripts/measure_kept.py": frozenset({
-        "midstream.server._metrics",
-        "midstream.server._registry",
-        "midstream.server._session",
-    }),
-    # The load generator, until it is reachable from ``midstream bench`` (see above).
-    "scripts/bench_memory.py": frozenset({
-        "midstream.client.cli._cmd_bench",
-        "midstream.client.bench._load",
-    }),
-    "scripts/bench_service.py": frozenset({
-        "midstream.client.cli._cmd_bench",
-        "midstream.client.bench._load",
-        "midstream.client.bench._scrape",
-    }),
-}
-
 
 @dataclass(frozen=True, slots=True)
 class Reach:
@@ -215,19 +127,12 @@ def _all_reaches() -> list[Reach]:
 
 
 def test_no_module_imports_a_private_module_of_another_package() -> None:
-    offending = [reach for reach in _all_reaches()
-                 if reach.private_module not in WHITE_BOX_SCRIPTS.get(reach.path, frozenset())]
+    # No exemptions: a benchmark that times one private stage reaches it through the owning
+    # package's public hook (``midstream.models.probes``, ``midstream.server.probes``,
+    # ``midstream.corpora.probes``), as any user's script would.
+    offending = _all_reaches()
     assert not offending, ("private modules or names of another package imported (use or add "
                            "its public API):\n" + "\n".join(map(str, offending)))
-
-
-def test_every_exemption_is_still_needed() -> None:
-    used: dict[str, set[str]] = {}
-    for reach in _all_reaches():
-        used.setdefault(reach.path, set()).add(reach.private_module)
-    stale = {path: sorted(modules - used.get(path, set()))
-             for path, modules in WHITE_BOX_SCRIPTS.items() if modules - used.get(path, set())}
-    assert not stale, f"exemptions no longer used, remove them: {stale}"
 
 
 def test_the_checker_sees_every_way_of_reaching_in() -> None:

@@ -143,7 +143,7 @@ def test_gc_thresholds_are_three_positive_integers() -> None:
 def test_the_default_thresholds_leave_older_generations_to_the_timer() -> None:
     g0, g1, g2 = _cmd_serve.parse_gc_thresholds(_cmd_serve._GC_THRESHOLDS)
     # Young collections stay small (short pauses); older ones effectively never run by
-    # themselves (scripts/bench_gc.py: they walk live conversations and free nothing).
+    # themselves (midstream bench gc: they walk live conversations and free nothing).
     assert g0 <= 1000 and g1 >= 100_000 and g2 >= 100_000
     assert _cmd_serve._FULL_COLLECTION_S > 0
 

@@ -277,7 +277,7 @@ def update_into_wire(update: HypothesisUpdate, message: pb.Update) -> None:
     The same content as :func:`update_to_wire`, but built in place: each state is made inside
     its parent instead of being built alone and copied in, and the caller's message need not be
     copied into its frame either (a copy per nesting level was a third of the conversion's CPU,
-    ``scripts/bench_ingest.py``). The field mapping repeats :func:`word_state_to_wire` and
+    ``midstream bench ingest``). The field mapping repeats :func:`word_state_to_wire` and
     :func:`utterance_state_to_wire` on purpose: a shared dict of field values per state measured
     slower on this per-word path; ``tests/wire/test_convert.py`` holds the two forms equal.
     """

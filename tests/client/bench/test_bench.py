@@ -1,4 +1,4 @@
-"""Smoke tests of the load generator, ``midstream bench`` and the benchmark scripts.
+"""Smoke tests of the load generator, ``midstream bench`` and its benchmark subcommands.
 
 They run for seconds against real servers with real models and check that the output is
 well formed (every key present, every number finite) and that the run did what it says (every
@@ -8,6 +8,7 @@ word sent got a hypothesis, no errors); they never assert on timings.
 from __future__ import annotations
 
 import asyncio
+import doctest
 import json
 import math
 import os
@@ -17,8 +18,9 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from client_kit import REPO, Served, models_dir, served
+from client_kit import Served, models_dir, served
 from midstream import InputError
+from midstream.client.bench import _kit
 from midstream.client.bench._load import (
     MAX_FRAME_EVENTS,
     LoadConfig,
@@ -33,7 +35,7 @@ from midstream.client.bench._load import (
 from midstream.client.bench._scale_out import BEGIN, END, Sweep, step_passed, write_section
 from midstream.client.cli._cmd_bench import load_script, serve_command
 from midstream.client.cli._cmd_serve import build_config
-from midstream.client.cli._main import build_parser, main
+from midstream.client.cli._main import _command_parsers, build_parser, main
 from midstream.server import ServerLimits
 from midstream.wire import midstream_pb2 as pb
 from redis_kit import RedisProcess, redis_server_fixture
@@ -281,9 +283,11 @@ def test_steal_is_read_per_cpu_from_proc_stat() -> None:
         assert steal is not None and len(steal) == os.cpu_count()
 
 
-def _script(name: str, *argv: str, tmp_path: Path) -> dict[str, Any]:
+def _benchmark(name: str, *argv: str, tmp_path: Path) -> dict[str, Any]:
+    """``midstream bench NAME --smoke --json FILE ARGV`` in its own process, as a user runs it
+    (the benchmarks pin cores and tune the collector, which must not leak into the tests)."""
     out = tmp_path / f"{name}.json"
-    done = subprocess.run([sys.executable, str(REPO / "scripts" / name), "--smoke", "--json",
+    done = subprocess.run([sys.executable, "-m", "midstream", "bench", name, "--smoke", "--json",
                            str(out), *argv], capture_output=True, text=True, timeout=240,
                           check=False)
     assert done.returncode == 0, done.stderr
@@ -293,9 +297,9 @@ def _script(name: str, *argv: str, tmp_path: Path) -> dict[str, Any]:
     return result
 
 
-def test_bench_engine_smoke(tmp_path: Path) -> None:
+def test_bench_decoder_smoke(tmp_path: Path) -> None:
     # Smoke mode times a tiny model on invented words: only the shape of the output is checked.
-    result = _script("bench_engine.py", tmp_path=tmp_path)
+    result = _benchmark("decoder", tmp_path=tmp_path)
     assert set(result["rows"]) == {"10", "100", "1000"}
     assert all(row["decoder_us"] > 0 and row["floor_us"] > 0 and row["naive_us"] > 0
                for row in result["rows"].values())
@@ -306,7 +310,7 @@ def test_bench_engine_smoke(tmp_path: Path) -> None:
 @pytest.mark.corpus
 @pytest.mark.slow
 def test_bench_service_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
-    result = _script("bench_service.py", "--models", str(models_dir), "--corpus",
+    result = _benchmark("service", "--models", str(models_dir), "--corpus",
                      str(swda_dir), tmp_path=tmp_path)
     assert result["engine"]["words_per_cpu_s"] > 0
     (step,) = result["steps"]
@@ -322,7 +326,7 @@ def test_bench_service_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -
 def test_bench_service_multiplexed_smoke(models_dir: Path, swda_dir: Path,
                                          tmp_path: Path) -> None:
     # The same size twice: each run is reported, and the size counts only if both met.
-    result = _script("bench_service.py", "--models", str(models_dir), "--corpus",
+    result = _benchmark("service", "--models", str(models_dir), "--corpus",
                      str(swda_dir), "--multiplex", "--steps", "4,4", "--all-steps",
                      tmp_path=tmp_path)
     assert result["multiplex"] is True and result["tick_ms"] > 0
@@ -339,7 +343,7 @@ def test_bench_service_multiplexed_smoke(models_dir: Path, swda_dir: Path,
 @pytest.mark.corpus
 @pytest.mark.slow
 def test_bench_memory_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
-    result = _script("bench_memory.py", "--models", str(models_dir), "--corpus",
+    result = _benchmark("memory", "--models", str(models_dir), "--corpus",
                      str(swda_dir), tmp_path=tmp_path)
     assert result["service"]["opened"] == 20
     assert result["service"]["error_count"] == 0
@@ -353,7 +357,7 @@ def test_bench_memory_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) ->
 @pytest.mark.corpus
 @pytest.mark.slow
 def test_bench_ingest_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
-    result = _script("bench_ingest.py", "--models", str(models_dir), "--corpus",
+    result = _benchmark("ingest", "--models", str(models_dir), "--corpus",
                      str(swda_dir), tmp_path=tmp_path)
     # Twenty conversations of twenty words each, every one answered in a reply frame.
     assert result["words"] == 400 and result["reply_bytes_per_word"] > 0
@@ -363,7 +367,7 @@ def test_bench_ingest_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) ->
 @pytest.mark.corpus
 @pytest.mark.slow
 def test_bench_gc_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
-    result = _script("bench_gc.py", "--models", str(models_dir), "--corpus",
+    result = _benchmark("gc", "--models", str(models_dir), "--corpus",
                      str(swda_dir), tmp_path=tmp_path)
     assert result["words"] == 400 and result["retained"]["per_word"] >= 0
     # One pass per default threshold setting, each reporting the three generations.
@@ -376,12 +380,12 @@ def test_bench_gc_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> Non
 @pytest.mark.slow
 def test_bench_report_smoke_writes_the_page(models_dir: Path, swda_dir: Path,
                                             tmp_path: Path) -> None:
-    # The whole pipeline behind docs/benchmarks.md, every script in its smoke mode.
+    # The whole pipeline behind docs/benchmarks.md, every benchmark in its smoke mode.
     page = tmp_path / "benchmarks.md"
     # A section 'midstream bench --write-page' wrote is its own run's: it is carried over.
     written = f"{BEGIN}\n## Shared log and workers\n\nfigures of another run\n{END}\n"
     page.write_text(f"# Benchmarks\n\n{written}", encoding="utf-8")
-    done = subprocess.run([sys.executable, str(REPO / "scripts" / "bench_report.py"), "--smoke",
+    done = subprocess.run([sys.executable, "-m", "midstream", "bench", "report", "--smoke",
                            "--multiplex", "--spin-steps", "4", "--models", str(models_dir),
                            "--work",
                            str(tmp_path / "work"), "--out", str(page)],
@@ -433,7 +437,7 @@ def test_redis_and_workers_apply_to_a_spawned_server_only(
 @pytest.mark.slow
 def test_bench_redis_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path,
                            redis_server: RedisProcess) -> None:
-    result = _script("bench_redis.py", "--models", str(models_dir), "--corpus",
+    result = _benchmark("redis", "--models", str(models_dir), "--corpus",
                      str(swda_dir), "--redis", redis_server.url, tmp_path=tmp_path)
     assert result["words_per_pass"] == 400
     assert result["ms_per_word_plain"] > 0 and result["ms_per_word_shared"] > 0
@@ -542,3 +546,60 @@ def test_scale_out_counts_must_be_positive_numbers(
     assert main(["bench", "--smoke", "--spawn", "--corpus", str(swda_dir), "--redis",
                  "redis://127.0.0.1:9/0", "--workers", "2", "--write-page", "x.md"]) == 1
     assert "drop --workers 2, or add --scale-out" in capsys.readouterr().err
+
+
+@pytest.mark.corpus
+def test_bench_read_smoke(swda_dir: Path, tmp_path: Path) -> None:
+    result = _benchmark("read", "--corpus", str(swda_dir), tmp_path=tmp_path)
+    assert result["split"] == "val" and result["repeat"] == 1
+    # The parsed words are fewer than the raw tokens (markup, slash units and tags drop out).
+    assert 0 < result["words"] < result["raw_tokens"]
+    cpu = result["cpu"]
+    assert cpu["measured"] > 0 and cpu["baseline"] > 0
+    assert cpu["ratio"] == pytest.approx(cpu["measured"] / cpu["baseline"])
+
+
+@pytest.mark.corpus
+@pytest.mark.slow
+def test_bench_functions_smoke(models_dir: Path, swda_dir: Path, tmp_path: Path) -> None:
+    model = next(path for path in (models_dir / "functions-swbd42.tagger",
+                                   models_dir / "functions.tagger") if path.is_file())
+    result = _benchmark("functions", "--model", str(model), "--corpus", str(swda_dir),
+                        tmp_path=tmp_path)
+    assert result["rounds"] == 1 and result["calls"] > 0
+    assert result["label_partial_us"] > 0 and result["features_us"] > 0
+    pair = result["crfsuite_over_label_partial"]
+    assert pair["measured"] == result["crfsuite_us"]
+    assert pair["baseline"] == result["label_partial_us"]
+    # The fast path and crfsuite label every call alike (the tagger's own contract).
+    assert result["labels_differing"] == 0
+
+
+@pytest.mark.slow
+def test_bench_kept_smoke(models_dir: Path, tmp_path: Path) -> None:
+    result = _benchmark("kept", "--models", str(models_dir), tmp_path=tmp_path)
+    assert result["batches"] == 2 and result["words"] > 0
+    # Exit status 0 already says the estimate covers what is kept and stays under the bound.
+    assert 0 < result["kept"] <= result["estimate"] <= result["bound"]
+    assert result["total"] == result["kept"] + result["rest"]
+
+
+def test_every_benchmark_is_a_subcommand_with_smoke_and_json() -> None:
+    # The harness's one shape: each benchmark runs in seconds with --smoke (what CI and the
+    # report's smoke run use) and writes its figures with --json (the report reads them).
+    benchmarks = {child.prog.removeprefix("midstream bench "): child
+                  for child in _command_parsers(build_parser())
+                  if child.prog.startswith("midstream bench ")}
+    assert set(benchmarks) == {"decoder", "functions", "read", "ingest", "gc", "memory",
+                               "kept", "redis", "service", "soak", "report"}
+    for name, parser in benchmarks.items():
+        options = {option for action in parser._actions for option in action.option_strings}
+        assert "--smoke" in options, name
+        # soak prints its checks; report writes the page (--out)
+        assert name in {"soak", "report"} or "--json" in options, name
+
+
+def test_kit_examples_run() -> None:
+    # Paired's examples are its documentation: they must hold.
+    result = doctest.testmod(_kit)
+    assert result.attempted > 0 and result.failed == 0

@@ -1,6 +1,6 @@
 """Cycle-collector pauses on the server's word path, for several collector thresholds.
 
-No network: as ``bench_ingest.py``, a servicer in this process takes ``FeedMany`` request
+No network: as ``midstream bench ingest``, a servicer in this process takes ``FeedMany`` request
 frames for ``--conversations`` live conversations (SwDA val words, channels in turn) and every
 reply frame is serialised. ``gc.callbacks`` time each collection. For each ``--gc-thresholds``
 setting (``G0,G1,G2``, as ``midstream serve --gc-thresholds``) a fresh pass reports, per
@@ -13,8 +13,8 @@ Before the passes it counts the objects the collector tracks that stay alive per
 (``gc.get_objects`` before and after a pass with every conversation still open): what kept
 history costs every full collection.
 
-    .venv/bin/python scripts/bench_gc.py [--conversations 700] [--words 120]
-    .venv/bin/python scripts/bench_gc.py --smoke --json out.json      # seconds, for CI
+    midstream bench gc [--conversations 700] [--words 120]
+    midstream bench gc --smoke --json out.json      # seconds, for CI
 
 Pauses are wall-clock times of a process that may share its core; a pause is dominated by
 memory latency over the objects walked, so it also depends on the machine.
@@ -30,38 +30,37 @@ import json
 import time
 from typing import Any
 
-from _benchkit import apply_frame, corpora_root, machine, models_folder, source_arguments
-from bench_ingest import _frame_bytes, _plan, open_stream
 from midstream import InputError
+from midstream.client.bench._ingest import frame_bytes, plan_frames
+from midstream.client.bench._kit import corpora_root, machine, models_folder, source_arguments
 from midstream.client.cli._cmd_bench import load_script
 from midstream.client.cli._cmd_serve import parse_gc_thresholds
 from midstream.models import ModelBundle
-from midstream.server._many import ManyStream
+from midstream.server.probes import FramePath
 from midstream.wire import midstream_pb2 as pb
 
 _DEFAULT = (700, 10, 10)
 _SETTINGS = "700,10,10 700,10,1000000 700,1000000,1000000"
 
 
-def _feed(stream: ManyStream, frames: list[bytes]) -> None:
+def _feed(path: FramePath, frames: list[bytes]) -> None:
     for data in frames:
-        apply_frame(stream, pb.ClientFrame.FromString(data))
-        for reply in stream._frames():
+        path.apply(pb.ClientFrame.FromString(data))
+        for reply in path.replies():
             reply.SerializeToString()
 
 
 async def retained(bundle: ModelBundle, frames: list[bytes], conversations: int,
                    words: int) -> dict[str, Any]:
     """Tracked objects alive per word after a pass, conversations still open, by type."""
-    _, stream = open_stream(bundle, conversations)
+    path = FramePath.open(bundle, conversations)
     gc.collect()
     before = collections.Counter(type(o).__name__ for o in gc.get_objects())
-    _feed(stream, frames)
+    _feed(path, frames)
     gc.collect()
     after = collections.Counter(type(o).__name__ for o in gc.get_objects())
     grown = after - before
-    stream._end_all(pb.END_REASON_CLOSED)
-    stream._frames()
+    path.end_all()
     return {"per_word": sum(grown.values()) / words,
             "by_type": {name: n / words for name, n in grown.most_common(8)}}
 
@@ -69,7 +68,7 @@ async def retained(bundle: ModelBundle, frames: list[bytes], conversations: int,
 async def timed_pass(bundle: ModelBundle, frames: list[bytes], conversations: int,
                      thresholds: tuple[int, int, int]) -> dict[str, Any]:
     """Collections during one pass at ``thresholds``, per generation."""
-    _, stream = open_stream(bundle, conversations)
+    path = FramePath.open(bundle, conversations)
     gc.collect()
     pauses: list[tuple[int, float, int]] = []
     began = [0.0]
@@ -85,13 +84,12 @@ async def timed_pass(bundle: ModelBundle, frames: list[bytes], conversations: in
     gc.callbacks.append(watch)
     try:
         cpu = time.process_time()
-        _feed(stream, frames)
+        _feed(path, frames)
         cpu = time.process_time() - cpu
     finally:
         gc.callbacks.remove(watch)
         gc.set_threshold(*_DEFAULT)
-    stream._end_all(pb.END_REASON_CLOSED)
-    stream._frames()
+    path.end_all()
     generations = {}
     for generation in range(3):
         mine = [p for p in pauses if p[0] == generation]
@@ -106,15 +104,20 @@ async def timed_pass(bundle: ModelBundle, frames: list[bytes], conversations: in
             "total_ms": sum(p[1] for p in pauses) * 1e3}
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        'gc', help="time the cycle collector's pauses on the word path",
+        description=__doc__.split("\n\n")[0])
     source_arguments(parser)
     parser.add_argument("--conversations", type=int, default=700)
     parser.add_argument("--words", type=int, default=120, help="words per conversation")
     parser.add_argument("--gc-thresholds", default=_SETTINGS,
                         help=f"space-separated G0,G1,G2 settings (default {_SETTINGS!r})")
     parser.add_argument("--smoke", action="store_true")
-    args = parser.parse_args()
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
     if args.smoke:
         args.conversations, args.words = 20, 20
     try:
@@ -126,9 +129,9 @@ def main() -> None:
     bundle.warm_up()
     script, where = load_script(args.corpus or corpora_root() / "swda", "val",
                                 limit=args.conversations * args.words * 2)
-    plan = _plan([[script.word(c, k) for k in range(args.words)]
+    plan = plan_frames([[script.word(c, k) for k in range(args.words)]
                   for c in range(args.conversations)], 30)
-    frames = _frame_bytes(plan)
+    frames = frame_bytes(plan)
     words = sum(len(f) for f in plan)
     del plan
     # What lives from here on (models, frames) is not what is measured; as `serve` does.
@@ -156,7 +159,4 @@ def main() -> None:
             "machine": machine(), "models": how, "words_from": where, "words": words,
             "conversations": args.conversations, "retained": kept, "passes": passes,
         }, indent=2), encoding="utf-8")
-
-
-if __name__ == "__main__":
-    main()
+    return 0

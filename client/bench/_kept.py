@@ -1,4 +1,5 @@
-"""Memory of one conversation filled with maximal batches, against its byte limits.
+"""``midstream bench kept``: memory of one conversation filled with maximal batches, against its
+byte limits.
 
 Feeds one conversation (in this process, no network) batches of ``max_words_per_message``
 words whose ids and speaker names are ``max_id_chars`` long and whose words are
@@ -13,28 +14,25 @@ with ``tracemalloc`` (Python allocations):
 * ``bound``: the sum of the byte limits plus the two newest updates, which are kept whatever
   they cost.
 
-    .venv/bin/python scripts/measure_kept.py                      # the default limits
-    .venv/bin/python scripts/measure_kept.py --batches 3 --replay-bytes 262144 ...
+It prints the figures as JSON and exits 1 when the estimate is below what the records take or
+above the bound.
+
+    midstream bench kept                                   # the default limits
+    midstream bench kept --batches 3 --replay-bytes 262144 ...
 """
 
 from __future__ import annotations
 
 import argparse
-import gc
 import json
 import sys
-import tracemalloc
-from collections import OrderedDict
 from pathlib import Path
 
 from midstream import Word
+from midstream.client.bench._kit import WEIGHTS, write_json
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
-from midstream.server._metrics import ServerMetrics
-from midstream.server._registry import SessionRegistry
-from midstream.server._session import _Recent
-
-WEIGHTS = Path(__file__).resolve().parent.parent / "models" / "weights"
+from midstream.server.probes import measure_kept
 
 
 def maximal_batch(batch: int, limits: ServerLimits) -> list[tuple[str, Word]]:
@@ -48,51 +46,44 @@ def maximal_batch(batch: int, limits: ServerLimits) -> list[tuple[str, Word]]:
     return words
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "kept", help="memory of one conversation against its byte estimate",
+        description=__doc__.split("\n\n")[0])
     defaults = ServerLimits()
+    parser.add_argument("--models", type=Path, default=WEIGHTS, metavar="DIR",
+                        help="model folder (default: the shipped models)")
     parser.add_argument("--batches", type=int, default=16)
     parser.add_argument("--replay-bytes", type=int, default=defaults.replay_bytes)
     parser.add_argument("--history-bytes", type=int, default=defaults.history_bytes)
     parser.add_argument("--snapshot-bytes", type=int, default=defaults.snapshot_bytes)
-    args = parser.parse_args()
+    parser.add_argument("--smoke", action="store_true", help="two batches (seconds)")
+    parser.add_argument("--json", type=Path, default=None, metavar="FILE",
+                        help="also write the figures here")
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    if args.smoke:
+        args.batches = 2
     limits = ServerLimits(replay_bytes=args.replay_bytes, history_bytes=args.history_bytes,
                           snapshot_bytes=args.snapshot_bytes)
-    bundle = ModelBundle.load_directory(WEIGHTS)
-    registry = SessionRegistry(limits, ServerMetrics())
-    registry.open("warm-up", bundle).add_words(maximal_batch(999, limits)[:2], received=0.0)
-    gc.collect()
-    tracemalloc.start()
-    before, _ = tracemalloc.get_traced_memory()
-    session = registry.open("filled", bundle)
-    largest_update = 0
-    for batch in range(args.batches):
-        was = session.kept_bytes
-        session.add_words(maximal_batch(batch, limits), received=0.0)
-        largest_update = max(largest_update, session.kept_bytes - was)
-    gc.collect()
-    filled, _ = tracemalloc.get_traced_memory()
-    estimate = session.kept_bytes
-    session._replay = _Recent(1)  # emptied in place: what they held
-    session._revisions = _Recent(1)
-    session._words = OrderedDict()
-    session._utterances = OrderedDict()
-    gc.collect()
-    emptied, _ = tracemalloc.get_traced_memory()
-    tracemalloc.stop()
+    bundle = ModelBundle.load_directory(args.models)
+    measured = measure_kept(bundle, limits, args.batches,
+                            lambda number: maximal_batch(number, limits),
+                            warm_up=maximal_batch(999, limits)[:2])
+    estimate = measured.estimate
     report = {
         "batches": args.batches, "words": args.batches * limits.max_words_per_message,
         "limits": {"replay_bytes": limits.replay_bytes, "history_bytes": limits.history_bytes,
                    "snapshot_bytes": limits.snapshot_bytes},
-        "estimate": estimate, "kept": filled - emptied, "rest": emptied - before,
-        "total": filled - before, "revisions_truncated": session.revisions_truncated,
+        "estimate": estimate, "kept": measured.kept, "rest": measured.rest,
+        "total": measured.kept + measured.rest,
+        "revisions_truncated": measured.revisions_truncated,
         "bound": limits.replay_bytes + limits.history_bytes + limits.snapshot_bytes
-        + 2 * largest_update,
+        + 2 * measured.largest_update,
     }
     json.dump(report, sys.stdout, indent=1)
     print()
+    write_json(args.json, report)
     return 0 if report["kept"] <= estimate <= report["bound"] else 1
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

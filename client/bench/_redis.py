@@ -12,9 +12,9 @@ own CPU is not counted (it is another process, usually on another machine).
 After the last pass it reads ``MEMORY USAGE`` of each key of the conversations the shared
 passes wrote: bytes per word in the update stream, the event stream and in all.
 
-    .venv/bin/python scripts/bench_redis.py                      # starts its own redis-server
-    .venv/bin/python scripts/bench_redis.py --redis redis://127.0.0.1:6379/9
-    .venv/bin/python scripts/bench_redis.py --smoke              # seconds
+    midstream bench redis                      # starts its own redis-server
+    midstream bench redis --redis redis://127.0.0.1:6379/9
+    midstream bench redis --smoke              # seconds
 """
 
 from __future__ import annotations
@@ -29,18 +29,23 @@ import subprocess
 import tempfile
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import redis.asyncio as aioredis
-from _benchkit import corpora_root, machine, models_folder, source_arguments
+from midstream.client.bench._kit import corpora_root, machine, models_folder, source_arguments
 from midstream.client.cli._cmd_bench import load_script
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits, SharedLogConfig
-from midstream.server._ingest import apply_event
-from midstream.server._journal import ConversationKeys, SharedLog
-from midstream.server._metrics import ServerMetrics
-from midstream.server._registry import SessionRegistry
+from midstream.server.probes import (
+    ServerMetrics,
+    SessionRegistry,
+    apply_event,
+    open_shared_log,
+    stored_bytes,
+)
 from midstream.wire import midstream_pb2 as pb
+
+if TYPE_CHECKING:
+    from midstream.server.probes import SharedLog
 
 
 def _redis_server(folder: Path) -> tuple[subprocess.Popen[bytes], str]:
@@ -93,17 +98,8 @@ async def _pass(bundle: ModelBundle, script: list[list[tuple[str, str]]],
 
 
 async def _memory(url: str, prefix: str, ids: list[str], words: int) -> dict[str, float]:
-    client = aioredis.Redis.from_url(url)
-    try:
-        updates = events = other = 0
-        for conversation_id in ids:
-            keys = ConversationKeys.of(prefix, conversation_id)
-            updates += await client.memory_usage(keys.updates) or 0
-            events += await client.memory_usage(keys.events) or 0
-            other += (await client.memory_usage(keys.meta) or 0) + (
-                await client.memory_usage(keys.snapshot) or 0)
-    finally:
-        await client.aclose()
+    stored = await stored_bytes(url, prefix, ids)
+    updates, events, other = stored["updates"], stored["events"], stored["other"]
     return {"update_stream_bytes_per_word": round(updates / words, 1),
             "event_stream_bytes_per_word": round(events / words, 1),
             "all_bytes_per_word": round((updates + events + other) / words, 1)}
@@ -117,7 +113,7 @@ async def _main(args: argparse.Namespace, url: str) -> dict[str, Any]:
     per = max(args.words // args.conversations, 1)
     transcripts = [[script.word(c, i) for i in range(per)] for c in range(args.conversations)]
     config = SharedLogConfig(url=url, key_prefix=f"bench{int(time.time())}")
-    log = SharedLog(config, ServerMetrics().registry, models=lambda: "bench")
+    log = open_shared_log(config, models=lambda: "bench")
     await log.start()
     if not log.healthy:
         raise SystemExit(f"cannot reach {url}")
@@ -146,8 +142,10 @@ async def _main(args: argparse.Namespace, url: str) -> dict[str, Any]:
     }
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        'redis', help='CPU and Redis memory per word of the shared log, in-process',
+        description=__doc__.split("\n\n")[0])
     source_arguments(parser)
     parser.add_argument("--redis", default=None, metavar="URL",
                         help="the Redis to write to (default: start a redis-server here)")
@@ -156,7 +154,10 @@ def main() -> None:
                         help="words read from the corpus (default 20,000)")
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--smoke", action="store_true", help="a few seconds")
-    args = parser.parse_args()
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
     if args.smoke:
         args.conversations, args.words, args.repeats = 4, 400, 1
     with tempfile.TemporaryDirectory() as folder:
@@ -174,7 +175,4 @@ def main() -> None:
     if args.json:
         Path(args.json).write_text(text + "\n", encoding="utf-8")
     print(text)
-
-
-if __name__ == "__main__":
-    main()
+    return 0

@@ -1,7 +1,9 @@
-"""Soak one Midstream server with real conversations and check it never loses or repeats a word.
+"""``midstream bench soak``: soak one server with real conversations and check it never loses
+or repeats a word.
 
-Replays SwDA conversations (val, then train, cycling) word by word over gRPC, many at once, for
-a fixed time against one server (spawned here, or ``--target``), and checks each conversation:
+Replays SwDA conversations (val, then train, cycling) word by word through the client library
+(:class:`midstream.client.Client`), many at once, for a fixed time against one server (spawned
+here, or ``--target``), and checks each conversation:
 
 - every word sent gets exactly one final hypothesis, and nothing is published for a word after
   it became final (no duplicates);
@@ -15,12 +17,12 @@ a fixed time against one server (spawned here, or ``--target``), and checks each
 
 It prints its figures and exits 1 on any violation, 2 when it cannot run.
 
-    nice -n 5 .venv/bin/python scripts/soak.py                   # 1,000 conversations, 600 s
-    .venv/bin/python scripts/soak.py --short                     # 20 conversations, 10 s (CI)
-    .venv/bin/python scripts/soak.py --target host:port --server-pid PID
+    nice -n 5 midstream bench soak                       # 1,000 conversations, 600 s
+    midstream bench soak --short                         # 20 conversations, 10 s (CI)
+    midstream bench soak --target host:port --server-pid PID
 
 The corpora are found at ``$MIDSTREAM_CORPORA`` or ``../shared/corpora`` beside the checkout.
-A spawned server runs in a child process (this script with ``--serve``) with the default limits
+A spawned server runs in a child process (this command with ``--serve``) with the default limits
 except a shorter ``ended_retention_s`` (``--ended-retention``): with the default 600 s every
 conversation of a 600 s run would still be kept at the end and memory could never level off.
 """
@@ -30,24 +32,29 @@ from __future__ import annotations
 import argparse
 import asyncio
 import itertools
-import os
 import signal
 import statistics
 import subprocess
 import sys
 import time
-from collections.abc import Iterator
+from collections.abc import AsyncIterator, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import grpc
-from midstream import Conversation, MidstreamError
+from midstream import (
+    AddWord,
+    Conversation,
+    EndReason,
+    HypothesisUpdate,
+    MidstreamError,
+    SpeakerHint,
+)
+from midstream.client import Client, ConversationStream, Ended, Welcome
+from midstream.client._results import ServerEvent
+from midstream.client.bench._kit import corpora_root
 from midstream.corpora import read_corpus
 from midstream.server import run_server_loop
-from midstream.wire import midstream_pb2 as pb
-from midstream.wire import midstream_pb2_grpc as pb_grpc
 
-_REPO = Path(__file__).resolve().parent.parent
 #: Allowed growth of the server's RSS after warm-up (the issue's figure) in a full run. A
 #: --short run is too brief for memory to settle (allocator arenas, first gRPC buffers still
 #: grow after 5 s), so it allows 25 %: there it guards against leaks per word, not drift.
@@ -55,6 +62,9 @@ RSS_TOLERANCE = 0.10
 SHORT_RSS_TOLERANCE = 0.25
 #: Seconds any single read may wait before the conversation is declared hung.
 READ_TIMEOUT_S = 60.0
+
+#: What a caller's stream and a follower yield, as the client library types them.
+Event = ServerEvent
 
 
 # --- the server side (child process) ---------------------------------------------------------
@@ -79,8 +89,8 @@ async def _serve(models: Path | None, ended_retention: float, max_live: int) -> 
 
 def _spawn(models: Path | None, ended_retention: float, max_live: int,
            ) -> tuple[subprocess.Popen[str], str]:
-    command = [sys.executable, __file__, "--serve", "--ended-retention", str(ended_retention),
-               "--max-live", str(max_live)]
+    command = [sys.executable, "-m", "midstream", "bench", "soak", "--serve",
+               "--ended-retention", str(ended_retention), "--max-live", str(max_live)]
     if models is not None:
         command += ["--models", str(models)]
     child = subprocess.Popen(command, stdout=subprocess.PIPE, text=True)
@@ -117,21 +127,15 @@ def cycle_conversations(corpus: Path, count: int) -> Iterator[tuple[int, Convers
             raise SystemExit(f"soak: no conversations in {corpus}")
 
 
-def events(conversation: Conversation, max_words: int | None) -> list[pb.ClientEvent]:
+def events(conversation: Conversation, max_words: int | None) -> list[AddWord | SpeakerHint]:
     """One word per event as a recogniser sends them, with a turn-end hint at speaker changes."""
-    out: list[pb.ClientEvent] = []
+    out: list[AddWord | SpeakerHint] = []
     previous: str | None = None
     for index, word in enumerate(conversation.words[:max_words]):
         if previous is not None and word.speaker != previous:
-            out.append(pb.ClientEvent(hint=pb.SpeakerHint(speaker=previous,
-                                                          kind=pb.HINT_KIND_TURN_END)))
+            out.append(SpeakerHint(speaker=previous, turn_end=True))
         previous = word.speaker
-        spoken = pb.SpokenWord(word_id=f"w{index}", speaker=word.speaker, text=word.text)
-        if word.start is not None:
-            spoken.start_s = word.start
-        if word.end is not None:
-            spoken.end_s = word.end
-        out.append(pb.ClientEvent(words=pb.WordBatch(words=[spoken])))
+        out.append(AddWord(word_id=f"w{index}", word=word))
     return out
 
 
@@ -146,27 +150,28 @@ class Totals:
     violations: list[str] = field(default_factory=list)
 
 
-def check_stream(name: str, sent: list[str], messages: list[pb.ServerMessage],
-                 totals: Totals) -> list[pb.Update]:
-    """Check one caller's stream; record violations; return its updates."""
+def check_stream(name: str, sent: list[str], messages: list[Event],
+                 totals: Totals) -> list[HypothesisUpdate]:
+    """Check one caller's stream (its events as the client yields them); record violations;
+    return its updates."""
     bad = totals.violations
-    if not messages or not messages[0].HasField("welcome"):
+    if not messages or not isinstance(messages[0], Welcome):
         bad.append(f"{name}: no welcome")
         return []
-    updates = [m.update for m in messages if m.HasField("update")]
+    updates = [m for m in messages if isinstance(m, HypothesisUpdate)]
     seqs = [u.seq for u in updates]
     if seqs != list(range(1, len(seqs) + 1)):
         bad.append(f"{name}: sequence numbers not contiguous from 1 (first gap near "
                    f"{next((s for i, s in enumerate(seqs, 1) if s != i), '?')})")
-    ended = [m.ended for m in messages if m.HasField("ended")]
-    if len(ended) != 1 or ended[0].reason != pb.END_REASON_CLOSED:
-        bad.append(f"{name}: ended {[pb.EndReason.Name(e.reason) for e in ended]}, "
-                   "expected one END_REASON_CLOSED")
+    ended = [m for m in messages if isinstance(m, Ended)]
+    if len(ended) != 1 or ended[0].reason is not EndReason.CLOSED:
+        bad.append(f"{name}: ended {[str(e.reason) for e in ended]}, "
+                   "expected one 'closed'")
     elif ended[0].last_seq != (seqs[-1] if seqs else 0):
         bad.append(f"{name}: ended.last_seq {ended[0].last_seq} but last update {seqs[-1:]}")
     finals: dict[str, int] = {}
     for update in updates:
-        for word in update.words:
+        for word in update.diff.words:
             if word.word_id in finals:
                 bad.append(f"{name}: word {word.word_id} published again after it was final "
                            f"(seq {update.seq})")
@@ -182,64 +187,76 @@ def check_stream(name: str, sent: list[str], messages: list[pb.ServerMessage],
     return updates
 
 
-async def _follow(stub: pb_grpc.MidstreamStub, conversation_id: str) -> list[pb.ServerMessage]:
-    request = pb.FollowRequest(conversation_id=conversation_id, from_seq=1)
-    return [m async for m in stub.Follow(request, timeout=READ_TIMEOUT_S * 20)]
+async def _follow(client: Client, conversation_id: str) -> list[Event]:
+    async def read() -> list[Event]:
+        return [event async for event in client.follow(conversation_id, from_seq=1)]
+
+    return await asyncio.wait_for(read(), READ_TIMEOUT_S * 20)
 
 
-async def run_conversation(stub: pb_grpc.MidstreamStub, number: int, conversation: Conversation,
+async def _next(events: AsyncIterator[Event]) -> Event | None:
+    """The stream's next event, or ``None`` at its end; a hung read raises ``TimeoutError``."""
+    try:
+        return await asyncio.wait_for(anext(events), READ_TIMEOUT_S)
+    except StopAsyncIteration:
+        return None
+
+
+async def run_conversation(client: Client, number: int, conversation: Conversation,
                            *, deadline: float, follow: bool, max_words: int | None,
                            window: int, totals: Totals) -> None:
     name = f"#{number} ({conversation.id})"
-    call = stub.Feed()
-    await call.write(pb.ClientEvent(open=pb.OpenConversation()))
-    welcome = await asyncio.wait_for(call.read(), READ_TIMEOUT_S)
-    if not isinstance(welcome, pb.ServerMessage) or not welcome.HasField("welcome"):
-        totals.violations.append(f"{name}: no welcome but {welcome!r}")
-        call.cancel()
-        return
-    messages: list[pb.ServerMessage] = [welcome]
-    conversation_id = welcome.welcome.conversation_id
-    follower = asyncio.create_task(_follow(stub, conversation_id)) if follow else None
+    messages: list[Event] = []
     written: dict[str, float] = {}  # words sent and not yet published, with when
     published = asyncio.Event()
-
-    async def read_all() -> None:
-        while True:
-            message = await asyncio.wait_for(call.read(), READ_TIMEOUT_S)
-            if not isinstance(message, pb.ServerMessage):
-                return
-            now = time.monotonic()
-            messages.append(message)
-            for word in message.update.words:
-                if word.word_id in written:
-                    totals.latencies.append(now - written.pop(word.word_id))
-                    published.set()
-
-    reader = asyncio.create_task(read_all())
     sent: list[str] = []
+    follower: asyncio.Task[list[Event]] | None = None
+
+    async def read_all(stream: ConversationStream) -> None:
+        events = aiter(stream)
+        while (event := await _next(events)) is not None:
+            now = time.monotonic()
+            messages.append(event)
+            if isinstance(event, HypothesisUpdate):
+                for word in event.diff.words:
+                    if word.word_id in written:
+                        totals.latencies.append(now - written.pop(word.word_id))
+                        published.set()
+
+    opened = False
     try:
-        for event in events(conversation, max_words):
-            if time.monotonic() >= deadline:
-                totals.cut_short += 1
-                break
-            if event.HasField("words"):
-                # Like a recogniser, keep only a few words ahead of the answers, so latency
-                # measures the server rather than this script's own backlog.
-                while len(written) >= window:
-                    published.clear()
-                    await asyncio.wait_for(published.wait(), READ_TIMEOUT_S)
-                word_id = event.words.words[0].word_id
-                written[word_id] = time.monotonic()
-                sent.append(word_id)
-            await call.write(event)
-        await call.write(pb.ClientEvent(close=pb.CloseConversation()))
-        await call.done_writing()
-        await reader
-    except (grpc.aio.AioRpcError, TimeoutError) as exc:
-        reader.cancel()
-        call.cancel()
-        detail = exc.code().name if isinstance(exc, grpc.aio.AioRpcError) else "a read timed out"
+        # The welcome must come within READ_TIMEOUT_S; after it each read has its own limit.
+        async with asyncio.timeout(READ_TIMEOUT_S) as opening, client.feed() as stream:
+            opening.reschedule(None)
+            opened = True
+            if follow:
+                follower = asyncio.create_task(_follow(client, stream.conversation_id))
+            reader = asyncio.create_task(read_all(stream))
+            try:
+                for event in events(conversation, max_words):
+                    if time.monotonic() >= deadline:
+                        totals.cut_short += 1
+                        break
+                    if isinstance(event, AddWord):
+                        # Like a recogniser, keep only a few words ahead of the answers, so
+                        # latency measures the server rather than this command's own backlog.
+                        while len(written) >= window:
+                            published.clear()
+                            await asyncio.wait_for(published.wait(), READ_TIMEOUT_S)
+                        written[event.word_id] = time.monotonic()
+                        sent.append(event.word_id)
+                    await stream.send(event)
+                await stream.close()
+                await reader
+            finally:
+                reader.cancel()
+    except (MidstreamError, TimeoutError) as exc:
+        if follower is not None:
+            follower.cancel()
+        if not opened:
+            totals.violations.append(f"{name}: no welcome ({type(exc).__name__})")
+            return
+        detail = type(exc).__name__ if isinstance(exc, MidstreamError) else "a read timed out"
         totals.violations.append(f"{name}: stream failed: {detail}")
         return
     updates = check_stream(name, sent, messages, totals)
@@ -248,14 +265,14 @@ async def run_conversation(stub: pb_grpc.MidstreamStub, number: int, conversatio
     if follower is not None:
         try:
             seen = await follower
-        except grpc.aio.AioRpcError as exc:
-            totals.violations.append(f"{name}: follower failed: {exc.code().name}")
+        except (MidstreamError, TimeoutError) as exc:
+            totals.violations.append(f"{name}: follower failed: {type(exc).__name__}")
             return
         totals.followed += 1
-        followed = [m.update for m in seen if m.HasField("update")]
+        followed = [m for m in seen if isinstance(m, HypothesisUpdate)]
         # A follower that lagged would get a gap and a snapshot instead; none is expected here
         # (it reads as fast as it can), so anything but the caller's updates is a violation.
-        if followed != updates or not seen[-1].HasField("ended"):
+        if followed != updates or not seen or not isinstance(seen[-1], Ended):
             totals.violations.append(f"{name}: the follower saw {len(followed)} updates, "
                                      f"the caller {len(updates)}, or differing ones")
 
@@ -271,9 +288,7 @@ async def soak(args: argparse.Namespace, target: str, pid: int | None) -> int:
     first_wave: set[asyncio.Task[None]] = set()
     first_wave_done: float | None = None
     source = cycle_conversations(args.corpus, args.conversations)
-    async with grpc.aio.insecure_channel(target) as channel:
-        stub = pb_grpc.MidstreamStub(channel)  # type: ignore[no-untyped-call]
-        await channel.channel_ready()
+    async with Client(target) as client:
         running: set[asyncio.Task[None]] = set()
         started = 0
 
@@ -287,7 +302,7 @@ async def soak(args: argparse.Namespace, target: str, pid: int | None) -> int:
             while len(running) < args.concurrency:
                 number, conversation = next(source)
                 task = asyncio.create_task(run_conversation(
-                    stub, number, conversation, deadline=deadline,
+                    client, number, conversation, deadline=deadline,
                     follow=args.follow_every > 0 and started % args.follow_every == 0,
                     max_words=args.max_words, window=args.window, totals=totals))
                 running.add(task)
@@ -380,10 +395,10 @@ def _slope(samples: list[tuple[float, int]]) -> float:
     return sum((t - mean_t) * (k - mean_k) for t, k in samples) / spread if spread else 0.0
 
 
-def _parser() -> argparse.ArgumentParser:
-    corpora = os.environ.get("MIDSTREAM_CORPORA")
-    root = Path(corpora) if corpora else _REPO.parent / "shared" / "corpora"
-    parser = argparse.ArgumentParser(description=__doc__.split("\n", 1)[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        "soak", help="stream real conversations for a long time and check exactly-once finality",
+        description=__doc__.split("\n\n")[0])
     parser.add_argument("--conversations", type=int, default=1000, metavar="N",
                         help="distinct conversations to cycle over (default 1000)")
     parser.add_argument("--duration", type=float, default=600.0, metavar="S",
@@ -403,7 +418,7 @@ def _parser() -> argparse.ArgumentParser:
                              "at least 20%% of the run)")
     parser.add_argument("--rss-log", type=Path, default=None, metavar="FILE",
                         help="write the RSS samples (seconds,KiB per line) to FILE")
-    parser.add_argument("--corpus", type=Path, default=root / "swda", metavar="DIR",
+    parser.add_argument("--corpus", type=Path, default=None, metavar="DIR",
                         help="the SwDA folder (default $MIDSTREAM_CORPORA/swda)")
     parser.add_argument("--target", default=None, metavar="HOST:PORT",
                         help="soak a running server instead of spawning one")
@@ -418,15 +433,16 @@ def _parser() -> argparse.ArgumentParser:
     parser.add_argument("--rss-tolerance", type=float, default=None, metavar="F",
                         help=f"allowed RSS growth after warm-up (default {RSS_TOLERANCE}; "
                              f"{SHORT_RSS_TOLERANCE} with --short)")
-    parser.add_argument("--short", action="store_true",
+    parser.add_argument("--short", "--smoke", action="store_true",
                         help="CI size: 20 conversations of at most 150 words, 10 s, 4 at once, "
                              "every 2nd followed, 5 s warm-up")
     parser.add_argument("--serve", action="store_true", help=argparse.SUPPRESS)
-    return parser
+    parser.set_defaults(handler=run)
 
 
-def main(argv: list[str] | None = None) -> int:
-    args = _parser().parse_args(argv)
+def run(args: argparse.Namespace) -> int:
+    if args.corpus is None:
+        args.corpus = corpora_root() / "swda"
     if args.serve:
         return run_server_loop(_serve(args.models, args.ended_retention, args.max_live))
     if args.short:
@@ -460,6 +476,3 @@ def main(argv: list[str] | None = None) -> int:
             except subprocess.TimeoutExpired:
                 child.kill()
 
-
-if __name__ == "__main__":
-    sys.exit(main())

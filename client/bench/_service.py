@@ -13,10 +13,10 @@ are measured in the same run, so the headline figures are ratios, not machine-de
 * engine: the conversation engine alone, in this process on the server's core, fed the same
   words (how many words/s the models manage without the service around them).
 
-    .venv/bin/python scripts/bench_service.py                       # full: 60 s per step
-    .venv/bin/python scripts/bench_service.py --quick               # 15 s steps
-    .venv/bin/python scripts/bench_service.py --smoke --json out.json
-    .venv/bin/python scripts/bench_service.py --multiplex --steps 500,1000,1200
+    midstream bench service                       # full: 60 s per step
+    midstream bench service --quick               # 15 s steps
+    midstream bench service --smoke --json out.json
+    midstream bench service --multiplex --steps 500,1000,1200
 
 ``--multiplex`` carries each step's conversations over one ``FeedMany`` stream per channel
 (``midstream bench --multiplex``): one frame per stream every ``--tick-ms`` with every word due,
@@ -45,8 +45,8 @@ import time
 from pathlib import Path
 from typing import Any
 
-from _benchkit import corpora_root, machine, models_folder, pin_self
-from midstream import Word
+from midstream import InputError, Word
+from midstream.client.bench._kit import corpora_root, machine, models_folder, pin_self
 from midstream.client.bench._load import (
     DEFAULT_TICK_S,
     STEAL_NOTABLE_PERCENT,
@@ -208,8 +208,10 @@ def largest_met(runs: dict[int, tuple[int, int]]) -> int:
     return max([n for n, (met, total) in runs.items() if met == total], default=0)
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        'service', help='live conversations per server core, stepped, with baselines',
+        description=__doc__.split("\n\n")[0])
     parser.add_argument("--models", type=Path, default=None,
                         help="model folder (default: the shipped models)")
     parser.add_argument("--train-tiny", type=Path, default=None, metavar="DIR",
@@ -251,9 +253,12 @@ def main() -> int:
                         help="one 2 s step of 4 conversations (checks the setup)")
     parser.add_argument("--json", type=Path, default=None, metavar="FILE",
                         help="also write every figure to FILE as JSON")
-    args = parser.parse_args()
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
     if args.workers > 1 and not args.redis:
-        parser.error("--workers needs --redis URL")
+        raise InputError("--workers needs --redis URL")
     steps = _MULTIPLEX_STEPS if args.multiplex else _FULL_STEPS
     if args.quick:
         args.seconds, args.baseline_seconds = 15.0, 10.0
@@ -369,6 +374,3 @@ def main() -> int:
         }, indent=2, sort_keys=True), encoding="utf-8")
     return 0
 
-
-if __name__ == "__main__":
-    sys.exit(main())

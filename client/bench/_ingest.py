@@ -17,9 +17,9 @@ alternating passes, because the machine may be shared:
   messages, reply frames, serialisation);
 * ``outside``: their difference, the layer this benchmark exists to watch.
 
-    .venv/bin/python scripts/bench_ingest.py [--models models/weights] [--repeats 7]
-    .venv/bin/python scripts/bench_ingest.py --smoke --json out.json       # seconds, for CI
-    .venv/bin/python scripts/bench_ingest.py --profile                     # cProfile one pass
+    midstream bench ingest [--models models/weights] [--repeats 7]
+    midstream bench ingest --smoke --json out.json       # seconds, for CI
+    midstream bench ingest --profile                     # cProfile one pass
 """
 
 from __future__ import annotations
@@ -31,22 +31,24 @@ import json
 import pstats
 import statistics
 import time
-from typing import Any, cast
 
-from _benchkit import apply_frame, corpora_root, machine, models_folder, source_arguments
 from midstream import Word
+from midstream.client.bench._kit import (
+    Paired,
+    corpora_root,
+    machine,
+    models_folder,
+    source_arguments,
+)
 from midstream.client.cli._cmd_bench import load_script
 from midstream.models import ModelBundle
-from midstream.server import ServerLimits
-from midstream.server._many import ManyStream
-from midstream.server._metrics import ServerMetrics
-from midstream.server._servicer import MidstreamServicer
+from midstream.server.probes import FramePath
 from midstream.wire import midstream_pb2 as pb
 
 Plan = list[list[tuple[int, str, str, str]]]  # frames of (channel, word id, speaker, text)
 
 
-def _plan(script_words: list[list[tuple[str, str]]], per_frame: int) -> Plan:
+def plan_frames(script_words: list[list[tuple[str, str]]], per_frame: int) -> Plan:
     """Frames of one word per channel, channels in turn, until each spoke its words."""
     order = [(channel + 1, index, *words[index])
              for index in range(max(len(w) for w in script_words))
@@ -55,7 +57,7 @@ def _plan(script_words: list[list[tuple[str, str]]], per_frame: int) -> Plan:
     return [flat[i:i + per_frame] for i in range(0, len(flat), per_frame)]
 
 
-def _frame_bytes(plan: Plan) -> list[bytes]:
+def frame_bytes(plan: Plan) -> list[bytes]:
     return [pb.ClientFrame(events=[
         pb.ChannelEvent(channel=channel, event=pb.ClientEvent(words=pb.WordBatch(words=[
             pb.SpokenWord(word_id=word_id, speaker=speaker, text=text)])))
@@ -77,45 +79,31 @@ def engine_pass(bundle: ModelBundle, plan: Plan, conversations: int) -> float:
     return spent
 
 
-def open_stream(bundle: ModelBundle, conversations: int
-                ) -> tuple[MidstreamServicer, ManyStream]:
-    """A servicer in this process and one ``ManyStream`` with channels 1..N open on it."""
-    limits = ServerLimits(max_live_conversations=conversations,
-                          max_channels_per_stream=conversations)
-    servicer = MidstreamServicer(bundle, limits, ServerMetrics())
-    stream = ManyStream(servicer, cast(Any, None))  # _frame and _frames never use the context
-    apply_frame(stream, pb.ClientFrame(events=[
-        pb.ChannelEvent(channel=c, event=pb.ClientEvent(open=pb.OpenConversation()))
-        for c in range(1, conversations + 1)]))
-    stream._frames()
-    return servicer, stream
-
-
 async def server_pass(bundle: ModelBundle, frames: list[bytes], conversations: int,
                       profile: cProfile.Profile | None = None) -> tuple[float, int, float]:
     """CPU seconds of the frame path over the plan, the reply bytes it produced, and the words
     the server's own counter took in."""
-    servicer, stream = open_stream(bundle, conversations)
+    path = FramePath.open(bundle, conversations)
     sent = 0
-    parse, replies = pb.ClientFrame.FromString, stream._frames
+    parse, apply, replies = pb.ClientFrame.FromString, path.apply, path.replies
     if profile is not None:
         profile.enable()
     began = time.process_time()
     for data in frames:
-        apply_frame(stream, parse(data))
+        apply(parse(data))
         for reply in replies():
             sent += len(reply.SerializeToString())
     spent = time.process_time() - began
     if profile is not None:
         profile.disable()
-    stream._end_all(pb.END_REASON_CLOSED)
-    stream._frames()
-    counted = servicer.metrics.registry.get_sample_value("midstream_words_total")
-    return spent, sent, counted or 0.0
+    path.end_all()
+    return spent, sent, path.words_counted()
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        'ingest', help='server CPU per word on the FeedMany frame path, no network',
+        description=__doc__.split("\n\n")[0])
     source_arguments(parser)
     parser.add_argument("--conversations", type=int, default=200)
     parser.add_argument("--words", type=int, default=60, help="words per conversation")
@@ -124,7 +112,10 @@ def main() -> None:
     parser.add_argument("--repeats", type=int, default=7)
     parser.add_argument("--smoke", action="store_true")
     parser.add_argument("--profile", action="store_true", help="cProfile one server pass")
-    args = parser.parse_args()
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
     if args.smoke:
         args.conversations, args.words, args.repeats = 20, 20, 1
     folder, how = models_folder(args.models, None)
@@ -134,8 +125,8 @@ def main() -> None:
                                 limit=args.conversations * args.words * 4)
     per_conversation = [[script.word(c, k) for k in range(args.words)]
                         for c in range(args.conversations)]
-    plan = _plan(per_conversation, args.per_frame)
-    frames = _frame_bytes(plan)
+    plan = plan_frames(per_conversation, args.per_frame)
+    frames = frame_bytes(plan)
     total = sum(len(f) for f in plan)
     print(f"models: {how}; words: {where}")
     print(f"{args.conversations} conversations x {args.words} words = {total} words, "
@@ -144,7 +135,7 @@ def main() -> None:
         profile = cProfile.Profile()
         asyncio.run(server_pass(bundle, frames, args.conversations, profile))
         pstats.Stats(profile).sort_stats("tottime").print_stats(30)
-        return
+        return 0
     engine_ms: list[float] = []
     server_ms: list[float] = []
     reply_bytes, counted = 0, 0.0
@@ -159,17 +150,16 @@ def main() -> None:
     print(f"reply bytes per word: {reply_bytes / total:.1f}")
     print(f"engine  ms/word: median {engine:.4f}  (runs {' '.join(f'{v:.4f}' for v in engine_ms)})")
     print(f"server  ms/word: median {server:.4f}  (runs {' '.join(f'{v:.4f}' for v in server_ms)})")
-    print(f"outside ms/word: {server - engine:.4f}  (server / engine = {server / engine:.2f})")
+    pair = Paired(measured=server, baseline=engine)
+    print(f"outside ms/word: {server - engine:.4f}")
+    print(pair.line("server", "engine", unit="ms/word"))
     if args.json is not None:
         args.json.write_text(json.dumps({
             "machine": machine(), "models": how, "words_from": where, "words": total,
             "conversations": args.conversations, "per_frame": args.per_frame,
             "reply_bytes_per_word": reply_bytes / total,
             "engine_ms_per_word": engine, "server_ms_per_word": server,
-            "outside_ms_per_word": server - engine, "server_over_engine": server / engine,
+            "outside_ms_per_word": server - engine, "server_over_engine": pair.ratio,
             "runs": {"engine_ms": engine_ms, "server_ms": server_ms},
         }, indent=2), encoding="utf-8")
-
-
-if __name__ == "__main__":
-    main()
+    return 0

@@ -4,7 +4,7 @@ The baseline reads the same files and splits them into whitespace tokens (the le
 must do); the ratio says what the markup parsing, normalisation and labelling cost on top. CPU
 time is reported beside wall time because the machine may be shared.
 
-    .venv/bin/python scripts/bench_read.py [--split train] [--repeat 3]
+    midstream bench read [--split train] [--repeat 3]
 
 The corpora are found at ``$MIDSTREAM_CORPORA`` or ``../shared/corpora`` beside the checkout.
 """
@@ -12,15 +12,12 @@ The corpora are found at ``$MIDSTREAM_CORPORA`` or ``../shared/corpora`` beside 
 from __future__ import annotations
 
 import argparse
-import os
-import sys
 import time
 from collections.abc import Callable
 from pathlib import Path
 
-from midstream.corpora._swda import conversation_files, read_swda, split_numbers
-
-_REPO = Path(__file__).resolve().parent.parent
+from midstream.client.bench._kit import Paired, corpora_root, write_json
+from midstream.corpora.probes import conversation_files, read_swda, split_numbers
 
 
 def _baseline(root: Path, split: str) -> int:
@@ -47,13 +44,24 @@ def _best(run: Callable[[], int], repeat: int) -> tuple[float, float, int]:
     return best_wall, best_cpu, count
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        'read', help='time reading SwDA against reading its files unparsed',
+        description=__doc__.split("\n\n")[0])
     parser.add_argument("--split", default="train")
     parser.add_argument("--repeat", type=int, default=3)
-    args = parser.parse_args()
-    corpora = Path(os.environ.get("MIDSTREAM_CORPORA") or _REPO.parent / "shared" / "corpora")
-    root = corpora / "swda"
+    parser.add_argument("--corpus", type=Path, default=None, metavar="DIR",
+                        help="SwDA folder (default $MIDSTREAM_CORPORA/swda)")
+    parser.add_argument("--smoke", action="store_true", help="val, read once (seconds)")
+    parser.add_argument("--json", type=Path, default=None, metavar="FILE",
+                        help="also write the figures here")
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    root = args.corpus or corpora_root() / "swda"
+    if args.smoke:
+        args.split, args.repeat = "val", 1
     base_wall, base_cpu, tokens = _best(lambda: _baseline(root, args.split), args.repeat)
     wall, cpu, words = _best(lambda: _read(root, args.split), args.repeat)
     print(f"SwDA {args.split}: {len(split_numbers(root, args.split))} conversations, "
@@ -62,9 +70,10 @@ def main() -> int:
           f"({tokens:,} raw tokens)")
     print(f"  read_swda:                     {wall:6.2f} s wall {cpu:6.2f} s cpu "
           f"= {words / cpu:,.0f} words/s cpu, {words / wall:,.0f} words/s wall")
-    print(f"  ratio read_swda / baseline (cpu): {cpu / base_cpu:.1f}x")
+    pair = Paired(measured=cpu, baseline=base_cpu)
+    print("  " + pair.line("read_swda", "baseline", unit="s cpu", digits=2))
+    write_json(args.json, {"split": args.split, "repeat": args.repeat, "words": words,
+                           "raw_tokens": tokens, "wall_s": wall, "baseline_wall_s": base_wall,
+                           "cpu": pair.as_json()})
     return 0
 
-
-if __name__ == "__main__":
-    sys.exit(main())

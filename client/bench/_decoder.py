@@ -16,8 +16,8 @@ alike; ``--rounds`` repeats the whole stream, the rows pool the rounds, and the 
 ratio across rounds is printed too. Targets (project targets, no source):
 median decoder cost at most 150 us per word, and the 1,000-word over 10-word ratio at most 1.3.
 
-    .venv/bin/python scripts/bench_engine.py [--model words.tagger] [--words 3000]
-    .venv/bin/python scripts/bench_engine.py --smoke --json out.json      # seconds, for CI
+    midstream bench decoder [--model words.tagger] [--words 3000]
+    midstream bench decoder --smoke --json out.json      # seconds, for CI
 
 With a boundary model (the shipped ``boundaries.tagger``, or ``--boundary-model``), one more
 paired run times the same words given invented times (0.25 s words, 0.05 s apart, 0.8 s of
@@ -33,16 +33,14 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import random
 import statistics
-import sys
 import time
 from collections.abc import Sequence
 from pathlib import Path
 
-from _benchkit import machine
 from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceFunction, Word
+from midstream.client.bench._kit import corpora_root, machine
 from midstream.corpora import read_corpus
 from midstream.models import (
     BoundaryModel,
@@ -52,11 +50,9 @@ from midstream.models import (
     default_boundary_model_path,
     default_words_model_path,
 )
+from midstream.models.probes import ChannelDecoder, Token, features_at, token_of
 from midstream.models.training import WordTrainingConfig, train_word_artifact
-from midstream.models.words._decoder import ChannelDecoder
-from midstream.models.words._features import Token, features_at, token_of
 
-_REPO = Path(__file__).resolve().parent.parent
 _SENTENCES = (
     "we went to the store last week", "i think that is a good idea", "uh the kids like to play",
     "my brother my brother lives in texas", "it was a really nice day",
@@ -72,7 +68,7 @@ def _invented_words(n: int, seed: int = 0) -> list[str]:
 
 
 def _corpus_words(n: int) -> list[str] | None:
-    root = Path(os.environ.get("MIDSTREAM_CORPORA", _REPO.parent / "shared" / "corpora"))
+    root = corpora_root()
     if not (root / "swda").is_dir():
         return None
     out: list[str] = []
@@ -199,8 +195,10 @@ def _boundary_pair(model: WordModel, boundary: BoundaryModel, texts: Sequence[st
     return _percentile(without, 0.5), _percentile(with_, 0.5)
 
 
-def main(argv: Sequence[str] | None = None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        'decoder', help='time the word decoder per word against crfsuite alone',
+        description=__doc__.split("\n\n")[0])
     parser.add_argument("--model", type=Path, default=None,
                         help="word model (.tagger); default: the shipped one")
     parser.add_argument("--words", type=int, default=3000,
@@ -216,7 +214,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--boundary-model", type=Path, default=None,
                         help="boundary model (.tagger) for the timed pair; default: the shipped "
                              "one when present")
-    args = parser.parse_args(argv)
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
     n_words = 300 if args.smoke else args.words
     rounds = 1 if args.smoke else max(args.rounds, 1)
     path = args.model or default_words_model_path()
@@ -298,6 +299,3 @@ def main(argv: Sequence[str] | None = None) -> int:
         }, indent=2), encoding="utf-8")
     return 0
 
-
-if __name__ == "__main__":
-    sys.exit(main())

@@ -1,4 +1,5 @@
-"""The soak script: its short run passes against a real server, and its checker catches faults.
+"""``midstream bench soak``: its short run passes against a real server, and its checker
+catches faults.
 
 The full run (1,000 conversations, 600 s) is reported in ``docs/soak.md``; CI runs ``--short``
 (20 SwDA conversations, 10 s) as a subprocess, the way a user runs it.
@@ -7,25 +8,31 @@ The full run (1,000 conversations, 600 s) is reported in ``docs/soak.md``; CI ru
 from __future__ import annotations
 
 import re
-import runpy
 import subprocess
 import sys
 from pathlib import Path
-from typing import Any
 
 import pytest
-from midstream.wire import midstream_pb2 as pb
-from reliability_kit import REPO, models_dir_fixture  # noqa: F401 - fixtures are found by name
+from client_kit import models_dir
+from midstream import (
+    DisfluencyLabel,
+    EndReason,
+    HypothesisDiff,
+    HypothesisUpdate,
+    WordHypothesis,
+)
+from midstream.client import Ended, Welcome
+from midstream.client.bench._soak import Event, Totals, check_stream
 
-pytestmark = pytest.mark.corpus
-
-SOAK = REPO / "scripts" / "soak.py"
+__all__ = ["models_dir"]  # fixtures used here, for pytest
 
 
+@pytest.mark.corpus
+@pytest.mark.slow
 def test_short_soak_passes(models_dir: Path, swda_dir: Path) -> None:
     done = subprocess.run(
-        [sys.executable, str(SOAK), "--short", "--models", str(models_dir),
-         "--corpus", str(swda_dir)],
+        [sys.executable, "-m", "midstream", "bench", "soak", "--short", "--models",
+         str(models_dir), "--corpus", str(swda_dir)],
         capture_output=True, text=True, timeout=180, check=False)
     assert done.returncode == 0, done.stdout + done.stderr
     assert "no violations" in done.stdout
@@ -41,35 +48,33 @@ def test_short_soak_passes(models_dir: Path, swda_dir: Path) -> None:
 # --- the checker itself ------------------------------------------------------------------------
 
 
-@pytest.fixture(name="soak", scope="module")
-def soak_fixture() -> dict[str, Any]:
-    """The script's functions (run as a module, so its main() does not start)."""
-    return runpy.run_path(str(SOAK))
+def _update(seq: int, *words: tuple[str, bool], final: bool = False) -> HypothesisUpdate:
+    return HypothesisUpdate(seq=seq, server_time=0.0, conversation_final=final,
+                            diff=HypothesisDiff(words=tuple(
+                                WordHypothesis(word_id=w, speaker="A",
+                                               label=DisfluencyLabel.FLUENT, confidence=1.0,
+                                               revision=0, final=f)
+                                for w, f in words)))
 
 
-def _update(seq: int, *words: tuple[str, bool], final: bool = False) -> pb.ServerMessage:
-    return pb.ServerMessage(update=pb.Update(
-        seq=seq, conversation_final=final,
-        words=[pb.WordState(word_id=w, speaker="A", final=f) for w, f in words]))
+_WELCOME = Welcome(conversation_id="c", next_seq=1)
 
 
-_WELCOME = pb.ServerMessage(welcome=pb.Welcome(conversation_id="c", next_seq=1))
+def _ended(last: int) -> Ended:
+    return Ended(reason=EndReason.CLOSED, last_seq=last)
 
 
-def _ended(last: int) -> pb.ServerMessage:
-    return pb.ServerMessage(ended=pb.Ended(reason=pb.END_REASON_CLOSED, last_seq=last))
-
-
-def _violations(soak: dict[str, Any], messages: list[pb.ServerMessage]) -> list[str]:
-    totals = soak["Totals"]()
-    soak["check_stream"]("#0", ["w0", "w1"], messages, totals)
+def _violations(messages: list[Event]) -> list[str]:
+    totals = Totals()
+    check_stream("#0", ["w0", "w1"], messages, totals)
     return list(totals.violations)
 
 
-def test_checker_accepts_a_clean_stream(soak: dict[str, Any]) -> None:
-    clean = [_WELCOME, _update(1, ("w0", False)), _update(2, ("w0", True), ("w1", False)),
-             _update(3, ("w1", True), final=True), _ended(3)]
-    assert _violations(soak, clean) == []
+def test_checker_accepts_a_clean_stream() -> None:
+    clean: list[Event] = [_WELCOME, _update(1, ("w0", False)),
+                          _update(2, ("w0", True), ("w1", False)),
+                          _update(3, ("w1", True), final=True), _ended(3)]
+    assert _violations(clean) == []
 
 
 @pytest.mark.parametrize(("messages", "named"), [
@@ -85,7 +90,6 @@ def test_checker_accepts_a_clean_stream(soak: dict[str, Any]) -> None:
      "never sent"),
 ], ids=["gap", "duplicate final", "word never final", "wrong last seq", "no ended",
         "unknown word"])
-def test_checker_names_each_violation(soak: dict[str, Any], messages: list[pb.ServerMessage],
-                                      named: str) -> None:
-    found = _violations(soak, messages)
+def test_checker_names_each_violation(messages: list[Event], named: str) -> None:
+    found = _violations(messages)
     assert any(named in v for v in found), found

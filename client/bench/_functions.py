@@ -18,27 +18,24 @@ words) with and without the coarse model, rounds alternating, CPU time per word 
 
 ::
 
-    .venv/bin/python scripts/bench_functions.py [--model PATH] [--conversations 5] [--rounds 3]
-    .venv/bin/python scripts/bench_functions.py --coarse models/weights/functions-coarse.tagger
+    midstream bench functions [--model PATH] [--conversations 5] [--rounds 3]
+    midstream bench functions --coarse models/weights/functions-coarse.tagger
 """
 
 from __future__ import annotations
 
 import argparse
-import os
 import statistics
 import time
 from collections.abc import Callable
 from pathlib import Path
 
 from midstream import Conversation
+from midstream.client.bench._kit import WEIGHTS, Paired, corpora_root, write_json
 from midstream.corpora import read_corpus
 from midstream.models import FunctionTagger, ModelBundle
-from midstream.models.functions._features import utterance_features
-from midstream.models.functions._views import UtteranceView, clean_view
+from midstream.models.probes import UtteranceView, clean_view, utterance_features
 from midstream.models.training import load_artifact
-
-REPO = Path(__file__).resolve().parent.parent
 
 Call = tuple[list[UtteranceView], UtteranceView]
 
@@ -106,16 +103,29 @@ def _time_features(tagger: FunctionTagger, calls: list[Call]) -> list[float]:
     return costs
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        'functions', help='time the function tagger per word against crfsuite',
+        description=__doc__.split("\n\n")[0])
     parser.add_argument("--model", type=Path,
-                        default=REPO / "models" / "weights" / "functions-swbd42.tagger")
+                        default=WEIGHTS / "functions-swbd42.tagger")
     parser.add_argument("--conversations", type=int, default=5)
     parser.add_argument("--rounds", type=int, default=3)
     parser.add_argument("--coarse", type=Path, default=None,
                         help="a coarse-function model served beside --model: time both")
-    args = parser.parse_args()
-    corpora = Path(os.environ.get("MIDSTREAM_CORPORA", REPO.parent / "shared" / "corpora"))
+    parser.add_argument("--corpus", type=Path, default=None, metavar="DIR",
+                        help="SwDA folder (default $MIDSTREAM_CORPORA/swda)")
+    parser.add_argument("--smoke", action="store_true",
+                        help="one conversation, one round (seconds)")
+    parser.add_argument("--json", type=Path, default=None, metavar="FILE",
+                        help="also write the figures here")
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    swda = args.corpus or corpora_root() / "swda"
+    if args.smoke:
+        args.conversations, args.rounds = 1, 1
 
     started = time.perf_counter()
     tagger = FunctionTagger.load(args.model)
@@ -127,7 +137,7 @@ def main() -> int:
     # reuse it.
     opening: list[bool] = []
     conversations: list[Conversation] = []
-    for n, conversation in enumerate(read_corpus(corpora / "swda", split="val")):
+    for n, conversation in enumerate(read_corpus(swda, split="val")):
         if n >= args.conversations:
             break
         conversations.append(conversation)
@@ -190,13 +200,19 @@ def main() -> int:
           f"median {statistics.median(others):.1f} us/call over {len(others)} calls")
     print(line("baseline: crfsuite over the window (the old path)", old))
     print(line("baseline: current utterance's features alone", features))
-    print(f"old/new: {statistics.median(old) / statistics.median(new):.1f}x median, "
-          f"{statistics.fmean(old) / statistics.fmean(new):.1f}x mean")
+    medians = Paired(measured=statistics.median(old), baseline=statistics.median(new))
+    means = Paired(measured=statistics.fmean(old), baseline=statistics.fmean(new))
+    print(f"old/new: {medians.ratio:.1f}x median, {means.ratio:.1f}x mean")
     # CPU time of this thread only: less sensitive than wall time to other processes.
     total = len(calls) * args.rounds
     print(f"CPU time per call: label_partial {1e6 * new_cpu / total:.1f} us, crfsuite path "
           f"{1e6 * old_cpu / total:.1f} us, ratio {old_cpu / new_cpu:.1f}x")
     print(f"labels differing between the paths: {differ}")
+    figures: dict[str, object] = {
+        "model": str(args.model), "load_s": load_seconds, "calls": len(calls),
+        "rounds": args.rounds, "label_partial_us": statistics.median(new),
+        "crfsuite_us": statistics.median(old), "features_us": statistics.median(features),
+        "crfsuite_over_label_partial": medians.as_json(), "labels_differing": differ}
     if coarse is not None:
         print(line("fine tagger alone (label_partial)", alone))
         print(line("fine and coarse taggers (label_partial each)", both))
@@ -218,8 +234,8 @@ def main() -> int:
               f"with the coarse model {1e6 * statistics.median(two):.1f} us, ratio "
               f"{statistics.median(two) / statistics.median(one):.2f}x (median of "
               f"{args.rounds} rounds)")
+        figures["engine_with_coarse_over_fine"] = Paired(
+            measured=statistics.median(two), baseline=statistics.median(one)).as_json()
+    write_json(args.json, figures)
     return 0
 
-
-if __name__ == "__main__":
-    raise SystemExit(main())

@@ -1,34 +1,40 @@
-"""What the service and memory benchmark scripts share: paths, models, the machine, a server.
+"""What the ``midstream bench`` subcommands share: paths, models, the machine, pairing a run
+with its baseline.
 
-Not a benchmark itself. The scripts import it from their own folder.
+Not a benchmark itself.
 """
 
 from __future__ import annotations
 
 import argparse
+import json
+import math
 import os
 import platform
 import subprocess
 import sys
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from midstream import build_name
-from midstream.server._many import ManyStream
-from midstream.wire import midstream_pb2 as pb
+from midstream.models import default_words_model_path
 
-REPO = Path(__file__).resolve().parent.parent
-WEIGHTS = REPO / "models" / "weights"
+#: The checkout this module runs from (``client/bench`` is two folders down): the corpora are
+#: looked for beside it, and ``report`` runs its commands there.
+REPO = Path(__file__).resolve().parents[2]
+#: The shipped models' folder (``models/weights`` in a checkout).
+WEIGHTS = default_words_model_path().parent
 
 # Trains small real models from a few SwDA train conversations, in its own process (the CRF
 # trainer forks, which must not happen in a process that already runs gRPC).
 _TRAIN_TINY = """
 import itertools, sys
+from dataclasses import dataclass
 from pathlib import Path
 from midstream.corpora import read_corpus
-from midstream.models._artifact import save_artifact
-from midstream.models.functions._train import FunctionTrainingOptions, train_function_model
-from midstream.models.words._train import WordTrainingConfig, train_word_artifact
+from midstream.models.training import (FunctionTrainingOptions, WordTrainingConfig,
+                                       save_artifact, train_function_model, train_word_artifact)
 swda, out = Path(sys.argv[1]), Path(sys.argv[2])
 conversations = list(itertools.islice(read_corpus(swda, split="train"), 12))
 save_artifact(train_word_artifact(conversations, WordTrainingConfig(max_iterations=30)),
@@ -116,16 +122,49 @@ def pin_self(core: int | None) -> None:
         assert os.sched_getaffinity(0) == {core}
 
 
-def apply_frame(stream: ManyStream, frame: pb.ClientFrame) -> None:
-    """Apply one ``FeedMany`` frame without an event loop.
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Paired:
+    """A figure and its baseline, measured side by side in the same run, and their ratio.
 
-    Without a shared log ``ManyStream._frame`` never awaits, so one step runs it whole, as
-    one turn of the server's loop does; the coroutine it makes per frame is counted too.
+    Absolute times on a shared machine move with whatever else runs on it; two figures taken
+    in turn in one run move together, so their ratio is what a benchmark reports.
+
+    Attributes
+    ----------
+    measured : float
+        The figure (any unit: CPU seconds, microseconds per call, ...).
+    baseline : float
+        The baseline's figure, in the same unit.
+
+    Examples
+    --------
+    >>> pair = Paired(measured=3.0, baseline=1.5)
+    >>> pair.ratio
+    2.0
+    >>> pair.line("read_swda", "baseline", unit="s cpu", digits=1)
+    'read_swda / baseline: 2.00x (3.0 / 1.5 s cpu)'
     """
-    step = stream._frame(frame)
-    try:
-        step.send(None)
-    except StopIteration:
-        return
-    step.close()
-    raise RuntimeError("ManyStream._frame awaited: these benchmarks run without a shared log")
+
+    measured: float
+    baseline: float
+
+    @property
+    def ratio(self) -> float:
+        """``measured / baseline`` (infinite for a zero baseline)."""
+        return self.measured / self.baseline if self.baseline else math.inf
+
+    def line(self, what: str, against: str, *, unit: str, digits: int = 4) -> str:
+        """One printed line: the ratio, then both figures."""
+        return (f"{what} / {against}: {self.ratio:.2f}x ({self.measured:.{digits}f} / "
+                f"{self.baseline:.{digits}f} {unit})")
+
+    def as_json(self) -> dict[str, float]:
+        """``measured``, ``baseline`` and ``ratio``, for a benchmark's ``--json`` output."""
+        return {"measured": self.measured, "baseline": self.baseline, "ratio": self.ratio}
+
+
+def write_json(path: Path | None, figures: dict[str, Any]) -> None:
+    """Write a benchmark's figures (with this machine's description) to ``path``, if given."""
+    if path is not None:
+        path.write_text(json.dumps({"machine": machine(), **figures}, indent=2, sort_keys=True)
+                        + "\n", encoding="utf-8")

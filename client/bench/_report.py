@@ -1,29 +1,30 @@
-"""Run every benchmark and write ``docs/benchmarks.md`` from their output.
+"""``midstream bench report``: run every benchmark and write ``docs/benchmarks.md`` from their
+output.
 
-Runs, one after another (never two at once: they would measure each other):
-``scripts/bench_engine.py`` (the word decoder's per-word cost, its own baselines),
-``scripts/bench_service.py`` (live conversations per server core, transport and engine
-baselines), ``scripts/bench_memory.py`` (memory per idle live conversation, engine alone) and
-``scripts/bench_gc.py`` (cycle-collector pauses on the word path, Python's own thresholds as the
+Runs, one after another, each in its own process (never two at once: they would measure each
+other): ``midstream bench decoder`` (the word decoder's per-word cost, its own baselines),
+``midstream bench service`` (live conversations per server core, transport and engine
+baselines), ``midstream bench memory`` (memory per idle live conversation, engine alone) and
+``midstream bench gc`` (cycle-collector pauses on the word path, Python's own thresholds as the
 baseline), then writes the Markdown page with the machine, its load, the exact commands and
 the tables.
 
-    .venv/bin/python scripts/bench_report.py                         # full: about 15 minutes
-    .venv/bin/python scripts/bench_report.py --quick --out /tmp/b.md  # shorter steps
-    .venv/bin/python scripts/bench_report.py --reuse /tmp/bench       # rewrite from saved output
-    .venv/bin/python scripts/bench_report.py --multiplex              # also the FeedMany sweep
+    midstream bench report                         # full: about 15 minutes
+    midstream bench report --quick --out /tmp/b.md  # shorter steps
+    midstream bench report --reuse /tmp/bench       # rewrite from saved output
+    midstream bench report --multiplex              # also the FeedMany sweep
 
-``--shared-log`` also runs ``scripts/bench_redis.py`` (the shared Redis log's CPU per word
+``--shared-log`` also runs ``midstream bench redis`` (the shared Redis log's CPU per word
 against none, and Redis's bytes per word) and adds its table.
 
 A section that ``midstream bench --spawn --redis URL --write-page`` wrote into the page (the
 shared log's CPU ratio and the workers ratio over gRPC) is carried over as it stands.
 
-``--multiplex`` runs ``bench_service.py`` a second time with ``--multiplex`` (the conversations
-carried over a few ``FeedMany`` streams) and adds its table; ``--spin-steps`` runs that sweep
-once more at those steps with each server started with ``--spin-idle-cores`` (its core kept from
-idling), the other sweep being its baseline. ``--reuse`` shows them whenever the saved output
-holds them.
+``--multiplex`` runs ``midstream bench service`` a second time with ``--multiplex`` (the
+conversations carried over a few ``FeedMany`` streams) and adds its table; ``--spin-steps`` runs
+that sweep once more at those steps with each server started with ``--spin-idle-cores`` (its
+core kept from idling), the other sweep being its baseline. ``--reuse`` shows them whenever the
+saved output holds them.
 
 Every run's raw output is kept in ``--work`` (JSON and text), so the page can be rewritten
 without measuring again (``--reuse``).
@@ -38,14 +39,15 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from _benchkit import REPO, machine, models_folder
-from bench_service import table as service_table
+from midstream.client.bench._kit import REPO, machine, models_folder
 from midstream.client.bench._scale_out import BEGIN as SCALE_OUT_BEGIN
 from midstream.client.bench._scale_out import END as SCALE_OUT_END
 from midstream.client.bench._scale_out import write_section
+from midstream.client.bench._service import table as service_table
 from midstream.client.cli._cmd_serve import _FULL_COLLECTION_S, _GC_THRESHOLDS
 
-_SCRIPTS = REPO / "scripts"
+#: How each benchmark runs: a subcommand of this same installation, in a process of its own.
+_BENCH = (sys.executable, "-m", "midstream", "bench")
 
 
 def _run(command: list[str], log: Path) -> str:
@@ -54,43 +56,49 @@ def _run(command: list[str], log: Path) -> str:
     log.write_text(done.stdout + ("\n--- stderr ---\n" + done.stderr if done.stderr else ""),
                    encoding="utf-8")
     if done.returncode != 0:
-        raise SystemExit(f"{command[1]} failed ({done.returncode}); see {log}")
+        raise SystemExit(f"midstream bench {command[len(_BENCH)]} failed ({done.returncode}); "
+                         f"see {log}")
     return done.stdout
 
 
 def _shown(command: list[str]) -> str:
     """A command as a reader types it from the repository root."""
-    parts = [".venv/bin/python"] + [str(Path(p).relative_to(REPO)) if p.startswith(str(REPO))
-                                    else p for p in command[1:]]
+    parts = ["midstream"] + [str(Path(p).relative_to(REPO)) if p.startswith(str(REPO))
+                             else p for p in command[len(_BENCH) - 1:]]
     return " ".join(parts)
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        'report', help='run every benchmark and write docs/benchmarks.md',
+        description=__doc__.split("\n\n")[0])
     parser.add_argument("--models", type=Path, default=None)
     parser.add_argument("--train-tiny", type=Path, default=None, metavar="DIR")
     parser.add_argument("--quick", action="store_true")
     parser.add_argument("--smoke", action="store_true",
-                        help="every script in its smoke mode (seconds; checks the pipeline)")
-    parser.add_argument("--steps", default=None, help="passed to bench_service.py")
+                        help="every benchmark in its smoke mode (seconds; checks the pipeline)")
+    parser.add_argument("--steps", default=None, help="passed to midstream bench service")
     parser.add_argument("--multiplex", action="store_true",
-                        help="also run bench_service.py --multiplex (FeedMany streams)")
+                        help="also run midstream bench service --multiplex (FeedMany streams)")
     parser.add_argument("--multiplex-steps", default=None,
-                        help="passed as --steps to bench_service.py --multiplex")
+                        help="passed as --steps to midstream bench service --multiplex")
     parser.add_argument("--spin-steps", default=None, metavar="STEPS",
-                        help="with --multiplex: also run bench_service.py --multiplex "
+                        help="with --multiplex: also run midstream bench service --multiplex "
                              "--spin-idle-cores at these steps")
     parser.add_argument("--multiplex-channels", type=int, default=None, metavar="N",
-                        help="passed as --channels to bench_service.py --multiplex (streams "
+                        help="passed as --channels to midstream bench service --multiplex (streams "
                              "the conversations share; its default is 4)")
     parser.add_argument("--shared-log", action="store_true",
-                        help="also run bench_redis.py (the shared Redis log's CPU per word and "
-                             "Redis bytes per word; starts its own redis-server)")
+                        help="also run midstream bench redis (the shared Redis log's CPU per "
+                             "word and Redis bytes per word; starts its own redis-server)")
     parser.add_argument("--work", type=Path, default=Path("/tmp/midstream-bench"))
     parser.add_argument("--reuse", type=Path, default=None, metavar="DIR",
                         help="write the page from the output saved in DIR; measure nothing")
     parser.add_argument("--out", type=Path, default=REPO / "docs" / "benchmarks.md")
-    args = parser.parse_args()
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
 
     work = args.reuse or args.work
     work.mkdir(parents=True, exist_ok=True)
@@ -99,19 +107,19 @@ def main() -> int:
         before = machine()
         models, models_note = models_folder(args.models, args.train_tiny)
         model_args = ["--models", str(models)]
-        engine_cmd = [sys.executable, str(_SCRIPTS / "bench_engine.py"),
+        engine_cmd = [*_BENCH, "decoder",
                       "--model", str(models / "words.tagger")]
-        service_cmd = [sys.executable, str(_SCRIPTS / "bench_service.py"), *model_args,
+        service_cmd = [*_BENCH, "service", *model_args,
                        "--json", str(work / "service.json")]
         if args.quick:
             service_cmd.append("--quick")
         if args.steps:
             service_cmd += ["--steps", args.steps]
-        memory_cmd = [sys.executable, str(_SCRIPTS / "bench_memory.py"), *model_args,
+        memory_cmd = [*_BENCH, "memory", *model_args,
                       "--json", str(work / "memory.json")]
-        gc_cmd = [sys.executable, str(_SCRIPTS / "bench_gc.py"), *model_args,
+        gc_cmd = [*_BENCH, "gc", *model_args,
                   "--json", str(work / "gc.json")]
-        multiplex_cmd = [sys.executable, str(_SCRIPTS / "bench_service.py"), *model_args,
+        multiplex_cmd = [*_BENCH, "service", *model_args,
                          "--multiplex", "--json", str(work / "service_multiplex.json")]
         if args.quick:
             multiplex_cmd.append("--quick")
@@ -119,13 +127,13 @@ def main() -> int:
             multiplex_cmd += ["--steps", args.multiplex_steps]
         if args.multiplex_channels:
             multiplex_cmd += ["--channels", str(args.multiplex_channels)]
-        spin_cmd = [sys.executable, str(_SCRIPTS / "bench_service.py"), *model_args,
+        spin_cmd = [*_BENCH, "service", *model_args,
                     "--multiplex", "--spin-idle-cores", "--json",
                     str(work / "service_multiplex_spin.json"), "--steps", str(args.spin_steps)]
         if args.multiplex_channels:
             spin_cmd += ["--channels", str(args.multiplex_channels)]
         spinning = bool(args.multiplex and args.spin_steps)
-        redis_cmd = [sys.executable, str(_SCRIPTS / "bench_redis.py"), *model_args,
+        redis_cmd = [*_BENCH, "redis", *model_args,
                      "--json", str(work / "redis.json")]
         if args.smoke:
             for command in (engine_cmd, service_cmd, memory_cmd, multiplex_cmd, gc_cmd,
@@ -134,8 +142,7 @@ def main() -> int:
         (work / "redis.json").unlink(missing_ok=True)
         (work / "service_multiplex.json").unlink(missing_ok=True)
         (work / "service_multiplex_spin.json").unlink(missing_ok=True)
-        if (_SCRIPTS / "bench_engine.py").exists():
-            _run(engine_cmd, work / "engine.txt")
+        _run(engine_cmd, work / "engine.txt")
         _run(service_cmd, work / "service.txt")
         _run(memory_cmd, work / "memory.txt")
         _run(gc_cmd, work / "gc.txt")
@@ -152,7 +159,7 @@ def main() -> int:
             "memory": _shown(memory_cmd), "gc": _shown(gc_cmd),
             "redis": _shown(redis_cmd) if args.shared_log else None,
             "machine_before": before, "models": models_note,
-            "report": _shown([sys.executable, str(Path(__file__).resolve()), *sys.argv[1:]]),
+            "report": _shown([*_BENCH[:-1], *args.argv]),
             "machine_after": machine()}, indent=2), encoding="utf-8")
     commands = json.loads(commands_file.read_text(encoding="utf-8"))
     service = json.loads((work / "service.json").read_text(encoding="utf-8"))
@@ -187,7 +194,7 @@ def _streams(count: int) -> str:
 
 def _engine_section(text: str) -> list[str]:
     if not text:
-        return ["`scripts/bench_engine.py` was not found in this checkout; nothing measured.", ""]
+        return ["`midstream bench decoder` gave no output; nothing measured.", ""]
     body = text.split("\n--- stderr ---\n", maxsplit=1)[0].rstrip()
     return ["```", body, "```", ""]
 
@@ -249,7 +256,7 @@ def _multiplexed_section(command: str | None, service: dict[str, Any]) -> list[s
     """The FeedMany sweep: its command, how it differs, its table."""
     return _sweep_section(
         "Live conversations per server core, multiplexed (FeedMany)",
-        command or "scripts/bench_service.py --multiplex",
+        command or "midstream bench service --multiplex",
         f"The same steps, but the conversations ride {_streams(service.get('channels', 4))} "
         f"(one per connection): every {service.get('tick_ms', 10):g} ms "
         "each stream sends one frame holding every word that fell due on it, and the server "
@@ -262,7 +269,7 @@ def _spun_section(command: str | None, service: dict[str, Any]) -> list[str]:
     """The FeedMany sweep again, each server started with ``--spin-idle-cores``."""
     return _sweep_section(
         "The same, server core kept from idling (`midstream serve --spin-idle-cores`)",
-        command or "scripts/bench_service.py --multiplex --spin-idle-cores",
+        command or "midstream bench service --multiplex --spin-idle-cores",
         "The multiplexed sweep again, run after it, with each server started with "
         "`--spin-idle-cores`: an idle-priority (`SCHED_IDLE`) process spins on the server's "
         "core, so the core never halts between frames; the kernel runs it only when the server "
@@ -274,7 +281,7 @@ def _spun_section(command: str | None, service: dict[str, Any]) -> list[str]:
 
 
 def _collector_section(command: str | None, result: dict[str, Any]) -> list[str]:
-    """Cycle-collector pauses per threshold setting (``bench_gc.py`` output)."""
+    """Cycle-collector pauses per threshold setting (``midstream bench gc`` output)."""
     kept = result["retained"]
     rows = []
     for run in result["passes"]:
@@ -288,7 +295,7 @@ def _collector_section(command: str | None, result: dict[str, Any]) -> list[str]
     return [
         "## Cycle-collector pauses on the word path",
         "",
-        f"`{command or 'scripts/bench_gc.py'}`",
+        f"`{command or 'midstream bench gc'}`",
         "",
         f"In-process (no network), {result['conversations']} live conversations on "
         f"`FeedMany` take {result['words']:,} SwDA val words; `gc.callbacks` time every "
@@ -307,12 +314,12 @@ def _collector_section(command: str | None, result: dict[str, Any]) -> list[str]
 
 
 def _shared_section(command: str | None, result: dict[str, Any]) -> list[str]:
-    """The shared Redis log's cost (``bench_redis.py`` output)."""
+    """The shared Redis log's cost (``midstream bench redis`` output)."""
     ratios = ", ".join(f"{r:.2f}" for r in result["cpu_ratios"])
     return [
         "## Shared Redis log (`serve --redis`)",
         "",
-        f"`{command or 'scripts/bench_redis.py'}`",
+        f"`{command or 'midstream bench redis'}`",
         "",
         f"In-process (no network between caller and server), {result['conversations']} "
         f"conversations take {result['words_per_pass']:,} SwDA val words one per event, "
@@ -337,13 +344,13 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
            engine_text: str, multiplexed: dict[str, Any] | None = None, *,
            collector: dict[str, Any] | None = None, spun: dict[str, Any] | None = None,
            shared: dict[str, Any] | None = None) -> str:
-    """The benchmarks page; ``multiplexed`` is ``bench_service.py --multiplex`` output,
-    ``spun`` the same with ``--spin-idle-cores``, ``collector`` is ``bench_gc.py`` output,
-    ``shared`` is ``bench_redis.py`` output."""
+    """The benchmarks page; ``multiplexed`` is ``midstream bench service --multiplex`` output,
+    ``spun`` the same with ``--spin-idle-cores``, ``collector`` is ``midstream bench gc`` output,
+    ``shared`` is ``midstream bench redis`` output."""
     m0, m1 = commands["machine_before"], commands["machine_after"]
     eng = service["engine"]
     steps = service["steps"]
-    # Same choices as bench_service.py (recomputed so older JSON renders the same way): CPU
+    # Same choices as midstream bench service (recomputed so older JSON renders the same way): CPU
     # ratios at the busiest step, the latency ratio at the largest step the server kept up with.
     busiest = max(steps, key=lambda s: s["load"]["answered_in_window"])
     kept = [s for s in steps if s.get("kept_up", s["passed"]) or (s["load"]["achieved_wps"]
@@ -360,7 +367,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
     lines = [
         "# Benchmarks",
         "",
-        "Generated by `scripts/bench_report.py` from the output of the benchmark scripts; do "
+        "Generated by `midstream bench report` from the output of the other benchmarks; do "
         "not edit by hand. **Absolute times depend on the machine and on whatever else ran on "
         "it; the headline figures are ratios against baselines measured in the same run.**",
         "",
@@ -482,7 +489,8 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
         *_engine_section(engine_text),
         "## Benchmark your own deployment",
         "",
-        "`midstream bench` is the same load generator as a command. Point it at any server; "
+        "`midstream bench` without a subcommand is the load generator the service tables "
+        "use. Point it at any server; "
         "give `--server-pid` when the server runs on the same host to get its CPU and memory, "
         "`--server-metrics URL` (its `midstream serve --metrics-port` page, any host) to get how "
         "late its event loop ran, or `--spawn` to start a local `midstream serve` for the run "
@@ -520,7 +528,7 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
            "with `PYTHONPATH=build/compiled` in front.", ""]
           if m0.get("build") == "compiled" else []),
         "```",
-        commands.get("report", ".venv/bin/python scripts/bench_report.py")
+        commands.get("report", "midstream bench report")
         + "   # everything, writes this page",
         commands["engine"],
         commands["service"],
@@ -536,6 +544,3 @@ def render(commands: dict[str, Any], service: dict[str, Any], memory: dict[str, 
     ]
     return "\n".join(lines)
 
-
-if __name__ == "__main__":
-    sys.exit(main())

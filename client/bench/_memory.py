@@ -13,8 +13,8 @@ words, measured with ``tracemalloc`` (Python allocations only; the CRF library's
 shared by every engine, not per conversation). The difference between the two is what the
 service adds around the models.
 
-    .venv/bin/python scripts/bench_memory.py                 # N=1000, 5 words each
-    .venv/bin/python scripts/bench_memory.py --smoke --json out.json
+    midstream bench memory                 # N=1000, 5 words each
+    midstream bench memory --smoke --json out.json
 
 RSS is a coarse measure (allocator arenas, page granularity): use N of several hundred or more.
 """
@@ -30,8 +30,8 @@ import tracemalloc
 from pathlib import Path
 from typing import Any
 
-from _benchkit import corpora_root, machine, models_folder, pin_self
 from midstream import Word
+from midstream.client.bench._kit import corpora_root, machine, models_folder, pin_self
 from midstream.client.bench._load import LoadConfig, ProcessProbe, WordScript, hold_conversations
 from midstream.client.cli._cmd_bench import load_script, spawn_server
 from midstream.models import ModelBundle
@@ -68,8 +68,10 @@ def engine_memory(models: Path, script: WordScript, *, conversations: int, words
             "bytes_per_engine": round((after - before) / len(engines))}
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    parser = subparsers.add_parser(
+        'memory', help='memory per idle live conversation',
+        description=__doc__.split("\n\n")[0])
     parser.add_argument("--models", type=Path, default=None,
                         help="model folder (default: the shipped models)")
     parser.add_argument("--train-tiny", type=Path, default=None, metavar="DIR",
@@ -83,7 +85,10 @@ def main() -> int:
     parser.add_argument("--client-core", type=int, default=1)
     parser.add_argument("--smoke", action="store_true", help="20 conversations (seconds)")
     parser.add_argument("--json", type=Path, default=None, metavar="FILE")
-    args = parser.parse_args()
+    parser.set_defaults(handler=run)
+
+
+def run(args: argparse.Namespace) -> int:
     if args.smoke:
         args.conversations = 20
     models, models_note = models_folder(args.models, args.train_tiny)
@@ -138,6 +143,3 @@ def main() -> int:
         }, indent=2, sort_keys=True), encoding="utf-8")
     return 0
 
-
-if __name__ == "__main__":
-    sys.exit(main())
