@@ -32,7 +32,7 @@ from typing import Any
 
 from _benchkit import apply_frame, corpora_root, machine, models_folder, source_arguments
 from bench_ingest import _frame_bytes, _plan, open_stream
-from midstream import InputError
+from midstream import EndReason, InputError
 from midstream.client.cli._cmd_bench import load_script
 from midstream.client.cli._cmd_serve import parse_gc_thresholds
 from midstream.models import ModelBundle
@@ -60,7 +60,7 @@ async def retained(bundle: ModelBundle, frames: list[bytes], conversations: int,
     gc.collect()
     after = collections.Counter(type(o).__name__ for o in gc.get_objects())
     grown = after - before
-    stream._end_all(pb.END_REASON_CLOSED)
+    stream._end_all(EndReason.CLOSED)
     stream._frames()
     return {"per_word": sum(grown.values()) / words,
             "by_type": {name: n / words for name, n in grown.most_common(8)}}
@@ -90,7 +90,7 @@ async def timed_pass(bundle: ModelBundle, frames: list[bytes], conversations: in
     finally:
         gc.callbacks.remove(watch)
         gc.set_threshold(*_DEFAULT)
-    stream._end_all(pb.END_REASON_CLOSED)
+    stream._end_all(EndReason.CLOSED)
     stream._frames()
     generations = {}
     for generation in range(3):

@@ -34,7 +34,7 @@ import time
 from typing import Any, cast
 
 from _benchkit import apply_frame, corpora_root, machine, models_folder, source_arguments
-from midstream import Word
+from midstream import EndReason, Word
 from midstream.client.cli._cmd_bench import load_script
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
@@ -108,7 +108,7 @@ async def server_pass(bundle: ModelBundle, frames: list[bytes], conversations: i
     spent = time.process_time() - began
     if profile is not None:
         profile.disable()
-    stream._end_all(pb.END_REASON_CLOSED)
+    stream._end_all(EndReason.CLOSED)
     stream._frames()
     counted = servicer.metrics.registry.get_sample_value("midstream_words_total")
     return spent, sent, counted or 0.0

@@ -33,6 +33,7 @@ from typing import Any
 
 import redis.asyncio as aioredis
 from _benchkit import corpora_root, machine, models_folder, source_arguments
+from midstream import EndReason
 from midstream.client.cli._cmd_bench import load_script
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits, SharedLogConfig
@@ -86,7 +87,7 @@ async def _pass(bundle: ModelBundle, script: list[list[tuple[str, str]]],
         await asyncio.sleep(0.001)
     spent = time.process_time() - began
     for session in sessions:
-        registry.close(session, pb.END_REASON_CLOSED)
+        registry.close(session, EndReason.CLOSED)
     while log is not None and log.pending:
         await asyncio.sleep(0.001)
     return spent, len(events), [s.id for s in sessions]
