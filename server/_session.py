@@ -434,9 +434,10 @@ class Session:
             _log.debug("engine failure detail", exc_info=True)
             diff = HypothesisDiff()
         self._publish(diff, None, final=True)
+        # Kept as the newest item too: the caller reading it (since) gets the very item the
+        # followers and the shared log were given, whose wire form they share.
         final = self._shared
         assert final is not None  # a final update is always published
-        self._shared = None
         self.end_reason = reason
         self.ended_at = time.time()
         ended = Ended(reason=reason, last_seq=self.seq)

@@ -124,3 +124,10 @@ def test_one_update_is_serialised_once_for_its_caller_and_every_follower(
     # Every other reader gets the very same bytes, not a second conversion.
     assert all(server_message(item, 1_000_000) is first for item in queued[1:])
     assert update_message(sent) is first
+    # The final update too: the caller reading it after the end shares the followers' item.
+    session.finish(EndReason.CLOSED)
+    final = followers[0]._queue[-2]
+    assert isinstance(final, PublishedUpdate) and final.update.conversation_final
+    assert session.since(final.update.seq - 1) == [final]
+    assert session.closing_messages == (final, Ended(reason=EndReason.CLOSED,
+                                                     last_seq=final.update.seq))
