@@ -17,11 +17,13 @@ from typing import Final
 
 from midstream import Ended, Gap, HypothesisUpdate, Snapshot
 
-#: What a queued update costs a follower's queue besides its record's estimate
-#: (``midstream.server._kept``): the update's objects and, once made, its wire bytes. Kept at
-#: protobuf's arena floor for one message (about 1.5 KB, measured with ``mallinfo2`` on protobuf
-#: 7.36), above what either holds for a usual update, so the queue's byte bound is never below
-#: the real size.
+#: What a queued update costs a follower's queue on top of its record's estimate
+#: (``midstream.server._kept``), for the update's objects and, once made, its wire bytes: with
+#: both, a usual update (one word) holds about 1.1 KB in all, against about 4 KB estimated
+#: (``tracemalloc``, 300 SwDA val words of one conversation, one-off), so the queue's byte bound
+#: stays above the real size; ``tests/server/test_memory_bound.py`` checks it. The value is
+#: protobuf's arena floor for one message (``mallinfo2``, protobuf 7.36), the allowance a queue
+#: of wire messages would need: where a follower lags does not depend on the form queued.
 QUEUED_UPDATE_BYTES: Final = 1536
 
 

@@ -19,6 +19,7 @@ from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics
 from midstream.server._registry import SessionRegistry
 from midstream.server._session import Session, _Recent
+from midstream.server._wire import server_message
 from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures by name
 
 _LIMITS = ServerLimits(replay_bytes=256 * 1024, history_bytes=512 * 1024,
@@ -126,3 +127,39 @@ async def test_a_follower_queue_is_bounded_in_bytes(bundle: ModelBundle) -> None
     # queued for a reader that holds more than its share.
     assert kinds == [Snapshot, Gap, Snapshot]
     await messages.aclose()  # type: ignore[attr-defined]
+
+
+def test_a_follower_queue_s_estimate_covers_its_updates_and_their_wire_bytes(
+        bundle: ModelBundle) -> None:
+    # Word by word (the usual update: a word or two and an utterance), and with every queued
+    # update's wire bytes made, as a follower's stream makes them when it writes.
+    limits = ServerLimits(follower_queue=1_000, follower_queue_bytes=1 << 30)
+    words = [(f"w{i}", Word(text=("so", "um", "well", "what")[i % 4] + f"{i}", speaker="AB"[i % 2],
+                            start=float(i))) for i in range(200)]
+
+    def fill(session: Session) -> None:
+        for word in words:
+            session.add_words([word], received=0.0)
+            session.since(session.seq - 1)  # the caller reads each, as Feed does
+
+    unfollowed = Session("alone", bundle.new_engine(), limits, ServerMetrics())
+    followed = Session("followed", bundle.new_engine(), limits, ServerMetrics())
+    _, follower = followed.follow(None)
+    assert follower is not None
+    gc.collect()
+    tracemalloc.start()
+    try:
+        start, _ = tracemalloc.get_traced_memory()
+        fill(unfollowed)
+        gc.collect()
+        middle, _ = tracemalloc.get_traced_memory()
+        fill(followed)
+        for item in follower._queue:
+            server_message(item, 1 << 20)
+        gc.collect()
+        end, _ = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    queued = len(follower._queue)
+    assert queued == followed.seq  # nothing was dropped
+    assert (end - middle) - (middle - start) <= follower._bytes
