@@ -598,6 +598,11 @@ class Session:
         shared with them); the session forgets that item here, as the caller has now read it.
         """
         shared, self._shared = self._shared, None
+        newest = self._newest
+        if self.seq == seq + 1 and newest is not None:
+            # The usual case (once per word): the newest update alone, no list rebuilt.
+            return [shared if shared is not None and shared.update is newest
+                    else PublishedUpdate(newest)]
         updates = self._after(seq)
         items = [PublishedUpdate(update) for update in updates[:-1]]
         if updates:
