@@ -43,8 +43,6 @@ import grpc
 import grpc.aio
 from midstream import (
     AddWord,
-    EndReason,
-    GapReason,
     HypothesisUpdate,
     InputError,
     InputEvent,
@@ -78,19 +76,6 @@ _log = logging.getLogger(__name__)
 
 #: Events one ``FeedMany`` frame may hold: the server's default ``max_events_per_frame``.
 DEFAULT_FRAME_EVENTS = 1024
-
-_GAP_REASONS = {
-    pb.GAP_REASON_EVICTED: GapReason.EVICTED,
-    pb.GAP_REASON_LAGGED: GapReason.LAGGED,
-    pb.GAP_REASON_EPOCH_MISMATCH: GapReason.EPOCH_MISMATCH,
-}
-_END_REASONS = {
-    pb.END_REASON_CLOSED: EndReason.CLOSED,
-    pb.END_REASON_IDLE_TIMEOUT: EndReason.IDLE_TIMEOUT,
-    pb.END_REASON_CALLER_VANISHED: EndReason.CALLER_VANISHED,
-    pb.END_REASON_SERVER_SHUTDOWN: EndReason.SERVER_SHUTDOWN,
-    pb.END_REASON_REJECTED: EndReason.REJECTED,
-}
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -151,9 +136,9 @@ def _server_event(message: pb.ServerMessage) -> ServerEvent:
                         epoch=message.snapshot.epoch)
     if body == "gap":
         return Gap(first_missing=message.gap.first_missing, oldest_kept=message.gap.oldest_kept,
-                   reason=_GAP_REASONS.get(message.gap.reason, GapReason.UNKNOWN))
+                   reason=_convert.gap_reason_from_wire(message.gap.reason))
     if body == "ended":
-        return Ended(reason=_END_REASONS.get(message.ended.reason, EndReason.UNKNOWN),
+        return Ended(reason=_convert.end_reason_from_wire(message.ended.reason),
                      last_seq=message.ended.last_seq)
     raise MidstreamError("the server sent a message with no body (a newer protocol?)")
 

@@ -2,8 +2,8 @@
 
 Generated protobuf types never leave ``midstream.client``: every reply is converted into these
 frozen dataclasses (or the domain types of :mod:`midstream`) at the edge. The input events a
-caller sends, the gap and end reasons and ``ModelInfo`` are the core's (:mod:`midstream`), shared
-with the server and the models.
+caller sends, the gap and end reasons, ``Snapshot``, ``Gap``, ``Ended`` and ``ModelInfo`` are the
+core's (:mod:`midstream`), shared with the server and the models.
 
 Units follow :mod:`midstream._types`: times in seconds, ``server_time`` in Unix seconds.
 """
@@ -13,12 +13,27 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from midstream import (
-    EndReason,
-    GapReason,
+    Ended,
+    Gap,
     HypothesisUpdate,
+    Snapshot,
     UtteranceHypothesis,
     WordHypothesis,
 )
+
+# Snapshot, Gap and Ended are the core's, named here with the rest of what a stream yields.
+__all__ = [
+    "ConversationSummary",
+    "Ended",
+    "Gap",
+    "Reconnected",
+    "Revision",
+    "RevisionHistory",
+    "ServerEvent",
+    "Snapshot",
+    "TaggedTranscript",
+    "Welcome",
+]
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -35,34 +50,6 @@ class Welcome:
     next_seq: int
     epoch: int = 0
     events_logged: int = 0
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class Snapshot:
-    """The whole current state as of ``seq`` (after a gap, or to a follower with no position)."""
-
-    seq: int
-    words: tuple[WordHypothesis, ...]
-    utterances: tuple[UtteranceHypothesis, ...]
-    conversation_final: bool
-    epoch: int = 0
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class Gap:
-    """Updates ``first_missing`` up to the following snapshot's seq will never be delivered."""
-
-    first_missing: int
-    oldest_kept: int
-    reason: GapReason
-
-
-@dataclass(frozen=True, slots=True, kw_only=True)
-class Ended:
-    """The conversation ended; ``last_seq`` is the seq of its last update (0 if none)."""
-
-    reason: EndReason
-    last_seq: int
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)

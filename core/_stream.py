@@ -20,10 +20,13 @@ from midstream._types import HypothesisDiff, UtteranceHypothesis, Word, WordHypo
 __all__ = [
     "AddWord",
     "EndReason",
+    "Ended",
+    "Gap",
     "GapReason",
     "InputEvent",
     "ModelInfo",
     "ReplaceWord",
+    "Snapshot",
     "SpeakerHint",
     "TimeTick",
     "WithdrawWord",
@@ -104,6 +107,37 @@ class EndReason(StrEnum):
     REJECTED = "rejected"
     """The caller sent an event the server refused; the call failed with its error."""
     UNKNOWN = "unknown"
+
+
+# --- what a follower is sent besides updates --------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Snapshot:
+    """The whole current state as of ``seq`` (after a gap, or to a follower with no position)."""
+
+    seq: int
+    words: tuple[WordHypothesis, ...]
+    utterances: tuple[UtteranceHypothesis, ...]
+    conversation_final: bool
+    epoch: int = 0
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Gap:
+    """Updates ``first_missing`` up to the following snapshot's seq will never be delivered."""
+
+    first_missing: int
+    oldest_kept: int
+    reason: GapReason
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Ended:
+    """The conversation ended; ``last_seq`` is the seq of its last update (0 if none)."""
+
+    reason: EndReason
+    last_seq: int
 
 
 # --- what serves it ------------------------------------------------------------------------------

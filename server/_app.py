@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection
-from midstream import InputError, UnavailableError, build_name, compiled_modules
+from midstream import EndReason, InputError, UnavailableError, build_name, compiled_modules
 from midstream.server._auth import BearerTokenInterceptor
 from midstream.server._config import ServerConfig
 from midstream.server._decode import add_servicer
@@ -228,7 +228,7 @@ class MidstreamServer:
         await self._health.enter_graceful_shutdown()
         self._servicer.begin_stopping()
         live = self._servicer.registry.live_count
-        self._servicer.registry.close_all(pb.END_REASON_SERVER_SHUTDOWN)
+        self._servicer.registry.close_all(EndReason.SERVER_SHUTDOWN)
         _log.info("stopping: finished %d live conversations, grace %.1f s", live, grace)
         if self._shared is not None:
             # Their ends (and anything still buffered) reach the log before the streams close.

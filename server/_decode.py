@@ -151,6 +151,18 @@ def describe(descriptor: _Descriptor, data: bytes) -> str:
     return f"{name} could not be decoded: {problem}"
 
 
+def _serializer(reply_type: type[Message]) -> Callable[[Message | bytes], bytes]:
+    """``reply_type``'s serializer that passes bytes through: a handler may yield a message
+    serialised once for many streams (an update shared by its caller and every follower,
+    :mod:`midstream.server._wire`) without grpc serialising it again for each."""
+    serialize = reply_type.SerializeToString
+
+    def serializer(reply: Message | bytes) -> bytes:
+        return reply if isinstance(reply, bytes) else serialize(reply)
+
+    return serializer
+
+
 def _refusing_unary(servicer: MidstreamServicer, behaviour: Callable[..., Any]) -> Any:
     async def handle(request: Message | MalformedMessage, context: _Context) -> Any:
         if isinstance(request, MalformedMessage):
@@ -171,7 +183,7 @@ def add_servicer(servicer: MidstreamServicer, server: grpc.aio.Server) -> None:
         reply_type = getattr(pb, method.output_type.name)
         behaviour = getattr(servicer, method.name)
         deserialize = tolerant_deserializer(request_type)
-        serialize = reply_type.SerializeToString
+        serialize = _serializer(reply_type)
         if method.client_streaming:
             make = (grpc.stream_stream_rpc_method_handler if method.server_streaming
                     else grpc.stream_unary_rpc_method_handler)

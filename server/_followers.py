@@ -1,5 +1,8 @@
 """A ``Follow`` stream's bounded queue, filled by its session and drained by the stream.
 
+The queue holds domain values (:mod:`midstream.server._published`); the stream converts them
+to wire form as it writes them, sharing each update's wire bytes with every other reader.
+
 A follower whose queue fills is never waited for: its queue is dropped and, when it reads
 again, it gets a ``gap`` (``LAGGED``) and a snapshot of the state at that moment, then live
 updates. The ingesting caller is therefore never slowed by a follower.
@@ -13,7 +16,8 @@ from collections import deque
 from collections.abc import AsyncIterator
 from typing import TYPE_CHECKING
 
-from midstream.wire import midstream_pb2 as pb
+from midstream import Ended, Gap, GapReason
+from midstream.server._published import Outgoing, PublishedUpdate
 
 if TYPE_CHECKING:
     from midstream.server._session import Session
@@ -31,13 +35,13 @@ class Follower:
         self._session = session
         self._capacity = capacity
         self._byte_capacity = byte_capacity
-        self._queue: deque[pb.ServerMessage] = deque()
+        self._queue: deque[PublishedUpdate | Ended] = deque()
         self._costs: deque[int] = deque()  # parallel to _queue
         self._bytes = 0
         self._wake = asyncio.Event()
         self._lagged_from: int | None = None
 
-    def offer(self, message: pb.ServerMessage, seq: int, cost: int) -> None:
+    def offer(self, update: PublishedUpdate, seq: int, cost: int) -> None:
         """Queue an update (of ``cost`` estimated bytes), or mark the follower lagged when its
         queue is full (``follower_queue`` messages or ``follower_queue_bytes``)."""
         if self._lagged_from is not None:
@@ -45,37 +49,36 @@ class Follower:
         if (len(self._queue) >= self._capacity
                 or self._bytes + cost > self._byte_capacity):
             # Drop what is queued: the snapshot sent on catching up replaces all of it.
-            first = self._queue[0].update.seq if self._queue else seq
+            head = self._queue[0] if self._queue else None
+            first = head.update.seq if isinstance(head, PublishedUpdate) else seq
             self._queue.clear()
             self._costs.clear()
             self._bytes = 0
             self._lagged_from = first
             _log.info("follower of conversation %s lagged at seq %d", self._session.id, first)
         else:
-            self._queue.append(message)
+            self._queue.append(update)
             self._costs.append(cost)
             self._bytes += cost
         self._wake.set()
 
-    def push_end(self, message: pb.ServerMessage) -> None:
-        """Queue the ``ended`` message; never dropped (it is the last one)."""
-        self._queue.append(message)
+    def push_end(self, ended: Ended) -> None:
+        """Queue the conversation's end; never dropped (it is the last message)."""
+        self._queue.append(ended)
         self._wake.set()
 
-    async def messages(self, backlog: list[pb.ServerMessage]) -> AsyncIterator[pb.ServerMessage]:
-        """The messages for this follower: ``backlog`` first, then live ones until ``ended``."""
+    async def messages(self, backlog: list[Outgoing]) -> AsyncIterator[Outgoing]:
+        """The messages for this follower: ``backlog`` first, then live ones until the end."""
         for message in backlog:
             yield message
-            if message.HasField("ended"):
+            if isinstance(message, Ended):
                 return
         while True:
             if self._lagged_from is not None:
                 # Build both before yielding so that nothing published in between is lost.
-                gap = pb.ServerMessage(gap=pb.Gap(
-                    first_missing=self._lagged_from, oldest_kept=self._session.oldest_kept,
-                    reason=pb.GAP_REASON_LAGGED,
-                ))
-                snapshot = self._session.snapshot_message()
+                gap = Gap(first_missing=self._lagged_from,
+                          oldest_kept=self._session.oldest_kept, reason=GapReason.LAGGED)
+                snapshot = self._session.snapshot()
                 self._lagged_from = None
                 yield gap
                 yield snapshot
@@ -84,7 +87,7 @@ class Follower:
                 message = self._queue.popleft()
                 self._bytes -= self._costs.popleft() if self._costs else 0
                 yield message
-                if message.HasField("ended"):
+                if isinstance(message, Ended):
                     return
                 continue
             self._wake.clear()

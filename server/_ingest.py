@@ -72,7 +72,7 @@ def apply_event(session: Session, event: pb.ClientEvent | MalformedMessage, rece
                          "tick, close")
     journal = session.journal
     if journal is not None:
-        journal.accepted(event)
+        journal.accepted(event.SerializeToString)
     return False
 
 

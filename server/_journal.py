@@ -50,11 +50,12 @@ from dataclasses import dataclass
 from typing import Any, Final
 
 import redis.asyncio as aioredis
-from midstream import HypothesisUpdate
+from midstream import Ended
 from midstream.server._config import SharedLogConfig
-from midstream.server._session import Session
+from midstream.server._published import PublishedUpdate
+from midstream.server._session import Session, message_budget
+from midstream.server._wire import ended_message, snapshot_message, update_bytes
 from midstream.wire import convert as cv
-from midstream.wire import midstream_pb2 as pb
 from prometheus_client import CollectorRegistry, Counter, Gauge
 from redis.asyncio.cluster import RedisCluster
 from redis.exceptions import NoScriptError, RedisError, ResponseError
@@ -233,11 +234,10 @@ class ConversationJournal:
         self.keys = ConversationKeys.of(log.config.key_prefix, session.id)
         self.incarnation = incarnation
         self.models = log.models()  # the models this conversation is decoded with
-        # Updates as published, as wire messages (those re-sent after a rebuild), or already
-        # serialised as (seq, server time, bytes) by a round trip that failed.
-        self.updates: list[HypothesisUpdate | pb.Update | tuple[int, float, bytes]] = []
+        # Updates as (seq, server time, serialised Update), in sequence order.
+        self.updates: list[tuple[int, float, bytes]] = []
         self.events: list[bytes] = []
-        self.end: pb.ServerMessage | None = None
+        self.end: Ended | None = None
         self.events_queued = 0  # events accepted and queued (written or not), in order
         self.events_written = 0
         self.replaying = False
@@ -253,20 +253,20 @@ class ConversationJournal:
         # trimming by age: a conversation keeps a few hundred samples, not one per update.
         self.times: deque[tuple[int, float]] = deque()
 
-    def published(self, update: pb.Update) -> None:
+    def published(self, update: PublishedUpdate) -> None:
         if self.replaying or self.dead:
             return
-        # Serialised now: bytes are what is sent, and hold far less than a message while
-        # Redis is away.
-        self.updates.append((update.seq, update.server_time, update.SerializeToString()))
+        self.republished(update)
+
+    def republished(self, update: PublishedUpdate) -> None:
+        """Queue an update (one rebuilt from the log that the log does not hold yet, too)."""
+        # Serialised now: bytes are what is sent, and hold far less than objects while Redis
+        # is away. They are the bytes the caller and followers are sent, made once for all.
+        published = update.update
+        self.updates.append((published.seq, published.server_time, update_bytes(update)))
         self._log.queued(self, 1)
 
-    def republished(self, update: pb.Update) -> None:
-        """Queue an update rebuilt from the log that the log does not hold yet."""
-        self.updates.append(update)
-        self._log.queued(self, 1)
-
-    def accepted(self, event: pb.ClientEvent) -> None:
+    def accepted(self, serialised: Callable[[], bytes]) -> None:
         if self.replaying or self.dead or not self.resumable:
             return
         if self.events_queued >= self._log.config.max_events:
@@ -276,14 +276,14 @@ class ConversationJournal:
                       self._log.config.max_events)
             self._log.queued(self, 0)
             return
-        self.events.append(event.SerializeToString())
+        self.events.append(serialised())
         self.events_queued += 1
         self._log.queued(self, 1)
 
-    def ended(self, message: pb.ServerMessage) -> None:
+    def ended(self, ended: Ended) -> None:
         if self.dead:
             return
-        self.end = message
+        self.end = ended
         self._log.queued(self, 1)
 
     @property
@@ -300,10 +300,6 @@ class ConversationJournal:
             self.resumable = False
             self.generation += 1
         return dropped
-
-
-def _seq(update: HypothesisUpdate | pb.Update | tuple[int, float, bytes]) -> int:
-    return update[0] if isinstance(update, tuple) else update.seq
 
 
 class _Call:
@@ -526,7 +522,7 @@ class SharedLog:
         updates = journal.updates[:_UPDATES_PER_CALL]
         events = journal.events[:_EVENTS_PER_CALL]
         call.n_updates, call.n_events = len(updates), len(events)
-        last = _seq(updates[-1]) if updates else journal.written_seq
+        last = updates[-1][0] if updates else journal.written_seq
         # Trim by count and by age; a trim always comes with a fresh snapshot, so the stream
         # never starts after the snapshot's sequence number plus one.
         cut = last - config.max_entries + 1
@@ -540,10 +536,11 @@ class SharedLog:
         if journal.dropped:
             # Entries were dropped: everything before what is sent now goes, so nobody reads
             # across the hole.
-            cut = max(cut, _seq(updates[0]) if updates else session.seq + 1)
+            cut = max(cut, updates[0][0] if updates else session.seq + 1)
         snapshot = b""
         if cut > journal.first_kept or journal.dropped:
-            snapshot = session.snapshot_message().snapshot.SerializeToString()
+            snapshot = snapshot_message(session.snapshot(), message_budget(session.limits)
+                                        ).snapshot.SerializeToString()
             call.minid = max(cut, 1)
         end = journal.end if len(updates) == len(journal.updates) else None
         call.end = end is not None
@@ -556,7 +553,7 @@ class SharedLog:
             # What never changes is written with the conversation, not with every update.
             meta.update(started=repr(session.started_at), models=journal.models)
         if end is not None:
-            meta["reason"] = str(end.ended.reason)
+            meta["reason"] = str(int(cv.end_reason_to_wire(end.reason)))
         if journal.dropped:
             # The snapshot stands for every update up to the session's newest, written or
             # dropped: readers take the log as that far on (a follower from there is told
@@ -565,21 +562,15 @@ class SharedLog:
         args: list[Any] = [
             self.owner, journal.incarnation, int(config.max_age_s * 1000),
             "1" if journal.created else "0", len(events), journal.events_written + 1,
-            len(updates), end_entry_id(end.ended.last_seq) if end is not None else "",
-            end.SerializeToString() if end is not None else b"", snapshot, str(call.minid),
+            len(updates), end_entry_id(end.last_seq) if end is not None else "",
+            ended_message(end).SerializeToString() if end is not None else b"", snapshot,
+            str(call.minid),
             len(meta),
         ]
         for name, value in meta.items():
             args += (name, value)
         args += events
-        for index, update in enumerate(updates):
-            if isinstance(update, tuple):
-                seq, when, data = update
-            else:
-                # Serialised once: a round trip that fails is retried with the same bytes.
-                wire = update if isinstance(update, pb.Update) else cv.update_to_wire(update)
-                seq, when, data = update.seq, update.server_time, wire.SerializeToString()
-                journal.updates[index] = (seq, when, data)
+        for seq, when, data in updates:
             args += (seq, data)
             call.times.append((seq, when))
         call.args = args

@@ -49,7 +49,14 @@ from collections.abc import AsyncIterator
 from typing import TYPE_CHECKING, Any, NoReturn, Protocol
 
 import grpc
-from midstream import EventError, LimitExceededError, MidstreamError, UnavailableError
+from midstream import (
+    Ended,
+    EndReason,
+    EventError,
+    LimitExceededError,
+    MidstreamError,
+    UnavailableError,
+)
 from midstream.server._decode import MalformedMessage
 from midstream.server._ingest import apply_event, caller_address, caller_vanished
 from midstream.server._session import Session, message_budget
@@ -60,6 +67,7 @@ from midstream.server._status import (
     ProtocolStateError,
     status_code,
 )
+from midstream.server._wire import ended_message, write_update
 from midstream.wire import midstream_pb2 as pb
 
 if TYPE_CHECKING:  # the shared log (and its Redis client) loads only when configured
@@ -148,7 +156,7 @@ class ManyStream:
         # this generator (see MidstreamServicer.Feed).
         # (The stubs name a class where grpc takes any callable of the context.)
         context.add_done_callback(
-            lambda _: self._abandon(pb.END_REASON_CALLER_VANISHED))  # type: ignore[arg-type]
+            lambda _: self._abandon(EndReason.CALLER_VANISHED))  # type: ignore[arg-type]
         loop = asyncio.get_running_loop()
         sweep_every = min(limits.idle_timeout_s / _SWEEPS_PER_TIMEOUT, _MAX_SWEEP_S)
         next_sweep = sweep_every
@@ -174,7 +182,7 @@ class ManyStream:
                 self._waited += loop.time() - began
                 if stop.done():
                     # The server is stopping: it finished every session; hand over the rest.
-                    self._end_all(pb.END_REASON_SERVER_SHUTDOWN)
+                    self._end_all(EndReason.SERVER_SHUTDOWN)
                     for frame in self._frames():
                         yield frame
                     return
@@ -183,9 +191,9 @@ class ManyStream:
                     read = None
                     if request is grpc.aio.EOF:
                         if await caller_vanished(context):
-                            self._abandon(pb.END_REASON_CALLER_VANISHED)
+                            self._abandon(EndReason.CALLER_VANISHED)
                             return
-                        self._end_all(pb.END_REASON_CLOSED)
+                        self._end_all(EndReason.CLOSED)
                         for frame in self._frames():
                             yield frame
                         return
@@ -196,7 +204,7 @@ class ManyStream:
                         assert isinstance(request, pb.ClientFrame)
                         await self._frame(request)
                     except (FieldLimitError, EventError) as exc:
-                        self._end_all(pb.END_REASON_REJECTED)
+                        self._end_all(EndReason.REJECTED)
                         for frame in self._frames():
                             yield frame
                         await servicer.refuse_stream(context, exc)
@@ -225,7 +233,7 @@ class ManyStream:
             if read is not None and not read.done():
                 read.cancel()
             # Cancelled, or the caller went away mid-stream: finalise for the followers.
-            self._abandon(pb.END_REASON_CALLER_VANISHED)
+            self._abandon(EndReason.CALLER_VANISHED)
 
     # --- one frame -----------------------------------------------------------------------
 
@@ -365,34 +373,41 @@ class ManyStream:
         except MidstreamError as exc:
             self._flush(channel)
             self._refuse(channel.number, exc)
-            self._finish(channel, pb.END_REASON_REJECTED)
+            self._finish(channel, EndReason.REJECTED)
             return
         except Exception as exc:  # a bug must not leave followers hanging
             servicer.log_internal(session.id, exc)
             self._flush(channel)
             self._refuse(channel.number, InternalError(
                 f"internal error; conversation {session.id} was finished"))
-            self._finish(channel, pb.END_REASON_UNSPECIFIED)
+            self._finish(channel, EndReason.UNKNOWN)
             return
         if closing:
-            self._finish(channel, pb.END_REASON_CLOSED)
+            self._finish(channel, EndReason.CLOSED)
         else:
             self._flush(channel)
 
     # --- replies -------------------------------------------------------------------------
 
     def _flush(self, channel: _Channel) -> None:
-        """Queue the channel's updates its caller has not been sent."""
-        number, add = channel.number, self._out.replies.add
-        channel.sent = channel.session.since_into(
-            channel.sent, lambda: add(channel=number).message)
+        """Queue the channel's updates its caller has not been sent.
 
-    def _finish(self, channel: _Channel, reason: pb.EndReason) -> None:
+        Each is written inside the reply frame (built in place, or parsed from the wire bytes
+        a follower or the shared log already made), not built alone and copied in.
+        """
+        number, add = channel.number, self._out.replies.add
+        for item in channel.session.since(channel.sent):
+            write_update(item, add(channel=number).message)
+            channel.sent = item.update.seq
+
+    def _finish(self, channel: _Channel, reason: EndReason) -> None:
         """End the channel's conversation (if live), queue its last messages, forget it."""
-        self._servicer.registry.close(channel.session, reason)
+        session = channel.session
+        self._servicer.registry.close(session, reason)
         self._flush(channel)
-        self._out.replies.add(channel=channel.number,
-                              message=channel.session.closing_messages[-1])
+        ended = session.closing_messages[-1]
+        assert isinstance(ended, Ended)  # a finished session's last message is its end
+        self._out.replies.add(channel=channel.number, message=ended_message(ended))
         del self._channels[channel.number]
 
     def _refuse(self, number: int, error: MidstreamError) -> None:
@@ -405,11 +420,11 @@ class ManyStream:
         self._out.replies.add(channel=number,
                               error=pb.ChannelError(code=code.name, message=str(error)))
 
-    def _end_all(self, reason: pb.EndReason) -> None:
+    def _end_all(self, reason: EndReason) -> None:
         for channel in list(self._channels.values()):
             self._finish(channel, reason)
 
-    def _abandon(self, reason: pb.EndReason) -> None:
+    def _abandon(self, reason: EndReason) -> None:
         """Finish every open channel without queueing replies (nobody will read them)."""
         for channel in self._channels.values():
             self._servicer.registry.close(channel.session, reason)
@@ -418,7 +433,7 @@ class ManyStream:
     def _sweep(self, idle_timeout_s: float) -> None:
         cutoff = self._waited - idle_timeout_s
         for channel in [c for c in self._channels.values() if c.last_event <= cutoff]:
-            self._finish(channel, pb.END_REASON_IDLE_TIMEOUT)
+            self._finish(channel, EndReason.IDLE_TIMEOUT)
 
     def _frames(self) -> list[pb.ServerFrame]:
         """The queued replies as frames, each within the message budget; clears the queue.

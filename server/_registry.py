@@ -14,6 +14,7 @@ from collections import OrderedDict
 from collections.abc import Callable
 
 from midstream import (
+    EndReason,
     LimitExceededError,
     NotFoundError,
 )
@@ -21,9 +22,9 @@ from midstream.server._config import ServerLimits
 from midstream.server._limits import check_id
 from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Bundle
+from midstream.server._published import Outgoing
 from midstream.server._session import Journal, KeptBytes, Session
 from midstream.server._status import ConflictError
-from midstream.wire import midstream_pb2 as pb
 
 _log = logging.getLogger(__name__)
 
@@ -89,7 +90,7 @@ class SessionRegistry:
         _log.info("conversation %s opened", conversation_id)
         return session
 
-    def close(self, session: Session, reason: pb.EndReason) -> tuple[pb.ServerMessage, ...]:
+    def close(self, session: Session, reason: EndReason) -> tuple[Outgoing, ...]:
         """Finish ``session`` (if live) and move it to the kept ended conversations."""
         messages = session.finish(reason)
         if self._live.pop(session.id, None) is not None:
@@ -105,7 +106,7 @@ class SessionRegistry:
         """Drop ``session`` without publishing its end (a conversation that could not be
         rebuilt from a shared log, whose log must stay as it is)."""
         session.journal = None
-        session.finish(pb.END_REASON_UNSPECIFIED)
+        session.finish(EndReason.UNKNOWN)
         if self._live.get(session.id) is session:
             del self._live[session.id]
             self.kept.used -= session.kept_bytes
@@ -154,7 +155,7 @@ class SessionRegistry:
             if surplus > 0:
                 kept.used -= session.shed(surplus)
 
-    def close_all(self, reason: pb.EndReason) -> None:
+    def close_all(self, reason: EndReason) -> None:
         """Finish every live conversation (graceful shutdown)."""
         for session in list(self._live.values()):
             self.close(session, reason)

@@ -48,9 +48,11 @@ from midstream.server._journal import (
 )
 from midstream.server._limits import check_id
 from midstream.server._models import Bundle
+from midstream.server._published import PublishedUpdate
 from midstream.server._registry import SessionRegistry
 from midstream.server._session import Session, message_budget
 from midstream.server._status import ConflictError, PositionError, ProtocolStateError
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from redis.exceptions import RedisError, ResponseError
 
@@ -550,8 +552,8 @@ class Replica:
         journal.replaying = False
         journal.first_kept = 1
         session.clock = time.time
-        for message in missing:
-            journal.republished(message.update)
+        for item in missing:
+            journal.republished(item)
         _log.info("conversation %s continued here from %d logged events (seq %d, %d updates "
                   "the log lacked)", conversation_id, len(events), session.seq, len(missing))
         return session, len(events)
@@ -566,7 +568,7 @@ class Replica:
 
     @staticmethod
     def _check(session: Session, logged: int, stored: pb.Update | None,
-               ) -> list[pb.ServerMessage]:
+               ) -> list[PublishedUpdate]:
         """Compare the replay with the log (``logged`` updates written, the newest still held
         ``stored``); return the updates the log lacks."""
         if logged > session.seq:
@@ -576,8 +578,7 @@ class Replica:
         if stored is not None:
             replayed = session.since(stored.seq - 1)
             if replayed and replayed[0].update.seq == stored.seq:
-                mine = pb.Update()
-                mine.CopyFrom(replayed[0].update)
+                mine = cv.update_to_wire(replayed[0].update)
                 mine.server_time = stored.server_time
                 if mine != stored:
                     raise ModelError(

@@ -2,7 +2,8 @@
 
 Generated protobuf types stop here: requests are converted to domain types with
 ``midstream.wire.convert`` and checked by ``midstream.server._limits`` before a session or
-engine sees them. Every Midstream error an RPC raises is reported through one function
+engine sees them, and what sessions publish (domain values) is converted on its way out
+(``midstream.server._wire``). Every Midstream error an RPC raises is reported through one function
 (:func:`midstream.server._status.status_code`).
 
 A ``Feed`` stream is one RPC, so a refused event cannot be answered and then carried on
@@ -24,6 +25,7 @@ from typing import TYPE_CHECKING, Any, NoReturn
 
 import grpc
 from midstream import (
+    EndReason,
     EventError,
     HypothesisDiff,
     LimitExceededError,
@@ -49,6 +51,7 @@ from midstream.server._status import (
     ProtocolStateError,
     status_code,
 )
+from midstream.server._wire import server_message, update_message
 from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from midstream.wire import midstream_pb2_grpc as pb_grpc
@@ -218,6 +221,14 @@ class _EventReader:
         return True
 
 
+def _summary(session: Session) -> pb.ConversationSummary:
+    return pb.ConversationSummary(
+        conversation_id=session.id, speakers=session.timeline.speakers,
+        words=session.word_count, last_seq=session.seq, started_at=session.started_at,
+        ended=not session.live, epoch=session.epoch,
+    )
+
+
 class MidstreamServicer(pb_grpc.MidstreamServicer):
     """Implements every RPC of the service over one :class:`SessionRegistry`.
 
@@ -347,7 +358,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     async def Feed(  # noqa: N802 - the generated servicer's name
         self, request_iterator: AsyncIterator[pb.ClientEvent],
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage],
-    ) -> AsyncIterator[pb.ServerMessage]:
+    ) -> AsyncIterator[pb.ServerMessage | bytes]:
         try:
             self.enter_waiting()
         except LimitExceededError as exc:
@@ -403,7 +414,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     def _call_ended(self, session: Session, _: object = None) -> None:
         """Finish ``session`` as abandoned by its caller unless it has already ended."""
         if session.live:
-            self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
+            self.registry.close(session, EndReason.CALLER_VANISHED)
 
     async def _open(self, request: pb.OpenConversation, *, owner: str,
                     ) -> tuple[Session, int]:
@@ -444,7 +455,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         self, session: Session,
         context: grpc.aio.ServicerContext[pb.ClientEvent, pb.ServerMessage], *,
         server_ticks: bool = False,
-    ) -> AsyncIterator[pb.ServerMessage]:
+    ) -> AsyncIterator[pb.ServerMessage | bytes]:
         # A server stop finishes every session, so waiting on this session's end covers it.
         # The last sequence number the caller was given: a continued conversation's earlier
         # updates went to the caller from the replica that died.
@@ -458,46 +469,46 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                 event = await reader.next()
                 if event is _WOKEN and session.live:
                     # The server's clock closed an utterance: send it without an event.
-                    for message in session.since(sent):
-                        sent = message.update.seq
-                        yield message
+                    for item in session.since(sent):
+                        sent = item.update.seq
+                        yield update_message(item)
                     continue
                 if event is _STOPPED or not session.live:
                     # Finished by the server (shutdown): hand over the rest and the end.
-                    for message in (*session.since(sent), session.closing_messages[-1]):
+                    for message in self._closing(session, sent):
                         yield message
                     return
                 if event is grpc.aio.EOF and await caller_vanished(context):
-                    self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
+                    self.registry.close(session, EndReason.CALLER_VANISHED)
                     return
                 if isinstance(event, _Timeout) or event is grpc.aio.EOF:
-                    reason = (pb.END_REASON_IDLE_TIMEOUT if isinstance(event, _Timeout)
-                              else pb.END_REASON_CLOSED)
+                    reason = (EndReason.IDLE_TIMEOUT if isinstance(event, _Timeout)
+                              else EndReason.CLOSED)
                     self.registry.close(session, reason)
-                    for message in (*session.since(sent), session.closing_messages[-1]):
+                    for message in self._closing(session, sent):
                         yield message
                     return
                 assert isinstance(event, pb.ClientEvent | MalformedMessage)
                 try:
                     closing = apply_event(session, event, time.monotonic(), self._limits)
                 except MidstreamError as exc:
-                    self.registry.close(session, pb.END_REASON_REJECTED)
-                    for message in session.since(sent):
-                        yield message
+                    self.registry.close(session, EndReason.REJECTED)
+                    for item in session.since(sent):
+                        yield update_message(item)
                     await self.refuse_stream(context, exc)
                 except Exception as exc:  # a bug must not leave followers hanging
                     self.log_internal(session.id, exc)
-                    self.registry.close(session, pb.END_REASON_UNSPECIFIED)
-                    for message in session.since(sent):
-                        yield message
+                    self.registry.close(session, EndReason.UNKNOWN)
+                    for item in session.since(sent):
+                        yield update_message(item)
                     await self._fail(context, InternalError(
                         f"internal error; conversation {session.id} was finished"))
-                for message in session.since(sent):
-                    sent = message.update.seq
-                    yield message
+                for item in session.since(sent):
+                    sent = item.update.seq
+                    yield update_message(item)
                 if closing:
-                    self.registry.close(session, pb.END_REASON_CLOSED)
-                    for message in (*session.since(sent), session.closing_messages[-1]):
+                    self.registry.close(session, EndReason.CLOSED)
+                    for message in self._closing(session, sent):
                         yield message
                     await self._after_close(context, session)
                     return
@@ -505,7 +516,14 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             reader.close()
             if session.live:
                 # Cancelled or the caller went away mid-stream: finalise for the followers.
-                self.registry.close(session, pb.END_REASON_CALLER_VANISHED)
+                self.registry.close(session, EndReason.CALLER_VANISHED)
+
+    def _closing(self, session: Session, sent: int) -> list[pb.ServerMessage | bytes]:
+        """What an ended conversation's caller is sent last: the updates after ``sent``, then
+        the end."""
+        budget = message_budget(self._limits)
+        return [*(update_message(item) for item in session.since(sent)),
+                *(server_message(item, budget) for item in session.closing_messages[-1:])]
 
     async def _after_close(self, context: grpc.aio.ServicerContext[pb.ClientEvent,
                                                                   pb.ServerMessage],
@@ -547,7 +565,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
     async def Follow(  # noqa: N802
         self, request: pb.FollowRequest | MalformedMessage,
         context: grpc.aio.ServicerContext[pb.FollowRequest, pb.ServerMessage],
-    ) -> AsyncIterator[pb.ServerMessage]:
+    ) -> AsyncIterator[pb.ServerMessage | bytes]:
         try:
             if isinstance(request, MalformedMessage):
                 raise request.error()
@@ -566,13 +584,14 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             except MidstreamError as exc:
                 await self._fail(context, exc)
             return
+        budget = message_budget(self._limits)
         if follower is None:
-            for message in backlog:
-                yield message
+            for item in backlog:
+                yield server_message(item, budget)
             return
         try:
-            async for message in follower.messages(backlog):
-                yield message
+            async for item in follower.messages(backlog):
+                yield server_message(item, budget)
         finally:
             session.unfollow(follower)
 
@@ -581,7 +600,7 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         context: grpc.aio.ServicerContext[pb.ListConversationsRequest,
                                           pb.ListConversationsReply],
     ) -> pb.ListConversationsReply:
-        local = [s.summary() for s in self.registry.sessions()]
+        local = [_summary(s) for s in self.registry.sessions()]
         if self.replica is not None:
             try:
                 local += await self.replica.summaries(

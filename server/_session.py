@@ -12,9 +12,14 @@ states for snapshots (``snapshot_states``) and each follower's queue (``follower
 The replay buffer, the revision history and the snapshot tables keep published states as
 records of plain values (:mod:`~midstream.server._kept`), which the cycle collector stops
 tracking, so its pauses do not grow with the history the server keeps; records become objects
-again only when read. Wire messages are built only when sent: a wire message costs about 1.5 KB
-of protobuf arena however small its content (measured with ``mallinfo2`` on protobuf 7.36 while
-this was written), which was the largest part of what an idle conversation kept.
+again only when read.
+
+A session speaks only in domain values (:mod:`midstream.server._published`): it never builds a
+protobuf message. The edge modules turn what it publishes into wire form when they write it
+(:mod:`midstream.server._wire`), once per update however many read it. Kept state therefore
+holds no protobuf arena (about 1.5 KB per message however small its content, measured with
+``mallinfo2`` on protobuf 7.36), which would be the largest part of what an idle conversation
+kept.
 
 Followers (:mod:`~midstream.server._followers`) get every update through their own bounded
 queue; the registry of all conversations is :mod:`~midstream.server._registry`.
@@ -26,15 +31,20 @@ import asyncio
 import logging
 import secrets
 import time
-from collections import OrderedDict, deque
+from collections import OrderedDict
 from collections.abc import Callable, Iterator
 from typing import Generic, Protocol, TypeVar
 
 from midstream import (
+    Ended,
+    EndReason,
     EventError,
+    Gap,
+    GapReason,
     HypothesisDiff,
     HypothesisUpdate,
     LimitExceededError,
+    Snapshot,
     UtteranceHypothesis,
     Word,
     WordHypothesis,
@@ -66,20 +76,14 @@ from midstream.server._kept import (
 from midstream.server._limits import SpeakerTimeline, check_id
 from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Engine
+from midstream.server._published import QUEUED_UPDATE_BYTES, Outgoing, PublishedUpdate
 from midstream.server._silence import SilenceClock
 from midstream.server._status import PositionError, ProtocolStateError
-from midstream.wire import convert as cv
-from midstream.wire import midstream_pb2 as pb
 
 _log = logging.getLogger(__name__)
 
 State = WordHypothesis | UtteranceHypothesis
 _T = TypeVar("_T")
-
-
-#: What a wire message costs besides its content: protobuf's arena for it (about 1.5 KB however
-#: small the message, measured with mallinfo2 on protobuf 7.36, see the module docstring).
-WIRE_MESSAGE_BYTES = 1536
 
 
 def new_epoch() -> int:
@@ -98,15 +102,16 @@ class Journal(Protocol):
     queues what it is given and writes later.
     """
 
-    def published(self, update: pb.Update) -> None:
-        """An update was published, in the wire form its caller is sent (called with every
-        update, in sequence order; the message must not be changed)."""
+    def published(self, update: PublishedUpdate) -> None:
+        """An update was published (called with every update, in sequence order); the item is
+        the one its caller and followers are sent, so its wire form is shared with them."""
 
-    def accepted(self, event: pb.ClientEvent) -> None:
-        """An input event after ``open`` was applied without error (``close`` excluded)."""
+    def accepted(self, serialised: Callable[[], bytes]) -> None:
+        """An input event after ``open`` was applied without error (``close`` excluded);
+        ``serialised`` gives its wire bytes (called only when the event is logged)."""
 
-    def ended(self, message: pb.ServerMessage) -> None:
-        """The conversation ended; ``message`` is its ``ended`` message."""
+    def ended(self, ended: Ended) -> None:
+        """The conversation ended."""
 
 
 def message_budget(limits: ServerLimits) -> int:
@@ -216,10 +221,6 @@ class _Recent(Generic[_T]):
             yield self._kept(index)
 
 
-def _to_wire(update: HypothesisUpdate) -> pb.ServerMessage:
-    return pb.ServerMessage(update=cv.update_to_wire(update))
-
-
 def _unpack_state(record: WordRecord | UtteranceRecord) -> State:
     if is_word_record(record):
         return unpack_word(record)
@@ -238,7 +239,7 @@ class Session:
     # Thousands may be live at once: no per-instance __dict__.
     __slots__ = (
         "_budget", "_ended", "_engine", "_followers", "_metrics", "_newest", "_replay",
-        "_revisions", "_shared_wire", "_silence", "_table_bytes", "_utterances", "_words",
+        "_revisions", "_shared", "_silence", "_table_bytes", "_utterances", "_words",
         "clock",
         "closing_messages", "end_reason", "ended_at",
         "epoch", "id", "journal", "limits", "owner", "revisions_truncated", "seq", "started_at",
@@ -266,9 +267,10 @@ class Session:
         self.timeline = SpeakerTimeline(limits)
         self.word_count = 0
         self.seq = 0
-        self.end_reason: pb.EndReason | None = None
+        self.end_reason: EndReason | None = None
         self.ended_at: float | None = None
-        self.closing_messages: tuple[pb.ServerMessage, ...] = ()
+        # The final update and the end, once ended.
+        self.closing_messages: tuple[Outgoing, ...] = ()
         self._engine: Engine | None = engine
         self._metrics = metrics
         # Made on first use (see ended_signal): most conversations never need one.
@@ -280,9 +282,9 @@ class Session:
         # The newest update as published, so the usual read (the one update since the caller
         # was last sent) needs no record turned back into objects.
         self._newest: HypothesisUpdate | None = None
-        # The wire form of the latest update when followers were sent it, so the caller is
-        # sent the same message rather than a second conversion; dropped once sent.
-        self._shared_wire: pb.ServerMessage | None = None
+        # The newest update as followers and the shared log were given it, so the caller is
+        # sent the same item (and its wire form is made once); dropped once the caller read it.
+        self._shared: PublishedUpdate | None = None
         self._words: OrderedDict[str, WordRecord] = OrderedDict()
         self._utterances: OrderedDict[str, UtteranceRecord] = OrderedDict()
         # (seq, server time, record): one level of nesting, see midstream.server._kept.
@@ -410,7 +412,7 @@ class Session:
         """The stream's time moved on to ``now`` (seconds, the word times' clock) with no word."""
         return self._publish(self._engine_or_error().tick(now), received)
 
-    def finish(self, reason: pb.EndReason) -> tuple[pb.ServerMessage, ...]:
+    def finish(self, reason: EndReason) -> tuple[Outgoing, ...]:
         """Finalise everything and end the conversation; idempotent.
 
         Returns the final update and the ``ended`` message (also queued to every follower).
@@ -431,13 +433,14 @@ class Session:
                        type(exc).__name__)
             _log.debug("engine failure detail", exc_info=True)
             diff = HypothesisDiff()
-        final_update = self._publish(diff, None, final=True)
-        assert final_update is not None  # a final update is always published
-        final = self._wire(final_update)
-        self._shared_wire = None
+        self._publish(diff, None, final=True)
+        # Kept as the newest item too: the caller reading it (since) gets the very item the
+        # followers and the shared log were given, whose wire form they share.
+        final = self._shared
+        assert final is not None  # a final update is always published
         self.end_reason = reason
         self.ended_at = time.time()
-        ended = pb.ServerMessage(ended=pb.Ended(reason=reason, last_seq=self.seq))
+        ended = Ended(reason=reason, last_seq=self.seq)
         if self.journal is not None:
             self.journal.ended(ended)
         for follower in self._followers:
@@ -447,7 +450,7 @@ class Session:
         if self._ended is not None and not self._ended.done():
             self._ended.set_result(None)
         _log.info("conversation %s ended (%s) after %d words, %d updates",
-                  self.id, pb.EndReason.Name(reason), self.word_count, self.seq)
+                  self.id, reason.value, self.word_count, self.seq)
         return self.closing_messages
 
     def _publish(self, diff: HypothesisDiff, received: float | None, *,
@@ -523,21 +526,16 @@ class Session:
             budget.used += grown + table - table_before
             if budget.used > budget.limit:
                 budget.relieve()
+        # One item for the caller, every follower and the shared log: its wire form is made
+        # at most once, by whichever edge writes it first.
+        item = self._shared = PublishedUpdate(update)
         if self._followers:
-            message = self._shared_wire = _to_wire(update)
-            # The wire message shared by every follower: a protobuf arena's floor plus about
-            # what the record holds.
-            cost = WIRE_MESSAGE_BYTES + update_bytes
+            cost = QUEUED_UPDATE_BYTES + update_bytes
             for follower in self._followers:
-                follower.offer(message, seq, cost)
+                follower.offer(item, seq, cost)
         journal = self.journal
         if journal is not None:
-            # The wire form the caller (and any follower) is sent anyway: the log serialises
-            # it rather than converting the update a second time.
-            shared = self._shared_wire
-            if shared is None or shared.update.seq != seq:
-                shared = self._shared_wire = _to_wire(update)
-            journal.published(shared.update)
+            journal.published(item)
         tally = self._metrics.tally
         tally.revisions += revised
         if received is not None:
@@ -593,62 +591,37 @@ class Session:
         newer.reverse()
         return newer
 
-    def since(self, seq: int) -> list[pb.ServerMessage]:
-        """Updates in the replay buffer after ``seq``, oldest first, as wire messages."""
-        messages = [self._wire(update) for update in self._after(seq)]
-        self._shared_wire = None
-        return messages
+    def since(self, seq: int) -> list[PublishedUpdate]:
+        """Updates in the replay buffer after ``seq``, oldest first.
 
-    def since_into(self, seq: int, new_message: Callable[[], pb.ServerMessage]) -> int:
-        """Write the updates after ``seq`` (as :meth:`since`) into messages ``new_message`` makes.
-
-        For a caller that collects replies in a frame of its own: each update is built inside
-        the frame rather than built alone and copied in. Returns the last sequence number
-        written (``seq`` when there was none).
+        The newest is the item followers and the shared log were given (its wire form is
+        shared with them); the session forgets that item here, as the caller has now read it.
         """
-        shared = self._shared_wire
-        self._shared_wire = None
-        for update in self._after(seq):
-            message = new_message()
-            if shared is not None and shared.update.seq == update.seq:
-                message.CopyFrom(shared)  # followers were sent this one: copy, not convert
-            else:
-                cv.update_into_wire(update, message.update)
-            seq = update.seq
-        return seq
+        shared, self._shared = self._shared, None
+        newest = self._newest
+        if self.seq == seq + 1 and newest is not None:
+            # The usual case (once per word): the newest update alone, no list rebuilt.
+            return [shared if shared is not None and shared.update is newest
+                    else PublishedUpdate(newest)]
+        updates = self._after(seq)
+        items = [PublishedUpdate(update) for update in updates[:-1]]
+        if updates:
+            newest = updates[-1]
+            items.append(shared if shared is not None and shared.update.seq == newest.seq
+                         else PublishedUpdate(newest))
+        return items
 
-    def _wire(self, update: HypothesisUpdate) -> pb.ServerMessage:
-        shared = self._shared_wire
-        if shared is not None and shared.update.seq == update.seq:
-            return shared
-        return _to_wire(update)
+    def snapshot(self) -> Snapshot:
+        """The whole kept state as of the current sequence number, oldest states first.
 
-    def snapshot_message(self) -> pb.ServerMessage:
-        """The whole kept state as of the current sequence number.
-
-        When the kept states would not fit in one message (``max_message_bytes``), the oldest
-        are left out: a snapshot favours what is still changing.
+        The edge leaves out the oldest when they would not fit in one message
+        (:func:`midstream.server._wire.snapshot_message`).
         """
-        words = [cv.word_state_to_wire(unpack_word(w)) for w in self._words.values()]
-        utterances = [cv.utterance_state_to_wire(unpack_utterance(u))
-                      for u in self._utterances.values()]
-        budget = message_budget(self.limits)
-        # Repeated fields cost their size plus a few bytes of framing each.
-        word_sizes = deque(m.ByteSize() + 6 for m in words)
-        utterance_sizes = deque(m.ByteSize() + 6 for m in utterances)
-        total = sum(word_sizes) + sum(utterance_sizes)
-        first_word = first_utterance = 0
-        while total > budget and (word_sizes or utterance_sizes):
-            if utterance_sizes and (not word_sizes or utterance_sizes[0] >= word_sizes[0]):
-                total -= utterance_sizes.popleft()
-                first_utterance += 1
-            else:
-                total -= word_sizes.popleft()
-                first_word += 1
-        return pb.ServerMessage(snapshot=pb.Snapshot(
-            seq=self.seq, words=words[first_word:], utterances=utterances[first_utterance:],
+        return Snapshot(
+            seq=self.seq, words=tuple(unpack_word(w) for w in self._words.values()),
+            utterances=tuple(unpack_utterance(u) for u in self._utterances.values()),
             conversation_final=not self.live, epoch=self.epoch,
-        ))
+        )
 
     def revisions(self) -> tuple[list[tuple[int, float, State]], bool]:
         """Every kept published state with its sequence number and time, and ``truncated``."""
@@ -656,7 +629,7 @@ class Session:
                 ], self.revisions_truncated
 
     def follow(self, from_seq: int | None, epoch: int = 0,
-               ) -> tuple[list[pb.ServerMessage], Follower | None]:
+               ) -> tuple[list[Outgoing], Follower | None]:
         """Register a follower; return what it must be sent first and its live queue.
 
         ``from_seq=None`` starts with a snapshot. A position still in the replay buffer replays
@@ -690,26 +663,27 @@ class Session:
                 f"conversation {self.id} already has {limit} followers; "
                 f"limit max_followers_per_conversation is {limit}",
             )
-        backlog: list[pb.ServerMessage] = []
+        backlog: list[Outgoing] = []
         # Seq 1 is the start of whichever epoch: nothing was seen that could be spliced onto.
         unchecked = epoch == 0 and from_seq is not None and from_seq > 1
         if other_epoch or unchecked:
-            backlog.append(pb.ServerMessage(gap=pb.Gap(
-                first_missing=from_seq if from_seq is not None else 1,
-                oldest_kept=self.oldest_kept, reason=pb.GAP_REASON_EPOCH_MISMATCH,
-            )))
-            backlog.append(self.snapshot_message())
+            backlog.append(Gap(first_missing=from_seq if from_seq is not None else 1,
+                               oldest_kept=self.oldest_kept, reason=GapReason.EPOCH_MISMATCH))
+            backlog.append(self.snapshot())
         elif from_seq is None:
-            backlog.append(self.snapshot_message())
+            backlog.append(self.snapshot())
         elif from_seq < self.oldest_kept:
-            backlog.append(pb.ServerMessage(gap=pb.Gap(
-                first_missing=from_seq, oldest_kept=self.oldest_kept,
-                reason=pb.GAP_REASON_EVICTED,
-            )))
-            backlog.append(self.snapshot_message())
+            backlog.append(Gap(first_missing=from_seq, oldest_kept=self.oldest_kept,
+                               reason=GapReason.EVICTED))
+            backlog.append(self.snapshot())
         else:
-            backlog.extend(self._wire(unpack_update(r)) for r in self._replay
-                           if r[UPDATE_SEQ] >= from_seq)
+            shared = self._shared
+            for record in self._replay:
+                if record[UPDATE_SEQ] >= from_seq:
+                    # The newest may be the item the caller is about to be sent: share it.
+                    backlog.append(shared if shared is not None
+                                   and shared.update.seq == record[UPDATE_SEQ]
+                                   else PublishedUpdate(unpack_update(record)))
         if not self.live:
             backlog.append(self.closing_messages[-1])
             return backlog, None
@@ -725,9 +699,3 @@ class Session:
     def follower_count(self) -> int:
         return len(self._followers)
 
-    def summary(self) -> pb.ConversationSummary:
-        return pb.ConversationSummary(
-            conversation_id=self.id, speakers=self.timeline.speakers, words=self.word_count,
-            last_seq=self.seq, started_at=self.started_at, ended=not self.live,
-            epoch=self.epoch,
-        )

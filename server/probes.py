@@ -22,7 +22,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, cast
 
-from midstream import Word
+from midstream import EndReason, Word
 from midstream.server._config import ServerLimits, SharedLogConfig
 from midstream.server._ingest import apply_event
 from midstream.server._many import ManyStream
@@ -110,7 +110,7 @@ class FramePath:
 
     def end_all(self) -> None:
         """End every open conversation (as a closed stream does) and drop the replies."""
-        self.stream._end_all(pb.END_REASON_CLOSED)
+        self.stream._end_all(EndReason.CLOSED)
         self.stream._frames()
 
     def words_counted(self) -> float:

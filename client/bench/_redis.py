@@ -31,6 +31,7 @@ import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from midstream import EndReason
 from midstream.client.bench._kit import corpora_root, machine, models_folder, source_arguments
 from midstream.client.cli._cmd_bench import load_script
 from midstream.models import ModelBundle
@@ -91,7 +92,7 @@ async def _pass(bundle: ModelBundle, script: list[list[tuple[str, str]]],
         await asyncio.sleep(0.001)
     spent = time.process_time() - began
     for session in sessions:
-        registry.close(session, pb.END_REASON_CLOSED)
+        registry.close(session, EndReason.CLOSED)
     while log is not None and log.pending:
         await asyncio.sleep(0.001)
     return spent, len(events), [s.id for s in sessions]

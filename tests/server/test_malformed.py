@@ -15,6 +15,7 @@ import grpc
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+from midstream import EndReason
 from midstream.server._decode import MalformedMessage, tolerant_deserializer
 from midstream.wire import midstream_pb2 as pb
 from server_kit import (  # noqa: F401 - fixtures are found by name
@@ -118,7 +119,7 @@ async def test_malformed_frame_ends_the_stream_and_rejects_its_channels(
     assert _errors(running) == before + 1
     assert not any(r.exc_info for r in caplog.records)
     kept = running.server.servicer.registry.get("m1")
-    assert kept.end_reason == pb.END_REASON_REJECTED
+    assert kept.end_reason == EndReason.REJECTED
 
 
 @pytest.mark.parametrize("method", ["Follow", "GetRevisions"])

@@ -13,13 +13,13 @@ import gc
 import tracemalloc
 from collections import OrderedDict
 
-from midstream import Word
+from midstream import EndReason, Gap, Snapshot, Word
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics
 from midstream.server._registry import SessionRegistry
 from midstream.server._session import Session, _Recent
-from midstream.wire import midstream_pb2 as pb
+from midstream.server._wire import server_message
 from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures by name
 
 _LIMITS = ServerLimits(replay_bytes=256 * 1024, history_bytes=512 * 1024,
@@ -91,7 +91,7 @@ def test_the_server_budget_forgets_ended_then_sheds_the_largest(bundle: ModelBun
     small.add_words(_maximal_batch(0, limits)[:4], received=0.0)
     ended = registry.open("ended", bundle, owner="a")
     ended.add_words(_maximal_batch(1, limits)[:4], received=0.0)
-    registry.close(ended, pb.END_REASON_CLOSED)
+    registry.close(ended, EndReason.CLOSED)
     big = registry.open("big", bundle, owner="b")
     for batch in range(2, 8):
         big.add_words(_maximal_batch(batch, limits), received=0.0)
@@ -107,9 +107,9 @@ def test_the_server_budget_forgets_ended_then_sheds_the_largest(bundle: ModelBun
 def test_one_caller_cannot_flush_every_ended_conversation(bundle: ModelBundle) -> None:
     registry = SessionRegistry(ServerLimits(max_ended_conversations=4), ServerMetrics())
     for name in ("a1", "a2"):
-        registry.close(registry.open(name, bundle, owner="caller-a"), pb.END_REASON_CLOSED)
+        registry.close(registry.open(name, bundle, owner="caller-a"), EndReason.CLOSED)
     for n in range(20):  # caller b ends conversation after conversation
-        registry.close(registry.open(f"b{n}", bundle, owner="caller-b"), pb.END_REASON_CLOSED)
+        registry.close(registry.open(f"b{n}", bundle, owner="caller-b"), EndReason.CLOSED)
     kept = [s.id for s in registry.sessions()]
     assert kept == ["a1", "a2", "b18", "b19"]
 
@@ -122,8 +122,44 @@ async def test_a_follower_queue_is_bounded_in_bytes(bundle: ModelBundle) -> None
     session.add_words(_maximal_batch(0, limits)[:8], received=0.0)  # small: queued
     session.add_words(_maximal_batch(1, limits), received=0.0)  # a maximal batch: over
     messages = follower.messages(backlog)
-    kinds = [(await anext(messages)).WhichOneof("body") for _ in range(3)]
+    kinds = [type(await anext(messages)) for _ in range(3)]
     # The snapshot it started with, then told it lagged and given the state: no maximal batch
     # queued for a reader that holds more than its share.
-    assert kinds == ["snapshot", "gap", "snapshot"]
+    assert kinds == [Snapshot, Gap, Snapshot]
     await messages.aclose()  # type: ignore[attr-defined]
+
+
+def test_a_follower_queue_s_estimate_covers_its_updates_and_their_wire_bytes(
+        bundle: ModelBundle) -> None:
+    # Word by word (the usual update: a word or two and an utterance), and with every queued
+    # update's wire bytes made, as a follower's stream makes them when it writes.
+    limits = ServerLimits(follower_queue=1_000, follower_queue_bytes=1 << 30)
+    words = [(f"w{i}", Word(text=("so", "um", "well", "what")[i % 4] + f"{i}", speaker="AB"[i % 2],
+                            start=float(i))) for i in range(200)]
+
+    def fill(session: Session) -> None:
+        for word in words:
+            session.add_words([word], received=0.0)
+            session.since(session.seq - 1)  # the caller reads each, as Feed does
+
+    unfollowed = Session("alone", bundle.new_engine(), limits, ServerMetrics())
+    followed = Session("followed", bundle.new_engine(), limits, ServerMetrics())
+    _, follower = followed.follow(None)
+    assert follower is not None
+    gc.collect()
+    tracemalloc.start()
+    try:
+        start, _ = tracemalloc.get_traced_memory()
+        fill(unfollowed)
+        gc.collect()
+        middle, _ = tracemalloc.get_traced_memory()
+        fill(followed)
+        for item in follower._queue:
+            server_message(item, 1 << 20)
+        gc.collect()
+        end, _ = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    queued = len(follower._queue)
+    assert queued == followed.seq  # nothing was dropped
+    assert (end - middle) - (middle - start) <= follower._bytes

@@ -11,11 +11,13 @@ from __future__ import annotations
 
 import time
 
+from midstream import EndReason
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._ingest import apply_event
 from midstream.server._metrics import ServerMetrics
 from midstream.server._session import Session
+from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from redis_kit import call_words, comparable
 from server_kit import bundle_fixture, models_dir_fixture, words_event
@@ -54,8 +56,8 @@ def _run(bundle: ModelBundle, events: list[pb.ClientEvent]) -> list[bytes]:
     session = Session("replayed", bundle.new_engine(), limits, ServerMetrics())
     for event in events:
         apply_event(session, event, time.monotonic(), limits)
-    session.finish(pb.END_REASON_CLOSED)
-    return [comparable(m.update) for m in session.since(0)]
+    session.finish(EndReason.CLOSED)
+    return [comparable(cv.update_to_wire(m.update)) for m in session.since(0)]
 
 
 def test_the_same_events_give_the_same_updates_bit_for_bit(bundle: ModelBundle) -> None:
@@ -75,5 +77,5 @@ def test_a_replay_of_a_prefix_is_a_prefix_of_the_whole(bundle: ModelBundle) -> N
     session = Session("prefix", bundle.new_engine(), limits, ServerMetrics())
     for event in events[:60]:
         apply_event(session, event, time.monotonic(), limits)
-    prefix = [comparable(m.update) for m in session.since(0)]
+    prefix = [comparable(cv.update_to_wire(m.update)) for m in session.since(0)]
     assert prefix == whole[:len(prefix)]

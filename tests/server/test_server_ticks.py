@@ -10,12 +10,14 @@ from __future__ import annotations
 
 import asyncio
 import math
+from collections.abc import Callable
 from dataclasses import replace
 
 import grpc
 import pytest
-from midstream import HypothesisUpdate, Word
+from midstream import Ended, HypothesisUpdate, Word
 from midstream.client import AddWord, Client
+from midstream.server._published import PublishedUpdate
 from midstream.server._session import Session
 from midstream.server._status import ProtocolStateError
 from midstream.wire import convert as cv
@@ -155,9 +157,9 @@ async def test_a_session_recorded_in_a_shared_log_refuses_the_server_clock(
     session = _session(running, conversation)
 
     class _Log:
-        def published(self, update: pb.Update) -> None: ...
-        def accepted(self, event: pb.ClientEvent) -> None: ...
-        def ended(self, message: pb.ServerMessage) -> None: ...
+        def published(self, update: PublishedUpdate) -> None: ...
+        def accepted(self, serialised: Callable[[], bytes]) -> None: ...
+        def ended(self, ended: Ended) -> None: ...
 
     session.journal = _Log()
     with pytest.raises(ProtocolStateError, match="server_ticks"):

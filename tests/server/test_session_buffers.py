@@ -9,13 +9,12 @@ from collections import deque
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from midstream import Word, merge_diffs
+from midstream import EndReason, Word, merge_diffs
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics
 from midstream.server._registry import SessionRegistry
 from midstream.server._session import Session, _Recent
-from midstream.wire import midstream_pb2 as pb
 from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures by name
 
 
@@ -98,7 +97,7 @@ def test_kept_history_is_invisible_to_the_cycle_collector(bundle: ModelBundle) -
     session = Session("c1", bundle.new_engine(), ServerLimits(), ServerMetrics())
     for index, text in enumerate(_SPOKEN * 4):
         session.add_words([(f"w{index}", Word(text=text, speaker="AB"[index % 7 == 6]))], 0.0)
-    session.finish(pb.END_REASON_CLOSED)
+    session.finish(EndReason.CLOSED)
     records = _kept_records(session)
     assert len(records) > 4 * len(_SPOKEN)
     # An update record holds state records: those are untracked in the first pass, it in the

@@ -8,12 +8,17 @@ import grpc
 import pytest
 from midstream import (
     CorpusNotFoundError,
+    Ended,
+    EndReason,
     EventError,
+    Gap,
+    GapReason,
     InputError,
     LimitExceededError,
     MidstreamError,
     ModelError,
     NotFoundError,
+    Snapshot,
     TranscriptFormatError,
     UnavailableError,
     Word,
@@ -21,6 +26,7 @@ from midstream import (
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits, status_code
 from midstream.server._metrics import ServerMetrics
+from midstream.server._published import PublishedUpdate
 from midstream.server._session import Session
 from midstream.server._status import (
     ConflictError,
@@ -29,7 +35,6 @@ from midstream.server._status import (
     PositionError,
     ProtocolStateError,
 )
-from midstream.wire import midstream_pb2 as pb
 from server_kit import bundle_fixture, models_dir_fixture  # noqa: F401 - fixtures
 
 EXPECTED = {
@@ -87,15 +92,18 @@ async def test_a_slow_follower_gets_gap_and_snapshot_and_never_slows_ingest(
     assert session.seq == 10
     stream = follower.messages([])
     gap = await anext(stream)
-    assert gap.gap.reason == pb.GAP_REASON_LAGGED
-    assert gap.gap.first_missing == 1
+    assert isinstance(gap, Gap) and gap.reason == GapReason.LAGGED
+    assert gap.first_missing == 1
     snapshot = await anext(stream)
-    assert snapshot.snapshot.seq == 10 and len(snapshot.snapshot.words) == 10
+    assert isinstance(snapshot, Snapshot)
+    assert snapshot.seq == 10 and len(snapshot.words) == 10
     session.add_words([("w10", Word(text="we", speaker="A", start=10.0))], 0.0)
-    assert (await anext(stream)).update.seq == 11
-    session.finish(pb.END_REASON_CLOSED)
-    assert (await anext(stream)).update.conversation_final
-    assert (await anext(stream)).ended.reason == pb.END_REASON_CLOSED
+    update = await anext(stream)
+    assert isinstance(update, PublishedUpdate) and update.update.seq == 11
+    session.finish(EndReason.CLOSED)
+    final = await anext(stream)
+    assert isinstance(final, PublishedUpdate) and final.update.conversation_final
+    assert await anext(stream) == Ended(reason=EndReason.CLOSED, last_seq=12)
     with pytest.raises(StopAsyncIteration):
         await asyncio.wait_for(anext(stream), 1)
 

@@ -16,6 +16,7 @@ from typing import Any
 
 import grpc
 import pytest
+from midstream import EndReason
 from midstream.models import ModelBundle
 from midstream.server import ServerLimits
 from midstream.server._metrics import ServerMetrics
@@ -81,7 +82,8 @@ async def _no_requests() -> AsyncIterator[pb.ClientEvent]:
 _NO_REQUESTS = _no_requests()
 
 
-async def _consume(messages: AsyncIterator[pb.ServerMessage], stop_after: int | None) -> int:
+async def _consume(messages: AsyncIterator[pb.ServerMessage | bytes], stop_after: int | None,
+                   ) -> int:
     seen = 0
     async for _ in messages:
         seen += 1
@@ -151,7 +153,7 @@ async def test_the_end_of_the_call_ends_the_conversation_without_the_handler(
     context.callbacks[0](context)  # what grpc does when the call ends, however it ends
     assert servicer.registry.live_count == 0
     session = servicer.registry.get("c")
-    assert session.end_reason == pb.END_REASON_CALLER_VANISHED
+    assert session.end_reason == EndReason.CALLER_VANISHED
     await messages.aclose()  # type: ignore[attr-defined]
 
 

@@ -24,7 +24,9 @@ from collections.abc import Iterable
 
 from midstream import (
     DisfluencyLabel,
+    EndReason,
     EventError,
+    GapReason,
     HypothesisDiff,
     HypothesisUpdate,
     UtteranceFunction,
@@ -36,8 +38,12 @@ from midstream.wire import midstream_pb2 as pb
 
 __all__ = [
     "diff_from_wire",
+    "end_reason_from_wire",
+    "end_reason_to_wire",
     "function_from_wire",
     "function_to_wire",
+    "gap_reason_from_wire",
+    "gap_reason_to_wire",
     "hint_from_wire",
     "hint_to_wire",
     "label_from_wire",
@@ -81,6 +87,29 @@ _FUNCTION_FROM_WIRE: dict[int, UtteranceFunction] = {
     int(v): k for k, v in _FUNCTION_TO_WIRE.items()
 }
 
+# UNKNOWN is what the server gives a conversation ended by a fault (and what a reader makes of a
+# value it does not know): the wire's UNSPECIFIED.
+_END_REASON_TO_WIRE: dict[EndReason, pb.EndReason] = {
+    EndReason.CLOSED: pb.END_REASON_CLOSED,
+    EndReason.IDLE_TIMEOUT: pb.END_REASON_IDLE_TIMEOUT,
+    EndReason.CALLER_VANISHED: pb.END_REASON_CALLER_VANISHED,
+    EndReason.SERVER_SHUTDOWN: pb.END_REASON_SERVER_SHUTDOWN,
+    EndReason.REJECTED: pb.END_REASON_REJECTED,
+    EndReason.UNKNOWN: pb.END_REASON_UNSPECIFIED,
+}
+_END_REASON_FROM_WIRE: dict[int, EndReason] = {
+    int(v): k for k, v in _END_REASON_TO_WIRE.items()
+}
+_GAP_REASON_TO_WIRE: dict[GapReason, pb.GapReason] = {
+    GapReason.EVICTED: pb.GAP_REASON_EVICTED,
+    GapReason.LAGGED: pb.GAP_REASON_LAGGED,
+    GapReason.EPOCH_MISMATCH: pb.GAP_REASON_EPOCH_MISMATCH,
+    GapReason.UNKNOWN: pb.GAP_REASON_UNSPECIFIED,
+}
+_GAP_REASON_FROM_WIRE: dict[int, GapReason] = {
+    int(v): k for k, v in _GAP_REASON_TO_WIRE.items()
+}
+
 
 def label_to_wire(label: DisfluencyLabel) -> pb.WordRole:
     """The wire role of a disfluency label."""
@@ -118,6 +147,28 @@ def function_from_wire(value: int) -> UtteranceFunction:
         return _FUNCTION_FROM_WIRE[int(value)]
     except KeyError:
         raise EventError(f"field 'function': unknown utterance function {int(value)}") from None
+
+
+def end_reason_to_wire(reason: EndReason) -> pb.EndReason:
+    """The wire value of why a conversation ended (``UNKNOWN`` is ``END_REASON_UNSPECIFIED``)."""
+    return _END_REASON_TO_WIRE[reason]
+
+
+def end_reason_from_wire(value: int) -> EndReason:
+    """Why a conversation ended, from its wire value; ``UNKNOWN`` for one this version does not
+    know (a reader carries on: the end itself is what matters)."""
+    return _END_REASON_FROM_WIRE.get(int(value), EndReason.UNKNOWN)
+
+
+def gap_reason_to_wire(reason: GapReason) -> pb.GapReason:
+    """The wire value of why a follower misses updates (``UNKNOWN`` is unspecified)."""
+    return _GAP_REASON_TO_WIRE[reason]
+
+
+def gap_reason_from_wire(value: int) -> GapReason:
+    """Why a follower misses updates, from its wire value; ``UNKNOWN`` for one this version
+    does not know."""
+    return _GAP_REASON_FROM_WIRE.get(int(value), GapReason.UNKNOWN)
 
 
 # --- ingest ------------------------------------------------------------------------------------
