@@ -45,7 +45,6 @@ from midstream import (
     CorpusNotFoundError,
     TranscriptFormatError,
     Utterance,
-    UtteranceFunction,
     Word,
     coarse_function,
     normalise_token,
@@ -126,31 +125,6 @@ def mrda_class(label: str) -> str:
     if deciding:
         return min(deciding, key=_DECIDING_RANK.__getitem__)
     return general
-
-
-def abandoned_function(label: str, function: UtteranceFunction) -> UtteranceFunction:
-    """The coarse function of an act: ``other`` when it was abandoned (``.%--``), else
-    ``function``, the coarse class of its deciding tag.
-
-    MRDA keeps the act of an abandoned unit that says enough to assign one (manual §3.4,
-    ``s.%--``); SWBD-DAMSL gives an abandoned utterance its communicative status alone, ``%``:
-    "we don't mark any other dimensions on an utterance which has any of the
-    Communicative-Status tags" (SwDA ``doc/manual.august1.html``, Communicative-Status), and
-    ``swbd42_coarse.tsv`` maps ``%`` to ``other``. The MRDA manual's own table of the two
-    schemes (§1.2) pairs SWBD-DAMSL's abandoned with its ``%--``. So that the coarse scheme
-    defines an abandoned unit once for the corpora pooled in training, an abandoned MRDA act is
-    ``other``, as SwDA's is; its ``fine_class`` keeps the act. An interrupted act (``.%-``)
-    keeps its function: the same table says SWBD-DAMSL does not mark interruption, so a SwDA
-    utterance cut off by the partner keeps its act too.
-
-    Examples
-    --------
-    >>> abandoned_function("s.%--", UtteranceFunction.STATEMENT).value
-    'other'
-    >>> abandoned_function("s.%-", UtteranceFunction.STATEMENT).value
-    'statement'
-    """
-    return UtteranceFunction.OTHER if _disruption(label) == "%--" else function
 
 
 def _disruption(label: str) -> str | None:
@@ -362,7 +336,7 @@ def read_mrda_meeting(dadb: Path, trans: Path) -> Conversation:
         utterances.append(Utterance(
             speaker=segment.speaker,
             words=indices[k],
-            function=abandoned_function(label, functions[k]),
+            function=functions[k],
             fine_tag=original,
             fine_class=mrda_class(label),
             complete=complete,

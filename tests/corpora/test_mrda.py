@@ -20,7 +20,6 @@ from midstream import (
 from midstream.corpora._mrda import (
     DECIDING_TAGS,
     DadbSegment,
-    abandoned_function,
     mrda_class,
     parse_dadb_line,
     parse_trans_line,
@@ -237,30 +236,3 @@ def test_missing_transcript_line_is_a_format_error(tmp_path: Path) -> None:
     (tmp_path / "transcripts" / "M1.trans").write_text("", encoding="utf-8")
     with pytest.raises(TranscriptFormatError, match="M1-c1_a"):
         list(read_mrda(tmp_path))
-
-
-@pytest.mark.parametrize(("label", "function"), [
-    # An abandoned act (manual §3.4, ".%--") is `other`, as SWBD-DAMSL's abandoned `%` is (SwDA
-    # manual, Communicative-Status); an interrupted one (".%-") keeps its act's function.
-    ("s.%--", UtteranceFunction.OTHER),
-    ("qy^d^rt.%--", UtteranceFunction.OTHER),
-    ("s^aa^rt.%--", UtteranceFunction.OTHER),
-    ("s.%-", UtteranceFunction.STATEMENT),
-    ("qy^bu.%-", UtteranceFunction.CLARIFICATION_REQUEST),
-    ("s^aa", UtteranceFunction.AGREEMENT),
-])
-def test_abandoned_acts_are_other_as_in_swbd_damsl(label: str,
-                                                    function: UtteranceFunction) -> None:
-    assert abandoned_function(label, coarse_function("mrda", mrda_class(label))) is function
-
-
-@pytest.mark.corpus
-@pytest.mark.parametrize("name", MEETINGS)
-def test_abandoned_acts_keep_their_class_and_read_as_other(mrda_dir: Path, name: str) -> None:
-    # Source: the .dadb label column; every act whose normalised label ends ".%--".
-    meeting = _meeting(mrda_dir, name)
-    abandoned = [u for u in meeting.utterances if u.fine_tag.endswith(".%--")]
-    assert abandoned, "the meeting has abandoned acts with a dialogue act"
-    assert all(u.function is UtteranceFunction.OTHER for u in abandoned)
-    assert any(u.fine_class not in {"%--", "%-", "%"} for u in abandoned)
-    assert all(not u.complete for u in abandoned)
