@@ -52,6 +52,7 @@ from midstream.server._published import PublishedUpdate
 from midstream.server._registry import SessionRegistry
 from midstream.server._session import Session, message_budget
 from midstream.server._status import ConflictError, PositionError, ProtocolStateError
+from midstream.server._wire import fitted_snapshot
 from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from redis.exceptions import RedisError, ResponseError
@@ -134,23 +135,10 @@ class _State:
         """The state as a snapshot within ``snapshot_states`` and the message budget; the
         oldest states are left out first, as the ingesting replica's snapshots do."""
         keep = limits.snapshot_states
-        words = list(self.words.values())[-keep:]
-        utterances = list(self.utterances.values())[-keep:]
-        room = message_budget(limits)
-        room -= sum(w.ByteSize() + 6 for w in words) + sum(u.ByteSize() + 6 for u in utterances)
-        first_word = first_utterance = 0
-        while room < 0 and (first_word < len(words) or first_utterance < len(utterances)):
-            if first_utterance < len(utterances) and (
-                    first_word >= len(words)
-                    or utterances[first_utterance].ByteSize() >= words[first_word].ByteSize()):
-                room += utterances[first_utterance].ByteSize() + 6
-                first_utterance += 1
-            else:
-                room += words[first_word].ByteSize() + 6
-                first_word += 1
-        return pb.ServerMessage(snapshot=pb.Snapshot(
-            seq=self.seq, words=words[first_word:], utterances=utterances[first_utterance:],
-            conversation_final=self.final, epoch=self.epoch))
+        return fitted_snapshot(
+            seq=self.seq, words=list(self.words.values())[-keep:],
+            utterances=list(self.utterances.values())[-keep:], final=self.final,
+            epoch=self.epoch, budget=message_budget(limits))
 
 
 class Replica:
