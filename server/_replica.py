@@ -52,6 +52,7 @@ from midstream.server._published import PublishedUpdate
 from midstream.server._registry import SessionRegistry
 from midstream.server._session import Session, message_budget
 from midstream.server._status import ConflictError, PositionError, ProtocolStateError
+from midstream.server._wire import fitted_snapshot
 from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
 from redis.exceptions import RedisError, ResponseError
@@ -134,23 +135,10 @@ class _State:
         """The state as a snapshot within ``snapshot_states`` and the message budget; the
         oldest states are left out first, as the ingesting replica's snapshots do."""
         keep = limits.snapshot_states
-        words = list(self.words.values())[-keep:]
-        utterances = list(self.utterances.values())[-keep:]
-        room = message_budget(limits)
-        room -= sum(w.ByteSize() + 6 for w in words) + sum(u.ByteSize() + 6 for u in utterances)
-        first_word = first_utterance = 0
-        while room < 0 and (first_word < len(words) or first_utterance < len(utterances)):
-            if first_utterance < len(utterances) and (
-                    first_word >= len(words)
-                    or utterances[first_utterance].ByteSize() >= words[first_word].ByteSize()):
-                room += utterances[first_utterance].ByteSize() + 6
-                first_utterance += 1
-            else:
-                room += words[first_word].ByteSize() + 6
-                first_word += 1
-        return pb.ServerMessage(snapshot=pb.Snapshot(
-            seq=self.seq, words=words[first_word:], utterances=utterances[first_utterance:],
-            conversation_final=self.final, epoch=self.epoch))
+        return fitted_snapshot(
+            seq=self.seq, words=list(self.words.values())[-keep:],
+            utterances=list(self.utterances.values())[-keep:], final=self.final,
+            epoch=self.epoch, budget=message_budget(limits))
 
 
 class Replica:
@@ -246,14 +234,12 @@ class Replica:
         block_ms = int(min(_BLOCK_MS, 500 * self._log.config.timeout_s))
         expected: int
         if from_seq is None or other_epoch or unchecked:
-            state, last_id, ended = await self._fold(keys)
-            if from_seq is not None:
-                yield pb.ServerMessage(gap=pb.Gap(
-                    first_missing=from_seq, oldest_kept=await self._oldest(keys, logged),
-                    reason=pb.GAP_REASON_EPOCH_MISMATCH))
-            yield state.message(self._limits)
-            if ended is not None:
-                yield ended
+            gap = None if from_seq is None else (
+                from_seq, await self._oldest(keys, logged), pb.GAP_REASON_EPOCH_MISMATCH)
+            messages, state, last_id, over = await self._start_over(keys, gap)
+            for message in messages:
+                yield message
+            if over:
                 return
             expected = state.seq + 1
         else:
@@ -261,12 +247,11 @@ class Replica:
                 first: Any = await client.xrange(keys.updates, f"{from_seq}-0", "+", count=1)
             oldest = _entry(first[0][0])[0] if first else logged + 1
             if oldest > from_seq and from_seq <= logged:
-                state, last_id, ended = await self._fold(keys)
-                yield pb.ServerMessage(gap=pb.Gap(first_missing=from_seq, oldest_kept=oldest,
-                                                  reason=pb.GAP_REASON_EVICTED))
-                yield state.message(self._limits)
-                if ended is not None:
-                    yield ended
+                messages, state, last_id, over = await self._start_over(
+                    keys, (from_seq, oldest, pb.GAP_REASON_EVICTED))
+                for message in messages:
+                    yield message
+                if over:
                     return
                 expected = state.seq + 1
             else:
@@ -289,14 +274,12 @@ class Replica:
                     entries and entries[0][1].get(b"i") != incarnation):
                 # Another conversation took over the id (this one had ended): say so and
                 # carry on with it from a snapshot, as the ingesting replica would.
-                state, last_id, ended = await self._fold(keys)
+                messages, state, last_id, over = await self._start_over(
+                    keys, (expected, None, pb.GAP_REASON_EPOCH_MISMATCH))
                 incarnation = str(state.epoch).encode()
-                yield pb.ServerMessage(gap=pb.Gap(
-                    first_missing=expected, oldest_kept=await self._oldest(keys, state.seq),
-                    reason=pb.GAP_REASON_EPOCH_MISMATCH))
-                yield state.message(self._limits)
-                if ended is not None:
-                    yield ended
+                for message in messages:
+                    yield message
+                if over:
                     return
                 expected = state.seq + 1
                 continue
@@ -309,13 +292,11 @@ class Replica:
                     continue
                 if (is_end and seq >= expected) or (not is_end and seq > expected):
                     # Entries are missing here: tell, then start again from a snapshot.
-                    state, last_id, ended = await self._fold(keys)
-                    yield pb.ServerMessage(gap=pb.Gap(
-                        first_missing=expected, oldest_kept=seq if not is_end else seq + 1,
-                        reason=pb.GAP_REASON_EVICTED))
-                    yield state.message(self._limits)
-                    if ended is not None:
-                        yield ended
+                    messages, state, last_id, over = await self._start_over(
+                        keys, (expected, seq + 1 if is_end else seq, pb.GAP_REASON_EVICTED))
+                    for message in messages:
+                        yield message
+                    if over:
                         return
                     expected = state.seq + 1
                     break
@@ -324,6 +305,30 @@ class Replica:
                     return
                 yield pb.ServerMessage(update=pb.Update.FromString(fields[b"u"]))
                 expected = seq + 1
+
+    async def _start_over(
+            self, keys: ConversationKeys,
+            gap: tuple[int, int | None, pb.GapReason] | None,
+    ) -> tuple[list[pb.ServerMessage], _State, bytes, bool]:
+        """What a follower is told when it starts over from a snapshot of the log.
+
+        ``gap`` is ``(first missing, oldest kept, reason)`` of the notice that comes first
+        (``None``: no notice; oldest kept ``None``: the oldest entry the log holds after the
+        fold). Returns the messages (notice, snapshot, and the end when the conversation has
+        ended), the folded state, the entry id to read on from and whether it has ended.
+        """
+        state, last_id, ended = await self._fold(keys)
+        messages: list[pb.ServerMessage] = []
+        if gap is not None:
+            first_missing, oldest, reason = gap
+            if oldest is None:
+                oldest = await self._oldest(keys, state.seq)
+            messages.append(pb.ServerMessage(gap=pb.Gap(
+                first_missing=first_missing, oldest_kept=oldest, reason=reason)))
+        messages.append(state.message(self._limits))
+        if ended is not None:
+            messages.append(ended)
+        return messages, state, last_id, ended is not None
 
     async def _oldest(self, keys: ConversationKeys, logged: int) -> int:
         """The oldest sequence number the update stream holds (``logged + 1`` when none)."""

@@ -14,6 +14,7 @@ the ``Update`` inside them, which is the same bytes less the field's tag and len
 from __future__ import annotations
 
 from collections import deque
+from collections.abc import Sequence
 
 from midstream import Ended, Gap, Snapshot
 from midstream.server._published import Outgoing, PublishedUpdate
@@ -66,8 +67,18 @@ def snapshot_message(snapshot: Snapshot, budget: int) -> pb.ServerMessage:
     When its states would not fit, the oldest are left out: a snapshot favours what is still
     changing.
     """
-    words = [cv.word_state_to_wire(w) for w in snapshot.words]
-    utterances = [cv.utterance_state_to_wire(u) for u in snapshot.utterances]
+    return fitted_snapshot(
+        seq=snapshot.seq, words=[cv.word_state_to_wire(w) for w in snapshot.words],
+        utterances=[cv.utterance_state_to_wire(u) for u in snapshot.utterances],
+        final=snapshot.conversation_final, epoch=snapshot.epoch, budget=budget)
+
+
+def fitted_snapshot(*, seq: int, words: Sequence[pb.WordState],
+                    utterances: Sequence[pb.UtteranceState], final: bool, epoch: int,
+                    budget: int) -> pb.ServerMessage:
+    """A snapshot message of wire states within ``budget`` bytes, the oldest left out first
+    (the larger of the two oldest goes first). Sessions and the replica that serves a
+    conversation from the shared log trim their snapshots alike through this."""
     word_sizes = deque(m.ByteSize() + _STATE_FRAMING for m in words)
     utterance_sizes = deque(m.ByteSize() + _STATE_FRAMING for m in utterances)
     total = sum(word_sizes) + sum(utterance_sizes)
@@ -80,8 +91,8 @@ def snapshot_message(snapshot: Snapshot, budget: int) -> pb.ServerMessage:
             total -= word_sizes.popleft()
             first_word += 1
     return pb.ServerMessage(snapshot=pb.Snapshot(
-        seq=snapshot.seq, words=words[first_word:], utterances=utterances[first_utterance:],
-        conversation_final=snapshot.conversation_final, epoch=snapshot.epoch,
+        seq=seq, words=words[first_word:], utterances=utterances[first_utterance:],
+        conversation_final=final, epoch=epoch,
     ))
 
 
