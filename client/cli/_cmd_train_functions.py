@@ -152,7 +152,7 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
                     f",decode_bias={_bias_text(bias)}" if bias else "")
                 print(f"cv {name}: " + " ".join(
                     f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
-                cv[name] = {k: round(v, 4) for k, v in figures.items()}
+                cv[name] = {k: None if math.isnan(v) else round(v, 4) for k, v in figures.items()}
                 if figures["score"] > best:
                     best, chosen = figures["score"], replace(options, decode_bias=bias)
         print(f"chosen c1={chosen.c1} c2={chosen.c2} "

@@ -13,12 +13,13 @@ training and the scoring side of a fold.
 from __future__ import annotations
 
 import logging
+import math
 import random
 import time
 from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, field, replace
 
-from midstream import SWBD42_CLASSES, Conversation, InputError, UtteranceFunction
+from midstream import SWBD42_CLASSES, Conversation, InputError, ModelError, UtteranceFunction
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import shift_state_weights, train_crf
 from midstream.models.functions._features import (
@@ -298,8 +299,12 @@ def with_decode_bias(artifact: ModelArtifact,
     for label, shift in bias:
         before[label] = before.get(label, 0.0) + shift
     hyper["decode_bias"] = before
-    return replace(artifact, crf=shift_state_weights(artifact.crf, BIAS_FEATURE, dict(bias)),
-                   hyper_parameters=hyper)
+    try:
+        crf = shift_state_weights(artifact.crf, BIAS_FEATURE, dict(bias))
+    except ModelError as exc:
+        raise ModelError(f"{exc}: L1 regularisation removed it, so no decode bias can shift that "
+                         "label (lower c1, or leave the label out of the decode bias)") from None
+    return replace(artifact, crf=crf, hyper_parameters=hyper)
 
 
 def cross_validate(conversations: Sequence[Conversation], options: FunctionTrainingOptions,
@@ -319,19 +324,33 @@ def cross_validate_biases(conversations: Sequence[Conversation],
     """:func:`cross_validate` of ``options`` with each decode bias of ``biases`` in turn.
 
     A bias changes no training, so each fold's model is trained once and scored with every
-    bias; the figures of ``biases[i]`` are the ``i``-th of the list.
+    bias; the figures of ``biases[i]`` are the ``i``-th of the list. A bias that some fold's
+    model cannot take (L1 removed the label's bias weight there) scores ``{"score": nan}``, with
+    a warning, and the grid carries on: one such cell must not cost a long run its other cells.
     """
     parts = conversation_folds(conversations, folds)
     totals: list[dict[str, float]] = [{} for _ in biases]
+    unusable: set[int] = set()
     plain = replace(options, decode_bias=())
     for f, held in enumerate(parts):
         held_set = set(held)
         train = [c for i, c in enumerate(conversations) if i not in held_set]
         artifact = train_function_model(train, plain)
-        for bias, total in zip(biases, totals, strict=True):
-            tagger = FunctionTagger.from_artifact(with_decode_bias(artifact, bias))
+        for index, (bias, total) in enumerate(zip(biases, totals, strict=True)):
+            if index in unusable:
+                continue
+            try:
+                biased = with_decode_bias(artifact, bias)
+            except ModelError as exc:
+                _log.warning("fold %d/%d: decode bias %s left out of the grid: %s",
+                             f + 1, folds, bias, exc)
+                unusable.add(index)
+                continue
+            tagger = FunctionTagger.from_artifact(biased)
             figures = score(tagger, [conversations[i] for i in held])
             _log.info("fold %d/%d, bias %s: %s", f + 1, folds, bias, figures)
             for name, value in figures.items():
                 total[name] = total.get(name, 0.0) + value
-    return [{name: value / folds for name, value in total.items()} for total in totals]
+    return [{"score": math.nan} if index in unusable
+            else {name: value / folds for name, value in total.items()}
+            for index, total in enumerate(totals)]

@@ -3,13 +3,15 @@ oversampling in training: what the coarse model needs to find clarification requ
 
 from __future__ import annotations
 
+import logging
+import math
 from collections.abc import Sequence
 
 import pytest
 from function_kit import invented_corpus
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from midstream import Conversation, InputError
+from midstream import Conversation, InputError, ModelError
 from midstream.models.functions._features import (
     MAX_FEATURE_WORDS,
     PARTNER_LOOKBACK,
@@ -172,3 +174,24 @@ def test_cross_validation_scores_every_decode_bias_on_the_same_folds() -> None:
     # Each fold's model scored without, then with, the bias: one training per fold.
     assert [b - a for a, b in zip(seen[::2], seen[1::2], strict=True)] == pytest.approx(
         [1.0, 1.0])
+
+
+def test_a_decode_bias_that_l1_left_nothing_to_shift_is_left_out_not_fatal(
+        caplog: pytest.LogCaptureFixture) -> None:
+    # With strong L1 the small invented corpus keeps no bias weight for 'answer': that grid
+    # cell cannot be scored, and a long grid search must still give its other cells.
+    conversations = invented_corpus(6)
+    options = FunctionTrainingOptions(scheme="coarse", augment=0.0, max_iterations=20, c1=1.0)
+
+    def score(tagger: FunctionTagger, held: Sequence[Conversation]) -> dict[str, float]:
+        return {"score": float(len(held))}
+
+    with caplog.at_level(logging.WARNING):
+        results = cross_validate_biases(conversations, options, [(), (("answer", 1.0),)],
+                                        folds=2, score=score)
+    assert results[0] == {"score": 3.0}
+    assert math.isnan(results[1]["score"]) and set(results[1]) == {"score"}
+    assert "decode bias (('answer', 1.0),) left out of the grid" in caplog.text
+    artifact = train_function_model(conversations, options)
+    with pytest.raises(ModelError, match="L1 regularisation removed it"):
+        with_decode_bias(artifact, (("answer", 1.0),))
