@@ -53,6 +53,15 @@ def source_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
 
 
+def model_arguments(parser: argparse.ArgumentParser) -> None:
+    """``--models`` and ``--train-tiny``, as the benchmarks that serve models take them (see
+    :func:`models_folder`)."""
+    parser.add_argument("--models", type=Path, default=None,
+                        help="model folder (default: the shipped models)")
+    parser.add_argument("--train-tiny", type=Path, default=None, metavar="DIR",
+                        help="when no models are shipped, train small ones into DIR")
+
+
 def corpora_root() -> Path:
     """``$MIDSTREAM_CORPORA`` or ``../shared/corpora`` beside the checkout."""
     override = os.environ.get("MIDSTREAM_CORPORA")

@@ -31,7 +31,13 @@ from pathlib import Path
 from typing import Any
 
 from midstream import Word
-from midstream.client.bench._kit import corpora_root, machine, models_folder, pin_self
+from midstream.client.bench._kit import (
+    corpora_root,
+    machine,
+    model_arguments,
+    models_folder,
+    pin_self,
+)
 from midstream.client.bench._load import LoadConfig, ProcessProbe, WordScript, hold_conversations
 from midstream.client.cli._cmd_bench import load_script, spawn_server
 from midstream.models import ModelBundle
@@ -72,10 +78,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser = subparsers.add_parser(
         'memory', help='memory per idle live conversation',
         description=__doc__.split("\n\n")[0])
-    parser.add_argument("--models", type=Path, default=None,
-                        help="model folder (default: the shipped models)")
-    parser.add_argument("--train-tiny", type=Path, default=None, metavar="DIR",
-                        help="when no models are shipped, train small ones into DIR")
+    model_arguments(parser)
     parser.add_argument("--corpus", type=Path, default=None)
     parser.add_argument("--split", default="val")
     parser.add_argument("--conversations", "-n", type=int, default=1000)

@@ -39,7 +39,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from midstream.client.bench._kit import REPO, machine, models_folder
+from midstream.client.bench._kit import REPO, machine, model_arguments, models_folder
 from midstream.client.bench._scale_out import BEGIN as SCALE_OUT_BEGIN
 from midstream.client.bench._scale_out import END as SCALE_OUT_END
 from midstream.client.bench._scale_out import write_section
@@ -72,8 +72,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser = subparsers.add_parser(
         'report', help='run every benchmark and write docs/benchmarks.md',
         description=__doc__.split("\n\n")[0])
-    parser.add_argument("--models", type=Path, default=None)
-    parser.add_argument("--train-tiny", type=Path, default=None, metavar="DIR")
+    model_arguments(parser)
     parser.add_argument("--quick", action="store_true")
     parser.add_argument("--smoke", action="store_true",
                         help="every benchmark in its smoke mode (seconds; checks the pipeline)")

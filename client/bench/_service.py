@@ -46,7 +46,13 @@ from pathlib import Path
 from typing import Any
 
 from midstream import InputError, Word
-from midstream.client.bench._kit import corpora_root, machine, models_folder, pin_self
+from midstream.client.bench._kit import (
+    corpora_root,
+    machine,
+    model_arguments,
+    models_folder,
+    pin_self,
+)
 from midstream.client.bench._load import (
     DEFAULT_TICK_S,
     STEAL_NOTABLE_PERCENT,
@@ -212,10 +218,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser = subparsers.add_parser(
         'service', help='live conversations per server core, stepped, with baselines',
         description=__doc__.split("\n\n")[0])
-    parser.add_argument("--models", type=Path, default=None,
-                        help="model folder (default: the shipped models)")
-    parser.add_argument("--train-tiny", type=Path, default=None, metavar="DIR",
-                        help="when no models are shipped, train small ones into DIR")
+    model_arguments(parser)
     parser.add_argument("--corpus", type=Path, default=None,
                         help="corpus of the words (default $MIDSTREAM_CORPORA/swda or "
                              "../shared/corpora/swda)")
