@@ -262,7 +262,9 @@ def shift_state_weights(data: bytes, attribute: str, shifts: Mapping[str, float]
         hits = np.flatnonzero((features["type"] == _STATE_FEATURE) & (features["src"] == source)
                               & (features["dst"] == target))
         if len(hits) != 1:
-            raise ModelError(f"CRF model has no weight for {attribute!r} and label {label!r}")
+            raise ModelError(f"CRF model has no weight for {attribute!r} and label {label!r}: "
+                             "L1 regularisation removed it, so nothing can shift that label "
+                             "(a smaller c1 keeps it)")
         at = features_at + int(hits[0]) * _FEATURE_RECORD.itemsize + 12
         (weight,) = struct.unpack_from("<d", out, at)
         struct.pack_into("<d", out, at, weight + shift)

@@ -299,12 +299,8 @@ def with_decode_bias(artifact: ModelArtifact,
     for label, shift in bias:
         before[label] = before.get(label, 0.0) + shift
     hyper["decode_bias"] = before
-    try:
-        crf = shift_state_weights(artifact.crf, BIAS_FEATURE, dict(bias))
-    except ModelError as exc:
-        raise ModelError(f"{exc}: L1 regularisation removed it, so no decode bias can shift that "
-                         "label (lower c1, or leave the label out of the decode bias)") from None
-    return replace(artifact, crf=crf, hyper_parameters=hyper)
+    return replace(artifact, crf=shift_state_weights(artifact.crf, BIAS_FEATURE, dict(bias)),
+                   hyper_parameters=hyper)
 
 
 def cross_validate(conversations: Sequence[Conversation], options: FunctionTrainingOptions,
