@@ -106,6 +106,9 @@ class EndReason(StrEnum):
     SERVER_SHUTDOWN = "server_shutdown"
     REJECTED = "rejected"
     """The caller sent an event the server refused; the call failed with its error."""
+    OWNER_LOST = "owner_lost"
+    """Replicas sharing a log: the replica ingesting it was lost and nobody continued it within
+    the grace; another replica ended it (no final update)."""
     UNKNOWN = "unknown"
 
 

@@ -45,6 +45,7 @@ from midstream.server._journal import (
     ConversationKeys,
     SharedLog,
     index_key,
+    owned_key,
 )
 from midstream.server._limits import check_id
 from midstream.server._models import Bundle
@@ -493,6 +494,12 @@ class Replica:
                 f"no conversation with id {conversation_id!r} in epoch {epoch}: another "
                 "conversation has taken the id over since; open a new one to go on")
         if meta.get(b"ended") == b"1":
+            if meta.get(b"reason") == str(int(pb.END_REASON_OWNER_LOST)).encode():
+                config = self._log.config
+                raise ProtocolStateError(
+                    f"conversation {conversation_id!r} has ended: its replica was lost and "
+                    f"nobody continued it within orphan_grace_s ({config.orphan_grace_s:g} s "
+                    f"after its lease of {config.lease_s:g} s lapsed); open a new one to go on")
             raise ProtocolStateError(f"conversation {conversation_id!r} has ended; open a new "
                                      "one to go on")
         if meta.get(b"resumable") != b"1":
@@ -508,13 +515,19 @@ class Replica:
         client = self._log.client
         if self._claim is None:
             self._claim = client.register_script(_CLAIM)
+        owned = owned_key(self._log.config.key_prefix, self._log.owner)
         try:
+            # Owned before it is claimed: were this replica lost right after the claim, the
+            # other replicas must find the conversation among its own.
+            await client.sadd(owned, conversation_id)
+            self._log.disowned.pop(conversation_id, None)
             await self._claim(keys=[keys.meta], args=[meta[b"inc"], self._log.owner])
             # Claimed: nobody else writes it now, so these reads agree with each other.
             events: Any = await client.xrange(keys.events, "-", "+")
             logged: Any = await client.xrange(keys.updates, "-", "+")
             useq: Any = await client.hget(keys.meta, "useq")
         except ResponseError as exc:
+            self._log.disowned[conversation_id] = None
             raise ProtocolStateError(f"conversation {conversation_id!r} changed while being "
                                      "continued (ended, or started anew); try again") from exc
         except (RedisError, OSError) as exc:

@@ -50,6 +50,7 @@ class EndReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     END_REASON_CALLER_VANISHED: _ClassVar[EndReason]
     END_REASON_SERVER_SHUTDOWN: _ClassVar[EndReason]
     END_REASON_REJECTED: _ClassVar[EndReason]
+    END_REASON_OWNER_LOST: _ClassVar[EndReason]
 HINT_KIND_UNSPECIFIED: HintKind
 HINT_KIND_UTTERANCE_END: HintKind
 HINT_KIND_TURN_END: HintKind
@@ -79,6 +80,7 @@ END_REASON_IDLE_TIMEOUT: EndReason
 END_REASON_CALLER_VANISHED: EndReason
 END_REASON_SERVER_SHUTDOWN: EndReason
 END_REASON_REJECTED: EndReason
+END_REASON_OWNER_LOST: EndReason
 
 class SpokenWord(_message.Message):
     __slots__ = ("word_id", "speaker", "text", "start_s", "end_s", "confidence")
