@@ -215,6 +215,12 @@ def owned_key(prefix: str, owner: str) -> str:
     return f"{prefix}:{{leases}}:{owner}"
 
 
+def taken_key(prefix: str, owner: str) -> str:
+    """The set of ``<incarnation>:<id>`` of conversations other replicas took over from the
+    replica ``owner`` (it reads and empties it when it renews its lease)."""
+    return f"{prefix}:{{leases}}:{owner}:taken"
+
+
 def update_entry_id(seq: int) -> str:
     """The stream entry id of the update with sequence number ``seq``."""
     return f"{seq}-0"
@@ -374,6 +380,8 @@ class SharedLog:
         # (A dict as an ordered set: an id opened again before then leaves it.)
         self.disowned: dict[str, None] = {}
         self._keeper: Keeper | None = None
+        # This server's session with a given id (set by the servicer), for taken().
+        self.live_session: Callable[[str], Session | None] = lambda _: None
         self._registry = registry
         self.degraded_total = Counter(
             "midstream_shared_log_degraded", "Times writes to the shared log started failing.",
@@ -643,6 +651,8 @@ class SharedLog:
 
     def _landed(self, call: _Call, result: Any) -> None:
         journal = call.journal
+        if journal.dead:
+            return  # taken over while the call was in flight: forgotten, counted already
         if isinstance(result, ResponseError):
             text = str(result)
             if _LOST in text:
@@ -666,6 +676,9 @@ class SharedLog:
                 _log.error("shared log refused a write for conversation %s (%s)",
                            journal.session.id, type(result).__name__)
                 _log.debug("shared log refusal detail: %s", result)
+            if _SUPERSEDED in text:
+                self.superseded(journal)
+                return
             journal.dead = True
             self.disowned[journal.session.id] = None
             self._forget(journal)
@@ -706,6 +719,27 @@ class SharedLog:
             # (A journal whose entries were dropped while this call was in flight stays: its
             # next call writes the snapshot that covers the hole.)
             self._dirty.pop(journal, None)
+
+    def superseded(self, journal: ConversationJournal) -> None:
+        """Another replica writes ``journal``'s conversation now: write nothing more of it,
+        and hand its followers here over to the log (``Session.moved_away``)."""
+        if journal.dead:
+            return
+        journal.dead = True
+        self.disowned[journal.session.id] = None
+        self._forget(journal)
+        journal.session.moved_away(journal.written_seq)
+
+    def taken(self, conversation_id: str, incarnation: str) -> None:
+        """Another replica took over the conversation (continued it, or ended it as this
+        replica's after taking this replica for lost): stop writing it here and move its
+        followers to the log, without waiting for a write to be refused."""
+        session = self.live_session(conversation_id)
+        journal = session.journal if session is not None else None
+        if isinstance(journal, ConversationJournal) and journal.incarnation == incarnation:
+            _log.warning("conversation %s: taken over by another replica; this replica "
+                         "stops writing it", conversation_id)
+            self.superseded(journal)
 
     def _forget(self, journal: ConversationJournal) -> None:
         self._pending -= journal.pending

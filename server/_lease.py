@@ -13,6 +13,11 @@ slot; the names are in :func:`midstream.server._journal.lease_key` and ``owned_k
     A sorted set of replicas (their owner tokens, :attr:`SharedLog.owner`), each scored by the
     time of its last renewal in milliseconds of Redis's own clock (so replicas' clocks need not
     agree).
+``<prefix>:{leases}:<owner>:taken``
+    ``<incarnation>:<id>`` of the conversations other replicas took over from that replica
+    (continued them, or ended them as a lost replica's): it reads and empties the set with
+    each renewal and hands the followers it serves of them over to the log, without waiting
+    for one of its writes to be refused.
 ``<prefix>:{leases}:<owner>``
     The ids of the conversations that replica owns: added in the round trip of a
     conversation's first write (and before a replica claims one to continue it), removed at
@@ -55,13 +60,17 @@ from midstream.server._journal import (
     index_key,
     lease_key,
     owned_key,
+    taken_key,
 )
 from midstream.server._wire import ended_message
 from midstream.wire import convert as cv
 from prometheus_client import CollectorRegistry, Counter
-from redis.exceptions import RedisError
+from redis.exceptions import RedisClusterException, RedisError
 
 _log = logging.getLogger(__name__)
+
+# What an unreachable Redis (or Redis Cluster: its client's errors are no RedisError) raises.
+_OUTAGES = (RedisError, RedisClusterException, OSError, TimeoutError)
 
 # Lapsed replicas handled per tick, and owned ids read per lapsed replica per tick: a tick's
 # work stays bounded however many conversations a lost replica held; the rest waits for the
@@ -71,9 +80,10 @@ _IDS_PER_TICK = 256
 # Ids taken out of this replica's own set per renewal (conversations that ended here).
 _DISOWNED_PER_TICK = 4096
 
-# KEYS: leases, this replica's owned set. ARGV: owner, ttl_ms, lapse_ms ('' to judge nobody),
-# owners asked for at most, then ids to remove from the owned set. Renews the lease and returns
-# the replicas whose last renewal is older than lapse_ms.
+# KEYS: leases, this replica's owned set, its taken set. ARGV: owner, ttl_ms, lapse_ms ('' to
+# judge nobody), owners asked for at most, then ids to remove from the owned set. Renews the
+# lease; returns the replicas whose last renewal is older than lapse_ms and what other replicas
+# took over from this one (emptying that set).
 _KEEP: Final = """
 local t = redis.call('TIME')
 local now = tonumber(t[1]) * 1000 + math.floor(tonumber(t[2]) / 1000)
@@ -83,11 +93,12 @@ for k = 5, #ARGV do
   redis.call('SREM', KEYS[2], ARGV[k])
 end
 redis.call('PEXPIRE', KEYS[2], ARGV[2])
+local taken = redis.call('SPOP', KEYS[3], 1024)
 if ARGV[3] == '' then
-  return {}
+  return {{}, taken}
 end
-return redis.call('ZRANGEBYSCORE', KEYS[1], '-inf', '(' .. (now - tonumber(ARGV[3])),
-                  'LIMIT', 0, tonumber(ARGV[4]))
+return {redis.call('ZRANGEBYSCORE', KEYS[1], '-inf', '(' .. (now - tonumber(ARGV[3])),
+                   'LIMIT', 0, tonumber(ARGV[4])), taken}
 """
 
 # KEYS: leases, the owned set. ARGV: owner, lapse_ms ('' for any age). Forgets a replica's
@@ -173,7 +184,7 @@ class Keeper:
             return
         prefix = log.config.key_prefix
         owned = owned_key(prefix, log.owner)
-        with contextlib.suppress(RedisError, OSError, TimeoutError):
+        with contextlib.suppress(*_OUTAGES):
             async with asyncio.timeout(log.config.timeout_s):
                 if log.disowned:
                     await log.client.srem(owned, *log.disowned)
@@ -194,11 +205,15 @@ class Keeper:
             try:
                 async with asyncio.timeout(max(config.timeout_s, period)):
                     await self.tick()
-            except (RedisError, OSError, TimeoutError) as exc:
+            except _OUTAGES as exc:
                 # The writer reports the outage; others' leases may be stale until they
                 # renewed after it, so nobody is judged for a whole lease_s.
                 self._judge_from = time.monotonic() + config.lease_s
                 _log.debug("lease renewal failed (%s)", type(exc).__name__)
+            except Exception as exc:  # a bug must not stop the renewals: others would end ours
+                self._judge_from = time.monotonic() + config.lease_s
+                _log.error("lease renewal or sweep failed (%s)", type(exc).__name__)
+                _log.debug("lease failure detail", exc_info=exc)
             await asyncio.sleep(period)
 
     async def tick(self) -> int:
@@ -207,13 +222,18 @@ class Keeper:
         prefix = config.key_prefix
         disowned = list(itertools.islice(log.disowned, _DISOWNED_PER_TICK))
         judging = time.monotonic() >= self._judge_from
-        lapsed: list[bytes] = await self._script("keep", _KEEP)(
-            keys=[lease_key(prefix), owned_key(prefix, log.owner)],
+        lapsed: list[bytes]
+        taken: list[bytes]
+        lapsed, taken = await self._script("keep", _KEEP)(
+            keys=[lease_key(prefix), owned_key(prefix, log.owner), taken_key(prefix, log.owner)],
             args=[log.owner, int(config.max_age_s * 1000),
                   int((config.lease_s + config.orphan_grace_s) * 1000) if judging else "",
                   _OWNERS_PER_TICK, *disowned])
         for conversation_id in disowned:
             log.disowned.pop(conversation_id, None)
+        for item in taken:
+            incarnation, _, conversation_id = item.decode().partition(":")
+            log.taken(conversation_id, incarnation)
         ended = 0
         for owner in lapsed:
             lost = owner.decode()
@@ -243,6 +263,7 @@ class Keeper:
         ttl_ms = int(config.max_age_s * 1000)
         done: list[str] = []
         ended: list[str] = []
+        told: list[str] = []
         for conversation_id, conversation, (inc, owner, useq, over) in zip(
                 ids, keys, metas, strict=True):
             if inc is None or over == b"1" or owner != lost.encode():
@@ -258,6 +279,7 @@ class Keeper:
             if result in (b"ENDED", "ENDED"):
                 ended.append(conversation_id)
                 done.append(conversation_id)
+                told.append(f"{inc.decode()}:{conversation_id}")
             elif result in (b"SKIP", "SKIP"):
                 done.append(conversation_id)
             # CHANGED: written meanwhile (the lost replica was only slow); read it again next
@@ -265,6 +287,9 @@ class Keeper:
         if ended:
             # The listing's index drops conversations not written for max_age_s.
             await client.zadd(index_key(prefix), dict.fromkeys(ended, time.time()))
+            # Should the lost replica be only cut off, it learns when it is back.
+            await client.sadd(taken_key(prefix, lost), *told)
+            await client.pexpire(taken_key(prefix, lost), ttl_ms)
             self.orphans_total.inc(len(ended))
             _log.warning("replica %s lost (no lease renewal for %.0f s): ended %d of its "
                          "conversations nobody continued (END_REASON_OWNER_LOST)", lost,

@@ -218,3 +218,39 @@ async def test_a_replica_stopping_with_every_end_written_gives_up_its_lease(
         assert await client.zscore(lease_key("midstream"), log.owner) is None
     finally:
         await client.aclose()
+
+
+async def test_a_replica_cut_off_past_the_grace_hands_its_followers_the_logs_end_on_return(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    """A replica only cut off (not dead) is taken for lost and its conversation is ended in
+    the log; when it is back, its own follower is moved to the log and gets that end, rather
+    than its stale copy for ever."""
+    shared = SharedLogConfig(url=redis_server.url, lease_s=1.0, orphan_grace_s=1.0)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    caller = Caller(a.stub)
+    await caller.open("cut-off")
+    await _ingest(caller, call_words()[:5])
+    last = caller.updates[-1].seq
+    await _until_logged(redis_server.url, "cut-off", last)
+    on_a: list[pb.ServerMessage] = []
+
+    async def collect() -> None:
+        async for message in a.stub.Follow(pb.FollowRequest(conversation_id="cut-off",
+                                                            from_seq=1)):
+            on_a.append(message)
+
+    following = asyncio.ensure_future(collect())
+    log = abandon(a.server)
+    ended_on_b = await asyncio.wait_for(follow_all(b.stub, "cut-off", from_seq=1), _PATIENCE_S)
+    assert ended_on_b[-1].ended.reason == pb.END_REASON_OWNER_LOST
+    assert not following.done()  # A's follower still waits on A's own copy
+    # A reaches Redis again.
+    log._task = asyncio.create_task(log._run())
+    assert log._keeper is not None
+    log._keeper._task = None
+    log._keeper.start()
+    await asyncio.wait_for(following, _PATIENCE_S)
+    assert on_a[-1].ended.reason == pb.END_REASON_OWNER_LOST
+    assert gaps_told(on_a, last) == 0
+    caller.call.cancel()

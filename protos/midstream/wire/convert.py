@@ -105,6 +105,7 @@ _GAP_REASON_TO_WIRE: dict[GapReason, pb.GapReason] = {
     GapReason.EVICTED: pb.GAP_REASON_EVICTED,
     GapReason.LAGGED: pb.GAP_REASON_LAGGED,
     GapReason.EPOCH_MISMATCH: pb.GAP_REASON_EPOCH_MISMATCH,
+    GapReason.OWNER_CHANGED: pb.GAP_REASON_OWNER_CHANGED,
     GapReason.UNKNOWN: pb.GAP_REASON_UNSPECIFIED,
 }
 _GAP_REASON_FROM_WIRE: dict[int, GapReason] = {

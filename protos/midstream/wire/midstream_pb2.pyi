@@ -41,6 +41,7 @@ class GapReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     GAP_REASON_EVICTED: _ClassVar[GapReason]
     GAP_REASON_LAGGED: _ClassVar[GapReason]
     GAP_REASON_EPOCH_MISMATCH: _ClassVar[GapReason]
+    GAP_REASON_OWNER_CHANGED: _ClassVar[GapReason]
 
 class EndReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
@@ -74,6 +75,7 @@ GAP_REASON_UNSPECIFIED: GapReason
 GAP_REASON_EVICTED: GapReason
 GAP_REASON_LAGGED: GapReason
 GAP_REASON_EPOCH_MISMATCH: GapReason
+GAP_REASON_OWNER_CHANGED: GapReason
 END_REASON_UNSPECIFIED: EndReason
 END_REASON_CLOSED: EndReason
 END_REASON_IDLE_TIMEOUT: EndReason
