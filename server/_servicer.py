@@ -601,7 +601,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             for item in backlog:
                 yield server_message(item, budget)
             return
-        sent = 0  # the newest sequence number this follower was sent
+        # The newest sequence number this follower has (it holds those before its from_seq).
+        sent = from_seq - 1 if from_seq is not None else 0
         try:
             async for item in follower.messages(backlog):
                 if isinstance(item, PublishedUpdate):

@@ -423,8 +423,9 @@ async def test_updates_older_than_max_age_are_trimmed_at_the_next_write(
     await caller.close()
 
 
-async def _collect(stub: object, conversation_id: str, into: list[pb.ServerMessage]) -> None:
-    request = pb.FollowRequest(conversation_id=conversation_id, from_seq=1)
+async def _collect(stub: object, conversation_id: str, into: list[pb.ServerMessage],
+                   from_seq: int = 1, epoch: int = 0) -> None:
+    request = pb.FollowRequest(conversation_id=conversation_id, from_seq=from_seq, epoch=epoch)
     async for message in stub.Follow(request):  # type: ignore[attr-defined]
         into.append(message)
 
@@ -444,6 +445,10 @@ async def test_followers_of_a_fenced_off_replica_carry_on_from_the_log_seamlessl
     await _until_logged(b.stub, "handed-over", old.updates[-1].seq)
     on_a: list[pb.ServerMessage] = []
     following = asyncio.ensure_future(_collect(a.stub, "handed-over", on_a))
+    # A second follower asks for live updates only (it holds the first six from elsewhere).
+    live_on_a: list[pb.ServerMessage] = []
+    following_live = asyncio.ensure_future(
+        _collect(a.stub, "handed-over", live_on_a, old.updates[-1].seq + 1, old.epoch))
     new = Caller(b.stub)
     await new.call.write(pb.ClientEvent(open=pb.OpenConversation(
         conversation_id="handed-over", resume=True, epoch=old.epoch)))
@@ -456,6 +461,8 @@ async def test_followers_of_a_fenced_off_replica_carry_on_from_the_log_seamlessl
     assert [m.update.seq for m in on_a[:-1]] == list(range(1, new.updates[-1].seq + 1))
     assert [m.update.SerializeToString() for m in on_a[6:-1]] == [
         u.SerializeToString() for u in new.updates]
+    await asyncio.wait_for(following_live, 60)
+    assert live_on_a == on_a[6:]  # from where it asked: nothing again, nothing missed
     # A lists and serves it from the log now, not from its stale copy.
     listing = await a.stub.ListConversations(pb.ListConversationsRequest())
     [summary] = [s for s in listing.conversations if s.conversation_id == "handed-over"]
