@@ -166,7 +166,9 @@ async def test_replicas_noticing_a_lost_replica_at_once_write_each_end_once(
 
 async def test_a_conversation_continued_within_the_grace_is_not_ended(
         start_server: ServerFactory, redis_server: RedisProcess) -> None:
-    shared = SharedLogConfig(url=redis_server.url, lease_s=1.0, orphan_grace_s=2.0)
+    # B owns the conversation once it continued it: a busy machine stalling B's renewals for
+    # lease + grace (5 s) would make C take B for lost, so that is kept out of reach.
+    shared = SharedLogConfig(url=redis_server.url, lease_s=2.0, orphan_grace_s=3.0)
     a = await start_server(limits=LIMITS, shared_log=shared)
     b = await start_server(limits=LIMITS, shared_log=shared)
     c = await start_server(limits=LIMITS, shared_log=shared)
