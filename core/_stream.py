@@ -93,6 +93,11 @@ class GapReason(StrEnum):
     """The position belonged to another conversation that used the same id (another epoch,
     e.g. before a server restart): the snapshot that follows is of the conversation now
     using it."""
+    OWNER_CHANGED = "owner_changed"
+    """Replicas sharing a log: the replica followed was fenced off as the conversation's writer
+    (another continues it); what it sent from ``first_missing`` on never reached the log. The
+    snapshot that follows is the log's state and replaces the follower's (its seq may be
+    below what was sent)."""
     UNKNOWN = "unknown"
     """A reason this client version does not know."""
 
@@ -106,6 +111,9 @@ class EndReason(StrEnum):
     SERVER_SHUTDOWN = "server_shutdown"
     REJECTED = "rejected"
     """The caller sent an event the server refused; the call failed with its error."""
+    OWNER_LOST = "owner_lost"
+    """Replicas sharing a log: the replica ingesting it was lost and nobody continued it within
+    the grace; another replica ended it (no final update)."""
     UNKNOWN = "unknown"
 
 

@@ -145,6 +145,13 @@ class SharedLogConfig:
     """Prefix of every key this server writes (several deployments may share one Redis)."""
     timeout_s: float = 2.0
     """How long one Redis round trip may take before the log counts as degraded."""
+    lease_s: float = 10.0
+    """How long a replica's liveness lease in Redis lasts; each replica renews its own every
+    quarter of this. A replica whose lease is this old counts as lost."""
+    orphan_grace_s: float = 120.0
+    """How long after its replica's lease lapsed a live conversation waits for its caller to
+    continue it elsewhere (``open.resume``); then the first replica to notice ends it
+    (``END_REASON_OWNER_LOST``) so its followers everywhere get ``ended``."""
 
     @property
     def cluster(self) -> bool:
@@ -167,6 +174,11 @@ class SharedLogConfig:
                                  f"{getattr(self, name)}")
         if not (self.max_age_s > 0 and self.timeout_s > 0):
             raise InputError("SharedLogConfig.max_age_s and timeout_s must be > 0")
+        for name in ("lease_s", "orphan_grace_s"):
+            value = getattr(self, name)
+            if not (math.isfinite(value) and value > 0):
+                raise InputError(f"SharedLogConfig.{name} must be a finite number > 0, not "
+                                 f"{value}")
         if not self.key_prefix or any(c in self.key_prefix for c in "{}"):
             raise InputError("SharedLogConfig.key_prefix must be non-empty and hold no braces")
 

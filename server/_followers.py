@@ -6,6 +6,11 @@ to wire form as it writes them, sharing each update's wire bytes with every othe
 A follower whose queue fills is never waited for: its queue is dropped and, when it reads
 again, it gets a ``gap`` (``LAGGED``) and a snapshot of the state at that moment, then live
 updates. The ingesting caller is therefore never slowed by a follower.
+
+With a shared log, a replica that learns another replica continues the conversation (it was
+fenced off as its writer) moves its followers off its now stale copy (:meth:`Follower.move`):
+their queue is dropped and :meth:`Follower.messages` stops, and the ``Follow`` handler carries
+them on from the shared log.
 """
 
 from __future__ import annotations
@@ -28,8 +33,8 @@ _log = logging.getLogger(__name__)
 class Follower:
     """One ``Follow`` stream's bounded queue; filled by the session, drained by the stream."""
 
-    __slots__ = ("_byte_capacity", "_bytes", "_capacity", "_costs", "_lagged_from", "_queue",
-                 "_session", "_wake")
+    __slots__ = ("_byte_capacity", "_bytes", "_capacity", "_costs", "_lagged_from", "_moved",
+                 "_queue", "_session", "_wake")
 
     def __init__(self, session: Session, capacity: int, byte_capacity: int) -> None:
         self._session = session
@@ -40,6 +45,24 @@ class Follower:
         self._bytes = 0
         self._wake = asyncio.Event()
         self._lagged_from: int | None = None
+        self._moved: int | None = None
+
+    @property
+    def moved(self) -> int | None:
+        """``None``, or the newest sequence number the shared log got from this replica once
+        the conversation moved to another (:meth:`move`)."""
+        return self._moved
+
+    def move(self, logged: int) -> None:
+        """The conversation is written by another replica now: drop what is queued (stale, or
+        in the log) and end :meth:`messages`. ``logged`` is the newest sequence number this
+        replica wrote to the log."""
+        self._moved = logged
+        self._queue.clear()
+        self._costs.clear()
+        self._bytes = 0
+        self._lagged_from = None
+        self._wake.set()
 
     def offer(self, update: PublishedUpdate, seq: int, cost: int) -> None:
         """Queue an update (of ``cost`` estimated bytes), or mark the follower lagged when its
@@ -74,6 +97,8 @@ class Follower:
             if isinstance(message, Ended):
                 return
         while True:
+            if self._moved is not None:
+                return
             if self._lagged_from is not None:
                 # Build both before yielding so that nothing published in between is lost.
                 gap = Gap(first_missing=self._lagged_from,

@@ -21,7 +21,9 @@ Redis Cluster keeps them on one shard; ``ConversationKeys``):
     A hash describing the conversation: ``inc`` (its epoch), ``owner`` (the process that
     writes it), counts, speakers, whether it ended and can be continued.
 
-plus one sorted set ``<prefix>:index`` of conversation ids by last write, for the listing.
+plus one sorted set ``<prefix>:index`` of conversation ids by last write, for the listing, and
+each replica's liveness lease and set of owned conversation ids (:mod:`midstream.server._lease`,
+which ends the conversations of a lost replica).
 
 Writing never blocks a session: :class:`ConversationJournal` (one per session, called
 synchronously from the session's step) only queues, and one writer task sends what is queued
@@ -47,7 +49,7 @@ import time
 from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Final
+from typing import TYPE_CHECKING, Any, Final
 
 import redis.asyncio as aioredis
 from midstream import Ended
@@ -59,6 +61,9 @@ from midstream.wire import convert as cv
 from prometheus_client import CollectorRegistry, Counter, Gauge
 from redis.asyncio.cluster import RedisCluster
 from redis.exceptions import NoScriptError, RedisError, ResponseError
+
+if TYPE_CHECKING:
+    from midstream.server._lease import Keeper
 
 _log = logging.getLogger(__name__)
 
@@ -197,6 +202,23 @@ class ConversationKeys:
 def index_key(prefix: str) -> str:
     """The sorted set of conversation ids by last write time."""
     return f"{prefix}:index"
+
+
+def lease_key(prefix: str) -> str:
+    """The sorted set of replicas' liveness leases (see :mod:`midstream.server._lease`)."""
+    return f"{prefix}:{{leases}}"
+
+
+def owned_key(prefix: str, owner: str) -> str:
+    """The set of ids of the conversations the replica ``owner`` writes (same slot as the
+    leases, so one script reaches both)."""
+    return f"{prefix}:{{leases}}:{owner}"
+
+
+def taken_key(prefix: str, owner: str) -> str:
+    """The set of ``<incarnation>:<id>`` of conversations other replicas took over from the
+    replica ``owner`` (it reads and empties it when it renews its lease)."""
+    return f"{prefix}:{{leases}}:{owner}:taken"
 
 
 def update_entry_id(seq: int) -> str:
@@ -352,6 +374,15 @@ class SharedLog:
         self._healthy = True
         self._closing = False
         self._told_dropped = False
+        # Conversations whose end landed, or that this replica stopped writing (another owns
+        # them now): the lease keeper takes them out of this replica's owned set at its next
+        # renewal.
+        # (A dict as an ordered set: an id opened again before then leaves it.)
+        self.disowned: dict[str, None] = {}
+        self._keeper: Keeper | None = None
+        # This server's session with a given id (set by the servicer), for taken().
+        self.live_session: Callable[[str], Session | None] = lambda _: None
+        self._registry = registry
         self.degraded_total = Counter(
             "midstream_shared_log_degraded", "Times writes to the shared log started failing.",
             registry=registry)
@@ -405,6 +436,10 @@ class SharedLog:
         except (RedisError, OSError, TimeoutError) as exc:
             self._set_health(False, exc)
         self._task = asyncio.create_task(self._run(), name="shared-log-writer")
+        from midstream.server._lease import Keeper  # noqa: PLC0415 - it imports this module
+
+        self._keeper = Keeper(self, self._registry)
+        self._keeper.start()
 
     async def stop(self, grace: float) -> None:
         """Write what is queued (for up to ``grace`` seconds), then disconnect; idempotent."""
@@ -421,6 +456,8 @@ class SharedLog:
         with contextlib.suppress(asyncio.CancelledError):
             await self._task
         self._task = None
+        if self._keeper is not None:
+            await self._keeper.stop()
         if self._client is not None:
             await self._client.aclose()
 
@@ -584,6 +621,12 @@ class SharedLog:
         every = min(_INDEX_EVERY_S, self.config.max_age_s / 4)
         index = {call.journal.session.id: now for call in calls
                  if now - call.journal.indexed_at >= every}
+        owned = owned_key(self.config.key_prefix, self.owner)
+        # A conversation enters this replica's owned set with its first write (and leaves it
+        # once its end landed: _landed), so a lost replica's live conversations can be found.
+        started = [call.journal.session.id for call in calls if not call.journal.created]
+        for conversation_id in started:
+            self.disowned.pop(conversation_id, None)
         for _ in range(2):
             async with self.client.pipeline(transaction=False) as pipe:
                 # Queued by hand and not registered with the pipeline, which would ask Redis
@@ -595,6 +638,8 @@ class SharedLog:
                                  keys.snapshot, *call.args)
                 if index:
                     pipe.zadd(index_key(self.config.key_prefix), index)
+                if started:
+                    pipe.sadd(owned, *started)
                 results: list[Any] = await pipe.execute(raise_on_error=False)
             if not any(isinstance(r, NoScriptError) for r in results[:len(calls)]):
                 break
@@ -606,6 +651,8 @@ class SharedLog:
 
     def _landed(self, call: _Call, result: Any) -> None:
         journal = call.journal
+        if journal.dead:
+            return  # taken over while the call was in flight: forgotten, counted already
         if isinstance(result, ResponseError):
             text = str(result)
             if _LOST in text:
@@ -629,7 +676,11 @@ class SharedLog:
                 _log.error("shared log refused a write for conversation %s (%s)",
                            journal.session.id, type(result).__name__)
                 _log.debug("shared log refusal detail: %s", result)
+            if _SUPERSEDED in text:
+                self.superseded(journal)
+                return
             journal.dead = True
+            self.disowned[journal.session.id] = None
             self._forget(journal)
             return
         if isinstance(result, Exception):
@@ -652,6 +703,7 @@ class SharedLog:
         if call.end:
             journal.end = None
             self._pending -= 1
+            self.disowned[journal.session.id] = None
         if call.times:
             journal.written_seq = call.times[-1][0]
         times = journal.times
@@ -667,6 +719,27 @@ class SharedLog:
             # (A journal whose entries were dropped while this call was in flight stays: its
             # next call writes the snapshot that covers the hole.)
             self._dirty.pop(journal, None)
+
+    def superseded(self, journal: ConversationJournal) -> None:
+        """Another replica writes ``journal``'s conversation now: write nothing more of it,
+        and hand its followers here over to the log (``Session.moved_away``)."""
+        if journal.dead:
+            return
+        journal.dead = True
+        self.disowned[journal.session.id] = None
+        self._forget(journal)
+        journal.session.moved_away(journal.written_seq)
+
+    def taken(self, conversation_id: str, incarnation: str) -> None:
+        """Another replica took over the conversation (continued it, or ended it as this
+        replica's after taking this replica for lost): stop writing it here and move its
+        followers to the log, without waiting for a write to be refused."""
+        session = self.live_session(conversation_id)
+        journal = session.journal if session is not None else None
+        if isinstance(journal, ConversationJournal) and journal.incarnation == incarnation:
+            _log.warning("conversation %s: taken over by another replica; this replica "
+                         "stops writing it", conversation_id)
+            self.superseded(journal)
 
     def _forget(self, journal: ConversationJournal) -> None:
         self._pending -= journal.pending

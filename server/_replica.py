@@ -11,12 +11,15 @@ replica: a position of another epoch (or beyond seq 1 without one), and entries 
 conversation that took over the id while following, get ``gap`` (``EPOCH_MISMATCH``) and a
 snapshot of the conversation now under the id, never a splice.
 
+A follower of a conversation this replica held itself until another replica took it over is
+carried on here too (``stale_from``): the ``Follow`` handler moves it off the stale copy.
+
 Continuing (:func:`resume`) claims the conversation for this replica (the old owner's later
-writes are refused), replays every logged input event through a fresh engine from the same
-models (decoding is deterministic, so it publishes the same updates with the same sequence
-numbers and the same epoch), checks the newest update the log holds against the replay,
-writes the updates the old replica published but never logged, and hands the session on like
-a newly opened one.
+writes are refused, and it is told through its taken set, :mod:`midstream.server._lease`),
+replays every logged input event through a fresh engine from the same models (decoding is
+deterministic, so it publishes the same updates with the same sequence numbers and the same
+epoch), checks the newest update the log holds against the replay, writes the updates the old
+replica published but never logged, and hands the session on like a newly opened one.
 
 Use from the server's event loop only.
 """
@@ -45,6 +48,8 @@ from midstream.server._journal import (
     ConversationKeys,
     SharedLog,
     index_key,
+    owned_key,
+    taken_key,
 )
 from midstream.server._limits import check_id
 from midstream.server._models import Bundle
@@ -55,7 +60,7 @@ from midstream.server._status import ConflictError, PositionError, ProtocolState
 from midstream.server._wire import fitted_snapshot
 from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
-from redis.exceptions import RedisError, ResponseError
+from redis.exceptions import RedisClusterException, RedisError, ResponseError
 
 _log = logging.getLogger(__name__)
 
@@ -206,8 +211,14 @@ class Replica:
     # --- Follow ---------------------------------------------------------------------------
 
     async def follow(self, conversation_id: str, from_seq: int | None, epoch: int,
-                     stop: asyncio.Future[None]) -> AsyncIterator[pb.ServerMessage]:
+                     stop: asyncio.Future[None], *, stale_from: int | None = None,
+                     ) -> AsyncIterator[pb.ServerMessage]:
         """The messages ``Follow`` sends, read from the shared log (see the module docstring).
+
+        ``stale_from`` carries on a follower of this replica's own copy of a conversation that
+        another replica took over, after it was sent updates from ``stale_from`` on that never
+        reached the log: it gets ``gap`` (``OWNER_CHANGED``, ``first_missing`` = ``stale_from``)
+        and a snapshot of the log, then the log's updates.
 
         Raises
         ------
@@ -225,7 +236,8 @@ class Replica:
         unchecked = epoch == 0 and from_seq is not None and from_seq > 1
         if from_seq is not None and from_seq < 1:
             raise EventError("field 'from_seq' must be at least 1 (sequence numbers count from 1)")
-        if from_seq is not None and from_seq > logged + 1 and not other_epoch:
+        if from_seq is not None and from_seq > logged + 1 and not other_epoch \
+                and stale_from is None:
             raise PositionError(
                 f"field 'from_seq' ({from_seq}) is beyond the next sequence number "
                 f"({logged + 1}) of conversation {conversation_id}")
@@ -233,7 +245,15 @@ class Replica:
         # A blocking read must return well within the connection's own timeout.
         block_ms = int(min(_BLOCK_MS, 500 * self._log.config.timeout_s))
         expected: int
-        if from_seq is None or other_epoch or unchecked:
+        if stale_from is not None:
+            messages, state, last_id, over = await self._start_over(
+                keys, (stale_from, None, pb.GAP_REASON_OWNER_CHANGED))
+            for message in messages:
+                yield message
+            if over:
+                return
+            expected = state.seq + 1
+        elif from_seq is None or other_epoch or unchecked:
             gap = None if from_seq is None else (
                 from_seq, await self._oldest(keys, logged), pb.GAP_REASON_EPOCH_MISMATCH)
             messages, state, last_id, over = await self._start_over(keys, gap)
@@ -493,6 +513,12 @@ class Replica:
                 f"no conversation with id {conversation_id!r} in epoch {epoch}: another "
                 "conversation has taken the id over since; open a new one to go on")
         if meta.get(b"ended") == b"1":
+            if meta.get(b"reason") == str(int(pb.END_REASON_OWNER_LOST)).encode():
+                config = self._log.config
+                raise ProtocolStateError(
+                    f"conversation {conversation_id!r} has ended: its replica was lost and "
+                    f"nobody continued it within orphan_grace_s ({config.orphan_grace_s:g} s "
+                    f"after its lease of {config.lease_s:g} s lapsed); open a new one to go on")
             raise ProtocolStateError(f"conversation {conversation_id!r} has ended; open a new "
                                      "one to go on")
         if meta.get(b"resumable") != b"1":
@@ -508,18 +534,32 @@ class Replica:
         client = self._log.client
         if self._claim is None:
             self._claim = client.register_script(_CLAIM)
+        owned = owned_key(self._log.config.key_prefix, self._log.owner)
         try:
+            # Owned before it is claimed: were this replica lost right after the claim, the
+            # other replicas must find the conversation among its own.
+            await client.sadd(owned, conversation_id)
+            self._log.disowned.pop(conversation_id, None)
             await self._claim(keys=[keys.meta], args=[meta[b"inc"], self._log.owner])
             # Claimed: nobody else writes it now, so these reads agree with each other.
             events: Any = await client.xrange(keys.events, "-", "+")
             logged: Any = await client.xrange(keys.updates, "-", "+")
             useq: Any = await client.hget(keys.meta, "useq")
         except ResponseError as exc:
+            self._log.disowned[conversation_id] = None
             raise ProtocolStateError(f"conversation {conversation_id!r} changed while being "
                                      "continued (ended, or started anew); try again") from exc
         except (RedisError, OSError) as exc:
             raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
                                    "try again") from exc
+        previous = meta.get(b"owner", b"").decode()
+        if previous and previous != self._log.owner:
+            # The replica that wrote it may be only cut off: it learns at its next renewal and
+            # moves its followers to the log (a refused write would tell it too, later).
+            told = taken_key(self._log.config.key_prefix, previous)
+            with contextlib.suppress(RedisError, RedisClusterException, OSError):
+                await client.sadd(told, f"{meta[b'inc'].decode()}:{conversation_id}")
+                await client.pexpire(told, int(self._log.config.max_age_s * 1000))
         stored: pb.Update | None = None  # the newest update the stream still holds
         for entry_id, fields in reversed(logged):
             if not _entry(entry_id)[1]:

@@ -32,6 +32,7 @@ from midstream import (
     MidstreamError,
     ModelError,
     NotFoundError,
+    Snapshot,
     UnavailableError,
     UtteranceHypothesis,
     WordHypothesis,
@@ -43,6 +44,7 @@ from midstream.server._limits import SpeakerTimeline, check_id, check_word
 from midstream.server._many import ManyStream
 from midstream.server._metrics import ServerMetrics
 from midstream.server._models import Bundle, load_bundle
+from midstream.server._published import PublishedUpdate
 from midstream.server._registry import SessionRegistry
 from midstream.server._session import Session, message_budget
 from midstream.server._status import (
@@ -249,11 +251,20 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
         if shared is not None:
             from midstream.server._replica import Replica  # noqa: PLC0415 - see above
             self.replica = Replica(shared, limits)
+            shared.live_session = self._live_session
         self._stopping = False
         self._waiting = 0  # ingest streams without a conversation open
         # One future for every stream waiting on a stop, made on first use (on the loop):
         # a wait task per stream cost about a kilobyte each for the whole conversation.
         self._stop_signal: asyncio.Future[None] | None = None
+
+    def _live_session(self, conversation_id: str) -> Session | None:
+        """The live conversation with this id here, if any."""
+        try:
+            session = self.registry.get(conversation_id)
+        except NotFoundError:
+            return None
+        return session if session.live else None
 
     @property
     def limits(self) -> ServerLimits:
@@ -449,7 +460,8 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             return self.replica
         if not session.live and await self.replica.newer_than(conversation_id, session.epoch):
             return self.replica
-        return None
+        # Another replica writes it now: what this one holds is stale.
+        return self.replica if session.superseded else None
 
     async def _feed(
         self, session: Session,
@@ -589,18 +601,38 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
             for item in backlog:
                 yield server_message(item, budget)
             return
+        # The newest sequence number this follower has (it holds those before its from_seq).
+        sent = from_seq - 1 if from_seq is not None else 0
         try:
             async for item in follower.messages(backlog):
+                if isinstance(item, PublishedUpdate):
+                    sent = item.update.seq
+                elif isinstance(item, Snapshot):
+                    sent = item.seq
                 yield server_message(item, budget)
         finally:
             session.unfollow(follower)
+        logged = follower.moved
+        if logged is None or self.replica is None:
+            return
+        # Another replica took the conversation over: carry on from the shared log, seamlessly
+        # while this follower was sent only what the log holds from here, else told.
+        stale = sent > logged
+        try:
+            async for message in self.replica.follow(
+                    session.id, logged + 1 if stale else sent + 1, session.epoch,
+                    self.stop_signal(), stale_from=logged + 1 if stale else None):
+                yield message
+        except MidstreamError as exc:
+            await self._fail(context, exc)
 
     async def ListConversations(  # noqa: N802
         self, request: pb.ListConversationsRequest,
         context: grpc.aio.ServicerContext[pb.ListConversationsRequest,
                                           pb.ListConversationsReply],
     ) -> pb.ListConversationsReply:
-        local = [_summary(s) for s in self.registry.sessions()]
+        # A conversation another replica took over is listed from the log, not as held here.
+        local = [_summary(s) for s in self.registry.sessions() if not s.superseded]
         if self.replica is not None:
             try:
                 local += await self.replica.summaries(

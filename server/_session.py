@@ -243,7 +243,7 @@ class Session:
         "clock",
         "closing_messages", "end_reason", "ended_at",
         "epoch", "id", "journal", "limits", "owner", "revisions_truncated", "seq", "started_at",
-        "timeline",
+        "superseded", "timeline",
         "word_count",
     )
 
@@ -296,6 +296,10 @@ class Session:
         self._followers: dict[Follower, None] = {}
         # Set by the registry when the server shares its log with other replicas.
         self.journal: Journal | None = None
+        # With a shared log: another replica writes this conversation now (this one was fenced
+        # off), so what this replica holds of it is stale; Follow, the listing and GetRevisions
+        # serve it from the log (see moved_away).
+        self.superseded = False
         # The server's clock, when the caller asked for it (see tick_by_server).
         self._silence: SilenceClock | None = None
 
@@ -690,6 +694,15 @@ class Session:
         follower = Follower(self, self.limits.follower_queue, self.limits.follower_queue_bytes)
         self._followers[follower] = None
         return backlog, follower
+
+    def moved_away(self, logged: int) -> None:
+        """Another replica writes this conversation now: hand every follower over to the
+        shared log (:meth:`Follower.move`); ``logged`` is the newest sequence number this
+        replica wrote there. Its caller, if still connected, carries on here."""
+        self.superseded = True
+        for follower in self._followers:
+            follower.move(logged)
+        self._followers.clear()
 
     def unfollow(self, follower: Follower) -> None:
         """Forget a follower whose stream ended; idempotent."""

@@ -19,6 +19,8 @@ from pathlib import Path
 
 import pytest
 from midstream.client.cli._demo_script import UTTERANCES
+from midstream.server import MidstreamServer
+from midstream.server._journal import SharedLog
 from midstream.wire import midstream_pb2 as pb
 from server_kit import TEST_LIMITS
 
@@ -210,3 +212,16 @@ def redis_cluster_fixture(tmp_path: Path) -> Iterator[RedisCluster]:
         yield cluster
     finally:
         cluster.stop()
+
+
+def abandon(server: MidstreamServer) -> SharedLog:
+    """Make an in-process replica vanish from the shared log as a killed process would: its
+    writer and its lease renewals stop and it writes nothing more (no ends); its gRPC callers
+    stay connected. Returns its shared log (its ``owner`` names it in Redis)."""
+    log = server._shared  # the tasks a kill would stop
+    assert log is not None and log._task is not None and log._keeper is not None
+    log._task.cancel()
+    keeper = log._keeper._task
+    assert keeper is not None
+    keeper.cancel()
+    return log

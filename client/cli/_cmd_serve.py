@@ -137,7 +137,8 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                              "docs/deploy.md)")
     parser.add_argument("--redis-limit", action="append", default=[], metavar="NAME=VALUE",
                         help="set a limit of the shared log (max_entries, max_age_s, "
-                             "max_events, buffer_entries, timeout_s, key_prefix; "
+                             "max_events, buffer_entries, timeout_s, key_prefix, lease_s, "
+                             "orphan_grace_s; "
                              "docs/limits.md), repeatable")
     parser.add_argument("--workers", type=int, default=1, metavar="N",
                         help="run N server processes on one port (SO_REUSEPORT) sharing the "

@@ -6,7 +6,8 @@ domain values; only the modules where bytes cross a boundary touch protobuf:
 * ``_app`` (registers the service, named by its descriptor), ``_decode`` (decodes requests),
   ``_ingest`` (reads a request's events), ``_servicer`` and ``_many`` (the RPC handlers, which
   write to gRPC streams) and ``_wire`` (turns what a session publishes into wire form);
-* ``_journal`` and ``_replica`` (the shared log: bytes stored in Redis and read back).
+* ``_journal``, ``_replica`` and ``_lease`` (the shared log: bytes stored in Redis and read
+  back, and the ends written for a lost replica's conversations).
 
 Any other server module importing ``midstream.wire`` (the generated code or its conversion),
 ``google.protobuf`` or ``midstream.server._wire`` fails here, and so does the core, the corpus
@@ -27,7 +28,8 @@ REPO = Path(__file__).resolve().parents[2]
 #: hands the multiplexed stream request frames as the network would, for the benchmarks that
 #: time that edge without a socket.
 SERVER_EDGES = frozenset({
-    "_app", "_decode", "_ingest", "_journal", "_many", "_replica", "_servicer", "_wire", "probes",
+    "_app", "_decode", "_ingest", "_journal", "_lease", "_many", "_replica", "_servicer", "_wire",
+    "probes",
 })
 
 #: What only an edge may import: the generated code and its conversion, protobuf itself, and

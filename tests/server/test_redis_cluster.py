@@ -8,9 +8,11 @@ conversations' ids are chosen so that they fall on more than one node.
 from __future__ import annotations
 
 import asyncio
+from typing import Any
 
 import pytest
 from midstream.server import SharedLogConfig
+from midstream.server._journal import lease_key
 from midstream.wire import midstream_pb2 as pb
 from redis.asyncio.cluster import RedisCluster as ClusterClient
 from redis_kit import LIMITS, RedisCluster, call_words, gaps_told, redis_cluster_fixture
@@ -94,3 +96,15 @@ async def test_replicas_on_a_cluster_follow_list_and_continue_each_others_conver
         assert {w.word_id for u in followed for w in u.words} == {w.word_id for w in words}
     listing = await c.stub.ListConversations(pb.ListConversationsRequest())
     assert {c.conversation_id for c in listing.conversations if c.ended} >= set(ids)
+    # Every replica's lease script runs on the cluster (its keys share one slot).
+    client = ClusterClient.from_url(redis_cluster.url.replace("+cluster", ""))
+    try:
+        owners = {r.server._shared.owner for r in (a, b, c)}  # type: ignore[union-attr]
+        async with asyncio.timeout(30):
+            while True:
+                leased: Any = await client.zrange(lease_key("midstream"), 0, -1)
+                if {owner.decode() for owner in leased} == owners:
+                    break
+                await asyncio.sleep(0.05)
+    finally:
+        await client.aclose()

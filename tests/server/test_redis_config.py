@@ -67,3 +67,18 @@ def test_a_cluster_url_asks_for_the_cluster_client(url: str, cluster: bool,
                                                    client_url: str) -> None:
     config = SharedLogConfig(url=url)
     assert (config.cluster, config.client_url) == (cluster, client_url)
+
+
+def test_the_lease_and_the_orphan_grace_are_set_by_name_and_checked(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.delenv("MIDSTREAM_REDIS", raising=False)
+    log = _config("--redis", "redis://h:1/0", "--redis-limit", "lease_s=5",
+                  "--redis-limit", "orphan_grace_s=30").shared_log
+    assert log is not None and (log.lease_s, log.orphan_grace_s) == (5.0, 30.0)
+    defaults = SharedLogConfig(url="redis://h:1/0")
+    assert (defaults.lease_s, defaults.orphan_grace_s) == (10.0, 120.0)  # docs/limits.md
+    for bad in ("lease_s=0", "orphan_grace_s=-1", "orphan_grace_s=nan", "lease_s=inf"):
+        with pytest.raises(InputError, match="finite number > 0"):
+            _config("--redis", "redis://h:1/0", "--redis-limit", bad)
+    with pytest.raises(InputError, match="takes a number"):
+        _config("--redis", "redis://h:1/0", "--redis-limit", "orphan_grace_s=soon")

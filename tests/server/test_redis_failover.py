@@ -199,6 +199,41 @@ async def test_kill_9_of_the_ingesting_replica_loses_and_repeats_no_word(
     assert await _logged(redis_server.url, "call-2") == final.seq
 
 
+async def test_kill_9_with_no_caller_coming_back_ends_the_conversation_for_followers_elsewhere(
+        spawn: Callable[..., object], redis_server: RedisProcess) -> None:
+    """The ingesting replica is killed and its caller never continues: once its lease has
+    lapsed and the grace passed, a follower on another replica gets ``ended``
+    (``OWNER_LOST``) instead of waiting for ever, and a late resume is told why not."""
+    short = ("--redis-limit", "lease_s=1", "--redis-limit", "orphan_grace_s=2")
+    a = await spawn(*short)  # type: ignore[misc]
+    b = await spawn(*short)  # type: ignore[misc]
+    call = a.stub.Feed()
+    await call.write(pb.ClientEvent(open=pb.OpenConversation(conversation_id="call-3")))
+    await call.read()
+    await _until_in_log(redis_server.url, "call-3")
+    on_b: list[pb.ServerMessage] = []
+    follow_b = asyncio.ensure_future(_follow(b.stub, "call-3", 1, on_b))
+    for word in call_words()[:10]:
+        await call.write(words_event(word))
+        await call.read()
+    a.kill()
+    # Generous: lease + grace is 3 s; this waits for the end, it does not time it.
+    await asyncio.wait_for(follow_b, 120)
+    assert on_b[-1].ended.reason == pb.END_REASON_OWNER_LOST
+    logged = await _logged(redis_server.url, "call-3")
+    assert 0 < logged <= 10
+    assert gaps_told(on_b, logged) == 0
+    listing = await b.stub.ListConversations(pb.ListConversationsRequest())
+    assert [s.ended for s in listing.conversations if s.conversation_id == "call-3"] == [True]
+    again = b.stub.Feed()
+    await again.write(pb.ClientEvent(open=pb.OpenConversation(conversation_id="call-3",
+                                                              resume=True)))
+    with pytest.raises(grpc.aio.AioRpcError) as refused:
+        await again.read()
+    assert refused.value.code() == grpc.StatusCode.INVALID_ARGUMENT
+    assert "its replica was lost" in (refused.value.details() or "")
+
+
 async def _ingest(port: int, conversation_id: str, words: list[pb.SpokenWord]) -> None:
     """Tag ``words`` as one conversation over a connection of its own."""
     async with grpc.aio.insecure_channel(

@@ -421,3 +421,103 @@ async def test_updates_older_than_max_age_are_trimmed_at_the_next_write(
     assert first.gap.reason == pb.GAP_REASON_EVICTED and first.gap.first_missing == 1
     assert 1 < first.gap.oldest_kept <= 7  # trimmed by age, never past the newer words
     await caller.close()
+
+
+async def _collect(stub: object, conversation_id: str, into: list[pb.ServerMessage],
+                   from_seq: int = 1, epoch: int = 0) -> None:
+    request = pb.FollowRequest(conversation_id=conversation_id, from_seq=from_seq, epoch=epoch)
+    async for message in stub.Follow(request):  # type: ignore[attr-defined]
+        into.append(message)
+
+
+async def test_followers_of_a_fenced_off_replica_carry_on_from_the_log_seamlessly(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    """The conversation is continued on B while A's caller has gone quiet: A learns it at its
+    next lease renewal (no write of its own is refused) and its follower, sent only what the
+    log holds, goes on from the log with B's updates and B's end, with no gap."""
+    shared = SharedLogConfig(url=redis_server.url, lease_s=1.0)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    words = call_words()[:12]
+    old = Caller(a.stub)
+    await old.open("handed-over")
+    await _ingest(old, words[:6])
+    await _until_logged(b.stub, "handed-over", old.updates[-1].seq)
+    on_a: list[pb.ServerMessage] = []
+    following = asyncio.ensure_future(_collect(a.stub, "handed-over", on_a))
+    # A second follower asks for live updates only (it holds the first six from elsewhere).
+    live_on_a: list[pb.ServerMessage] = []
+    following_live = asyncio.ensure_future(
+        _collect(a.stub, "handed-over", live_on_a, old.updates[-1].seq + 1, old.epoch))
+    new = Caller(b.stub)
+    await new.call.write(pb.ClientEvent(open=pb.OpenConversation(
+        conversation_id="handed-over", resume=True, epoch=old.epoch)))
+    assert (await new.call.read()).welcome.events_logged == 6
+    await _ingest(new, words[6:])
+    await new.close()
+    await asyncio.wait_for(following, 60)
+    assert on_a[-1].ended.reason == pb.END_REASON_CLOSED
+    assert gaps_told(on_a, new.updates[-1].seq) == 0
+    assert [m.update.seq for m in on_a[:-1]] == list(range(1, new.updates[-1].seq + 1))
+    assert [m.update.SerializeToString() for m in on_a[6:-1]] == [
+        u.SerializeToString() for u in new.updates]
+    await asyncio.wait_for(following_live, 60)
+    assert live_on_a == on_a[6:]  # from where it asked: nothing again, nothing missed
+    # A lists and serves it from the log now, not from its stale copy.
+    listing = await a.stub.ListConversations(pb.ListConversationsRequest())
+    [summary] = [s for s in listing.conversations if s.conversation_id == "handed-over"]
+    assert summary.ended and summary.last_seq == new.updates[-1].seq
+    old.call.cancel()
+
+
+async def test_a_follower_sent_stale_updates_by_a_fenced_off_replica_is_told_and_resynced(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    """A's caller goes on after the conversation was continued on B, and A's follower is sent
+    A's own update before A learns (its write is refused): the follower gets ``gap``
+    (``OWNER_CHANGED``) from that update on, a snapshot of the log, then B's updates."""
+    shared = SharedLogConfig(url=redis_server.url, lease_s=1.0)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    words = call_words()[:12]
+    old = Caller(a.stub)
+    await old.open("forked")
+    await _ingest(old, words[:6])
+    await _until_logged(b.stub, "forked", old.updates[-1].seq)
+    log = a.server._shared
+    assert log is not None and log._task is not None and log._keeper is not None
+    assert log._keeper._task is not None
+    # A learns only from a refused write, and writes only when let (below).
+    log._keeper._task.cancel()
+    log._task.cancel()
+    on_a: list[pb.ServerMessage] = []
+    following = asyncio.ensure_future(_collect(a.stub, "forked", on_a))
+    new = Caller(b.stub)
+    await new.call.write(pb.ClientEvent(open=pb.OpenConversation(
+        conversation_id="forked", resume=True, epoch=old.epoch)))
+    assert (await new.call.read()).welcome.events_logged == 6
+    stale = await old.send(words_event(call_words()[20]))  # a word B never gets
+    async with asyncio.timeout(30):
+        while not any(m.update.seq == stale.seq for m in on_a):
+            await asyncio.sleep(0.01)
+    log._task = asyncio.create_task(log._run())  # its write is refused: it learns
+    await _ingest(new, words[6:])
+    await new.close()
+    await asyncio.wait_for(following, 60)
+    kinds = [m.WhichOneof("body") for m in on_a]
+    at = kinds.index("gap")
+    assert kinds[:at] == ["update"] * 7 and kinds[at + 1] == "snapshot"
+    gap, snapshot = on_a[at].gap, on_a[at + 1].snapshot
+    assert gap.reason == pb.GAP_REASON_OWNER_CHANGED and gap.first_missing == stale.seq
+    assert snapshot.epoch == old.epoch
+    after = [m.update.seq for m in on_a[at + 2:-1]]
+    assert after == list(range(snapshot.seq + 1, new.updates[-1].seq + 1))
+    assert on_a[-1].ended.reason == pb.END_REASON_CLOSED
+    # Snapshot and what follows give the final state B holds; the stale word is not in it.
+    [snapshot_b] = [m.snapshot for m in await follow_all(b.stub, "forked")
+                    if m.WhichOneof("body") == "snapshot"]
+    folded = {w.word_id: w.SerializeToString() for w in snapshot.words}
+    for message in on_a[at + 2:-1]:
+        folded.update((w.word_id, w.SerializeToString()) for w in message.update.words)
+    assert folded == {w.word_id: w.SerializeToString() for w in snapshot_b.words}
+    assert set(folded) == {w.word_id for w in words}
+    old.call.cancel()

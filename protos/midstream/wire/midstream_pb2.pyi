@@ -41,6 +41,7 @@ class GapReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     GAP_REASON_EVICTED: _ClassVar[GapReason]
     GAP_REASON_LAGGED: _ClassVar[GapReason]
     GAP_REASON_EPOCH_MISMATCH: _ClassVar[GapReason]
+    GAP_REASON_OWNER_CHANGED: _ClassVar[GapReason]
 
 class EndReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
@@ -50,6 +51,7 @@ class EndReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     END_REASON_CALLER_VANISHED: _ClassVar[EndReason]
     END_REASON_SERVER_SHUTDOWN: _ClassVar[EndReason]
     END_REASON_REJECTED: _ClassVar[EndReason]
+    END_REASON_OWNER_LOST: _ClassVar[EndReason]
 HINT_KIND_UNSPECIFIED: HintKind
 HINT_KIND_UTTERANCE_END: HintKind
 HINT_KIND_TURN_END: HintKind
@@ -73,12 +75,14 @@ GAP_REASON_UNSPECIFIED: GapReason
 GAP_REASON_EVICTED: GapReason
 GAP_REASON_LAGGED: GapReason
 GAP_REASON_EPOCH_MISMATCH: GapReason
+GAP_REASON_OWNER_CHANGED: GapReason
 END_REASON_UNSPECIFIED: EndReason
 END_REASON_CLOSED: EndReason
 END_REASON_IDLE_TIMEOUT: EndReason
 END_REASON_CALLER_VANISHED: EndReason
 END_REASON_SERVER_SHUTDOWN: EndReason
 END_REASON_REJECTED: EndReason
+END_REASON_OWNER_LOST: EndReason
 
 class SpokenWord(_message.Message):
     __slots__ = ("word_id", "speaker", "text", "start_s", "end_s", "confidence")
