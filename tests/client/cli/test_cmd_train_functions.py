@@ -7,11 +7,14 @@ from pathlib import Path
 
 import pytest
 from function_kit import invented_corpus
+from midstream.client.cli._cmd_train_functions import MIN_SCORED_SUPPORT, supported_macro_f1
 from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
+from midstream.models.functions._eval import classification_figures
 from midstream.models.functions._tagger import FunctionTagger
 from midstream.models.functions._views import UtteranceView
+from sklearn.metrics import f1_score
 
 
 @pytest.fixture
@@ -85,3 +88,19 @@ def test_swbd42_on_other_labels_is_a_one_line_error(
                  "--out", str(tmp_path / "x.tagger")])
     assert code == 1
     assert "instruct" in capsys.readouterr().err
+
+
+def test_the_grid_score_leaves_out_classes_a_fold_hardly_has() -> None:
+    # Reference: scikit-learn's macro F1 restricted to the well-supported classes
+    # (f1_score(labels=...)); the plain macro F1 still reports every class.
+    common = MIN_SCORED_SUPPORT
+    gold = ["statement"] * (2 * common) + ["question"] * common + ["clarification_request"] * 2
+    predicted = (["statement"] * (2 * common - 3) + ["question"] * 3 + ["question"] * (common - 1)
+                 + ["clarification_request"] + ["statement", "clarification_request"])
+    figures = classification_figures(gold, predicted, "x")
+    well_supported = ["question", "statement"]
+    assert supported_macro_f1(figures, "x") == pytest.approx(
+        f1_score(gold, predicted, labels=well_supported, average="macro"))
+    assert figures["x.macro_f1"] == pytest.approx(f1_score(gold, predicted, average="macro"))
+    # Two clarification requests move the plain macro F1; the grid's score does not see them.
+    assert supported_macro_f1(figures, "x") != pytest.approx(figures["x.macro_f1"])
