@@ -54,6 +54,7 @@ from typing import Any, Final
 
 from midstream import Ended, EndReason
 from midstream.server._journal import (
+    OUTAGES,
     ConversationKeys,
     SharedLog,
     end_entry_id,
@@ -65,12 +66,8 @@ from midstream.server._journal import (
 from midstream.server._wire import ended_message
 from midstream.wire import convert as cv
 from prometheus_client import CollectorRegistry, Counter
-from redis.exceptions import RedisClusterException, RedisError
 
 _log = logging.getLogger(__name__)
-
-# What an unreachable Redis (or Redis Cluster: its client's errors are no RedisError) raises.
-_OUTAGES = (RedisError, RedisClusterException, OSError, TimeoutError)
 
 # Lapsed replicas handled per tick, and owned ids read per lapsed replica per tick: a tick's
 # work stays bounded however many conversations a lost replica held; the rest waits for the
@@ -184,7 +181,7 @@ class Keeper:
             return
         prefix = log.config.key_prefix
         owned = owned_key(prefix, log.owner)
-        with contextlib.suppress(*_OUTAGES):
+        with contextlib.suppress(*OUTAGES):
             async with asyncio.timeout(log.config.timeout_s):
                 if log.disowned:
                     await log.client.srem(owned, *log.disowned)
@@ -205,7 +202,7 @@ class Keeper:
             try:
                 async with asyncio.timeout(max(config.timeout_s, period)):
                     await self.tick()
-            except _OUTAGES as exc:
+            except OUTAGES as exc:
                 # The writer reports the outage; others' leases may be stale until they
                 # renewed after it, so nobody is judged for a whole lease_s.
                 self._judge_from = time.monotonic() + config.lease_s

@@ -44,11 +44,13 @@ from midstream import (
 from midstream.server._config import ServerLimits
 from midstream.server._ingest import apply_event
 from midstream.server._journal import (
+    OUTAGES,
     ConversationJournal,
     ConversationKeys,
     SharedLog,
     index_key,
     owned_key,
+    refused,
     taken_key,
 )
 from midstream.server._limits import check_id
@@ -60,7 +62,6 @@ from midstream.server._status import ConflictError, PositionError, ProtocolState
 from midstream.server._wire import fitted_snapshot
 from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
-from redis.exceptions import RedisClusterException, RedisError, ResponseError
 
 _log = logging.getLogger(__name__)
 
@@ -93,8 +94,8 @@ def _reachable() -> Iterator[None]:
     """Report Redis being unreachable as ``UNAVAILABLE`` (try again), not as a fault."""
     try:
         yield
-    except (RedisError, OSError) as exc:
-        if isinstance(exc, ResponseError):
+    except OUTAGES as exc:
+        if refused(exc):
             raise
         raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
                                "try again") from exc
@@ -286,7 +287,7 @@ class Replica:
                 reply: Any = await client.xread({keys.updates: last_id},
                                                 count=_READ_COUNT, block=block_ms)
                 current = None if reply else await client.hget(keys.meta, "inc")
-            except (RedisError, OSError):
+            except OUTAGES:
                 await asyncio.sleep(_RETRY_S)  # the writer logs the outage once
                 continue
             entries = reply[0][1] if reply else []
@@ -393,7 +394,7 @@ class Replica:
         keys = self._keys(conversation_id)
         try:
             current: Any = await self._log.client.hget(keys.meta, "inc")
-        except (RedisError, OSError):
+        except OUTAGES:
             return False
         return current is not None and int(current) != epoch
 
@@ -413,7 +414,7 @@ class Replica:
                 for conversation_id in wanted:
                     pipe.hgetall(ConversationKeys.of(config.key_prefix, conversation_id).meta)
                 metas: list[dict[bytes, bytes]] = await pipe.execute()
-        except (RedisError, OSError) as exc:
+        except OUTAGES as exc:
             raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
                                    "try again") from exc
         summaries = []
@@ -474,7 +475,7 @@ class Replica:
                 for _, conversation in keys:
                     pipe.hmget(conversation.meta, ["inc", "ended"])
                 replies: list[list[bytes | None]] = await pipe.execute()
-        except (RedisError, OSError):
+        except OUTAGES:
             return set()
         return {conversation_id for (conversation_id, _), (inc, ended) in
                 zip(keys, replies, strict=True) if inc is not None and ended != b"1"}
@@ -545,19 +546,19 @@ class Replica:
             events: Any = await client.xrange(keys.events, "-", "+")
             logged: Any = await client.xrange(keys.updates, "-", "+")
             useq: Any = await client.hget(keys.meta, "useq")
-        except ResponseError as exc:
+        except OUTAGES as exc:
+            if not refused(exc):
+                raise UnavailableError(f"the shared log is unreachable "
+                                       f"({type(exc).__name__}); try again") from exc
             self._log.disowned[conversation_id] = None
             raise ProtocolStateError(f"conversation {conversation_id!r} changed while being "
                                      "continued (ended, or started anew); try again") from exc
-        except (RedisError, OSError) as exc:
-            raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
-                                   "try again") from exc
         previous = meta.get(b"owner", b"").decode()
         if previous and previous != self._log.owner:
             # The replica that wrote it may be only cut off: it learns at its next renewal and
             # moves its followers to the log (a refused write would tell it too, later).
             told = taken_key(self._log.config.key_prefix, previous)
-            with contextlib.suppress(RedisError, RedisClusterException, OSError):
+            with contextlib.suppress(*OUTAGES):
                 await client.sadd(told, f"{meta[b'inc'].decode()}:{conversation_id}")
                 await client.pexpire(told, int(self._log.config.max_age_s * 1000))
         stored: pb.Update | None = None  # the newest update the stream still holds
