@@ -406,6 +406,8 @@ class SharedLog:
         # renewal.
         # (A dict as an ordered set: an id opened again before then leaves it.)
         self.disowned: dict[str, None] = {}
+        # Claims to undo (see unclaim), by conversation id.
+        self.unclaimed: dict[str, tuple[ConversationKeys, str, str, str]] = {}
         # Ids written whose adding to this replica's owned set has not landed yet.
         self._unowned: dict[str, None] = {}
         self._keeper: Keeper | None = None
@@ -782,6 +784,18 @@ class SharedLog:
             _log.warning("conversation %s: taken over by another replica; this replica "
                          "stops writing it", conversation_id)
             self.superseded(journal)
+
+    def hold(self, journal: ConversationJournal) -> None:
+        """Write nothing of ``journal`` until it is queued again (a conversation being
+        rebuilt from the log, not claimed yet: its write would be refused as another's)."""
+        self._dirty.pop(journal, None)
+
+    def unclaim(self, keys: ConversationKeys, conversation_id: str, incarnation: str,
+                previous: str, token: str) -> None:
+        """Have the lease keeper undo a claim whose answer was lost (Redis went away), once
+        Redis answers: ``previous`` owns the conversation again unless this replica has
+        claimed it since (another ``token``), another did, or it ended."""
+        self.unclaimed[conversation_id] = (keys, incarnation, previous, token)
 
     def _forget(self, journal: ConversationJournal) -> None:
         self._pending -= journal.pending

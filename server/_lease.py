@@ -55,6 +55,7 @@ from typing import Any, Final
 from midstream import Ended, EndReason
 from midstream.server._journal import (
     OUTAGES,
+    ConversationJournal,
     ConversationKeys,
     SharedLog,
     end_entry_id,
@@ -135,6 +136,26 @@ for k = 1, 4 do
   redis.call('PEXPIRE', KEYS[k], ARGV[6])
 end
 return 'ENDED'
+"""
+
+
+# KEYS: the conversation's meta. ARGV: incarnation, this owner, the claim's token, the owner
+# before it ('' for none). Undoes a claim of this replica's whose answer was lost, unless the
+# conversation ended, another replica claimed it, or this one claimed it again since.
+_UNCLAIM: Final = """
+local m = redis.call('HMGET', KEYS[1], 'inc', 'owner', 'claim', 'ended')
+if m[1] ~= ARGV[1] or m[2] ~= ARGV[2] or m[4] == '1' then
+  return 'GONE'
+end
+if m[3] ~= ARGV[3] then
+  return 'KEPT'
+end
+if ARGV[4] == '' then
+  redis.call('HDEL', KEYS[1], 'owner')
+else
+  redis.call('HSET', KEYS[1], 'owner', ARGV[4])
+end
+return 'RELEASED'
 """
 
 
@@ -228,6 +249,13 @@ class Keeper:
                   _OWNERS_PER_TICK, *disowned])
         for conversation_id in disowned:
             log.disowned.pop(conversation_id, None)
+        # An id opened here again while the script was on its way may have been added by the
+        # writer before the script removed it: add it back (adding is idempotent).
+        again = [conversation_id for conversation_id in disowned
+                 if self._writes(conversation_id)]
+        if again:
+            await log.client.sadd(owned_key(prefix, log.owner), *again)
+        await self._unclaim()
         for item in taken:
             incarnation, _, conversation_id = item.decode().partition(":")
             log.taken(conversation_id, incarnation)
@@ -237,6 +265,32 @@ class Keeper:
             if lost != log.owner:
                 ended += await self._sweep(lost)
         return ended
+
+    def _writes(self, conversation_id: str) -> bool:
+        """Whether this replica holds a live conversation with this id that it still writes."""
+        session = self._log.live_session(conversation_id)
+        journal = session.journal if session is not None else None
+        return isinstance(journal, ConversationJournal) and not journal.dead
+
+    async def _unclaim(self) -> None:
+        """Undo the claims whose answers were lost (:meth:`SharedLog.unclaim`)."""
+        log = self._log
+        prefix = log.config.key_prefix
+        for conversation_id, entry in list(log.unclaimed.items())[:_IDS_PER_TICK]:
+            keys, incarnation, previous, token = entry
+            if previous:
+                # A sweep may have dropped it from the previous owner's set while this replica
+                # owned it; should that replica be lost, the sweep must find it again.
+                await log.client.sadd(owned_key(prefix, previous), conversation_id)
+            result = await self._script("unclaim", _UNCLAIM)(
+                keys=[keys.meta], args=[incarnation, log.owner, token, previous])
+            if log.unclaimed.get(conversation_id) is entry:
+                del log.unclaimed[conversation_id]
+            if result not in (b"KEPT", "KEPT") and not self._writes(conversation_id):
+                log.disowned[conversation_id] = None
+            if result in (b"RELEASED", "RELEASED"):
+                _log.info("conversation %s: a claim of it whose answer was lost is undone",
+                          conversation_id)
 
     async def _sweep(self, lost: str) -> int:
         """End a bounded batch of the conversations the lost replica ``lost`` still owns."""
