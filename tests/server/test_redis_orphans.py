@@ -346,3 +346,40 @@ async def test_an_id_opened_again_while_its_old_entry_leaves_the_owned_set_stays
     finally:
         await client.aclose()
     await second.close()
+
+
+async def test_a_claim_whose_answer_was_lost_is_undone_once_redis_answers(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    """Redis went away at the moment B claimed a conversation, so B cannot know whether the
+    claim landed (it answered UNAVAILABLE). Its lease keeper gives the conversation back to
+    the replica that owned it, and back into that replica's set for the sweep; a claim B made
+    again since (another token) is left alone."""
+    shared = SharedLogConfig(url=redis_server.url, lease_s=1.0, orphan_grace_s=60.0)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    writer, claimer = a.server._shared, b.server._shared  # their owner tokens and queues
+    assert writer is not None and claimer is not None
+    caller = Caller(a.stub)
+    await caller.open("uncertain")
+    await _ingest(caller, call_words()[:3])
+    await _until_logged(redis_server.url, "uncertain", caller.updates[-1].seq)
+    keys = ConversationKeys.of("midstream", "uncertain")
+    client = aioredis.Redis.from_url(redis_server.url)
+    try:
+        stored: Any = await client.hget(keys.meta, "inc")
+        incarnation = stored.decode()
+        owned_by_a = owned_key("midstream", writer.owner)
+        for token, undone in (("lost-answer", True), ("older-claim", False)):
+            # What the claim script writes when it lands (the answer never arrived) ...
+            await client.hset(keys.meta, mapping={"owner": claimer.owner, "claim": "lost-answer"})
+            await client.srem(owned_by_a, "uncertain")  # ... and a sweep that ran meanwhile
+            claimer.unclaim(keys, "uncertain", incarnation, writer.owner, token)
+            async with asyncio.timeout(_PATIENCE_S):  # B's keeper acts at its next renewal
+                while "uncertain" in claimer.unclaimed:
+                    await asyncio.sleep(0.05)
+            owner = await client.hget(keys.meta, "owner")
+            assert owner == (writer.owner if undone else claimer.owner).encode(), token
+            assert await client.sismember(owned_by_a, "uncertain")
+    finally:
+        await client.aclose()
+    caller.call.cancel()
