@@ -535,18 +535,18 @@ class Replica:
                 missing = await self._rebuild(session, meta, events, logged)
                 claimed = await self._claim(keys, conversation_id, meta, len(events))
             except MidstreamError as exc:
-                registry.forget(session)
+                self._abandoned(registry, session)
                 if isinstance(exc, ProtocolStateError | ModelError | UnavailableError):
                     raise
                 raise ProtocolStateError(
                     f"conversation {conversation_id!r} cannot be continued: replaying its "
                     "logged input was refused") from exc
             except BaseException:
-                registry.forget(session)
+                self._abandoned(registry, session)
                 raise
             if claimed:
                 break
-            registry.forget(session)  # written meanwhile: read it again
+            self._abandoned(registry, session)  # written meanwhile: read it again
         else:
             raise ConflictError(
                 f"conversation {conversation_id!r} is still being written by its replica; "
@@ -570,6 +570,14 @@ class Replica:
         _log.info("conversation %s continued here from %d logged events (seq %d, %d updates "
                   "the log lacked)", conversation_id, len(events), session.seq, len(missing))
         return session, len(events)
+
+    def _abandoned(self, registry: SessionRegistry, session: Session) -> None:
+        """Drop a session whose continuation failed. The conversation is not this replica's
+        (unless a claim whose answer was lost is still to be undone), so its id leaves this
+        replica's owned set should the lease keeper have added it back meanwhile."""
+        registry.forget(session)
+        if session.id not in self._log.unclaimed:
+            self._log.disowned[session.id] = None
 
     async def _whole(self, keys: ConversationKeys, conversation_id: str,
                      ) -> tuple[dict[bytes, bytes], list[Any], list[Any]]:
@@ -642,7 +650,8 @@ class Replica:
     async def _claim(self, keys: ConversationKeys, conversation_id: str,
                      meta: dict[bytes, bytes], events: int) -> bool:
         """Make this replica the conversation's owner if nothing changed since ``meta`` was
-        read; ``False`` when something was logged meanwhile."""
+        read; ``False`` when something was logged meanwhile. (Added to this replica's owned
+        set first; a failed claim's caller takes it out again: ``_abandoned``.)"""
         log = self._log
         client = log.client
         if self._claim_script is None:
@@ -652,29 +661,23 @@ class Replica:
         token = secrets.token_hex(8)
         args = [meta[b"inc"], log.owner, meta.get(b"owner", b""), meta.get(b"useq", b"0"),
                 str(events), token]
-        result: Any = None
         try:
             # Owned before it is claimed: were this replica lost right after the claim, the
             # other replicas must find the conversation among its own.
             await client.sadd(owned, conversation_id)
             log.disowned.pop(conversation_id, None)
-            result = await self._claim_script(keys=[keys.meta], args=args)
+            result: Any = await self._claim_script(keys=[keys.meta], args=args)
         except OUTAGES as exc:
-            log.disowned[conversation_id] = None
             if not refused(exc):
-                if result is None:
-                    # The claim may have landed with its answer lost: undone once Redis
-                    # answers (by the lease keeper), unless this replica claims it again.
-                    log.unclaim(keys, conversation_id, meta[b"inc"].decode(),
-                                meta.get(b"owner", b"").decode(), token)
+                # The claim may have landed with its answer lost: undone once Redis answers
+                # (by the lease keeper), unless this replica has claimed it again by then.
+                log.unclaim(keys, conversation_id, meta[b"inc"].decode(),
+                            meta.get(b"owner", b"").decode(), token)
                 raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
                                        "try again") from exc
             raise ProtocolStateError(f"conversation {conversation_id!r} changed while being "
                                      "continued (ended, or started anew); try again") from exc
-        if result in (b"OK", "OK"):
-            return True
-        log.disowned[conversation_id] = None
-        return False
+        return result in (b"OK", "OK")
 
     async def _replay(self, session: Session, events: list[Any]) -> None:
         limits = self._limits
