@@ -36,6 +36,11 @@ another owner. A conversation continued within the grace has another owner and i
 A lost replica's lease is forgotten once its set is empty. The work per tick is bounded by the
 lapsed replicas' owned conversations, never by all keys.
 
+Each renewal also undoes the claims of this replica whose answers were lost to an outage
+(:meth:`SharedLog.unclaim`: the conversation goes back to the replica that owned it, unless
+this replica has claimed it again since), and adds back to this replica's set an id taken out
+of it while a conversation opened here again under the id was already writing.
+
 A replica judges others' leases only after its own renewals have reached Redis for a whole
 ``lease_s`` (after starting, and after Redis was unreachable): until then a live replica may
 not have had the chance to renew.
