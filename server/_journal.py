@@ -60,12 +60,39 @@ from midstream.server._wire import ended_message, snapshot_message, update_bytes
 from midstream.wire import convert as cv
 from prometheus_client import CollectorRegistry, Counter, Gauge
 from redis.asyncio.cluster import RedisCluster
-from redis.exceptions import NoScriptError, RedisError, ResponseError
+from redis.exceptions import (
+    ClusterDownError,
+    NoScriptError,
+    RedisClusterException,
+    RedisError,
+    ResponseError,
+    TryAgainError,
+)
 
 if TYPE_CHECKING:
     from midstream.server._lease import Keeper
 
 _log = logging.getLogger(__name__)
+
+#: What an unreachable or failing Redis raises. Besides redis-py's own errors, its cluster
+#: client raises ``RedisClusterException``, which is no ``RedisError``: when no node of the
+#: cluster answers (``RedisClusterUnreachableError`` in redis-py 8, the base class itself in
+#: earlier releases) and when its slot map lacks the slot of a key (``SlotNotCoveredError``,
+#: while slots move). The socket's own errors and asyncio's timeout complete it.
+OUTAGES: Final = (RedisError, RedisClusterException, OSError, TimeoutError)
+
+#: Error replies a Redis Cluster node gives while it cannot serve a slot: ``CLUSTERDOWN`` once
+#: the cluster has marked a node failed (every node answers it, for every key, until the slot
+#: is served again) and ``TRYAGAIN`` while a slot moves. ``ResponseError``s in redis-py, yet
+#: outages: never a refusal of what was sent.
+CLUSTER_DOWN: Final = (ClusterDownError, TryAgainError)
+
+
+def refused(error: BaseException) -> bool:
+    """Whether ``error`` is Redis refusing a command (an error reply such as a script's own),
+    not Redis being unreachable or unable to serve it for now."""
+    return isinstance(error, ResponseError) and not isinstance(error, CLUSTER_DOWN)
+
 
 #: The health-service name that reports the shared log: SERVING while writes reach Redis,
 #: NOT_SERVING while they are buffered (the service itself keeps serving its callers).
@@ -379,6 +406,10 @@ class SharedLog:
         # renewal.
         # (A dict as an ordered set: an id opened again before then leaves it.)
         self.disowned: dict[str, None] = {}
+        # Claims to undo (see unclaim), by conversation id.
+        self.unclaimed: dict[str, tuple[ConversationKeys, str, str, str]] = {}
+        # Ids written whose adding to this replica's owned set has not landed yet.
+        self._unowned: dict[str, None] = {}
         self._keeper: Keeper | None = None
         # This server's session with a given id (set by the servicer), for taken().
         self.live_session: Callable[[str], Session | None] = lambda _: None
@@ -433,7 +464,7 @@ class SharedLog:
         try:
             async with asyncio.timeout(config.timeout_s):
                 await self._client.ping()
-        except (RedisError, OSError, TimeoutError) as exc:
+        except OUTAGES as exc:
             self._set_health(False, exc)
         self._task = asyncio.create_task(self._run(), name="shared-log-writer")
         from midstream.server._lease import Keeper  # noqa: PLC0415 - it imports this module
@@ -521,21 +552,30 @@ class SharedLog:
                 await asyncio.sleep(_GATHER_S)
                 continue
             calls = self._build()
+            outage: BaseException | None = None
             try:
                 async with asyncio.timeout(self.config.timeout_s):
                     results = await self._send(calls)
-            except (RedisError, OSError, TimeoutError) as exc:
+            except OUTAGES as exc:
+                outage = exc
+            else:
+                for call, result in zip(calls, results, strict=True):
+                    if isinstance(result, Exception) and not refused(result):
+                        # A connection error mid-pipeline, or a cluster node that cannot
+                        # serve the slot (the call's own reply, not raised): kept for a retry.
+                        outage = result
+                    else:
+                        self._landed(call, result)
+                self.pending_gauge.set(self._pending)
+            if outage is not None:
                 self.failures_total.inc()
-                self._set_health(False, exc)
+                self._set_health(False, outage)
                 await asyncio.sleep(delay)
                 delay = min(delay * 2, _RETRY_MAX_S)
                 continue
             delay = _RETRY_FIRST_S
             self._set_health(True)
             self._told_dropped = False
-            for call, result in zip(calls, results[:len(calls)], strict=True):
-                self._landed(call, result)
-            self.pending_gauge.set(self._pending)
 
     def _build(self) -> list[_Call]:
         calls: list[_Call] = []
@@ -627,6 +667,10 @@ class SharedLog:
         started = [call.journal.session.id for call in calls if not call.journal.created]
         for conversation_id in started:
             self.disowned.pop(conversation_id, None)
+        # Ids whose adding failed (on a cluster the set's node can be down while the
+        # conversation's is up) are added with the next round trip, unless they ended since.
+        started += [conversation_id for conversation_id in self._unowned
+                    if conversation_id not in self.disowned and conversation_id not in started]
         for _ in range(2):
             async with self.client.pipeline(transaction=False) as pipe:
                 # Queued by hand and not registered with the pipeline, which would ask Redis
@@ -644,16 +688,20 @@ class SharedLog:
             if not any(isinstance(r, NoScriptError) for r in results[:len(calls)]):
                 break
             await self.client.script_load(_APPEND)
-        for call in calls:
-            if call.journal.session.id in index:
-                call.journal.indexed_at = now
+        rest = results[len(calls):]
+        if index and not isinstance(rest.pop(0), Exception):
+            for call in calls:
+                if call.journal.session.id in index:
+                    call.journal.indexed_at = now
+        if started:
+            self._unowned = dict.fromkeys(started) if isinstance(rest[0], Exception) else {}
         return results[:len(calls)]
 
     def _landed(self, call: _Call, result: Any) -> None:
         journal = call.journal
         if journal.dead:
             return  # taken over while the call was in flight: forgotten, counted already
-        if isinstance(result, ResponseError):
+        if refused(result):
             text = str(result)
             if _LOST in text:
                 # Redis lost what it held (restarted without persistence): write the state
@@ -682,10 +730,6 @@ class SharedLog:
             journal.dead = True
             self.disowned[journal.session.id] = None
             self._forget(journal)
-            return
-        if isinstance(result, Exception):
-            # Anything else (a connection error mid-pipeline): keep the entries for a retry.
-            self.failures_total.inc()
             return
         journal.created = True
         if result in (b"EVENTS_LOST", "EVENTS_LOST") and journal.resumable:
@@ -740,6 +784,18 @@ class SharedLog:
             _log.warning("conversation %s: taken over by another replica; this replica "
                          "stops writing it", conversation_id)
             self.superseded(journal)
+
+    def hold(self, journal: ConversationJournal) -> None:
+        """Write nothing of ``journal`` until it is queued again (a conversation being
+        rebuilt from the log, not claimed yet: its write would be refused as another's)."""
+        self._dirty.pop(journal, None)
+
+    def unclaim(self, keys: ConversationKeys, conversation_id: str, incarnation: str,
+                previous: str, token: str) -> None:
+        """Have the lease keeper undo a claim whose answer was lost (Redis went away), once
+        Redis answers: ``previous`` owns the conversation again unless this replica has
+        claimed it since (another ``token``), another did, or it ended."""
+        self.unclaimed[conversation_id] = (keys, incarnation, previous, token)
 
     def _forget(self, journal: ConversationJournal) -> None:
         self._pending -= journal.pending

@@ -36,6 +36,11 @@ another owner. A conversation continued within the grace has another owner and i
 A lost replica's lease is forgotten once its set is empty. The work per tick is bounded by the
 lapsed replicas' owned conversations, never by all keys.
 
+Each renewal also undoes the claims of this replica whose answers were lost to an outage
+(:meth:`SharedLog.unclaim`: the conversation goes back to the replica that owned it, unless
+this replica has claimed it again since), and adds back to this replica's set an id taken out
+of it while a conversation opened here again under the id was already writing.
+
 A replica judges others' leases only after its own renewals have reached Redis for a whole
 ``lease_s`` (after starting, and after Redis was unreachable): until then a live replica may
 not have had the chance to renew.
@@ -54,6 +59,8 @@ from typing import Any, Final
 
 from midstream import Ended, EndReason
 from midstream.server._journal import (
+    OUTAGES,
+    ConversationJournal,
     ConversationKeys,
     SharedLog,
     end_entry_id,
@@ -65,12 +72,8 @@ from midstream.server._journal import (
 from midstream.server._wire import ended_message
 from midstream.wire import convert as cv
 from prometheus_client import CollectorRegistry, Counter
-from redis.exceptions import RedisClusterException, RedisError
 
 _log = logging.getLogger(__name__)
-
-# What an unreachable Redis (or Redis Cluster: its client's errors are no RedisError) raises.
-_OUTAGES = (RedisError, RedisClusterException, OSError, TimeoutError)
 
 # Lapsed replicas handled per tick, and owned ids read per lapsed replica per tick: a tick's
 # work stays bounded however many conversations a lost replica held; the rest waits for the
@@ -141,6 +144,26 @@ return 'ENDED'
 """
 
 
+# KEYS: the conversation's meta. ARGV: incarnation, this owner, the claim's token, the owner
+# before it ('' for none). Undoes a claim of this replica's whose answer was lost, unless the
+# conversation ended, another replica claimed it, or this one claimed it again since.
+_UNCLAIM: Final = """
+local m = redis.call('HMGET', KEYS[1], 'inc', 'owner', 'claim', 'ended')
+if m[1] ~= ARGV[1] or m[2] ~= ARGV[2] or m[4] == '1' then
+  return 'GONE'
+end
+if m[3] ~= ARGV[3] then
+  return 'KEPT'
+end
+if ARGV[4] == '' then
+  redis.call('HDEL', KEYS[1], 'owner')
+else
+  redis.call('HSET', KEYS[1], 'owner', ARGV[4])
+end
+return 'RELEASED'
+"""
+
+
 class Keeper:
     """Renews this replica's lease and ends the conversations of lost replicas.
 
@@ -184,7 +207,7 @@ class Keeper:
             return
         prefix = log.config.key_prefix
         owned = owned_key(prefix, log.owner)
-        with contextlib.suppress(*_OUTAGES):
+        with contextlib.suppress(*OUTAGES):
             async with asyncio.timeout(log.config.timeout_s):
                 if log.disowned:
                     await log.client.srem(owned, *log.disowned)
@@ -205,7 +228,7 @@ class Keeper:
             try:
                 async with asyncio.timeout(max(config.timeout_s, period)):
                     await self.tick()
-            except _OUTAGES as exc:
+            except OUTAGES as exc:
                 # The writer reports the outage; others' leases may be stale until they
                 # renewed after it, so nobody is judged for a whole lease_s.
                 self._judge_from = time.monotonic() + config.lease_s
@@ -231,6 +254,13 @@ class Keeper:
                   _OWNERS_PER_TICK, *disowned])
         for conversation_id in disowned:
             log.disowned.pop(conversation_id, None)
+        # An id opened here again while the script was on its way may have been added by the
+        # writer before the script removed it: add it back (adding is idempotent).
+        again = [conversation_id for conversation_id in disowned
+                 if self._writes(conversation_id)]
+        if again:
+            await log.client.sadd(owned_key(prefix, log.owner), *again)
+        await self._unclaim()
         for item in taken:
             incarnation, _, conversation_id = item.decode().partition(":")
             log.taken(conversation_id, incarnation)
@@ -240,6 +270,32 @@ class Keeper:
             if lost != log.owner:
                 ended += await self._sweep(lost)
         return ended
+
+    def _writes(self, conversation_id: str) -> bool:
+        """Whether this replica holds a live conversation with this id that it still writes."""
+        session = self._log.live_session(conversation_id)
+        journal = session.journal if session is not None else None
+        return isinstance(journal, ConversationJournal) and not journal.dead
+
+    async def _unclaim(self) -> None:
+        """Undo the claims whose answers were lost (:meth:`SharedLog.unclaim`)."""
+        log = self._log
+        prefix = log.config.key_prefix
+        for conversation_id, entry in list(log.unclaimed.items())[:_IDS_PER_TICK]:
+            keys, incarnation, previous, token = entry
+            if previous:
+                # A sweep may have dropped it from the previous owner's set while this replica
+                # owned it; should that replica be lost, the sweep must find it again.
+                await log.client.sadd(owned_key(prefix, previous), conversation_id)
+            result = await self._script("unclaim", _UNCLAIM)(
+                keys=[keys.meta], args=[incarnation, log.owner, token, previous])
+            if log.unclaimed.get(conversation_id) is entry:
+                del log.unclaimed[conversation_id]
+            if result not in (b"KEPT", "KEPT") and not self._writes(conversation_id):
+                log.disowned[conversation_id] = None
+            if result in (b"RELEASED", "RELEASED"):
+                _log.info("conversation %s: a claim of it whose answer was lost is undone",
+                          conversation_id)
 
     async def _sweep(self, lost: str) -> int:
         """End a bounded batch of the conversations the lost replica ``lost`` still owns."""

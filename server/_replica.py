@@ -14,12 +14,15 @@ snapshot of the conversation now under the id, never a splice.
 A follower of a conversation this replica held itself until another replica took it over is
 carried on here too (``stale_from``): the ``Follow`` handler moves it off the stale copy.
 
-Continuing (:func:`resume`) claims the conversation for this replica (the old owner's later
-writes are refused, and it is told through its taken set, :mod:`midstream.server._lease`),
-replays every logged input event through a fresh engine from the same models (decoding is
-deterministic, so it publishes the same updates with the same sequence numbers and the same
-epoch), checks the newest update the log holds against the replay, writes the updates the old
-replica published but never logged, and hands the session on like a newly opened one.
+Continuing (:func:`resume`) reads the conversation in one transaction, replays every logged
+input event through a fresh engine from the same models (decoding is deterministic, so it
+publishes the same updates with the same sequence numbers and the same epoch) and checks the
+newest update the log holds against the replay; only then does it claim the conversation for
+this replica, and only if nothing was logged since the read (the old owner's later writes are
+refused, and it is told through its taken set, :mod:`midstream.server._lease`). It then writes
+the updates the old replica published but never logged and hands the session on like a newly
+opened one. A continuation that fails therefore changes nothing in the log: the old owner
+goes on writing it if it can, or the others end it as a lost replica's.
 
 Use from the server's event loop only.
 """
@@ -29,6 +32,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import logging
+import secrets
 import time
 from collections import OrderedDict
 from collections.abc import AsyncIterator, Iterator
@@ -44,11 +48,13 @@ from midstream import (
 from midstream.server._config import ServerLimits
 from midstream.server._ingest import apply_event
 from midstream.server._journal import (
+    OUTAGES,
     ConversationJournal,
     ConversationKeys,
     SharedLog,
     index_key,
     owned_key,
+    refused,
     taken_key,
 )
 from midstream.server._limits import check_id
@@ -60,7 +66,6 @@ from midstream.server._status import ConflictError, PositionError, ProtocolState
 from midstream.server._wire import fitted_snapshot
 from midstream.wire import convert as cv
 from midstream.wire import midstream_pb2 as pb
-from redis.exceptions import RedisClusterException, RedisError, ResponseError
 
 _log = logging.getLogger(__name__)
 
@@ -76,16 +81,25 @@ _REPLAY_SLICE = 64
 # Most conversations the listing reads from the shared log.
 _LIST_LIMIT = 10_000
 
+# KEYS: meta. ARGV: incarnation, this owner, then the owner, useq and events as read, a token
+# naming this claim. Claims the conversation only if it is the one read, has not ended and
+# nothing was logged since it was read.
 _CLAIM: Final = """
-if redis.call('HGET', KEYS[1], 'inc') ~= ARGV[1] then
+local m = redis.call('HMGET', KEYS[1], 'inc', 'ended', 'owner', 'useq', 'events')
+if m[1] ~= ARGV[1] then
   return redis.error_reply('MIDSTREAM_CONFLICT')
 end
-if redis.call('HGET', KEYS[1], 'ended') == '1' then
+if m[2] == '1' then
   return redis.error_reply('MIDSTREAM_ENDED')
 end
-redis.call('HSET', KEYS[1], 'owner', ARGV[2])
+if (m[3] or '') ~= ARGV[3] or (m[4] or '0') ~= ARGV[4] or (m[5] or '0') ~= ARGV[5] then
+  return 'CHANGED'
+end
+redis.call('HSET', KEYS[1], 'owner', ARGV[2], 'claim', ARGV[6])
 return 'OK'
 """
+# Reads of a conversation rebuilt again because its replica logged more meanwhile.
+_CLAIM_TRIES = 3
 
 
 @contextlib.contextmanager
@@ -93,8 +107,8 @@ def _reachable() -> Iterator[None]:
     """Report Redis being unreachable as ``UNAVAILABLE`` (try again), not as a fault."""
     try:
         yield
-    except (RedisError, OSError) as exc:
-        if isinstance(exc, ResponseError):
+    except OUTAGES as exc:
+        if refused(exc):
             raise
         raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
                                "try again") from exc
@@ -160,7 +174,7 @@ class Replica:
     def __init__(self, log: SharedLog, limits: ServerLimits) -> None:
         self._log = log
         self._limits = limits
-        self._claim: Any = None
+        self._claim_script: Any = None
 
     def _keys(self, conversation_id: str) -> ConversationKeys:
         check_id(conversation_id, "conversation_id", self._limits)
@@ -286,7 +300,7 @@ class Replica:
                 reply: Any = await client.xread({keys.updates: last_id},
                                                 count=_READ_COUNT, block=block_ms)
                 current = None if reply else await client.hget(keys.meta, "inc")
-            except (RedisError, OSError):
+            except OUTAGES:
                 await asyncio.sleep(_RETRY_S)  # the writer logs the outage once
                 continue
             entries = reply[0][1] if reply else []
@@ -393,7 +407,7 @@ class Replica:
         keys = self._keys(conversation_id)
         try:
             current: Any = await self._log.client.hget(keys.meta, "inc")
-        except (RedisError, OSError):
+        except OUTAGES:
             return False
         return current is not None and int(current) != epoch
 
@@ -413,7 +427,7 @@ class Replica:
                 for conversation_id in wanted:
                     pipe.hgetall(ConversationKeys.of(config.key_prefix, conversation_id).meta)
                 metas: list[dict[bytes, bytes]] = await pipe.execute()
-        except (RedisError, OSError) as exc:
+        except OUTAGES as exc:
             raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
                                    "try again") from exc
         summaries = []
@@ -474,7 +488,7 @@ class Replica:
                 for _, conversation in keys:
                     pipe.hmget(conversation.meta, ["inc", "ended"])
                 replies: list[list[bytes | None]] = await pipe.execute()
-        except (RedisError, OSError):
+        except OUTAGES:
             return set()
         return {conversation_id for (conversation_id, _), (inc, ended) in
                 zip(keys, replies, strict=True) if inc is not None and ended != b"1"}
@@ -485,6 +499,12 @@ class Replica:
 
         ``owner`` names the caller, as :meth:`SessionRegistry.open` takes it; ``epoch``, when
         not 0, the epoch of the conversation the caller means.
+
+        The conversation is claimed only once it has been rebuilt and checked, and only if
+        nothing was logged since it was read: a continuation that fails leaves the log as it
+        was, so the caller can try again elsewhere, the replica that wrote it (when only cut
+        off) goes on writing it, and should that replica be lost, the others end it after the
+        grace as they would have (``docs/deploy.md``).
 
         Raises
         ------
@@ -499,14 +519,82 @@ class Replica:
             replaying its input did not give what the log holds (``FAILED_PRECONDITION``:
             continue it on a replica serving what it was decoded with).
         ConflictError
-            It is live on this replica already.
+            It is live on this replica already, or its replica kept writing it while it was
+            being rebuilt here (it is not lost).
         UnavailableError
             Redis is unreachable.
         """
         keys = self._keys(conversation_id)
         if any(s.id == conversation_id and s.live for s in registry.sessions()):
             raise ConflictError(f"conversation {conversation_id!r} is live on this replica")
-        meta = await self._meta(keys, conversation_id)
+        for _ in range(_CLAIM_TRIES):
+            meta, events, logged = await self._whole(keys, conversation_id)
+            self._continuable(conversation_id, meta, epoch)
+            session = registry.open(conversation_id, bundle, owner=owner)
+            try:
+                missing = await self._rebuild(session, meta, events, logged)
+                claimed = await self._claim(keys, conversation_id, meta, len(events))
+            except MidstreamError as exc:
+                self._abandoned(registry, session)
+                if isinstance(exc, ProtocolStateError | ModelError | UnavailableError):
+                    raise
+                raise ProtocolStateError(
+                    f"conversation {conversation_id!r} cannot be continued: replaying its "
+                    "logged input was refused") from exc
+            except BaseException:
+                self._abandoned(registry, session)
+                raise
+            if claimed:
+                break
+            self._abandoned(registry, session)  # written meanwhile: read it again
+        else:
+            raise ConflictError(
+                f"conversation {conversation_id!r} is still being written by its replica; "
+                "it is not lost, go on there")
+        journal = session.journal
+        assert isinstance(journal, ConversationJournal)
+        previous = meta.get(b"owner", b"").decode()
+        if previous and previous != self._log.owner:
+            # The replica that wrote it may be only cut off: it learns at its next renewal and
+            # moves its followers to the log (a refused write would tell it too, later).
+            told = taken_key(self._log.config.key_prefix, previous)
+            with contextlib.suppress(*OUTAGES):
+                await self._log.client.sadd(told, f"{journal.incarnation}:{conversation_id}")
+                await self._log.client.pexpire(told, int(self._log.config.max_age_s * 1000))
+        journal.replaying = False
+        journal.first_kept = 1
+        session.clock = time.time
+        for item in missing:
+            journal.republished(item)
+        self._log.queued(journal, 0)
+        _log.info("conversation %s continued here from %d logged events (seq %d, %d updates "
+                  "the log lacked)", conversation_id, len(events), session.seq, len(missing))
+        return session, len(events)
+
+    def _abandoned(self, registry: SessionRegistry, session: Session) -> None:
+        """Drop a session whose continuation failed. The conversation is not this replica's
+        (unless a claim whose answer was lost is still to be undone), so its id leaves this
+        replica's owned set should the lease keeper have added it back meanwhile."""
+        registry.forget(session)
+        if session.id not in self._log.unclaimed:
+            self._log.disowned[session.id] = None
+
+    async def _whole(self, keys: ConversationKeys, conversation_id: str,
+                     ) -> tuple[dict[bytes, bytes], list[Any], list[Any]]:
+        """The conversation's hash, logged input events and updates, read in one transaction
+        (so they agree with each other)."""
+        with _reachable():
+            async with self._log.client.pipeline(transaction=True) as pipe:
+                pipe.hgetall(keys.meta)
+                pipe.xrange(keys.events, "-", "+")
+                pipe.xrange(keys.updates, "-", "+")
+                meta, events, logged = await pipe.execute()
+        if not meta or b"inc" not in meta:
+            raise NotFoundError(f"no live or kept conversation with id {conversation_id!r}")
+        return dict(meta), events, logged
+
+    def _continuable(self, conversation_id: str, meta: dict[bytes, bytes], epoch: int) -> None:
+        """Refuse what the log says cannot be continued here (see :meth:`resume`)."""
         if epoch and int(meta[b"inc"]) != epoch:
             # Continuing it would splice the caller's words onto someone else's conversation.
             raise NotFoundError(
@@ -526,46 +614,23 @@ class Replica:
                 f"conversation {conversation_id!r} cannot be continued: its logged input is "
                 "incomplete (it outgrew max_events, or the shared log was unreachable longer "
                 "than the local buffer held)")
-        models = self._log.models()
-        if meta.get(b"models", b"").decode() != models:
+        if meta.get(b"models", b"").decode() != self._log.models():
             raise ModelError(
                 f"conversation {conversation_id!r} was decoded by other models or decoder "
                 "settings than this replica serves; continue it on a replica serving the same")
-        client = self._log.client
-        if self._claim is None:
-            self._claim = client.register_script(_CLAIM)
-        owned = owned_key(self._log.config.key_prefix, self._log.owner)
-        try:
-            # Owned before it is claimed: were this replica lost right after the claim, the
-            # other replicas must find the conversation among its own.
-            await client.sadd(owned, conversation_id)
-            self._log.disowned.pop(conversation_id, None)
-            await self._claim(keys=[keys.meta], args=[meta[b"inc"], self._log.owner])
-            # Claimed: nobody else writes it now, so these reads agree with each other.
-            events: Any = await client.xrange(keys.events, "-", "+")
-            logged: Any = await client.xrange(keys.updates, "-", "+")
-            useq: Any = await client.hget(keys.meta, "useq")
-        except ResponseError as exc:
-            self._log.disowned[conversation_id] = None
-            raise ProtocolStateError(f"conversation {conversation_id!r} changed while being "
-                                     "continued (ended, or started anew); try again") from exc
-        except (RedisError, OSError) as exc:
-            raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
-                                   "try again") from exc
-        previous = meta.get(b"owner", b"").decode()
-        if previous and previous != self._log.owner:
-            # The replica that wrote it may be only cut off: it learns at its next renewal and
-            # moves its followers to the log (a refused write would tell it too, later).
-            told = taken_key(self._log.config.key_prefix, previous)
-            with contextlib.suppress(RedisError, RedisClusterException, OSError):
-                await client.sadd(told, f"{meta[b'inc'].decode()}:{conversation_id}")
-                await client.pexpire(told, int(self._log.config.max_age_s * 1000))
-        stored: pb.Update | None = None  # the newest update the stream still holds
-        for entry_id, fields in reversed(logged):
-            if not _entry(entry_id)[1]:
-                stored = pb.Update.FromString(fields[b"u"])
-                break
-        session = registry.open(conversation_id, bundle, owner=owner)
+
+    async def _rebuild(self, session: Session, meta: dict[bytes, bytes], events: list[Any],
+                       logged: list[Any]) -> list[PublishedUpdate]:
+        """Replay the logged input into the new ``session`` and check it against the log;
+        returns the updates the log lacks. Nothing of it is written meanwhile."""
+        journal = session.journal
+        assert isinstance(journal, ConversationJournal)
+        self._log.hold(journal)
+        journal.incarnation = meta[b"inc"].decode()
+        journal.models = self._log.models()
+        journal.created = True
+        journal.replaying = True
+        journal.events_queued = journal.events_written = len(events)
         # The same conversation goes on: it keeps its epoch (followers' positions stay valid),
         # its start, and the times its updates were published (a follower reading them here
         # gets what it would have got from the dead replica).
@@ -574,34 +639,45 @@ class Replica:
         published = {_entry(entry_id)[0]: pb.Update.FromString(fields[b"u"]).server_time
                      for entry_id, fields in logged if not _entry(entry_id)[1]}
         session.clock = lambda: published.get(session.seq, time.time())
-        journal = session.journal
-        assert isinstance(journal, ConversationJournal)
-        journal.incarnation = meta[b"inc"].decode()
-        journal.models = models
-        journal.created = True
-        journal.replaying = True
-        journal.events_queued = journal.events_written = len(events)
+        stored: pb.Update | None = None  # the newest update the stream still holds
+        for entry_id, fields in reversed(logged):
+            if not _entry(entry_id)[1]:
+                stored = pb.Update.FromString(fields[b"u"])
+                break
+        await self._replay(session, events)
+        return self._check(session, int(meta.get(b"useq", b"0")), stored)
+
+    async def _claim(self, keys: ConversationKeys, conversation_id: str,
+                     meta: dict[bytes, bytes], events: int) -> bool:
+        """Make this replica the conversation's owner if nothing changed since ``meta`` was
+        read; ``False`` when something was logged meanwhile. (Added to this replica's owned
+        set first; a failed claim's caller takes it out again: ``_abandoned``.)"""
+        log = self._log
+        client = log.client
+        if self._claim_script is None:
+            self._claim_script = client.register_script(_CLAIM)
+        owned = owned_key(log.config.key_prefix, log.owner)
+        # A fresh token per claim, so that undoing an uncertain claim never undoes a later one.
+        token = secrets.token_hex(8)
+        args = [meta[b"inc"], log.owner, meta.get(b"owner", b""), meta.get(b"useq", b"0"),
+                str(events), token]
         try:
-            await self._replay(session, events)
-            missing = self._check(session, int(useq or 0), stored)
-        except MidstreamError as exc:
-            registry.forget(session)
-            if isinstance(exc, ProtocolStateError | ModelError):
-                raise
-            raise ProtocolStateError(
-                f"conversation {conversation_id!r} cannot be continued: replaying its logged "
-                "input was refused") from exc
-        except BaseException:
-            registry.forget(session)
-            raise
-        journal.replaying = False
-        journal.first_kept = 1
-        session.clock = time.time
-        for item in missing:
-            journal.republished(item)
-        _log.info("conversation %s continued here from %d logged events (seq %d, %d updates "
-                  "the log lacked)", conversation_id, len(events), session.seq, len(missing))
-        return session, len(events)
+            # Owned before it is claimed: were this replica lost right after the claim, the
+            # other replicas must find the conversation among its own.
+            await client.sadd(owned, conversation_id)
+            log.disowned.pop(conversation_id, None)
+            result: Any = await self._claim_script(keys=[keys.meta], args=args)
+        except OUTAGES as exc:
+            if not refused(exc):
+                # The claim may have landed with its answer lost: undone once Redis answers
+                # (by the lease keeper), unless this replica has claimed it again by then.
+                log.unclaim(keys, conversation_id, meta[b"inc"].decode(),
+                            meta.get(b"owner", b"").decode(), token)
+                raise UnavailableError(f"the shared log is unreachable ({type(exc).__name__}); "
+                                       "try again") from exc
+            raise ProtocolStateError(f"conversation {conversation_id!r} changed while being "
+                                     "continued (ended, or started anew); try again") from exc
+        return result in (b"OK", "OK")
 
     async def _replay(self, session: Session, events: list[Any]) -> None:
         limits = self._limits

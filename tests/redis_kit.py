@@ -41,11 +41,16 @@ def _free_port() -> int:
 class RedisProcess:
     """One redis-server process; :meth:`restart` brings it back empty on the same port."""
 
-    def __init__(self, binary: str, folder: Path, *, cluster: bool = False) -> None:
+    def __init__(self, binary: str, folder: Path, *, cluster: bool = False,
+                 options: tuple[str, ...] = ()) -> None:
         self._binary = binary
         self._folder = folder
         self._cluster = cluster  # a node of a Redis Cluster (see RedisCluster)
+        self._options = options
         self.port = _free_port()
+        # The cluster bus port defaults to port + 10000, which a free port's may not be. It
+        # stays the same across restarts: the other nodes reach a restarted node by it.
+        self._bus_port = _free_port() if cluster else 0
         self._process: subprocess.Popen[bytes] | None = None
 
     @property
@@ -56,9 +61,8 @@ class RedisProcess:
         self._process = subprocess.Popen(
             [self._binary, "--port", str(self.port), "--bind", "127.0.0.1", "--save", "",
              "--appendonly", "no", "--dir", str(self._folder), "--protected-mode", "yes",
-             # The cluster bus port defaults to port + 10000, which a free port's may not be.
-             *(["--cluster-enabled", "yes", "--cluster-port", str(_free_port())]
-               if self._cluster else [])],
+             *(["--cluster-enabled", "yes", "--cluster-port", str(self._bus_port)]
+               if self._cluster else []), *self._options],
             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
         deadline = time.monotonic() + _START_TIMEOUT_S
         while time.monotonic() < deadline:
@@ -162,18 +166,38 @@ class RedisCluster:
     """Three ``redis-server`` processes joined into one Redis Cluster (no replicas), each on a
     free loopback port in its own folder with persistence off."""
 
-    def __init__(self, binary: str, cli: str, folder: Path) -> None:
+    def __init__(self, binary: str, cli: str, folder: Path, *,
+                 node_timeout_ms: int | None = None) -> None:
         self._cli = cli
         self.nodes: list[RedisProcess] = []
+        # A node restarted in its folder finds its cluster configuration (nodes.conf) there
+        # and joins again with its slots, empty (persistence is off).
+        options = () if node_timeout_ms is None else (
+            "--cluster-node-timeout", str(node_timeout_ms))
         for number in range(3):
             node_folder = folder / f"node{number}"
             node_folder.mkdir()
-            self.nodes.append(RedisProcess(binary, node_folder, cluster=True))
+            self.nodes.append(RedisProcess(binary, node_folder, cluster=True, options=options))
 
     @property
     def url(self) -> str:
         """The URL ``--redis`` takes for it: any one node, with the cluster scheme."""
         return f"redis+cluster://127.0.0.1:{self.nodes[0].port}"
+
+    def state(self, node: RedisProcess) -> str:
+        """``ok`` or ``fail``: whether ``node`` finds every slot served."""
+        info = subprocess.run([self._cli, "-p", str(node.port), "cluster", "info"],
+                              capture_output=True, text=True, check=True, timeout=10).stdout
+        return next(line.split(":", 1)[1].strip() for line in info.splitlines()
+                    if line.startswith("cluster_state:"))
+
+    def until(self, state: str, nodes: list[RedisProcess], timeout_s: float = 60.0) -> None:
+        """Wait until every node of ``nodes`` reports the cluster ``state``."""
+        deadline = time.monotonic() + timeout_s
+        while not all(self.state(node) == state for node in nodes):
+            if time.monotonic() > deadline:
+                raise RuntimeError(f"the Redis Cluster did not become {state} in {timeout_s} s")
+            time.sleep(0.1)
 
     def start(self) -> None:
         for node in self.nodes:
@@ -197,8 +221,7 @@ class RedisCluster:
             node.stop()
 
 
-@pytest.fixture(name="redis_cluster")
-def redis_cluster_fixture(tmp_path: Path) -> Iterator[RedisCluster]:
+def _cluster(folder: Path, node_timeout_ms: int | None) -> Iterator[RedisCluster]:
     binary, cli = shutil.which("redis-server"), shutil.which("redis-cli")
     if binary is None or cli is None:
         message = ("redis-server and redis-cli are not installed (Debian package redis-server; "
@@ -206,12 +229,24 @@ def redis_cluster_fixture(tmp_path: Path) -> Iterator[RedisCluster]:
         if os.environ.get("CI") == "true":
             pytest.fail(message)
         pytest.skip(message)
-    cluster = RedisCluster(binary, cli, tmp_path)
+    cluster = RedisCluster(binary, cli, folder, node_timeout_ms=node_timeout_ms)
     try:
         cluster.start()
         yield cluster
     finally:
         cluster.stop()
+
+
+@pytest.fixture(name="redis_cluster")
+def redis_cluster_fixture(tmp_path: Path) -> Iterator[RedisCluster]:
+    yield from _cluster(tmp_path, None)
+
+
+@pytest.fixture(name="failing_cluster")
+def failing_cluster_fixture(tmp_path: Path) -> Iterator[RedisCluster]:
+    """A cluster whose nodes take another for failed after 2 s without an answer (Redis's
+    default is 15 s), for tests that stop nodes."""
+    yield from _cluster(tmp_path, 2000)
 
 
 def abandon(server: MidstreamServer) -> SharedLog:

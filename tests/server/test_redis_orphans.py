@@ -12,13 +12,14 @@ nothing here asserts how fast.
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 from typing import Any
 
 import grpc
 import pytest
 import redis.asyncio as aioredis
 from midstream.server import SharedLogConfig
-from midstream.server._journal import ConversationKeys, lease_key
+from midstream.server._journal import ConversationKeys, lease_key, owned_key
 from midstream.wire import midstream_pb2 as pb
 from redis_kit import LIMITS, RedisProcess, abandon, call_words, gaps_told, redis_server_fixture
 from server_kit import (
@@ -255,4 +256,130 @@ async def test_a_replica_cut_off_past_the_grace_hands_its_followers_the_logs_end
     await asyncio.wait_for(following, _PATIENCE_S)
     assert on_a[-1].ended.reason == pb.END_REASON_OWNER_LOST
     assert gaps_told(on_a, last) == 0
+    caller.call.cancel()
+
+
+async def test_a_failed_continuation_leaves_the_conversation_to_its_replica_and_the_sweep(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    """Continuing a conversation whose logged input lacks an event fails (INVALID_ARGUMENT)
+    and changes nothing: the replica writing it goes on writing it (it is not fenced off by
+    a continuation that never happened), and once that replica is lost the conversation
+    ends OWNER_LOST for a follower on a third replica, as if nobody had tried."""
+    shared = SharedLogConfig(url=redis_server.url, lease_s=1.0, orphan_grace_s=1.0)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    c = await start_server(limits=LIMITS, shared_log=shared)
+    caller = Caller(a.stub)
+    await caller.open("damaged")
+    await _ingest(caller, call_words()[:8])
+    await _until_logged(redis_server.url, "damaged", caller.updates[-1].seq)
+    following = asyncio.ensure_future(follow_all(c.stub, "damaged", from_seq=1))
+    keys = ConversationKeys.of("midstream", "damaged")
+    client = aioredis.Redis.from_url(redis_server.url)
+    try:
+        # Redis loses the last input event (as a failover to a replica that had not got it
+        # would): the log holds an update its input no longer gives.
+        assert await client.xdel(keys.events, "8-0") == 1
+        again = b.stub.Feed()
+        await again.write(pb.ClientEvent(open=pb.OpenConversation(conversation_id="damaged",
+                                                                  resume=True)))
+        with pytest.raises(grpc.aio.AioRpcError) as refused:
+            await again.read()
+        assert refused.value.code() == grpc.StatusCode.INVALID_ARGUMENT
+        assert refused.value.details() == (
+            "conversation damaged cannot be continued: the log holds updates up to seq 8 but "
+            "its logged input gives only 7")
+        # Nothing of the attempt reached Redis: A owns it, B's set does not name it.
+        writer, tried = a.server._shared, b.server._shared  # their owner tokens
+        assert writer is not None and tried is not None
+        assert await client.hget(keys.meta, "owner") == writer.owner.encode()
+        assert not await client.sismember(owned_key("midstream", tried.owner), "damaged")
+    finally:
+        await client.aclose()
+    # A still writes it: the follower on C gets these too.
+    await _ingest(caller, call_words()[8:10])
+    last = caller.updates[-1].seq
+    await _until_logged(redis_server.url, "damaged", last)
+    abandon(a.server)
+    messages = await asyncio.wait_for(following, _PATIENCE_S)
+    assert messages[-1].ended.reason == pb.END_REASON_OWNER_LOST
+    assert gaps_told(messages, last) == 0
+    assert [m.update for m in messages[:-1]] == caller.updates
+    caller.call.cancel()
+
+
+async def test_an_id_opened_again_while_its_old_entry_leaves_the_owned_set_stays_in_it(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    """The lease keeper takes a conversation out of its replica's owned set after its end
+    landed; should the id be opened again on that replica while the removal is on its way,
+    the new conversation's own adding may land first. The keeper adds it back, so the new
+    conversation is ended like any other should the replica be lost."""
+    shared = SharedLogConfig(url=redis_server.url)
+    # Ended conversations are not kept, so the id can be opened again here at once.
+    a = await start_server(limits=dataclasses.replace(LIMITS, ended_retention_s=0.0),
+                           shared_log=shared)
+    log = a.server._shared  # its keeper and owner token
+    assert log is not None and log._keeper is not None
+    first = Caller(a.stub)
+    await first.open("reopened")
+    await _ingest(first, call_words()[:2])
+    await first.close()
+    client = aioredis.Redis.from_url(redis_server.url)
+    try:
+        async with asyncio.timeout(_PATIENCE_S):  # the end landed: due to leave the set
+            while await client.hget(ConversationKeys.of("midstream", "reopened").meta,
+                                    "ended") != b"1":
+                await asyncio.sleep(0.02)
+    finally:
+        await client.aclose()
+    second = Caller(a.stub)
+    await second.open("reopened")
+    await _ingest(second, call_words()[2:4])
+    await _until_logged(redis_server.url, "reopened", second.updates[-1].seq)
+    # The interleaving: the renewal that removes the old entry read the id before the new
+    # conversation's first write took it off the list, and its removal lands after the add.
+    log.disowned["reopened"] = None
+    await log._keeper.tick()
+    client = aioredis.Redis.from_url(redis_server.url)
+    try:
+        assert await client.sismember(owned_key("midstream", log.owner), "reopened")
+    finally:
+        await client.aclose()
+    await second.close()
+
+
+async def test_a_claim_whose_answer_was_lost_is_undone_once_redis_answers(
+        start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    """Redis went away at the moment B claimed a conversation, so B cannot know whether the
+    claim landed (it answered UNAVAILABLE). Its lease keeper gives the conversation back to
+    the replica that owned it, and back into that replica's set for the sweep; a claim B made
+    again since (another token) is left alone."""
+    shared = SharedLogConfig(url=redis_server.url, lease_s=1.0, orphan_grace_s=60.0)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    writer, claimer = a.server._shared, b.server._shared  # their owner tokens and queues
+    assert writer is not None and claimer is not None
+    caller = Caller(a.stub)
+    await caller.open("uncertain")
+    await _ingest(caller, call_words()[:3])
+    await _until_logged(redis_server.url, "uncertain", caller.updates[-1].seq)
+    keys = ConversationKeys.of("midstream", "uncertain")
+    client = aioredis.Redis.from_url(redis_server.url)
+    try:
+        stored: Any = await client.hget(keys.meta, "inc")
+        incarnation = stored.decode()
+        owned_by_a = owned_key("midstream", writer.owner)
+        for token, undone in (("lost-answer", True), ("older-claim", False)):
+            # What the claim script writes when it lands (the answer never arrived) ...
+            await client.hset(keys.meta, mapping={"owner": claimer.owner, "claim": "lost-answer"})
+            await client.srem(owned_by_a, "uncertain")  # ... and a sweep that ran meanwhile
+            claimer.unclaim(keys, "uncertain", incarnation, writer.owner, token)
+            async with asyncio.timeout(_PATIENCE_S):  # B's keeper acts at its next renewal
+                while "uncertain" in claimer.unclaimed:
+                    await asyncio.sleep(0.05)
+            owner = await client.hget(keys.meta, "owner")
+            assert owner == (writer.owner if undone else claimer.owner).encode(), token
+            assert await client.sismember(owned_by_a, "uncertain")
+    finally:
+        await client.aclose()
     caller.call.cancel()
