@@ -91,6 +91,10 @@ def add_training_arguments(parser: argparse.ArgumentParser) -> None:
                         metavar="LABEL=COPIES[,LABEL=COPIES...]",
                         help="extra copies of a short window around each utterance of a label "
                              "(several values are compared by cross-validation)")
+    parser.add_argument("--balance-corpora", nargs="+", choices=("off", "on"), default=["off"],
+                        help="train on each pooled corpus about as many utterances as on the "
+                             "largest, by repeating the smaller ones (both values: compared by "
+                             "cross-validation)")
     parser.add_argument("--cv-folds", type=int, default=3,
                         help="folds for comparing several --c1/--c2 values")
     parser.add_argument("--cv-subset", type=int, default=300,
@@ -123,9 +127,10 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
         config=FunctionFeatureConfig(partner=args.partner_features,
                                      opening=args.opening_features[0] == "on",
                                      lookback=args.lookback_features[0] == "on"),
-        oversample=samplings[0], decode_bias=biases[0])
+        oversample=samplings[0], balance=args.balance_corpora[0] == "on",
+        decode_bias=biases[0])
     grid = list(itertools.product(args.c1, args.c2, samplings, args.opening_features,
-                                  args.lookback_features))
+                                  args.lookback_features, args.balance_corpora))
     chosen = base
     cv: dict[str, object] = {}
     if len(grid) * len(biases) > 1:
@@ -139,11 +144,12 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
         score = (_cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
                  if len(corpora) == 1 else _pooled_score(corpora))
         best = -1.0
-        for c1, c2, sampling, opening, lookback in grid:
+        for c1, c2, sampling, opening, lookback, balance in grid:
             config = FunctionFeatureConfig(partner=args.partner_features,
                                            opening=opening == "on", lookback=lookback == "on")
             options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2,
-                                                 "oversample": sampling, "config": config})
+                                                 "oversample": sampling, "config": config,
+                                                 "balance": balance == "on"})
             results = cross_validate_biases(subset, options, biases, folds=args.cv_folds,
                                             score=score)
             for bias, figures in zip(biases, results, strict=True):
@@ -151,6 +157,7 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
                     f",oversample={_oversample_text(sampling)}" if sampling else "") + (
                     ",opening=on" if opening == "on" else "") + (
                     ",lookback=on" if lookback == "on" else "") + (
+                    ",balance=on" if balance == "on" else "") + (
                     f",decode_bias={_bias_text(bias)}" if bias else "")
                 print(f"cv {name}: " + " ".join(
                     f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
@@ -161,6 +168,7 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
               f"oversample={_oversample_text(chosen.oversample) or '-'} "
               f"opening={'on' if chosen.config.opening else 'off'} "
               f"lookback={'on' if chosen.config.lookback else 'off'} "
+              f"balance={'on' if chosen.balance else 'off'} "
               f"decode_bias={_bias_text(chosen.decode_bias) or '-'}", file=out, flush=True)
     command = "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:])
     artifact = train_function_model(conversations, chosen, command=command)

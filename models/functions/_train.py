@@ -16,7 +16,7 @@ import logging
 import math
 import random
 import time
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 
 from midstream import SWBD42_CLASSES, Conversation, InputError, ModelError, UtteranceFunction
@@ -67,6 +67,12 @@ class FunctionTrainingOptions:
         ``augment``). crfsuite has no class weights;
         repeating a rare class's windows is how its few examples weigh more, and the window is
         what the streaming tagger decodes anyway.
+    balance
+        Weigh pooled corpora alike: each corpus's conversations are trained on
+        ``round(largest / own)`` times (at most :data:`MAX_BALANCE_COPIES`), where ``largest``
+        and ``own`` count utterances, the repeats with fresh augmented cuts. crfsuite has no
+        instance weights, and without it the largest corpus (SwDA, nine times Map Task) decides
+        whatever the corpora's conventions disagree on.
     decode_bias
         ``(label, shift)`` pairs: ``shift`` added to the label's score at every utterance once
         training is done (to the weight of the ``bias`` feature every utterance carries, so
@@ -85,6 +91,7 @@ class FunctionTrainingOptions:
     coarse_from: str = "sum"
     seed: int = 0
     oversample: tuple[tuple[str, int], ...] = ()
+    balance: bool = False
     decode_bias: tuple[tuple[str, float], ...] = ()
 
     def to_json(self) -> dict[str, object]:
@@ -93,8 +100,37 @@ class FunctionTrainingOptions:
             "max_iterations": self.max_iterations, "augment": self.augment,
             "coarse_from": self.coarse_from, "seed": self.seed,
             "oversample": {label: copies for label, copies in self.oversample},
+            "balance": self.balance,
             "decode_bias": {label: shift for label, shift in self.decode_bias},
         }
+
+
+#: Most times :attr:`FunctionTrainingOptions.balance` repeats a small corpus, so that a handful
+#: of conversations pooled with a large corpus cannot grow the training set without bound
+#: (common practice, no source; Map Task against SwDA needs 9).
+MAX_BALANCE_COPIES = 10
+
+
+def balance_copies(sizes: Mapping[str, int]) -> dict[str, int]:
+    """How many times :attr:`FunctionTrainingOptions.balance` trains on each corpus, given
+    each corpus's number of utterances.
+
+    Examples
+    --------
+    >>> balance_copies({"big": 90, "small": 10, "tiny": 1, "none": 0})
+    {'big': 1, 'small': 9, 'tiny': 10, 'none': 1}
+    """
+    largest = max(sizes.values(), default=0)
+    return {corpus: min(MAX_BALANCE_COPIES, max(1, round(largest / size))) if size else 1
+            for corpus, size in sizes.items()}
+
+
+def _corpus_sizes(conversations: Iterable[Conversation]) -> dict[str, int]:
+    sizes: dict[str, int] = {}
+    for conversation in conversations:
+        sizes[conversation.corpus] = sizes.get(conversation.corpus, 0) + len(
+            conversation.utterances)
+    return sizes
 
 
 #: Utterances before a rare one that its oversampled window holds: the streaming tagger's
@@ -154,6 +190,8 @@ def build_sequences(conversations: Iterable[Conversation],
     if unknown:
         raise InputError(f"cannot oversample {', '.join(unknown)}: not a label of scheme "
                          f"{options.scheme!r}")
+    conversations = list(conversations)
+    repeats = balance_copies(_corpus_sizes(conversations)) if options.balance else {}
     for conversation in conversations:
         if not conversation.utterances:
             continue
@@ -178,6 +216,16 @@ def build_sequences(conversations: Iterable[Conversation],
                     xseqs.append(_rare_window(conversation, views, i, xseq=xseq, rng=rng,
                                               rate=options.augment, config=options.config))
                     yseqs.append(labels[max(0, i - OVERSAMPLE_CONTEXT):i + 1 + OVERSAMPLE_AFTER])
+        for repeat in range(1, repeats.get(conversation.corpus, 1)):
+            # A repeat is the same conversation again; its augmented copy is cut afresh, so the
+            # repeats add prefixes a stream shows rather than the same ones again.
+            xseqs.append(xseq)
+            yseqs.append(labels)
+            if options.augment > 0:
+                rng = random.Random(f"{options.seed}:{conversation.id}:{repeat}")
+                xseqs.append(_augmented(conversation, views, rng, options.augment,
+                                        options.config))
+                yseqs.append(labels)
     return xseqs, yseqs
 
 

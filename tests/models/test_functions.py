@@ -283,6 +283,31 @@ def test_augmentation_adds_one_cut_copy_per_conversation() -> None:
     assert cut == multiword > 0
 
 
+def test_balance_repeats_a_small_corpus_with_fresh_cuts() -> None:
+    # Six conversations of one invented corpus pooled with two of another: the small one is
+    # trained on three times, each repeat cut afresh, and nothing changes without balance.
+    big = invented_corpus(6)
+    small = [dataclasses.replace(c, id=f"small{i}", corpus="small")
+             for i, c in enumerate(invented_corpus(2, start=6))]
+    sizes = {"demo": sum(len(c.utterances) for c in big),
+             "small": sum(len(c.utterances) for c in small)}
+    copies = round(sizes["demo"] / sizes["small"])
+    assert copies > 1
+    plain_x, plain_y = build_sequences(big + small, FunctionTrainingOptions(scheme="coarse"))
+    even_x, even_y = build_sequences(big + small,
+                                     FunctionTrainingOptions(scheme="coarse", balance=True))
+    assert len(plain_x) == 2 * 8
+    assert len(even_x) == 2 * (6 + 2 * copies)
+    assert even_x[:12] == plain_x[:12]  # the large corpus once, as before
+    first_small = [x for x, y in zip(even_x, even_y, strict=True)
+                   if y == plain_y[12]]
+    assert len(first_small) == 2 * copies
+    whole = [x for x in first_small if x == plain_x[12]]
+    cuts = [x for x in first_small if x != plain_x[12]]
+    assert len(whole) == copies
+    assert len({str(x) for x in cuts}) > 1  # the repeats' cuts differ
+
+
 def test_swbd42_scheme_refuses_other_corpora_classes() -> None:
     conversation = invented_conversation(1)
     utterance = dataclasses.replace(conversation.utterances[0], fine_class="instruct")

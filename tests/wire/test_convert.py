@@ -57,6 +57,7 @@ def test_update_round_trips() -> None:
     assert cv.update_from_wire(cv.update_to_wire(update)) == update
     snap = cv.snapshot_to_wire(7, [word], [utt], conversation_final=False)
     assert cv.snapshot_from_wire(snap) == (7, (word,), (utt,), False)
+    assert cv.snapshot_to_wire(7, [word], [utt], conversation_final=False, epoch=3).epoch == 3
     assert cv.hint_from_wire(cv.hint_to_wire("B", turn_end=True)) == ("B", True)
 
 

@@ -385,13 +385,16 @@ def snapshot_to_wire(
     utterances: Iterable[UtteranceHypothesis],
     *,
     conversation_final: bool,
+    epoch: int = 0,
 ) -> pb.Snapshot:
-    """The wire form of a whole current state as of ``seq``."""
+    """The wire form of a whole current state as of ``seq``; ``epoch`` is the conversation's
+    incarnation the state belongs to (0 where no shared log numbers them)."""
     return pb.Snapshot(
         seq=seq,
         words=[word_state_to_wire(w) for w in words],
         utterances=[utterance_state_to_wire(u) for u in utterances],
         conversation_final=conversation_final,
+        epoch=epoch,
     )
 
 
