@@ -258,18 +258,25 @@ class Replica:
         client = self._log.client
         # A blocking read must return well within the connection's own timeout.
         block_ms = int(min(_BLOCK_MS, 500 * self._log.config.timeout_s))
-        expected: int
+        # Either the follower starts over from a snapshot of the log (after the gap notice, if
+        # any, that says why), or it reads the log on from the position it asked for.
+        read_on_from: int | None = None
+        gap: tuple[int, int | None, pb.GapReason] | None = None
         if stale_from is not None:
-            messages, state, last_id, over = await self._start_over(
-                keys, (stale_from, None, pb.GAP_REASON_OWNER_CHANGED))
-            for message in messages:
-                yield message
-            if over:
-                return
-            expected = state.seq + 1
+            gap = (stale_from, None, pb.GAP_REASON_OWNER_CHANGED)
         elif from_seq is None or other_epoch or unchecked:
-            gap = None if from_seq is None else (
-                from_seq, await self._oldest(keys, logged), pb.GAP_REASON_EPOCH_MISMATCH)
+            if from_seq is not None:
+                gap = (from_seq, await self._oldest(keys, logged), pb.GAP_REASON_EPOCH_MISMATCH)
+        else:
+            with _reachable():
+                first: Any = await client.xrange(keys.updates, f"{from_seq}-0", "+", count=1)
+            oldest = _entry(first[0][0])[0] if first else logged + 1
+            if oldest > from_seq and from_seq <= logged:
+                gap = (from_seq, oldest, pb.GAP_REASON_EVICTED)
+            else:
+                read_on_from = from_seq
+        expected: int
+        if read_on_from is None:
             messages, state, last_id, over = await self._start_over(keys, gap)
             for message in messages:
                 yield message
@@ -277,20 +284,8 @@ class Replica:
                 return
             expected = state.seq + 1
         else:
-            with _reachable():
-                first: Any = await client.xrange(keys.updates, f"{from_seq}-0", "+", count=1)
-            oldest = _entry(first[0][0])[0] if first else logged + 1
-            if oldest > from_seq and from_seq <= logged:
-                messages, state, last_id, over = await self._start_over(
-                    keys, (from_seq, oldest, pb.GAP_REASON_EVICTED))
-                for message in messages:
-                    yield message
-                if over:
-                    return
-                expected = state.seq + 1
-            else:
-                last_id = f"{from_seq - 1}-0".encode()
-                expected = from_seq
+            last_id = f"{read_on_from - 1}-0".encode()
+            expected = read_on_from
         while True:
             if stop.done():
                 raise UnavailableError(

@@ -15,7 +15,8 @@
 :func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of
 your own transcripts); several corpora are pooled. Given several ``--c1``/``--c2``/
 ``--oversample`` values, the combinations are compared by conversation-grouped cross-validation
-on the first ``--cv-subset`` conversations (by id) of each corpus given, which must be training
+on the first ``--cv-subset`` conversations (by id) of each corpus given (or the ``--cv-share``
+fraction of each, which keeps the final training's mix of corpora), which must be training
 splits; the best is then trained on all of them. The score of a combination is, for one corpus,
 the mean of its gold-segmentation accuracy in the model's own scheme and its coarse accuracy
 after three received words; for pooled corpora, the mean over the corpora of coarse accuracy,
@@ -98,7 +99,12 @@ def add_training_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--cv-folds", type=int, default=3,
                         help="folds for comparing several --c1/--c2 values")
     parser.add_argument("--cv-subset", type=int, default=300,
-                        help="conversations (first by id) used for cross-validation (0: all)")
+                        help="conversations (first by id) of each corpus used for "
+                             "cross-validation (0: all)")
+    parser.add_argument("--cv-share", type=float, default=None, metavar="FRACTION",
+                        help="instead of --cv-subset: this fraction (0 < F <= 1) of each "
+                             "corpus's conversations (first by id), so that the folds mix the "
+                             "corpora as the final training does")
 
 
 def _cv_score(scheme: str) -> Scorer:
@@ -137,10 +143,7 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
         if args.cv_folds < 2:
             raise InputError(f"--cv-folds must be at least 2, got {args.cv_folds}")
         corpora = sorted({c.corpus for c in conversations})
-        subset: list[Conversation] = []
-        for corpus in corpora:
-            some = sorted((c for c in conversations if c.corpus == corpus), key=lambda c: c.id)
-            subset += some[:args.cv_subset] if args.cv_subset else some
+        subset = cv_subset(conversations, count=args.cv_subset, share=args.cv_share)
         score = (_cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
                  if len(corpora) == 1 else _pooled_score(corpora))
         best = -1.0
@@ -175,11 +178,38 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
     if cv:
         metadata = dict(artifact.metadata)
         metadata["cross_validation"] = {"folds": args.cv_folds,
-                                        "subset": args.cv_subset, "grid": cv}
+                                        "subset": args.cv_subset, "share": args.cv_share,
+                                        "grid": cv}
         artifact = ModelArtifact(kind=artifact.kind, labels=artifact.labels, crf=artifact.crf,
                                  features=artifact.features,
                                  hyper_parameters=artifact.hyper_parameters, metadata=metadata)
     return artifact
+
+
+def cv_subset(conversations: Sequence[Conversation], *, count: int,
+              share: float | None) -> list[Conversation]:
+    """The conversations a grid cross-validates on: of each corpus, the first ``count`` by id
+    (0: all), or with ``share`` that fraction of them (at least one).
+
+    A fixed count per corpus mixes the corpora unlike the final training when their
+    conversations differ in length (an MRDA meeting holds about nine SwDA conversations'
+    utterances); a share keeps the final training's mix.
+
+    Raises
+    ------
+    InputError
+        ``share`` outside (0, 1].
+    """
+    if share is not None and not 0.0 < share <= 1.0:
+        raise InputError(f"--cv-share must be above 0 and at most 1, got {share}")
+    subset: list[Conversation] = []
+    for corpus in sorted({c.corpus for c in conversations}):
+        some = sorted((c for c in conversations if c.corpus == corpus), key=lambda c: c.id)
+        if share is not None:
+            subset += some[:max(1, round(share * len(some)))]
+        else:
+            subset += some[:count] if count else some
+    return subset
 
 
 #: Fewest gold utterances of a class in one corpus's held-out fold for its F1 to count in the

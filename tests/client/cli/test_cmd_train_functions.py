@@ -7,7 +7,12 @@ from pathlib import Path
 
 import pytest
 from function_kit import invented_corpus
-from midstream.client.cli._cmd_train_functions import MIN_SCORED_SUPPORT, supported_macro_f1
+from midstream import InputError
+from midstream.client.cli._cmd_train_functions import (
+    MIN_SCORED_SUPPORT,
+    cv_subset,
+    supported_macro_f1,
+)
 from midstream.client.cli._main import main
 from midstream.corpora import write_jsonl
 from midstream.models._artifact import load_artifact
@@ -104,3 +109,15 @@ def test_the_grid_score_leaves_out_classes_a_fold_hardly_has() -> None:
     assert figures["x.macro_f1"] == pytest.approx(f1_score(gold, predicted, average="macro"))
     # Two clarification requests move the plain macro F1; the grid's score does not see them.
     assert supported_macro_f1(figures, "x") != pytest.approx(figures["x.macro_f1"])
+
+
+def test_a_cv_share_keeps_each_corpus_in_proportion() -> None:
+    long = [dataclasses.replace(c, id=f"meeting{i}", corpus="meetings")
+            for i, c in enumerate(invented_corpus(4))]
+    short = invented_corpus(20, start=4)
+    share = cv_subset(long + short, count=0, share=0.25)
+    assert [c.id for c in share if c.corpus == "meetings"] == ["meeting0"]
+    assert len([c for c in share if c.corpus == "demo"]) == 5
+    assert len(cv_subset(long + short, count=3, share=None)) == 6
+    with pytest.raises(InputError, match="--cv-share"):
+        cv_subset(short, count=0, share=1.5)
