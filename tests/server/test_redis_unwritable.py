@@ -29,6 +29,7 @@ from midstream.server._journal import (
     ConversationKeys,
     refused,
 )
+from midstream.server._replica import _CLAIM
 from midstream.wire import midstream_pb2 as pb
 from redis.asyncio.retry import Retry
 from redis.backoff import NoBackoff
@@ -261,17 +262,28 @@ def _append_args(owner: str, incarnation: str) -> list[Any]:
 
 async def test_the_owner_fences_replies_are_refusals_and_unwritable_replies_are_not(
         redis_servers: RedisFactory) -> None:
-    """The real script's refusals (another owner, another conversation under the id, a
-    conversation Redis lost) against the real replies of a Redis that cannot write for now."""
+    """The real scripts' refusals (the append script's: another owner, another conversation
+    under the id, a conversation Redis lost; the continuing replica's claim: the conversation
+    ended or was started anew) against the real replies of a Redis that cannot write for
+    now, to the same scripts."""
     primary = redis_servers()
     keys = ConversationKeys.of("midstream", "c")
-    args = [keys.updates, keys.events, keys.meta, keys.snapshot]
 
     async def append(client: aioredis.Redis, owner: str, incarnation: str) -> Any:
-        async with client.pipeline(transaction=False) as pipe:
-            pipe.eval(_APPEND, 4, *args, *_append_args(owner, incarnation))
+        async with client.pipeline(transaction=False) as pipe:  # as the writer sends it
+            pipe.eval(_APPEND, 4, keys.updates, keys.events, keys.meta, keys.snapshot,
+                      *_append_args(owner, incarnation))
             [result] = await pipe.execute(raise_on_error=False)
         return result
+
+    async def claim(client: aioredis.Redis, incarnation: str, read: str = "theirs") -> Any:
+        # A claim of what was read as owned by ``read`` at useq 0 with no events
+        # (_replica._claim).
+        try:
+            return await client.eval(_CLAIM, 1, keys.meta, incarnation, "mine", read, "0",
+                                     "0", "token")
+        except ResponseError as exc:  # raised, as the continuing replica meets it
+            return exc
 
     async with _client(primary) as client:
         # Nothing under the id, yet the write says it was logged before: Redis lost it.
@@ -279,17 +291,75 @@ async def test_the_owner_fences_replies_are_refusals_and_unwritable_replies_are_
         await client.hset(keys.meta, mapping={"inc": "1", "owner": "theirs"})
         superseded = await append(client, "mine", "1")  # another replica continued it
         conflict = await append(client, "mine", "2")  # another live conversation has the id
+        started_anew = await claim(client, "2")
+        await client.hset(keys.meta, "ended", "1")
+        ended = await claim(client, "1")
         for name, result in [("MIDSTREAM_LOST", lost), ("MIDSTREAM_SUPERSEDED", superseded),
-                             ("MIDSTREAM_CONFLICT", conflict)]:
+                             ("MIDSTREAM_CONFLICT", conflict),
+                             ("MIDSTREAM_CONFLICT", started_anew), ("MIDSTREAM_ENDED", ended)]:
             assert isinstance(result, ResponseError) and name in str(result), (name, result)
             assert not isinstance(result, TRANSIENT_REPLIES)
             assert refused(result)
+        await client.delete(keys.meta)
         await client.hset(keys.meta, mapping={"inc": "1", "owner": "mine"})
         assert await append(client, "mine", "1") == b"OK"
+        await client.hset(keys.meta, "owner", "theirs")
+        assert await claim(client, "1") == b"OK"
+        await client.hset(keys.meta, "owner", "mine")
     unwritable: list[BaseException] = []
     for state in (_out_of_memory, _read_only, _master_down):
         async with state(primary, redis_servers) as reply, _client(primary) as client:
-            result = await append(client, "mine", "1")
-            assert isinstance(result, reply), (reply, result)
-            unwritable.append(result)
+            for result in (await append(client, "mine", "1"),
+                           await claim(client, "1", read="mine")):
+                assert isinstance(result, reply), (reply, result)
+                unwritable.append(result)
     assert not any(refused(error) for error in unwritable)
+
+
+async def _resume(stub: object, conversation_id: str) -> tuple[Any, pb.ServerMessage]:
+    """Open a ``Feed`` continuing ``conversation_id``; the call and its first message."""
+    call: Any = stub.Feed()  # type: ignore[attr-defined]
+    await call.write(pb.ClientEvent(open=pb.OpenConversation(conversation_id=conversation_id,
+                                                             resume=True)))
+    message: pb.ServerMessage = await call.read()
+    return call, message
+
+
+async def test_continuing_on_a_read_only_redis_is_unavailable_and_goes_through_after(
+        start_server: ServerFactory, redis_servers: RedisFactory) -> None:
+    """A continuation can read the log on a read-only Redis, but its claim is a write: the
+    caller is told to try again (``UNAVAILABLE``), not that the conversation changed, and
+    once Redis takes writes the same continuation goes through and loses no word."""
+    primary = redis_servers()
+    shared = SharedLogConfig(url=primary.url, timeout_s=1.0)
+    a = await start_server(limits=LIMITS, shared_log=shared)
+    b = await start_server(limits=LIMITS, shared_log=shared)
+    words = call_words()[:12]
+    old = Caller(a.stub)
+    await old.open("moving")
+    for word in words[:8]:
+        await old.send(words_event(word))
+    await _until_logged(b.stub, "moving", old.updates[-1].seq)
+    async with _read_only(primary, redis_servers):
+        with pytest.raises(grpc.aio.AioRpcError) as failed:
+            await _resume(b.stub, "moving")
+        assert failed.value.code() == grpc.StatusCode.UNAVAILABLE
+        assert failed.value.details() == (
+            "the shared log is unreachable (ReadOnlyError); try again")
+    call, welcome = await _resume(b.stub, "moving")
+    assert welcome.welcome.events_logged == 8
+    assert welcome.welcome.next_seq == old.updates[-1].seq + 1
+    old.call.cancel()
+    new = Caller(b.stub)
+    new.call = call
+    for word in words[8:]:
+        await new.send(words_event(word))
+    ended = await new.close()
+    # Read from the log on a third replica (A may serve its own stale copy until it learns
+    # it was fenced off: docs/deploy.md).
+    c = await start_server(limits=LIMITS, shared_log=shared)
+    messages = await asyncio.wait_for(follow_all(c.stub, "moving", from_seq=1), _PATIENCE_S)
+    assert gaps_told(messages, ended.last_seq) == 0
+    followed = {w.word_id for m in messages if m.WhichOneof("body") == "update"
+                for w in m.update.words}
+    assert followed == {w.word_id for w in words}
