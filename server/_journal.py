@@ -28,8 +28,10 @@ which ends the conversations of a lost replica).
 Writing never blocks a session: :class:`ConversationJournal` (one per session, called
 synchronously from the session's step) only queues, and one writer task sends what is queued
 in one pipelined round trip, one script call per conversation (each atomic in Redis, so an
-update and the events that made it arrive together or not at all). While Redis is unreachable
-or slow the queue grows up to ``buffer_entries`` and is sent when Redis answers again; past that
+update and the events that made it arrive together or not at all). While Redis is unreachable,
+slow or not taking writes for now (``TRANSIENT_REPLIES``: a read-only replica behind the
+address, a full Redis, ...) the queue grows up to ``buffer_entries`` and is sent when Redis
+takes writes again; past that
 bound the buffered entries are dropped, and each affected conversation's next write trims its
 stream to after the hole and writes a fresh snapshot, so followers see a gap notice and a
 snapshot rather than a silent gap. Such a conversation can no longer be continued elsewhere

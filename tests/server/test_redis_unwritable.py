@@ -227,6 +227,11 @@ async def test_a_redis_that_cannot_take_writes_for_now_is_an_outage_the_log_catc
             await caller.send(words_event(word))  # the caller keeps getting its updates
         await _until_health(a.channel, health_pb2.HealthCheckResponse.NOT_SERVING)
         assert a.server.metrics.registry.get_sample_value("midstream_shared_log_up") == 0
+        if state in ("readonly", "oom"):
+            # Reads still work: another replica lists the conversation (as far as it was
+            # written) while the log is down.
+            listing = await b.stub.ListConversations(pb.ListConversationsRequest())
+            assert [c.conversation_id for c in listing.conversations] == [conversation_id]
     await _until_health(a.channel, health_pb2.HealthCheckResponse.SERVING)
     for word in words[25:]:
         await caller.send(words_event(word))
