@@ -5,9 +5,9 @@ still be followed everywhere and continued elsewhere.
 Each state is a real redis-server's own: ``READONLY`` (the address reaches a replica, as right
 after a Sentinel failover before the proxy or DNS name moves), ``MASTERDOWN`` (that replica's
 link to its primary down with ``replica-serve-stale-data no``), ``OOM`` (``maxmemory`` reached
-under ``noeviction``) and ``LOADING`` (Redis loading its dataset). The append script's own
-error replies (the owner fence) stay refusals. Every wait is generous: nothing here asserts
-how fast.
+under ``noeviction``) and ``LOADING`` (Redis loading its dataset). The scripts' own error
+replies (the append script's owner fence, a continuing replica's claim) stay refusals. Every
+wait is generous: nothing here asserts how fast.
 """
 
 from __future__ import annotations
@@ -71,8 +71,8 @@ _Reply = type[Exception]
 @contextlib.asynccontextmanager
 async def _client(server: RedisProcess) -> AsyncIterator[aioredis.Redis]:
     # No retries of its own: a probe must see the reply Redis gives, LOADING included (redis-py
-    # retries that one by default, as a connection error).
-    # (DEBUG RELOAD, below, answers only once it has loaded everything again.)
+    # retries that one by default, as a connection error). A long read timeout: DEBUG RELOAD,
+    # below, answers only once it has loaded everything again.
     client = aioredis.Redis.from_url(server.url, retry=Retry(NoBackoff(), 0),
                                      socket_timeout=_PATIENCE_S)
     try:
