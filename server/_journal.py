@@ -28,8 +28,10 @@ which ends the conversations of a lost replica).
 Writing never blocks a session: :class:`ConversationJournal` (one per session, called
 synchronously from the session's step) only queues, and one writer task sends what is queued
 in one pipelined round trip, one script call per conversation (each atomic in Redis, so an
-update and the events that made it arrive together or not at all). While Redis is unreachable
-or slow the queue grows up to ``buffer_entries`` and is sent when Redis answers again; past that
+update and the events that made it arrive together or not at all). While Redis is unreachable,
+slow or not taking writes for now (``TRANSIENT_REPLIES``: a read-only replica behind the
+address, a full Redis, ...) the queue grows up to ``buffer_entries`` and is sent when Redis
+takes writes again; past that
 bound the buffered entries are dropped, and each affected conversation's next write trims its
 stream to after the hole and writes a fresh snapshot, so followers see a gap notice and a
 snapshot rather than a silent gap. Such a conversation can no longer be continued elsewhere
@@ -61,8 +63,12 @@ from midstream.wire import convert as cv
 from prometheus_client import CollectorRegistry, Counter, Gauge
 from redis.asyncio.cluster import RedisCluster
 from redis.exceptions import (
+    BusyLoadingError,
     ClusterDownError,
+    MasterDownError,
     NoScriptError,
+    OutOfMemoryError,
+    ReadOnlyError,
     RedisClusterException,
     RedisError,
     ResponseError,
@@ -81,17 +87,40 @@ _log = logging.getLogger(__name__)
 #: while slots move). The socket's own errors and asyncio's timeout complete it.
 OUTAGES: Final = (RedisError, RedisClusterException, OSError, TimeoutError)
 
-#: Error replies a Redis Cluster node gives while it cannot serve a slot: ``CLUSTERDOWN`` once
-#: the cluster has marked a node failed (every node answers it, for every key, until the slot
-#: is served again) and ``TRYAGAIN`` while a slot moves. ``ResponseError``s in redis-py, yet
-#: outages: never a refusal of what was sent.
-CLUSTER_DOWN: Final = (ClusterDownError, TryAgainError)
+#: Error replies that say Redis cannot take writes for now, not that it refuses what was sent:
+#: outages, though redis-py raises most of them as ``ResponseError``s (it maps each reply's
+#: first word to a class in ``redis/_parsers/base.py``). Writes stay buffered (up to
+#: ``buffer_entries``), the log is reported down, and they are retried until Redis takes them.
+#:
+#: ``READONLY`` (``ReadOnlyError``)
+#:     The address now reaches a replica: a Sentinel failover demoted the primary before the
+#:     proxy or DNS name moved on.
+#: ``MASTERDOWN`` (``MasterDownError``, a ``ClusterDownError``)
+#:     A replica whose link to its primary is down with ``replica-serve-stale-data no``: it
+#:     answers reads so too.
+#: ``LOADING`` (``BusyLoadingError``, a ``ConnectionError``, no ``ResponseError``)
+#:     A Redis loading its dataset (after a restart, or as a replica after a full sync).
+#: ``OOM`` (``OutOfMemoryError``)
+#:     ``maxmemory`` reached under ``noeviction`` (or a ``volatile-*`` policy with nothing to
+#:     evict). It need not pass by itself, but the log's keys all expire ``max_age_s`` after
+#:     their last write and an operator can raise the limit: as an outage the writes wait in
+#:     the bounded buffer and the log is reported down, where as a refusal the conversation's
+#:     log would stop for good with health still reporting it up.
+#: ``CLUSTERDOWN`` (``ClusterDownError``), ``TRYAGAIN`` (``TryAgainError``)
+#:     A Redis Cluster node while it cannot serve a slot: once the cluster has marked a node
+#:     failed (every node answers it, for every key, until the slot is served again), and
+#:     while a slot moves.
+#:
+#: The append script's own refusals (``MIDSTREAM_SUPERSEDED`` and the like) arrive as plain
+#: ``ResponseError``s (``ERR MIDSTREAM_...``), never as one of these.
+TRANSIENT_REPLIES: Final = (ReadOnlyError, MasterDownError, BusyLoadingError, OutOfMemoryError,
+                            ClusterDownError, TryAgainError)
 
 
 def refused(error: BaseException) -> bool:
     """Whether ``error`` is Redis refusing a command (an error reply such as a script's own),
-    not Redis being unreachable or unable to serve it for now."""
-    return isinstance(error, ResponseError) and not isinstance(error, CLUSTER_DOWN)
+    not Redis being unreachable or unable to take it for now (``TRANSIENT_REPLIES``)."""
+    return isinstance(error, ResponseError) and not isinstance(error, TRANSIENT_REPLIES)
 
 
 #: The health-service name that reports the shared log: SERVING while writes reach Redis,
@@ -561,8 +590,9 @@ class SharedLog:
             else:
                 for call, result in zip(calls, results, strict=True):
                     if isinstance(result, Exception) and not refused(result):
-                        # A connection error mid-pipeline, or a cluster node that cannot
-                        # serve the slot (the call's own reply, not raised): kept for a retry.
+                        # A connection error mid-pipeline, or a Redis that cannot take
+                        # writes for now (TRANSIENT_REPLIES: the call's own reply, not
+                        # raised): kept for a retry.
                         outage = result
                     else:
                         self._landed(call, result)

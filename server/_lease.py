@@ -230,7 +230,9 @@ class Keeper:
                     await self.tick()
             except OUTAGES as exc:
                 # The writer reports the outage; others' leases may be stale until they
-                # renewed after it, so nobody is judged for a whole lease_s.
+                # renewed after it, so nobody is judged for a whole lease_s. The keeper's
+                # scripts answer with results, never error replies of their own, so any error
+                # reply (READONLY, OOM, ...: _journal.TRANSIENT_REPLIES) is such an outage.
                 self._judge_from = time.monotonic() + config.lease_s
                 _log.debug("lease renewal failed (%s)", type(exc).__name__)
             except Exception as exc:  # a bug must not stop the renewals: others would end ours

@@ -49,6 +49,7 @@ from midstream.server._config import ServerLimits
 from midstream.server._ingest import apply_event
 from midstream.server._journal import (
     OUTAGES,
+    TRANSIENT_REPLIES,
     ConversationJournal,
     ConversationKeys,
     SharedLog,
@@ -413,7 +414,10 @@ class Replica:
         index = index_key(config.key_prefix)
         horizon = time.time() - config.max_age_s
         try:
-            await client.zremrangebyscore(index, "-inf", horizon)
+            with contextlib.suppress(*TRANSIENT_REPLIES):
+                # Housekeeping, and a write: a Redis not taking writes for now (a read-only
+                # replica behind the address) still lists; the range below skips the old.
+                await client.zremrangebyscore(index, "-inf", horizon)
             ids: Any = await client.zrangebyscore(index, horizon, "+inf", start=0,
                                                           num=_LIST_LIMIT)
             # Ids held here are asked about too: another replica may have reused one.

@@ -14,7 +14,7 @@ import shutil
 import socket
 import subprocess
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
@@ -90,20 +90,50 @@ class RedisProcess:
         self.start()
 
 
-@pytest.fixture(name="redis_server")
-def redis_server_fixture(tmp_path: Path) -> Iterator[RedisProcess]:
+def _server_binary() -> str:
     binary = shutil.which("redis-server")
     if binary is None:
         message = "redis-server is not installed (Debian package redis-server; .ci/run installs it)"
         if os.environ.get("CI") == "true":
             pytest.fail(message)
         pytest.skip(message)
-    server = RedisProcess(binary, tmp_path)
+    return binary
+
+
+@pytest.fixture(name="redis_server")
+def redis_server_fixture(tmp_path: Path) -> Iterator[RedisProcess]:
+    server = RedisProcess(_server_binary(), tmp_path)
     server.start()
     try:
         yield server
     finally:
         server.stop()
+
+
+#: Starts another redis-server (its extra command-line options given), each in its own folder.
+RedisFactory = Callable[..., RedisProcess]
+
+
+@pytest.fixture(name="redis_servers")
+def redis_servers_fixture(tmp_path: Path) -> Iterator[RedisFactory]:
+    """Any number of redis-servers, started with extra options (``--enable-debug-command
+    yes``, say), all stopped after the test."""
+    binary = _server_binary()
+    started: list[RedisProcess] = []
+
+    def start(*options: str) -> RedisProcess:
+        folder = tmp_path / f"redis{len(started)}"
+        folder.mkdir()
+        server = RedisProcess(binary, folder, options=options)
+        started.append(server)
+        server.start()
+        return server
+
+    try:
+        yield start
+    finally:
+        for server in started:
+            server.stop()
 
 
 def call_words() -> list[pb.SpokenWord]:
