@@ -23,9 +23,9 @@ from midstream import SWBD42_CLASSES, Conversation, InputError, ModelError, Utte
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import shift_state_weights, train_crf
 from midstream.models.functions._features import (
+    SETTING_SEPARATOR,
     Features,
     FunctionFeatureConfig,
-    SETTING_SEPARATOR,
     chain_partners,
     setting_copies,
     utterance_features,
