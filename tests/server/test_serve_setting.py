@@ -7,16 +7,30 @@ acknowledgement in the choir's.
 
 from __future__ import annotations
 
+import asyncio
 import subprocess
 import sys
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from pathlib import Path
 
+import grpc
 import pytest
 from midstream import AddWord, ModelError, SpeakerHint, UtteranceFunction
 from midstream.client import Client
-from midstream.server import MidstreamServer, ServerConfig
+from midstream.models import ModelBundle
+from midstream.server import MidstreamServer, ServerConfig, SharedLogConfig
+from midstream.wire import midstream_pb2 as pb
+from redis_kit import LIMITS, RedisProcess, redis_server_fixture
+from server_kit import (
+    Caller,
+    ServerFactory,
+    bundle_fixture,
+    models_dir_fixture,
+    spoken,
+    start_server_fixture,
+    words_event,
+)
 from setting_kit import (
     DISPUTED,
     DISPUTED_FUNCTION,
@@ -24,6 +38,9 @@ from setting_kit import (
     setting_conversation,
     write_setting_models,
 )
+
+__all__ = ["bundle_fixture", "models_dir_fixture", "redis_server_fixture",
+           "start_server_fixture"]
 
 _SHIPPED = Path(__file__).resolve().parents[2] / "models" / "weights"
 
@@ -104,3 +121,36 @@ def test_serve_refuses_an_unknown_setting_naming_the_known_ones(models: Path) ->
     assert all(name in lines[0] for name in SETTINGS), result.stderr
 
 
+
+
+async def test_a_replica_in_another_setting_refuses_to_continue_a_conversation(
+        models: Path, start_server: ServerFactory, redis_server: RedisProcess) -> None:
+    # Continuing replays the logged input through this replica's engine: in another setting
+    # it would relabel the conversation halfway, so the log's model identity includes it.
+    bundle = ModelBundle.load_directory(models)
+    shared = SharedLogConfig(url=redis_server.url)
+    owner, same, other = [await start_server(limits=LIMITS, given=bundle, shared_log=shared,
+                                             setting=setting)
+                          for setting in ("workshop", "workshop", "choir")]
+    caller = Caller(owner.stub)
+    await caller.open("call-1")
+    await caller.send(words_event(spoken("w0", DISPUTED, start=0.0)))
+    async with asyncio.timeout(10):
+        while not any(c.conversation_id == "call-1" and c.last_seq >= 1 for c in (
+                await other.stub.ListConversations(pb.ListConversationsRequest())
+        ).conversations):
+            await asyncio.sleep(0.02)
+    resume = pb.ClientEvent(open=pb.OpenConversation(conversation_id="call-1", resume=True,
+                                                     epoch=caller.epoch))
+    refused = other.stub.Feed()
+    await refused.write(resume)
+    with pytest.raises(grpc.aio.AioRpcError) as info:
+        await refused.read()
+    assert info.value.code() == grpc.StatusCode.FAILED_PRECONDITION
+    # Refused on the identity written with the conversation, before any replay.
+    assert "was decoded by other models" in (info.value.details() or "")
+    taken = same.stub.Feed()
+    await taken.write(resume)
+    message = await taken.read()
+    assert message.WhichOneof("body") == "welcome", message
+    taken.cancel()
