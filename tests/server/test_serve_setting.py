@@ -8,6 +8,7 @@ acknowledgement in the choir's.
 from __future__ import annotations
 
 import asyncio
+import logging
 import subprocess
 import sys
 from collections.abc import AsyncIterator
@@ -78,11 +79,15 @@ async def _disputed_functions(client: Client) -> list[UtteranceFunction]:
 
 @pytest.mark.parametrize("setting", SETTINGS)
 async def test_a_served_conversation_is_labelled_in_the_named_setting(
-        models: Path, setting: str) -> None:
-    async with _serving(models, setting) as (server, client):
-        assert server.servicer.bundle.setting == setting  # type: ignore[attr-defined]
-        functions = await _disputed_functions(client)
+        models: Path, setting: str, caplog: pytest.LogCaptureFixture) -> None:
+    with caplog.at_level(logging.INFO, logger="midstream.server"):
+        async with _serving(models, setting) as (server, client):
+            assert server.servicer.bundle.setting == setting  # type: ignore[attr-defined]
+            functions = await _disputed_functions(client)
     assert set(functions) == {DISPUTED_FUNCTION[setting]}
+    # An operator reading the start-up log sees which setting is in service.
+    assert any(r.getMessage().startswith("serving on") and f"setting {setting!r}"
+               in r.getMessage() for r in caplog.records), caplog.text
 
 
 async def test_without_a_setting_the_shared_weights_label(models: Path) -> None:
