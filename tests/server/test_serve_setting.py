@@ -159,3 +159,17 @@ async def test_a_replica_in_another_setting_refuses_to_continue_a_conversation(
     message = await taken.read()
     assert message.WhichOneof("body") == "welcome", message
     taken.cancel()
+
+
+def test_serve_workers_refuse_an_unknown_setting_in_one_line(models: Path) -> None:
+    # Each worker loads the models itself; the first to fail says why in one line, no
+    # traceback, before Redis is ever asked (the URL below has nothing listening).
+    result = subprocess.run(
+        [sys.executable, "-m", "midstream", "serve", "--port", "0", "--workers", "2",
+         "--redis", "redis://127.0.0.1:1/0", "--models", str(models), "--setting", "orchestra"],
+        capture_output=True, text=True, timeout=120, check=False)
+    assert result.returncode != 0
+    assert "Traceback" not in result.stderr
+    assert any(line.startswith("midstream: worker:") and "'orchestra'" in line
+               and all(name in line for name in SETTINGS)
+               for line in result.stderr.splitlines()), result.stderr
