@@ -210,6 +210,10 @@ def _load(path: Path) -> _Loaded:
     artifact = ModelArtifact.from_bytes(data, source=str(path))
     summary = dict(artifact.metadata)
     summary.setdefault("hyper_parameters", dict(artifact.hyper_parameters))
+    config = artifact.features.get("config")
+    if isinstance(config, dict) and config.get("settings"):
+        # What a caller may name (serve --setting): DescribeModels shows it with the model.
+        summary.setdefault("settings", list(config["settings"]))
     info = ModelInfo(kind=artifact.kind, name=path.name, format_version=FORMAT_VERSION,
                      labels=artifact.labels, sha256=hashlib.sha256(data).hexdigest(),
                      training_summary=summary)
