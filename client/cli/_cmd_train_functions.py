@@ -13,9 +13,10 @@
 ``midstream train`` (:mod:`midstream.client.cli._cmd_train`) registers the sub-command with
 :func:`add_training_arguments` and :func:`run`. The corpus is anything
 :func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of
-your own transcripts); several corpora are pooled. Given several ``--c1``/``--c2``/
-``--oversample`` values, the combinations are compared by conversation-grouped cross-validation
-on the first ``--cv-subset`` conversations (by id) of each corpus given (or the ``--cv-share``
+your own transcripts); several corpora are pooled, and with ``--setting-features on`` each is
+learnt as a conversation setting a caller can name (``serve --setting``). Given several
+``--c1``/``--c2``/``--oversample``/``--setting-features`` values, the combinations are
+compared by conversation-grouped cross-validation on the first ``--cv-subset`` conversations (by id) of each corpus given (or the ``--cv-share``
 fraction of each, which keeps the final training's mix of corpora), which must be training
 splits; the best is then trained on all of them. The score of a combination is, for one corpus,
 the mean of its gold-segmentation accuracy in the model's own scheme and its coarse accuracy
