@@ -12,19 +12,19 @@
 
 ``midstream train`` (:mod:`midstream.client.cli._cmd_train`) registers the sub-command with
 :func:`add_training_arguments` and :func:`run`. The corpus is anything
-:func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of
-your own transcripts); several corpora are pooled, and with ``--setting-features on`` each is
-learnt as a conversation setting a caller can name (``serve --setting``). Given several
-``--c1``/``--c2``/``--oversample``/``--setting-features`` values, the combinations are
-compared by conversation-grouped cross-validation on the first ``--cv-subset`` conversations (by id) of each corpus given (or the ``--cv-share``
-fraction of each, which keeps the final training's mix of corpora), which must be training
-splits; the best is then trained on all of them. The score of a combination is, for one corpus,
-the mean of its gold-segmentation accuracy in the model's own scheme and its coarse accuracy
-after three received words; for pooled corpora, the mean over the corpora of coarse accuracy,
-coarse macro-F1 over the classes the fold has at least :data:`MIN_SCORED_SUPPORT` gold
-utterances of (gold segmentation: so that a corpus's rare classes count, and every corpus as
-much as another however many utterances it has, while a class a fold holds two of does not
-decide the grid by chance) and the streamed coarse accuracy after three
+:func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of your
+own transcripts); several corpora are pooled, and with ``--setting-features on`` each is learnt as
+a conversation setting a caller can name (``serve --setting``). Given several
+``--c1``/``--c2``/``--oversample``/``--setting-features`` values, the combinations are compared by
+conversation-grouped cross-validation on the first ``--cv-subset`` conversations (by id) of each
+corpus given (or the ``--cv-share`` fraction of each, which keeps the final training's mix of
+corpora), which must be training splits; the best is then trained on all of them. The score of a
+combination is, for one corpus, the mean of its gold-segmentation accuracy in the model's own
+scheme and its coarse accuracy after three received words; for pooled corpora, the mean over the
+corpora of coarse accuracy, coarse macro-F1 over the classes the fold has at least
+:data:`MIN_SCORED_SUPPORT` gold utterances of (gold segmentation: so that a corpus's rare classes
+count, and every corpus as much as another however many utterances it has, while a class a fold
+holds two of does not decide the grid by chance) and the streamed coarse accuracy after three
 received words (what a live caller gets: a setting that helps whole conversations can hurt the
 bounded window a stream is labelled over).
 """
