@@ -116,6 +116,39 @@ class ModelBundle:
                            coarse_tagger=self._coarse_tagger,
                            boundary_model=self._boundary_model)
 
+    @property
+    def settings(self) -> tuple[str, ...]:
+        """The conversation settings the coarse function model has learnt apart (empty for a
+        model trained without them): what :meth:`with_setting` takes."""
+        return self.coarse_tagger.settings
+
+    @property
+    def setting(self) -> str | None:
+        """The setting this bundle's engines label conversations in (``None``: none named)."""
+        return self.coarse_tagger.setting
+
+    def with_setting(self, setting: str | None) -> ModelBundle:
+        """The same loaded models, making engines that label utterance functions as
+        conversations of ``setting`` (one of :attr:`settings`; ``None``: the shared weights
+        alone). A fine-class model that has not learnt the setting keeps its own weights.
+
+        Raises
+        ------
+        InputError
+            The coarse function model has learnt no such setting (the message lists those it
+            has).
+        """
+        coarse = self.coarse_tagger.for_setting(setting)
+        fine = self._function_tagger
+        if self._coarse_tagger is None:
+            fine = coarse
+        elif setting is None or setting in fine.settings:
+            fine = fine.for_setting(setting)
+        return ModelBundle(word_model=self._word_model, function_tagger=fine,
+                           infos=self._infos, decoder=self._decoder, engine=self._engine,
+                           coarse_tagger=coarse if self._coarse_tagger is not None else None,
+                           boundary_model=self._boundary_model)
+
     @staticmethod
     def warm_up() -> None:
         """Compile the decoding kernels now (or load them from their disk cache).
@@ -177,6 +210,10 @@ def _load(path: Path) -> _Loaded:
     artifact = ModelArtifact.from_bytes(data, source=str(path))
     summary = dict(artifact.metadata)
     summary.setdefault("hyper_parameters", dict(artifact.hyper_parameters))
+    config = artifact.features.get("config")
+    if isinstance(config, dict) and config.get("settings"):
+        # What a caller may name (serve --setting): DescribeModels shows it with the model.
+        summary.setdefault("settings", list(config["settings"]))
     info = ModelInfo(kind=artifact.kind, name=path.name, format_version=FORMAT_VERSION,
                      labels=artifact.labels, sha256=hashlib.sha256(data).hexdigest(),
                      training_summary=summary)

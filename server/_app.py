@@ -49,8 +49,8 @@ class MidstreamServer:
         Where to listen and the limits.
     bundle
         Models to serve; ``None`` loads ``config.models_dir`` (or the shipped models) in
-        :meth:`start`. Either way ``config.max_open_words`` and ``config.settle`` apply, also
-        to models loaded later by ``ReloadModels``.
+        :meth:`start`. Either way ``config.max_open_words``, ``config.settle`` and
+        ``config.setting`` apply, also to models loaded later by ``ReloadModels``.
     """
 
     def __init__(self, config: ServerConfig, *, bundle: Bundle | None = None) -> None:
@@ -105,8 +105,10 @@ class MidstreamServer:
         Raises
         ------
         InputError
-            Inconsistent TLS settings, TLS required but not configured, or decoder settings
-            for a given bundle that is not a ``ModelBundle``.
+            Inconsistent TLS settings, TLS required but not configured, decoder settings or a
+            conversation setting for a given bundle that is not a ``ModelBundle``, or a
+            conversation setting the models have not learnt (the message names those they
+            have).
         ModelError
             When the models cannot be loaded.
         UnavailableError
@@ -117,13 +119,13 @@ class MidstreamServer:
         credentials = self._credentials()
         config = self.config
         load = functools.partial(load_bundle, max_open_words=config.max_open_words,
-                                 settle=config.settle)
+                                 settle=config.settle, setting=config.setting)
         bundle = self._bundle
         if bundle is None:
             bundle = await asyncio.to_thread(load, config.models_dir)
         else:
             bundle = tune_bundle(bundle, max_open_words=config.max_open_words,
-                                 settle=config.settle)
+                                 settle=config.settle, setting=config.setting)
         limits = self.config.limits
         interceptors = []
         if self.config.token:
@@ -147,9 +149,12 @@ class MidstreamServer:
         if config.shared_log is not None:
             from midstream.server._journal import SharedLog  # noqa: PLC0415 - see above
 
-            # The models and decoder settings: only they decode a conversation the same.
+            # The models, decoder settings and conversation setting: only they decode a
+            # conversation the same. Without a setting the identity is what it was before
+            # settings existed, so replicas of either version still continue each other's.
             models = (",".join(info.sha256 for info in bundle.describe())
-                      + f";lag={config.max_open_words};settle={config.settle}")
+                      + f";lag={config.max_open_words};settle={config.settle}"
+                      + (f";setting={config.setting}" if config.setting is not None else ""))
             shared = self._shared = SharedLog(config.shared_log, self.metrics.registry,
                                               models=lambda: models,
                                               on_health=self._shared_health)
@@ -192,9 +197,11 @@ class MidstreamServer:
             _log.warning("only some per-word modules are compiled (%s): a stale or partial "
                          "install; reinstall the compiled build or the plain one",
                          ", ".join(compiled_modules()))
-        _log.info("serving on %s:%d (%s, %s build)%s", self.config.host, port,
-                  "TLS" if credentials else "plaintext", build,
-                  f", metrics on port {self._metrics_port}" if self._metrics_port else "")
+        _log.info("serving on %s:%d (%s, %s build)%s, utterance functions in %s", self.config.host,
+                  port, "TLS" if credentials else "plaintext", build,
+                  f", metrics on port {self._metrics_port}" if self._metrics_port else "",
+                  f"setting {config.setting!r}" if config.setting is not None
+                  else "no setting (shared weights)")
 
     def _shared_health(self, healthy: bool) -> None:
         """Report the shared log's state under its own health name (the service still serves

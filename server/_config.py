@@ -195,6 +195,7 @@ class ServerConfig:
     the health check require ``authorization: Bearer <token>`` metadata. ``require_tls`` refuses
     to start without ``tls_cert`` and ``tls_key``. ``grace_s`` bounds a graceful stop.
     ``shared_log`` (a :class:`SharedLogConfig`) makes this server one replica of several.
+    ``setting`` names the conversation setting utterance functions are labelled in.
     """
 
     host: str = "127.0.0.1"
@@ -219,6 +220,10 @@ class ServerConfig:
     died (``docs/deploy.md``); ``None``: everything stays in this process."""
     reuse_port: bool = False
     """Let several processes listen on one port (``SO_REUSEPORT``; ``serve --workers``)."""
+    setting: str | None = None
+    """The conversation setting every conversation's utterance functions are labelled in: one
+    of the corpora the coarse function model learnt apart (``ModelBundle.settings``), also for
+    models loaded later by ``ReloadModels``; ``None``: the shared weights alone."""
 
     def __post_init__(self) -> None:
         if self.max_open_words is not None and self.max_open_words < 0:

@@ -60,16 +60,20 @@ class Bundle(Protocol):
 
 
 def load_bundle(directory: Path | None, *, max_open_words: int | None = None,
-                settle: bool = True) -> Bundle:
+                settle: bool = True, setting: str | None = None) -> Bundle:
     """Load the models in ``directory``, or the shipped default models when it is ``None``.
 
-    ``max_open_words`` and ``settle`` are the decoder's ``lag`` and ``settle`` (see
-    :func:`tune_bundle`). Blocking file I/O: call it off the event loop.
+    ``max_open_words`` and ``settle`` are the decoder's ``lag`` and ``settle``, ``setting`` the
+    conversation setting utterance functions are labelled in (see :func:`tune_bundle`).
+    Blocking file I/O: call it off the event loop.
 
     Raises
     ------
     ModelError
         When a model file is missing, corrupt, truncated, of the wrong kind or a newer format.
+    InputError
+        The coarse function model has learnt no conversation setting ``setting`` (the message
+        names those it has).
     """
     from midstream.models import ModelBundle  # noqa: PLC0415 - the models load only on demand
 
@@ -77,25 +81,33 @@ def load_bundle(directory: Path | None, *, max_open_words: int | None = None,
               else ModelBundle.load_directory(directory))
     # Here, off the event loop, rather than inside the first live word's latency.
     bundle.warm_up()
-    return tune_bundle(bundle, max_open_words=max_open_words, settle=settle)
+    return tune_bundle(bundle, max_open_words=max_open_words, settle=settle, setting=setting)
 
 
-def tune_bundle(bundle: Bundle, *, max_open_words: int | None, settle: bool) -> Bundle:
-    """``bundle`` making engines whose decoders finalise words as asked.
+def tune_bundle(bundle: Bundle, *, max_open_words: int | None, settle: bool,
+                setting: str | None = None) -> Bundle:
+    """``bundle`` making engines whose decoders finalise words as asked and that label
+    utterance functions as conversations of ``setting`` (server-wide: one deployment serves
+    one kind of conversation).
 
-    The defaults (``None``, ``True``) leave any bundle as it is; other values need a
+    The defaults (``None``, ``True``, ``None``) leave any bundle as it is; other values need a
     ``midstream.models.ModelBundle``.
 
     Raises
     ------
     InputError
-        Other values for a bundle that is not a ``ModelBundle``.
+        Other values for a bundle that is not a ``ModelBundle``, or a setting its coarse
+        function model has not learnt (the message names those it has).
     """
-    if max_open_words is None and settle:
+    if max_open_words is None and settle and setting is None:
         return bundle
     from midstream.models import DecoderConfig, ModelBundle  # noqa: PLC0415 - as above
 
     if not isinstance(bundle, ModelBundle):
-        raise InputError("max_open_words and settle need a midstream.models.ModelBundle, not "
-                         f"{type(bundle).__name__}")
+        raise InputError("max_open_words, settle and setting need a "
+                         f"midstream.models.ModelBundle, not {type(bundle).__name__}")
+    if setting is not None:
+        bundle = bundle.with_setting(setting)
+    if max_open_words is None and settle:
+        return bundle
     return bundle.with_decoder(DecoderConfig(lag=max_open_words, settle=settle))

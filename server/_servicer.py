@@ -28,6 +28,7 @@ from midstream import (
     EndReason,
     EventError,
     HypothesisDiff,
+    InputError,
     LimitExceededError,
     MidstreamError,
     ModelError,
@@ -767,8 +768,9 @@ class MidstreamServicer(pb_grpc.MidstreamServicer):
                 raise EventError("field 'directory' is empty")
             try:
                 bundle = await asyncio.to_thread(self._load, Path(request.directory))
-            except (ModelError, NotFoundError) as exc:
-                # Whatever went wrong, the request cannot succeed as the server stands:
+            except (InputError, ModelError, NotFoundError) as exc:
+                # Whatever went wrong (an InputError: the new models lack the server's
+                # conversation setting), the request cannot succeed as the server stands:
                 # FAILED_PRECONDITION, and the models in service keep serving.
                 raise ModelError(f"models not reloaded, the ones in service stay: {exc}") from exc
         except MidstreamError as exc:

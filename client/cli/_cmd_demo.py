@@ -19,6 +19,7 @@ from pathlib import Path
 from midstream import HypothesisUpdate
 from midstream.client._client import Client
 from midstream.client._results import ServerEvent
+from midstream.client.cli._common import add_setting_option
 from midstream.client.cli._demo_script import demo_ctm, demo_events
 from midstream.client.cli._output import Printer
 from midstream.client.cli._records import SentWord
@@ -32,6 +33,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                     "caller books a bicycle repair), showing labels being revised live.")
     parser.add_argument("--models", type=Path, default=None,
                         help="model folder (default: the shipped models)")
+    add_setting_option(parser)
     parser.add_argument("--no-pause", action="store_true",
                         help="send the whole call at once instead of at speaking pace")
     parser.add_argument("--speed", type=float, default=1.0,
@@ -62,7 +64,7 @@ async def _run(args: argparse.Namespace) -> int:
     printer = Printer(sys.stdout, json_lines=False, live=live, clean=args.clean,
                       rates=args.rates)
     server = MidstreamServer(ServerConfig(host="127.0.0.1", port=0, models_dir=args.models,
-                                          grace_s=2.0))
+                                          grace_s=2.0, setting=args.setting))
     await server.start()
     print(f"demo server on 127.0.0.1:{server.port}; an invented call to a bicycle shop "
           "(labels marked after words: fil filler, edt editing term, dm discourse marker, "

@@ -16,8 +16,10 @@ from the shipped function model unless ``--functions-model`` names another, skip
 ``utterance_functions.predicted_segmentation.word_accuracy``: whole conversations replayed
 through the conversation engine, as a live caller would see them. With the shipped models the
 coarse figures are the coarse model's and the ``...swbd42`` figures the 42-class model's;
-``--functions-only`` skips the word model's figures. People get the figures as titled tables
-(:mod:`midstream.client.cli._figures`), scripts every key with ``--json``.
+``--functions-only`` skips the word model's figures. ``--setting NAME`` labels the utterance
+functions (both kinds of figures) as conversations of that setting, one the coarse function
+model learnt apart, and ``--json`` then records it as ``"setting"``. People get the figures as
+titled tables (:mod:`midstream.client.cli._figures`), scripts every key with ``--json``.
 
 ``--as-recognised`` feeds the words as a speech recogniser would: without the word fragments
 transcribers write ("th-"), and with ``--word-error-rate R`` also with seeded substitutions,
@@ -36,6 +38,7 @@ import sys
 from pathlib import Path
 
 from midstream import InputError, NotFoundError
+from midstream.client.cli._common import add_setting_option
 from midstream.client.cli._figures import format_figures
 from midstream.corpora import read_corpus
 from midstream.models import (
@@ -67,6 +70,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
                         help="word model (.tagger); default: the shipped one")
     parser.add_argument("--functions-model", type=Path, default=None,
                         help="utterance-function model (.tagger); default: the shipped one")
+    add_setting_option(parser)
     parser.add_argument("--boundary-model", type=Path, default=None,
                         help="boundary model (.tagger, timing evidence for utterance ends); "
                              "default: the shipped one")
@@ -118,35 +122,49 @@ def run(args: argparse.Namespace) -> int:
         raise InputError(f"{args.corpus}: no conversations (split {args.split!r})")
     if args.words_only and args.functions_only:
         raise InputError("--words-only and --functions-only exclude each other")
+    decoder = DecoderConfig(lag=args.lag, settle=not args.no_settle)
+    bundle = None
+    if not args.words_only:
+        # Before the word figures, which take minutes: an unknown setting is refused at once.
+        fine, coarse = _function_taggers(args.functions_model)
+        bundle = ModelBundle(word_model=model, function_tagger=fine, infos=(),
+                             decoder=decoder,
+                             coarse_tagger=None if fine is coarse else coarse,
+                             boundary_model=boundary).with_setting(args.setting)
+    elif args.setting is not None:
+        raise InputError("--setting names how utterance functions are labelled: it needs "
+                         "the function figures, which --words-only leaves out")
     if args.as_recognised:
         conditions = RecogniserConditions(word_error_rate=args.word_error_rate,
                                           seed=args.error_seed)
         conversations = [as_recognised(c, conditions) for c in conversations]
-    decoder = DecoderConfig(lag=args.lag, settle=not args.no_settle)
     figures: dict[str, float] = {}
     if not args.functions_only:
         figures.update(evaluate_words(conversations, model, config=decoder, progress=True,
                                       boundary=boundary, ticks=args.as_recognised))
-    if not args.words_only:
-        fine, coarse = _function_taggers(args.functions_model)
+    if bundle is not None:
+        fine, coarse = bundle.function_tagger, bundle.coarse_tagger
         figures.update(evaluate_functions(conversations, coarse))
         if fine is not coarse:
             fine_figures = evaluate_functions(conversations, fine, replay=False)
             figures.update({k: v for k, v in fine_figures.items() if ".swbd42." in k})
-        bundle = ModelBundle(word_model=model, function_tagger=fine, infos=(),
-                             decoder=decoder, coarse_tagger=None if fine is coarse else coarse,
-                             boundary_model=boundary)
         figures.update(evaluate_engine(conversations, bundle, ticks=args.as_recognised))
     if args.json:
-        clean = {k: (None if isinstance(v, float) and math.isnan(v) else v)
-                 for k, v in figures.items()}
+        clean: dict[str, float | str | None] = {
+            k: (None if isinstance(v, float) and math.isnan(v) else v)
+            for k, v in figures.items()}
+        if args.setting is not None:
+            # Only when named, so the output of a run without one keeps the keys it always had.
+            clean["setting"] = args.setting
         json.dump(clean, sys.stdout, indent=2, sort_keys=True)
         sys.stdout.write("\n")
     else:
         split = f", split {args.split}" if args.split else ""
         count = len(conversations)
+        setting = (f"; utterance functions labelled in setting {args.setting!r}"
+                   if args.setting is not None else "")
         print(f"{count} conversation{'s' if count != 1 else ''} of {args.corpus}{split}, "
-              "replayed word by word; --json gives every figure by key\n")
+              f"replayed word by word{setting}; --json gives every figure by key\n")
         print(format_figures(figures))
     return 0
 

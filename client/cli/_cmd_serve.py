@@ -7,6 +7,7 @@
     MIDSTREAM_TOKEN=... midstream serve --host 0.0.0.0 --tls-cert c.pem --tls-key k.pem \\
         --require-tls --token-env
     midstream serve --redis redis://10.0.0.7:6379/0 --workers 2     # one replica of several
+    midstream serve --models DIR --setting maptask    # every conversation a task dialogue
 
 The first line on standard output names the address (``serving on HOST:PORT``), so a script
 started with ``--port 0`` can read the port. SIGTERM (and SIGINT) drain: health turns
@@ -35,6 +36,7 @@ from pathlib import Path
 from typing import Final
 
 from midstream import InputError
+from midstream.client.cli._common import add_setting_option
 from midstream.server import (
     IdleSpinners,
     MidstreamServer,
@@ -73,6 +75,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     parser.add_argument("--models", type=Path, default=None, metavar="DIR",
                         help=f"folder of .tagger model files (default ${_MODELS_ENV} or the "
                              "shipped models)")
+    add_setting_option(parser)
     parser.add_argument("--metrics-port", type=int, default=None, metavar="N",
                         help="serve Prometheus metrics over HTTP on this port (default: off)")
     parser.add_argument("--metrics-host", default="127.0.0.1",
@@ -336,6 +339,7 @@ def build_config(args: argparse.Namespace, *, environ: Mapping[str, str] | None 
         max_open_words=args.lag, settle=not args.no_settle,
         shared_log=parse_log_limits(url, args.redis_limit) if url else None,
         reuse_port=args.reuse_port or args.workers > 1,
+        setting=args.setting,
     )
 
 

@@ -12,18 +12,19 @@
 
 ``midstream train`` (:mod:`midstream.client.cli._cmd_train`) registers the sub-command with
 :func:`add_training_arguments` and :func:`run`. The corpus is anything
-:func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of
-your own transcripts); several corpora are pooled. Given several ``--c1``/``--c2``/
-``--oversample`` values, the combinations are compared by conversation-grouped cross-validation
-on the first ``--cv-subset`` conversations (by id) of each corpus given (or the ``--cv-share``
-fraction of each, which keeps the final training's mix of corpora), which must be training
-splits; the best is then trained on all of them. The score of a combination is, for one corpus,
-the mean of its gold-segmentation accuracy in the model's own scheme and its coarse accuracy
-after three received words; for pooled corpora, the mean over the corpora of coarse accuracy,
-coarse macro-F1 over the classes the fold has at least :data:`MIN_SCORED_SUPPORT` gold
-utterances of (gold segmentation: so that a corpus's rare classes count, and every corpus as
-much as another however many utterances it has, while a class a fold holds two of does not
-decide the grid by chance) and the streamed coarse accuracy after three
+:func:`midstream.corpora.read_corpus` reads (SwDA, MRDA, Map Task, or Midstream JSON Lines of your
+own transcripts); several corpora are pooled, and with ``--setting-features on`` each is learnt as
+a conversation setting a caller can name (``serve --setting``). Given several
+``--c1``/``--c2``/``--oversample``/``--setting-features`` values, the combinations are compared by
+conversation-grouped cross-validation on the first ``--cv-subset`` conversations (by id) of each
+corpus given (or the ``--cv-share`` fraction of each, which keeps the final training's mix of
+corpora), which must be training splits; the best is then trained on all of them. The score of a
+combination is, for one corpus, the mean of its gold-segmentation accuracy in the model's own
+scheme and its coarse accuracy after three received words; for pooled corpora, the mean over the
+corpora of coarse accuracy, coarse macro-F1 over the classes the fold has at least
+:data:`MIN_SCORED_SUPPORT` gold utterances of (gold segmentation: so that a corpus's rare classes
+count, and every corpus as much as another however many utterances it has, while a class a fold
+holds two of does not decide the grid by chance) and the streamed coarse accuracy after three
 received words (what a live caller gets: a setting that helps whole conversations can hurt the
 bounded window a stream is labelled over).
 """
@@ -96,6 +97,11 @@ def add_training_arguments(parser: argparse.ArgumentParser) -> None:
                         help="train on each pooled corpus about as many utterances as on the "
                              "largest, by repeating the smaller ones (both values: compared by "
                              "cross-validation)")
+    parser.add_argument("--setting-features", nargs="+", choices=("off", "on"),
+                        default=["off"],
+                        help="learn each corpus as a conversation setting a caller can name "
+                             "(shared features plus a copy per corpus; both values: compared "
+                             "by cross-validation, each corpus scored in its own setting)")
     parser.add_argument("--cv-folds", type=int, default=3,
                         help="folds for comparing several --c1/--c2 values")
     parser.add_argument("--cv-subset", type=int, default=300,
@@ -134,9 +140,10 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
                                      opening=args.opening_features[0] == "on",
                                      lookback=args.lookback_features[0] == "on"),
         oversample=samplings[0], balance=args.balance_corpora[0] == "on",
-        decode_bias=biases[0])
+        decode_bias=biases[0], setting_features=args.setting_features[0] == "on")
     grid = list(itertools.product(args.c1, args.c2, samplings, args.opening_features,
-                                  args.lookback_features, args.balance_corpora))
+                                  args.lookback_features, args.balance_corpora,
+                                  args.setting_features))
     chosen = base
     cv: dict[str, object] = {}
     if len(grid) * len(biases) > 1:
@@ -147,12 +154,13 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
         score = (_cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
                  if len(corpora) == 1 else _pooled_score(corpora))
         best = -1.0
-        for c1, c2, sampling, opening, lookback, balance in grid:
+        for c1, c2, sampling, opening, lookback, balance, setting in grid:
             config = FunctionFeatureConfig(partner=args.partner_features,
                                            opening=opening == "on", lookback=lookback == "on")
             options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2,
                                                  "oversample": sampling, "config": config,
-                                                 "balance": balance == "on"})
+                                                 "balance": balance == "on",
+                                                 "setting_features": setting == "on"})
             results = cross_validate_biases(subset, options, biases, folds=args.cv_folds,
                                             score=score)
             for bias, figures in zip(biases, results, strict=True):
@@ -161,6 +169,7 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
                     ",opening=on" if opening == "on" else "") + (
                     ",lookback=on" if lookback == "on" else "") + (
                     ",balance=on" if balance == "on" else "") + (
+                    ",settings=on" if setting == "on" else "") + (
                     f",decode_bias={_bias_text(bias)}" if bias else "")
                 print(f"cv {name}: " + " ".join(
                     f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
@@ -172,6 +181,7 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
               f"opening={'on' if chosen.config.opening else 'off'} "
               f"lookback={'on' if chosen.config.lookback else 'off'} "
               f"balance={'on' if chosen.balance else 'off'} "
+              f"settings={'on' if chosen.setting_features else 'off'} "
               f"decode_bias={_bias_text(chosen.decode_bias) or '-'}", file=out, flush=True)
     command = "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:])
     artifact = train_function_model(conversations, chosen, command=command)
@@ -252,7 +262,13 @@ def _pooled_score(corpora: Sequence[str]) -> Scorer:
             mine = [c for c in held if c.corpus == corpus]
             if not mine:
                 continue
-            figures = evaluate_functions(mine, tagger)
+            # A model that learnt the corpora as settings is scored as a caller naming the
+            # conversation's setting uses it; its shared weights alone are reported beside.
+            own = tagger.for_setting(corpus) if corpus in tagger.settings else tagger
+            figures = evaluate_functions(mine, own)
+            if own is not tagger:
+                shared = evaluate_functions(mine, tagger, replay=False)
+                result[f"{corpus}.shared_accuracy"] = shared[f"{prefix}.accuracy"]
             accuracy = figures[f"{prefix}.accuracy"]
             macro = figures[f"{prefix}.macro_f1"]
             supported = supported_macro_f1(figures, prefix)

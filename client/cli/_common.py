@@ -43,6 +43,15 @@ def add_server_options(parser: argparse.ArgumentParser) -> None:
                              "(e.g. the server's own self-signed --tls-cert)")
 
 
+def add_setting_option(parser: argparse.ArgumentParser) -> None:
+    """``--setting NAME`` for commands that label utterance functions with local models."""
+    parser.add_argument("--setting", metavar="NAME", default=None,
+                        help="label utterance functions as conversations of this setting: one "
+                             "of the corpora the coarse function model was trained on as "
+                             "settings (an unknown name is refused with the model's list); "
+                             "default: none, the shared weights alone")
+
+
 def read_ca(path: Path | None) -> bytes | None:
     """The PEM bytes of a ``--ca`` file (``None`` without one).
 

@@ -28,7 +28,7 @@ import time
 from multiprocessing.context import SpawnProcess
 from typing import Any
 
-from midstream import UnavailableError
+from midstream import MidstreamError, UnavailableError
 from midstream.server import IdleSpinners, ServerConfig, run_server_loop
 
 _log = logging.getLogger(__name__)
@@ -59,8 +59,14 @@ def _worker(config: ServerConfig, ready: multiprocessing.connection.Connection,
     logging.basicConfig(level=options.pop("log_level"),
                         format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     spin = options.pop("spin_idle_cores")
-    with IdleSpinners() if spin else contextlib.nullcontext():
-        sys.exit(run_server_loop(serve(config, on_ready=ready.send, **options)))
+    try:
+        with IdleSpinners() if spin else contextlib.nullcontext():
+            sys.exit(run_server_loop(serve(config, on_ready=ready.send, **options)))
+    except MidstreamError as exc:
+        # One line, as the command itself reports a bad option (an unknown --setting, a
+        # model folder that does not load), above the supervisor's own line.
+        print(f"midstream: worker: {exc}", file=sys.stderr, flush=True)
+        sys.exit(1)
 
 
 def _reserve_port(host: str) -> socket.socket:

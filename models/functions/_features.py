@@ -61,6 +61,13 @@ class FunctionFeatureConfig:
         "okay" or "so" after the partner's turn (Map Task's acknowledge then check moves, MRDA's
         floor holders), and in a meeting the previous segment is often the same speaker's. Off
         in models trained before it existed.
+    settings
+        The conversation settings (training corpora, by their ``Conversation.corpus`` name)
+        the model holds a second, setting-only copy of every feature for (:func:`setting_copies`).
+        A tagger told a conversation's setting adds that copy's weights to the shared ones
+        (:meth:`FunctionTagger.for_setting`); one told none uses the shared weights alone,
+        which training fits to work without a copy too. Empty in models trained without
+        ``--setting-features``.
     """
 
     trigrams: bool = True
@@ -69,24 +76,63 @@ class FunctionFeatureConfig:
     partner: bool = False
     opening: bool = False
     lookback: bool = False
+    settings: tuple[str, ...] = ()
 
-    def to_json(self) -> dict[str, bool]:
+    def to_json(self) -> dict[str, object]:
         return {"trigrams": self.trigrams, "previous": self.previous,
                 "complete_flag": self.complete_flag, "partner": self.partner,
-                "opening": self.opening, "lookback": self.lookback}
+                "opening": self.opening, "lookback": self.lookback,
+                "settings": list(self.settings)}
 
     @classmethod
     def from_json(cls, data: Mapping[str, object]) -> FunctionFeatureConfig:
         known = {"trigrams", "previous", "complete_flag", "partner", "opening", "lookback"}
-        unknown = set(data) - known
+        unknown = set(data) - known - {"settings"}
         if unknown:
             raise ModelError(f"unknown function feature settings {sorted(unknown)}")
         values: dict[str, bool] = {}
         for key, value in data.items():
+            if key == "settings":
+                continue
             if not isinstance(value, bool):
                 raise ModelError(f"function feature setting {key!r} must be true or false")
             values[key] = value
-        return cls(**values)
+        settings = data.get("settings", [])
+        if not isinstance(settings, list) or not all(
+                isinstance(name, str) and name and SETTING_SEPARATOR not in name
+                for name in settings):
+            raise ModelError("function model 'settings' must be a list of non-empty names "
+                             f"without {SETTING_SEPARATOR!r}")
+        return cls(**values, settings=tuple(settings))
+
+
+#: Opens the name of a setting-only feature copy: no shared feature name starts with it.
+SETTING_MARK = "@"
+#: Ends the setting's name in a feature copy's name (``@maptask|w0=which``).
+SETTING_SEPARATOR = "|"
+
+
+def setting_prefix(setting: str) -> str:
+    """The prefix of the feature copies of ``setting``."""
+    return f"{SETTING_MARK}{setting}{SETTING_SEPARATOR}"
+
+
+def setting_copies(feats: Features, setting: str) -> Features:
+    """``feats`` with a copy of each feature named for ``setting`` (a new dictionary).
+
+    The copies let one pooled model learn where a setting's conventions differ from the others'
+    (Daumé III 2007, "Frustratingly easy domain adaptation": shared plus per-domain copies)
+    while the shared weights still serve a conversation of no known setting.
+
+    Examples
+    --------
+    >>> setting_copies({"w0=so": 1.0}, "task")
+    {'w0=so': 1.0, '@task|w0=so': 1.0}
+    """
+    prefix = setting_prefix(setting)
+    out = dict(feats)
+    out.update((prefix + name, value) for name, value in feats.items())
+    return out
 
 
 def _length_bucket(n: int) -> str:

@@ -67,12 +67,18 @@ class ChainInference:
     of its own, so one instance may serve any number of threads.
     """
 
-    def __init__(self, crf: CrfTagger, group_of: Sequence[int]) -> None:
+    def __init__(self, crf: CrfTagger, group_of: Sequence[int], *,
+                 copies: str | None = None) -> None:
         self._crf = crf
+        self._copies = copies
         weights = crf.weights()
-        self.attributes: Mapping[str, int] = weights.attributes
+        attributes: Mapping[str, int] = weights.attributes
+        state = weights.state
+        if copies is not None:
+            attributes, state = _folded(attributes, state, copies)
+        self.attributes = attributes
         # One all-zero last row, gathered when an utterance has no known attribute at all.
-        self._state: FloatArray = np.vstack([weights.state, np.zeros((1, len(crf.labels)))])
+        self._state: FloatArray = np.vstack([state, np.zeros((1, len(crf.labels)))])
         self._transitions: FloatArray = weights.transitions
         # Exponentiated one by one with the C library's exp, as crfsuite does.
         self._exp_transitions: FloatArray = np.array(
@@ -140,5 +146,39 @@ class ChainInference:
     def reference(self, xseq: Sequence[Mapping[str, float]]) -> tuple[str, dict[str, float]]:
         """crfsuite's Viterbi label and marginals at the last position of ``xseq`` (one
         feature dictionary per position): what :meth:`end_step` is held to."""
-        labels, marginals = self._crf.tag_with_marginals(list(xseq))
+        labels, marginals = self._crf.tag_with_marginals(self.with_copies(xseq))
         return labels[-1], marginals
+
+    def with_copies(self, xseq: Sequence[Mapping[str, float]]) -> list[Mapping[str, float]]:
+        """``xseq`` as crfsuite must see it: each position's names, then their setting copies
+        (the names :meth:`rows` folds together), when this chain scores a setting."""
+        prefix = self._copies
+        if prefix is None:
+            return list(xseq)
+        return [{**feats, **{prefix + name: value for name, value in feats.items()}}
+                for feats in xseq]
+
+
+def _folded(attributes: Mapping[str, int], state: FloatArray,
+            prefix: str) -> tuple[dict[str, int], FloatArray]:
+    """Attributes and state weights where each shared attribute ``a`` also carries the weights
+    of its copy ``prefix + a``, so that a chain fed only shared names scores what crfsuite
+    scores on the names with their copies added (``setting_copies``), and the per-word work
+    stays one lookup per name. A copy whose shared attribute has no weight (L1 dropped it)
+    becomes a row of its own under the shared name; other settings' copies are left out, as no
+    shared name reaches them.
+    """
+    rows: dict[str, list[int]] = {}
+    for name, row in attributes.items():
+        if name.startswith(prefix):
+            rows.setdefault(name[len(prefix):], []).append(row)
+        elif not name.startswith(prefix[0]):
+            # The shared weight first, as crfsuite adds it before the copy's.
+            rows.setdefault(name, []).insert(0, row)
+    folded = np.zeros((len(rows), state.shape[1]))
+    names: dict[str, int] = {}
+    for index, (name, own) in enumerate(rows.items()):
+        names[name] = index
+        for row in own:
+            folded[index] += state[row]
+    return names, folded

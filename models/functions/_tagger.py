@@ -40,6 +40,7 @@ from midstream.models.functions._features import (
     chain_partners,
     earlier_partner,
     sequence_features,
+    setting_prefix,
     utterance_features,
 )
 from midstream.models.functions._inference import ChainInference, EndStep, FloatArray
@@ -256,13 +257,19 @@ class FunctionTagger:
     """
 
     def __init__(self, crf: CrfTagger, *, scheme: str, config: FunctionFeatureConfig,
-                 context: int = DEFAULT_CONTEXT, coarse_from: str = "sum") -> None:
+                 context: int = DEFAULT_CONTEXT, coarse_from: str = "sum",
+                 setting: str | None = None) -> None:
         if scheme not in SCHEMES:
             raise ModelError(f"unknown function scheme {scheme!r} (known: {', '.join(SCHEMES)})")
         if coarse_from not in COARSE_FROM:
             raise InputError(f"coarse_from must be one of {COARSE_FROM}, got {coarse_from!r}")
         if context < 0:
             raise InputError(f"context must be >= 0 utterances, got {context}")
+        if setting is not None and setting not in config.settings:
+            known = ", ".join(config.settings) or "none: trained without --setting-features"
+            raise InputError(f"the function model has learnt no setting {setting!r} "
+                             f"(its settings: {known})")
+        self._setting = setting
         self._crf = crf
         self._scheme = scheme
         self._config = config
@@ -275,7 +282,11 @@ class FunctionTagger:
         # a function no label maps to can never be chosen.
         self._group_list: list[int] = [self._functions.index(self._coarse[label])
                                        for label in crf.labels]
-        self._chain = ChainInference(crf, self._group_list)
+        # A setting's copies are folded into the shared rows once, here, so labelling in a
+        # setting costs nothing per word.
+        self._chain = ChainInference(
+            crf, self._group_list,
+            copies=setting_prefix(setting) if setting is not None else None)
         self._opening = self._chain.rows({"prev=none": 1.0})
         self._shapes: dict[tuple[int, int, bool, str], tuple[int, ...]] = {}
         self._carries: _Lru[tuple[UtteranceView, ...], _Carry] = _Lru(WINDOW_CACHE_SIZE)
@@ -345,6 +356,31 @@ class FunctionTagger:
     @property
     def labels(self) -> tuple[str, ...]:
         return self._crf.labels
+
+    @property
+    def settings(self) -> tuple[str, ...]:
+        """The conversation settings the model has learnt apart (``FunctionFeatureConfig``)."""
+        return self._config.settings
+
+    @property
+    def setting(self) -> str | None:
+        """The setting this tagger labels in; ``None``: the shared weights alone."""
+        return self._setting
+
+    def for_setting(self, setting: str | None) -> FunctionTagger:
+        """A tagger over the same model that labels conversations of ``setting`` (one of
+        :attr:`settings`; ``None`` for none), with caches of its own.
+
+        Raises
+        ------
+        InputError
+            The model has learnt no such setting.
+        """
+        if setting == self._setting:
+            return self
+        return FunctionTagger(self._crf, scheme=self._scheme, config=self._config,
+                              context=self._context, coarse_from=self._coarse_from,
+                              setting=setting)
 
     @property
     def context(self) -> int:
@@ -777,7 +813,7 @@ class FunctionTagger:
             check_view(view)
         if not utterances:
             return []
-        xseq = sequence_features(utterances, self._config)
+        xseq = self._chain.with_copies(sequence_features(utterances, self._config))
         labels, _ = self._crf.tag_with_confidence(xseq)
         marginals = self._crf.marginals(xseq)
         return [self._guess(label, m) for label, m in zip(labels, marginals, strict=True)]

@@ -23,9 +23,11 @@ from midstream import SWBD42_CLASSES, Conversation, InputError, ModelError, Utte
 from midstream.models._artifact import ModelArtifact
 from midstream.models._crf import shift_state_weights, train_crf
 from midstream.models.functions._features import (
+    SETTING_SEPARATOR,
     Features,
     FunctionFeatureConfig,
     chain_partners,
+    setting_copies,
     utterance_features,
 )
 from midstream.models.functions._tagger import SCHEMES, FunctionTagger
@@ -79,6 +81,14 @@ class FunctionTrainingOptions:
         crfsuite and the streaming tagger decode with it alike). A prior shift towards rare
         classes that L-BFGS's likelihood undervalues, chosen by cross-validation
         (:func:`cross_validate_biases`), never on held-out data.
+    setting_features
+        Learn each training corpus as a conversation setting
+        (:attr:`FunctionFeatureConfig.settings`): a seeded :data:`SETTING_SHARE` of the training
+        sequences carry, beside every feature, a copy named for their corpus, so the copies'
+        weights learn where a corpus's conventions differ (what counts as a clarification
+        request, an answer, a floor grab) and the shared weights, trained on every sequence and
+        alone on the rest, still label a conversation of no known setting. The trained model's
+        ``config.settings`` lists the corpora.
     """
 
     scheme: str = "swbd42"
@@ -93,6 +103,7 @@ class FunctionTrainingOptions:
     oversample: tuple[tuple[str, int], ...] = ()
     balance: bool = False
     decode_bias: tuple[tuple[str, float], ...] = ()
+    setting_features: bool = False
 
     def to_json(self) -> dict[str, object]:
         return {
@@ -102,7 +113,15 @@ class FunctionTrainingOptions:
             "oversample": {label: copies for label, copies in self.oversample},
             "balance": self.balance,
             "decode_bias": {label: shift for label, shift in self.decode_bias},
+            "setting_features": self.setting_features,
         }
+
+
+#: Share of the training sequences that carry their corpus's setting copies with
+#: :attr:`FunctionTrainingOptions.setting_features`: the others train the shared weights to
+#: label on their own, as for a conversation of no known setting (common practice, no source;
+#: a half was the first value tried, measured in the coarse model card, not tuned).
+SETTING_SHARE = 0.5
 
 
 #: Most times :attr:`FunctionTrainingOptions.balance` repeats a small corpus, so that a handful
@@ -195,6 +214,7 @@ def build_sequences(conversations: Iterable[Conversation],
     for conversation in conversations:
         if not conversation.utterances:
             continue
+        first = len(xseqs)
         views = conversation_views(conversation)
         labels = [_label(conversation, i, options.scheme) for i in range(len(views))]
         previous: UtteranceView | None = None
@@ -226,6 +246,11 @@ def build_sequences(conversations: Iterable[Conversation],
                 xseqs.append(_augmented(conversation, views, rng, options.augment,
                                         options.config))
                 yseqs.append(labels)
+        if options.setting_features:
+            rng = random.Random(f"{options.seed}:setting:{conversation.id}")
+            for k in range(first, len(xseqs)):
+                if rng.random() < SETTING_SHARE:
+                    xseqs[k] = [setting_copies(feats, conversation.corpus) for feats in xseqs[k]]
     return xseqs, yseqs
 
 
@@ -284,6 +309,12 @@ def train_function_model(conversations: Iterable[Conversation],
         The CRF trainer failed.
     """
     conversations = list(conversations)
+    if options.setting_features:
+        bad = sorted({c.corpus for c in conversations
+                      if not c.corpus or SETTING_SEPARATOR in c.corpus})
+        if bad:
+            raise InputError(f"cannot learn corpus names {bad} as settings: a setting's name is "
+                             f"not empty and holds no {SETTING_SEPARATOR!r}")
     started = time.monotonic()
     xseqs, yseqs = build_sequences(conversations, options)
     if not xseqs:
@@ -293,6 +324,9 @@ def train_function_model(conversations: Iterable[Conversation],
     crf = train_crf(xseqs, yseqs, c1=options.c1, c2=options.c2, min_freq=options.min_freq,
                     max_iterations=options.max_iterations)
     crf = shift_state_weights(crf, BIAS_FEATURE, dict(options.decode_bias))
+    config = options.config
+    if options.setting_features:
+        config = replace(config, settings=tuple(sorted({c.corpus for c in conversations})))
     seconds = time.monotonic() - started
     counts: dict[str, int] = {}
     for conversation in conversations:
@@ -302,7 +336,7 @@ def train_function_model(conversations: Iterable[Conversation],
         kind="utterance_functions",
         labels=tuple(labels),
         crf=crf,
-        features={"scheme": options.scheme, "config": options.config.to_json(),
+        features={"scheme": options.scheme, "config": config.to_json(),
                   "coarse_from": options.coarse_from},
         hyper_parameters=options.to_json(),
         metadata={
