@@ -126,6 +126,7 @@ class MidstreamServer:
         else:
             bundle = tune_bundle(bundle, max_open_words=config.max_open_words,
                                  settle=config.settle, setting=config.setting)
+        setting = _setting_of(bundle)
         limits = self.config.limits
         interceptors = []
         if self.config.token:
@@ -152,9 +153,11 @@ class MidstreamServer:
             # The models, decoder settings and conversation setting: only they decode a
             # conversation the same. Without a setting the identity is what it was before
             # settings existed, so replicas of either version still continue each other's.
+            # The setting is the bundle's own, so a given bundle already set to one counts
+            # even when the config names none.
             models = (",".join(info.sha256 for info in bundle.describe())
                       + f";lag={config.max_open_words};settle={config.settle}"
-                      + (f";setting={config.setting}" if config.setting is not None else ""))
+                      + (f";setting={setting}" if setting is not None else ""))
             shared = self._shared = SharedLog(config.shared_log, self.metrics.registry,
                                               models=lambda: models,
                                               on_health=self._shared_health)
@@ -200,7 +203,7 @@ class MidstreamServer:
         _log.info("serving on %s:%d (%s, %s build)%s, utterance functions in %s", self.config.host,
                   port, "TLS" if credentials else "plaintext", build,
                   f", metrics on port {self._metrics_port}" if self._metrics_port else "",
-                  f"setting {config.setting!r}" if config.setting is not None
+                  f"setting {setting!r}" if setting is not None
                   else "no setting (shared weights)")
 
     def _shared_health(self, healthy: bool) -> None:
@@ -256,3 +259,10 @@ class MidstreamServer:
     async def __aexit__(self, exc_type: type[BaseException] | None,
                         exc: BaseException | None, tb: TracebackType | None) -> None:
         await self.stop()
+
+
+def _setting_of(bundle: Bundle) -> str | None:
+    """The conversation setting ``bundle`` labels in (``None`` for a bundle without one, or of
+    a kind that has no settings)."""
+    setting = getattr(bundle, "setting", None)
+    return setting if isinstance(setting, str) else None

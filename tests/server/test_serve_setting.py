@@ -134,9 +134,12 @@ async def test_a_replica_in_another_setting_refuses_to_continue_a_conversation(
     # it would relabel the conversation halfway, so the log's model identity includes it.
     bundle = ModelBundle.load_directory(models)
     shared = SharedLogConfig(url=redis_server.url)
-    owner, same, other = [await start_server(limits=LIMITS, given=bundle, shared_log=shared,
-                                             setting=setting)
-                          for setting in ("workshop", "workshop", "choir")]
+    owner, other = [await start_server(limits=LIMITS, given=bundle, shared_log=shared,
+                                       setting=setting) for setting in ("workshop", "choir")]
+    # A library caller may hand over a bundle already set to a setting and name none in the
+    # config: the identity is the bundle's own, so this replica is the owner's equal.
+    same = await start_server(limits=LIMITS, given=bundle.with_setting("workshop"),
+                              shared_log=shared)
     caller = Caller(owner.stub)
     await caller.open("call-1")
     await caller.send(words_event(spoken("w0", DISPUTED, start=0.0)))
