@@ -7,10 +7,9 @@ under a second learns the patterns the tests rely on.
 
 from __future__ import annotations
 
-import dataclasses
 import random
 
-from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceFunction, Word
+from midstream import Conversation, DisfluencyLabel, Utterance, Word
 from midstream._schemes import coarse_function
 from midstream.models._artifact import ModelArtifact
 from midstream.models.functions._features import FunctionFeatureConfig
@@ -80,30 +79,3 @@ def tiny_model(scheme: str = "swbd42", *, augment: float = 0.5,
                                                                    opening=opening,
                                                                    lookback=lookback))
     return train_function_model(invented_corpus(20), options)
-
-
-def settings_corpora(n: int, start: int = 0) -> list[Conversation]:
-    """Invented conversations of two settings that disagree by construction: in ``desk`` an
-    "uh-huh" after a statement is an acknowledgement, as everywhere above; in ``yard`` the same
-    words are coded agreement (two corpora whose manuals draw the line apart)."""
-    out: list[Conversation] = []
-    for seed in range(start, start + n):
-        conversation = invented_conversation(seed)
-        setting = "desk" if seed % 2 else "yard"
-        utterances = conversation.utterances
-        if setting == "yard":
-            utterances = tuple(
-                dataclasses.replace(u, function=UtteranceFunction.AGREEMENT)
-                if u.function is UtteranceFunction.ACKNOWLEDGEMENT else u for u in utterances)
-        out.append(dataclasses.replace(conversation, corpus=setting, utterances=utterances,
-                                       id=f"{setting}{seed:03d}"))
-    return out
-
-
-def settings_model(*, partner: bool = True, opening: bool = True) -> ModelArtifact:
-    """A coarse model that learnt :func:`settings_corpora`'s two settings apart."""
-    options = FunctionTrainingOptions(scheme="coarse", c1=0.01, c2=0.01, min_freq=1,
-                                      max_iterations=60, augment=0.5, setting_features=True,
-                                      config=FunctionFeatureConfig(partner=partner,
-                                                                   opening=opening))
-    return train_function_model(settings_corpora(40), options)

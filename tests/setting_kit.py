@@ -18,6 +18,7 @@ from midstream.corpora import write_jsonl
 from midstream.models.training import (
     FunctionFeatureConfig,
     FunctionTrainingOptions,
+    ModelArtifact,
     save_artifact,
     train_function_model,
 )
@@ -66,17 +67,22 @@ def setting_corpora(count: int = 12) -> list[Conversation]:
     return [setting_conversation(corpus, seed) for corpus in SETTINGS for seed in range(count)]
 
 
+def setting_model(*, config: FunctionFeatureConfig | None = None,
+                  augment: float = 0.0) -> ModelArtifact:
+    """A coarse function model trained now on :func:`setting_corpora` with setting features
+    (a second or two); ``config`` and ``augment`` let a test reach more of the feature paths."""
+    options = FunctionTrainingOptions(scheme="coarse", c1=0.0, c2=0.01, min_freq=1,
+                                      max_iterations=30, augment=augment, setting_features=True,
+                                      config=config or FunctionFeatureConfig())
+    return train_function_model(setting_corpora(), options)
+
+
 def write_setting_models(folder: Path) -> Path:
-    """A model folder: the shipped word model beside a coarse function model trained now on
-    :func:`setting_corpora` with setting features (a second or two)."""
+    """A model folder: the shipped word model beside :func:`setting_model`."""
     folder.mkdir(parents=True, exist_ok=True)
     shipped = Path(__file__).resolve().parents[1] / "models" / "weights" / "words.tagger"
     shutil.copyfile(shipped, folder / "words.tagger")
-    options = FunctionTrainingOptions(scheme="coarse", c1=0.0, c2=0.01, min_freq=1,
-                                      max_iterations=30, augment=0.0, setting_features=True,
-                                      config=FunctionFeatureConfig())
-    artifact = train_function_model(setting_corpora(), options)
-    save_artifact(artifact, folder / "functions-coarse.tagger")
+    save_artifact(setting_model(), folder / "functions-coarse.tagger")
     return folder
 
 

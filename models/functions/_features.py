@@ -86,8 +86,9 @@ class FunctionFeatureConfig:
 
     @classmethod
     def from_json(cls, data: Mapping[str, object]) -> FunctionFeatureConfig:
-        known = {"trigrams", "previous", "complete_flag", "partner", "opening", "lookback"}
-        unknown = set(data) - known - {"settings"}
+        known = {"trigrams", "previous", "complete_flag", "partner", "opening", "lookback",
+                 "settings"}
+        unknown = set(data) - known
         if unknown:
             raise ModelError(f"unknown function feature settings {sorted(unknown)}")
         values: dict[str, bool] = {}

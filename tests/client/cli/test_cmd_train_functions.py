@@ -6,7 +6,7 @@ import dataclasses
 from pathlib import Path
 
 import pytest
-from function_kit import invented_corpus, settings_corpora
+from function_kit import invented_corpus
 from midstream import InputError
 from midstream.client.cli._cmd_train_functions import (
     MIN_SCORED_SUPPORT,
@@ -19,6 +19,7 @@ from midstream.models._artifact import load_artifact
 from midstream.models.functions._eval import classification_figures
 from midstream.models.functions._tagger import FunctionTagger
 from midstream.models.functions._views import UtteranceView
+from setting_kit import SETTINGS, write_setting_transcripts
 from sklearn.metrics import f1_score
 
 
@@ -125,16 +126,11 @@ def test_a_cv_share_keeps_each_corpus_in_proportion() -> None:
 
 def test_settings_are_compared_by_cross_validation_each_corpus_scored_in_its_own(
         tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    # Two invented corpora that code the same backchannel apart (function_kit): a model that
+    # Two invented corpora that code the same lone "right" apart (setting_kit): a model that
     # learns them as settings can label both right, a pooled one only one of them.
-    paths = []
-    for setting in ("desk", "yard"):
-        path = tmp_path / f"{setting}.jsonl"
-        with path.open("w", encoding="utf-8") as stream:
-            write_jsonl([c for c in settings_corpora(24) if c.corpus == setting], stream)
-        paths.append(str(path))
+    transcripts = write_setting_transcripts(tmp_path / "calls.jsonl", count=12)
     out = tmp_path / "functions.tagger"
-    code = main(["train", "functions", *paths, "--scheme", "coarse", "--min-freq", "1",
+    code = main(["train", "functions", str(transcripts), "--scheme", "coarse", "--min-freq", "1",
                  "--max-iterations", "30", "--setting-features", "off", "on",
                  "--cv-folds", "2", "--cv-subset", "0", "--out", str(out)])
     assert code == 0
@@ -143,6 +139,6 @@ def test_settings_are_compared_by_cross_validation_each_corpus_scored_in_its_own
     grid = artifact.metadata["cross_validation"]["grid"]
     on, off = grid["c1=0.1,c2=0.01,settings=on"], grid["c1=0.1,c2=0.01"]
     # The shared weights alone are reported beside the setting's own figures.
-    assert "desk.shared_accuracy" in on and "desk.shared_accuracy" not in off
+    assert "choir.shared_accuracy" in on and "choir.shared_accuracy" not in off
     assert on["score"] > off["score"]
-    assert FunctionTagger.from_artifact(artifact).settings == ("desk", "yard")
+    assert FunctionTagger.from_artifact(artifact).settings == SETTINGS
