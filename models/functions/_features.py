@@ -118,7 +118,7 @@ def setting_prefix(setting: str) -> str:
     return f"{SETTING_MARK}{setting}{SETTING_SEPARATOR}"
 
 
-def setting_copies(feats: Features, setting: str) -> Features:
+def setting_copies(feats: Mapping[str, float], setting: str) -> Features:
     """``feats`` with a copy of each feature named for ``setting`` (a new dictionary).
 
     The copies let one pooled model learn where a setting's conventions differ from the others'

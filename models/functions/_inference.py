@@ -27,6 +27,7 @@ import numpy as np
 import numpy.typing as npt
 from midstream.models._crf import CrfTagger
 from midstream.models._lattice import chain_carry, chain_end_step
+from midstream.models.functions._features import SETTING_MARK, setting_copies, setting_prefix
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -68,14 +69,14 @@ class ChainInference:
     """
 
     def __init__(self, crf: CrfTagger, group_of: Sequence[int], *,
-                 copies: str | None = None) -> None:
+                 setting: str | None = None) -> None:
         self._crf = crf
-        self._copies = copies
+        self._setting = setting
         weights = crf.weights()
         attributes: Mapping[str, int] = weights.attributes
         state = weights.state
-        if copies is not None:
-            attributes, state = _folded(attributes, state, copies)
+        if setting is not None:
+            attributes, state = _folded(attributes, state, setting_prefix(setting))
         self.attributes = attributes
         # One all-zero last row, gathered when an utterance has no known attribute at all.
         self._state: FloatArray = np.vstack([state, np.zeros((1, len(crf.labels)))])
@@ -152,11 +153,10 @@ class ChainInference:
     def with_copies(self, xseq: Sequence[Mapping[str, float]]) -> list[Mapping[str, float]]:
         """``xseq`` as crfsuite must see it: each position's names, then their setting copies
         (the names :meth:`rows` folds together), when this chain scores a setting."""
-        prefix = self._copies
-        if prefix is None:
+        setting = self._setting
+        if setting is None:
             return list(xseq)
-        return [{**feats, **{prefix + name: value for name, value in feats.items()}}
-                for feats in xseq]
+        return [setting_copies(feats, setting) for feats in xseq]
 
 
 def _folded(attributes: Mapping[str, int], state: FloatArray,
@@ -172,7 +172,7 @@ def _folded(attributes: Mapping[str, int], state: FloatArray,
     for name, row in attributes.items():
         if name.startswith(prefix):
             rows.setdefault(name[len(prefix):], []).append(row)
-        elif not name.startswith(prefix[0]):
+        elif not name.startswith(SETTING_MARK):
             # The shared weight first, as crfsuite adds it before the copy's.
             rows.setdefault(name, []).insert(0, row)
     folded = np.zeros((len(rows), state.shape[1]))

@@ -40,7 +40,6 @@ from midstream.models.functions._features import (
     chain_partners,
     earlier_partner,
     sequence_features,
-    setting_prefix,
     utterance_features,
 )
 from midstream.models.functions._inference import ChainInference, EndStep, FloatArray
@@ -284,9 +283,7 @@ class FunctionTagger:
                                        for label in crf.labels]
         # A setting's copies are folded into the shared rows once, here, so labelling in a
         # setting costs nothing per word.
-        self._chain = ChainInference(
-            crf, self._group_list,
-            copies=setting_prefix(setting) if setting is not None else None)
+        self._chain = ChainInference(crf, self._group_list, setting=setting)
         self._opening = self._chain.rows({"prev=none": 1.0})
         self._shapes: dict[tuple[int, int, bool, str], tuple[int, ...]] = {}
         self._carries: _Lru[tuple[UtteranceView, ...], _Carry] = _Lru(WINDOW_CACHE_SIZE)
