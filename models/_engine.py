@@ -20,7 +20,9 @@ share between threads or tasks; create one per conversation.
 
 from __future__ import annotations
 
-from collections import OrderedDict
+import bisect
+import contextlib
+from collections import OrderedDict, deque
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
@@ -37,7 +39,7 @@ from midstream import (
     normalise_token,
 )
 from midstream.models.functions._tagger import FunctionGuess, FunctionTagger, WordsMemo
-from midstream.models.functions._views import UtteranceView, build_view
+from midstream.models.functions._views import UtteranceView, build_view, partner_gap
 from midstream.models.words._decoder import ChannelDecoder, TokenState
 
 
@@ -110,6 +112,17 @@ class _Channel:
     #: The conversation's word count when this speaker's last word was added (0: none yet).
     last_added: int = 0
     utterances: list[_OpenUtterance] = field(default_factory=list)
+    #: ``(start, end)`` of the speaker's last timed words, for the other speakers' views'
+    #: partner gap (bounded: :data:`RECENT_TIMES`).
+    times: deque[tuple[float, float]] = field(
+        default_factory=lambda: deque(maxlen=RECENT_TIMES))
+
+
+#: Timed words of each speaker kept for the partner gap of the other speakers' utterances
+#: (:func:`~midstream.models.functions._views.partner_gap`). An utterance's gap reads the last
+#: word each other speaker began before it; only an utterance still open while another speaker
+#: says more than this many words could miss it (it would read as no partner yet).
+RECENT_TIMES = 256
 
 
 class ConversationEngine:
@@ -141,6 +154,10 @@ class ConversationEngine:
         self.silence_marks = silence_marks
         self._functions = function_tagger
         self._coarse = coarse_tagger
+        # The partner gap is read only for a model that uses it: it costs a search of the other
+        # speakers' recent times whenever an utterance's view is rebuilt.
+        self._timed = function_tagger.config.timing or (
+            coarse_tagger is not None and coarse_tagger.config.timing)
         self._config = config or EngineConfig()
         self._channels: dict[str, _Channel] = {}
         self._by_id: dict[str, _Slot] = {}
@@ -220,6 +237,8 @@ class ConversationEngine:
                     break
         if word.end is not None:
             self._last_end[word.speaker] = word.end
+        if start is not None:
+            channel.times.append(_times(slot))
         # The other speakers' words since this speaker's previous word, as training counts them
         # (0 before a channel's first word).
         self._words_added += 1
@@ -248,7 +267,12 @@ class ConversationEngine:
         if token is None:
             raise EventError(f"word {word_id!r}: replacement text has no speech content")
         slot.text = token.text
+        if slot.start is not None:
+            _forget_times(channel_times=self._channels[slot.speaker].times, slot=slot)
         slot.start, slot.end = word.start, word.end
+        if slot.start is not None:
+            # A revised word's times stand where its old times stood, in order of start.
+            _insert_times(self._channels[slot.speaker].times, _times(slot))
         slot.fragment = token.fragment or word.fragment
         channel = self._channels[slot.speaker]
         clean = _clean_word(word, token.text, slot.fragment)
@@ -268,6 +292,8 @@ class ConversationEngine:
         slot = self._open_slot(word_id, "withdraw")
         channel = self._channels[slot.speaker]
         states = channel.decoder.withdraw(slot.key)
+        if slot.start is not None:
+            _forget_times(channel_times=channel.times, slot=slot)
         del channel.slots[slot.key]
         channel.open_keys.remove(slot.key)
         channel.ends.discard(slot.key)
@@ -475,8 +501,11 @@ class ConversationEngine:
             word_ids = tuple([s.word_id for s in slots])
             clean = tuple([s.text for s in slots if s.label not in REMOVED_FROM_CLEAN_TEXT])
             # The view training saw (fragments out): one builder for both.
+            first = slots[0].start
             view = build_view(channel.speaker, [(s.text, s.fragment, s.label) for s in slots],
-                              complete=ended)
+                              complete=ended, gap=None if first is None or not self._timed
+                              else partner_gap(first, [c.times for c in self._channels.values()
+                                                       if c is not channel]))
             if entry.view != view or entry.word_ids != word_ids or (
                     final and not (entry.published and entry.published.final)):
                 guess = self._guess(view) if view.words else self._empty_guess
@@ -544,6 +573,26 @@ class ConversationEngine:
         )
 
 
+
+
+def _times(slot: _Slot) -> tuple[float, float]:
+    assert slot.start is not None
+    return slot.start, slot.end if slot.end is not None else slot.start
+
+
+def _forget_times(*, channel_times: deque[tuple[float, float]], slot: _Slot) -> None:
+    with contextlib.suppress(ValueError):  # already pushed out of the bounded record
+        channel_times.remove(_times(slot))
+
+
+def _insert_times(channel_times: deque[tuple[float, float]], times: tuple[float, float]) -> None:
+    index = bisect.bisect_right(channel_times, times)
+    if len(channel_times) == channel_times.maxlen and index == 0:
+        return  # older than everything kept
+    if len(channel_times) == channel_times.maxlen:
+        channel_times.popleft()
+        index -= 1
+    channel_times.insert(index, times)
 
 
 def _clean_word(word: Word, text: str, fragment: bool) -> Word:

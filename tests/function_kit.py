@@ -34,9 +34,13 @@ _EXCHANGES: tuple[tuple[tuple[int, str, str], ...], ...] = (
 )
 
 
-def invented_conversation(seed: int, *, annotated: bool = True) -> Conversation:
-    """One invented two-speaker conversation of several exchanges."""
+def invented_conversation(seed: int, *, annotated: bool = True,
+                          timed: bool = False) -> Conversation:
+    """One invented two-speaker conversation of several exchanges; ``timed`` gives its words
+    times: a backchannel ("b") overlaps the end of the utterance before it, any other utterance
+    starts after a seeded gap."""
     rng = random.Random(seed)
+    clock = 0.0
     words: list[Word] = []
     labels: list[DisfluencyLabel] = []
     utterances: list[Utterance] = []
@@ -47,15 +51,19 @@ def invented_conversation(seed: int, *, annotated: bool = True) -> Conversation:
             speaker = "AB"[(first + offset) % 2]
             indices: list[int] = []
             tokens = text.format(n=rng.choice(_NOUNS)).split()
+            if timed:
+                clock += -0.4 if fine == "b" else rng.choice((0.1, 0.6, 1.5))
             if len(tokens) > 2 and rng.random() < 0.3:
                 # A filler and a repeated first word (reparandum) in front.
                 for token, label in (("uh", FILLER), (tokens[0], REP)):
                     indices.append(len(words))
-                    words.append(Word(text=token, speaker=speaker))
+                    words.append(_word(token, speaker, clock if timed else None))
+                    clock += 0.3
                     labels.append(label)
             for token in tokens:
                 indices.append(len(words))
-                words.append(Word(text=token, speaker=speaker))
+                words.append(_word(token, speaker, clock if timed else None))
+                clock += 0.3
                 labels.append(F)
             utterances.append(Utterance(speaker=speaker, words=tuple(indices),
                                         function=coarse_function("swbd42", fine),
@@ -65,17 +73,25 @@ def invented_conversation(seed: int, *, annotated: bool = True) -> Conversation:
                         labels=tuple(labels) if annotated else None)
 
 
-def invented_corpus(n: int, start: int = 0) -> list[Conversation]:
-    return [invented_conversation(seed) for seed in range(start, start + n)]
+def _word(text: str, speaker: str, start: float | None) -> Word:
+    if start is None:
+        return Word(text=text, speaker=speaker)
+    return Word(text=text, speaker=speaker, start=round(start, 3), end=round(start + 0.25, 3))
+
+
+def invented_corpus(n: int, start: int = 0, *, timed: bool = False) -> list[Conversation]:
+    return [invented_conversation(seed, timed=timed) for seed in range(start, start + n)]
 
 
 def tiny_model(scheme: str = "swbd42", *, augment: float = 0.5,
                partner: bool = False, opening: bool = False,
-               lookback: bool = False) -> ModelArtifact:
-    """A function model trained on 20 invented conversations (about a second)."""
+               lookback: bool = False, timing: bool = False) -> ModelArtifact:
+    """A function model trained on 20 invented conversations (about a second), timed ones
+    with ``timing``."""
     options = FunctionTrainingOptions(scheme=scheme, c1=0.01, c2=0.01, min_freq=1,
                                       max_iterations=60, augment=augment,
                                       config=FunctionFeatureConfig(partner=partner,
                                                                    opening=opening,
-                                                                   lookback=lookback))
-    return train_function_model(invented_corpus(20), options)
+                                                                   lookback=lookback,
+                                                                   timing=timing))
+    return train_function_model(invented_corpus(20, timed=timing), options)

@@ -84,6 +84,11 @@ def add_training_arguments(parser: argparse.ArgumentParser) -> None:
                         help="with --partner-features: the partner features also against the "
                              "last utterance of another speaker when the previous one is the "
                              "speaker's own; 'off on' compares both by cross-validation")
+    parser.add_argument("--timing-features", nargs="+", choices=("off", "on"),
+                        default=["off"],
+                        help="when the words carry times: how an utterance starts against the "
+                             "other speakers' talk (overlap, gap), alone and with the words of a "
+                             "short utterance; 'off on' compares both by cross-validation")
     parser.add_argument("--decode-bias", nargs="+", default=[""],
                         metavar="LABEL=SHIFT[,LABEL=SHIFT...]",
                         help="constant added to a label's score at every utterance after "
@@ -138,12 +143,13 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
         max_iterations=args.max_iterations, augment=args.augment, seed=args.seed,
         config=FunctionFeatureConfig(partner=args.partner_features,
                                      opening=args.opening_features[0] == "on",
-                                     lookback=args.lookback_features[0] == "on"),
+                                     lookback=args.lookback_features[0] == "on",
+                                     timing=args.timing_features[0] == "on"),
         oversample=samplings[0], balance=args.balance_corpora[0] == "on",
         decode_bias=biases[0], setting_features=args.setting_features[0] == "on")
     grid = list(itertools.product(args.c1, args.c2, samplings, args.opening_features,
                                   args.lookback_features, args.balance_corpora,
-                                  args.setting_features))
+                                  args.setting_features, args.timing_features))
     chosen = base
     cv: dict[str, object] = {}
     if len(grid) * len(biases) > 1:
@@ -154,9 +160,10 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
         score = (_cv_score(args.scheme if args.scheme == "swbd42" else "coarse")
                  if len(corpora) == 1 else _pooled_score(corpora))
         best = -1.0
-        for c1, c2, sampling, opening, lookback, balance, setting in grid:
+        for c1, c2, sampling, opening, lookback, balance, setting, timing in grid:
             config = FunctionFeatureConfig(partner=args.partner_features,
-                                           opening=opening == "on", lookback=lookback == "on")
+                                           opening=opening == "on", lookback=lookback == "on",
+                                           timing=timing == "on")
             options = FunctionTrainingOptions(**{**_fields(base), "c1": c1, "c2": c2,
                                                  "oversample": sampling, "config": config,
                                                  "balance": balance == "on",
@@ -170,6 +177,7 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
                     ",lookback=on" if lookback == "on" else "") + (
                     ",balance=on" if balance == "on" else "") + (
                     ",settings=on" if setting == "on" else "") + (
+                    ",timing=on" if timing == "on" else "") + (
                     f",decode_bias={_bias_text(bias)}" if bias else "")
                 print(f"cv {name}: " + " ".join(
                     f"{k}={v:.4f}" for k, v in figures.items()), file=out, flush=True)
@@ -182,6 +190,7 @@ def train_from_args(args: argparse.Namespace, conversations: Sequence[Conversati
               f"lookback={'on' if chosen.config.lookback else 'off'} "
               f"balance={'on' if chosen.balance else 'off'} "
               f"settings={'on' if chosen.setting_features else 'off'} "
+              f"timing={'on' if chosen.config.timing else 'off'} "
               f"decode_bias={_bias_text(chosen.decode_bias) or '-'}", file=out, flush=True)
     command = "midstream " + " ".join(shlex.quote(a) for a in sys.argv[1:])
     artifact = train_function_model(conversations, chosen, command=command)

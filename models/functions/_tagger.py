@@ -40,6 +40,7 @@ from midstream.models.functions._features import (
     chain_partners,
     earlier_partner,
     sequence_features,
+    timing_names,
     utterance_features,
 )
 from midstream.models.functions._inference import ChainInference, EndStep, FloatArray
@@ -285,7 +286,7 @@ class FunctionTagger:
         # setting costs nothing per word.
         self._chain = ChainInference(crf, self._group_list, setting=setting)
         self._opening = self._chain.rows({"prev=none": 1.0})
-        self._shapes: dict[tuple[int, int, bool, str], tuple[int, ...]] = {}
+        self._shapes: dict[tuple[int, int, bool, str, str], tuple[int, ...]] = {}
         self._carries: _Lru[tuple[UtteranceView, ...], _Carry] = _Lru(WINDOW_CACHE_SIZE)
         # The same windows keyed by the views' ids: hashing a tuple of ints is far cheaper than
         # hashing the views' fields on every word. Each entry holds its views, so while it lives
@@ -620,7 +621,13 @@ class FunctionTagger:
             # An opening word the model never kept has no row: one key for all of them keeps
             # the table as small as the model's vocabulary of openings.
             opening = ""
-        key = (min(len(view.words), 20), min(view.removed, 3), view.complete, opening)
+        timing = ""
+        names = timing_names(view) if self._config.timing else []
+        if names:
+            # The class alone, or with the words of a short utterance when the model kept that
+            # pair: the table stays as small as the model's own timing features.
+            timing = names[-1] if names[-1] in self._chain.attributes else names[0]
+        key = (min(len(view.words), 20), min(view.removed, 3), view.complete, opening, timing)
         rows = self._shapes.get(key)
         if rows is None:
             rows = self._chain.rows(_shape_features(view, self._config))

@@ -16,8 +16,10 @@ Python, the view holds whatever it was given until it is checked.
 
 from __future__ import annotations
 
+import bisect
 import itertools
-from collections.abc import Iterable, Iterator
+import math
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 
 from midstream import (
@@ -28,8 +30,12 @@ from midstream import (
     Utterance,
 )
 
-__all__ = ["UtteranceView", "build_view", "check_view", "clean_view", "conversation_views",
-           "iter_views"]
+__all__ = ["NO_PARTNER_YET", "UtteranceView", "build_view", "check_view", "clean_view",
+           "conversation_views", "iter_views", "partner_gap"]
+
+#: :attr:`UtteranceView.partner_gap` of a timed utterance before which no other speaker has
+#: spoken: the conversation's opening, or a speaker alone so far.
+NO_PARTNER_YET = math.inf
 
 # Removed opening words whose identity the view keeps: a filled pause or an editing term says
 # how the speaker starts ("sorry", "pardon", "uh"); a reparandum or restart is content that the
@@ -58,6 +64,11 @@ class UtteranceView:
         term; ``""`` otherwise. Cleaning takes "sorry" out of "sorry which day" as an editing
         term, yet the word is the opening cue of a repetition request, so the view keeps which
         word it was.
+    partner_gap
+        Seconds from the end of the last word another speaker began before this utterance's
+        first word to that first word's start (:func:`partner_gap`): negative when the other
+        speaker was still talking, :data:`NO_PARTNER_YET` when no other speaker had spoken,
+        ``None`` when the words carry no times (then nothing is read from timing).
     """
 
     speaker: str
@@ -65,17 +76,52 @@ class UtteranceView:
     removed: int = 0
     complete: bool = True
     opening: str = ""
+    partner_gap: float | None = None
 
     def prefix(self, n: int) -> UtteranceView:
         """The view after only the first ``n`` cleaned words (incomplete when ``n`` is short)."""
         if n >= len(self.words):
             return self
         return UtteranceView(speaker=self.speaker, words=self.words[:n], removed=self.removed,
-                             complete=False, opening=self.opening)
+                             complete=False, opening=self.opening,
+                             partner_gap=self.partner_gap)
+
+
+def partner_gap(start: float, others: Iterable[Sequence[tuple[float, float]]]) -> float:
+    """The :attr:`UtteranceView.partner_gap` of an utterance whose first word starts at
+    ``start``, offline and live alike.
+
+    Parameters
+    ----------
+    start
+        The start time of the utterance's first received word.
+    others
+        For each other speaker, ``(start, end)`` of their words so far, in order of start.
+
+    Returns
+    -------
+    float
+        The smallest ``start - end`` over the other speakers' last word begun at or before
+        ``start`` (negative while one of them is talking); :data:`NO_PARTNER_YET` when none
+        had begun a word by then.
+
+    Examples
+    --------
+    >>> partner_gap(5.0, [[(1.0, 1.5), (3.0, 4.2), (6.0, 6.5)]])
+    0.8
+    >>> partner_gap(5.0, [[(4.5, 5.4)], [(0.0, 0.3)]]) < 0, partner_gap(1.0, [[(2.0, 2.4)]])
+    (True, inf)
+    """
+    gap = NO_PARTNER_YET
+    for times in others:
+        i = bisect.bisect_right(times, (start, math.inf))
+        if i:
+            gap = min(gap, round(start - times[i - 1][1], 6))
+    return gap
 
 
 def build_view(speaker: str, words: Iterable[tuple[str, bool, DisfluencyLabel | None]], *,
-               complete: bool) -> UtteranceView:
+               complete: bool, gap: float | None = None) -> UtteranceView:
     """The view of an utterance from its received words, offline and live alike.
 
     Parameters
@@ -87,6 +133,8 @@ def build_view(speaker: str, words: Iterable[tuple[str, bool, DisfluencyLabel | 
         no disfluency labels exist (a conversation without that annotation keeps every word).
     complete
         Whether the utterance has ended.
+    gap
+        The utterance's :func:`partner_gap`, or ``None`` for untimed words.
 
     Returns
     -------
@@ -119,7 +167,7 @@ def build_view(speaker: str, words: Iterable[tuple[str, bool, DisfluencyLabel | 
         elif text and not fragment:
             kept.append(text)
     return UtteranceView(speaker=speaker, words=tuple(kept), removed=removed, complete=complete,
-                         opening=opening)
+                         opening=opening, partner_gap=gap)
 
 
 def check_view(view: object) -> UtteranceView:
@@ -133,6 +181,11 @@ def check_view(view: object) -> UtteranceView:
         raise InputError(f"UtteranceView.removed must be >= 0, got {view.removed}")
     if not isinstance(view.opening, str):
         raise InputError("UtteranceView.opening must be a string")
+    gap = view.partner_gap
+    if gap is not None and (not isinstance(gap, (int, float)) or isinstance(gap, bool)
+                            or math.isnan(gap) or gap == -math.inf):
+        raise InputError(f"UtteranceView.partner_gap must be a number of seconds, "
+                         f"inf or None, got {gap!r}")
     return view
 
 
@@ -155,13 +208,49 @@ def clean_view(conversation: Conversation, utterance: Utterance,
     labels = conversation.labels
     indices = utterance.words if upto is None else utterance.words[:upto]
     words = conversation.words
+    first = words[utterance.words[0]] if utterance.words else None
+    gap = (None if first is None or first.start is None
+           else partner_gap(first.start, _timing(conversation).others(utterance.speaker)))
     # A whole utterance counts as complete even when the corpus marks it abandoned (see
     # UtteranceView.complete).
     whole = upto is None or upto >= len(utterance.words)
     return build_view(utterance.speaker,
                       [(words[i].text, words[i].fragment, labels[i] if labels is not None
                         else None) for i in indices],
-                      complete=whole)
+                      complete=whole, gap=gap)
+
+
+class _Timing:
+    """Each speaker's timed words of one conversation, ``(start, end)`` in order of start."""
+
+    __slots__ = ("by_speaker", "conversation")
+
+    def __init__(self, conversation: Conversation) -> None:
+        self.conversation = conversation
+        self.by_speaker: dict[str, list[tuple[float, float]]] = {}
+        for word in conversation.words:
+            if word.start is not None:
+                end = word.end if word.end is not None else word.start
+                self.by_speaker.setdefault(word.speaker, []).append((word.start, end))
+        for times in self.by_speaker.values():
+            times.sort()
+
+    def others(self, speaker: str) -> list[list[tuple[float, float]]]:
+        return [times for name, times in self.by_speaker.items() if name != speaker]
+
+
+# Views are built utterance by utterance, conversation after conversation: one conversation's
+# index is kept, found by identity, so a batch builds each index once.
+_last_timing: list[_Timing] = []
+
+
+def _timing(conversation: Conversation) -> _Timing:
+    for kept in _last_timing[:1]:  # a copy: another thread may replace the entry meanwhile
+        if kept.conversation is conversation:
+            return kept
+    timing = _Timing(conversation)
+    _last_timing[:] = [timing]
+    return timing
 
 
 def conversation_views(conversation: Conversation) -> list[UtteranceView]:

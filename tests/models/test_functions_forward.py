@@ -53,11 +53,11 @@ def tiny_fine() -> ModelArtifact:
 
 @pytest.fixture(scope="module")
 def tiny_coarse() -> ModelArtifact:
-    # With the partner, opening and look-back features, as the shipped coarse model: every
-    # path must agree on them (the invented conversations open some utterances with a removed
-    # "uh", and the hypothesis views below repeat speakers, so earlier partners are looked for
-    # and slide out of windows).
-    return tiny_model("coarse", partner=True, opening=True, lookback=True)
+    # With the partner, opening, look-back and timing features: every path must agree on them
+    # (the invented conversations open some utterances with a removed "uh" and are timed, and
+    # the hypothesis views below repeat speakers, so earlier partners are looked for and slide
+    # out of windows, and carry partner gaps of every class, or none).
+    return tiny_model("coarse", partner=True, opening=True, lookback=True, timing=True)
 
 
 def crfsuite_reference(crf: CrfTagger, tagger: FunctionTagger,
@@ -160,6 +160,8 @@ _views = st.builds(
     complete=st.booleans(),
     # A known opening, one the model never saw, none.
     opening=st.sampled_from(("", "uh", "zyzzyva")),
+    # Untimed, each timing class (gap_bucket), no partner yet.
+    partner_gap=st.sampled_from((None, -1.0, -0.2, 0.1, 0.6, 1.5, 4.0, float("inf"))),
 )
 
 
@@ -191,6 +193,18 @@ def test_other_context_lengths_agree_with_crfsuite(tiny_fine: ModelArtifact) -> 
         tagger = FunctionTagger.from_artifact(tiny_fine, context=context)
         for window, current in streamed_calls(views, context + 2):
             assert_agrees(tagger, crf, window, current)
+
+
+def test_timed_views_agree_with_crfsuite(tiny_coarse: ModelArtifact) -> None:
+    views = conversation_views(invented_conversation(67, timed=True))
+    # Every kind of start is there: over the partner, after a gap, before anyone else spoke.
+    gaps = [v.partner_gap for v in views]
+    assert min(g for g in gaps if g is not None) < 0 < max(g for g in gaps if g is not None)
+    tagger = FunctionTagger.from_artifact(tiny_coarse)
+    crf = CrfTagger.from_bytes(tiny_coarse.crf)
+    assert tagger.config.timing
+    for context, current in streamed_calls(views, tagger.context):
+        assert_agrees(tagger, crf, context, current)
 
 
 def test_coarse_from_label_setting_agrees_with_crfsuite(tiny_fine: ModelArtifact) -> None:

@@ -8,12 +8,15 @@ served something it never saw.
 
 from __future__ import annotations
 
+from importlib import resources
 from pathlib import Path
 
 import pytest
+from function_kit import tiny_model
 from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceHypothesis, Word
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
+from midstream.models._artifact import save_artifact
 from midstream.models.functions._views import UtteranceView, build_view, conversation_views
 
 F = DisfluencyLabel.FLUENT
@@ -108,6 +111,73 @@ def test_corpus_conversation_has_the_same_views_and_contexts_offline_and_streame
     # The case that used to differ was there: an utterance left empty by cleaning, which the
     # engine once kept off the chain that training puts it on.
     assert any(not v.words for v in views[:contexts[-1][0]])
+
+
+def _opening_of(conversation: Conversation, words: int) -> Conversation:
+    """The conversation's first utterances, up to the first point after ``words`` words where
+    no utterance is open (meetings interleave their speakers' utterances)."""
+    spans = sorted((min(u.words), max(u.words)) for u in conversation.utterances if u.words)
+    cut, reach = 0, -1
+    for first, last in spans:
+        if first > reach and first >= words:
+            cut = first
+            break
+        reach = max(reach, last)
+    assert cut, "the conversation is shorter than asked"
+    return Conversation(
+        id=conversation.id, corpus=conversation.corpus, words=conversation.words[:cut],
+        labels=None if conversation.labels is None else conversation.labels[:cut],
+        utterances=tuple(u for u in conversation.utterances if u.words and max(u.words) < cut))
+
+
+@pytest.fixture(scope="module")
+def timing_bundle(tmp_path_factory: pytest.TempPathFactory) -> ModelBundle:
+    """The shipped models with a coarse function model that reads timing (the engine reads
+    the partner gap only for a model that uses it)."""
+    folder = tmp_path_factory.mktemp("timing-models")
+    shipped = resources.files("midstream.models") / "weights"
+    for name in ("words.tagger", "boundaries.tagger", "functions-swbd42.tagger"):
+        (folder / name).write_bytes((shipped / name).read_bytes())
+    save_artifact(tiny_model("coarse", partner=True, opening=True, timing=True),
+                  folder / "functions-coarse.tagger")
+    return ModelBundle.load_directory(folder)
+
+
+@pytest.mark.corpus
+def test_timed_meeting_has_the_same_partner_gaps_offline_and_streamed(
+        mrda_dir: Path, timing_bundle: ModelBundle) -> None:
+    # An MRDA val meeting (Shriberg et al. 2004) with its word times, fed in its word order as
+    # a recogniser would: the gap each utterance's view reads from the other speakers' talk
+    # must be the one training read offline from the whole conversation.
+    conversation = _opening_of(next(iter(read_corpus(mrda_dir, split="val"))), 600)
+    bundle = timing_bundle
+    finals, labels, contexts = _stream_with_gold_ends(bundle, conversation)
+    offline = Conversation(
+        id=conversation.id, corpus=conversation.corpus, words=conversation.words,
+        labels=tuple(labels[f"w{i}"] for i in range(len(conversation.words))),
+        utterances=tuple(
+            Utterance(speaker=u.speaker, words=tuple(int(w[1:]) for w in u.word_ids),
+                      function=u.function, fine_tag=u.fine_class, fine_class=u.fine_class)
+            for u in finals))
+    views = conversation_views(offline)
+    context = bundle.function_tagger.context
+    for done, streamed in contexts:
+        assert streamed == tuple(views[:done][-context:])
+    gaps = [v.partner_gap for v in views if v.partner_gap is not None]
+    assert len(gaps) == len(views)
+    # Meetings overlap: some utterances start over another speaker, others after a gap.
+    assert min(gaps) < 0 < max(gaps)
+
+
+def test_the_engine_reads_no_timing_for_models_without_it() -> None:
+    # The shipped coarse model has no timing features: its views stay untimed, and the search
+    # of the other speakers' times is not made.
+    engine = ModelBundle.load_default().new_engine()
+    engine.add_word("a", Word(text="so", speaker="A", start=0.0, end=0.3))
+    engine.hint("A", turn_end=True)
+    engine.add_word("b", Word(text="yeah", speaker="B", start=0.5, end=0.8))
+    engine.hint("B", turn_end=True)
+    assert [v.partner_gap for v in engine.context] == [None, None]
 
 
 def test_engine_context_keeps_utterances_left_empty_by_cleaning() -> None:

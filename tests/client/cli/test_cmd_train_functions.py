@@ -81,6 +81,34 @@ def test_the_opening_feature_is_compared_by_cross_validation_and_stored(
     assert FunctionTagger.from_artifact(artifact).config.opening is chosen_on
 
 
+def test_the_timing_features_are_compared_by_cross_validation_and_stored(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # Timed transcripts: JSON Lines keeps each word's times, and training reads the gaps.
+    transcripts = tmp_path / "timed.jsonl"
+    with transcripts.open("w", encoding="utf-8") as stream:
+        write_jsonl(invented_corpus(12, timed=True), stream)
+    out = tmp_path / "functions.tagger"
+    code = main(["train", "functions", str(transcripts), "--scheme", "coarse",
+                 "--timing-features", "off", "on", "--min-freq", "1", "--max-iterations", "30",
+                 "--cv-folds", "2", "--cv-subset", "0", "--out", str(out)])
+    assert code == 0
+    printed = capsys.readouterr().out
+    assert "cv c1=0.1,c2=0.01:" in printed and "cv c1=0.1,c2=0.01,timing=on:" in printed
+    artifact = load_artifact(out, expected_kind="utterance_functions")
+    grid = artifact.metadata["cross_validation"]["grid"]
+    scores = {name: figures["score"] for name, figures in grid.items()}
+    chosen_on = max(scores, key=scores.__getitem__).endswith("timing=on")
+    assert FunctionTagger.from_artifact(artifact).config.timing is chosen_on
+    # Trained with them, the model has learned timing features from the file's word times.
+    assert main(["train", "functions", str(transcripts), "--scheme", "coarse",
+                 "--timing-features", "on", "--min-freq", "1", "--max-iterations", "30",
+                 "--out", str(out)]) == 0
+    tagger = FunctionTagger.from_artifact(load_artifact(out, expected_kind="utterance_functions"))
+    assert tagger.config.timing
+    timing = {name for name in tagger._chain.attributes if name.startswith("tg")}
+    assert "tg=ov" in timing and len(timing) > 1
+
+
 def test_swbd42_on_other_labels_is_a_one_line_error(
         tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     conversations = invented_corpus(3)
