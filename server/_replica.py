@@ -514,9 +514,10 @@ class Replica:
             It has ended, or its logged input is incomplete (``INVALID_ARGUMENT``: nothing to
             continue; open a new conversation).
         ModelError
-            It was decoded by other models or decoder settings than this replica's, or
-            replaying its input did not give what the log holds (``FAILED_PRECONDITION``:
-            continue it on a replica serving what it was decoded with).
+            It was decoded with other models, decoder settings or conversation setting than
+            this replica's, or replaying its input did not give what the log holds
+            (``FAILED_PRECONDITION``: continue it on a replica serving what it was decoded
+            with).
         ConflictError
             It is live on this replica already, or its replica kept writing it while it was
             being rebuilt here (it is not lost).
@@ -615,8 +616,9 @@ class Replica:
                 "than the local buffer held)")
         if meta.get(b"models", b"").decode() != self._log.models():
             raise ModelError(
-                f"conversation {conversation_id!r} was decoded by other models or decoder "
-                "settings than this replica serves; continue it on a replica serving the same")
+                f"conversation {conversation_id!r} was decoded with other models, decoder "
+                "settings or conversation setting than this replica serves; continue it on a "
+                "replica serving the same")
 
     async def _rebuild(self, session: Session, meta: dict[bytes, bytes], events: list[Any],
                        logged: list[Any]) -> list[PublishedUpdate]:

@@ -212,8 +212,9 @@ async def test_every_refusal_to_continue_names_what_was_wrong_on_both_rpcs(
         "ALREADY_EXISTS", "conversation 'live' is live on this replica")
     assert await _refusals(other, pb.OpenConversation(conversation_id="live",
                                                       resume=True)) == (
-        "FAILED_PRECONDITION", "conversation 'live' was decoded by other models or decoder "
-        "settings than this replica serves; continue it on a replica serving the same")
+        "FAILED_PRECONDITION", "conversation 'live' was decoded with other models, decoder "
+        "settings or conversation setting than this replica serves; continue it on a replica "
+        "serving the same")
     assert await _refusals(b, pb.OpenConversation(conversation_id="live")) == (
         "ALREADY_EXISTS", "conversation id 'live' is live in the shared log; continue it with "
         "open.resume, or choose another id")

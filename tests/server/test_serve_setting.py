@@ -156,7 +156,8 @@ async def test_a_replica_in_another_setting_refuses_to_continue_a_conversation(
         await refused.read()
     assert info.value.code() == grpc.StatusCode.FAILED_PRECONDITION
     # Refused on the identity written with the conversation, before any replay.
-    assert "was decoded by other models" in (info.value.details() or "")
+    assert "was decoded with other models, decoder settings or conversation setting" in (
+        info.value.details() or "")
     taken = same.stub.Feed()
     await taken.write(resume)
     message = await taken.read()
