@@ -81,6 +81,24 @@ def _stream_with_gold_ends(bundle: ModelBundle, conversation: Conversation) -> t
     return finals, labels, contexts
 
 
+def _streamed_and_offline(bundle: ModelBundle, conversation: Conversation) -> tuple[
+        list[UtteranceView], list[tuple[int, tuple[UtteranceView, ...]]]]:
+    """Stream ``conversation`` with its gold ends hinted; the views of the same conversation
+    offline, as training reads one (the streamed segmentation and the streamed disfluency
+    labels, in the order the utterances became final), and the engine's contexts."""
+    finals, labels, contexts = _stream_with_gold_ends(bundle, conversation)
+    offline = Conversation(
+        id=conversation.id, corpus=conversation.corpus, words=conversation.words,
+        labels=tuple(labels[f"w{i}"] for i in range(len(conversation.words))),
+        utterances=tuple(
+            Utterance(speaker=u.speaker, words=tuple(int(w[1:]) for w in u.word_ids),
+                      function=u.function, fine_tag=u.fine_class, fine_class=u.fine_class)
+            for u in finals))
+    views = conversation_views(offline)
+    assert len(views) == len(finals)
+    return views, contexts
+
+
 @pytest.mark.corpus
 def test_corpus_conversation_has_the_same_views_and_contexts_offline_and_streamed(
         swda_dir: Path) -> None:
@@ -93,18 +111,8 @@ def test_corpus_conversation_has_the_same_views_and_contexts_offline_and_streame
     conversation = next(c for c in read_corpus(swda_dir, split="val")
                         if len(c.words) <= 900 and gold_differences(c))
     bundle = ModelBundle.load_default()
-    finals, labels, contexts = _stream_with_gold_ends(bundle, conversation)
-    # The same conversation offline, as training reads one: the streamed segmentation and the
-    # streamed disfluency labels, in the order the utterances became final.
-    offline = Conversation(
-        id=conversation.id, corpus=conversation.corpus, words=conversation.words,
-        labels=tuple(labels[f"w{i}"] for i in range(len(conversation.words))),
-        utterances=tuple(
-            Utterance(speaker=u.speaker, words=tuple(int(w[1:]) for w in u.word_ids),
-                      function=u.function, fine_tag=u.fine_class, fine_class=u.fine_class)
-            for u in finals))
-    views = conversation_views(offline)
-    assert len(views) == len(finals) > 20
+    views, contexts = _streamed_and_offline(bundle, conversation)
+    assert len(views) > 20
     context = bundle.function_tagger.context
     for done, streamed in contexts:
         assert streamed == tuple(views[:done][-context:])
@@ -150,17 +158,8 @@ def test_timed_meeting_has_the_same_partner_gaps_offline_and_streamed(
     # a recogniser would: the gap each utterance's view reads from the other speakers' talk
     # must be the one training read offline from the whole conversation.
     conversation = _opening_of(next(iter(read_corpus(mrda_dir, split="val"))), 600)
-    bundle = timing_bundle
-    finals, labels, contexts = _stream_with_gold_ends(bundle, conversation)
-    offline = Conversation(
-        id=conversation.id, corpus=conversation.corpus, words=conversation.words,
-        labels=tuple(labels[f"w{i}"] for i in range(len(conversation.words))),
-        utterances=tuple(
-            Utterance(speaker=u.speaker, words=tuple(int(w[1:]) for w in u.word_ids),
-                      function=u.function, fine_tag=u.fine_class, fine_class=u.fine_class)
-            for u in finals))
-    views = conversation_views(offline)
-    context = bundle.function_tagger.context
+    views, contexts = _streamed_and_offline(timing_bundle, conversation)
+    context = timing_bundle.function_tagger.context
     for done, streamed in contexts:
         assert streamed == tuple(views[:done][-context:])
     gaps = [v.partner_gap for v in views if v.partner_gap is not None]
