@@ -113,7 +113,7 @@ class _Channel:
     last_added: int = 0
     utterances: list[_OpenUtterance] = field(default_factory=list)
     #: ``(start, end)`` of the speaker's last timed words, for the other speakers' views'
-    #: partner gap (bounded: :data:`RECENT_TIMES`).
+    #: partner gap (bounded: :data:`RECENT_TIMES`); kept only for a model that reads it.
     times: deque[tuple[float, float]] = field(
         default_factory=lambda: deque(maxlen=RECENT_TIMES))
 
@@ -154,8 +154,8 @@ class ConversationEngine:
         self.silence_marks = silence_marks
         self._functions = function_tagger
         self._coarse = coarse_tagger
-        # The partner gap is read only for a model that uses it: it costs a search of the other
-        # speakers' recent times whenever an utterance's view is rebuilt.
+        # The speakers' recent times are kept and the partner gap read only for a model that
+        # uses it: the gap costs a search of those times whenever a view is rebuilt.
         self._timed = function_tagger.config.timing or (
             coarse_tagger is not None and coarse_tagger.config.timing)
         self._config = config or EngineConfig()
@@ -237,7 +237,7 @@ class ConversationEngine:
                     break
         if word.end is not None:
             self._last_end[word.speaker] = word.end
-        if start is not None:
+        if start is not None and self._timed:
             channel.times.append(_times(slot))
         # The other speakers' words since this speaker's previous word, as training counts them
         # (0 before a channel's first word).
@@ -266,15 +266,15 @@ class ConversationEngine:
         token = normalise_token(word.text) if word.text.strip() else None
         if token is None:
             raise EventError(f"word {word_id!r}: replacement text has no speech content")
-        slot.text = token.text
-        if slot.start is not None:
-            _forget_times(channel_times=self._channels[slot.speaker].times, slot=slot)
-        slot.start, slot.end = word.start, word.end
-        if slot.start is not None:
-            # A revised word's times stand where its old times stood, in order of start.
-            _insert_times(self._channels[slot.speaker].times, _times(slot))
-        slot.fragment = token.fragment or word.fragment
         channel = self._channels[slot.speaker]
+        slot.text = token.text
+        if self._timed and slot.start is not None:
+            _forget_times(channel.times, slot)
+        slot.start, slot.end = word.start, word.end
+        if self._timed and slot.start is not None:
+            # A revised word's times stand where its old times stood, in order of start.
+            _insert_times(channel.times, _times(slot))
+        slot.fragment = token.fragment or word.fragment
         clean = _clean_word(word, token.text, slot.fragment)
         states = channel.decoder.replace(slot.key, clean)
         # The new text changes the word's utterance even when no tag moved.
@@ -292,8 +292,8 @@ class ConversationEngine:
         slot = self._open_slot(word_id, "withdraw")
         channel = self._channels[slot.speaker]
         states = channel.decoder.withdraw(slot.key)
-        if slot.start is not None:
-            _forget_times(channel_times=channel.times, slot=slot)
+        if self._timed and slot.start is not None:
+            _forget_times(channel.times, slot)
         del channel.slots[slot.key]
         channel.open_keys.remove(slot.key)
         channel.ends.discard(slot.key)
@@ -580,7 +580,7 @@ def _times(slot: _Slot) -> tuple[float, float]:
     return slot.start, slot.end if slot.end is not None else slot.start
 
 
-def _forget_times(*, channel_times: deque[tuple[float, float]], slot: _Slot) -> None:
+def _forget_times(channel_times: deque[tuple[float, float]], slot: _Slot) -> None:
     with contextlib.suppress(ValueError):  # already pushed out of the bounded record
         channel_times.remove(_times(slot))
 

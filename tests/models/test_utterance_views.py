@@ -17,7 +17,12 @@ from midstream import Conversation, DisfluencyLabel, Utterance, UtteranceHypothe
 from midstream.corpora import read_corpus
 from midstream.models import ModelBundle
 from midstream.models._artifact import save_artifact
-from midstream.models.functions._views import UtteranceView, build_view, conversation_views
+from midstream.models.functions._views import (
+    NO_PARTNER_YET,
+    UtteranceView,
+    build_view,
+    conversation_views,
+)
 
 F = DisfluencyLabel.FLUENT
 
@@ -166,6 +171,27 @@ def test_timed_meeting_has_the_same_partner_gaps_offline_and_streamed(
     assert len(gaps) == len(views)
     # Meetings overlap: some utterances start over another speaker, others after a gap.
     assert min(gaps) < 0 < max(gaps)
+
+
+def _gap_after_a_revision(bundle: ModelBundle, revise: str) -> float | None:
+    """B's "yeah" at 1.0 s after A's "so" (0.0-0.3 s), once A's word was revised as ``revise``
+    says: the partner gap of B's finished utterance."""
+    engine = bundle.new_engine()
+    engine.add_word("a", Word(text="so", speaker="A", start=0.0, end=0.3))
+    engine.add_word("b", Word(text="yeah", speaker="B", start=1.0, end=1.2))
+    if revise == "longer":
+        engine.replace_word("a", Word(text="so", speaker="A", start=0.0, end=0.9))
+    elif revise == "withdrawn":
+        engine.withdraw_word("a")
+    engine.hint("B", turn_end=True)
+    return next(v.partner_gap for v in engine.context if v.speaker == "B")
+
+
+def test_the_gap_follows_the_recognisers_revisions(timing_bundle: ModelBundle) -> None:
+    assert _gap_after_a_revision(timing_bundle, "none") == pytest.approx(0.7)
+    # A revised end time moves the gap; a withdrawn word no longer counts as the partner's talk.
+    assert _gap_after_a_revision(timing_bundle, "longer") == pytest.approx(0.1)
+    assert _gap_after_a_revision(timing_bundle, "withdrawn") == NO_PARTNER_YET
 
 
 def test_the_engine_reads_no_timing_for_models_without_it() -> None:
